@@ -1,0 +1,414 @@
+"""Closed-form distances between Gaussians and the drift test statistics built on them.
+
+Every function takes means of shape ``(..., n_features)`` and covariances of shape
+``(..., n_features, n_features)``; leading (batch) dimensions broadcast against each
+other, so one call compares every segment with its reference. Covariances must be
+symmetric positive definite; they are factorised with Cholesky, never inverted, and
+log-determinants come from the factor's diagonal.
+
+Formulas (``d`` features, ``dm = m1 - m0``):
+
+* Kullback-Leibler:
+  ``KL(N0 || N1) = 0.5 (tr(S1^-1 S0) + dm' S1^-1 dm - d + log|S1| - log|S0|)``.
+* Bhattacharyya, with ``S = (S0 + S1) / 2``:
+  ``D_B = dm' S^-1 dm / 8 + 0.5 log(|S| / sqrt(|S0| |S1|))``; coefficient
+  ``BC = exp(-D_B)``; Hellinger ``H = sqrt(1 - BC)`` (so ``0 <= H <= 1``).
+* 2-Wasserstein:
+  ``W2^2 = |dm|^2 + tr S0 + tr S1 - 2 tr (S1^1/2 S0 S1^1/2)^1/2``.
+* Mahalanobis distance of a mean under a reference covariance, and Hotelling's
+  ``T^2 = n_eff * dm' S^-1 dm`` with Kish's effective sample size
+  ``n_eff = (sum w)^2 / sum w^2``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import linalg, stats
+
+from .errors import IllConditionedError, ModelError
+
+__all__ = [
+    "bhattacharyya_coefficient",
+    "bhattacharyya_distance",
+    "hellinger_distance",
+    "hotelling_t2",
+    "hotelling_t2_critical_value",
+    "hotelling_t2_pvalue",
+    "kish_effective_sample_size",
+    "kl_divergence",
+    "log_generalised_variance_ratio",
+    "mahalanobis_distance",
+    "wasserstein2_distance",
+]
+
+
+# --------------------------------------------------------------------------- checks
+
+
+def _as_means(mean, name):
+    mean = np.asarray(mean, dtype=np.float64)
+    if mean.ndim < 1:
+        raise ModelError(f"{name} should have shape (..., n_features), got a scalar")
+    if not np.all(np.isfinite(mean)):
+        raise ModelError(f"{name} should be finite, got NaN or infinity")
+    return mean
+
+
+def _as_covs(cov, name, n_features):
+    cov = np.asarray(cov, dtype=np.float64)
+    if cov.ndim < 2 or cov.shape[-2:] != (n_features, n_features):
+        raise ModelError(
+            f"{name} should have shape (..., {n_features}, {n_features}), got {cov.shape}"
+        )
+    if not np.all(np.isfinite(cov)):
+        raise ModelError(f"{name} should be finite, got NaN or infinity")
+    if not np.allclose(cov, np.swapaxes(cov, -1, -2), rtol=1e-8, atol=1e-12):
+        raise ModelError(f"{name} should be symmetric")
+    return 0.5 * (cov + np.swapaxes(cov, -1, -2))
+
+
+def _check_pair(mean0, cov0, mean1, cov1, names=("mean0", "cov0", "mean1", "cov1")):
+    """Validate two Gaussians and broadcast them to one batch shape."""
+    mean0 = _as_means(mean0, names[0])
+    mean1 = _as_means(mean1, names[2])
+    n_features = mean0.shape[-1]
+    if mean1.shape[-1] != n_features:
+        raise ModelError(
+            f"{names[2]} should have {n_features} features like {names[0]}, "
+            f"got shape {mean1.shape}"
+        )
+    cov0 = _as_covs(cov0, names[1], n_features)
+    cov1 = _as_covs(cov1, names[3], n_features)
+    try:
+        batch = np.broadcast_shapes(
+            mean0.shape[:-1], cov0.shape[:-2], mean1.shape[:-1], cov1.shape[:-2]
+        )
+    except ValueError as exc:
+        raise ModelError(
+            f"batch shapes do not broadcast: {names[0]} {mean0.shape}, {names[1]} "
+            f"{cov0.shape}, {names[2]} {mean1.shape}, {names[3]} {cov1.shape}"
+        ) from exc
+    vec, mat = batch + (n_features,), batch + (n_features, n_features)
+    return (
+        np.broadcast_to(mean0, vec),
+        np.broadcast_to(cov0, mat),
+        np.broadcast_to(mean1, vec),
+        np.broadcast_to(cov1, mat),
+    )
+
+
+# --------------------------------------------------------------------------- kernels
+
+
+def _cholesky(cov, name):
+    """Lower Cholesky factors of a stack of covariances, shape (..., D, D)."""
+    try:
+        return np.linalg.cholesky(cov)
+    except np.linalg.LinAlgError as exc:
+        raise IllConditionedError(
+            f"{name} is not positive definite; add a small value (reg_covar) to its "
+            "diagonal, or drop features that are constant or copies of others"
+        ) from exc
+
+
+def _solve_lower(chol, rhs):
+    """``chol^-1 rhs`` for lower-triangular ``chol`` (..., D, D), ``rhs`` (..., D, m)."""
+    if chol.ndim == 2:
+        return linalg.solve_triangular(chol, rhs, lower=True, check_finite=False)
+    batch = chol.shape[:-2]
+    flat_chol = chol.reshape((-1,) + chol.shape[-2:])
+    flat_rhs = np.broadcast_to(rhs, batch + rhs.shape[-2:]).reshape((-1,) + rhs.shape[-2:])
+    out = np.empty(flat_rhs.shape)
+    for i in range(flat_chol.shape[0]):
+        out[i] = linalg.solve_triangular(flat_chol[i], flat_rhs[i], lower=True, check_finite=False)
+    return out.reshape(batch + rhs.shape[-2:])
+
+
+def _log_det_chol(chol):
+    """``log |S|`` from the Cholesky factor of ``S``, shape (...)."""
+    return 2.0 * np.sum(np.log(np.diagonal(chol, axis1=-2, axis2=-1)), axis=-1)
+
+
+def _squared_mahalanobis_chol(diff, chol):
+    """``diff' S^-1 diff`` with ``S = chol chol'``; diff (..., D) -> (...)."""
+    white = _solve_lower(chol, diff[..., None])[..., 0]
+    return np.sum(white * white, axis=-1)
+
+
+def _sqrtm_psd(cov):
+    """Symmetric square root of a stack of symmetric PSD matrices, by eigh."""
+    eigval, eigvec = np.linalg.eigh(cov)
+    root = np.sqrt(np.clip(eigval, 0.0, None))
+    return (eigvec * root[..., None, :]) @ np.swapaxes(eigvec, -1, -2)
+
+
+def _scalar_or_array(value):
+    return float(value) if np.ndim(value) == 0 else value
+
+
+# --------------------------------------------------------------------------- public
+
+
+def kl_divergence(mean0, cov0, mean1, cov1):
+    """Kullback-Leibler divergence ``KL(N(mean0, cov0) || N(mean1, cov1))`` in nats.
+
+    Parameters
+    ----------
+    mean0, mean1 : array_like of shape (..., n_features)
+    cov0, cov1 : array_like of shape (..., n_features, n_features)
+        Symmetric positive definite. Leading dimensions broadcast.
+
+    Returns
+    -------
+    kl : float or ndarray of shape (...)
+        Non-negative (rounding below zero is clipped to zero). Not symmetric.
+    """
+    mean0, cov0, mean1, cov1 = _check_pair(mean0, cov0, mean1, cov1)
+    chol0 = _cholesky(cov0, "cov0")
+    chol1 = _cholesky(cov1, "cov1")
+    n_features = mean0.shape[-1]
+    # tr(S1^-1 S0) = ||L1^-1 L0||_F^2
+    trace_term = np.sum(_solve_lower(chol1, chol0) ** 2, axis=(-2, -1))
+    maha = _squared_mahalanobis_chol(mean1 - mean0, chol1)
+    kl = 0.5 * (trace_term + maha - n_features + _log_det_chol(chol1) - _log_det_chol(chol0))
+    return _scalar_or_array(np.maximum(kl, 0.0))
+
+
+def _bhattacharyya(mean0, cov0, mean1, cov1):
+    chol0 = _cholesky(cov0, "cov0")
+    chol1 = _cholesky(cov1, "cov1")
+    chol = _cholesky(0.5 * (cov0 + cov1), "(cov0 + cov1) / 2")
+    maha = _squared_mahalanobis_chol(mean1 - mean0, chol)
+    log_ratio = _log_det_chol(chol) - 0.5 * (_log_det_chol(chol0) + _log_det_chol(chol1))
+    return np.maximum(0.125 * maha + 0.5 * log_ratio, 0.0)
+
+
+def bhattacharyya_distance(mean0, cov0, mean1, cov1):
+    """Bhattacharyya distance ``D_B = -log BC`` between two Gaussians.
+
+    Parameters
+    ----------
+    mean0, mean1 : array_like of shape (..., n_features)
+    cov0, cov1 : array_like of shape (..., n_features, n_features)
+
+    Returns
+    -------
+    distance : float or ndarray of shape (...)
+        Symmetric, non-negative, zero only for identical Gaussians.
+    """
+    return _scalar_or_array(_bhattacharyya(*_check_pair(mean0, cov0, mean1, cov1)))
+
+
+def bhattacharyya_coefficient(mean0, cov0, mean1, cov1):
+    """Bhattacharyya coefficient ``BC = integral sqrt(p0 p1) = exp(-D_B)``, in (0, 1].
+
+    Parameters and shapes as :func:`bhattacharyya_distance`.
+    """
+    return _scalar_or_array(np.exp(-_bhattacharyya(*_check_pair(mean0, cov0, mean1, cov1))))
+
+
+def hellinger_distance(mean0, cov0, mean1, cov1):
+    """Hellinger distance ``H = sqrt(1 - BC)`` between two Gaussians, in [0, 1].
+
+    Parameters and shapes as :func:`bhattacharyya_distance`. ``1 - BC`` is computed
+    as ``-expm1(-D_B)`` so that small distances keep their precision.
+    """
+    distance = _bhattacharyya(*_check_pair(mean0, cov0, mean1, cov1))
+    return _scalar_or_array(np.sqrt(-np.expm1(-distance)))
+
+
+def wasserstein2_distance(mean0, cov0, mean1, cov1):
+    """2-Wasserstein distance between two Gaussians, in the data's units.
+
+    Parameters
+    ----------
+    mean0, mean1 : array_like of shape (..., n_features)
+    cov0, cov1 : array_like of shape (..., n_features, n_features)
+        Symmetric positive semi-definite.
+
+    Returns
+    -------
+    distance : float or ndarray of shape (...)
+        ``sqrt(|m1 - m0|^2 + tr S0 + tr S1 - 2 tr (S1^1/2 S0 S1^1/2)^1/2)``.
+
+    Notes
+    -----
+    The matrix square roots come from symmetric eigendecompositions with the
+    eigenvalues clipped at zero, and ``S1^1/2 S0 S1^1/2`` is symmetrised before its
+    eigenvalues are taken, so rounding cannot produce complex or negative roots. For
+    two equal covariances the squared spread term is zero up to rounding of order
+    ``1e-16 * tr S``, so the distance itself is exact to about ``1e-8 sqrt(tr S)``.
+    """
+    mean0, cov0, mean1, cov1 = _check_pair(mean0, cov0, mean1, cov1)
+    root1 = _sqrtm_psd(cov1)
+    cross = root1 @ cov0 @ root1
+    cross = 0.5 * (cross + np.swapaxes(cross, -1, -2))
+    trace_root = np.sum(np.sqrt(np.clip(np.linalg.eigvalsh(cross), 0.0, None)), axis=-1)
+    trace0 = np.trace(cov0, axis1=-2, axis2=-1)
+    trace1 = np.trace(cov1, axis1=-2, axis2=-1)
+    diff = mean1 - mean0
+    squared = np.sum(diff * diff, axis=-1) + trace0 + trace1 - 2.0 * trace_root
+    return _scalar_or_array(np.sqrt(np.maximum(squared, 0.0)))
+
+
+def mahalanobis_distance(mean, ref_mean, ref_cov):
+    """Distance of ``mean`` from ``ref_mean`` in reference standard deviations.
+
+    Parameters
+    ----------
+    mean, ref_mean : array_like of shape (..., n_features)
+    ref_cov : array_like of shape (..., n_features, n_features)
+
+    Returns
+    -------
+    distance : float or ndarray of shape (...)
+        ``sqrt((mean - ref_mean)' ref_cov^-1 (mean - ref_mean))``.
+    """
+    mean, ref_cov, ref_mean, _ = _check_pair(
+        mean, ref_cov, ref_mean, ref_cov, names=("mean", "ref_cov", "ref_mean", "ref_cov")
+    )
+    chol = _cholesky(ref_cov, "ref_cov")
+    return _scalar_or_array(np.sqrt(_squared_mahalanobis_chol(mean - ref_mean, chol)))
+
+
+def log_generalised_variance_ratio(cov, ref_cov):
+    """``log |cov| - log |ref_cov|``: how much the spread's volume has changed.
+
+    Parameters
+    ----------
+    cov, ref_cov : array_like of shape (..., n_features, n_features)
+        Symmetric positive definite; leading dimensions broadcast.
+
+    Returns
+    -------
+    log_ratio : float or ndarray of shape (...)
+        Zero for an unchanged spread; ``n_features * log(c)`` when every variance is
+        multiplied by ``c``.
+    """
+    cov = np.asarray(cov, dtype=np.float64)
+    if cov.ndim < 2:
+        raise ModelError(f"cov should have shape (..., n_features, n_features), got {cov.shape}")
+    n_features = cov.shape[-1]
+    cov = _as_covs(cov, "cov", n_features)
+    ref_cov = _as_covs(ref_cov, "ref_cov", n_features)
+    ratio = _log_det_chol(_cholesky(cov, "cov")) - _log_det_chol(_cholesky(ref_cov, "ref_cov"))
+    return _scalar_or_array(ratio)
+
+
+def kish_effective_sample_size(weights, axis=0):
+    """Kish's effective sample size ``(sum w)^2 / sum w^2`` of non-negative weights.
+
+    Parameters
+    ----------
+    weights : array_like of shape (n_samples, ...) when ``axis=0``
+        For a segment, its responsibilities for the rows of a batch.
+    axis : int, default 0
+        The axis that runs over samples.
+
+    Returns
+    -------
+    n_eff : float or ndarray
+        Between 1 and the number of non-zero weights; 0 where all weights are zero.
+    """
+    weights = np.asarray(weights, dtype=np.float64)
+    if weights.ndim == 0:
+        raise ModelError("weights should be an array of per-row weights, got a scalar")
+    if np.any(weights < 0) or not np.all(np.isfinite(weights)):
+        raise ModelError("weights should be finite and non-negative")
+    total = np.sum(weights, axis=axis)
+    square = np.sum(weights * weights, axis=axis)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        n_eff = np.where(square > 0, total * total / np.where(square > 0, square, 1.0), 0.0)
+    return _scalar_or_array(n_eff)
+
+
+def hotelling_t2(mean, n_eff, ref_mean, ref_cov):
+    """Hotelling's ``T^2 = n_eff (mean - ref_mean)' ref_cov^-1 (mean - ref_mean)``.
+
+    For a weighted batch mean ``sum w x / sum w`` of independent rows with covariance
+    ``ref_cov``, the mean's covariance is ``ref_cov / n_eff`` with Kish's ``n_eff``
+    (:func:`kish_effective_sample_size`), so under "no change" ``T^2`` follows a
+    chi-square distribution with ``n_features`` degrees of freedom when ``ref_cov`` is
+    known, and Hotelling's ``T^2`` distribution when it is an estimate (see
+    :func:`hotelling_t2_pvalue`).
+
+    Parameters
+    ----------
+    mean, ref_mean : array_like of shape (..., n_features)
+    n_eff : float or array_like of shape (...)
+        Effective sample size of the batch mean; must be positive.
+    ref_cov : array_like of shape (..., n_features, n_features)
+
+    Returns
+    -------
+    t2 : float or ndarray of shape (...)
+    """
+    n_eff = np.asarray(n_eff, dtype=np.float64)
+    if np.any(n_eff <= 0) or not np.all(np.isfinite(n_eff)):
+        raise ModelError("n_eff should be positive and finite")
+    distance = mahalanobis_distance(mean, ref_mean, ref_cov)
+    return _scalar_or_array(n_eff * np.square(distance))
+
+
+def _check_t2_dof(n_features, cov_dof):
+    if int(n_features) != n_features or n_features < 1:
+        raise ModelError(f"n_features should be a positive integer, got {n_features!r}")
+    if cov_dof is not None and np.any(np.asarray(cov_dof) < n_features):
+        raise ModelError(
+            f"cov_dof should be at least n_features ({n_features}), got {cov_dof!r}"
+        )
+
+
+def hotelling_t2_pvalue(t2, n_features, cov_dof=None):
+    """Upper-tail p-value of a Hotelling ``T^2`` statistic.
+
+    Parameters
+    ----------
+    t2 : float or array_like
+    n_features : int
+    cov_dof : float or array_like, optional
+        Degrees of freedom ``m`` of the covariance estimate (for a sample covariance of
+        ``n`` rows, ``n - 1``). ``None`` (default) treats the covariance as known, as
+        for a reference snapshot fitted on far more rows than a batch holds: then
+        ``T^2 ~ chi2(n_features)``. Otherwise ``T^2 ~ m p / (m - p + 1) F(p, m - p + 1)``
+        with ``p = n_features``.
+
+    Returns
+    -------
+    p_value : float or ndarray
+    """
+    _check_t2_dof(n_features, cov_dof)
+    t2 = np.asarray(t2, dtype=np.float64)
+    if cov_dof is None:
+        return _scalar_or_array(stats.chi2.sf(t2, n_features))
+    m = np.asarray(cov_dof, dtype=np.float64)
+    dfd = m - n_features + 1.0
+    return _scalar_or_array(stats.f.sf(t2 * dfd / (m * n_features), n_features, dfd))
+
+
+def hotelling_t2_critical_value(alpha, n_features, cov_dof=None):
+    """The ``T^2`` value exceeded with probability ``alpha`` when nothing has changed.
+
+    Parameters
+    ----------
+    alpha : float or array_like
+        False-alarm probability per test, in (0, 1).
+    n_features : int
+    cov_dof : float or array_like, optional
+        As in :func:`hotelling_t2_pvalue`.
+
+    Returns
+    -------
+    critical : float or ndarray
+        ``sqrt(critical / n_eff)`` is the mean shift, in reference standard deviations,
+        that estimation noise alone reaches with probability ``alpha``.
+    """
+    _check_t2_dof(n_features, cov_dof)
+    alpha = np.asarray(alpha, dtype=np.float64)
+    if np.any((alpha <= 0) | (alpha >= 1)):
+        raise ModelError(f"alpha should lie in (0, 1), got {alpha!r}")
+    if cov_dof is None:
+        return _scalar_or_array(stats.chi2.isf(alpha, n_features))
+    m = np.asarray(cov_dof, dtype=np.float64)
+    dfd = m - n_features + 1.0
+    return _scalar_or_array(stats.f.isf(alpha, n_features, dfd) * m * n_features / dfd)
