@@ -1,0 +1,258 @@
+"""Read a YAML config into :class:`Settings`, rejecting anything doubtful.
+
+The user's file is laid over the shipped ``default.yaml``; every key is then
+checked against the dataclass that holds it. A problem raises
+:class:`ConfigError` whose message names the key, what was expected and what
+was found, e.g. ``watch.settle_seconds: expected a number >= 0, found 'soon'``.
+"""
+from __future__ import annotations
+
+import dataclasses
+import re
+import types
+import typing
+from importlib import resources
+from pathlib import Path
+from typing import Any, Mapping
+
+import yaml
+
+from shoal.config.settings import SegmentCount, Settings
+
+__all__ = [
+    "ConfigError",
+    "load_config",
+    "parse_config",
+    "default_config_text",
+    "settings_to_dict",
+    "dump_settings",
+]
+
+_COLUMN_NAME = re.compile(r"^[^\x00-\x1f]{1,256}$")
+
+
+class ConfigError(ValueError):
+    """The configuration cannot be used. The message names the problem."""
+
+    exit_code = 2
+
+
+def default_config_text() -> str:
+    """The shipped default configuration, as YAML text with comments."""
+    return resources.files("shoal.config").joinpath("default.yaml").read_text("utf-8")
+
+
+def _read_yaml(text: str, source: str) -> dict:
+    try:
+        data = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        raise ConfigError(f"{source}: not valid YAML: {exc}") from exc
+    if data is None:
+        return {}
+    if not isinstance(data, dict):
+        raise ConfigError(f"{source}: expected a mapping of settings at the top level, "
+                          f"found {_describe(data)}")
+    return data
+
+
+def load_config(path: str | Path) -> Settings:
+    """Load ``path`` over the defaults. Relative folders are taken from the file's folder."""
+    path = Path(path)
+    try:
+        text = path.read_text("utf-8")
+    except FileNotFoundError as exc:
+        raise ConfigError(f"config file {str(path)!r} does not exist") from exc
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"config file {str(path)!r} cannot be read: {exc}") from exc
+    return parse_config(_read_yaml(text, str(path)), base_dir=path.resolve().parent)
+
+
+def parse_config(data: Mapping[str, Any], base_dir: str | Path = ".") -> Settings:
+    """Build settings from a mapping (as YAML gives it), laid over the defaults."""
+    if not isinstance(data, Mapping):
+        raise ConfigError(f"expected a mapping of settings, found {_describe(data)}")
+    defaults = _read_yaml(default_config_text(), "default.yaml")
+    merged = _merge(defaults, dict(data))
+    settings = _build(Settings, merged, "")
+    base = Path(base_dir).resolve()
+    folders = {name: (base / getattr(settings, name)).resolve()
+               for name in ("inbox", "outbox", "state")}
+    settings = dataclasses.replace(settings, **folders)
+    _check_whole(settings)
+    return settings
+
+
+def _merge(base: dict, over: dict) -> dict:
+    out = dict(base)
+    for key, value in over.items():
+        if isinstance(value, dict) and isinstance(out.get(key), dict) and key != "segments":
+            out[key] = _merge(out[key], value)
+        else:
+            out[key] = value
+    return out
+
+
+def _describe(value: Any) -> str:
+    if value is None:
+        return "nothing (null)"
+    if isinstance(value, bool):
+        return f"the boolean {value}"
+    if isinstance(value, (dict, list)):
+        return f"a {type(value).__name__} {value!r}"[:120]
+    return f"{value!r} ({type(value).__name__})"[:120]
+
+
+def _build(cls: type, data: Any, prefix: str):
+    """Check ``data`` against dataclass ``cls`` field by field."""
+    where = prefix.rstrip(".") or "the config"
+    if not isinstance(data, dict):
+        raise ConfigError(f"{where}: expected a mapping, found {_describe(data)}")
+    fields = {f.name: f for f in dataclasses.fields(cls)}
+    for key in data:
+        if key not in fields:
+            raise ConfigError(
+                f"{prefix}{key}: unknown setting; expected one of "
+                f"{', '.join(sorted(fields))}")
+    hints = typing.get_type_hints(cls)
+    values = {}
+    for name, fld in fields.items():
+        key = prefix + name
+        if name not in data:
+            if fld.metadata.get("required"):
+                raise ConfigError(f"{key}: required; expected {_expected(hints[name], fld)}, "
+                                  "found no such key")
+            continue
+        values[name] = _convert(data[name], hints[name], fld, key)
+    return cls(**values)
+
+
+def _expected(hint: Any, fld: dataclasses.Field) -> str:
+    meta = fld.metadata
+    if "choices" in meta:
+        return "one of " + ", ".join(repr(c) for c in meta["choices"])
+    base = {int: "an integer", float: "a number", bool: "true or false", str: "a string",
+            Path: "a folder path"}.get(hint)
+    if hint is SegmentCount:
+        return "an integer or a mapping {min: , max: }"
+    if typing.get_origin(hint) is tuple:
+        return "a list of column names" + (" (at least one)" if meta.get("required") else "")
+    if typing.get_origin(hint) is types.UnionType:
+        inner = [a for a in typing.get_args(hint) if a is not type(None)][0]
+        return _expected(inner, fld) + " or null"
+    if base is None:
+        return "a mapping"
+    bounds = []
+    if "min" in meta:
+        bounds.append((">" if meta.get("min_open") else ">=") + f" {meta['min']}")
+    if "max" in meta:
+        bounds.append(f"<= {meta['max']}")
+    return base + (" " + " and ".join(bounds) if bounds else "")
+
+
+def _convert(value: Any, hint: Any, fld: dataclasses.Field, key: str):
+    meta = fld.metadata
+
+    def bad(what: str | None = None):
+        return ConfigError(f"{key}: expected {what or _expected(hint, fld)}, "
+                           f"found {_describe(value)}")
+
+    if value is None and meta.get("required"):
+        raise ConfigError(f"{key}: required; expected {_expected(hint, fld)}, found nothing")
+    if typing.get_origin(hint) is types.UnionType:
+        if value is None:
+            return None
+        inner = [a for a in typing.get_args(hint) if a is not type(None)][0]
+        try:
+            return _convert(value, inner, fld, key)
+        except ConfigError:
+            raise bad() from None
+    if dataclasses.is_dataclass(hint):
+        if hint is SegmentCount and isinstance(value, int) and not isinstance(value, bool):
+            value = {"min": value, "max": value}
+        if not isinstance(value, dict):
+            raise bad()
+        built = _build(hint, value, key + ".")
+        if hint is SegmentCount and built.min > built.max:
+            raise ConfigError(f"{key}: expected min <= max, found min={built.min}, "
+                              f"max={built.max}")
+        return built
+    if typing.get_origin(hint) is tuple:
+        if not isinstance(value, list):
+            raise bad()
+        for item in value:
+            if not isinstance(item, str) or not _COLUMN_NAME.match(item):
+                raise bad(f"{_expected(hint, fld)}; each a non-empty string, found "
+                          f"{_describe(item)} in the list")
+        if len(set(value)) != len(value):
+            dup = sorted({v for v in value if value.count(v) > 1})
+            raise bad(f"names without repeats; {dup[0]!r} appears twice in the list")
+        if meta.get("required") and not value:
+            raise bad()
+        return tuple(value)
+    if hint is bool:
+        if not isinstance(value, bool):
+            raise bad()
+        return value
+    if hint is int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise bad()
+    elif hint is float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or value != value:
+            raise bad()
+        value = float(value)
+    elif hint is str:
+        if not isinstance(value, str):
+            raise bad()
+        if "choices" in meta and value not in meta["choices"]:
+            raise bad()
+        return value
+    elif hint is Path:
+        if not isinstance(value, str) or not value or "\x00" in value:
+            raise bad()
+        return Path(value).expanduser()
+    if "min" in meta and (value < meta["min"] or (meta.get("min_open") and value == meta["min"])):
+        raise bad()
+    if "max" in meta and value > meta["max"]:
+        raise bad()
+    return value
+
+
+def _check_whole(s: Settings) -> None:
+    """Rules that involve more than one key."""
+    both = sorted(set(s.features) & set(s.passthrough))
+    if both:
+        raise ConfigError(f"passthrough: expected columns other than the features, found "
+                          f"{both[0]!r} in both features and passthrough")
+    reserved = {"segment", "confidence", "log_density", "unusual", "model_version"}
+    clash = sorted(reserved & set(s.passthrough))
+    if clash:
+        raise ConfigError(f"passthrough: expected names other than the labels' own columns "
+                          f"{sorted(reserved)}, found {clash[0]!r}")
+    folders = {"inbox": s.inbox, "outbox": s.outbox, "state": s.state}
+    names = list(folders)
+    for i, a in enumerate(names):
+        for b in names[i + 1:]:
+            pa, pb = folders[a], folders[b]
+            if pa == pb or pa in pb.parents or pb in pa.parents:
+                raise ConfigError(f"{b}: expected a folder apart from {a} ({pa}), "
+                                  f"found {pb}")
+    if s.segments.max * 2 > s.warmup_rows:
+        raise ConfigError(f"warmup_rows: expected at least twice segments.max "
+                          f"({2 * s.segments.max}), found {s.warmup_rows}")
+
+
+def settings_to_dict(s: Any) -> Any:
+    """Plain data (YAML-able) for ``s``: the effective configuration."""
+    if isinstance(s, SegmentCount):
+        return s.min if s.fixed else {"min": s.min, "max": s.max}
+    if dataclasses.is_dataclass(s):
+        return {f.name: settings_to_dict(getattr(s, f.name)) for f in dataclasses.fields(s)}
+    if isinstance(s, tuple):
+        return [settings_to_dict(v) for v in s]
+    if isinstance(s, Path):
+        return str(s)
+    return s
+
+
+def dump_settings(s: Settings) -> str:
+    return yaml.safe_dump(settings_to_dict(s), sort_keys=False, allow_unicode=True)

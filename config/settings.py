@@ -1,0 +1,118 @@
+"""Typed settings: one frozen dataclass per section of the YAML file.
+
+The defaults here and the shipped ``default.yaml`` say the same thing (a test
+checks it). Each field's ``metadata`` carries what the loader needs to
+validate it: ``min``/``max`` bounds, ``choices``, and ``doc`` (one line).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+__all__ = [
+    "SegmentCount",
+    "WatchSettings",
+    "LimitSettings",
+    "OutputSettings",
+    "LearningSettings",
+    "Settings",
+    "COVARIANCE_TYPES",
+    "OUTPUT_FORMATS",
+    "LOG_LEVELS",
+]
+
+COVARIANCE_TYPES = ("full", "diag", "spherical")
+OUTPUT_FORMATS = ("parquet", "csv")
+LOG_LEVELS = ("debug", "info", "warning", "error")
+
+
+def _f(default, doc, **checks):
+    """A dataclass field with validation metadata."""
+    if isinstance(default, (list, dict, set)):
+        raise TypeError("mutable default")  # settings are immutable: use tuples
+    return field(default=default, metadata={"doc": doc, **checks})
+
+
+@dataclass(frozen=True)
+class SegmentCount:
+    """How many segments: fixed (``min == max``) or chosen by BIC at warm-up."""
+
+    min: int = _f(4, "fewest segments", min=1, max=1000)
+    max: int = _f(4, "most segments", min=1, max=1000)
+
+    @property
+    def fixed(self) -> bool:
+        return self.min == self.max
+
+
+@dataclass(frozen=True)
+class WatchSettings:
+    settle_seconds: float = _f(
+        1.0, "a file written in place is read once unchanged this long", min=0.0, max=3600.0)
+    rescan_seconds: float = _f(
+        5.0, "full listing of the inbox this often, for events that were missed",
+        min=0.05, max=86400.0)
+    ignore: tuple[str, ...] = _f(
+        ("*.tmp", "*.part", "*.partial", "*.swp", "*~", ".*"),
+        "glob patterns of names never read (temporary and hidden files)")
+    polling: bool = _f(False, "poll the folder instead of using OS events (network filesystems)")
+    poll_seconds: float = _f(1.0, "polling interval when polling is on", min=0.05, max=3600.0)
+    queue_size: int = _f(10000, "bound of the queue between file events and the worker",
+                         min=1, max=10_000_000)
+
+
+@dataclass(frozen=True)
+class LimitSettings:
+    max_file_bytes: int = _f(4 * 1024**3, "larger inputs are quarantined", min=1)
+    max_rows: int = _f(20_000_000, "inputs with more rows are quarantined", min=1)
+    max_columns: int = _f(10_000, "inputs with more columns are quarantined", min=1)
+
+
+@dataclass(frozen=True)
+class OutputSettings:
+    format: str = _f("parquet", "labels file format", choices=OUTPUT_FORMATS)
+    unusual_quantile: float = _f(
+        0.01, "rows whose log-density is below this quantile are marked unusual",
+        min=0.0, max=0.5)
+    keep_inputs: bool = _f(False, "leave committed inputs in the inbox instead of moving them "
+                                  "to processed/")
+
+
+@dataclass(frozen=True)
+class LearningSettings:
+    step_exponent: float = _f(
+        0.7, "stepwise EM step size decays as (row + offset)^-exponent", min=0.5, max=1.0,
+        min_open=True)
+    reg_covar: float = _f(1e-6, "added to covariance diagonals (standardised units)",
+                          min=0.0, max=1.0)
+    n_init: int = _f(5, "k-means++ restarts at warm-up", min=1, max=100)
+    chunk_rows: int = _f(65536, "rows per stepwise update inside one input", min=1,
+                         max=10_000_000)
+    checkpoints_kept: int = _f(20, "model checkpoints kept in the state store", min=1)
+
+
+@dataclass(frozen=True)
+class Settings:
+    """The whole configuration. Folders are absolute once loaded."""
+
+    features: tuple[str, ...] = _f((), "numeric columns modelled (required)", required=True)
+    inbox: Path = _f(Path("inbox"), "folder watched for drops")
+    outbox: Path = _f(Path("outbox"), "folder where labels files are written")
+    state: Path = _f(Path("state"), "folder of the state store, quarantine/ and processed/")
+    passthrough: tuple[str, ...] = _f((), "columns copied to the labels unchanged (keys, times)")
+    segments: SegmentCount = _f(SegmentCount(), "an integer, or {min, max} chosen by BIC")
+    covariance: str = _f("full", "covariance type", choices=COVARIANCE_TYPES)
+    warmup_rows: int = _f(2000, "rows buffered before the first model is fitted", min=10)
+    half_life_rows: int | None = _f(
+        None, "rows after which old data counts half (null: no forgetting)", min=1)
+    seed: int = _f(0, "seed of every random choice", min=0, max=2**32 - 1)
+    log_level: str = _f("info", "lowest level logged", choices=LOG_LEVELS)
+    watch: WatchSettings = _f(WatchSettings(), "inbox watching")
+    limits: LimitSettings = _f(LimitSettings(), "input limits")
+    output: OutputSettings = _f(OutputSettings(), "labels files")
+    learning: LearningSettings = _f(LearningSettings(), "model updates")
+
+    @property
+    def columns(self) -> tuple[str, ...]:
+        """Every column read from an input: features first, then passthrough."""
+        return self.features + tuple(c for c in self.passthrough if c not in self.features)

@@ -1,0 +1,210 @@
+"""The ``shoal`` command line. Errors become exit codes here and nowhere else.
+
+Exit codes: 0 done; 1 an input was quarantined (ingest) or a model error;
+2 usage or configuration error; 3 the state cannot be used; 130 stopped by a
+signal before finishing (ingest, label).
+"""
+from __future__ import annotations
+
+import argparse
+import contextlib
+import json
+import signal
+import sys
+import threading
+from importlib import metadata
+from pathlib import Path
+
+from shoal.config import ConfigError, Settings, dump_settings, load_config
+from shoal.core import ShoalError
+from shoal.daemon.errors import InputRejected, ServiceError, UsageError
+from shoal.daemon.layout import StateLock, prepare_folders
+from shoal.daemon.logs import log_event, setup_logging
+from shoal.daemon.pipeline import Pipeline
+from shoal.daemon.store import StateStore
+
+__all__ = ["main", "build_parser", "open_service_parts"]
+
+
+def _version() -> str:
+    try:
+        return metadata.version("shoal")
+    except metadata.PackageNotFoundError:
+        return "unknown"
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="shoal",
+        description="Keep a live Gaussian-mixture picture of a population arriving as "
+                    "Parquet/CSV drops; label every row with a stable segment.")
+    p.add_argument("--version", action="version", version=f"shoal {_version()}")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND", required=True)
+
+    def cmd(name, help_, func):
+        sp = sub.add_parser(name, help=help_, description=help_)
+        sp.set_defaults(func=func)
+        return sp
+
+    def with_config(sp):
+        sp.add_argument("-c", "--config", required=True, metavar="CONFIG",
+                        help="YAML configuration file")
+        return sp
+
+    with_config(cmd("watch", "run until SIGTERM/SIGINT: take what waits in the inbox, "
+                             "then follow new drops", _cmd_watch))
+    sp = with_config(cmd("ingest", "run the pipeline on the named files against the same "
+                                   "state, then exit (1 if any was quarantined)", _cmd_ingest))
+    sp.add_argument("files", nargs="+", metavar="FILE")
+    sp = with_config(cmd("label", "label a file with the current model, without learning",
+                         _cmd_label))
+    sp.add_argument("file", metavar="FILE")
+    sp.add_argument("--out", required=True, metavar="PATH",
+                    help="labels file to write (.csv for CSV, otherwise Parquet)")
+    sp = with_config(cmd("segments", "show the current segments", _cmd_segments))
+    sp.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    with_config(cmd("check-config", "validate the configuration and print it in full",
+                    _cmd_check_config))
+    sp = cmd("demo", "run the cold-storage warehouse scenario end to end", _cmd_demo)
+    sp.add_argument("--dir", default="demo-run", metavar="DIR",
+                    help="folder for the demo's config, inbox, outbox and state "
+                         "(default: ./demo-run)")
+    sp.add_argument("--drops", type=int, default=None, metavar="N",
+                    help="number of drops to generate")
+    return p
+
+
+@contextlib.contextmanager
+def open_service_parts(settings: Settings, *, lock: bool = True):
+    """Folders checked, state locked, store and pipeline opened; closed on exit."""
+    layout = prepare_folders(settings)
+    state_lock = StateLock(layout.lock).acquire() if lock else None
+    store = None
+    try:
+        store = StateStore(layout.db, checkpoints_kept=settings.learning.checkpoints_kept)
+        pipeline = Pipeline(settings, layout, store)
+        yield layout, store, pipeline
+    finally:
+        if store is not None:
+            store.close()
+        if state_lock is not None:
+            state_lock.release()
+
+
+@contextlib.contextmanager
+def _stop_on_signals(stop: threading.Event, wake=None):
+    """SIGTERM/SIGINT set ``stop``; a second signal exits at once (nothing committed)."""
+    def handler(signum, frame):
+        if stop.is_set():
+            raise SystemExit(130)
+        log_event("signal_received", signal=signal.Signals(signum).name)
+        stop.set()
+        if wake is not None:
+            wake()
+
+    old = {s: signal.signal(s, handler) for s in (signal.SIGTERM, signal.SIGINT)}
+    try:
+        yield
+    finally:
+        for s, h in old.items():
+            signal.signal(s, h)
+
+
+def _load(args) -> Settings:
+    settings = load_config(args.config)
+    setup_logging(settings.log_level)
+    return settings
+
+
+def _cmd_watch(args) -> int:
+    from shoal.daemon.service import Service
+
+    settings = _load(args)
+    with open_service_parts(settings) as (layout, store, pipeline):
+        service = Service(settings, layout, pipeline)
+        with _stop_on_signals(pipeline.stop, service.request_stop):
+            service.run()
+    return 0
+
+
+def _cmd_ingest(args) -> int:
+    settings = _load(args)
+    paths = [Path(f) for f in args.files]
+    for p in paths:
+        if not p.exists() and not p.is_symlink():
+            raise UsageError(f"no such file: {p}")
+    results = []
+    with open_service_parts(settings) as (layout, store, pipeline):
+        with _stop_on_signals(pipeline.stop):
+            for p in paths:
+                in_inbox = p.resolve().parent == layout.inbox
+                results.append(pipeline.process(p, in_inbox=in_inbox))
+    bad = [r for r in results if r.outcome in ("quarantined", "refused", "vanished")]
+    for r in results:
+        extra = f" ({r.reason}: {r.detail})" if r.reason else \
+            (f" ({r.detail})" if r.detail else "")
+        print(f"{r.outcome:12s} {r.name}{extra}")
+    print(f"{len(results) - len(bad)} of {len(results)} inputs committed, {len(bad)} not")
+    return 1 if bad else 0
+
+
+def _cmd_label(args) -> int:
+    settings = _load(args)
+    src, out = Path(args.file), Path(args.out)
+    if not src.exists():
+        raise UsageError(f"no such file: {src}")
+    with open_service_parts(settings, lock=False) as (layout, store, pipeline):
+        with _stop_on_signals(pipeline.stop):
+            try:
+                r = pipeline.label_only(src, out)
+            except InputRejected as exc:
+                print(f"shoal: {src} cannot be labelled: {exc}", file=sys.stderr)
+                return 1
+    print(f"labelled {r.rows} rows ({r.rows_invalid} without a segment) with model version "
+          f"{r.model_version} into {out}")
+    return 0
+
+
+def _cmd_segments(args) -> int:
+    from shoal.daemon.summary import format_segments, segment_summary
+
+    settings = _load(args)
+    with open_service_parts(settings, lock=False) as (layout, store, pipeline):
+        summary = segment_summary(store, settings)
+    print(json.dumps(summary, indent=2) if args.json else format_segments(summary))
+    return 0
+
+
+def _cmd_check_config(args) -> int:
+    settings = load_config(args.config)
+    print(f"# {args.config}: valid. Effective configuration:")
+    print(dump_settings(settings), end="")
+    return 0
+
+
+def _cmd_demo(args) -> int:
+    from shoal.daemon.demo import run_demo
+
+    return run_demo(Path(args.dir), drops=args.drops)
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)  # usage errors: argparse prints and exits 2
+    try:
+        return int(args.func(args) or 0)
+    except ConfigError as exc:
+        print(f"shoal: configuration error: {exc}", file=sys.stderr)
+        return ConfigError.exit_code
+    except ServiceError as exc:
+        print(f"shoal: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except ShoalError as exc:  # the numeric core refused: a model problem
+        print(f"shoal: model error: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,142 @@
+"""Readiness gate: decide whether a path in the inbox may be read now.
+
+A file is read only when it is complete: renamed into the inbox (a move event),
+or unchanged in size and modification time for the settle time. Parquet must
+also end with its footer magic; a settled Parquet file without it is passed on
+so that the reader quarantines it as truncated. Symlinks, FIFOs, devices and
+folders are refused without being opened; names matching an ignore pattern
+are skipped.
+"""
+from __future__ import annotations
+
+import enum
+import fnmatch
+import os
+import stat as stat_mod
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable, Iterable
+
+__all__ = ["Verdict", "Decision", "ReadinessGate", "input_kind", "PARQUET_MAGIC"]
+
+PARQUET_MAGIC = b"PAR1"
+_KINDS = ((".csv.gz", "csv.gz"), (".csv", "csv"), (".parquet", "parquet"), (".pq", "parquet"))
+
+
+def input_kind(name: str) -> str | None:
+    """``'parquet'``, ``'csv'``, ``'csv.gz'``, or None for an unsupported name."""
+    low = name.lower()
+    for suffix, kind in _KINDS:
+        if low.endswith(suffix) and len(low) > len(suffix):
+            return kind
+    return None
+
+
+class Verdict(enum.Enum):
+    READY = "ready"
+    WAIT = "wait"
+    IGNORE = "ignore"
+    REFUSE = "refuse"
+    GONE = "gone"
+
+
+@dataclass(frozen=True)
+class Decision:
+    verdict: Verdict
+    reason: str = ""
+    recheck_at: float | None = None  # monotonic time for WAIT
+    mtime_ns: int = 0
+    size: int = 0
+    inode: int = 0
+
+
+@dataclass
+class _Seen:
+    size: int
+    mtime_ns: int
+    inode: int
+    since: float
+    renamed: bool
+
+
+class ReadinessGate:
+    """Tracks what each inbox path looked like and when it last changed.
+
+    ``clock`` (monotonic seconds), ``wall`` (epoch seconds) and ``lstat`` are
+    injectable for tests.
+    """
+
+    def __init__(self, settle_seconds: float, ignore: Iterable[str] = (), *,
+                 clock: Callable[[], float] = time.monotonic,
+                 wall: Callable[[], float] = time.time,
+                 lstat: Callable[[str | os.PathLike], os.stat_result] = os.lstat):
+        self.settle = float(settle_seconds)
+        self.ignore = tuple(ignore)
+        self.clock = clock
+        self.wall = wall
+        self.lstat = lstat
+        self._seen: dict[str, _Seen] = {}
+
+    def ignored(self, name: str) -> bool:
+        return any(fnmatch.fnmatchcase(name, pattern) for pattern in self.ignore)
+
+    def note_renamed(self, path: str | os.PathLike) -> None:
+        """A move event put ``path`` into the inbox: it is complete as it stands."""
+        try:
+            st = self.lstat(path)
+        except OSError:
+            return
+        self._seen[str(path)] = _Seen(st.st_size, st.st_mtime_ns, st.st_ino, self.clock(), True)
+
+    def forget(self, path: str | os.PathLike) -> None:
+        self._seen.pop(str(path), None)
+
+    def check(self, path: str | os.PathLike) -> Decision:
+        path = str(path)
+        name = os.path.basename(path)
+        if self.ignored(name):
+            return Decision(Verdict.IGNORE, "name matches an ignore pattern")
+        try:
+            st = self.lstat(path)
+        except FileNotFoundError:
+            self.forget(path)
+            return Decision(Verdict.GONE, "no longer exists")
+        mode = st.st_mode
+        if not stat_mod.S_ISREG(mode):
+            kind = ("symlink" if stat_mod.S_ISLNK(mode) else "folder" if stat_mod.S_ISDIR(mode)
+                    else "fifo" if stat_mod.S_ISFIFO(mode) else "socket"
+                    if stat_mod.S_ISSOCK(mode) else "device")
+            self.forget(path)
+            return Decision(Verdict.REFUSE, f"not a regular file ({kind})", inode=st.st_ino)
+        now = self.clock()
+        seen = self._seen.get(path)
+        same = (seen is not None and seen.size == st.st_size and seen.mtime_ns == st.st_mtime_ns
+                and seen.inode == st.st_ino)
+        if not same:
+            seen = _Seen(st.st_size, st.st_mtime_ns, st.st_ino, now, renamed=False)
+            self._seen[path] = seen
+        # Quiet for the settle time: seen unchanged that long, or not modified that long.
+        quiet_for = max(now - seen.since, self.wall() - st.st_mtime_ns / 1e9)
+        settled = quiet_for >= self.settle
+        facts = dict(mtime_ns=st.st_mtime_ns, size=st.st_size, inode=st.st_ino)
+        if not (seen.renamed or settled):
+            wait = self.settle - quiet_for
+            return Decision(Verdict.WAIT, "still changing", recheck_at=now + max(wait, 0.01),
+                            **facts)
+        if input_kind(name) == "parquet" and not settled and not _has_parquet_footer(path):
+            return Decision(Verdict.WAIT, "Parquet footer not written yet",
+                            recheck_at=now + max(self.settle - quiet_for, 0.01), **facts)
+        return Decision(Verdict.READY, "renamed in" if seen.renamed else "settled", **facts)
+
+
+def _has_parquet_footer(path: str) -> bool:
+    try:
+        fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC)
+    except OSError:
+        return False
+    try:
+        size = os.fstat(fd).st_size
+        return size >= 12 and os.pread(fd, 4, size - 4) == PARQUET_MAGIC
+    finally:
+        os.close(fd)

@@ -1,0 +1,59 @@
+"""Logs: one JSON object per line on stderr.
+
+Every record has ``time``, ``level`` and ``event``; the rest are the fields
+given to :func:`log_event` (``file``, ``rows``, ``duration``,
+``model_version`` ...).
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import logging
+import sys
+from typing import Any, TextIO
+
+__all__ = ["LOGGER_NAME", "JsonLineFormatter", "setup_logging", "log_event"]
+
+LOGGER_NAME = "shoal"
+_log = logging.getLogger(LOGGER_NAME)
+
+
+class JsonLineFormatter(logging.Formatter):
+    def format(self, record: logging.LogRecord) -> str:
+        out: dict[str, Any] = {
+            "time": _dt.datetime.fromtimestamp(record.created, _dt.timezone.utc)
+            .isoformat(timespec="milliseconds"),
+            "level": record.levelname.lower(),
+            "event": getattr(record, "event", None) or record.getMessage(),
+        }
+        out.update(getattr(record, "fields", {}))
+        if record.exc_info and record.exc_info[1] is not None:
+            out["error"] = f"{type(record.exc_info[1]).__name__}: {record.exc_info[1]}"
+        return json.dumps(out, default=str, ensure_ascii=False)
+
+
+def setup_logging(level: str = "info", stream: TextIO | None = None) -> None:
+    """Send the ``shoal`` logger's records to ``stream`` (stderr) as JSON lines.
+
+    Python warnings (e.g. from the numeric core) are routed into the same log.
+    """
+    handler = logging.StreamHandler(stream or sys.stderr)
+    handler.setFormatter(JsonLineFormatter())
+    for old in list(_log.handlers):
+        _log.removeHandler(old)
+    _log.addHandler(handler)
+    _log.setLevel(level.upper())
+    _log.propagate = False
+    logging.captureWarnings(True)
+    warn_log = logging.getLogger("py.warnings")
+    for old in list(warn_log.handlers):
+        warn_log.removeHandler(old)
+    warn_log.addHandler(handler)
+    warn_log.propagate = False
+
+
+def log_event(event: str, level: int = logging.INFO, **fields: Any) -> None:
+    """Log ``event`` with ``fields``; fields that are None are left out."""
+    if _log.isEnabledFor(level):
+        clean = {k: v for k, v in fields.items() if v is not None}
+        _log.log(level, event, extra={"event": event, "fields": clean})

@@ -1,0 +1,406 @@
+"""One input, start to finish: claim, read, validate, score, learn, write, commit.
+
+:class:`Pipeline` owns the model. ``process`` takes one file through the
+design's data flow and returns what happened. Nothing is visible outside
+until the labels file is renamed into place, and the model, the ledger row
+and the segment history are committed in one transaction afterwards; the
+input is moved to ``processed/`` only after that. A stop request abandons the
+input uncommitted (it is redone on restart, identically).
+"""
+from __future__ import annotations
+
+import hashlib
+import logging
+import os
+import shutil
+import stat as stat_mod
+import threading
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, BinaryIO
+
+import numpy as np
+
+from shoal.config import Settings
+from shoal.core import (
+    Mixture,
+    ModelError,
+    NotEnoughDataError,
+    StepSchedule,
+    initialise,
+    select_n_components,
+)
+from shoal.daemon.errors import (
+    InputRefused,
+    InputRejected,
+    InputVanished,
+    Interrupted,
+    StateError,
+)
+from shoal.daemon.gate import input_kind
+from shoal.daemon.layout import Layout
+from shoal.daemon.logs import log_event
+from shoal.daemon.quarantine import free_name, quarantine
+from shoal.daemon.readers import Frame, read_input
+from shoal.daemon.store import Checkpoint, HistoryRow, LedgerEntry, StateStore
+from shoal.daemon.writer import labels_name, labels_table, write_labels
+
+__all__ = ["Pipeline", "Result", "ModelState", "open_input"]
+
+# A learned input moves the unusual-row threshold this far towards its own quantile:
+# weight n / (n + _UNUSUAL_MEMORY_ROWS), i.e. the threshold follows roughly the last
+# _UNUSUAL_MEMORY_ROWS rows.
+_UNUSUAL_MEMORY_ROWS = 50_000
+
+
+@dataclass
+class Result:
+    outcome: str          # committed | duplicate | already_done | quarantined | vanished | refused
+    name: str
+    rows: int = 0
+    rows_invalid: int = 0
+    labels: Path | None = None
+    reason: str | None = None
+    detail: str | None = None
+    model_version: int | None = None
+
+
+@dataclass
+class ModelState:
+    version: int = 0
+    mixture: Mixture | None = None
+    extra: dict[str, Any] = field(default_factory=dict)
+    warmup: np.ndarray | None = None   # buffered rows while mixture is None
+
+
+def open_input(path: Path) -> BinaryIO:
+    """Open a regular file for reading without following links or blocking on FIFOs."""
+    flags = os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC
+    try:
+        fd = os.open(path, flags)
+    except FileNotFoundError as exc:
+        raise InputVanished(f"{path.name} no longer exists") from exc
+    except OSError as exc:  # ELOOP: a symlink; ENXIO: a socket
+        raise InputRefused(f"{path.name} cannot be opened as a regular file: "
+                           f"{exc.strerror}") from exc
+    st = os.fstat(fd)
+    if not stat_mod.S_ISREG(st.st_mode):
+        os.close(fd)
+        raise InputRefused(f"{path.name} is not a regular file")
+    os.set_blocking(fd, True)
+    return os.fdopen(fd, "rb")
+
+
+class Pipeline:
+    def __init__(self, settings: Settings, layout: Layout, store: StateStore, *,
+                 stop: threading.Event | None = None, wall=time.time,
+                 monotonic=time.monotonic):
+        self.settings = settings
+        self.layout = layout
+        self.store = store
+        self.stop = stop or threading.Event()
+        self.wall = wall
+        self.monotonic = monotonic
+        self.state = self.load_state()
+
+    # -- state ---------------------------------------------------------------------
+    def load_state(self) -> ModelState:
+        version = self.store.model_version
+        cp = self.store.latest_checkpoint()
+        if cp is None:
+            return ModelState(version=version, warmup=self.store.warmup_rows())
+        if cp.version != version:
+            raise StateError(f"state store's latest checkpoint is version {cp.version} but "
+                             f"the model version is {version}")
+        try:
+            mixture = Mixture.from_state(cp.arrays, cp.meta)
+        except ModelError as exc:
+            raise StateError(f"checkpoint {cp.version} cannot be loaded: {exc}") from exc
+        if mixture.n_features != len(self.settings.features):
+            raise StateError(f"the stored model has {mixture.n_features} features but the "
+                             f"config lists {len(self.settings.features)}; use a new state "
+                             "folder for a different feature set")
+        return ModelState(version=version, mixture=mixture, extra=cp.extra)
+
+    def _check_stop(self) -> None:
+        if self.stop.is_set():
+            raise Interrupted("stop requested")
+
+    # -- one input -----------------------------------------------------------------
+    def process(self, path: Path, *, in_inbox: bool = True) -> Result:
+        path = Path(path)
+        t0 = self.monotonic()
+        seen_at = self.wall()
+        name = path.name
+        try:
+            result = self._process(path, name, in_inbox, seen_at)
+        except InputVanished as exc:
+            log_event("input_vanished", logging.WARNING, file=name, detail=str(exc))
+            return Result("vanished", name, detail=str(exc))
+        except InputRefused as exc:
+            log_event("input_refused", logging.WARNING, file=name, detail=str(exc))
+            return Result("refused", name, detail=str(exc))
+        except InputRejected as exc:
+            return self._quarantine(path, name, in_inbox, exc, seen_at, t0)
+        level = logging.INFO
+        log_event(f"input_{result.outcome}", level, file=name, rows=result.rows,
+                  rows_invalid=result.rows_invalid or None,
+                  labels=result.labels.name if result.labels else None,
+                  model_version=result.model_version,
+                  duration=round(self.monotonic() - t0, 4))
+        return result
+
+    def _process(self, path: Path, name: str, in_inbox: bool, seen_at: float) -> Result:
+        kind = input_kind(name)
+        limits = self.settings.limits
+        with open_input(path) as f:
+            size = os.fstat(f.fileno()).st_size
+            if size == 0:
+                raise InputRejected("empty", "the input is empty (0 bytes)", size=0)
+            if size > limits.max_file_bytes:
+                raise InputRejected("too_large", f"{size} bytes, more than "
+                                    f"limits.max_file_bytes={limits.max_file_bytes}", size=size)
+            if kind is None:
+                raise InputRejected("unsupported_type", "expected a name ending in .csv, "
+                                    ".csv.gz, .parquet or .pq", size=size)
+            sha = hashlib.file_digest(f, "sha256").hexdigest()
+            done = self.store.find_done(sha)
+            if any(e.name == name for e in done):
+                self._finish(path, sha, in_inbox)
+                return Result("already_done", name, model_version=self.state.version)
+            self._check_stop()
+            f.seek(0)
+            try:
+                frame = read_input(f, kind, self.settings, self.stop.is_set)
+            except InputRejected as exc:
+                exc.facts.setdefault("sha256", sha)
+                exc.facts.setdefault("size", size)
+                raise
+        entry = LedgerEntry(sha256=sha, name=name, size=size, outcome="committed",
+                            rows=frame.n_rows, rows_invalid=frame.n_invalid, seen_at=seen_at)
+        if done:
+            result = self._duplicate(frame, entry)
+        else:
+            result = self._learn(frame, entry)
+        self._finish(path, sha, in_inbox)
+        return result
+
+    def _write(self, frame: Frame, entry: LedgerEntry, scores, version: int | None,
+               unusual_below: float) -> Path:
+        fmt = self.settings.output.format
+        target = self.layout.outbox / labels_name(entry.name, entry.sha256, fmt)
+        table = labels_table(frame.passthrough, frame.valid,
+                             None if scores is None else scores.segment,
+                             None if scores is None else scores.confidence,
+                             None if scores is None else scores.log_density,
+                             unusual_below, version)
+        self._check_stop()
+        return write_labels(table, target, fmt, {"input_sha256": entry.sha256,
+                                                 "input_name": entry.name,
+                                                 "model_version": version})
+
+    def _duplicate(self, frame: Frame, entry: LedgerEntry) -> Result:
+        """Same content under another name: labels written, the model not updated."""
+        st = self.state
+        scores = st.mixture.score(frame.features[frame.valid]) if st.mixture else None
+        labels = self._write(frame, entry, scores, st.version,
+                             st.extra.get("unusual_below", -np.inf))
+        entry = _with(entry, outcome="duplicate", labels=labels.name)
+        self.store.commit_input(entry, learned=False)
+        return Result("duplicate", entry.name, frame.n_rows, frame.n_invalid, labels,
+                      model_version=st.version)
+
+    def _learn(self, frame: Frame, entry: LedgerEntry) -> Result:
+        st = self.state
+        X = frame.features[frame.valid]
+        version = st.version + 1
+        extra = dict(st.extra)
+        mixture, scores, warmup_keep, clear_warmup = st.mixture, None, None, False
+        if mixture is None:
+            mixture, scores, warmup_keep, init_extra = self._warm_up(X)
+            clear_warmup = mixture is not None
+            if mixture is not None:
+                extra.update(init_extra)
+                extra = self._born(extra, mixture, version)
+        else:
+            mixture, scores = self._learn_chunks(mixture, X)
+            extra = self._born(extra, mixture, version)
+        if scores is not None and mixture is not None:
+            extra = self._after_scoring(extra, scores, mixture)
+        unusual_below = extra.get("unusual_below", -np.inf)
+        labels = self._write(frame, entry, scores, version if scores is not None else None,
+                             unusual_below)
+        checkpoint = history = None
+        if mixture is not None:
+            arrays, meta = mixture.to_state()
+            checkpoint = Checkpoint(version, arrays, meta, extra)
+            history = _history(mixture, extra)
+        entry = _with(entry, labels=labels.name)
+        self._check_stop()
+        committed = self.store.commit_input(
+            entry, learned=True, checkpoint=checkpoint, warmup_rows=warmup_keep,
+            clear_warmup=clear_warmup, history=history or ())
+        buffered = None
+        if mixture is None:
+            parts = [a for a in (st.warmup, warmup_keep) if a is not None and len(a)]
+            buffered = np.concatenate(parts) if parts else None
+        self.state = ModelState(committed, mixture, extra, buffered)
+        return Result("committed", entry.name, frame.n_rows, frame.n_invalid, labels,
+                      model_version=committed)
+
+    # -- the model -----------------------------------------------------------------
+    def _schedule(self) -> StepSchedule:
+        s = self.settings
+        return StepSchedule(alpha=s.learning.step_exponent, i0=None,
+                            half_life_rows=s.half_life_rows)
+
+    def _warm_up(self, X: np.ndarray):
+        """Buffer rows until ``warmup_rows``; then fit the first model.
+
+        Returns ``(mixture or None, scores or None, rows to add to the buffer,
+        checkpoint extras of the new model)``.
+        """
+        s = self.settings
+        buffered = self.state.warmup if self.state.warmup is not None else np.empty((0, X.shape[1]))
+        if len(buffered) + len(X) < s.warmup_rows:
+            return None, None, X, {}
+        need = max(s.warmup_rows - len(buffered), 0)
+        Xw = np.concatenate([buffered, X[:need]])
+        self._check_stop()
+        try:
+            if s.segments.fixed:
+                mixture = initialise(Xw, n_components=s.segments.min, covariance=s.covariance,
+                                     seed=s.seed, n_init=s.learning.n_init,
+                                     schedule=self._schedule(), reg_covar=s.learning.reg_covar)
+                table = None
+            else:
+                mixture, table = select_n_components(
+                    Xw, s.segments.min, s.segments.max, covariance=s.covariance, seed=s.seed,
+                    n_init=s.learning.n_init, schedule=self._schedule(),
+                    reg_covar=s.learning.reg_covar)
+        except NotEnoughDataError as exc:
+            log_event("warmup_not_enough_data", logging.WARNING, rows=len(Xw), detail=str(exc))
+            return None, None, X, {}
+        log_event("model_initialised", rows=len(Xw), segments=int(mixture.n_components),
+                  covariance=s.covariance,
+                  bic=[{k: (float(v) if k != "n_components" else int(v)) for k, v in r.items()}
+                       for r in table] if table else None)
+        head = mixture.score(X[:need])
+        extra = {"unusual_below": float(np.quantile(mixture.score(Xw).log_density,
+                                                     s.output.unusual_quantile))}
+        mixture, tail = self._learn_chunks(mixture, X[need:])
+        return mixture, _concat(head, tail), None, extra
+
+    def _learn_chunks(self, mixture: Mixture, X: np.ndarray):
+        parts = []
+        step = self.settings.learning.chunk_rows
+        try:
+            for start in range(0, len(X), step):
+                self._check_stop()
+                mixture, scores = mixture.learn(X[start:start + step])
+                parts.append(scores)
+        except (ModelError, np.linalg.LinAlgError) as exc:
+            raise InputRejected("model_update_failed", f"the model could not learn from this "
+                                f"input: {exc}") from exc
+        return mixture, (_concat(*parts) if parts else None)
+
+    def _born(self, extra: dict, mixture: Mixture, version: int) -> dict:
+        extra = dict(extra)
+        born = dict(extra.get("segment_born", {}))
+        for sid in mixture.ids.tolist():
+            born.setdefault(str(sid), {"version": version, "time": self.wall()})
+        extra["segment_born"] = born
+        return extra
+
+    def _after_scoring(self, extra: dict, scores, mixture: Mixture) -> dict:
+        extra = dict(extra)
+        counts = dict(extra.get("segment_rows", {}))
+        ids, n = np.unique(scores.segment, return_counts=True)
+        for sid, k in zip(ids.tolist(), n.tolist()):
+            counts[str(sid)] = counts.get(str(sid), 0) + int(k)
+        extra["segment_rows"] = counts
+        q = self.settings.output.unusual_quantile
+        if len(scores.log_density) and "unusual_below" in extra:
+            w = len(scores.log_density) / (len(scores.log_density) + _UNUSUAL_MEMORY_ROWS)
+            here = float(np.quantile(scores.log_density, q))
+            extra["unusual_below"] = float(extra["unusual_below"] +
+                                           w * (here - extra["unusual_below"]))
+        return extra
+
+    # -- endings -------------------------------------------------------------------
+    def _finish(self, path: Path, sha: str, in_inbox: bool) -> None:
+        if not in_inbox or self.settings.output.keep_inputs:
+            return
+        target = free_name(self.layout.processed, path.name)
+        try:
+            os.rename(path, target)
+        except FileNotFoundError:
+            pass
+        except OSError:
+            shutil.move(str(path), str(target))
+
+    def _quarantine(self, path: Path, name: str, in_inbox: bool, exc: InputRejected,
+                    seen_at: float, t0: float) -> Result:
+        now = self.wall()
+        facts = {k: v for k, v in exc.facts.items()}
+        sidecar = quarantine(path, self.layout.quarantine, exc.reason, exc.detail,
+                             move=in_inbox, now=now, facts=facts)
+        self.store.record_quarantine(LedgerEntry(
+            sha256=facts.get("sha256"), name=name, size=int(facts.get("size", 0) or 0),
+            outcome="quarantined", reason=f"{exc.reason}: {exc.detail}", seen_at=seen_at,
+            finished_at=now))
+        log_event("input_quarantined", logging.WARNING, file=name, reason=exc.reason,
+                  detail=exc.detail, sidecar=sidecar.name,
+                  duration=round(self.monotonic() - t0, 4))
+        return Result("quarantined", name, reason=exc.reason, detail=exc.detail)
+
+    # -- label only ----------------------------------------------------------------
+    def label_only(self, path: Path, out: Path) -> Result:
+        """Label ``path`` with the current model into ``out``; no learning, no commit."""
+        st = self.state
+        if st.mixture is None:
+            raise StateError("no model yet: the warm-up has not finished "
+                             f"({0 if st.warmup is None else len(st.warmup)} of "
+                             f"{self.settings.warmup_rows} rows buffered)")
+        kind = input_kind(path.name)
+        if kind is None:
+            raise InputRejected("unsupported_type", "expected a name ending in .csv, .csv.gz, "
+                                ".parquet or .pq")
+        with open_input(path) as f:
+            sha = hashlib.file_digest(f, "sha256").hexdigest()
+            f.seek(0)
+            frame = read_input(f, kind, self.settings, self.stop.is_set)
+        scores = st.mixture.score(frame.features[frame.valid])
+        fmt = "csv" if out.name.lower().endswith(".csv") else "parquet"
+        table = labels_table(frame.passthrough, frame.valid, scores.segment, scores.confidence,
+                             scores.log_density, st.extra.get("unusual_below", -np.inf),
+                             st.version)
+        write_labels(table, out, fmt, {"input_sha256": sha, "input_name": path.name,
+                                       "model_version": st.version})
+        return Result("labelled", path.name, frame.n_rows, frame.n_invalid, out,
+                      model_version=st.version)
+
+
+def _with(entry: LedgerEntry, **changes) -> LedgerEntry:
+    from dataclasses import replace
+    return replace(entry, **changes)
+
+
+def _concat(*parts):
+    parts = [p for p in parts if p is not None]
+    if len(parts) == 1:
+        return parts[0]
+    first = parts[0]
+    return type(first)(**{name: np.concatenate([getattr(p, name) for p in parts])
+                          for name in first.__dataclass_fields__})
+
+
+def _history(mixture: Mixture, extra: dict) -> list[HistoryRow]:
+    means = mixture.data_means()
+    stds = mixture.data_stds()
+    counts = extra.get("segment_rows", {})
+    return [HistoryRow(segment=int(sid), weight=float(mixture.weights[k]),
+                       rows=int(counts.get(str(int(sid)), 0)), mean=means[k].tolist(),
+                       spread=stds[k].tolist())
+            for k, sid in enumerate(mixture.ids.tolist())]

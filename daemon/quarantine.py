@@ -1,0 +1,64 @@
+"""Quarantine: move a bad input aside with a sidecar JSON saying why.
+
+The sidecar (``<name>.json`` beside the moved file in ``state/quarantine/``)
+gives the reason code, the detail (line, column, limit ...), the original
+name and the time. Inputs given on the command line (not in the inbox) are
+left where they are; only the sidecar is written.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import os
+import shutil
+from pathlib import Path
+from typing import Any
+
+from shoal.daemon.writer import atomic_file, fsync_dir, safe_stem
+
+__all__ = ["quarantine", "free_name"]
+
+
+def free_name(folder: Path, name: str) -> Path:
+    """``folder/name``, or ``folder/<stem>.N<suffix>`` if taken (no sidecar clash either)."""
+    if "/" in name or name in ("", ".", ".."):
+        name = safe_stem(name)
+    lower = name.lower()
+    suffix = next((s for s in (".csv.gz", ".csv", ".parquet", ".pq") if lower.endswith(s)), "")
+    stem = name[: len(name) - len(suffix)]
+    for i in range(100000):
+        candidate = folder / (name if i == 0 else f"{stem}.{i}{suffix}")
+        if not os.path.lexists(candidate) and not os.path.lexists(f"{candidate}.json"):
+            return candidate
+    raise FileExistsError(f"no free name for {name} in {folder}")
+
+
+def quarantine(path: Path, folder: Path, reason: str, detail: str, *, move: bool,
+               now: float, facts: dict[str, Any] | None = None) -> Path:
+    """Write the sidecar, then (if ``move``) move ``path`` into ``folder``.
+
+    Returns the path of the sidecar JSON.
+    """
+    name = path.name
+    target = free_name(folder, name)
+    sidecar = folder / f"{target.name}.json"
+    record = {
+        "reason": reason,
+        "detail": detail,
+        "input": name,
+        "source": str(path),
+        "moved_to": str(target) if move else None,
+        "time": _dt.datetime.fromtimestamp(now, _dt.timezone.utc).isoformat(),
+        **(facts or {}),
+    }
+    with atomic_file(sidecar, mode=0o600) as f:
+        f.write(json.dumps(record, indent=2, ensure_ascii=False, default=str).encode())
+    if move:
+        try:
+            os.rename(path, target)
+        except FileNotFoundError:
+            pass  # already gone: the sidecar still tells what happened
+        except OSError:
+            shutil.move(str(path), str(target))  # another filesystem
+        fsync_dir(folder)
+    return sidecar

@@ -1,0 +1,234 @@
+"""Read an input into a feature matrix and a pass-through table, and validate it.
+
+Only the configured columns are read, as pyarrow record batches. CSV is read
+with explicit column types (features as float64, pass-through columns as
+strings), ``.csv.gz`` through gzip. Anything that makes the file unusable
+raises :class:`InputRejected` with a reason code and a detail that names the
+column or line; rows whose features are null, NaN or infinite are only
+marked (``Frame.valid``).
+"""
+from __future__ import annotations
+
+import csv
+import gzip
+import io
+import re
+from dataclasses import dataclass
+from typing import BinaryIO, Callable
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+
+from shoal.config import Settings
+from shoal.daemon.errors import InputRejected, Interrupted
+
+__all__ = ["Frame", "read_input", "BATCH_ROWS"]
+
+BATCH_ROWS = 65536
+_CSV_BLOCK = 1 << 20
+_HEADER_LIMIT = 1 << 20
+
+
+@dataclass
+class Frame:
+    features: np.ndarray      # (n_rows, n_features) float64; NaN where null
+    passthrough: pa.Table     # (n_rows,) the pass-through columns
+    valid: np.ndarray         # (n_rows,) bool: all features finite
+
+    @property
+    def n_rows(self) -> int:
+        return int(self.features.shape[0])
+
+    @property
+    def n_invalid(self) -> int:
+        return int(self.n_rows - np.count_nonzero(self.valid))
+
+
+def read_input(f: BinaryIO, kind: str, settings: Settings,
+               should_stop: Callable[[], bool] = lambda: False) -> Frame:
+    """Read an open input file of ``kind`` (``parquet``/``csv``/``csv.gz``)."""
+    if kind == "parquet":
+        batches, schema = _parquet_batches(f, settings)
+    elif kind in ("csv", "csv.gz"):
+        stream = gzip.GzipFile(fileobj=f, mode="rb") if kind == "csv.gz" else f
+        batches, schema = _csv_batches(stream, settings)
+    else:
+        raise InputRejected("unsupported_type", f"unsupported input type {kind!r}")
+    feats: list[np.ndarray] = []
+    passes: list[pa.RecordBatch] = []
+    n = 0
+    limit = settings.limits.max_rows
+    for batch in _guard(batches, kind):
+        if should_stop():
+            raise Interrupted("stop requested while reading")
+        n += batch.num_rows
+        if n > limit:
+            raise InputRejected("too_many_rows", f"more than limits.max_rows={limit} rows",
+                                limit=limit)
+        feats.append(_features(batch, settings.features))
+        passes.append(batch.select(list(settings.passthrough)))
+    if n == 0:
+        raise InputRejected("no_rows", "the input has no data rows")
+    features = np.concatenate(feats, axis=0)
+    pass_schema = pa.schema([schema.field(c) for c in settings.passthrough])
+    table = pa.Table.from_batches(passes, schema=pass_schema)
+    valid = np.isfinite(features).all(axis=1)
+    return Frame(features=features, passthrough=table, valid=valid)
+
+
+def _features(batch: pa.RecordBatch, names: tuple[str, ...]) -> np.ndarray:
+    cols = []
+    for name in names:
+        col = batch.column(name)
+        if not pa.types.is_floating(col.type):
+            col = col.cast(pa.float64())
+        cols.append(col.to_numpy(zero_copy_only=False).astype(np.float64, copy=False))
+    return np.column_stack(cols) if cols else np.empty((batch.num_rows, 0))
+
+
+def _guard(batches, kind: str):
+    """Re-raise reader errors met while iterating as InputRejected."""
+    it = iter(batches)
+    while True:
+        try:
+            batch = next(it)
+        except StopIteration:
+            return
+        except InputRejected:
+            raise
+        except (pa.ArrowInvalid, pa.ArrowKeyError, OSError, EOFError, ValueError) as exc:
+            raise _explain(exc, kind) from exc
+        yield batch
+
+
+# -- Parquet ---------------------------------------------------------------------
+def _parquet_batches(f: BinaryIO, settings: Settings):
+    f.seek(0, io.SEEK_END)
+    size = f.tell()
+    f.seek(0)
+    head = f.read(4)
+    f.seek(max(size - 4, 0))
+    tail = f.read(4)
+    f.seek(0)
+    if size < 12 or head != b"PAR1" or tail != b"PAR1":
+        raise InputRejected("truncated_parquet", "not a complete Parquet file (the 'PAR1' "
+                            "magic is missing at its start or end)")
+    try:
+        pf = pq.ParquetFile(f)
+    except (pa.ArrowInvalid, OSError, ValueError) as exc:
+        raise InputRejected("bad_parquet", f"Parquet metadata cannot be read: {exc}") from exc
+    schema = pf.schema_arrow
+    if len(schema.names) > settings.limits.max_columns:
+        raise InputRejected("too_many_columns", f"{len(schema.names)} columns, more than "
+                            f"limits.max_columns={settings.limits.max_columns}")
+    if pf.metadata.num_rows > settings.limits.max_rows:
+        raise InputRejected("too_many_rows", f"{pf.metadata.num_rows} rows, more than "
+                            f"limits.max_rows={settings.limits.max_rows}")
+    _check_columns(schema.names, settings)
+    for name in settings.features:
+        t = schema.field(name).type
+        if not (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)):
+            raise InputRejected("non_numeric_feature",
+                                f"feature column {name!r} has type {t}, expected a number",
+                                column=name)
+    return pf.iter_batches(batch_size=BATCH_ROWS, columns=list(settings.columns),
+                           use_threads=False), schema
+
+
+# -- CSV -------------------------------------------------------------------------
+def _csv_header(stream: BinaryIO) -> list[str]:
+    try:
+        line = stream.readline(_HEADER_LIMIT)
+    except (OSError, EOFError) as exc:
+        raise InputRejected("bad_compression", f"cannot be decompressed: {exc}") from exc
+    if not line:
+        raise InputRejected("empty", "the input is empty (no header line)")
+    try:
+        text = line.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise InputRejected("encoding", f"line 1 (header) is not UTF-8: byte "
+                            f"{line[exc.start]:#04x} at position {exc.start}", line=1) from exc
+    if not text.endswith("\n") and len(line) >= _HEADER_LIMIT:
+        raise InputRejected("bad_header", f"header line longer than {_HEADER_LIMIT} bytes")
+    return next(csv.reader([text.rstrip("\r\n")]), [])
+
+
+def _csv_batches(stream: BinaryIO, settings: Settings):
+    header = _csv_header(stream)
+    if len(header) > settings.limits.max_columns:
+        raise InputRejected("too_many_columns", f"{len(header)} columns, more than "
+                            f"limits.max_columns={settings.limits.max_columns}")
+    _check_columns(header, settings)
+    stream.seek(0)
+    types = {c: pa.float64() for c in settings.features}
+    types.update({c: pa.string() for c in settings.passthrough})
+    try:
+        reader = pacsv.open_csv(
+            stream,
+            read_options=pacsv.ReadOptions(use_threads=False, block_size=_CSV_BLOCK),
+            parse_options=pacsv.ParseOptions(newlines_in_values=False),
+            convert_options=pacsv.ConvertOptions(
+                column_types=types, include_columns=list(settings.columns),
+                strings_can_be_null=False, quoted_strings_can_be_null=False))
+    except (pa.ArrowInvalid, pa.ArrowKeyError, OSError, EOFError) as exc:
+        raise _explain(exc, "csv", header) from exc
+    return _CsvBatches(reader, header), reader.schema
+
+
+class _CsvBatches:
+    def __init__(self, reader, header):
+        self.reader, self.header = reader, header
+
+    def __iter__(self):
+        try:
+            yield from self.reader
+        except (pa.ArrowInvalid, pa.ArrowKeyError, OSError, EOFError) as exc:
+            raise _explain(exc, "csv", self.header) from exc
+
+
+def _check_columns(names: list[str], settings: Settings) -> None:
+    present = set(names)
+    for name in settings.columns:
+        if name not in present:
+            role = "feature" if name in settings.features else "passthrough"
+            shown = ", ".join(repr(n) for n in names[:20]) + (" ..." if len(names) > 20 else "")
+            raise InputRejected("missing_column",
+                                f"{role} column {name!r} is missing; the input has {shown}",
+                                column=name)
+    dupes = sorted({n for n in names if names.count(n) > 1 and n in settings.columns})
+    if dupes:
+        raise InputRejected("duplicate_column", f"column {dupes[0]!r} appears more than once",
+                            column=dupes[0])
+
+
+_ROW_WIDTH = re.compile(r"Row #(\d+): Expected (\d+) columns, got (\d+)")
+_CONVERT = re.compile(r"In CSV column #(\d+): Row #(\d+): CSV conversion error to (\w+): (.*)")
+
+
+def _explain(exc: Exception, kind: str, header: list[str] | None = None) -> InputRejected:
+    """A reader error as a reason code and a detail that names the line or column."""
+    msg = str(exc)
+    if kind.startswith("csv"):
+        m = _ROW_WIDTH.search(msg)
+        if m:
+            line, want, got = (int(g) for g in m.groups())
+            return InputRejected("bad_row", f"line {line}: expected {want} fields, found {got}",
+                                 line=line)
+        m = _CONVERT.search(msg)
+        if m:
+            idx, line, target, what = int(m.group(1)), int(m.group(2)), m.group(3), m.group(4)
+            col = header[idx] if header and idx < len(header) else f"#{idx}"
+            if "UTF8" in what:
+                return InputRejected("encoding", f"line {line}, column {col!r}: not UTF-8",
+                                     line=line, column=col)
+            return InputRejected("non_numeric_feature" if target == "double" else "bad_value",
+                                 f"line {line}, column {col!r}: {what}, expected a number",
+                                 line=line, column=col)
+        if isinstance(exc, (OSError, EOFError)) and kind == "csv.gz":
+            return InputRejected("bad_compression", f"cannot be decompressed: {msg}")
+        if "UTF8" in msg or "UTF-8" in msg:
+            return InputRejected("encoding", f"not UTF-8: {msg}")
+        return InputRejected("bad_csv", msg)
+    return InputRejected("bad_parquet", f"Parquet data cannot be read: {msg}")

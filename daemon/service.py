@@ -1,0 +1,170 @@
+"""The long-running service: watch the inbox and feed ready files to the pipeline.
+
+One worker (the thread that calls :meth:`Service.run`) owns the pipeline and
+the model; the observer thread only enqueues paths. Ready files are taken
+oldest first (modification time, then name). A full listing at start-up and
+every ``watch.rescan_seconds`` finds what events missed; the observer is
+rebuilt if its thread dies. :meth:`Service.request_stop` (from a signal
+handler) makes ``run`` return promptly, abandoning the file in progress.
+"""
+from __future__ import annotations
+
+import heapq
+import logging
+import os
+import queue
+import threading
+import time
+from pathlib import Path
+from typing import Callable
+
+from shoal.config import Settings
+from shoal.daemon.errors import Interrupted
+from shoal.daemon.gate import ReadinessGate, Verdict
+from shoal.daemon.layout import Layout
+from shoal.daemon.logs import log_event
+from shoal.daemon.pipeline import Pipeline, Result
+from shoal.daemon.watcher import InboxWatcher, scan_inbox
+
+__all__ = ["Service"]
+
+_IDLE_WAIT = 0.5
+
+
+class Service:
+    def __init__(self, settings: Settings, layout: Layout, pipeline: Pipeline, *,
+                 observer_factory: Callable[[], object] | None = None,
+                 clock: Callable[[], float] = time.monotonic,
+                 on_result: Callable[[Result], None] | None = None):
+        self.settings = settings
+        self.layout = layout
+        self.pipeline = pipeline
+        self.stop_event = pipeline.stop
+        self.clock = clock
+        self.on_result = on_result
+        w = settings.watch
+        self.gate = ReadinessGate(w.settle_seconds, w.ignore, clock=clock)
+        self.watcher = InboxWatcher(layout.inbox, w.queue_size, w.polling, w.poll_seconds,
+                                    observer_factory=observer_factory)
+        self._waiting: dict[str, float] = {}        # path -> monotonic time of next check
+        self._ready: list[tuple[int, str]] = []     # heap of (mtime_ns, path)
+        self._in_ready: set[str] = set()
+        self._settled_out: dict[str, tuple] = {}    # path -> stat key of a file left behind
+        self.counts: dict[str, int] = {}
+
+    # -- control ---------------------------------------------------------------------
+    def request_stop(self) -> None:
+        self.stop_event.set()
+        try:
+            self.watcher.events.put_nowait(("", False))  # wake the worker
+        except queue.Full:
+            pass
+
+    def run(self) -> None:
+        """Serve until a stop is requested."""
+        self.watcher.start()
+        log_event("service_started", inbox=str(self.layout.inbox),
+                  model_version=self.pipeline.state.version)
+        next_rescan = 0.0
+        try:
+            while not self.stop_event.is_set():
+                if self.watcher.ensure_alive():
+                    log_event("observer_rebuilt", logging.WARNING,
+                              rebuilds=self.watcher.rebuilds)
+                    next_rescan = 0.0
+                now = self.clock()
+                if now >= next_rescan or self.watcher.take_overflow():
+                    self.rescan()
+                    next_rescan = now + self.settings.watch.rescan_seconds
+                self._drain_events(timeout=0.0)
+                self._recheck_waiting()
+                if self._ready:
+                    self._process_next()
+                    continue
+                due = min([next_rescan, *self._waiting.values()])
+                self._drain_events(timeout=max(0.0, min(due - self.clock(), _IDLE_WAIT)))
+        except Interrupted:
+            pass
+        finally:
+            self.watcher.stop()
+            log_event("service_stopped", model_version=self.pipeline.state.version)
+
+    # -- discovery -------------------------------------------------------------------
+    def rescan(self) -> None:
+        try:
+            paths = scan_inbox(self.layout.inbox)
+        except OSError as exc:
+            log_event("inbox_unreadable", logging.ERROR, detail=str(exc))
+            return
+        for path in paths:
+            self._consider(path)
+
+    def _drain_events(self, timeout: float) -> None:
+        try:
+            path, renamed = self.watcher.events.get(timeout=timeout) if timeout > 0 else \
+                self.watcher.events.get_nowait()
+        except queue.Empty:
+            return
+        while True:
+            if path:
+                if renamed:
+                    self.gate.note_renamed(path)
+                self._consider(path)
+            try:
+                path, renamed = self.watcher.events.get_nowait()
+            except queue.Empty:
+                return
+
+    def _consider(self, path: str) -> None:
+        if path in self._in_ready:
+            return
+        d = self.gate.check(path)
+        if d.verdict is Verdict.READY:
+            key = (d.size, d.mtime_ns, d.inode)
+            if self._settled_out.get(path) == key:
+                return  # kept in the inbox after commit (output.keep_inputs)
+            self._waiting.pop(path, None)
+            heapq.heappush(self._ready, (d.mtime_ns, path))
+            self._in_ready.add(path)
+        elif d.verdict is Verdict.WAIT:
+            self._waiting[path] = d.recheck_at
+        else:
+            self._waiting.pop(path, None)
+            if d.verdict is Verdict.REFUSE and self._settled_out.get(path) != ("refused", d.inode):
+                self._settled_out[path] = ("refused", d.inode)
+                self._count("refused")
+                log_event("input_refused", logging.WARNING, file=os.path.basename(path),
+                          detail=d.reason)
+
+    def _recheck_waiting(self) -> None:
+        now = self.clock()
+        for path, at in list(self._waiting.items()):
+            if at <= now:
+                del self._waiting[path]
+                self._consider(path)
+
+    # -- work ------------------------------------------------------------------------
+    def _process_next(self) -> None:
+        _, path = heapq.heappop(self._ready)
+        self._in_ready.discard(path)
+        d = self.gate.check(path)  # it may have changed or gone since it was queued
+        if d.verdict is not Verdict.READY:
+            if d.verdict is Verdict.WAIT:
+                self._waiting[path] = d.recheck_at
+            return
+        if self._ready and (d.mtime_ns, path) > self._ready[0]:
+            heapq.heappush(self._ready, (d.mtime_ns, path))  # touched: no longer the oldest
+            self._in_ready.add(path)
+            return
+        result = self.pipeline.process(Path(path), in_inbox=True)
+        self._count(result.outcome)
+        self.gate.forget(path)
+        if os.path.lexists(path):
+            self._settled_out[path] = (d.size, d.mtime_ns, d.inode)
+        else:
+            self._settled_out.pop(path, None)
+        if self.on_result is not None:
+            self.on_result(result)
+
+    def _count(self, outcome: str) -> None:
+        self.counts[outcome] = self.counts.get(outcome, 0) + 1

@@ -1,0 +1,334 @@
+"""The state store: one SQLite database (WAL, ``synchronous=FULL``).
+
+It holds the ledger (one row per input), model checkpoints (numpy arrays as
+``.npy`` bytes, read back with ``allow_pickle=False``), the warm-up buffer,
+the segment history and the alert outbox. :meth:`StateStore.commit_input`
+writes everything one input changes in ONE transaction: the exactly-once rule
+of the design rests on it.
+"""
+from __future__ import annotations
+
+import io
+import json
+import sqlite3
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterable, Mapping
+
+import numpy as np
+
+from shoal.daemon.errors import StateError
+
+__all__ = ["StateStore", "LedgerEntry", "Checkpoint", "HistoryRow", "npy_bytes", "npy_array",
+           "SCHEMA_VERSION"]
+
+SCHEMA_VERSION = 1
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (
+    key   TEXT PRIMARY KEY,
+    value TEXT NOT NULL
+);
+CREATE TABLE IF NOT EXISTS ledger (
+    id            INTEGER PRIMARY KEY,
+    sha256        TEXT,
+    name          TEXT NOT NULL,
+    size          INTEGER NOT NULL,
+    rows          INTEGER,
+    rows_invalid  INTEGER,
+    outcome       TEXT NOT NULL CHECK (outcome IN ('committed', 'duplicate', 'quarantined')),
+    reason        TEXT,
+    labels        TEXT,
+    model_version INTEGER,
+    seen_at       REAL NOT NULL,
+    finished_at   REAL NOT NULL
+);
+CREATE INDEX IF NOT EXISTS ledger_sha256 ON ledger (sha256);
+CREATE TABLE IF NOT EXISTS checkpoints (
+    version INTEGER PRIMARY KEY,
+    created REAL NOT NULL,
+    meta    TEXT NOT NULL,
+    extra   TEXT NOT NULL
+);
+CREATE TABLE IF NOT EXISTS checkpoint_arrays (
+    version INTEGER NOT NULL REFERENCES checkpoints (version) ON DELETE CASCADE,
+    name    TEXT NOT NULL,
+    npy     BLOB NOT NULL,
+    PRIMARY KEY (version, name)
+);
+CREATE TABLE IF NOT EXISTS warmup (
+    ledger_id INTEGER PRIMARY KEY,
+    npy       BLOB NOT NULL
+);
+CREATE TABLE IF NOT EXISTS segment_history (
+    version INTEGER NOT NULL,
+    segment INTEGER NOT NULL,
+    weight  REAL NOT NULL,
+    rows    INTEGER NOT NULL,
+    mean    TEXT NOT NULL,
+    spread  TEXT NOT NULL,
+    drift   TEXT,
+    event   TEXT,
+    created REAL NOT NULL,
+    PRIMARY KEY (version, segment)
+);
+CREATE TABLE IF NOT EXISTS alert_outbox (
+    id           TEXT PRIMARY KEY,
+    version      INTEGER NOT NULL,
+    created      REAL NOT NULL,
+    payload      TEXT NOT NULL,
+    delivered_at REAL,
+    attempts     INTEGER NOT NULL DEFAULT 0
+);
+"""
+
+
+def npy_bytes(array: np.ndarray) -> bytes:
+    buf = io.BytesIO()
+    np.save(buf, np.asarray(array), allow_pickle=False)
+    return buf.getvalue()
+
+
+def npy_array(blob: bytes) -> np.ndarray:
+    return np.load(io.BytesIO(blob), allow_pickle=False)
+
+
+@dataclass(frozen=True)
+class LedgerEntry:
+    sha256: str | None
+    name: str
+    size: int
+    outcome: str
+    rows: int | None = None
+    rows_invalid: int | None = None
+    reason: str | None = None
+    labels: str | None = None
+    model_version: int | None = None
+    seen_at: float = 0.0
+    finished_at: float = 0.0
+    id: int | None = None
+
+
+@dataclass
+class Checkpoint:
+    version: int
+    arrays: dict[str, np.ndarray]
+    meta: dict[str, Any]
+    extra: dict[str, Any]
+    created: float = 0.0
+
+
+@dataclass(frozen=True)
+class HistoryRow:
+    segment: int
+    weight: float
+    rows: int
+    mean: list
+    spread: list
+    drift: Mapping[str, Any] | None = None
+    event: str | None = None
+
+
+@dataclass
+class _Commit:
+    entry: LedgerEntry
+    checkpoint: Checkpoint | None = None
+    warmup_rows: np.ndarray | None = None
+    clear_warmup: bool = False
+    history: list[HistoryRow] = field(default_factory=list)
+    alerts: list[tuple[str, Mapping[str, Any]]] = field(default_factory=list)
+
+
+class StateStore:
+    """Access to ``state.db``. One instance per process; not shared across threads."""
+
+    def __init__(self, path: Path, checkpoints_kept: int = 20, clock=time.time):
+        self.path = Path(path)
+        self.checkpoints_kept = checkpoints_kept
+        self.clock = clock
+        try:
+            self.db = sqlite3.connect(self.path, isolation_level=None, timeout=30.0)
+            self.db.execute("PRAGMA journal_mode=WAL")
+            self.db.execute("PRAGMA synchronous=FULL")
+            self.db.execute("PRAGMA foreign_keys=ON")
+            with self._transaction():
+                for statement in _SCHEMA.split(";"):
+                    if statement.strip():
+                        self.db.execute(statement)
+                found = self._meta("schema_version")
+                if found is None:
+                    self._set_meta("schema_version", str(SCHEMA_VERSION))
+                    self._set_meta("model_version", "0")
+                elif int(found) != SCHEMA_VERSION:
+                    raise StateError(f"state store {self.path} has schema version {found}; "
+                                     f"this shoal reads version {SCHEMA_VERSION}")
+        except sqlite3.DatabaseError as exc:
+            raise StateError(f"state store {self.path} cannot be used: {exc}") from exc
+
+    # -- plumbing -------------------------------------------------------------
+    def _transaction(self):
+        store = self
+
+        class _Tx:
+            def __enter__(self):
+                store.db.execute("BEGIN IMMEDIATE")
+
+            def __exit__(self, exc_type, exc, tb):
+                if exc_type is None:
+                    store.db.execute("COMMIT")
+                else:
+                    store.db.execute("ROLLBACK")
+                return False
+
+        return _Tx()
+
+    def _meta(self, key: str) -> str | None:
+        row = self.db.execute("SELECT value FROM meta WHERE key = ?", (key,)).fetchone()
+        return None if row is None else row[0]
+
+    def _set_meta(self, key: str, value: str) -> None:
+        self.db.execute("INSERT INTO meta (key, value) VALUES (?, ?) "
+                        "ON CONFLICT (key) DO UPDATE SET value = excluded.value", (key, value))
+
+    def close(self) -> None:
+        self.db.close()
+
+    # -- reads ------------------------------------------------------------------
+    @property
+    def model_version(self) -> int:
+        return int(self._meta("model_version") or 0)
+
+    def find_done(self, sha256: str) -> list[LedgerEntry]:
+        """Committed or duplicate inputs with this content, oldest first."""
+        rows = self.db.execute(
+            "SELECT * FROM ledger WHERE sha256 = ? AND outcome IN ('committed', 'duplicate') "
+            "ORDER BY id", (sha256,)).fetchall()
+        return [self._entry(r) for r in rows]
+
+    def ledger(self, outcome: str | None = None) -> list[LedgerEntry]:
+        sql = "SELECT * FROM ledger"
+        args: tuple = ()
+        if outcome is not None:
+            sql += " WHERE outcome = ?"
+            args = (outcome,)
+        return [self._entry(r) for r in self.db.execute(sql + " ORDER BY id", args)]
+
+    def _entry(self, row) -> LedgerEntry:
+        (id_, sha, name, size, rows, bad, outcome, reason, labels, version, seen,
+         finished) = row
+        return LedgerEntry(sha256=sha, name=name, size=size, rows=rows, rows_invalid=bad,
+                           outcome=outcome, reason=reason, labels=labels,
+                           model_version=version, seen_at=seen, finished_at=finished, id=id_)
+
+    def latest_checkpoint(self) -> Checkpoint | None:
+        row = self.db.execute("SELECT version FROM checkpoints ORDER BY version DESC "
+                              "LIMIT 1").fetchone()
+        return None if row is None else self.checkpoint(row[0])
+
+    def checkpoint(self, version: int) -> Checkpoint:
+        row = self.db.execute("SELECT created, meta, extra FROM checkpoints WHERE version = ?",
+                              (version,)).fetchone()
+        if row is None:
+            raise StateError(f"state store {self.path} has no checkpoint {version}")
+        try:
+            arrays = {name: npy_array(blob) for name, blob in self.db.execute(
+                "SELECT name, npy FROM checkpoint_arrays WHERE version = ? ORDER BY name",
+                (version,))}
+        except ValueError as exc:  # pickled object arrays are refused here
+            raise StateError(f"checkpoint {version} in {self.path} is unreadable: {exc}") from exc
+        return Checkpoint(version=version, arrays=arrays, meta=json.loads(row[1]),
+                          extra=json.loads(row[2]), created=row[0])
+
+    def warmup_rows(self) -> np.ndarray | None:
+        """The buffered warm-up rows in arrival order, or None when there are none."""
+        blobs = [npy_array(b) for (b,) in self.db.execute(
+            "SELECT npy FROM warmup ORDER BY ledger_id")]
+        return np.concatenate(blobs, axis=0) if blobs else None
+
+    def history(self, segment: int | None = None) -> list[dict[str, Any]]:
+        sql = ("SELECT version, segment, weight, rows, mean, spread, drift, event, created "
+               "FROM segment_history")
+        args: tuple = ()
+        if segment is not None:
+            sql += " WHERE segment = ?"
+            args = (segment,)
+        out = []
+        for v, s, w, n, mean, spread, drift, event, created in self.db.execute(
+                sql + " ORDER BY version, segment", args):
+            out.append({"version": v, "segment": s, "weight": w, "rows": n,
+                        "mean": json.loads(mean), "spread": json.loads(spread),
+                        "drift": json.loads(drift) if drift else None, "event": event,
+                        "created": created})
+        return out
+
+    def pending_alerts(self) -> list[tuple[str, dict]]:
+        return [(i, json.loads(p)) for i, p in self.db.execute(
+            "SELECT id, payload FROM alert_outbox WHERE delivered_at IS NULL ORDER BY created, id")]
+
+    # -- writes -----------------------------------------------------------------
+    def record_quarantine(self, entry: LedgerEntry) -> None:
+        with self._transaction():
+            self._insert_entry(entry)
+
+    def commit_input(self, entry: LedgerEntry, *, learned: bool,
+                     checkpoint: Checkpoint | None = None,
+                     warmup_rows: np.ndarray | None = None, clear_warmup: bool = False,
+                     history: Iterable[HistoryRow] = (),
+                     alerts: Iterable[tuple[str, Mapping[str, Any]]] = ()) -> int:
+        """Commit one input in one transaction; return the model version after it.
+
+        ``learned``: the input advances the model version by one (a new input);
+        a duplicate does not. ``checkpoint.version`` must be that new version.
+        """
+        now = self.clock()
+        with self._transaction():
+            version = self.model_version + (1 if learned else 0)
+            if checkpoint is not None and checkpoint.version != version:
+                raise StateError(f"checkpoint version {checkpoint.version} does not follow "
+                                 f"model version {version - 1}")
+            entry_id = self._insert_entry(entry, model_version=version)
+            if learned:
+                self._set_meta("model_version", str(version))
+            if warmup_rows is not None and len(warmup_rows):
+                self.db.execute("INSERT INTO warmup (ledger_id, npy) VALUES (?, ?)",
+                                (entry_id, npy_bytes(warmup_rows)))
+            if clear_warmup:
+                self.db.execute("DELETE FROM warmup")
+            if checkpoint is not None:
+                self._insert_checkpoint(checkpoint, now)
+            for h in history:
+                self.db.execute(
+                    "INSERT INTO segment_history (version, segment, weight, rows, mean, spread, "
+                    "drift, event, created) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                    (version, int(h.segment), float(h.weight), int(h.rows), json.dumps(h.mean),
+                     json.dumps(h.spread), json.dumps(h.drift) if h.drift else None, h.event,
+                     now))
+            for alert_id, payload in alerts:
+                self.db.execute("INSERT OR IGNORE INTO alert_outbox (id, version, created, "
+                                "payload) VALUES (?, ?, ?, ?)",
+                                (alert_id, version, now, json.dumps(payload, sort_keys=True)))
+        return version
+
+    def _insert_entry(self, e: LedgerEntry, model_version: int | None = None) -> int:
+        cur = self.db.execute(
+            "INSERT INTO ledger (sha256, name, size, rows, rows_invalid, outcome, reason, "
+            "labels, model_version, seen_at, finished_at) VALUES (?,?,?,?,?,?,?,?,?,?,?)",
+            (e.sha256, e.name, e.size, e.rows, e.rows_invalid, e.outcome, e.reason, e.labels,
+             model_version if model_version is not None else e.model_version,
+             e.seen_at, e.finished_at or self.clock()))
+        return int(cur.lastrowid)
+
+    def _insert_checkpoint(self, c: Checkpoint, now: float) -> None:
+        self.db.execute("INSERT INTO checkpoints (version, created, meta, extra) "
+                        "VALUES (?, ?, ?, ?)",
+                        (c.version, now, json.dumps(c.meta, sort_keys=True),
+                         json.dumps(c.extra, sort_keys=True)))
+        for name, array in sorted(c.arrays.items()):
+            if np.asarray(array).dtype == object:
+                raise StateError(f"checkpoint array {name!r} has dtype object; only numeric "
+                                 "arrays are stored")
+            self.db.execute("INSERT INTO checkpoint_arrays (version, name, npy) "
+                            "VALUES (?, ?, ?)", (c.version, name, npy_bytes(array)))
+        self.db.execute("DELETE FROM checkpoints WHERE version <= ?",
+                        (c.version - self.checkpoints_kept,))

@@ -1,0 +1,69 @@
+"""The current segments, as data and as a text table (``shoal segments``)."""
+from __future__ import annotations
+
+import time
+from typing import Any
+
+from shoal.config import Settings
+from shoal.core import Mixture
+from shoal.daemon.store import StateStore
+
+__all__ = ["segment_summary", "format_segments"]
+
+
+def segment_summary(store: StateStore, settings: Settings, now: float | None = None) -> dict:
+    """Model version, warm-up progress and one record per current segment."""
+    now = time.time() if now is None else now
+    cp = store.latest_checkpoint()
+    out: dict[str, Any] = {"model_version": store.model_version,
+                           "features": list(settings.features), "segments": []}
+    if cp is None:
+        buffered = store.warmup_rows()
+        out["warmup"] = {"rows": 0 if buffered is None else int(len(buffered)),
+                         "needed": settings.warmup_rows}
+        return out
+    m = Mixture.from_state(cp.arrays, cp.meta)
+    means, stds = m.data_means(), m.data_stds()
+    rows = cp.extra.get("segment_rows", {})
+    born = cp.extra.get("segment_born", {})
+    out["checkpoint_version"] = cp.version
+    out["rows_learned"] = int(m.n_rows)
+    for k, sid in enumerate(m.ids.tolist()):
+        b = born.get(str(sid), {})
+        out["segments"].append({
+            "id": int(sid),
+            "weight": float(m.weights[k]),
+            "rows": int(rows.get(str(sid), 0)),
+            "mean": {f: float(v) for f, v in zip(settings.features, means[k])},
+            "spread": {f: float(v) for f, v in zip(settings.features, stds[k])},
+            "born_version": b.get("version"),
+            "age_versions": None if b.get("version") is None else cp.version - b["version"],
+            "age_seconds": None if b.get("time") is None else round(now - b["time"], 1),
+        })
+    return out
+
+
+def _num(v: float) -> str:
+    return f"{v:.4g}"
+
+
+def format_segments(summary: dict) -> str:
+    """A plain-text table: one line per segment, mean ± spread per feature."""
+    lines = [f"model version {summary['model_version']}"]
+    if not summary["segments"]:
+        w = summary.get("warmup", {})
+        lines.append(f"no model yet: warm-up has {w.get('rows', 0)} of "
+                     f"{w.get('needed', '?')} rows")
+        return "\n".join(lines)
+    lines[0] += f", {summary['rows_learned']} rows learned after warm-up"
+    feats = summary["features"]
+    head = ["segment", "weight", "rows", "age"] + [f"{f} (mean±sd)" for f in feats]
+    table = [head]
+    for s in summary["segments"]:
+        age = "-" if s["age_versions"] is None else f"{s['age_versions']} inputs"
+        table.append([str(s["id"]), f"{s['weight']:.3f}", str(s["rows"]), age] +
+                     [f"{_num(s['mean'][f])}±{_num(s['spread'][f])}" for f in feats])
+    widths = [max(len(r[i]) for r in table) for i in range(len(head))]
+    for r in table:
+        lines.append("  ".join(c.rjust(w) for c, w in zip(r, widths)))
+    return "\n".join(lines)

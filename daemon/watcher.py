@@ -1,0 +1,121 @@
+"""Watch the inbox: file events onto a bounded queue, plus full listings.
+
+The event handler does nothing but put ``(path, renamed)`` on the queue; if
+the queue is full the event is dropped and ``overflowed`` is set, so that the
+worker rescans. The worker owns everything else. If the observer thread dies
+it is rebuilt by :meth:`InboxWatcher.ensure_alive`, which the worker calls on
+every turn of its loop.
+"""
+from __future__ import annotations
+
+import os
+import queue
+import threading
+from pathlib import Path
+from typing import Callable
+
+from watchdog.events import (
+    DirCreatedEvent,
+    DirModifiedEvent,
+    FileClosedEvent,
+    FileCreatedEvent,
+    FileModifiedEvent,
+    FileMovedEvent,
+    FileSystemEvent,
+    FileSystemEventHandler,
+)
+from watchdog.observers import Observer
+from watchdog.observers.polling import PollingObserver
+
+__all__ = ["EnqueueHandler", "InboxWatcher", "scan_inbox"]
+
+
+class EnqueueHandler(FileSystemEventHandler):
+    """Puts paths of interest on ``events``; never blocks, never does real work."""
+
+    def __init__(self, inbox: Path, events: "queue.Queue[tuple[str, bool]]"):
+        self.inbox = os.path.normpath(str(inbox))
+        self.events = events
+        self.overflowed = threading.Event()
+
+    def _put(self, path: str, renamed: bool) -> None:
+        if os.path.dirname(os.path.normpath(path)) != self.inbox:
+            return  # only entries directly in the inbox
+        try:
+            self.events.put_nowait((path, renamed))
+        except queue.Full:
+            self.overflowed.set()
+
+    def on_any_event(self, event: FileSystemEvent) -> None:
+        if isinstance(event, FileMovedEvent):
+            self._put(os.fsdecode(event.dest_path), True)
+        elif isinstance(event, (FileCreatedEvent, FileModifiedEvent, FileClosedEvent,
+                                DirCreatedEvent)):
+            self._put(os.fsdecode(event.src_path), False)
+        elif isinstance(event, DirModifiedEvent):
+            pass  # the inbox itself changed; the file events say how
+
+
+def scan_inbox(inbox: Path) -> list[str]:
+    """Every entry directly in the inbox (no recursion, links not followed)."""
+    with os.scandir(inbox) as it:
+        return sorted(os.path.join(inbox, e.name) for e in it)
+
+
+class InboxWatcher:
+    """Owns the observer thread and the bounded event queue.
+
+    ``observer_factory`` makes an unstarted observer (watchdog's ``Observer``,
+    ``PollingObserver``, or a test double); it is injectable.
+    """
+
+    def __init__(self, inbox: Path, queue_size: int = 10000, polling: bool = False,
+                 poll_seconds: float = 1.0,
+                 observer_factory: Callable[[], object] | None = None):
+        self.inbox = Path(inbox)
+        self.events: queue.Queue[tuple[str, bool]] = queue.Queue(maxsize=queue_size)
+        self.handler = EnqueueHandler(self.inbox, self.events)
+        if observer_factory is None:
+            if polling:
+                observer_factory = lambda: PollingObserver(timeout=poll_seconds)  # noqa: E731
+            else:
+                observer_factory = Observer
+        self._factory = observer_factory
+        self._observer = None
+        self.rebuilds = 0
+
+    def start(self) -> None:
+        observer = self._factory()
+        observer.daemon = True
+        observer.schedule(self.handler, str(self.inbox), recursive=False)
+        observer.start()
+        self._observer = observer
+
+    def alive(self) -> bool:
+        return self._observer is not None and self._observer.is_alive()
+
+    def ensure_alive(self) -> bool:
+        """Rebuild the observer if its thread died; True when it was rebuilt."""
+        if self.alive():
+            return False
+        self.stop()
+        self.start()
+        self.rebuilds += 1
+        return True
+
+    def stop(self, timeout: float = 5.0) -> None:
+        observer, self._observer = self._observer, None
+        if observer is None:
+            return
+        try:
+            observer.stop()
+            observer.join(timeout)
+        except RuntimeError:
+            pass  # never started: nothing to join
+
+    def take_overflow(self) -> bool:
+        """True once after the queue overflowed (a rescan is then due)."""
+        if self.handler.overflowed.is_set():
+            self.handler.overflowed.clear()
+            return True
+        return False

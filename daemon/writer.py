@@ -1,0 +1,120 @@
+"""Labels files: their names, their columns, and atomic writing.
+
+Atomic write: a temp file in the same folder, fsync, ``os.replace``, fsync the
+folder; on failure the temp file is removed and the error re-raised. Outputs
+are created with mode 0640. A labels file's name is derived from the input's
+name (reduced to safe characters) and its content hash, so it can never
+escape the outbox and the same input always gets the same name.
+"""
+from __future__ import annotations
+
+import contextlib
+import os
+import re
+import unicodedata
+from pathlib import Path
+from typing import BinaryIO, Iterator
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+
+__all__ = ["labels_name", "safe_stem", "labels_table", "atomic_file", "write_labels",
+           "fsync_dir", "OUTPUT_MODE"]
+
+OUTPUT_MODE = 0o640
+_UNSAFE = re.compile(r"[^A-Za-z0-9._-]+")
+_INPUT_SUFFIX = re.compile(r"(\.csv\.gz|\.csv|\.parquet|\.pq)$", re.IGNORECASE)
+
+
+def safe_stem(name: str, limit: int = 80) -> str:
+    """``name`` without folders or its input suffix, in ``[A-Za-z0-9._-]``, never hidden."""
+    base = name.replace("\\", "/").rsplit("/", 1)[-1]
+    base = _INPUT_SUFFIX.sub("", base)
+    base = unicodedata.normalize("NFKD", base).encode("ascii", "ignore").decode("ascii")
+    base = _UNSAFE.sub("_", base)
+    base = re.sub(r"\.{2,}", "_", base).strip("._-")
+    return base[:limit] or "input"
+
+
+def labels_name(input_name: str, sha256: str, fmt: str) -> str:
+    ext = "parquet" if fmt == "parquet" else "csv"
+    return f"{safe_stem(input_name)}.{sha256[:16]}.labels.{ext}"
+
+
+def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray | None,
+                 confidence: np.ndarray | None, log_density: np.ndarray | None,
+                 unusual_below: float, model_version: int | None) -> pa.Table:
+    """The labels of one input, one row per input row.
+
+    ``segment``/``confidence``/``log_density`` hold values for the valid rows
+    only (or are None when no model exists yet); invalid rows get nulls.
+    """
+    n = len(valid)
+    mask = ~valid
+
+    def spread(values, dtype):
+        full = np.zeros(n, dtype=dtype)
+        if values is not None:
+            full[valid] = values
+        return full
+
+    scored = segment is not None
+    null = mask if scored else np.ones(n, dtype=bool)
+    ld = spread(log_density, np.float64)
+    cols = {
+        "segment": pa.array(spread(segment, np.int64), pa.int64(), mask=null),
+        "confidence": pa.array(spread(confidence, np.float64), pa.float64(), mask=null),
+        "log_density": pa.array(ld, pa.float64(), mask=null),
+        "unusual": pa.array(ld < unusual_below, pa.bool_(), mask=null),
+        "model_version": pa.array(np.full(n, model_version if scored else 0, dtype=np.int64),
+                                  pa.int64(), mask=null),
+    }
+    table = passthrough
+    for name, arr in cols.items():
+        table = table.append_column(name, arr)
+    return table
+
+
+def fsync_dir(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+@contextlib.contextmanager
+def atomic_file(target: Path, mode: int = OUTPUT_MODE) -> Iterator[BinaryIO]:
+    """Write ``target`` all at once: yields a binary file object for the temp file."""
+    target = Path(target)
+    tmp = target.with_name(f".{target.name}.{os.getpid()}.tmp")
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_NOFOLLOW | os.O_CLOEXEC,
+                 mode)
+    try:
+        os.fchmod(fd, mode)
+        with os.fdopen(fd, "wb") as f:
+            yield f
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, target)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        raise
+    fsync_dir(target.parent)
+
+
+def write_labels(table: pa.Table, target: Path, fmt: str, metadata: dict[str, str]) -> Path:
+    """Write ``table`` to ``target`` atomically, ``metadata`` in the Parquet schema."""
+    if fmt == "parquet":
+        meta = dict(table.schema.metadata or {})
+        meta.update({f"shoal.{k}".encode(): str(v).encode() for k, v in metadata.items()})
+        table = table.replace_schema_metadata(meta)
+    with atomic_file(target) as f:
+        if fmt == "parquet":
+            pq.write_table(table, f, compression="zstd")
+        else:
+            pacsv.write_csv(table, f)
+    return target
