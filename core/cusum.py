@@ -31,7 +31,7 @@ known in advance). ``delta`` is the size of drop tolerated without signalling.
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, fields
 from typing import NamedTuple
 
 import numpy as np
@@ -127,6 +127,15 @@ def _check_series(values, name, one_dimensional):
     if not np.all(np.isfinite(values)):
         raise ModelError(f"{name} should be finite; drop or impute NaN and infinity first")
     return values
+
+
+def _detector_from_dict(cls, state):
+    """Rebuild a detector dataclass from its ``to_dict`` mapping, checking the keys."""
+    names = [field.name for field in fields(cls)]
+    missing = sorted(set(names) - set(state))
+    if missing:
+        raise ModelError(f"{cls.__name__} state is missing {missing}; got keys {sorted(state)}")
+    return cls(**{name: state[name] for name in names})
 
 
 def _cusum_path(z, k, h, upper, lower, reset):
@@ -243,14 +252,7 @@ class Cusum:
     @classmethod
     def from_dict(cls, state):
         """Rebuild a detector from :meth:`to_dict` output."""
-        return cls(
-            k=float(state["k"]),
-            h=float(state["h"]),
-            reset=bool(state["reset"]),
-            upper=float(state["upper"]),
-            lower=float(state["lower"]),
-            n_seen=int(state["n_seen"]),
-        )
+        return _detector_from_dict(cls, state)
 
 
 def page_hinkley_update(
@@ -361,14 +363,4 @@ class PageHinkley:
     @classmethod
     def from_dict(cls, state):
         """Rebuild a detector from :meth:`to_dict` output."""
-        level = state.get("level")
-        return cls(
-            delta=float(state["delta"]),
-            threshold=float(state["threshold"]),
-            level=None if level is None else float(level),
-            reset=bool(state["reset"]),
-            n_seen=int(state["n_seen"]),
-            mean=float(state["mean"]),
-            cumulative=float(state["cumulative"]),
-            cumulative_max=float(state["cumulative_max"]),
-        )
+        return _detector_from_dict(cls, state)
