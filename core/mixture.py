@@ -1,0 +1,463 @@
+"""The Gaussian mixture kept as sufficient statistics, scored and updated stepwise.
+
+Units. Rows arrive in the data's own units ``x``. The mixture works in standardised
+units ``z = (x - center) / scale`` with ``center`` and ``scale`` frozen at warm-up,
+so that second moments kept about that pivot do not lose precision when the data sit
+far from zero. ``log p(x) = log p(z) - sum(log scale)``; means and covariances are
+reported back in data units by :meth:`Mixture.data_means` and friends.
+
+State. Per component ``k``: ``s0[k]`` (share of mass), ``s1[k]`` (mass-weighted mean
+of z) and ``s2[k]`` (mass-weighted second moment of z: matrix, diagonal or scalar),
+all running averages over the stream. Parameters (weights, means, covariances,
+precision Cholesky factors) are derived from the statistics at every global multiple
+of ``refresh_rows`` learned rows. Rows between two refreshes are scored with the same
+parameters whatever the file boundaries, so the same stream cut into different files
+ends in the same model.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from .covariance import FAMILIES, COVARIANCE_TYPES
+from .errors import ModelError
+from .schedule import StepSchedule
+
+__all__ = ["Mixture", "Scores", "FORMAT_VERSION", "log_sum_exp"]
+
+FORMAT_VERSION = 1
+_TINY = 10.0 * np.finfo(np.float64).eps
+
+
+def log_sum_exp(a):
+    """``log(sum(exp(a), axis=1))`` for ``a`` of shape (n, K), without overflow."""
+    top = np.max(a, axis=1)
+    top = np.where(np.isfinite(top), top, 0.0)
+    return np.log(np.sum(np.exp(a - top[:, None]), axis=1)) + top
+
+
+@dataclass(frozen=True)
+class Scores:
+    """What scoring says about each row.
+
+    Attributes
+    ----------
+    log_density : ndarray of shape (n_samples,)
+        ``log p(x)`` under the mixture, in the data's own units.
+    resp : ndarray of shape (n_samples, n_components)
+        Responsibilities.
+    component : ndarray of shape (n_samples,)
+        Index of the most responsible component.
+    segment : ndarray of shape (n_samples,)
+        Stable segment id of that component.
+    confidence : ndarray of shape (n_samples,)
+        The largest responsibility.
+    """
+
+    log_density: np.ndarray
+    resp: np.ndarray
+    component: np.ndarray
+    segment: np.ndarray
+    confidence: np.ndarray
+
+
+@dataclass(frozen=True, eq=False)
+class Mixture:
+    """A Gaussian mixture held as sufficient statistics (immutable; updates return copies).
+
+    Build one with :func:`shoal.core.initialise` or :meth:`from_parameters`; restore one
+    with :meth:`from_state`.
+    """
+
+    covariance: str
+    center: np.ndarray          # (D,)
+    scale: np.ndarray           # (D,)
+    s0: np.ndarray              # (K,)
+    s1: np.ndarray              # (K, D)
+    s2: np.ndarray              # (K, D, D) | (K, D) | (K,)
+    weights: np.ndarray         # (K,)
+    means: np.ndarray           # (K, D), standardised units
+    covariances: np.ndarray     # (K, D, D) | (K, D) | (K,), standardised units
+    ids: np.ndarray             # (K,) int64
+    next_id: int
+    schedule: StepSchedule
+    n_rows: int = 0
+    sumsq: float = 1.0          # sum of squared row weights: 1 / Kish effective rows
+    reg_covar: float = 1e-6
+    prior_weight: float = 1e-3
+    resp_floor: float = 0.0
+    refresh_rows: int = 4096
+    mass_floor: float = 1e-3
+    averaging: bool = False
+    avg_s0: np.ndarray = field(default=None, repr=False)
+    avg_s1: np.ndarray = field(default=None, repr=False)
+    avg_s2: np.ndarray = field(default=None, repr=False)
+    avg_count: int = 0
+    prec_chol: np.ndarray = field(default=None, repr=False)
+    log_det: np.ndarray = field(default=None, repr=False)
+
+    def __post_init__(self):
+        if self.avg_s0 is None:
+            object.__setattr__(self, "avg_s0", np.zeros_like(self.s0))
+            object.__setattr__(self, "avg_s1", np.zeros_like(self.s1))
+            object.__setattr__(self, "avg_s2", np.zeros_like(self.s2))
+        if self.prec_chol is None:
+            family = FAMILIES[self.covariance]
+            prec_chol = family.precision_cholesky(self.covariances)
+            object.__setattr__(self, "prec_chol", prec_chol)
+            object.__setattr__(self, "log_det", family.log_det(prec_chol, self.n_features))
+
+    # ------------------------------------------------------------------ shape
+    @property
+    def n_components(self) -> int:
+        return int(self.s0.shape[0])
+
+    @property
+    def n_features(self) -> int:
+        return int(self.center.shape[0])
+
+    @property
+    def family(self):
+        return FAMILIES[self.covariance]
+
+    @property
+    def n_eff(self) -> float:
+        """Kish's effective number of rows behind the statistics."""
+        return 1.0 / self.sumsq
+
+    # ------------------------------------------------------------- build
+    @classmethod
+    def from_parameters(
+        cls,
+        weights,
+        means,
+        covariances,
+        *,
+        covariance="full",
+        center=None,
+        scale=None,
+        n_eff=1.0e4,
+        schedule=None,
+        reg_covar=1e-6,
+        prior_weight=1e-3,
+        resp_floor=0.0,
+        refresh_rows=4096,
+        mass_floor=1e-3,
+        ids=None,
+    ) -> "Mixture":
+        """A mixture with the given parameters in data units, statistics to match.
+
+        ``covariances`` has shape (K, D, D), (K, D) or (K,) for full, diag and
+        spherical. A spherical mixture needs equal ``scale`` in every feature.
+        """
+        if covariance not in FAMILIES:
+            raise ModelError(
+                f"covariance should be one of {COVARIANCE_TYPES}, got {covariance!r}"
+            )
+        weights = np.asarray(weights, dtype=np.float64)
+        means = np.asarray(means, dtype=np.float64)
+        covariances = np.asarray(covariances, dtype=np.float64)
+        if means.ndim != 2:
+            raise ModelError(f"means should have shape (K, D), got {means.shape}")
+        n_components, n_features = means.shape
+        expected = {
+            "full": (n_components, n_features, n_features),
+            "diag": (n_components, n_features),
+            "spherical": (n_components,),
+        }[covariance]
+        if weights.shape != (n_components,):
+            raise ModelError(f"weights should have shape ({n_components},), got {weights.shape}")
+        if covariances.shape != expected:
+            raise ModelError(f"covariances should have shape {expected}, got {covariances.shape}")
+        center = np.zeros(n_features) if center is None else np.asarray(center, np.float64)
+        scale = np.ones(n_features) if scale is None else np.asarray(scale, np.float64)
+        if covariance == "spherical" and not np.all(scale == scale[0]):
+            raise ModelError("a spherical mixture needs the same scale for every feature")
+        zmeans = (means - center) / scale
+        if covariance == "full":
+            zcov = covariances / np.outer(scale, scale)
+            s2 = zcov + zmeans[:, :, None] * zmeans[:, None, :]
+        elif covariance == "diag":
+            zcov = covariances / scale**2
+            s2 = zcov + zmeans**2
+        else:
+            zcov = covariances / scale[0] ** 2
+            s2 = zcov + np.mean(zmeans**2, axis=1)
+        w = weights / weights.sum()
+        sched = (schedule or StepSchedule()).resolved(int(n_eff))
+        ids = np.arange(n_components, dtype=np.int64) if ids is None else np.asarray(ids, np.int64)
+        return cls(
+            covariance=covariance, center=center, scale=scale,
+            s0=w.copy(), s1=w[:, None] * zmeans,
+            s2=w.reshape((-1,) + (1,) * (s2.ndim - 1)) * s2,
+            weights=w, means=zmeans, covariances=zcov,
+            ids=ids, next_id=int(ids.max()) + 1 if ids.size else 0, schedule=sched,
+            sumsq=1.0 / float(n_eff), reg_covar=reg_covar, prior_weight=prior_weight,
+            resp_floor=resp_floor, refresh_rows=refresh_rows, mass_floor=mass_floor,
+        )
+
+    # ---------------------------------------------------------- validation
+    def _rows(self, X) -> np.ndarray:
+        X = np.asarray(X, dtype=np.float64)
+        if X.ndim != 2 or X.shape[1] != self.n_features:
+            raise ModelError(
+                f"X should have shape (n_samples, {self.n_features}), got {X.shape}"
+            )
+        if not np.all(np.isfinite(X)):
+            raise ModelError("X contains NaN or infinite values; drop or mark those rows first")
+        return X
+
+    def standardise(self, X) -> np.ndarray:
+        """``(X - center) / scale`` for validated rows, shape (n_samples, n_features)."""
+        return (self._rows(X) - self.center) / self.scale
+
+    # --------------------------------------------------------------- scoring
+    def _log_joint(self, Z):
+        """``log w_k + log N(z | k)`` in standardised units, shape (n, K)."""
+        logp = self.family.log_gaussian(Z, self.means, self.prec_chol)
+        logp += np.log(self.weights)
+        return logp
+
+    def _scores(self, Z) -> Scores:
+        log_joint = self._log_joint(Z)
+        log_norm = log_sum_exp(log_joint)
+        resp = np.exp(log_joint - log_norm[:, None])
+        component = np.argmax(resp, axis=1)
+        return Scores(
+            log_density=log_norm - np.sum(np.log(self.scale)),
+            resp=resp,
+            component=component,
+            segment=self.ids[component],
+            confidence=resp[np.arange(resp.shape[0]), component],
+        )
+
+    def score(self, X) -> Scores:
+        """Score rows without learning from them.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+            Finite rows in the data's own units.
+        """
+        return self._scores(self.standardise(X))
+
+    def log_density(self, X) -> np.ndarray:
+        """``log p(x)`` per row, shape (n_samples,), in the data's own units."""
+        return self.score(X).log_density
+
+    def component_log_density(self, X) -> np.ndarray:
+        """``log N(x | mu_k, Sigma_k)`` in data units, shape (n_samples, n_components)."""
+        Z = self.standardise(X)
+        return self.family.log_gaussian(Z, self.means, self.prec_chol) - np.sum(
+            np.log(self.scale)
+        )
+
+    # -------------------------------------------------------------- learning
+    def _accumulate(self, Z, resp, row_w):
+        """Weighted statistics of a block: s0 (K,), s1 (K, D), s2."""
+        if self.resp_floor > 0.0:
+            resp = np.where(resp >= self.resp_floor, resp, 0.0)
+        resp_w = resp * row_w[:, None]
+        s0 = resp_w.sum(axis=0)
+        s1 = resp_w.T @ Z
+        s2 = self.family.second_moment(Z, resp_w, self.n_features)
+        return s0, s1, s2
+
+    def _derive(self, s0, s1, s2, sumsq) -> dict:
+        """Parameters from statistics (standardised units)."""
+        s0_safe = s0 + _TINY
+        cov = self.family.covariance(
+            s0_safe, s1, s2, 1.0 / sumsq, self.reg_covar, self.prior_weight
+        )
+        weights = s0_safe / s0_safe.sum()
+        prec_chol = self.family.precision_cholesky(cov)
+        return dict(
+            weights=weights,
+            means=s1 / s0_safe[:, None],
+            covariances=cov,
+            prec_chol=prec_chol,
+            log_det=self.family.log_det(prec_chol, self.n_features),
+        )
+
+    def _refresh(self, s0, s1, s2, sumsq) -> dict:
+        """New parameters at a refresh point, with Polyak-Ruppert averaging if enabled.
+
+        With averaging, the running mean of the statistics taken at every refresh point
+        since warm-up gives the parameters (Cappé & Moulines 2009, section 3: averaging
+        the iterates of a slowly decreasing step recovers the efficiency of the
+        maximum-likelihood estimate); the stepwise recursion itself goes on unchanged.
+        """
+        if not self.averaging:
+            return self._derive(s0, s1, s2, sumsq)
+        count = self.avg_count + 1
+        share = 1.0 / count
+        avg0 = self.avg_s0 + share * (s0 - self.avg_s0)
+        avg1 = self.avg_s1 + share * (s1 - self.avg_s1)
+        avg2 = self.avg_s2 + share * (s2 - self.avg_s2)
+        out = self._derive(avg0, avg1, avg2, sumsq)
+        out.update(avg_s0=avg0, avg_s1=avg1, avg_s2=avg2, avg_count=count)
+        return out
+
+    def learn(self, X) -> tuple["Mixture", Scores]:
+        """Score rows, then learn from them with stepwise EM.
+
+        Rows are taken in order. Each row is scored with the parameters in force at
+        its position in the stream (they refresh every ``refresh_rows`` learned rows)
+        and enters the statistics with the weight the step schedule gives it.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+
+        Returns
+        -------
+        mixture : Mixture
+            The updated mixture (``self`` is unchanged).
+        scores : Scores
+            The scores of every row, as labelled during learning.
+        """
+        Z = self.standardise(X)
+        n = Z.shape[0]
+        model = self
+        s0, s1, s2, sumsq = self.s0, self.s1, self.s2, self.sumsq
+        parts = []
+        pos = 0
+        while pos < n:
+            at = model.n_rows
+            take = min(n - pos, self.refresh_rows - at % self.refresh_rows)
+            Zb = Z[pos : pos + take]
+            scores = model._scores(Zb)
+            row_w, keep = self.schedule.row_weights(at, take)
+            b0, b1, b2 = model._accumulate(Zb, scores.resp, row_w)
+            s0 = keep * s0 + b0
+            s1 = keep * s1 + b1
+            s2 = keep * s2 + b2
+            sumsq = keep * keep * sumsq + float(np.dot(row_w, row_w))
+            parts.append(scores)
+            pos += take
+            changes = dict(s0=s0, s1=s1, s2=s2, sumsq=sumsq, n_rows=at + take)
+            if (at + take) % self.refresh_rows == 0:
+                changes.update(model._refresh(s0, s1, s2, sumsq))
+            model = replace(model, **changes)
+        if not parts:
+            return model, self._scores(Z)
+        return model, _concat_scores(parts)
+
+    def em_step(self, X) -> tuple["Mixture", float]:
+        """One full-batch EM iteration (step size 1) on ``X``.
+
+        Returns the mixture whose statistics are the batch averages and whose
+        parameters are derived from them, and the mean log-density per row of ``X``
+        under the parameters *before* the step (data units).
+        """
+        Z = self.standardise(X)
+        return self._em_step(Z)
+
+    def _em_step(self, Z):
+        n = Z.shape[0]
+        scores = self._scores(Z)
+        row_w = np.full(n, 1.0 / n)
+        if self.resp_floor > 0.0:
+            # Batch EM stays exact: the sparse floor is for the stepwise path only.
+            s0, s1, s2 = replace(self, resp_floor=0.0)._accumulate(Z, scores.resp, row_w)
+        else:
+            s0, s1, s2 = self._accumulate(Z, scores.resp, row_w)
+        sumsq = 1.0 / n
+        params = self._derive(s0, s1, s2, sumsq)
+        new = replace(self, s0=s0, s1=s1, s2=s2, sumsq=sumsq, **params)
+        return new, float(np.mean(scores.log_density))
+
+    # ------------------------------------------------------------- reporting
+    def data_means(self) -> np.ndarray:
+        """Component means in data units, shape (n_components, n_features)."""
+        return self.center + self.means * self.scale
+
+    def data_covariance_matrices(self) -> np.ndarray:
+        """Full covariance matrices in data units, shape (n_components, D, D)."""
+        mats = self.family.matrices(self.covariances, self.n_features)
+        return mats * np.outer(self.scale, self.scale)
+
+    def data_covariances(self) -> np.ndarray:
+        """Covariances in data units: (K, D, D) for full, else per-feature variances (K, D)."""
+        if self.covariance == "full":
+            return self.data_covariance_matrices()
+        var = self.covariances if self.covariance == "diag" else self.covariances[:, None]
+        return var * self.scale**2
+
+    def data_stds(self) -> np.ndarray:
+        """Per-feature standard deviations of each component, data units, shape (K, D)."""
+        mats = self.data_covariance_matrices()
+        return np.sqrt(np.diagonal(mats, axis1=1, axis2=2))
+
+    def low_mass(self, min_weight: float | None = None) -> np.ndarray:
+        """Stable ids of components whose weight is below ``min_weight`` (default mass_floor)."""
+        floor = self.mass_floor if min_weight is None else float(min_weight)
+        return self.ids[self.weights < floor]
+
+    def n_parameters(self) -> int:
+        """Free parameters (for BIC)."""
+        k, d = self.n_components, self.n_features
+        return (k - 1) + k * d + self.family.n_parameters(k, d)
+
+    # --------------------------------------------------------- serialisation
+    _ARRAYS = ("center", "scale", "s0", "s1", "s2", "weights", "means", "covariances", "ids",
+               "avg_s0", "avg_s1", "avg_s2")
+
+    def to_state(self) -> tuple[dict, dict]:
+        """A flat mapping of numeric arrays and a JSON-able metadata dict (no pickle)."""
+        arrays = {name: np.array(getattr(self, name)) for name in self._ARRAYS}
+        meta = {
+            "format_version": FORMAT_VERSION,
+            "covariance": self.covariance,
+            "next_id": int(self.next_id),
+            "n_rows": int(self.n_rows),
+            "sumsq": float(self.sumsq),
+            "schedule": self.schedule.to_dict(),
+            "reg_covar": float(self.reg_covar),
+            "prior_weight": float(self.prior_weight),
+            "resp_floor": float(self.resp_floor),
+            "refresh_rows": int(self.refresh_rows),
+            "mass_floor": float(self.mass_floor),
+            "averaging": bool(self.averaging),
+            "avg_count": int(self.avg_count),
+        }
+        return arrays, meta
+
+    @classmethod
+    def from_state(cls, arrays: dict, meta: dict) -> "Mixture":
+        """Rebuild a mixture saved by :meth:`to_state`; the round trip is exact."""
+        version = meta.get("format_version")
+        if version != FORMAT_VERSION:
+            raise ModelError(
+                f"model state has format_version {version!r}; this shoal reads {FORMAT_VERSION}"
+            )
+        missing = [name for name in cls._ARRAYS if name not in arrays]
+        if missing:
+            raise ModelError(f"model state lacks arrays {missing}")
+        if meta.get("covariance") not in FAMILIES:
+            raise ModelError(f"model state has unknown covariance {meta.get('covariance')!r}")
+        data = {name: np.array(arrays[name]) for name in cls._ARRAYS}
+        data["ids"] = data["ids"].astype(np.int64)
+        return cls(
+            covariance=meta["covariance"],
+            next_id=int(meta["next_id"]),
+            n_rows=int(meta["n_rows"]),
+            sumsq=float(meta["sumsq"]),
+            schedule=StepSchedule.from_dict(meta["schedule"]),
+            reg_covar=float(meta["reg_covar"]),
+            prior_weight=float(meta["prior_weight"]),
+            resp_floor=float(meta["resp_floor"]),
+            refresh_rows=int(meta["refresh_rows"]),
+            mass_floor=float(meta["mass_floor"]),
+            averaging=bool(meta["averaging"]),
+            avg_count=int(meta["avg_count"]),
+            **data,
+        )
+
+
+def _concat_scores(parts: list[Scores]) -> Scores:
+    if len(parts) == 1:
+        return parts[0]
+    return Scores(*(np.concatenate([getattr(p, f) for p in parts]) for f in Scores.__dataclass_fields__))

@@ -1,0 +1,130 @@
+"""The per-row step-size schedule of stepwise EM.
+
+Row ``i`` (counted from 1 after warm-up) moves the sufficient statistics by
+
+    S <- (1 - eta_i) S + eta_i s(x_i),    eta_i = max(floor, (i + i0) ** -alpha)
+
+(Cappé & Moulines 2009; Liang & Klein 2009). A batch of rows ``a+1 .. a+n`` is applied
+as the product of its rows' steps: the batch keeps ``prod (1 - eta_j)`` of the old
+statistics and gives row ``i`` the weight ``eta_i prod_{j>i} (1 - eta_j)``. The weight
+a row ends up with therefore does not depend on how the stream was cut into batches.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+
+import numpy as np
+
+from .errors import ModelError
+
+__all__ = ["StepSchedule", "floor_from_half_life"]
+
+
+def floor_from_half_life(half_life_rows: float) -> float:
+    """The constant step whose geometric forgetting halves a row's weight in ``half_life_rows``.
+
+    ``(1 - floor) ** half_life_rows == 0.5``.
+    """
+    return float(-np.expm1(np.log(0.5) / half_life_rows))
+
+
+@dataclass(frozen=True)
+class StepSchedule:
+    """Step sizes ``eta_i = max(floor, (i + i0) ** -alpha)``.
+
+    Parameters
+    ----------
+    alpha : float in (0.5, 1]
+        Decay exponent. 1 gives the running average; values in (0.5, 1) satisfy the
+        Robbins-Monro conditions and forget the start faster.
+    i0 : float or None
+        Offset of the row counter. ``None`` is resolved at warm-up to
+        ``n_warmup ** (1 / alpha)``, so that the first row after warm-up carries the
+        same weight as one warm-up row and early batches do not erase the warm-up fit.
+    half_life_rows : float or None
+        If set, a floor on the step so that the model keeps tracking a drifting
+        population: a row's weight halves after this many newer rows. ``None``
+        lets the steps shrink to zero, so the model converges.
+    """
+
+    alpha: float = 0.7
+    i0: float | None = None
+    half_life_rows: float | None = None
+
+    def __post_init__(self):
+        if not (0.5 < float(self.alpha) <= 1.0):
+            raise ModelError(f"alpha should lie in (0.5, 1], got {self.alpha!r}")
+        if self.i0 is not None and not (float(self.i0) >= 0.0):
+            raise ModelError(f"i0 should be >= 0 or None, got {self.i0!r}")
+        if self.half_life_rows is not None and not (float(self.half_life_rows) >= 1.0):
+            raise ModelError(
+                f"half_life_rows should be >= 1 or None, got {self.half_life_rows!r}"
+            )
+
+    @property
+    def floor(self) -> float:
+        """The smallest step (0 when the model converges)."""
+        if self.half_life_rows is None:
+            return 0.0
+        return floor_from_half_life(float(self.half_life_rows))
+
+    def resolved(self, n_warmup: int) -> "StepSchedule":
+        """A copy with ``i0`` fixed from the warm-up size when it was left open."""
+        if self.i0 is not None:
+            return self
+        return replace(self, i0=float(max(n_warmup, 1)) ** (1.0 / self.alpha))
+
+    def steps(self, start: int, n_rows: int) -> np.ndarray:
+        """``eta`` of rows ``start+1 .. start+n_rows``, shape ``(n_rows,)``."""
+        if self.i0 is None:
+            raise ModelError("the schedule's i0 is not resolved; call resolved(n_warmup)")
+        index = np.arange(start + 1, start + n_rows + 1, dtype=np.float64)
+        eta = (index + self.i0) ** (-self.alpha)
+        return np.maximum(eta, self.floor, out=eta)
+
+    def row_weights(self, start: int, n_rows: int) -> tuple[np.ndarray, float]:
+        """Weights of a batch's rows in the statistics, and what the old statistics keep.
+
+        Returns
+        -------
+        weights : ndarray of shape (n_rows,)
+            ``eta_i * prod_{j>i} (1 - eta_j)`` over the batch.
+        keep : float
+            ``prod_j (1 - eta_j)``: the factor applied to the statistics before the batch.
+        """
+        eta = self.steps(start, n_rows)
+        log_keep = np.log1p(-eta)
+        # after[i] = sum_{j>i} log(1 - eta_j), summed from the end for accuracy.
+        after = np.concatenate([np.cumsum(log_keep[::-1])[::-1][1:], [0.0]])
+        weights = eta * np.exp(after)
+        keep = float(np.exp(np.sum(log_keep)))
+        return weights, keep
+
+    def average_weights(self, start: int, n_rows: int) -> tuple[np.ndarray, float]:
+        """Weights for adding up the batch's iterates ``S_1 .. S_n`` (Polyak-Ruppert averaging).
+
+        With ``S_i = c_i S_0 + sum_{j<=i} eta_j prod_{j<l<=i} (1 - eta_l) s_j``, the sum of the
+        iterates over the batch is ``(sum_i c_i) S_0 + sum_j v_j s_j``.
+
+        Returns
+        -------
+        weights : ndarray of shape (n_rows,)
+            ``v_j = eta_j sum_{i>=j} prod_{j<l<=i} (1 - eta_l)``.
+        keep_sum : float
+            ``sum_i c_i = sum_i prod_{l<=i} (1 - eta_l)``.
+        """
+        eta = self.steps(start, n_rows)
+        L = np.cumsum(np.log1p(-eta))          # L_i = sum_{l<=i} log(1 - eta_l)
+        low = L[-1]
+        tail = np.cumsum(np.exp(L - low)[::-1])[::-1]   # sum_{i>=j} exp(L_i - low)
+        weights = eta * np.exp(low - L) * tail
+        keep_sum = float(np.sum(np.exp(L)))
+        return weights, keep_sum
+
+    def to_dict(self) -> dict:
+        return {"alpha": self.alpha, "i0": self.i0, "half_life_rows": self.half_life_rows}
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "StepSchedule":
+        return cls(alpha=data["alpha"], i0=data["i0"], half_life_rows=data["half_life_rows"])

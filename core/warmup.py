@@ -1,0 +1,273 @@
+"""Starting a mixture: k-means++ seeding, batch EM, and the choice of K by BIC.
+
+Everything is deterministic from ``seed``: the same warm-up buffer and seed give
+bit-identical mixtures.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+
+from .covariance import COVARIANCE_TYPES, FAMILIES
+from .errors import ModelError, NotEnoughDataError
+from .mixture import Mixture
+from .schedule import StepSchedule
+
+__all__ = ["kmeans_plus_plus", "batch_em", "initialise", "select_n_components", "bic"]
+
+
+def _check_rows(X, n_components) -> np.ndarray:
+    X = np.asarray(X, dtype=np.float64)
+    if X.ndim != 2 or X.shape[1] < 1:
+        raise ModelError(f"X should have shape (n_samples, n_features), got {X.shape}")
+    if not np.all(np.isfinite(X)):
+        raise ModelError("X contains NaN or infinite values; drop those rows first")
+    if not (isinstance(n_components, (int, np.integer)) and n_components >= 1):
+        raise ModelError(f"n_components should be a positive integer, got {n_components!r}")
+    if X.shape[0] < n_components:
+        raise NotEnoughDataError(
+            f"{X.shape[0]} rows cannot seed {n_components} segments; "
+            "collect more warm-up rows (warmup_rows) or ask for fewer segments"
+        )
+    distinct = np.unique(X, axis=0).shape[0]
+    if distinct < n_components:
+        raise NotEnoughDataError(
+            f"the warm-up rows hold only {distinct} distinct points, fewer than the "
+            f"{n_components} segments asked for; ask for at most {distinct} segments "
+            "or collect more varied warm-up rows"
+        )
+    return X
+
+
+def kmeans_plus_plus(Z, n_components, rng) -> np.ndarray:
+    """k-means++ seeds (Arthur & Vassilvitskii 2007).
+
+    Parameters
+    ----------
+    Z : ndarray of shape (n_samples, n_features)
+    n_components : int
+    rng : numpy.random.Generator
+
+    Returns
+    -------
+    centers : ndarray of shape (n_components, n_features)
+    """
+    n = Z.shape[0]
+    centers = np.empty((n_components, Z.shape[1]))
+    centers[0] = Z[rng.integers(n)]
+    closest = np.sum((Z - centers[0]) ** 2, axis=1)
+    for c in range(1, n_components):
+        total = closest.sum()
+        if total > 0:
+            pick = int(np.searchsorted(np.cumsum(closest), rng.random() * total))
+            pick = min(pick, n - 1)
+        else:
+            pick = int(rng.integers(n))
+        centers[c] = Z[pick]
+        np.minimum(closest, np.sum((Z - centers[c]) ** 2, axis=1), out=closest)
+    return centers
+
+
+def _lloyd(Z, centers, n_iter=20):
+    """A few Lloyd iterations; returns hard labels, shape (n_samples,)."""
+    labels = None
+    for _ in range(n_iter):
+        d2 = (
+            np.sum(Z * Z, axis=1)[:, None]
+            - 2.0 * Z @ centers.T
+            + np.sum(centers * centers, axis=1)
+        )
+        new = np.argmin(d2, axis=1)
+        if labels is not None and np.array_equal(new, labels):
+            break
+        labels = new
+        for k in range(centers.shape[0]):
+            members = Z[labels == k]
+            if members.shape[0]:
+                centers[k] = members.mean(axis=0)
+    return labels
+
+
+def _from_hard_labels(template: Mixture, Z, labels) -> Mixture:
+    """A mixture whose statistics are those of the hard partition ``labels``."""
+    n = Z.shape[0]
+    resp = np.zeros((n, template.n_components))
+    resp[np.arange(n), labels] = 1.0
+    row_w = np.full(n, 1.0 / n)
+    s0, s1, s2 = template._accumulate(Z, resp, row_w)
+    sumsq = 1.0 / n
+    from dataclasses import replace
+
+    return replace(template, s0=s0, s1=s1, s2=s2, sumsq=sumsq,
+                   **template._derive(s0, s1, s2, sumsq))
+
+
+def batch_em(X, mixture: Mixture, *, max_iter=300, tol=1e-7):
+    """Run full-batch EM from ``mixture`` until the mean log-density gains less than ``tol``.
+
+    Parameters
+    ----------
+    X : array-like of shape (n_samples, n_features)
+    mixture : Mixture
+        The starting point.
+    max_iter : int
+    tol : float
+        Stop when an iteration raises the mean log-density per row by less than this.
+
+    Returns
+    -------
+    mixture : Mixture
+    history : ndarray of shape (n_iter + 1,)
+        Mean log-density per row (data units) before each iteration and at the end.
+        EM never lowers it (up to rounding).
+    """
+    Z = mixture.standardise(X)
+    return _batch_em(Z, mixture, max_iter=max_iter, tol=tol)
+
+
+def _batch_em(Z, mixture, *, max_iter, tol):
+    history = []
+    for _ in range(max_iter):
+        mixture, before = mixture._em_step(Z)
+        history.append(before)
+        if len(history) >= 2 and history[-1] - history[-2] < tol:
+            break
+    history.append(float(np.mean(mixture._scores(Z).log_density)))
+    return mixture, np.asarray(history)
+
+
+def initialise(
+    X,
+    n_components,
+    covariance="full",
+    *,
+    seed=0,
+    n_init=5,
+    max_iter=300,
+    tol=1e-7,
+    schedule: StepSchedule | None = None,
+    reg_covar=1e-6,
+    prior_weight=1e-3,
+    resp_floor=0.0,
+    refresh_rows=4096,
+    mass_floor=1e-3,
+    averaging=None,
+) -> Mixture:
+    """Fit a mixture to a warm-up buffer: k-means++ restarts, then batch EM; best log-likelihood wins.
+
+    Parameters
+    ----------
+    X : array-like of shape (n_samples, n_features)
+        The warm-up rows, finite, in data units. Their mean and standard deviation
+        become the frozen pivot and scale of the standardised units.
+    n_components : int
+    covariance : {"full", "diag", "spherical"}
+    seed : int
+        Seeds the k-means++ restarts; the result is a deterministic function of X and seed.
+    n_init : int
+        Number of k-means++ restarts.
+    schedule : StepSchedule, optional
+        The stepwise schedule for later learning; ``i0`` is resolved from ``len(X)``.
+    reg_covar, prior_weight : float
+        Added to the diagonal; weight in rows of the identity prior on covariances.
+    resp_floor : float
+        Responsibilities below this are left out of stepwise updates (sparse EM);
+        0 keeps them all.
+    averaging : bool or None
+        Derive parameters from the running average of the statistics at refresh
+        points (Polyak-Ruppert). ``None``: on when the schedule has no floor (the
+        model converges), off when it tracks a drifting population.
+
+    Returns
+    -------
+    Mixture
+    """
+    if covariance not in FAMILIES:
+        raise ModelError(f"covariance should be one of {COVARIANCE_TYPES}, got {covariance!r}")
+    X = _check_rows(X, n_components)
+    if int(n_init) < 1:
+        raise ModelError(f"n_init should be >= 1, got {n_init!r}")
+    n, d = X.shape
+    center = X.mean(axis=0)
+    scale = X.std(axis=0)
+    constant = ~(scale > 1e-12 * np.maximum(np.abs(center), 1.0))
+    if np.any(constant):
+        warnings.warn(
+            f"features {np.flatnonzero(constant).tolist()} are constant in the warm-up "
+            "rows; they are kept with unit scale and only reg_covar as spread",
+            RuntimeWarning,
+            stacklevel=2,
+        )
+        scale = np.where(constant, 1.0, scale)
+    if covariance == "spherical":
+        scale = np.full(d, float(np.sqrt(np.mean(scale**2))))
+    Z = (X - center) / scale
+
+    template = Mixture.from_parameters(
+        np.full(n_components, 1.0 / n_components),
+        np.zeros((n_components, d)),
+        {"full": np.broadcast_to(np.eye(d), (n_components, d, d)).copy(),
+         "diag": np.ones((n_components, d)),
+         "spherical": np.ones(n_components)}[covariance],
+        covariance=covariance,
+        n_eff=n,
+        schedule=schedule,
+        reg_covar=reg_covar,
+        prior_weight=prior_weight,
+        resp_floor=resp_floor,
+        refresh_rows=refresh_rows,
+        mass_floor=mass_floor,
+    )
+    schedule = (schedule or StepSchedule()).resolved(n)
+    if averaging is None:
+        averaging = schedule.half_life_rows is None
+    rng = np.random.default_rng(seed)
+    best, best_ll = None, -np.inf
+    for _ in range(int(n_init)):
+        labels = _lloyd(Z, kmeans_plus_plus(Z, n_components, rng))
+        start = _from_hard_labels(template, Z, labels)
+        fitted, history = _batch_em(Z, start, max_iter=max_iter, tol=tol)
+        if history[-1] > best_ll or best is None:
+            best, best_ll = fitted, history[-1]
+    from dataclasses import replace
+
+    return replace(best, center=center, scale=scale, averaging=bool(averaging))
+
+
+def bic(mixture: Mixture, X) -> float:
+    """Schwarz's Bayesian information criterion, ``-2 log L + p log n`` (data units)."""
+    X = np.asarray(X, dtype=np.float64)
+    total = float(np.sum(mixture.log_density(X)))
+    return -2.0 * total + mixture.n_parameters() * np.log(X.shape[0])
+
+
+def select_n_components(X, k_min, k_max, covariance="full", **kwargs):
+    """Fit K = k_min .. k_max on the warm-up buffer and keep the lowest BIC (Schwarz 1978).
+
+    Returns
+    -------
+    mixture : Mixture
+        The chosen fit.
+    table : list of dict
+        One row per K tried: ``{"n_components", "bic", "log_likelihood"}`` (data units).
+    """
+    if not (isinstance(k_min, (int, np.integer)) and isinstance(k_max, (int, np.integer))
+            and 1 <= k_min <= k_max):
+        raise ModelError(f"need 1 <= k_min <= k_max, got k_min={k_min!r}, k_max={k_max!r}")
+    X = np.asarray(X, dtype=np.float64)
+    best, best_bic, table = None, np.inf, []
+    for k in range(int(k_min), int(k_max) + 1):
+        try:
+            fitted = initialise(X, k, covariance, **kwargs)
+        except NotEnoughDataError:
+            if best is None:
+                raise
+            break
+        score = bic(fitted, X)
+        table.append({"n_components": k, "bic": score,
+                      "log_likelihood": float(np.sum(fitted.log_density(X)))})
+        if score < best_bic:
+            best, best_bic = fitted, score
+    return best, table
