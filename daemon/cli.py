@@ -18,7 +18,7 @@ from pathlib import Path
 from shoal.config import ConfigError, Settings, dump_settings, load_config
 from shoal.core import ShoalError
 from shoal.daemon.errors import InputRejected, ServiceError, UsageError
-from shoal.daemon.layout import StateLock, prepare_folders
+from shoal.daemon.layout import StateLock, prepare_folders, remove_stale_temps
 from shoal.daemon.logs import log_event, setup_logging
 from shoal.daemon.pipeline import Pipeline
 from shoal.daemon.store import StateStore
@@ -81,6 +81,8 @@ def open_service_parts(settings: Settings, *, lock: bool = True):
     state_lock = StateLock(layout.lock).acquire() if lock else None
     store = None
     try:
+        if lock:
+            remove_stale_temps(layout)
         store = StateStore(layout.db, checkpoints_kept=settings.learning.checkpoints_kept)
         pipeline = Pipeline(settings, layout, store)
         yield layout, store, pipeline

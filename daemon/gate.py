@@ -1,7 +1,11 @@
 """Readiness gate: decide whether a path in the inbox may be read now.
 
-A file is read only when it is complete: renamed into the inbox (a move event),
-or unchanged in size and modification time for the settle time. Parquet must
+A file is read only when it is complete: renamed into the inbox, or unchanged
+in size and modification time for the settle time. A rename is known from a
+move event, or, when the move came from outside the watched folder (reported
+as a creation), from the file's change time being later than its modification
+time: a rename (or ``utime``/``chmod`` after writing) leaves that mark, while
+every write sets both times to the same instant. Parquet must
 also end with its footer magic; a settled Parquet file without it is passed on
 so that the reader quarantines it as truncated. Symlinks, FIFOs, devices and
 folders are refused without being opened; names matching an ignore pattern
@@ -120,14 +124,15 @@ class ReadinessGate:
         quiet_for = max(now - seen.since, self.wall() - st.st_mtime_ns / 1e9)
         settled = quiet_for >= self.settle
         facts = dict(mtime_ns=st.st_mtime_ns, size=st.st_size, inode=st.st_ino)
-        if not (seen.renamed or settled):
+        renamed = seen.renamed or st.st_ctime_ns > st.st_mtime_ns
+        if not (renamed or settled):
             wait = self.settle - quiet_for
             return Decision(Verdict.WAIT, "still changing", recheck_at=now + max(wait, 0.01),
                             **facts)
         if input_kind(name) == "parquet" and not settled and not _has_parquet_footer(path):
             return Decision(Verdict.WAIT, "Parquet footer not written yet",
                             recheck_at=now + max(self.settle - quiet_for, 0.01), **facts)
-        return Decision(Verdict.READY, "renamed in" if seen.renamed else "settled", **facts)
+        return Decision(Verdict.READY, "renamed in" if renamed else "settled", **facts)
 
 
 def _has_parquet_footer(path: str) -> bool:

@@ -10,7 +10,7 @@ from pathlib import Path
 from shoal.config import ConfigError, Settings
 from shoal.daemon.errors import StateError
 
-__all__ = ["Layout", "prepare_folders", "StateLock"]
+__all__ = ["Layout", "prepare_folders", "StateLock", "remove_stale_temps"]
 
 STATE_MODE = 0o700
 
@@ -100,3 +100,15 @@ class StateLock:
 
     def __exit__(self, *exc) -> None:
         self.release()
+
+
+def remove_stale_temps(layout: Layout) -> int:
+    """Remove temp files left by a killed process (call with the state lock held)."""
+    removed = 0
+    for folder, pattern in ((layout.outbox, ".*.labels.*.tmp"),
+                            (layout.quarantine, ".*.json.*.tmp")):
+        for path in folder.glob(pattern):
+            if path.is_file() and not path.is_symlink():
+                path.unlink()
+                removed += 1
+    return removed

@@ -45,11 +45,13 @@ def setup_logging(level: str = "info", stream: TextIO | None = None) -> None:
     _log.setLevel(level.upper())
     _log.propagate = False
     logging.captureWarnings(True)
-    warn_log = logging.getLogger("py.warnings")
-    for old in list(warn_log.handlers):
-        warn_log.removeHandler(old)
-    warn_log.addHandler(handler)
-    warn_log.propagate = False
+    for other in ("py.warnings", "watchdog"):  # library messages as JSON lines too
+        lib_log = logging.getLogger(other)
+        for old in list(lib_log.handlers):
+            lib_log.removeHandler(old)
+        lib_log.addHandler(handler)
+        lib_log.setLevel(logging.WARNING)
+        lib_log.propagate = False
 
 
 def log_event(event: str, level: int = logging.INFO, **fields: Any) -> None:

@@ -12,7 +12,6 @@ from __future__ import annotations
 import hashlib
 import logging
 import os
-import shutil
 import stat as stat_mod
 import threading
 import time
@@ -41,7 +40,7 @@ from shoal.daemon.errors import (
 from shoal.daemon.gate import input_kind
 from shoal.daemon.layout import Layout
 from shoal.daemon.logs import log_event
-from shoal.daemon.quarantine import free_name, quarantine
+from shoal.daemon.quarantine import move_out, quarantine
 from shoal.daemon.readers import Frame, read_input
 from shoal.daemon.store import Checkpoint, HistoryRow, LedgerEntry, StateStore
 from shoal.daemon.writer import labels_name, labels_table, write_labels
@@ -332,13 +331,7 @@ class Pipeline:
     def _finish(self, path: Path, sha: str, in_inbox: bool) -> None:
         if not in_inbox or self.settings.output.keep_inputs:
             return
-        target = free_name(self.layout.processed, path.name)
-        try:
-            os.rename(path, target)
-        except FileNotFoundError:
-            pass
-        except OSError:
-            shutil.move(str(path), str(target))
+        move_out(path, self.layout.processed)
 
     def _quarantine(self, path: Path, name: str, in_inbox: bool, exc: InputRejected,
                     seen_at: float, t0: float) -> Result:

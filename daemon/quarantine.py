@@ -16,7 +16,7 @@ from typing import Any
 
 from shoal.daemon.writer import atomic_file, fsync_dir, safe_stem
 
-__all__ = ["quarantine", "free_name"]
+__all__ = ["quarantine", "free_name", "move_out"]
 
 
 def free_name(folder: Path, name: str) -> Path:
@@ -31,6 +31,31 @@ def free_name(folder: Path, name: str) -> Path:
         if not os.path.lexists(candidate) and not os.path.lexists(f"{candidate}.json"):
             return candidate
     raise FileExistsError(f"no free name for {name} in {folder}")
+
+
+def move_out(path: Path, folder: Path, target: Path | None = None) -> Path | None:
+    """Move an inbox file into ``folder`` (free name); None if it was already gone.
+
+    A hard link then an unlink, not a rename: the inbox watcher then sees a
+    deletion, which it reports at once, instead of an unmatched move, which the
+    inotify observer holds back for half a second (delaying every event behind it).
+    """
+    target = target or free_name(folder, path.name)
+    try:
+        os.link(path, target, follow_symlinks=False)
+    except FileNotFoundError:
+        return None
+    except OSError:  # another filesystem, or links not supported
+        try:
+            shutil.move(str(path), str(target))
+        except FileNotFoundError:
+            return None
+        return target
+    try:
+        os.unlink(path)
+    except FileNotFoundError:
+        pass
+    return target
 
 
 def quarantine(path: Path, folder: Path, reason: str, detail: str, *, move: bool,
@@ -54,11 +79,6 @@ def quarantine(path: Path, folder: Path, reason: str, detail: str, *, move: bool
     with atomic_file(sidecar, mode=0o600) as f:
         f.write(json.dumps(record, indent=2, ensure_ascii=False, default=str).encode())
     if move:
-        try:
-            os.rename(path, target)
-        except FileNotFoundError:
-            pass  # already gone: the sidecar still tells what happened
-        except OSError:
-            shutil.move(str(path), str(target))  # another filesystem
+        move_out(path, folder, target)  # already gone: the sidecar still tells why
         fsync_dir(folder)
     return sidecar

@@ -148,7 +148,8 @@ class StateStore:
         self.checkpoints_kept = checkpoints_kept
         self.clock = clock
         try:
-            self.db = sqlite3.connect(self.path, isolation_level=None, timeout=30.0)
+            self.db = sqlite3.connect(self.path, isolation_level=None, timeout=30.0,
+                                      check_same_thread=False)
             self.db.execute("PRAGMA journal_mode=WAL")
             self.db.execute("PRAGMA synchronous=FULL")
             self.db.execute("PRAGMA foreign_keys=ON")

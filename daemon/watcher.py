@@ -56,6 +56,16 @@ class EnqueueHandler(FileSystemEventHandler):
             pass  # the inbox itself changed; the file events say how
 
 
+def _event_observer():
+    """The platform's event observer; on Linux one that reports a file moved in from
+    outside the inbox as a move (not as a creation), so it is read at once."""
+    try:
+        from watchdog.observers.inotify import InotifyObserver
+    except ImportError:  # not Linux
+        return Observer()
+    return InotifyObserver(generate_full_events=True)
+
+
 def scan_inbox(inbox: Path) -> list[str]:
     """Every entry directly in the inbox (no recursion, links not followed)."""
     with os.scandir(inbox) as it:
@@ -79,7 +89,7 @@ class InboxWatcher:
             if polling:
                 observer_factory = lambda: PollingObserver(timeout=poll_seconds)  # noqa: E731
             else:
-                observer_factory = Observer
+                observer_factory = _event_observer
         self._factory = observer_factory
         self._observer = None
         self.rebuilds = 0

@@ -1,0 +1,243 @@
+"""Operational drills: drive a real ``shoal watch`` process from outside.
+
+Used by ``scripts/crashtest`` (SIGKILL at random moments, then compare with a
+run that never crashed), ``scripts/bench_latency.py`` and the service tests.
+Every wait here has a timeout.
+"""
+from __future__ import annotations
+
+import json
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+import yaml
+
+__all__ = ["synthetic_table", "write_drop", "write_config", "ServiceProcess", "ledger_counts",
+           "wait_until", "crash_drill", "DrillReport", "MTIME_BASE"]
+
+# Drops get modification times from this fixed past epoch on, one second apart, so
+# that the order the service takes them in (oldest first) is the order they were made.
+MTIME_BASE = 1_600_000_000
+
+
+def synthetic_table(index: int, rows: int, seed: int) -> pa.Table:
+    """A seeded drop of invented data: key, ts and three features from three groups."""
+    rng = np.random.default_rng([seed, index])
+    centres = np.array([[0.0, 0.0, 0.0], [6.0, 0.0, 1.0], [0.0, 6.0, -1.0]])
+    group = rng.choice(3, size=rows, p=[0.5, 0.3, 0.2])
+    X = centres[group] + rng.normal(size=(rows, 3))
+    return pa.table({
+        "key": [f"d{index:04d}-{j:05d}" for j in range(rows)],
+        "ts": pa.array(np.arange(rows, dtype=np.int64) + index * rows),
+        "f1": X[:, 0], "f2": X[:, 1], "f3": X[:, 2],
+    })
+
+
+def write_drop(table: pa.Table, inbox: Path, name: str, index: int | None = None) -> Path:
+    """Write ``table`` beside the inbox and rename it in (CSV or Parquet by suffix)."""
+    staging = inbox.parent / (inbox.name + ".staging")
+    staging.mkdir(exist_ok=True)
+    tmp = staging / name
+    if name.endswith(".parquet"):
+        pq.write_table(table, tmp)
+    else:
+        pacsv.write_csv(table, tmp)
+    if index is not None:
+        os.utime(tmp, ns=((MTIME_BASE + index) * 10**9,) * 2)
+    target = inbox / name
+    os.rename(tmp, target)
+    return target
+
+
+def write_config(folder: Path, **overrides) -> Path:
+    """A config for the synthetic drops in ``folder`` (inbox/, outbox/, state/)."""
+    cfg = {"features": ["f1", "f2", "f3"], "passthrough": ["key", "ts"], "segments": 3,
+           "warmup_rows": 600, "watch": {"settle_seconds": 0.5, "rescan_seconds": 1.0},
+           "learning": {"n_init": 2}}
+    for key, value in overrides.items():
+        if isinstance(value, dict) and isinstance(cfg.get(key), dict):
+            cfg[key] = {**cfg[key], **value}
+        else:
+            cfg[key] = value
+    folder.mkdir(parents=True, exist_ok=True)
+    path = folder / "shoal.yaml"
+    path.write_text(yaml.safe_dump(cfg))
+    return path
+
+
+def wait_until(predicate: Callable[[], bool], timeout: float, what: str,
+               interval: float = 0.02) -> float:
+    """Poll ``predicate`` until true; return seconds waited; TimeoutError after ``timeout``."""
+    t0 = time.monotonic()
+    while not predicate():
+        if time.monotonic() - t0 > timeout:
+            raise TimeoutError(f"timed out after {timeout} s waiting for {what}")
+        time.sleep(interval)
+    return time.monotonic() - t0
+
+
+def ledger_counts(db: Path) -> dict[str, int]:
+    """Ledger rows per outcome, read without disturbing a running service."""
+    if not db.exists():
+        return {}
+    con = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=10.0)
+    try:
+        return dict(con.execute("SELECT outcome, COUNT(*) FROM ledger GROUP BY outcome"))
+    except sqlite3.OperationalError:
+        return {}
+    finally:
+        con.close()
+
+
+class ServiceProcess:
+    """``python -m shoal.daemon.cli watch -c CONFIG`` with its log in a file."""
+
+    def __init__(self, config: Path, log: Path, python: str = sys.executable):
+        self.config, self.log, self.python = Path(config), Path(log), python
+        self.proc: subprocess.Popen | None = None
+
+    def start(self) -> "ServiceProcess":
+        with open(self.log, "ab") as err:
+            self.proc = subprocess.Popen(
+                [self.python, "-m", "shoal.daemon.cli", "watch", "-c", str(self.config)],
+                stdout=subprocess.DEVNULL, stderr=err, stdin=subprocess.DEVNULL)
+        return self
+
+    def events(self) -> list[dict]:
+        out = []
+        if self.log.exists():
+            for line in self.log.read_text("utf-8", "replace").splitlines():
+                if line.startswith("{"):
+                    try:
+                        out.append(json.loads(line))
+                    except json.JSONDecodeError:
+                        pass  # a line cut by SIGKILL
+        return out
+
+    def wait_event(self, event: str, timeout: float, count: int = 1) -> None:
+        wait_until(lambda: sum(e.get("event") == event for e in self.events()) >= count,
+                   timeout, f"{count} '{event}' log events in {self.log}")
+
+    def alive(self) -> bool:
+        return self.proc is not None and self.proc.poll() is None
+
+    def kill(self) -> None:
+        if self.alive():
+            self.proc.send_signal(signal.SIGKILL)
+        if self.proc is not None:
+            self.proc.wait(timeout=10)
+
+    def stop(self, timeout: float = 10.0) -> tuple[int, float]:
+        """SIGTERM; return (exit code, seconds until exit)."""
+        t0 = time.monotonic()
+        if self.alive():
+            self.proc.send_signal(signal.SIGTERM)
+        try:
+            code = self.proc.wait(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            self.proc.kill()
+            self.proc.wait(timeout=10)
+            raise
+        return code, time.monotonic() - t0
+
+
+@dataclass
+class DrillReport:
+    drops: int
+    kills: int
+    committed: int
+    labels_files: int
+    labels_identical: int
+    model_identical: bool
+    model_version: int
+    reference_version: int
+    seconds: float
+
+    @property
+    def ok(self) -> bool:
+        return (self.committed == self.drops and self.labels_files == self.drops
+                and self.labels_identical == self.drops and self.model_identical
+                and self.model_version == self.reference_version)
+
+
+def _final_arrays(db: Path) -> tuple[int, dict[str, np.ndarray]]:
+    from shoal.daemon.store import StateStore
+
+    store = StateStore(db)
+    try:
+        cp = store.latest_checkpoint()
+        return store.model_version, ({} if cp is None else cp.arrays)
+    finally:
+        store.close()
+
+
+def crash_drill(workdir: Path, drops: int = 200, kills: int = 20, rows: int = 300,
+                seed: int = 0, python: str = sys.executable,
+                timeout: float = 300.0) -> DrillReport:
+    """Feed ``drops`` inputs to a service killed with SIGKILL ``kills`` times; compare.
+
+    The reference is ``shoal ingest`` of the same files in the same order, in a
+    state folder of its own.
+    """
+    t0 = time.monotonic()
+    rng = np.random.default_rng(seed)
+    names = [f"drop-{i:04d}." + ("parquet" if i % 3 == 0 else "csv") for i in range(drops)]
+    ref, run = workdir / "reference", workdir / "crashed"
+    ref_cfg, run_cfg = write_config(ref), write_config(run)
+    for folder in (ref / "inbox", run / "inbox", ref / "files"):
+        folder.mkdir(parents=True, exist_ok=True)
+    tables = [synthetic_table(i, rows, seed) for i in range(drops)]
+    files = [write_drop(t, ref / "files", n, i) for i, (t, n) in enumerate(zip(tables, names))]
+    subprocess.run([python, "-m", "shoal.daemon.cli", "ingest", "-c", str(ref_cfg),
+                    *map(str, files)], check=True, stdout=subprocess.DEVNULL,
+                   stderr=subprocess.DEVNULL, timeout=timeout)
+    kill_after = set(rng.choice(np.arange(1, drops), size=min(kills, drops - 1),
+                                replace=False).tolist())
+    service = ServiceProcess(run_cfg, run / "service.log", python).start()
+    db = run / "state" / "state.db"
+    n_kills = 0
+    try:
+        starts = 1
+        for i, (table, name) in enumerate(zip(tables, names)):
+            write_drop(table, run / "inbox", name, i)
+            time.sleep(float(rng.uniform(0.0, 0.03)))
+            if i in kill_after:
+                # Kill a running service (not one still starting) a random moment after
+                # a drop, so that kills land while inputs are being read, learned,
+                # written or committed.
+                service.wait_event("service_started", timeout, count=starts)
+                time.sleep(float(rng.uniform(0.0, 0.06)))
+                service.kill()
+                n_kills += 1
+                service.start()
+                starts += 1
+        wait_until(lambda: ledger_counts(db).get("committed", 0) >= drops, timeout,
+                   f"{drops} committed inputs in {db}", interval=0.1)
+        service.stop()
+    finally:
+        service.kill()
+    committed = ledger_counts(db).get("committed", 0)
+    outs = sorted(p.name for p in (run / "outbox").iterdir())
+    ref_outs = sorted(p.name for p in (ref / "outbox").iterdir())
+    same = sum((run / "outbox" / n).read_bytes() == (ref / "outbox" / n).read_bytes()
+               for n in set(outs) & set(ref_outs))
+    version, arrays = _final_arrays(db)
+    ref_version, ref_arrays = _final_arrays(ref / "state" / "state.db")
+    model_same = arrays.keys() == ref_arrays.keys() and all(
+        arrays[k].dtype == ref_arrays[k].dtype and arrays[k].shape == ref_arrays[k].shape
+        and arrays[k].tobytes() == ref_arrays[k].tobytes() for k in arrays)
+    return DrillReport(drops=drops, kills=n_kills, committed=committed, labels_files=len(outs),
+                       labels_identical=same, model_identical=bool(model_same and arrays),
+                       model_version=version, reference_version=ref_version,
+                       seconds=round(time.monotonic() - t0, 1))

@@ -1,0 +1,95 @@
+"""State store: pragmas, exact checkpoint round trip without pickle, one-transaction commits."""
+import io
+import sqlite3
+
+import numpy as np
+import pytest
+
+from shoal.daemon.errors import StateError
+from shoal.daemon.store import Checkpoint, HistoryRow, LedgerEntry, StateStore, npy_array
+
+
+def _entry(name="a.csv", sha="ab" * 32, outcome="committed"):
+    return LedgerEntry(sha256=sha, name=name, size=10, outcome=outcome, rows=3, rows_invalid=0,
+                       seen_at=1.0)
+
+
+def _cp(version, seed=0):
+    rng = np.random.default_rng(seed)
+    return Checkpoint(version, {"means": rng.normal(size=(3, 2)),
+                                "ids": np.arange(3, dtype=np.int64)},
+                      {"format_version": 1}, {"unusual_below": -3.5})
+
+
+def test_wal_and_full_sync(tmp_path):
+    store = StateStore(tmp_path / "s.db")
+    assert store.db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+    assert store.db.execute("PRAGMA synchronous").fetchone()[0] == 2  # 2 = FULL (SQLite docs)
+    tables = {r[0] for r in store.db.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+    assert {"ledger", "checkpoints", "segment_history", "alert_outbox", "warmup"} <= tables
+    store.close()
+
+
+def test_checkpoint_round_trip_is_exact_and_versions_follow(tmp_path):
+    store = StateStore(tmp_path / "s.db", checkpoints_kept=2)
+    for v in (1, 2, 3):
+        store.commit_input(_entry(f"{v}.csv", sha=f"{v:064x}"), learned=True, checkpoint=_cp(v, v),
+                           history=[HistoryRow(0, 0.5, 10, [1.0, 2.0], [0.1, 0.2])])
+    store.close()
+    store = StateStore(tmp_path / "s.db", checkpoints_kept=2)
+    cp = store.latest_checkpoint()
+    assert store.model_version == 3 and cp.version == 3
+    want = _cp(3, 3)
+    for k, a in want.arrays.items():
+        assert cp.arrays[k].dtype == a.dtype and cp.arrays[k].tobytes() == a.tobytes()
+    assert cp.extra == {"unusual_below": -3.5}
+    kept = [r[0] for r in store.db.execute("SELECT version FROM checkpoints ORDER BY version")]
+    assert kept == [2, 3]
+    assert [h["version"] for h in store.history(0)] == [1, 2, 3]
+    with pytest.raises(StateError, match="does not follow"):
+        store.commit_input(_entry("x.csv"), learned=True, checkpoint=_cp(9))
+
+
+def test_pickled_arrays_are_refused(tmp_path):
+    buf = io.BytesIO()
+    np.save(buf, np.array([{"a": 1}], dtype=object), allow_pickle=True)
+    with pytest.raises(ValueError):
+        npy_array(buf.getvalue())
+    store = StateStore(tmp_path / "s.db")
+    with pytest.raises(StateError, match="dtype object"):
+        store.commit_input(_entry(), learned=True,
+                           checkpoint=Checkpoint(1, {"x": np.array([None])}, {}, {}))
+    # nothing of the failed commit is visible
+    assert store.model_version == 0 and store.ledger() == [] and store.latest_checkpoint() is None
+
+
+def test_a_failed_commit_leaves_no_trace(tmp_path):
+    store = StateStore(tmp_path / "s.db")
+    store.commit_input(_entry("first.csv", sha="1" * 64), learned=True, checkpoint=_cp(1))
+    with pytest.raises(sqlite3.IntegrityError):  # same checkpoint version twice
+        store.commit_input(_entry("second.csv", sha="2" * 64), learned=False, checkpoint=_cp(1),
+                           warmup_rows=np.ones((4, 2)))
+    assert [e.name for e in store.ledger()] == ["first.csv"]
+    assert store.warmup_rows() is None and store.model_version == 1
+
+
+def test_find_done_and_warmup_buffer(tmp_path):
+    store = StateStore(tmp_path / "s.db")
+    store.commit_input(_entry("a.csv", sha="f" * 64), learned=True, warmup_rows=np.zeros((2, 3)))
+    store.commit_input(_entry("b.csv", sha="f" * 64, outcome="duplicate"), learned=False)
+    store.record_quarantine(_entry("c.csv", sha="e" * 64, outcome="quarantined"))
+    store.commit_input(_entry("d.csv", sha="d" * 64), learned=True, warmup_rows=np.ones((3, 3)))
+    assert [e.name for e in store.find_done("f" * 64)] == ["a.csv", "b.csv"]
+    assert store.find_done("e" * 64) == []  # a quarantined content may be tried again
+    assert store.model_version == 2
+    np.testing.assert_array_equal(store.warmup_rows(), np.vstack([np.zeros((2, 3)),
+                                                                  np.ones((3, 3))]))
+    store.commit_input(_entry("e.csv", sha="c" * 64), learned=True, clear_warmup=True)
+    assert store.warmup_rows() is None
+
+
+def test_unreadable_store_is_a_state_error(tmp_path):
+    db = tmp_path / "s.db"
+    db.write_bytes(b"this is not a database" * 100)
+    with pytest.raises(StateError, match="cannot be used"):
+        StateStore(db)
