@@ -12,6 +12,7 @@ import signal
 import sqlite3
 import subprocess
 import sys
+import threading
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -24,7 +25,7 @@ import pyarrow.parquet as pq
 import yaml
 
 __all__ = ["synthetic_table", "write_drop", "write_config", "ServiceProcess", "ledger_counts",
-           "wait_until", "crash_drill", "DrillReport", "MTIME_BASE"]
+           "wait_until", "crash_drill", "DrillReport", "MTIME_BASE", "InProcessService"]
 
 # Drops get modification times from this fixed past epoch on, one second apart, so
 # that the order the service takes them in (oldest first) is the order they were made.
@@ -150,6 +151,63 @@ class ServiceProcess:
             self.proc.wait(timeout=10)
             raise
         return code, time.monotonic() - t0
+
+
+class InProcessService:
+    """A Service on a worker thread in this process (tests): drop, then wait for results."""
+
+    def __init__(self, folder: Path, observer_factory=None, timeout: float = 30.0,
+                 **overrides):
+        from shoal.config import load_config
+        from shoal.daemon.layout import prepare_folders
+        from shoal.daemon.pipeline import Pipeline
+        from shoal.daemon.service import Service
+        from shoal.daemon.store import StateStore
+
+        self.timeout = timeout
+        self.settings = load_config(write_config(folder, **overrides))
+        self.layout = prepare_folders(self.settings)
+        self.store = StateStore(self.layout.db)
+        self.pipeline = Pipeline(self.settings, self.layout, self.store)
+        self.results = []
+        self.service = Service(self.settings, self.layout, self.pipeline,
+                               on_result=self.results.append,
+                               observer_factory=observer_factory)
+        self.thread = threading.Thread(target=self.service.run, name="worker")
+        self.reader = StateStore(self.layout.db)  # the test's own connection
+        self.n = 0
+
+    def __enter__(self):
+        self.thread.start()
+        return self
+
+    def __exit__(self, *exc):
+        self.service.request_stop()
+        self.thread.join(self.timeout)
+        if self.thread.is_alive():
+            raise TimeoutError("the service did not stop")
+        self.store.close()
+        self.reader.close()
+
+    def wait_results(self, n):
+        wait_until(lambda: len(self.results) >= n, self.timeout, f"{n} results")
+        return self.results[n - 1]
+
+    def drop(self, table, name):
+        self.n += 1
+        write_drop(table, self.layout.inbox, name)
+        return self.wait_results(self.n)
+
+    def drop_bytes(self, data: bytes, name):
+        staging = self.layout.inbox.parent / "staging"
+        staging.mkdir(exist_ok=True)
+        (staging / name).write_bytes(data)
+        os.rename(staging / name, self.layout.inbox / name)
+        self.n += 1
+        return self.wait_results(self.n)
+
+    def sidecar(self, name):
+        return json.loads((self.layout.quarantine / f"{name}.json").read_text())
 
 
 @dataclass

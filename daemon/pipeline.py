@@ -132,6 +132,7 @@ class Pipeline:
         t0 = self.monotonic()
         seen_at = self.wall()
         name = path.name
+        log_event("input_started", logging.DEBUG, file=name, model_version=self.state.version)
         try:
             result = self._process(path, name, in_inbox, seen_at)
         except InputVanished as exc:

@@ -7,7 +7,6 @@ only ever holds complete labels files of committed inputs.
 import gzip
 import json
 import os
-import threading
 from pathlib import Path
 
 import pyarrow as pa
@@ -15,65 +14,16 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import pytest
 
-from shoal.config import load_config
-from shoal.daemon.drills import synthetic_table, wait_until, write_config, write_drop
-from shoal.daemon.layout import prepare_folders
-from shoal.daemon.pipeline import Pipeline
-from shoal.daemon.service import Service
-from shoal.daemon.store import StateStore
+from shoal.daemon.drills import InProcessService, synthetic_table, wait_until
 
-TIMEOUT = 30.0
 SEED = 3
 
 
-class Running:
-    def __init__(self, folder: Path, **overrides):
-        self.settings = load_config(write_config(folder, **overrides))
-        self.layout = prepare_folders(self.settings)
-        self.store = StateStore(self.layout.db)
-        self.pipeline = Pipeline(self.settings, self.layout, self.store)
-        self.results = []
-        self.service = Service(self.settings, self.layout, self.pipeline,
-                               on_result=self.results.append)
-        self.thread = threading.Thread(target=self.service.run, name="worker")
-        self.reader = StateStore(self.layout.db)  # the test's own connection
-        self.n = 0
-
-    def __enter__(self):
-        self.thread.start()
-        return self
-
-    def __exit__(self, *exc):
-        self.service.request_stop()
-        self.thread.join(TIMEOUT)
-        assert not self.thread.is_alive()
-        self.store.close()
-        self.reader.close()
-
-    def wait_results(self, n):
-        wait_until(lambda: len(self.results) >= n, TIMEOUT, f"{n} results")
-        return self.results[n - 1]
-
-    def drop(self, table, name):
-        self.n += 1
-        write_drop(table, self.layout.inbox, name)
-        return self.wait_results(self.n)
-
-    def drop_bytes(self, data: bytes, name):
-        staging = self.layout.inbox.parent / "staging"
-        staging.mkdir(exist_ok=True)
-        (staging / name).write_bytes(data)
-        os.rename(staging / name, self.layout.inbox / name)
-        self.n += 1
-        return self.wait_results(self.n)
-
+class Running(InProcessService):
     def good(self, i):
         r = self.drop(synthetic_table(i, 300, SEED), f"good-{i}.csv")
         assert r.outcome == "committed", r
         return r
-
-    def sidecar(self, name):
-        return json.loads((self.layout.quarantine / f"{name}.json").read_text())
 
 
 def _csv(table):
@@ -187,7 +137,7 @@ def test_links_fifos_and_folders_are_refused_and_left_alone(svc):
     os.mkfifo(inbox / "pipe.csv")
     (inbox / "sub.csv").mkdir()
     ((inbox / "sub.csv") / "inner.csv").write_bytes(_csv(synthetic_table(12, 20, SEED)))
-    wait_until(lambda: svc.service.counts.get("refused", 0) >= 3, TIMEOUT, "3 refusals")
+    wait_until(lambda: svc.service.counts.get("refused", 0) >= 3, svc.timeout, "3 refusals")
     svc.good(5)  # not blocked by the FIFO
     assert os.path.islink(inbox / "link.csv") and (inbox / "pipe.csv").exists()
     assert (inbox / "sub.csv" / "inner.csv").exists()
