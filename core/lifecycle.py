@@ -1,0 +1,285 @@
+"""Segment lifecycle on a mixture: merge, retire, add, and the tests that call for them.
+
+Every function here is pure: it takes a :class:`~shoal.core.mixture.Mixture` and returns
+a new one (or an array), and leaves the old one untouched. Segment ids keep their
+meaning: a merged pair keeps the older (smaller) id, a retired id is never used again,
+and a new component takes ``next_id``, which only ever grows.
+
+The sufficient statistics are additive, so a merge adds the two components' ``s0``,
+``s1`` and ``s2`` and derives parameters from the sum: the merged Gaussian has exactly
+the mean and covariance of the union of the rows the two components had absorbed.
+A retirement or an addition keeps the total mass of the statistics unchanged (the
+other components are scaled up or down together, which leaves their means and
+covariances as they were and renormalises the weights).
+
+When the mixture uses Polyak-Ruppert averaging, the averaged statistics are changed
+in the same way, and the parameters are derived from them as at a refresh point.
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import numpy as np
+from scipy import stats
+
+from .distances import bhattacharyya_distance, hellinger_distance
+from .errors import ModelError
+from .mixture import Mixture
+
+__all__ = [
+    "OVERLAP_MEASURES",
+    "add_component",
+    "merge",
+    "overlap",
+    "overlapping_pairs",
+    "retire",
+    "squared_mahalanobis",
+    "unexplained",
+]
+
+OVERLAP_MEASURES = {
+    "hellinger": hellinger_distance,
+    "bhattacharyya": bhattacharyya_distance,
+}
+"""Distances between two Gaussians, zero for identical ones; smaller means more overlap."""
+
+_LOG_2PI = float(np.log(2.0 * np.pi))
+_STATS = ("s0", "s1", "s2")
+_AVG_STATS = ("avg_s0", "avg_s1", "avg_s2")
+
+
+# --------------------------------------------------------------------------- helpers
+
+
+def _index_of(mixture: Mixture, segment_id) -> int:
+    hits = np.flatnonzero(mixture.ids == segment_id)
+    if hits.size != 1:
+        raise ModelError(
+            f"segment {segment_id!r} is not in the mixture; its segments are "
+            f"{mixture.ids.tolist()}"
+        )
+    return int(hits[0])
+
+
+def _rebuilt(mixture: Mixture, ids, next_id, stat_arrays: dict) -> Mixture:
+    """A copy with new statistics and ids, parameters derived once from the statistics."""
+    averaged = mixture.averaging and mixture.avg_count > 0
+    source = _AVG_STATS if averaged else _STATS
+    params = mixture._derive(*(stat_arrays[name] for name in source), mixture.sumsq)
+    return replace(
+        mixture, ids=np.asarray(ids, dtype=np.int64), next_id=int(next_id),
+        **stat_arrays, **params,
+    )
+
+
+def _all_stats(mixture: Mixture) -> dict:
+    return {name: np.array(getattr(mixture, name)) for name in _STATS + _AVG_STATS}
+
+
+# --------------------------------------------------------------------------- lifecycle
+
+
+def merge(mixture: Mixture, id_a, id_b) -> Mixture:
+    """Merge two segments by adding their sufficient statistics.
+
+    Parameters
+    ----------
+    mixture : Mixture
+    id_a, id_b : int
+        Stable ids of two different segments of ``mixture``.
+
+    Returns
+    -------
+    merged : Mixture
+        One component fewer. The survivor keeps the older (smaller) id and its
+        position; the other id is gone for good (``next_id`` is unchanged). Its
+        weight is the sum of the two weights, its mean and covariance those of the
+        union of the rows behind the two components.
+    """
+    if id_a == id_b:
+        raise ModelError(f"cannot merge segment {id_a!r} with itself")
+    keep_id, drop_id = sorted((int(id_a), int(id_b)))
+    keep, drop = _index_of(mixture, keep_id), _index_of(mixture, drop_id)
+    arrays = {}
+    for name, array in _all_stats(mixture).items():
+        array[keep] = array[keep] + array[drop]
+        arrays[name] = np.delete(array, drop, axis=0)
+    return _rebuilt(mixture, np.delete(mixture.ids, drop), mixture.next_id, arrays)
+
+
+def retire(mixture: Mixture, segment_id) -> Mixture:
+    """Drop a segment; its share of mass is spread over the others in proportion.
+
+    Parameters
+    ----------
+    mixture : Mixture
+        Must hold at least two segments.
+    segment_id : int
+
+    Returns
+    -------
+    retired : Mixture
+        One component fewer; the others keep their means, covariances and ids, and
+        their weights are renormalised. The retired id is never reused.
+    """
+    if mixture.n_components < 2:
+        raise ModelError("cannot retire the only segment of a mixture")
+    drop = _index_of(mixture, segment_id)
+    arrays = _all_stats(mixture)
+    for s0_name, names in (("s0", _STATS), ("avg_s0", _AVG_STATS)):
+        s0 = arrays[s0_name]
+        total, rest = float(np.sum(s0)), float(np.sum(s0) - s0[drop])
+        factor = total / rest if rest > 0 else 1.0
+        for name in names:
+            arrays[name] = np.delete(arrays[name], drop, axis=0) * factor
+    return _rebuilt(mixture, np.delete(mixture.ids, drop), mixture.next_id, arrays)
+
+
+def add_component(mixture: Mixture, weight, mean, covariance) -> Mixture:
+    """Add a new segment, for example one fitted on a pool of unexplained rows.
+
+    Parameters
+    ----------
+    mixture : Mixture
+    weight : float in (0, 1)
+        The new segment's share of the mass; the others are scaled by ``1 - weight``.
+    mean : array_like of shape (n_features,)
+        In the data's own units.
+    covariance : array_like of shape (n_features, n_features)
+        A full covariance matrix in data units (for a pool fit with another
+        covariance type, ``fit.data_covariance_matrices()[j]``). A diag mixture keeps
+        its diagonal; a spherical one the mean of its diagonal in standardised units.
+
+    Returns
+    -------
+    grown : Mixture
+        One component more, appended last, with id ``mixture.next_id``; ``next_id``
+        grows by one.
+    """
+    n_features = mixture.n_features
+    weight = float(weight)
+    if not 0.0 < weight < 1.0:
+        raise ModelError(f"weight should lie in (0, 1), got {weight!r}")
+    mean = np.asarray(mean, dtype=np.float64)
+    covariance = np.asarray(covariance, dtype=np.float64)
+    if mean.shape != (n_features,):
+        raise ModelError(f"mean should have shape ({n_features},), got {mean.shape}")
+    if covariance.shape != (n_features, n_features):
+        raise ModelError(
+            f"covariance should have shape ({n_features}, {n_features}), got {covariance.shape}"
+        )
+    if not (np.all(np.isfinite(mean)) and np.all(np.isfinite(covariance))):
+        raise ModelError("mean and covariance should be finite")
+    zmean = (mean - mixture.center) / mixture.scale
+    zcov = covariance / np.outer(mixture.scale, mixture.scale)
+    if mixture.covariance == "full":
+        second = zcov + np.outer(zmean, zmean)
+    elif mixture.covariance == "diag":
+        second = np.diagonal(zcov) + zmean**2
+    else:
+        second = np.trace(zcov) / n_features + np.mean(zmean**2)
+    arrays = _all_stats(mixture)
+    for s0_name, names in (("s0", _STATS), ("avg_s0", _AVG_STATS)):
+        mass = weight * float(np.sum(arrays[s0_name]))
+        new = (np.array([mass]), (mass * zmean)[None], (mass * np.asarray(second))[None])
+        for name, row in zip(names, new):
+            arrays[name] = np.concatenate([arrays[name] * (1.0 - weight), row])
+    ids = np.append(mixture.ids, np.int64(mixture.next_id))
+    return _rebuilt(mixture, ids, mixture.next_id + 1, arrays)
+
+
+# --------------------------------------------------------------------------- tests
+
+
+def overlap(mixture: Mixture, measure: str = "hellinger") -> np.ndarray:
+    """Pairwise distances between the mixture's Gaussians.
+
+    Parameters
+    ----------
+    mixture : Mixture
+    measure : {"hellinger", "bhattacharyya"}
+        Hellinger distance in [0, 1], or Bhattacharyya distance in [0, inf). Both
+        are invariant to the affine standardisation, so they are computed in
+        standardised units.
+
+    Returns
+    -------
+    distances : ndarray of shape (n_components, n_components)
+        Symmetric, zero on the diagonal; rows and columns follow ``mixture.ids``.
+    """
+    if measure not in OVERLAP_MEASURES:
+        raise ModelError(f"measure should be one of {sorted(OVERLAP_MEASURES)}, got {measure!r}")
+    means = mixture.means
+    covs = mixture.family.matrices(mixture.covariances, mixture.n_features)
+    distances = np.asarray(
+        OVERLAP_MEASURES[measure](means[:, None], covs[:, None], means[None], covs[None])
+    ).reshape(mixture.n_components, mixture.n_components)
+    distances = 0.5 * (distances + distances.T)
+    np.fill_diagonal(distances, 0.0)
+    return distances
+
+
+def overlapping_pairs(mixture: Mixture, max_distance: float, measure: str = "hellinger"):
+    """Pairs of segments closer than ``max_distance``, most overlapping first.
+
+    Returns
+    -------
+    pairs : list of (int, int, float)
+        ``(older id, newer id, distance)``, sorted by distance, then by ids.
+    """
+    distances = overlap(mixture, measure)
+    rows, cols = np.triu_indices(mixture.n_components, k=1)
+    pairs = []
+    for i, j in zip(rows, cols):
+        if distances[i, j] < max_distance:
+            a, b = sorted((int(mixture.ids[i]), int(mixture.ids[j])))
+            pairs.append((a, b, float(distances[i, j])))
+    return sorted(pairs, key=lambda pair: (pair[2], pair[0], pair[1]))
+
+
+def squared_mahalanobis(mixture: Mixture, X) -> np.ndarray:
+    """Squared Mahalanobis distance of every row to every component.
+
+    Parameters
+    ----------
+    X : array_like of shape (n_samples, n_features)
+        Finite rows in the data's own units.
+
+    Returns
+    -------
+    d2 : ndarray of shape (n_samples, n_components)
+        ``(x - mu_k)' Sigma_k^-1 (x - mu_k)``; the same in data and standardised units.
+    """
+    # log N(z | k) = -0.5 (D log 2 pi + d2) + log det U_k, and data-unit densities
+    # differ from standardised ones by -sum(log scale).
+    log_gauss = mixture.component_log_density(X) + np.sum(np.log(mixture.scale))
+    d2 = -2.0 * (log_gauss - mixture.log_det) - mixture.n_features * _LOG_2PI
+    return np.maximum(d2, 0.0)
+
+
+def unexplained(mixture: Mixture, X, threshold: float = 0.999) -> np.ndarray:
+    """Rows that no segment explains: too far from every component.
+
+    A row is unexplained when its squared Mahalanobis distance to every component
+    exceeds the ``threshold`` quantile of the chi-square distribution with
+    ``n_features`` degrees of freedom (the distribution of that distance for a row
+    the component did generate), from ``scipy.stats.chi2``.
+
+    Parameters
+    ----------
+    mixture : Mixture
+    X : array_like of shape (n_samples, n_features)
+    threshold : float in (0, 1), default 0.999
+        With it, a row of a segment is unexplained by that segment with probability
+        ``1 - threshold``.
+
+    Returns
+    -------
+    mask : ndarray of bool, shape (n_samples,)
+    """
+    threshold = float(threshold)
+    if not 0.0 < threshold < 1.0:
+        raise ModelError(f"threshold should be a probability in (0, 1), got {threshold!r}")
+    bound = stats.chi2.ppf(threshold, mixture.n_features)
+    return np.all(squared_mahalanobis(mixture, X) > bound, axis=1)

@@ -1,0 +1,275 @@
+"""Segment lifecycle: merge, retire, add, overlap and the unexplained-row test."""
+
+from dataclasses import replace
+
+import numpy as np
+import pytest
+from scipy import stats
+from scipy.spatial.distance import mahalanobis as scipy_mahalanobis
+
+from shoal.core import Mixture, ModelError, StepSchedule
+from shoal.core.distances import bhattacharyya_distance, hellinger_distance
+from shoal.core.lifecycle import (
+    add_component,
+    merge,
+    overlap,
+    overlapping_pairs,
+    retire,
+    squared_mahalanobis,
+    unexplained,
+)
+
+CENTER = np.array([100.0, -20.0, 3.0])
+SCALE = np.array([10.0, 2.0, 0.5])
+
+
+def _groups(seed):
+    """Three seeded groups of rows in data units, of different sizes (synthetic)."""
+    rng = np.random.default_rng(seed)
+    sizes = (300, 500, 200)
+    groups = []
+    for size, shift in zip(sizes, (0.0, 2.0, -3.0)):
+        A = rng.normal(0.0, 1.0, (3, 3))
+        rows = rng.normal(size=(size, 3)) @ A.T + shift
+        groups.append(CENTER + rows * SCALE)
+    return groups
+
+
+def _mixture_of(groups, covariance, **kwargs):
+    """A mixture whose components are exactly the groups' sample moments (divisor n)."""
+    sizes = np.array([g.shape[0] for g in groups], dtype=float)
+    means = np.array([g.mean(axis=0) for g in groups])
+    covs = np.array([np.cov(g, rowvar=False, bias=True) for g in groups])
+    scale = SCALE
+    if covariance == "diag":
+        covs = np.array([np.diag(c) for c in covs])
+    elif covariance == "spherical":
+        scale = np.full(3, 2.0)
+        covs = np.array([np.mean(np.diag(c) / scale**2) * scale[0] ** 2 for c in covs])
+    return Mixture.from_parameters(
+        sizes / sizes.sum(), means, covs, covariance=covariance, center=CENTER,
+        scale=scale, reg_covar=0.0, prior_weight=0.0, **kwargs,
+    )
+
+
+# ------------------------------------------------------------------------------ merge
+
+
+@pytest.mark.parametrize("covariance", ["full", "diag", "spherical"])
+def test_merged_parameters_equal_the_moments_of_the_union_of_rows(covariance):
+    # Direct computation: the sample mean and covariance (divisor n) of the two
+    # groups' rows pooled together, computed with numpy from the rows themselves.
+    groups = _groups(seed=5)
+    mixture = _mixture_of(groups, covariance)
+    merged = merge(mixture, 2, 0)
+
+    union = np.vstack([groups[0], groups[2]])
+    n_total = sum(g.shape[0] for g in groups)
+    assert merged.ids.tolist() == [0, 1]
+    assert merged.next_id == mixture.next_id
+    np.testing.assert_allclose(merged.weights, [union.shape[0] / n_total, 500 / n_total])
+    np.testing.assert_allclose(merged.data_means()[0], union.mean(axis=0), rtol=1e-10)
+    union_cov = np.cov(union, rowvar=False, bias=True)
+    got = merged.data_covariance_matrices()[0]
+    if covariance == "full":
+        np.testing.assert_allclose(got, union_cov, rtol=1e-9)
+    elif covariance == "diag":
+        np.testing.assert_allclose(np.diag(got), np.diag(union_cov), rtol=1e-9)
+    else:
+        pooled = np.mean(np.diag(union_cov) / 4.0) * 4.0
+        np.testing.assert_allclose(np.diag(got), np.full(3, pooled), rtol=1e-9)
+    # the untouched component is exactly as it was
+    np.testing.assert_allclose(merged.data_means()[1], mixture.data_means()[1], rtol=1e-12)
+    np.testing.assert_allclose(
+        merged.data_covariance_matrices()[1], mixture.data_covariance_matrices()[1], rtol=1e-12
+    )
+
+
+def test_merge_of_identical_components_leaves_the_density_unchanged():
+    rng = np.random.default_rng(8)
+    cov = np.array([[2.0, 0.3], [0.3, 0.5]])
+    mixture = Mixture.from_parameters(
+        [0.2, 0.5, 0.3], [[1.0, 1.0], [-3.0, 2.0], [1.0, 1.0]],
+        [cov, np.eye(2), cov], reg_covar=0.0, prior_weight=0.0,
+    )
+    X = rng.normal(0.0, 3.0, (500, 2))
+    merged = merge(mixture, 0, 2)
+    assert merged.ids.tolist() == [0, 1]
+    np.testing.assert_allclose(merged.log_density(X), mixture.log_density(X), rtol=1e-12)
+    # and the merged segment takes the responsibility of the pair
+    before = mixture.score(X).resp
+    np.testing.assert_allclose(merged.score(X).resp[:, 0], before[:, 0] + before[:, 2],
+                               rtol=1e-10)
+
+
+def test_merge_of_an_averaging_mixture_adds_the_averaged_statistics():
+    rng = np.random.default_rng(3)
+    mixture = replace(
+        Mixture.from_parameters([0.5, 0.5], [[0.0, 0.0], [4.0, 0.0]], [np.eye(2)] * 2,
+                                n_eff=1000, refresh_rows=512),
+        averaging=True,
+    )
+    X = np.vstack([rng.normal(size=(1024, 2)), rng.normal(size=(1024, 2)) + [4.0, 0.0]])
+    learned, _ = mixture.learn(rng.permutation(X))
+    assert learned.avg_count == 4
+    merged = merge(learned, 1, 0)
+    expected = (learned.avg_s1[0] + learned.avg_s1[1]) / (learned.avg_s0[0] + learned.avg_s0[1])
+    np.testing.assert_allclose(merged.means[0], expected, rtol=1e-6)
+    # the running (non-averaged) statistics are summed too, so learning goes on
+    np.testing.assert_allclose(merged.s0, [learned.s0.sum()])
+    more, scores = merged.learn(X[:600])
+    assert np.all(np.isfinite(more.means)) and np.all(scores.segment == 0)
+
+
+def test_merge_refuses_bad_ids():
+    mixture = _mixture_of(_groups(seed=1), "full")
+    with pytest.raises(ModelError, match="itself"):
+        merge(mixture, 1, 1)
+    with pytest.raises(ModelError, match="segment 7 is not in the mixture"):
+        merge(mixture, 0, 7)
+
+
+# --------------------------------------------------------------------- retire and add
+
+
+def test_retire_renormalises_the_others_and_keeps_their_parameters():
+    mixture = _mixture_of(_groups(seed=2), "full")
+    retired = retire(mixture, 1)
+    assert retired.ids.tolist() == [0, 2]
+    w = mixture.weights
+    np.testing.assert_allclose(retired.weights, [w[0], w[2]] / (w[0] + w[2]), rtol=1e-12)
+    np.testing.assert_allclose(retired.s0.sum(), mixture.s0.sum(), rtol=1e-12)
+    np.testing.assert_allclose(retired.data_means(), mixture.data_means()[[0, 2]], rtol=1e-12)
+    np.testing.assert_allclose(
+        retired.data_covariance_matrices(), mixture.data_covariance_matrices()[[0, 2]],
+        rtol=1e-10,
+    )
+    with pytest.raises(ModelError, match="only segment"):
+        retire(retire(retired, 0), 2)
+
+
+@pytest.mark.parametrize("covariance", ["full", "diag"])
+def test_add_component_takes_a_new_id_and_its_share(covariance):
+    mixture = _mixture_of(_groups(seed=4), covariance)
+    mean = np.array([130.0, -25.0, 4.0])
+    cov = np.diag([4.0, 0.25, 0.01])
+    cov[0, 1] = cov[1, 0] = 0.5 if covariance == "full" else 0.0
+    grown = add_component(mixture, 0.1, mean, cov)
+    assert grown.ids.tolist() == [0, 1, 2, 3]
+    assert grown.next_id == 4
+    np.testing.assert_allclose(grown.weights, np.append(0.9 * mixture.weights, 0.1), rtol=1e-12)
+    np.testing.assert_allclose(grown.data_means()[3], mean, rtol=1e-12)
+    np.testing.assert_allclose(grown.data_covariance_matrices()[3], cov, rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(grown.data_means()[:3], mixture.data_means(), rtol=1e-12)
+    with pytest.raises(ModelError, match=r"weight should lie in \(0, 1\)"):
+        add_component(mixture, 1.0, mean, cov)
+    with pytest.raises(ModelError, match=r"covariance should have shape \(3, 3\)"):
+        add_component(mixture, 0.1, mean, np.diag(cov))
+
+
+def test_ids_are_never_reused_after_retire_and_add():
+    mixture = _mixture_of(_groups(seed=6), "full")
+    seen = set(mixture.ids.tolist())
+    cov = np.diag(SCALE**2)
+    for step in range(4):
+        mixture = retire(mixture, int(mixture.ids.max()))
+        mixture = add_component(mixture, 0.2, CENTER + step, cov)
+        new_id = int(mixture.ids[-1])
+        assert new_id not in seen
+        seen.add(new_id)
+    mixture = merge(mixture, int(mixture.ids[0]), int(mixture.ids[-1]))
+    mixture = add_component(mixture, 0.2, CENTER, cov)
+    assert int(mixture.ids[-1]) not in seen
+    assert mixture.ids.tolist() == [0, 1, 7] and mixture.next_id == 8
+    # the id counter survives a checkpoint round trip
+    assert Mixture.from_state(*mixture.to_state()).next_id == 8
+
+
+def test_stepwise_learning_goes_on_after_lifecycle_changes():
+    rng = np.random.default_rng(12)
+    mixture = Mixture.from_parameters(
+        [0.5, 0.5], [[0.0, 0.0], [6.0, 0.0]], [np.eye(2)] * 2, n_eff=500,
+        schedule=StepSchedule(half_life_rows=2000), refresh_rows=256,
+    )
+    grown = add_component(mixture, 0.2, np.array([0.0, 6.0]), np.eye(2))
+    X = np.vstack([rng.normal(size=(400, 2)) + c for c in ([0, 0], [6, 0], [0, 6])])
+    learned, scores = grown.learn(rng.permutation(X))
+    assert set(np.unique(scores.segment)) == {0, 1, 2}
+    np.testing.assert_allclose(learned.data_means()[2], [0.0, 6.0], atol=0.3)
+
+
+# --------------------------------------------------------------------------- overlap
+
+
+@pytest.mark.parametrize("measure, reference", [
+    ("hellinger", hellinger_distance), ("bhattacharyya", bhattacharyya_distance),
+])
+def test_overlap_matches_the_closed_forms_in_data_units(measure, reference):
+    # Both distances are affine invariant, so overlap() (standardised units) must
+    # equal the closed forms applied to the data-unit parameters.
+    mixture = _mixture_of(_groups(seed=9), "full")
+    got = overlap(mixture, measure)
+    means, covs = mixture.data_means(), mixture.data_covariance_matrices()
+    for i in range(3):
+        assert got[i, i] == 0.0
+        for j in range(3):
+            if i != j:
+                expected = reference(means[i], covs[i], means[j], covs[j])
+                np.testing.assert_allclose(got[i, j], expected, rtol=1e-8)
+    np.testing.assert_array_equal(got, got.T)
+    with pytest.raises(ModelError, match="measure should be one of"):
+        overlap(mixture, "kl")
+
+
+def test_overlapping_pairs_lists_only_close_pairs_with_older_id_first():
+    mixture = Mixture.from_parameters(
+        [0.3, 0.3, 0.4], [[0.0, 0.0], [10.0, 0.0], [0.3, 0.0]], [np.eye(2)] * 3,
+        ids=[4, 7, 2],
+    )
+    distances = overlap(mixture)
+    pairs = overlapping_pairs(mixture, 0.5)
+    assert [(a, b) for a, b, _ in pairs] == [(2, 4)]
+    np.testing.assert_allclose(pairs[0][2], distances[0, 2])
+    assert overlapping_pairs(mixture, 1.0 + 1e-9)[-1][:2] == (4, 7)  # the farthest pair
+    assert len(overlapping_pairs(mixture, 1.0 + 1e-9)) == 3
+
+
+# ----------------------------------------------------------------------- unexplained
+
+
+def test_squared_mahalanobis_matches_scipy():
+    mixture = _mixture_of(_groups(seed=10), "full")
+    rng = np.random.default_rng(10)
+    X = CENTER + rng.normal(0.0, 3.0, (20, 3)) * SCALE
+    got = squared_mahalanobis(mixture, X)
+    means, covs = mixture.data_means(), mixture.data_covariance_matrices()
+    for k in range(3):
+        inv = np.linalg.inv(covs[k])   # reference only: scipy's mahalanobis wants VI
+        expected = [scipy_mahalanobis(x, means[k], inv) ** 2 for x in X]
+        np.testing.assert_allclose(got[:, k], expected, rtol=1e-8)
+
+
+def test_unexplained_flags_far_rows_at_the_chi_square_rate():
+    rng = np.random.default_rng(21)
+    cov = np.array([[1.0, 0.6, 0.0], [0.6, 2.0, 0.2], [0.0, 0.2, 0.5]])
+    mixture = Mixture.from_parameters([1.0], [[0.0, 1.0, 2.0]], [cov], reg_covar=0.0,
+                                      prior_weight=0.0)
+    X = rng.multivariate_normal([0.0, 1.0, 2.0], cov, size=40_000)
+    # One Gaussian: a row is unexplained with probability 1 - threshold
+    # (chi-square tail, scipy.stats.chi2). Binomial sd of the rate at 40,000 rows
+    # is 0.0005; allow 4 sd.
+    rate = unexplained(mixture, X, threshold=0.99).mean()
+    assert abs(rate - 0.01) < 0.002
+    d2 = squared_mahalanobis(mixture, X)[:, 0]
+    bound = stats.chi2.ppf(0.999, 3)
+    assert np.array_equal(unexplained(mixture, X, 0.999), d2 > bound)
+    # a row far from the only component is unexplained; its centre is not
+    assert unexplained(mixture, [[10.0, 10.0, 10.0], [0.0, 1.0, 2.0]]).tolist() == [True, False]
+
+
+def test_unexplained_needs_every_component_to_reject_the_row():
+    mixture = Mixture.from_parameters([0.5, 0.5], [[0.0, 0.0], [20.0, 0.0]], [np.eye(2)] * 2)
+    rows = np.array([[0.5, 0.0], [20.5, 0.0], [10.0, 0.0], [0.0, 12.0]])
+    assert unexplained(mixture, rows, 0.999).tolist() == [False, False, True, True]
+    with pytest.raises(ModelError, match="threshold should be a probability"):
+        unexplained(mixture, rows, 99.9)
