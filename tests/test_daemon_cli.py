@@ -133,3 +133,16 @@ def test_a_second_process_on_the_same_state_is_refused(tmp_path):
         (tmp_path / "x.csv").write_text("key,ts,f1,f2,f3\n")
         r = shoal("ingest", "-c", cfg, tmp_path / "x.csv")
     assert r.returncode == 3 and "in use by another shoal process" in r.stderr
+
+
+def test_demo_runs_end_to_end(tmp_path):
+    r = shoal("demo", "--dir", tmp_path / "demo", "--drops", "6", timeout=300)
+    assert r.returncode == 0, r.stderr
+    assert "processed: {'committed': 6}" in r.stdout
+    assert "nearest true state" in r.stdout and "labels files:" in r.stdout
+    assert len(list((tmp_path / "demo" / "outbox").iterdir())) == 6
+    (tmp_path / "other").mkdir()
+    (tmp_path / "other" / "precious.txt").write_text("keep me")
+    r = shoal("demo", "--dir", tmp_path / "other", "--drops", "2")
+    assert r.returncode == 2 and "not empty" in r.stderr
+    assert (tmp_path / "other" / "precious.txt").exists()
