@@ -6,6 +6,8 @@ Exit codes: 0 success; 1 some input was quarantined, or a model error;
 """
 from __future__ import annotations
 
+from shoal.core import ShoalError
+
 __all__ = [
     "ServiceError",
     "UsageError",
@@ -17,8 +19,9 @@ __all__ = [
 ]
 
 
-class ServiceError(Exception):
-    """Base of the service's errors; ``exit_code`` is what ``main()`` returns."""
+class ServiceError(ShoalError):
+    """Base of the service's errors (under the core's ``ShoalError``); ``exit_code`` is
+    what ``main()`` returns."""
 
     exit_code = 1
 

@@ -1,6 +1,7 @@
 """Readiness gate (injected clocks), safe output names, atomic writes."""
 import os
 import stat
+import time
 from pathlib import Path
 
 import numpy as np
@@ -62,6 +63,7 @@ def test_change_time_after_last_write_marks_a_move_from_outside(tmp_path):
     staging = tmp_path / "staging"
     staging.mkdir()
     (staging / "a.csv").write_text("x\n1\n")
+    time.sleep(0.05)  # past the kernel's timestamp tick, so the rename gets a later ctime
     os.rename(staging / "a.csv", tmp_path / "a.csv")  # ctime moves on, mtime does not
     st = os.stat(tmp_path / "a.csv")
     wall.t = st.st_mtime_ns / 1e9
