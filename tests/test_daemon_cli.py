@@ -89,6 +89,8 @@ def test_ingest_label_segments(tmp_path):
     assert r.returncode == 0, r.stderr
     assert "3 of 3 inputs committed" in r.stdout
     assert all(p.exists() for p in good)          # files outside the inbox stay put
+    assert os.stat(tmp_path / "state").st_mode & 0o777 == 0o700
+    assert {p.stat().st_mode & 0o777 for p in (tmp_path / "outbox").iterdir()} == {0o640}
     logs = [json.loads(line) for line in r.stderr.splitlines()]
     committed = [e for e in logs if e["event"] == "input_committed"]
     assert [e["model_version"] for e in committed] == [1, 2, 3]
