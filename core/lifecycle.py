@@ -34,6 +34,7 @@ __all__ = [
     "overlap",
     "overlapping_pairs",
     "retire",
+    "segment_index",
     "squared_mahalanobis",
     "unexplained",
 ]
@@ -52,12 +53,12 @@ _AVG_STATS = ("avg_s0", "avg_s1", "avg_s2")
 # --------------------------------------------------------------------------- helpers
 
 
-def _index_of(mixture: Mixture, segment_id) -> int:
-    hits = np.flatnonzero(mixture.ids == segment_id)
+def segment_index(ids, segment_id, where="the mixture") -> int:
+    """Position of a stable segment id in ``ids``; a clear error if it is not there once."""
+    hits = np.flatnonzero(np.asarray(ids) == segment_id)
     if hits.size != 1:
         raise ModelError(
-            f"segment {segment_id!r} is not in the mixture; its segments are "
-            f"{mixture.ids.tolist()}"
+            f"segment {segment_id!r} is not in {where}; its segments are {np.asarray(ids).tolist()}"
         )
     return int(hits[0])
 
@@ -100,7 +101,7 @@ def merge(mixture: Mixture, id_a, id_b) -> Mixture:
     if id_a == id_b:
         raise ModelError(f"cannot merge segment {id_a!r} with itself")
     keep_id, drop_id = sorted((int(id_a), int(id_b)))
-    keep, drop = _index_of(mixture, keep_id), _index_of(mixture, drop_id)
+    keep, drop = segment_index(mixture.ids, keep_id), segment_index(mixture.ids, drop_id)
     arrays = {}
     for name, array in _all_stats(mixture).items():
         array[keep] = array[keep] + array[drop]
@@ -125,7 +126,7 @@ def retire(mixture: Mixture, segment_id) -> Mixture:
     """
     if mixture.n_components < 2:
         raise ModelError("cannot retire the only segment of a mixture")
-    drop = _index_of(mixture, segment_id)
+    drop = segment_index(mixture.ids, segment_id)
     arrays = _all_stats(mixture)
     for s0_name, names in (("s0", _STATS), ("avg_s0", _AVG_STATS)):
         s0 = arrays[s0_name]

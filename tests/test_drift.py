@@ -1,0 +1,379 @@
+"""Drift statistics against a reference, their noise levels (checked by simulation), bounds."""
+
+import json
+import math
+from dataclasses import replace
+
+import numpy as np
+import pytest
+
+from shoal.core import Mixture, ModelError, StepSchedule
+from shoal.core.distances import hellinger_distance
+from shoal.core.drift import (
+    WHOLE_MODEL,
+    Reference,
+    batch_drift,
+    evaluate_bounds,
+    explain,
+    fit_drop,
+    fit_noise,
+    hellinger_noise,
+    mean_shift_noise,
+    segment_drift,
+    spread_noise,
+    weight_noise,
+)
+
+# A 3-feature, 3-segment mixture in awkward units (synthetic).
+WEIGHTS = np.array([0.5, 0.3, 0.2])
+MEANS = np.array([[100.0, -5.0, 0.02], [130.0, 5.0, 0.00], [70.0, 0.0, 0.05]])
+COV = np.array([[16.0, 1.2, 0.004], [1.2, 1.0, 0.001], [0.004, 0.001, 0.0001]])
+COVS = np.array([COV, 0.5 * COV, 2.0 * COV])
+CENTER = np.array([100.0, 0.0, 0.02])
+SCALE = np.array([10.0, 2.0, 0.01])
+
+
+def _mixture(weights=WEIGHTS, means=MEANS, covs=COVS, ids=None, n_eff=1.0e4, covariance="full"):
+    return Mixture.from_parameters(
+        weights, means, covs, covariance=covariance, center=CENTER, scale=SCALE,
+        n_eff=n_eff, ids=ids, reg_covar=0.0, prior_weight=0.0,
+    )
+
+
+def _rows(rng, n, weights=WEIGHTS, means=MEANS, covs=COVS):
+    labels = rng.choice(len(weights), size=n, p=weights)
+    chol = np.linalg.cholesky(covs)
+    return means[labels] + np.einsum("nde,ne->nd", chol[labels], rng.normal(size=(n, 3)))
+
+
+# ---------------------------------------------------------------------------- reference
+
+
+def test_reference_snapshot_and_json_round_trip():
+    mixture = _mixture(n_eff=2000.0)
+    ref = Reference.from_mixture(mixture, log_density=-4.25)
+    np.testing.assert_allclose(ref.means, MEANS, rtol=1e-12)
+    np.testing.assert_allclose(ref.covariances, COVS, rtol=1e-10)
+    np.testing.assert_allclose(ref.n_eff, WEIGHTS * 2000.0)
+    assert ref.total_n_eff == pytest.approx(2000.0)
+    back = Reference.from_dict(json.loads(json.dumps(ref.to_dict())))
+    for name in ("ids", "weights", "means", "covariances", "n_eff"):
+        np.testing.assert_array_equal(getattr(back, name), getattr(ref, name))
+    assert (back.log_density, back.covariance) == (-4.25, "full")
+    exact = Reference.from_dict(dict(ref.to_dict(), n_eff=[None] * 3, log_density=None))
+    assert np.all(np.isposinf(exact.n_eff)) and math.isnan(exact.log_density)
+    with pytest.raises(ModelError, match="reference lacks"):
+        Reference.from_dict({"format": 1, "ids": []})
+
+
+def test_reference_adopts_a_born_segment_and_drops_a_retired_one():
+    ref = Reference.from_mixture(_mixture())
+    later = _mixture(weights=[0.4, 0.3, 0.2, 0.1],
+                     means=np.vstack([MEANS + 1.0, [[0.0, 0.0, 0.0]]]),
+                     covs=np.concatenate([COVS, COVS[:1]]), ids=[0, 1, 2, 5])
+    adopted = ref.without([2]).adopt(later, [5])
+    assert adopted.ids.tolist() == [0, 1, 5]
+    np.testing.assert_allclose(adopted.means[:2], MEANS[:2])          # kept
+    np.testing.assert_allclose(adopted.means[2], [0.0, 0.0, 0.0], atol=1e-12)
+
+
+# ------------------------------------------------------------ statistics, direct values
+
+
+def test_segment_drift_values_match_direct_computations():
+    shift = np.array([4.0, -1.0, 0.01])
+    means, covs = MEANS.copy(), COVS.copy()
+    means[1] += shift
+    covs[0] = 1.5 * COVS[0]
+    ref = Reference.from_mixture(_mixture())
+    # the current model lists its segments in another order: matching is by id
+    order = [2, 0, 1]
+    now = _mixture(weights=[0.15, 0.55, 0.3], means=means[order], covs=covs[order],
+                   ids=order)
+    drift = segment_drift(ref, now)
+    assert drift.ids.tolist() == [0, 1, 2]
+    # Mahalanobis under the reference covariance, computed with a dense solve here
+    expected_shift = np.sqrt(shift @ np.linalg.solve(COVS[1], shift))
+    np.testing.assert_allclose(drift.values["mean_shift"], [0.0, expected_shift, 0.0],
+                               atol=1e-9)
+    # scaling a 3-D covariance by 1.5 multiplies its determinant by 1.5^3
+    np.testing.assert_allclose(drift.values["spread_change"], [3 * np.log(1.5), 0, 0],
+                               atol=1e-9)
+    np.testing.assert_allclose(drift.values["hellinger"][0],
+                               hellinger_distance(MEANS[0], COVS[0], MEANS[0], covs[0]))
+    np.testing.assert_allclose(drift.values["weight_change"], [0.05, 0.0, 0.05], atol=1e-12)
+    np.testing.assert_allclose(drift.n_eff, [0.55e4, 0.3e4, 0.15e4])
+    np.testing.assert_allclose(drift.means[1], means[1])
+    values, noise = drift.bound_inputs()
+    assert values[(1, "mean_shift")] == pytest.approx(expected_shift)
+    assert noise[(0, "mean_shift")] == pytest.approx(
+        math.sqrt(3 / 0.55e4 + 3 / 0.5e4))
+
+
+def test_segment_drift_reports_new_and_missing_segments():
+    ref = Reference.from_mixture(_mixture())
+    now = _mixture(weights=[0.6, 0.4], means=MEANS[[0, 2]], covs=COVS[[0, 2]], ids=[0, 7])
+    drift = segment_drift(ref, now)
+    assert drift.ids.tolist() == [0]
+    assert drift.new_ids.tolist() == [7] and drift.missing_ids.tolist() == [1, 2]
+
+
+# ------------------------------------------------------------- noise levels, simulated
+#
+# Each formula (module notes of shoal.core.drift) is checked against the spread of the
+# statistic over many seeded simulated estimates from Gaussian rows. Tolerances are a
+# few Monte-Carlo standard errors of the simulated spread plus the formula's own
+# asymptotic error, stated beside each check.
+
+SIGMA = np.array([[2.0, 0.5, 0.0, 0.3], [0.5, 1.0, 0.2, 0.0],
+                  [0.0, 0.2, 0.7, 0.1], [0.3, 0.0, 0.1, 1.5]])
+
+
+def _samples(seed, reps, n, cov=SIGMA):
+    rng = np.random.default_rng(seed)
+    return rng.normal(size=(reps, n, cov.shape[0])) @ np.linalg.cholesky(cov).T
+
+
+def _ml_covariances(X):
+    centred = X - X.mean(axis=1, keepdims=True)
+    return np.einsum("rni,rnj->rij", centred, centred) / X.shape[1]
+
+
+def test_mean_shift_noise_is_the_rms_shift_of_a_sample_mean():
+    # exact: n d^2 ~ chi2(D). rms over 2,000 reps has relative sd ~ 1 / sqrt(2 * 2000 * D / 2)
+    X = _samples(seed=1, reps=2000, n=50)
+    d = np.sqrt(np.einsum("ri,ij,rj->r", X.mean(axis=1), np.linalg.inv(SIGMA), X.mean(axis=1)))
+    assert np.sqrt(np.mean(d**2)) == pytest.approx(mean_shift_noise(50, 4), rel=0.05)
+    # two independent estimates (50 and 150 rows): variances add
+    Y = _samples(seed=2, reps=2000, n=150)
+    diff = X.mean(axis=1) - Y.mean(axis=1)
+    d2 = np.einsum("ri,ij,rj->r", diff, np.linalg.inv(SIGMA), diff)
+    assert np.sqrt(np.mean(d2)) == pytest.approx(mean_shift_noise(50, 4, 150), rel=0.05)
+
+
+@pytest.mark.parametrize("covariance", ["full", "diag", "spherical"])
+def test_spread_noise_is_the_sd_of_the_log_generalised_variance(covariance):
+    # exact (Wishart / chi-square log-moments); the sd of 3,000 draws is within ~1.3%
+    # of the truth, so 6% is over 4 standard errors.
+    n, cov = 30, SIGMA if covariance == "full" else np.diag(np.diag(SIGMA))
+    if covariance == "spherical":
+        cov = np.eye(4) * 1.3
+    X = _samples(seed=3, reps=3000, n=n, cov=cov)
+    S = _ml_covariances(X)
+    if covariance == "full":
+        log_gv = np.linalg.slogdet(S)[1]
+    elif covariance == "diag":
+        log_gv = np.sum(np.log(np.diagonal(S, axis1=1, axis2=2)), axis=1)
+    else:
+        log_gv = 4 * np.log(np.trace(S, axis1=1, axis2=2) / 4)
+    assert np.std(log_gv) == pytest.approx(spread_noise(n, 4, covariance), rel=0.06)
+    # the leading term 2D/n is a fair summary of it
+    assert spread_noise(n, 4, covariance) == pytest.approx(np.sqrt(8 / n), rel=0.3)
+
+
+@pytest.mark.parametrize("covariance", ["full", "diag"])
+def test_hellinger_noise_is_the_rms_distance_of_an_estimated_gaussian(covariance):
+    # second-order expansion: error O(1/n) relative, about 2% at n = 400; the rms of
+    # 600 draws is within ~2% of the truth. 10% allows both, with room.
+    n, cov = 400, SIGMA if covariance == "full" else np.diag(np.diag(SIGMA))
+    X = _samples(seed=4, reps=600, n=n, cov=cov)
+    S = _ml_covariances(X)
+    if covariance == "diag":
+        S = S * np.eye(4)
+    h = hellinger_distance(np.zeros(4), cov, X.mean(axis=1), S)
+    assert np.sqrt(np.mean(h**2)) == pytest.approx(hellinger_noise(n, 4, covariance), rel=0.10)
+
+
+def test_weight_noise_is_the_binomial_sd_of_a_share():
+    rng = np.random.default_rng(5)
+    shares = rng.binomial(800, 0.2, size=5000) / 800
+    # sd of 5,000 binomial shares is within ~1% of the truth; 4% allowed
+    assert np.sqrt(np.mean((shares - 0.2) ** 2)) == pytest.approx(weight_noise(0.2, 800), rel=0.04)
+
+
+def test_fit_noise_is_the_standard_error_of_the_mean_log_density():
+    mixture = _mixture()
+    rng = np.random.default_rng(6)
+    batches = [mixture.log_density(_rows(rng, 300)) for _ in range(400)]
+    spread = np.std([b.mean() for b in batches])
+    # sd of 400 batch means is within ~3.5% of the truth; 12% allowed
+    assert spread == pytest.approx(np.median([fit_noise(b) for b in batches]), rel=0.12)
+
+
+def test_batch_statistics_under_no_change_follow_their_null_distributions():
+    # Batches drawn from the reference model itself and scored by it: T^2 with Kish's
+    # n_eff of the (soft) responsibilities should follow chi2(3), so its mean is 3 and
+    # about 5% of p-values fall under 0.05; the batch mean shift's rms is its noise.
+    mixture = _mixture()
+    ref = Reference.from_mixture(mixture)
+    rng = np.random.default_rng(7)
+    t2, shift, noise, p = [], [], [], []
+    for _ in range(300):
+        X = _rows(rng, 1000)
+        drift = batch_drift(ref, X, mixture.score(X).resp, mixture.ids)
+        t2.append(drift.t2)
+        p.append(drift.p_value)
+        shift.append(drift.values["batch_mean_shift"])
+        noise.append(drift.noise["batch_mean_shift"])
+    t2, p = np.array(t2), np.array(p)
+    # mean of 300 chi2(3) draws: sd sqrt(6/300) = 0.14; allow 4 sd
+    np.testing.assert_allclose(t2.mean(axis=0), 3.0, atol=0.6)
+    # rejection rate per segment: binomial sd at 300 batches is 0.013; allow ~3 sd
+    assert np.all(np.abs((p < 0.05).mean(axis=0) - 0.05) < 0.04)
+    ratio = np.sqrt(np.mean(np.square(shift), axis=0)) / np.mean(noise, axis=0)
+    np.testing.assert_allclose(ratio, 1.0, atol=0.12)
+
+
+def test_mean_shift_of_a_stepwise_model_is_within_its_noise_level():
+    # The whole chain: a model learned stepwise on stationary rows, with a step floor,
+    # differs from the truth by about mean_shift_noise(weight * n_eff) -- the row
+    # weights' Kish n_eff applied to each segment's share.
+    ratios = []
+    for seed in range(16):
+        rng = np.random.default_rng(100 + seed)
+        means = np.array([[0.0, 0.0], [8.0, 0.0]])
+        truth = Mixture.from_parameters([0.4, 0.6], means, [np.eye(2)] * 2, n_eff=100,
+                                        schedule=StepSchedule(half_life_rows=1500),
+                                        refresh_rows=1024)
+        labels = rng.choice(2, size=10 * 1024, p=[0.4, 0.6])
+        learned, _ = truth.learn(means[labels] + rng.normal(size=(labels.size, 2)))
+        exact = replace(Reference.from_mixture(truth), n_eff=np.full(2, np.inf))
+        drift = segment_drift(exact, learned)
+        ratios.append(drift.values["mean_shift"] / drift.noise["mean_shift"])
+    # mean of 32 chi2(2)/2 draws: sd 0.18; allow about 2.5 sd either side
+    assert 0.55 < np.mean(np.square(ratios)) < 1.45
+
+
+# ------------------------------------------------------------------- detection, explain
+
+
+def test_batch_drift_detects_a_one_sd_shift_and_explain_names_the_feature():
+    mixture = _mixture()
+    ref = Reference.from_mixture(mixture)
+    rng = np.random.default_rng(8)
+    means = MEANS.copy()
+    means[1, 2] += np.sqrt(COVS[1, 2, 2])          # feature 2 of segment 1 moves by 1 sd
+    X = _rows(rng, 2000, means=means)
+    drift = batch_drift(ref, X, mixture.score(X).resp, mixture.ids)
+    assert drift.p_value[1] < 1e-10 and drift.p_value[0] > 1e-4 and drift.p_value[2] > 1e-4
+    assert drift.values["batch_mean_shift"][1] > 3 * drift.noise["batch_mean_shift"][1]
+    top = explain(ref, 1, drift.means[1], feature_names=["temp", "pressure", "humidity"])
+    assert top[0]["feature"] == "humidity" and top[0]["index"] == 2
+    assert top[0]["shift_sd"] == pytest.approx(1.0, abs=0.15)
+    assert top[0]["reference_mean"] == pytest.approx(0.0)
+    assert top[0]["current_mean"] == pytest.approx(means[1, 2], abs=0.002)
+
+
+def test_explain_ranks_by_shift_in_reference_sds_not_data_units():
+    ref = Reference.from_mixture(_mixture())
+    moved = MEANS[0] + np.array([4.0, 0.5, 0.03])   # 1 sd, 0.5 sd, 3 sd
+    rows = explain(ref, 0, moved)
+    assert [r["index"] for r in rows] == [2, 0, 1]
+    np.testing.assert_allclose([r["shift_sd"] for r in rows], [3.0, 1.0, 0.5])
+    assert [r["feature"] for r in explain(ref, 0, moved, top=1)] == ["x2"]
+    with pytest.raises(ModelError, match="segment 9 is not in the reference"):
+        explain(ref, 9, moved)
+
+
+def test_fit_drop_is_the_fall_in_mean_log_density():
+    mixture = _mixture()
+    rng = np.random.default_rng(9)
+    level = float(np.mean(mixture.log_density(_rows(rng, 20_000))))
+    ref = Reference.from_mixture(mixture, log_density=level)
+    same = fit_drop(ref, mixture.log_density(_rows(rng, 2000)))
+    assert abs(same.value) < 4 * same.noise
+    worse = fit_drop(ref, mixture.log_density(_rows(rng, 2000, covs=4.0 * COVS)))
+    assert worse.value > 1.0 and worse.value > 10 * worse.noise
+    values, _ = worse.bound_inputs()
+    assert values == {(WHOLE_MODEL, "fit_drop"): worse.value}
+    with pytest.raises(ModelError, match="no log-density level"):
+        fit_drop(Reference.from_mixture(mixture), [0.0, 1.0])
+
+
+# ------------------------------------------------------------------------------ bounds
+
+
+def _run(sequence, bounds, **kwargs):
+    """Feed ``[(values, noise), ...]`` through evaluate_bounds via JSON; collect events."""
+    state, seen = None, []
+    for at, (values, noise) in enumerate(sequence):
+        state, events = evaluate_bounds(values, noise, bounds, state, at=at, **kwargs)
+        state = json.loads(json.dumps(state))
+        seen.extend((e["at"], e["segment"], e["statistic"], e["status"]) for e in events)
+    return seen, state
+
+
+def test_a_crossing_must_persist_to_fire_and_come_back_under_to_resolve():
+    key = (3, "mean_shift")
+    trace = [0.9, 2.0, 2.0, 0.5, 2.0, 2.0, 2.0, 2.5, 1.5, 0.7, 0.7, 1.2, 0.7, 0.7, 0.7, 2.0]
+    sequence = [({key: v}, {key: 0.1}) for v in trace]
+    events, state = _run(sequence, {"mean_shift": 1.0}, persist=3, resolve_fraction=0.8,
+                         resolve_persist=3)
+    # two crossings then a dip: nothing; three in a row fire at the third (at=6); 1.5
+    # is under neither level; 0.7 twice then 1.2 resets; three times 0.7 resolve (at=14)
+    assert events == [(6, 3, "mean_shift", "firing"), (14, 3, "mean_shift", "resolved")]
+    assert state["entries"]["3"]["mean_shift"]["above"] == 1      # at=15 starts anew
+
+
+def test_a_crossing_within_the_noise_never_fires():
+    key = (1, "weight_change")
+    sequence = [({key: 0.2}, {key: 0.1})] * 10
+    events, _ = _run(sequence, {"weight_change": 0.1}, noise_multiple=3.0, persist=2)
+    assert events == []
+    events, _ = _run(sequence, {"weight_change": 0.1}, noise_multiple=1.5, persist=2)
+    assert events == [(1, 1, "weight_change", "firing")]
+
+
+def test_missing_or_unbounded_values_keep_the_state_and_overrides_apply():
+    a, b = (0, "hellinger"), (4, "hellinger")
+    sequence = [
+        ({a: 0.5, b: 0.5}, {}),
+        ({a: float("nan")}, {}),                    # no evidence for either
+        ({a: 0.5, b: 0.5, (0, "unbounded"): 9.0}, {}),
+    ]
+    events, state = _run(sequence, {"hellinger": 0.3, (4, "hellinger"): 0.6}, persist=2)
+    assert events == [(2, 0, "hellinger", "firing")]        # segment 4's own bound is 0.6
+    assert set(state["entries"]) == {"0"} and state["entries"]["0"]["hellinger"]["first_at"] == 0
+
+
+def test_bounds_are_deterministic_and_leave_the_input_state_alone():
+    rng = np.random.default_rng(10)
+    keys = [(s, stat) for s in (2, 10, WHOLE_MODEL) for stat in ("mean_shift", "fit_drop")]
+    sequence = [({k: float(v) for k, v in zip(keys, rng.uniform(0, 2, len(keys)))}, {})
+                for _ in range(40)]
+    first, state = _run(sequence, {"mean_shift": 1.0, "fit_drop": 1.0}, persist=2,
+                        resolve_persist=2)
+    second, _ = _run(sequence, {"mean_shift": 1.0, "fit_drop": 1.0}, persist=2,
+                     resolve_persist=2)
+    assert first == second and len(first) > 4
+    frozen = json.dumps(state, sort_keys=True)
+    evaluate_bounds(*sequence[0], {"mean_shift": 1.0, "fit_drop": 1.0}, state)
+    assert json.dumps(state, sort_keys=True) == frozen
+    # within one evaluation, events come ordered by segment, integer ids (numerically)
+    # before named ones, then by statistic
+    order = {2: 0, 10: 1, WHOLE_MODEL: 2}
+    by_time = {}
+    for at, segment, statistic, _ in first:
+        by_time.setdefault(at, []).append((order[segment], statistic))
+    assert max(len(ranks) for ranks in by_time.values()) >= 3
+    assert all(ranks == sorted(ranks) for ranks in by_time.values())
+    with pytest.raises(ModelError, match="persist should be a positive integer"):
+        evaluate_bounds({}, {}, {}, None, persist=0)
+
+
+def test_stationary_batches_stay_quiet_and_a_shifted_segment_fires():
+    mixture = _mixture()
+    ref = Reference.from_mixture(mixture)
+    bounds = {"batch_mean_shift": 0.25, "batch_weight_change": 0.05}
+    rng = np.random.default_rng(11)
+    state, fired = None, []
+    means = MEANS.copy()
+    for at in range(40):
+        if at == 25:
+            means[2] += 0.5 * np.sqrt(np.diag(COVS[2]))   # 0.5 sd in every feature
+        X = _rows(rng, 2000, means=means)
+        values, noise = batch_drift(ref, X, mixture.score(X).resp, mixture.ids).bound_inputs()
+        state, events = evaluate_bounds(values, noise, bounds, state, at=at)
+        fired.extend((e["at"], e["segment"], e["statistic"]) for e in events)
+    assert fired and fired[0] == (27, 2, "batch_mean_shift")
+    assert all(seg == 2 for _, seg, _ in fired)
