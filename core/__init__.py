@@ -5,7 +5,7 @@ This package imports numpy and scipy only: no files, no clock, no logging set-up
 
 from .covariance import COVARIANCE_TYPES
 from .errors import IllConditionedError, ModelError, NotEnoughDataError, ShoalError
-from .mixture import FORMAT_VERSION, Mixture, Scores, log_sum_exp
+from .mixture import FORMAT_VERSION, Mixture, Scores
 from .schedule import StepSchedule, floor_from_half_life
 from .warmup import batch_em, bic, initialise, kmeans_plus_plus, select_n_components
 
@@ -24,6 +24,5 @@ __all__ = [
     "floor_from_half_life",
     "initialise",
     "kmeans_plus_plus",
-    "log_sum_exp",
     "select_n_components",
 ]

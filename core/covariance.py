@@ -5,9 +5,20 @@ and does no validation: callers in :mod:`shoal.core.mixture` check their inputs 
 
 Each family provides
 
-``second_moment(Z, resp_w, n_features)``
-    The responsibility-weighted second moments ``sum_i r_ik z_i z_i^T`` (full), the
-    diagonal of it (diag) or its trace divided by ``n_features`` (spherical).
+``design(Z)``
+    The design matrix the other kernels read, built once per block of rows: ``[Z, 1]``
+    (full), ``[Z*Z, Z, 1]`` (diag) or ``[|z|^2, Z, 1]`` (spherical). With it, scoring is
+    one GEMM and the first moments (and, for diag and spherical, the second) are one
+    more.
+``log_gaussian(A, means, prec_chol)``
+    ``log N(z | mu_k, Sigma_k)`` for every row of the design matrix ``A`` and every
+    component, via the precision Cholesky factor:
+    ``-0.5 (D log 2 pi + ||(z - mu) U||^2) + log det U``.
+``moments(A, resp_w)``
+    The responsibility-weighted statistics ``(s0, s1, s2)`` of a block: sums of
+    ``r_ik``, ``r_ik z_i`` and ``r_ik z_i z_i^T`` (full), its diagonal (diag) or its
+    trace divided by ``D`` (spherical). Rows whose weight for a component is zero are
+    skipped (sparse EM), which is where the full type saves most of its time.
 ``covariance(s0, s1, s2, n_eff, reg_covar, prior_weight)``
     Covariances from sufficient statistics, shrunk towards the identity by a weak
     conjugate (inverse-Wishart-like) prior worth ``prior_weight`` rows, plus
@@ -16,9 +27,6 @@ Each family provides
     Upper-triangular ``U`` with ``U U^T = cov^-1`` (full), or ``1/sqrt(var)``.
 ``log_det(prec_chol, n_features)``
     ``log det U``, i.e. ``-0.5 log det cov``, per component.
-``log_gaussian(Z, means, prec_chol)``
-    ``log N(z | mu_k, Sigma_k)`` for every row and component, via the precision
-    Cholesky factor: ``-0.5 (D log 2 pi + ||(z - mu) U||^2) + log det U``.
 ``matrices(cov, n_features)``
     Full ``(K, D, D)`` matrices, for reporting and for the drift distances.
 ``n_parameters(n_components, n_features)``
@@ -52,21 +60,30 @@ def _shrink(sample_cov, s0, n_eff, prior_weight, identity):
 
 
 # --------------------------------------------------------------------------- full
-def _full_second_moment(Z, resp_w, n_features):
+def _full_design(Z):
+    A = np.empty((Z.shape[0], Z.shape[1] + 1))
+    A[:, :-1] = Z
+    A[:, -1] = 1.0
+    return A
+
+
+def _full_moments(A, resp_w):
+    n_features = A.shape[1] - 1
+    first = resp_w.T @ A                      # (K, D + 1): s1 and s0 in one GEMM
+    Z = A[:, :n_features]
     n_components = resp_w.shape[1]
     s2 = np.empty((n_components, n_features, n_features))
     for k in range(n_components):
         rk = resp_w[:, k]
         rows = np.flatnonzero(rk)
-        if rows.size == 0:
-            s2[k] = 0.0
-            continue
         if rows.size == rk.size:
-            Zk, rk_used = Z, rk
+            s2[k] = (Z * rk[:, None]).T @ Z
+        elif rows.size:
+            Zk = Z[rows]
+            s2[k] = (Zk * rk[rows, None]).T @ Zk
         else:
-            Zk, rk_used = Z[rows], rk[rows]
-        s2[k] = (Zk * rk_used[:, None]).T @ Zk
-    return s2
+            s2[k] = 0.0
+    return first[:, -1], first[:, :-1], s2
 
 
 def _full_covariance(s0, s1, s2, n_eff, reg_covar, prior_weight):
@@ -108,18 +125,15 @@ def _full_log_det(prec_chol, n_features):
     return np.sum(np.log(np.diagonal(prec_chol, axis1=1, axis2=2)), axis=1)
 
 
-def _full_log_gaussian(Z, means, prec_chol):
-    n_samples = Z.shape[0]
+def _full_log_gaussian(A, means, prec_chol):
+    n_samples = A.shape[0]
     n_components, n_features = means.shape
     # One GEMM whitens the rows for every component at once: the K factors U_k stand
-    # side by side in W, and a column of ones in Z folds the centring -mu_k U_k in.
+    # side by side in W, and the design's column of ones folds the centring -mu_k U_k in.
     W = np.empty((n_features + 1, n_components * n_features))
     W[:n_features] = np.transpose(prec_chol, (1, 0, 2)).reshape(n_features, -1)
     W[n_features] = -np.einsum("kd,kde->ke", means, prec_chol).reshape(-1)
-    Z1 = np.empty((n_samples, n_features + 1))
-    Z1[:, :n_features] = Z
-    Z1[:, n_features] = 1.0
-    Y = (Z1 @ W).reshape(n_samples, n_components, n_features)
+    Y = (A @ W).reshape(n_samples, n_components, n_features)
     maha = np.einsum("nkd,nkd->nk", Y, Y)
     log_det = _full_log_det(prec_chol, n_features)
     return -0.5 * (n_features * LOG_2PI + maha) + log_det
@@ -134,8 +148,19 @@ def _full_n_parameters(n_components, n_features):
 
 
 # --------------------------------------------------------------------------- diag
-def _diag_second_moment(Z, resp_w, n_features):
-    return resp_w.T @ (Z * Z)
+def _diag_design(Z):
+    n_features = Z.shape[1]
+    A = np.empty((Z.shape[0], 2 * n_features + 1))
+    np.square(Z, out=A[:, :n_features])
+    A[:, n_features:-1] = Z
+    A[:, -1] = 1.0
+    return A
+
+
+def _diag_moments(A, resp_w):
+    n_features = (A.shape[1] - 1) // 2
+    m = resp_w.T @ A                          # (K, 2D + 1): s2, s1 and s0 in one GEMM
+    return m[:, -1], m[:, n_features:-1], m[:, :n_features]
 
 
 def _diag_covariance(s0, s1, s2, n_eff, reg_covar, prior_weight):
@@ -157,12 +182,17 @@ def _diag_log_det(prec_chol, n_features):
     return np.sum(np.log(prec_chol), axis=1)
 
 
-def _diag_log_gaussian(Z, means, prec_chol):
+def _diag_log_gaussian(A, means, prec_chol):
+    # ||(z - mu) / sigma||^2 expanded: z^2 p - 2 z mu p + mu^2 p, one GEMM with the
+    # design [z^2, z, 1]; the constants ride in the last row.
     n_features = means.shape[1]
     prec = prec_chol**2
-    maha = (Z * Z) @ prec.T - 2.0 * (Z @ (means * prec).T) + np.sum(means**2 * prec, axis=1)
-    np.maximum(maha, 0.0, out=maha)
-    return -0.5 * (n_features * LOG_2PI + maha) + _diag_log_det(prec_chol, n_features)
+    B = np.empty((2 * n_features + 1, means.shape[0]))
+    B[:n_features] = -0.5 * prec.T
+    B[n_features:-1] = (means * prec).T
+    B[-1] = (-0.5 * np.sum(means**2 * prec, axis=1)
+             + _diag_log_det(prec_chol, n_features) - 0.5 * n_features * LOG_2PI)
+    return A @ B
 
 
 def _diag_matrices(var, n_features):
@@ -174,8 +204,19 @@ def _diag_n_parameters(n_components, n_features):
 
 
 # ---------------------------------------------------------------------- spherical
-def _spherical_second_moment(Z, resp_w, n_features):
-    return resp_w.T @ np.einsum("nd,nd->n", Z, Z) / n_features
+def _spherical_design(Z):
+    n_features = Z.shape[1]
+    A = np.empty((Z.shape[0], n_features + 2))
+    A[:, 0] = np.einsum("nd,nd->n", Z, Z)
+    A[:, 1:-1] = Z
+    A[:, -1] = 1.0
+    return A
+
+
+def _spherical_moments(A, resp_w):
+    n_features = A.shape[1] - 2
+    m = resp_w.T @ A
+    return m[:, -1], m[:, 1:-1], m[:, 0] / n_features
 
 
 def _spherical_covariance(s0, s1, s2, n_eff, reg_covar, prior_weight):
@@ -189,16 +230,15 @@ def _spherical_log_det(prec_chol, n_features):
     return n_features * np.log(prec_chol)
 
 
-def _spherical_log_gaussian(Z, means, prec_chol):
+def _spherical_log_gaussian(A, means, prec_chol):
     n_features = means.shape[1]
     prec = prec_chol**2
-    maha = (
-        np.einsum("nd,nd->n", Z, Z)[:, None] * prec
-        - 2.0 * (Z @ means.T) * prec
-        + np.sum(means**2, axis=1) * prec
-    )
-    np.maximum(maha, 0.0, out=maha)
-    return -0.5 * (n_features * LOG_2PI + maha) + _spherical_log_det(prec_chol, n_features)
+    B = np.empty((n_features + 2, means.shape[0]))
+    B[0] = -0.5 * prec
+    B[1:-1] = (means * prec[:, None]).T
+    B[-1] = (-0.5 * np.sum(means**2, axis=1) * prec
+             + _spherical_log_det(prec_chol, n_features) - 0.5 * n_features * LOG_2PI)
+    return A @ B
 
 
 def _spherical_matrices(var, n_features):
@@ -224,7 +264,8 @@ class _Family:
 FAMILIES = {
     "full": _Family(
         "full",
-        second_moment=_full_second_moment,
+        design=_full_design,
+        moments=_full_moments,
         covariance=_full_covariance,
         precision_cholesky=_full_precision_cholesky,
         log_det=_full_log_det,
@@ -234,7 +275,8 @@ FAMILIES = {
     ),
     "diag": _Family(
         "diag",
-        second_moment=_diag_second_moment,
+        design=_diag_design,
+        moments=_diag_moments,
         covariance=_diag_covariance,
         precision_cholesky=_diag_precision_cholesky,
         log_det=_diag_log_det,
@@ -244,7 +286,8 @@ FAMILIES = {
     ),
     "spherical": _Family(
         "spherical",
-        second_moment=_spherical_second_moment,
+        design=_spherical_design,
+        moments=_spherical_moments,
         covariance=_spherical_covariance,
         precision_cholesky=_diag_precision_cholesky,
         log_det=_spherical_log_det,

@@ -25,17 +25,10 @@ from .covariance import FAMILIES, COVARIANCE_TYPES
 from .errors import ModelError
 from .schedule import StepSchedule
 
-__all__ = ["Mixture", "Scores", "FORMAT_VERSION", "log_sum_exp"]
+__all__ = ["Mixture", "Scores", "FORMAT_VERSION"]
 
 FORMAT_VERSION = 1
 _TINY = 10.0 * np.finfo(np.float64).eps
-
-
-def log_sum_exp(a):
-    """``log(sum(exp(a), axis=1))`` for ``a`` of shape (n, K), without overflow."""
-    top = np.max(a, axis=1)
-    top = np.where(np.isfinite(top), top, 0.0)
-    return np.log(np.sum(np.exp(a - top[:, None]), axis=1)) + top
 
 
 @dataclass(frozen=True)
@@ -214,19 +207,24 @@ class Mixture:
         return (self._rows(X) - self.center) / self.scale
 
     # --------------------------------------------------------------- scoring
-    def _log_joint(self, Z):
-        """``log w_k + log N(z | k)`` in standardised units, shape (n, K)."""
-        logp = self.family.log_gaussian(Z, self.means, self.prec_chol)
-        logp += np.log(self.weights)
-        return logp
-
-    def _scores(self, Z) -> Scores:
-        log_joint = self._log_joint(Z)
-        log_norm = log_sum_exp(log_joint)
-        resp = np.exp(log_joint - log_norm[:, None])
+    def _scores(self, Z, A=None) -> Scores:
+        """Scores of standardised rows ``Z``; ``A`` is their design matrix if already built."""
+        if A is None:
+            A = self.family.design(Z)
+        log_joint = self.family.log_gaussian(A, self.means, self.prec_chol)
+        log_joint += np.log(self.weights)
+        top = np.max(log_joint, axis=1)
+        log_joint -= top[:, None]
+        # Responsibilities below e^-230 (1e-100) are set to exactly 0: they change
+        # nothing measurable, and as subnormal numbers they slow every later GEMM
+        # by orders of magnitude.
+        log_joint[log_joint < -230.0] = -np.inf
+        resp = np.exp(log_joint)
+        total = np.sum(resp, axis=1)
+        resp /= total[:, None]
         component = np.argmax(resp, axis=1)
         return Scores(
-            log_density=log_norm - np.sum(np.log(self.scale)),
+            log_density=np.log(total) + top - np.sum(np.log(self.scale)),
             resp=resp,
             component=component,
             segment=self.ids[component],
@@ -249,21 +247,18 @@ class Mixture:
 
     def component_log_density(self, X) -> np.ndarray:
         """``log N(x | mu_k, Sigma_k)`` in data units, shape (n_samples, n_components)."""
-        Z = self.standardise(X)
-        return self.family.log_gaussian(Z, self.means, self.prec_chol) - np.sum(
+        A = self.family.design(self.standardise(X))
+        return self.family.log_gaussian(A, self.means, self.prec_chol) - np.sum(
             np.log(self.scale)
         )
 
     # -------------------------------------------------------------- learning
-    def _accumulate(self, Z, resp, row_w):
-        """Weighted statistics of a block: s0 (K,), s1 (K, D), s2."""
-        if self.resp_floor > 0.0:
-            resp = np.where(resp >= self.resp_floor, resp, 0.0)
+    def _accumulate(self, A, resp, row_w):
+        """Weighted statistics ``(s0, s1, s2)`` of a block with design matrix ``A``."""
         resp_w = resp * row_w[:, None]
-        s0 = resp_w.sum(axis=0)
-        s1 = resp_w.T @ Z
-        s2 = self.family.second_moment(Z, resp_w, self.n_features)
-        return s0, s1, s2
+        if self.resp_floor > 0.0:
+            resp_w[resp < self.resp_floor] = 0.0
+        return self.family.moments(A, resp_w)
 
     def _derive(self, s0, s1, s2, sumsq) -> dict:
         """Parameters from statistics (standardised units)."""
@@ -327,10 +322,10 @@ class Mixture:
         while pos < n:
             at = model.n_rows
             take = min(n - pos, self.refresh_rows - at % self.refresh_rows)
-            Zb = Z[pos : pos + take]
-            scores = model._scores(Zb)
+            A = self.family.design(Z[pos : pos + take])
+            scores = model._scores(None, A)
             row_w, keep = self.schedule.row_weights(at, take)
-            b0, b1, b2 = model._accumulate(Zb, scores.resp, row_w)
+            b0, b1, b2 = model._accumulate(A, scores.resp, row_w)
             s0 = keep * s0 + b0
             s1 = keep * s1 + b1
             s2 = keep * s2 + b2
@@ -357,13 +352,10 @@ class Mixture:
 
     def _em_step(self, Z):
         n = Z.shape[0]
-        scores = self._scores(Z)
-        row_w = np.full(n, 1.0 / n)
-        if self.resp_floor > 0.0:
-            # Batch EM stays exact: the sparse floor is for the stepwise path only.
-            s0, s1, s2 = replace(self, resp_floor=0.0)._accumulate(Z, scores.resp, row_w)
-        else:
-            s0, s1, s2 = self._accumulate(Z, scores.resp, row_w)
+        A = self.family.design(Z)
+        scores = self._scores(Z, A)
+        # Batch EM stays exact: the sparse floor is for the stepwise path only.
+        s0, s1, s2 = self.family.moments(A, scores.resp / n)
         sumsq = 1.0 / n
         params = self._derive(s0, s1, s2, sumsq)
         new = replace(self, s0=s0, s1=s1, s2=s2, sumsq=sumsq, **params)

@@ -95,8 +95,7 @@ def _from_hard_labels(template: Mixture, Z, labels) -> Mixture:
     n = Z.shape[0]
     resp = np.zeros((n, template.n_components))
     resp[np.arange(n), labels] = 1.0
-    row_w = np.full(n, 1.0 / n)
-    s0, s1, s2 = template._accumulate(Z, resp, row_w)
+    s0, s1, s2 = template.family.moments(template.family.design(Z), resp / n)
     sumsq = 1.0 / n
     from dataclasses import replace
 
