@@ -9,6 +9,7 @@ from shoal.config.loading import (
 )
 from shoal.config.settings import (
     COVARIANCE_TYPES,
+    HttpSettings,
     LearningSettings,
     LimitSettings,
     OutputSettings,
@@ -25,6 +26,7 @@ __all__ = [
     "parse_config",
     "settings_to_dict",
     "COVARIANCE_TYPES",
+    "HttpSettings",
     "LearningSettings",
     "LimitSettings",
     "OutputSettings",

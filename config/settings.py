@@ -15,6 +15,7 @@ __all__ = [
     "LimitSettings",
     "OutputSettings",
     "LearningSettings",
+    "HttpSettings",
     "Settings",
     "COVARIANCE_TYPES",
     "OUTPUT_FORMATS",
@@ -59,6 +60,9 @@ class WatchSettings:
     poll_seconds: float = _f(1.0, "polling interval when polling is on", min=0.05, max=3600.0)
     queue_size: int = _f(10000, "bound of the queue between file events and the worker",
                          min=1, max=10_000_000)
+    stall_seconds: float = _f(
+        60.0, "the worker counts as stuck (unhealthy; no systemd watchdog ping) after this "
+              "long without progress", min=1.0, max=86400.0)
 
 
 @dataclass(frozen=True)
@@ -92,6 +96,13 @@ class LearningSettings:
 
 
 @dataclass(frozen=True)
+class HttpSettings:
+    address: str = _f("127.0.0.1", "address the status endpoint listens on (loopback by default)")
+    port: int | None = _f(None, "port of the status endpoint (null: off; 0: any free port)",
+                          min=0, max=65535)
+
+
+@dataclass(frozen=True)
 class Settings:
     """The whole configuration. Folders are absolute once loaded."""
 
@@ -111,6 +122,7 @@ class Settings:
     limits: LimitSettings = _f(LimitSettings(), "input limits")
     output: OutputSettings = _f(OutputSettings(), "labels files")
     learning: LearningSettings = _f(LearningSettings(), "model updates")
+    http: HttpSettings = _f(HttpSettings(), "status page, metrics and health over HTTP")
 
     @property
     def columns(self) -> tuple[str, ...]:
