@@ -9,6 +9,11 @@ from shoal.config.loading import (
 )
 from shoal.config.settings import (
     COVARIANCE_TYPES,
+    AlertSettings,
+    BoundOverride,
+    DriftBounds,
+    DriftSettings,
+    WebhookSettings,
     HttpSettings,
     LearningSettings,
     LimitSettings,
@@ -26,6 +31,11 @@ __all__ = [
     "parse_config",
     "settings_to_dict",
     "COVARIANCE_TYPES",
+    "AlertSettings",
+    "BoundOverride",
+    "DriftBounds",
+    "DriftSettings",
+    "WebhookSettings",
     "HttpSettings",
     "LearningSettings",
     "LimitSettings",

@@ -11,6 +11,7 @@ import dataclasses
 import re
 import types
 import typing
+import urllib.parse
 from importlib import resources
 from pathlib import Path
 from typing import Any, Mapping
@@ -78,8 +79,49 @@ def parse_config(data: Mapping[str, Any], base_dir: str | Path = ".") -> Setting
     folders = {name: (base / getattr(settings, name)).resolve()
                for name in ("inbox", "outbox", "state")}
     settings = dataclasses.replace(settings, **folders)
+    settings = _resolve_alert_paths(settings, base)
     _check_whole(settings)
+    _check_drift_and_alerts(settings)
     return settings
+
+
+def _resolve_alert_paths(s: Settings, base: Path) -> Settings:
+    """Alert file and webhook secret files, absolute (relative ones from the config's folder)."""
+    a = s.alerts
+    hooks = tuple(dataclasses.replace(h, secret_file=(base / h.secret_file).resolve())
+                  if h.secret_file is not None else h for h in a.webhooks)
+    file = (base / a.file).resolve() if a.file is not None else s.state / "alerts.jsonl"
+    return dataclasses.replace(s, alerts=dataclasses.replace(a, file=file, webhooks=hooks))
+
+
+def _check_drift_and_alerts(s: Settings) -> None:
+    d = s.drift
+    if d.time_column is not None and d.time_column not in s.passthrough:
+        raise ConfigError(f"drift.time_column: expected one of the passthrough columns "
+                          f"{list(s.passthrough)}, found {d.time_column!r}")
+    for i, o in enumerate(d.overrides):
+        key = f"drift.overrides[{i}]"
+        if o.feature is not None and o.feature not in s.features:
+            raise ConfigError(f"{key}.feature: expected one of the features "
+                              f"{list(s.features)}, found {o.feature!r}")
+        others = [n for n in ("mean_shift", "spread_ratio", "weight_change")
+                  if getattr(o, n) is not None]
+        if o.feature is not None and (others or o.feature_shift is None):
+            raise ConfigError(f"{key}: expected only feature_shift beside feature, found "
+                              f"{others or 'no feature_shift'}")
+        if o.segment is None and o.feature is None:
+            raise ConfigError(f"{key}: expected a segment or a feature to apply to, found "
+                              "neither (set defaults in drift.bounds)")
+    for i, h in enumerate(s.alerts.webhooks):
+        key = f"alerts.webhooks[{i}]"
+        url = urllib.parse.urlsplit(h.url)
+        if url.scheme not in ("http", "https") or not url.hostname:
+            raise ConfigError(f"{key}.url: expected an http:// or https:// URL with a host, "
+                              f"found {h.url!r}")
+        if h.secret_file is None and h.secret_env is None:
+            raise ConfigError(f"{key}: expected secret_file or secret_env (the HMAC signing "
+                              "secret), found neither")
+    # The host allow-list is enforced, with a log line, when alerts are sent.
 
 
 def _merge(base: dict, over: dict) -> dict:
@@ -134,6 +176,8 @@ def _expected(hint: Any, fld: dataclasses.Field) -> str:
             Path: "a folder path"}.get(hint)
     if hint is SegmentCount:
         return "an integer or a mapping {min: , max: }"
+    if typing.get_origin(hint) is tuple and dataclasses.is_dataclass(typing.get_args(hint)[0]):
+        return "a list of mappings"
     if typing.get_origin(hint) is tuple:
         return "a list of column names" + (" (at least one)" if meta.get("required") else "")
     if typing.get_origin(hint) is types.UnionType:
@@ -176,6 +220,11 @@ def _convert(value: Any, hint: Any, fld: dataclasses.Field, key: str):
             raise ConfigError(f"{key}: expected min <= max, found min={built.min}, "
                               f"max={built.max}")
         return built
+    if typing.get_origin(hint) is tuple and dataclasses.is_dataclass(typing.get_args(hint)[0]):
+        if not isinstance(value, list):
+            raise bad()
+        inner = typing.get_args(hint)[0]
+        return tuple(_build(inner, item, f"{key}[{i}].") for i, item in enumerate(value))
     if typing.get_origin(hint) is tuple:
         if not isinstance(value, list):
             raise bad()

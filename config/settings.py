@@ -16,6 +16,11 @@ __all__ = [
     "OutputSettings",
     "LearningSettings",
     "HttpSettings",
+    "DriftBounds",
+    "BoundOverride",
+    "DriftSettings",
+    "WebhookSettings",
+    "AlertSettings",
     "Settings",
     "COVARIANCE_TYPES",
     "OUTPUT_FORMATS",
@@ -103,6 +108,101 @@ class HttpSettings:
 
 
 @dataclass(frozen=True)
+class DriftBounds:
+    """How far a segment may move from its reference before it counts as drift.
+
+    Each statistic is measured over one evaluation window of rows against the
+    reference snapshot; null switches a statistic off.
+    """
+
+    mean_shift: float | None = _f(
+        0.5, "segment mean moved this many reference standard deviations (Mahalanobis)",
+        min=0.0, min_open=True)
+    spread_ratio: float | None = _f(
+        1.5, "segment spread grew or shrank by this factor (geometric mean of the sd ratios)",
+        min=1.0, min_open=True)
+    weight_change: float | None = _f(
+        0.05, "segment's share of rows changed by this much (absolute)", min=0.0, max=1.0,
+        min_open=True)
+    fit_drop: float | None = _f(
+        0.5, "mean log-density per row fell this far below the reference level (nats/row)",
+        min=0.0, min_open=True)
+    feature_shift: float | None = _f(
+        None, "one feature's mean moved this many reference sds (null: off; set it per "
+              "feature in overrides)", min=0.0, min_open=True)
+
+
+@dataclass(frozen=True)
+class BoundOverride:
+    """Bounds for one segment, one feature, or one feature of one segment."""
+
+    segment: int | None = _f(None, "segment id the override applies to (null: every segment)",
+                             min=0)
+    feature: str | None = _f(None, "feature whose feature_shift bound this sets (null: none)")
+    mean_shift: float | None = _f(None, "see drift.bounds", min=0.0, min_open=True)
+    spread_ratio: float | None = _f(None, "see drift.bounds", min=1.0, min_open=True)
+    weight_change: float | None = _f(None, "see drift.bounds", min=0.0, max=1.0,
+                                     min_open=True)
+    feature_shift: float | None = _f(None, "see drift.bounds", min=0.0, min_open=True)
+
+
+@dataclass(frozen=True)
+class DriftSettings:
+    enabled: bool = _f(True, "compare segments with their reference and raise alerts")
+    window_rows: int = _f(4000, "rows per evaluation window (the unit of persistence)",
+                          min=100, max=10_000_000)
+    settle_rows: int = _f(
+        20000, "rows learned after warm-up before the reference snapshot is taken",
+        min=0, max=1_000_000_000)
+    bounds: DriftBounds = _f(DriftBounds(), "bounds of each statistic")
+    overrides: tuple[BoundOverride, ...] = _f(
+        (), "per-segment or per-feature bounds, e.g. [{segment: 3, mean_shift: 1.0}]")
+    noise_multiple: float = _f(
+        3.0, "a move must also exceed this many times its estimation noise", min=0.0)
+    persist: int = _f(3, "consecutive windows past a bound before an alert fires", min=1,
+                      max=1000)
+    resolve_fraction: float = _f(
+        0.8, "a firing alert resolves once the statistic is back under this share of its "
+             "bound", min=0.0, max=1.0, min_open=True)
+    resolve_persist: int = _f(3, "... for this many consecutive windows", min=1, max=1000)
+    cool_down_windows: int = _f(
+        5, "after an alert resolves, the same segment and statistic cannot fire again for "
+           "this many windows", min=0, max=1_000_000)
+    critical_multiple: float = _f(
+        2.0, "severity is critical when the value is at least this multiple of its bound "
+             "(spread_ratio: this power)", min=1.0)
+    time_column: str | None = _f(
+        None, "a passthrough column holding each row's time; alerts give time ranges "
+              "from it")
+
+
+@dataclass(frozen=True)
+class WebhookSettings:
+    url: str = _f("", "http:// or https:// URL that receives each alert as a JSON POST",
+                  required=True)
+    secret_file: Path | None = _f(
+        None, "file holding the HMAC-SHA256 signing secret (relative: from the config's "
+              "folder)")
+    secret_env: str | None = _f(None, "environment variable holding the signing secret")
+    timeout_seconds: float = _f(5.0, "timeout of one request", min=0.1, max=300.0)
+    retries: int = _f(8, "failed attempts retried this many times before the alert waits "
+                         "for the next start", min=0, max=1000)
+    backoff_seconds: float = _f(1.0, "first retry delay; doubles each retry, with jitter",
+                                min=0.0, max=3600.0)
+    max_backoff_seconds: float = _f(300.0, "longest retry delay", min=0.0, max=86400.0)
+
+
+@dataclass(frozen=True)
+class AlertSettings:
+    file: Path | None = _f(
+        None, "JSON-lines file every alert is appended to (null: alerts.jsonl in the state "
+              "folder)")
+    webhooks: tuple[WebhookSettings, ...] = _f((), "HTTP endpoints alerts are POSTed to")
+    allow_hosts: tuple[str, ...] = _f(
+        (), "host names webhooks may be sent to; any other host is refused")
+
+
+@dataclass(frozen=True)
 class Settings:
     """The whole configuration. Folders are absolute once loaded."""
 
@@ -115,7 +215,8 @@ class Settings:
     covariance: str = _f("full", "covariance type", choices=COVARIANCE_TYPES)
     warmup_rows: int = _f(2000, "rows buffered before the first model is fitted", min=10)
     half_life_rows: int | None = _f(
-        None, "rows after which old data counts half (null: no forgetting)", min=1)
+        50000, "rows after which old data counts half, so the model tracks a moving "
+               "population (null: no forgetting)", min=1)
     seed: int = _f(0, "seed of every random choice", min=0, max=2**32 - 1)
     log_level: str = _f("info", "lowest level logged", choices=LOG_LEVELS)
     watch: WatchSettings = _f(WatchSettings(), "inbox watching")
@@ -123,6 +224,8 @@ class Settings:
     output: OutputSettings = _f(OutputSettings(), "labels files")
     learning: LearningSettings = _f(LearningSettings(), "model updates")
     http: HttpSettings = _f(HttpSettings(), "status page, metrics and health over HTTP")
+    drift: DriftSettings = _f(DriftSettings(), "drift of segments against their reference")
+    alerts: AlertSettings = _f(AlertSettings(), "where alerts are delivered")
 
     @property
     def columns(self) -> tuple[str, ...]:

@@ -37,7 +37,7 @@ def test_minimal_config_gets_defaults_and_absolute_folders(tmp_path):
     assert s.features == ("temp_c", "power_kw")
     assert s.segments == SegmentCount(2, 6) and not s.segments.fixed
     assert s.inbox == tmp_path / "inbox" and s.state == tmp_path / "state"
-    assert s.half_life_rows is None and s.covariance == "full"
+    assert s.half_life_rows == 50000 and s.covariance == "full"
     assert s.watch.settle_seconds == 1.0 and s.output.format == "parquet"
     # the effective config printed by check-config reads back to the same settings
     assert parse_config(yaml.safe_load(dump_settings(s)), "/elsewhere") == s
