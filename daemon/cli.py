@@ -20,7 +20,9 @@ from shoal.core import ShoalError
 from shoal.daemon.errors import InputRejected, ServiceError, UsageError
 from shoal.daemon.layout import StateLock, prepare_folders, remove_stale_temps
 from shoal.daemon.logs import log_event, setup_logging
+from shoal.daemon.ops_commands import add_operating_commands, run_watch
 from shoal.daemon.pipeline import Pipeline
+from shoal.daemon.progress import progress
 from shoal.daemon.store import StateStore
 
 __all__ = ["main", "build_parser", "open_service_parts"]
@@ -63,6 +65,7 @@ def build_parser() -> argparse.ArgumentParser:
                     help="labels file to write (.csv for CSV, otherwise Parquet)")
     sp = with_config(cmd("segments", "show the current segments", _cmd_segments))
     sp.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    add_operating_commands(cmd, with_config)   # report, status
     with_config(cmd("check-config", "validate the configuration and print it in full",
                     _cmd_check_config))
     sp = cmd("demo", "run the cold-storage warehouse scenario end to end", _cmd_demo)
@@ -119,14 +122,8 @@ def _load(args) -> Settings:
 
 
 def _cmd_watch(args) -> int:
-    from shoal.daemon.service import Service
-
     settings = _load(args)
-    with open_service_parts(settings) as (layout, store, pipeline):
-        service = Service(settings, layout, pipeline)
-        with _stop_on_signals(pipeline.stop, service.request_stop):
-            service.run()
-    return 0
+    return run_watch(settings, Path(args.config), open_service_parts, _stop_on_signals)
 
 
 def _cmd_ingest(args) -> int:
@@ -138,7 +135,7 @@ def _cmd_ingest(args) -> int:
     results = []
     with open_service_parts(settings) as (layout, store, pipeline):
         with _stop_on_signals(pipeline.stop):
-            for p in paths:
+            for p in progress(paths, total=len(paths), desc="inputs", unit="file"):
                 in_inbox = p.resolve().parent == layout.inbox
                 results.append(pipeline.process(p, in_inbox=in_inbox))
     bad = [r for r in results if r.outcome in ("quarantined", "refused", "vanished")]

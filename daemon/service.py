@@ -51,6 +51,8 @@ class Service:
         self._in_ready: set[str] = set()
         self._settled_out: dict[str, tuple] = {}    # path -> stat key of a file left behind
         self.counts: dict[str, int] = {}
+        self._new_settings: Settings | None = None
+        self._new_settings_note: Callable[[Settings], None] | None = None
 
     # -- control ---------------------------------------------------------------------
     def request_stop(self) -> None:
@@ -60,6 +62,28 @@ class Service:
         except queue.Full:
             pass
 
+    def replace_settings(self, settings: Settings,
+                         applied: Callable[[Settings], None] | None = None) -> None:
+        """Use ``settings`` from the next turn of the loop, between inputs (any thread).
+
+        The caller has checked that only reloadable settings changed
+        (:mod:`shoal.daemon.reload`); ``applied`` is called on the worker once in use.
+        """
+        self._new_settings_note = applied
+        self._new_settings = settings
+        try:
+            self.watcher.events.put_nowait(("", False))  # wake the worker
+        except queue.Full:
+            pass
+
+    def _take_new_settings(self) -> None:
+        settings, self._new_settings = self._new_settings, None
+        self.settings = self.pipeline.settings = settings
+        self.gate.settle = float(settings.watch.settle_seconds)
+        self.gate.ignore = tuple(settings.watch.ignore)
+        if self._new_settings_note is not None:
+            self._new_settings_note(settings)
+
     def run(self) -> None:
         """Serve until a stop is requested."""
         self.watcher.start()
@@ -68,6 +92,8 @@ class Service:
         next_rescan = 0.0
         try:
             while not self.stop_event.is_set():
+                if self._new_settings is not None:
+                    self._take_new_settings()
                 if self.watcher.ensure_alive():
                     log_event("observer_rebuilt", logging.WARNING,
                               rebuilds=self.watcher.rebuilds)

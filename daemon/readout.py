@@ -1,0 +1,226 @@
+"""Read the state without touching it: the data behind ``shoal status``, the status
+page, ``/status``, ``/metrics`` and ``shoal report``.
+
+:class:`StateReader` is a :class:`~shoal.daemon.store.StateStore` opened
+read-only (``mode=ro``, ``query_only``), so a report or a scrape can run beside
+a live service without taking its lock and can never write. Alerts are read
+from whichever alert table the store has; a store without alerts yet gives an
+empty list.
+"""
+from __future__ import annotations
+
+import json
+import os
+import sqlite3
+import time
+from pathlib import Path
+from typing import Any
+
+from shoal.config import Settings
+from shoal.daemon.errors import StateError
+from shoal.daemon.gate import ReadinessGate
+from shoal.daemon.layout import Layout
+from shoal.daemon.store import StateStore
+from shoal.daemon.summary import segment_summary
+
+__all__ = ["StateReader", "open_reader", "read_alerts", "inbox_backlog", "state_snapshot",
+           "format_status", "ledger_totals"]
+
+_ALERT_TABLES = ("alert_history", "alerts", "alert_outbox")
+
+
+class StateReader(StateStore):
+    """The state store opened read-only; every read method of the store works."""
+
+    def __init__(self, path: Path):  # noqa: D107 - no schema set-up, no transaction
+        self.path = Path(path)
+        self.checkpoints_kept = 0
+        self.clock = time.time
+        if not self.path.exists():
+            raise StateError(f"no state store at {self.path} yet: nothing has been processed")
+        try:
+            self.db = sqlite3.connect(f"file:{self.path}?mode=ro", uri=True, timeout=10.0,
+                                      check_same_thread=False)
+            self.db.execute("PRAGMA query_only=ON")
+            self.db.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()
+        except sqlite3.DatabaseError as exc:
+            raise StateError(f"state store {self.path} cannot be read: {exc}") from exc
+
+    def tables(self) -> set[str]:
+        return {name for (name,) in self.db.execute(
+            "SELECT name FROM sqlite_master WHERE type = 'table'")}
+
+
+def open_reader(layout: Layout) -> StateReader:
+    return StateReader(layout.db)
+
+
+def ledger_totals(reader: StateStore) -> dict[str, Any]:
+    """Inputs and rows per ledger outcome, the last commit time and the last input."""
+    by = {}
+    for outcome, n, rows, bad in reader.db.execute(
+            "SELECT outcome, COUNT(*), COALESCE(SUM(rows), 0), COALESCE(SUM(rows_invalid), 0) "
+            "FROM ledger GROUP BY outcome"):
+        by[outcome] = {"inputs": n, "rows": rows, "rows_invalid": bad}
+    last_commit = reader.db.execute(
+        "SELECT MAX(finished_at) FROM ledger WHERE outcome = 'committed'").fetchone()[0]
+    last = reader.db.execute("SELECT name, outcome, rows, finished_at, model_version FROM ledger "
+                             "ORDER BY id DESC LIMIT 1").fetchone()
+    err = reader.db.execute("SELECT name, reason, finished_at FROM ledger "
+                            "WHERE outcome = 'quarantined' ORDER BY id DESC LIMIT 1").fetchone()
+    return {
+        "by_outcome": by,
+        "last_commit_time": last_commit,
+        "last_input": None if last is None else dict(zip(
+            ("name", "outcome", "rows", "time", "model_version"), last)),
+        "last_error": None if err is None else dict(zip(("name", "reason", "time"), err)),
+    }
+
+
+def _alert_record(row: dict) -> dict:
+    """One alert as a flat dict, whatever table it came from."""
+    out = dict(row)
+    payload = out.pop("payload", None)
+    if isinstance(payload, str):
+        try:
+            payload = json.loads(payload)
+        except json.JSONDecodeError:
+            payload = {"payload": payload}
+    if isinstance(payload, dict):
+        for key, value in payload.items():
+            out.setdefault(key, value)
+    out.setdefault("status", "firing")
+    out.setdefault("severity", "warning")
+    return out
+
+
+def read_alerts(reader: StateReader, since: float | None = None,
+                limit: int | None = None) -> list[dict]:
+    """Alerts newest first (``created`` epoch seconds >= ``since``); [] when none exist."""
+    tables = reader.tables()
+    table = next((t for t in _ALERT_TABLES if t in tables), None)
+    if table is None:
+        return []
+    cur = reader.db.execute(f"SELECT * FROM {table}")  # noqa: S608 - name from a fixed list
+    names = [d[0] for d in cur.description]
+    rows = [_alert_record(dict(zip(names, r))) for r in cur.fetchall()]
+    if since is not None:
+        rows = [r for r in rows if (r.get("created") or 0) >= since]
+    rows.sort(key=lambda r: (r.get("created") or 0, str(r.get("id"))), reverse=True)
+    return rows if limit is None else rows[:limit]
+
+
+def inbox_backlog(settings: Settings, layout: Layout, done_names: set[str] | None = None,
+                  now: float | None = None) -> dict[str, Any]:
+    """Files waiting in the inbox and the age of the oldest (the lag), in seconds."""
+    now = time.time() if now is None else now
+    gate = ReadinessGate(settings.watch.settle_seconds, settings.watch.ignore)
+    oldest, count = None, 0
+    try:
+        entries = list(os.scandir(layout.inbox))
+    except OSError:
+        return {"files": None, "lag_seconds": None}
+    for e in entries:
+        if gate.ignored(e.name) or not e.is_file(follow_symlinks=False):
+            continue
+        if settings.output.keep_inputs and done_names and e.name in done_names:
+            continue
+        count += 1
+        mtime = e.stat(follow_symlinks=False).st_mtime
+        oldest = mtime if oldest is None else min(oldest, mtime)
+    return {"files": count, "lag_seconds": 0.0 if oldest is None else max(0.0, now - oldest)}
+
+
+def state_snapshot(reader: StateReader, settings: Settings, layout: Layout,
+                   now: float | None = None, recent_alerts: int = 10) -> dict[str, Any]:
+    """Everything ``shoal status`` and ``/status`` show, as plain data."""
+    now = time.time() if now is None else now
+    summary = segment_summary(reader, settings, now=now)
+    totals = ledger_totals(reader)
+    latest_drift = {}
+    if summary.get("checkpoint_version") is not None:
+        for r in reader.db.execute("SELECT segment, drift FROM segment_history WHERE version = ?",
+                                   (summary["checkpoint_version"],)):
+            if r[1]:
+                latest_drift[int(r[0])] = json.loads(r[1])
+    for seg in summary["segments"]:
+        seg["drift"] = latest_drift.get(seg["id"])
+    alerts = read_alerts(reader)
+    counts: dict[str, int] = {}
+    for a in alerts:
+        key = f"{a.get('status')}/{a.get('severity')}"
+        counts[key] = counts.get(key, 0) + 1
+    done = None
+    if settings.output.keep_inputs:
+        done = {n for (n,) in reader.db.execute(
+            "SELECT name FROM ledger WHERE outcome IN ('committed', 'duplicate')")}
+    return {
+        "time": now,
+        "model_version": summary["model_version"],
+        "features": summary["features"],
+        "warmup": summary.get("warmup"),
+        "rows_learned": summary.get("rows_learned"),
+        "segments": summary["segments"],
+        "inputs": totals["by_outcome"],
+        "last_commit_time": totals["last_commit_time"],
+        "last_input": totals["last_input"],
+        "last_error": totals["last_error"],
+        "alert_counts": counts,
+        "recent_alerts": alerts[:recent_alerts],
+        "backlog": inbox_backlog(settings, layout, done, now),
+    }
+
+
+def _ago(seconds: float | None) -> str:
+    if seconds is None:
+        return "-"
+    seconds = max(0.0, seconds)
+    for unit, size in (("d", 86400), ("h", 3600), ("min", 60)):
+        if seconds >= size:
+            return f"{seconds / size:.1f} {unit}"
+    return f"{seconds:.1f} s"
+
+
+def format_status(snap: dict, width: int = 100) -> str:
+    """One terminal screen: model, inputs, lag, segments, alerts, last error."""
+    now = snap["time"]
+    lines = []
+    inputs = snap["inputs"]
+    n = {k: v["inputs"] for k, v in inputs.items()}
+    lines.append(f"model version {snap['model_version']}"
+                 + (f", {snap['rows_learned']} rows learned" if snap.get("rows_learned") else ""))
+    lines.append("inputs: " + (", ".join(f"{v} {k}" for k, v in sorted(n.items())) or "none yet"))
+    last = snap["last_input"]
+    if last:
+        lines.append(f"last input: {last['name']} ({last['outcome']}, "
+                     f"{_ago(now - last['time'])} ago)")
+    b = snap["backlog"]
+    lines.append(f"waiting in the inbox: {b['files'] if b['files'] is not None else '?'} "
+                 f"file(s); lag {_ago(b['lag_seconds'])}; last commit "
+                 + (f"{_ago(now - snap['last_commit_time'])} ago" if snap["last_commit_time"]
+                    else "never"))
+    if snap.get("warmup"):
+        w = snap["warmup"]
+        lines.append(f"warming up: {w['rows']} of {w['needed']} rows buffered")
+    if snap["segments"]:
+        lines.append("")
+        feats = snap["features"]
+        head = ["segment", "weight", "rows"] + [f"{f} mean" for f in feats]
+        table = [head] + [[str(s["id"]), f"{s['weight']:.3f}", str(s["rows"])]
+                          + [f"{s['mean'][f]:.4g}" for f in feats] for s in snap["segments"]]
+        widths = [max(len(r[i]) for r in table) for i in range(len(head))]
+        for r in table:
+            lines.append("  ".join(c.rjust(w) for c, w in zip(r, widths))[:width])
+    lines.append("")
+    counts = snap["alert_counts"]
+    lines.append("alerts: " + (", ".join(f"{v} {k}" for k, v in sorted(counts.items()))
+                               or "none"))
+    for a in snap["recent_alerts"][:5]:
+        lines.append(f"  {a.get('status', '?'):9s} {a.get('severity', '?'):8s} segment "
+                     f"{a.get('segment', '-')} {a.get('statistic', '-')} "
+                     f"value {a.get('value', '-')} bound {a.get('bound', '-')}"[:width])
+    err = snap["last_error"]
+    lines.append("last error: " + ("none" if err is None else
+                                   f"{err['name']}: {err['reason']} "
+                                   f"({_ago(now - err['time'])} ago)"[:width]))
+    return "\n".join(lines)

@@ -1,0 +1,331 @@
+"""``shoal report``: one self-contained HTML file with the segment history in pictures.
+
+Everything comes from the state store, read-only (the report can be made
+beside a running service): the segment history, the alerts, the latest
+checkpoint (current segments, reference bands) and a sample of recent rows
+(the committed inputs in ``processed/``, or the inbox when inputs are kept,
+joined row by row with their labels files). Images are PNG, embedded as
+``data:`` URIs; the page has no script and loads nothing from elsewhere.
+"""
+from __future__ import annotations
+
+import base64
+import datetime as _dt
+import html
+import re
+import time
+from pathlib import Path
+from typing import Any, Callable, Mapping, Sequence
+
+import numpy as np
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+
+from shoal.config import Settings
+from shoal.core import Mixture
+from shoal.daemon.errors import InputRejected, UsageError
+from shoal.daemon.gate import input_kind
+from shoal.daemon.layout import Layout
+from shoal.daemon.pipeline import open_input
+from shoal.daemon.progress import progress
+from shoal.daemon.readers import read_input
+from shoal.daemon.readout import StateReader, read_alerts, state_snapshot
+
+__all__ = ["REPORT_PLOTS", "parse_since", "report_data", "render_plots", "build_report",
+           "write_report", "recent_rows", "feature_units", "drift_bounds", "page_html"]
+
+# id -> caption of every plot in the report (the status page shows the first and last).
+REPORT_PLOTS = {
+    "weights": "Segment weights over time",
+    "means": "Each segment's mean per feature over time, with its reference band",
+    "drift": "Drift statistics against their bounds, with alert markers",
+    "pca": "Recent rows in the two most informative directions (PCA), with 2-sd ellipses",
+}
+
+_SINCE = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(s|min|m|h|d|w)\s*$")
+_UNIT_SECONDS = {"s": 1, "m": 60, "min": 60, "h": 3600, "d": 86400, "w": 604800}
+
+
+def parse_since(text: str | None, now: float | None = None) -> float | None:
+    """``'24h'``, ``'30min'``, ``'7d'`` (ago) or an ISO 8601 date/time (UTC if no zone)."""
+    if text is None:
+        return None
+    now = time.time() if now is None else now
+    m = _SINCE.match(text)
+    if m:
+        return now - float(m.group(1)) * _UNIT_SECONDS[m.group(2)]
+    try:
+        when = _dt.datetime.fromisoformat(text.strip())
+    except ValueError:
+        raise UsageError(f"--since: expected a duration such as 24h, 30min, 7d or an ISO "
+                         f"date/time such as 2026-05-01T08:00, found {text!r}") from None
+    if when.tzinfo is None:
+        when = when.replace(tzinfo=_dt.timezone.utc)
+    return when.timestamp()
+
+
+def feature_units(settings: Settings) -> dict[str, str]:
+    """Units per feature when the config gives them; 'data units' otherwise."""
+    given = getattr(settings, "units", None) or {}
+    return {f: str(given.get(f, "data units")) if isinstance(given, Mapping) else "data units"
+            for f in settings.features}
+
+
+def drift_bounds(settings: Settings) -> dict[str, float]:
+    """Statistic -> bound from the config's drift bounds, when that section exists."""
+    drift = getattr(settings, "drift", None)
+    bounds = getattr(drift, "bounds", None)
+    if bounds is None:
+        return {}
+    out = {}
+    for name in getattr(bounds, "__dataclass_fields__", {}):
+        value = getattr(bounds, name)
+        if isinstance(value, (int, float)) and not isinstance(value, bool):
+            out[name] = float(value)
+    return out
+
+
+def _read_labels(path: Path) -> np.ndarray:
+    if path.name.endswith(".csv"):
+        table = pacsv.read_csv(path, convert_options=pacsv.ConvertOptions(
+            include_columns=["segment"]))
+    else:
+        table = pq.read_table(path, columns=["segment"])
+    col = table.column("segment").to_numpy(zero_copy_only=False)
+    return np.where(np.isnan(col.astype(float)), -1, col).astype(np.int64)
+
+
+def recent_rows(reader: StateReader, settings: Settings, layout: Layout, *,
+                since: float | None = None, max_rows: int = 3000,
+                max_inputs: int = 8) -> tuple[np.ndarray, np.ndarray]:
+    """A seeded sample of recent rows (data units) and their segments (-1: none).
+
+    Inputs are found in ``processed/`` (or the inbox when inputs are kept) by name and
+    checked against the ledger's size; an input that has gone is skipped.
+    """
+    entries = [e for e in reversed(reader.ledger("committed"))
+               if e.labels and (since is None or e.finished_at >= since)][:max_inputs]
+    xs, segs = [], []
+    for e in entries:
+        src = (layout.inbox if settings.output.keep_inputs else layout.processed) / e.name
+        labels = layout.outbox / e.labels
+        kind = input_kind(e.name)
+        try:
+            if kind is None or not labels.exists() or src.stat().st_size != e.size:
+                continue
+            with open_input(src) as f:
+                frame = read_input(f, kind, settings)
+            seg = _read_labels(labels)
+        except (OSError, InputRejected):
+            continue
+        if len(seg) != frame.n_rows:
+            continue
+        xs.append(frame.features[frame.valid])
+        segs.append(seg[frame.valid])
+    if not xs:
+        return np.empty((0, len(settings.features))), np.empty(0, dtype=np.int64)
+    X, s = np.concatenate(xs), np.concatenate(segs)
+    if len(X) > max_rows:
+        keep = np.sort(np.random.default_rng(settings.seed).choice(len(X), max_rows,
+                                                                   replace=False))
+        X, s = X[keep], s[keep]
+    return X, s
+
+
+def _reference_bands(extra: Mapping[str, Any], history: Sequence[Mapping]) -> dict:
+    """Segment id -> (means, sds): the stored reference snapshot if there is one, else
+    each segment's first recorded state."""
+    ref = extra.get("reference") if isinstance(extra, Mapping) else None
+    out: dict[int, tuple] = {}
+    if isinstance(ref, Mapping) and ref.get("ids") and ref.get("means"):
+        covs = ref.get("covariances") or []
+        for i, sid in enumerate(ref["ids"]):
+            mean = np.asarray(ref["means"][i], float)
+            sd = (np.sqrt(np.diag(np.asarray(covs[i], float))) if i < len(covs)
+                  else np.zeros_like(mean))
+            out[int(sid)] = (mean, sd)
+        return out
+    for h in history:
+        out.setdefault(int(h["segment"]), (np.asarray(h["mean"]), np.asarray(h["spread"])))
+    return out
+
+
+def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
+                since: float | None = None, now: float | None = None) -> dict[str, Any]:
+    """Everything the report draws, read from the state."""
+    now = time.time() if now is None else now
+    history = reader.history()
+    all_history = history
+    if since is not None:
+        history = [h for h in history if h["created"] >= since]
+    cp = reader.latest_checkpoint()
+    means, covs = {}, {}
+    if cp is not None:
+        m = Mixture.from_state(cp.arrays, cp.meta)
+        for k, sid in enumerate(m.ids.tolist()):
+            means[int(sid)] = m.data_means()[k]
+            covs[int(sid)] = m.data_covariance_matrices()[k]
+    X, seg = recent_rows(reader, settings, layout, since=since)
+    alerts = read_alerts(reader, since=since)
+    return {
+        "snapshot": state_snapshot(reader, settings, layout, now=now, recent_alerts=50),
+        "history": history,
+        "reference": _reference_bands(cp.extra if cp else {}, all_history),
+        "alerts": alerts,
+        "means": means,
+        "covariances": covs,
+        "sample": (X, seg),
+        "units": feature_units(settings),
+        "bounds": drift_bounds(settings),
+        "features": list(settings.features),
+        "since": since,
+        "now": now,
+    }
+
+
+def render_plots(data: Mapping[str, Any], which: Sequence[str] = tuple(REPORT_PLOTS),
+                 wrap: Callable = lambda items, **kw: items) -> dict[str, bytes]:
+    """PNG bytes of each plot id in ``which``."""
+    from shoal.daemon import plots
+
+    makers = {
+        "weights": lambda: plots.weights_png(data["history"]),
+        "means": lambda: plots.means_png(data["history"], data["features"], data["units"],
+                                         data["reference"]),
+        "drift": lambda: plots.drift_png(data["history"], data["bounds"], data["alerts"]),
+        "pca": lambda: plots.pca_png(data["sample"][0], data["sample"][1], data["means"],
+                                     data["covariances"], data["features"]),
+    }
+    return {name: makers[name]() for name in wrap(list(which), total=len(which),
+                                                  desc="plots", unit="plot")}
+
+
+def _utc(t: float | None) -> str:
+    if t is None:
+        return "-"
+    return _dt.datetime.fromtimestamp(t, _dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")
+
+
+def _fmt(v: Any) -> str:
+    if isinstance(v, float):
+        return f"{v:.4g}"
+    if v is None:
+        return "-"
+    return str(v)
+
+
+_CSS = """
+body{font-family:system-ui,-apple-system,"Segoe UI",sans-serif;margin:1.5rem auto;
+max-width:1100px;padding:0 1rem;color:#1a1a1a;line-height:1.4}
+h1{font-size:1.6rem;margin-bottom:.2rem}h2{font-size:1.2rem;margin-top:2rem;
+border-bottom:1px solid #ccc;padding-bottom:.2rem}
+table{border-collapse:collapse;font-size:.9rem;margin:.5rem 0}
+th,td{border:1px solid #ccc;padding:.25rem .5rem;text-align:right}
+th{background:#f2f2f2}td.l,th.l{text-align:left}
+figure{margin:1rem 0}figure img{max-width:100%;height:auto;border:1px solid #ddd}
+figcaption{font-size:.9rem;color:#444}.meta{color:#444;font-size:.9rem}
+.firing{color:#D55E00;font-weight:bold}.resolved{color:#0072B2}
+.swatch{display:inline-block;width:.8em;height:.8em;margin-right:.3em;vertical-align:middle}
+"""
+
+
+def segments_table(snap: Mapping[str, Any], units: Mapping[str, str]) -> str:
+    from shoal.daemon.plots import segment_style
+
+    feats = snap["features"]
+    head = "".join(f"<th>{html.escape(f)} mean ± sd<br>({html.escape(units.get(f, ''))})</th>"
+                   for f in feats)
+    rows = []
+    for s in snap["segments"]:
+        colour = segment_style(s["id"])["color"]
+        cells = "".join(f"<td>{s['mean'][f]:.4g} ± {s['spread'][f]:.3g}</td>" for f in feats)
+        rows.append(f'<tr data-segment="{s["id"]}"><td class="l">'
+                    f'<span class="swatch" style="background:{colour}"></span>{s["id"]}</td>'
+                    f"<td>{s['weight']:.3f}</td><td>{s['rows']}</td>"
+                    f"<td>{_fmt(s.get('age_versions'))}</td>{cells}</tr>")
+    if not rows:
+        w = snap.get("warmup") or {}
+        return (f"<p id=\"no-segments\">No model yet: the warm-up has {w.get('rows', 0)} of "
+                f"{w.get('needed', '?')} rows.</p>")
+    return ('<table id="segments"><thead><tr><th class="l">segment</th><th>weight</th>'
+            f"<th>rows</th><th>age (inputs)</th>{head}</tr></thead><tbody>"
+            + "".join(rows) + "</tbody></table>")
+
+
+def alerts_table(alerts: Sequence[Mapping[str, Any]], limit: int = 50) -> str:
+    if not alerts:
+        return '<p id="no-alerts">No alerts.</p>'
+    rows = []
+    for a in alerts[:limit]:
+        status = html.escape(str(a.get("status", "")))
+        expl = a.get("explanation")
+        if isinstance(expl, (list, tuple)) and expl and isinstance(expl[0], Mapping):
+            top = expl[0]
+            expl = (f"{top.get('feature')}: {_fmt(top.get('reference_mean'))} → "
+                    f"{_fmt(top.get('current_mean'))} ({_fmt(top.get('shift_sd'))} sd)")
+        elif isinstance(expl, Mapping):
+            expl = expl.get("summary") or expl.get("text") or ""
+        rows.append(
+            f"<tr><td class=\"l\">{_utc(a.get('created'))}</td>"
+            f"<td class=\"l {status}\">{status}</td>"
+            f"<td class=\"l\">{html.escape(str(a.get('severity', '')))}</td>"
+            f"<td>{html.escape(_fmt(a.get('segment')))}</td>"
+            f"<td class=\"l\">{html.escape(_fmt(a.get('statistic')))}</td>"
+            f"<td>{html.escape(_fmt(a.get('value')))}</td>"
+            f"<td>{html.escape(_fmt(a.get('bound')))}</td>"
+            f"<td class=\"l\">{html.escape(_fmt(expl) if expl else '')}</td></tr>")
+    return ('<table id="alerts"><thead><tr><th class="l">time</th><th class="l">status</th>'
+            '<th class="l">severity</th><th>segment</th><th class="l">statistic</th>'
+            '<th>value</th><th>bound</th><th class="l">what moved</th></tr></thead><tbody>'
+            + "".join(rows) + "</tbody></table>")
+
+
+def figure_html(name: str, png: bytes, caption: str) -> str:
+    b64 = base64.b64encode(png).decode("ascii")
+    return (f'<figure id="plot-{name}"><img alt="{html.escape(caption)}" '
+            f'src="data:image/png;base64,{b64}"><figcaption>{html.escape(caption)}'
+            "</figcaption></figure>")
+
+
+def page_html(title: str, body: str, refresh_seconds: int | None = None) -> str:
+    refresh = (f'<meta http-equiv="refresh" content="{int(refresh_seconds)}">'
+               if refresh_seconds else "")
+    return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+            '<meta name="viewport" content="width=device-width, initial-scale=1">'
+            f'{refresh}<link rel="icon" href="data:,"><title>{html.escape(title)}</title>'
+            f"<style>{_CSS}</style></head><body>{body}</body></html>\n")
+
+
+def build_report(data: Mapping[str, Any], pngs: Mapping[str, bytes], config: str) -> str:
+    snap = data["snapshot"]
+    n = {k: v["inputs"] for k, v in snap["inputs"].items()}
+    since = f" since {_utc(data['since'])}" if data["since"] else ""
+    head = (f"<h1>shoal report</h1><p class=\"meta\">Config {html.escape(config)} · made "
+            f"{_utc(data['now'])} · model version {snap['model_version']} · inputs "
+            + html.escape(", ".join(f"{v} {k}" for k, v in sorted(n.items())) or "none")
+            + f" · history{html.escape(since)}</p>")
+    toc = "<ul>" + "".join(f'<li><a href="#plot-{k}">{html.escape(v)}</a></li>'
+                           for k, v in REPORT_PLOTS.items()) + (
+        '<li><a href="#current-segments">Current segments</a></li>'
+        '<li><a href="#recent-alerts">Recent alerts</a></li></ul>')
+    figs = "".join(f"<h2>{html.escape(REPORT_PLOTS[k])}</h2>" + figure_html(k, pngs[k],
+                                                                         REPORT_PLOTS[k])
+                   for k in REPORT_PLOTS if k in pngs)
+    body = (head + toc + figs
+            + '<h2 id="current-segments">Current segments</h2>'
+            + segments_table(snap, data["units"])
+            + '<h2 id="recent-alerts">Recent alerts</h2>' + alerts_table(data["alerts"]))
+    return page_html("shoal report", body)
+
+
+def write_report(reader: StateReader, settings: Settings, layout: Layout, out: Path, *,
+                 config: str, since: float | None = None) -> Path:
+    """Build the report and write it atomically to ``out``."""
+    from shoal.daemon.writer import atomic_file
+
+    data = report_data(reader, settings, layout, since=since)
+    pngs = render_plots(data, wrap=progress)
+    text = build_report(data, pngs, config)
+    with atomic_file(Path(out), mode=0o644) as f:
+        f.write(text.encode("utf-8"))
+    return out
