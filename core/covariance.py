@@ -11,11 +11,13 @@ Each family provides
     one GEMM and the first moments (and, for diag and spherical, the second) are one
     more.
 ``log_gaussian(A, means, prec_chol)``
-    ``log N(z | mu_k, Sigma_k)`` for every row of the design matrix ``A`` and every
-    component, via the precision Cholesky factor:
-    ``-0.5 (D log 2 pi + ||(z - mu) U||^2) + log det U``.
+    ``log N(z | mu_k, Sigma_k)`` for every component and every row of the design
+    matrix ``A``, shape (n_components, n_samples), via the precision Cholesky factor:
+    ``-0.5 (D log 2 pi + ||(z - mu) U||^2) + log det U``. Components come first so
+    that the reductions over components run along contiguous rows.
 ``moments(A, resp_w)``
-    The responsibility-weighted statistics ``(s0, s1, s2)`` of a block: sums of
+    The weighted statistics ``(s0, s1, s2)`` of a block, for ``resp_w`` of shape
+    (n_components, n_samples): sums of
     ``r_ik``, ``r_ik z_i`` and ``r_ik z_i z_i^T`` (full), its diagonal (diag) or its
     trace divided by ``D`` (spherical). Rows whose weight for a component is zero are
     skipped (sparse EM), which is where the full type saves most of its time.
@@ -69,12 +71,12 @@ def _full_design(Z):
 
 def _full_moments(A, resp_w):
     n_features = A.shape[1] - 1
-    first = resp_w.T @ A                      # (K, D + 1): s1 and s0 in one GEMM
+    first = resp_w @ A                        # (K, D + 1): s1 and s0 in one GEMM
     Z = A[:, :n_features]
-    n_components = resp_w.shape[1]
+    n_components = resp_w.shape[0]
     s2 = np.empty((n_components, n_features, n_features))
     for k in range(n_components):
-        rk = resp_w[:, k]
+        rk = resp_w[k]
         rows = np.flatnonzero(rk)
         if rows.size == rk.size:
             s2[k] = (Z * rk[:, None]).T @ Z
@@ -128,15 +130,16 @@ def _full_log_det(prec_chol, n_features):
 def _full_log_gaussian(A, means, prec_chol):
     n_samples = A.shape[0]
     n_components, n_features = means.shape
-    # One GEMM whitens the rows for every component at once: the K factors U_k stand
-    # side by side in W, and the design's column of ones folds the centring -mu_k U_k in.
-    W = np.empty((n_features + 1, n_components * n_features))
-    W[:n_features] = np.transpose(prec_chol, (1, 0, 2)).reshape(n_features, -1)
-    W[n_features] = -np.einsum("kd,kde->ke", means, prec_chol).reshape(-1)
-    Y = (A @ W).reshape(n_samples, n_components, n_features)
-    maha = np.einsum("nkd,nkd->nk", Y, Y)
+    # One GEMM whitens the rows for every component at once: the K factors U_k^T are
+    # stacked in WT, and the design's column of ones folds the centring -mu_k U_k in.
+    WT = np.empty((n_components * n_features, n_features + 1))
+    WT[:, :n_features] = np.swapaxes(prec_chol, 1, 2).reshape(-1, n_features)
+    WT[:, n_features] = -np.einsum("kd,kde->ke", means, prec_chol).reshape(-1)
+    Y = WT @ A.T
+    Y *= Y
+    maha = Y.reshape(n_components, n_features, n_samples).sum(axis=1)
     log_det = _full_log_det(prec_chol, n_features)
-    return -0.5 * (n_features * LOG_2PI + maha) + log_det
+    return -0.5 * (n_features * LOG_2PI + maha) + log_det[:, None]
 
 
 def _full_matrices(cov, n_features):
@@ -159,7 +162,7 @@ def _diag_design(Z):
 
 def _diag_moments(A, resp_w):
     n_features = (A.shape[1] - 1) // 2
-    m = resp_w.T @ A                          # (K, 2D + 1): s2, s1 and s0 in one GEMM
+    m = resp_w @ A                            # (K, 2D + 1): s2, s1 and s0 in one GEMM
     return m[:, -1], m[:, n_features:-1], m[:, :n_features]
 
 
@@ -192,7 +195,7 @@ def _diag_log_gaussian(A, means, prec_chol):
     B[n_features:-1] = (means * prec).T
     B[-1] = (-0.5 * np.sum(means**2 * prec, axis=1)
              + _diag_log_det(prec_chol, n_features) - 0.5 * n_features * LOG_2PI)
-    return A @ B
+    return B.T @ A.T
 
 
 def _diag_matrices(var, n_features):
@@ -215,7 +218,7 @@ def _spherical_design(Z):
 
 def _spherical_moments(A, resp_w):
     n_features = A.shape[1] - 2
-    m = resp_w.T @ A
+    m = resp_w @ A
     return m[:, -1], m[:, 1:-1], m[:, 0] / n_features
 
 
@@ -238,7 +241,7 @@ def _spherical_log_gaussian(A, means, prec_chol):
     B[1:-1] = (means * prec[:, None]).T
     B[-1] = (-0.5 * np.sum(means**2, axis=1) * prec
              + _spherical_log_det(prec_chol, n_features) - 0.5 * n_features * LOG_2PI)
-    return A @ B
+    return B.T @ A.T
 
 
 def _spherical_matrices(var, n_features):

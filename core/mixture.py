@@ -28,6 +28,7 @@ from .schedule import StepSchedule
 __all__ = ["Mixture", "Scores", "FORMAT_VERSION"]
 
 FORMAT_VERSION = 1
+BLOCK_ROWS = 2048  # rows scored at once: the (K*D, rows) intermediate stays in cache
 _TINY = 10.0 * np.finfo(np.float64).eps
 
 
@@ -207,39 +208,74 @@ class Mixture:
         return (self._rows(X) - self.center) / self.scale
 
     # --------------------------------------------------------------- scoring
-    def _scores(self, Z, A=None) -> Scores:
-        """Scores of standardised rows ``Z``; ``A`` is their design matrix if already built."""
-        if A is None:
-            A = self.family.design(Z)
-        log_joint = self.family.log_gaussian(A, self.means, self.prec_chol)
-        log_joint += np.log(self.weights)
-        top = np.max(log_joint, axis=1)
-        log_joint -= top[:, None]
-        # Responsibilities below e^-230 (1e-100) are set to exactly 0: they change
-        # nothing measurable, and as subnormal numbers they slow every later GEMM
-        # by orders of magnitude.
-        log_joint[log_joint < -230.0] = -np.inf
-        resp = np.exp(log_joint)
-        total = np.sum(resp, axis=1)
-        resp /= total[:, None]
-        component = np.argmax(resp, axis=1)
-        return Scores(
-            log_density=np.log(total) + top - np.sum(np.log(self.scale)),
-            resp=resp,
-            component=component,
-            segment=self.ids[component],
-            confidence=resp[np.arange(resp.shape[0]), component],
-        )
+    def _score_block(self, Zb, out, lo):
+        """Score a block of standardised rows into the preallocated ``out`` at ``lo``.
+
+        Returns the block's design matrix, for the moments that may follow.
+        """
+        hi = lo + Zb.shape[0]
+        A = self.family.design(Zb)
+        # (K, n) layout: every reduction over components runs along contiguous rows.
+        resp = out.resp_kn[:, lo:hi]
+        resp[...] = self.family.log_gaussian(A, self.means, self.prec_chol)
+        resp += self._log_weights[:, None]
+        top = np.max(resp, axis=0)
+        resp -= top
+        # The most responsible component now sits at exactly 0 (first one on ties).
+        rank = (resp == 0.0) * self._rank_weights[:, None]
+        out.component[lo:hi] = self.n_components - 1 - np.max(rank, axis=0)
+        # Clamp at e^-230 (1e-100): as subnormal numbers, far smaller
+        # responsibilities would slow every later GEMM a hundredfold.
+        np.maximum(resp, -230.0, out=resp)
+        np.exp(resp, out=resp)
+        total = np.sum(resp, axis=0)
+        resp /= total
+        out.log_density[lo:hi] = np.log(total) + top - self._log_scale_sum
+        out.confidence[lo:hi] = 1.0 / total
+        return A
+
+    @property
+    def _rank_weights(self):
+        return np.arange(self.n_components - 1, -1, -1, dtype=np.int16)
+
+    @property
+    def _log_weights(self):
+        return np.log(self.weights)
+
+    @property
+    def _log_scale_sum(self):
+        return float(np.sum(np.log(self.scale)))
 
     def score(self, X) -> Scores:
         """Score rows without learning from them.
+
+        Rows are scored in blocks of a few thousand, so memory beyond the outputs does
+        not grow with ``len(X)``.
 
         Parameters
         ----------
         X : array-like of shape (n_samples, n_features)
             Finite rows in the data's own units.
         """
-        return self._scores(self.standardise(X))
+        return self._score_z(self.standardise(X)).scores(self.ids)
+
+    def _score_z(self, Z, moments_weight=None):
+        """Score standardised rows block by block.
+
+        With ``moments_weight`` (a float), also return the moments of the rows with
+        that weight each, i.e. the batch E-step's statistics.
+        """
+        n = Z.shape[0]
+        out = _ScoreBuffer(n, self.n_components)
+        total = None
+        for lo in range(0, n, BLOCK_ROWS):
+            A = self._score_block(Z[lo : lo + BLOCK_ROWS], out, lo)
+            if moments_weight is not None:
+                part = self.family.moments(A, out.resp_kn[:, lo : lo + A.shape[0]] * moments_weight)
+                total = part if total is None else tuple(a + b for a, b in zip(total, part))
+        if moments_weight is None:
+            return out
+        return out, total
 
     def log_density(self, X) -> np.ndarray:
         """``log p(x)`` per row, shape (n_samples,), in the data's own units."""
@@ -248,16 +284,17 @@ class Mixture:
     def component_log_density(self, X) -> np.ndarray:
         """``log N(x | mu_k, Sigma_k)`` in data units, shape (n_samples, n_components)."""
         A = self.family.design(self.standardise(X))
-        return self.family.log_gaussian(A, self.means, self.prec_chol) - np.sum(
-            np.log(self.scale)
-        )
+        return self.family.log_gaussian(A, self.means, self.prec_chol).T - self._log_scale_sum
 
     # -------------------------------------------------------------- learning
-    def _accumulate(self, A, resp, row_w):
-        """Weighted statistics ``(s0, s1, s2)`` of a block with design matrix ``A``."""
-        resp_w = resp * row_w[:, None]
+    def _accumulate(self, A, resp_kn, row_w):
+        """Weighted statistics ``(s0, s1, s2)`` of a block with design matrix ``A``.
+
+        ``resp_kn`` has shape (n_components, n_samples), ``row_w`` (n_samples,).
+        """
+        resp_w = resp_kn * row_w
         if self.resp_floor > 0.0:
-            resp_w[resp < self.resp_floor] = 0.0
+            resp_w[resp_kn < self.resp_floor] = 0.0
         return self.family.moments(A, resp_w)
 
     def _derive(self, s0, s1, s2, sumsq) -> dict:
@@ -313,32 +350,30 @@ class Mixture:
         scores : Scores
             The scores of every row, as labelled during learning.
         """
-        Z = self.standardise(X)
-        n = Z.shape[0]
+        X = self._rows(X)
+        n = X.shape[0]
+        out = _ScoreBuffer(n, self.n_components)
         model = self
         s0, s1, s2, sumsq = self.s0, self.s1, self.s2, self.sumsq
-        parts = []
         pos = 0
         while pos < n:
             at = model.n_rows
-            take = min(n - pos, self.refresh_rows - at % self.refresh_rows)
-            A = self.family.design(Z[pos : pos + take])
-            scores = model._scores(None, A)
+            # blocks end at refresh points, which sit at fixed places in the stream
+            take = min(n - pos, self.refresh_rows - at % self.refresh_rows, BLOCK_ROWS)
+            Zb = (X[pos : pos + take] - self.center) / self.scale
+            A = model._score_block(Zb, out, pos)
             row_w, keep = self.schedule.row_weights(at, take)
-            b0, b1, b2 = model._accumulate(A, scores.resp, row_w)
+            b0, b1, b2 = model._accumulate(A, out.resp_kn[:, pos : pos + take], row_w)
             s0 = keep * s0 + b0
             s1 = keep * s1 + b1
             s2 = keep * s2 + b2
             sumsq = keep * keep * sumsq + float(np.dot(row_w, row_w))
-            parts.append(scores)
             pos += take
             changes = dict(s0=s0, s1=s1, s2=s2, sumsq=sumsq, n_rows=at + take)
             if (at + take) % self.refresh_rows == 0:
                 changes.update(model._refresh(s0, s1, s2, sumsq))
             model = replace(model, **changes)
-        if not parts:
-            return model, self._scores(Z)
-        return model, _concat_scores(parts)
+        return model, out.scores(self.ids)
 
     def em_step(self, X) -> tuple["Mixture", float]:
         """One full-batch EM iteration (step size 1) on ``X``.
@@ -352,10 +387,9 @@ class Mixture:
 
     def _em_step(self, Z):
         n = Z.shape[0]
-        A = self.family.design(Z)
-        scores = self._scores(Z, A)
         # Batch EM stays exact: the sparse floor is for the stepwise path only.
-        s0, s1, s2 = self.family.moments(A, scores.resp / n)
+        out, (s0, s1, s2) = self._score_z(Z, moments_weight=1.0 / n)
+        scores = out.scores(self.ids)
         sumsq = 1.0 / n
         params = self._derive(s0, s1, s2, sumsq)
         new = replace(self, s0=s0, s1=s1, s2=s2, sumsq=sumsq, **params)
@@ -449,7 +483,22 @@ class Mixture:
         )
 
 
-def _concat_scores(parts: list[Scores]) -> Scores:
-    if len(parts) == 1:
-        return parts[0]
-    return Scores(*(np.concatenate([getattr(p, f) for p in parts]) for f in Scores.__dataclass_fields__))
+class _ScoreBuffer:
+    """Preallocated outputs that blocks of rows are scored into."""
+
+    __slots__ = ("resp_kn", "log_density", "component", "confidence")
+
+    def __init__(self, n_samples, n_components):
+        self.resp_kn = np.empty((n_components, n_samples))
+        self.log_density = np.empty(n_samples)
+        self.component = np.empty(n_samples, dtype=np.intp)
+        self.confidence = np.empty(n_samples)
+
+    def scores(self, ids) -> Scores:
+        return Scores(
+            log_density=self.log_density,
+            resp=self.resp_kn.T,
+            component=self.component,
+            segment=ids[self.component],
+            confidence=self.confidence,
+        )

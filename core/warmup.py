@@ -95,7 +95,7 @@ def _from_hard_labels(template: Mixture, Z, labels) -> Mixture:
     n = Z.shape[0]
     resp = np.zeros((n, template.n_components))
     resp[np.arange(n), labels] = 1.0
-    s0, s1, s2 = template.family.moments(template.family.design(Z), resp / n)
+    s0, s1, s2 = template.family.moments(template.family.design(Z), resp.T / n)
     sumsq = 1.0 / n
     from dataclasses import replace
 
@@ -133,7 +133,7 @@ def _batch_em(Z, mixture, *, max_iter, tol):
         history.append(before)
         if len(history) >= 2 and history[-1] - history[-2] < tol:
             break
-    history.append(float(np.mean(mixture._scores(Z).log_density)))
+    history.append(float(np.mean(mixture._score_z(Z).log_density)))
     return mixture, np.asarray(history)
 
 
