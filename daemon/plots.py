@@ -133,6 +133,8 @@ def means_png(history: Sequence[Mapping[str, Any]], features: Sequence[str],
         ax.set_ylabel(f"mean ({units.get(feat, 'data units')})")
         ax.grid(alpha=0.3)
         _time_axis(ax)
+        if j + cols < n:  # shared time axis: its label only under the lowest panels
+            ax.set_xlabel("")
     for k in range(n, rows_n * cols):
         axes[k // cols][k % cols].set_visible(False)
     handles, labels = axes[0][0].get_legend_handles_labels()
@@ -185,6 +187,8 @@ def drift_png(history: Sequence[Mapping[str, Any]], bounds: Mapping[str, float],
         ax.set_ylabel(f"{name} ({_STAT_UNITS.get(name, 'statistic units')})")
         ax.grid(alpha=0.3)
         _time_axis(ax)
+        if ax is not axes[-1, 0]:
+            ax.set_xlabel("")
     handles, labels = axes[0][0].get_legend_handles_labels()
     fig.legend(handles, labels, loc="outside right center", fontsize="small")
     fig.suptitle(title)

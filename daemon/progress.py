@@ -29,5 +29,6 @@ def progress(items: Iterable[T], *, total: int | None = None, desc: str = "",
         return items
     from tqdm import tqdm
 
+    tqdm.monitor_interval = 0  # no monitor thread: every item updates the bar anyway
     return tqdm(items, total=total, desc=desc, unit=unit, file=stream, leave=False,
                 dynamic_ncols=True)

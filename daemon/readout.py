@@ -204,13 +204,18 @@ def format_status(snap: dict, width: int = 100) -> str:
         lines.append(f"warming up: {w['rows']} of {w['needed']} rows buffered")
     if snap["segments"]:
         lines.append("")
-        feats = snap["features"]
+        feats = list(snap["features"])
         head = ["segment", "weight", "rows"] + [f"{f} mean" for f in feats]
         table = [head] + [[str(s["id"]), f"{s['weight']:.3f}", str(s["rows"])]
                           + [f"{s['mean'][f]:.4g}" for f in feats] for s in snap["segments"]]
         widths = [max(len(r[i]) for r in table) for i in range(len(head))]
+        shown = len(head)   # whole columns only, as many as fit the screen
+        while shown > 3 and sum(widths[:shown]) + 2 * (shown - 1) > width:
+            shown -= 1
         for r in table:
-            lines.append("  ".join(c.rjust(w) for c, w in zip(r, widths))[:width])
+            lines.append("  ".join(c.rjust(w) for c, w in zip(r[:shown], widths)))
+        if shown < len(head):
+            lines.append(f"(+{len(head) - shown} more features: shoal segments -c CONFIG)")
     lines.append("")
     counts = snap["alert_counts"]
     lines.append("alerts: " + (", ".join(f"{v} {k}" for k, v in sorted(counts.items()))

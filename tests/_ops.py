@@ -90,3 +90,18 @@ def get(url: str, timeout: float = 30.0, method: str = "GET") -> tuple[int, dict
             return resp.status, dict(resp.headers), resp.read()
     except urllib.error.HTTPError as exc:
         return exc.code, dict(exc.headers), exc.read()
+
+
+def notify_socket(folder: Path, kind: str):
+    """A bound datagram socket standing in for the service manager: (socket, NOTIFY_SOCKET)."""
+    import socket
+    import uuid
+
+    sock = socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM)
+    if kind == "abstract":
+        name = f"@shoal-test-{os.getpid()}-{uuid.uuid4().hex[:8]}"
+        sock.bind(b"\0" + name[1:].encode())
+    else:
+        name = str(folder / "notify.sock")
+        sock.bind(name)
+    return sock, name
