@@ -24,7 +24,7 @@ from prometheus_client.core import (
 )
 from prometheus_client.registry import Collector
 
-from shoal.daemon.readout import StateReader, read_alerts
+from shoal.daemon.readout import StateReader, open_alerts, read_alerts
 
 __all__ = ["LedgerCollector", "build_registry", "render_metrics", "PROCESSING_BUCKETS"]
 
@@ -123,14 +123,25 @@ class LedgerCollector(Collector):
                     drift.add_metric([str(segment), name], value)
         yield weight
         yield drift
-        firing = GaugeMetricFamily("shoal_alerts", "Alerts by status and severity",
-                                   labels=["status", "severity"])
+        notes = CounterMetricFamily("shoal_alert_notifications",
+                                    "Alert notifications raised (firing, resolved), by severity",
+                                    labels=["status", "severity"])
         counts: dict[tuple[str, str], int] = {}
-        for a in read_alerts(self.reader):
+        alerts = read_alerts(self.reader)
+        for a in alerts:
             key = (str(a.get("status")), str(a.get("severity")))
             counts[key] = counts.get(key, 0) + 1
         for key, n in sorted(counts.items()):
-            firing.add_metric(list(key), n)
+            notes.add_metric(list(key), n)
+        yield notes
+        firing = GaugeMetricFamily("shoal_alerts_firing", "Alerts firing now (not resolved)",
+                                   labels=["severity"])
+        by_severity = {"warning": 0, "critical": 0}
+        for a in open_alerts(alerts):
+            sev = str(a.get("severity"))
+            by_severity[sev] = by_severity.get(sev, 0) + 1
+        for sev, n in sorted(by_severity.items()):
+            firing.add_metric([sev], n)
         yield firing
         pending = self.reader.db.execute(
             "SELECT COUNT(*) FROM alert_outbox WHERE delivered_at IS NULL").fetchone()[0]

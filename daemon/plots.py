@@ -149,9 +149,12 @@ def drift_png(history: Sequence[Mapping[str, Any]], bounds: Mapping[str, float],
     alerts marked with a triangle where they fired (a circle where they resolved)."""
     title = "Drift statistics against their bounds (markers: alerts)"
     stats: dict[str, dict[int, list]] = {}
+    bounds = dict(bounds)
     for h in history:
         for name, value in (h.get("drift") or {}).items():
-            if isinstance(value, dict):
+            if isinstance(value, dict):  # {"value", "noise", "bound"}: the bound in force
+                if isinstance(value.get("bound"), (int, float)):
+                    bounds[name] = float(value["bound"])
                 value = value.get("value")
             if isinstance(value, (int, float)) and not isinstance(value, bool):
                 stats.setdefault(name, {}).setdefault(int(h["segment"]), []).append(
@@ -173,7 +176,8 @@ def drift_png(history: Sequence[Mapping[str, Any]], bounds: Mapping[str, float],
         for a in alerts:
             if a.get("statistic") != name:
                 continue
-            v = a.get("last_version") or a.get("version") or a.get("first_version")
+            mv = a.get("model_version")
+            v = mv.get("last") if isinstance(mv, dict) else a.get("version")
             when = version_time.get(v, a.get("created"))
             if when is None or a.get("value") is None:
                 continue

@@ -23,7 +23,7 @@ from shoal.daemon.layout import Layout
 from shoal.daemon.store import StateStore
 from shoal.daemon.summary import segment_summary
 
-__all__ = ["StateReader", "open_reader", "read_alerts", "inbox_backlog", "state_snapshot",
+__all__ = ["StateReader", "open_reader", "read_alerts", "open_alerts", "inbox_backlog", "state_snapshot",
            "format_status", "ledger_totals"]
 
 _ALERT_TABLES = ("alert_history", "alerts", "alert_outbox")
@@ -104,10 +104,22 @@ def read_alerts(reader: StateReader, since: float | None = None,
     cur = reader.db.execute(f"SELECT * FROM {table}")  # noqa: S608 - name from a fixed list
     names = [d[0] for d in cur.description]
     rows = [_alert_record(dict(zip(names, r))) for r in cur.fetchall()]
+    if table == "alert_outbox":  # one row per notification: firing, then resolved
+        for r in rows:
+            r["notification"] = r.get("notification") or r.get("id")
     if since is not None:
         rows = [r for r in rows if (r.get("created") or 0) >= since]
     rows.sort(key=lambda r: (r.get("created") or 0, str(r.get("id"))), reverse=True)
     return rows if limit is None else rows[:limit]
+
+
+def open_alerts(alerts: list[dict]) -> list[dict]:
+    """Alerts whose latest notification is 'firing' (not yet resolved), newest first."""
+    latest: dict[str, dict] = {}
+    for a in sorted(alerts, key=lambda r: (r.get("created") or 0, str(r.get("notification")))):
+        latest[str(a.get("id"))] = a
+    return [a for a in sorted(latest.values(), key=lambda r: r.get("created") or 0,
+                              reverse=True) if a.get("status") == "firing"]
 
 
 def inbox_backlog(settings: Settings, layout: Layout, done_names: set[str] | None = None,
@@ -150,6 +162,7 @@ def state_snapshot(reader: StateReader, settings: Settings, layout: Layout,
     for a in alerts:
         key = f"{a.get('status')}/{a.get('severity')}"
         counts[key] = counts.get(key, 0) + 1
+    firing = open_alerts(alerts)
     done = None
     if settings.output.keep_inputs:
         done = {n for (n,) in reader.db.execute(
@@ -166,6 +179,7 @@ def state_snapshot(reader: StateReader, settings: Settings, layout: Layout,
         "last_input": totals["last_input"],
         "last_error": totals["last_error"],
         "alert_counts": counts,
+        "alerts_firing": len(firing),
         "recent_alerts": alerts[:recent_alerts],
         "backlog": inbox_backlog(settings, layout, done, now),
     }
@@ -179,6 +193,10 @@ def _ago(seconds: float | None) -> str:
         if seconds >= size:
             return f"{seconds / size:.1f} {unit}"
     return f"{seconds:.1f} s"
+
+
+def _num(v) -> str:
+    return f"{v:.4g}" if isinstance(v, float) else "-" if v is None else str(v)
 
 
 def format_status(snap: dict, width: int = 100) -> str:
@@ -218,12 +236,12 @@ def format_status(snap: dict, width: int = 100) -> str:
             lines.append(f"(+{len(head) - shown} more features: shoal segments -c CONFIG)")
     lines.append("")
     counts = snap["alert_counts"]
-    lines.append("alerts: " + (", ".join(f"{v} {k}" for k, v in sorted(counts.items()))
-                               or "none"))
+    lines.append(f"alerts: {snap.get('alerts_firing', 0)} firing now; notifications: "
+                 + (", ".join(f"{v} {k}" for k, v in sorted(counts.items())) or "none"))
     for a in snap["recent_alerts"][:5]:
         lines.append(f"  {a.get('status', '?'):9s} {a.get('severity', '?'):8s} segment "
                      f"{a.get('segment', '-')} {a.get('statistic', '-')} "
-                     f"value {a.get('value', '-')} bound {a.get('bound', '-')}"[:width])
+                     f"value {_num(a.get('value'))} bound {_num(a.get('bound'))}"[:width])
     err = snap["last_error"]
     lines.append("last error: " + ("none" if err is None else
                                    f"{err['name']}: {err['reason']} "

@@ -135,7 +135,11 @@ def recent_rows(reader: StateReader, settings: Settings, layout: Layout, *,
 def _reference_bands(extra: Mapping[str, Any], history: Sequence[Mapping]) -> dict:
     """Segment id -> (means, sds): the stored reference snapshot if there is one, else
     each segment's first recorded state."""
-    ref = extra.get("reference") if isinstance(extra, Mapping) else None
+    ref = None
+    if isinstance(extra, Mapping):  # the drift watch keeps it in extra["drift"]
+        drift = extra.get("drift")
+        ref = extra.get("reference") or (drift.get("reference") if isinstance(drift, Mapping)
+                                         else None)
     out: dict[int, tuple] = {}
     if isinstance(ref, Mapping) and ref.get("ids") and ref.get("means"):
         covs = ref.get("covariances") or []

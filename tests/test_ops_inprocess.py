@@ -162,6 +162,7 @@ def test_status_and_metrics_read_alerts_written_through_the_store(tmp_path):
     try:
         snap = state_snapshot(reader, settings, layout, now=200.0)
         assert snap["alert_counts"] == {"firing/critical": 1, "resolved/warning": 1}
+        assert snap["alerts_firing"] == 1          # a2's latest notification resolved it
         assert snap["last_error"]["name"] == "bad.csv"
         text = format_status(snap)
         assert "1 firing/critical" in text and "bad_row: line 2" in text
@@ -169,8 +170,11 @@ def test_status_and_metrics_read_alerts_written_through_the_store(tmp_path):
         fams = {f.name: f for f in text_string_to_metric_families(
             render_metrics(build_registry(reader)).decode())}
         alerts = {(s.labels["status"], s.labels["severity"]): s.value
-                  for s in fams["shoal_alerts"].samples}
+                  for s in fams["shoal_alert_notifications"].samples
+                  if s.name.endswith("_total")}
         assert alerts == {("firing", "critical"): 1, ("resolved", "warning"): 1}
+        firing = {s.labels["severity"]: s.value for s in fams["shoal_alerts_firing"].samples}
+        assert firing == {"critical": 1, "warning": 0}
         assert fams["shoal_alerts_undelivered"].samples[0].value == 2
         inputs = {s.labels["outcome"]: s.value for s in fams["shoal_inputs"].samples}
         assert inputs == {"committed": 1, "duplicate": 0, "quarantined": 1}
