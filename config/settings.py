@@ -116,7 +116,7 @@ class DriftBounds:
     """
 
     mean_shift: float | None = _f(
-        0.5, "segment mean moved this many reference standard deviations (Mahalanobis)",
+        0.3, "segment mean moved this many reference standard deviations (Mahalanobis)",
         min=0.0, min_open=True)
     spread_ratio: float | None = _f(
         1.5, "segment spread grew or shrank by this factor (geometric mean of the sd ratios)",

@@ -40,6 +40,7 @@ from shoal.daemon.errors import (
 from shoal.daemon.gate import input_kind
 from shoal.daemon.layout import Layout
 from shoal.daemon.logs import log_event
+from shoal.daemon.monitor import DriftMonitor, InputWatch
 from shoal.daemon.quarantine import move_out, quarantine
 from shoal.daemon.readers import Frame, read_input
 from shoal.daemon.store import Checkpoint, HistoryRow, LedgerEntry, StateStore
@@ -101,7 +102,14 @@ class Pipeline:
         self.stop = stop or threading.Event()
         self.wall = wall
         self.monotonic = monotonic
+        # called with the model version after each commit that queued alerts (wakes the sender)
+        self.alert_listeners: list = []
         self.state = self.load_state()
+
+    @property
+    def monitor(self) -> DriftMonitor:
+        """Drift evaluation with the settings in force (they may be reloaded)."""
+        return DriftMonitor(self.settings)
 
     # -- state ---------------------------------------------------------------------
     def load_state(self) -> ModelState:
@@ -216,16 +224,26 @@ class Pipeline:
         X = frame.features[frame.valid]
         version = st.version + 1
         extra = dict(st.extra)
+        watch = self.monitor.begin(extra.get("drift"), version=version, file=entry.name,
+                                   times=self._times(frame),
+                                   unusual_below=extra.get("unusual_below"))
+        rebaseline = None
+        if watch is not None and st.mixture is not None:
+            rebaseline = self.store.pending_rebaseline()
+            if rebaseline is not None:
+                watch.rebaseline(st.mixture, rebaseline[1])
         mixture, scores, warmup_keep, clear_warmup = st.mixture, None, None, False
         if mixture is None:
-            mixture, scores, warmup_keep, init_extra = self._warm_up(X)
+            mixture, scores, warmup_keep, init_extra = self._warm_up(X, watch)
             clear_warmup = mixture is not None
             if mixture is not None:
                 extra.update(init_extra)
                 extra = self._born(extra, mixture, version)
         else:
-            mixture, scores = self._learn_chunks(mixture, X)
+            mixture, scores = self._learn_chunks(mixture, X, watch)
             extra = self._born(extra, mixture, version)
+        if watch is not None and watch.state is not None:
+            extra["drift"] = watch.state
         if scores is not None and mixture is not None:
             extra = self._after_scoring(extra, scores, mixture)
         unusual_below = extra.get("unusual_below", -np.inf)
@@ -235,19 +253,55 @@ class Pipeline:
         if mixture is not None:
             arrays, meta = mixture.to_state()
             checkpoint = Checkpoint(version, arrays, meta, extra)
-            history = _history(mixture, extra)
+            history = _history(mixture, extra,
+                               watch.segment_drift() if watch is not None else None)
         entry = _with(entry, labels=labels.name)
         self._check_stop()
+        alerts = watch.alerts if watch is not None else []
         committed = self.store.commit_input(
             entry, learned=True, checkpoint=checkpoint, warmup_rows=warmup_keep,
-            clear_warmup=clear_warmup, history=history or ())
+            clear_warmup=clear_warmup, history=history or (), alerts=alerts,
+            rebaseline=rebaseline[0] if rebaseline is not None and watch.rebaselined else None)
+        if rebaseline is not None and watch.rebaselined:
+            log_event("drift_rebaselined", model_version=committed, note=rebaseline[1])
         buffered = None
         if mixture is None:
             parts = [a for a in (st.warmup, warmup_keep) if a is not None and len(a)]
             buffered = np.concatenate(parts) if parts else None
         self.state = ModelState(committed, mixture, extra, buffered)
+        if alerts:
+            for listener in self.alert_listeners:
+                listener(committed)
         return Result("committed", entry.name, frame.n_rows, frame.n_invalid, labels,
                       model_version=committed)
+
+    def _times(self, frame: Frame):
+        """The time column of the valid rows (``drift.time_column``), or None."""
+        name = self.settings.drift.time_column
+        if name is None or name not in frame.passthrough.column_names:
+            return None
+        column = frame.passthrough.column(name).to_numpy(zero_copy_only=False)
+        return column[frame.valid]
+
+    def rebaseline_now(self, request_id: int, note: str) -> list[tuple[str, dict]]:
+        """Apply a re-baseline request to the latest checkpoint (no input needed)."""
+        st = self.state
+        if st.mixture is None:
+            raise StateError("no model yet: the warm-up has not finished, so there is "
+                             "nothing to take as the reference")
+        watch = self.monitor.begin(st.extra.get("drift"), version=st.version, file="",
+                                   unusual_below=st.extra.get("unusual_below"))
+        if watch is None:
+            raise StateError("drift watching is off (drift.enabled: false)")
+        watch.rebaseline(st.mixture, note)
+        extra = dict(st.extra, drift=watch.state)
+        self.store.apply_rebaseline(request_id, st.version, extra, watch.alerts)
+        self.state = ModelState(st.version, st.mixture, extra, st.warmup)
+        log_event("drift_rebaselined", model_version=st.version, note=note)
+        if watch.alerts:
+            for listener in self.alert_listeners:
+                listener(st.version)
+        return watch.alerts
 
     # -- the model -----------------------------------------------------------------
     def _schedule(self) -> StepSchedule:
@@ -255,7 +309,7 @@ class Pipeline:
         return StepSchedule(alpha=s.learning.step_exponent, i0=None,
                             half_life_rows=s.half_life_rows)
 
-    def _warm_up(self, X: np.ndarray):
+    def _warm_up(self, X: np.ndarray, watch: InputWatch | None = None):
         """Buffer rows until ``warmup_rows``; then fit the first model.
 
         Returns ``(mixture or None, scores or None, rows to add to the buffer,
@@ -289,17 +343,32 @@ class Pipeline:
         head = mixture.score(X[:need])
         extra = {"unusual_below": float(np.quantile(mixture.score(Xw).log_density,
                                                      s.output.unusual_quantile))}
-        mixture, tail = self._learn_chunks(mixture, X[need:])
+        if watch is not None:
+            watch.start(stream_offset=len(Xw))
+            watch.unusual_below = extra["unusual_below"]
+            if watch.times is not None:
+                watch.times = watch.times[need:]
+        mixture, tail = self._learn_chunks(mixture, X[need:], watch)
         return mixture, _concat(head, tail), None, extra
 
-    def _learn_chunks(self, mixture: Mixture, X: np.ndarray):
+    def _learn_chunks(self, mixture: Mixture, X: np.ndarray, watch: InputWatch | None = None):
+        """Learn ``X`` in pieces of at most ``chunk_rows`` that never cross a drift window
+        boundary (learning does not depend on the cut), showing each piece to ``watch``."""
         parts = []
         step = self.settings.learning.chunk_rows
+        start = 0
         try:
-            for start in range(0, len(X), step):
+            while start < len(X):
                 self._check_stop()
-                mixture, scores = mixture.learn(X[start:start + step])
+                take = min(step, len(X) - start)
+                if watch is not None:
+                    take = min(take, watch.rows_to_boundary(mixture.n_rows))
+                piece = X[start:start + take]
+                mixture, scores = mixture.learn(piece)
+                if watch is not None:
+                    watch.observe(mixture, piece, scores, start)
                 parts.append(scores)
+                start += take
         except (ModelError, np.linalg.LinAlgError) as exc:
             raise InputRejected("model_update_failed", f"the model could not learn from this "
                                 f"input: {exc}") from exc
@@ -390,11 +459,12 @@ def _concat(*parts):
                           for name in first.__dataclass_fields__})
 
 
-def _history(mixture: Mixture, extra: dict) -> list[HistoryRow]:
+def _history(mixture: Mixture, extra: dict, drift: dict | None = None) -> list[HistoryRow]:
     means = mixture.data_means()
     stds = mixture.data_stds()
     counts = extra.get("segment_rows", {})
+    drift = drift or {}
     return [HistoryRow(segment=int(sid), weight=float(mixture.weights[k]),
                        rows=int(counts.get(str(int(sid)), 0)), mean=means[k].tolist(),
-                       spread=stds[k].tolist())
+                       spread=stds[k].tolist(), drift=drift.get(str(int(sid))))
             for k, sid in enumerate(mixture.ids.tolist())]

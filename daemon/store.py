@@ -81,6 +81,22 @@ CREATE TABLE IF NOT EXISTS alert_outbox (
     delivered_at REAL,
     attempts     INTEGER NOT NULL DEFAULT 0
 );
+CREATE TABLE IF NOT EXISTS alert_delivery (
+    outbox_id    TEXT NOT NULL REFERENCES alert_outbox (id),
+    sink         TEXT NOT NULL,
+    delivered_at REAL,
+    attempts     INTEGER NOT NULL DEFAULT 0,
+    next_at      REAL,
+    last_error   TEXT,
+    PRIMARY KEY (outbox_id, sink)
+);
+CREATE TABLE IF NOT EXISTS rebaselines (
+    id            INTEGER PRIMARY KEY,
+    requested     REAL NOT NULL,
+    note          TEXT NOT NULL,
+    applied       REAL,
+    model_version INTEGER
+);
 """
 
 
@@ -265,7 +281,128 @@ class StateStore:
 
     def pending_alerts(self) -> list[tuple[str, dict]]:
         return [(i, json.loads(p)) for i, p in self.db.execute(
-            "SELECT id, payload FROM alert_outbox WHERE delivered_at IS NULL ORDER BY created, id")]
+            "SELECT id, payload FROM alert_outbox WHERE delivered_at IS NULL "
+            "ORDER BY version, rowid")]
+
+    def alerts(self, since: float | None = None, version: int | None = None) -> list[dict]:
+        """Every alert notification (outbox row), oldest first: id, version, created,
+        delivered_at and the payload."""
+        sql = "SELECT id, version, created, delivered_at, payload FROM alert_outbox"
+        where, args = [], []
+        if since is not None:
+            where.append("created >= ?")
+            args.append(since)
+        if version is not None:
+            where.append("version = ?")
+            args.append(version)
+        if where:
+            sql += " WHERE " + " AND ".join(where)
+        return [{"notification": i, "version": v, "created": c, "delivered_at": d,
+                 "payload": json.loads(p)}
+                for i, v, c, d, p in self.db.execute(sql + " ORDER BY version, rowid", args)]
+
+    # -- alert delivery (the sender's own connection) ----------------------------
+    def deliveries_due(self, sinks: list[str], now: float, limit: int = 100):
+        """Undelivered (notification, sink, attempts, payload text) due by ``now``, oldest
+        first; a missing delivery row counts as due with no attempts."""
+        out = []
+        rows = self.db.execute("SELECT id, payload FROM alert_outbox WHERE delivered_at IS NULL "
+                               "ORDER BY version, rowid LIMIT ?", (limit,)).fetchall()
+        for outbox_id, payload in rows:
+            for sink in sinks:
+                row = self.db.execute("SELECT delivered_at, attempts, next_at FROM "
+                                      "alert_delivery WHERE outbox_id = ? AND sink = ?",
+                                      (outbox_id, sink)).fetchone()
+                if row is None:
+                    out.append((outbox_id, sink, 0, payload))
+                elif row[0] is None and (row[2] is None or row[2] <= now):
+                    out.append((outbox_id, sink, row[1], payload))
+        return out
+
+    def next_delivery_at(self) -> float | None:
+        row = self.db.execute("SELECT MIN(d.next_at) FROM alert_delivery d JOIN alert_outbox o "
+                              "ON o.id = d.outbox_id WHERE d.delivered_at IS NULL "
+                              "AND o.delivered_at IS NULL").fetchone()
+        return row[0]
+
+    def record_delivery(self, outbox_id: str, sink: str, *, ok: bool, attempts: int,
+                        next_at: float | None = None, error: str | None = None,
+                        sinks: list[str] = ()) -> None:
+        """Note one attempt; the notification is delivered once every sink in ``sinks`` has it."""
+        now = self.clock()
+        with self._transaction():
+            self.db.execute(
+                "INSERT INTO alert_delivery (outbox_id, sink, delivered_at, attempts, next_at, "
+                "last_error) VALUES (?, ?, ?, ?, ?, ?) ON CONFLICT (outbox_id, sink) DO UPDATE "
+                "SET delivered_at = excluded.delivered_at, attempts = excluded.attempts, "
+                "next_at = excluded.next_at, last_error = excluded.last_error",
+                (outbox_id, sink, now if ok else None, attempts, next_at, error))
+            self.db.execute("UPDATE alert_outbox SET attempts = attempts + 1 WHERE id = ?",
+                            (outbox_id,))
+            if ok:
+                marks = "?" + ", ?" * (len(sinks) - 1) if sinks else "''"
+                done = self.db.execute(
+                    f"SELECT COUNT(*) FROM alert_delivery WHERE outbox_id = ? AND "
+                    f"delivered_at IS NOT NULL AND sink IN ({marks})",
+                    (outbox_id, *sinks)).fetchone()[0]
+                if done >= len(sinks):
+                    self.db.execute("UPDATE alert_outbox SET delivered_at = ? WHERE id = ?",
+                                    (now, outbox_id))
+
+    def retry_undelivered_now(self) -> int:
+        """Make every undelivered notification due at once (at a start: deliveries that gave up
+        are tried again)."""
+        with self._transaction():
+            return self.db.execute("UPDATE alert_delivery SET next_at = NULL, attempts = 0 "
+                                   "WHERE delivered_at IS NULL").rowcount
+
+    # -- re-baselining -------------------------------------------------------------
+    def request_rebaseline(self, note: str) -> int:
+        with self._transaction():
+            cur = self.db.execute("INSERT INTO rebaselines (requested, note) VALUES (?, ?)",
+                                  (self.clock(), note))
+            return int(cur.lastrowid)
+
+    def cancel_rebaseline(self, request_id: int) -> None:
+        with self._transaction():
+            self.db.execute("DELETE FROM rebaselines WHERE id = ? AND applied IS NULL",
+                            (request_id,))
+
+    def pending_rebaseline(self) -> tuple[int, str] | None:
+        """The oldest request not yet applied, as (id, note)."""
+        row = self.db.execute("SELECT id, note FROM rebaselines WHERE applied IS NULL "
+                              "ORDER BY id LIMIT 1").fetchone()
+        return None if row is None else (int(row[0]), row[1])
+
+    def rebaselines(self) -> list[dict]:
+        return [{"id": i, "requested": r, "note": n, "applied": a, "model_version": v}
+                for i, r, n, a, v in self.db.execute(
+                    "SELECT id, requested, note, applied, model_version FROM rebaselines "
+                    "ORDER BY id")]
+
+    def apply_rebaseline(self, request_id: int, version: int, extra: Mapping[str, Any],
+                         alerts: Iterable[tuple[str, Mapping[str, Any]]] = ()) -> None:
+        """Apply a re-baseline to checkpoint ``version`` (the latest) in one transaction:
+        its extras (the drift state) replaced, the request marked, resolved alerts queued."""
+        now = self.clock()
+        with self._transaction():
+            if self.model_version != version:
+                raise StateError(f"the model moved on to version {self.model_version} while "
+                                 f"re-baselining version {version}; try again")
+            self.db.execute("UPDATE checkpoints SET extra = ? WHERE version = ?",
+                            (json.dumps(extra, sort_keys=True), version))
+            self._mark_rebaseline(request_id, version, now)
+            self._insert_alerts(alerts, version, now)
+
+    def _mark_rebaseline(self, request_id: int, version: int, now: float) -> None:
+        self.db.execute("UPDATE rebaselines SET applied = ?, model_version = ? WHERE id = ?",
+                        (now, version, request_id))
+
+    def _insert_alerts(self, alerts, version: int, now: float) -> None:
+        for alert_id, payload in alerts:
+            self.db.execute("INSERT OR IGNORE INTO alert_outbox (id, version, created, "
+                            "payload) VALUES (?, ?, ?, ?)",
+                            (alert_id, version, now, json.dumps(payload, sort_keys=True)))
 
     # -- writes -----------------------------------------------------------------
     def record_quarantine(self, entry: LedgerEntry) -> None:
@@ -276,11 +413,14 @@ class StateStore:
                      checkpoint: Checkpoint | None = None,
                      warmup_rows: np.ndarray | None = None, clear_warmup: bool = False,
                      history: Iterable[HistoryRow] = (),
-                     alerts: Iterable[tuple[str, Mapping[str, Any]]] = ()) -> int:
+                     alerts: Iterable[tuple[str, Mapping[str, Any]]] = (),
+                     rebaseline: int | None = None) -> int:
         """Commit one input in one transaction; return the model version after it.
 
         ``learned``: the input advances the model version by one (a new input);
         a duplicate does not. ``checkpoint.version`` must be that new version.
+        ``alerts`` go to the outbox (an id already there is kept as it was);
+        ``rebaseline`` is a request id applied by this input.
         """
         now = self.clock()
         with self._transaction():
@@ -305,10 +445,9 @@ class StateStore:
                     (version, int(h.segment), float(h.weight), int(h.rows), json.dumps(h.mean),
                      json.dumps(h.spread), json.dumps(h.drift) if h.drift else None, h.event,
                      now))
-            for alert_id, payload in alerts:
-                self.db.execute("INSERT OR IGNORE INTO alert_outbox (id, version, created, "
-                                "payload) VALUES (?, ?, ?, ?)",
-                                (alert_id, version, now, json.dumps(payload, sort_keys=True)))
+            self._insert_alerts(alerts, version, now)
+            if rebaseline is not None:
+                self._mark_rebaseline(rebaseline, version, now)
         return version
 
     def _insert_entry(self, e: LedgerEntry, model_version: int | None = None) -> int:

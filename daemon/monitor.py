@@ -1,0 +1,639 @@
+"""Drift of each segment against its reference, window by window, and the alerts it raises.
+
+The pipeline hands every piece of rows it learns to an :class:`InputWatch` (one per
+input). Rows are gathered into evaluation windows of ``drift.window_rows`` rows,
+counted along the stream from the first row learned after warm-up, so the windows do
+not depend on how the stream is cut into files. A window keeps additive sums only
+(responsibility totals, their squares, first and second moments per segment, the
+log-density sums and the unusual rows), so a window may span inputs; the sums travel
+in the checkpoint's ``extra["drift"]`` and are committed with the model.
+
+When ``drift.settle_rows`` rows have been learned after warm-up (rounded up to a
+whole window) the model is taken as the reference (:class:`shoal.core.drift.Reference`)
+together with the mean log-density of the last window. After that each window is
+compared with it, per segment:
+
+``mean_shift``     the window's responsibility-weighted mean, in reference sds
+                   (Mahalanobis distance under the reference covariance);
+``spread_ratio``   ``exp(|log|S_window| - log|S_ref|| / (2 D))``, the geometric mean of
+                   the sd ratios either way (evaluated on its log);
+``weight_change``  ``|share of the window's rows - reference weight|``;
+``feature_shift[f]`` one feature's window mean in reference sds (only when bounded);
+``fit_drop``       (whole model) reference mean log-density per row minus the window's.
+
+Each comes with its estimation noise at Kish's effective rows of the window and of
+the reference (:mod:`shoal.core.drift`). :func:`shoal.core.drift.evaluate_bounds`
+turns them into firing and resolved events (bound and noise, persistence,
+hysteresis); here they become alert payloads with deterministic ids and an
+explanation in the data's own units.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import logging
+import math
+from typing import Any
+
+import numpy as np
+
+from shoal.config import Settings
+from shoal.core import Mixture
+from shoal.core.distances import log_generalised_variance_ratio, mahalanobis_distance
+from shoal.core.drift import (
+    WHOLE_MODEL,
+    Reference,
+    evaluate_bounds,
+    explain,
+    mean_shift_noise,
+    spread_noise,
+    weight_noise,
+)
+from shoal.daemon.logs import log_event
+
+__all__ = ["DriftMonitor", "InputWatch", "alert_id", "STATISTIC_UNITS", "SEGMENT_STATISTICS"]
+
+STATE_FORMAT = 1
+SEGMENT_STATISTICS = ("mean_shift", "spread_ratio", "weight_change")
+STATISTIC_UNITS = {
+    "mean_shift": "reference sds",
+    "spread_ratio": "ratio of sds",
+    "weight_change": "share of rows",
+    "fit_drop": "nats per row",
+    "feature_shift": "reference sds",
+}
+_TOP_FEATURES = 3
+
+
+def alert_id(reference_number: int, segment, statistic: str, first_window: int) -> str:
+    """The same cause (reference, segment, statistic, first crossing window) -> the same id."""
+    cause = json.dumps([int(reference_number), str(segment), statistic, int(first_window)])
+    return "drift-" + hashlib.sha256(cause.encode()).hexdigest()[:20]
+
+
+def _feature_stat(name: str) -> str:
+    return f"feature_shift[{name}]"
+
+
+def _num(x) -> float | None:
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+def _fmt(x: float) -> str:
+    return f"{x:.4g}"
+
+
+# ------------------------------------------------------------------------- window sums
+
+
+def _empty_window(index: int) -> dict:
+    return {"index": index, "n": 0, "ld": 0.0, "ld2": 0.0, "segments": {},
+            "unusual": {"n": 0, "sum": None, "by_segment": {}},
+            "files": [], "versions": [None, None], "time": [None, None]}
+
+
+def _add(old, new):
+    return (np.asarray(old) + new).tolist() if old is not None else np.asarray(new).tolist()
+
+
+def _widen(pair, lo, hi):
+    a, b = pair
+    return [lo if a is None or lo < a else a, hi if b is None or hi > b else b]
+
+
+def _time_range(times):
+    """(first, last) of a piece's times as JSON-able values, or None."""
+    if times is None or len(times) == 0:
+        return None
+    t = np.asarray(times)
+    if t.dtype == object or t.dtype.kind == "U":     # text (CSV): ISO times if they parse
+        try:
+            t = np.array([str(v).rstrip("Z") for v in t.tolist() if v is not None],
+                         dtype="datetime64[ms]")
+        except ValueError:
+            pass
+    if np.issubdtype(t.dtype, np.datetime64):
+        t = t[~np.isnat(t)]
+        if not t.size:
+            return None
+        return (str(np.datetime_as_string(t.min(), unit="ms")) + "Z",
+                str(np.datetime_as_string(t.max(), unit="ms")) + "Z")
+    if np.issubdtype(t.dtype, np.number):
+        t = t[np.isfinite(t.astype(np.float64))]
+        return (float(t.min()), float(t.max())) if t.size else None
+    values = [str(v) for v in t.tolist() if v is not None]
+    return (min(values), max(values)) if values else None
+
+
+# ----------------------------------------------------------------------------- monitor
+
+
+class DriftMonitor:
+    """Settings-bound factory of :class:`InputWatch` objects, and re-baselining."""
+
+    def __init__(self, settings: Settings):
+        self.settings = settings
+        self.drift = settings.drift
+        self.features = list(settings.features)
+
+    def begin(self, state: dict | None, *, version: int, file: str, times=None,
+              unusual_below: float | None = None) -> "InputWatch | None":
+        if not self.drift.enabled:
+            return None
+        return InputWatch(self, state, version=version, file=file, times=times,
+                          unusual_below=unusual_below)
+
+    # bounds from settings: statistic -> bound, (segment, statistic) -> bound (log scale for
+    # spread_ratio)
+    def bounds(self, segment_ids) -> dict:
+        b = self.drift.bounds
+        out: dict[Any, float] = {}
+
+        def put(key, stat, value):
+            if value is None:
+                return
+            out[key] = math.log(value) if stat == "spread_ratio" else float(value)
+
+        for stat in SEGMENT_STATISTICS + ("fit_drop",):
+            put(stat, stat, getattr(b, stat))
+        for f in self.features:
+            put(_feature_stat(f), "feature_shift", b.feature_shift)
+        for o in self.drift.overrides:       # feature-wide first, then segment-specific
+            if o.segment is None and o.feature is not None:
+                put(_feature_stat(o.feature), "feature_shift", o.feature_shift)
+        for o in self.drift.overrides:
+            if o.segment is None or o.segment not in segment_ids:
+                continue
+            for stat in SEGMENT_STATISTICS:
+                put((o.segment, stat), stat, getattr(o, stat))
+            feats = [o.feature] if o.feature is not None else self.features
+            for f in feats:
+                put((o.segment, _feature_stat(f)), "feature_shift", o.feature_shift)
+        return out
+
+    def wants_feature_shift(self) -> bool:
+        return self.drift.bounds.feature_shift is not None or any(
+            o.feature_shift is not None for o in self.drift.overrides)
+
+
+class InputWatch:
+    """Drift evaluation for the rows of one input; ``state`` and ``alerts`` go to the commit."""
+
+    def __init__(self, monitor: DriftMonitor, state: dict | None, *, version: int, file: str,
+                 times=None, unusual_below=None):
+        self.monitor = monitor
+        self.drift = monitor.drift
+        self.version = version
+        self.file = file
+        self.times = times
+        self.unusual_below = unusual_below
+        self.alerts: list[tuple[str, dict]] = []
+        self.rebaselined = False
+        if state is not None and state.get("format") != STATE_FORMAT:
+            raise ValueError(f"drift state has format {state.get('format')!r}")
+        self.state = json.loads(json.dumps(state)) if state is not None else None
+        self.last_values: dict[str, dict[str, float]] = {}
+
+    # -- setup -----------------------------------------------------------------------
+    def start(self, stream_offset: int) -> None:
+        """A new model: windows count from its first learned row (stream row ``stream_offset``)."""
+        self.state = {"format": STATE_FORMAT, "offset": int(stream_offset), "reference": None,
+                      "reference_number": 0, "reference_info": None, "window": None,
+                      "bounds": None, "cool": {}, "recent": [], "open": {},
+                      "last_ld": None, "rebase": None}
+
+    def _ensure(self) -> dict:
+        if self.state is None:  # a model made before drift watching: count from here
+            self.start(self.monitor.settings.warmup_rows)
+        return self.state
+
+    # -- pieces ----------------------------------------------------------------------
+    def rows_to_boundary(self, n_rows: int) -> int:
+        """Rows the next piece may hold so that it does not cross a window boundary."""
+        w = self.drift.window_rows
+        return w - n_rows % w
+
+    def observe(self, mixture: Mixture, X: np.ndarray, scores, start: int) -> None:
+        """Add a learned piece (rows ``start..`` of the input's learned rows); ``mixture`` is
+        the model after learning it."""
+        st = self._ensure()
+        w = self.drift.window_rows
+        end_row = int(mixture.n_rows)
+        first_row = end_row - len(X)
+        index = first_row // w
+        win = st["window"]
+        if win is None or win["index"] != index:
+            win = st["window"] = _empty_window(index)
+        times = None if self.times is None else self.times[start:start + len(X)]
+        self._accumulate(win, mixture, X, scores, times)
+        if end_row % w == 0:
+            self._close(win, mixture, first_window_row=index * w)
+            st["window"] = None
+
+    def _accumulate(self, win, mixture, X, scores, times):
+        n = len(X)
+        if n == 0:
+            return
+        resp = scores.resp
+        Xc = X - mixture.center
+        ld = scores.log_density
+        win["n"] += n
+        win["ld"] += float(ld.sum())
+        win["ld2"] += float(np.dot(ld, ld))
+        T = resp.sum(axis=0)
+        Q = np.einsum("nk,nk->k", resp, resp)
+        M = resp.T @ Xc
+        for k, sid in enumerate(mixture.ids.tolist()):
+            if T[k] <= 0.0:
+                continue
+            S = (Xc * resp[:, k, None]).T @ Xc
+            acc = win["segments"].setdefault(str(sid), {"T": 0.0, "Q": 0.0, "M": None, "S": None})
+            acc["T"] += float(T[k])
+            acc["Q"] += float(Q[k])
+            acc["M"] = _add(acc["M"], M[k])
+            acc["S"] = _add(acc["S"], S)
+        limit = self.state.get("reference_info", {}) or {}
+        below = limit.get("unusual_below")
+        if below is not None:
+            mask = ld < below
+            if mask.any():
+                u = win["unusual"]
+                u["n"] += int(mask.sum())
+                u["sum"] = _add(u["sum"], Xc[mask].sum(axis=0))
+                segs, counts = np.unique(scores.segment[mask], return_counts=True)
+                for sid, c in zip(segs.tolist(), counts.tolist()):
+                    u["by_segment"][str(sid)] = u["by_segment"].get(str(sid), 0) + int(c)
+        if self.file not in win["files"]:
+            win["files"].append(self.file)
+        win["versions"] = _widen(win["versions"], self.version, self.version)
+        span = _time_range(times)
+        if span is not None:
+            win["time"] = _widen(win["time"], *span)
+        win["center"] = mixture.center.tolist()
+
+    # -- windows ---------------------------------------------------------------------
+    def _window_info(self, win, first_window_row) -> dict:
+        off = self.state["offset"]
+        return {"index": win["index"],
+                "rows": [off + first_window_row, off + first_window_row + win["n"] - 1],
+                "versions": win["versions"], "files": win["files"],
+                "time": win["time"] if win["time"][0] is not None else None}
+
+    def _close(self, win, mixture: Mixture, first_window_row: int) -> None:
+        st = self.state
+        info = self._window_info(win, first_window_row)
+        keep = max(self.drift.persist, self.drift.resolve_persist)
+        st["recent"] = (st["recent"] + [info])[-keep:]
+        st["last_ld"] = win["ld"] / win["n"] if win["n"] else None
+        if st.get("rebase") is not None:
+            self._collect(win, mixture, info)
+            return
+        if st["reference"] is None:
+            if first_window_row + win["n"] >= self.drift.settle_rows:
+                self._take_reference(mixture, st["last_ld"], info)
+            return
+        self._evaluate(win, info)
+
+    def _take_reference(self, mixture: Mixture, log_density, info, ref=None) -> None:
+        st = self.state
+        if ref is None:
+            ref = Reference.from_mixture(mixture, log_density=log_density)
+        st["reference"] = ref.to_dict()
+        st["reference_info"] = {"number": st["reference_number"], "model_version": self.version,
+                                "row": info["rows"][1] + 1, "unusual_below": self.unusual_below,
+                                "note": None}
+        st["bounds"], st["cool"], st["open"] = None, {}, {}
+        log_event("drift_reference_taken", reference=st["reference_number"],
+                  model_version=self.version, row=info["rows"][1] + 1,
+                  segments=[int(i) for i in ref.ids])
+
+    def rebaseline(self, mixture: Mixture, note: str) -> None:
+        """Accept the present as normal: firing alerts resolve now, and the next
+        ``settle_rows`` rows (whole windows, at least one) become the new reference.
+
+        The reference is taken from those rows themselves (responsibility-weighted
+        weights, means and covariances), not from the model, which lags a population
+        that has just moved by about a half-life.
+        """
+        st = self._ensure()
+        for key, alert in sorted(st["open"].items()):
+            payload = dict(alert["payload"], status="resolved", value=None,
+                           resolved_by="rebaseline", note=note)
+            payload["model_version"] = {"first": alert["payload"]["model_version"]["first"],
+                                        "last": self.version}
+            self._emit(payload)
+        if st["reference"] is not None:
+            st["reference_number"] += 1
+        st["reference"], st["bounds"], st["cool"], st["open"] = None, None, {}, {}
+        st["rebase"] = {"note": note, "requested_version": self.version, "sums": None}
+        self.rebaselined = True
+        log_event("drift_rebaseline_started", reference=st["reference_number"],
+                  model_version=self.version, note=note,
+                  rows=max(self.drift.settle_rows, self.drift.window_rows))
+
+    def _collect(self, win, mixture: Mixture, info) -> None:
+        """Add a window to the re-baseline sums; take the reference once there are enough."""
+        st = self.state
+        rebase = st["rebase"]
+        sums = rebase["sums"] = _merge_sums(rebase["sums"], win)
+        if sums["n"] < max(self.drift.settle_rows, self.drift.window_rows):
+            return
+        ref = _reference_from_sums(sums, mixture)
+        st["rebase"] = None
+        self._take_reference(mixture, ref.log_density, info, ref=ref)
+        st["reference_info"]["note"] = rebase["note"]
+
+    def _evaluate(self, win, info) -> None:
+        st = self.state
+        ref = Reference.from_dict(st["reference"])
+        values, noise, detail = self._statistics(win, ref)
+        at = win["index"]
+        for key in list(st["cool"]):
+            if st["cool"][key] < at:
+                del st["cool"][key]
+        for (seg, stat) in list(values):
+            if f"{seg}|{stat}" in st["cool"]:
+                values[(seg, stat)] = 0.0
+        bounds = self.monitor.bounds(set(int(i) for i in ref.ids))
+        d = self.drift
+        st["bounds"], events = evaluate_bounds(
+            values, noise, bounds, st["bounds"], noise_multiple=d.noise_multiple,
+            persist=d.persist, resolve_fraction=d.resolve_fraction,
+            resolve_persist=d.resolve_persist, at=at)
+        self.last_values = {}
+        for (seg, stat), v in values.items():
+            bound = bounds.get((seg, stat), bounds.get(stat))
+            self.last_values.setdefault(str(seg), {})[stat] = {
+                "value": _num(_shown(stat, v)), "noise": _num(_shown_noise(stat, noise[(seg, stat)])),
+                "bound": None if bound is None else _num(_shown(stat, bound))}
+        for e in events:
+            self._event(e, detail, ref, info)
+
+    def _statistics(self, win, ref: Reference):
+        d = len(ref.means[0])
+        n = win["n"]
+        center = np.asarray(win["center"])
+        features = self.monitor.features
+        cov_type = ref.covariance
+        per_feature = self.monitor.wants_feature_shift()
+        values, noise, detail = {}, {}, {}
+        for k, sid in enumerate(ref.ids.tolist()):
+            acc = win["segments"].get(str(sid))
+            w_ref = float(ref.weights[k])
+            share = (acc["T"] / n) if acc else 0.0
+            values[(sid, "weight_change")] = abs(share - w_ref)
+            noise[(sid, "weight_change")] = float(weight_noise(w_ref, float(n),
+                                                               ref.total_n_eff))
+            seg_detail = {"share": share, "reference_weight": w_ref, "n_eff": 0.0}
+            detail[sid] = seg_detail
+            if not acc or acc["T"] <= 0.0 or acc["Q"] <= 0.0:
+                continue
+            T = acc["T"]
+            n_eff = T * T / acc["Q"]
+            dev = np.asarray(acc["M"]) / T
+            mean = center + dev
+            cov = np.asarray(acc["S"]) / T - np.outer(dev, dev)
+            ref_n = float(ref.n_eff[k])
+            shift = float(mahalanobis_distance(mean, ref.means[k], ref.covariances[k]))
+            values[(sid, "mean_shift")] = shift
+            noise[(sid, "mean_shift")] = float(mean_shift_noise(n_eff, d, ref_n))
+            seg_detail.update(n_eff=n_eff, mean=mean, cov=cov,
+                              t2=n_eff * shift * shift)
+            if n_eff > d + 1:
+                diag = np.diag(cov)
+                if cov_type == "diag":
+                    cov = np.diag(diag)
+                elif cov_type == "spherical":
+                    cov = np.eye(d) * diag.mean()
+                if np.all(diag > 0) and np.all(np.linalg.eigvalsh(cov) > 0):
+                    lr = float(log_generalised_variance_ratio(cov, ref.covariances[k]))
+                    values[(sid, "spread_ratio")] = abs(lr) / (2 * d)
+                    noise[(sid, "spread_ratio")] = float(
+                        spread_noise(n_eff, d, cov_type, ref_n)) / (2 * d)
+            if per_feature:
+                ref_sd = np.sqrt(np.diag(ref.covariances[k]))
+                z = np.abs(mean - ref.means[k]) / ref_sd
+                fn = math.sqrt(1.0 / n_eff + (0.0 if math.isinf(ref_n) else 1.0 / ref_n))
+                for j, f in enumerate(features):
+                    values[(sid, _feature_stat(f))] = float(z[j])
+                    noise[(sid, _feature_stat(f))] = fn
+        if n >= 2 and math.isfinite(ref.log_density):
+            mean_ld = win["ld"] / n
+            var = max(win["ld2"] / n - mean_ld * mean_ld, 0.0) * n / (n - 1)
+            values[(WHOLE_MODEL, "fit_drop")] = ref.log_density - mean_ld
+            noise[(WHOLE_MODEL, "fit_drop")] = math.sqrt(var / n)
+            u = win["unusual"]
+            detail[WHOLE_MODEL] = {"mean_log_density": mean_ld, "n": n, "unusual": u["n"],
+                                   "unusual_mean": None if not u["n"] else
+                                   center + np.asarray(u["sum"]) / u["n"],
+                                   "unusual_by_segment": u["by_segment"]}
+        return values, noise, detail
+
+    # -- events -> alerts ------------------------------------------------------------
+    def _event(self, e: dict, detail: dict, ref: Reference, info: dict) -> None:
+        st = self.state
+        seg, stat = e["segment"], e["statistic"]
+        key = f"{seg}|{stat}"
+        if e["status"] == "firing":
+            windows = [w for w in st["recent"] if w["index"] >= e["first_at"]]
+            payload = {
+                "id": alert_id(st["reference_number"], seg, stat, e["first_at"]),
+                "kind": "drift",
+                "status": "firing",
+                "severity": self._severity(stat, e["value"], e["bound"]),
+                "segment": seg if seg == WHOLE_MODEL else int(seg),
+                "statistic": stat,
+                "unit": STATISTIC_UNITS[stat.split("[")[0]],
+                "value": _num(_shown(stat, e["value"])),
+                "bound": _num(_shown(stat, e["bound"])),
+                "noise": _num(_shown_noise(stat, e["noise"])),
+                "model_version": {"first": min(w["versions"][0] for w in windows),
+                                  "last": self.version},
+                "rows": {"first": windows[0]["rows"][0], "last": info["rows"][1]},
+                "time": _span([w["time"] for w in windows]),
+                "inputs": _files(windows),
+                "windows": {"first": e["first_at"], "last": e["at"],
+                            "rows_each": self.drift.window_rows},
+                "reference": {k: v for k, v in (st["reference_info"] or {}).items()
+                              if k in ("number", "model_version", "row")},
+                "explanation": self._explain(seg, stat, detail, ref),
+            }
+            st["open"][key] = {"payload": payload}
+            self._emit(payload)
+        else:
+            opened = st["open"].pop(key, None)
+            base = opened["payload"] if opened else {
+                "id": alert_id(st["reference_number"], seg, stat, e["first_at"] or e["at"]),
+                "kind": "drift", "segment": seg, "statistic": stat,
+                "unit": STATISTIC_UNITS[stat.split("[")[0]],
+                "model_version": {"first": self.version}, "rows": {"first": info["rows"][0]},
+                "severity": "warning", "reference": None}
+            windows = st["recent"][-self.drift.resolve_persist:]
+            payload = dict(base)
+            payload.update({
+                "status": "resolved",
+                "value": _num(_shown(stat, e["value"])),
+                "bound": _num(_shown(stat, e["bound"])),
+                "noise": _num(_shown_noise(stat, e["noise"])),
+                "peak": _num(_shown(stat, e["peak"])),
+                "model_version": {"first": base["model_version"]["first"], "last": self.version},
+                "rows": {"first": base["rows"]["first"], "last": info["rows"][1]},
+                "time": _span(([[base["time"]["first"], base["time"]["last"]]]
+                               if base.get("time") else []) + [w["time"] for w in windows]),
+                "inputs": _files(windows),
+                "explanation": self._explain(seg, stat, detail, ref),
+            })
+            st["cool"][key] = e["at"] + self.drift.cool_down_windows
+            self._emit(payload)
+
+    def _emit(self, payload: dict) -> None:
+        self.alerts.append((f"{payload['id']}.{payload['status']}", payload))
+        level = logging.WARNING if payload["status"] == "firing" else logging.INFO
+        log_event(f"alert_{payload['status']}", level, id=payload["id"],
+                  severity=payload.get("severity"), segment=payload.get("segment"),
+                  statistic=payload.get("statistic"), value=payload.get("value"),
+                  bound=payload.get("bound"),
+                  summary=(payload.get("explanation") or {}).get("summary"))
+
+    def _severity(self, stat, value, bound) -> str:
+        return "critical" if value >= self.drift.critical_multiple * bound else "warning"
+
+    def _explain(self, seg, stat, detail, ref: Reference) -> dict:
+        names = self.monitor.features
+        if seg == WHOLE_MODEL:
+            return self._explain_fit(detail.get(WHOLE_MODEL), ref)
+        info = detail.get(seg, {})
+        if "mean" not in info:
+            share = info.get("share", 0.0)
+            return {"summary": f"segment {seg} took {share:.1%} of the window's rows "
+                               f"(reference weight {info.get('reference_weight', 0.0):.1%}) "
+                               "and had no rows to compare",
+                    "share": share, "reference_weight": info.get("reference_weight")}
+        moved = explain(ref, seg, info["mean"], feature_names=names)
+        out = {"features": moved, "share": info["share"],
+               "reference_weight": info["reference_weight"], "effective_rows": info["n_eff"]}
+        if stat == "mean_shift":
+            out["hotelling_t2"] = info["t2"]
+        if stat == "spread_ratio":
+            k = ref.index_of(seg)
+            ratio = np.sqrt(np.maximum(np.diag(info["cov"]), 0.0) /
+                            np.diag(ref.covariances[k]))
+            order = sorted(range(len(names)), key=lambda j: (-abs(math.log(max(ratio[j], 1e-300))), j))
+            out["spreads"] = [{"feature": names[j],
+                               "reference_sd": float(math.sqrt(ref.covariances[k][j, j])),
+                               "current_sd": float(math.sqrt(max(info["cov"][j, j], 0.0))),
+                               "ratio": float(ratio[j])} for j in order]
+            top = ", ".join(f"{s['feature']} sd {_fmt(s['reference_sd'])} -> "
+                            f"{_fmt(s['current_sd'])} (x{s['ratio']:.2f})"
+                            for s in out["spreads"][:_TOP_FEATURES])
+            out["summary"] = f"segment {seg} spread changed: {top}"
+        elif stat == "weight_change":
+            out["summary"] = (f"segment {seg} took {info['share']:.1%} of the rows against a "
+                              f"reference weight of {info['reference_weight']:.1%}; "
+                              + _moves(moved))
+        else:
+            out["summary"] = f"segment {seg} moved: " + _moves(moved)
+        return out
+
+    def _explain_fit(self, info, ref: Reference) -> dict:
+        if not info:
+            return {"summary": "no rows"}
+        out = {"mean_log_density": info["mean_log_density"],
+               "reference_log_density": float(ref.log_density),
+               "unusual_rows": info["unusual"], "rows": info["n"],
+               "expected_unusual_share": self.monitor.settings.output.unusual_quantile}
+        head = (f"mean log-density {_fmt(info['mean_log_density'])} against "
+                f"{_fmt(ref.log_density)} nats/row at the reference; "
+                f"{info['unusual'] / info['n']:.1%} of rows unusual (expected "
+                f"{self.monitor.settings.output.unusual_quantile:.1%})")
+        by_seg = info["unusual_by_segment"]
+        if info["unusual"] and by_seg:
+            near = max(by_seg, key=lambda s: (by_seg[s], -int(s)))
+            if int(near) in set(ref.ids.tolist()):
+                moved = explain(ref, int(near), info["unusual_mean"],
+                                feature_names=self.monitor.features)
+                out.update(nearest_segment=int(near), features=moved)
+                head += (f"; most are labelled segment {near}, from whose reference they "
+                         f"differ: " + _moves(moved))
+        out["summary"] = head
+        return out
+
+    # -- outputs ---------------------------------------------------------------------
+    def segment_drift(self) -> dict[str, dict]:
+        """Per segment id (str): the last window's statistics, noise and bounds."""
+        return self.last_values
+
+
+def _merge_sums(into: dict | None, win: dict) -> dict:
+    if into is None:
+        into = {"n": 0, "ld": 0.0, "segments": {}, "center": win["center"]}
+    into["n"] += win["n"]
+    into["ld"] += win["ld"]
+    for sid, acc in win["segments"].items():
+        old = into["segments"].setdefault(sid, {"T": 0.0, "Q": 0.0, "M": None, "S": None})
+        old["T"] += acc["T"]
+        old["Q"] += acc["Q"]
+        old["M"] = _add(old["M"], acc["M"])
+        old["S"] = _add(old["S"], acc["S"])
+    return into
+
+
+def _reference_from_sums(sums: dict, mixture: Mixture) -> Reference:
+    """A reference from the rows themselves; a segment with too few rows for a covariance
+    keeps the model's mean and covariance."""
+    model = Reference.from_mixture(mixture)
+    d = mixture.n_features
+    center = np.asarray(sums["center"])
+    n = sums["n"]
+    weights, means = model.weights.copy(), model.means.copy()
+    covs, n_eff = model.covariances.copy(), model.n_eff.copy()
+    for k, sid in enumerate(model.ids.tolist()):
+        acc = sums["segments"].get(str(sid))
+        weights[k] = acc["T"] / n if acc else 0.0
+        if not acc or acc["Q"] <= 0 or acc["T"] ** 2 / acc["Q"] <= d + 1:
+            continue
+        dev = np.asarray(acc["M"]) / acc["T"]
+        cov = np.asarray(acc["S"]) / acc["T"] - np.outer(dev, dev)
+        if mixture.covariance == "diag":
+            cov = np.diag(np.diag(cov))
+        elif mixture.covariance == "spherical":
+            cov = np.eye(d) * np.diag(cov).mean()
+        if np.all(np.linalg.eigvalsh(cov) > 0):
+            means[k], covs[k] = center + dev, cov
+            n_eff[k] = acc["T"] ** 2 / acc["Q"]
+    return Reference(ids=model.ids, weights=weights, means=means, covariances=covs,
+                     n_eff=n_eff, total_n_eff=float(n), log_density=sums["ld"] / n,
+                     covariance=mixture.covariance)
+
+
+def _moves(moved) -> str:
+    return ", ".join(f"{m['feature']} {_fmt(m['reference_mean'])} -> {_fmt(m['current_mean'])} "
+                     f"({m['shift_sd']:+.2f} sd)" for m in moved[:_TOP_FEATURES])
+
+
+def _shown(stat, v):
+    """A statistic as users read it (spread_ratio is evaluated on its log)."""
+    if v is None:
+        return math.nan
+    return math.exp(v) if stat == "spread_ratio" else v
+
+
+def _shown_noise(stat, v):
+    return math.exp(v) if stat == "spread_ratio" and v is not None else v
+
+
+def _files(windows) -> list[str]:
+    out: list[str] = []
+    for w in windows:
+        for f in w["files"]:
+            if f not in out:
+                out.append(f)
+    return out
+
+
+def _span(pairs):
+    pairs = [p for p in pairs if p]
+    if not pairs:
+        return None
+    return {"first": min(p[0] for p in pairs), "last": max(p[1] for p in pairs)}
