@@ -17,6 +17,7 @@ from pathlib import Path
 
 from shoal.config import ConfigError, Settings, dump_settings, load_config
 from shoal.core import ShoalError
+from shoal.daemon.alert_commands import add_alert_commands, alert_delivery
 from shoal.daemon.errors import InputRejected, ServiceError, UsageError
 from shoal.daemon.layout import StateLock, prepare_folders, remove_stale_temps
 from shoal.daemon.logs import log_event, setup_logging
@@ -66,6 +67,7 @@ def build_parser() -> argparse.ArgumentParser:
     sp = with_config(cmd("segments", "show the current segments", _cmd_segments))
     sp.add_argument("--json", action="store_true", help="print JSON instead of a table")
     add_operating_commands(cmd, with_config)   # report, status
+    add_alert_commands(cmd, with_config, open_service_parts)   # alerts, rebaseline, replay
     with_config(cmd("check-config", "validate the configuration and print it in full",
                     _cmd_check_config))
     sp = cmd("demo", "run the cold-storage warehouse scenario end to end", _cmd_demo)
@@ -123,7 +125,8 @@ def _load(args) -> Settings:
 
 def _cmd_watch(args) -> int:
     settings = _load(args)
-    return run_watch(settings, Path(args.config), open_service_parts, _stop_on_signals)
+    return run_watch(settings, Path(args.config),
+                     lambda s: alert_delivery(open_service_parts, s), _stop_on_signals)
 
 
 def _cmd_ingest(args) -> int:
@@ -133,7 +136,8 @@ def _cmd_ingest(args) -> int:
         if not p.exists() and not p.is_symlink():
             raise UsageError(f"no such file: {p}")
     results = []
-    with open_service_parts(settings) as (layout, store, pipeline):
+    with alert_delivery(open_service_parts, settings, drain_seconds=10.0) as (
+            layout, store, pipeline):
         with _stop_on_signals(pipeline.stop):
             for p in progress(paths, total=len(paths), desc="inputs", unit="file"):
                 in_inbox = p.resolve().parent == layout.inbox

@@ -18,6 +18,8 @@ import pyarrow as pa
 import yaml
 
 from shoal.config import load_config
+from shoal.daemon.alert_commands import format_alert
+from shoal.daemon.delivery import AlertSender
 from shoal.daemon.errors import UsageError
 from shoal.daemon.layout import StateLock, prepare_folders, remove_stale_temps
 from shoal.daemon.logs import setup_logging
@@ -92,6 +94,8 @@ def run_demo(folder: Path, drops: int | None = None, rows_per_file: int = 4000,
             pipeline = Pipeline(settings, layout, store)
             done = []
             service = Service(settings, layout, pipeline, on_result=done.append)
+            sender = AlertSender(settings, layout.db).start()
+            pipeline.alert_listeners.append(sender.wake)
             worker = threading.Thread(target=service.run, name="shoal-worker")
             worker.start()
             try:
@@ -102,7 +106,9 @@ def run_demo(folder: Path, drops: int | None = None, rows_per_file: int = 4000,
             finally:
                 service.request_stop()
                 worker.join(30)
+                sender.stop()
             summary = segment_summary(store, settings)
+            alerts = store.alerts()
         finally:
             store.close()
     log.close()
@@ -113,10 +119,27 @@ def run_demo(folder: Path, drops: int | None = None, rows_per_file: int = 4000,
     print(format_segments(summary))
     if summary["segments"]:
         print(_true_state_table(summary))
+    _print_alerts(alerts, settings, n_files * rows_per_file)
     print(f"labels files: {layout.outbox}")
     print(f"service log:  {folder / 'shoal.log'}")
-    print(f"config:       {cfg}   (try: shoal segments -c {cfg})")
+    print(f"alerts:       {settings.alerts.file}")
+    print(f"config:       {cfg}   (try: shoal segments -c {cfg}; shoal alerts -c {cfg})")
     return 0 if len(done) == n_files else 1
+
+
+def _print_alerts(alerts: list, settings, total_rows: int) -> None:
+    """The drift alerts, with where the scenario's changes were injected for comparison."""
+    drift, new_state = demo_changes(total_rows)
+    rise = drift.amps_per_10k_rows * (total_rows - drift.start_row) / 10_000
+    print(f"injected: {drift.unit}'s compressor current rising from row {drift.start_row} "
+          f"(+{rise:.1f} A by row {total_rows}); ice build-up in {new_state.share:.0%} of rows "
+          f"from row {new_state.start_row}")
+    print(f"drift alerts ({len(alerts)}; reference taken after "
+          f"{settings.drift.settle_rows} rows past warm-up):")
+    if not alerts:
+        print("  none")
+    for a in alerts:
+        print(format_alert(a["payload"], prefix="  "))
 
 
 def _feed(inbox: Path, n_files: int, rows_per_file: int, seed: int, pause: float) -> None:
