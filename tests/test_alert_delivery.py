@@ -1,0 +1,202 @@
+"""Alert delivery against a real HTTP server on loopback (issue 4, acceptance 4).
+
+The receiver is ``http.server`` on 127.0.0.1, started by the test. Alerts come from
+the real pipeline (a group of rows moves); the sender is the one ``shoal watch`` and
+``shoal ingest`` run (:func:`shoal.daemon.alert_commands.alert_delivery`).
+"""
+import dataclasses
+import hashlib
+import hmac
+import http.server
+import io
+import json
+import threading
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from shoal.config import load_config
+from shoal.daemon.alert_commands import alert_delivery
+from shoal.daemon.cli import open_service_parts
+from shoal.daemon.delivery import AlertSender
+from shoal.daemon.drills import wait_until, write_config
+from shoal.daemon.logs import setup_logging
+from shoal.daemon.store import StateStore
+
+SECRET = b"test-secret-\x01\x02 not for production"
+CENTRES = np.array([[0.0, 0.0, 0.0], [6.0, 0.0, 1.0], [0.0, 6.0, -1.0]])
+
+
+class Receiver:
+    """A webhook receiver: answers 500 while ``failures`` remain (or always when down)."""
+
+    def __init__(self):
+        self.lock = threading.Lock()
+        self.down = False
+        self.failures = 0
+        self.requests = []          # (path, status, headers, body)
+        receiver = self
+
+        class Handler(http.server.BaseHTTPRequestHandler):
+            def do_POST(self):
+                body = self.rfile.read(int(self.headers["Content-Length"]))
+                with receiver.lock:
+                    if self.path == "/moved":
+                        status = 302
+                    elif receiver.down or receiver.failures > 0:
+                        receiver.failures = max(receiver.failures - 1, 0)
+                        status = 500
+                    else:
+                        status = 200
+                    receiver.requests.append((self.path, status, dict(self.headers), body))
+                self.send_response(status)
+                if status == 302:
+                    self.send_header("Location", f"http://127.0.0.1:{receiver.port}/elsewhere")
+                self.send_header("Content-Length", "0")
+                self.end_headers()
+
+            def log_message(self, *args):
+                pass
+
+        self.server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Handler)
+        self.port = self.server.server_address[1]
+        self.thread = threading.Thread(target=self.server.serve_forever,
+                                       kwargs={"poll_interval": 0.05}, name="receiver")
+
+    def accepted(self):
+        with self.lock:
+            return [r for r in self.requests if r[1] == 200]
+
+    def count(self, status=None):
+        with self.lock:
+            return sum(1 for r in self.requests if status is None or r[1] == status)
+
+
+@pytest.fixture
+def receiver():
+    r = Receiver()
+    r.thread.start()
+    yield r
+    r.server.shutdown()
+    r.server.server_close()
+    r.thread.join(5)
+
+
+@pytest.fixture
+def log():
+    buf = io.StringIO()
+    setup_logging("info", stream=buf)
+    yield buf
+    setup_logging("info")
+
+
+def _drops(folder, n_still=6, n_moved=4, rows=1000, seed=21):
+    """Parquet drops of three groups; from drop ``n_still`` on group 0 sits 3 sds higher."""
+    rng = np.random.default_rng(seed)
+    paths = []
+    for i in range(n_still + n_moved):
+        group = rng.choice(3, size=rows, p=[0.5, 0.3, 0.2])
+        X = CENTRES[group] + rng.standard_normal((rows, 3))
+        if i >= n_still:
+            X[group == 0, 0] += 3.0
+        path = folder / f"drop-{i:03d}.parquet"
+        pq.write_table(pa.table({"f1": X[:, 0], "f2": X[:, 1], "f3": X[:, 2]}), path)
+        paths.append(path)
+    return paths
+
+
+def _settings(tmp_path, receiver, **hook):
+    (tmp_path / "secret.txt").write_bytes(SECRET + b"\n")
+    webhook = {"url": f"http://127.0.0.1:{receiver.port}/hook", "secret_file": "secret.txt",
+               "timeout_seconds": 2.0, "backoff_seconds": 0.05, "max_backoff_seconds": 0.2,
+               **hook}
+    cfg = write_config(
+        tmp_path, passthrough=[], segments=3,
+        drift={"window_rows": 500, "settle_rows": 1000, "persist": 2},
+        alerts={"webhooks": [webhook,
+                             {"url": "http://hooks.blocked.invalid/x", "secret_env": "NOPE"}],
+                "allow_hosts": ["127.0.0.1"]})
+    return load_config(cfg)
+
+
+def _outbox(settings):
+    store = StateStore(settings.state / "state.db")
+    try:
+        return store.alerts()
+    finally:
+        store.close()
+
+
+def test_webhook_delivers_each_alert_once_through_failures_and_a_restart(
+        tmp_path, receiver, log):
+    settings = _settings(tmp_path, receiver)
+    drops = _drops(tmp_path)
+
+    # Run 1: the receiver is down. Alerts are committed with their model versions and
+    # written to the JSON-lines file; the webhook keeps failing; the service stops.
+    receiver.down = True
+    with alert_delivery(open_service_parts, settings) as (layout, store, pipeline):
+        for path in drops:
+            assert pipeline.process(path, in_inbox=False).outcome == "committed"
+        wait_until(lambda: receiver.count(500) >= 2, 20, "failed webhook attempts")
+    outbox = _outbox(settings)
+    assert len(outbox) >= 2, "the moved group should raise alerts"
+    assert all(a["delivered_at"] is None for a in outbox)
+    lines = [json.loads(x) for x in settings.alerts.file.read_text().splitlines()]
+    assert [(x["id"], x["status"]) for x in lines] == \
+        [(a["payload"]["id"], a["payload"]["status"]) for a in outbox]
+
+    # The host outside the allow-list was refused with a clear log line.
+    refused = [json.loads(x) for x in log.getvalue().splitlines()
+               if '"webhook_refused"' in x]
+    assert refused and refused[0]["host"] == "hooks.blocked.invalid"
+    assert "not in alerts.allow_hosts" in refused[0]["detail"]
+
+    # Run 2 (a restart): the receiver fails its first 3 requests, then accepts.
+    receiver.down = False
+    receiver.failures = 3
+    before = receiver.count(500)
+    with alert_delivery(open_service_parts, settings):
+        wait_until(lambda: all(a["delivered_at"] for a in _outbox(settings)), 30,
+                   "every alert delivered after the restart")
+    assert receiver.count(500) == before + 3
+    accepted = receiver.accepted()
+    keys = [r[2]["Idempotency-Key"] for r in accepted]
+    assert sorted(keys) == sorted(a["notification"] for a in outbox)   # each exactly once
+    for path, _, headers, body in accepted:
+        assert path == "/hook"
+        expected = "sha256=" + hmac.new(SECRET, body, hashlib.sha256).hexdigest()
+        assert hmac.compare_digest(headers["X-Shoal-Signature"], expected)
+        payload = json.loads(body)
+        assert headers["Idempotency-Key"] == f"{payload['id']}.{payload['status']}"
+        assert payload["kind"] == "drift" and payload["explanation"]["summary"]
+    # a wrong secret does not verify
+    body = accepted[0][3]
+    wrong = "sha256=" + hmac.new(b"other", body, hashlib.sha256).hexdigest()
+    assert not hmac.compare_digest(accepted[0][2]["X-Shoal-Signature"], wrong)
+    # the file sink was not written twice
+    assert len(settings.alerts.file.read_text().splitlines()) == len(outbox)
+
+
+def test_redirects_are_not_followed(tmp_path, receiver, log):
+    settings = _settings(tmp_path, receiver, retries=0)
+    hook = dataclasses.replace(settings.alerts.webhooks[0],
+                               url=f"http://127.0.0.1:{receiver.port}/moved")
+    settings = dataclasses.replace(
+        settings, alerts=dataclasses.replace(settings.alerts, webhooks=(hook,)))
+    drops = _drops(tmp_path)
+    with open_service_parts(settings) as (layout, store, pipeline):
+        for path in drops:
+            pipeline.process(path, in_inbox=False)
+    sender = AlertSender(settings, settings.state / "state.db")
+    try:
+        sender.deliver_due()
+    finally:
+        sender.stop()
+    assert receiver.count() == 1 and receiver.requests[0][0] == "/moved"
+    failed = [json.loads(x) for x in log.getvalue().splitlines()
+              if '"alert_delivery_gave_up"' in x]
+    assert failed and "302" in failed[0]["detail"] and "not followed" in failed[0]["detail"]
+    assert all(a["delivered_at"] is None for a in _outbox(settings))

@@ -1,0 +1,297 @@
+"""Drift alerts from the pipeline: quiet on a stationary stream, and each kind of change found.
+
+Issue 4, acceptance 2 (2,000,000 stationary rows, K=6, D=5, default bounds: no alert)
+and 3 (a 1-sd mean shift of a segment with >= 10% of rows alerted within 20,000 rows,
+naming that segment and the moved feature first; a weight change of 0.15; a doubling
+of a segment's spread; the alert resolves after the population returns). Streams are
+seeded synthetic mixtures (tests/conftest.py) fed as Parquet drops through the real
+pipeline in-process, with the shipped default settings except ``segments: 6``.
+"""
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from shoal.config import parse_config
+from shoal.daemon.layout import prepare_folders
+from shoal.daemon.monitor import alert_id
+from shoal.daemon.pipeline import Pipeline
+from shoal.daemon.store import StateStore
+
+K, D = 6, 5
+FEATURES = [f"x{j}" for j in range(D)]
+SEED = 3
+
+
+def _truth(seed=SEED):
+    """True weights, means and covariances of the K=6, D=5 test mixture (as conftest draws)."""
+    rng = np.random.default_rng(seed)
+    weights = rng.dirichlet(np.full(K, 5.0))
+    means = rng.normal(0.0, 4.0, (K, D))
+    A = rng.normal(0.0, 0.3, (K, D, D))
+    covs = A @ np.swapaxes(A, 1, 2) + np.eye(D) * 0.5
+    return weights, means, covs
+
+
+def _rows(rng, n, weights, means, covs, *, shift=None, spread=None):
+    """n rows; ``shift``: (component, feature, amount); ``spread``: (component, factor)."""
+    labels = rng.choice(K, size=n, p=weights / weights.sum())
+    chol = np.linalg.cholesky(covs)
+    X = means[labels] + np.einsum("nde,ne->nd", chol[labels], rng.standard_normal((n, D)))
+    if shift is not None:
+        comp, feature, amount = shift
+        X[labels == comp, feature] += amount
+    if spread is not None:
+        comp, factor = spread
+        on = labels == comp
+        X[on] = means[comp] + factor * (X[on] - means[comp])
+    return X
+
+
+class Stream:
+    """The real pipeline on a fresh state folder, fed one Parquet drop at a time."""
+
+    def __init__(self, folder, **overrides):
+        self.folder = folder
+        self.settings = parse_config({"features": FEATURES, "segments": K, **overrides}, folder)
+        self.layout = prepare_folders(self.settings)
+        self.store = StateStore(self.layout.db)
+        self.pipeline = Pipeline(self.settings, self.layout, self.store)
+        self.rows = 0
+        self.n = 0
+
+    def feed(self, X, drop_rows):
+        for start in range(0, len(X), drop_rows):
+            part = X[start:start + drop_rows]
+            path = self.folder / f"drop-{self.n:05d}.parquet"
+            pq.write_table(pa.table({f: part[:, j] for j, f in enumerate(FEATURES)}), path)
+            r = self.pipeline.process(path, in_inbox=False)
+            assert r.outcome == "committed", r
+            path.unlink()
+            self.n += 1
+            self.rows += len(part)
+
+    def alerts(self):
+        return [a["payload"] for a in self.store.alerts()]
+
+    def drift_state(self):
+        return self.pipeline.state.extra["drift"]
+
+    def segment_of(self, true_mean):
+        """The segment whose reference mean is nearest a true component mean."""
+        ref = self.drift_state()["reference"]
+        d = np.linalg.norm(np.asarray(ref["means"]) - true_mean, axis=1)
+        return int(ref["ids"][int(np.argmin(d))])
+
+    def close(self):
+        self.store.close()
+
+
+@pytest.fixture
+def stream(tmp_path):
+    made = []
+
+    def make(**overrides):
+        s = Stream(tmp_path / f"s{len(made)}", **overrides)
+        made.append(s)
+        return s
+
+    yield make
+    for s in made:
+        s.close()
+
+
+def _windows_evaluated(s):
+    st = s.drift_state()
+    return st["recent"][-1]["index"] + 1 - st["reference_info"]["row"] // \
+        s.settings.drift.window_rows
+
+
+def test_two_million_stationary_rows_raise_no_alert(stream):
+    # Acceptance 2. 40 drops of 50,000 rows with the default bounds; the drift layer
+    # must have been live the whole time (reference taken, ~495 windows evaluated).
+    weights, means, covs = _truth()
+    rng = np.random.default_rng(2024)
+    s = stream()
+    for _ in range(40):
+        s.feed(_rows(rng, 50_000, weights, means, covs), 50_000)
+    assert s.rows == 2_000_000
+    state = s.drift_state()
+    assert state["reference"] is not None
+    assert _windows_evaluated(s) >= 490
+    assert s.alerts() == []
+    # nothing was even part-way to firing at the end
+    assert state["bounds"]["entries"] == {}
+
+
+CHANGE_ROW = 60_000        # stream row of the change (not on a window boundary)
+AFTER = 40_000             # rows fed after it
+
+
+def _first_firing(alerts, statistic, segment=None):
+    hits = [a for a in alerts if a["status"] == "firing" and a["statistic"] == statistic
+            and (segment is None or a["segment"] == segment)]
+    return hits[0] if hits else None
+
+
+def test_one_sd_mean_shift_is_alerted_within_20000_rows_naming_segment_and_feature(stream):
+    weights, means, covs = _truth()
+    comp = 2                           # weight 0.126: a segment with >= 10% of the rows
+    assert weights[comp] >= 0.10
+    feature = 3
+    sd = float(np.sqrt(covs[comp][feature, feature]))
+    rng = np.random.default_rng(7)
+    s = stream()
+    s.feed(_rows(rng, CHANGE_ROW, weights, means, covs), 10_000)
+    segment = s.segment_of(means[comp])
+    after = _rows(rng, AFTER, weights, means, covs, shift=(comp, feature, sd))
+    s.feed(after, 10_000)
+    alert = _first_firing(s.alerts(), "mean_shift")
+    assert alert is not None, s.alerts()
+    delay = alert["rows"]["last"] + 1 - CHANGE_ROW
+    print(f"1-sd mean shift alerted {delay} rows after the change")
+    assert 0 < delay <= 20_000
+    assert alert["segment"] == segment
+    assert alert["explanation"]["features"][0]["feature"] == FEATURES[feature]
+    assert alert["explanation"]["features"][0]["shift_sd"] == pytest.approx(1.0, abs=0.25)
+    assert alert["value"] > alert["bound"] and alert["value"] > 3 * alert["noise"]
+    # no other segment is blamed
+    assert {a["segment"] for a in s.alerts()} == {segment}
+
+    # the population returns: the same alert (same id) resolves
+    s.feed(_rows(rng, 40_000, weights, means, covs), 10_000)
+    resolved = [a for a in s.alerts() if a["status"] == "resolved" and a["id"] == alert["id"]]
+    assert len(resolved) == 1
+    assert resolved[0]["rows"]["first"] == alert["rows"]["first"]
+    print(f"resolved {resolved[0]['rows']['last'] + 1 - (CHANGE_ROW + AFTER)} rows after "
+          "the return")
+
+
+def test_weight_change_of_015_is_alerted(stream):
+    weights, means, covs = _truth()
+    moved = weights.copy()
+    moved[0] -= 0.15                   # 0.357 -> 0.207
+    moved[2] += 0.15                   # 0.126 -> 0.276
+    rng = np.random.default_rng(8)
+    s = stream()
+    s.feed(_rows(rng, CHANGE_ROW, weights, means, covs), 10_000)
+    segments = {s.segment_of(means[0]), s.segment_of(means[2])}
+    s.feed(_rows(rng, AFTER, moved, means, covs), 10_000)
+    alert = _first_firing(s.alerts(), "weight_change")
+    assert alert is not None, s.alerts()
+    assert alert["segment"] in segments
+    assert alert["value"] == pytest.approx(0.15, abs=0.03)
+    print(f"weight change alerted {alert['rows']['last'] + 1 - CHANGE_ROW} rows after it")
+
+
+def test_doubling_of_a_segments_spread_is_alerted(stream):
+    weights, means, covs = _truth()
+    comp = 1                           # weight 0.189
+    rng = np.random.default_rng(9)
+    s = stream()
+    s.feed(_rows(rng, CHANGE_ROW, weights, means, covs), 10_000)
+    segment = s.segment_of(means[comp])
+    s.feed(_rows(rng, AFTER, weights, means, covs, spread=(comp, 2.0)), 10_000)
+    alert = _first_firing(s.alerts(), "spread_ratio", segment)
+    assert alert is not None, s.alerts()
+    assert alert["value"] > 1.5
+    print(f"spread doubling alerted {alert['rows']['last'] + 1 - CHANGE_ROW} rows after it, "
+          f"ratio {alert['value']:.2f}")
+
+
+def test_alerts_do_not_depend_on_how_the_stream_is_cut(stream):
+    # Windows are counted along the stream, so other drop sizes give the same alerts
+    # (same ids and rows; values equal up to the order of floating-point sums); only
+    # the inputs and model versions named differ.
+    weights, means, covs = _truth()
+    rng = np.random.default_rng(10)
+    X = np.concatenate([_rows(rng, 30_000, weights, means, covs),
+                        _rows(rng, 16_000, weights, means, covs, shift=(2, 0, 2.0))])
+    runs = []
+    for drop in (10_000, 7_000):
+        s = stream(drift={"settle_rows": 8000, "window_rows": 2000})
+        s.feed(X, drop)
+        runs.append(s.alerts())
+    key = ("id", "status", "segment", "statistic", "rows")
+    assert runs[0]
+    assert [[a[k] for k in key] for a in runs[0]] == [[a[k] for k in key] for a in runs[1]]
+    for a, b in zip(*runs):
+        assert a["value"] == pytest.approx(b["value"], rel=1e-9)
+        assert [f["feature"] for f in a["explanation"]["features"]] == \
+            [f["feature"] for f in b["explanation"]["features"]]
+
+
+def test_alert_ids_are_deterministic_and_name_their_cause():
+    assert alert_id(0, 3, "mean_shift", 17) == alert_id(0, 3, "mean_shift", 17)
+    others = {alert_id(1, 3, "mean_shift", 17), alert_id(0, 4, "mean_shift", 17),
+              alert_id(0, 3, "spread_ratio", 17), alert_id(0, 3, "mean_shift", 18)}
+    assert alert_id(0, 3, "mean_shift", 17) not in others and len(others) == 4
+
+
+def test_overrides_bound_one_feature_and_silence_one_segment(stream):
+    # A small persistent move of one feature (0.2 sd) stays under the default
+    # mean_shift bound but crosses a per-feature bound; a per-segment override
+    # lifts the segment's mean_shift bound so a large move there stays quiet.
+    weights, means, covs = _truth()
+    rng = np.random.default_rng(11)
+    base = _rows(rng, 30_000, weights, means, covs)
+    sd0 = float(np.sqrt(covs[0][1, 1]))
+    moved = _rows(rng, 16_000, weights, means, covs, shift=(0, 1, 0.2 * sd0))
+    s = stream(drift={"settle_rows": 8000, "window_rows": 2000,
+                      "overrides": [{"feature": "x1", "feature_shift": 0.12}]})
+    s.feed(np.concatenate([base, moved]), 10_000)
+    seg0 = s.segment_of(means[0])
+    fired = {(a["segment"], a["statistic"]) for a in s.alerts() if a["status"] == "firing"}
+    assert (seg0, "feature_shift[x1]") in fired
+    assert (seg0, "mean_shift") not in fired
+
+    big = _rows(rng, 16_000, weights, means, covs, shift=(0, 1, 2.0 * sd0))
+    quiet = stream(drift={"settle_rows": 8000, "window_rows": 2000})
+    quiet.feed(base, 10_000)
+    seg = quiet.segment_of(means[0])
+    quiet.settings = parse_config(
+        {"features": FEATURES, "segments": K,
+         "drift": {"settle_rows": 8000, "window_rows": 2000,
+                   "overrides": [{"segment": seg, "mean_shift": 5.0, "spread_ratio": 10.0,
+                                  "weight_change": 0.5}]}}, quiet.folder)
+    quiet.pipeline.settings = quiet.settings
+    quiet.feed(big, 10_000)
+    assert not [a for a in quiet.alerts() if a["segment"] == seg and a["statistic"] in
+                ("mean_shift", "spread_ratio", "weight_change")], quiet.alerts()
+
+
+def test_rebaseline_accepts_the_present_and_resolves_firing_alerts(stream):
+    weights, means, covs = _truth()
+    rng = np.random.default_rng(12)
+    s = stream(drift={"settle_rows": 8000, "window_rows": 2000})
+    s.feed(_rows(rng, 30_000, weights, means, covs), 10_000)
+    shifted = means.copy()
+    shifted[2, 0] += 2.0
+    s.feed(_rows(rng, 20_000, weights, shifted, covs), 10_000)
+    firing = [a for a in s.alerts() if a["status"] == "firing"]
+    assert firing
+    segment = s.segment_of(means[2])
+    before = s.drift_state()["reference_info"]["number"]
+    request = s.store.request_rebaseline("new compressor fitted")
+    s.pipeline.rebaseline_now(request, "new compressor fitted")
+    state = s.drift_state()
+    assert state["reference"] is None and state["rebase"]["note"] == "new compressor fitted"
+    assert s.store.pending_rebaseline() is None
+    assert s.store.rebaselines()[0]["model_version"] == s.pipeline.state.version
+    resolved = [a for a in s.alerts() if a["status"] == "resolved"]
+    assert {a["id"] for a in firing} == {a["id"] for a in resolved}
+    assert all(a["resolved_by"] == "rebaseline" for a in resolved)
+    # the stored checkpoint carries the re-baseline (a restart keeps it)
+    again = Pipeline(s.settings, s.layout, s.store)
+    assert again.state.extra["drift"] == state
+    # the next settle_rows rows become the reference: the shifted population is normal
+    n_alerts = len(s.alerts())
+    s.feed(_rows(rng, 30_000, weights, shifted, covs), 10_000)
+    state = s.drift_state()
+    assert state["reference_info"]["number"] == before + 1
+    assert state["reference_info"]["note"] == "new compressor fitted"
+    ref = state["reference"]
+    at = ref["ids"].index(segment)
+    sd = np.sqrt(covs[2][0, 0])
+    assert abs(ref["means"][at][0] - shifted[2, 0]) < 0.1 * sd    # the data, not the model
+    assert s.alerts()[n_alerts:] == []
