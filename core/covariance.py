@@ -10,11 +10,14 @@ Each family provides
     (full), ``[Z*Z, Z, 1]`` (diag) or ``[|z|^2, Z, 1]`` (spherical). With it, scoring is
     one GEMM and the first moments (and, for diag and spherical, the second) are one
     more.
-``log_gaussian(A, means, prec_chol)``
-    ``log N(z | mu_k, Sigma_k)`` for every component and every row of the design
-    matrix ``A``, shape (n_components, n_samples), via the precision Cholesky factor:
-    ``-0.5 (D log 2 pi + ||(z - mu) U||^2) + log det U``. Components come first so
-    that the reductions over components run along contiguous rows.
+``scoring_operator(means, prec_chol, log_weights)``
+    Everything scoring needs that depends only on the parameters, packed once per
+    parameter refresh.
+``log_joint(A, operator)``
+    ``log w_k + log N(z | mu_k, Sigma_k)`` for every component and every row of the
+    design matrix ``A``, shape (n_components, n_samples), via the precision Cholesky
+    factor: ``-0.5 (D log 2 pi + ||(z - mu) U||^2) + log det U``. Components come
+    first so that the reductions over components run along contiguous rows.
 ``moments(A, resp_w)``
     The weighted statistics ``(s0, s1, s2)`` of a block, for ``resp_w`` of shape
     (n_components, n_samples): sums of
@@ -127,19 +130,27 @@ def _full_log_det(prec_chol, n_features):
     return np.sum(np.log(np.diagonal(prec_chol, axis1=1, axis2=2)), axis=1)
 
 
-def _full_log_gaussian(A, means, prec_chol):
-    n_samples = A.shape[0]
+def _full_scoring_operator(means, prec_chol, log_weights):
     n_components, n_features = means.shape
-    # One GEMM whitens the rows for every component at once: the K factors U_k^T are
-    # stacked in WT, and the design's column of ones folds the centring -mu_k U_k in.
+    # The K factors U_k^T stacked, so that one GEMM whitens the rows for every
+    # component; the design's column of ones folds the centring -mu_k U_k in. The
+    # factor sqrt(1/2) makes the sums of squares half the Mahalanobis distances.
     WT = np.empty((n_components * n_features, n_features + 1))
     WT[:, :n_features] = np.swapaxes(prec_chol, 1, 2).reshape(-1, n_features)
     WT[:, n_features] = -np.einsum("kd,kde->ke", means, prec_chol).reshape(-1)
+    WT *= np.sqrt(0.5)
+    const = log_weights + _full_log_det(prec_chol, n_features) - 0.5 * n_features * LOG_2PI
+    return WT, const[:, None]
+
+
+def _full_log_joint(A, operator):
+    WT, const = operator
+    n_samples = A.shape[0]
+    n_components = const.shape[0]
     Y = WT @ A.T
     Y *= Y
-    maha = Y.reshape(n_components, n_features, n_samples).sum(axis=1)
-    log_det = _full_log_det(prec_chol, n_features)
-    return -0.5 * (n_features * LOG_2PI + maha) + log_det[:, None]
+    half_maha = Y.reshape(n_components, -1, n_samples).sum(axis=1)
+    return np.subtract(const, half_maha, out=half_maha)
 
 
 def _full_matrices(cov, n_features):
@@ -185,17 +196,22 @@ def _diag_log_det(prec_chol, n_features):
     return np.sum(np.log(prec_chol), axis=1)
 
 
-def _diag_log_gaussian(A, means, prec_chol):
+def _diag_scoring_operator(means, prec_chol, log_weights):
     # ||(z - mu) / sigma||^2 expanded: z^2 p - 2 z mu p + mu^2 p, one GEMM with the
-    # design [z^2, z, 1]; the constants ride in the last row.
-    n_features = means.shape[1]
+    # design [z^2, z, 1]; the constants (log weight and normaliser too) ride in the
+    # last column.
+    n_components, n_features = means.shape
     prec = prec_chol**2
-    B = np.empty((2 * n_features + 1, means.shape[0]))
-    B[:n_features] = -0.5 * prec.T
-    B[n_features:-1] = (means * prec).T
-    B[-1] = (-0.5 * np.sum(means**2 * prec, axis=1)
-             + _diag_log_det(prec_chol, n_features) - 0.5 * n_features * LOG_2PI)
-    return B.T @ A.T
+    BT = np.empty((n_components, 2 * n_features + 1))
+    BT[:, :n_features] = -0.5 * prec
+    BT[:, n_features:-1] = means * prec
+    BT[:, -1] = (log_weights - 0.5 * np.sum(means**2 * prec, axis=1)
+                 + _diag_log_det(prec_chol, n_features) - 0.5 * n_features * LOG_2PI)
+    return BT
+
+
+def _linear_log_joint(A, operator):
+    return operator @ A.T
 
 
 def _diag_matrices(var, n_features):
@@ -233,15 +249,15 @@ def _spherical_log_det(prec_chol, n_features):
     return n_features * np.log(prec_chol)
 
 
-def _spherical_log_gaussian(A, means, prec_chol):
-    n_features = means.shape[1]
+def _spherical_scoring_operator(means, prec_chol, log_weights):
+    n_components, n_features = means.shape
     prec = prec_chol**2
-    B = np.empty((n_features + 2, means.shape[0]))
-    B[0] = -0.5 * prec
-    B[1:-1] = (means * prec[:, None]).T
-    B[-1] = (-0.5 * np.sum(means**2, axis=1) * prec
-             + _spherical_log_det(prec_chol, n_features) - 0.5 * n_features * LOG_2PI)
-    return B.T @ A.T
+    BT = np.empty((n_components, n_features + 2))
+    BT[:, 0] = -0.5 * prec
+    BT[:, 1:-1] = means * prec[:, None]
+    BT[:, -1] = (log_weights - 0.5 * np.sum(means**2, axis=1) * prec
+                 + _spherical_log_det(prec_chol, n_features) - 0.5 * n_features * LOG_2PI)
+    return BT
 
 
 def _spherical_matrices(var, n_features):
@@ -272,7 +288,8 @@ FAMILIES = {
         covariance=_full_covariance,
         precision_cholesky=_full_precision_cholesky,
         log_det=_full_log_det,
-        log_gaussian=_full_log_gaussian,
+        scoring_operator=_full_scoring_operator,
+        log_joint=_full_log_joint,
         matrices=_full_matrices,
         n_parameters=_full_n_parameters,
     ),
@@ -283,7 +300,8 @@ FAMILIES = {
         covariance=_diag_covariance,
         precision_cholesky=_diag_precision_cholesky,
         log_det=_diag_log_det,
-        log_gaussian=_diag_log_gaussian,
+        scoring_operator=_diag_scoring_operator,
+        log_joint=_linear_log_joint,
         matrices=_diag_matrices,
         n_parameters=_diag_n_parameters,
     ),
@@ -294,7 +312,8 @@ FAMILIES = {
         covariance=_spherical_covariance,
         precision_cholesky=_diag_precision_cholesky,
         log_det=_spherical_log_det,
-        log_gaussian=_spherical_log_gaussian,
+        scoring_operator=_spherical_scoring_operator,
+        log_joint=_linear_log_joint,
         matrices=_spherical_matrices,
         n_parameters=_spherical_n_parameters,
     ),

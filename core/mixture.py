@@ -18,6 +18,7 @@ ends in the same model.
 from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
+from functools import cached_property
 
 import numpy as np
 
@@ -217,8 +218,7 @@ class Mixture:
         A = self.family.design(Zb)
         # (K, n) layout: every reduction over components runs along contiguous rows.
         resp = out.resp_kn[:, lo:hi]
-        resp[...] = self.family.log_gaussian(A, self.means, self.prec_chol)
-        resp += self._log_weights[:, None]
+        resp[...] = self.family.log_joint(A, self._scoring_operator)
         top = np.max(resp, axis=0)
         resp -= top
         # The most responsible component now sits at exactly 0 (first one on ties).
@@ -238,9 +238,10 @@ class Mixture:
     def _rank_weights(self):
         return np.arange(self.n_components - 1, -1, -1, dtype=np.int16)
 
-    @property
-    def _log_weights(self):
-        return np.log(self.weights)
+    @cached_property
+    def _scoring_operator(self):
+        """Parameters packed for scoring (computed once per parameter set)."""
+        return self.family.scoring_operator(self.means, self.prec_chol, np.log(self.weights))
 
     @property
     def _log_scale_sum(self):
@@ -284,7 +285,10 @@ class Mixture:
     def component_log_density(self, X) -> np.ndarray:
         """``log N(x | mu_k, Sigma_k)`` in data units, shape (n_samples, n_components)."""
         A = self.family.design(self.standardise(X))
-        return self.family.log_gaussian(A, self.means, self.prec_chol).T - self._log_scale_sum
+        operator = self.family.scoring_operator(
+            self.means, self.prec_chol, np.zeros(self.n_components)
+        )
+        return self.family.log_joint(A, operator).T - self._log_scale_sum
 
     # -------------------------------------------------------------- learning
     def _accumulate(self, A, resp_kn, row_w):
@@ -292,9 +296,11 @@ class Mixture:
 
         ``resp_kn`` has shape (n_components, n_samples), ``row_w`` (n_samples,).
         """
-        resp_w = resp_kn * row_w
         if self.resp_floor > 0.0:
-            resp_w[resp_kn < self.resp_floor] = 0.0
+            resp_w = np.where(resp_kn >= self.resp_floor, resp_kn, 0.0)
+            resp_w *= row_w
+        else:
+            resp_w = resp_kn * row_w
         return self.family.moments(A, resp_w)
 
     def _derive(self, s0, s1, s2, sumsq) -> dict:
@@ -353,11 +359,11 @@ class Mixture:
         X = self._rows(X)
         n = X.shape[0]
         out = _ScoreBuffer(n, self.n_components)
-        model = self
+        model = self  # the parameters in force; replaced at refresh points only
         s0, s1, s2, sumsq = self.s0, self.s1, self.s2, self.sumsq
+        at = self.n_rows
         pos = 0
         while pos < n:
-            at = model.n_rows
             # blocks end at refresh points, which sit at fixed places in the stream
             take = min(n - pos, self.refresh_rows - at % self.refresh_rows, BLOCK_ROWS)
             Zb = (X[pos : pos + take] - self.center) / self.scale
@@ -369,10 +375,10 @@ class Mixture:
             s2 = keep * s2 + b2
             sumsq = keep * keep * sumsq + float(np.dot(row_w, row_w))
             pos += take
-            changes = dict(s0=s0, s1=s1, s2=s2, sumsq=sumsq, n_rows=at + take)
-            if (at + take) % self.refresh_rows == 0:
-                changes.update(model._refresh(s0, s1, s2, sumsq))
-            model = replace(model, **changes)
+            at += take
+            if at % self.refresh_rows == 0:
+                model = replace(model, **model._refresh(s0, s1, s2, sumsq))
+        model = replace(model, s0=s0, s1=s1, s2=s2, sumsq=sumsq, n_rows=at)
         return model, out.scores(self.ids)
 
     def em_step(self, X) -> tuple["Mixture", float]:
