@@ -131,6 +131,7 @@ def alert_delivery(open_parts: Callable, settings: Settings, *, drain_seconds: f
         layout, store, pipeline = parts
         sender = AlertSender(settings, layout.db).start()
         pipeline.alert_listeners.append(sender.wake)
+        pipeline.settings_listeners.append(sender.replace_settings)   # SIGHUP: new sinks
         try:
             yield parts
         finally:

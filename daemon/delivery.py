@@ -149,14 +149,23 @@ class AlertSender:
 
     def __init__(self, settings: Settings, db: Path, *, clock=time.time,
                  rng: random.Random | None = None, webhooks: bool = True):
-        self.settings = settings
         self.clock = clock
         self.rng = rng or random.Random()
         self.store = StateStore(db, clock=clock)
+        self.webhooks = webhooks
+        self._pending_settings: Settings | None = None
+        self._build_sinks(settings)
+        self._wake = threading.Event()
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+        self.store.retry_undelivered_now()
+
+    def _build_sinks(self, settings: Settings) -> None:
+        self.settings = settings
         self.sinks: list = [_FileSink(settings.alerts.file)]
         self.hooks: dict[str, WebhookSettings] = {}
         allowed = {h.lower() for h in settings.alerts.allow_hosts}
-        for hook in settings.alerts.webhooks if webhooks else ():
+        for hook in settings.alerts.webhooks if self.webhooks else ():
             host = (urllib.parse.urlsplit(hook.url).hostname or "").lower()
             if host not in allowed:
                 log_event("webhook_refused", logging.ERROR, host=host,
@@ -171,14 +180,19 @@ class AlertSender:
             self.hooks[sink.name] = hook
         self.sink_names = [s.name for s in self.sinks]
         self._by_name = {s.name: s for s in self.sinks}
-        self._wake = threading.Event()
-        self._stop = threading.Event()
-        self._thread: threading.Thread | None = None
-        self.store.retry_undelivered_now()
+
+    def replace_settings(self, settings: Settings) -> None:
+        """New sinks (SIGHUP): taken up at the start of the next pass (any thread)."""
+        self._pending_settings = settings
+        self._wake.set()
 
     # -- one pass --------------------------------------------------------------------
     def deliver_due(self) -> int:
         """Try every notification due now, oldest first; return how many were delivered."""
+        if self._pending_settings is not None:
+            settings, self._pending_settings = self._pending_settings, None
+            self._build_sinks(settings)
+            log_event("alert_sinks_reloaded", sinks=[n.split("#")[0] for n in self.sink_names])
         delivered = 0
         now = self.clock()
         failed_sinks: set[str] = set()

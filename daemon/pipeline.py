@@ -104,6 +104,8 @@ class Pipeline:
         self.monotonic = monotonic
         # called with the model version after each commit that queued alerts (wakes the sender)
         self.alert_listeners: list = []
+        # called with new settings after a reload (SIGHUP) takes effect
+        self.settings_listeners: list = []
         self.state = self.load_state()
 
     @property

@@ -193,10 +193,17 @@ def test_redirects_are_not_followed(tmp_path, receiver, log):
     sender = AlertSender(settings, settings.state / "state.db")
     try:
         sender.deliver_due()
+        assert receiver.count() == 1 and receiver.requests[0][0] == "/moved"
+        failed = [json.loads(x) for x in log.getvalue().splitlines()
+                  if '"alert_delivery_gave_up"' in x]
+        assert failed and "302" in failed[0]["detail"] and "not followed" in failed[0]["detail"]
+        assert all(a["delivered_at"] is None for a in _outbox(settings))
+        # a reload (SIGHUP) with the right URL: the sender takes the new sink and delivers
+        fixed = dataclasses.replace(hook, url=f"http://127.0.0.1:{receiver.port}/hook")
+        sender.replace_settings(dataclasses.replace(
+            settings, alerts=dataclasses.replace(settings.alerts, webhooks=(fixed,))))
+        sender.deliver_due()
     finally:
         sender.stop()
-    assert receiver.count() == 1 and receiver.requests[0][0] == "/moved"
-    failed = [json.loads(x) for x in log.getvalue().splitlines()
-              if '"alert_delivery_gave_up"' in x]
-    assert failed and "302" in failed[0]["detail"] and "not followed" in failed[0]["detail"]
-    assert all(a["delivered_at"] is None for a in _outbox(settings))
+    assert all(a["delivered_at"] for a in _outbox(settings))
+    assert len(receiver.accepted()) == len(_outbox(settings))
