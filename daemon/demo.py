@@ -43,6 +43,7 @@ DEMO_CONFIG = {
     "seed": 7,
     "watch": {"settle_seconds": 0.5, "rescan_seconds": 2.0},
     "learning": {"n_init": 3},
+    "drift": {"time_column": "timestamp"},
 }
 
 
