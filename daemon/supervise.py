@@ -180,9 +180,20 @@ class Supervisor:
         if got is not None:
             new, changed = got
             self.settings = new
-            self.service.replace_settings(new, applied=lambda s: log_event(
-                "config_reloaded", config=str(self.config_path), changed=changed))
+            self.service.replace_settings(new, applied=lambda s: self._applied(s, changed))
         self.notifier.ready(self.status_line())
+
+    def _applied(self, settings: Settings, changed: list[str]) -> None:
+        """On the worker, once the new settings are in use: tell whoever holds settings of
+        their own (``pipeline.settings_listeners``, e.g. the alert sinks), then log."""
+        for listener in list(getattr(self.pipeline, "settings_listeners", ())):
+            try:
+                listener(settings)
+            except Exception as exc:  # noqa: BLE001 - one listener must not stop the reload
+                log_event("config_reload_listener_failed", logging.ERROR,
+                          listener=getattr(listener, "__qualname__", repr(listener)),
+                          detail=f"{type(exc).__name__}: {exc}")
+        log_event("config_reloaded", config=str(self.config_path), changed=changed)
 
     def run(self) -> int:
         """Supervise until the worker stops; call from the main thread. 0 on a clean stop."""

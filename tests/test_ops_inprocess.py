@@ -23,11 +23,13 @@ class _Running:
     """A Supervisor (worker + endpoint on a free loopback port) on this process's threads."""
 
     def __init__(self, folder, **overrides):
-        self.settings = load_config(write_config(folder, http={"port": 0}, **overrides))
+        self.config = write_config(folder, http={"port": 0}, **overrides)
+        self.settings = load_config(self.config)
         self.layout = prepare_folders(self.settings)
         self.store = StateStore(self.layout.db)
         self.pipeline = Pipeline(self.settings, self.layout, self.store)
-        self.sup = Supervisor(self.settings, self.layout, self.pipeline, notifier=Notifier({}))
+        self.sup = Supervisor(self.settings, self.layout, self.pipeline, notifier=Notifier({}),
+                              config_path=self.config)
 
     def __enter__(self):
         self.sup.start()
@@ -82,6 +84,18 @@ def test_healthz_turns_unhealthy_when_the_worker_stalls_on_an_input(tmp_path):
         finally:
             release.set()
         wait_until(lambda: run.healthz()[0] == 200, 10, "the worker moving again")
+
+
+def test_reload_reaches_the_worker_and_the_settings_listeners(tmp_path):
+    with _Running(tmp_path) as run:
+        heard = []
+        run.pipeline.settings_listeners = [heard.append]
+        wait_until(lambda: run.healthz()[0] == 200, 30, "a healthy worker")
+        write_config(tmp_path, http={"port": 0}, limits={"max_rows": 123})
+        run.sup._reload()                            # what SIGHUP asks the main loop to do
+        wait_until(lambda: heard, 10, "the listener called on the worker")
+        assert heard[0].limits.max_rows == 123
+        assert run.pipeline.settings is heard[0] and run.sup.service.settings is heard[0]
 
 
 @pytest.mark.parametrize("kind", ["abstract", "path"])
