@@ -105,3 +105,34 @@ def test_sighup_changes_behaviour_without_restart_and_refuses_a_broken_config(tm
     quarantined = list((tmp_path / "state" / "quarantine").glob("*.json"))
     assert len(quarantined) == 2
     assert all("too_many_rows" in p.read_text() for p in quarantined)
+
+
+def test_sighup_with_a_changed_drift_bound_changes_alerting_without_restart(tmp_path):
+    # Stationary demo rows: the default bounds raise nothing; after SIGHUP with a
+    # weight_change bound far below any real move (and no noise margin), the next
+    # evaluation windows fire weight_change alerts in the same process.
+    drift = {"settle_rows": 2000, "window_rows": 1000}
+    cfg = demo_config(tmp_path, drift=drift)
+    base = yaml.safe_load(cfg.read_text())
+    inbox = tmp_path / "inbox"
+    db = tmp_path / "state" / "state.db"
+    watch = Watch(cfg, tmp_path / "watch.log")
+    try:
+        watch.wait_event("service_ready", timeout=60)
+        demo_drops(inbox, 12, 500, start=0)       # warm-up 2000, reference at 4000, 2 windows
+        wait_until(lambda: ledger_counts(db).get("committed", 0) == 12, 90, "12 commits")
+        watch.wait_event("drift_reference_taken", timeout=10)
+        assert watch.events("alert_firing") == []
+
+        _write(cfg, {**base, "drift": {**drift, "noise_multiple": 0.0, "persist": 1,
+                                       "bounds": {"weight_change": 1e-6}}})
+        watch.proc.send_signal(signal.SIGHUP)
+        reloaded = watch.wait_event("config_reloaded", timeout=30)
+        assert "drift.bounds.weight_change" in reloaded["changed"]
+        demo_drops(inbox, 4, 500, start=12)       # two more windows under the new bound
+        fired = watch.wait_event("alert_firing", timeout=60)
+        assert fired["statistic"] == "weight_change" and fired["bound"] == 1e-6
+        assert len(watch.events("service_started")) == 1          # never restarted
+        assert watch.stop() == 0
+    finally:
+        watch.kill()
