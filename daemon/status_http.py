@@ -12,6 +12,7 @@ from __future__ import annotations
 import html
 import json
 import logging
+import socket
 import threading
 import time
 from dataclasses import dataclass, field
@@ -68,8 +69,9 @@ class StatusServer:
     def start(self) -> tuple[str, int]:
         address, port = self.settings.http.address, self.settings.http.port
         handler = _handler_for(self)
+        server_class = _V6Server if ":" in address else ThreadingHTTPServer
         try:
-            httpd = ThreadingHTTPServer((address, port), handler)
+            httpd = server_class((address, port), handler)
         except OSError as exc:
             raise ConfigError(f"http: cannot listen on {address}:{port}: {exc.strerror}") \
                 from exc
@@ -160,6 +162,10 @@ class StatusServer:
                 + "".join(f"<h2>{html.escape(REPORT_PLOTS[k])}</h2>"
                           + figure_html(k, pngs[k], REPORT_PLOTS[k]) for k in PAGE_PLOTS))
         return page_html("shoal status", body, refresh_seconds=_REFRESH_SECONDS)
+
+
+class _V6Server(ThreadingHTTPServer):
+    address_family = socket.AF_INET6
 
 
 def _host(host: str) -> str:
