@@ -17,7 +17,7 @@ import threading
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, BinaryIO
+from typing import TYPE_CHECKING, Any, BinaryIO
 
 import numpy as np
 
@@ -40,11 +40,13 @@ from shoal.daemon.errors import (
 from shoal.daemon.gate import input_kind
 from shoal.daemon.layout import Layout
 from shoal.daemon.logs import log_event
-from shoal.daemon.monitor import DriftMonitor, InputWatch
 from shoal.daemon.quarantine import move_out, quarantine
 from shoal.daemon.readers import Frame, read_input
 from shoal.daemon.store import Checkpoint, HistoryRow, LedgerEntry, StateStore
 from shoal.daemon.writer import labels_name, labels_table, write_labels
+
+if TYPE_CHECKING:
+    from shoal.daemon.monitor import DriftMonitor, InputWatch
 
 __all__ = ["Pipeline", "Result", "ModelState", "open_input"]
 
@@ -111,6 +113,8 @@ class Pipeline:
     @property
     def monitor(self) -> DriftMonitor:
         """Drift evaluation with the settings in force (they may be reloaded)."""
+        from shoal.daemon.monitor import DriftMonitor   # scipy.stats: only when learning
+
         return DriftMonitor(self.settings)
 
     # -- state ---------------------------------------------------------------------
