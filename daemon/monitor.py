@@ -39,7 +39,11 @@ import numpy as np
 
 from shoal.config import Settings
 from shoal.core import Mixture
-from shoal.core.distances import log_generalised_variance_ratio, mahalanobis_distance
+from shoal.core.distances import (
+    hotelling_t2_pvalue,
+    log_generalised_variance_ratio,
+    mahalanobis_distance,
+)
 from shoal.core.drift import (
     WHOLE_MODEL,
     Reference,
@@ -513,8 +517,9 @@ class InputWatch:
         moved = explain(ref, seg, info["mean"], feature_names=names)
         out = {"features": moved, "share": info["share"],
                "reference_weight": info["reference_weight"], "effective_rows": info["n_eff"]}
-        if stat == "mean_shift":
+        if stat == "mean_shift":   # T^2 = n_eff d^2 against chi-square(D) (scipy.stats.chi2)
             out["hotelling_t2"] = info["t2"]
+            out["p_value"] = float(hotelling_t2_pvalue(info["t2"], len(names)))
         if stat == "spread_ratio":
             k = ref.index_of(seg)
             ratio = np.sqrt(np.maximum(np.diag(info["cov"]), 0.0) /
