@@ -202,7 +202,8 @@ class InputWatch:
     # -- setup -----------------------------------------------------------------------
     def start(self, stream_offset: int) -> None:
         """A new model: windows count from its first learned row (stream row ``stream_offset``)."""
-        self.state = {"format": STATE_FORMAT, "offset": int(stream_offset), "reference": None,
+        self.state = {"format": STATE_FORMAT, "offset": int(stream_offset),
+                      "window_rows": int(self.drift.window_rows), "reference": None,
                       "reference_number": 0, "reference_info": None, "window": None,
                       "bounds": None, "cool": {}, "recent": [], "open": {},
                       "last_ld": None, "rebase": None}
@@ -213,16 +214,22 @@ class InputWatch:
         return self.state
 
     # -- pieces ----------------------------------------------------------------------
+    @property
+    def window_rows(self) -> int:
+        """Fixed for a model once its watching started (a reload does not move windows)."""
+        st = self._ensure()
+        return int(st.get("window_rows") or self.drift.window_rows)
+
     def rows_to_boundary(self, n_rows: int) -> int:
         """Rows the next piece may hold so that it does not cross a window boundary."""
-        w = self.drift.window_rows
+        w = self.window_rows
         return w - n_rows % w
 
     def observe(self, mixture: Mixture, X: np.ndarray, scores, start: int) -> None:
         """Add a learned piece (rows ``start..`` of the input's learned rows); ``mixture`` is
         the model after learning it."""
         st = self._ensure()
-        w = self.drift.window_rows
+        w = self.window_rows
         end_row = int(mixture.n_rows)
         first_row = end_row - len(X)
         index = first_row // w
@@ -334,14 +341,14 @@ class InputWatch:
         self.rebaselined = True
         log_event("drift_rebaseline_started", reference=st["reference_number"],
                   model_version=self.version, note=note,
-                  rows=max(self.drift.settle_rows, self.drift.window_rows))
+                  rows=max(self.drift.settle_rows, self.window_rows))
 
     def _collect(self, win, mixture: Mixture, info) -> None:
         """Add a window to the re-baseline sums; take the reference once there are enough."""
         st = self.state
         rebase = st["rebase"]
         sums = rebase["sums"] = _merge_sums(rebase["sums"], win)
-        if sums["n"] < max(self.drift.settle_rows, self.drift.window_rows):
+        if sums["n"] < max(self.drift.settle_rows, self.window_rows):
             return
         ref = _reference_from_sums(sums, mixture)
         st["rebase"] = None
@@ -458,7 +465,7 @@ class InputWatch:
                 "time": _span([w["time"] for w in windows]),
                 "inputs": _files(windows),
                 "windows": {"first": e["first_at"], "last": e["at"],
-                            "rows_each": self.drift.window_rows},
+                            "rows_each": self.window_rows},
                 "reference": {k: v for k, v in (st["reference_info"] or {}).items()
                               if k in ("number", "model_version", "row")},
                 "explanation": self._explain(seg, stat, detail, ref),
