@@ -56,10 +56,14 @@ def _times(values: Sequence[float]) -> list[_dt.datetime]:
 
 
 def _time_axis(ax) -> None:
+    """Concise UTC ticks; the date goes in the axis label when it is one day (no offset
+    text, which would collide with the label)."""
     locator = mdates.AutoDateLocator(minticks=3, maxticks=7)
     ax.xaxis.set_major_locator(locator)
-    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
-    ax.set_xlabel("time of commit (UTC)")
+    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator, show_offset=False))
+    lo, hi = (mdates.num2date(x, tz=_dt.timezone.utc) for x in ax.get_xlim())
+    day = f", {lo:%Y-%m-%d}" if lo.date() == hi.date() else ""
+    ax.set_xlabel(f"time of commit (UTC{day})")
 
 
 def message_png(title: str, message: str, ylabel: str = "value",

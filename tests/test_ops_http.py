@@ -5,6 +5,7 @@
 import base64
 import io
 import json
+import os
 import sqlite3
 import subprocess
 import sys
@@ -28,7 +29,11 @@ PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # the PNG specification (ISO/IEC 15948), s
 def running(tmp_path_factory):
     """A watch process with the endpoint on a free loopback port, 20 drops committed."""
     folder = tmp_path_factory.mktemp("ops")
-    cfg = demo_config(folder, http={"port": 0})
+    # Drift watching starts early and a weight_change bound far below any real move fires
+    # alerts, so that the page, the metrics and the report have alerts to show.
+    cfg = demo_config(folder, http={"port": 0},
+                      drift={"settle_rows": 2000, "window_rows": 1000, "noise_multiple": 0.0,
+                             "persist": 1, "bounds": {"weight_change": 1e-6}})
     watch = Watch(cfg, folder / "watch.log")
     try:
         started = watch.wait_event("http_started", timeout=60)
@@ -54,9 +59,10 @@ def _ledger(db: Path) -> dict:
         segments = sorted(s for (s,) in con.execute(
             "SELECT segment FROM segment_history WHERE version = "
             "(SELECT MAX(version) FROM segment_history)"))
+        alerts = [json.loads(p) for (p,) in con.execute("SELECT payload FROM alert_outbox")]
     finally:
         con.close()
-    return {"by": by, "version": version, "segments": segments}
+    return {"by": by, "version": version, "segments": segments, "alerts": alerts}
 
 
 def test_metrics_parse_and_counters_match_the_ledger(running):
@@ -81,6 +87,12 @@ def test_metrics_parse_and_counters_match_the_ledger(running):
     assert sorted(int(k) for k in weights) == ledger["segments"]
     assert sum(weights.values()) == pytest.approx(1.0, abs=1e-6)
     assert families["shoal_queue_depth"].samples[0].value == 0
+    notes = sum(s.value for s in families["shoal_alert_notifications"].samples
+                if s.name.endswith("_total"))
+    assert notes == len(ledger["alerts"]) > 0
+    drift = {(s.labels["segment"], s.labels["statistic"])
+             for s in families["shoal_segment_drift"].samples}
+    assert {(str(i), "weight_change") for i in ledger["segments"]} <= drift
     assert families["shoal_worker_healthy"].samples[0].value == 1.0
     for name in families:                       # conventions: prefix; no file names
         assert name.startswith("shoal_"), name
@@ -107,6 +119,15 @@ def test_health_readiness_status_and_read_only(running):
     assert get(url + "nothing-here")[0] == 404
 
 
+def _artefacts() -> Path:
+    """Where screenshots go: $SHOAL_TEST_ARTEFACTS if set, else a fresh temp folder."""
+    given = os.environ.get("SHOAL_TEST_ARTEFACTS")
+    if given:
+        Path(given).mkdir(parents=True, exist_ok=True)
+        return Path(given)
+    return Path(tempfile.mkdtemp(prefix="shoal-artefacts-"))
+
+
 def _check_images(driver, expected_ids):
     images = driver.execute_script(IMAGES_JS)
     by_id = {i["id"]: i for i in images}
@@ -125,7 +146,7 @@ def _check_images(driver, expected_ids):
 
 def test_status_page_in_headless_chromium(running):
     ledger = _ledger(running["db"])
-    artefacts = Path(tempfile.mkdtemp(prefix="shoal-artefacts-"))
+    artefacts = _artefacts()
     with chromium() as driver:
         driver.get(running["url"])
         assert driver.title == "shoal status"
@@ -133,7 +154,8 @@ def test_status_page_in_headless_chromium(running):
         listed = sorted(int(r.get_attribute("data-segment")) for r in rows)
         first_cells = sorted(int(r.find_element("css selector", "td").text) for r in rows)
         assert listed == first_cells == ledger["segments"] and len(listed) >= 2
-        _check_images(driver, ["weights", "pca"])
+        _check_images(driver, ["weights", "drift", "pca"])
+        assert driver.find_elements("css selector", "table#alerts tbody tr")
         assert console_errors(driver) == []
         shot = artefacts / "status-page.png"
         assert driver.save_screenshot(str(shot))
@@ -150,7 +172,7 @@ def test_report_of_the_demo_run_in_headless_chromium(running, tmp_path):
     assert done.returncode == 0, done.stderr
     text = out.read_text()
     assert "http://" not in text and "https://" not in text and "<script" not in text
-    artefacts = Path(tempfile.mkdtemp(prefix="shoal-artefacts-"))
+    artefacts = _artefacts()
     with chromium() as driver:
         driver.get(out.as_uri())
         assert driver.title == "shoal report"
@@ -160,7 +182,8 @@ def test_report_of_the_demo_run_in_headless_chromium(running, tmp_path):
         ids = sorted(int(r.get_attribute("data-segment")) for r in
                      driver.find_elements("css selector", "table#segments tbody tr"))
         assert ids == _ledger(running["db"])["segments"]
-        assert driver.find_elements("css selector", "#recent-alerts")
+        alert_rows = driver.find_elements("css selector", "table#alerts tbody tr")
+        assert len(alert_rows) == len(_ledger(running["db"])["alerts"]) > 0
         assert console_errors(driver) == []
         assert driver.save_screenshot(str(artefacts / "report.png"))
     print(f"screenshot: {artefacts / 'report.png'}")
