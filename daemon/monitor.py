@@ -382,53 +382,73 @@ class InputWatch:
             self._event(e, detail, ref, info)
 
     def _statistics(self, win, ref: Reference):
+        """(values, noise, detail) of one window; the core's kernels are called once per
+        window on all segments together."""
         d = len(ref.means[0])
         n = win["n"]
         center = np.asarray(win["center"])
         features = self.monitor.features
         cov_type = ref.covariance
-        per_feature = self.monitor.wants_feature_shift()
         values, noise, detail = {}, {}, {}
+        w_noise = np.atleast_1d(weight_noise(ref.weights, float(n), ref.total_n_eff))
+        seen, n_effs, means, covs = [], [], [], []
         for k, sid in enumerate(ref.ids.tolist()):
             acc = win["segments"].get(str(sid))
             w_ref = float(ref.weights[k])
             share = (acc["T"] / n) if acc else 0.0
             values[(sid, "weight_change")] = abs(share - w_ref)
-            noise[(sid, "weight_change")] = float(weight_noise(w_ref, float(n),
-                                                               ref.total_n_eff))
-            seg_detail = {"share": share, "reference_weight": w_ref, "n_eff": 0.0}
-            detail[sid] = seg_detail
+            noise[(sid, "weight_change")] = float(w_noise[k])
+            detail[sid] = {"share": share, "reference_weight": w_ref, "n_eff": 0.0}
             if not acc or acc["T"] <= 0.0 or acc["Q"] <= 0.0:
                 continue
-            T = acc["T"]
-            n_eff = T * T / acc["Q"]
-            dev = np.asarray(acc["M"]) / T
-            mean = center + dev
-            cov = np.asarray(acc["S"]) / T - np.outer(dev, dev)
-            ref_n = float(ref.n_eff[k])
-            shift = float(mahalanobis_distance(mean, ref.means[k], ref.covariances[k]))
-            values[(sid, "mean_shift")] = shift
-            noise[(sid, "mean_shift")] = float(mean_shift_noise(n_eff, d, ref_n))
-            seg_detail.update(n_eff=n_eff, mean=mean, cov=cov,
-                              t2=n_eff * shift * shift)
-            if n_eff > d + 1:
-                diag = np.diag(cov)
-                if cov_type == "diag":
-                    cov = np.diag(diag)
-                elif cov_type == "spherical":
-                    cov = np.eye(d) * diag.mean()
-                if np.all(diag > 0) and np.all(np.linalg.eigvalsh(cov) > 0):
-                    lr = float(log_generalised_variance_ratio(cov, ref.covariances[k]))
-                    values[(sid, "spread_ratio")] = abs(lr) / (2 * d)
-                    noise[(sid, "spread_ratio")] = float(
-                        spread_noise(n_eff, d, cov_type, ref_n)) / (2 * d)
-            if per_feature:
-                ref_sd = np.sqrt(np.diag(ref.covariances[k]))
-                z = np.abs(mean - ref.means[k]) / ref_sd
-                fn = math.sqrt(1.0 / n_eff + (0.0 if math.isinf(ref_n) else 1.0 / ref_n))
+            dev = np.asarray(acc["M"]) / acc["T"]
+            seen.append(k)
+            n_effs.append(acc["T"] * acc["T"] / acc["Q"])
+            means.append(center + dev)
+            covs.append(np.asarray(acc["S"]) / acc["T"] - np.outer(dev, dev))
+        if not seen:
+            return self._fit_statistics(win, ref, values, noise, detail)
+        at = np.array(seen)
+        ids = ref.ids[at].tolist()
+        n_effs, means, covs = np.array(n_effs), np.array(means), np.array(covs)
+        ref_n = ref.n_eff[at]
+        shifts = np.atleast_1d(mahalanobis_distance(means, ref.means[at], ref.covariances[at]))
+        shift_noise = np.atleast_1d(mean_shift_noise(n_effs, d, ref_n))
+        for i, sid in enumerate(ids):
+            values[(sid, "mean_shift")] = float(shifts[i])
+            noise[(sid, "mean_shift")] = float(shift_noise[i])
+            detail[sid].update(n_eff=float(n_effs[i]), mean=means[i], cov=covs[i],
+                               t2=float(n_effs[i] * shifts[i] ** 2))
+        diag = np.diagonal(covs, axis1=1, axis2=2)
+        if cov_type == "diag":
+            compared = diag[:, :, None] * np.eye(d)
+        elif cov_type == "spherical":
+            compared = diag.mean(axis=1)[:, None, None] * np.eye(d)
+        else:
+            compared = covs
+        usable = (n_effs > d + 1) & np.all(diag > 0, axis=1) & \
+            np.all(np.linalg.eigvalsh(compared) > 0, axis=1)
+        if usable.any():
+            log_ratio = np.atleast_1d(log_generalised_variance_ratio(
+                compared[usable], ref.covariances[at[usable]]))
+            spread = np.atleast_1d(spread_noise(n_effs[usable], d, cov_type, ref_n[usable]))
+            for i, sid in enumerate(np.asarray(ids)[usable].tolist()):
+                values[(sid, "spread_ratio")] = abs(float(log_ratio[i])) / (2 * d)
+                noise[(sid, "spread_ratio")] = float(spread[i]) / (2 * d)
+        if self.monitor.wants_feature_shift():
+            ref_sd = np.sqrt(np.diagonal(ref.covariances[at], axis1=1, axis2=2))
+            z = np.abs(means - ref.means[at]) / ref_sd
+            inv_ref = np.where(np.isinf(ref_n), 0.0, 1.0 / ref_n)
+            f_noise = np.sqrt(1.0 / n_effs + inv_ref)
+            for i, sid in enumerate(ids):
                 for j, f in enumerate(features):
-                    values[(sid, _feature_stat(f))] = float(z[j])
-                    noise[(sid, _feature_stat(f))] = fn
+                    values[(sid, _feature_stat(f))] = float(z[i, j])
+                    noise[(sid, _feature_stat(f))] = float(f_noise[i])
+        return self._fit_statistics(win, ref, values, noise, detail)
+
+    def _fit_statistics(self, win, ref: Reference, values, noise, detail):
+        n = win["n"]
+        center = np.asarray(win["center"])
         if n >= 2 and math.isfinite(ref.log_density):
             mean_ld = win["ld"] / n
             var = max(win["ld2"] / n - mean_ld * mean_ld, 0.0) * n / (n - 1)
