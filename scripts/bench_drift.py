@@ -19,6 +19,7 @@ import pyarrow.parquet as pq
 from shoal.config import parse_config
 from shoal.daemon.layout import prepare_folders
 from shoal.daemon.logs import setup_logging
+from shoal.daemon import monitor  # noqa: F401  (scipy.stats loaded before any timing)
 from shoal.daemon.pipeline import Pipeline
 from shoal.daemon.store import StateStore
 
