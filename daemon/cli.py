@@ -1,8 +1,9 @@
 """The ``shoal`` command line. Errors become exit codes here and nowhere else.
 
 Exit codes: 0 done; 1 an input was quarantined (ingest) or a model error;
-2 usage or configuration error; 3 the state cannot be used; 130 stopped by a
-signal before finishing (ingest, label).
+2 usage or configuration error; 3 the state cannot be used; 4 the Dask
+scheduler cannot be reached (backfill); 130 stopped by a signal before finishing
+(ingest, label, backfill).
 """
 from __future__ import annotations
 
@@ -18,6 +19,7 @@ from pathlib import Path
 from shoal.config import ConfigError, Settings, dump_settings, load_config
 from shoal.core import ShoalError
 from shoal.daemon.alert_commands import add_alert_commands, alert_delivery
+from shoal.daemon.backfill import add_backfill_command
 from shoal.daemon.errors import InputRejected, ServiceError, UsageError
 from shoal.daemon.layout import StateLock, prepare_folders, remove_stale_temps
 from shoal.daemon.logs import log_event, setup_logging
@@ -68,6 +70,7 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--json", action="store_true", help="print JSON instead of a table")
     add_operating_commands(cmd, with_config)   # report, status
     add_alert_commands(cmd, with_config, open_service_parts)   # alerts, rebaseline, replay
+    add_backfill_command(cmd, with_config, _stop_on_signals)   # backfill (Dask)
     with_config(cmd("check-config", "validate the configuration and print it in full",
                     _cmd_check_config))
     sp = cmd("demo", "run the cold-storage warehouse scenario end to end", _cmd_demo)

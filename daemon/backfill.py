@@ -1,0 +1,628 @@
+"""``shoal backfill``: learn a history of files on a Dask cluster, into a normal state folder.
+
+The coordinator (this process) owns the model; workers own the rows.
+
+1. Survey: every file is hashed, read and validated by a worker, which returns its
+   facts (hash, size, rows, invalid rows, or why it is refused) and nothing row-sized.
+   Files already in the ledger under the same name are skipped; a repeated content is
+   a duplicate (labelled, not learned); a refused file is quarantined (sidecar only,
+   the file stays where it is).
+2. Warm-up: without a model yet, the first ``warmup_rows`` valid rows (fetched from a
+   worker) start the model exactly as the service's warm-up does.
+3. Rounds: the learned stream (valid rows of the learned files, in order, after the
+   warm-up rows) is cut at global multiples of the round size ``R`` (a multiple of the
+   model's ``refresh_rows``). Each round's rows are split into pieces, one per file it
+   touches. The coordinator broadcasts the parameter snapshot; each piece's task returns
+   the piece's weighted statistics (:func:`shoal.core.distributed.partition_statistics`
+   with the exact per-row weights of the step schedule) and a few per-piece counts.
+   Results are keyed by piece, so a task that Dask runs again after a worker died is
+   still counted once. The coordinator adds them in piece order and applies the
+   stepwise update and a parameter refresh (:func:`shoal.core.distributed.apply_round`).
+   The result equals ``Mixture.learn`` over the same stream with ``refresh_rows = R``.
+4. Labels: workers label every row of every learned or duplicate file with the final
+   model and write the service's labels file, atomically, into the outbox.
+5. Commit: ONE state-store transaction holds a ledger row per file (model versions
+   advancing by one per learned file, as the service counts them), the final checkpoint
+   and its segment history. ``shoal watch`` on the same state continues from there and
+   never takes those files again.
+
+Dask's ``distributed`` is imported only here (``pip install 'shoal[cluster]'``).
+"""
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import logging
+import os
+import threading
+import time
+import uuid
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Iterator
+
+import numpy as np
+
+from shoal.config import Settings
+from shoal.core.distributed import apply_round, partition_statistics, round_weights
+from shoal.daemon.errors import (
+    InputRefused,
+    InputRejected,
+    InputVanished,
+    Interrupted,
+    ServiceError,
+    UsageError,
+)
+from shoal.daemon.gate import input_kind
+from shoal.daemon.layout import Layout, StateLock, prepare_folders, remove_stale_temps
+from shoal.daemon.logs import log_event
+from shoal.daemon.pipeline import _UNUSUAL_MEMORY_ROWS, Pipeline, _history, open_input
+from shoal.daemon.progress import progress
+from shoal.daemon.quarantine import quarantine
+from shoal.daemon.readers import Frame, read_input
+from shoal.daemon.store import Checkpoint, HistoryRow, LedgerEntry, StateStore
+from shoal.daemon.writer import labels_name, labels_table, write_labels
+
+__all__ = ["backfill", "BackfillReport", "BackfillError", "ClusterUnavailable", "FileFacts",
+           "Piece", "Round", "plan_rounds", "list_sources", "round_size",
+           "add_backfill_command", "DEFAULT_ROUND_ROWS"]
+
+DEFAULT_ROUND_ROWS = 1 << 20
+INSTALL_HINT = "pip install 'shoal[cluster]'"
+
+
+class BackfillError(ServiceError):
+    """The backfill cannot go on (too little history, a file changed under it...)."""
+
+    exit_code = 1
+
+
+class ClusterUnavailable(ServiceError):
+    """The Dask scheduler cannot be reached, or Dask is not installed."""
+
+    exit_code = 4
+
+
+# -- plan --------------------------------------------------------------------------
+@dataclass(frozen=True)
+class FileFacts:
+    """What a worker found in one input: nothing row-sized."""
+
+    index: int
+    path: str
+    name: str
+    size: int = 0
+    mtime_ns: int = 0
+    sha256: str | None = None
+    rows: int = 0
+    rows_invalid: int = 0
+    reason: str | None = None       # set when the file is refused (quarantined)
+    detail: str | None = None
+
+    @property
+    def valid_rows(self) -> int:
+        return self.rows - self.rows_invalid
+
+
+@dataclass(frozen=True)
+class Piece:
+    """Valid rows ``lo .. hi-1`` of one file, at global stream rows ``at+1 .. at+hi-lo``."""
+
+    file: int
+    lo: int
+    hi: int
+    at: int
+
+
+@dataclass(frozen=True)
+class Round:
+    start: int
+    stop: int
+    pieces: tuple[Piece, ...]
+    refresh: bool                   # ends on a multiple of the round size
+
+
+def round_size(round_rows: int, refresh_rows: int) -> int:
+    """``round_rows`` rounded up to a whole number of the model's refresh intervals."""
+    if round_rows < 1:
+        raise UsageError(f"--round-rows should be at least 1, got {round_rows}")
+    return -(-round_rows // refresh_rows) * refresh_rows
+
+
+def plan_rounds(valid_rows: list[tuple[int, int]], skip: int, n0: int,
+                size: int) -> list[Round]:
+    """Cut the learned stream into rounds ending at global multiples of ``size``.
+
+    ``valid_rows`` lists (file index, valid rows) in stream order; the first ``skip``
+    rows went to the warm-up; the model has learned ``n0`` rows before the first round.
+    """
+    spans = []                      # (file, lo, hi, global start)
+    at = n0
+    for index, n in valid_rows:
+        lo = min(skip, n)
+        skip -= lo
+        if n > lo:
+            spans.append((index, lo, n, at))
+            at += n - lo
+    end = at
+    rounds, start, k = [], n0, 0
+    while start < end:
+        stop = min((start // size + 1) * size, end)
+        pieces = []
+        while k < len(spans):
+            index, lo, hi, g = spans[k]
+            a, b = max(start, g), min(stop, g + hi - lo)
+            if a < b:
+                pieces.append(Piece(index, lo + a - g, lo + b - g, a))
+            if g + hi - lo > stop:
+                break
+            k += 1
+        rounds.append(Round(start, stop, tuple(pieces), stop % size == 0))
+        start = stop
+    return rounds
+
+
+def list_sources(sources) -> list[Path]:
+    """Files named, and the Parquet/CSV files inside folders named (sorted by name, hidden
+    files skipped), in the order given; each file once."""
+    out, seen = [], set()
+    for source in sources:
+        path = Path(source)
+        if path.is_dir():
+            found = sorted(p for p in path.iterdir() if p.is_file()
+                           and not p.name.startswith(".") and input_kind(p.name) is not None)
+        elif path.is_file():
+            if input_kind(path.name) is None:
+                raise UsageError(f"{path}: expected a name ending in .csv, .csv.gz, .parquet "
+                                 "or .pq")
+            found = [path]
+        else:
+            raise UsageError(f"no such file or folder: {path}")
+        for p in found:
+            key = p.resolve()
+            if key not in seen:
+                seen.add(key)
+                out.append(p)
+    return out
+
+
+# -- worker tasks (module-level functions: Dask sends them by reference) ------------------
+def survey_file(index: int, path: str, settings: Settings) -> FileFacts:
+    """Hash, read and validate one input (on a worker)."""
+    p = Path(path)
+    facts = FileFacts(index=index, path=str(p), name=p.name)
+    kind = input_kind(p.name)
+    try:
+        with open_input(p) as f:
+            st = os.fstat(f.fileno())
+            facts = FileFacts(index=index, path=str(p), name=p.name, size=st.st_size,
+                              mtime_ns=st.st_mtime_ns)
+            if st.st_size == 0:
+                raise InputRejected("empty", "the input is empty (0 bytes)")
+            if st.st_size > settings.limits.max_file_bytes:
+                raise InputRejected("too_large", f"{st.st_size} bytes, more than "
+                                    f"limits.max_file_bytes={settings.limits.max_file_bytes}")
+            sha = hashlib.file_digest(f, "sha256").hexdigest()
+            facts = FileFacts(index=index, path=str(p), name=p.name, size=st.st_size,
+                              mtime_ns=st.st_mtime_ns, sha256=sha)
+            f.seek(0)
+            frame = read_input(f, kind, settings)
+    except InputRejected as exc:
+        return _refused(facts, exc.reason, exc.detail)
+    except (InputVanished, InputRefused) as exc:
+        return _refused(facts, "unreadable", str(exc))
+    return FileFacts(index=index, path=str(p), name=p.name, size=facts.size,
+                     mtime_ns=facts.mtime_ns, sha256=facts.sha256, rows=frame.n_rows,
+                     rows_invalid=frame.n_invalid)
+
+
+def _refused(facts: FileFacts, reason: str, detail: str) -> FileFacts:
+    return FileFacts(index=facts.index, path=facts.path, name=facts.name, size=facts.size,
+                     mtime_ns=facts.mtime_ns, sha256=facts.sha256, reason=reason,
+                     detail=detail)
+
+
+def _read_again(facts: FileFacts, settings: Settings) -> Frame:
+    """Read a surveyed file again; refuse it if it changed since the survey."""
+    with open_input(Path(facts.path)) as f:
+        st = os.fstat(f.fileno())
+        if (st.st_size, st.st_mtime_ns) != (facts.size, facts.mtime_ns):
+            raise BackfillError(f"{facts.path} changed during the backfill (size or "
+                                "modification time differs from the survey); run the "
+                                "backfill again on files that are no longer written")
+        return read_input(f, input_kind(facts.name), settings)
+
+
+def head_rows(files: list[FileFacts], settings: Settings, n_rows: int) -> np.ndarray:
+    """The first ``n_rows`` valid rows of ``files`` in order (the warm-up buffer)."""
+    parts, have = [], 0
+    for facts in files:
+        if have >= n_rows:
+            break
+        frame = _read_again(facts, settings)
+        X = frame.features[frame.valid][: n_rows - have]
+        parts.append(X)
+        have += len(X)
+    return np.concatenate(parts) if parts else np.empty((0, len(settings.features)))
+
+
+@dataclass(frozen=True)
+class PieceResult:
+    stats: object                    # PartitionStatistics
+    counts: np.ndarray               # (n_components,) rows per most responsible component
+    log_density_quantile: float      # at output.unusual_quantile, under the snapshot
+
+
+def piece_statistics(facts: FileFacts, piece: Piece, stop: int, snapshot,
+                     settings: Settings) -> PieceResult:
+    """The statistics of one piece of a round under the round's snapshot (on a worker)."""
+    frame = _read_again(facts, settings)
+    X = frame.features[frame.valid][piece.lo:piece.hi]
+    weights = round_weights(snapshot.schedule, piece.at, piece.at + len(X), stop)
+    stats, scores = partition_statistics(snapshot, X, weights)
+    counts = np.bincount(scores.component, minlength=snapshot.n_components)
+    q = float(np.quantile(scores.log_density, settings.output.unusual_quantile))
+    return PieceResult(stats, counts, q)
+
+
+def label_file(facts: FileFacts, settings: Settings, model, version: int,
+               unusual_below: float, outbox: str) -> str:
+    """Label every row of one input with ``model``; write the labels file atomically."""
+    frame = _read_again(facts, settings)
+    scores = model.score(frame.features[frame.valid])
+    fmt = settings.output.format
+    table = labels_table(frame.passthrough, frame.valid, scores.segment, scores.confidence,
+                         scores.log_density, unusual_below, version)
+    target = Path(outbox) / labels_name(facts.name, facts.sha256, fmt)
+    write_labels(table, target, fmt, {"input_sha256": facts.sha256, "input_name": facts.name,
+                                      "model_version": version})
+    return target.name
+
+
+# -- the cluster -------------------------------------------------------------------
+def _distributed():
+    try:
+        import distributed
+    except ImportError as exc:
+        raise ClusterUnavailable(f"shoal backfill needs Dask's distributed scheduler, which "
+                                 f"is not installed: {INSTALL_HINT}") from exc
+    return distributed
+
+
+@contextlib.contextmanager
+def cluster_client(scheduler: str | None = None, local_workers: int | None = None,
+                   connect_timeout: float = 10.0) -> Iterator:
+    """A Dask client: connected to ``scheduler``, or to a local cluster of worker processes."""
+    distributed = _distributed()
+    if scheduler is not None:
+        try:
+            client = distributed.Client(scheduler, timeout=connect_timeout,
+                                        set_as_default=False)
+        except (OSError, TimeoutError, ValueError) as exc:
+            raise ClusterUnavailable(f"the Dask scheduler at {scheduler} cannot be reached "
+                                     f"within {connect_timeout:g} s: {exc}") from exc
+        with contextlib.closing(client):
+            yield client
+        return
+    workers = local_workers or os.cpu_count() or 1
+    with distributed.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                                  dashboard_address=None) as cluster:
+        with distributed.Client(cluster, set_as_default=False) as client:
+            yield client
+
+
+# -- the run -----------------------------------------------------------------------
+@dataclass
+class BackfillReport:
+    files: int = 0
+    learned: int = 0
+    duplicates: int = 0
+    skipped: int = 0
+    quarantined: int = 0
+    rows: int = 0                   # rows learned in rounds (after the warm-up)
+    warmup_rows: int = 0
+    rounds: int = 0
+    round_rows: int = 0
+    model_version: int = 0
+    labels: list[str] = field(default_factory=list)
+    seconds: float = 0.0
+
+
+def backfill(settings: Settings, sources, *, client=None, scheduler: str | None = None,
+             local_workers: int | None = None, round_rows: int = DEFAULT_ROUND_ROWS,
+             connect_timeout: float = 10.0, stop: threading.Event | None = None,
+             wall=time.time) -> BackfillReport:
+    """Learn ``sources`` (files or folders) into the state folder of ``settings``.
+
+    ``client`` is a ``distributed.Client`` to use; without it one is made for
+    ``scheduler`` or for a local cluster of ``local_workers`` processes.
+    """
+    stop = stop or threading.Event()
+    paths = list_sources(sources)
+    if not paths:
+        raise UsageError("no Parquet or CSV files in the sources given")
+    layout = prepare_folders(settings)
+    with StateLock(layout.lock):
+        remove_stale_temps(layout)
+        store = StateStore(layout.db, checkpoints_kept=settings.learning.checkpoints_kept)
+        try:
+            pipeline = Pipeline(settings, layout, store, stop=stop, wall=wall)
+            if client is not None:
+                return _Run(settings, layout, store, pipeline, client, stop, wall).run(
+                    paths, round_rows)
+            with cluster_client(scheduler, local_workers, connect_timeout) as made:
+                return _Run(settings, layout, store, pipeline, made, stop, wall).run(
+                    paths, round_rows)
+        finally:
+            store.close()
+
+
+class _Run:
+    def __init__(self, settings, layout: Layout, store: StateStore, pipeline: Pipeline,
+                 client, stop: threading.Event, wall):
+        self.settings, self.layout, self.store = settings, layout, store
+        self.pipeline, self.client, self.stop, self.wall = pipeline, client, stop, wall
+        self.tag = uuid.uuid4().hex[:12]   # task keys of this run
+
+    def _check_stop(self) -> None:
+        if self.stop.is_set():
+            raise Interrupted("stop requested; nothing was committed")
+
+    def _gather(self, futures: list) -> list:
+        from distributed.scheduler import KilledWorker
+
+        try:
+            return self.client.gather(futures)
+        except KilledWorker as exc:
+            raise BackfillError(f"a task killed its workers again and again ({exc}); see "
+                                "the workers' logs") from exc
+        except (OSError, TimeoutError) as exc:
+            raise ClusterUnavailable(f"lost the Dask scheduler: {exc}") from exc
+
+    def run(self, paths: list[Path], round_rows: int) -> BackfillReport:
+        t0 = time.monotonic()
+        seen_at = self.wall()
+        report = BackfillReport(files=len(paths))
+        facts = self._survey(paths)
+        learned, duplicates, skipped, refused = self._classify(facts)
+        report.learned, report.duplicates = len(learned), len(duplicates)
+        report.skipped, report.quarantined = len(skipped), len(refused)
+        st = self.pipeline.state
+        mixture, extra, skip, head_scores = st.mixture, dict(st.extra), 0, None
+        clear_warmup = False
+        if learned and mixture is None:
+            mixture, extra, skip, head_scores = self._warm_up(learned)
+            clear_warmup = True
+            report.warmup_rows = skip
+        version = self.store.model_version + len(learned)
+        if mixture is not None and learned:
+            size = round_size(round_rows, mixture.refresh_rows)
+            report.round_rows = size
+            rounds = plan_rounds([(f.index, f.valid_rows) for f in learned], skip,
+                                 mixture.n_rows, size)
+            mixture, extra = self._rounds(mixture, extra, rounds, facts, head_scores)
+            report.rounds = len(rounds)
+            report.rows = sum(r.stop - r.start for r in rounds)
+        if mixture is not None and (learned or duplicates):
+            report.labels = self._labels(learned + duplicates, mixture, version,
+                                         extra.get("unusual_below", -np.inf))
+        self._check_stop()
+        report.model_version = self._commit(facts, learned, duplicates, refused, mixture,
+                                            extra, version, clear_warmup, seen_at,
+                                            labelled=bool(report.labels))
+        report.seconds = round(time.monotonic() - t0, 3)
+        log_event("backfill_committed", files=report.files, learned=report.learned,
+                  duplicates=report.duplicates, skipped=report.skipped,
+                  quarantined=report.quarantined, rows=report.rows, rounds=report.rounds,
+                  model_version=report.model_version, duration=report.seconds)
+        return report
+
+    # -- stages ------------------------------------------------------------------
+    def _survey(self, paths: list[Path]) -> list[FileFacts]:
+        futures = [self.client.submit(survey_file, i, str(p), self.settings,
+                                      key=f"shoal-survey-{self.tag}-{i}")
+                   for i, p in enumerate(paths)]
+        out = self._gather(futures)
+        self._check_stop()
+        return out
+
+    def _classify(self, facts: list[FileFacts]):
+        learned, duplicates, skipped, refused = [], [], [], []
+        seen: set[str] = set()
+        for f in facts:
+            if f.reason is not None:
+                refused.append(f)
+                continue
+            done = self.store.find_done(f.sha256)
+            if any(e.name == f.name for e in done):
+                skipped.append(f)
+            elif done or f.sha256 in seen:
+                duplicates.append(f)
+            else:
+                learned.append(f)
+            seen.add(f.sha256)
+        return learned, duplicates, skipped, refused
+
+    def _warm_up(self, learned: list[FileFacts]):
+        st = self.pipeline.state
+        buffered = 0 if st.warmup is None else len(st.warmup)
+        need = max(self.settings.warmup_rows - buffered, 0)
+        fut = self.client.submit(head_rows, learned, self.settings, need,
+                                 key=f"shoal-head-{self.tag}")
+        head = self._gather([fut])[0]
+        if len(head) < need:
+            raise BackfillError(f"the history holds {buffered + len(head)} valid rows; the "
+                                f"warm-up needs warmup_rows={self.settings.warmup_rows}")
+        mixture, scores, _, init_extra = self.pipeline._warm_up(head)
+        if mixture is None:
+            raise BackfillError("the warm-up rows could not start a model (see the "
+                                "warmup_not_enough_data log line)")
+        extra = dict(self.pipeline.state.extra)
+        extra.update(init_extra)
+        extra = self._count(extra, mixture, scores.component)
+        return mixture, extra, need, scores
+
+    def _count(self, extra: dict, mixture, components: np.ndarray) -> dict:
+        counts = np.bincount(components, minlength=mixture.n_components)
+        return self._add_counts(extra, mixture, counts)
+
+    @staticmethod
+    def _add_counts(extra: dict, mixture, counts: np.ndarray) -> dict:
+        rows = dict(extra.get("segment_rows", {}))
+        for sid, n in zip(mixture.ids.tolist(), counts.tolist()):
+            if n:
+                rows[str(sid)] = rows.get(str(sid), 0) + int(n)
+        return dict(extra, segment_rows=rows)
+
+    def _rounds(self, mixture, extra: dict, rounds: list[Round], facts: list[FileFacts],
+                head_scores):
+        below = extra.get("unusual_below")
+        total_rows = sum(r.stop - r.start for r in rounds)
+        for number, rnd in enumerate(progress(rounds, total=len(rounds),
+                                              desc=f"rounds ({total_rows:,} rows)",
+                                              unit="round")):
+            self._check_stop()
+            t = time.monotonic()
+            [snapshot] = self.client.scatter([mixture], broadcast=True, hash=False)
+            futures = [self.client.submit(piece_statistics, facts[p.file], p, rnd.stop,
+                                          snapshot, self.settings,
+                                          key=f"shoal-piece-{self.tag}-{number}-{i}")
+                       for i, p in enumerate(rnd.pieces)]
+            results: list[PieceResult] = self._gather(futures)
+            del futures, snapshot
+            mixture = apply_round(mixture, [r.stats for r in results], rnd.start, rnd.stop,
+                                  refresh=rnd.refresh)
+            for r in results:   # the service's rule, piece by piece in stream order
+                extra = self._add_counts(extra, mixture, r.counts)
+                if below is not None:
+                    n = r.stats.n_rows
+                    below += n / (n + _UNUSUAL_MEMORY_ROWS) * (r.log_density_quantile - below)
+            log_event("backfill_round", logging.DEBUG, round=number, rows=rnd.stop - rnd.start,
+                      pieces=len(rnd.pieces), refreshed=rnd.refresh, n_rows=rnd.stop,
+                      duration=round(time.monotonic() - t, 4))
+        if below is not None:
+            extra["unusual_below"] = float(below)
+        return mixture, extra
+
+    def _labels(self, files: list[FileFacts], mixture, version: int,
+                unusual_below: float) -> list[str]:
+        self._check_stop()
+        [model] = self.client.scatter([mixture], broadcast=True, hash=False)
+        futures = [self.client.submit(label_file, f, self.settings, model, version,
+                                      unusual_below, str(self.layout.outbox),
+                                      key=f"shoal-labels-{self.tag}-{f.index}")
+                   for f in sorted(files, key=lambda f: f.index)]
+        return self._gather(futures)
+
+    def _commit(self, facts, learned, duplicates, refused, mixture, extra, version,
+                clear_warmup, seen_at, labelled: bool) -> int:
+        now = self.wall()
+        outcome = {f.index: "committed" for f in learned}
+        outcome.update({f.index: "duplicate" for f in duplicates})
+        for f in refused:
+            quarantine(Path(f.path), self.layout.quarantine, f.reason, f.detail, move=False,
+                       now=now, facts={"sha256": f.sha256, "size": f.size})
+            log_event("input_quarantined", logging.WARNING, file=f.name, reason=f.reason,
+                      detail=f.detail)
+        fmt = self.settings.output.format
+        entries = []
+        for f in facts:
+            if f.reason is not None:
+                entries.append((LedgerEntry(sha256=f.sha256, name=f.name, size=f.size,
+                                            outcome="quarantined",
+                                            reason=f"{f.reason}: {f.detail}",
+                                            seen_at=seen_at, finished_at=now), False))
+            elif f.index in outcome:
+                entries.append((LedgerEntry(sha256=f.sha256, name=f.name, size=f.size,
+                                            outcome=outcome[f.index], rows=f.rows,
+                                            rows_invalid=f.rows_invalid,
+                                            labels=labels_name(f.name, f.sha256, fmt)
+                                            if labelled else None,
+                                            seen_at=seen_at, finished_at=now),
+                                outcome[f.index] == "committed"))
+        checkpoint = history = None
+        if learned and mixture is not None:
+            born = dict(extra.get("segment_born", {}))
+            for sid in mixture.ids.tolist():
+                born.setdefault(str(sid), {"version": version, "time": now})
+            extra = dict(extra, segment_born=born)
+            arrays, meta = mixture.to_state()
+            checkpoint = Checkpoint(version, arrays, meta, extra)
+            history = _history(mixture, extra)
+        return _commit_all(self.store, entries, checkpoint, history or [], clear_warmup)
+
+
+def _commit_all(store: StateStore, entries: list[tuple[LedgerEntry, bool]],
+                checkpoint: Checkpoint | None, history: list[HistoryRow],
+                clear_warmup: bool) -> int:
+    """Every ledger row, the checkpoint and its history in ONE transaction.
+
+    The store has no public call for many inputs at once (``commit_input`` is one input
+    per transaction), so this uses its row writers inside one of its transactions.
+    """
+    import json
+
+    now = store.clock()
+    with store._transaction():
+        version = store.model_version
+        for entry, learned in entries:
+            if entry.outcome == "quarantined":
+                store._insert_entry(entry)
+                continue
+            version += 1 if learned else 0
+            store._insert_entry(entry, model_version=version)
+        if checkpoint is not None and checkpoint.version != version:
+            raise BackfillError(f"checkpoint version {checkpoint.version} does not match "
+                                f"the ledger's {version}")
+        store._set_meta("model_version", str(version))
+        if clear_warmup:
+            store.db.execute("DELETE FROM warmup")
+        if checkpoint is not None:
+            store._insert_checkpoint(checkpoint, now)
+        for h in history:
+            store.db.execute(
+                "INSERT INTO segment_history (version, segment, weight, rows, mean, spread, "
+                "drift, event, created) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                (version, int(h.segment), float(h.weight), int(h.rows), json.dumps(h.mean),
+                 json.dumps(h.spread), None, h.event, now))
+    return version
+
+
+# -- the command -------------------------------------------------------------------
+def add_backfill_command(cmd, with_config, stop_on_signals) -> None:
+    """Add ``backfill`` with the CLI's own ``cmd``/``with_config`` helpers."""
+    sp = with_config(cmd("backfill", "learn a history of Parquet/CSV files on a Dask cluster "
+                                     "into the state folder, labelling every row",
+                         lambda args: _cmd_backfill(args, stop_on_signals)))
+    sp.add_argument("sources", nargs="+", metavar="SOURCE",
+                    help="files, or folders whose Parquet/CSV files are taken in name order")
+    where = sp.add_mutually_exclusive_group()
+    where.add_argument("--scheduler", metavar="ADDRESS",
+                       help="address of a running Dask scheduler, e.g. tcp://host:8786")
+    where.add_argument("--local-workers", type=int, metavar="N",
+                       help="start N local worker processes (default: one per core)")
+    sp.add_argument("--round-rows", type=int, default=DEFAULT_ROUND_ROWS, metavar="ROWS",
+                    help="rows per round: one parameter snapshot per round, rounded up to "
+                         f"whole refresh intervals (default {DEFAULT_ROUND_ROWS:,})")
+    sp.add_argument("--connect-timeout", type=float, default=10.0, metavar="SECONDS",
+                    help="give up on the scheduler after this long (default 10)")
+
+
+def _cmd_backfill(args, stop_on_signals) -> int:
+    from shoal.config import load_config
+    from shoal.daemon.logs import setup_logging
+
+    settings = load_config(args.config)
+    setup_logging(settings.log_level)
+    if args.local_workers is not None and args.local_workers < 1:
+        raise UsageError(f"--local-workers should be at least 1, got {args.local_workers}")
+    stop = threading.Event()
+    with stop_on_signals(stop):
+        r = backfill(settings, args.sources, scheduler=args.scheduler,
+                     local_workers=args.local_workers, round_rows=args.round_rows,
+                     connect_timeout=args.connect_timeout, stop=stop)
+    print(f"{r.learned} files learned ({r.warmup_rows:,} warm-up rows, {r.rows:,} rows in "
+          f"{r.rounds} rounds of {r.round_rows:,}), {r.duplicates} duplicates, {r.skipped} "
+          f"already done, {r.quarantined} quarantined; {len(r.labels)} labels files; model "
+          f"version {r.model_version}; {r.seconds:.1f} s")
+    return 1 if r.quarantined else 0
