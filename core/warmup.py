@@ -7,6 +7,7 @@ bit-identical mixtures.
 from __future__ import annotations
 
 import warnings
+from dataclasses import replace
 
 import numpy as np
 
@@ -16,6 +17,8 @@ from .mixture import Mixture
 from .schedule import StepSchedule
 
 __all__ = ["kmeans_plus_plus", "batch_em", "initialise", "select_n_components", "bic"]
+
+SCREEN_ITER = 20  # EM iterations each restart gets before the best one is run on
 
 
 def _check_rows(X, n_components) -> np.ndarray:
@@ -97,8 +100,6 @@ def _from_hard_labels(template: Mixture, Z, labels) -> Mixture:
     resp[np.arange(n), labels] = 1.0
     s0, s1, s2 = template.family.moments(template.family.design(Z), resp.T / n)
     sumsq = 1.0 / n
-    from dataclasses import replace
-
     return replace(template, s0=s0, s1=s1, s2=s2, sumsq=sumsq,
                    **template._derive(s0, s1, s2, sumsq))
 
@@ -145,7 +146,7 @@ def initialise(
     seed=0,
     n_init=5,
     max_iter=300,
-    tol=1e-7,
+    tol=1e-6,
     schedule: StepSchedule | None = None,
     reg_covar=1e-6,
     prior_weight=1e-3,
@@ -223,15 +224,17 @@ def initialise(
     if averaging is None:
         averaging = schedule.half_life_rows is None
     rng = np.random.default_rng(seed)
+    # Short runs first: every restart gets SCREEN_ITER iterations of EM, and only the
+    # best of them is run to convergence (the "short-run EM" start of Biernacki,
+    # Celeux & Govaert 2003). It costs one long run instead of n_init.
     best, best_ll = None, -np.inf
     for _ in range(int(n_init)):
         labels = _lloyd(Z, kmeans_plus_plus(Z, n_components, rng))
         start = _from_hard_labels(template, Z, labels)
-        fitted, history = _batch_em(Z, start, max_iter=max_iter, tol=tol)
+        fitted, history = _batch_em(Z, start, max_iter=min(SCREEN_ITER, max_iter), tol=tol)
         if history[-1] > best_ll or best is None:
             best, best_ll = fitted, history[-1]
-    from dataclasses import replace
-
+    best, _ = _batch_em(Z, best, max_iter=max_iter, tol=tol)
     return replace(best, center=center, scale=scale, averaging=bool(averaging))
 
 
