@@ -78,8 +78,13 @@ def ledger_totals(reader: StateStore) -> dict[str, Any]:
 
 
 def _alert_record(row: dict) -> dict:
-    """One alert as a flat dict, whatever table it came from."""
+    """One alert notification as a flat dict, whatever table it came from.
+
+    A row's own ``id`` names the notification (``notification``); the payload's ``id``
+    names the alert, the same for its firing and its resolved notification.
+    """
     out = dict(row)
+    out["notification"] = out.get("id")
     payload = out.pop("payload", None)
     if isinstance(payload, str):
         try:
@@ -89,6 +94,7 @@ def _alert_record(row: dict) -> dict:
     if isinstance(payload, dict):
         for key, value in payload.items():
             out.setdefault(key, value)
+        out["id"] = payload.get("id", out.get("id"))
     out.setdefault("status", "firing")
     out.setdefault("severity", "warning")
     return out
@@ -104,9 +110,6 @@ def read_alerts(reader: StateReader, since: float | None = None,
     cur = reader.db.execute(f"SELECT * FROM {table}")  # noqa: S608 - name from a fixed list
     names = [d[0] for d in cur.description]
     rows = [_alert_record(dict(zip(names, r))) for r in cur.fetchall()]
-    if table == "alert_outbox":  # one row per notification: firing, then resolved
-        for r in rows:
-            r["notification"] = r.get("notification") or r.get("id")
     if since is not None:
         rows = [r for r in rows if (r.get("created") or 0) >= since]
     rows.sort(key=lambda r: (r.get("created") or 0, str(r.get("id"))), reverse=True)

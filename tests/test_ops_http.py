@@ -187,3 +187,24 @@ def test_report_of_the_demo_run_in_headless_chromium(running, tmp_path):
         assert console_errors(driver) == []
         assert driver.save_screenshot(str(artefacts / "report.png"))
     print(f"screenshot: {artefacts / 'report.png'}")
+
+
+def test_status_command_one_screen(running, capsys):
+    from shoal.daemon.cli import main
+
+    assert main(["status", "-c", str(running["config"])]) == 0
+    out = capsys.readouterr().out
+    ledger = _ledger(running["db"])
+    assert out.startswith(f"model version {N_DROPS},")
+    assert f"inputs: {N_DROPS} committed" in out
+    assert f"last input: {running['names'][-1]} (committed" in out
+    listed = [int(line.split()[0]) for line in out.splitlines()
+              if line.strip() and line.split()[0].isdigit()]
+    assert listed == ledger["segments"]
+    firing = {a["id"] for a in ledger["alerts"] if a["status"] == "firing"} - {
+        a["id"] for a in ledger["alerts"] if a["status"] == "resolved"}
+    assert f"alerts: {len(firing)} firing now" in out, out
+    assert "last error: none" in out
+    assert len(out.splitlines()) <= 24                     # one terminal screen
+    assert main(["status", "-c", str(running["config"]), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["model_version"] == N_DROPS
