@@ -1,7 +1,8 @@
 """Alert delivery after commit: the JSON-lines file and signed webhooks, at least once.
 
 Alerts reach the outbox table in the same transaction as the model version that
-raised them; :class:`AlertSender` takes them from there, oldest first, and marks
+raised them; :class:`AlertSender` takes them from there, oldest first and in order
+for each sink (one waiting for its retry holds back the later ones), and marks
 each sink's delivery in the state store, so a restart delivers whatever was left
 undelivered (a notification may then arrive twice; its id and the
 ``Idempotency-Key`` header let the receiver drop the repeat).

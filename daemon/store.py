@@ -304,12 +304,16 @@ class StateStore:
     # -- alert delivery (the sender's own connection) ----------------------------
     def deliveries_due(self, sinks: list[str], now: float, limit: int = 100):
         """Undelivered (notification, sink, attempts, payload text) due by ``now``, oldest
-        first; a missing delivery row counts as due with no attempts."""
+        first; a missing delivery row counts as due with no attempts. Each sink gets its
+        notifications in order: one waiting for its retry holds back the later ones."""
         out = []
+        waiting: set[str] = set()
         rows = self.db.execute("SELECT id, payload FROM alert_outbox WHERE delivered_at IS NULL "
                                "ORDER BY version, rowid LIMIT ?", (limit,)).fetchall()
         for outbox_id, payload in rows:
             for sink in sinks:
+                if sink in waiting:
+                    continue
                 row = self.db.execute("SELECT delivered_at, attempts, next_at FROM "
                                       "alert_delivery WHERE outbox_id = ? AND sink = ?",
                                       (outbox_id, sink)).fetchone()
@@ -317,6 +321,8 @@ class StateStore:
                     out.append((outbox_id, sink, 0, payload))
                 elif row[0] is None and (row[2] is None or row[2] <= now):
                     out.append((outbox_id, sink, row[1], payload))
+                elif row[0] is None:
+                    waiting.add(sink)
         return out
 
     def next_delivery_at(self) -> float | None:
