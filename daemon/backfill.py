@@ -34,6 +34,7 @@ import contextlib
 import hashlib
 import logging
 import os
+import shutil
 import threading
 import time
 import uuid
@@ -61,13 +62,15 @@ from shoal.daemon.progress import progress
 from shoal.daemon.quarantine import quarantine
 from shoal.daemon.readers import Frame, read_input
 from shoal.daemon.store import Checkpoint, HistoryRow, LedgerEntry, StateStore
-from shoal.daemon.writer import labels_name, labels_table, write_labels
+from shoal.daemon.writer import atomic_file, labels_name, labels_table, write_labels
 
 __all__ = ["backfill", "BackfillReport", "BackfillError", "ClusterUnavailable", "FileFacts",
            "Piece", "Round", "plan_rounds", "list_sources", "round_size",
            "add_backfill_command", "DEFAULT_ROUND_ROWS"]
 
 DEFAULT_ROUND_ROWS = 1 << 20
+LABEL_MODES = ("round", "final")
+_STAGE = ".shoal-backfill"   # in the outbox: the rounds' scores until the labels are written
 INSTALL_HINT = "pip install 'shoal[cluster]'"
 
 
@@ -254,15 +257,41 @@ class PieceResult:
 
 
 def piece_statistics(facts: FileFacts, piece: Piece, stop: int, snapshot,
-                     settings: Settings) -> PieceResult:
-    """The statistics of one piece of a round under the round's snapshot (on a worker)."""
+                     settings: Settings, stage: str | None = None) -> PieceResult:
+    """The statistics of one piece of a round under the round's snapshot (on a worker).
+
+    With ``stage`` (a folder), the piece's scores are also kept there for its labels.
+    """
     frame = _read_again(facts, settings)
     X = frame.features[frame.valid][piece.lo:piece.hi]
     weights = round_weights(snapshot.schedule, piece.at, piece.at + len(X), stop)
     stats, scores = partition_statistics(snapshot, X, weights)
+    if stage is not None:
+        save_scores(Path(stage), facts.index, piece.lo, scores)
     counts = np.bincount(scores.component, minlength=snapshot.n_components)
     q = float(np.quantile(scores.log_density, settings.output.unusual_quantile))
     return PieceResult(stats, counts, q)
+
+
+def save_scores(stage: Path, index: int, lo: int, scores) -> Path:
+    """Scores of valid rows ``lo..`` of file ``index``, atomically (a retried task writes
+    the same bytes again)."""
+    target = stage / f"{index:06d}.{lo:012d}.npz"
+    with atomic_file(target) as f:
+        np.savez(f, segment=scores.segment, confidence=scores.confidence,
+                 log_density=scores.log_density)
+    return target
+
+
+def _write_labels(facts: FileFacts, settings: Settings, frame: Frame, segment, confidence,
+                  log_density, unusual_below: float, version: int, outbox: str) -> str:
+    fmt = settings.output.format
+    table = labels_table(frame.passthrough, frame.valid, segment, confidence, log_density,
+                         unusual_below, version)
+    target = Path(outbox) / labels_name(facts.name, facts.sha256, fmt)
+    write_labels(table, target, fmt, {"input_sha256": facts.sha256, "input_name": facts.name,
+                                      "model_version": version})
+    return target.name
 
 
 def label_file(facts: FileFacts, settings: Settings, model, version: int,
@@ -270,13 +299,23 @@ def label_file(facts: FileFacts, settings: Settings, model, version: int,
     """Label every row of one input with ``model``; write the labels file atomically."""
     frame = _read_again(facts, settings)
     scores = model.score(frame.features[frame.valid])
-    fmt = settings.output.format
-    table = labels_table(frame.passthrough, frame.valid, scores.segment, scores.confidence,
-                         scores.log_density, unusual_below, version)
-    target = Path(outbox) / labels_name(facts.name, facts.sha256, fmt)
-    write_labels(table, target, fmt, {"input_sha256": facts.sha256, "input_name": facts.name,
-                                      "model_version": version})
-    return target.name
+    return _write_labels(facts, settings, frame, scores.segment, scores.confidence,
+                         scores.log_density, unusual_below, version, outbox)
+
+
+def assemble_labels(facts: FileFacts, settings: Settings, stage: str, version: int,
+                    unusual_below: float, outbox: str) -> str:
+    """The labels file of one input from the scores its pieces kept in ``stage``."""
+    frame = _read_again(facts, settings)
+    parts = [np.load(p, allow_pickle=False)
+             for p in sorted(Path(stage).glob(f"{facts.index:06d}.*.npz"))]
+    cols = {name: np.concatenate([p[name] for p in parts]) if parts else np.empty(0)
+            for name in ("segment", "confidence", "log_density")}
+    if len(cols["segment"]) != facts.valid_rows:
+        raise BackfillError(f"{facts.name}: the rounds scored {len(cols['segment'])} of its "
+                            f"{facts.valid_rows} valid rows")
+    return _write_labels(facts, settings, frame, cols["segment"], cols["confidence"],
+                         cols["log_density"], unusual_below, version, outbox)
 
 
 # -- the cluster -------------------------------------------------------------------
@@ -330,13 +369,18 @@ class BackfillReport:
 
 def backfill(settings: Settings, sources, *, client=None, scheduler: str | None = None,
              local_workers: int | None = None, round_rows: int = DEFAULT_ROUND_ROWS,
-             connect_timeout: float = 10.0, stop: threading.Event | None = None,
-             wall=time.time) -> BackfillReport:
+             labels: str = "round", connect_timeout: float = 10.0,
+             stop: threading.Event | None = None, wall=time.time) -> BackfillReport:
     """Learn ``sources`` (files or folders) into the state folder of ``settings``.
 
     ``client`` is a ``distributed.Client`` to use; without it one is made for
     ``scheduler`` or for a local cluster of ``local_workers`` processes.
+    ``labels``: ``"round"`` labels each row with the snapshot that scored it while
+    learning (one pass, as the service labels); ``"final"`` labels every row again with
+    the final model (a second scoring pass).
     """
+    if labels not in LABEL_MODES:
+        raise UsageError(f"labels should be one of {LABEL_MODES}, got {labels!r}")
     stop = stop or threading.Event()
     paths = list_sources(sources)
     if not paths:
@@ -349,10 +393,10 @@ def backfill(settings: Settings, sources, *, client=None, scheduler: str | None 
             pipeline = Pipeline(settings, layout, store, stop=stop, wall=wall)
             if client is not None:
                 return _Run(settings, layout, store, pipeline, client, stop, wall).run(
-                    paths, round_rows)
+                    paths, round_rows, labels)
             with cluster_client(scheduler, local_workers, connect_timeout) as made:
                 return _Run(settings, layout, store, pipeline, made, stop, wall).run(
-                    paths, round_rows)
+                    paths, round_rows, labels)
         finally:
             store.close()
 
@@ -379,7 +423,7 @@ class _Run:
         except (OSError, TimeoutError) as exc:
             raise ClusterUnavailable(f"lost the Dask scheduler: {exc}") from exc
 
-    def run(self, paths: list[Path], round_rows: int) -> BackfillReport:
+    def run(self, paths: list[Path], round_rows: int, labels: str) -> BackfillReport:
         t0 = time.monotonic()
         seen_at = self.wall()
         report = BackfillReport(files=len(paths))
@@ -388,24 +432,40 @@ class _Run:
         report.learned, report.duplicates = len(learned), len(duplicates)
         report.skipped, report.quarantined = len(skipped), len(refused)
         st = self.pipeline.state
-        mixture, extra, skip, head_scores = st.mixture, dict(st.extra), 0, None
+        mixture, extra, skip = st.mixture, dict(st.extra), 0
         clear_warmup = False
+        stage = None
+        if labels == "round" and learned:
+            stage = self.layout.outbox / _STAGE
+            shutil.rmtree(stage, ignore_errors=True)   # scores of an unfinished run
+            stage.mkdir(mode=0o750)
         if learned and mixture is None:
-            mixture, extra, skip, head_scores = self._warm_up(learned)
+            mixture, extra, skip = self._warm_up(learned, stage)
             clear_warmup = True
             report.warmup_rows = skip
-        version = self.store.model_version + len(learned)
+        base = self.store.model_version
+        version = base + len(learned)
+        below = {f.index: extra.get("unusual_below", -np.inf) for f in learned}
         if mixture is not None and learned:
             size = round_size(round_rows, mixture.refresh_rows)
             report.round_rows = size
             rounds = plan_rounds([(f.index, f.valid_rows) for f in learned], skip,
                                  mixture.n_rows, size)
-            mixture, extra = self._rounds(mixture, extra, rounds, facts, head_scores)
+            mixture, extra = self._rounds(mixture, extra, rounds, facts, stage, below)
             report.rounds = len(rounds)
             report.rows = sum(r.stop - r.start for r in rounds)
-        if mixture is not None and (learned or duplicates):
-            report.labels = self._labels(learned + duplicates, mixture, version,
-                                         extra.get("unusual_below", -np.inf))
+        final_below = extra.get("unusual_below", -np.inf)
+        if mixture is not None:
+            todo = []   # (task, file, model version of its labels, unusual threshold)
+            for i, f in enumerate(learned):
+                if stage is not None:
+                    todo.append((assemble_labels, f, base + i + 1, below[f.index]))
+                else:
+                    todo.append((label_file, f, version, final_below))
+            todo += [(label_file, f, version, final_below) for f in duplicates]
+            report.labels = self._labels(todo, mixture, stage)
+        if stage is not None:
+            shutil.rmtree(stage, ignore_errors=True)
         self._check_stop()
         report.model_version = self._commit(facts, learned, duplicates, refused, mixture,
                                             extra, version, clear_warmup, seen_at,
@@ -443,7 +503,7 @@ class _Run:
             seen.add(f.sha256)
         return learned, duplicates, skipped, refused
 
-    def _warm_up(self, learned: list[FileFacts]):
+    def _warm_up(self, learned: list[FileFacts], stage: Path | None):
         st = self.pipeline.state
         buffered = 0 if st.warmup is None else len(st.warmup)
         need = max(self.settings.warmup_rows - buffered, 0)
@@ -460,7 +520,15 @@ class _Run:
         extra = dict(self.pipeline.state.extra)
         extra.update(init_extra)
         extra = self._count(extra, mixture, scores.component)
-        return mixture, extra, need, scores
+        if stage is not None:   # the warm-up rows are labelled by the first model
+            at = 0
+            for f in learned:
+                take = min(f.valid_rows, need - at)
+                if take <= 0:
+                    break
+                save_scores(stage, f.index, 0, _Slice(scores, at, at + take))
+                at += take
+        return mixture, extra, need
 
     def _count(self, extra: dict, mixture, components: np.ndarray) -> dict:
         counts = np.bincount(components, minlength=mixture.n_components)
@@ -475,7 +543,7 @@ class _Run:
         return dict(extra, segment_rows=rows)
 
     def _rounds(self, mixture, extra: dict, rounds: list[Round], facts: list[FileFacts],
-                head_scores):
+                stage: Path | None, below_after: dict[int, float]):
         below = extra.get("unusual_below")
         total_rows = sum(r.stop - r.start for r in rounds)
         for number, rnd in enumerate(progress(rounds, total=len(rounds),
@@ -486,17 +554,19 @@ class _Run:
             [snapshot] = self.client.scatter([mixture], broadcast=True, hash=False)
             futures = [self.client.submit(piece_statistics, facts[p.file], p, rnd.stop,
                                           snapshot, self.settings,
+                                          None if stage is None else str(stage),
                                           key=f"shoal-piece-{self.tag}-{number}-{i}")
                        for i, p in enumerate(rnd.pieces)]
             results: list[PieceResult] = self._gather(futures)
             del futures, snapshot
             mixture = apply_round(mixture, [r.stats for r in results], rnd.start, rnd.stop,
                                   refresh=rnd.refresh)
-            for r in results:   # the service's rule, piece by piece in stream order
+            for p, r in zip(rnd.pieces, results):   # the service's rule, in stream order
                 extra = self._add_counts(extra, mixture, r.counts)
                 if below is not None:
                     n = r.stats.n_rows
                     below += n / (n + _UNUSUAL_MEMORY_ROWS) * (r.log_density_quantile - below)
+                    below_after[p.file] = below
             log_event("backfill_round", logging.DEBUG, round=number, rows=rnd.stop - rnd.start,
                       pieces=len(rnd.pieces), refreshed=rnd.refresh, n_rows=rnd.stop,
                       duration=round(time.monotonic() - t, 4))
@@ -504,14 +574,21 @@ class _Run:
             extra["unusual_below"] = float(below)
         return mixture, extra
 
-    def _labels(self, files: list[FileFacts], mixture, version: int,
-                unusual_below: float) -> list[str]:
+    def _labels(self, todo: list, mixture, stage: Path | None) -> list[str]:
+        """Write the labels files: ``todo`` holds (task, file, version, threshold)."""
         self._check_stop()
-        [model] = self.client.scatter([mixture], broadcast=True, hash=False)
-        futures = [self.client.submit(label_file, f, self.settings, model, version,
-                                      unusual_below, str(self.layout.outbox),
-                                      key=f"shoal-labels-{self.tag}-{f.index}")
-                   for f in sorted(files, key=lambda f: f.index)]
+        outbox = str(self.layout.outbox)
+        model = None
+        futures = []
+        for task, f, version, below in sorted(todo, key=lambda t: t[1].index):
+            if task is label_file:
+                if model is None:
+                    [model] = self.client.scatter([mixture], broadcast=True, hash=False)
+                args = (f, self.settings, model, version, below, outbox)
+            else:
+                args = (f, self.settings, str(stage), version, below, outbox)
+            futures.append(self.client.submit(task, *args,
+                                              key=f"shoal-labels-{self.tag}-{f.index}"))
         return self._gather(futures)
 
     def _commit(self, facts, learned, duplicates, refused, mixture, extra, version,
@@ -550,6 +627,15 @@ class _Run:
             checkpoint = Checkpoint(version, arrays, meta, extra)
             history = _history(mixture, extra)
         return _commit_all(self.store, entries, checkpoint, history or [], clear_warmup)
+
+
+class _Slice:
+    """Rows ``a..b`` of some scores (what :func:`save_scores` reads)."""
+
+    def __init__(self, scores, a: int, b: int):
+        self.segment = scores.segment[a:b]
+        self.confidence = scores.confidence[a:b]
+        self.log_density = scores.log_density[a:b]
 
 
 def _commit_all(store: StateStore, entries: list[tuple[LedgerEntry, bool]],
@@ -604,6 +690,10 @@ def add_backfill_command(cmd, with_config, stop_on_signals) -> None:
     sp.add_argument("--round-rows", type=int, default=DEFAULT_ROUND_ROWS, metavar="ROWS",
                     help="rows per round: one parameter snapshot per round, rounded up to "
                          f"whole refresh intervals (default {DEFAULT_ROUND_ROWS:,})")
+    sp.add_argument("--labels", choices=LABEL_MODES, default="round",
+                    help="round: each row labelled by the snapshot that scored it while "
+                         "learning (one pass, as the service labels); final: every row "
+                         "labelled again by the final model (a second pass)")
     sp.add_argument("--connect-timeout", type=float, default=10.0, metavar="SECONDS",
                     help="give up on the scheduler after this long (default 10)")
 
@@ -620,6 +710,7 @@ def _cmd_backfill(args, stop_on_signals) -> int:
     with stop_on_signals(stop):
         r = backfill(settings, args.sources, scheduler=args.scheduler,
                      local_workers=args.local_workers, round_rows=args.round_rows,
+                     labels=args.labels,
                      connect_timeout=args.connect_timeout, stop=stop)
     print(f"{r.learned} files learned ({r.warmup_rows:,} warm-up rows, {r.rows:,} rows in "
           f"{r.rounds} rounds of {r.round_rows:,}), {r.duplicates} duplicates, {r.skipped} "

@@ -87,16 +87,20 @@ def final_mixture(settings) -> tuple[int, Mixture]:
         store.close()
 
 
-def single_process(settings, X) -> Mixture:
+def single_process(settings, X):
     """Warm-up as the service does it, then one process learns the rest with a refresh
-    at the end of every round."""
+    at the end of every round. Returns the model and every row's label (the warm-up rows
+    by the first model, the others as scored while learning)."""
     s = settings
     m0 = initialise(X[:s.warmup_rows], n_components=s.segments.min, covariance=s.covariance,
                     seed=s.seed, n_init=s.learning.n_init, reg_covar=s.learning.reg_covar,
                     schedule=StepSchedule(alpha=s.learning.step_exponent, i0=None,
                                           half_life_rows=s.half_life_rows))
-    ref, _ = replace(m0, refresh_rows=8192).learn(X[s.warmup_rows:])
-    return replace(ref, refresh_rows=m0.refresh_rows)
+    ref, scores = replace(m0, refresh_rows=8192).learn(X[s.warmup_rows:])
+    head = m0.score(X[:s.warmup_rows])
+    labels = {name: np.concatenate([getattr(head, name), getattr(scores, name)])
+              for name in ("segment", "confidence", "log_density")}
+    return replace(ref, refresh_rows=m0.refresh_rows), labels
 
 
 STATE_ARRAYS = ("s0", "s1", "s2", "weights", "means", "covariances", "prec_chol")
@@ -129,7 +133,7 @@ def test_backfill_matches_single_process_and_labels_every_row(tmp_path, client):
 
     version, got = final_mixture(settings)
     assert version == 40
-    ref = single_process(settings, features(paths))
+    ref, ref_labels = single_process(settings, features(paths))
     assert got.n_rows == ref.n_rows == 40 * ROWS - settings.warmup_rows
     for name in STATE_ARRAYS:
         np.testing.assert_allclose(getattr(got, name), getattr(ref, name), rtol=1e-9,
@@ -137,16 +141,22 @@ def test_backfill_matches_single_process_and_labels_every_row(tmp_path, client):
     np.testing.assert_allclose(got.sumsq, ref.sumsq, rtol=1e-9)
     assert got.refresh_rows == ref.refresh_rows == 4096   # the service's own setting stays
 
-    for p in paths:
+    # labels: each row as the single process labelled it while learning
+    for i, p in enumerate(paths):
         labels = list((tmp_path / "outbox").glob(f"{p.stem}.*.labels.parquet"))
         assert len(labels) == 1, p
         table = pq.read_table(labels[0])
         source = pq.read_table(p)
         assert table.column("key").to_pylist() == source.column("key").to_pylist()
         assert table.column("segment").null_count == 0
-        assert set(table.column("model_version").to_pylist()) == {40}
-        expected = got.score(features([p])).segment
-        np.testing.assert_array_equal(table.column("segment").to_numpy(), expected)
+        assert set(table.column("model_version").to_pylist()) == {i + 1}
+        rows = slice(i * ROWS, (i + 1) * ROWS)
+        np.testing.assert_array_equal(table.column("segment").to_numpy(),
+                                      ref_labels["segment"][rows])
+        for name in ("confidence", "log_density"):
+            np.testing.assert_allclose(table.column(name).to_numpy(), ref_labels[name][rows],
+                                       rtol=1e-9, err_msg=name)
+    assert not list((tmp_path / "outbox").glob(".*"))     # no scores or temp files left
 
 
 class KillOnce(WorkerPlugin):
@@ -209,10 +219,17 @@ def test_watch_after_backfill_takes_only_new_files(tmp_path, client):
     (history / "z-copy-of-h000.parquet").write_bytes(paths[0].read_bytes())  # a duplicate
     (history / "h999.parquet").write_bytes(paths[1].read_bytes()[:-20])     # truncated
     settings = load_config(write_config(tmp_path))
-    report = backfill(settings, [history], client=client, round_rows=ROUND_ROWS)
+    report = backfill(settings, [history], client=client, round_rows=ROUND_ROWS,
+                      labels="final")
     assert (report.learned, report.duplicates, report.quarantined) == (10, 1, 1)
     version, model = final_mixture(settings)
     assert version == 10
+    for p in paths[:2] + [history / "z-copy-of-h000.parquet"]:   # labelled by the final model
+        [out] = (tmp_path / "outbox").glob(f"{p.stem}.*.labels.parquet")
+        table = pq.read_table(out)
+        np.testing.assert_array_equal(table.column("segment").to_numpy(),
+                                      model.score(features([p])).segment)
+        assert set(table.column("model_version").to_pylist()) == {10}
     assert (tmp_path / "state" / "quarantine" / "h999.parquet.json").exists()
 
     again = backfill(settings, [history], client=client, round_rows=ROUND_ROWS)
