@@ -129,6 +129,9 @@ def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--rows", type=int, default=524_288, help="rows per core-table run")
     parser.add_argument("--accuracy", action="store_true", help="run the 1M-row accuracy pass")
+    parser.add_argument("--backfill", action="store_true",
+                        help="shoal backfill: 10,000,000 rows in 100 Parquet files on 2 local "
+                             "Dask workers against one process (needs shoal[cluster])")
     parser.add_argument("--all", action="store_true", help="run every benchmark")
     args = parser.parse_args(argv)
     try:
@@ -141,9 +144,17 @@ def main(argv=None):
     if args.accuracy and not args.all:
         accuracy_run()
         return 0
+    if args.backfill and not args.all:
+        from bench_backfill import backfill_table
+
+        backfill_table()
+        return 0
     core_table(args.rows)
     if args.all:
         accuracy_run()
+        from bench_backfill import backfill_table
+
+        backfill_table()
     return 0
 
 
