@@ -273,3 +273,18 @@ def test_unreachable_scheduler_is_a_clear_error(tmp_path):
     assert r.returncode == 4, r.stderr
     assert f"the Dask scheduler at tcp://127.0.0.1:{port} cannot be reached" in r.stderr
     assert "Traceback" not in r.stderr
+
+
+def test_rest_of_shoal_does_not_import_dask_and_a_missing_dask_says_what_to_install(tmp_path):
+    make_history(tmp_path, 1)
+    cfg = write_config(tmp_path)
+    script = (
+        "import sys\n"
+        "import shoal.daemon.cli as cli\n"
+        "assert not {'dask', 'distributed'} & set(sys.modules), 'shoal imported dask'\n"
+        "sys.modules['distributed'] = None   # as if shoal[cluster] were not installed\n"
+        f"sys.exit(cli.main(['backfill', '-c', {str(cfg)!r}, {str(tmp_path / 'history')!r}]))\n")
+    r = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                       timeout=TIMEOUT)
+    assert r.returncode == 4, r.stderr
+    assert "pip install 'shoal[cluster]'" in r.stderr and "Traceback" not in r.stderr
