@@ -136,7 +136,7 @@ def test_demo_prints_the_drift_and_new_state_alerts_with_explanations(tmp_path):
     assert r.returncode == 0, r.stderr
     listed = json.loads(r.stdout)
     assert listed and all(a["delivered_at"] for a in listed)      # the JSON-lines sink
-    assert sum(x.strip().startswith("FIRING") for x in lines) == len(listed)
+    assert sum(x.strip().startswith(("FIRING", "RESOLVED")) for x in lines) == len(listed)
     r = shoal("alerts", "-c", cfg, "--since", "1h")
     assert r.returncode == 0 and listed[0]["payload"]["id"] in r.stdout
     r = shoal("alerts", "-c", cfg, "--since", "soonish")
@@ -147,6 +147,8 @@ def test_demo_prints_the_drift_and_new_state_alerts_with_explanations(tmp_path):
     assert r.returncode == 0, r.stderr
     assert "re-baselined" in r.stdout
     after = json.loads(shoal("alerts", "-c", cfg, "--json").stdout)
-    resolved = [a["payload"] for a in after if a["payload"]["status"] == "resolved"]
-    assert {a["id"] for a in resolved} == {a["payload"]["id"] for a in listed}
-    assert all(a["note"] == "ice build-up is the new normal" for a in resolved)
+    by_rebaseline = [a["payload"] for a in after if a["payload"].get("resolved_by")]
+    still_firing = {a["payload"]["id"] for a in listed} - {
+        a["payload"]["id"] for a in listed if a["payload"]["status"] == "resolved"}
+    assert {a["id"] for a in by_rebaseline} == still_firing
+    assert all(a["note"] == "ice build-up is the new normal" for a in by_rebaseline)
