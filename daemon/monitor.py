@@ -520,12 +520,16 @@ class InputWatch:
 
     def _emit(self, payload: dict) -> None:
         self.alerts.append((f"{payload['id']}.{payload['status']}", payload))
-        level = logging.WARNING if payload["status"] == "firing" else logging.INFO
-        log_event(f"alert_{payload['status']}", level, id=payload["id"],
-                  severity=payload.get("severity"), segment=payload.get("segment"),
-                  statistic=payload.get("statistic"), value=payload.get("value"),
-                  bound=payload.get("bound"),
-                  summary=(payload.get("explanation") or {}).get("summary"))
+
+    def log_alerts(self, model_version: int) -> None:
+        """One log line per alert; called once they are committed."""
+        for _, payload in self.alerts:
+            level = logging.WARNING if payload["status"] == "firing" else logging.INFO
+            log_event(f"alert_{payload['status']}", level, id=payload["id"],
+                      model_version=model_version, severity=payload.get("severity"),
+                      segment=payload.get("segment"), statistic=payload.get("statistic"),
+                      value=payload.get("value"), bound=payload.get("bound"),
+                      summary=(payload.get("explanation") or {}).get("summary"))
 
     def _severity(self, stat, value, bound) -> str:
         return "critical" if value >= self.drift.critical_multiple * bound else "warning"

@@ -270,6 +270,8 @@ class Pipeline:
             rebaseline=rebaseline[0] if rebaseline is not None and watch.rebaselined else None)
         if rebaseline is not None and watch.rebaselined:
             log_event("drift_rebaselined", model_version=committed, note=rebaseline[1])
+        if watch is not None:
+            watch.log_alerts(committed)
         buffered = None
         if mixture is None:
             parts = [a for a in (st.warmup, warmup_keep) if a is not None and len(a)]
@@ -304,6 +306,7 @@ class Pipeline:
         self.store.apply_rebaseline(request_id, st.version, extra, watch.alerts)
         self.state = ModelState(st.version, st.mixture, extra, st.warmup)
         log_event("drift_rebaselined", model_version=st.version, note=note)
+        watch.log_alerts(st.version)
         if watch.alerts:
             for listener in self.alert_listeners:
                 listener(st.version)
