@@ -147,9 +147,8 @@ def _full_log_joint(A, operator):
     WT, const = operator
     n_samples = A.shape[0]
     n_components = const.shape[0]
-    Y = WT @ A.T
-    Y *= Y
-    half_maha = Y.reshape(n_components, -1, n_samples).sum(axis=1)
+    Y = (WT @ A.T).reshape(n_components, -1, n_samples)
+    half_maha = np.einsum("kdn,kdn->kn", Y, Y)
     return np.subtract(const, half_maha, out=half_maha)
 
 
