@@ -89,8 +89,9 @@ def core_table(n_rows):
         X, w, means, covs = synthetic(n_rows, 8, D, seed=D)
         gemm = gemm_rate(X, 8)
         for cov in ("full", "diag"):
-            ours = shoal_rate(X, 8, cov)
-            ref = sklearn_rate(X, 8, cov, means)
+            # interleaved, best of each: on a shared machine the quietest slice counts
+            ours = max(shoal_rate(X, 8, cov) for _ in range(2))
+            ref = max(sklearn_rate(X, 8, cov, means) for _ in range(2))
             results[(D, cov)] = ours / ref
             print(f"{D:>3} {cov:>5} | {ours:>13,.0f} {ref:>18,.0f} {gemm:>13,.0f} |"
                   f" {ours / ref:>9.2f} {100 * ours / gemm:>8.1f}%")
@@ -125,36 +126,53 @@ def accuracy_run(n_rows=1_000_000, warmup=20_000):
     print("targets (issue 2): gap <= 0.02 nats/row; shoal no worse than scikit-learn's default fit")
 
 
+def latency_table():
+    from bench_latency import bench_latency
+
+    print("\nLatency: a 1,000-row drop renamed into a watched inbox until its labels file exists"
+          " (100 drops, real `shoal watch` process)")
+    print(f"{'format':>8} {'p50 ms':>8} {'p95 ms':>8} {'max ms':>8}")
+    for fmt in ("parquet", "csv"):
+        r = bench_latency(fmt=fmt)
+        print(f"{fmt:>8} {r['p50_ms']:>8.1f} {r['p95_ms']:>8.1f} {r['max_ms']:>8.1f}")
+    print("targets (issue 3): p50 <= 150 ms, p95 <= 400 ms")
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--rows", type=int, default=524_288, help="rows per core-table run")
-    parser.add_argument("--accuracy", action="store_true", help="run the 1M-row accuracy pass")
+    parser.add_argument("--accuracy", action="store_true", help="the 1M-row stepwise accuracy pass")
+    parser.add_argument("--latency", action="store_true", help="drop-to-labels latency (p50/p95)")
     parser.add_argument("--backfill", action="store_true",
                         help="shoal backfill: 10,000,000 rows in 100 Parquet files on 2 local "
                              "Dask workers against one process (needs shoal[cluster])")
     parser.add_argument("--all", action="store_true", help="run every benchmark")
+    parser.add_argument("--blas-threads", type=int, default=None,
+                        help="limit BLAS threads for shoal and the anchors alike "
+                             "(default: the machine's setting)")
     args = parser.parse_args(argv)
+    from contextlib import nullcontext
+
     try:
-        from threadpoolctl import threadpool_info
+        from threadpoolctl import threadpool_info, threadpool_limits
 
-        blas = [(i["internal_api"], i["num_threads"]) for i in threadpool_info()]
+        limit = threadpool_limits(args.blas_threads) if args.blas_threads else nullcontext()
     except ImportError:
-        blas = "unknown"
-    print(f"shoal bench — numpy {np.__version__}, BLAS {blas}")
-    if args.accuracy and not args.all:
-        accuracy_run()
-        return 0
-    if args.backfill and not args.all:
-        from bench_backfill import backfill_table
+        threadpool_info, limit = (lambda: []), nullcontext()
+    with limit:
+        blas = [(i["internal_api"], i["num_threads"]) for i in threadpool_info()]
+        print(f"shoal bench — numpy {np.__version__}, BLAS {blas}")
+        chosen = [name for name in ("accuracy", "latency", "backfill") if getattr(args, name)]
+        if args.all or not chosen:
+            core_table(args.rows)
+        if args.all or args.accuracy:
+            accuracy_run()
+        if args.all or args.latency:
+            latency_table()
+        if args.all or args.backfill:
+            from bench_backfill import backfill_table
 
-        backfill_table()
-        return 0
-    core_table(args.rows)
-    if args.all:
-        accuracy_run()
-        from bench_backfill import backfill_table
-
-        backfill_table()
+            backfill_table()
     return 0
 
 
