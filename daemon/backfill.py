@@ -256,18 +256,34 @@ class PieceResult:
     log_density_quantile: float      # at output.unusual_quantile, under the snapshot
 
 
+@dataclass(frozen=True)
+class LabelsTo:
+    """How a file's labels are written: its model version, the unusual-row threshold, the
+    outbox, and the folder where pieces of a file split between rounds keep their scores."""
+
+    version: int
+    unusual_below: float
+    outbox: str
+    stage: str
+
+
 def piece_statistics(facts: FileFacts, piece: Piece, stop: int, snapshot,
-                     settings: Settings, stage: str | None = None) -> PieceResult:
+                     settings: Settings, labels: LabelsTo | None = None) -> PieceResult:
     """The statistics of one piece of a round under the round's snapshot (on a worker).
 
-    With ``stage`` (a folder), the piece's scores are also kept there for its labels.
+    With ``labels``, the rows' scores become labels: the labels file at once when the
+    piece is the whole file, else kept in ``labels.stage`` until the file is complete.
     """
     frame = _read_again(facts, settings)
     X = frame.features[frame.valid][piece.lo:piece.hi]
     weights = round_weights(snapshot.schedule, piece.at, piece.at + len(X), stop)
     stats, scores = partition_statistics(snapshot, X, weights)
-    if stage is not None:
-        save_scores(Path(stage), facts.index, piece.lo, scores)
+    if labels is not None and piece.lo == 0 and len(X) == facts.valid_rows:
+        _write_labels(facts, settings, frame, scores.segment, scores.confidence,
+                      scores.log_density, labels.unusual_below, labels.version,
+                      labels.outbox)
+    elif labels is not None:
+        save_scores(Path(labels.stage), facts.index, piece.lo, scores)
     counts = np.bincount(scores.component, minlength=snapshot.n_components)
     q = float(np.quantile(scores.log_density, settings.output.unusual_quantile))
     return PieceResult(stats, counts, q)
@@ -303,19 +319,19 @@ def label_file(facts: FileFacts, settings: Settings, model, version: int,
                          scores.log_density, unusual_below, version, outbox)
 
 
-def assemble_labels(facts: FileFacts, settings: Settings, stage: str, version: int,
-                    unusual_below: float, outbox: str) -> str:
-    """The labels file of one input from the scores its pieces kept in ``stage``."""
+def assemble_labels(facts: FileFacts, settings: Settings, labels: LabelsTo) -> str:
+    """The labels file of one input from the scores its pieces kept in ``labels.stage``."""
     frame = _read_again(facts, settings)
     parts = [np.load(p, allow_pickle=False)
-             for p in sorted(Path(stage).glob(f"{facts.index:06d}.*.npz"))]
+             for p in sorted(Path(labels.stage).glob(f"{facts.index:06d}.*.npz"))]
     cols = {name: np.concatenate([p[name] for p in parts]) if parts else np.empty(0)
             for name in ("segment", "confidence", "log_density")}
     if len(cols["segment"]) != facts.valid_rows:
         raise BackfillError(f"{facts.name}: the rounds scored {len(cols['segment'])} of its "
                             f"{facts.valid_rows} valid rows")
     return _write_labels(facts, settings, frame, cols["segment"], cols["confidence"],
-                         cols["log_density"], unusual_below, version, outbox)
+                         cols["log_density"], labels.unusual_below, labels.version,
+                         labels.outbox)
 
 
 # -- the cluster -------------------------------------------------------------------
@@ -445,25 +461,30 @@ class _Run:
             report.warmup_rows = skip
         base = self.store.model_version
         version = base + len(learned)
-        below = {f.index: extra.get("unusual_below", -np.inf) for f in learned}
+        versions = {f.index: base + i + 1 for i, f in enumerate(learned)}
+        written = {}   # file index -> its labels file's name, or a future of it
         if mixture is not None and learned:
             size = round_size(round_rows, mixture.refresh_rows)
             report.round_rows = size
             rounds = plan_rounds([(f.index, f.valid_rows) for f in learned], skip,
                                  mixture.n_rows, size)
-            mixture, extra = self._rounds(mixture, extra, rounds, facts, stage, below)
+            if stage is not None:   # files that no round touches (all warm-up rows)
+                touched = {p.file for r in rounds for p in r.pieces}
+                for f in learned:
+                    if f.index not in touched:
+                        written[f.index] = self._assemble(f, versions[f.index],
+                                                          extra.get("unusual_below"), stage)
+            mixture, extra = self._rounds(mixture, extra, rounds, facts, stage, versions,
+                                          written)
             report.rounds = len(rounds)
             report.rows = sum(r.stop - r.start for r in rounds)
-        final_below = extra.get("unusual_below", -np.inf)
         if mixture is not None:
-            todo = []   # (task, file, model version of its labels, unusual threshold)
-            for i, f in enumerate(learned):
-                if stage is not None:
-                    todo.append((assemble_labels, f, base + i + 1, below[f.index]))
-                else:
-                    todo.append((label_file, f, version, final_below))
-            todo += [(label_file, f, version, final_below) for f in duplicates]
-            report.labels = self._labels(todo, mixture, stage)
+            final = [f for f in learned if f.index not in written] + duplicates
+            written.update(self._relabel(final, mixture, version,
+                                         extra.get("unusual_below", -np.inf)))
+            pending = {i: w for i, w in written.items() if not isinstance(w, str)}
+            written.update(zip(pending, self._gather(list(pending.values()))))
+            report.labels = [written[i] for i in sorted(written)]
         if stage is not None:
             shutil.rmtree(stage, ignore_errors=True)
         self._check_stop()
@@ -543,7 +564,10 @@ class _Run:
         return dict(extra, segment_rows=rows)
 
     def _rounds(self, mixture, extra: dict, rounds: list[Round], facts: list[FileFacts],
-                stage: Path | None, below_after: dict[int, float]):
+                stage: Path | None, versions: dict[int, int], written: dict):
+        """Learn the rounds. With ``stage``, pieces label their rows with the round's
+        snapshot (and the threshold in force when the round began); files finished in a
+        round but split between rounds are assembled (futures added to ``written``)."""
         below = extra.get("unusual_below")
         total_rows = sum(r.stop - r.start for r in rounds)
         for number, rnd in enumerate(progress(rounds, total=len(rounds),
@@ -552,21 +576,33 @@ class _Run:
             self._check_stop()
             t = time.monotonic()
             [snapshot] = self.client.scatter([mixture], broadcast=True, hash=False)
+            labels = {}
+            if stage is not None:
+                labels = {p.file: self._labels_to(versions[p.file], below, stage)
+                          for p in rnd.pieces}
             futures = [self.client.submit(piece_statistics, facts[p.file], p, rnd.stop,
-                                          snapshot, self.settings,
-                                          None if stage is None else str(stage),
+                                          snapshot, self.settings, labels.get(p.file),
                                           key=f"shoal-piece-{self.tag}-{number}-{i}")
                        for i, p in enumerate(rnd.pieces)]
             results: list[PieceResult] = self._gather(futures)
+            for p in rnd.pieces:
+                f = facts[p.file]
+                if stage is None or p.hi != f.valid_rows:
+                    continue
+                if p.lo == 0:   # the piece was the whole file and wrote its labels
+                    written[p.file] = labels_name(f.name, f.sha256,
+                                                  self.settings.output.format)
+                else:
+                    written[p.file] = self._assemble(f, versions[p.file],
+                                                     labels[p.file].unusual_below, stage)
             del futures, snapshot
             mixture = apply_round(mixture, [r.stats for r in results], rnd.start, rnd.stop,
                                   refresh=rnd.refresh)
-            for p, r in zip(rnd.pieces, results):   # the service's rule, in stream order
+            for r in results:   # the service's rule, piece by piece in stream order
                 extra = self._add_counts(extra, mixture, r.counts)
                 if below is not None:
                     n = r.stats.n_rows
                     below += n / (n + _UNUSUAL_MEMORY_ROWS) * (r.log_density_quantile - below)
-                    below_after[p.file] = below
             log_event("backfill_round", logging.DEBUG, round=number, rows=rnd.stop - rnd.start,
                       pieces=len(rnd.pieces), refreshed=rnd.refresh, n_rows=rnd.stop,
                       duration=round(time.monotonic() - t, 4))
@@ -574,22 +610,26 @@ class _Run:
             extra["unusual_below"] = float(below)
         return mixture, extra
 
-    def _labels(self, todo: list, mixture, stage: Path | None) -> list[str]:
-        """Write the labels files: ``todo`` holds (task, file, version, threshold)."""
+    def _labels_to(self, version: int, below: float | None, stage: Path) -> LabelsTo:
+        return LabelsTo(version, -np.inf if below is None else float(below),
+                        str(self.layout.outbox), str(stage))
+
+    def _assemble(self, f: FileFacts, version: int, below: float | None, stage: Path):
+        return self.client.submit(assemble_labels, f, self.settings,
+                                  self._labels_to(version, below, stage),
+                                  key=f"shoal-labels-{self.tag}-{f.index}")
+
+    def _relabel(self, files: list[FileFacts], mixture, version: int,
+                 below: float) -> dict:
+        """Futures of labels files written with the final model, by file index."""
         self._check_stop()
-        outbox = str(self.layout.outbox)
-        model = None
-        futures = []
-        for task, f, version, below in sorted(todo, key=lambda t: t[1].index):
-            if task is label_file:
-                if model is None:
-                    [model] = self.client.scatter([mixture], broadcast=True, hash=False)
-                args = (f, self.settings, model, version, below, outbox)
-            else:
-                args = (f, self.settings, str(stage), version, below, outbox)
-            futures.append(self.client.submit(task, *args,
-                                              key=f"shoal-labels-{self.tag}-{f.index}"))
-        return self._gather(futures)
+        if not files:
+            return {}
+        [model] = self.client.scatter([mixture], broadcast=True, hash=False)
+        return {f.index: self.client.submit(label_file, f, self.settings, model, version,
+                                            below, str(self.layout.outbox),
+                                            key=f"shoal-labels-{self.tag}-{f.index}")
+                for f in files}
 
     def _commit(self, facts, learned, duplicates, refused, mixture, extra, version,
                 clear_warmup, seen_at, labelled: bool) -> int:
