@@ -75,6 +75,12 @@ class LimitSettings:
     max_file_bytes: int = _f(4 * 1024**3, "larger inputs are quarantined", min=1)
     max_rows: int = _f(20_000_000, "inputs with more rows are quarantined", min=1)
     max_columns: int = _f(10_000, "inputs with more columns are quarantined", min=1)
+    max_data_bytes: int = _f(
+        2 * 1024**3, "inputs that decode to more bytes (CSV text after decompression, "
+                     "Parquet column data as declared and as decoded) are quarantined", min=1)
+    max_gzip_ratio: float = _f(
+        100.0, "a .csv.gz input that inflates to more than this many times its compressed "
+               "bytes (past the first 16 MiB) is quarantined as a decompression bomb", min=1.0)
 
 
 @dataclass(frozen=True)

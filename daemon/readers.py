@@ -18,6 +18,7 @@ from typing import BinaryIO, Callable
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
@@ -29,6 +30,11 @@ __all__ = ["Frame", "read_input", "BATCH_ROWS"]
 BATCH_ROWS = 65536
 _CSV_BLOCK = 1 << 20
 _HEADER_LIMIT = 1 << 20
+# A .csv.gz may inflate this much whatever its ratio (small files compress well).
+_INFLATE_FREE = 16 << 20
+# Parquet footers: Thrift strings and lists past these are refused by the parser.
+_THRIFT_STRING_LIMIT = 16 << 20
+_THRIFT_CONTAINER_LIMIT = 1 << 20
 
 
 @dataclass
@@ -51,14 +57,20 @@ def read_input(f: BinaryIO, kind: str, settings: Settings,
     """Read an open input file of ``kind`` (``parquet``/``csv``/``csv.gz``)."""
     if kind == "parquet":
         batches, schema = _parquet_batches(f, settings)
-    elif kind in ("csv", "csv.gz"):
-        stream = gzip.GzipFile(fileobj=f, mode="rb") if kind == "csv.gz" else f
-        batches, schema = _csv_batches(stream, settings)
+    elif kind == "csv":
+        size = f.seek(0, io.SEEK_END)
+        f.seek(0)
+        if size > settings.limits.max_data_bytes:
+            raise _too_much_data(size, settings)
+        batches, schema = _csv_batches(f, settings)
+    elif kind == "csv.gz":
+        batches, schema = _csv_batches(io.BufferedReader(_InflateGuard(f, settings), 1 << 16),
+                                       settings)
     else:
         raise InputRejected("unsupported_type", f"unsupported input type {kind!r}")
     feats: list[np.ndarray] = []
     passes: list[pa.RecordBatch] = []
-    n = 0
+    n = decoded = 0
     limit = settings.limits.max_rows
     for batch in _guard(batches, kind):
         if should_stop():
@@ -67,15 +79,45 @@ def read_input(f: BinaryIO, kind: str, settings: Settings,
         if n > limit:
             raise InputRejected("too_many_rows", f"more than limits.max_rows={limit} rows",
                                 limit=limit)
+        decoded += _decoded_bytes(batch)
+        if decoded > settings.limits.max_data_bytes:
+            raise _too_much_data(decoded, settings, " once decoded")
+        batch = _decode_dictionaries(batch)
         feats.append(_features(batch, settings.features))
         passes.append(batch.select(list(settings.passthrough)))
     if n == 0:
         raise InputRejected("no_rows", "the input has no data rows")
     features = np.concatenate(feats, axis=0)
-    pass_schema = pa.schema([schema.field(c) for c in settings.passthrough])
+    pass_schema = pa.schema([_plain(schema.field(c)) for c in settings.passthrough])
     table = pa.Table.from_batches(passes, schema=pass_schema)
     valid = np.isfinite(features).all(axis=1)
     return Frame(features=features, passthrough=table, valid=valid)
+
+
+def _decoded_bytes(batch: pa.RecordBatch) -> int:
+    """Bytes ``batch`` takes once its dictionary columns are decoded (counted, not done)."""
+    total = 0
+    for col in batch.columns:
+        if pa.types.is_dictionary(col.type) and (pa.types.is_string(col.type.value_type)
+                                                 or pa.types.is_binary(col.type.value_type)):
+            lengths = pc.take(pc.binary_length(col.dictionary), col.indices)
+            total += int(pc.sum(lengths).as_py() or 0) + 4 * (len(col) + 1)
+        else:
+            total += col.nbytes
+    return total
+
+
+def _decode_dictionaries(batch: pa.RecordBatch) -> pa.RecordBatch:
+    if not any(pa.types.is_dictionary(t) for t in batch.schema.types):
+        return batch
+    cols = [c.dictionary_decode() if pa.types.is_dictionary(c.type) else c
+            for c in batch.columns]
+    return pa.RecordBatch.from_arrays(cols, names=batch.schema.names)
+
+
+def _plain(field: pa.Field) -> pa.Field:
+    return field.with_type(field.type.value_type) if pa.types.is_dictionary(field.type) \
+        else field
 
 
 def _features(batch: pa.RecordBatch, names: tuple[str, ...]) -> np.ndarray:
@@ -116,7 +158,11 @@ def _parquet_batches(f: BinaryIO, settings: Settings):
         raise InputRejected("truncated_parquet", "not a complete Parquet file (the 'PAR1' "
                             "magic is missing at its start or end)")
     try:
-        pf = pq.ParquetFile(f)
+        # Strings are read as dictionaries, so that what they decode to is counted
+        # against limits.max_data_bytes before it is made.
+        pf = pq.ParquetFile(f, read_dictionary=list(settings.passthrough),
+                            thrift_string_size_limit=_THRIFT_STRING_LIMIT,
+                            thrift_container_size_limit=_THRIFT_CONTAINER_LIMIT)
     except (pa.ArrowInvalid, OSError, ValueError) as exc:
         raise InputRejected("bad_parquet", f"Parquet metadata cannot be read: {exc}") from exc
     schema = pf.schema_arrow
@@ -127,6 +173,9 @@ def _parquet_batches(f: BinaryIO, settings: Settings):
         raise InputRejected("too_many_rows", f"{pf.metadata.num_rows} rows, more than "
                             f"limits.max_rows={settings.limits.max_rows}")
     _check_columns(schema.names, settings)
+    declared = _parquet_data_bytes(pf.metadata, settings.columns)
+    if declared > settings.limits.max_data_bytes:
+        raise _too_much_data(declared, settings, " (declared in the Parquet footer)")
     for name in settings.features:
         t = schema.field(name).type
         if not (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)):
@@ -137,7 +186,64 @@ def _parquet_batches(f: BinaryIO, settings: Settings):
                            use_threads=False), schema
 
 
+def _parquet_data_bytes(meta: pq.FileMetaData, columns) -> int:
+    """Uncompressed bytes the footer declares for ``columns`` over all row groups."""
+    wanted = set(columns)
+    index = [i for i in range(meta.num_columns)
+             if meta.schema.column(i).path.split(".")[0] in wanted]
+    return sum(meta.row_group(g).column(i).total_uncompressed_size
+               for g in range(meta.num_row_groups) for i in index)
+
+
+def _too_much_data(n: int, settings: Settings, where: str = "") -> InputRejected:
+    limit = settings.limits.max_data_bytes
+    return InputRejected("too_much_data", f"{n} bytes of data{where}, more than "
+                         f"limits.max_data_bytes={limit}", limit=limit)
+
+
 # -- CSV -------------------------------------------------------------------------
+class _InflateGuard(io.RawIOBase):
+    """A gzip stream that refuses to inflate past ``limits.max_data_bytes`` or past
+    ``limits.max_gzip_ratio`` times the compressed bytes consumed (a decompression bomb),
+    before the inflated bytes reach the CSV reader."""
+
+    def __init__(self, raw: BinaryIO, settings: Settings):
+        self.raw = raw
+        self.limits = settings.limits
+        self.settings = settings
+        self.inflated = 0
+        self.gz = gzip.GzipFile(fileobj=raw, mode="rb")
+
+    def readable(self) -> bool:
+        return True
+
+    def seekable(self) -> bool:
+        return True
+
+    def seek(self, offset: int, whence: int = io.SEEK_SET) -> int:
+        if (offset, whence) != (0, io.SEEK_SET):
+            raise io.UnsupportedOperation("only a rewind to the start")
+        self.gz.seek(0)
+        self.inflated = 0
+        return 0
+
+    def tell(self) -> int:
+        return self.inflated
+
+    def readinto(self, buffer) -> int:
+        n = self.gz.readinto(buffer)
+        self.inflated += n
+        if self.inflated > self.limits.max_data_bytes:
+            raise _too_much_data(self.inflated, self.settings, " after decompression")
+        consumed = max(self.raw.tell(), 1)
+        if self.inflated > _INFLATE_FREE and self.inflated > self.limits.max_gzip_ratio * consumed:
+            raise InputRejected(
+                "decompression_bomb", f"{consumed} compressed bytes inflate to more than "
+                f"{self.inflated} (ratio over limits.max_gzip_ratio="
+                f"{self.limits.max_gzip_ratio:g})", limit=self.limits.max_gzip_ratio)
+        return n
+
+
 def _csv_header(stream: BinaryIO) -> list[str]:
     try:
         line = stream.readline(_HEADER_LIMIT)
@@ -197,7 +303,8 @@ def _check_columns(names: list[str], settings: Settings) -> None:
             raise InputRejected("missing_column",
                                 f"{role} column {name!r} is missing; the input has {shown}",
                                 column=name)
-    dupes = sorted({n for n in names if names.count(n) > 1 and n in settings.columns})
+    seen: set[str] = set()
+    dupes = sorted({n for n in names if n in settings.columns and (n in seen or seen.add(n))})
     if dupes:
         raise InputRejected("duplicate_column", f"column {dupes[0]!r} appears more than once",
                             column=dupes[0])
