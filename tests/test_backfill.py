@@ -288,3 +288,21 @@ def test_rest_of_shoal_does_not_import_dask_and_a_missing_dask_says_what_to_inst
                        timeout=TIMEOUT)
     assert r.returncode == 4, r.stderr
     assert "pip install 'shoal[cluster]'" in r.stderr and "Traceback" not in r.stderr
+
+
+def test_history_backfilled_in_two_runs_gives_the_same_model(tmp_path, client):
+    # rounds end at global multiples of the round size, so a second backfill continues
+    # the first one's unfinished round with the same snapshot
+    paths = make_history(tmp_path / "once", 20)
+    once = load_config(write_config(tmp_path / "once"))
+    backfill(once, paths, client=client, round_rows=ROUND_ROWS)
+    twice = load_config(write_config(tmp_path / "twice"))
+    first = backfill(twice, paths[:9], client=client, round_rows=ROUND_ROWS)
+    second = backfill(twice, paths, client=client, round_rows=ROUND_ROWS)
+    assert (first.learned, second.learned, second.skipped) == (9, 11, 9)
+    assert second.warmup_rows == 0
+    (v1, a), (v2, b) = final_mixture(once), final_mixture(twice)
+    assert v1 == v2 == 20 and a.n_rows == b.n_rows
+    for name in STATE_ARRAYS:
+        np.testing.assert_allclose(getattr(b, name), getattr(a, name), rtol=1e-9, atol=1e-13,
+                                   err_msg=name)
