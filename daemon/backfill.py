@@ -109,12 +109,14 @@ class FileFacts:
 
 @dataclass(frozen=True)
 class Piece:
-    """Valid rows ``lo .. hi-1`` of one file, at global stream rows ``at+1 .. at+hi-lo``."""
+    """Valid rows ``lo .. hi-1`` of one file, at global stream rows ``at+1 .. at+hi-lo``,
+    in pass ``pass_no`` over the history."""
 
     file: int
     lo: int
     hi: int
     at: int
+    pass_no: int = 0
 
 
 @dataclass(frozen=True)
@@ -133,30 +135,32 @@ def round_size(round_rows: int, refresh_rows: int) -> int:
 
 
 def plan_rounds(valid_rows: list[tuple[int, int]], skip: int, n0: int,
-                size: int) -> list[Round]:
+                size: int, passes: int = 1) -> list[Round]:
     """Cut the learned stream into rounds ending at global multiples of ``size``.
 
     ``valid_rows`` lists (file index, valid rows) in stream order; the first ``skip``
     rows went to the warm-up; the model has learned ``n0`` rows before the first round.
+    With ``passes`` > 1 the stream is the history again, every row of it, after the first.
     """
-    spans = []                      # (file, lo, hi, global start)
+    spans = []                      # (file, lo, hi, global start, pass)
     at = n0
-    for index, n in valid_rows:
-        lo = min(skip, n)
-        skip -= lo
-        if n > lo:
-            spans.append((index, lo, n, at))
-            at += n - lo
+    for pass_no in range(passes):
+        for index, n in valid_rows:
+            lo = min(skip, n)
+            skip -= lo
+            if n > lo:
+                spans.append((index, lo, n, at, pass_no))
+                at += n - lo
     end = at
     rounds, start, k = [], n0, 0
     while start < end:
         stop = min((start // size + 1) * size, end)
         pieces = []
         while k < len(spans):
-            index, lo, hi, g = spans[k]
+            index, lo, hi, g, pass_no = spans[k]
             a, b = max(start, g), min(stop, g + hi - lo)
             if a < b:
-                pieces.append(Piece(index, lo + a - g, lo + b - g, a))
+                pieces.append(Piece(index, lo + a - g, lo + b - g, a, pass_no))
             if g + hi - lo > stop:
                 break
             k += 1
@@ -385,7 +389,7 @@ class BackfillReport:
 
 def backfill(settings: Settings, sources, *, client=None, scheduler: str | None = None,
              local_workers: int | None = None, round_rows: int = DEFAULT_ROUND_ROWS,
-             labels: str = "round", connect_timeout: float = 10.0,
+             labels: str = "round", passes: int = 1, connect_timeout: float = 10.0,
              stop: threading.Event | None = None, wall=time.time) -> BackfillReport:
     """Learn ``sources`` (files or folders) into the state folder of ``settings``.
 
@@ -393,10 +397,13 @@ def backfill(settings: Settings, sources, *, client=None, scheduler: str | None 
     ``scheduler`` or for a local cluster of ``local_workers`` processes.
     ``labels``: ``"round"`` labels each row with the snapshot that scored it while
     learning (one pass, as the service labels); ``"final"`` labels every row again with
-    the final model (a second scoring pass).
+    the final model (a second scoring pass). ``passes`` > 1 learns the history again
+    after the first pass (labels come from the last).
     """
     if labels not in LABEL_MODES:
         raise UsageError(f"labels should be one of {LABEL_MODES}, got {labels!r}")
+    if passes < 1:
+        raise UsageError(f"passes should be at least 1, got {passes}")
     stop = stop or threading.Event()
     paths = list_sources(sources)
     if not paths:
@@ -409,10 +416,10 @@ def backfill(settings: Settings, sources, *, client=None, scheduler: str | None 
             pipeline = Pipeline(settings, layout, store, stop=stop, wall=wall)
             if client is not None:
                 return _Run(settings, layout, store, pipeline, client, stop, wall).run(
-                    paths, round_rows, labels)
+                    paths, round_rows, labels, passes)
             with cluster_client(scheduler, local_workers, connect_timeout) as made:
                 return _Run(settings, layout, store, pipeline, made, stop, wall).run(
-                    paths, round_rows, labels)
+                    paths, round_rows, labels, passes)
         finally:
             store.close()
 
@@ -439,7 +446,8 @@ class _Run:
         except (OSError, TimeoutError) as exc:
             raise ClusterUnavailable(f"lost the Dask scheduler: {exc}") from exc
 
-    def run(self, paths: list[Path], round_rows: int, labels: str) -> BackfillReport:
+    def run(self, paths: list[Path], round_rows: int, labels: str,
+            passes: int) -> BackfillReport:
         t0 = time.monotonic()
         seen_at = self.wall()
         report = BackfillReport(files=len(paths))
@@ -467,15 +475,16 @@ class _Run:
             size = round_size(round_rows, mixture.refresh_rows)
             report.round_rows = size
             rounds = plan_rounds([(f.index, f.valid_rows) for f in learned], skip,
-                                 mixture.n_rows, size)
+                                 mixture.n_rows, size, passes)
             if stage is not None:   # files that no round touches (all warm-up rows)
-                touched = {p.file for r in rounds for p in r.pieces}
+                touched = {p.file for r in rounds for p in r.pieces
+                           if p.pass_no == passes - 1}
                 for f in learned:
                     if f.index not in touched:
                         written[f.index] = self._assemble(f, versions[f.index],
                                                           extra.get("unusual_below"), stage)
             mixture, extra = self._rounds(mixture, extra, rounds, facts, stage, versions,
-                                          written)
+                                          written, passes - 1)
             report.rounds = len(rounds)
             report.rows = sum(r.stop - r.start for r in rounds)
         if mixture is not None:
@@ -564,10 +573,11 @@ class _Run:
         return dict(extra, segment_rows=rows)
 
     def _rounds(self, mixture, extra: dict, rounds: list[Round], facts: list[FileFacts],
-                stage: Path | None, versions: dict[int, int], written: dict):
-        """Learn the rounds. With ``stage``, pieces label their rows with the round's
-        snapshot (and the threshold in force when the round began); files finished in a
-        round but split between rounds are assembled (futures added to ``written``)."""
+                stage: Path | None, versions: dict[int, int], written: dict,
+                last_pass: int = 0):
+        """Learn the rounds. With ``stage``, pieces of the last pass label their rows with
+        the round's snapshot (and the threshold in force when the round began); files
+        split between rounds are assembled once complete (futures added to ``written``)."""
         below = extra.get("unusual_below")
         total_rows = sum(r.stop - r.start for r in rounds)
         for number, rnd in enumerate(progress(rounds, total=len(rounds),
@@ -579,15 +589,17 @@ class _Run:
             labels = {}
             if stage is not None:
                 labels = {p.file: self._labels_to(versions[p.file], below, stage)
-                          for p in rnd.pieces}
+                          for p in rnd.pieces if p.pass_no == last_pass}
             futures = [self.client.submit(piece_statistics, facts[p.file], p, rnd.stop,
-                                          snapshot, self.settings, labels.get(p.file),
+                                          snapshot, self.settings,
+                                          labels.get(p.file) if p.pass_no == last_pass
+                                          else None,
                                           key=f"shoal-piece-{self.tag}-{number}-{i}")
                        for i, p in enumerate(rnd.pieces)]
             results: list[PieceResult] = self._gather(futures)
             for p in rnd.pieces:
                 f = facts[p.file]
-                if stage is None or p.hi != f.valid_rows:
+                if stage is None or p.pass_no != last_pass or p.hi != f.valid_rows:
                     continue
                 if p.lo == 0:   # the piece was the whole file and wrote its labels
                     written[p.file] = labels_name(f.name, f.sha256,
@@ -734,6 +746,9 @@ def add_backfill_command(cmd, with_config, stop_on_signals) -> None:
                     help="round: each row labelled by the snapshot that scored it while "
                          "learning (one pass, as the service labels); final: every row "
                          "labelled again by the final model (a second pass)")
+    sp.add_argument("--passes", type=int, default=1, metavar="N",
+                    help="learn the history N times over (default 1); labels come from the "
+                         "last pass")
     sp.add_argument("--connect-timeout", type=float, default=10.0, metavar="SECONDS",
                     help="give up on the scheduler after this long (default 10)")
 
@@ -750,7 +765,7 @@ def _cmd_backfill(args, stop_on_signals) -> int:
     with stop_on_signals(stop):
         r = backfill(settings, args.sources, scheduler=args.scheduler,
                      local_workers=args.local_workers, round_rows=args.round_rows,
-                     labels=args.labels,
+                     labels=args.labels, passes=args.passes,
                      connect_timeout=args.connect_timeout, stop=stop)
     print(f"{r.learned} files learned ({r.warmup_rows:,} warm-up rows, {r.rows:,} rows in "
           f"{r.rounds} rounds of {r.round_rows:,}), {r.duplicates} duplicates, {r.skipped} "

@@ -87,15 +87,21 @@ def final_mixture(settings) -> tuple[int, Mixture]:
         store.close()
 
 
+def first_model(settings, X) -> Mixture:
+    """The warm-up as the service does it, from the first ``warmup_rows`` rows."""
+    s = settings
+    return initialise(X[:s.warmup_rows], n_components=s.segments.min, covariance=s.covariance,
+                      seed=s.seed, n_init=s.learning.n_init, reg_covar=s.learning.reg_covar,
+                      schedule=StepSchedule(alpha=s.learning.step_exponent, i0=None,
+                                            half_life_rows=s.half_life_rows))
+
+
 def single_process(settings, X):
     """Warm-up as the service does it, then one process learns the rest with a refresh
     at the end of every round. Returns the model and every row's label (the warm-up rows
     by the first model, the others as scored while learning)."""
     s = settings
-    m0 = initialise(X[:s.warmup_rows], n_components=s.segments.min, covariance=s.covariance,
-                    seed=s.seed, n_init=s.learning.n_init, reg_covar=s.learning.reg_covar,
-                    schedule=StepSchedule(alpha=s.learning.step_exponent, i0=None,
-                                          half_life_rows=s.half_life_rows))
+    m0 = first_model(settings, X)
     ref, scores = replace(m0, refresh_rows=8192).learn(X[s.warmup_rows:])
     head = m0.score(X[:s.warmup_rows])
     labels = {name: np.concatenate([getattr(head, name), getattr(scores, name)])
@@ -306,3 +312,26 @@ def test_history_backfilled_in_two_runs_gives_the_same_model(tmp_path, client):
     for name in STATE_ARRAYS:
         np.testing.assert_allclose(getattr(b, name), getattr(a, name), rtol=1e-9, atol=1e-13,
                                    err_msg=name)
+
+
+def test_extra_passes_learn_the_history_again_and_label_from_the_last(tmp_path, client):
+    paths = make_history(tmp_path, 12)
+    settings = load_config(write_config(tmp_path))
+    report = backfill(settings, [tmp_path / "history"], client=client, round_rows=ROUND_ROWS,
+                      passes=2)
+    X = features(paths)
+    w = settings.warmup_rows
+    assert report.rows == 2 * len(X) - w
+    _, got = final_mixture(settings)
+    # one process: warm-up on X[:w], then X[w:] and the whole of X again
+    m0 = first_model(settings, X)
+    ref_model, ref_scores = replace(m0, refresh_rows=8192).learn(np.concatenate([X[w:], X]))
+    assert got.n_rows == ref_model.n_rows == 2 * len(X) - w
+    for name in STATE_ARRAYS:
+        np.testing.assert_allclose(getattr(got, name), getattr(ref_model, name), rtol=1e-9,
+                                   atol=1e-13, err_msg=name)
+    last = ref_scores.segment[len(X) - w:]          # the second pass's labels
+    for i, p in enumerate(paths):
+        [out] = (tmp_path / "outbox").glob(f"{p.stem}.*.labels.parquet")
+        np.testing.assert_array_equal(pq.read_table(out).column("segment").to_numpy(),
+                                      last[i * ROWS:(i + 1) * ROWS])
