@@ -18,9 +18,15 @@ The coordinator (this process) owns the model; workers own the rows.
    Results are keyed by piece, so a task that Dask runs again after a worker died is
    still counted once. The coordinator adds them in piece order and applies the
    stepwise update and a parameter refresh (:func:`shoal.core.distributed.apply_round`).
-   The result equals ``Mixture.learn`` over the same stream with ``refresh_rows = R``.
-4. Labels: workers label every row of every learned or duplicate file with the final
-   model and write the service's labels file, atomically, into the outbox.
+   The result equals ``Mixture.learn`` over the same stream with ``refresh_rows = R``,
+   and a history backfilled in two runs ends where one run does. ``passes`` > 1 runs
+   the stream again over the whole history.
+4. Labels (the service's file names and columns, written atomically by the workers):
+   ``labels="round"`` labels each row with the snapshot that scored it in the (last)
+   pass; a piece that holds a whole file writes its labels file in the round, pieces of
+   a file split between rounds (or by the warm-up) keep their scores in a hidden folder
+   of the outbox until the file is assembled. ``labels="final"`` scores every row again
+   with the final model. Duplicates are labelled by the final model.
 5. Commit: ONE state-store transaction holds a ledger row per file (model versions
    advancing by one per learned file, as the service counts them), the final checkpoint
    and its segment history. ``shoal watch`` on the same state continues from there and
