@@ -21,6 +21,7 @@ __all__ = [
     "DriftSettings",
     "WebhookSettings",
     "AlertSettings",
+    "LifecycleSettings",
     "Settings",
     "COVARIANCE_TYPES",
     "OUTPUT_FORMATS",
@@ -29,6 +30,7 @@ __all__ = [
 
 COVARIANCE_TYPES = ("full", "diag", "spherical")
 OUTPUT_FORMATS = ("parquet", "csv")
+OVERLAP_MEASURES = ("hellinger", "bhattacharyya")
 LOG_LEVELS = ("debug", "info", "warning", "error")
 
 
@@ -209,6 +211,38 @@ class AlertSettings:
 
 
 @dataclass(frozen=True)
+class LifecycleSettings:
+    """Segments that are born, retire and merge, checked every ``check_rows`` learned rows."""
+
+    enabled: bool = _f(True, "segments are born, retired and merged as the population changes")
+    check_rows: int = _f(
+        4000, "births, retirements and merges are decided at every multiple of this many "
+              "rows learned after warm-up", min=100, max=10_000_000)
+    unexplained_quantile: float = _f(
+        0.999, "a row is unexplained when its squared Mahalanobis distance to every segment "
+               "exceeds this chi-square quantile", min=0.5, max=1.0, min_open=True)
+    pool_rows: int = _f(2000, "most unexplained rows kept (the newest)", min=10,
+                        max=1_000_000)
+    pool_span_rows: int = _f(20000, "unexplained rows older than this many rows leave the pool",
+                             min=100)
+    birth_rows: int = _f(
+        50, "a new segment needs at least this many pooled rows forming one group", min=10)
+    birth_max_spread: float = _f(
+        2.0, "a group is compact when the geometric mean of its sds is at most this many "
+             "times that of the widest segment", min=0.0, min_open=True)
+    max_segments: int = _f(12, "no birth beyond this many segments", min=1, max=1000)
+    retire_weight: float = _f(0.005, "a segment whose weight stays under this ...", min=0.0,
+                              max=1.0)
+    retire_rows: int = _f(100000, "... for this many rows retires", min=1)
+    merge_measure: str = _f("hellinger", "distance between two segments' Gaussians",
+                            choices=OVERLAP_MEASURES)
+    merge_distance: float | None = _f(
+        0.4, "two segments closer than this merge (null: never)", min=0.0, min_open=True)
+    settle_rows: int = _f(
+        20000, "a born segment joins the drift reference after this many rows", min=0)
+
+
+@dataclass(frozen=True)
 class Settings:
     """The whole configuration. Folders are absolute once loaded."""
 
@@ -232,6 +266,8 @@ class Settings:
     http: HttpSettings = _f(HttpSettings(), "status page, metrics and health over HTTP")
     drift: DriftSettings = _f(DriftSettings(), "drift of segments against their reference")
     alerts: AlertSettings = _f(AlertSettings(), "where alerts are delivered")
+    lifecycle: LifecycleSettings = _f(LifecycleSettings(), "births, retirements and merges "
+                                      "of segments")
 
     @property
     def columns(self) -> tuple[str, ...]:

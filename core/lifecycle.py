@@ -24,12 +24,13 @@ import numpy as np
 from scipy import stats
 
 from .distances import bhattacharyya_distance, hellinger_distance
-from .errors import ModelError
+from .errors import ModelError, NotEnoughDataError
 from .mixture import Mixture
 
 __all__ = [
     "OVERLAP_MEASURES",
     "add_component",
+    "compact_group",
     "merge",
     "overlap",
     "overlapping_pairs",
@@ -37,6 +38,7 @@ __all__ = [
     "segment_index",
     "squared_mahalanobis",
     "unexplained",
+    "unexplained_below",
 ]
 
 OVERLAP_MEASURES = {
@@ -284,3 +286,87 @@ def unexplained(mixture: Mixture, X, threshold: float = 0.999) -> np.ndarray:
         raise ModelError(f"threshold should be a probability in (0, 1), got {threshold!r}")
     bound = stats.chi2.ppf(threshold, mixture.n_features)
     return np.all(squared_mahalanobis(mixture, X) > bound, axis=1)
+
+
+def unexplained_below(mixture: Mixture, threshold: float = 0.999) -> float:
+    """A log-density above which no row can be unexplained (a cheap first filter).
+
+    A row that every component leaves unexplained has ``d2_k > b`` for all ``k``
+    (``b`` the chi-square quantile), so its log-density under the mixture is below
+    ``logsumexp_k(log w_k - (D log 2 pi + b) / 2 + log det U_k) - sum(log scale)``.
+    Only rows under this bound need the exact test of :func:`unexplained`.
+
+    Returns
+    -------
+    bound : float
+        In the data's own units, as ``Scores.log_density``.
+    """
+    bound = stats.chi2.ppf(float(threshold), mixture.n_features)
+    terms = (np.log(mixture.weights) - 0.5 * (mixture.n_features * _LOG_2PI + bound)
+             + mixture.log_det)
+    top = float(np.max(terms))
+    return top + float(np.log(np.sum(np.exp(terms - top)))) - float(np.sum(np.log(mixture.scale)))
+
+
+def compact_group(X, *, min_rows, max_sd=np.inf, threshold=0.999, max_groups=3, seed=0,
+                  n_init=2, reg_covar=1e-6):
+    """The largest compact Gaussian group among rows, or None.
+
+    A small batch-EM fit on the rows (1 to ``max_groups`` components, the number
+    chosen by BIC, :func:`~shoal.core.warmup.select_n_components`); the heaviest
+    component is then refined on the rows it explains (squared Mahalanobis distance
+    under the ``threshold`` chi-square quantile), twice, so that scattered rows around
+    it do not widen it.
+
+    Parameters
+    ----------
+    X : ndarray of shape (n_samples, n_features)
+        Data units.
+    min_rows : int
+        A group must explain at least this many rows.
+    max_sd : float
+        ... and the geometric mean of its standard deviations, ``det(cov)^(1/2D)``,
+        must not exceed this (data units).
+
+    Returns
+    -------
+    group : tuple (mean, covariance, members) or None
+        ``mean`` of shape (n_features,), ``covariance`` of shape (n_features,
+        n_features), both in data units, and ``members`` a boolean mask of shape
+        (n_samples,) of the rows the group explains.
+    """
+    from .warmup import select_n_components   # warmup imports this module's siblings
+
+    X = np.asarray(X, dtype=np.float64)
+    n, d = X.shape
+    if n < max(int(min_rows), d + 2):
+        return None
+    k_max = int(max(1, min(max_groups, n // max(int(min_rows), 1))))
+    try:
+        fit, _ = select_n_components(X, 1, k_max, "full", seed=seed, n_init=n_init,
+                                     reg_covar=reg_covar)
+    except (NotEnoughDataError, np.linalg.LinAlgError):
+        return None
+    bound = stats.chi2.ppf(float(threshold), d)
+    order = np.argsort(-fit.weights, kind="stable")
+    means, covs = fit.data_means(), fit.data_covariance_matrices()
+    for j in order:
+        mean, cov = means[j], covs[j]
+        members = None
+        for _ in range(3):
+            try:
+                chol = np.linalg.cholesky(cov)
+            except np.linalg.LinAlgError:
+                members = None
+                break
+            white = np.linalg.solve(chol, (X - mean).T)
+            members = np.einsum("ij,ij->j", white, white) <= bound
+            if members.sum() < max(int(min_rows), d + 2):
+                members = None
+                break
+            mean = X[members].mean(axis=0)
+            cov = np.cov(X[members], rowvar=False) + reg_covar * np.eye(d)
+        if members is not None and \
+                0.5 * np.linalg.slogdet(cov)[1] / d <= np.log(max_sd):
+            return mean, cov, members
+    return None

@@ -15,7 +15,7 @@ import os
 import stat as stat_mod
 import threading
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, BinaryIO
 
@@ -47,6 +47,7 @@ from shoal.daemon.writer import labels_name, labels_table, write_labels
 
 if TYPE_CHECKING:
     from shoal.daemon.monitor import DriftMonitor, InputWatch
+    from shoal.daemon.segment_life import LifeWatch
 
 __all__ = ["Pipeline", "Result", "ModelState", "open_input"]
 
@@ -233,6 +234,7 @@ class Pipeline:
         watch = self.monitor.begin(extra.get("drift"), version=version, file=entry.name,
                                    times=self._times(frame),
                                    unusual_below=extra.get("unusual_below"))
+        life = self._life(extra.get("lifecycle"), version, entry.name)
         rebaseline = None
         if watch is not None and st.mixture is not None:
             rebaseline = self.store.pending_rebaseline()
@@ -240,16 +242,18 @@ class Pipeline:
                 watch.rebaseline(st.mixture, rebaseline[1])
         mixture, scores, warmup_keep, clear_warmup = st.mixture, None, None, False
         if mixture is None:
-            mixture, scores, warmup_keep, init_extra = self._warm_up(X, watch)
+            mixture, scores, warmup_keep, init_extra = self._warm_up(X, watch, life)
             clear_warmup = mixture is not None
             if mixture is not None:
                 extra.update(init_extra)
                 extra = self._born(extra, mixture, version)
         else:
-            mixture, scores = self._learn_chunks(mixture, X, watch)
+            mixture, scores = self._learn_chunks(mixture, X, watch, life)
             extra = self._born(extra, mixture, version)
         if watch is not None and watch.state is not None:
             extra["drift"] = watch.state
+        if life is not None and mixture is not None:
+            extra["lifecycle"] = life.final_state()
         if scores is not None and mixture is not None:
             extra = self._after_scoring(extra, scores, mixture)
         unusual_below = extra.get("unusual_below", -np.inf)
@@ -261,9 +265,12 @@ class Pipeline:
             checkpoint = Checkpoint(version, arrays, meta, extra)
             history = _history(mixture, extra,
                                watch.segment_drift() if watch is not None else None)
+            if life is not None:
+                history = life.history(history)
         entry = _with(entry, labels=labels.name)
         self._check_stop()
-        alerts = watch.alerts if watch is not None else []
+        alerts = (watch.alerts if watch is not None else []) + \
+            (life.alerts if life is not None else [])
         committed = self.store.commit_input(
             entry, learned=True, checkpoint=checkpoint, warmup_rows=warmup_keep,
             clear_warmup=clear_warmup, history=history or (), alerts=alerts,
@@ -272,6 +279,8 @@ class Pipeline:
             log_event("drift_rebaselined", model_version=committed, note=rebaseline[1])
         if watch is not None:
             watch.log_alerts(committed)
+        if life is not None:
+            life.log_events(committed)
         buffered = None
         if mixture is None:
             parts = [a for a in (st.warmup, warmup_keep) if a is not None and len(a)]
@@ -318,7 +327,16 @@ class Pipeline:
         return StepSchedule(alpha=s.learning.step_exponent, i0=None,
                             half_life_rows=s.half_life_rows)
 
-    def _warm_up(self, X: np.ndarray, watch: InputWatch | None = None):
+    def _life(self, state: dict | None, version: int, file: str) -> LifeWatch | None:
+        """Births, retirements and merges for one input (None when switched off)."""
+        if not self.settings.lifecycle.enabled:
+            return None
+        from shoal.daemon.segment_life import LifeWatch
+
+        return LifeWatch(self.settings, state, version=version, file=file)
+
+    def _warm_up(self, X: np.ndarray, watch: InputWatch | None = None,
+                 life: LifeWatch | None = None):
         """Buffer rows until ``warmup_rows``; then fit the first model.
 
         Returns ``(mixture or None, scores or None, rows to add to the buffer,
@@ -357,12 +375,16 @@ class Pipeline:
             watch.unusual_below = extra["unusual_below"]
             if watch.times is not None:
                 watch.times = watch.times[need:]
-        mixture, tail = self._learn_chunks(mixture, X[need:], watch)
+        if life is not None:
+            life.start(stream_offset=len(Xw))
+        mixture, tail = self._learn_chunks(mixture, X[need:], watch, life)
         return mixture, _concat(head, tail), None, extra
 
-    def _learn_chunks(self, mixture: Mixture, X: np.ndarray, watch: InputWatch | None = None):
+    def _learn_chunks(self, mixture: Mixture, X: np.ndarray, watch: InputWatch | None = None,
+                      life: LifeWatch | None = None):
         """Learn ``X`` in pieces of at most ``chunk_rows`` that never cross a drift window
-        boundary (learning does not depend on the cut), showing each piece to ``watch``."""
+        boundary (learning does not depend on the cut), showing each piece to ``watch``;
+        ``life`` takes its lifecycle decisions at its own fixed points between pieces."""
         parts = []
         step = self.settings.learning.chunk_rows
         start = 0
@@ -372,10 +394,16 @@ class Pipeline:
                 take = min(step, len(X) - start)
                 if watch is not None:
                     take = min(take, watch.rows_to_boundary(mixture.n_rows))
+                if life is not None:
+                    mixture = life.at_boundary(mixture, watch)
+                    take = min(take, life.rows_to_boundary(mixture))
                 piece = X[start:start + take]
+                before = mixture
                 mixture, scores = mixture.learn(piece)
                 if watch is not None:
                     watch.observe(mixture, piece, scores, start)
+                if life is not None:
+                    life.observe(before, piece, scores)
                 parts.append(scores)
                 start += take
         except (ModelError, np.linalg.LinAlgError) as exc:
@@ -464,6 +492,8 @@ def _concat(*parts):
     if len(parts) == 1:
         return parts[0]
     first = parts[0]
+    if len({p.resp.shape[1] for p in parts}) > 1:   # segments born, retired or merged:
+        parts = [replace(p, resp=p.resp[:, :0]) for p in parts]   # columns mean nothing
     return type(first)(**{name: np.concatenate([getattr(p, name) for p in parts])
                           for name in first.__dataclass_fields__})
 

@@ -1,0 +1,318 @@
+"""Segments that are born, retire and merge, decided at fixed points along the stream.
+
+The pipeline hands every piece of rows it learns to a :class:`LifeWatch` (one per
+input), and asks it, before each piece, whether a decision point has been reached.
+Decision points sit at every multiple of ``lifecycle.check_rows`` rows learned after
+warm-up, and pieces never cross them or the model's refresh points, so each row is
+tested with the parameters that scored it and every decision is taken on the same
+model whatever the cut of the stream into files (a restart redoes the same input
+from the same checkpoint and decides the same).
+
+At a decision point, in this order:
+
+retire  a segment whose weight has been under ``retire_weight`` since a decision
+        point ``retire_rows`` or more rows back is dropped (:func:`shoal.core.lifecycle.retire`);
+merge   the two segments that overlap most, if closer than ``merge_distance``, are
+        merged by adding their statistics; the older id survives
+        (:func:`shoal.core.lifecycle.merge`);
+birth   rows no segment explains (chi-square bound) sit in a bounded pool; when at
+        least ``birth_rows`` of them form one compact group
+        (:func:`shoal.core.lifecycle.compact_group`) a segment is born from it with a
+        new id (:func:`shoal.core.lifecycle.add_component`).
+
+The pool and the bookkeeping travel in the checkpoint's ``extra["lifecycle"]`` and are
+committed with the model. Each event becomes a segment-history entry and an alert
+(``kind: lifecycle``); the drift reference drops a retired or merged-away id at once
+and takes a born segment in once it has settled (``lifecycle.settle_rows`` rows).
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import logging
+from dataclasses import replace
+
+import numpy as np
+
+from shoal.config import Settings
+from shoal.core import Mixture
+from shoal.core.drift import Reference
+from shoal.core.lifecycle import (
+    add_component,
+    compact_group,
+    merge,
+    overlapping_pairs,
+    retire,
+    unexplained,
+    unexplained_below,
+)
+from shoal.daemon.logs import log_event
+from shoal.daemon.store import HistoryRow
+
+__all__ = ["LifeWatch", "lifecycle_alert_id", "STATE_FORMAT"]
+
+STATE_FORMAT = 1
+_MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT = 1e-3, 0.5
+
+
+def lifecycle_alert_id(event: str, segment: int) -> str:
+    """Ids are never reused, so an event and a segment id name one cause."""
+    cause = json.dumps([event, int(segment)])
+    return "segment-" + hashlib.sha256(cause.encode()).hexdigest()[:20]
+
+
+def _fmt(x: float) -> str:
+    return f"{x:.4g}"
+
+
+class LifeWatch:
+    """Lifecycle decisions for the rows of one input; ``state``, ``events`` and ``alerts``
+    go to the commit."""
+
+    def __init__(self, settings: Settings, state: dict | None, *, version: int, file: str):
+        self.settings = settings
+        self.cfg = settings.lifecycle
+        self.features = list(settings.features)
+        self.version = version
+        self.file = file
+        if state is not None and state.get("format") != STATE_FORMAT:
+            raise ValueError(f"lifecycle state has format {state.get('format')!r}")
+        self.state = json.loads(json.dumps(state)) if state is not None else None
+        self.events: list[dict] = []
+        self.alerts: list[tuple[str, dict]] = []
+        self._pool_X = self._pool_rows = None
+        if self.state is not None:
+            self._load_pool()
+
+    # -- state -----------------------------------------------------------------------
+    def start(self, stream_offset: int) -> None:
+        """A new model: stream rows are ``stream_offset`` + rows learned after warm-up."""
+        self.state = {"format": STATE_FORMAT, "offset": int(stream_offset), "done_at": 0,
+                      "low_since": {}, "unsettled": {}, "pool": {"X": [], "rows": []}}
+        self._load_pool()
+
+    def _ensure(self) -> dict:
+        if self.state is None:   # a model made before lifecycle watching: count from here
+            self.start(self.settings.warmup_rows)
+        return self.state
+
+    def _load_pool(self) -> None:
+        pool = self.state["pool"]
+        d = len(self.features)
+        self._pool_X = np.array(pool["X"], dtype=np.float64).reshape(-1, d)
+        self._pool_rows = np.array(pool["rows"], dtype=np.int64)
+
+    def final_state(self) -> dict:
+        st = self._ensure()
+        st["pool"] = {"X": self._pool_X.tolist(), "rows": self._pool_rows.tolist()}
+        return st
+
+    # -- pieces ----------------------------------------------------------------------
+    def rows_to_boundary(self, mixture: Mixture) -> int:
+        """Rows the next piece may hold: it crosses no decision point and no refresh point
+        (so the whole piece is scored with one parameter set, the one it is tested with)."""
+        n = int(mixture.n_rows)
+        c, r = self.cfg.check_rows, int(mixture.refresh_rows)
+        return min(c - n % c, r - n % r)
+
+    def observe(self, before: Mixture, X: np.ndarray, scores) -> None:
+        """Pool the rows of a learned piece that no segment explains; ``before`` is the
+        model that scored them (its ``n_rows`` is the piece's first learned row)."""
+        self._ensure()
+        q = self.cfg.unexplained_quantile
+        near = np.flatnonzero(scores.log_density < unexplained_below(before, q) + 1e-9)
+        if near.size == 0:
+            return
+        far = near[unexplained(before, X[near], q)]
+        if far.size == 0:
+            return
+        keep = self.cfg.pool_rows
+        self._pool_X = np.concatenate([self._pool_X, X[far]])[-keep:]
+        self._pool_rows = np.concatenate([self._pool_rows, before.n_rows + far])[-keep:]
+
+    # -- decision points -------------------------------------------------------------
+    def at_boundary(self, mixture: Mixture, watch=None) -> Mixture:
+        """At a decision point not yet taken, retire, merge and give birth; returns the
+        model to learn on with."""
+        st = self._ensure()
+        n = int(mixture.n_rows)
+        if n == 0 or n % self.cfg.check_rows or st["done_at"] == n:
+            return mixture
+        st["done_at"] = n
+        old = self._pool_rows >= n - self.cfg.pool_span_rows
+        self._pool_X, self._pool_rows = self._pool_X[old], self._pool_rows[old]
+        mixture = self._retire(mixture, n, watch)
+        mixture = self._merge(mixture, n, watch)
+        mixture = self._birth(mixture, n)
+        self._settle(mixture, n, watch)
+        return mixture
+
+    def _retire(self, mixture: Mixture, n: int, watch) -> Mixture:
+        st = self.state
+        low = {sid: at for sid, at in st["low_since"].items()
+               if int(sid) in set(mixture.ids.tolist())}
+        for k, sid in enumerate(mixture.ids.tolist()):
+            if mixture.weights[k] < self.cfg.retire_weight:
+                low.setdefault(str(sid), n)
+            else:
+                low.pop(str(sid), None)
+        due = sorted((float(mixture.weights[k]), sid) for k, sid in enumerate(mixture.ids.tolist())
+                     if str(sid) in low and n - low[str(sid)] >= self.cfg.retire_rows)
+        for weight, sid in due:
+            if mixture.n_components < 2:
+                break
+            since = low[str(sid)]
+            k = int(np.flatnonzero(mixture.ids == sid)[0])
+            mean, sd = mixture.data_means()[k], mixture.data_stds()[k]
+            mixture = retire(mixture, sid)
+            low.pop(str(sid), None)
+            st["unsettled"].pop(str(sid), None)
+            self._drop_reference(watch, [sid])
+            self._event("retired", sid, n, weight=weight, mean=mean, spread=sd,
+                        under_since_row=self.state["offset"] + since,
+                        summary=(f"segment {sid} retired: its weight stayed under "
+                                 f"{self.cfg.retire_weight:.2%} for {n - since} rows "
+                                 f"(last {weight:.2%}); its rows go to the others; "
+                                 f"it was {self._describe(mean, sd)}"))
+        st["low_since"] = low
+        return mixture
+
+    def _merge(self, mixture: Mixture, n: int, watch) -> Mixture:
+        bound = self.cfg.merge_distance
+        if bound is None or mixture.n_components < 2:
+            return mixture
+        pairs = overlapping_pairs(mixture, bound, self.cfg.merge_measure)
+        if not pairs:
+            return mixture
+        keep, drop, distance = pairs[0]
+        means, sds = mixture.data_means(), mixture.data_stds()
+        ka, kb = (int(np.flatnonzero(mixture.ids == i)[0]) for i in (keep, drop))
+        before = {str(sid): {"weight": float(mixture.weights[k]), "mean": means[k].tolist(),
+                             "spread": sds[k].tolist()}
+                  for sid, k in ((keep, ka), (drop, kb))}
+        mixture = merge(mixture, keep, drop)
+        k = int(np.flatnonzero(mixture.ids == keep)[0])
+        mean, sd = mixture.data_means()[k], mixture.data_stds()[k]
+        self.state["unsettled"].pop(str(drop), None)
+        self.state["low_since"].pop(str(drop), None)
+        self._drop_reference(watch, [drop])
+        measure = self.cfg.merge_measure
+        self._event("merged", drop, n, into=keep, distance=distance, measure=measure,
+                    before=before, weight=float(mixture.weights[k]), mean=mean, spread=sd,
+                    summary=(f"segment {drop} merged into segment {keep} ({measure} distance "
+                             f"{distance:.3f} < {bound:g}); merged segment "
+                             f"{self._describe(mean, sd)}, weight {mixture.weights[k]:.1%}"))
+        return mixture
+
+    def _birth(self, mixture: Mixture, n: int) -> Mixture:
+        cfg = self.cfg
+        if len(self._pool_X) < cfg.birth_rows or mixture.n_components >= cfg.max_segments:
+            return mixture
+        covs = mixture.data_covariance_matrices()
+        widest = max(float(np.exp(0.5 * np.linalg.slogdet(c)[1] / mixture.n_features))
+                     for c in covs)
+        group = compact_group(self._pool_X, min_rows=cfg.birth_rows,
+                              max_sd=cfg.birth_max_spread * widest,
+                              threshold=cfg.unexplained_quantile, seed=self.settings.seed,
+                              reg_covar=self.settings.learning.reg_covar)
+        if group is None:
+            return mixture
+        mean, cov, members = group
+        count = int(members.sum())
+        covered = max(n - int(self._pool_rows[members].min()), count)
+        weight = float(np.clip(count / covered, _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT))
+        mixture = add_component(mixture, weight, mean, cov)
+        sid = int(mixture.ids[-1])
+        self._pool_X, self._pool_rows = self._pool_X[~members], self._pool_rows[~members]
+        self.state["unsettled"][str(sid)] = n
+        sd = np.sqrt(np.diag(cov))
+        self._event("born", sid, n, weight=weight, mean=mean, spread=sd, rows=count,
+                    summary=(f"segment {sid} born from {count} unexplained rows "
+                             f"(about {weight:.1%} of recent rows): "
+                             f"{self._describe(mean, sd)}"))
+        return mixture
+
+    def _settle(self, mixture: Mixture, n: int, watch) -> None:
+        """Born segments that have settled join the drift reference."""
+        unsettled = self.state["unsettled"]
+        ready = sorted(int(sid) for sid, at in unsettled.items()
+                       if n - at >= self.cfg.settle_rows)
+        if not ready:
+            return
+        for sid in ready:
+            del unsettled[str(sid)]
+        st = getattr(watch, "state", None)
+        present = [sid for sid in ready if sid in set(mixture.ids.tolist())]
+        if st is None or st.get("reference") is None or not present:
+            return   # a reference taken later includes them
+        ref = Reference.from_dict(st["reference"]).adopt(mixture, present)
+        st["reference"] = ref.to_dict()
+        log_event("drift_reference_adopted", segments=present, model_version=self.version)
+
+    def _drop_reference(self, watch, ids) -> None:
+        st = getattr(watch, "state", None)
+        if st is None or st.get("reference") is None:
+            return
+        st["reference"] = Reference.from_dict(st["reference"]).without(ids).to_dict()
+
+    # -- events ----------------------------------------------------------------------
+    def _describe(self, mean, sd) -> str:
+        return ", ".join(f"{f} {_fmt(m)}±{_fmt(s)}" for f, m, s in zip(self.features, mean, sd))
+
+    def _event(self, kind: str, sid: int, n: int, *, weight, mean, spread, summary, **more):
+        row = self.state["offset"] + n
+        event = {"event": kind, "segment": int(sid), "row": int(row),
+                 "weight": float(weight), "mean": np.asarray(mean).tolist(),
+                 "spread": np.asarray(spread).tolist(), **more}
+        self.events.append(event)
+        payload = {
+            "id": lifecycle_alert_id(kind, sid),
+            "kind": "lifecycle",
+            "status": kind,
+            "severity": "info",
+            "segment": int(sid),
+            "statistic": "segments",
+            "model_version": {"first": self.version, "last": self.version},
+            "rows": {"first": int(row), "last": int(row)},
+            "inputs": [self.file] if self.file else [],
+            "explanation": {"summary": summary,
+                            "mean": dict(zip(self.features, event["mean"])),
+                            "spread": dict(zip(self.features, event["spread"])),
+                            "weight": event["weight"],
+                            **{k: v for k, v in more.items()}},
+        }
+        self.alerts.append((f"{payload['id']}.{kind}", payload))
+
+    def history(self, rows: list[HistoryRow]) -> list[HistoryRow]:
+        """The segment history of this version with the events marked; a segment that
+        left gets a row of its own (weight 0, its last mean and spread)."""
+        notes: dict[int, list[str]] = {}
+        last: dict[int, dict] = {}
+        for e in self.events:
+            text = {"born": "born", "retired": "retired",
+                    "merged": f"merged into {e.get('into')}"}[e["event"]]
+            notes.setdefault(e["segment"], []).append(f"{text} at row {e['row']}")
+            if e["event"] == "merged":
+                notes.setdefault(e["into"], []).append(
+                    f"absorbed {e['segment']} at row {e['row']}")
+            last[e["segment"]] = e
+        out = []
+        for r in rows:
+            if r.segment in notes:
+                r = replace(r, event="; ".join(notes.pop(r.segment)))
+            out.append(r)
+        for sid in sorted(notes):
+            e = last.get(sid)
+            if e is None:
+                continue
+            out.append(HistoryRow(segment=sid, weight=0.0, rows=0, mean=e["mean"],
+                                  spread=e["spread"], event="; ".join(notes[sid])))
+        return out
+
+    def log_events(self, model_version: int) -> None:
+        """One log line per event; called once they are committed."""
+        for _, payload in self.alerts:
+            log_event(f"segment_{payload['status']}", logging.INFO, id=payload["id"],
+                      segment=payload["segment"], model_version=model_version,
+                      row=payload["rows"]["first"],
+                      summary=payload["explanation"]["summary"])
