@@ -44,6 +44,7 @@ import shutil
 import threading
 import time
 import uuid
+from concurrent.futures import CancelledError
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterator
@@ -76,6 +77,7 @@ __all__ = ["backfill", "BackfillReport", "BackfillError", "ClusterUnavailable", 
 
 DEFAULT_ROUND_ROWS = 1 << 20
 LABEL_MODES = ("round", "final")
+_ATTEMPTS = 3               # broadcasts of one snapshot before a round gives up
 _STAGE = ".shoal-backfill"   # in the outbox: the rounds' scores until the labels are written
 INSTALL_HINT = "pip install 'shoal[cluster]'"
 
@@ -388,6 +390,7 @@ class BackfillReport:
     warmup_rows: int = 0
     rounds: int = 0
     round_rows: int = 0
+    broadcasts_again: int = 0       # snapshots lost with every worker holding them
     model_version: int = 0
     labels: list[str] = field(default_factory=list)
     seconds: float = 0.0
@@ -436,6 +439,7 @@ class _Run:
         self.settings, self.layout, self.store = settings, layout, store
         self.pipeline, self.client, self.stop, self.wall = pipeline, client, stop, wall
         self.tag = uuid.uuid4().hex[:12]   # task keys of this run
+        self.broadcasts_again = 0
 
     def _check_stop(self) -> None:
         if self.stop.is_set():
@@ -506,6 +510,7 @@ class _Run:
         report.model_version = self._commit(facts, learned, duplicates, refused, mixture,
                                             extra, version, clear_warmup, seen_at,
                                             labelled=bool(report.labels))
+        report.broadcasts_again = self.broadcasts_again
         report.seconds = round(time.monotonic() - t0, 3)
         log_event("backfill_committed", files=report.files, learned=report.learned,
                   duplicates=report.duplicates, skipped=report.skipped,
@@ -591,18 +596,19 @@ class _Run:
                                               unit="round")):
             self._check_stop()
             t = time.monotonic()
-            [snapshot] = self.client.scatter([mixture], broadcast=True, hash=False)
             labels = {}
             if stage is not None:
                 labels = {p.file: self._labels_to(versions[p.file], below, stage)
                           for p in rnd.pieces if p.pass_no == last_pass}
-            futures = [self.client.submit(piece_statistics, facts[p.file], p, rnd.stop,
-                                          snapshot, self.settings,
-                                          labels.get(p.file) if p.pass_no == last_pass
-                                          else None,
-                                          key=f"shoal-piece-{self.tag}-{number}-{i}")
-                       for i, p in enumerate(rnd.pieces)]
-            results: list[PieceResult] = self._gather(futures)
+
+            def submit(snapshot, attempt, rnd=rnd, number=number, labels=labels):
+                return [self.client.submit(
+                    piece_statistics, facts[p.file], p, rnd.stop, snapshot, self.settings,
+                    labels.get(p.file) if p.pass_no == last_pass else None,
+                    key=f"shoal-piece-{self.tag}-{number}-{i}-{attempt}")
+                    for i, p in enumerate(rnd.pieces)]
+
+            results: list[PieceResult] = self._broadcast_and_gather(mixture, submit)
             for p in rnd.pieces:
                 f = facts[p.file]
                 if stage is None or p.pass_no != last_pass or p.hi != f.valid_rows:
@@ -613,7 +619,6 @@ class _Run:
                 else:
                     written[p.file] = self._assemble(f, versions[p.file],
                                                      labels[p.file].unusual_below, stage)
-            del futures, snapshot
             mixture = apply_round(mixture, [r.stats for r in results], rnd.start, rnd.stop,
                                   refresh=rnd.refresh)
             for r in results:   # the service's rule, piece by piece in stream order
@@ -643,11 +648,37 @@ class _Run:
         self._check_stop()
         if not files:
             return {}
-        [model] = self.client.scatter([mixture], broadcast=True, hash=False)
-        return {f.index: self.client.submit(label_file, f, self.settings, model, version,
-                                            below, str(self.layout.outbox),
-                                            key=f"shoal-labels-{self.tag}-{f.index}")
-                for f in files}
+
+        def submit(model, attempt):
+            return [self.client.submit(label_file, f, self.settings, model, version, below,
+                                       str(self.layout.outbox),
+                                       key=f"shoal-labels-{self.tag}-{f.index}-{attempt}")
+                    for f in files]
+
+        return dict(zip([f.index for f in files], self._broadcast_and_gather(mixture, submit)))
+
+    def _broadcast_and_gather(self, mixture, submit) -> list:
+        """Broadcast ``mixture``, gather the futures ``submit(snapshot, attempt)`` makes.
+
+        A snapshot lost with every worker that held it cancels its tasks; they are
+        submitted again under new keys with a fresh broadcast (results are per piece, so
+        nothing is counted twice).
+        """
+        for attempt in range(_ATTEMPTS):
+            [snapshot] = self.client.scatter([mixture], broadcast=True, hash=False)
+            futures = submit(snapshot, attempt)
+            try:
+                return self._gather(futures)
+            except CancelledError as exc:
+                if attempt + 1 == _ATTEMPTS:
+                    raise BackfillError(f"the parameter snapshot was lost with the workers "
+                                        f"{_ATTEMPTS} times in a row: {exc}") from exc
+                self.broadcasts_again += 1
+                log_event("backfill_snapshot_lost", logging.WARNING, attempt=attempt + 1,
+                          detail=str(exc))
+            finally:
+                del futures, snapshot
+        raise AssertionError("unreachable")
 
     def _commit(self, facts, learned, duplicates, refused, mixture, extra, version,
                 clear_warmup, seen_at, labelled: bool) -> int:

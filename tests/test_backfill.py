@@ -34,9 +34,9 @@ TIMEOUT = 60.0       # every wait on the cluster
 cloudpickle.register_pickle_by_value(sys.modules[__name__])
 
 
-def local_cluster():
-    """Two worker processes, one thread each, as the issue asks."""
-    return LocalCluster(n_workers=2, processes=True, threads_per_worker=1,
+def local_cluster(n_workers=2):
+    """Worker processes (two, as the issue asks), one thread each."""
+    return LocalCluster(n_workers=n_workers, processes=True, threads_per_worker=1,
                         dashboard_address=None)
 
 
@@ -187,7 +187,10 @@ class KillOnce(WorkerPlugin):
         os.kill(os.getpid(), signal.SIGKILL)
 
 
-def test_a_worker_killed_mid_round_changes_nothing(tmp_path, client):
+# 2 workers: the other worker holds the snapshot and Dask reruns the lost tasks;
+# 1 worker: the snapshot is lost with it, and the round is broadcast again
+@pytest.mark.parametrize("n_workers", [2, 1])
+def test_a_worker_killed_mid_round_changes_nothing(tmp_path, client, n_workers):
     paths = make_history(tmp_path / "calm", 20)
     calm = load_config(write_config(tmp_path / "calm"))
     backfill(calm, [paths[0].parent], client=client, round_rows=ROUND_ROWS)
@@ -195,17 +198,18 @@ def test_a_worker_killed_mid_round_changes_nothing(tmp_path, client):
     killed = load_config(write_config(tmp_path / "killed"))
     marker = tmp_path / "killed.marker"
     # a cluster of its own: the killed worker's restart belongs to this test
-    with local_cluster() as cluster, Client(cluster, set_as_default=False,
-                                            timeout=TIMEOUT) as own:
-        own.wait_for_workers(2, timeout=TIMEOUT)
+    with local_cluster(n_workers) as cluster, Client(cluster, set_as_default=False,
+                                                     timeout=TIMEOUT) as own:
+        own.wait_for_workers(n_workers, timeout=TIMEOUT)
         workers_before = set(own.scheduler_info()["workers"])
         own.register_plugin(KillOnce(str(marker), round_no=1), name="kill-once")
         report = backfill(killed, [paths[0].parent], client=own, round_rows=ROUND_ROWS)
-        own.wait_for_workers(2, timeout=TIMEOUT)
+        own.wait_for_workers(n_workers, timeout=TIMEOUT)
         assert marker.exists(), "no worker was killed"
         assert int(marker.read_text()) not in own.run(os.getpid).values()
         assert set(own.scheduler_info()["workers"]) != workers_before
     assert report.learned == 20 and report.rounds == 2
+    assert report.broadcasts_again == (1 if n_workers == 1 else 0)
 
     v1, a = final_mixture(calm)
     v2, b = final_mixture(killed)
