@@ -25,9 +25,10 @@ import pyarrow.parquet as pq
 from shoal.config import Settings
 from shoal.daemon.errors import InputRejected, Interrupted
 
-__all__ = ["Frame", "read_input", "BATCH_ROWS"]
+__all__ = ["Frame", "read_input", "BATCH_ROWS", "FEATURE_BOUND"]
 
 BATCH_ROWS = 65536
+FEATURE_BOUND = 1e100
 _CSV_BLOCK = 1 << 20
 _HEADER_LIMIT = 1 << 20
 # A .csv.gz may inflate this much whatever its ratio (small files compress well).
@@ -41,7 +42,7 @@ _THRIFT_CONTAINER_LIMIT = 1 << 20
 class Frame:
     features: np.ndarray      # (n_rows, n_features) float64; NaN where null
     passthrough: pa.Table     # (n_rows,) the pass-through columns
-    valid: np.ndarray         # (n_rows,) bool: all features finite
+    valid: np.ndarray         # (n_rows,) bool: all features finite and within FEATURE_BOUND
 
     @property
     def n_rows(self) -> int:
@@ -90,7 +91,8 @@ def read_input(f: BinaryIO, kind: str, settings: Settings,
     features = np.concatenate(feats, axis=0)
     pass_schema = pa.schema([_plain(schema.field(c)) for c in settings.passthrough])
     table = pa.Table.from_batches(passes, schema=pass_schema)
-    valid = np.isfinite(features).all(axis=1)
+    # Values past +-1e100 are refused like NaN: their squares would overflow in scoring.
+    valid = (np.abs(features) <= FEATURE_BOUND).all(axis=1)
     return Frame(features=features, passthrough=table, valid=valid)
 
 
@@ -125,7 +127,7 @@ def _features(batch: pa.RecordBatch, names: tuple[str, ...]) -> np.ndarray:
     for name in names:
         col = batch.column(name)
         if not pa.types.is_floating(col.type):
-            col = col.cast(pa.float64())
+            col = col.cast(pa.float64(), safe=False)  # integers past 2**53 round
         cols.append(col.to_numpy(zero_copy_only=False).astype(np.float64, copy=False))
     return np.column_stack(cols) if cols else np.empty((batch.num_rows, 0))
 
@@ -252,7 +254,7 @@ def _csv_header(stream: BinaryIO) -> list[str]:
     if not line:
         raise InputRejected("empty", "the input is empty (no header line)")
     try:
-        text = line.decode("utf-8")
+        text = line.decode("utf-8-sig")  # a byte-order mark is not part of the first name
     except UnicodeDecodeError as exc:
         raise InputRejected("encoding", f"line 1 (header) is not UTF-8: byte "
                             f"{line[exc.start]:#04x} at position {exc.start}", line=1) from exc
@@ -277,7 +279,9 @@ def _csv_batches(stream: BinaryIO, settings: Settings):
             parse_options=pacsv.ParseOptions(newlines_in_values=False),
             convert_options=pacsv.ConvertOptions(
                 column_types=types, include_columns=list(settings.columns),
-                strings_can_be_null=False, quoted_strings_can_be_null=False))
+                # pass-through strings are never null; a quoted empty feature ("") is,
+                # as an unquoted one is (writers that quote every field make those)
+                strings_can_be_null=False, quoted_strings_can_be_null=True))
     except (pa.ArrowInvalid, pa.ArrowKeyError, OSError, EOFError) as exc:
         raise _explain(exc, "csv", header) from exc
     return _CsvBatches(reader, header), reader.schema
