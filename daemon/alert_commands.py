@@ -36,6 +36,9 @@ def format_alert(payload: dict, created: float | None = None, prefix: str = "") 
     head = (f"{prefix}{when}{p.get('status', '?').upper():8s} {p.get('severity', ''):8s} "
             f"{seg}  {p.get('statistic')} {_n(p.get('value'))} (bound {_n(p.get('bound'))}, "
             f"noise {_n(p.get('noise'))}; {p.get('unit', '')})  id {p.get('id')}")
+    if p.get("kind") == "lifecycle":     # born, retired, merged: an event, not a bound
+        head = (f"{prefix}{when}{p.get('status', '?').upper():8s} {p.get('severity', ''):8s} "
+                f"{seg}  id {p.get('id')}")
     rows, mv = p.get("rows") or {}, p.get("model_version") or {}
     where = (f"{prefix}    rows {_n(rows.get('first'))}-{_n(rows.get('last'))}, model versions "
              f"{_n(mv.get('first'))}-{_n(mv.get('last'))}")

@@ -68,6 +68,8 @@ def build_parser() -> argparse.ArgumentParser:
                     help="labels file to write (.csv for CSV, otherwise Parquet)")
     sp = with_config(cmd("segments", "show the current segments", _cmd_segments))
     sp.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    sp.add_argument("--all", action="store_true",
+                    help="also list the segments that retired or merged away")
     add_operating_commands(cmd, with_config)   # report, status
     add_alert_commands(cmd, with_config, open_service_parts)   # alerts, rebaseline, replay
     add_backfill_command(cmd, with_config, _stop_on_signals)   # backfill (Dask)
@@ -176,7 +178,7 @@ def _cmd_segments(args) -> int:
 
     settings = _load(args)
     with open_service_parts(settings, lock=False) as (layout, store, pipeline):
-        summary = segment_summary(store, settings)
+        summary = segment_summary(store, settings, include_gone=args.all)
     print(json.dumps(summary, indent=2) if args.json else format_segments(summary))
     return 0
 

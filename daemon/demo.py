@@ -129,13 +129,14 @@ def run_demo(folder: Path, drops: int | None = None, rows_per_file: int = 4000,
 
 
 def _print_alerts(alerts: list, settings, total_rows: int) -> None:
-    """The drift alerts, with where the scenario's changes were injected for comparison."""
+    """The drift alerts and segment events (born, retired, merged), with where the
+    scenario's changes were injected for comparison."""
     drift, new_state = demo_changes(total_rows)
     rise = drift.amps_per_10k_rows * (total_rows - drift.start_row) / 10_000
     print(f"injected: {drift.unit}'s compressor current rising from row {drift.start_row} "
           f"(+{rise:.1f} A by row {total_rows}); ice build-up in {new_state.share:.0%} of rows "
           f"from row {new_state.start_row}")
-    print(f"drift alerts ({len(alerts)}; reference taken after "
+    print(f"drift alerts and segment events ({len(alerts)}; reference taken after "
           f"{settings.drift.settle_rows} rows past warm-up):")
     if not alerts:
         print("  none")

@@ -279,6 +279,14 @@ class StateStore:
                         "created": created})
         return out
 
+    def segment_events(self) -> list[dict[str, Any]]:
+        """History rows that record a lifecycle event (born, retired, merged), oldest first."""
+        return [{"version": v, "segment": s, "weight": w, "mean": json.loads(mean),
+                 "spread": json.loads(spread), "event": event, "created": created}
+                for v, s, w, mean, spread, event, created in self.db.execute(
+                    "SELECT version, segment, weight, mean, spread, event, created FROM "
+                    "segment_history WHERE event IS NOT NULL ORDER BY version, segment")]
+
     def pending_alerts(self) -> list[tuple[str, dict]]:
         return [(i, json.loads(p)) for i, p in self.db.execute(
             "SELECT id, payload FROM alert_outbox WHERE delivered_at IS NULL "

@@ -11,8 +11,10 @@ from shoal.daemon.store import StateStore
 __all__ = ["segment_summary", "format_segments"]
 
 
-def segment_summary(store: StateStore, settings: Settings, now: float | None = None) -> dict:
-    """Model version, warm-up progress and one record per current segment."""
+def segment_summary(store: StateStore, settings: Settings, now: float | None = None,
+                    include_gone: bool = False) -> dict:
+    """Model version, warm-up progress and one record per current segment; with
+    ``include_gone``, also the segments that retired or merged away (``gone``)."""
     now = time.time() if now is None else now
     cp = store.latest_checkpoint()
     out: dict[str, Any] = {"model_version": store.model_version,
@@ -40,7 +42,23 @@ def segment_summary(store: StateStore, settings: Settings, now: float | None = N
             "age_versions": None if b.get("version") is None else cp.version - b["version"],
             "age_seconds": None if b.get("time") is None else round(now - b["time"], 1),
         })
+    if include_gone:
+        out["gone"] = _gone_segments(store, settings, set(m.ids.tolist()), born)
     return out
+
+
+def _gone_segments(store: StateStore, settings: Settings, current: set, born: dict) -> list:
+    """Segments that left the model: when, how, and their last mean and spread."""
+    gone = {}
+    for h in store.segment_events():
+        if h["segment"] in current or not h["event"].startswith(("retired", "merged into")):
+            continue
+        gone[h["segment"]] = {
+            "id": int(h["segment"]), "ended": h["event"], "ended_version": h["version"],
+            "born_version": born.get(str(h["segment"]), {}).get("version"),
+            "mean": {f: float(v) for f, v in zip(settings.features, h["mean"])},
+            "spread": {f: float(v) for f, v in zip(settings.features, h["spread"])}}
+    return [gone[k] for k in sorted(gone)]
 
 
 def _num(v: float) -> str:
@@ -66,4 +84,10 @@ def format_segments(summary: dict) -> str:
     widths = [max(len(r[i]) for r in table) for i in range(len(head))]
     for r in table:
         lines.append("  ".join(c.rjust(w) for c, w in zip(r, widths)))
+    if summary.get("gone"):
+        lines.append("segments no longer in the model (last mean±sd):")
+        for g in summary["gone"]:
+            lines.append(f"  {g['id']:>3}  {g['ended']} (model version {g['ended_version']})  " +
+                         "  ".join(f"{f} {_num(g['mean'][f])}±{_num(g['spread'][f])}"
+                                   for f in feats))
     return "\n".join(lines)

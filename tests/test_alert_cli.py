@@ -122,7 +122,7 @@ def test_demo_prints_the_drift_and_new_state_alerts_with_explanations(tmp_path):
     r = shoal("demo", "--dir", tmp_path / "demo", timeout=600)
     assert r.returncode == 0, r.stdout + r.stderr
     out = r.stdout
-    assert "drift alerts (" in out
+    assert "drift alerts and segment events (" in out
     lines = out.splitlines()
     # the compressor drift: a segment's mean moved, compressor_a first
     at = [i for i, x in enumerate(lines) if "FIRING" in x and "mean_shift" in x]
@@ -130,13 +130,25 @@ def test_demo_prints_the_drift_and_new_state_alerts_with_explanations(tmp_path):
     # the new state: the fit drops, the unusual rows explained by the fan slowing down
     at = [i for i, x in enumerate(lines) if "FIRING" in x and "fit_drop" in x]
     assert at and "unusual" in lines[at[0] + 2] and "fan_rpm" in lines[at[0] + 2], out
+    # issue 5, acceptance 6: ice build-up is born as a new segment, announced with its
+    # summary in data units, and listed among the segments nearest the ice state
+    at = [i for i, x in enumerate(lines) if x.strip().startswith("BORN")]
+    assert len(at) == 1, out
+    born = int(lines[at[0]].split("segment ")[1].split()[0])
+    first_row = int(lines[at[0] + 1].split("rows ")[1].split("-")[0])
+    print(f"ice build-up born as segment {born} {first_row - NEW_STATE.start_row} rows after "
+          "it began")
+    assert 0 < first_row - NEW_STATE.start_row <= 20_000
+    assert f"segment {born} born from" in lines[at[0] + 2] and "fan_rpm 11" in lines[at[0] + 2]
+    assert any(x.split() == [str(born), scenario.NEW_STATE, x.split()[-1]] for x in lines), out
 
     cfg = tmp_path / "demo" / "shoal.yaml"
     r = shoal("alerts", "-c", cfg, "--json")
     assert r.returncode == 0, r.stderr
     listed = json.loads(r.stdout)
     assert listed and all(a["delivered_at"] for a in listed)      # the JSON-lines sink
-    assert sum(x.strip().startswith(("FIRING", "RESOLVED")) for x in lines) == len(listed)
+    assert sum(x.strip().startswith(("FIRING", "RESOLVED", "BORN", "RETIRED", "MERGED"))
+               for x in lines) == len(listed)
     r = shoal("alerts", "-c", cfg, "--since", "1h")
     assert r.returncode == 0 and listed[0]["payload"]["id"] in r.stdout
     r = shoal("alerts", "-c", cfg, "--since", "soonish")
@@ -148,7 +160,7 @@ def test_demo_prints_the_drift_and_new_state_alerts_with_explanations(tmp_path):
     assert "re-baselined" in r.stdout
     after = json.loads(shoal("alerts", "-c", cfg, "--json").stdout)
     by_rebaseline = [a["payload"] for a in after if a["payload"].get("resolved_by")]
-    still_firing = {a["payload"]["id"] for a in listed} - {
+    still_firing = {a["payload"]["id"] for a in listed if a["payload"]["kind"] == "drift"} - {
         a["payload"]["id"] for a in listed if a["payload"]["status"] == "resolved"}
     assert {a["id"] for a in by_rebaseline} == still_firing
     assert all(a["note"] == "ice build-up is the new normal" for a in by_rebaseline)

@@ -122,6 +122,14 @@ def test_two_million_stationary_rows_raise_no_alert(stream):
     assert s.alerts() == []
     # nothing was even part-way to firing at the end
     assert state["bounds"]["entries"] == {}
+    # issue 5, acceptance 5: no birth, retirement or merge either (they would be alerts
+    # too); the lifecycle was watching: decision points passed, the pool stayed small
+    assert [h for h in s.store.history() if h["event"]] == []
+    assert s.pipeline.state.mixture.ids.tolist() == list(range(K))
+    life = s.pipeline.state.extra["lifecycle"]
+    assert life["done_at"] == 2_000_000 - s.settings.warmup_rows - \
+        (2_000_000 - s.settings.warmup_rows) % s.settings.lifecycle.check_rows
+    assert len(life["pool"]["rows"]) < s.settings.lifecycle.birth_rows
 
 
 CHANGE_ROW = 60_000        # stream row of the change (not on a window boundary)

@@ -11,12 +11,14 @@ from shoal.core import Mixture, ModelError, StepSchedule
 from shoal.core.distances import bhattacharyya_distance, hellinger_distance
 from shoal.core.lifecycle import (
     add_component,
+    compact_group,
     merge,
     overlap,
     overlapping_pairs,
     retire,
     squared_mahalanobis,
     unexplained,
+    unexplained_below,
 )
 
 CENTER = np.array([100.0, -20.0, 3.0])
@@ -273,3 +275,38 @@ def test_unexplained_needs_every_component_to_reject_the_row():
     assert unexplained(mixture, rows, 0.999).tolist() == [False, False, True, True]
     with pytest.raises(ModelError, match="threshold should be a probability"):
         unexplained(mixture, rows, 99.9)
+
+
+@pytest.mark.parametrize("covariance", ["full", "diag", "spherical"])
+def test_unexplained_rows_all_lie_under_the_log_density_bound(covariance):
+    # The cheap filter must never drop an unexplained row: every row that every
+    # component rejects has a log-density under the bound.
+    groups = _groups(31)
+    mixture = _mixture_of(groups, covariance)
+    rng = np.random.default_rng(32)
+    X = CENTER + rng.normal(0.0, 4.0, (20_000, 3)) * SCALE     # wide: many far rows
+    far = unexplained(mixture, X, 0.999)
+    assert 1000 < far.sum() < len(X)
+    log_density = mixture.log_density(X)
+    bound = unexplained_below(mixture, 0.999)
+    assert np.all(log_density[far] < bound)
+    # and it filters: most explained rows lie above it
+    assert np.mean(log_density[~far] >= bound) > 0.5
+
+
+def test_compact_group_finds_a_group_among_scattered_rows_and_nothing_in_scatter():
+    rng = np.random.default_rng(33)
+    mean = np.array([5.0, -3.0, 2.0, 0.0])
+    cov = np.diag([0.5, 1.0, 0.3, 2.0]) + 0.1
+    group = rng.multivariate_normal(mean, cov, 300)
+    scatter = rng.uniform(-40.0, 40.0, (40, 4))
+    found = compact_group(np.concatenate([scatter, group]), min_rows=50, seed=0)
+    assert found is not None
+    centre, spread, members = found
+    sd = np.sqrt(np.diag(cov))
+    assert np.all(np.abs(centre - mean) < 0.15 * sd)
+    np.testing.assert_allclose(np.sqrt(np.diag(spread)), sd, rtol=0.15)
+    assert members[40:].mean() > 0.98 and members[:40].sum() <= 2
+    # scattered rows alone hold no compact group of 50
+    assert compact_group(rng.uniform(-40.0, 40.0, (200, 4)), min_rows=50, max_sd=5.0) is None
+    assert compact_group(group[:30], min_rows=50) is None

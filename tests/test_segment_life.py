@@ -19,7 +19,7 @@ import pytest
 from sklearn.metrics import adjusted_rand_score
 
 from shoal.core import Mixture
-from shoal.core.covariance import FAMILIES
+from shoal.daemon.summary import format_segments, segment_summary
 
 from test_drift_alerts import D, _rows, _truth, stream  # noqa: F401 (stream: a fixture)
 
@@ -109,6 +109,13 @@ def test_group_that_stops_appearing_retires_after_the_span(stream):
     rows = [h for h in s.store.history(segment) if h["event"]]
     assert len(rows) == 1 and rows[0]["event"].startswith("retired")
     assert rows[0]["version"] == event["model_version"]["first"]
+    # `shoal segments --all` lists it apart from the current ones; without --all it is gone
+    shown = segment_summary(s.store, s.settings, include_gone=True)
+    assert [g["id"] for g in shown["gone"]] == [segment]
+    assert shown["gone"][0]["ended_version"] == event["model_version"]["first"]
+    table = format_segments(shown)
+    assert f"  {segment}  retired at row {event['rows']['first']}" in table
+    assert "no longer" not in format_segments(segment_summary(s.store, s.settings))
 
 
 def _segment_near(s, true_mean):
@@ -195,3 +202,27 @@ def test_labels_of_a_probe_set_agree_between_consecutive_versions(stream):
     print(f"adjusted Rand index between consecutive versions: min {min(scores):.4f}, "
           f"mean {np.mean(scores):.4f}")
     assert min(scores) >= 0.99
+
+
+def test_births_do_not_depend_on_how_the_stream_is_cut(stream):
+    # Decision points sit on multiples of check_rows learned rows and pieces stop at
+    # refresh points, so other drop sizes give the same events at the same rows.
+    weights, means, covs = _truth()
+    rng = np.random.default_rng(25)
+    X = _rows(rng, 36_000, weights, means, covs)
+    late = np.arange(len(X)) >= 24_000
+    on = late & (rng.random(len(X)) < NEW_SHARE)
+    X[on] = rng.multivariate_normal(means.max(axis=0) + NEW_MEAN_OFFSET, np.eye(D) * 0.6,
+                                    int(on.sum()))
+    runs = []
+    for drop in (12_000, 5_000):
+        s = stream()
+        s.feed(X, drop)
+        runs.append((_events(s), s.pipeline.state.mixture))
+    (events_a, mix_a), (events_b, mix_b) = runs
+    assert [(e["status"], e["segment"], e["rows"]) for e in events_a] == \
+        [(e["status"], e["segment"], e["rows"]) for e in events_b] != []
+    np.testing.assert_allclose(list(events_a[0]["explanation"]["mean"].values()),
+                               list(events_b[0]["explanation"]["mean"].values()), rtol=1e-9)
+    assert mix_a.ids.tolist() == mix_b.ids.tolist()
+    np.testing.assert_allclose(mix_a.data_means(), mix_b.data_means(), rtol=1e-9, atol=1e-9)
