@@ -167,7 +167,7 @@ class LifeWatch:
             mixture = retire(mixture, sid)
             low.pop(str(sid), None)
             st["unsettled"].pop(str(sid), None)
-            self._drop_reference(watch, [sid])
+            self._drop_reference(watch, [sid], "retired")
             self._event("retired", sid, n, weight=weight, mean=mean, spread=sd,
                         under_since_row=self.state["offset"] + since,
                         summary=(f"segment {sid} retired: its weight stayed under "
@@ -195,7 +195,7 @@ class LifeWatch:
         mean, sd = mixture.data_means()[k], mixture.data_stds()[k]
         self.state["unsettled"].pop(str(drop), None)
         self.state["low_since"].pop(str(drop), None)
-        self._drop_reference(watch, [drop])
+        self._drop_reference(watch, [drop], "merged")
         measure = self.cfg.merge_measure
         self._event("merged", drop, n, into=keep, distance=distance, measure=measure,
                     before=before, weight=float(mixture.weights[k]), mean=mean, spread=sd,
@@ -249,11 +249,27 @@ class LifeWatch:
         st["reference"] = ref.to_dict()
         log_event("drift_reference_adopted", segments=present, model_version=self.version)
 
-    def _drop_reference(self, watch, ids) -> None:
+    def _drop_reference(self, watch, ids, why: str) -> None:
+        """A segment that left: out of the drift reference, its firing drift alerts
+        resolved (``resolved_by`` the event), its part-way crossings forgotten."""
         st = getattr(watch, "state", None)
-        if st is None or st.get("reference") is None:
+        if st is None:
             return
-        st["reference"] = Reference.from_dict(st["reference"]).without(ids).to_dict()
+        if st.get("reference") is not None:
+            st["reference"] = Reference.from_dict(st["reference"]).without(ids).to_dict()
+        gone = {str(int(i)) for i in ids}
+        for key in sorted(st.get("open", {})):
+            if key.split("|")[0] not in gone:
+                continue
+            alert = st["open"].pop(key)
+            payload = dict(alert["payload"], status="resolved", value=None, resolved_by=why,
+                           note=f"segment {key.split('|')[0]} {why}")
+            payload["model_version"] = {"first": alert["payload"]["model_version"]["first"],
+                                        "last": self.version}
+            watch.alerts.append((f"{payload['id']}.resolved", payload))
+        if st.get("bounds"):
+            for sid in gone:
+                st["bounds"]["entries"].pop(sid, None)
 
     # -- events ----------------------------------------------------------------------
     def _describe(self, mean, sd) -> str:

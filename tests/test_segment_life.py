@@ -70,6 +70,11 @@ def test_new_group_is_born_within_20000_rows_and_old_labels_stay(stream):
     # a new id, never used before; the old ones unchanged, their rows labelled as before
     assert event["segment"] == before.next_id
     assert after.ids.tolist() == before.ids.tolist() + [event["segment"]]
+    # settled (lifecycle.settle_rows after birth): it joined the drift reference, the
+    # old segments kept theirs
+    ref = s.drift_state()["reference"]
+    assert ref["ids"] == before.ids.tolist() + [event["segment"]]
+    assert _mahalanobis(ref["means"][-1], new_mean, new_cov) <= 0.5
     agree = float(np.mean(after.score(probe).segment == labels_before))
     print(f"probe rows of the old groups labelled as before: {agree:.4f}")
     assert agree >= 0.99
@@ -83,7 +88,7 @@ def test_new_group_is_born_within_20000_rows_and_old_labels_stay(stream):
 
 def test_group_that_stops_appearing_retires_after_the_span(stream):
     weights, means, covs = _truth()
-    comp = 3                                       # weight ~0.1
+    comp = 3                                       # weight 0.051
     rng = np.random.default_rng(22)
     span = 12_000
     s = stream(half_life_rows=8000, lifecycle={"retire_weight": 0.01, "retire_rows": span})
@@ -96,6 +101,13 @@ def test_group_that_stops_appearing_retires_after_the_span(stream):
     events = _events(s)
     assert [(a["status"], a["segment"]) for a in events] == [("retired", segment)]
     event = events[0]
+    # its fading fired a weight_change alert; the retirement resolved it
+    fired = {a["id"] for a in s.alerts() if a["status"] == "firing"
+             and a["segment"] == segment}
+    resolved = {a["id"] for a in s.alerts() if a["status"] == "resolved"
+                and a.get("resolved_by") == "retired"}
+    assert fired and fired == resolved
+    assert not [k for k in s.drift_state()["open"] if k.startswith(f"{segment}|")]
     stop_row = 30_000
     under = event["explanation"]["under_since_row"]
     print(f"weight under the floor {under - stop_row} rows after the group stopped; retired "
