@@ -18,13 +18,14 @@ in the same way, and the parameters are derived from them as at a refresh point.
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import replace
 
 import numpy as np
 from scipy import stats
 
 from .distances import bhattacharyya_distance, hellinger_distance
-from .errors import ModelError, NotEnoughDataError
+from .errors import ModelError
 from .mixture import Mixture
 
 __all__ = [
@@ -343,9 +344,11 @@ def compact_group(X, *, min_rows, max_sd=np.inf, threshold=0.999, max_groups=3, 
         return None
     k_max = int(max(1, min(max_groups, n // max(int(min_rows), 1))))
     try:
-        fit, _ = select_n_components(X, 1, k_max, "full", seed=seed, n_init=n_init,
-                                     reg_covar=reg_covar)
-    except (NotEnoughDataError, np.linalg.LinAlgError):
+        with warnings.catch_warnings():   # about the pool, not the user's warm-up rows
+            warnings.simplefilter("ignore", RuntimeWarning)
+            fit, _ = select_n_components(X, 1, k_max, "full", seed=seed, n_init=n_init,
+                                         reg_covar=reg_covar)
+    except (ModelError, np.linalg.LinAlgError):   # too few or degenerate rows: no group
         return None
     bound = stats.chi2.ppf(float(threshold), d)
     order = np.argsort(-fit.weights, kind="stable")

@@ -310,3 +310,9 @@ def test_compact_group_finds_a_group_among_scattered_rows_and_nothing_in_scatter
     # scattered rows alone hold no compact group of 50
     assert compact_group(rng.uniform(-40.0, 40.0, (200, 4)), min_rows=50, max_sd=5.0) is None
     assert compact_group(group[:30], min_rows=50) is None
+    # degenerate rows (one value repeated) are no error: a group with a covariance
+    # held up by reg_covar, or none
+    same = np.tile(mean, (120, 1))
+    found = compact_group(same, min_rows=50, reg_covar=1e-6)
+    assert found is None or (np.all(np.isfinite(found[0])) and
+                             np.all(np.linalg.eigvalsh(found[1]) > 0))
