@@ -13,6 +13,7 @@ import heapq
 import logging
 import os
 import queue
+import sqlite3
 import threading
 import time
 from pathlib import Path
@@ -29,6 +30,10 @@ from shoal.daemon.watcher import InboxWatcher, scan_inbox
 __all__ = ["Service"]
 
 _IDLE_WAIT = 0.5
+# An input whose write or commit failed (disk full, I/O error) is tried again after
+# this long, doubling per failure in a row up to _RETRY_MAX.
+_RETRY_FIRST = 1.0
+_RETRY_MAX = 60.0
 
 
 class Service:
@@ -53,6 +58,8 @@ class Service:
         self.counts: dict[str, int] = {}
         self._new_settings: Settings | None = None
         self._new_settings_note: Callable[[Settings], None] | None = None
+        self._failures = 0                          # write/commit failures in a row
+        self._retry_at: dict[str, float] = {}       # path -> monotonic time of its retry
 
     # -- control ---------------------------------------------------------------------
     def request_stop(self) -> None:
@@ -144,6 +151,9 @@ class Service:
     def _consider(self, path: str) -> None:
         if path in self._in_ready:
             return
+        if self._retry_at.get(path, 0.0) > self.clock():  # failed: not before its retry
+            self._waiting[path] = self._retry_at[path]
+            return
         d = self.gate.check(path)
         if d.verdict is Verdict.READY:
             key = (d.size, d.mtime_ns, d.inode)
@@ -182,7 +192,13 @@ class Service:
             heapq.heappush(self._ready, (d.mtime_ns, path))  # touched: no longer the oldest
             self._in_ready.add(path)
             return
-        result = self.pipeline.process(Path(path), in_inbox=True)
+        try:
+            result = self.pipeline.process(Path(path), in_inbox=True)
+        except (OSError, sqlite3.Error) as exc:
+            self._failed(path, exc)
+            return
+        self._failures = 0
+        self._retry_at.pop(path, None)
         self._count(result.outcome)
         self.gate.forget(path)
         if os.path.lexists(path):
@@ -191,6 +207,22 @@ class Service:
             self._settled_out.pop(path, None)
         if self.on_result is not None:
             self.on_result(result)
+
+    def _failed(self, path: str, exc: BaseException) -> None:
+        """Writing or committing an input failed (ENOSPC, EIO ...): nothing of it was
+        committed. Reload the model from the store, leave the input in the inbox and
+        try it again later."""
+        self._failures += 1
+        wait = min(_RETRY_FIRST * 2 ** (self._failures - 1), _RETRY_MAX)
+        self._count("failed")
+        log_event("input_failed", logging.ERROR, file=os.path.basename(path),
+                  detail=f"{type(exc).__name__}: {exc}", retry_seconds=wait,
+                  failures_in_a_row=self._failures)
+        try:
+            self.pipeline.state = self.pipeline.load_state()
+        except (OSError, sqlite3.Error) as again:
+            log_event("state_reload_failed", logging.ERROR, detail=str(again))
+        self._retry_at[path] = self._waiting[path] = self.clock() + wait
 
     def _count(self, outcome: str) -> None:
         self.counts[outcome] = self.counts.get(outcome, 0) + 1

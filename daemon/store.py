@@ -193,8 +193,13 @@ class StateStore:
 
             def __exit__(self, exc_type, exc, tb):
                 if exc_type is None:
-                    store.db.execute("COMMIT")
-                else:
+                    try:
+                        store.db.execute("COMMIT")
+                    except sqlite3.Error:  # disk full, I/O error: leave no open transaction
+                        if store.db.in_transaction:
+                            store.db.execute("ROLLBACK")
+                        raise
+                elif store.db.in_transaction:
                     store.db.execute("ROLLBACK")
                 return False
 
