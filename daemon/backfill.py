@@ -45,7 +45,7 @@ import threading
 import time
 import uuid
 from concurrent.futures import CancelledError
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Iterator
 
@@ -206,35 +206,23 @@ def survey_file(index: int, path: str, settings: Settings) -> FileFacts:
     """Hash, read and validate one input (on a worker)."""
     p = Path(path)
     facts = FileFacts(index=index, path=str(p), name=p.name)
-    kind = input_kind(p.name)
     try:
         with open_input(p) as f:
             st = os.fstat(f.fileno())
-            facts = FileFacts(index=index, path=str(p), name=p.name, size=st.st_size,
-                              mtime_ns=st.st_mtime_ns)
+            facts = replace(facts, size=st.st_size, mtime_ns=st.st_mtime_ns)
             if st.st_size == 0:
                 raise InputRejected("empty", "the input is empty (0 bytes)")
             if st.st_size > settings.limits.max_file_bytes:
                 raise InputRejected("too_large", f"{st.st_size} bytes, more than "
                                     f"limits.max_file_bytes={settings.limits.max_file_bytes}")
-            sha = hashlib.file_digest(f, "sha256").hexdigest()
-            facts = FileFacts(index=index, path=str(p), name=p.name, size=st.st_size,
-                              mtime_ns=st.st_mtime_ns, sha256=sha)
+            facts = replace(facts, sha256=hashlib.file_digest(f, "sha256").hexdigest())
             f.seek(0)
-            frame = read_input(f, kind, settings)
+            frame = read_input(f, input_kind(p.name), settings)
     except InputRejected as exc:
-        return _refused(facts, exc.reason, exc.detail)
+        return replace(facts, reason=exc.reason, detail=exc.detail)
     except (InputVanished, InputRefused) as exc:
-        return _refused(facts, "unreadable", str(exc))
-    return FileFacts(index=index, path=str(p), name=p.name, size=facts.size,
-                     mtime_ns=facts.mtime_ns, sha256=facts.sha256, rows=frame.n_rows,
-                     rows_invalid=frame.n_invalid)
-
-
-def _refused(facts: FileFacts, reason: str, detail: str) -> FileFacts:
-    return FileFacts(index=facts.index, path=facts.path, name=facts.name, size=facts.size,
-                     mtime_ns=facts.mtime_ns, sha256=facts.sha256, reason=reason,
-                     detail=detail)
+        return replace(facts, reason="unreadable", detail=str(exc))
+    return replace(facts, rows=frame.n_rows, rows_invalid=frame.n_invalid)
 
 
 def _read_again(facts: FileFacts, settings: Settings) -> Frame:

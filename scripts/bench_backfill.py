@@ -53,7 +53,8 @@ def write_bench_config(folder: Path) -> Path:
     cfg = {"features": [f"f{j}" for j in range(N_FEATURES)], "passthrough": ["id"],
            "segments": N_COMPONENTS, "warmup_rows": 20000, "log_level": "warning",
            "learning": {"n_init": 2},
-           "drift": {"enabled": False},           # the same maths on both sides
+           "drift": {"enabled": False},           # the same maths on both sides:
+           "lifecycle": {"enabled": False},       # backfill keeps the segments it starts with
            "output": {"keep_inputs": True}}
     folder.mkdir(parents=True, exist_ok=True)
     path = folder / "shoal.yaml"

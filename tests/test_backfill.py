@@ -22,7 +22,7 @@ from distributed import Client, LocalCluster, WorkerPlugin
 from shoal.config import load_config
 from shoal.core import Mixture, StepSchedule, initialise
 from shoal.daemon.backfill import backfill, plan_rounds
-from shoal.daemon.drills import InProcessService, synthetic_table, write_config, write_drop
+from shoal.daemon.drills import InProcessService, synthetic_table, write_config
 from shoal.daemon.store import StateStore
 
 SEED = 11            # seeds the synthetic drops
