@@ -792,8 +792,11 @@ def _cmd_backfill(args, stop_on_signals) -> int:
                      local_workers=args.local_workers, round_rows=args.round_rows,
                      labels=args.labels, passes=args.passes,
                      connect_timeout=args.connect_timeout, stop=stop)
-    print(f"{r.learned} files learned ({r.warmup_rows:,} warm-up rows, {r.rows:,} rows in "
-          f"{r.rounds} rounds of {r.round_rows:,}), {r.duplicates} duplicates, {r.skipped} "
-          f"already done, {r.quarantined} quarantined; {len(r.labels)} labels files; model "
-          f"version {r.model_version}; {r.seconds:.1f} s")
+    learned = f"{r.learned} files learned"
+    if r.learned:
+        learned += (f" ({r.warmup_rows:,} warm-up rows, {r.rows:,} rows in {r.rounds} rounds "
+                    f"of {r.round_rows:,})")
+    print(f"{learned}, {r.duplicates} duplicates, {r.skipped} already done, {r.quarantined} "
+          f"quarantined; {len(r.labels)} labels files; model version {r.model_version}; "
+          f"{r.seconds:.1f} s")
     return 1 if r.quarantined else 0
