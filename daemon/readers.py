@@ -28,7 +28,7 @@ from shoal.daemon.errors import InputRejected, Interrupted
 __all__ = ["Frame", "read_input", "BATCH_ROWS", "FEATURE_BOUND"]
 
 BATCH_ROWS = 65536
-FEATURE_BOUND = 1e100
+FEATURE_BOUND = 1e50
 _CSV_BLOCK = 1 << 20
 _HEADER_LIMIT = 1 << 20
 # A .csv.gz may inflate this much whatever its ratio (small files compress well).
@@ -91,7 +91,8 @@ def read_input(f: BinaryIO, kind: str, settings: Settings,
     features = np.concatenate(feats, axis=0)
     pass_schema = pa.schema([_plain(schema.field(c)) for c in settings.passthrough])
     table = pa.Table.from_batches(passes, schema=pass_schema)
-    # Values past +-1e100 are refused like NaN: their squares would overflow in scoring.
+    # Values past +-1e50 are refused like NaN: squares of their log-densities (drift
+    # statistics) would overflow.
     valid = (np.abs(features) <= FEATURE_BOUND).all(axis=1)
     return Frame(features=features, passthrough=table, valid=valid)
 

@@ -130,9 +130,9 @@ extra_names = st.text("abcdefgh_", min_size=1, max_size=6).filter(lambda s: s no
 
 
 def _usable(value) -> bool:
-    """A feature value that is learned from: not null, finite, within +-1e100 (readers'
+    """A feature value that is learned from: not null, finite, within +-1e50 (readers'
     FEATURE_BOUND, past which squares overflow)."""
-    return value is not None and abs(float(value)) <= 1e100
+    return value is not None and abs(float(value)) <= 1e50
 
 
 def _value(token: str) -> float | None:
