@@ -285,6 +285,9 @@ def _check_whole(s: Settings) -> None:
             if pa == pb or pa in pb.parents or pb in pa.parents:
                 raise ConfigError(f"{b}: expected a folder apart from {a} ({pa}), "
                                   f"found {pb}")
+    if s.lifecycle.birth_rows > s.lifecycle.pool_rows:
+        raise ConfigError(f"lifecycle.birth_rows: expected at most lifecycle.pool_rows "
+                          f"({s.lifecycle.pool_rows}), found {s.lifecycle.birth_rows}")
     if s.segments.max * 2 > s.warmup_rows:
         raise ConfigError(f"warmup_rows: expected at least twice segments.max "
                           f"({2 * s.segments.max}), found {s.warmup_rows}")

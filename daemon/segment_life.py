@@ -35,7 +35,7 @@ from dataclasses import replace
 import numpy as np
 
 from shoal.config import Settings
-from shoal.core import Mixture
+from shoal.core import Mixture, ModelError
 from shoal.core.drift import Reference
 from shoal.core.lifecycle import (
     add_component,
@@ -221,7 +221,12 @@ class LifeWatch:
         count = int(members.sum())
         covered = max(n - int(self._pool_rows[members].min()), count)
         weight = float(np.clip(count / covered, _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT))
-        mixture = add_component(mixture, weight, mean, cov)
+        try:
+            mixture = add_component(mixture, weight, mean, cov)
+        except ModelError as exc:   # e.g. a group too extreme for float64: no birth
+            log_event("segment_birth_skipped", logging.WARNING, rows=count,
+                      model_version=self.version, detail=str(exc))
+            return mixture
         sid = int(mixture.ids[-1])
         self._pool_X, self._pool_rows = self._pool_X[~members], self._pool_rows[~members]
         self.state["unsettled"][str(sid)] = n

@@ -247,3 +247,15 @@ def test_births_do_not_depend_on_how_the_stream_is_cut(stream):
                                list(events_b[0]["explanation"]["mean"].values()), rtol=1e-9)
     assert mix_a.ids.tolist() == mix_b.ids.tolist()
     np.testing.assert_allclose(mix_a.data_means(), mix_b.data_means(), rtol=1e-9, atol=1e-9)
+
+
+def test_lifecycle_settings_are_checked_with_a_message_naming_the_key():
+    from shoal.config import ConfigError, parse_config
+
+    with pytest.raises(ConfigError, match=r"lifecycle.birth_rows: expected at most "
+                                          r"lifecycle.pool_rows \(100\), found 300"):
+        parse_config({"features": ["a"], "lifecycle": {"birth_rows": 300, "pool_rows": 100}})
+    with pytest.raises(ConfigError, match="lifecycle.merge_measure: expected one of"):
+        parse_config({"features": ["a"], "lifecycle": {"merge_measure": "euclid"}})
+    off = parse_config({"features": ["a"], "lifecycle": {"merge_distance": None}})
+    assert off.lifecycle.merge_distance is None and off.lifecycle.enabled
