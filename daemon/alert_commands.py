@@ -18,6 +18,7 @@ from shoal.daemon.gate import input_kind
 from shoal.daemon.layout import StateLock, prepare_folders
 from shoal.daemon.logs import setup_logging
 from shoal.daemon.pipeline import Pipeline
+from shoal.daemon.progress import progress
 from shoal.daemon.report import parse_since
 from shoal.daemon.store import StateStore
 
@@ -222,7 +223,7 @@ def replay(config: Path, folder_in: Path, *, state_dir: str | None = None,
         store = StateStore(layout.db)
         try:
             pipeline = Pipeline(settings, layout, store)
-            for path in files:
+            for path in progress(files, total=len(files), desc="replay", unit="file"):
                 r = pipeline.process(path, in_inbox=False)
                 summary["outcomes"][r.outcome] = summary["outcomes"].get(r.outcome, 0) + 1
                 summary["rows"] += r.rows
