@@ -176,7 +176,7 @@ def _parquet_batches(f: BinaryIO, settings: Settings):
         raise InputRejected("too_many_rows", f"{pf.metadata.num_rows} rows, more than "
                             f"limits.max_rows={settings.limits.max_rows}")
     _check_columns(schema.names, settings)
-    declared = _parquet_data_bytes(pf.metadata, settings.columns)
+    declared = _parquet_data_bytes(pf.metadata)
     if declared > settings.limits.max_data_bytes:
         raise _too_much_data(declared, settings, " (declared in the Parquet footer)")
     for name in settings.features:
@@ -189,13 +189,13 @@ def _parquet_batches(f: BinaryIO, settings: Settings):
                            use_threads=False), schema
 
 
-def _parquet_data_bytes(meta: pq.FileMetaData, columns) -> int:
-    """Uncompressed bytes the footer declares for ``columns`` over all row groups."""
-    wanted = set(columns)
-    index = [i for i in range(meta.num_columns)
-             if meta.schema.column(i).path.split(".")[0] in wanted]
-    return sum(meta.row_group(g).column(i).total_uncompressed_size
-               for g in range(meta.num_row_groups) for i in index)
+def _parquet_data_bytes(meta: pq.FileMetaData) -> int:
+    """Uncompressed bytes of all columns that the footer declares, summed over row groups.
+
+    Row-group totals, not column chunks: pyarrow 26 aborts the process (an uncaught
+    C++ exception) when ``RowGroupMetaData.column(i)`` meets some damaged footers.
+    """
+    return sum(meta.row_group(g).total_byte_size for g in range(meta.num_row_groups))
 
 
 def _too_much_data(n: int, settings: Settings, where: str = "") -> InputRejected:
