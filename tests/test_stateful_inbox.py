@@ -1,8 +1,10 @@
 """A stateful test of the inbox (issue 7): hypothesis picks a sequence of drops - new
-files, renames into the inbox, duplicates under a new name, corrupt files - and
+files renamed into the inbox, files written in place half-way then finished,
+duplicates under a new name, corrupt files - and
 crashes at chosen moments of an input (before its labels file, after it, after the
 commit, before the move out of the inbox), each followed by a restart from the state
-folder. Inputs are taken oldest first by ``Pipeline.process``, as the service does.
+folder. Inputs the service's readiness gate passes (on a clock the test moves) are
+taken oldest first by ``Pipeline.process``, as the service does.
 
 After every step: each committed input has exactly one labels file; no input is both
 committed and quarantined; the model version equals the committed inputs in the
@@ -15,6 +17,7 @@ does the same with SIGKILL on a real process.
 """
 import os
 import shutil
+import time
 
 import numpy as np
 import pyarrow.csv as pacsv
@@ -61,6 +64,10 @@ class Inbox(RuleBasedStateMachine):
         self.data: dict[str, bytes] = {}          # what was dropped under each name
         self.contents: list[bytes] = []
         self.crashes = 0
+        # The service's readiness gate, on a clock the test moves (settle time 2 s).
+        from shoal.daemon.gate import ReadinessGate
+        self.now = 0.0
+        self.gate = ReadinessGate(2.0, clock=lambda: self.now)
 
     # -- making drops ------------------------------------------------------------------
     def _stage(self, data: bytes, name: str):
@@ -99,12 +106,17 @@ class Inbox(RuleBasedStateMachine):
                 restore()
 
     def _drain(self) -> None:
+        """Take the ready inputs oldest first, as the service does, until none is ready."""
+        from shoal.daemon.gate import Verdict
+
         inbox = self.pipeline.layout.inbox
         while True:
             paths = sorted(inbox.iterdir(), key=lambda p: (p.stat().st_mtime_ns, p.name))
-            if not paths:
+            ready = [p for p in paths if self.gate.check(p).verdict is Verdict.READY]
+            if not ready:
                 return
-            self.pipeline.process(paths[0])
+            self.gate.forget(ready[0])
+            self.pipeline.process(ready[0])
 
     def _arm(self, point: str):
         """Make the next input crash at ``point``; return the undo."""
@@ -162,6 +174,27 @@ class Inbox(RuleBasedStateMachine):
                 "text": b"key,ts,f1,f2,f3\nk,1,0.5,warm,1\n"}[kind]
         suffix = "parquet" if kind == "truncated" else "csv"
         self._rename_in(self._stage(data, f"bad-{self.n:03d}.{suffix}"))
+        self._take_all()
+
+    @rule(rows=st.integers(50, 400), cut=st.floats(0.1, 0.9))
+    def drop_half_written_then_finish(self, rows, cut):
+        """Written in place (not renamed): not read while incomplete, read once settled."""
+        data = self._table_bytes(rows, False)
+        self.contents.append(data)
+        self.n += 1
+        name = f"slow-{self.n:03d}.csv"
+        self.data[name] = data
+        path = self.pipeline.layout.inbox / name
+        path.write_bytes(data[:int(len(data) * cut)])
+        self._take_all()
+        assert path.exists(), "a half-written file was taken"
+        with open(path, "ab") as f:
+            f.write(data[int(len(data) * cut):])
+        self._take_all()
+        assert path.exists(), "a file was taken before it settled"
+        self.now += 3.0  # past the settle time: unchanged that long, last written before it
+        past = time.time_ns() - 3 * 10**9
+        os.utime(path, ns=(past, past))
         self._take_all()
 
     @rule(rows=st.integers(50, 400), point=st.sampled_from(CRASH_POINTS))
