@@ -723,7 +723,6 @@ def _commit_all(store: StateStore, entries: list[tuple[LedgerEntry, bool]],
     The store has no public call for many inputs at once (``commit_input`` is one input
     per transaction), so this uses its row writers inside one of its transactions.
     """
-    import json
 
     now = store.clock()
     with store._transaction():
@@ -742,12 +741,7 @@ def _commit_all(store: StateStore, entries: list[tuple[LedgerEntry, bool]],
             store.db.execute("DELETE FROM warmup")
         if checkpoint is not None:
             store._insert_checkpoint(checkpoint, now)
-        for h in history:
-            store.db.execute(
-                "INSERT INTO segment_history (version, segment, weight, rows, mean, spread, "
-                "drift, event, created) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                (version, int(h.segment), float(h.weight), int(h.rows), json.dumps(h.mean),
-                 json.dumps(h.spread), None, h.event, now))
+        store._insert_history(history, version, now)
     return version
 
 

@@ -417,6 +417,15 @@ class StateStore:
         self.db.execute("UPDATE rebaselines SET applied = ?, model_version = ? WHERE id = ?",
                         (now, version, request_id))
 
+    def _insert_history(self, history, version, now) -> None:
+        """Segment history rows of one model version (inside the caller's transaction)."""
+        for h in history:
+            self.db.execute(
+                "INSERT INTO segment_history (version, segment, weight, rows, mean, spread, "
+                "drift, event, created) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                (version, int(h.segment), float(h.weight), int(h.rows), json.dumps(h.mean),
+                 json.dumps(h.spread), json.dumps(h.drift) if h.drift else None, h.event, now))
+
     def _insert_alerts(self, alerts, version: int, now: float) -> None:
         for alert_id, payload in alerts:
             self.db.execute("INSERT OR IGNORE INTO alert_outbox (id, version, created, "
@@ -457,13 +466,7 @@ class StateStore:
                 self.db.execute("DELETE FROM warmup")
             if checkpoint is not None:
                 self._insert_checkpoint(checkpoint, now)
-            for h in history:
-                self.db.execute(
-                    "INSERT INTO segment_history (version, segment, weight, rows, mean, spread, "
-                    "drift, event, created) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                    (version, int(h.segment), float(h.weight), int(h.rows), json.dumps(h.mean),
-                     json.dumps(h.spread), json.dumps(h.drift) if h.drift else None, h.event,
-                     now))
+            self._insert_history(history, version, now)
             self._insert_alerts(alerts, version, now)
             if rebaseline is not None:
                 self._mark_rebaseline(rebaseline, version, now)
