@@ -129,6 +129,19 @@ def _check_series(values, name, one_dimensional):
     return values
 
 
+class _PlainState:
+    """A detector whose whole state is its dataclass fields: plain numbers, JSON-able."""
+
+    def to_dict(self):
+        """The detector as a JSON-able dict of plain numbers."""
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, state):
+        """Rebuild a detector from :meth:`to_dict` output."""
+        return _detector_from_dict(cls, state)
+
+
 def _detector_from_dict(cls, state):
     """Rebuild a detector dataclass from its ``to_dict`` mapping, checking the keys."""
     names = [field.name for field in fields(cls)]
@@ -212,7 +225,7 @@ def cusum_update(z, k=0.5, h=5.0, upper=0.0, lower=0.0, reset=True):
 
 
 @dataclass
-class Cusum:
+class Cusum(_PlainState):
     """A two-sided tabular CUSUM whose state is plain floats.
 
     Attributes
@@ -245,14 +258,6 @@ class Cusum:
         self.n_seen += int(np.size(z))
         return result
 
-    def to_dict(self):
-        """The detector as a JSON-able dict of plain numbers."""
-        return asdict(self)
-
-    @classmethod
-    def from_dict(cls, state):
-        """Rebuild a detector from :meth:`to_dict` output."""
-        return _detector_from_dict(cls, state)
 
 
 def page_hinkley_update(
@@ -315,7 +320,7 @@ def page_hinkley_update(
 
 
 @dataclass
-class PageHinkley:
+class PageHinkley(_PlainState):
     """A Page-Hinkley test for a drop in level, whose state is plain numbers.
 
     Attributes
@@ -356,11 +361,3 @@ class PageHinkley:
         self.cumulative, self.cumulative_max = result.cumulative, result.cumulative_max
         return result
 
-    def to_dict(self):
-        """The detector as a JSON-able dict of plain numbers."""
-        return asdict(self)
-
-    @classmethod
-    def from_dict(cls, state):
-        """Rebuild a detector from :meth:`to_dict` output."""
-        return _detector_from_dict(cls, state)
