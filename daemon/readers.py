@@ -168,6 +168,11 @@ def _parquet_batches(f: BinaryIO, settings: Settings):
                             thrift_container_size_limit=_THRIFT_CONTAINER_LIMIT)
     except (pa.ArrowInvalid, OSError, ValueError) as exc:
         raise InputRejected("bad_parquet", f"Parquet metadata cannot be read: {exc}") from exc
+    except KeyError as exc:  # read_dictionary names a passthrough column the file lacks
+        name = exc.args[0].decode("utf-8", "replace") if exc.args and \
+            isinstance(exc.args[0], bytes) else str(exc)
+        raise InputRejected("missing_column", f"passthrough column {name!r} is missing",
+                            column=name) from exc
     schema = pf.schema_arrow
     if len(schema.names) > settings.limits.max_columns:
         raise InputRejected("too_many_columns", f"{len(schema.names)} columns, more than "

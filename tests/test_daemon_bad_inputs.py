@@ -82,6 +82,16 @@ def test_truncated_and_string_parquet(svc):
     _outbox_is_clean(svc, expect=2)
 
 
+def test_parquet_without_a_passthrough_column_is_quarantined(svc):
+    # Found by the deep Parquet fuzz run: pyarrow's read_dictionary raised KeyError out
+    # of the pipeline for a passthrough column the file does not have.
+    r = svc.drop(synthetic_table(7, 50, SEED).drop_columns(["key"]), "no-key.parquet")
+    assert (r.outcome, r.reason) == ("quarantined", "missing_column"), r
+    assert "'key'" in svc.sidecar("no-key.parquet")["detail"]
+    svc.good(3)
+    _outbox_is_clean(svc, expect=2)
+
+
 def test_non_finite_cells_are_null_labelled_and_file_committed(svc):
     data = (b"key,ts,f1,f2,f3\na,1,0.1,0.2,0.3\nb,2,nan,0.2,0.3\nc,3,inf,0.2,0.3\n"
             b"d,4,,0.2,0.3\ne,5,-inf,0.2,0.3\nf,6,6.0,0.1,1.0\n")
