@@ -3,8 +3,9 @@
 It holds the ledger (one row per input), model checkpoints (numpy arrays as
 ``.npy`` bytes, read back with ``allow_pickle=False``), the warm-up buffer,
 the segment history and the alert outbox. :meth:`StateStore.commit_input`
-writes everything one input changes in ONE transaction: the exactly-once rule
-of the design rests on it.
+writes everything one input changes in ONE transaction, and
+:meth:`StateStore.commit_inputs` several inputs in order in one transaction (all
+of them or none): the exactly-once rule of the design rests on it.
 """
 from __future__ import annotations
 
@@ -12,7 +13,7 @@ import io
 import json
 import sqlite3
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Iterable, Mapping
 
@@ -20,8 +21,8 @@ import numpy as np
 
 from shoal.daemon.errors import StateError
 
-__all__ = ["StateStore", "LedgerEntry", "Checkpoint", "HistoryRow", "npy_bytes", "npy_array",
-           "SCHEMA_VERSION"]
+__all__ = ["StateStore", "LedgerEntry", "Checkpoint", "HistoryRow", "InputCommit", "npy_bytes",
+           "npy_array", "SCHEMA_VERSION"]
 
 SCHEMA_VERSION = 1
 
@@ -100,10 +101,32 @@ CREATE TABLE IF NOT EXISTS rebaselines (
 """
 
 
+# .npy headers by (dtype, shape): a checkpoint stores the same dozen arrays every time.
+_NPY_HEADERS: dict[tuple[str, tuple], bytes] = {}
+
+
 def npy_bytes(array: np.ndarray) -> bytes:
-    buf = io.BytesIO()
-    np.save(buf, np.asarray(array), allow_pickle=False)
-    return buf.getvalue()
+    """``array`` as the bytes ``np.save`` writes (format 1.0), without pickle.
+
+    A C-ordered numeric array is written as its cached header plus its raw bytes
+    (byte-identical to ``np.save``, and about a hundred times quicker for the small
+    arrays of a checkpoint); anything else goes through ``np.save``.
+    """
+    a = np.asarray(array)
+    if a.dtype.hasobject or a.dtype.names is not None or not a.flags.c_contiguous:
+        buf = io.BytesIO()
+        np.save(buf, a, allow_pickle=False)
+        return buf.getvalue()
+    key = (a.dtype.str, a.shape)
+    header = _NPY_HEADERS.get(key)
+    if header is None:
+        buf = io.BytesIO()
+        np.lib.format.write_array_header_1_0(buf, np.lib.format.header_data_from_array_1_0(a))
+        header = buf.getvalue()
+        if len(_NPY_HEADERS) >= 256:
+            _NPY_HEADERS.clear()
+        _NPY_HEADERS[key] = header
+    return header + a.tobytes()
 
 
 def npy_array(blob: bytes) -> np.ndarray:
@@ -147,13 +170,22 @@ class HistoryRow:
 
 
 @dataclass
-class _Commit:
+class InputCommit:
+    """Everything one input changes in the store (the arguments of ``commit_input``).
+
+    ``learned``: the input advances the model version by one (a new input); a
+    duplicate does not. ``checkpoint.version``, when given, must be the version
+    after this input. ``alerts`` go to the outbox (an id already there is kept as
+    it was); ``rebaseline`` is a request id applied by this input.
+    """
     entry: LedgerEntry
+    learned: bool
     checkpoint: Checkpoint | None = None
     warmup_rows: np.ndarray | None = None
     clear_warmup: bool = False
-    history: list[HistoryRow] = field(default_factory=list)
-    alerts: list[tuple[str, Mapping[str, Any]]] = field(default_factory=list)
+    history: Iterable[HistoryRow] = ()
+    alerts: Iterable[tuple[str, Mapping[str, Any]]] = ()
+    rebaseline: int | None = None
 
 
 class StateStore:
@@ -445,32 +477,46 @@ class StateStore:
                      rebaseline: int | None = None) -> int:
         """Commit one input in one transaction; return the model version after it.
 
-        ``learned``: the input advances the model version by one (a new input);
-        a duplicate does not. ``checkpoint.version`` must be that new version.
-        ``alerts`` go to the outbox (an id already there is kept as it was);
-        ``rebaseline`` is a request id applied by this input.
+        The arguments are those of :class:`InputCommit`.
+        """
+        return self.commit_inputs([InputCommit(
+            entry, learned, checkpoint=checkpoint, warmup_rows=warmup_rows,
+            clear_warmup=clear_warmup, history=history, alerts=alerts,
+            rebaseline=rebaseline)])[0]
+
+    def commit_inputs(self, commits: Iterable[InputCommit]) -> list[int]:
+        """Commit several inputs, in order, in ONE transaction: all of them or none.
+
+        Each gets its own ledger row, model version, history rows, alerts and
+        warm-up rows exactly as :meth:`commit_input` would give it; only the
+        checkpoints given are stored (a caller committing a group passes the
+        last input's). Returns the model version after each input.
         """
         now = self.clock()
+        versions = []
         with self._transaction():
-            version = self.model_version + (1 if learned else 0)
-            if checkpoint is not None and checkpoint.version != version:
-                raise StateError(f"checkpoint version {checkpoint.version} does not follow "
-                                 f"model version {version - 1}")
-            entry_id = self._insert_entry(entry, model_version=version)
-            if learned:
+            start = version = self.model_version
+            for c in commits:
+                version += 1 if c.learned else 0
+                if c.checkpoint is not None and c.checkpoint.version != version:
+                    raise StateError(f"checkpoint version {c.checkpoint.version} does not "
+                                     f"follow model version {version - 1}")
+                entry_id = self._insert_entry(c.entry, model_version=version)
+                if c.warmup_rows is not None and len(c.warmup_rows):
+                    self.db.execute("INSERT INTO warmup (ledger_id, npy) VALUES (?, ?)",
+                                    (entry_id, npy_bytes(c.warmup_rows)))
+                if c.clear_warmup:
+                    self.db.execute("DELETE FROM warmup")
+                if c.checkpoint is not None:
+                    self._insert_checkpoint(c.checkpoint, now)
+                self._insert_history(c.history, version, now)
+                self._insert_alerts(c.alerts, version, now)
+                if c.rebaseline is not None:
+                    self._mark_rebaseline(c.rebaseline, version, now)
+                versions.append(version)
+            if version != start:
                 self._set_meta("model_version", str(version))
-            if warmup_rows is not None and len(warmup_rows):
-                self.db.execute("INSERT INTO warmup (ledger_id, npy) VALUES (?, ?)",
-                                (entry_id, npy_bytes(warmup_rows)))
-            if clear_warmup:
-                self.db.execute("DELETE FROM warmup")
-            if checkpoint is not None:
-                self._insert_checkpoint(checkpoint, now)
-            self._insert_history(history, version, now)
-            self._insert_alerts(alerts, version, now)
-            if rebaseline is not None:
-                self._mark_rebaseline(rebaseline, version, now)
-        return version
+        return versions
 
     def _insert_entry(self, e: LedgerEntry, model_version: int | None = None) -> int:
         cur = self.db.execute(

@@ -6,7 +6,15 @@ import numpy as np
 import pytest
 
 from shoal.daemon.errors import StateError
-from shoal.daemon.store import Checkpoint, HistoryRow, LedgerEntry, StateStore, npy_array
+from shoal.daemon.store import (
+    Checkpoint,
+    HistoryRow,
+    InputCommit,
+    LedgerEntry,
+    StateStore,
+    npy_array,
+    npy_bytes,
+)
 
 
 def _entry(name="a.csv", sha="ab" * 32, outcome="committed"):
@@ -93,3 +101,40 @@ def test_unreadable_store_is_a_state_error(tmp_path):
     db.write_bytes(b"this is not a database" * 100)
     with pytest.raises(StateError, match="cannot be used"):
         StateStore(db)
+
+
+@pytest.mark.parametrize("array", [
+    np.random.default_rng(0).normal(size=(3, 4, 4)), np.arange(5, dtype=np.int64),
+    np.float64(2.5), np.zeros((0, 3)), np.array([True, False]), np.ones(3, dtype=">f4"),
+    np.asfortranarray(np.arange(6.0).reshape(2, 3)), np.arange(12.0).reshape(3, 4)[:, ::2]])
+def test_npy_bytes_are_what_np_save_writes(array):
+    buf = io.BytesIO()
+    np.save(buf, array, allow_pickle=False)  # the reference: numpy's own .npy writer
+    for _ in range(2):  # the second time from the cached header
+        assert npy_bytes(array) == buf.getvalue()
+    back = npy_array(npy_bytes(array))
+    assert back.dtype == array.dtype and back.shape == array.shape
+    np.testing.assert_array_equal(back, array)
+
+
+def test_commit_inputs_is_one_transaction_with_a_version_per_input(tmp_path):
+    store = StateStore(tmp_path / "s.db")
+    group = [InputCommit(_entry("a.csv", sha="a" * 64), learned=True,
+                         history=[HistoryRow(0, 1.0, 5, [0.0], [1.0])], alerts=[("x1", {"n": 1})]),
+             InputCommit(_entry("b.csv", sha="a" * 64, outcome="duplicate"), learned=False),
+             InputCommit(_entry("c.csv", sha="c" * 64), learned=True, checkpoint=_cp(2),
+                         history=[HistoryRow(0, 1.0, 9, [0.5], [1.0])])]
+    assert store.commit_inputs(group) == [1, 1, 2]
+    assert [(e.name, e.model_version) for e in store.ledger()] == \
+        [("a.csv", 1), ("b.csv", 1), ("c.csv", 2)]
+    assert store.model_version == 2 and store.latest_checkpoint().version == 2
+    assert [(h["version"], h["rows"]) for h in store.history(0)] == [(1, 5), (2, 9)]
+    assert [a["version"] for a in store.alerts()] == [1]
+    # A group fails as a whole: the second input's checkpoint does not follow.
+    bad = [InputCommit(_entry("d.csv", sha="d" * 64), learned=True),
+           InputCommit(_entry("e.csv", sha="e" * 64), learned=True, checkpoint=_cp(9))]
+    with pytest.raises(StateError, match="does not follow"):
+        store.commit_inputs(bad)
+    assert store.model_version == 2 and len(store.ledger()) == 3
+    assert not store.db.in_transaction
+    store.close()
