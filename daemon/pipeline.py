@@ -6,6 +6,14 @@ until the labels file is renamed into place, and the model, the ledger row
 and the segment history are committed in one transaction afterwards; the
 input is moved to ``processed/`` only after that. A stop request abandons the
 input uncommitted (it is redone on restart, identically).
+
+:meth:`Pipeline.process_group` takes several inputs in order as one group: each
+is learned from the state the one before it left and its labels file written as
+usual, but their commits are made together in ONE transaction at the end (each
+with its own ledger row and model version; a crash loses the whole group or
+nothing), with one fsync of the outbox folder covering every labels file's
+rename, and only the last input's checkpoint stored. The inputs are moved to
+``processed/`` after that commit.
 """
 from __future__ import annotations
 
@@ -17,7 +25,7 @@ import threading
 import time
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, BinaryIO
+from typing import TYPE_CHECKING, Any, BinaryIO, Callable, Iterable
 
 import numpy as np
 
@@ -42,8 +50,8 @@ from shoal.daemon.layout import Layout
 from shoal.daemon.logs import log_event
 from shoal.daemon.quarantine import move_out, quarantine
 from shoal.daemon.readers import Frame, read_input
-from shoal.daemon.store import Checkpoint, HistoryRow, LedgerEntry, StateStore
-from shoal.daemon.writer import labels_name, labels_table, write_labels
+from shoal.daemon.store import Checkpoint, HistoryRow, InputCommit, LedgerEntry, StateStore
+from shoal.daemon.writer import fsync_dir, labels_name, labels_table, write_labels
 
 if TYPE_CHECKING:
     from shoal.daemon.monitor import DriftMonitor, InputWatch
@@ -67,6 +75,16 @@ class Result:
     reason: str | None = None
     detail: str | None = None
     model_version: int | None = None
+
+
+@dataclass
+class _Pending:
+    """An input of the open group: processed, its labels written, its commit not yet made."""
+    commit: InputCommit
+    result: Result
+    version: int                        # the model version after it
+    duration: float                     # seconds its processing took
+    after: list[Callable[[], None]] = field(default_factory=list)  # once committed
 
 
 @dataclass
@@ -110,6 +128,7 @@ class Pipeline:
         # called with new settings after a reload (SIGHUP) takes effect
         self.settings_listeners: list = []
         self.state = self.load_state()
+        self._group: list[_Pending] | None = None   # the open group (process_group)
 
     @property
     def monitor(self) -> DriftMonitor:
@@ -158,13 +177,78 @@ class Pipeline:
             return Result("refused", name, detail=str(exc))
         except InputRejected as exc:
             return self._quarantine(path, name, in_inbox, exc, seen_at, t0)
-        level = logging.INFO
-        log_event(f"input_{result.outcome}", level, file=name, rows=result.rows,
-                  rows_invalid=result.rows_invalid or None,
-                  labels=result.labels.name if result.labels else None,
-                  model_version=result.model_version,
-                  duration=round(self.monotonic() - t0, 4))
+        duration = self.monotonic() - t0
+        if self._group and self._group[-1].result is result:
+            self._group[-1].duration = duration  # logged once committed
+        else:
+            _log_result(result, duration)
         return result
+
+    # -- groups --------------------------------------------------------------------
+    def process_group(self, paths: Iterable[Path], *, in_inbox: bool = True) -> list[Result]:
+        """Process ``paths`` in order as one group, committed in one transaction at the end.
+
+        Returns a result per input taken. A quarantine (its own transaction) or an
+        input found already done first commits the inputs before it, so the ledger
+        keeps the order inputs were taken in. A stop request ends the group at the
+        input in progress: the inputs before it are committed and their results
+        returned (the rest are left for the next run). If a write or the commit
+        fails (``OSError``, ``sqlite3.Error``), nothing of the uncommitted inputs
+        is kept and the error is raised: ``self.state`` is then ahead of the store
+        and the caller reloads it (:meth:`load_state`).
+        """
+        if self._group is not None:
+            raise RuntimeError("process_group called inside a group")
+        self._group = []
+        results: list[Result] = []
+        try:
+            for path in paths:
+                self._check_stop()
+                results.append(self.process(path, in_inbox=in_inbox))
+        except Interrupted:
+            pass  # the inputs done so far are committed below
+        except BaseException:
+            self._group = None
+            raise
+        try:
+            self._flush()
+        finally:
+            self._group = None
+        return results
+
+    def _flush(self) -> None:
+        """Commit the open group's inputs in ONE transaction, then finish each."""
+        pending, self._group[:] = list(self._group), []
+        if not pending:
+            return
+        if any(p.result.labels is not None for p in pending):
+            fsync_dir(self.layout.outbox)  # the labels files' renames, before the commit
+        versions = self.store.commit_inputs([p.commit for p in pending])
+        if versions != [p.version for p in pending]:
+            raise StateError(f"the state store's model versions {versions} are not the "
+                             f"ones the group was learned as {[p.version for p in pending]}")
+        for p in pending:
+            _log_result(p.result, p.duration)
+            for step in p.after:
+                step()
+
+    def _commit(self, commit: InputCommit, version: int, result: Result,
+                *after: Callable[[], None]) -> None:
+        """Commit one input now, or (inside a group) when the group is committed;
+        ``after`` runs once the commit is durable."""
+        if self._group is not None:
+            self._group.append(_Pending(commit, result, version, 0.0, list(after)))
+            return
+        committed = self.store.commit_inputs([commit])[0]
+        if committed != version:
+            raise StateError(f"the state store's model version {committed} is not the "
+                             f"version {version} the input was learned as")
+        for step in after:
+            step()
+
+    def _pending_done(self, sha: str) -> list[LedgerEntry]:
+        """Inputs of the open group with this content (committed or duplicate)."""
+        return [p.commit.entry for p in self._group or () if p.commit.entry.sha256 == sha]
 
     def _process(self, path: Path, name: str, in_inbox: bool, seen_at: float) -> Result:
         kind = input_kind(name)
@@ -180,8 +264,10 @@ class Pipeline:
                 raise InputRejected("unsupported_type", "expected a name ending in .csv, "
                                     ".csv.gz, .parquet or .pq", size=size)
             sha = hashlib.file_digest(f, "sha256").hexdigest()
-            done = self.store.find_done(sha)
+            done = self.store.find_done(sha) + self._pending_done(sha)
             if any(e.name == name for e in done):
+                if self._group:
+                    self._flush()  # moved only once its ledger row is committed
                 self._finish(path, sha, in_inbox)
                 return Result("already_done", name, model_version=self.state.version)
             self._check_stop()
@@ -198,7 +284,11 @@ class Pipeline:
             result = self._duplicate(frame, entry)
         else:
             result = self._learn(frame, entry)
-        self._finish(path, sha, in_inbox)
+        finish = lambda: self._finish(path, sha, in_inbox)  # noqa: E731
+        if self._group:
+            self._group[-1].after.append(finish)  # after the group's commit
+        else:
+            finish()
         return result
 
     def _write(self, frame: Frame, entry: LedgerEntry, scores, version: int | None,
@@ -213,7 +303,8 @@ class Pipeline:
         self._check_stop()
         return write_labels(table, target, fmt, {"input_sha256": entry.sha256,
                                                  "input_name": entry.name,
-                                                 "model_version": version})
+                                                 "model_version": version},
+                            sync_folder=self._group is None)  # a group syncs it once
 
     def _duplicate(self, frame: Frame, entry: LedgerEntry) -> Result:
         """Same content under another name: labels written, the model not updated."""
@@ -222,9 +313,10 @@ class Pipeline:
         labels = self._write(frame, entry, scores, st.version,
                              st.extra.get("unusual_below", -np.inf))
         entry = _with(entry, outcome="duplicate", labels=labels.name)
-        self.store.commit_input(entry, learned=False)
-        return Result("duplicate", entry.name, frame.n_rows, frame.n_invalid, labels,
-                      model_version=st.version)
+        result = Result("duplicate", entry.name, frame.n_rows, frame.n_invalid, labels,
+                        model_version=st.version)
+        self._commit(InputCommit(entry, learned=False), st.version, result)
+        return result
 
     def _learn(self, frame: Frame, entry: LedgerEntry) -> Result:
         st = self.state
@@ -238,6 +330,9 @@ class Pipeline:
         rebaseline = None
         if watch is not None and st.mixture is not None:
             rebaseline = self.store.pending_rebaseline()
+            if rebaseline is not None and any(p.commit.rebaseline == rebaseline[0]
+                                              for p in self._group or ()):
+                rebaseline = None  # applied by an input of the open group
             if rebaseline is not None:
                 watch.rebaseline(st.mixture, rebaseline[1])
         mixture, scores, warmup_keep, clear_warmup = st.mixture, None, None, False
@@ -271,26 +366,37 @@ class Pipeline:
         self._check_stop()
         alerts = (watch.alerts if watch is not None else []) + \
             (life.alerts if life is not None else [])
-        committed = self.store.commit_input(
-            entry, learned=True, checkpoint=checkpoint, warmup_rows=warmup_keep,
-            clear_warmup=clear_warmup, history=history or (), alerts=alerts,
-            rebaseline=rebaseline[0] if rebaseline is not None and watch.rebaselined else None)
-        if rebaseline is not None and watch.rebaselined:
-            log_event("drift_rebaselined", model_version=committed, note=rebaseline[1])
-        if watch is not None:
-            watch.log_alerts(committed)
-        if life is not None:
-            life.log_events(committed)
+        applied = rebaseline is not None and watch.rebaselined
+        commit = InputCommit(entry, learned=True, checkpoint=checkpoint,
+                             warmup_rows=warmup_keep, clear_warmup=clear_warmup,
+                             history=history or (), alerts=alerts,
+                             rebaseline=rebaseline[0] if applied else None)
+        if checkpoint is not None:
+            # Only the group's last checkpoint is stored: those before it are not needed.
+            for p in self._group or ():
+                if p.commit.checkpoint is not None:
+                    p.commit = replace(p.commit, checkpoint=None)
+
+        def after() -> None:
+            if applied:
+                log_event("drift_rebaselined", model_version=version, note=rebaseline[1])
+            if watch is not None:
+                watch.log_alerts(version)
+            if life is not None:
+                life.log_events(version)
+            if alerts:
+                for listener in self.alert_listeners:
+                    listener(version)
+
+        result = Result("committed", entry.name, frame.n_rows, frame.n_invalid, labels,
+                        model_version=version)
+        self._commit(commit, version, result, after)
         buffered = None
         if mixture is None:
             parts = [a for a in (st.warmup, warmup_keep) if a is not None and len(a)]
             buffered = np.concatenate(parts) if parts else None
-        self.state = ModelState(committed, mixture, extra, buffered)
-        if alerts:
-            for listener in self.alert_listeners:
-                listener(committed)
-        return Result("committed", entry.name, frame.n_rows, frame.n_invalid, labels,
-                      model_version=committed)
+        self.state = ModelState(version, mixture, extra, buffered)
+        return result
 
     def _times(self, frame: Frame):
         """The time column of the valid rows (``drift.time_column``), or None."""
@@ -442,6 +548,8 @@ class Pipeline:
 
     def _quarantine(self, path: Path, name: str, in_inbox: bool, exc: InputRejected,
                     seen_at: float, t0: float) -> Result:
+        if self._group:
+            self._flush()  # the inputs before it first: the ledger keeps their order
         now = self.wall()
         facts = {k: v for k, v in exc.facts.items()}
         sidecar = quarantine(path, self.layout.quarantine, exc.reason, exc.detail,
@@ -480,6 +588,13 @@ class Pipeline:
                                        "model_version": st.version})
         return Result("labelled", path.name, frame.n_rows, frame.n_invalid, out,
                       model_version=st.version)
+
+
+def _log_result(result: Result, duration: float) -> None:
+    log_event(f"input_{result.outcome}", logging.INFO, file=result.name, rows=result.rows,
+              rows_invalid=result.rows_invalid or None,
+              labels=result.labels.name if result.labels else None,
+              model_version=result.model_version, duration=round(duration, 4))
 
 
 def _with(entry: LedgerEntry, **changes) -> LedgerEntry:

@@ -2,7 +2,10 @@
 
 One worker (the thread that calls :meth:`Service.run`) owns the pipeline and
 the model; the observer thread only enqueues paths. Ready files are taken
-oldest first (modification time, then name). A full listing at start-up and
+oldest first (modification time, then name); when several are ready they are
+taken as one group (:meth:`Pipeline.process_group`: committed in one
+transaction), so a backlog drains with one commit per group instead of per
+file, while a lone drop is committed on its own at once. A full listing at start-up and
 every ``watch.rescan_seconds`` finds what events missed; the observer is
 rebuilt if its thread dies. :meth:`Service.request_stop` (from a signal
 handler) makes ``run`` return promptly, abandoning the file in progress.
@@ -34,6 +37,11 @@ _IDLE_WAIT = 0.5
 # this long, doubling per failure in a row up to _RETRY_MAX.
 _RETRY_FIRST = 1.0
 _RETRY_MAX = 60.0
+# A group (inputs committed in one transaction) takes at most this many ready inputs
+# and, past its first, this many input bytes: small drops share a commit, a large
+# one goes on its own, and no input waits long for the ones before it.
+_GROUP_INPUTS = 64
+_GROUP_BYTES = 4 << 20
 
 
 class Service:
@@ -180,49 +188,77 @@ class Service:
                 self._consider(path)
 
     # -- work ------------------------------------------------------------------------
-    def _process_next(self) -> None:
+    def _take_ready(self) -> tuple[str, object] | None:
+        """The oldest ready path and its gate decision, or None if it is not ready now."""
         _, path = heapq.heappop(self._ready)
         self._in_ready.discard(path)
         d = self.gate.check(path)  # it may have changed or gone since it was queued
         if d.verdict is not Verdict.READY:
             if d.verdict is Verdict.WAIT:
                 self._waiting[path] = d.recheck_at
-            return
+            else:
+                self._retry_at.pop(path, None)
+            return None
         if self._ready and (d.mtime_ns, path) > self._ready[0]:
             heapq.heappush(self._ready, (d.mtime_ns, path))  # touched: no longer the oldest
             self._in_ready.add(path)
+            return None
+        return path, d
+
+    def _process_next(self) -> None:
+        """Take the ready inputs (oldest first, up to a group's bounds) and process them
+        as one group; nothing of a group is committed if a write or the commit fails."""
+        group: list[tuple[str, object]] = []
+        size = 0
+        while self._ready and len(group) < _GROUP_INPUTS:
+            taken = self._take_ready()
+            if taken is None:
+                continue
+            path, d = taken
+            if group and size + d.size > _GROUP_BYTES:
+                heapq.heappush(self._ready, (d.mtime_ns, path))  # the next group's first
+                self._in_ready.add(path)
+                break
+            group.append(taken)
+            size += d.size
+        if not group:
             return
         try:
-            result = self.pipeline.process(Path(path), in_inbox=True)
+            results = self.pipeline.process_group([Path(p) for p, _ in group], in_inbox=True)
         except (OSError, sqlite3.Error) as exc:
-            self._failed(path, exc)
+            self._failed([p for p, _ in group], exc)
             return
         self._failures = 0
-        self._retry_at.pop(path, None)
-        self._count(result.outcome)
-        self.gate.forget(path)
-        if os.path.lexists(path):
-            self._settled_out[path] = (d.size, d.mtime_ns, d.inode)
-        else:
-            self._settled_out.pop(path, None)
-        if self.on_result is not None:
-            self.on_result(result)
+        for (path, d), result in zip(group, results):
+            self._retry_at.pop(path, None)
+            self._count(result.outcome)
+            self.gate.forget(path)
+            if os.path.lexists(path):
+                self._settled_out[path] = (d.size, d.mtime_ns, d.inode)
+            else:
+                self._settled_out.pop(path, None)
+            if self.on_result is not None:
+                self.on_result(result)
+        for path, _ in group[len(results):]:  # left by a stop request: not taken
+            self.gate.forget(path)
 
-    def _failed(self, path: str, exc: BaseException) -> None:
-        """Writing or committing an input failed (ENOSPC, EIO ...): nothing of it was
-        committed. Reload the model from the store, leave the input in the inbox and
-        try it again later."""
+    def _failed(self, paths: list[str], exc: BaseException) -> None:
+        """Writing or committing a group failed (ENOSPC, EIO ...): nothing of its
+        uncommitted inputs was kept. Reload the model from the store, leave the inputs
+        in the inbox and try them again later, in the same order."""
         self._failures += 1
         wait = min(_RETRY_FIRST * 2 ** (self._failures - 1), _RETRY_MAX)
         self._count("failed")
-        log_event("input_failed", logging.ERROR, file=os.path.basename(path),
-                  detail=f"{type(exc).__name__}: {exc}", retry_seconds=wait,
-                  failures_in_a_row=self._failures)
+        log_event("input_failed", logging.ERROR, file=os.path.basename(paths[-1]),
+                  inputs=len(paths), detail=f"{type(exc).__name__}: {exc}",
+                  retry_seconds=wait, failures_in_a_row=self._failures)
         try:
             self.pipeline.state = self.pipeline.load_state()
         except (OSError, sqlite3.Error) as again:
             log_event("state_reload_failed", logging.ERROR, detail=str(again))
-        self._retry_at[path] = self._waiting[path] = self.clock() + wait
+        at = self.clock() + wait
+        for path in paths:
+            self._retry_at[path] = self._waiting[path] = at
 
     def _count(self, outcome: str) -> None:
         self.counts[outcome] = self.counts.get(outcome, 0) + 1

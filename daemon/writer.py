@@ -86,8 +86,13 @@ def fsync_dir(path: Path) -> None:
 
 
 @contextlib.contextmanager
-def atomic_file(target: Path, mode: int = OUTPUT_MODE) -> Iterator[BinaryIO]:
-    """Write ``target`` all at once: yields a binary file object for the temp file."""
+def atomic_file(target: Path, mode: int = OUTPUT_MODE,
+                sync_folder: bool = True) -> Iterator[BinaryIO]:
+    """Write ``target`` all at once: yields a binary file object for the temp file.
+
+    ``sync_folder=False`` leaves the folder's fsync (which makes the rename durable)
+    to the caller, who may cover several renames with one.
+    """
     target = Path(target)
     tmp = target.with_name(f".{target.name}.{os.getpid()}.tmp")
     fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_NOFOLLOW | os.O_CLOEXEC,
@@ -103,16 +108,19 @@ def atomic_file(target: Path, mode: int = OUTPUT_MODE) -> Iterator[BinaryIO]:
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
         raise
-    fsync_dir(target.parent)
+    if sync_folder:
+        fsync_dir(target.parent)
 
 
-def write_labels(table: pa.Table, target: Path, fmt: str, metadata: dict[str, str]) -> Path:
-    """Write ``table`` to ``target`` atomically, ``metadata`` in the Parquet schema."""
+def write_labels(table: pa.Table, target: Path, fmt: str, metadata: dict[str, str],
+                 sync_folder: bool = True) -> Path:
+    """Write ``table`` to ``target`` atomically, ``metadata`` in the Parquet schema
+    (``sync_folder``: see :func:`atomic_file`)."""
     if fmt == "parquet":
         meta = dict(table.schema.metadata or {})
         meta.update({f"shoal.{k}".encode(): str(v).encode() for k, v in metadata.items()})
         table = table.replace_schema_metadata(meta)
-    with atomic_file(target) as f:
+    with atomic_file(target, sync_folder=sync_folder) as f:
         if fmt == "parquet":
             pq.write_table(table, f, compression="zstd")
         else:
