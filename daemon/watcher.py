@@ -27,7 +27,14 @@ from watchdog.events import (
 from watchdog.observers import Observer
 from watchdog.observers.polling import PollingObserver
 
-__all__ = ["EnqueueHandler", "InboxWatcher", "scan_inbox"]
+__all__ = ["EnqueueHandler", "InboxWatcher", "scan_inbox", "EVENTS"]
+
+# The events the handler acts on. The observer asks the OS for these only: not for
+# the opens, reads, closes after reading and deletions that the worker itself makes
+# for every input, each of which would otherwise wake the observer's threads (and
+# take the interpreter lock from the worker) for an event that is thrown away.
+EVENTS = [FileMovedEvent, FileCreatedEvent, FileModifiedEvent, FileClosedEvent,
+          DirCreatedEvent]
 
 
 class EnqueueHandler(FileSystemEventHandler):
@@ -97,7 +104,7 @@ class InboxWatcher:
     def start(self) -> None:
         observer = self._factory()
         observer.daemon = True
-        observer.schedule(self.handler, str(self.inbox), recursive=False)
+        observer.schedule(self.handler, str(self.inbox), recursive=False, event_filter=EVENTS)
         observer.start()
         self._observer = observer
 

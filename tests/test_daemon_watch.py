@@ -102,3 +102,30 @@ def test_waiting_files_are_taken_oldest_first_and_kept_inputs_not_redone(tmp_pat
         svc.wait_results(3)
         assert {r.outcome for r in svc.results} == {"already_done"}
         assert svc.pipeline.state.version == 3
+
+
+def test_the_observer_is_not_woken_by_the_workers_own_reads_and_deletions(tmp_path):
+    from shoal.daemon.watcher import InboxWatcher
+
+    inbox = tmp_path / "inbox"
+    inbox.mkdir()
+    watcher = InboxWatcher(inbox)
+    seen = []
+    real = watcher.handler.on_any_event
+    watcher.handler.on_any_event = lambda event: (seen.append(type(event).__name__),
+                                                  real(event))
+    watcher.start()
+    try:
+        (tmp_path / "a.csv").write_bytes(b"key,f1\nk,1\n")
+        os.rename(tmp_path / "a.csv", inbox / "a.csv")
+        assert watcher.events.get(timeout=10) == (str(inbox / "a.csv"), True)
+        for _ in range(3):                          # what the gate and the worker do
+            with open(inbox / "a.csv", "rb") as f:
+                f.read()
+        os.unlink(inbox / "a.csv")
+        (tmp_path / "b.csv").write_bytes(b"key,f1\nk,2\n")
+        os.rename(tmp_path / "b.csv", inbox / "b.csv")  # an event after them, to wait for
+        assert watcher.events.get(timeout=10) == (str(inbox / "b.csv"), True)
+    finally:
+        watcher.stop()
+    assert seen == ["FileMovedEvent", "FileMovedEvent"], seen
