@@ -103,7 +103,10 @@ def _decoded_bytes(batch: pa.RecordBatch) -> int:
     for col in batch.columns:
         if pa.types.is_dictionary(col.type) and (pa.types.is_string(col.type.value_type)
                                                  or pa.types.is_binary(col.type.value_type)):
-            lengths = pc.take(pc.binary_length(col.dictionary), col.indices)
+            try:
+                lengths = pc.take(pc.binary_length(col.dictionary), col.indices)
+            except (pa.ArrowIndexError, pa.ArrowInvalid) as exc:  # an index past the
+                raise _explain(exc, "parquet") from exc              # dictionary (damaged)
             total += int(pc.sum(lengths).as_py() or 0) + 4 * (len(col) + 1)
         else:
             total += col.nbytes

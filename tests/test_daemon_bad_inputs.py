@@ -177,3 +177,18 @@ def _outbox_is_clean(svc, expect):
     assert names == sorted(e.labels for e in done) and len(names) == expect
     for e in done:
         assert pq.read_table(svc.layout.outbox / e.labels).num_rows == e.rows
+
+
+def test_a_dictionary_index_past_its_dictionary_is_a_bad_parquet():
+    # Found by the deep Parquet fuzz run: a damaged Parquet file decoded to a dictionary
+    # column whose index points past the dictionary, and counting its decoded bytes
+    # raised ArrowIndexError out of the pipeline.
+    from shoal.daemon.errors import InputRejected
+    from shoal.daemon.readers import _decoded_bytes
+
+    damaged = pa.DictionaryArray.from_arrays(pa.array([0, 21], pa.int32()),
+                                             pa.array(["a", "b"]), safe=False)
+    batch = pa.RecordBatch.from_arrays([damaged], names=["key"])
+    with pytest.raises(InputRejected) as caught:
+        _decoded_bytes(batch)
+    assert caught.value.reason == "bad_parquet" and "out of bounds" in caught.value.detail
