@@ -5,25 +5,32 @@ and does no validation: callers in :mod:`shoal.core.mixture` check their inputs 
 
 Each family provides
 
-``design(Z)``
+``design(Z, out=None)``
     The design matrix the other kernels read, built once per block of rows: ``[Z, 1]``
     (full), ``[Z*Z, Z, 1]`` (diag) or ``[|z|^2, Z, 1]`` (spherical). With it, scoring is
     one GEMM and the first moments (and, for diag and spherical, the second) are one
-    more.
+    more. With ``out`` (shape (n_samples, ``width(n_features)``)) it is built there.
+``width(n_features)``
+    The number of columns of the design matrix.
 ``scoring_operator(means, prec_chol, log_weights)``
     Everything scoring needs that depends only on the parameters, packed once per
     parameter refresh.
-``log_joint(A, operator)``
+``log_joint(A, operator, out=None)``
     ``log w_k + log N(z | mu_k, Sigma_k)`` for every component and every row of the
     design matrix ``A``, shape (n_components, n_samples), via the precision Cholesky
     factor: ``-0.5 (D log 2 pi + ||(z - mu) U||^2) + log det U``. Components come
-    first so that the reductions over components run along contiguous rows.
+    first so that the reductions over components run along contiguous rows. With
+    ``out`` (C-contiguous, that shape) the result is written there.
 ``moments(A, resp_w)``
     The weighted statistics ``(s0, s1, s2)`` of a block, for ``resp_w`` of shape
     (n_components, n_samples): sums of
     ``r_ik``, ``r_ik z_i`` and ``r_ik z_i z_i^T`` (full), its diagonal (diag) or its
     trace divided by ``D`` (spherical). Rows whose weight for a component is zero are
     skipped (sparse EM), which is where the full type saves most of its time.
+``weighted_moments(A, resp, row_w, floor)``
+    The statistics of a block for the stepwise update: ``moments`` with weights
+    ``resp * row_w``, where responsibilities below ``floor`` count as zero (sparse
+    EM). ``resp`` has shape (n_components, n_samples), ``row_w`` (n_samples,).
 ``covariance(s0, s1, s2, n_eff, reg_covar, prior_weight)``
     Covariances from sufficient statistics, shrunk towards the identity by a weak
     conjugate (inverse-Wishart-like) prior worth ``prior_weight`` rows, plus
@@ -41,6 +48,8 @@ Each family provides
 from __future__ import annotations
 
 import numpy as np
+from scipy.linalg import lapack
+
 from .errors import IllConditionedError
 
 __all__ = ["FAMILIES", "COVARIANCE_TYPES", "LOG_2PI"]
@@ -65,8 +74,12 @@ def _shrink(sample_cov, s0, n_eff, prior_weight, identity):
 
 
 # --------------------------------------------------------------------------- full
-def _full_design(Z):
-    A = np.empty((Z.shape[0], Z.shape[1] + 1))
+def _full_width(n_features):
+    return n_features + 1
+
+
+def _full_design(Z, out=None):
+    A = np.empty((Z.shape[0], Z.shape[1] + 1)) if out is None else out
     A[:, :-1] = Z
     A[:, -1] = 1.0
     return A
@@ -91,6 +104,37 @@ def _full_moments(A, resp_w):
     return first[:, -1], first[:, :-1], s2
 
 
+def _full_weighted_moments(A, resp, row_w, floor):
+    # Component by component on the rows that count for it: one (D+1) x (D+1) GEMM
+    # of the design gives s2, s1 and s0 together, and no (K, n) weight matrix is made.
+    n_components = resp.shape[0]
+    width = A.shape[1]
+    M = np.empty((n_components, width, width))
+    for k in range(n_components):
+        rk = resp[k]
+        rows = np.flatnonzero(rk >= floor) if floor > 0.0 else np.flatnonzero(rk)
+        if rows.size == 0:
+            M[k] = 0.0
+            continue
+        if rows.size == rk.size:
+            Ak, wk = A, rk * row_w
+        else:
+            Ak = A[rows]
+            wk = rk[rows]
+            wk *= row_w[rows]
+        M[k] = (Ak * wk[:, None]).T @ Ak
+    return M[:, -1, -1].copy(), M[:, -1, :-1].copy(), M[:, :-1, :-1].copy()
+
+
+def _dense_weighted_moments(moments):
+    def weighted_moments(A, resp, row_w, floor):
+        resp_w = resp * row_w
+        if floor > 0.0:
+            resp_w[resp < floor] = 0.0
+        return moments(A, resp_w)
+    return weighted_moments
+
+
 def _full_covariance(s0, s1, s2, n_eff, reg_covar, prior_weight):
     n_features = s1.shape[1]
     means = s1 / s0[:, None]
@@ -103,27 +147,27 @@ def _full_covariance(s0, s1, s2, n_eff, reg_covar, prior_weight):
 
 
 def _full_precision_cholesky(cov):
-    n_components, n_features, _ = cov.shape
-    try:
-        chol = np.linalg.cholesky(cov)
-    except np.linalg.LinAlgError as exc:
-        bad = [k for k in range(n_components) if not _is_positive_definite(cov[k])]
+    # LAPACK potrf (Cholesky, lower) then trtri (triangular inverse) per component:
+    # a third of the time of a batched numpy solve against the identity at K=8, D=16.
+    out = np.empty_like(cov)
+    bad = []
+    for k in range(cov.shape[0]):
+        if not np.all(np.isfinite(cov[k])):
+            bad.append(k)
+            continue
+        chol, info = lapack.dpotrf(cov[k], lower=1, clean=1)
+        if info == 0:
+            inv_chol, info = lapack.dtrtri(chol, lower=1)
+        if info != 0:
+            bad.append(k)
+            continue
+        out[k] = inv_chol.T          # upper triangular U with U U^T = cov^-1
+    if bad:
         raise IllConditionedError(
             f"the covariance of component(s) {bad} is not positive definite even after "
             f"regularisation; {_REMEDY}"
-        ) from exc
-    # inverse of the lower factor, batched; tril keeps the triangle exact
-    eye = np.broadcast_to(np.eye(n_features), cov.shape)
-    inv_chol = np.tril(np.linalg.solve(chol, eye))
-    return np.swapaxes(inv_chol, 1, 2)
-
-
-def _is_positive_definite(matrix):
-    try:
-        np.linalg.cholesky(matrix)
-    except np.linalg.LinAlgError:
-        return False
-    return True
+        )
+    return out
 
 
 def _full_log_det(prec_chol, n_features):
@@ -143,12 +187,12 @@ def _full_scoring_operator(means, prec_chol, log_weights):
     return WT, const[:, None]
 
 
-def _full_log_joint(A, operator):
+def _full_log_joint(A, operator, out=None):
     WT, const = operator
     n_samples = A.shape[0]
     n_components = const.shape[0]
     Y = (WT @ A.T).reshape(n_components, -1, n_samples)
-    half_maha = np.einsum("kdn,kdn->kn", Y, Y)
+    half_maha = np.einsum("kdn,kdn->kn", Y, Y, out=out)
     return np.subtract(const, half_maha, out=half_maha)
 
 
@@ -161,9 +205,13 @@ def _full_n_parameters(n_components, n_features):
 
 
 # --------------------------------------------------------------------------- diag
-def _diag_design(Z):
+def _diag_width(n_features):
+    return 2 * n_features + 1
+
+
+def _diag_design(Z, out=None):
     n_features = Z.shape[1]
-    A = np.empty((Z.shape[0], 2 * n_features + 1))
+    A = np.empty((Z.shape[0], 2 * n_features + 1)) if out is None else out
     np.square(Z, out=A[:, :n_features])
     A[:, n_features:-1] = Z
     A[:, -1] = 1.0
@@ -209,8 +257,8 @@ def _diag_scoring_operator(means, prec_chol, log_weights):
     return BT
 
 
-def _linear_log_joint(A, operator):
-    return operator @ A.T
+def _linear_log_joint(A, operator, out=None):
+    return np.matmul(operator, A.T, out=out)
 
 
 def _diag_matrices(var, n_features):
@@ -222,9 +270,13 @@ def _diag_n_parameters(n_components, n_features):
 
 
 # ---------------------------------------------------------------------- spherical
-def _spherical_design(Z):
+def _spherical_width(n_features):
+    return n_features + 2
+
+
+def _spherical_design(Z, out=None):
     n_features = Z.shape[1]
-    A = np.empty((Z.shape[0], n_features + 2))
+    A = np.empty((Z.shape[0], n_features + 2)) if out is None else out
     A[:, 0] = np.einsum("nd,nd->n", Z, Z)
     A[:, 1:-1] = Z
     A[:, -1] = 1.0
@@ -283,7 +335,9 @@ FAMILIES = {
     "full": _Family(
         "full",
         design=_full_design,
+        width=_full_width,
         moments=_full_moments,
+        weighted_moments=_full_weighted_moments,
         covariance=_full_covariance,
         precision_cholesky=_full_precision_cholesky,
         log_det=_full_log_det,
@@ -295,7 +349,9 @@ FAMILIES = {
     "diag": _Family(
         "diag",
         design=_diag_design,
+        width=_diag_width,
         moments=_diag_moments,
+        weighted_moments=_dense_weighted_moments(_diag_moments),
         covariance=_diag_covariance,
         precision_cholesky=_diag_precision_cholesky,
         log_det=_diag_log_det,
@@ -307,7 +363,9 @@ FAMILIES = {
     "spherical": _Family(
         "spherical",
         design=_spherical_design,
+        width=_spherical_width,
         moments=_spherical_moments,
+        weighted_moments=_dense_weighted_moments(_spherical_moments),
         covariance=_spherical_covariance,
         precision_cholesky=_diag_precision_cholesky,
         log_det=_spherical_log_det,

@@ -30,6 +30,7 @@ __all__ = ["Mixture", "Scores", "FORMAT_VERSION"]
 
 FORMAT_VERSION = 1
 BLOCK_ROWS = 2048  # rows scored at once: the (K*D, rows) intermediate stays in cache
+SPAN_ROWS = 8192   # rows whose design matrix is kept for the moments (score-only paths)
 _TINY = 10.0 * np.finfo(np.float64).eps
 
 
@@ -200,7 +201,9 @@ class Mixture:
             raise ModelError(
                 f"X should have shape (n_samples, {self.n_features}), got {X.shape}"
             )
-        if not np.all(np.isfinite(X)):
+        # a finite sum means finite rows (one pass, no temporary); if the sum is not
+        # finite, look row by row (a sum of huge finite values can overflow)
+        if not np.isfinite(np.sum(X)) and not np.all(np.isfinite(X)):
             raise ModelError("X contains NaN or infinite values; drop or mark those rows first")
         return X
 
@@ -209,16 +212,12 @@ class Mixture:
         return (self._rows(X) - self.center) / self.scale
 
     # --------------------------------------------------------------- scoring
-    def _score_block(self, Zb, out, lo):
-        """Score a block of standardised rows into the preallocated ``out`` at ``lo``.
-
-        Returns the block's design matrix, for the moments that may follow.
-        """
-        hi = lo + Zb.shape[0]
-        A = self.family.design(Zb)
+    def _score_design(self, A, out, lo, operator):
+        """Score the rows of design matrix ``A`` into the preallocated ``out`` at ``lo``."""
+        hi = lo + A.shape[0]
         # (K, n) layout: every reduction over components runs along contiguous rows.
         resp = out.resp_kn[:, lo:hi]
-        resp[...] = self.family.log_joint(A, self._scoring_operator)
+        self.family.log_joint(A, operator, out=resp)
         top = np.max(resp, axis=0)
         resp -= top
         # The most responsible component now sits at exactly 0 (first one on ties).
@@ -231,7 +230,27 @@ class Mixture:
         total = np.sum(resp, axis=0)
         resp /= total
         out.log_density[lo:hi] = np.log(total) + top - self._log_scale_sum
-        out.confidence[lo:hi] = 1.0 / total
+        np.divide(1.0, total, out=out.confidence[lo:hi])
+
+    def _score_block(self, Zb, out, lo):
+        """Score a block of standardised rows into ``out`` at ``lo``; return its design."""
+        A = self.family.design(Zb)
+        self._score_design(A, out, lo, self._scoring_operator)
+        return A
+
+    def _score_span(self, X, lo, hi, out, operator, rows=None):
+        """Score rows ``lo:hi`` of ``X`` block by block; return their design matrix.
+
+        ``rows`` standardises data-unit rows (a :class:`_Standardiser`); without it
+        ``X`` holds standardised rows already.
+        """
+        family = self.family
+        A = np.empty((hi - lo, family.width(self.n_features)))
+        for a in range(lo, hi, BLOCK_ROWS):
+            b = min(a + BLOCK_ROWS, hi)
+            Zb = X[a:b] if rows is None else rows(X[a:b])
+            Ab = family.design(Zb, out=A[a - lo : b - lo])
+            self._score_design(Ab, out, a, operator)
         return A
 
     @property
@@ -258,21 +277,29 @@ class Mixture:
         X : array-like of shape (n_samples, n_features)
             Finite rows in the data's own units.
         """
-        return self._score_z(self.standardise(X)).scores(self.ids)
+        X = self._rows(X)
+        out = _ScoreBuffer(X.shape[0], self.n_components)
+        operator = self._scoring_operator
+        rows = _Standardiser(self.center, self.scale)
+        for lo in range(0, X.shape[0], SPAN_ROWS):
+            self._score_span(X, lo, min(lo + SPAN_ROWS, X.shape[0]), out, operator, rows)
+        return out.scores(self.ids)
 
     def _score_z(self, Z, moments_weight=None):
-        """Score standardised rows block by block.
+        """Score standardised rows.
 
         With ``moments_weight`` (a float), also return the moments of the rows with
         that weight each, i.e. the batch E-step's statistics.
         """
         n = Z.shape[0]
         out = _ScoreBuffer(n, self.n_components)
+        operator = self._scoring_operator
         total = None
-        for lo in range(0, n, BLOCK_ROWS):
-            A = self._score_block(Z[lo : lo + BLOCK_ROWS], out, lo)
+        for lo in range(0, n, SPAN_ROWS):
+            hi = min(lo + SPAN_ROWS, n)
+            A = self._score_span(Z, lo, hi, out, operator)
             if moments_weight is not None:
-                part = self.family.moments(A, out.resp_kn[:, lo : lo + A.shape[0]] * moments_weight)
+                part = self.family.moments(A, out.resp_kn[:, lo:hi] * moments_weight)
                 total = part if total is None else tuple(a + b for a, b in zip(total, part))
         if moments_weight is None:
             return out
@@ -295,13 +322,9 @@ class Mixture:
         """Weighted statistics ``(s0, s1, s2)`` of a block with design matrix ``A``.
 
         ``resp_kn`` has shape (n_components, n_samples), ``row_w`` (n_samples,).
+        Responsibilities below ``resp_floor`` count as zero.
         """
-        if self.resp_floor > 0.0:
-            resp_w = np.where(resp_kn >= self.resp_floor, resp_kn, 0.0)
-            resp_w *= row_w
-        else:
-            resp_w = resp_kn * row_w
-        return self.family.moments(A, resp_w)
+        return self.family.weighted_moments(A, resp_kn, row_w, self.resp_floor)
 
     def _derive(self, s0, s1, s2, sumsq) -> dict:
         """Parameters from statistics (standardised units)."""
@@ -359,6 +382,7 @@ class Mixture:
         X = self._rows(X)
         n = X.shape[0]
         out = _ScoreBuffer(n, self.n_components)
+        rows = _Standardiser(self.center, self.scale)
         model = self  # the parameters in force; replaced at refresh points only
         s0, s1, s2, sumsq = self.s0, self.s1, self.s2, self.sumsq
         at = self.n_rows
@@ -367,12 +391,8 @@ class Mixture:
             # pieces end at refresh points, which sit at fixed places in the stream;
             # they are scored in cache-sized blocks, then learned from in one go
             take = min(n - pos, self.refresh_rows - at % self.refresh_rows)
-            designs = []
-            for lo in range(pos, pos + take, BLOCK_ROWS):
-                hi = min(lo + BLOCK_ROWS, pos + take)
-                designs.append(model._score_block((X[lo:hi] - self.center) / self.scale, out, lo))
-            A = designs[0] if len(designs) == 1 else np.concatenate(designs)
             row_w, keep = self.schedule.row_weights(at, take)
+            A = model._score_span(X, pos, pos + take, out, model._scoring_operator, rows)
             b0, b1, b2 = model._accumulate(A, out.resp_kn[:, pos : pos + take], row_w)
             s0 = keep * s0 + b0
             s1 = keep * s1 + b1
@@ -491,6 +511,33 @@ class Mixture:
             avg_count=int(meta["avg_count"]),
             **data,
         )
+
+
+class _Standardiser:
+    """``(X - center) / scale`` for blocks of up to BLOCK_ROWS rows, into one reused buffer.
+
+    On C-ordered rows the arithmetic runs over the flattened block against center and
+    scale tiled to the block's length: one long vector loop instead of a short loop per
+    row, with the same values as the broadcast expression. The result is a view of
+    the buffer, valid until the next call.
+    """
+
+    __slots__ = ("center", "scale", "_center", "_scale", "_buffer")
+
+    def __init__(self, center, scale):
+        self.center, self.scale = center, scale
+        self._center = np.tile(center, BLOCK_ROWS)
+        self._scale = np.tile(scale, BLOCK_ROWS)
+        self._buffer = np.empty(BLOCK_ROWS * center.shape[0])
+
+    def __call__(self, X):
+        size = X.size
+        if size > self._buffer.size or not X.flags.c_contiguous:
+            return (X - self.center) / self.scale
+        z = self._buffer[:size]
+        np.subtract(X.reshape(-1), self._center[:size], out=z)
+        np.divide(z, self._scale[:size], out=z)
+        return z.reshape(X.shape)
 
 
 class _ScoreBuffer:

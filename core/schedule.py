@@ -79,8 +79,11 @@ class StepSchedule:
         """``eta`` of rows ``start+1 .. start+n_rows``, shape ``(n_rows,)``."""
         if self.i0 is None:
             raise ModelError("the schedule's i0 is not resolved; call resolved(n_warmup)")
-        index = np.arange(start + 1, start + n_rows + 1, dtype=np.float64)
-        eta = (index + self.i0) ** (-self.alpha)
+        eta = np.arange(start + 1, start + n_rows + 1, dtype=np.float64)
+        eta += self.i0
+        np.log(eta, out=eta)             # (i + i0)^-alpha as exp(-alpha log(i + i0))
+        eta *= -self.alpha
+        np.exp(eta, out=eta)
         return np.maximum(eta, self.floor, out=eta)
 
     def row_weights(self, start: int, n_rows: int) -> tuple[np.ndarray, float]:
@@ -94,11 +97,14 @@ class StepSchedule:
             ``prod_j (1 - eta_j)``: the factor applied to the statistics before the batch.
         """
         eta = self.steps(start, n_rows)
-        log_keep = np.log1p(-eta)
-        # after[i] = sum_{j>i} log(1 - eta_j), summed from the end for accuracy.
-        after = np.concatenate([np.cumsum(log_keep[::-1])[::-1][1:], [0.0]])
-        weights = eta * np.exp(after)
-        keep = float(np.exp(np.sum(log_keep)))
+        keep_each = 1.0 - eta
+        # after[i] = prod_{j>i} (1 - eta_j), multiplied up from the end of the batch
+        weights = np.empty(n_rows)
+        if n_rows:
+            weights[-1] = 1.0
+            np.cumprod(keep_each[:0:-1], out=weights[-2::-1])
+        keep = float(weights[0] * keep_each[0]) if n_rows else 1.0
+        weights *= eta
         return weights, keep
 
     def average_weights(self, start: int, n_rows: int) -> tuple[np.ndarray, float]:
