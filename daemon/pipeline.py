@@ -7,6 +7,14 @@ and the segment history are committed in one transaction afterwards; the
 input is moved to ``processed/`` only after that. A stop request abandons the
 input uncommitted (it is redone on restart, identically).
 
+An input streams through in frames of 65,536 rows (whatever record batches the
+file holds), so memory does not grow with its size: each frame is scored and
+learned, and its labels appended to the labels temp file. For inputs of 8 MiB
+and more, the content hash, the reading and the labels writing run in threads
+beside the model's work; the ledger is asked once the hash is known, before
+the labels file is named, and an input it already has is taken again as a
+duplicate (or found done) with nothing of the first attempt kept.
+
 :meth:`Pipeline.process_group` takes several inputs in order as one group: each
 is learned from the state the one before it left and its labels file written as
 usual, but their commits are made together in ONE transaction at the end (each
@@ -17,6 +25,7 @@ rename, and only the last input's checkpoint stored. The inputs are moved to
 """
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import logging
 import os
@@ -28,6 +37,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, BinaryIO, Callable, Iterable
 
 import numpy as np
+import pyarrow as pa
 
 from shoal.config import Settings
 from shoal.core import (
@@ -49,9 +59,9 @@ from shoal.daemon.gate import input_kind
 from shoal.daemon.layout import Layout
 from shoal.daemon.logs import log_event
 from shoal.daemon.quarantine import move_out, quarantine
-from shoal.daemon.readers import Frame, read_input
+from shoal.daemon.readers import Frame, file_digest, iter_frames, prefetch
 from shoal.daemon.store import Checkpoint, HistoryRow, InputCommit, LedgerEntry, StateStore
-from shoal.daemon.writer import fsync_dir, labels_name, labels_table, write_labels
+from shoal.daemon.writer import fsync_dir, labels_name, labels_table, write_labels_stream
 
 if TYPE_CHECKING:
     from shoal.daemon.monitor import DriftMonitor, InputWatch
@@ -63,6 +73,10 @@ __all__ = ["Pipeline", "Result", "ModelState", "open_input"]
 # weight n / (n + _UNUSUAL_MEMORY_ROWS), i.e. the threshold follows roughly the last
 # _UNUSUAL_MEMORY_ROWS rows.
 _UNUSUAL_MEMORY_ROWS = 50_000
+# Inputs from this size on are hashed, read, learned and written by overlapping threads;
+# smaller ones in the worker's thread (starting a thread can take a few ms: a switch
+# interval of the interpreter lock).
+_THREADED_BYTES = 8 << 20
 
 
 @dataclass
@@ -263,27 +277,40 @@ class Pipeline:
             if kind is None:
                 raise InputRejected("unsupported_type", "expected a name ending in .csv, "
                                     ".csv.gz, .parquet or .pq", size=size)
-            sha = hashlib.file_digest(f, "sha256").hexdigest()
-            done = self.store.find_done(sha) + self._pending_done(sha)
-            if any(e.name == name for e in done):
-                if self._group:
-                    self._flush()  # moved only once its ledger row is committed
-                self._finish(path, sha, in_inbox)
-                return Result("already_done", name, model_version=self.state.version)
             self._check_stop()
-            f.seek(0)
-            try:
-                frame = read_input(f, kind, self.settings, self.stop.is_set)
-            except InputRejected as exc:
-                exc.facts.setdefault("sha256", sha)
-                exc.facts.setdefault("size", size)
-                raise
-        entry = LedgerEntry(sha256=sha, name=name, size=size, outcome="committed",
-                            rows=frame.n_rows, rows_invalid=frame.n_invalid, seen_at=seen_at)
-        if done:
-            result = self._duplicate(frame, entry)
-        else:
-            result = self._learn(frame, entry)
+            entry = LedgerEntry(sha256="", name=name, size=size, outcome="committed",
+                                seen_at=seen_at)
+            # The content hash is made in a thread while the input is learned as if new;
+            # the ledger is asked before the labels are written: an input it already
+            # has is dropped there (nothing of it was kept) and taken as below.
+            threaded = size >= _THREADED_BYTES
+            with file_digest(f, threaded) as digest:
+                def claim() -> str:
+                    sha = digest.result()
+                    done = self.store.find_done(sha) + self._pending_done(sha)
+                    if done:
+                        raise _Seen(sha, done)
+                    return sha
+
+                try:
+                    try:
+                        result = self._learn(self._frames(f, kind, threaded), entry, claim)
+                    except _Seen as seen:
+                        if any(e.name == name for e in seen.done):
+                            if self._group:
+                                self._flush()  # moved only once its ledger row is committed
+                            self._finish(path, seen.sha, in_inbox)
+                            return Result("already_done", name,
+                                          model_version=self.state.version)
+                        f.seek(0)
+                        result = self._duplicate(self._frames(f, kind, threaded),
+                                                 _with(entry, sha256=seen.sha))
+                except InputRejected as exc:
+                    with contextlib.suppress(OSError, RuntimeError):
+                        exc.facts.setdefault("sha256", digest.result())
+                    exc.facts.setdefault("size", size)
+                    raise
+                sha = digest.result()
         finish = lambda: self._finish(path, sha, in_inbox)  # noqa: E731
         if self._group:
             self._group[-1].after.append(finish)  # after the group's commit
@@ -291,41 +318,66 @@ class Pipeline:
             finish()
         return result
 
-    def _write(self, frame: Frame, entry: LedgerEntry, scores, version: int | None,
-               unusual_below: float) -> Path:
-        fmt = self.settings.output.format
-        target = self.layout.outbox / labels_name(entry.name, entry.sha256, fmt)
-        table = labels_table(frame.passthrough, frame.valid,
-                             None if scores is None else scores.segment,
-                             None if scores is None else scores.confidence,
-                             None if scores is None else scores.log_density,
-                             unusual_below, version)
-        self._check_stop()
-        return write_labels(table, target, fmt, {"input_sha256": entry.sha256,
-                                                 "input_name": entry.name,
-                                                 "model_version": version},
-                            sync_folder=self._group is None)  # a group syncs it once
+    def _frames(self, f: BinaryIO, kind: str, threaded: bool) -> prefetch:
+        """The input's frames, read in a thread a few frames ahead of the model."""
+        return prefetch(iter_frames(f, kind, self.settings, self.stop.is_set),
+                        threaded=threaded)
 
-    def _duplicate(self, frame: Frame, entry: LedgerEntry) -> Result:
+    def _write(self, frames: prefetch, tables: Callable[[Iterable[Frame]], Iterable[pa.Table]],
+               entry: LedgerEntry, version: Callable[[], int | None],
+               claim: Callable[[], str] | None = None) -> tuple[Path, str]:
+        """Write the labels ``tables(frames)`` as they are made; returns the file and the
+        input's hash. When the first table is made, ``claim()`` gives the hash (when
+        ``entry`` has none yet) and ``version()`` the labels' model version (None
+        without scores)."""
+        fmt = self.settings.output.format
+        sha = [entry.sha256]
+
+        def metadata() -> dict:
+            if claim is not None:
+                sha[0] = claim()
+            return {"input_sha256": sha[0], "input_name": entry.name,
+                    "model_version": version()}
+
+        def checked(frames):
+            for table in tables(frames):
+                self._check_stop()
+                yield table
+        # named after a placeholder hash until the hash is known
+        target = self.layout.outbox / labels_name(entry.name, entry.sha256 or "0" * 16, fmt)
+        with frames:
+            path = write_labels_stream(
+                checked(frames), target, fmt, metadata,
+                sync_folder=self._group is None,  # a group syncs it once
+                final=lambda: self.layout.outbox / labels_name(entry.name, sha[0], fmt),
+                threaded=frames.threaded)
+        return path, sha[0]
+
+    def _duplicate(self, frames: prefetch, entry: LedgerEntry) -> Result:
         """Same content under another name: labels written, the model not updated."""
         st = self.state
-        scores = st.mixture.score(frame.features[frame.valid]) if st.mixture else None
-        labels = self._write(frame, entry, scores, st.version,
-                             st.extra.get("unusual_below", -np.inf))
-        entry = _with(entry, outcome="duplicate", labels=labels.name)
-        result = Result("duplicate", entry.name, frame.n_rows, frame.n_invalid, labels,
+        count = _Count()
+
+        def tables(frames):
+            return _scored_tables(count.counted(frames), st.mixture,
+                                  st.extra.get("unusual_below", -np.inf), st.version)
+        labels, _ = self._write(frames, tables, entry, lambda: st.version)
+        entry = _with(entry, outcome="duplicate", labels=labels.name, rows=count.rows,
+                      rows_invalid=count.invalid)
+        result = Result("duplicate", entry.name, count.rows, count.invalid, labels,
                         model_version=st.version)
         self._commit(InputCommit(entry, learned=False), st.version, result)
         return result
 
-    def _learn(self, frame: Frame, entry: LedgerEntry) -> Result:
+    def _learn(self, frames: prefetch, entry: LedgerEntry,
+               claim: Callable[[], str]) -> Result:
         st = self.state
-        X = frame.features[frame.valid]
         version = st.version + 1
         extra = dict(st.extra)
-        watch = self.monitor.begin(extra.get("drift"), version=version, file=entry.name,
-                                   times=self._times(frame),
-                                   unusual_below=extra.get("unusual_below"))
+        watch = None
+        if self.settings.drift.enabled:
+            watch = self.monitor.begin(extra.get("drift"), version=version, file=entry.name,
+                                       unusual_below=extra.get("unusual_below"))
         life = self._life(extra.get("lifecycle"), version, entry.name)
         rebaseline = None
         if watch is not None and st.mixture is not None:
@@ -335,25 +387,17 @@ class Pipeline:
                 rebaseline = None  # applied by an input of the open group
             if rebaseline is not None:
                 watch.rebaseline(st.mixture, rebaseline[1])
-        mixture, scores, warmup_keep, clear_warmup = st.mixture, None, None, False
-        if mixture is None:
-            mixture, scores, warmup_keep, init_extra = self._warm_up(X, watch, life)
-            clear_warmup = mixture is not None
-            if mixture is not None:
-                extra.update(init_extra)
-                extra = self._born(extra, mixture, version)
-        else:
-            mixture, scores = self._learn_chunks(mixture, X, watch, life)
+        run = _Run(self, extra, version, watch, life)
+        labels, sha = self._write(frames, run.tables, entry,
+                                  lambda: version if run.scored else None, claim)
+        mixture, extra = run.mixture, run.extra
+        warmup_keep, clear_warmup = run.warmup_keep, run.clear_warmup
+        if mixture is not None:
             extra = self._born(extra, mixture, version)
         if watch is not None and watch.state is not None:
             extra["drift"] = watch.state
         if life is not None and mixture is not None:
             extra["lifecycle"] = life.final_state()
-        if scores is not None and mixture is not None:
-            extra = self._after_scoring(extra, scores, mixture)
-        unusual_below = extra.get("unusual_below", -np.inf)
-        labels = self._write(frame, entry, scores, version if scores is not None else None,
-                             unusual_below)
         checkpoint = history = None
         if mixture is not None:
             arrays, meta = mixture.to_state()
@@ -362,7 +406,8 @@ class Pipeline:
                                watch.segment_drift() if watch is not None else None)
             if life is not None:
                 history = life.history(history)
-        entry = _with(entry, labels=labels.name)
+        entry = _with(entry, sha256=sha, labels=labels.name, rows=run.rows,
+                      rows_invalid=run.invalid)
         self._check_stop()
         alerts = (watch.alerts if watch is not None else []) + \
             (life.alerts if life is not None else [])
@@ -388,7 +433,7 @@ class Pipeline:
                 for listener in self.alert_listeners:
                     listener(version)
 
-        result = Result("committed", entry.name, frame.n_rows, frame.n_invalid, labels,
+        result = Result("committed", entry.name, run.rows, run.invalid, labels,
                         model_version=version)
         self._commit(commit, version, result, after)
         buffered = None
@@ -575,18 +620,19 @@ class Pipeline:
         if kind is None:
             raise InputRejected("unsupported_type", "expected a name ending in .csv, .csv.gz, "
                                 ".parquet or .pq")
+        fmt = "csv" if out.name.lower().endswith(".csv") else "parquet"
+        count = _Count()
         with open_input(path) as f:
             sha = hashlib.file_digest(f, "sha256").hexdigest()
             f.seek(0)
-            frame = read_input(f, kind, self.settings, self.stop.is_set)
-        scores = st.mixture.score(frame.features[frame.valid])
-        fmt = "csv" if out.name.lower().endswith(".csv") else "parquet"
-        table = labels_table(frame.passthrough, frame.valid, scores.segment, scores.confidence,
-                             scores.log_density, st.extra.get("unusual_below", -np.inf),
-                             st.version)
-        write_labels(table, out, fmt, {"input_sha256": sha, "input_name": path.name,
-                                       "model_version": st.version})
-        return Result("labelled", path.name, frame.n_rows, frame.n_invalid, out,
+            with self._frames(f, kind, os.fstat(f.fileno()).st_size >= _THREADED_BYTES) \
+                    as frames:
+                tables = _scored_tables(count.counted(frames), st.mixture,
+                                        st.extra.get("unusual_below", -np.inf), st.version)
+                write_labels_stream(tables, out, fmt, lambda: {
+                    "input_sha256": sha, "input_name": path.name,
+                    "model_version": st.version}, threaded=frames.threaded)
+        return Result("labelled", path.name, count.rows, count.invalid, out,
                       model_version=st.version)
 
 
@@ -622,3 +668,150 @@ def _history(mixture: Mixture, extra: dict, drift: dict | None = None) -> list[H
                        rows=int(counts.get(str(int(sid)), 0)), mean=means[k].tolist(),
                        spread=stds[k].tolist(), drift=drift.get(str(int(sid))))
             for k, sid in enumerate(mixture.ids.tolist())]
+
+
+# -- the read -> score -> learn -> labels loop -----------------------------------------
+class _Seen(Exception):
+    """The ledger (or the open group) already has an input of this content."""
+
+    def __init__(self, sha: str, done: list[LedgerEntry]):
+        super().__init__(sha)
+        self.sha, self.done = sha, done
+
+
+class _Count:
+    """Rows and rows without a segment of the frames that went through ``counted``."""
+
+    def __init__(self):
+        self.rows = self.invalid = 0
+
+    def counted(self, frames: Iterable[Frame]):
+        for frame in frames:
+            self.rows += frame.n_rows
+            self.invalid += frame.n_invalid
+            yield frame
+
+
+def _valid_rows(frame: Frame) -> np.ndarray:
+    return frame.features if frame.n_invalid == 0 else frame.features[frame.valid]
+
+
+def _scored_tables(frames: Iterable[Frame], mixture: Mixture | None, unusual_below: float,
+                   version: int):
+    """Labels tables of ``frames`` scored by a fixed ``mixture`` (None: no model yet)."""
+    for frame in frames:
+        scores = mixture.score(_valid_rows(frame)) if mixture is not None else None
+        yield _labels(frame, scores, unusual_below, version)
+
+
+def _labels(frame: Frame, scores, unusual_below: float, version: int | None) -> pa.Table:
+    return labels_table(frame.passthrough, frame.valid,
+                        None if scores is None else scores.segment,
+                        None if scores is None else scores.confidence,
+                        None if scores is None else scores.log_density,
+                        unusual_below, version)
+
+
+def _rows_of(scores, start: int, stop: int):
+    return type(scores)(**{name: getattr(scores, name)[start:stop]
+                           for name in scores.__dataclass_fields__})
+
+
+class _Run:
+    """One input's frames learned in order: :meth:`tables` yields each frame's labels
+    once its rows are scored; afterwards ``mixture``, ``extra``, the warm-up buffer
+    changes and the row counts go to the commit.
+
+    Frames wait (``held``) while there is no model yet, and until the first rows are
+    scored, so that labels and the labels file's model version are those of the whole
+    input. The unusual-row threshold moves once per scored step (one frame, or the
+    frames up to the end of the warm-up), so an input of one frame is labelled as it
+    always was; a larger input's later frames are labelled with the threshold that has
+    followed its earlier ones.
+    """
+
+    def __init__(self, pipeline: Pipeline, extra: dict, version: int,
+                 watch: InputWatch | None, life: LifeWatch | None):
+        self.pipeline = pipeline
+        self.mixture = pipeline.state.mixture
+        self.extra = extra
+        self.version = version
+        self.watch, self.life = watch, life
+        self.rows = self.invalid = 0
+        self.scored = False            # some rows got scores (the labels' model version)
+        self.warmup_keep: np.ndarray | None = None
+        self.clear_warmup = False
+        self.held: list[Frame] = []
+        self.held_scores: list = []     # scores of the held frames once made
+        self.warm_up_tried = False
+
+    def tables(self, frames: Iterable[Frame]):
+        for frame in frames:
+            self.rows += frame.n_rows
+            self.invalid += frame.n_invalid
+            self.held.append(frame)
+            if self.mixture is None:
+                self._warm_up()
+            else:
+                self._learn(frame)
+            if self.scored or self.mixture is None:
+                yield from self._release()
+        if self.mixture is None:
+            parts = [_valid_rows(f) for f in self.held]
+            rows = np.concatenate(parts) if parts else None
+            self.warmup_keep = rows if rows is not None and len(rows) else None
+        self.held_scores += [None] * (len(self.held) - len(self.held_scores))
+        yield from self._release(force=True)
+
+    def _release(self, force: bool = False):
+        """Labels of the held frames, if their scores are known (or the input ended)."""
+        if not force and (self.mixture is None or not self.scored):
+            return
+        unusual_below = self.extra.get("unusual_below", -np.inf)
+        version = self.version if self.scored else None
+        for frame, scores in zip(self.held, self.held_scores):
+            yield _labels(frame, scores, unusual_below, version)
+        self.held, self.held_scores = [], []
+
+    def _times(self, frames: list[Frame]):
+        if self.watch is None:
+            return
+        times = [self.pipeline._times(f) for f in frames]
+        self.watch.times = None if times[0] is None else np.concatenate(times)
+
+    def _learn(self, frame: Frame) -> None:
+        X = _valid_rows(frame)
+        self._times([frame])
+        self.mixture, scores = self.pipeline._learn_chunks(self.mixture, X, self.watch,
+                                                           self.life)
+        self.held_scores.append(scores)
+        self._scored(scores)
+
+    def _scored(self, scores) -> None:
+        if scores is None or not len(scores.log_density):
+            return
+        self.scored = True
+        self.extra = self.pipeline._after_scoring(self.extra, scores, self.mixture)
+
+    def _warm_up(self) -> None:
+        """Fit the first model once the buffer and the held frames hold enough rows (one
+        try per input, as the rows it is fitted on are the first ``warmup_rows``)."""
+        p = self.pipeline
+        buffered = 0 if p.state.warmup is None else len(p.state.warmup)
+        if self.warm_up_tried or \
+                buffered + sum(f.n_rows - f.n_invalid for f in self.held) < p.settings.warmup_rows:
+            return
+        self.warm_up_tried = True
+        X = np.concatenate([_valid_rows(f) for f in self.held])
+        self._times(self.held)
+        mixture, scores, _, init_extra = p._warm_up(X, self.watch, self.life)
+        if mixture is None:
+            return
+        self.mixture, self.clear_warmup = mixture, True
+        self.extra.update(init_extra)
+        start = 0
+        for f in self.held:
+            n = f.n_rows - f.n_invalid
+            self.held_scores.append(_rows_of(scores, start, start + n))
+            start += n
+        self._scored(scores)

@@ -121,7 +121,7 @@ class Inbox(RuleBasedStateMachine):
     def _arm(self, point: str):
         """Make the next input crash at ``point``; return the undo."""
         pm, store = pipeline_module, self.store
-        saved = {"write_labels": pm.write_labels, "move_out": pm.move_out,
+        saved = {"write_labels": pm.write_labels_stream, "move_out": pm.move_out,
                  "commit_input": store.commit_input}
 
         def write_labels(*a, **k):
@@ -143,10 +143,11 @@ class Inbox(RuleBasedStateMachine):
                 raise Crash(point)
             return saved["move_out"](*a, **k)
 
-        pm.write_labels, pm.move_out, store.commit_input = write_labels, move_out, commit_input
+        pm.write_labels_stream, pm.move_out, store.commit_input = write_labels, move_out, \
+            commit_input
 
         def restore():
-            pm.write_labels, pm.move_out = saved["write_labels"], saved["move_out"]
+            pm.write_labels_stream, pm.move_out = saved["write_labels"], saved["move_out"]
             store.__dict__.pop("commit_input", None)
         return restore
 

@@ -1,0 +1,172 @@
+"""Inputs read, learned and labelled frame by frame (issue 9): the frames do not depend
+on how the file cuts its record batches, the model and labels do not depend on the frame
+size, and a reader-thread error ends as a quarantine, not a hang."""
+import functools
+
+import numpy as np
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+import pytest
+
+from shoal.config import load_config
+from shoal.daemon import pipeline as pipeline_module
+from shoal.daemon import readers
+from shoal.daemon.cli import open_service_parts
+from shoal.daemon.drills import synthetic_table, write_config
+from shoal.daemon.readers import iter_frames, prefetch
+
+SEED = 9
+
+
+@pytest.fixture(params=[True, False], ids=["threads", "inline"])
+def threaded(request, monkeypatch):
+    """Inputs taken by overlapping threads (as large inputs are) or in one thread."""
+    monkeypatch.setattr(pipeline_module, "_THREADED_BYTES", 0 if request.param else 1 << 40)
+    return request.param
+
+
+def test_frames_do_not_depend_on_the_files_record_batches(tmp_path):
+    table = synthetic_table(0, 5000, SEED)
+    pq.write_table(table, tmp_path / "one.parquet")
+    pq.write_table(table, tmp_path / "many.parquet", row_group_size=333)
+    pacsv.write_csv(table, tmp_path / "rows.csv")
+    settings = load_config(write_config(tmp_path))
+
+    def frames(name, kind):
+        with open(tmp_path / name, "rb") as f:
+            return list(iter_frames(f, kind, settings, rows=1024))
+
+    one, many, csv = (frames("one.parquet", "parquet"), frames("many.parquet", "parquet"),
+                      frames("rows.csv", "csv"))
+    assert [fr.n_rows for fr in one] == [1024] * 4 + [904]
+    for a, b, c in zip(one, many, csv):
+        np.testing.assert_array_equal(a.features, b.features)
+        np.testing.assert_array_equal(a.features, c.features)
+        assert a.passthrough.equals(b.passthrough)
+        assert a.features.flags.c_contiguous and a.valid.all()
+    X = np.concatenate([fr.features for fr in one])
+    for j, name in enumerate(["f1", "f2", "f3"]):
+        np.testing.assert_array_equal(X[:, j], table.column(name).to_numpy())
+
+
+def _learn_two_inputs(folder, monkeypatch, frame_rows, row_group_rows=None):
+    """Two inputs (the first one ends the warm-up part-way) learned in frames of
+    ``frame_rows``; returns the model's state arrays and the labels tables."""
+    monkeypatch.setattr(pipeline_module, "iter_frames",
+                        functools.partial(readers.iter_frames, rows=frame_rows))
+    settings = load_config(write_config(folder, warmup_rows=600))
+    drops = []
+    for i, rows in enumerate((3000, 5000)):
+        drops.append(folder / f"in-{i}.parquet")
+        pq.write_table(synthetic_table(i, rows, SEED), drops[-1], row_group_size=row_group_rows)
+    with open_service_parts(settings) as (layout, store, pipeline):
+        results = [pipeline.process(p, in_inbox=False) for p in drops]
+        arrays, _ = pipeline.state.mixture.to_state()
+    assert [r.outcome for r in results] == ["committed"] * 2
+    assert [r.rows for r in results] == [3000, 5000]
+    return arrays, [pq.read_table(r.labels) for r in results]
+
+
+def test_model_and_labels_do_not_depend_on_the_files_record_batches(tmp_path, monkeypatch,
+                                                                    threaded):
+    arrays_a, labels_a = _learn_two_inputs(tmp_path / "a", monkeypatch, 1024, 97)
+    arrays_b, labels_b = _learn_two_inputs(tmp_path / "b", monkeypatch, 1024)
+    for name in arrays_a:   # the same frames: identical to the bit
+        np.testing.assert_array_equal(arrays_a[name], arrays_b[name], err_msg=name)
+    for a, b in zip(labels_a, labels_b):
+        assert a.equals(b)
+
+
+def test_model_and_labels_hardly_depend_on_the_frame_size(tmp_path, monkeypatch):
+    arrays_a, labels_a = _learn_two_inputs(tmp_path / "a", monkeypatch, 256)
+    arrays_b, labels_b = _learn_two_inputs(tmp_path / "b", monkeypatch, 65_536)
+    assert arrays_a.keys() == arrays_b.keys()
+    for name in arrays_a:
+        # stepwise EM is cut-invariant up to rounding (tests/test_core_stepwise.py)
+        np.testing.assert_allclose(arrays_a[name], arrays_b[name], rtol=1e-9, atol=1e-12,
+                                   err_msg=name)
+    for a, b in zip(labels_a, labels_b):
+        # the unusual-row threshold moves once per frame, so that column may differ
+        assert a.column("segment").null_count == 0
+        for name in ("key", "ts", "segment", "model_version"):
+            assert a.column(name).equals(b.column(name)), name
+        for name in ("confidence", "log_density"):
+            np.testing.assert_allclose(a.column(name).to_numpy(), b.column(name).to_numpy(),
+                                       rtol=1e-9, atol=1e-12)
+
+
+def test_a_reader_error_part_way_is_a_quarantine(tmp_path, monkeypatch, threaded):
+    monkeypatch.setattr(pipeline_module, "iter_frames",
+                        functools.partial(readers.iter_frames, rows=500))
+    settings = load_config(write_config(tmp_path, warmup_rows=600))
+    good = tmp_path / "good.parquet"
+    pq.write_table(synthetic_table(0, 1000, SEED), good)
+    lines = (tmp_path / "x.csv")
+    pacsv.write_csv(synthetic_table(1, 3000, SEED), lines)
+    text = lines.read_text().splitlines()
+    text[2001] = "k,1,0.5,warm,1"            # line 2002: frames before it are learned first
+    bad = tmp_path / "bad.csv"
+    bad.write_text("\n".join(text) + "\n")
+    with open_service_parts(settings) as (layout, store, pipeline):
+        first = pipeline.process(good, in_inbox=False)
+        assert first.outcome == "committed"
+        r = pipeline.process(bad, in_inbox=False)
+        assert (r.outcome, r.reason) == ("quarantined", "non_numeric_feature"), r
+        assert "line 2002" in r.detail
+        assert pipeline.state.version == store.model_version == 1
+        assert [p.name for p in layout.outbox.iterdir()] == [first.labels.name]  # no partial
+
+
+def test_prefetch_hands_on_an_error_after_the_items_before_it():
+    def items():
+        yield 1
+        yield 2
+        raise ValueError("boom")
+
+    got = []
+    with pytest.raises(ValueError, match="boom"):
+        with prefetch(items()) as ahead:
+            for x in ahead:
+                got.append(x)
+    assert got == [1, 2]
+
+
+def test_prefetch_left_early_stops_its_reader():
+    made = []
+
+    def items():
+        for i in range(1000):
+            made.append(i)
+            yield i
+
+    with prefetch(items(), depth=2) as ahead:
+        for x in ahead:
+            if x == 3:
+                break
+    assert 4 <= len(made) <= 8   # a few items ahead at most; the thread is joined
+
+
+def test_an_input_seen_before_is_learned_once_whatever_was_done_before_its_hash(tmp_path,
+                                                                               threaded):
+    """The hash is made while the input is learned; a duplicate or an input already done
+    is found before its labels are written, and nothing of the attempt is kept."""
+    settings = load_config(write_config(tmp_path, warmup_rows=600))
+    first, again, other = (tmp_path / n for n in ("a.parquet", "b.parquet", "c.parquet"))
+    pq.write_table(synthetic_table(0, 1500, SEED), first)
+    again.write_bytes(first.read_bytes())
+    pq.write_table(synthetic_table(1, 1500, SEED), other)
+    with open_service_parts(settings) as (layout, store, pipeline):
+        a = pipeline.process(first, in_inbox=False)
+        b = pipeline.process(again, in_inbox=False)
+        a2 = pipeline.process(first, in_inbox=False)
+        c = pipeline.process(other, in_inbox=False)
+        assert [r.outcome for r in (a, b, a2, c)] == \
+            ["committed", "duplicate", "already_done", "committed"]
+        assert [r.model_version for r in (a, b, a2, c)] == [1, 1, 1, 2]
+        assert store.model_version == 2
+        names = sorted(p.name for p in layout.outbox.iterdir())
+        assert names == sorted([a.labels.name, b.labels.name, c.labels.name])  # no temp
+        la, lb = pq.read_table(a.labels), pq.read_table(b.labels)
+        assert la.column("segment").equals(lb.column("segment"))
+        meta = pq.read_schema(b.labels).metadata
+        assert meta[b"shoal.input_sha256"].decode()[:16] in b.labels.name
