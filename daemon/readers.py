@@ -329,7 +329,7 @@ def _guard(batches, kind: str):
             return
         except InputRejected:
             raise
-        except (pa.ArrowInvalid, pa.ArrowKeyError, OSError, EOFError, ValueError) as exc:
+        except (pa.ArrowException, OSError, EOFError, ValueError) as exc:
             raise _explain(exc, kind) from exc
         yield batch
 
@@ -356,7 +356,7 @@ def _parquet_batches(f: BinaryIO, settings: Settings):
                             buffer_size=_PARQUET_BUFFER, pre_buffer=False,
                             thrift_string_size_limit=_THRIFT_STRING_LIMIT,
                             thrift_container_size_limit=_THRIFT_CONTAINER_LIMIT)
-    except (pa.ArrowInvalid, OSError, ValueError) as exc:
+    except (pa.ArrowException, OSError, ValueError) as exc:  # ArrowNotImplementedError too
         raise InputRejected("bad_parquet", f"Parquet metadata cannot be read: {exc}") from exc
     except KeyError as exc:  # read_dictionary names a passthrough column the file lacks
         name = exc.args[0].decode("utf-8", "replace") if exc.args and \

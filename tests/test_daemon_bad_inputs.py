@@ -192,3 +192,15 @@ def test_a_dictionary_index_past_its_dictionary_is_a_bad_parquet():
     with pytest.raises(InputRejected) as caught:
         _decoded_bytes(batch)
     assert caught.value.reason == "bad_parquet" and "out of bounds" in caught.value.detail
+
+
+def test_a_footer_declaring_a_128_bit_integer_is_a_bad_parquet(svc):
+    # Found by the deep Parquet fuzz run (the file is its shrunk example): a damaged
+    # footer made pyarrow raise ArrowNotImplementedError ("Integers with more than 64
+    # bits not implemented") out of the pipeline.
+    data = (Path(__file__).parent / "data" / "damaged-footer-int128.parquet").read_bytes()
+    r = svc.drop_bytes(data, "int128.parquet")
+    assert (r.outcome, r.reason) == ("quarantined", "bad_parquet"), r
+    assert "more than 64 bits" in svc.sidecar("int128.parquet")["detail"]
+    svc.good(4)
+    _outbox_is_clean(svc, expect=2)
