@@ -18,13 +18,14 @@ in the same way, and the parameters are derived from them as at a refresh point.
 
 from __future__ import annotations
 
+import functools
 import warnings
 from dataclasses import replace
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
-from .distances import bhattacharyya_distance, hellinger_distance
+from .distances import bhattacharyya_distance, hellinger_distance, pairwise_bhattacharyya
 from .errors import ModelError
 from .mixture import Mixture
 
@@ -37,6 +38,7 @@ __all__ = [
     "overlapping_pairs",
     "retire",
     "segment_index",
+    "chi2_quantile",
     "squared_mahalanobis",
     "unexplained",
     "unexplained_below",
@@ -54,6 +56,16 @@ _AVG_STATS = ("avg_s0", "avg_s1", "avg_s2")
 
 
 # --------------------------------------------------------------------------- helpers
+@functools.lru_cache(maxsize=64)
+def _chi2_quantile(probability: float, dof: int) -> float:
+    return float(2.0 * special.gammaincinv(0.5 * dof, probability))
+
+
+def chi2_quantile(probability, dof) -> float:
+    """The chi-square(``dof``) quantile at ``probability`` (as ``scipy.stats.chi2.ppf``,
+    which computes ``2 gammaincinv(dof / 2, p)``; cached, and without importing
+    scipy.stats, which costs seconds at start-up)."""
+    return _chi2_quantile(float(probability), int(dof))
 
 
 def segment_index(ids, segment_id, where="the mixture") -> int:
@@ -214,13 +226,10 @@ def overlap(mixture: Mixture, measure: str = "hellinger") -> np.ndarray:
     """
     if measure not in OVERLAP_MEASURES:
         raise ModelError(f"measure should be one of {sorted(OVERLAP_MEASURES)}, got {measure!r}")
-    means = mixture.means
     covs = mixture.family.matrices(mixture.covariances, mixture.n_features)
-    distances = np.asarray(
-        OVERLAP_MEASURES[measure](means[:, None], covs[:, None], means[None], covs[None])
-    ).reshape(mixture.n_components, mixture.n_components)
-    distances = 0.5 * (distances + distances.T)
-    np.fill_diagonal(distances, 0.0)
+    distances = pairwise_bhattacharyya(mixture.means, covs)
+    if measure == "hellinger":
+        distances = np.sqrt(-np.expm1(-distances))     # as hellinger_distance does
     return distances
 
 
@@ -268,7 +277,7 @@ def unexplained(mixture: Mixture, X, threshold: float = 0.999) -> np.ndarray:
     A row is unexplained when its squared Mahalanobis distance to every component
     exceeds the ``threshold`` quantile of the chi-square distribution with
     ``n_features`` degrees of freedom (the distribution of that distance for a row
-    the component did generate), from ``scipy.stats.chi2``.
+    the component did generate), from :func:`chi2_quantile`.
 
     Parameters
     ----------
@@ -285,7 +294,7 @@ def unexplained(mixture: Mixture, X, threshold: float = 0.999) -> np.ndarray:
     threshold = float(threshold)
     if not 0.0 < threshold < 1.0:
         raise ModelError(f"threshold should be a probability in (0, 1), got {threshold!r}")
-    bound = stats.chi2.ppf(threshold, mixture.n_features)
+    bound = chi2_quantile(threshold, mixture.n_features)
     return np.all(squared_mahalanobis(mixture, X) > bound, axis=1)
 
 
@@ -302,7 +311,7 @@ def unexplained_below(mixture: Mixture, threshold: float = 0.999) -> float:
     bound : float
         In the data's own units, as ``Scores.log_density``.
     """
-    bound = stats.chi2.ppf(float(threshold), mixture.n_features)
+    bound = chi2_quantile(threshold, mixture.n_features)
     terms = (np.log(mixture.weights) - 0.5 * (mixture.n_features * _LOG_2PI + bound)
              + mixture.log_det)
     top = float(np.max(terms))
@@ -350,7 +359,7 @@ def compact_group(X, *, min_rows, max_sd=np.inf, threshold=0.999, max_groups=3, 
                                          reg_covar=reg_covar)
     except (ModelError, np.linalg.LinAlgError):   # too few or degenerate rows: no group
         return None
-    bound = stats.chi2.ppf(float(threshold), d)
+    bound = chi2_quantile(threshold, d)
     order = np.argsort(-fit.weights, kind="stable")
     means, covs = fit.data_means(), fit.data_covariance_matrices()
     for j in order:

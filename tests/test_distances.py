@@ -10,6 +10,7 @@ from scipy.spatial.distance import cdist
 from scipy.spatial.distance import mahalanobis as scipy_mahalanobis
 
 from shoal.core.distances import (
+    pairwise_bhattacharyya,
     bhattacharyya_coefficient,
     bhattacharyya_distance,
     hellinger_distance,
@@ -321,3 +322,19 @@ def test_t2_with_estimated_covariance_uses_the_f_form():
     p_values = hotelling_t2_pvalue(t2, p, cov_dof=n_rows - 1)
     assert abs(np.mean(p_values < 0.05) - 0.05) < 4.5 * np.sqrt(0.05 * 0.95 / n_batches)
     assert np.mean(hotelling_t2_pvalue(t2, p) < 0.05) > 0.12
+
+
+def test_pairwise_bhattacharyya_equals_the_pair_by_pair_distance():
+    # The K-at-once form factorises each Gaussian once and each unordered pair once;
+    # it must give what bhattacharyya_distance gives pair by pair.
+    rng = np.random.default_rng(41)
+    k, d = 6, 5
+    means = rng.normal(0.0, 2.0, (k, d))
+    A = rng.normal(0.0, 0.5, (k, d, d))
+    covs = A @ np.swapaxes(A, 1, 2) + 0.3 * np.eye(d)
+    got = pairwise_bhattacharyya(means, covs)
+    for i in range(k):
+        for j in range(k):
+            want = 0.0 if i == j else bhattacharyya_distance(means[i], covs[i], means[j], covs[j])
+            assert got[i, j] == pytest.approx(want, rel=1e-12, abs=1e-14)
+    assert pairwise_bhattacharyya(means[:1], covs[:1]).shape == (1, 1)

@@ -11,6 +11,7 @@ from shoal.core import Mixture, ModelError, StepSchedule
 from shoal.core.distances import bhattacharyya_distance, hellinger_distance
 from shoal.core.lifecycle import (
     add_component,
+    chi2_quantile,
     compact_group,
     merge,
     overlap,
@@ -316,3 +317,9 @@ def test_compact_group_finds_a_group_among_scattered_rows_and_nothing_in_scatter
     found = compact_group(same, min_rows=50, reg_covar=1e-6)
     assert found is None or (np.all(np.isfinite(found[0])) and
                              np.all(np.linalg.eigvalsh(found[1]) > 0))
+
+
+@pytest.mark.parametrize("p, dof", [(0.999, 4), (0.95, 16), (0.5, 1), (1e-6, 3)])
+def test_chi2_quantile_equals_scipy_stats(p, dof):
+    # Reference: scipy.stats.chi2.ppf (the lifecycle code avoids importing scipy.stats).
+    assert chi2_quantile(p, dof) == pytest.approx(stats.chi2.ppf(p, dof), rel=1e-12)
