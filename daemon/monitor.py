@@ -91,6 +91,9 @@ def _fmt(x: float) -> str:
 # ------------------------------------------------------------------------- window sums
 
 
+_NEGLIGIBLE = 1e-12   # responsibilities below this are left out of a window's second moments
+
+
 def _empty_window(index: int) -> dict:
     return {"index": index, "n": 0, "ld": 0.0, "ld2": 0.0, "segments": {},
             "unusual": {"n": 0, "sum": None, "by_segment": {}},
@@ -258,7 +261,13 @@ class InputWatch:
         for k, sid in enumerate(mixture.ids.tolist()):
             if T[k] <= 0.0:
                 continue
-            S = (Xc * resp[:, k, None]).T @ Xc
+            # Second moments from the rows that carry weight for this segment: rows
+            # under _NEGLIGIBLE add less than that share of a row each, far below the
+            # statistics' noise, and on separated segments most rows are skipped.
+            rk = resp[:, k]
+            rows = np.flatnonzero(rk > _NEGLIGIBLE)
+            Xk = Xc[rows]
+            S = (Xk * rk[rows, None]).T @ Xk
             acc = win["segments"].setdefault(str(sid), {"T": 0.0, "Q": 0.0, "M": None, "S": None})
             acc["T"] += float(T[k])
             acc["Q"] += float(Q[k])
