@@ -30,6 +30,7 @@ from .errors import IllConditionedError, ModelError
 __all__ = [
     "bhattacharyya_coefficient",
     "bhattacharyya_distance",
+    "GaussianSet",
     "hellinger_distance",
     "pairwise_bhattacharyya",
     "hotelling_t2",
@@ -303,6 +304,48 @@ def mahalanobis_distance(mean, ref_mean, ref_cov):
     )
     chol = _cholesky(ref_cov, "ref_cov")
     return _scalar_or_array(np.sqrt(_squared_mahalanobis_chol(mean - ref_mean, chol)))
+
+
+class GaussianSet:
+    """A fixed set of Gaussians, factorised once, to compare many others against.
+
+    ``mahalanobis`` and ``log_variance_ratio`` give what :func:`mahalanobis_distance` and
+    :func:`log_generalised_variance_ratio` give against member ``index``, without
+    re-validating and re-factorising the set on every call (a drift reference is
+    compared with every window of the stream).
+
+    Parameters
+    ----------
+    means : array_like of shape (K, n_features)
+    covs : array_like of shape (K, n_features, n_features)
+        Symmetric positive definite.
+    """
+
+    def __init__(self, means, covs):
+        self.means = _as_means(means, "means")
+        if self.means.ndim != 2:
+            raise ModelError(f"means should have shape (K, n_features), got {self.means.shape}")
+        n, d = self.means.shape
+        covs = _as_covs(covs, "covs", d)
+        if covs.shape != (n, d, d):
+            raise ModelError(f"covs should have shape ({n}, {d}, {d}), got {covs.shape}")
+        self.chol = _cholesky(covs, "covs")
+        self.log_det = _log_det_chol(self.chol)
+        # L^-1 once, so that every later comparison whitens with one batched product
+        self.inv_chol = _solve_lower(self.chol, np.broadcast_to(np.eye(d), (n, d, d)))
+
+    def mahalanobis(self, means, index) -> np.ndarray:
+        """``sqrt((m - mu_i)' S_i^-1 (m - mu_i))`` for rows ``means`` (n, D) against members
+        ``index`` (n,)."""
+        diff = np.asarray(means, dtype=np.float64) - self.means[index]
+        white = np.einsum("nij,nj->ni", self.inv_chol[index], diff)
+        return np.sqrt(np.einsum("ni,ni->n", white, white))
+
+    def log_variance_ratio(self, covs, index) -> np.ndarray:
+        """``log |S| - log |S_i|`` for ``covs`` (n, D, D) against members ``index`` (n,)."""
+        covs = np.asarray(covs, dtype=np.float64)
+        covs = 0.5 * (covs + np.swapaxes(covs, -1, -2))
+        return _log_det_chol(_cholesky(covs, "cov")) - self.log_det[index]
 
 
 def log_generalised_variance_ratio(cov, ref_cov):

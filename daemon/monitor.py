@@ -39,11 +39,7 @@ import numpy as np
 
 from shoal.config import Settings
 from shoal.core import Mixture
-from shoal.core.distances import (
-    hotelling_t2_pvalue,
-    log_generalised_variance_ratio,
-    mahalanobis_distance,
-)
+from shoal.core.distances import GaussianSet, hotelling_t2_pvalue
 from shoal.core.drift import (
     WHOLE_MODEL,
     Reference,
@@ -92,6 +88,16 @@ def _fmt(x: float) -> str:
 
 
 _NEGLIGIBLE = 1e-12   # responsibilities below this are left out of a window's second moments
+
+
+def _positive_definite(mats: np.ndarray) -> np.ndarray:
+    """Which of a stack of symmetric matrices are positive definite: one batched Cholesky
+    when all are (the usual case), eigenvalues only when one is not."""
+    try:
+        np.linalg.cholesky(mats)
+        return np.ones(mats.shape[0], dtype=bool)
+    except np.linalg.LinAlgError:
+        return np.all(np.linalg.eigvalsh(mats) > 0, axis=1)
 
 
 def _empty_window(index: int) -> dict:
@@ -201,6 +207,7 @@ class InputWatch:
             raise ValueError(f"drift state has format {state.get('format')!r}")
         self.state = json.loads(json.dumps(state)) if state is not None else None
         self.last_values: dict[str, dict[str, float]] = {}
+        self._ref_cache = None   # (reference dict, Reference, GaussianSet)
 
     # -- setup -----------------------------------------------------------------------
     def start(self, stream_offset: int) -> None:
@@ -366,8 +373,8 @@ class InputWatch:
 
     def _evaluate(self, win, info) -> None:
         st = self.state
-        ref = Reference.from_dict(st["reference"])
-        values, noise, detail = self._statistics(win, ref)
+        ref, factors = self._reference()
+        values, noise, detail = self._statistics(win, ref, factors)
         at = win["index"]
         for key in list(st["cool"]):
             if st["cool"][key] < at:
@@ -390,7 +397,15 @@ class InputWatch:
         for e in events:
             self._event(e, detail, ref, info)
 
-    def _statistics(self, win, ref: Reference):
+    def _reference(self) -> tuple[Reference, GaussianSet]:
+        """The reference in force and its factorised Gaussians, parsed once per reference."""
+        doc = self.state["reference"]
+        if self._ref_cache is None or self._ref_cache[0] is not doc:
+            ref = Reference.from_dict(doc)
+            self._ref_cache = (doc, ref, GaussianSet(ref.means, ref.covariances))
+        return self._ref_cache[1], self._ref_cache[2]
+
+    def _statistics(self, win, ref: Reference, factors: GaussianSet):
         """(values, noise, detail) of one window; the core's kernels are called once per
         window on all segments together."""
         d = len(ref.means[0])
@@ -421,7 +436,7 @@ class InputWatch:
         ids = ref.ids[at].tolist()
         n_effs, means, covs = np.array(n_effs), np.array(means), np.array(covs)
         ref_n = ref.n_eff[at]
-        shifts = np.atleast_1d(mahalanobis_distance(means, ref.means[at], ref.covariances[at]))
+        shifts = factors.mahalanobis(means, at)
         shift_noise = np.atleast_1d(mean_shift_noise(n_effs, d, ref_n))
         for i, sid in enumerate(ids):
             values[(sid, "mean_shift")] = float(shifts[i])
@@ -435,11 +450,9 @@ class InputWatch:
             compared = diag.mean(axis=1)[:, None, None] * np.eye(d)
         else:
             compared = covs
-        usable = (n_effs > d + 1) & np.all(diag > 0, axis=1) & \
-            np.all(np.linalg.eigvalsh(compared) > 0, axis=1)
+        usable = (n_effs > d + 1) & np.all(diag > 0, axis=1) & _positive_definite(compared)
         if usable.any():
-            log_ratio = np.atleast_1d(log_generalised_variance_ratio(
-                compared[usable], ref.covariances[at[usable]]))
+            log_ratio = factors.log_variance_ratio(compared[usable], at[usable])
             spread = np.atleast_1d(spread_noise(n_effs[usable], d, cov_type, ref_n[usable]))
             for i, sid in enumerate(np.asarray(ids)[usable].tolist()):
                 values[(sid, "spread_ratio")] = abs(float(log_ratio[i])) / (2 * d)

@@ -10,6 +10,7 @@ from scipy.spatial.distance import cdist
 from scipy.spatial.distance import mahalanobis as scipy_mahalanobis
 
 from shoal.core.distances import (
+    GaussianSet,
     pairwise_bhattacharyya,
     bhattacharyya_coefficient,
     bhattacharyya_distance,
@@ -324,17 +325,38 @@ def test_t2_with_estimated_covariance_uses_the_f_form():
     assert np.mean(hotelling_t2_pvalue(t2, p) < 0.05) > 0.12
 
 
+def _random_gaussians(rng, k, d, ridge=0.3):
+    """k seeded random Gaussians in d dimensions (synthetic test data)."""
+    A = rng.normal(0.0, 0.5, (k, d, d))
+    return rng.normal(0.0, 2.0, (k, d)), A @ np.swapaxes(A, 1, 2) + ridge * np.eye(d)
+
+
 def test_pairwise_bhattacharyya_equals_the_pair_by_pair_distance():
     # The K-at-once form factorises each Gaussian once and each unordered pair once;
     # it must give what bhattacharyya_distance gives pair by pair.
-    rng = np.random.default_rng(41)
-    k, d = 6, 5
-    means = rng.normal(0.0, 2.0, (k, d))
-    A = rng.normal(0.0, 0.5, (k, d, d))
-    covs = A @ np.swapaxes(A, 1, 2) + 0.3 * np.eye(d)
+    k = 6
+    means, covs = _random_gaussians(np.random.default_rng(41), k, 5)
     got = pairwise_bhattacharyya(means, covs)
     for i in range(k):
         for j in range(k):
             want = 0.0 if i == j else bhattacharyya_distance(means[i], covs[i], means[j], covs[j])
             assert got[i, j] == pytest.approx(want, rel=1e-12, abs=1e-14)
     assert pairwise_bhattacharyya(means[:1], covs[:1]).shape == (1, 1)
+
+
+def test_gaussian_set_equals_the_one_call_functions():
+    # A factorised reference set must give what mahalanobis_distance and
+    # log_generalised_variance_ratio give against the same member.
+    rng = np.random.default_rng(42)
+    means, covs = _random_gaussians(rng, 5, 4)
+    ref = GaussianSet(means, covs)
+    index = np.array([3, 0, 0, 4])
+    other_means, other_covs = _random_gaussians(rng, 4, 4, ridge=0.2)
+    np.testing.assert_allclose(ref.mahalanobis(other_means, index),
+                               mahalanobis_distance(other_means, means[index], covs[index]),
+                               rtol=1e-12)
+    np.testing.assert_allclose(ref.log_variance_ratio(other_covs, index),
+                               log_generalised_variance_ratio(other_covs, covs[index]),
+                               rtol=1e-12, atol=1e-12)
+    with pytest.raises(ModelError):
+        GaussianSet(means, covs[:, :3, :3])
