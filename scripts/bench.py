@@ -146,6 +146,10 @@ def main(argv=None):
     parser.add_argument("--backfill", action="store_true",
                         help="shoal backfill: 10,000,000 rows in 100 Parquet files on 2 local "
                              "Dask workers against one process (needs shoal[cluster])")
+    parser.add_argument("--e2e", action="store_true",
+                        help="`shoal ingest` of 1,000,000-row Parquet/CSV drops against pyarrow's "
+                             "read rate and the core E+M rate, and peak RSS for 1M vs 10M rows "
+                             "(issue 9; prints the core table too)")
     parser.add_argument("--all", action="store_true", help="run every benchmark")
     parser.add_argument("--blas-threads", type=int, default=None,
                         help="limit BLAS threads for shoal and the anchors alike "
@@ -162,8 +166,9 @@ def main(argv=None):
     with limit:
         blas = [(i["internal_api"], i["num_threads"]) for i in threadpool_info()]
         print(f"shoal bench — numpy {np.__version__}, BLAS {blas}")
-        chosen = [name for name in ("accuracy", "latency", "backfill") if getattr(args, name)]
-        if args.all or not chosen:
+        chosen = [name for name in ("accuracy", "latency", "backfill", "e2e")
+                  if getattr(args, name)]
+        if args.all or args.e2e or not chosen:
             core_table(args.rows)
         if args.all or args.accuracy:
             accuracy_run()
@@ -173,6 +178,10 @@ def main(argv=None):
             from bench_backfill import backfill_table
 
             backfill_table()
+        if args.all or args.e2e:
+            from bench_e2e import e2e_table
+
+            e2e_table()
     return 0
 
 

@@ -1,0 +1,269 @@
+#!/usr/bin/env python3
+"""End-to-end bench: 1,000,000-row Parquet and CSV drops (D=16, K=8) through `shoal ingest`,
+against anchors measured in the same run on the same files: pyarrow's own streaming read
+rate and the core-only E+M rate (Mixture.learn on the same rows in batches of 65,536).
+Then peak RSS of `shoal ingest` for a 1,000,000-row and a 10,000,000-row Parquet file.
+
+`e2e_table(...)` prints the tables; run as a script for the same.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+import yaml
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from bench import BATCH, best_of  # noqa: E402
+
+N_FEATURES, N_COMPONENTS = 16, 8
+FEATURES = [f"x{j:02d}" for j in range(N_FEATURES)]
+WARM_ROWS = 20_000
+PIECE = 1_000_000   # rows generated (and written as one row group) at a time
+
+
+def _table(X: np.ndarray, first_id: int) -> pa.Table:
+    cols = {"id": pa.array(np.arange(first_id, first_id + len(X), dtype=np.int64))}
+    cols.update({name: X[:, j] for j, name in enumerate(FEATURES)})
+    return pa.table(cols)
+
+
+def _mixture(seed: int = 16):
+    """A seeded random K=8, D=16 full-covariance mixture (synthetic benchmark data, drawn
+    as scripts/bench.py's ``synthetic`` draws its own)."""
+    rng = np.random.default_rng(seed)
+    weights = rng.dirichlet(np.full(N_COMPONENTS, 5.0))
+    means = rng.normal(0.0, 4.0, (N_COMPONENTS, N_FEATURES))
+    A = rng.normal(0.0, 0.3, (N_COMPONENTS, N_FEATURES, N_FEATURES))
+    covs = A @ np.swapaxes(A, 1, 2) + 0.5 * np.eye(N_FEATURES)
+    return weights, means, np.linalg.cholesky(covs)
+
+
+def _rows(n: int, seed) -> np.ndarray:
+    weights, means, chol = _mixture()
+    rng = np.random.default_rng(seed)
+    labels = rng.choice(N_COMPONENTS, size=n, p=weights)
+    return means[labels] + np.einsum("nde,ne->nd", chol[labels],
+                                     rng.normal(size=(n, N_FEATURES)))
+
+
+def write_drop(path: Path, rows: int, seed: int = 0) -> Path:
+    """``rows`` rows of one seeded mixture (:func:`_mixture`), written piece by piece."""
+    writer = None
+    try:
+        for start in range(0, rows, PIECE):
+            n = min(PIECE, rows - start)
+            table = _table(_rows(n, [seed, start]), start)
+            if path.suffix == ".parquet":
+                writer = writer or pq.ParquetWriter(path, table.schema)
+                writer.write_table(table)
+            else:
+                writer = writer or pacsv.CSVWriter(path, table.schema)
+                writer.write_table(table)
+    finally:
+        if writer is not None:
+            writer.close()
+    return path
+
+
+def _config(folder: Path, covariance: str, watch_drift: bool) -> Path:
+    cfg = {"inbox": "inbox", "outbox": "outbox", "state": "state", "features": FEATURES,
+           "passthrough": ["id"], "segments": N_COMPONENTS, "covariance": covariance,
+           "warmup_rows": WARM_ROWS, "learning": {"n_init": 1}}
+    if not watch_drift:
+        cfg["drift"] = {"enabled": False}
+        cfg["lifecycle"] = {"enabled": False}
+    folder.mkdir(parents=True, exist_ok=True)
+    path = folder / "shoal.yaml"
+    path.write_text(yaml.safe_dump(cfg))
+    return path
+
+
+def _peak_rss_mb(pid: int) -> float | None:
+    """VmHWM (peak RSS) of a running process, from /proc (Linux)."""
+    try:
+        with open(f"/proc/{pid}/status") as f:
+            for line in f:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024
+    except OSError:
+        return None
+    return None
+
+
+def _ingest(cfg: Path, drop: Path) -> dict:
+    """Run `shoal ingest` in a child process: wall seconds, the input's own seconds (from
+    its `input_committed` log line: claim to commit, without interpreter start-up and
+    imports) and the child's peak RSS (its VmHWM, read every 20 ms while it runs: the
+    rusage of a forked child would count the bench process's own pages)."""
+    log = cfg.parent / "ingest.log"
+    with open(log, "wb") as err:
+        t0 = time.perf_counter()
+        proc = subprocess.Popen([sys.executable, "-m", "shoal.daemon.cli", "ingest", "-c",
+                                 str(cfg), str(drop)], stdout=subprocess.DEVNULL, stderr=err)
+        peak = 0.0
+        while proc.poll() is None:
+            peak = max(peak, _peak_rss_mb(proc.pid) or 0.0)
+            time.sleep(0.02)
+        wall = time.perf_counter() - t0
+    if proc.returncode != 0:
+        raise RuntimeError(f"shoal ingest {drop.name} exited {proc.returncode}: "
+                           f"{log.read_text()[-2000:]}")
+    seconds = None
+    for line in log.read_text().splitlines():
+        rec = json.loads(line)
+        if rec.get("event") == "input_committed":
+            seconds = float(rec["duration"])
+    return {"wall": wall, "input": seconds, "rss_mb": peak}
+
+
+def _fresh_state(template: Path, run: Path) -> Path:
+    """A copy of the warmed-up state folder and config, so every run starts the same."""
+    if run.exists():
+        shutil.rmtree(run)
+    shutil.copytree(template, run)
+    return run / "shoal.yaml"
+
+
+def _warmed(folder: Path, covariance: str, watch_drift: bool, warm: Path) -> Path:
+    cfg = _config(folder, covariance, watch_drift)
+    _ingest(cfg, warm)
+    (folder / "ingest.log").unlink()
+    for name in os.listdir(folder / "outbox"):
+        os.unlink(folder / "outbox" / name)
+    return folder
+
+
+def ingest_rate(template: Path, drop: Path, rows: int, repeats: int) -> dict:
+    runs = [_ingest(_fresh_state(template, template.with_name(template.name + "-run")), drop)
+            for _ in range(repeats)]
+    return {"input": rows / min(r["input"] for r in runs),
+            "wall": rows / min(r["wall"] for r in runs),
+            "rss_mb": max(r["rss_mb"] for r in runs)}
+
+
+def parquet_read_rate(path: Path, rows: int) -> float:
+    def run():
+        pf = pq.ParquetFile(path)
+        for _ in pf.iter_batches(batch_size=BATCH, columns=["id"] + FEATURES):
+            pass
+    return rows / best_of(run)
+
+
+def csv_read_rate(path: Path, rows: int) -> float:
+    def run():
+        for _ in pacsv.open_csv(path):   # pyarrow's defaults
+            pass
+    return rows / best_of(run)
+
+
+def core_rate(X: np.ndarray, covariance: str) -> tuple[float, str]:
+    """Best core-only E+M rate over the machine's BLAS threads and one BLAS thread."""
+    from shoal.core import initialise
+
+    model = initialise(X[:WARM_ROWS], N_COMPONENTS, covariance, seed=0, n_init=1, max_iter=20)
+    model, _ = model.learn(X[:BATCH])   # warm caches
+
+    def run():
+        m = model
+        for start in range(0, len(X), BATCH):
+            m, _ = m.learn(X[start:start + BATCH])
+
+    rates = {"default": len(X) / best_of(run)}
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:
+        threadpool_limits = None
+    if threadpool_limits is not None:
+        with threadpool_limits(1, user_api="blas"):
+            rates["1 BLAS thread"] = len(X) / best_of(run)
+    best = max(rates, key=rates.get)
+    return rates[best], best
+
+
+def e2e_table(rows: int = 1_000_000, big_rows: int = 10_000_000, repeats: int = 2,
+              workdir: Path | None = None) -> dict:
+    with tempfile.TemporaryDirectory(prefix="shoal-e2e-", dir=workdir) as tmp:
+        tmp = Path(tmp)
+        data = tmp / "data"
+        data.mkdir()
+        warm = write_drop(data / "warm.parquet", WARM_ROWS, seed=1)
+        drops = {"parquet": write_drop(data / "drop.parquet", rows),
+                 "csv": write_drop(data / "drop.csv", rows)}
+        table = pq.read_table(drops["parquet"], columns=FEATURES)
+        X = np.column_stack([table.column(c).to_numpy() for c in FEATURES])
+        del table
+        anchors_read = {"parquet": parquet_read_rate(drops["parquet"], rows),
+                        "csv": csv_read_rate(drops["csv"], rows)}
+        print(f"\nEnd to end: `shoal ingest` of one {rows:,}-row drop, D={N_FEATURES}, "
+              f"K={N_COMPONENTS}, into a state warmed on {WARM_ROWS:,} rows "
+              f"(best of {repeats}); anchors on the same rows in the same run")
+        print("  e2e: rows / the input's own seconds (claim to commit); wall: rows / the "
+              "whole process (start-up and imports too)")
+        print("  read: pyarrow streaming read of the file (ParquetFile.iter_batches / "
+              "csv.open_csv, defaults); core: Mixture.learn in batches of 65,536 rows")
+        print(f"{'format':>8} {'cov':>5} {'drift+life':>10} | {'e2e rows/s':>11} "
+              f"{'wall rows/s':>11} {'read rows/s':>11} {'core rows/s':>11} | "
+              f"{'e2e/core':>8} {'e2e/read':>8} {'peak RSS':>9}")
+        results = {}
+        for cov in ("full", "diag"):
+            core, core_how = core_rate(X, cov)
+            for watch_drift in (False, True):
+                folder = tmp / f"state-{cov}-{int(watch_drift)}"
+                _warmed(folder, cov, watch_drift, warm)
+                for fmt in ("parquet", "csv"):
+                    r = ingest_rate(folder, drops[fmt], rows, repeats)
+                    read = anchors_read[fmt]
+                    results[(fmt, cov, watch_drift)] = dict(r, read=read, core=core)
+                    print(f"{fmt:>8} {cov:>5} {'on' if watch_drift else 'off':>10} | "
+                          f"{r['input']:>11,.0f} {r['wall']:>11,.0f} {read:>11,.0f} "
+                          f"{core:>11,.0f} | {r['input'] / core:>8.2f} "
+                          f"{r['input'] / read:>8.2f} {r['rss_mb']:>6.0f} MB")
+            print(f"  core anchor ({cov}): best with {core_how}")
+        print("targets (issue 9): Parquet full e2e >= 0.60 x core; CSV e2e >= 0.50 x read")
+        del X
+        memory = memory_table(tmp, warm, drops["parquet"], rows, big_rows)
+    return {"rates": results, "memory": memory}
+
+
+def memory_table(tmp: Path, warm: Path, small: Path, rows: int, big_rows: int) -> dict:
+    big = write_drop(tmp / "data" / "big.parquet", big_rows, seed=2)
+    folder = _warmed(tmp / "state-memory", "full", True, warm)
+    out = {}
+    print(f"\nPeak RSS of `shoal ingest` (full, drift and lifecycle on), row groups of "
+          f"{PIECE:,} rows")
+    print(f"{'rows':>12} {'file MB':>8} {'peak RSS MB':>12} {'rows/s':>11}")
+    for n, drop in ((rows, small), (big_rows, big)):
+        r = _ingest(_fresh_state(folder, folder.with_name("memory-run")), drop)
+        out[n] = r["rss_mb"]
+        print(f"{n:>12,} {drop.stat().st_size / 2**20:>8.0f} {r['rss_mb']:>12.0f} "
+              f"{n / r['input']:>11,.0f}")
+    print(f"ratio {out[big_rows] / out[rows]:.2f}; targets (issue 9): 10M within 20% of 1M "
+          "(ratio <= 1.20) and under 500 MB")
+    return out
+
+
+def main() -> int:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--rows", type=int, default=1_000_000)
+    p.add_argument("--big-rows", type=int, default=10_000_000)
+    p.add_argument("--repeats", type=int, default=2)
+    a = p.parse_args()
+    e2e_table(a.rows, a.big_rows, a.repeats)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
