@@ -692,6 +692,27 @@ class _Count:
             yield frame
 
 
+MODEL_RANGE_SDS = 1e6
+"""Rows further than this many warm-up standard deviations from the warm-up mean, in any
+feature, are invalid once a model exists: finite values that large (a sensor's overflow,
+a corrupt number) would swamp the second-moment statistics, which then no longer give a
+positive-definite covariance, and every later refresh of the model would fail."""
+
+
+def _mark_beyond_model(frame: Frame, mixture: Mixture) -> None:
+    """Mark invalid the rows of ``frame`` beyond MODEL_RANGE_SDS of ``mixture``'s scale."""
+    if frame.n_rows == 0:
+        return
+    with np.errstate(invalid="ignore"):       # NaN features (already invalid) compare False
+        far = np.any(np.abs(frame.features - mixture.center)
+                     > MODEL_RANGE_SDS * mixture.scale, axis=1)
+    far &= frame.valid
+    if far.any():
+        frame.valid[far] = False
+        log_event("rows_beyond_model_range", logging.WARNING, rows=int(far.sum()),
+                  limit_sds=MODEL_RANGE_SDS)
+
+
 def _valid_rows(frame: Frame) -> np.ndarray:
     return frame.features if frame.n_invalid == 0 else frame.features[frame.valid]
 
@@ -747,6 +768,8 @@ class _Run:
 
     def tables(self, frames: Iterable[Frame]):
         for frame in frames:
+            if self.mixture is not None:
+                _mark_beyond_model(frame, self.mixture)
             self.rows += frame.n_rows
             self.invalid += frame.n_invalid
             self.held.append(frame)

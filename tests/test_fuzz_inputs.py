@@ -26,6 +26,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from shoal.daemon import pipeline as pipeline_module
 from shoal.daemon.drills import synthetic_table, write_config
 
 DEEP = os.environ.get("SHOAL_DEEP") == "1"
@@ -94,12 +95,19 @@ class Harness:
         if result.outcome != "quarantined" and expect != "either":
             self.check_labels(result, keys, valid)
 
-    def check_labels(self, result, keys: list, valid: list[bool]) -> None:
+    def check_labels(self, result, keys: list, valid: list) -> None:
+        """``valid``: per row, None for a row the generator made invalid, else its features."""
         table = pq.read_table(result.labels)
         assert table.num_rows == len(keys)
         assert table.column("key").to_pylist() == keys
         segment = table.column("segment").to_pylist()
-        assert [s is not None for s in segment] == valid
+        # Once a model exists, rows beyond MODEL_RANGE_SDS warm-up standard deviations
+        # of its pivot are invalid too (README, "Running the service").
+        mixture = self.pipeline.state.mixture
+        reach = pipeline_module.MODEL_RANGE_SDS * mixture.scale
+        expected = [v is not None and bool(np.all(np.abs(np.array(v) - mixture.center) <= reach))
+                    for v in valid]
+        assert [s is not None for s in segment] == expected
         ids = set(self.pipeline.state.mixture.ids.tolist())
         assert {s for s in segment if s is not None} <= ids
         conf = np.array([c for c in table.column("confidence").to_pylist() if c is not None])
@@ -148,7 +156,8 @@ def _quote(text: str, always: bool) -> str:
 
 @st.composite
 def csv_files(draw):
-    """(bytes, expected outcome, keys, valid) of one generated CSV input."""
+    """(bytes, expected outcome, keys, valid) of one generated CSV input; ``valid`` holds
+    per row None (an invalid row) or the row's feature values."""
     extras = draw(st.lists(extra_names, max_size=4, unique=True))
     header = draw(st.permutations(REQUIRED + extras))
     n_rows = draw(st.integers(1, 25))
@@ -163,7 +172,7 @@ def csv_files(draw):
         rows.append([_quote(cells[c], quote_all) for c in header])
         keys.append(cells["key"])
         floats = [_value(v) for v in values.values()]
-        valid.append(all(_usable(v) for v in floats))
+        valid.append(tuple(floats) if all(_usable(v) for v in floats) else None)
     expect = "commit"
     broken = draw(st.sampled_from(["none"] * 6 + ["text", "width", "missing"]))
     if broken == "text":
@@ -222,7 +231,7 @@ def _feature_values(draw, t: pa.DataType, n: int) -> list:
 @st.composite
 def parquet_files(draw):
     n = draw(st.integers(0, 30))
-    columns, valid = {}, [True] * n
+    columns, row_values = {}, [[] for _ in range(n)]
     for f in FEATURES:
         t = draw(st.sampled_from(FEATURE_TYPES))
         values = _feature_values(draw, t, n)
@@ -232,7 +241,9 @@ def parquet_files(draw):
                                   mask=np.array([v is None for v in values], dtype=bool))
         else:
             columns[f] = pa.array(values, type=t)
-        valid = [ok and _usable(v) for ok, v in zip(valid, values)]
+        for row, v in zip(row_values, values):
+            row.append(v)
+    valid = [tuple(r) if all(_usable(v) for v in r) else None for r in row_values]
     keys = [f"k{i}" for i in range(n)]
     key_type = draw(st.sampled_from(["string", "large_string", "dictionary"]))
     columns["key"] = (pa.array(keys).dictionary_encode() if key_type == "dictionary"
@@ -279,7 +290,7 @@ def test_the_csv_generator_makes_each_kind(harness):
         seen.add(expect)
         seen.add("bom" if data.startswith(codecs.BOM_UTF8) else "")
         seen.add("crlf" if b"\r\n" in data else "")
-        seen.add("invalid row" if not all(valid) else "")
+        seen.add("invalid row" if any(v is None for v in valid) else "")
 
     look()
     assert {"commit", "quarantine", "bom", "crlf", "invalid row"} <= seen

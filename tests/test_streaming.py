@@ -4,6 +4,7 @@ size, and a reader-thread error ends as a quarantine, not a hang."""
 import functools
 
 import numpy as np
+import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import pytest
@@ -170,3 +171,38 @@ def test_an_input_seen_before_is_learned_once_whatever_was_done_before_its_hash(
         assert la.column("segment").equals(lb.column("segment"))
         meta = pq.read_schema(b.labels).metadata
         assert meta[b"shoal.input_sha256"].decode()[:16] in b.labels.name
+
+
+def _huge_rows_then_normal(folder, monkeypatch, limit_sds):
+    """Warm up, then an input with one finite row at ~1e40 among normal ones, then
+    normal inputs across several refresh points; returns the inputs' results."""
+    monkeypatch.setattr(pipeline_module, "MODEL_RANGE_SDS", limit_sds)
+    settings = load_config(write_config(folder, warmup_rows=600))
+    tables = [synthetic_table(i, 3000, SEED) for i in range(5)]
+    # One row far out in every feature: its outer product (rank one, ~1e80) drowns the
+    # rest of its segment's second moments in rounding error.
+    for j, name in enumerate(["f1", "f2", "f3"]):
+        values = tables[1].column(name).to_numpy().copy()
+        values[1234] = 1e40 * (1.0 + j)
+        tables[1] = tables[1].set_column(2 + j, name, pa.array(values))
+    drops = []
+    for i, table in enumerate(tables):
+        drops.append(folder / f"in-{i}.parquet")
+        pq.write_table(table, drops[-1])
+    with open_service_parts(settings) as (layout, store, pipeline):
+        results = [pipeline.process(p, in_inbox=False) for p in drops]
+    return results
+
+
+def test_rows_far_beyond_the_models_range_are_invalid_not_poison(tmp_path, monkeypatch):
+    # Finite but absurd values (1e40 where the warm-up spread is ~1) are marked invalid
+    # once a model exists, so they cannot swamp the statistics: every later input is
+    # committed. Without the bound the same inputs break the model's refreshes.
+    results = _huge_rows_then_normal(tmp_path / "bounded", monkeypatch, 1e6)
+    assert [r.outcome for r in results] == ["committed"] * 5
+    assert results[1].rows_invalid == 1
+    labels = pq.read_table(results[1].labels)
+    assert labels.column("segment").null_count == 1
+    assert labels.column("segment")[1234].as_py() is None
+    unbounded = _huge_rows_then_normal(tmp_path / "unbounded", monkeypatch, np.inf)
+    assert any(r.outcome == "quarantined" for r in unbounded[1:])
