@@ -105,7 +105,9 @@ class Harness:
         # of its pivot are invalid too (README, "Running the service").
         mixture = self.pipeline.state.mixture
         reach = pipeline_module.MODEL_RANGE_SDS * mixture.scale
-        expected = [v is not None and bool(np.all(np.abs(np.array(v) - mixture.center) <= reach))
+        expected = [v is not None
+                    and bool(np.all(np.abs(np.array([float(x) for x in v]) - mixture.center)
+                                    <= reach))
                     for v in valid]
         assert [s is not None for s in segment] == expected
         ids = set(self.pipeline.state.mixture.ids.tolist())
