@@ -359,7 +359,7 @@ class Pipeline:
         count = _Count()
 
         def tables(frames):
-            return _scored_tables(count.counted(frames), st.mixture,
+            return _scored_tables(count.counted(frames, st.mixture), st.mixture,
                                   st.extra.get("unusual_below", -np.inf), st.version)
         labels, _ = self._write(frames, tables, entry, lambda: st.version)
         entry = _with(entry, outcome="duplicate", labels=labels.name, rows=count.rows,
@@ -627,7 +627,7 @@ class Pipeline:
             f.seek(0)
             with self._frames(f, kind, os.fstat(f.fileno()).st_size >= _THREADED_BYTES) \
                     as frames:
-                tables = _scored_tables(count.counted(frames), st.mixture,
+                tables = _scored_tables(count.counted(frames, st.mixture), st.mixture,
                                         st.extra.get("unusual_below", -np.inf), st.version)
                 write_labels_stream(tables, out, fmt, lambda: {
                     "input_sha256": sha, "input_name": path.name,
@@ -685,8 +685,12 @@ class _Count:
     def __init__(self):
         self.rows = self.invalid = 0
 
-    def counted(self, frames: Iterable[Frame]):
+    def counted(self, frames: Iterable[Frame], mixture: Mixture | None = None):
+        """The frames, counted; with a model, rows beyond its range marked invalid first
+        (as when they are learned, so a duplicate's labels equal the original's)."""
         for frame in frames:
+            if mixture is not None:
+                _mark_beyond_model(frame, mixture)
             self.rows += frame.n_rows
             self.invalid += frame.n_invalid
             yield frame

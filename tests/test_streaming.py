@@ -189,6 +189,8 @@ def _huge_rows_then_normal(folder, monkeypatch, limit_sds):
     for i, table in enumerate(tables):
         drops.append(folder / f"in-{i}.parquet")
         pq.write_table(table, drops[-1])
+    (folder / "copy-of-in-1.parquet").write_bytes(drops[1].read_bytes())
+    drops.append(folder / "copy-of-in-1.parquet")
     with open_service_parts(settings) as (layout, store, pipeline):
         results = [pipeline.process(p, in_inbox=False) for p in drops]
     return results
@@ -199,10 +201,12 @@ def test_rows_far_beyond_the_models_range_are_invalid_not_poison(tmp_path, monke
     # once a model exists, so they cannot swamp the statistics: every later input is
     # committed. Without the bound the same inputs break the model's refreshes.
     results = _huge_rows_then_normal(tmp_path / "bounded", monkeypatch, 1e6)
-    assert [r.outcome for r in results] == ["committed"] * 5
-    assert results[1].rows_invalid == 1
+    assert [r.outcome for r in results] == ["committed"] * 5 + ["duplicate"]
+    assert results[1].rows_invalid == results[5].rows_invalid == 1   # a copy: the same rows
     labels = pq.read_table(results[1].labels)
     assert labels.column("segment").null_count == 1
     assert labels.column("segment")[1234].as_py() is None
+    copy = pq.read_table(results[5].labels)    # scored by the later model: same null rows
+    assert copy.column("segment").is_null().equals(labels.column("segment").is_null())
     unbounded = _huge_rows_then_normal(tmp_path / "unbounded", monkeypatch, np.inf)
-    assert any(r.outcome == "quarantined" for r in unbounded[1:])
+    assert any(r.outcome == "quarantined" for r in unbounded[1:5])
