@@ -32,6 +32,7 @@ __all__ = [
     "bhattacharyya_distance",
     "GaussianSet",
     "hellinger_distance",
+    "hellinger_from_bhattacharyya",
     "pairwise_bhattacharyya",
     "hotelling_t2",
     "hotelling_t2_critical_value",
@@ -249,7 +250,12 @@ def hellinger_distance(mean0, cov0, mean1, cov1):
     as ``-expm1(-D_B)`` so that small distances keep their precision.
     """
     distance = _bhattacharyya(*_check_pair(mean0, cov0, mean1, cov1))
-    return _scalar_or_array(np.sqrt(-np.expm1(-distance)))
+    return _scalar_or_array(hellinger_from_bhattacharyya(distance))
+
+
+def hellinger_from_bhattacharyya(distance):
+    """``H = sqrt(1 - exp(-D_B))`` from Bhattacharyya distances, as ``-expm1`` for precision."""
+    return np.sqrt(-np.expm1(-np.asarray(distance, dtype=np.float64)))
 
 
 def wasserstein2_distance(mean0, cov0, mean1, cov1):
@@ -329,10 +335,10 @@ class GaussianSet:
         covs = _as_covs(covs, "covs", d)
         if covs.shape != (n, d, d):
             raise ModelError(f"covs should have shape ({n}, {d}, {d}), got {covs.shape}")
-        self.chol = _cholesky(covs, "covs")
-        self.log_det = _log_det_chol(self.chol)
+        chol = _cholesky(covs, "covs")
+        self.log_det = _log_det_chol(chol)
         # L^-1 once, so that every later comparison whitens with one batched product
-        self.inv_chol = _solve_lower(self.chol, np.broadcast_to(np.eye(d), (n, d, d)))
+        self.inv_chol = _solve_lower(chol, np.broadcast_to(np.eye(d), (n, d, d)))
 
     def mahalanobis(self, means, index) -> np.ndarray:
         """``sqrt((m - mu_i)' S_i^-1 (m - mu_i))`` for rows ``means`` (n, D) against members

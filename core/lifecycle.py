@@ -25,7 +25,12 @@ from dataclasses import replace
 import numpy as np
 from scipy import special
 
-from .distances import bhattacharyya_distance, hellinger_distance, pairwise_bhattacharyya
+from .distances import (
+    bhattacharyya_distance,
+    hellinger_distance,
+    hellinger_from_bhattacharyya,
+    pairwise_bhattacharyya,
+)
 from .errors import ModelError
 from .mixture import Mixture
 
@@ -229,7 +234,7 @@ def overlap(mixture: Mixture, measure: str = "hellinger") -> np.ndarray:
     covs = mixture.family.matrices(mixture.covariances, mixture.n_features)
     distances = pairwise_bhattacharyya(mixture.means, covs)
     if measure == "hellinger":
-        distances = np.sqrt(-np.expm1(-distances))     # as hellinger_distance does
+        distances = hellinger_from_bhattacharyya(distances)
     return distances
 
 
