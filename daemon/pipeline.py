@@ -11,9 +11,10 @@ An input streams through in frames of 65,536 rows (whatever record batches the
 file holds), so memory does not grow with its size: each frame is scored and
 learned, and its labels appended to the labels temp file. For inputs of 8 MiB
 and more, the content hash, the reading and the labels writing run in threads
-beside the model's work; the ledger is asked once the hash is known, before
-the labels file is named, and an input it already has is taken again as a
-duplicate (or found done) with nothing of the first attempt kept.
+beside the model's work, which never waits for the hash: the ledger is asked
+as soon as the hash is known (at the latest when the last labels are written),
+before the labels file is named, and an input it already has is taken again as
+a duplicate (or found done) with nothing of the first attempt kept.
 
 :meth:`Pipeline.process_group` takes several inputs in order as one group: each
 is learned from the state the one before it left and its labels file written as
@@ -281,8 +282,9 @@ class Pipeline:
             entry = LedgerEntry(sha256="", name=name, size=size, outcome="committed",
                                 seen_at=seen_at)
             # The content hash is made in a thread while the input is learned as if new;
-            # the ledger is asked before the labels are written: an input it already
-            # has is dropped there (nothing of it was kept) and taken as below.
+            # the ledger is asked once the hash is known, before the labels file is
+            # named: an input it already has is dropped there (nothing of it was kept)
+            # and taken as below.
             threaded = size >= _THREADED_BYTES
             with file_digest(f, threaded) as digest:
                 def claim() -> str:
@@ -294,7 +296,8 @@ class Pipeline:
 
                 try:
                     try:
-                        result = self._learn(self._frames(f, kind, threaded), entry, claim)
+                        result = self._learn(self._frames(f, kind, threaded), entry, claim,
+                                             digest.ready)
                     except _Seen as seen:
                         if any(e.name == name for e in seen.done):
                             if self._group:
@@ -325,11 +328,14 @@ class Pipeline:
 
     def _write(self, frames: prefetch, tables: Callable[[Iterable[Frame]], Iterable[pa.Table]],
                entry: LedgerEntry, version: Callable[[], int | None],
-               claim: Callable[[], str] | None = None) -> tuple[Path, str]:
+               claim: Callable[[], str] | None = None,
+               ready: Callable[[], bool] | None = None) -> tuple[Path, str]:
         """Write the labels ``tables(frames)`` as they are made; returns the file and the
-        input's hash. When the first table is made, ``claim()`` gives the hash (when
-        ``entry`` has none yet) and ``version()`` the labels' model version (None
-        without scores)."""
+        input's hash. ``claim()`` gives the hash (when ``entry`` has none yet) and
+        ``version()`` the labels' model version (None without scores): as the first
+        table is written if ``ready()`` says the hash is known, else after the first
+        table for which it is (the hash is made beside the model, which does not wait
+        for it), at the latest once the last table is written."""
         fmt = self.settings.output.format
         sha = [entry.sha256]
 
@@ -350,7 +356,7 @@ class Pipeline:
                 checked(frames), target, fmt, metadata,
                 sync_folder=self._group is None,  # a group syncs it once
                 final=lambda: self.layout.outbox / labels_name(entry.name, sha[0], fmt),
-                threaded=frames.threaded)
+                threaded=frames.threaded, ready=ready)
         return path, sha[0]
 
     def _duplicate(self, frames: prefetch, entry: LedgerEntry) -> Result:
@@ -369,8 +375,8 @@ class Pipeline:
         self._commit(InputCommit(entry, learned=False), st.version, result)
         return result
 
-    def _learn(self, frames: prefetch, entry: LedgerEntry,
-               claim: Callable[[], str]) -> Result:
+    def _learn(self, frames: prefetch, entry: LedgerEntry, claim: Callable[[], str],
+               ready: Callable[[], bool] | None = None) -> Result:
         st = self.state
         version = st.version + 1
         extra = dict(st.extra)
@@ -389,7 +395,7 @@ class Pipeline:
                 watch.rebaseline(st.mixture, rebaseline[1])
         run = _Run(self, extra, version, watch, life)
         labels, sha = self._write(frames, run.tables, entry,
-                                  lambda: version if run.scored else None, claim)
+                                  lambda: version if run.scored else None, claim, ready)
         mixture, extra = run.mixture, run.extra
         warmup_keep, clear_warmup = run.warmup_keep, run.clear_warmup
         if mixture is not None:

@@ -222,6 +222,10 @@ class file_digest:
         if self._thread is not None:
             self._thread.join()
 
+    def ready(self) -> bool:
+        """Whether :meth:`result` answers without waiting for the hashing thread."""
+        return self._thread is None or not self._thread.is_alive()
+
     def result(self) -> str:
         if self._thread is not None:
             self._thread.join()

@@ -8,6 +8,7 @@ escape the outbox and the same input always gets the same name.
 """
 from __future__ import annotations
 
+import base64
 import contextlib
 import os
 import re
@@ -52,26 +53,42 @@ def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray |
 
     ``segment``/``confidence``/``log_density`` hold values for the valid rows
     only (or are None when no model exists yet); invalid rows get nulls.
+    The columns are made from numpy buffers directly (``pa.Array.from_buffers``):
+    ``pa.array`` on a numpy array imports pandas on its first call (0.3-0.6 s of the
+    first input of every process) and copies the values once more.
     """
     n = len(valid)
-    mask = ~valid
+    scored = segment is not None
+    n_valid = int(np.count_nonzero(valid)) if scored else 0
+    if not scored:
+        validity = pa.py_buffer(np.zeros((n + 7) // 8, dtype=np.uint8))  # all null
+    elif n_valid == n:
+        validity = None
+    else:
+        validity = pa.py_buffer(np.packbits(valid, bitorder="little"))
+    nulls = n - n_valid
 
     def spread(values, dtype):
+        if not scored:
+            return np.zeros(n, dtype=dtype)
+        if n_valid == n:
+            return np.ascontiguousarray(values, dtype=dtype)
         full = np.zeros(n, dtype=dtype)
-        if values is not None:
-            full[valid] = values
+        full[valid] = values
         return full
 
-    scored = segment is not None
-    null = mask if scored else np.ones(n, dtype=bool)
+    def column(arrow_type, data: np.ndarray) -> pa.Array:
+        return pa.Array.from_buffers(arrow_type, n, [validity, pa.py_buffer(data)],
+                                     null_count=nulls)
+
     ld = spread(log_density, np.float64)
     cols = {
-        "segment": pa.array(spread(segment, np.int64), pa.int64(), mask=null),
-        "confidence": pa.array(spread(confidence, np.float64), pa.float64(), mask=null),
-        "log_density": pa.array(ld, pa.float64(), mask=null),
-        "unusual": pa.array(ld < unusual_below, pa.bool_(), mask=null),
-        "model_version": pa.array(np.full(n, model_version if scored else 0, dtype=np.int64),
-                                  pa.int64(), mask=null),
+        "segment": column(pa.int64(), spread(segment, np.int64)),
+        "confidence": column(pa.float64(), spread(confidence, np.float64)),
+        "log_density": column(pa.float64(), ld),
+        "unusual": column(pa.bool_(), np.packbits(ld < unusual_below, bitorder="little")),
+        "model_version": column(pa.int64(), np.full(n, model_version if scored else 0,
+                                                    dtype=np.int64)),
     }
     table = passthrough
     for name, arr in cols.items():
@@ -134,7 +151,9 @@ def write_labels(table: pa.Table, target: Path, fmt: str, metadata: dict[str, st
     return target
 
 
-_PLAIN_COLUMNS = ("confidence", "log_density")
+# Labels columns with few distinct values, dictionary-encoded; confidence and
+# log_density (nearly all values distinct) are not.
+_DICTIONARY_COLUMNS = ("segment", "unusual", "model_version")
 # Labels tables made ahead of the one being written (a 65,536-row table is a few MB).
 _TABLES_AHEAD = 4
 
@@ -142,20 +161,31 @@ _TABLES_AHEAD = 4
 def write_labels_stream(tables: Iterable[pa.Table], target: Path, fmt: str,
                         metadata: Callable[[], dict], sync_folder: bool = True,
                         final: Callable[[], Path] | None = None,
-                        threaded: bool = True) -> Path:
+                        threaded: bool = True,
+                        ready: Callable[[], bool] | None = None) -> Path:
     """Write the labels ``tables`` (all of one schema) one after another into ``target``
-    (or ``final()``), atomically, holding only a few tables at a time; ``metadata()`` is
-    asked for the Parquet schema's metadata when the first table arrives
-    (``sync_folder``, ``final``: see :func:`atomic_file`). Returns the file written.
+    (or ``final()``), atomically, holding only a few tables at a time (``sync_folder``,
+    ``final``: see :func:`atomic_file`). Returns the file written.
+
+    ``metadata()`` (the ``shoal.*`` keys of a Parquet file's schema metadata) is asked
+    exactly once whatever the format, and only if a table arrives: as the first table
+    is written when ``ready()`` says it can answer without waiting (no ``ready``:
+    always), else after the first later table for which it can, else once the last
+    table is written. So a caller whose metadata waits for something slow (the input's
+    content hash) never holds up the tables, and may still refuse the write early (an
+    error raised by ``metadata()`` is raised here and the temp file removed). A Parquet
+    file is the same, byte for byte, whenever the metadata was asked
+    (:func:`_late_metadata`).
 
     The tables are made in a worker thread (:class:`~shoal.daemon.readers.prefetch`)
     while this thread encodes and writes the ones made before (pyarrow releases the
     interpreter lock), so making labels and writing them overlap (``threaded=False``:
-    one after the other, for small inputs). An error in making
-    them is raised here and the temp file removed. A Parquet file gets a row group per
-    table; its float columns (confidence, log-density: nearly all values distinct) are
-    not dictionary-encoded, which in row groups of 65,536 rows took twice the time and
-    made the file larger.
+    one after the other, for small inputs). An error in making them is raised here and
+    the temp file removed. A Parquet file gets a row group per table, zstd-compressed.
+    Dictionary encoding is used for the labels columns with few values (segment,
+    unusual, model_version) and for text pass-through columns; not for the float labels
+    or numeric and time pass-through columns (ids, times: mostly distinct values),
+    where in row groups of 65,536 rows it took more time and made the file larger.
     """
     names = [target]
 
@@ -166,22 +196,62 @@ def write_labels_stream(tables: Iterable[pa.Table], target: Path, fmt: str,
     with atomic_file(target, sync_folder=sync_folder, final=named if final else None) as f, \
             prefetch(tables, depth=_TABLES_AHEAD, name="shoal-labels",
                      threaded=threaded) as ahead:
-        writer = None
+        writer = meta = None
+        late = False
         try:
             for table in ahead:
                 if writer is None:
-                    writer = _open_writer(f, table.schema, fmt, metadata)
+                    if ready is None or ready():
+                        meta = metadata()
+                    writer = _open_writer(f, table.schema, fmt, meta)
+                    late = meta is None
+                elif meta is None and ready():
+                    meta = metadata()
                 writer.write_table(table)
+            if writer is not None:
+                if meta is None:
+                    meta = metadata()
+                if late and fmt == "parquet":
+                    _late_metadata(writer, meta)
         finally:
             if writer is not None:
                 writer.close()
     return names[-1]
 
 
-def _open_writer(f: BinaryIO, schema: pa.Schema, fmt: str, metadata: Callable[[], dict]):
+def _schema_metadata(schema: pa.Schema, meta: dict) -> dict:
+    out = dict(schema.metadata or {})
+    out.update({f"shoal.{k}".encode(): str(v).encode() for k, v in meta.items()})
+    return out
+
+
+def _open_writer(f: BinaryIO, schema: pa.Schema, fmt: str, meta: dict | None):
+    """A writer for ``schema``; ``meta`` None: the shoal keys come later (Parquet)."""
     if fmt != "parquet":
         return pacsv.CSVWriter(f, schema)
-    meta = dict(schema.metadata or {})
-    meta.update({f"shoal.{k}".encode(): str(v).encode() for k, v in metadata().items()})
-    return pq.ParquetWriter(f, schema.with_metadata(meta), compression="zstd",
-                            use_dictionary=[n for n in schema.names if n not in _PLAIN_COLUMNS])
+    if meta is not None:
+        schema = schema.with_metadata(_schema_metadata(schema, meta))
+    return pq.ParquetWriter(f, schema, compression="zstd",
+                            use_dictionary=[n for n in schema.names
+                                            if _dictionary_column(n, schema.field(n).type)])
+
+
+def _dictionary_column(name: str, arrow_type: pa.DataType) -> bool:
+    return name in _DICTIONARY_COLUMNS or pa.types.is_string(arrow_type) or \
+        pa.types.is_large_string(arrow_type) or pa.types.is_binary(arrow_type) or \
+        pa.types.is_large_binary(arrow_type)
+
+
+def _late_metadata(writer: pq.ParquetWriter, meta: dict) -> None:
+    """Give an open Parquet writer the shoal keys of its schema metadata before it closes.
+
+    Arrow stores the schema a writer was opened with in the footer's key-value metadata:
+    its own metadata as keys, and the whole schema under ``ARROW:schema`` (the IPC
+    serialisation, base64; what readers rebuild the schema and its metadata from). Both
+    are replaced here as a writer opened with the metadata would have written them, so
+    the file is the same (tests/test_service_gate_writer.py compares the bytes).
+    """
+    schema = writer.schema.with_metadata(_schema_metadata(writer.schema, meta))
+    kv = dict(schema.metadata)
+    kv[b"ARROW:schema"] = base64.b64encode(schema.serialize().to_pybytes())
+    writer.add_key_value_metadata(kv)

@@ -145,3 +145,105 @@ def test_labels_table_nulls_invalid_rows():
     assert t.column("model_version").to_pylist() == [7, None, 7]
     warm = labels_table(pa.table({"key": ["a"]}), np.array([True]), None, None, None, -5.0, None)
     assert warm.column("segment").null_count == 1
+
+
+@pytest.mark.parametrize("invalid", ["none", "some", "all"])
+def test_labels_table_columns_equal_pyarrow_arrays_of_the_same_values(invalid):
+    """Columns made from numpy buffers equal ``pa.array(values, mask=...)`` of the same
+    values (the form they replaced); 70 rows: bitmaps of several bytes, a partial last."""
+    rng = np.random.default_rng(5)
+    n = 70
+    valid = {"none": np.ones(n, bool), "some": rng.uniform(size=n) < 0.7,
+             "all": np.zeros(n, bool)}[invalid]
+    m = int(valid.sum())
+    seg, conf, ld = rng.integers(0, 9, m), rng.uniform(0.3, 1.0, m), rng.normal(-5, 2, m)
+    t = labels_table(pa.table({"key": np.arange(n)}), valid, seg, conf, ld, -5.0, 4)
+
+    def expected(values, dtype, arrow_type):
+        full = np.zeros(n, dtype)
+        full[valid] = values
+        return pa.array(full, arrow_type, mask=~valid)
+
+    ld_full = np.zeros(n)
+    ld_full[valid] = ld
+    assert t.column("segment").combine_chunks().equals(expected(seg, np.int64, pa.int64()))
+    assert t.column("confidence").combine_chunks().equals(
+        expected(conf, np.float64, pa.float64()))
+    assert t.column("log_density").combine_chunks().equals(
+        expected(ld, np.float64, pa.float64()))
+    assert t.column("unusual").combine_chunks().equals(
+        pa.array(ld_full < -5.0, pa.bool_(), mask=~valid))
+    assert t.column("model_version").to_pylist() == [4 if v else None for v in valid]
+    for name in ("segment", "confidence", "unusual"):
+        assert t.column(name).null_count == n - m
+    t.validate(full=True)
+
+
+def _labels_tables(n_tables=3, rows=50):
+    rng = np.random.default_rng(11)
+    out = []
+    for i in range(n_tables):
+        valid = rng.uniform(size=rows) < 0.8
+        m = int(valid.sum())
+        passthrough = pa.table({
+            "key": pa.array([f"k{j % 7}" for j in range(rows)]),
+            "id": pa.array(np.arange(i * rows, (i + 1) * rows)),
+            "ts": pa.array(np.arange(rows) * 1000 + i, pa.timestamp("ms", tz="UTC"))})
+        out.append(labels_table(passthrough, valid, rng.integers(0, 4, m),
+                                rng.uniform(0.5, 1, m), rng.normal(size=m), -1.0, 3))
+    return out
+
+
+@pytest.mark.parametrize("ready_after", [None, 0, 2, 99])
+def test_labels_metadata_asked_late_gives_the_same_file(tmp_path, ready_after):
+    """Whether the metadata is asked as the first table is written (``ready`` None), after
+    a later one, or only once the last is written, it is asked exactly once and the
+    Parquet file is the same, byte for byte."""
+    from shoal.daemon.writer import write_labels_stream
+
+    tables = _labels_tables()
+    meta = {"input_sha256": "ab" * 32, "input_name": "in.parquet", "model_version": 3}
+    reference = write_labels_stream(iter(tables), tmp_path / "ref.parquet", "parquet",
+                                    lambda: meta, threaded=False)
+    written, asked = [], []
+
+    def metadata():
+        asked.append(len(written))
+        return meta
+
+    def counted():
+        for t in tables:
+            written.append(t)
+            yield t
+
+    ready = None if ready_after is None else (lambda: len(written) > ready_after)
+    out = write_labels_stream(counted(), tmp_path / "late.parquet", "parquet", metadata,
+                              threaded=False, ready=ready)
+    assert asked == [{None: 1, 0: 1, 2: 3, 99: 3}[ready_after]]
+    assert out.read_bytes() == reference.read_bytes()
+    assert pq.read_schema(out).metadata[b"shoal.input_sha256"] == b"ab" * 32
+    assert pq.read_table(out).equals(pa.concat_tables(tables).replace_schema_metadata(
+        pq.read_table(out).schema.metadata))
+
+
+def test_labels_metadata_refusing_part_way_leaves_no_file(tmp_path):
+    """An error from the metadata (a duplicate found once the hash is known) raised after
+    some tables were written leaves no labels file and no temp file behind."""
+    from shoal.daemon.writer import write_labels_stream
+
+    tables = _labels_tables(4)
+    written = []
+
+    def counted():
+        for t in tables:
+            written.append(t)
+            yield t
+
+    def refuse():
+        raise LookupError("seen before")
+
+    with pytest.raises(LookupError):
+        write_labels_stream(counted(), tmp_path / "x.parquet", "parquet", refuse,
+                            threaded=False, ready=lambda: len(written) >= 2)
+    assert len(written) == 2
+    assert list(tmp_path.iterdir()) == []
