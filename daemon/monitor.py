@@ -205,9 +205,23 @@ class InputWatch:
         self.rebaselined = False
         if state is not None and state.get("format") != STATE_FORMAT:
             raise ValueError(f"drift state has format {state.get('format')!r}")
-        self.state = json.loads(json.dumps(state)) if state is not None else None
+        self._state = json.loads(json.dumps(state)) if state is not None else None
         self.last_values: dict[str, dict[str, float]] = {}
         self._ref_cache = None   # (reference dict, Reference, GaussianSet)
+        # the open window's per-segment sums of the pieces since the last flush, as arrays
+        # (adding each piece to the state's JSON lists cost more than computing it)
+        self._pending: dict | None = None
+
+    @property
+    def state(self) -> dict | None:
+        """The drift state (JSON-able, committed with the model), window sums up to date."""
+        self._flush()
+        return self._state
+
+    @state.setter
+    def state(self, value: dict | None) -> None:
+        self._flush()
+        self._state = value
 
     # -- setup -----------------------------------------------------------------------
     def start(self, stream_offset: int) -> None:
@@ -219,9 +233,9 @@ class InputWatch:
                       "last_ld": None, "rebase": None}
 
     def _ensure(self) -> dict:
-        if self.state is None:  # a model made before drift watching: count from here
+        if self._state is None:  # a model made before drift watching: count from here
             self.start(self.monitor.settings.warmup_rows)
-        return self.state
+        return self._state
 
     # -- pieces ----------------------------------------------------------------------
     @property
@@ -245,10 +259,12 @@ class InputWatch:
         index = first_row // w
         win = st["window"]
         if win is None or win["index"] != index:
+            self._flush()
             win = st["window"] = _empty_window(index)
         times = None if self.times is None else self.times[start:start + len(X)]
         self._accumulate(win, mixture, X, scores, times)
         if end_row % w == 0:
+            self._flush()
             self._close(win, mixture, first_window_row=index * w)
             st["window"] = None
 
@@ -262,25 +278,27 @@ class InputWatch:
         win["n"] += n
         win["ld"] += float(ld.sum())
         win["ld2"] += float(np.dot(ld, ld))
+        ids = mixture.ids.tolist()
+        sums = self._pending
+        if sums is None or sums["window"] is not win or sums["ids"] != ids:
+            self._flush()
+            K, D = resp.shape[1], X.shape[1]
+            sums = self._pending = {"window": win, "ids": ids, "T": np.zeros(K),
+                                    "Q": np.zeros(K), "M": np.zeros((K, D)),
+                                    "S": np.zeros((K, D, D))}
         T = resp.sum(axis=0)
-        Q = np.einsum("nk,nk->k", resp, resp)
-        M = resp.T @ Xc
-        for k, sid in enumerate(mixture.ids.tolist()):
-            if T[k] <= 0.0:
-                continue
+        sums["T"] += T
+        sums["Q"] += np.einsum("nk,nk->k", resp, resp)
+        sums["M"] += resp.T @ Xc
+        for k in np.flatnonzero(T > 0.0).tolist():
             # Second moments from the rows that carry weight for this segment: rows
             # under _NEGLIGIBLE add less than that share of a row each, far below the
             # statistics' noise, and on separated segments most rows are skipped.
             rk = resp[:, k]
             rows = np.flatnonzero(rk > _NEGLIGIBLE)
             Xk = Xc[rows]
-            S = (Xk * rk[rows, None]).T @ Xk
-            acc = win["segments"].setdefault(str(sid), {"T": 0.0, "Q": 0.0, "M": None, "S": None})
-            acc["T"] += float(T[k])
-            acc["Q"] += float(Q[k])
-            acc["M"] = _add(acc["M"], M[k])
-            acc["S"] = _add(acc["S"], S)
-        limit = self.state.get("reference_info", {}) or {}
+            sums["S"][k] += (Xk * rk[rows, None]).T @ Xk
+        limit = self._state.get("reference_info", {}) or {}
         below = limit.get("unusual_below")
         if below is not None:
             mask = ld < below
@@ -298,6 +316,21 @@ class InputWatch:
         if span is not None:
             win["time"] = _widen(win["time"], *span)
         win["center"] = mixture.center.tolist()
+
+    def _flush(self) -> None:
+        """Add the pending per-segment sums to their window's JSON-able sums."""
+        sums, self._pending = self._pending, None
+        if sums is None:
+            return
+        segments = sums["window"]["segments"]
+        for k, sid in enumerate(sums["ids"]):
+            if sums["T"][k] <= 0.0:
+                continue
+            acc = segments.setdefault(str(sid), {"T": 0.0, "Q": 0.0, "M": None, "S": None})
+            acc["T"] += float(sums["T"][k])
+            acc["Q"] += float(sums["Q"][k])
+            acc["M"] = _add(acc["M"], sums["M"][k])
+            acc["S"] = _add(acc["S"], sums["S"][k])
 
     # -- windows ---------------------------------------------------------------------
     def _window_info(self, win, first_window_row) -> dict:
