@@ -157,7 +157,7 @@ class BoundOverride:
 @dataclass(frozen=True)
 class DriftSettings:
     enabled: bool = _f(True, "compare segments with their reference and raise alerts")
-    window_rows: int = _f(4000, "rows per evaluation window (the unit of persistence)",
+    window_rows: int = _f(4096, "rows per evaluation window (the unit of persistence)",
                           min=100, max=10_000_000)
     settle_rows: int = _f(
         20000, "rows learned after warm-up before the reference snapshot is taken",
@@ -216,7 +216,7 @@ class LifecycleSettings:
 
     enabled: bool = _f(True, "segments are born, retired and merged as the population changes")
     check_rows: int = _f(
-        4000, "births, retirements and merges are decided at every multiple of this many "
+        4096, "births, retirements and merges are decided at every multiple of this many "
               "rows learned after warm-up", min=100, max=10_000_000)
     unexplained_quantile: float = _f(
         0.999, "a row is unexplained when its squared Mahalanobis distance to every segment "

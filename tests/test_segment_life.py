@@ -156,10 +156,11 @@ def test_groups_drifting_into_each_other_merge_as_the_sum_of_their_statistics(st
     weights, means, covs = _truth()
     a, b = 2, 4
     rng = np.random.default_rng(23)
-    # drops end on decision points (warm-up 2000 + multiples of 4000), so the merge
+    # drops end on decision points (warm-up + multiples of check_rows), so the merge
     # is decided at the start of an input, on the model of the previous checkpoint
     s = stream(half_life_rows=10_000, drift={"enabled": False})
-    s.feed(_rows(rng, 26_000, weights, means, covs), 26_000)
+    first = s.settings.warmup_rows + 6 * s.settings.lifecycle.check_rows
+    s.feed(_rows(rng, first, weights, means, covs), first)
     older, newer = sorted((_segment_near(s, means[a]), _segment_near(s, means[b])))
     midpoint = 0.5 * (means[a] + means[b])
     version_rows = s.settings.lifecycle.check_rows
