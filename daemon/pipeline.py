@@ -144,11 +144,16 @@ class Pipeline:
         self.settings_listeners: list = []
         self.state = self.load_state()
         self._group: list[_Pending] | None = None   # the open group (process_group)
+        if settings.drift.enabled or settings.lifecycle.enabled:
+            # loaded now (with scipy.special and scipy.linalg, ~0.2-0.6 s) rather than
+            # inside the first input's processing time
+            import shoal.daemon.monitor  # noqa: F401
+            import shoal.daemon.segment_life  # noqa: F401
 
     @property
     def monitor(self) -> DriftMonitor:
         """Drift evaluation with the settings in force (they may be reloaded)."""
-        from shoal.daemon.monitor import DriftMonitor   # scipy.stats: only when learning
+        from shoal.daemon.monitor import DriftMonitor
 
         return DriftMonitor(self.settings)
 
@@ -322,8 +327,12 @@ class Pipeline:
         return result
 
     def _frames(self, f: BinaryIO, kind: str, threaded: bool) -> prefetch:
-        """The input's frames, read in a thread a few frames ahead of the model."""
-        return prefetch(iter_frames(f, kind, self.settings, self.stop.is_set),
+        """The input's frames, read in a thread a few frames ahead of the model; with a
+        model, checked against its range as they are read (:func:`_mark_beyond_model`)."""
+        mixture = self.state.mixture
+        return prefetch(iter_frames(f, kind, self.settings, self.stop.is_set,
+                                    model_range=None if mixture is None
+                                    else _model_range(mixture)),
                         threaded=threaded)
 
     def _write(self, frames: prefetch, tables: Callable[[Iterable[Frame]], Iterable[pa.Table]],
@@ -709,17 +718,31 @@ a corrupt number) would swamp the second-moment statistics, which then no longer
 positive-definite covariance, and every later refresh of the model would fail."""
 
 
+def _model_range(mixture: Mixture) -> tuple[np.ndarray, np.ndarray]:
+    """``(center, limit)``: a feature further than ``limit`` from ``center`` is beyond
+    MODEL_RANGE_SDS of ``mixture``'s scale (both frozen at warm-up)."""
+    return mixture.center, MODEL_RANGE_SDS * mixture.scale
+
+
 def _mark_beyond_model(frame: Frame, mixture: Mixture) -> None:
-    """Mark invalid the rows of ``frame`` beyond MODEL_RANGE_SDS of ``mixture``'s scale."""
+    """Mark invalid the rows of ``frame`` beyond MODEL_RANGE_SDS of ``mixture``'s scale
+    (the reader did it already when it read the frame with this model's range)."""
     if frame.n_rows == 0:
         return
-    with np.errstate(invalid="ignore"):       # NaN features (already invalid) compare False
-        far = np.any(np.abs(frame.features - mixture.center)
-                     > MODEL_RANGE_SDS * mixture.scale, axis=1)
-    far &= frame.valid
-    if far.any():
-        frame.valid[far] = False
-        log_event("rows_beyond_model_range", logging.WARNING, rows=int(far.sum()),
+    center, limit = _model_range(mixture)
+    checked = frame.model_range
+    if checked is not None and np.array_equal(checked[0], center) and \
+            np.array_equal(checked[1], limit):
+        far = frame.beyond_range
+    else:
+        with np.errstate(invalid="ignore"):   # NaN features (already invalid) compare False
+            beyond = np.any(np.abs(frame.features - center) > limit, axis=1)
+        beyond &= frame.valid
+        far = int(np.count_nonzero(beyond))
+        if far:
+            frame.valid[beyond] = False
+    if far:
+        log_event("rows_beyond_model_range", logging.WARNING, rows=far,
                   limit_sds=MODEL_RANGE_SDS)
 
 

@@ -51,6 +51,46 @@ def test_frames_do_not_depend_on_the_files_record_batches(tmp_path):
         np.testing.assert_array_equal(X[:, j], table.column(name).to_numpy())
 
 
+def test_frames_checked_against_a_model_range_refuse_the_rows_the_model_would(tmp_path):
+    """Rows read with a model's range are refused exactly where the check of a whole
+    frame against the model (pipeline._mark_beyond_model, as before the reader did it)
+    refuses them, whatever the record batches; NaN, infinite and past-1e50 rows stay
+    invalid without counting as beyond the range; ranges near 1e50 keep that bound."""
+    from shoal.daemon.readers import FEATURE_BOUND, Frame
+
+    table = synthetic_table(0, 3000, SEED)
+    X = np.column_stack([table.column(c).to_numpy() for c in ("f1", "f2", "f3")])
+    X[[5, 700, 1500], 0] = [np.nan, np.inf, 1e60]      # invalid by the bound
+    X[[9, 1025, 2999], [1, 2, 0]] = [4e3, -4e3, 5e3]     # beyond a range of 1e3
+    X[11] = [np.nan, 1e4, 0.0]                           # both: not counted as beyond
+    for j, name in enumerate(("f1", "f2", "f3")):
+        table = table.set_column(table.schema.get_field_index(name), name, pa.array(X[:, j]))
+    pq.write_table(table, tmp_path / "many.parquet", row_group_size=333)
+    settings = load_config(write_config(tmp_path))
+    sds = pipeline_module.MODEL_RANGE_SDS
+    for center, scale, n_beyond in (
+            (np.array([0.5, -1.0, 2.0]), np.full(3, 1e3 / sds), 3),
+            (np.zeros(3), np.array([1e3, 0.6 * FEATURE_BOUND, 1e3]) / sds, 2)):
+        mixture = type("Model", (), {"center": center, "scale": scale})
+        limit = pipeline_module._model_range(mixture)[1]
+        with open(tmp_path / "many.parquet", "rb") as f:
+            checked = list(iter_frames(f, "parquet", settings, rows=1024,
+                                       model_range=(center, limit)))
+        with open(tmp_path / "many.parquet", "rb") as f:
+            plain = list(iter_frames(f, "parquet", settings, rows=1024))
+        for a, b in zip(checked, plain):
+            np.testing.assert_array_equal(a.features, b.features)
+            with np.errstate(invalid="ignore"):
+                far = np.any(np.abs(b.features - center) > limit, axis=1) & b.valid
+            np.testing.assert_array_equal(a.valid, b.valid & ~far)
+            assert a.beyond_range == int(far.sum())
+            # the pipeline's own check of a frame read without the range agrees
+            again = Frame(b.features, b.passthrough, b.valid.copy())
+            pipeline_module._mark_beyond_model(again, mixture)
+            np.testing.assert_array_equal(again.valid, a.valid)
+        assert sum(fr.beyond_range for fr in checked) == n_beyond
+
+
 def _learn_two_inputs(folder, monkeypatch, frame_rows, row_group_rows=None):
     """Two inputs (the first one ends the warm-up part-way) learned in frames of
     ``frame_rows``; returns the model's state arrays and the labels tables."""
