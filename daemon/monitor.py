@@ -211,6 +211,7 @@ class InputWatch:
         # the open window's per-segment sums of the pieces since the last flush, as arrays
         # (adding each piece to the state's JSON lists cost more than computing it)
         self._pending: dict | None = None
+        self._rows_buffer: np.ndarray | None = None   # a piece's centred rows
 
     @property
     def state(self) -> dict | None:
@@ -272,8 +273,10 @@ class InputWatch:
         n = len(X)
         if n == 0:
             return
-        resp = scores.resp
-        Xc = X - mixture.center
+        resp_kn = np.ascontiguousarray(scores.resp.T)   # (K, n): the core's own layout
+        if self._rows_buffer is None or len(self._rows_buffer) < n:
+            self._rows_buffer = np.empty((n, X.shape[1]))
+        Xc = np.subtract(X, mixture.center, out=self._rows_buffer[:n])
         ld = scores.log_density
         win["n"] += n
         win["ld"] += float(ld.sum())
@@ -282,22 +285,21 @@ class InputWatch:
         sums = self._pending
         if sums is None or sums["window"] is not win or sums["ids"] != ids:
             self._flush()
-            K, D = resp.shape[1], X.shape[1]
+            K, D = resp_kn.shape[0], X.shape[1]
             sums = self._pending = {"window": win, "ids": ids, "T": np.zeros(K),
                                     "Q": np.zeros(K), "M": np.zeros((K, D)),
                                     "S": np.zeros((K, D, D))}
-        T = resp.sum(axis=0)
+        T = resp_kn.sum(axis=1)
         sums["T"] += T
-        sums["Q"] += np.einsum("nk,nk->k", resp, resp)
-        sums["M"] += resp.T @ Xc
+        sums["Q"] += np.einsum("kn,kn->k", resp_kn, resp_kn)
+        sums["M"] += resp_kn @ Xc
         for k in np.flatnonzero(T > 0.0).tolist():
             # Second moments from the rows that carry weight for this segment: rows
             # under _NEGLIGIBLE add less than that share of a row each, far below the
             # statistics' noise, and on separated segments most rows are skipped.
-            rk = resp[:, k]
-            rows = np.flatnonzero(rk > _NEGLIGIBLE)
+            rows = np.flatnonzero(resp_kn[k] > _NEGLIGIBLE)
             Xk = Xc[rows]
-            sums["S"][k] += (Xk * rk[rows, None]).T @ Xk
+            sums["S"][k] += (Xk * resp_kn[k, rows, None]).T @ Xk
         limit = self._state.get("reference_info", {}) or {}
         below = limit.get("unusual_below")
         if below is not None:

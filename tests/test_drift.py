@@ -377,3 +377,14 @@ def test_stationary_batches_stay_quiet_and_a_shifted_segment_fires():
         fired.extend((e["at"], e["segment"], e["statistic"]) for e in events)
     assert fired and fired[0] == (27, 2, "batch_mean_shift")
     assert all(seg == 2 for _, seg, _ in fired)
+
+
+def test_trigamma_is_scipys_polygamma_of_order_one():
+    """The drift noise's trigamma (Hurwitz zeta(2, x)) against scipy.special.polygamma(1, x)
+    over the arguments it meets (half effective rows, from just above 0 to 10^7)."""
+    from scipy import special
+
+    from shoal.core.drift import _trigamma
+
+    x = np.concatenate([np.linspace(0.01, 10, 500), np.geomspace(10, 1e7, 500)])
+    np.testing.assert_array_equal(_trigamma(x), special.polygamma(1, x))
