@@ -31,6 +31,10 @@ Each family provides
     The statistics of a block for the stepwise update: ``moments`` with weights
     ``resp * row_w``, where responsibilities below ``floor`` count as zero (sparse
     EM). ``resp`` has shape (n_components, n_samples), ``row_w`` (n_samples,).
+``split_moments(P, n_features)``
+    ``(s0, s1, s2)`` from the products of weights and design: ``P[k] = sum_i w_ik
+    a_i a_i^T`` (full, shape (K, W, W)) or ``P[k] = sum_i w_ik a_i`` (diag and
+    spherical, shape (K, W)), ``a_i`` the design row.
 ``covariance(s0, s1, s2, n_eff, reg_covar, prior_weight)``
     Covariances from sufficient statistics, shrunk towards the identity by a weak
     conjugate (inverse-Wishart-like) prior worth ``prior_weight`` rows, plus
@@ -52,7 +56,7 @@ from scipy.linalg import lapack
 
 from .errors import IllConditionedError
 
-__all__ = ["FAMILIES", "COVARIANCE_TYPES", "LOG_2PI"]
+__all__ = ["FAMILIES", "COVARIANCE_TYPES", "LOG_2PI", "not_positive_definite"]
 
 LOG_2PI = float(np.log(2.0 * np.pi))
 
@@ -123,7 +127,7 @@ def _full_weighted_moments(A, resp, row_w, floor):
             wk = rk[rows]
             wk *= row_w[rows]
         M[k] = (Ak * wk[:, None]).T @ Ak
-    return M[:, -1, -1].copy(), M[:, -1, :-1].copy(), M[:, :-1, :-1].copy()
+    return _full_split_moments(M, A.shape[1] - 1)
 
 
 def _dense_weighted_moments(moments):
@@ -133,6 +137,10 @@ def _dense_weighted_moments(moments):
             resp_w[resp < floor] = 0.0
         return moments(A, resp_w)
     return weighted_moments
+
+
+def _full_split_moments(P, n_features):
+    return P[:, -1, -1].copy(), P[:, -1, :-1].copy(), P[:, :-1, :-1].copy()
 
 
 def _full_covariance(s0, s1, s2, n_eff, reg_covar, prior_weight):
@@ -163,11 +171,16 @@ def _full_precision_cholesky(cov):
             continue
         out[k] = inv_chol.T          # upper triangular U with U U^T = cov^-1
     if bad:
-        raise IllConditionedError(
-            f"the covariance of component(s) {bad} is not positive definite even after "
-            f"regularisation; {_REMEDY}"
-        )
+        raise not_positive_definite(bad)
     return out
+
+
+def not_positive_definite(components) -> IllConditionedError:
+    """The error for full covariances that no Cholesky factor exists for."""
+    return IllConditionedError(
+        f"the covariance of component(s) {list(components)} is not positive definite even "
+        f"after regularisation; {_REMEDY}"
+    )
 
 
 def _full_log_det(prec_chol, n_features):
@@ -219,9 +232,12 @@ def _diag_design(Z, out=None):
 
 
 def _diag_moments(A, resp_w):
-    n_features = (A.shape[1] - 1) // 2
-    m = resp_w @ A                            # (K, 2D + 1): s2, s1 and s0 in one GEMM
-    return m[:, -1], m[:, n_features:-1], m[:, :n_features]
+    # (K, 2D + 1): s2, s1 and s0 in one GEMM
+    return _diag_split_moments(resp_w @ A, (A.shape[1] - 1) // 2)
+
+
+def _diag_split_moments(P, n_features):
+    return P[:, -1], P[:, n_features:-1], P[:, :n_features]
 
 
 def _diag_covariance(s0, s1, s2, n_eff, reg_covar, prior_weight):
@@ -284,9 +300,11 @@ def _spherical_design(Z, out=None):
 
 
 def _spherical_moments(A, resp_w):
-    n_features = A.shape[1] - 2
-    m = resp_w @ A
-    return m[:, -1], m[:, 1:-1], m[:, 0] / n_features
+    return _spherical_split_moments(resp_w @ A, A.shape[1] - 2)
+
+
+def _spherical_split_moments(P, n_features):
+    return P[:, -1], P[:, 1:-1], P[:, 0] / n_features
 
 
 def _spherical_covariance(s0, s1, s2, n_eff, reg_covar, prior_weight):
@@ -338,6 +356,7 @@ FAMILIES = {
         width=_full_width,
         moments=_full_moments,
         weighted_moments=_full_weighted_moments,
+        split_moments=_full_split_moments,
         covariance=_full_covariance,
         precision_cholesky=_full_precision_cholesky,
         log_det=_full_log_det,
@@ -352,6 +371,7 @@ FAMILIES = {
         width=_diag_width,
         moments=_diag_moments,
         weighted_moments=_dense_weighted_moments(_diag_moments),
+        split_moments=_diag_split_moments,
         covariance=_diag_covariance,
         precision_cholesky=_diag_precision_cholesky,
         log_det=_diag_log_det,
@@ -366,6 +386,7 @@ FAMILIES = {
         width=_spherical_width,
         moments=_spherical_moments,
         weighted_moments=_dense_weighted_moments(_spherical_moments),
+        split_moments=_spherical_split_moments,
         covariance=_spherical_covariance,
         precision_cholesky=_diag_precision_cholesky,
         log_det=_spherical_log_det,

@@ -24,7 +24,8 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from .errors import ModelError
-from .mixture import BLOCK_ROWS, Mixture, Scores, _ScoreBuffer
+from . import fused
+from .mixture import BLOCK_ROWS, Mixture, Scores, _ScoreBuffer, _Standardiser
 from .schedule import StepSchedule
 
 __all__ = ["PartitionStatistics", "keep_between", "round_weights", "partition_statistics",
@@ -98,13 +99,17 @@ def partition_statistics(mixture: Mixture, X, weights) -> tuple[PartitionStatist
         raise ModelError(f"weights should have shape ({X.shape[0]},), got {weights.shape}")
     n = X.shape[0]
     out = _ScoreBuffer(n, mixture.n_components)
-    total = (np.zeros_like(mixture.s0), np.zeros_like(mixture.s1), np.zeros_like(mixture.s2))
-    for lo in range(0, n, BLOCK_ROWS):
-        Zb = (X[lo:lo + BLOCK_ROWS] - mixture.center) / mixture.scale
-        A = mixture._score_block(Zb, out, lo)
-        hi = lo + Zb.shape[0]
-        part = mixture._accumulate(A, out.resp_kn[:, lo:hi], weights[lo:hi])
-        total = tuple(a + b for a, b in zip(total, part))
+    if n and fused.enabled():
+        total = mixture._fused_span(X, 0, n, out, _Standardiser(mixture.center, mixture.scale),
+                                    weights, mixture.resp_floor)
+    else:
+        total = (np.zeros_like(mixture.s0), np.zeros_like(mixture.s1), np.zeros_like(mixture.s2))
+        for lo in range(0, n, BLOCK_ROWS):
+            Zb = (X[lo:lo + BLOCK_ROWS] - mixture.center) / mixture.scale
+            A = mixture._score_block(Zb, out, lo)
+            hi = lo + Zb.shape[0]
+            part = mixture._accumulate(A, out.resp_kn[:, lo:hi], weights[lo:hi])
+            total = tuple(a + b for a, b in zip(total, part))
     stats = PartitionStatistics(s0=total[0], s1=total[1], s2=total[2],
                                 sumsq=float(np.dot(weights, weights)), n_rows=int(n))
     return stats, out.scores(mixture.ids)

@@ -38,3 +38,16 @@ def no_leaked_threads():
         t.join(timeout=5.0)
     leaked = [t for t in deadline_threads if t.is_alive()]
     assert not leaked, f"test leaked threads: {leaked}"
+
+
+@pytest.fixture(params=["compiled", "numpy"])
+def scoring_path(request):
+    """Run a test on the compiled kernels (core/fused.py) and on the numpy path."""
+    from shoal.core import fused
+
+    before = fused.enabled()
+    if request.param == "compiled" and not before:
+        pytest.skip("numba is not importable or SHOAL_JIT=0: no compiled kernels")
+    fused.set_enabled(request.param == "compiled")
+    yield request.param
+    fused.set_enabled(before)

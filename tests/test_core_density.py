@@ -7,6 +7,9 @@ from scipy.stats import multivariate_normal
 from shoal.core import Mixture
 from shoal.core.covariance import FAMILIES
 
+# every check here runs on the compiled kernels and on the numpy path
+pytestmark = pytest.mark.usefixtures("scoring_path")
+
 
 def _random_mixture(covariance, seed, n_components=3, n_features=4):
     rng = np.random.default_rng(seed)

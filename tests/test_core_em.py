@@ -9,6 +9,9 @@ from shoal.core import (
     IllConditionedError, Mixture, NotEnoughDataError, batch_em, initialise, select_n_components,
 )
 
+# every check here runs on the compiled kernels and on the numpy path
+pytestmark = pytest.mark.usefixtures("scoring_path")
+
 
 @pytest.mark.parametrize("covariance", ["full", "diag", "spherical"])
 def test_batch_em_never_lowers_the_likelihood(covariance, mixture_data):

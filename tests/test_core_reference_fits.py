@@ -10,6 +10,9 @@ from sklearn.mixture import GaussianMixture
 
 from shoal.core import Mixture, initialise
 
+# every check here runs on the compiled kernels and on the numpy path
+pytestmark = pytest.mark.usefixtures("scoring_path")
+
 
 @pytest.mark.parametrize("covariance", ["full", "diag", "spherical"])
 def test_one_batch_step_equals_one_sklearn_em_iteration(covariance, mixture_data):

@@ -10,6 +10,9 @@ from sklearn.mixture import GaussianMixture
 
 from shoal.core import Mixture, StepSchedule, batch_em, floor_from_half_life, initialise
 
+# every check here runs on the compiled kernels and on the numpy path
+pytestmark = pytest.mark.usefixtures("scoring_path")
+
 
 def _final_row_weights(schedule, cuts):
     """Each row's weight in the statistics at the end, applying the batches in ``cuts``."""

@@ -1,0 +1,112 @@
+"""The compiled kernels (core/fused.py) against the numpy path and LAPACK.
+
+The numpy path is the reference here: it is itself checked against scipy and
+scikit-learn in test_core_density.py and test_core_reference_fits.py (which run on
+both paths). The two paths differ only in the order of floating-point operations.
+"""
+
+import os
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+from scipy.linalg import cho_factor
+
+from shoal.core import IllConditionedError, Mixture, fused, initialise
+from shoal.core.covariance import FAMILIES
+
+pytestmark = pytest.mark.skipif(not fused.enabled(), reason="numba not importable")
+
+
+@pytest.fixture
+def numpy_then_compiled():
+    """Call ``run()`` once on each path; gives (numpy result, compiled result)."""
+    def both(run):
+        try:
+            fused.set_enabled(False)
+            a = run()
+            fused.set_enabled(True)
+            b = run()
+        finally:
+            fused.set_enabled(True)
+        return a, b
+    return both
+
+
+@pytest.mark.parametrize("covariance", ["full", "diag", "spherical"])
+def test_learning_agrees_with_the_numpy_path(covariance, mixture_data, numpy_then_compiled):
+    X, *_ = mixture_data(30_000, 5, 6, seed=71)
+    start = initialise(X[:4000], 5, covariance, seed=0, n_init=1)
+    # 26,000 rows: several refreshes, a piece that ends mid-block and a last partial block
+    (a, sa), (b, sb) = numpy_then_compiled(lambda: start.learn(X[4000:]))
+    for name in ("s0", "s1", "s2", "weights", "means", "covariances", "prec_chol", "log_det"):
+        np.testing.assert_allclose(getattr(b, name), getattr(a, name), rtol=1e-9, atol=1e-13,
+                                   err_msg=name)
+    np.testing.assert_array_equal(sb.component, sa.component)
+    np.testing.assert_allclose(sb.log_density, sa.log_density, rtol=1e-11)
+    np.testing.assert_allclose(sb.confidence, sa.confidence, rtol=1e-11)
+    np.testing.assert_allclose(sb.resp, sa.resp, rtol=1e-9, atol=1e-15)
+    assert b.n_rows == a.n_rows == start.n_rows + 26_000
+
+
+@pytest.mark.parametrize("covariance", ["full", "diag", "spherical"])
+def test_scoring_and_batch_em_agree_with_the_numpy_path(covariance, mixture_data,
+                                                        numpy_then_compiled):
+    X, *_ = mixture_data(9_000, 4, 5, seed=72)
+    m = initialise(X[:3000], 4, covariance, seed=1, n_init=1)
+    sa, sb = numpy_then_compiled(lambda: m.score(X))
+    np.testing.assert_allclose(sb.log_density, sa.log_density, rtol=1e-12)
+    np.testing.assert_array_equal(sb.component, sa.component)
+    (ea, lla), (eb, llb) = numpy_then_compiled(lambda: m.em_step(X))
+    assert llb == pytest.approx(lla, rel=1e-13)
+    for name in ("s0", "s1", "s2", "covariances"):
+        np.testing.assert_allclose(getattr(eb, name), getattr(ea, name), rtol=1e-10,
+                                   atol=1e-14, err_msg=name)
+
+
+def test_ties_go_to_the_first_component_on_both_paths(numpy_then_compiled):
+    # two identical components: every row is a tie, and the first one must win
+    m = Mixture.from_parameters([0.5, 0.5], np.zeros((2, 2)), np.stack([np.eye(2)] * 2),
+                                covariance="full")
+    X = np.random.default_rng(3).normal(size=(2500, 2))
+    sa, sb = numpy_then_compiled(lambda: m.score(X))
+    assert np.all(sa.component == 0) and np.all(sb.component == 0)
+    np.testing.assert_allclose(sb.confidence, 0.5, rtol=1e-15)
+
+
+def test_compiled_factor_matches_lapack():
+    rng = np.random.default_rng(5)
+    A = rng.normal(size=(6, 16, 16))
+    cov = A @ np.swapaxes(A, 1, 2) + 0.05 * np.eye(16)
+    K = cov.shape[0]
+    prec, log_det, bad = np.zeros_like(cov), np.empty(K), np.zeros(K, dtype=bool)
+    fused.kernels().full_factor(cov, prec, log_det, bad)
+    assert not bad.any()
+    reference = FAMILIES["full"].precision_cholesky(cov)      # LAPACK potrf + trtri
+    np.testing.assert_allclose(prec, reference, rtol=1e-9, atol=1e-12)
+    # U U^T is the inverse (numpy.linalg as an outside reference)
+    np.testing.assert_allclose(prec @ np.swapaxes(prec, 1, 2), np.linalg.inv(cov),
+                               rtol=1e-8, atol=1e-10)
+    np.testing.assert_allclose(log_det, -0.5 * np.linalg.slogdet(cov)[1], rtol=1e-12)
+    # lower-triangular factor check against scipy's Cholesky
+    c, _ = cho_factor(cov[0], lower=True)
+    np.testing.assert_allclose(np.linalg.inv(np.tril(c)).T, prec[0], rtol=1e-9, atol=1e-12)
+
+
+def test_compiled_factor_reports_what_lapack_refuses():
+    cov = np.stack([np.eye(3), np.diag([1.0, -1.0, 1.0]), np.full((3, 3), np.nan)])
+    prec, log_det, bad = np.zeros_like(cov), np.empty(3), np.zeros(3, dtype=bool)
+    fused.kernels().full_factor(cov, prec, log_det, bad)
+    assert bad.tolist() == [False, True, True]
+    with pytest.raises(IllConditionedError, match=r"component\(s\) \[1, 2\].*reg_covar"):
+        Mixture.from_parameters([0.4, 0.3, 0.3], np.zeros((3, 3)), cov, covariance="full")
+
+
+def test_shoal_jit_0_switches_the_kernels_off():
+    code = "from shoal.core import fused; print(fused.enabled())"
+    env = dict(os.environ, SHOAL_JIT="0")
+    off = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
+                         text=True, timeout=120)
+    assert off.returncode == 0, off.stderr
+    assert off.stdout.strip() == "False"
