@@ -34,6 +34,7 @@ __all__ = [
     "hellinger_distance",
     "hellinger_from_bhattacharyya",
     "pairwise_bhattacharyya",
+    "bhattacharyya_lower_bound",
     "hotelling_t2",
     "hotelling_t2_critical_value",
     "hotelling_t2_pvalue",
@@ -218,7 +219,7 @@ def bhattacharyya_coefficient(mean0, cov0, mean1, cov1):
     return _scalar_or_array(np.exp(-_bhattacharyya(*_check_pair(mean0, cov0, mean1, cov1))))
 
 
-def pairwise_bhattacharyya(means, covs):
+def pairwise_bhattacharyya(means, covs, pairs=None):
     """Bhattacharyya distances between every pair of a set of Gaussians.
 
     Each Gaussian's own factorisation is done once and each unordered pair once, so
@@ -229,6 +230,9 @@ def pairwise_bhattacharyya(means, covs):
     ----------
     means : array_like of shape (K, n_features)
     covs : array_like of shape (K, n_features, n_features)
+    pairs : ndarray of bool, shape (K(K-1)/2,), optional
+        Which pairs of ``np.triu_indices(K, k=1)`` to compute; the others are left
+        at ``inf`` (each pair's value does not depend on which others are computed).
 
     Returns
     -------
@@ -241,14 +245,39 @@ def pairwise_bhattacharyya(means, covs):
     out = np.zeros((n, n))
     if n < 2:
         return out
-    own = _log_det_chol(_cholesky(covs, "covs"))
     rows, cols = np.triu_indices(n, k=1)
+    if pairs is not None:
+        out[rows[~pairs], cols[~pairs]] = out[cols[~pairs], rows[~pairs]] = np.inf
+        rows, cols = rows[pairs], cols[pairs]
+        if rows.size == 0:
+            return out
+    own = _log_det_chol(_cholesky(covs, "covs"))
     chol = _cholesky(0.5 * (covs[rows] + covs[cols]), "(cov0 + cov1) / 2")
     maha = _squared_mahalanobis_chol(means[cols] - means[rows], chol)
     log_ratio = _log_det_chol(chol) - 0.5 * (own[rows] + own[cols])
     out[rows, cols] = np.maximum(0.125 * maha + 0.5 * log_ratio, 0.0)
     out[cols, rows] = out[rows, cols]
     return out
+
+
+def bhattacharyya_lower_bound(means, covs):
+    """A lower bound of the Bhattacharyya distance of every pair, from means and traces.
+
+    ``D_B >= (1/8) d' S^-1 d`` with ``S = (S0 + S1) / 2`` (its log-determinant term is
+    never negative: log det is concave), and ``d' S^-1 d >= |d|^2 / lambda_max(S) >=
+    |d|^2 / tr(S)``, so ``D_B >= |d|^2 / (4 (tr S0 + tr S1))``: no factorisation needed.
+
+    Returns
+    -------
+    bound : ndarray of shape (K(K-1)/2,)
+        For the pairs of ``np.triu_indices(K, k=1)``.
+    """
+    means = np.asarray(means, dtype=np.float64)
+    covs = np.asarray(covs, dtype=np.float64)
+    rows, cols = np.triu_indices(means.shape[0], k=1)
+    trace = np.trace(covs, axis1=-2, axis2=-1)
+    gap = np.sum((means[rows] - means[cols]) ** 2, axis=-1)
+    return gap / (4.0 * (trace[rows] + trace[cols]))
 
 
 def hellinger_distance(mean0, cov0, mean1, cov1):

@@ -27,6 +27,7 @@ from scipy import special
 
 from .distances import (
     bhattacharyya_distance,
+    bhattacharyya_lower_bound,
     hellinger_distance,
     hellinger_from_bhattacharyya,
     pairwise_bhattacharyya,
@@ -213,7 +214,8 @@ def add_component(mixture: Mixture, weight, mean, covariance) -> Mixture:
 # --------------------------------------------------------------------------- tests
 
 
-def overlap(mixture: Mixture, measure: str = "hellinger") -> np.ndarray:
+def overlap(mixture: Mixture, measure: str = "hellinger",
+            below: float | None = None) -> np.ndarray:
     """Pairwise distances between the mixture's Gaussians.
 
     Parameters
@@ -223,6 +225,10 @@ def overlap(mixture: Mixture, measure: str = "hellinger") -> np.ndarray:
         Hellinger distance in [0, 1], or Bhattacharyya distance in [0, inf). Both
         are invariant to the affine standardisation, so they are computed in
         standardised units.
+    below : float, optional
+        Only distances under this are wanted: pairs that a cheap lower bound
+        (:func:`~shoal.core.distances.bhattacharyya_lower_bound`) puts at or above it
+        are not computed and given as ``inf``; the others are exact.
 
     Returns
     -------
@@ -232,7 +238,14 @@ def overlap(mixture: Mixture, measure: str = "hellinger") -> np.ndarray:
     if measure not in OVERLAP_MEASURES:
         raise ModelError(f"measure should be one of {sorted(OVERLAP_MEASURES)}, got {measure!r}")
     covs = mixture.family.matrices(mixture.covariances, mixture.n_features)
-    distances = pairwise_bhattacharyya(mixture.means, covs)
+    pairs = None
+    if below is not None:
+        limit = float(below)   # the same bound on the Bhattacharyya distance
+        if measure == "hellinger":
+            limit = -np.log1p(-below * below) if below < 1.0 else np.inf
+        # a relative margin far above rounding, so no pair under the bound is skipped
+        pairs = bhattacharyya_lower_bound(mixture.means, covs) < limit * (1.0 + 1e-6)
+    distances = pairwise_bhattacharyya(mixture.means, covs, pairs)
     if measure == "hellinger":
         distances = hellinger_from_bhattacharyya(distances)
     return distances
@@ -241,12 +254,15 @@ def overlap(mixture: Mixture, measure: str = "hellinger") -> np.ndarray:
 def overlapping_pairs(mixture: Mixture, max_distance: float, measure: str = "hellinger"):
     """Pairs of segments closer than ``max_distance``, most overlapping first.
 
+    Only the pairs that a lower bound from means and traces does not already put at
+    ``max_distance`` or more are factorised (on separated segments, none).
+
     Returns
     -------
     pairs : list of (int, int, float)
         ``(older id, newer id, distance)``, sorted by distance, then by ids.
     """
-    distances = overlap(mixture, measure)
+    distances = overlap(mixture, measure, below=max_distance)
     rows, cols = np.triu_indices(mixture.n_components, k=1)
     pairs = []
     for i, j in zip(rows, cols):

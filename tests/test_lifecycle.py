@@ -237,6 +237,28 @@ def test_overlapping_pairs_lists_only_close_pairs_with_older_id_first():
     assert len(overlapping_pairs(mixture, 1.0 + 1e-9)) == 3
 
 
+@pytest.mark.parametrize("measure", ["hellinger", "bhattacharyya"])
+def test_overlapping_pairs_skip_only_pairs_that_cannot_qualify(measure):
+    # overlapping_pairs factorises only the pairs a trace bound leaves open; the list
+    # must be the one read off the full distance matrix, for bounds from tight to loose
+    # on random mixtures with close and far segments.
+    rng = np.random.default_rng(77)
+    for trial in range(12):
+        k, d = 6, 4
+        A = rng.normal(0.0, 0.4, (k, d, d))
+        covs = A @ np.swapaxes(A, 1, 2) + 0.3 * np.eye(d)
+        means = rng.normal(0.0, rng.uniform(0.2, 3.0), (k, d))
+        mixture = Mixture.from_parameters(np.full(k, 1.0 / k), means, covs,
+                                          ids=rng.permutation(20)[:k])
+        full = overlap(mixture, measure)
+        rows, cols = np.triu_indices(k, k=1)
+        for bound in np.quantile(full[rows, cols], [0.0, 0.2, 0.5, 0.9]) * 1.0001:
+            want = sorted(((*sorted((int(mixture.ids[i]), int(mixture.ids[j]))),
+                            float(full[i, j])) for i, j in zip(rows, cols)
+                           if full[i, j] < bound), key=lambda p: (p[2], p[0], p[1]))
+            assert overlapping_pairs(mixture, bound, measure) == want
+
+
 # ----------------------------------------------------------------------- unexplained
 
 
