@@ -110,6 +110,23 @@ def _add(old, new):
     return (np.asarray(old) + new).tolist() if old is not None else np.asarray(new).tolist()
 
 
+def _add_arrays(old, new):
+    return np.asarray(old) + new if old is not None else new
+
+
+def _add_sums(segments: dict, sums: dict, add) -> None:
+    """Add a piece accumulator's per-segment sums (arrays by segment position) into
+    ``segments`` (by segment id), combining matrices with ``add``."""
+    for k, sid in enumerate(sums["ids"]):
+        if sums["T"][k] <= 0.0:
+            continue
+        acc = segments.setdefault(str(sid), {"T": 0.0, "Q": 0.0, "M": None, "S": None})
+        acc["T"] += float(sums["T"][k])
+        acc["Q"] += float(sums["Q"][k])
+        acc["M"] = add(acc["M"], sums["M"][k])
+        acc["S"] = add(acc["S"], sums["S"][k])
+
+
 def _widen(pair, lo, hi):
     a, b = pair
     return [lo if a is None or lo < a else a, hi if b is None or hi > b else b]
@@ -265,7 +282,6 @@ class InputWatch:
         times = None if self.times is None else self.times[start:start + len(X)]
         self._accumulate(win, mixture, X, scores, times)
         if end_row % w == 0:
-            self._flush()
             self._close(win, mixture, first_window_row=index * w)
             st["window"] = None
 
@@ -322,17 +338,20 @@ class InputWatch:
     def _flush(self) -> None:
         """Add the pending per-segment sums to their window's JSON-able sums."""
         sums, self._pending = self._pending, None
-        if sums is None:
-            return
-        segments = sums["window"]["segments"]
-        for k, sid in enumerate(sums["ids"]):
-            if sums["T"][k] <= 0.0:
-                continue
-            acc = segments.setdefault(str(sid), {"T": 0.0, "Q": 0.0, "M": None, "S": None})
-            acc["T"] += float(sums["T"][k])
-            acc["Q"] += float(sums["Q"][k])
-            acc["M"] = _add(acc["M"], sums["M"][k])
-            acc["S"] = _add(acc["S"], sums["S"][k])
+        if sums is not None:
+            _add_sums(sums["window"]["segments"], sums, _add)
+
+    def _window_segments(self, win) -> dict:
+        """A closing window's per-segment sums: those of earlier inputs (JSON lists) and
+        the pending ones of this input added, as arrays, without putting them into the
+        state (a closed window is not kept): values as after :meth:`_flush`."""
+        if self._pending is not None and self._pending["window"] is not win:
+            self._flush()
+        sums, self._pending = self._pending, None
+        segments = {sid: dict(acc) for sid, acc in win["segments"].items()}
+        if sums is not None:
+            _add_sums(segments, sums, _add_arrays)
+        return segments
 
     # -- windows ---------------------------------------------------------------------
     def _window_info(self, win, first_window_row) -> dict:
@@ -343,7 +362,12 @@ class InputWatch:
                 "time": win["time"] if win["time"][0] is not None else None}
 
     def _close(self, win, mixture: Mixture, first_window_row: int) -> None:
-        st = self.state
+        st = self._state
+        if st.get("rebase") is not None or st["reference"] is None:
+            self._flush()    # sums kept for the re-baseline (or not needed)
+            segments = None
+        else:
+            segments = self._window_segments(win)
         info = self._window_info(win, first_window_row)
         keep = max(self.drift.persist, self.drift.resolve_persist)
         st["recent"] = (st["recent"] + [info])[-keep:]
@@ -355,7 +379,7 @@ class InputWatch:
             if first_window_row + win["n"] >= self.drift.settle_rows:
                 self._take_reference(mixture, st["last_ld"], info)
             return
-        self._evaluate(win, info)
+        self._evaluate(win, info, segments)
 
     def _take_reference(self, mixture: Mixture, log_density, info, ref=None) -> None:
         st = self.state
@@ -406,10 +430,10 @@ class InputWatch:
         self._take_reference(mixture, ref.log_density, info, ref=ref)
         st["reference_info"]["note"] = rebase["note"]
 
-    def _evaluate(self, win, info) -> None:
+    def _evaluate(self, win, info, segments: dict | None = None) -> None:
         st = self.state
         ref, factors = self._reference()
-        values, noise, detail = self._statistics(win, ref, factors)
+        values, noise, detail = self._statistics(win, ref, factors, segments)
         at = win["index"]
         for key in list(st["cool"]):
             if st["cool"][key] < at:
@@ -440,9 +464,13 @@ class InputWatch:
             self._ref_cache = (doc, ref, GaussianSet(ref.means, ref.covariances))
         return self._ref_cache[1], self._ref_cache[2]
 
-    def _statistics(self, win, ref: Reference, factors: GaussianSet):
-        """(values, noise, detail) of one window; the core's kernels are called once per
-        window on all segments together."""
+    def _statistics(self, win, ref: Reference, factors: GaussianSet,
+                    segments: dict | None = None):
+        """(values, noise, detail) of one window (its per-segment sums ``segments``, or
+        ``win["segments"]``); the core's kernels are called once per window on all
+        segments together."""
+        if segments is None:
+            segments = win["segments"]
         d = len(ref.means[0])
         n = win["n"]
         center = np.asarray(win["center"])
@@ -452,7 +480,7 @@ class InputWatch:
         w_noise = np.atleast_1d(weight_noise(ref.weights, float(n), ref.total_n_eff))
         seen, n_effs, means, covs = [], [], [], []
         for k, sid in enumerate(ref.ids.tolist()):
-            acc = win["segments"].get(str(sid))
+            acc = segments.get(str(sid))
             w_ref = float(ref.weights[k])
             share = (acc["T"] / n) if acc else 0.0
             values[(sid, "weight_change")] = abs(share - w_ref)
