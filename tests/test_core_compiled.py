@@ -110,3 +110,12 @@ def test_shoal_jit_0_switches_the_kernels_off():
                          text=True, timeout=120)
     assert off.returncode == 0, off.stderr
     assert off.stdout.strip() == "False"
+
+
+def test_warm_compiles_on_the_compiled_path_only():
+    assert fused.warm() is True
+    try:
+        fused.set_enabled(False)
+        assert fused.warm() is False
+    finally:
+        fused.set_enabled(True)
