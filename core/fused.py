@@ -62,18 +62,23 @@ def kernels():
 def warm() -> bool:
     """Compile (or load from numba's cache) every kernel for the array layouts the
     mixture uses, on a few synthetic rows, so that the first real input does not wait
-    for the compiler (about 8 s on a fresh install, a fraction of a second later).
-    Returns whether the compiled kernels are in use."""
+    for the compiler: about 8 s on a fresh install, then well under a second per
+    process (mostly importing numba). Returns whether the compiled kernels are in use."""
     if not enabled():
         return False
     import numpy as np
 
-    from .warmup import initialise
+    from .mixture import Mixture
+    from .schedule import StepSchedule
 
-    X = np.random.default_rng(0).normal(size=(600, 3))
-    X[300:] += 4.0
-    for covariance in ("full", "diag", "spherical"):
-        model = initialise(X, 2, covariance, seed=0, n_init=1, max_iter=2)
-        model.learn(X)
+    X = np.random.default_rng(0).normal(size=(64, 2))
+    means = np.array([[0.0, 0.0], [2.0, 2.0]])
+    shapes = {"full": np.stack([np.eye(2)] * 2), "diag": np.ones((2, 2)),
+              "spherical": np.ones(2)}
+    for covariance, cov in shapes.items():
+        model = Mixture.from_parameters([0.5, 0.5], means, cov, covariance=covariance,
+                                        schedule=StepSchedule().resolved(100))
+        model, _ = model.learn(X)
         model.score(X)
+        model.em_step(X)
     return True

@@ -49,6 +49,7 @@ from shoal.core import (
     initialise,
     select_n_components,
 )
+from shoal.core import fused
 from shoal.daemon.errors import (
     InputRefused,
     InputRejected,
@@ -144,6 +145,9 @@ class Pipeline:
         self.settings_listeners: list = []
         self.state = self.load_state()
         self._group: list[_Pending] | None = None   # the open group (process_group)
+        # the compiled scoring kernels loaded (numba and its cache, ~0.6-1 s; compiled
+        # once per install, ~8 s) now rather than inside the first input's time
+        fused.warm()
         if settings.drift.enabled or settings.lifecycle.enabled:
             # loaded now (with scipy.special and scipy.linalg, ~0.2-0.6 s) rather than
             # inside the first input's processing time
