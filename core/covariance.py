@@ -56,7 +56,8 @@ from scipy.linalg import lapack
 
 from .errors import IllConditionedError
 
-__all__ = ["FAMILIES", "COVARIANCE_TYPES", "LOG_2PI", "not_positive_definite"]
+__all__ = ["FAMILIES", "COVARIANCE_TYPES", "LOG_2PI", "not_positive_definite",
+           "non_positive_variance"]
 
 LOG_2PI = float(np.log(2.0 * np.pi))
 
@@ -249,10 +250,15 @@ def _diag_covariance(s0, s1, s2, n_eff, reg_covar, prior_weight):
 
 def _diag_precision_cholesky(var):
     if np.any(~(var > 0.0)):
-        raise IllConditionedError(
-            f"a component has a non-positive variance even after regularisation; {_REMEDY}"
-        )
+        raise non_positive_variance()
     return 1.0 / np.sqrt(var)
+
+
+def non_positive_variance() -> IllConditionedError:
+    """The error for diag or spherical variances that are not positive."""
+    return IllConditionedError(
+        f"a component has a non-positive variance even after regularisation; {_REMEDY}"
+    )
 
 
 def _diag_log_det(prec_chol, n_features):

@@ -251,3 +251,96 @@ def design(X, lo, n, center, scale, kind, A):
                 a[1 + d] = z
             a[0] = s
             a[D + 1] = 1.0
+
+
+@plain
+def _weights_and_means(s0, s1, n_eff, prior_weight, tiny, weights, means, share):
+    """Weights, means and each component's shrinkage share (its rows' weight against
+    ``prior_weight``), as ``Mixture._derive`` and ``covariance._shrink`` compute them."""
+    K, D = s1.shape
+    total = 0.0
+    for k in range(K):
+        total += s0[k] + tiny
+    for k in range(K):
+        sk = s0[k] + tiny
+        weights[k] = sk / total
+        share[k] = 1.0
+        if prior_weight > 0.0:
+            nk = sk / total * n_eff if total > 0.0 else 0.0
+            share[k] = nk / (nk + prior_weight)
+        for d in range(D):
+            means[k, d] = s1[k, d] / sk
+
+
+@plain
+def diag_derive(s0, s1, s2, n_eff, reg_covar, prior_weight, tiny, weights, means, var):
+    """The diag type's weights, means and variances (K, D) from statistics, as
+    ``covariance._diag_covariance`` computes them (clipped at 0, shrunk towards 1,
+    ``reg_covar`` added). Returns False if a variance is not positive."""
+    K, D = s1.shape
+    share = np.empty(K)
+    _weights_and_means(s0, s1, n_eff, prior_weight, tiny, weights, means, share)
+    ok = True
+    for k in range(K):
+        sk = s0[k] + tiny
+        for d in range(D):
+            v = max(s2[k, d] / sk - means[k, d] * means[k, d], 0.0)
+            if prior_weight > 0.0:
+                v = share[k] * v + (1.0 - share[k])
+            v += reg_covar
+            var[k, d] = v
+            ok = ok and v > 0.0
+    return ok
+
+
+@plain
+def spherical_derive(s0, s1, s2, n_eff, reg_covar, prior_weight, tiny, weights, means,
+                     var):
+    """:func:`diag_derive` for the spherical type (``var`` (K,), the mean variance
+    over features, as ``covariance._spherical_covariance`` computes it)."""
+    K, D = s1.shape
+    share = np.empty(K)
+    _weights_and_means(s0, s1, n_eff, prior_weight, tiny, weights, means, share)
+    ok = True
+    for k in range(K):
+        sk = s0[k] + tiny
+        msq = 0.0
+        for d in range(D):
+            msq += means[k, d] * means[k, d]
+        v = max(s2[k] / sk - msq / D, 0.0)
+        if prior_weight > 0.0:
+            v = share[k] * v + (1.0 - share[k])
+        v += reg_covar
+        var[k] = v
+        ok = ok and v > 0.0
+    return ok
+
+
+@plain
+def diag_operator(means, prec, log_const, BT):
+    """The diag scoring operator (see ``covariance._diag_scoring_operator``) from
+    ``prec`` = 1/var (K, D) and ``log_const`` = log w + log det U - D/2 log 2 pi."""
+    K, D = means.shape
+    for k in range(K):
+        c = 0.0
+        for d in range(D):
+            p = prec[k, d]
+            BT[k, d] = -0.5 * p
+            BT[k, D + d] = means[k, d] * p
+            c += means[k, d] * means[k, d] * p
+        BT[k, 2 * D] = log_const[k] - 0.5 * c
+
+
+@plain
+def spherical_operator(means, prec, log_const, BT):
+    """The spherical scoring operator (see ``covariance._spherical_scoring_operator``),
+    ``prec`` = 1/var (K,)."""
+    K, D = means.shape
+    for k in range(K):
+        p = prec[k]
+        BT[k, 0] = -0.5 * p
+        msq = 0.0
+        for d in range(D):
+            BT[k, 1 + d] = means[k, d] * p
+            msq += means[k, d] * means[k, d]
+        BT[k, D + 1] = log_const[k] - 0.5 * (msq * p)

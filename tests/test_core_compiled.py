@@ -119,3 +119,24 @@ def test_warm_compiles_on_the_compiled_path_only():
         assert fused.warm() is False
     finally:
         fused.set_enabled(True)
+
+
+@pytest.mark.parametrize("covariance", ["diag", "spherical"])
+def test_a_zero_variance_is_refused_on_both_paths(covariance, numpy_then_compiled):
+    from dataclasses import replace
+
+    cov = np.ones((2, 2)) if covariance == "diag" else np.ones(2)
+    m = Mixture.from_parameters([0.5, 0.5], np.array([[0.0, 0.0], [1.0, 1.0]]), cov,
+                                covariance=covariance)
+    m = replace(m, reg_covar=0.0, prior_weight=0.0)
+    s0 = np.array([0.5, 0.5])
+    s1 = np.array([[0.5, 0.5], [1.0, 1.0]])
+    # second moments below the squared means: every variance clips to exactly 0
+    s2 = np.zeros_like(s1) if covariance == "diag" else np.zeros(2)
+
+    def derive():
+        with pytest.raises(IllConditionedError, match="non-positive variance.*reg_covar"):
+            m._derive(s0, s1, s2, 1e-4)
+        return True
+
+    assert numpy_then_compiled(derive) == (True, True)
