@@ -124,18 +124,10 @@ def full_derive(s0, s1, s2, n_eff, reg_covar, prior_weight, tiny, weights, means
     Cholesky and a triangular inverse, and ``log det U``. ``bad[k]`` is set where
     a covariance is not positive definite (or not finite)."""
     K, D = s1.shape
-    total = 0.0
-    for k in range(K):
-        total += s0[k] + tiny
+    share = np.empty(K)
+    _weights_and_means(s0, s1, n_eff, prior_weight, tiny, weights, means, share)
     for k in range(K):
         sk = s0[k] + tiny
-        weights[k] = sk / total
-        for d in range(D):
-            means[k, d] = s1[k, d] / sk
-        share = 1.0
-        if prior_weight > 0.0:
-            nk = sk / total * n_eff if total > 0.0 else 0.0
-            share = nk / (nk + prior_weight)
         C = cov[k]
         for d in range(D):
             for e in range(D):
@@ -149,7 +141,7 @@ def full_derive(s0, s1, s2, n_eff, reg_covar, prior_weight, tiny, weights, means
         if prior_weight > 0.0:
             for d in range(D):
                 for e in range(D):
-                    C[d, e] = share * C[d, e] + (1.0 - share) * (1.0 if d == e else 0.0)
+                    C[d, e] = share[k] * C[d, e] + (1.0 - share[k]) * (1.0 if d == e else 0.0)
         for d in range(D):
             C[d, d] += reg_covar
     full_factor(cov, prec_chol, log_det, bad)
