@@ -242,6 +242,8 @@ def _per_estimate(n_eff, variance, min_n):
     n = np.asarray(n_eff, dtype=np.float64)
     exact = np.isposinf(n)
     usable = (n > min_n) & ~exact
+    if usable.all():   # the usual case, once per drift window: no masking needed
+        return variance(n)
     safe = np.where(usable, n, min_n + 1.0)
     return np.where(usable, variance(safe), np.where(exact, 0.0, np.inf))
 

@@ -30,6 +30,7 @@ from .distances import (
     bhattacharyya_lower_bound,
     hellinger_distance,
     hellinger_from_bhattacharyya,
+    pair_indices,
     pairwise_bhattacharyya,
 )
 from .errors import ModelError
@@ -263,7 +264,7 @@ def overlapping_pairs(mixture: Mixture, max_distance: float, measure: str = "hel
         ``(older id, newer id, distance)``, sorted by distance, then by ids.
     """
     distances = overlap(mixture, measure, below=max_distance)
-    rows, cols = np.triu_indices(mixture.n_components, k=1)
+    rows, cols = pair_indices(mixture.n_components)
     pairs = []
     for i, j in zip(rows, cols):
         if distances[i, j] < max_distance:
