@@ -4,11 +4,15 @@ against anchors measured in the same run on the same files: pyarrow's own stream
 rate and the core-only E+M rate (Mixture.learn on the same rows in batches of 65,536).
 Then peak RSS of `shoal ingest` for a 1,000,000-row and a 10,000,000-row Parquet file.
 
-`e2e_table(...)` prints the tables; run as a script for the same.
+`e2e_table(...)` prints the tables; run as a script for the same. `--stages` instead
+prints where the CPU goes: one `shoal ingest` per format and drift setting, run in a
+child process whose stages are timed by the CPU time of the thread running them
+(independent of other load on the machine).
 """
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import shutil
@@ -255,12 +259,135 @@ def memory_table(tmp: Path, warm: Path, small: Path, rows: int, big_rows: int) -
     return out
 
 
+# -- CPU seconds per stage ---------------------------------------------------------
+# (stage, module, owner, attribute): the time of the calls is charged to the stage, in
+# the thread that made them; nested calls of timed functions count once.
+STAGES = [
+    ("hash (SHA-256 of the file)", "shoal.daemon.readers", "file_digest", "_run"),
+    ("frame build (float64 rows, checks)", "shoal.daemon.readers", None, "_frame"),
+    ("model E+M (Mixture.learn)", "shoal.core.mixture", "Mixture", "learn"),
+    ("drift (window sums, evaluation)", "shoal.daemon.monitor", "InputWatch", "observe"),
+    ("lifecycle decision points", "shoal.daemon.segment_life", "LifeWatch", "at_boundary"),
+    ("lifecycle unexplained rows", "shoal.daemon.segment_life", "LifeWatch", "observe"),
+    ("far-row bound (model thread)", "shoal.daemon.pipeline", None, "_mark_beyond_model"),
+    ("labels tables", "shoal.daemon.pipeline", None, "_labels"),
+    ("labels encode + write", "pyarrow.parquet", "ParquetWriter", "write_table"),
+    ("labels encode + write", "pyarrow.parquet", "ParquetWriter", "close"),
+    ("unusual threshold, counts", "shoal.daemon.pipeline", "Pipeline", "_after_scoring"),
+    ("commit (one transaction)", "shoal.daemon.store", "StateStore", "commit_inputs"),
+]
+
+
+def _stage_child(cfg: str, drop: str) -> int:
+    """Run `shoal ingest` in this process with the stages timed; print them as JSON."""
+    import functools
+    import importlib
+    import resource
+    import threading
+
+    for var in ("OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):   # as the shoal command does
+        os.environ.setdefault(var, "1")
+    cpu: dict[str, float] = {}
+    local = threading.local()
+
+    def timed(fn, stage):
+        @functools.wraps(fn)
+        def run(*a, **k):
+            if getattr(local, "inside", False):
+                return fn(*a, **k)
+            local.inside, t = True, time.thread_time()
+            try:
+                return fn(*a, **k)
+            finally:
+                local.inside = False
+                cpu[stage] = cpu.get(stage, 0.0) + time.thread_time() - t
+        return run
+
+    for stage, module, owner, attr in STAGES:
+        target = importlib.import_module(module)
+        target = getattr(target, owner) if owner else target
+        setattr(target, attr, timed(getattr(target, attr), stage))
+    from shoal.daemon import pipeline
+    frames = pipeline.iter_frames
+
+    def reading(*a, **k):   # the reader thread's time outside the frame build
+        it, total = frames(*a, **k), 0.0
+        while True:
+            t = time.thread_time()
+            try:
+                item = next(it)
+            except StopIteration:
+                cpu["read + decode (pyarrow)"] = total
+                return
+            finally:
+                total += time.thread_time() - t
+            yield item
+    pipeline.iter_frames = reading
+    from shoal.daemon.cli import main as shoal_main
+
+    before = resource.getrusage(resource.RUSAGE_SELF)
+    t0 = time.perf_counter()
+    with open(os.devnull, "w") as out, contextlib.redirect_stdout(out):
+        code = shoal_main(["ingest", "-c", cfg, drop])
+    after = resource.getrusage(resource.RUSAGE_SELF)
+    if "read + decode (pyarrow)" in cpu:
+        cpu["read + decode (pyarrow)"] -= cpu.get("frame build (float64 rows, checks)", 0.0)
+    total = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+    print(json.dumps({"code": code, "cpu": cpu, "total": total,
+                      "wall": time.perf_counter() - t0}))
+    return 0
+
+
+def stages_table(rows: int = 1_000_000, workdir: Path | None = None) -> dict:
+    """CPU seconds per stage of `shoal ingest` of one drop (full covariance), Parquet and
+    CSV, drift and lifecycle off and on; the rest is start-up, imports and glue."""
+    with tempfile.TemporaryDirectory(prefix="shoal-stages-", dir=workdir) as tmp:
+        tmp = Path(tmp)
+        (tmp / "data").mkdir()
+        warm = write_drop(tmp / "data" / "warm.parquet", WARM_ROWS, seed=1)
+        drops = {"parquet": write_drop(tmp / "data" / "drop.parquet", rows),
+                 "csv": write_drop(tmp / "data" / "drop.csv", rows)}
+        runs = {}
+        for watch_drift in (False, True):
+            folder = _warmed(tmp / f"state-{int(watch_drift)}", "full", watch_drift, warm)
+            for fmt, drop in drops.items():
+                cfg = _fresh_state(folder, folder.with_name(folder.name + "-run"))
+                out = subprocess.run([sys.executable, __file__, "--stage-child", str(cfg),
+                                      str(drop)], capture_output=True, text=True)
+                if out.returncode != 0 or not out.stdout.strip():
+                    raise RuntimeError(f"shoal ingest {drop.name} (stages) exited "
+                                       f"{out.returncode}: {out.stderr[-2000:]}")
+                runs[(fmt, watch_drift)] = json.loads(out.stdout.strip().splitlines()[-1])
+        names = list(dict.fromkeys([s[0] for s in STAGES] + ["read + decode (pyarrow)"]))
+        keys = list(runs)
+        heads = [f"{fmt} {'on' if on else 'off'}" for fmt, on in keys]
+        print(f"\nCPU seconds per stage of `shoal ingest`, {rows:,} rows, D={N_FEATURES}, "
+              f"K={N_COMPONENTS}, full; drift and lifecycle off/on (thread CPU time of "
+              "each stage's calls)")
+        print(f"{'stage':36} " + " ".join(f"{h:>12}" for h in heads))
+        for name in sorted(names, key=lambda n: -runs[keys[-2]]["cpu"].get(n, 0.0)):
+            print(f"{name:36} " + " ".join(f"{runs[k]['cpu'].get(name, 0.0):>12.2f}"
+                                           for k in keys))
+        print(f"{'rest (start-up, imports, glue)':36} " + " ".join(
+            f"{runs[k]['total'] - sum(runs[k]['cpu'].values()):>12.2f}" for k in keys))
+        print(f"{'process CPU':36} " + " ".join(f"{runs[k]['total']:>12.2f}" for k in keys))
+        print(f"{'process wall':36} " + " ".join(f"{runs[k]['wall']:>12.2f}" for k in keys))
+    return runs
+
+
 def main() -> int:
+    if len(sys.argv) == 4 and sys.argv[1] == "--stage-child":
+        return _stage_child(sys.argv[2], sys.argv[3])
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--rows", type=int, default=1_000_000)
     p.add_argument("--big-rows", type=int, default=10_000_000)
     p.add_argument("--repeats", type=int, default=2)
+    p.add_argument("--stages", action="store_true",
+                   help="CPU seconds per stage instead of the rate and memory tables")
     a = p.parse_args()
+    if a.stages:
+        stages_table(a.rows)
+        return 0
     e2e_table(a.rows, a.big_rows, a.repeats)
     return 0
 
