@@ -198,7 +198,8 @@ def core_rate(X: np.ndarray, covariance: str) -> tuple[float, str]:
 
 
 def e2e_table(rows: int = 1_000_000, big_rows: int = 10_000_000, repeats: int = 2,
-              workdir: Path | None = None) -> dict:
+              workdir: Path | None = None, covariances=("full", "diag"),
+              memory: bool = True) -> dict:
     with tempfile.TemporaryDirectory(prefix="shoal-e2e-", dir=workdir) as tmp:
         tmp = Path(tmp)
         data = tmp / "data"
@@ -222,7 +223,7 @@ def e2e_table(rows: int = 1_000_000, big_rows: int = 10_000_000, repeats: int = 
               f"{'wall rows/s':>11} {'read rows/s':>11} {'core rows/s':>11} | "
               f"{'e2e/core':>8} {'e2e/read':>8} {'peak RSS':>9}")
         results = {}
-        for cov in ("full", "diag"):
+        for cov in covariances:
             core, core_how = core_rate(X, cov)
             for watch_drift in (False, True):
                 folder = tmp / f"state-{cov}-{int(watch_drift)}"
@@ -238,8 +239,8 @@ def e2e_table(rows: int = 1_000_000, big_rows: int = 10_000_000, repeats: int = 
             print(f"  core anchor ({cov}): best with {core_how}")
         print("targets (issue 9): Parquet full e2e >= 0.60 x core; CSV e2e >= 0.50 x read")
         del X
-        memory = memory_table(tmp, warm, drops["parquet"], rows, big_rows)
-    return {"rates": results, "memory": memory}
+        peaks = memory_table(tmp, warm, drops["parquet"], rows, big_rows) if memory else None
+    return {"rates": results, "memory": peaks}
 
 
 def memory_table(tmp: Path, warm: Path, small: Path, rows: int, big_rows: int) -> dict:
@@ -382,13 +383,17 @@ def main() -> int:
     p.add_argument("--rows", type=int, default=1_000_000)
     p.add_argument("--big-rows", type=int, default=10_000_000)
     p.add_argument("--repeats", type=int, default=2)
+    p.add_argument("--covariance", choices=("full", "diag"), action="append",
+                   help="only this covariance type (repeatable; default: both)")
+    p.add_argument("--no-memory", action="store_true", help="skip the peak RSS table")
     p.add_argument("--stages", action="store_true",
                    help="CPU seconds per stage instead of the rate and memory tables")
     a = p.parse_args()
     if a.stages:
         stages_table(a.rows)
         return 0
-    e2e_table(a.rows, a.big_rows, a.repeats)
+    e2e_table(a.rows, a.big_rows, a.repeats, memory=not a.no_memory,
+              covariances=tuple(a.covariance or ("full", "diag")))
     return 0
 
 
