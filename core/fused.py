@@ -1,22 +1,19 @@
-"""Compiled kernels for the element-wise passes of scoring and the sparse M-step.
+"""The compiled passes of scoring and learning, and the switch between them and numpy.
 
 The numpy path of :mod:`shoal.core.mixture` makes a dozen passes over every block of
 rows after the log-joint GEMM (sum of squares, max, shift, argmax, clamp, exp, sum,
 divide, log) and then, per component, a ``flatnonzero``, a gather, a weighting and a
-GEMM for the statistics; each pass is a separate numpy call over the block. Here the
-passes between the BLAS calls run as a few compiled loops over the block while it
-sits in the cache. BLAS keeps the two products it is best at (the whitening GEMM of
-the full type and the statistics' GEMMs) and numpy keeps ``exp`` (its SIMD ``exp``
-beats a compiled scalar one).
+GEMM for the statistics; each pass is a separate numpy call over the block, and a
+refresh of the parameters is a few dozen small numpy and LAPACK calls. The C
+extension ``shoal.core._kernels`` (core/_kernels.c) runs the passes between the BLAS
+calls as a few loops over the block while it sits in the cache, gathers the rows each
+component learns from for one SYRK per component, and derives a refresh's parameters
+in one call. BLAS keeps the GEMMs and numpy keeps ``exp``.
 
-The kernels are compiled by numba on first use and cached on disk beside this file
-(or under ``NUMBA_CACHE_DIR``). Without numba, or with ``SHOAL_JIT=0`` in the
-environment, :func:`enabled` is false and the mixture keeps its numpy path, which
-gives the same results up to rounding (tests compare the two).
-
-Floating-point contract: everything is float64, with no fast-math licence: every
-sum runs in the order written (components in index order), so results do not depend
-on how the compiler vectorises.
+The extension is built when shoal is installed (it needs a C compiler; the build is
+optional). Without it, or with ``SHOAL_COMPILED=0`` in the environment,
+:func:`enabled` is false and the mixture keeps its numpy path, which gives the same
+results up to the order of floating-point operations (tests compare the two).
 """
 
 from __future__ import annotations
@@ -29,10 +26,11 @@ _STATE: dict = {}
 
 
 def enabled() -> bool:
-    """Whether the compiled kernels are in use (numba importable, not switched off)."""
+    """Whether the compiled kernels are in use (the extension built, not switched off)."""
     on = _STATE.get("on")
     if on is None:
-        on = os.environ.get("SHOAL_JIT", "1").strip().lower() not in ("0", "false", "no", "off")
+        on = os.environ.get("SHOAL_COMPILED", "1").strip().lower() not in (
+            "0", "false", "no", "off")
         if on:
             try:
                 kernels()
@@ -45,25 +43,23 @@ def enabled() -> bool:
 def set_enabled(on: bool) -> None:
     """Switch the compiled kernels on or off in this process (tests compare both paths)."""
     if on:
-        kernels()   # raises ImportError without numba
+        kernels()   # raises ImportError without the extension
     _STATE["on"] = bool(on)
 
 
 def kernels():
-    """The compiled kernels (the module :mod:`shoal.core.kernels`, which imports
-    numba); numba compiles each, or loads it from its cache, on first call."""
+    """The compiled kernels: the extension module ``shoal.core._kernels``."""
     k = _STATE.get("kernels")
     if k is None:
-        from . import kernels as k
+        from . import _kernels as k
         _STATE["kernels"] = k
     return k
 
 
 def warm() -> bool:
-    """Compile (or load from numba's cache) every kernel for the array layouts the
-    mixture uses, on a few synthetic rows, so that the first real input does not wait
-    for the compiler: about 8 s on a fresh install, then well under a second per
-    process (mostly importing numba). Returns whether the compiled kernels are in use."""
+    """Run every compiled kernel once on a few synthetic rows (a self-check at start-up:
+    a broken build fails here, not inside the first input). Milliseconds. Returns
+    whether the compiled kernels are in use."""
     if not enabled():
         return False
     import numpy as np

@@ -309,11 +309,14 @@ class Mixture:
         if rows is None:    # X holds standardised rows already
             center, scale = np.zeros(D), np.ones(D)
         else:
-            center, scale = rows.center, rows.scale
+            center, scale = _c64(rows.center), _c64(rows.scale)
+        first = 0           # row of X that row `lo` of the span is
+        if not X.flags.c_contiguous:
+            X, first = np.ascontiguousarray(X[lo:hi]), lo
         for a in range(lo, hi, nb):
             b = min(a + nb, hi)
             m = b - a
-            kern.design(X, a, m, center, scale, kind, A)
+            kern.design(X, a - first, m, center, scale, kind, A)
             Ab = A[:m]
             if full:
                 Yb = Y if m == nb else np.empty((K * D, m))
@@ -354,7 +357,8 @@ class Mixture:
         if self.covariance == "full" and fused.enabled():
             K, D = self.means.shape
             WT = np.empty((K * D, D + 1))
-            fused.kernels().full_operator(self.means, self.prec_chol, self.log_det, WT)
+            fused.kernels().full_operator(_c64(self.means), _c64(self.prec_chol),
+                                          _c64(self.log_det), WT)
             const = np.log(self.weights) + self.log_det - 0.5 * D * LOG_2PI
             return WT, const[:, None]
         if fused.enabled():
@@ -363,7 +367,7 @@ class Mixture:
             log_const = np.log(self.weights) + self.log_det - 0.5 * D * LOG_2PI
             kern = fused.kernels()
             build = kern.diag_operator if self.covariance == "diag" else kern.spherical_operator
-            build(self.means, self.prec_chol**2, log_const, BT)
+            build(_c64(self.means), _c64(self.prec_chol**2), _c64(log_const), BT)
             return BT
         return self.family.scoring_operator(self.means, self.prec_chol, np.log(self.weights))
 
@@ -464,12 +468,10 @@ class Mixture:
         K, D = s1.shape
         weights, means = np.empty(K), np.empty((K, D))
         if self.covariance != "full":
-            var = np.empty_like(self.covariances)
+            var = np.empty((K, D) if self.covariance == "diag" else K)   # K from the statistics
             kern = fused.kernels()
             derive = kern.diag_derive if self.covariance == "diag" else kern.spherical_derive
-            if not derive(np.ascontiguousarray(s0, dtype=np.float64),
-                          np.ascontiguousarray(s1, dtype=np.float64),
-                          np.ascontiguousarray(s2, dtype=np.float64), 1.0 / sumsq,
+            if not derive(_c64(s0), _c64(s1), _c64(s2), 1.0 / sumsq,
                           float(self.reg_covar), float(self.prior_weight), _TINY,
                           weights, means, var):
                 raise non_positive_variance()
@@ -479,8 +481,7 @@ class Mixture:
         cov, prec_chol = np.empty((K, D, D)), np.zeros((K, D, D))
         log_det, bad = np.empty(K), np.zeros(K, dtype=np.bool_)
         fused.kernels().full_derive(
-            np.ascontiguousarray(s0, dtype=np.float64), np.ascontiguousarray(s1, dtype=np.float64),
-            np.ascontiguousarray(s2, dtype=np.float64), 1.0 / sumsq, float(self.reg_covar),
+            _c64(s0), _c64(s1), _c64(s2), 1.0 / sumsq, float(self.reg_covar),
             float(self.prior_weight), _TINY, weights, means, cov, prec_chol, log_det, bad)
         if bad.any():
             raise not_positive_definite(np.flatnonzero(bad).tolist())
@@ -675,9 +676,14 @@ class Mixture:
         )
 
 
+def _c64(a) -> np.ndarray:
+    """``a`` as a C-contiguous float64 array (the compiled kernels take no other)."""
+    return np.ascontiguousarray(a, dtype=np.float64)
+
+
 def _factor_compiled(cov):
     """Precision Cholesky factors and their log-determinants by the compiled kernel."""
-    cov = np.ascontiguousarray(cov, dtype=np.float64)
+    cov = _c64(cov)
     K = cov.shape[0]
     prec_chol, log_det, bad = np.zeros_like(cov), np.empty(K), np.zeros(K, dtype=np.bool_)
     fused.kernels().full_factor(cov, prec_chol, log_det, bad)

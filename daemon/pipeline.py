@@ -145,8 +145,8 @@ class Pipeline:
         self.settings_listeners: list = []
         self.state = self.load_state()
         self._group: list[_Pending] | None = None   # the open group (process_group)
-        # the compiled scoring kernels loaded (numba and its cache, ~0.6-1 s; compiled
-        # once per install, ~8 s) now rather than inside the first input's time
+        # the compiled scoring kernels checked once (milliseconds) at start-up rather
+        # than failing inside the first input
         fused.warm()
         if settings.drift.enabled or settings.lifecycle.enabled:
             # loaded now (with scipy.special and scipy.linalg, ~0.2-0.6 s) rather than

@@ -100,8 +100,8 @@ def core_table(n_rows):
     compiled = fused.enabled()
     print(f"\nStepwise E+M, K=8, batches of {BATCH:,} rows, {n_rows:,} rows per run (best of 3);"
           " shoal and scikit-learn each at their better BLAS setting (default or 1 thread)")
-    print(f"  shoal: compiled kernels {'on' if compiled else 'OFF (numba missing or SHOAL_JIT=0)'}"
-          "; numpy path: the same model with SHOAL_JIT=0")
+    print(f"  shoal: compiled kernels {'on' if compiled else 'OFF (extension not built or SHOAL_COMPILED=0)'}"
+          "; numpy path: the same model with SHOAL_COMPILED=0")
     print(f"{'D':>3} {'cov':>5} | {'shoal rows/s':>13} {'numpy path':>11} {'sklearn it rows/s':>18}"
           f" {'GEMM rows/s':>13} | {'x sklearn':>9} {'numpy x skl':>11} {'% of GEMM':>9}")
     results = {}

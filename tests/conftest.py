@@ -42,12 +42,12 @@ def no_leaked_threads():
 
 @pytest.fixture(params=["compiled", "numpy"])
 def scoring_path(request):
-    """Run a test on the compiled kernels (core/fused.py) and on the numpy path."""
+    """Run a test on the compiled kernels (core/_kernels.c) and on the numpy path."""
     from shoal.core import fused
 
     before = fused.enabled()
     if request.param == "compiled" and not before:
-        pytest.skip("numba is not importable or SHOAL_JIT=0: no compiled kernels")
+        pytest.skip("the compiled kernels are not built or SHOAL_COMPILED=0")
     fused.set_enabled(request.param == "compiled")
     yield request.param
     fused.set_enabled(before)

@@ -1,4 +1,4 @@
-"""The compiled kernels (core/fused.py) against the numpy path and LAPACK.
+"""The compiled kernels (core/_kernels.c via core/fused.py) against the numpy path and LAPACK.
 
 The numpy path is the reference here: it is itself checked against scipy and
 scikit-learn in test_core_density.py and test_core_reference_fits.py (which run on
@@ -16,7 +16,8 @@ from scipy.linalg import cho_factor
 from shoal.core import IllConditionedError, Mixture, fused, initialise
 from shoal.core.covariance import FAMILIES
 
-pytestmark = pytest.mark.skipif(not fused.enabled(), reason="numba not importable")
+pytestmark = pytest.mark.skipif(not fused.enabled(),
+                                reason="the shoal.core._kernels extension is not built")
 
 
 @pytest.fixture
@@ -103,9 +104,9 @@ def test_compiled_factor_reports_what_lapack_refuses():
         Mixture.from_parameters([0.4, 0.3, 0.3], np.zeros((3, 3)), cov, covariance="full")
 
 
-def test_shoal_jit_0_switches_the_kernels_off():
+def test_shoal_compiled_0_switches_the_kernels_off():
     code = "from shoal.core import fused; print(fused.enabled())"
-    env = dict(os.environ, SHOAL_JIT="0")
+    env = dict(os.environ, SHOAL_COMPILED="0")
     off = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
                          text=True, timeout=120)
     assert off.returncode == 0, off.stderr
@@ -140,3 +141,18 @@ def test_a_zero_variance_is_refused_on_both_paths(covariance, numpy_then_compile
         return True
 
     assert numpy_then_compiled(derive) == (True, True)
+
+
+@pytest.mark.parametrize("covariance", ["full", "diag", "spherical"])
+def test_derive_takes_the_number_of_components_from_the_statistics(covariance, mixture_data,
+                                                                   numpy_then_compiled):
+    # segment merges derive a (K-1)-component model from a K-component one's statistics
+    X, *_ = mixture_data(4000, 3, 3, seed=74)
+    m = initialise(X, 3, covariance, seed=0, n_init=1)
+    s0 = np.array([m.s0[0] + m.s0[1], m.s0[2]])
+    s1 = np.stack([m.s1[0] + m.s1[1], m.s1[2]])
+    s2 = np.stack([m.s2[0] + m.s2[1], m.s2[2]])
+    a, b = numpy_then_compiled(lambda: m._derive(s0, s1, s2, m.sumsq))
+    for name in a:
+        assert b[name].shape == a[name].shape == (2,) + np.shape(m.__dict__[name])[1:]
+        np.testing.assert_allclose(b[name], a[name], rtol=1e-9, atol=1e-14, err_msg=name)

@@ -1,0 +1,647 @@
+/*
+ * shoal.core._kernels: the compiled passes of scoring and learning (see core/fused.py).
+ *
+ * Each function takes numpy arrays through the buffer protocol (C-contiguous, float64
+ * unless said otherwise), checks shapes, and runs with the GIL released. The loops are
+ * plain C in the order written: no fast-math, so results do not depend on how the
+ * compiler vectorises. On x86-64 with GCC the hot loops are also built for AVX2 and
+ * picked at load time (target_clones); elsewhere they are built for the baseline.
+ */
+#define PY_SSIZE_T_CLEAN
+#include <Python.h>
+#include <math.h>
+#include <stdint.h>
+#include <string.h>
+
+#if defined(__GNUC__) && !defined(__clang__) && defined(__x86_64__) && defined(__linux__)
+#define HOT __attribute__((target_clones("avx2", "default")))
+#else
+#define HOT
+#endif
+
+#define CLAMP (-230.0) /* responsibilities below e^-230 are taken as e^-230 */
+
+/* ------------------------------------------------------------------ buffers */
+enum { F64 = 'd', I64 = 'q', BOOL = '?' };
+#define MAXBUF 16
+
+typedef struct {
+    Py_buffer b[MAXBUF];
+    int n;
+} Bufs;
+
+static void release(Bufs *s) {
+    for (int i = 0; i < s->n; i++) PyBuffer_Release(&s->b[i]);
+    s->n = 0;
+}
+
+static int kind_of(const Py_buffer *v) {
+    const char *f = v->format ? v->format : "B";
+    char c = f[strlen(f) - 1];
+    if (v->itemsize == 8 && c == 'd') return F64;
+    if (v->itemsize == 8 && (c == 'q' || c == 'l' || c == 'n')) return I64;
+    if (v->itemsize == 1 && c == '?') return BOOL;
+    return 0;
+}
+
+/* Take a C-contiguous buffer of `kind` with `ndim` dimensions; shape into dims. */
+static void *take(Bufs *s, PyObject *o, const char *name, int kind, int ndim, int writable,
+                  Py_ssize_t *dims) {
+    Py_buffer *v = &s->b[s->n];
+    int flags = PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | (writable ? PyBUF_WRITABLE : 0);
+    if (PyObject_GetBuffer(o, v, flags) < 0) {
+        PyErr_Format(PyExc_ValueError, "%s: a C-contiguous%s array is needed", name,
+                     writable ? " writable" : "");
+        return NULL;
+    }
+    s->n++;
+    if (v->ndim != ndim || kind_of(v) != kind) {
+        PyErr_Format(PyExc_ValueError, "%s: expected %d dimension(s) of %s", name, ndim,
+                     kind == F64 ? "float64" : kind == I64 ? "int64" : "bool");
+        return NULL;
+    }
+    for (int i = 0; i < ndim; i++) dims[i] = v->shape[i];
+    return v->buf;
+}
+
+/* Take buffer `var` (C type T) from object `obj`, or jump to `fail`. */
+#define TAKE(T, var, obj, name, kind, ndim, writable, dims) \
+    T var = take(&s, obj, name, kind, ndim, writable, dims); \
+    if (!var) goto fail
+
+/* The end of a wrapper that returns None: buffers released on both exits. */
+#define RETURN_NONE_OR_FAIL  \
+    release(&s);             \
+    Py_RETURN_NONE;          \
+    fail:                    \
+    release(&s);             \
+    return NULL
+
+/* The same, freeing the scratch memory `p` (PyMem_Malloc) on both exits. */
+#define RETURN_NONE_OR_FAIL_FREEING(p) \
+    PyMem_Free(p);                     \
+    release(&s);                       \
+    Py_RETURN_NONE;                    \
+    fail:                              \
+    PyMem_Free(p);                     \
+    release(&s);                       \
+    return NULL
+
+#define NEED(cond, msg)                                        \
+    do {                                                       \
+        if (!(cond)) {                                         \
+            PyErr_SetString(PyExc_ValueError, msg);            \
+            goto fail;                                         \
+        }                                                      \
+    } while (0)
+
+/* ------------------------------------------------------------------ scoring */
+HOT static void c_full_log_joint(const double *Y, const double *cst, Py_ssize_t K,
+                                 Py_ssize_t D, Py_ssize_t n, double *L, Py_ssize_t N,
+                                 Py_ssize_t lo) {
+    for (Py_ssize_t k = 0; k < K; k++) {
+        double *Lk = L + k * N + lo;
+        double c = cst[k];
+        for (Py_ssize_t i = 0; i < n; i++) Lk[i] = c;
+        for (Py_ssize_t d = 0; d < D; d++) {
+            const double *y = Y + (k * D + d) * n;
+            for (Py_ssize_t i = 0; i < n; i++) Lk[i] -= y[i] * y[i];
+        }
+    }
+}
+
+static PyObject *full_log_joint(PyObject *self, PyObject *args) {
+    PyObject *oY, *oc, *oL;
+    Py_ssize_t D, lo, dY[2], dc[1], dL[2];
+    Bufs s = {.n = 0};
+    if (!PyArg_ParseTuple(args, "OOnOn", &oY, &oc, &D, &oL, &lo)) return NULL;
+    TAKE(const double *, Y, oY, "Y", F64, 2, 0, dY);
+    TAKE(const double *, c, oc, "const", F64, 1, 0, dc);
+    TAKE(double *, L, oL, "L", F64, 2, 1, dL);
+    NEED(dY[0] == dc[0] * D && dL[0] == dc[0], "full_log_joint: shapes disagree");
+    NEED(lo >= 0 && lo + dY[1] <= dL[1], "full_log_joint: rows out of range");
+    Py_BEGIN_ALLOW_THREADS
+    c_full_log_joint(Y, c, dc[0], D, dY[1], L, dL[1], lo);
+    Py_END_ALLOW_THREADS
+    RETURN_NONE_OR_FAIL;
+}
+
+HOT static void c_shift(double *L, Py_ssize_t K, Py_ssize_t N, Py_ssize_t lo, Py_ssize_t n,
+                        double *top, int64_t *best) {
+    double *L0 = L + lo;
+    int64_t *b = best + lo;
+    for (Py_ssize_t i = 0; i < n; i++) {
+        top[i] = L0[i];
+        b[i] = 0;
+    }
+    for (Py_ssize_t k = 1; k < K; k++) {
+        const double *Lk = L + k * N + lo;
+        for (Py_ssize_t i = 0; i < n; i++) {
+            double v = Lk[i];
+            if (v > top[i]) {
+                top[i] = v;
+                b[i] = k;
+            }
+        }
+    }
+    for (Py_ssize_t k = 0; k < K; k++) {
+        double *Lk = L + k * N + lo;
+        for (Py_ssize_t i = 0; i < n; i++) {
+            double v = Lk[i] - top[i];
+            Lk[i] = v > CLAMP ? v : CLAMP;
+        }
+    }
+}
+
+static PyObject *shift(PyObject *self, PyObject *args) {
+    PyObject *oL, *ot, *ob;
+    Py_ssize_t lo, n, dL[2], dt[1], db[1];
+    Bufs s = {.n = 0};
+    if (!PyArg_ParseTuple(args, "OnnOO", &oL, &lo, &n, &ot, &ob)) return NULL;
+    TAKE(double *, L, oL, "L", F64, 2, 1, dL);
+    TAKE(double *, top, ot, "top", F64, 1, 1, dt);
+    TAKE(int64_t *, best, ob, "best", I64, 1, 1, db);
+    NEED(lo >= 0 && n >= 0 && lo + n <= dL[1] && n <= dt[0] && db[0] == dL[1],
+         "shift: rows out of range");
+    Py_BEGIN_ALLOW_THREADS
+    c_shift(L, dL[0], dL[1], lo, n, top, best);
+    Py_END_ALLOW_THREADS
+    RETURN_NONE_OR_FAIL;
+}
+
+HOT static void c_normalise(double *E, Py_ssize_t K, Py_ssize_t N, Py_ssize_t lo,
+                            Py_ssize_t n, double *total) {
+    const double *E0 = E + lo;
+    for (Py_ssize_t i = 0; i < n; i++) total[i] = E0[i];
+    for (Py_ssize_t k = 1; k < K; k++) {
+        const double *Ek = E + k * N + lo;
+        for (Py_ssize_t i = 0; i < n; i++) total[i] += Ek[i];
+    }
+    for (Py_ssize_t k = 0; k < K; k++) {
+        double *Ek = E + k * N + lo;
+        for (Py_ssize_t i = 0; i < n; i++) Ek[i] /= total[i];
+    }
+}
+
+static PyObject *normalise(PyObject *self, PyObject *args) {
+    PyObject *oE, *ot;
+    Py_ssize_t lo, n, dE[2], dt[1];
+    Bufs s = {.n = 0};
+    if (!PyArg_ParseTuple(args, "OnnO", &oE, &lo, &n, &ot)) return NULL;
+    TAKE(double *, E, oE, "E", F64, 2, 1, dE);
+    TAKE(double *, total, ot, "total", F64, 1, 1, dt);
+    NEED(lo >= 0 && n >= 0 && lo + n <= dE[1] && n <= dt[0], "normalise: rows out of range");
+    Py_BEGIN_ALLOW_THREADS
+    c_normalise(E, dE[0], dE[1], lo, n, total);
+    Py_END_ALLOW_THREADS
+    RETURN_NONE_OR_FAIL;
+}
+
+/* ---------------------------------------------------------------- learning */
+HOT static void c_gather_rows(const double *A, Py_ssize_t n, Py_ssize_t W, const double *R,
+                              Py_ssize_t K, Py_ssize_t N, Py_ssize_t lo, const double *row_w,
+                              double floor, double *G, Py_ssize_t nb, int64_t *counts) {
+    for (Py_ssize_t k = 0; k < K; k++) {
+        const double *rk = R + k * N + lo;
+        double *Gk = G + k * nb * W;
+        Py_ssize_t m = 0;
+        for (Py_ssize_t i = 0; i < n; i++) {
+            double r = rk[i];
+            if (r > 0.0 && r >= floor) {
+                double sw = sqrt(r * row_w[i]);
+                const double *a = A + i * W;
+                double *g = Gk + m * W;
+                for (Py_ssize_t j = 0; j < W; j++) g[j] = sw * a[j];
+                m++;
+            }
+        }
+        counts[k] = m;
+    }
+}
+
+static PyObject *gather_rows(PyObject *self, PyObject *args) {
+    PyObject *oA, *oR, *ow, *oG, *oc;
+    Py_ssize_t lo, dA[2], dR[2], dw[1], dG[3], dc[1];
+    double floor;
+    Bufs s = {.n = 0};
+    if (!PyArg_ParseTuple(args, "OOnOdOO", &oA, &oR, &lo, &ow, &floor, &oG, &oc)) return NULL;
+    TAKE(const double *, A, oA, "A", F64, 2, 0, dA);
+    TAKE(const double *, R, oR, "resp", F64, 2, 0, dR);
+    TAKE(const double *, w, ow, "row_w", F64, 1, 0, dw);
+    TAKE(double *, G, oG, "G", F64, 3, 1, dG);
+    TAKE(int64_t *, counts, oc, "counts", I64, 1, 1, dc);
+    NEED(lo >= 0 && lo + dA[0] <= dR[1] && dw[0] >= dA[0] && dG[0] == dR[0] &&
+             dG[1] >= dA[0] && dG[2] == dA[1] && dc[0] == dR[0],
+         "gather_rows: shapes disagree");
+    Py_BEGIN_ALLOW_THREADS
+    c_gather_rows(A, dA[0], dA[1], R, dR[0], dR[1], lo, w, floor, G, dG[1], counts);
+    Py_END_ALLOW_THREADS
+    RETURN_NONE_OR_FAIL;
+}
+
+HOT static void c_masked_weights(const double *R, Py_ssize_t K, Py_ssize_t N, Py_ssize_t lo,
+                                 Py_ssize_t n, const double *row_w, double floor, double *RW,
+                                 Py_ssize_t nb) {
+    for (Py_ssize_t k = 0; k < K; k++) {
+        const double *rk = R + k * N + lo;
+        double *out = RW + k * nb;
+        for (Py_ssize_t i = 0; i < n; i++) {
+            double r = rk[i];
+            out[i] = r >= floor ? r * row_w[i] : 0.0;
+        }
+    }
+}
+
+static PyObject *masked_weights(PyObject *self, PyObject *args) {
+    PyObject *oR, *ow, *oRW;
+    Py_ssize_t lo, n, dR[2], dw[1], dRW[2];
+    double floor;
+    Bufs s = {.n = 0};
+    if (!PyArg_ParseTuple(args, "OnnOdO", &oR, &lo, &n, &ow, &floor, &oRW)) return NULL;
+    TAKE(const double *, R, oR, "resp", F64, 2, 0, dR);
+    TAKE(const double *, w, ow, "row_w", F64, 1, 0, dw);
+    TAKE(double *, RW, oRW, "RW", F64, 2, 1, dRW);
+    NEED(lo >= 0 && n >= 0 && lo + n <= dR[1] && dw[0] >= n && dRW[0] == dR[0] && dRW[1] >= n,
+         "masked_weights: shapes disagree");
+    Py_BEGIN_ALLOW_THREADS
+    c_masked_weights(R, dR[0], dR[1], lo, n, w, floor, RW, dRW[1]);
+    Py_END_ALLOW_THREADS
+    RETURN_NONE_OR_FAIL;
+}
+
+HOT static void c_design(const double *X, Py_ssize_t D, Py_ssize_t lo, Py_ssize_t n,
+                         const double *center, const double *scale, int kind, double *A,
+                         Py_ssize_t W) {
+    for (Py_ssize_t i = 0; i < n; i++) {
+        const double *x = X + (lo + i) * D;
+        double *a = A + i * W;
+        if (kind == 0) {
+            for (Py_ssize_t d = 0; d < D; d++) a[d] = (x[d] - center[d]) / scale[d];
+            a[D] = 1.0;
+        } else if (kind == 1) {
+            for (Py_ssize_t d = 0; d < D; d++) {
+                double z = (x[d] - center[d]) / scale[d];
+                a[d] = z * z;
+                a[D + d] = z;
+            }
+            a[2 * D] = 1.0;
+        } else {
+            double sq = 0.0;
+            for (Py_ssize_t d = 0; d < D; d++) {
+                double z = (x[d] - center[d]) / scale[d];
+                sq += z * z;
+                a[1 + d] = z;
+            }
+            a[0] = sq;
+            a[D + 1] = 1.0;
+        }
+    }
+}
+
+static PyObject *design(PyObject *self, PyObject *args) {
+    PyObject *oX, *oc, *os, *oA;
+    Py_ssize_t lo, n, dX[2], dc[1], ds[1], dA[2];
+    int kind;
+    Bufs s = {.n = 0};
+    if (!PyArg_ParseTuple(args, "OnnOOiO", &oX, &lo, &n, &oc, &os, &kind, &oA)) return NULL;
+    TAKE(const double *, X, oX, "X", F64, 2, 0, dX);
+    TAKE(const double *, c, oc, "center", F64, 1, 0, dc);
+    TAKE(const double *, sc, os, "scale", F64, 1, 0, ds);
+    TAKE(double *, A, oA, "A", F64, 2, 1, dA);
+    Py_ssize_t D = dX[1];
+    Py_ssize_t W = kind == 0 ? D + 1 : kind == 1 ? 2 * D + 1 : D + 2;
+    NEED(kind >= 0 && kind <= 2 && dc[0] == D && ds[0] == D && dA[1] == W && n >= 0 &&
+             dA[0] >= n && lo >= 0 && lo + n <= dX[0],
+         "design: shapes disagree");
+    Py_BEGIN_ALLOW_THREADS
+    c_design(X, D, lo, n, c, sc, kind, A, W);
+    Py_END_ALLOW_THREADS
+    RETURN_NONE_OR_FAIL;
+}
+
+/* ---------------------------------------------------------------- refresh */
+/* Weights, means and each component's shrinkage share, as Mixture._derive and
+ * covariance._shrink compute them. */
+static void weights_and_means(const double *s0, const double *s1, Py_ssize_t K, Py_ssize_t D,
+                              double n_eff, double prior_weight, double tiny, double *weights,
+                              double *means, double *share) {
+    double total = 0.0;
+    for (Py_ssize_t k = 0; k < K; k++) total += s0[k] + tiny;
+    for (Py_ssize_t k = 0; k < K; k++) {
+        double sk = s0[k] + tiny;
+        weights[k] = sk / total;
+        share[k] = 1.0;
+        if (prior_weight > 0.0) {
+            double nk = total > 0.0 ? sk / total * n_eff : 0.0;
+            share[k] = nk / (nk + prior_weight);
+        }
+        for (Py_ssize_t d = 0; d < D; d++) means[k * D + d] = s1[k * D + d] / sk;
+    }
+}
+
+/* U with U U^T = C^-1 (upper triangular, by Cholesky C = L L^T and U = L^-T) and
+ * log det U for each of K (D, D) matrices; bad[k] where C_k is not positive definite. */
+static void c_full_factor(const double *cov, Py_ssize_t K, Py_ssize_t D, double *prec,
+                          double *log_det, uint8_t *bad, double *L, double *Li) {
+    for (Py_ssize_t k = 0; k < K; k++) {
+        const double *C = cov + k * D * D;
+        double *U = prec + k * D * D;
+        int ok = 1;
+        for (Py_ssize_t i = 0; i < D * D; i++)
+            if (!isfinite(C[i])) ok = 0;
+        for (Py_ssize_t j = 0; ok && j < D; j++) {
+            double acc = C[j * D + j];
+            for (Py_ssize_t m = 0; m < j; m++) acc -= L[j * D + m] * L[j * D + m];
+            if (!(acc > 0.0) || !isfinite(acc)) {
+                ok = 0;
+                break;
+            }
+            L[j * D + j] = sqrt(acc);
+            for (Py_ssize_t i = j + 1; i < D; i++) {
+                double a = C[i * D + j];
+                for (Py_ssize_t m = 0; m < j; m++) a -= L[i * D + m] * L[j * D + m];
+                L[i * D + j] = a / L[j * D + j];
+            }
+        }
+        bad[k] = !ok;
+        if (!ok) {
+            for (Py_ssize_t i = 0; i < D * D; i++) U[i] = 0.0;
+            log_det[k] = 0.0;
+            continue;
+        }
+        for (Py_ssize_t j = 0; j < D; j++) {
+            Li[j * D + j] = 1.0 / L[j * D + j];
+            for (Py_ssize_t i = j + 1; i < D; i++) {
+                double acc = 0.0;
+                for (Py_ssize_t m = j; m < i; m++) acc -= L[i * D + m] * Li[m * D + j];
+                Li[i * D + j] = acc / L[i * D + i];
+            }
+            for (Py_ssize_t i = 0; i < j; i++) Li[i * D + j] = 0.0;
+        }
+        double ld = 0.0;
+        for (Py_ssize_t d = 0; d < D; d++) {
+            ld += log(Li[d * D + d]);
+            for (Py_ssize_t e = 0; e < D; e++) U[d * D + e] = Li[e * D + d];
+        }
+        log_det[k] = ld;
+    }
+}
+
+static PyObject *full_factor(PyObject *self, PyObject *args) {
+    PyObject *oc, *op, *ol, *ob;
+    Py_ssize_t dc[3], dp[3], dl[1], db[1];
+    Bufs s = {.n = 0};
+    double *work = NULL;
+    if (!PyArg_ParseTuple(args, "OOOO", &oc, &op, &ol, &ob)) return NULL;
+    TAKE(const double *, cov, oc, "cov", F64, 3, 0, dc);
+    TAKE(double *, prec, op, "prec_chol", F64, 3, 1, dp);
+    TAKE(double *, ld, ol, "log_det", F64, 1, 1, dl);
+    TAKE(uint8_t *, bad, ob, "bad", BOOL, 1, 1, db);
+    NEED(dc[1] == dc[2] && dp[0] == dc[0] && dp[1] == dc[1] && dp[2] == dc[2] &&
+             dl[0] == dc[0] && db[0] == dc[0],
+         "full_factor: shapes disagree");
+    work = PyMem_Malloc(sizeof(double) * 2 * (size_t)(dc[1] * dc[1] + 1));
+    if (!work) {
+        PyErr_NoMemory();
+        goto fail;
+    }
+    c_full_factor(cov, dc[0], dc[1], prec, ld, bad, work, work + dc[1] * dc[1]);
+    RETURN_NONE_OR_FAIL_FREEING(work);
+}
+
+static PyObject *full_derive(PyObject *self, PyObject *args) {
+    PyObject *o0, *o1, *o2, *ow, *om, *oc, *op, *ol, *ob;
+    double n_eff, reg, prior, tiny;
+    Py_ssize_t d0[1], d1[2], d2[3], dw[1], dm[2], dc[3], dp[3], dl[1], db[1];
+    Bufs s = {.n = 0};
+    double *work = NULL;
+    if (!PyArg_ParseTuple(args, "OOOddddOOOOOO", &o0, &o1, &o2, &n_eff, &reg, &prior, &tiny,
+                          &ow, &om, &oc, &op, &ol, &ob))
+        return NULL;
+    TAKE(const double *, s0, o0, "s0", F64, 1, 0, d0);
+    TAKE(const double *, s1, o1, "s1", F64, 2, 0, d1);
+    TAKE(const double *, s2, o2, "s2", F64, 3, 0, d2);
+    TAKE(double *, weights, ow, "weights", F64, 1, 1, dw);
+    TAKE(double *, means, om, "means", F64, 2, 1, dm);
+    TAKE(double *, cov, oc, "cov", F64, 3, 1, dc);
+    TAKE(double *, prec, op, "prec_chol", F64, 3, 1, dp);
+    TAKE(double *, ld, ol, "log_det", F64, 1, 1, dl);
+    TAKE(uint8_t *, bad, ob, "bad", BOOL, 1, 1, db);
+    Py_ssize_t K = d0[0], D = d1[1];
+    NEED(d1[0] == K && d2[0] == K && d2[1] == D && d2[2] == D && dw[0] == K && dm[0] == K &&
+             dm[1] == D && dc[0] == K && dc[1] == D && dc[2] == D && dp[0] == K &&
+             dp[1] == D && dp[2] == D && dl[0] == K && db[0] == K,
+         "full_derive: shapes disagree");
+    work = PyMem_Malloc(sizeof(double) * (size_t)(2 * D * D + K + 1));
+    if (!work) {
+        PyErr_NoMemory();
+        goto fail;
+    }
+    double *share = work + 2 * D * D;
+    weights_and_means(s0, s1, K, D, n_eff, prior, tiny, weights, means, share);
+    for (Py_ssize_t k = 0; k < K; k++) {
+        double sk = s0[k] + tiny;
+        double *C = cov + k * D * D;
+        const double *S = s2 + k * D * D;
+        const double *mu = means + k * D;
+        for (Py_ssize_t d = 0; d < D; d++)
+            for (Py_ssize_t e = 0; e < D; e++) C[d * D + e] = S[d * D + e] / sk - mu[d] * mu[e];
+        for (Py_ssize_t d = 0; d < D; d++) {
+            for (Py_ssize_t e = d + 1; e < D; e++) {
+                double v = 0.5 * (C[d * D + e] + C[e * D + d]);
+                C[d * D + e] = v;
+                C[e * D + d] = v;
+            }
+            C[d * D + d] = 0.5 * (C[d * D + d] + C[d * D + d]);
+        }
+        if (prior > 0.0)
+            for (Py_ssize_t d = 0; d < D; d++)
+                for (Py_ssize_t e = 0; e < D; e++)
+                    C[d * D + e] = share[k] * C[d * D + e] + (1.0 - share[k]) * (d == e ? 1.0 : 0.0);
+        for (Py_ssize_t d = 0; d < D; d++) C[d * D + d] += reg;
+    }
+    c_full_factor(cov, K, D, prec, ld, bad, work, work + D * D);
+    RETURN_NONE_OR_FAIL_FREEING(work);
+}
+
+static PyObject *full_operator(PyObject *self, PyObject *args) {
+    PyObject *om, *op, *ol, *ow;
+    Py_ssize_t dm[2], dp[3], dl[1], dw[2];
+    Bufs s = {.n = 0};
+    if (!PyArg_ParseTuple(args, "OOOO", &om, &op, &ol, &ow)) return NULL;
+    TAKE(const double *, means, om, "means", F64, 2, 0, dm);
+    TAKE(const double *, prec, op, "prec_chol", F64, 3, 0, dp);
+    TAKE(const double *, ld, ol, "log_det", F64, 1, 0, dl);
+    TAKE(double *, WT, ow, "WT", F64, 2, 1, dw);
+    Py_ssize_t K = dm[0], D = dm[1];
+    NEED(dp[0] == K && dp[1] == D && dp[2] == D && dw[0] == K * D && dw[1] == D + 1,
+         "full_operator: shapes disagree");
+    double h = sqrt(0.5);
+    for (Py_ssize_t k = 0; k < K; k++) {
+        const double *U = prec + k * D * D;
+        for (Py_ssize_t d = 0; d < D; d++) {
+            double *row = WT + (k * D + d) * (D + 1);
+            double c = 0.0;
+            for (Py_ssize_t e = 0; e < D; e++) {
+                double u = U[e * D + d];
+                row[e] = u * h;
+                c += means[k * D + e] * u;
+            }
+            row[D] = -c * h;
+        }
+    }
+    RETURN_NONE_OR_FAIL;
+}
+
+/* diag (var (K, D)) or spherical (var (K,)) variances from statistics; returns whether
+ * every variance is positive */
+static PyObject *linear_derive(PyObject *args, int spherical) {
+    PyObject *o0, *o1, *o2, *ow, *om, *ov;
+    double n_eff, reg, prior, tiny;
+    Py_ssize_t d0[1], d1[2], d2[2], dw[1], dm[2], dv[2];
+    Bufs s = {.n = 0};
+    double *share = NULL;
+    int nd = spherical ? 1 : 2;
+    if (!PyArg_ParseTuple(args, "OOOddddOOO", &o0, &o1, &o2, &n_eff, &reg, &prior, &tiny, &ow,
+                          &om, &ov))
+        return NULL;
+    TAKE(const double *, s0, o0, "s0", F64, 1, 0, d0);
+    TAKE(const double *, s1, o1, "s1", F64, 2, 0, d1);
+    TAKE(const double *, s2, o2, "s2", F64, nd, 0, d2);
+    TAKE(double *, weights, ow, "weights", F64, 1, 1, dw);
+    TAKE(double *, means, om, "means", F64, 2, 1, dm);
+    TAKE(double *, var, ov, "var", F64, nd, 1, dv);
+    Py_ssize_t K = d0[0], D = d1[1];
+    NEED(d1[0] == K && d2[0] == K && (spherical || d2[1] == D) && dw[0] == K && dm[0] == K &&
+             dm[1] == D && dv[0] == K && (spherical || dv[1] == D),
+         "diag_derive: shapes disagree");
+    share = PyMem_Malloc(sizeof(double) * (size_t)(K + 1));
+    if (!share) {
+        PyErr_NoMemory();
+        goto fail;
+    }
+    weights_and_means(s0, s1, K, D, n_eff, prior, tiny, weights, means, share);
+    int ok = 1;
+    for (Py_ssize_t k = 0; k < K; k++) {
+        double sk = s0[k] + tiny;
+        const double *mu = means + k * D;
+        if (spherical) {
+            double msq = 0.0;
+            for (Py_ssize_t d = 0; d < D; d++) msq += mu[d] * mu[d];
+            double v = fmax(s2[k] / sk - msq / (double)D, 0.0);
+            if (prior > 0.0) v = share[k] * v + (1.0 - share[k]);
+            v += reg;
+            var[k] = v;
+            ok = ok && v > 0.0;
+        } else {
+            for (Py_ssize_t d = 0; d < D; d++) {
+                double v = fmax(s2[k * D + d] / sk - mu[d] * mu[d], 0.0);
+                if (prior > 0.0) v = share[k] * v + (1.0 - share[k]);
+                v += reg;
+                var[k * D + d] = v;
+                ok = ok && v > 0.0;
+            }
+        }
+    }
+    PyMem_Free(share);
+    release(&s);
+    return PyBool_FromLong(ok);
+fail:
+    PyMem_Free(share);
+    release(&s);
+    return NULL;
+}
+
+static PyObject *diag_derive(PyObject *self, PyObject *args) { return linear_derive(args, 0); }
+static PyObject *spherical_derive(PyObject *self, PyObject *args) {
+    return linear_derive(args, 1);
+}
+
+/* the diag or spherical scoring operator from prec = 1/var and
+ * log_const = log w + log det U - D/2 log 2 pi */
+static PyObject *linear_operator(PyObject *args, int spherical) {
+    PyObject *om, *op, *ol, *ob;
+    Py_ssize_t dm[2], dp[2], dl[1], db[2];
+    Bufs s = {.n = 0};
+    if (!PyArg_ParseTuple(args, "OOOO", &om, &op, &ol, &ob)) return NULL;
+    TAKE(const double *, means, om, "means", F64, 2, 0, dm);
+    TAKE(const double *, prec, op, "prec", F64, spherical ? 1 : 2, 0, dp);
+    TAKE(const double *, lc, ol, "log_const", F64, 1, 0, dl);
+    TAKE(double *, BT, ob, "BT", F64, 2, 1, db);
+    Py_ssize_t K = dm[0], D = dm[1];
+    NEED(dp[0] == K && (spherical || dp[1] == D) && dl[0] == K && db[0] == K &&
+             db[1] == (spherical ? D + 2 : 2 * D + 1),
+         "diag_operator: shapes disagree");
+    for (Py_ssize_t k = 0; k < K; k++) {
+        const double *mu = means + k * D;
+        double *row = BT + k * db[1];
+        double c = 0.0;
+        if (spherical) {
+            double p = prec[k], msq = 0.0;
+            row[0] = -0.5 * p;
+            for (Py_ssize_t d = 0; d < D; d++) {
+                row[1 + d] = mu[d] * p;
+                msq += mu[d] * mu[d];
+            }
+            c = msq * p;
+        } else {
+            for (Py_ssize_t d = 0; d < D; d++) {
+                double p = prec[k * D + d];
+                row[d] = -0.5 * p;
+                row[D + d] = mu[d] * p;
+                c += mu[d] * mu[d] * p;
+            }
+        }
+        row[db[1] - 1] = lc[k] - 0.5 * c;
+    }
+    RETURN_NONE_OR_FAIL;
+}
+
+static PyObject *diag_operator(PyObject *self, PyObject *args) {
+    return linear_operator(args, 0);
+}
+static PyObject *spherical_operator(PyObject *self, PyObject *args) {
+    return linear_operator(args, 1);
+}
+
+/* ------------------------------------------------------------------ module */
+static PyMethodDef methods[] = {
+    {"full_log_joint", full_log_joint, METH_VARARGS,
+     "full_log_joint(Y, const, n_features, L, lo): L[k, lo+i] = const[k] - "
+     "sum_d Y[k*D+d, i]^2"},
+    {"shift", shift, METH_VARARGS,
+     "shift(L, lo, n, top, best): row maxima and argmax (first on ties), then "
+     "L <- max(L - top, -230)"},
+    {"normalise", normalise, METH_VARARGS,
+     "normalise(E, lo, n, total): column sums in component order, then E /= total"},
+    {"gather_rows", gather_rows, METH_VARARGS,
+     "gather_rows(A, resp, lo, row_w, floor, G, counts): per component, rows with "
+     "responsibility > 0 and >= floor, scaled by sqrt(resp * row_w)"},
+    {"masked_weights", masked_weights, METH_VARARGS,
+     "masked_weights(resp, lo, n, row_w, floor, RW): resp * row_w where resp >= floor"},
+    {"design", design, METH_VARARGS,
+     "design(X, lo, n, center, scale, kind, A): standardised design rows "
+     "(kind 0 full [z,1], 1 diag [z*z,z,1], 2 spherical [|z|^2,z,1])"},
+    {"full_derive", full_derive, METH_VARARGS,
+     "full_derive(s0, s1, s2, n_eff, reg_covar, prior_weight, tiny, weights, means, cov, "
+     "prec_chol, log_det, bad)"},
+    {"full_factor", full_factor, METH_VARARGS,
+     "full_factor(cov, prec_chol, log_det, bad): U with U U^T = cov^-1 and log det U"},
+    {"full_operator", full_operator, METH_VARARGS,
+     "full_operator(means, prec_chol, log_det, WT): the full type's whitening operator"},
+    {"diag_derive", diag_derive, METH_VARARGS,
+     "diag_derive(s0, s1, s2, n_eff, reg_covar, prior_weight, tiny, weights, means, var)"},
+    {"spherical_derive", spherical_derive, METH_VARARGS,
+     "spherical_derive(s0, s1, s2, n_eff, reg_covar, prior_weight, tiny, weights, means, "
+     "var)"},
+    {"diag_operator", diag_operator, METH_VARARGS, "diag_operator(means, prec, log_const, BT)"},
+    {"spherical_operator", spherical_operator, METH_VARARGS,
+     "spherical_operator(means, prec, log_const, BT)"},
+    {NULL, NULL, 0, NULL}};
+
+static struct PyModuleDef module = {PyModuleDef_HEAD_INIT, "_kernels",
+                                    "shoal's compiled scoring and learning passes (see "
+                                    "shoal.core.fused)",
+                                    -1, methods};
+
+PyMODINIT_FUNC PyInit__kernels(void) { return PyModule_Create(&module); }
