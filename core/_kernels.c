@@ -96,8 +96,8 @@ static void *take(Bufs *s, PyObject *o, const char *name, int kind, int ndim, in
     } while (0)
 
 /* ------------------------------------------------------------------ scoring */
-HOT static void c_full_log_joint(const double *Y, const double *cst, Py_ssize_t K,
-                                 Py_ssize_t D, Py_ssize_t n, double *L, Py_ssize_t N,
+HOT static void c_full_log_joint(const double *restrict Y, const double *restrict cst, Py_ssize_t K,
+                                 Py_ssize_t D, Py_ssize_t n, double *restrict L, Py_ssize_t N,
                                  Py_ssize_t lo) {
     for (Py_ssize_t k = 0; k < K; k++) {
         double *Lk = L + k * N + lo;
@@ -126,8 +126,8 @@ static PyObject *full_log_joint(PyObject *self, PyObject *args) {
     RETURN_NONE_OR_FAIL;
 }
 
-HOT static void c_shift(double *L, Py_ssize_t K, Py_ssize_t N, Py_ssize_t lo, Py_ssize_t n,
-                        double *top, int64_t *best) {
+HOT static void c_shift(double *restrict L, Py_ssize_t K, Py_ssize_t N, Py_ssize_t lo, Py_ssize_t n,
+                        double *restrict top, int64_t *restrict best) {
     double *L0 = L + lo;
     int64_t *b = best + lo;
     for (Py_ssize_t i = 0; i < n; i++) {
@@ -169,8 +169,8 @@ static PyObject *shift(PyObject *self, PyObject *args) {
     RETURN_NONE_OR_FAIL;
 }
 
-HOT static void c_normalise(double *E, Py_ssize_t K, Py_ssize_t N, Py_ssize_t lo,
-                            Py_ssize_t n, double *total) {
+HOT static void c_normalise(double *restrict E, Py_ssize_t K, Py_ssize_t N, Py_ssize_t lo,
+                            Py_ssize_t n, double *restrict total) {
     const double *E0 = E + lo;
     for (Py_ssize_t i = 0; i < n; i++) total[i] = E0[i];
     for (Py_ssize_t k = 1; k < K; k++) {
@@ -198,9 +198,9 @@ static PyObject *normalise(PyObject *self, PyObject *args) {
 }
 
 /* ---------------------------------------------------------------- learning */
-HOT static void c_gather_rows(const double *A, Py_ssize_t n, Py_ssize_t W, const double *R,
-                              Py_ssize_t K, Py_ssize_t N, Py_ssize_t lo, const double *row_w,
-                              double floor, double *G, Py_ssize_t nb, int64_t *counts) {
+HOT static void c_gather_rows(const double *restrict A, Py_ssize_t n, Py_ssize_t W, const double *restrict R,
+                              Py_ssize_t K, Py_ssize_t N, Py_ssize_t lo, const double *restrict row_w,
+                              double floor, double *restrict G, Py_ssize_t nb, int64_t *restrict counts) {
     for (Py_ssize_t k = 0; k < K; k++) {
         const double *rk = R + k * N + lo;
         double *Gk = G + k * nb * W;
@@ -239,38 +239,43 @@ static PyObject *gather_rows(PyObject *self, PyObject *args) {
     RETURN_NONE_OR_FAIL;
 }
 
-HOT static void c_masked_weights(const double *R, Py_ssize_t K, Py_ssize_t N, Py_ssize_t lo,
-                                 Py_ssize_t n, const double *row_w, double floor, double *RW,
-                                 Py_ssize_t nb) {
+HOT static void c_accumulate_rows(const double *restrict A, Py_ssize_t n, Py_ssize_t W,
+                                  const double *restrict R, Py_ssize_t K, Py_ssize_t N, Py_ssize_t lo,
+                                  const double *restrict row_w, double floor, double *restrict P) {
     for (Py_ssize_t k = 0; k < K; k++) {
         const double *rk = R + k * N + lo;
-        double *out = RW + k * nb;
+        double *p = P + k * W;
         for (Py_ssize_t i = 0; i < n; i++) {
             double r = rk[i];
-            out[i] = r >= floor ? r * row_w[i] : 0.0;
+            if (r > 0.0 && r >= floor) {
+                double w = r * row_w[i];
+                const double *a = A + i * W;
+                for (Py_ssize_t j = 0; j < W; j++) p[j] += w * a[j];
+            }
         }
     }
 }
 
-static PyObject *masked_weights(PyObject *self, PyObject *args) {
-    PyObject *oR, *ow, *oRW;
-    Py_ssize_t lo, n, dR[2], dw[1], dRW[2];
+static PyObject *accumulate_rows(PyObject *self, PyObject *args) {
+    PyObject *oA, *oR, *ow, *oP;
+    Py_ssize_t lo, dA[2], dR[2], dw[1], dP[2];
     double floor;
     Bufs s = {.n = 0};
-    if (!PyArg_ParseTuple(args, "OnnOdO", &oR, &lo, &n, &ow, &floor, &oRW)) return NULL;
+    if (!PyArg_ParseTuple(args, "OOnOdO", &oA, &oR, &lo, &ow, &floor, &oP)) return NULL;
+    TAKE(const double *, A, oA, "A", F64, 2, 0, dA);
     TAKE(const double *, R, oR, "resp", F64, 2, 0, dR);
     TAKE(const double *, w, ow, "row_w", F64, 1, 0, dw);
-    TAKE(double *, RW, oRW, "RW", F64, 2, 1, dRW);
-    NEED(lo >= 0 && n >= 0 && lo + n <= dR[1] && dw[0] >= n && dRW[0] == dR[0] && dRW[1] >= n,
-         "masked_weights: shapes disagree");
+    TAKE(double *, P, oP, "P", F64, 2, 1, dP);
+    NEED(lo >= 0 && lo + dA[0] <= dR[1] && dw[0] >= dA[0] && dP[0] == dR[0] && dP[1] == dA[1],
+         "accumulate_rows: shapes disagree");
     Py_BEGIN_ALLOW_THREADS
-    c_masked_weights(R, dR[0], dR[1], lo, n, w, floor, RW, dRW[1]);
+    c_accumulate_rows(A, dA[0], dA[1], R, dR[0], dR[1], lo, w, floor, P);
     Py_END_ALLOW_THREADS
     RETURN_NONE_OR_FAIL;
 }
 
-HOT static void c_design(const double *X, Py_ssize_t D, Py_ssize_t lo, Py_ssize_t n,
-                         const double *center, const double *scale, int kind, double *A,
+HOT static void c_design(const double *restrict X, Py_ssize_t D, Py_ssize_t lo, Py_ssize_t n,
+                         const double *restrict center, const double *restrict scale, int kind, double *restrict A,
                          Py_ssize_t W) {
     for (Py_ssize_t i = 0; i < n; i++) {
         const double *x = X + (lo + i) * D;
@@ -617,8 +622,9 @@ static PyMethodDef methods[] = {
     {"gather_rows", gather_rows, METH_VARARGS,
      "gather_rows(A, resp, lo, row_w, floor, G, counts): per component, rows with "
      "responsibility > 0 and >= floor, scaled by sqrt(resp * row_w)"},
-    {"masked_weights", masked_weights, METH_VARARGS,
-     "masked_weights(resp, lo, n, row_w, floor, RW): resp * row_w where resp >= floor"},
+    {"accumulate_rows", accumulate_rows, METH_VARARGS,
+     "accumulate_rows(A, resp, lo, row_w, floor, P): P[k] += resp * row_w * A[i] for the "
+     "rows whose responsibility is positive and at least floor"},
     {"design", design, METH_VARARGS,
      "design(X, lo, n, center, scale, kind, A): standardised design rows "
      "(kind 0 full [z,1], 1 diag [z*z,z,1], 2 spherical [|z|^2,z,1])"},

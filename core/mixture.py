@@ -303,7 +303,6 @@ class Mixture:
             BT = self._scoring_operator
             if learn:
                 P = np.zeros((K, W))
-                RW = np.empty((K, nb))
         lss = self._log_scale_sum
         kind = _DESIGN_KIND[self.covariance]
         if rows is None:    # X holds standardised rows already
@@ -343,8 +342,7 @@ class Mixture:
                             Gk = G[k, :c]
                             P[k] += Gk.T @ Gk     # numpy runs A^T A as one SYRK
                 else:
-                    kern.masked_weights(R, a, m, wb, floor, RW)
-                    P += RW[:, :m] @ Ab
+                    kern.accumulate_rows(Ab, R, a, wb, floor, P)
         return family.split_moments(P, D) if learn else None
 
     @property
