@@ -38,6 +38,7 @@ __all__ = ["Mixture", "Scores", "FORMAT_VERSION"]
 FORMAT_VERSION = 1
 BLOCK_ROWS = 2048  # rows scored at once: the (K*D, rows) intermediate stays in cache
 FUSED_ROWS = 1024  # rows per block on the compiled path: its (K*D, rows) whitened block stays in L2
+LINEAR_ROWS = 4096  # the same for diag and spherical (no whitened block: fewer, longer calls)
 SPAN_ROWS = 8192   # rows whose design matrix is kept for the moments (score-only paths)
 _TINY = 10.0 * np.finfo(np.float64).eps
 _NO_WEIGHTS = np.zeros(0)
@@ -287,7 +288,7 @@ class Mixture:
             return (np.zeros_like(self.s0), np.zeros_like(self.s1),
                     np.zeros_like(self.s2)) if learn else None
         full = self.covariance == "full"
-        nb = min(FUSED_ROWS, hi - lo)
+        nb = min(FUSED_ROWS if full else LINEAR_ROWS, hi - lo)
         A = np.empty((nb, W))
         top, total = np.empty(nb), np.empty(nb)
         R = out.resp_kn
