@@ -274,7 +274,8 @@ class Mixture:
     def _fused_span(self, X, lo, hi, out, rows=None, row_w=None, floor=0.0):
         """Score rows ``lo:hi`` with the compiled kernels; with ``row_w`` also learn.
 
-        Returns the statistics ``(s0, s1, s2)`` of the span weighted by
+        ``rows`` (a :class:`_Standardiser`) gives the centre and scale of data-unit
+        rows; without it ``X`` holds standardised rows. Returns the statistics ``(s0, s1, s2)`` of the span weighted by
         ``resp * row_w`` (responsibilities under ``floor`` count as zero), or None
         when ``row_w`` is None. Same results as :meth:`_score_span` and
         :meth:`_accumulate` up to rounding.
@@ -284,6 +285,8 @@ class Mixture:
         K, D = self.n_components, self.n_features
         W = family.width(D)
         learn = row_w is not None
+        if learn:
+            row_w = _c64(row_w)
         if hi <= lo:
             return (np.zeros_like(self.s0), np.zeros_like(self.s1),
                     np.zeros_like(self.s2)) if learn else None

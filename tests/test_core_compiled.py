@@ -156,3 +156,17 @@ def test_derive_takes_the_number_of_components_from_the_statistics(covariance, m
     for name in a:
         assert b[name].shape == a[name].shape == (2,) + np.shape(m.__dict__[name])[1:]
         np.testing.assert_allclose(b[name], a[name], rtol=1e-9, atol=1e-14, err_msg=name)
+
+
+def test_strided_rows_and_weights_are_taken_as_they_are(mixture_data, numpy_then_compiled):
+    from shoal.core.distributed import partition_statistics
+
+    X, *_ = mixture_data(3000, 2, 3, seed=75)
+    m = initialise(X, 2, "full", seed=0, n_init=1)
+    weights = np.linspace(1.0, 2.0, 6000)[::2]        # a strided view
+    rows = np.asfortranarray(X)                      # column-major rows
+    (a, sa), (b, sb) = numpy_then_compiled(lambda: partition_statistics(m, rows, weights))
+    np.testing.assert_allclose(b.s2, a.s2, rtol=1e-10)
+    np.testing.assert_array_equal(sb.component, sa.component)
+    (la, _), (lb, _) = numpy_then_compiled(lambda: m.learn(rows[::-1]))
+    np.testing.assert_allclose(lb.s1, la.s1, rtol=1e-10)
