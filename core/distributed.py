@@ -25,7 +25,7 @@ import numpy as np
 
 from .errors import ModelError
 from . import fused
-from .mixture import BLOCK_ROWS, Mixture, Scores, _ScoreBuffer, _Standardiser
+from .mixture import BLOCK_ROWS, Mixture, Scores, _ScoreBuffer
 from .schedule import StepSchedule
 
 __all__ = ["PartitionStatistics", "keep_between", "round_weights", "partition_statistics",
@@ -100,8 +100,7 @@ def partition_statistics(mixture: Mixture, X, weights) -> tuple[PartitionStatist
     n = X.shape[0]
     out = _ScoreBuffer(n, mixture.n_components)
     if n and fused.enabled():
-        total = mixture._fused_span(X, 0, n, out, _Standardiser(mixture.center, mixture.scale),
-                                    weights, mixture.resp_floor)
+        total = mixture._fused_span(X, 0, n, out, True, weights, mixture.resp_floor)
     else:
         total = (np.zeros_like(mixture.s0), np.zeros_like(mixture.s1), np.zeros_like(mixture.s2))
         for lo in range(0, n, BLOCK_ROWS):

@@ -41,8 +41,7 @@ FUSED_ROWS = 1024  # rows per block on the compiled path: its (K*D, rows) whiten
 LINEAR_ROWS = 4096  # the same for diag and spherical (no whitened block: fewer, longer calls)
 SPAN_ROWS = 8192   # rows whose design matrix is kept for the moments (score-only paths)
 _TINY = 10.0 * np.finfo(np.float64).eps
-_NO_WEIGHTS = np.zeros(0)
-_DESIGN_KIND = {"full": 0, "diag": 1, "spherical": 2}   # core/kernels.py design()
+_DESIGN_KIND = {"full": 0, "diag": 1, "spherical": 2}   # core/_kernels.c design()
 _PARAMETERS = frozenset({"weights", "means", "covariances", "prec_chol", "log_det"})
 
 
@@ -271,11 +270,12 @@ class Mixture:
             self._score_design(Ab, out, a, operator)
         return A
 
-    def _fused_span(self, X, lo, hi, out, rows=None, row_w=None, floor=0.0):
+    def _fused_span(self, X, lo, hi, out, data_units=True, row_w=None, floor=0.0):
         """Score rows ``lo:hi`` with the compiled kernels; with ``row_w`` also learn.
 
-        ``rows`` (a :class:`_Standardiser`) gives the centre and scale of data-unit
-        rows; without it ``X`` holds standardised rows. Returns the statistics ``(s0, s1, s2)`` of the span weighted by
+        ``X`` holds rows in the data's own units (standardised here with the
+        mixture's centre and scale) or, with ``data_units=False``, standardised rows.
+        Returns the statistics ``(s0, s1, s2)`` of the span weighted by
         ``resp * row_w`` (responsibilities under ``floor`` count as zero), or None
         when ``row_w`` is None. Same results as :meth:`_score_span` and
         :meth:`_accumulate` up to rounding.
@@ -309,10 +309,10 @@ class Mixture:
                 P = np.zeros((K, W))
         lss = self._log_scale_sum
         kind = _DESIGN_KIND[self.covariance]
-        if rows is None:    # X holds standardised rows already
-            center, scale = np.zeros(D), np.ones(D)
+        if data_units:
+            center, scale = _c64(self.center), _c64(self.scale)
         else:
-            center, scale = _c64(rows.center), _c64(rows.scale)
+            center, scale = np.zeros(D), np.ones(D)
         first = 0           # row of X that row `lo` of the span is
         if not X.flags.c_contiguous:
             X, first = np.ascontiguousarray(X[lo:hi]), lo
@@ -390,11 +390,11 @@ class Mixture:
         """
         X = self._rows(X)
         out = _ScoreBuffer(X.shape[0], self.n_components)
+        if fused.enabled():
+            self._fused_span(X, 0, X.shape[0], out)
+            return out.scores(self.ids)
         operator = self._scoring_operator
         rows = _Standardiser(self.center, self.scale)
-        if fused.enabled():
-            self._fused_span(X, 0, X.shape[0], out, rows)
-            return out.scores(self.ids)
         for lo in range(0, X.shape[0], SPAN_ROWS):
             self._score_span(X, lo, min(lo + SPAN_ROWS, X.shape[0]), out, operator, rows)
         return out.scores(self.ids)
@@ -409,9 +409,10 @@ class Mixture:
         out = _ScoreBuffer(n, self.n_components)
         if fused.enabled():
             if moments_weight is None:
-                self._fused_span(Z, 0, n, out)
+                self._fused_span(Z, 0, n, out, data_units=False)
                 return out
-            return out, self._fused_span(Z, 0, n, out, row_w=np.full(n, moments_weight))
+            return out, self._fused_span(Z, 0, n, out, data_units=False,
+                                         row_w=np.full(n, moments_weight))
         operator = self._scoring_operator
         total = None
         for lo in range(0, n, SPAN_ROWS):
@@ -542,19 +543,19 @@ class Mixture:
         X = self._rows(X)
         n = X.shape[0]
         out = _ScoreBuffer(n, self.n_components)
-        rows = _Standardiser(self.center, self.scale)
+        jit = fused.enabled()
+        rows = None if jit else _Standardiser(self.center, self.scale)
         model = self  # the parameters in force; replaced at refresh points only
         s0, s1, s2, sumsq = self.s0, self.s1, self.s2, self.sumsq
         at = self.n_rows
         pos = 0
-        jit = fused.enabled()
         while pos < n:
             # pieces end at refresh points, which sit at fixed places in the stream;
             # they are scored in cache-sized blocks, then learned from in one go
             take = min(n - pos, self.refresh_rows - at % self.refresh_rows)
             row_w, keep = self.schedule.row_weights(at, take)
             if jit:
-                b0, b1, b2 = model._fused_span(X, pos, pos + take, out, rows, row_w,
+                b0, b1, b2 = model._fused_span(X, pos, pos + take, out, True, row_w,
                                                self.resp_floor)
             else:
                 A = model._score_span(X, pos, pos + take, out, model._scoring_operator, rows)
