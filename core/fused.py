@@ -8,7 +8,9 @@ refresh of the parameters is a few dozen small numpy and LAPACK calls. The C
 extension ``shoal.core._kernels`` (core/_kernels.c) runs the passes between the BLAS
 calls as a few loops over the block while it sits in the cache, gathers the rows each
 component learns from for one SYRK per component, and derives a refresh's parameters
-in one call. BLAS keeps the GEMMs and numpy keeps ``exp``.
+in one call. The log-joint itself runs in row-tiled kernels for AVX-512 or AVX2 with
+FMA (picked by the CPU; elsewhere a BLAS GEMM); BLAS keeps the M-step SYRKs and numpy
+keeps ``exp``.
 
 The extension is built when shoal is installed (it needs a C compiler; the build is
 optional). Without it, or with ``SHOAL_COMPILED=0`` in the environment,
@@ -20,7 +22,7 @@ from __future__ import annotations
 
 import os
 
-__all__ = ["enabled", "set_enabled", "kernels"]
+__all__ = ["enabled", "set_enabled", "kernels", "tiled", "packed_full_len"]
 
 _STATE: dict = {}
 
@@ -54,6 +56,20 @@ def kernels():
         from . import _kernels as k
         _STATE["kernels"] = k
     return k
+
+
+def tiled() -> bool:
+    """Whether the log-joint runs in the extension's row-tiled kernels (AVX-512 or AVX2
+    with FMA, picked by the CPU) instead of a BLAS GEMM; see ``_kernels.tile_isa``."""
+    return kernels().tile_isa() != "none"
+
+
+def packed_full_len(n_components: int, n_features: int) -> int:
+    """Length of the full type's operator packed for the tiled kernel (``pack_full``):
+    per component and per block of 4 whitened coordinates j0..j0+3, four offsets and
+    four weights for each feature below min(j0 + 4, n_features)."""
+    per = sum(4 * (1 + min(j0 + 4, n_features)) for j0 in range(0, n_features, 4))
+    return n_components * per
 
 
 def warm() -> bool:

@@ -295,10 +295,14 @@ class Mixture:
         A = np.empty((nb, W))
         top, total = np.empty(nb), np.empty(nb)
         R = out.resp_kn
+        tiled = fused.tiled()
         if full:
             WT, const = self._scoring_operator
             const = const[:, 0].copy()
-            Y = np.empty((K * D, nb))
+            if tiled:
+                packed = self._packed_operator
+            else:
+                Y = np.empty((K * D, nb))
             if learn:
                 P = np.zeros((K, W, W))
                 G = np.empty((K, nb, W))
@@ -321,7 +325,9 @@ class Mixture:
             m = b - a
             kern.design(X, a - first, m, center, scale, kind, A)
             Ab = A[:m]
-            if full:
+            if tiled:
+                kern.log_joint(Ab, packed if full else BT, const if full else None, D, R, a)
+            elif full:
                 Yb = Y if m == nb else np.empty((K * D, m))
                 np.matmul(WT, Ab.T, out=Yb)
                 kern.full_log_joint(Yb, const, D, R, a)
@@ -372,6 +378,14 @@ class Mixture:
             build(_c64(self.means), _c64(self.prec_chol**2), _c64(log_const), BT)
             return BT
         return self.family.scoring_operator(self.means, self.prec_chol, np.log(self.weights))
+
+    @cached_property
+    def _packed_operator(self):
+        """The full type's whitening operator packed for the tiled log-joint kernel."""
+        WT = _c64(self._scoring_operator[0])
+        packed = np.empty(fused.packed_full_len(*self.means.shape))
+        fused.kernels().pack_full(WT, packed)
+        return packed
 
     @property
     def _log_scale_sum(self):
@@ -499,6 +513,7 @@ class Mixture:
         state = dict(self.__dict__)
         if _PARAMETERS.intersection(changes):
             state.pop("_scoring_operator", None)
+            state.pop("_packed_operator", None)
         state.update(changes)
         new.__dict__.update(state)
         return new

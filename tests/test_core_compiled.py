@@ -170,3 +170,89 @@ def test_strided_rows_and_weights_are_taken_as_they_are(mixture_data, numpy_then
     np.testing.assert_array_equal(sb.component, sa.component)
     (la, _), (lb, _) = numpy_then_compiled(lambda: m.learn(rows[::-1]))
     np.testing.assert_allclose(lb.s1, la.s1, rtol=1e-10)
+
+
+def _isas():
+    """The tiled log-joint's instruction sets this CPU runs, 'none' (BLAS) first."""
+    kern = fused.kernels()
+    best = kern.tile_isa()
+    order = ["none", "avx2", "avx512"]
+    return order[: order.index(best) + 1] if best in order else ["none"]
+
+
+@pytest.fixture
+def tile_isa():
+    """Set the tiled kernels' instruction set for one test; restore the CPU's best."""
+    kern = fused.kernels()
+    best = kern.tile_isa()
+    yield kern.tile_isa
+    kern.tile_isa(best)
+
+
+@pytest.mark.parametrize("D", [1, 3, 4, 5, 13, 16])
+@pytest.mark.parametrize("m", [1, 7, 33, 100])
+def test_tiled_full_log_joint_equals_whitening_then_squares(D, m, tile_isa):
+    # the reference is the plain definition: y = WT @ [z, 1], L = const - sum(y^2)
+    kern = fused.kernels()
+    rng = np.random.default_rng(D * 1000 + m)
+    K = 3
+    U = np.triu(rng.normal(size=(K, D, D))) + 3 * np.eye(D)
+    means = rng.normal(size=(K, D))
+    WT = np.empty((K * D, D + 1))
+    kern.full_operator(means, U, np.zeros(K), WT)
+    A = np.hstack([rng.normal(size=(m, D)), np.ones((m, 1))])
+    const = rng.normal(size=K)
+    want = const[:, None] - ((WT @ A.T).reshape(K, D, m) ** 2).sum(axis=1)
+    P = np.empty(fused.packed_full_len(K, D))
+    kern.pack_full(WT, P)
+    for isa in _isas()[1:]:
+        tile_isa(isa)
+        L = np.full((K, m + 5), np.nan)
+        kern.log_joint(A, P, const, D, L, 2)
+        np.testing.assert_allclose(L[:, 2:2 + m], want, rtol=1e-12, atol=1e-12, err_msg=isa)
+        assert np.isnan(L[:, :2]).all() and np.isnan(L[:, 2 + m:]).all()   # nothing else written
+
+
+@pytest.mark.parametrize("K", [1, 3, 4, 8, 9])
+@pytest.mark.parametrize("m", [1, 31, 64, 100])
+def test_tiled_linear_log_joint_equals_the_product(K, m, tile_isa):
+    kern = fused.kernels()
+    rng = np.random.default_rng(K * 1000 + m)
+    W = 11
+    A, B = rng.normal(size=(m, W)), rng.normal(size=(K, W))
+    for isa in _isas()[1:]:
+        tile_isa(isa)
+        L = np.full((K, m + 3), np.nan)
+        kern.log_joint(A, B, None, 5, L, 3)
+        np.testing.assert_allclose(L[:, 3:], B @ A.T, rtol=1e-12, atol=1e-12, err_msg=isa)
+        assert np.isnan(L[:, :3]).all()
+
+
+@pytest.mark.parametrize("covariance", ["full", "diag", "spherical"])
+def test_every_tile_isa_learns_what_the_numpy_path_learns(covariance, mixture_data, tile_isa):
+    X, *_ = mixture_data(12_000, 4, 7, seed=73)
+    start = initialise(X[:3000], 4, covariance, seed=0, n_init=1)
+    fused.set_enabled(False)
+    try:
+        ref, sref = start.learn(X[3000:])
+    finally:
+        fused.set_enabled(True)
+    for isa in _isas():
+        tile_isa(isa)
+        got, s = start.learn(X[3000:])
+        np.testing.assert_allclose(got.s2, ref.s2, rtol=1e-9, atol=1e-12, err_msg=isa)
+        np.testing.assert_allclose(got.means, ref.means, rtol=1e-9, atol=1e-12, err_msg=isa)
+        np.testing.assert_allclose(s.log_density, sref.log_density, rtol=1e-11, err_msg=isa)
+        np.testing.assert_array_equal(s.component, sref.component)
+
+
+def test_tile_isa_refuses_what_the_cpu_lacks(tile_isa):
+    with pytest.raises(ValueError, match="not available"):
+        tile_isa("sse9")
+    if tile_isa() != "avx512":
+        with pytest.raises(ValueError, match="not available"):
+            tile_isa("avx512")
+    tile_isa("none")
+    assert not fused.tiled()
+    with pytest.raises(ValueError, match="no tiled kernel"):
+        fused.kernels().log_joint(np.ones((2, 3)), np.ones((1, 3)), None, 1, np.empty((1, 2)), 0)
