@@ -274,39 +274,50 @@ static PyObject *accumulate_rows(PyObject *self, PyObject *args) {
     RETURN_NONE_OR_FAIL;
 }
 
-HOT static void c_design(const double *restrict X, Py_ssize_t D, Py_ssize_t lo, Py_ssize_t n,
-                         const double *restrict center, const double *restrict scale, int kind, double *restrict A,
-                         Py_ssize_t W) {
+/* Design rows (see design()). Standardises by multiplying with 1/scale (a division per
+ * value cost ~15 ns a row at D=16). Returns whether every value of X it read was finite:
+ * x * 0 is NaN exactly when x is infinite or NaN, and NaN survives the sum. */
+HOT static int c_design(const double *restrict X, Py_ssize_t D, Py_ssize_t lo, Py_ssize_t n,
+                        const double *restrict center, const double *restrict inv, int kind,
+                        double *restrict A, Py_ssize_t W) {
+    double chk = 0.0;
     for (Py_ssize_t i = 0; i < n; i++) {
         const double *x = X + (lo + i) * D;
         double *a = A + i * W;
         if (kind == 0) {
-            for (Py_ssize_t d = 0; d < D; d++) a[d] = (x[d] - center[d]) / scale[d];
+            for (Py_ssize_t d = 0; d < D; d++) {
+                a[d] = (x[d] - center[d]) * inv[d];
+                chk += x[d] * 0.0;
+            }
             a[D] = 1.0;
         } else if (kind == 1) {
             for (Py_ssize_t d = 0; d < D; d++) {
-                double z = (x[d] - center[d]) / scale[d];
+                double z = (x[d] - center[d]) * inv[d];
                 a[d] = z * z;
                 a[D + d] = z;
+                chk += x[d] * 0.0;
             }
             a[2 * D] = 1.0;
         } else {
             double sq = 0.0;
             for (Py_ssize_t d = 0; d < D; d++) {
-                double z = (x[d] - center[d]) / scale[d];
+                double z = (x[d] - center[d]) * inv[d];
                 sq += z * z;
                 a[1 + d] = z;
+                chk += x[d] * 0.0;
             }
             a[0] = sq;
             a[D + 1] = 1.0;
         }
     }
+    return chk == 0.0;
 }
 
 static PyObject *design(PyObject *self, PyObject *args) {
     PyObject *oX, *oc, *os, *oA;
     Py_ssize_t lo, n, dX[2], dc[1], ds[1], dA[2];
-    int kind;
+    int kind, finite = 1;
+    double *inv = NULL;
     Bufs s = {.n = 0};
     if (!PyArg_ParseTuple(args, "OnnOOiO", &oX, &lo, &n, &oc, &os, &kind, &oA)) return NULL;
     TAKE(const double *, X, oX, "X", F64, 2, 0, dX);
@@ -318,10 +329,22 @@ static PyObject *design(PyObject *self, PyObject *args) {
     NEED(kind >= 0 && kind <= 2 && dc[0] == D && ds[0] == D && dA[1] == W && n >= 0 &&
              dA[0] >= n && lo >= 0 && lo + n <= dX[0],
          "design: shapes disagree");
+    inv = PyMem_Malloc(sizeof(double) * (size_t)(D > 0 ? D : 1));
+    if (!inv) {
+        PyErr_NoMemory();
+        goto fail;
+    }
+    for (Py_ssize_t d = 0; d < D; d++) inv[d] = 1.0 / sc[d];
     Py_BEGIN_ALLOW_THREADS
-    c_design(X, D, lo, n, c, sc, kind, A, W);
+    finite = c_design(X, D, lo, n, c, inv, kind, A, W);
     Py_END_ALLOW_THREADS
-    RETURN_NONE_OR_FAIL;
+    PyMem_Free(inv);
+    release(&s);
+    return PyBool_FromLong(finite);
+fail:
+    PyMem_Free(inv);
+    release(&s);
+    return NULL;
 }
 
 /* ------------------------------------------------------------ tiled log-joint */
@@ -779,7 +802,8 @@ static PyMethodDef methods[] = {
      "rows whose responsibility is positive and at least floor"},
     {"design", design, METH_VARARGS,
      "design(X, lo, n, center, scale, kind, A): standardised design rows "
-     "(kind 0 full [z,1], 1 diag [z*z,z,1], 2 spherical [|z|^2,z,1])"},
+     "(kind 0 full [z,1], 1 diag [z*z,z,1], 2 spherical [|z|^2,z,1]); returns whether "
+     "every value of X read was finite"},
     {"full_derive", full_derive, METH_VARARGS,
      "full_derive(s0, s1, s2, n_eff, reg_covar, prior_weight, tiny, weights, means, cov, "
      "prec_chol, log_det, bad)"},

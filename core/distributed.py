@@ -93,7 +93,7 @@ def partition_statistics(mixture: Mixture, X, weights) -> tuple[PartitionStatist
     scores : Scores
         The rows' scores under the snapshot.
     """
-    X = mixture._rows(X)
+    X = mixture._rows(X, check=not fused.enabled())
     weights = np.asarray(weights, dtype=np.float64)
     if weights.shape != (X.shape[0],):
         raise ModelError(f"weights should have shape ({X.shape[0]},), got {weights.shape}")

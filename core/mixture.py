@@ -43,6 +43,7 @@ SPAN_ROWS = 8192   # rows whose design matrix is kept for the moments (score-onl
 _TINY = 10.0 * np.finfo(np.float64).eps
 _DESIGN_KIND = {"full": 0, "diag": 1, "spherical": 2}   # core/_kernels.c design()
 _PARAMETERS = frozenset({"weights", "means", "covariances", "prec_chol", "log_det"})
+_NOT_FINITE = "X contains NaN or infinite values; drop or mark those rows first"
 
 
 @dataclass(frozen=True)
@@ -212,7 +213,12 @@ class Mixture:
         )
 
     # ---------------------------------------------------------- validation
-    def _rows(self, X) -> np.ndarray:
+    def _rows(self, X, check: bool = True) -> np.ndarray:
+        """``X`` as float64 rows of the right width; with ``check``, also finite.
+
+        The compiled path passes ``check=False``: its design kernel checks every value it
+        reads and :meth:`_fused_span` raises the same error.
+        """
         X = np.asarray(X, dtype=np.float64)
         if X.ndim != 2 or X.shape[1] != self.n_features:
             raise ModelError(
@@ -220,8 +226,8 @@ class Mixture:
             )
         # a finite sum means finite rows (one pass, no temporary); if the sum is not
         # finite, look row by row (a sum of huge finite values can overflow)
-        if not np.isfinite(np.sum(X)) and not np.all(np.isfinite(X)):
-            raise ModelError("X contains NaN or infinite values; drop or mark those rows first")
+        if check and not np.isfinite(np.sum(X)) and not np.all(np.isfinite(X)):
+            raise ModelError(_NOT_FINITE)
         return X
 
     def standardise(self, X) -> np.ndarray:
@@ -323,7 +329,8 @@ class Mixture:
         for a in range(lo, hi, nb):
             b = min(a + nb, hi)
             m = b - a
-            kern.design(X, a - first, m, center, scale, kind, A)
+            if not kern.design(X, a - first, m, center, scale, kind, A):
+                raise ModelError(_NOT_FINITE)
             Ab = A[:m]
             if tiled:
                 kern.log_joint(Ab, packed if full else BT, const if full else None, D, R, a)
@@ -402,7 +409,7 @@ class Mixture:
         X : array-like of shape (n_samples, n_features)
             Finite rows in the data's own units.
         """
-        X = self._rows(X)
+        X = self._rows(X, check=not fused.enabled())
         out = _ScoreBuffer(X.shape[0], self.n_components)
         if fused.enabled():
             self._fused_span(X, 0, X.shape[0], out)
@@ -555,7 +562,7 @@ class Mixture:
         scores : Scores
             The scores of every row, as labelled during learning.
         """
-        X = self._rows(X)
+        X = self._rows(X, check=not fused.enabled())
         n = X.shape[0]
         out = _ScoreBuffer(n, self.n_components)
         jit = fused.enabled()

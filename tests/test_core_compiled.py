@@ -256,3 +256,32 @@ def test_tile_isa_refuses_what_the_cpu_lacks(tile_isa):
     assert not fused.tiled()
     with pytest.raises(ValueError, match="no tiled kernel"):
         fused.kernels().log_joint(np.ones((2, 3)), np.ones((1, 3)), None, 1, np.empty((1, 2)), 0)
+
+
+@pytest.mark.parametrize("bad", [np.nan, np.inf, -np.inf])
+@pytest.mark.parametrize("covariance", ["full", "diag", "spherical"])
+def test_a_non_finite_value_is_refused_on_both_paths(bad, covariance, mixture_data,
+                                                     numpy_then_compiled):
+    # the compiled path checks inside its design kernel instead of a sum over X first
+    from shoal.core import ModelError
+    X, *_ = mixture_data(9_000, 3, 4, seed=74)
+    m = initialise(X[:2000], 3, covariance, seed=0, n_init=1)
+    Y = X.copy()
+    Y[8_500, 2] = bad             # in the last block, after several have been learned
+
+    def outcome(call):
+        try:
+            call()
+        except ModelError as exc:
+            return str(exc)
+        return "accepted"
+    for call in (lambda: m.learn(Y), lambda: m.score(Y)):
+        a, b = numpy_then_compiled(lambda: outcome(call))
+        assert a == b and "NaN or infinite" in b
+    # huge but finite values (their sum overflows) are rows like any other
+    Z = X[:64].copy()
+    Z[0, 0] = 1e308
+    Z[1, 0] = 1e308
+    with np.errstate(over="ignore", invalid="ignore"):   # their densities do overflow
+        a, b = numpy_then_compiled(lambda: outcome(lambda: m.score(Z)))
+    assert a == b == "accepted"
