@@ -3,7 +3,8 @@
 The coordinator (this process) owns the model; workers own the rows.
 
 1. Survey: every file is hashed, read and validated by a worker, which returns its
-   facts (hash, size, rows, invalid rows, or why it is refused) and nothing row-sized.
+   facts (content digest in the state store's algorithm, size, rows, invalid rows, or why
+   it is refused) and nothing row-sized.
    Files already in the ledger under the same name are skipped; a repeated content is
    a duplicate (labelled, not learned); a refused file is quarantined (sidecar only,
    the file stays where it is).
@@ -37,7 +38,6 @@ Dask's ``distributed`` is imported only here (``pip install 'shoal[cluster]'``).
 from __future__ import annotations
 
 import contextlib
-import hashlib
 import logging
 import os
 import shutil
@@ -53,6 +53,7 @@ import numpy as np
 
 from shoal.config import Settings
 from shoal.core.distributed import apply_round, partition_statistics, round_weights
+from shoal.daemon.digest import digest_file
 from shoal.daemon.errors import (
     InputRefused,
     InputRejected,
@@ -64,7 +65,13 @@ from shoal.daemon.errors import (
 from shoal.daemon.gate import input_kind
 from shoal.daemon.layout import Layout, StateLock, prepare_folders, remove_stale_temps
 from shoal.daemon.logs import log_event
-from shoal.daemon.pipeline import _UNUSUAL_MEMORY_ROWS, Pipeline, _history, open_input
+from shoal.daemon.pipeline import (
+    _UNUSUAL_MEMORY_ROWS,
+    Pipeline,
+    _history,
+    _labels_metadata,
+    open_input,
+)
 from shoal.daemon.progress import progress
 from shoal.daemon.quarantine import quarantine
 from shoal.daemon.readers import Frame, read_input
@@ -104,7 +111,8 @@ class FileFacts:
     name: str
     size: int = 0
     mtime_ns: int = 0
-    sha256: str | None = None
+    digest: str | None = None           # of the content, in ``digest_algorithm``
+    digest_algorithm: str | None = None
     rows: int = 0
     rows_invalid: int = 0
     reason: str | None = None       # set when the file is refused (quarantined)
@@ -202,10 +210,12 @@ def list_sources(sources) -> list[Path]:
 
 
 # -- worker tasks (module-level functions: Dask sends them by reference) ------------------
-def survey_file(index: int, path: str, settings: Settings) -> FileFacts:
-    """Hash, read and validate one input (on a worker)."""
+def survey_file(index: int, path: str, settings: Settings,
+                algorithm: str) -> FileFacts:
+    """Hash (with ``algorithm``, the state store's), read and validate one input (on a
+    worker)."""
     p = Path(path)
-    facts = FileFacts(index=index, path=str(p), name=p.name)
+    facts = FileFacts(index=index, path=str(p), name=p.name, digest_algorithm=algorithm)
     try:
         with open_input(p) as f:
             st = os.fstat(f.fileno())
@@ -215,8 +225,7 @@ def survey_file(index: int, path: str, settings: Settings) -> FileFacts:
             if st.st_size > settings.limits.max_file_bytes:
                 raise InputRejected("too_large", f"{st.st_size} bytes, more than "
                                     f"limits.max_file_bytes={settings.limits.max_file_bytes}")
-            facts = replace(facts, sha256=hashlib.file_digest(f, "sha256").hexdigest())
-            f.seek(0)
+            facts = replace(facts, digest=digest_file(f, algorithm))
             frame = read_input(f, input_kind(p.name), settings)
     except InputRejected as exc:
         return replace(facts, reason=exc.reason, detail=exc.detail)
@@ -304,9 +313,9 @@ def _write_labels(facts: FileFacts, settings: Settings, frame: Frame, segment, c
     fmt = settings.output.format
     table = labels_table(frame.passthrough, frame.valid, segment, confidence, log_density,
                          unusual_below, version)
-    target = Path(outbox) / labels_name(facts.name, facts.sha256, fmt)
-    write_labels(table, target, fmt, {"input_sha256": facts.sha256, "input_name": facts.name,
-                                      "model_version": version})
+    target = Path(outbox) / labels_name(facts.name, facts.digest, fmt)
+    write_labels(table, target, fmt, _labels_metadata(facts.digest, facts.digest_algorithm,
+                                                      facts.name, version))
     return target.name
 
 
@@ -508,7 +517,8 @@ class _Run:
 
     # -- stages ------------------------------------------------------------------
     def _survey(self, paths: list[Path]) -> list[FileFacts]:
-        futures = [self.client.submit(survey_file, i, str(p), self.settings,
+        algorithm = self.store.digest_algorithm
+        futures = [self.client.submit(survey_file, i, str(p), self.settings, algorithm,
                                       key=f"shoal-survey-{self.tag}-{i}")
                    for i, p in enumerate(paths)]
         out = self._gather(futures)
@@ -522,14 +532,14 @@ class _Run:
             if f.reason is not None:
                 refused.append(f)
                 continue
-            done = self.store.find_done(f.sha256)
+            done = self.store.find_done(f.digest)
             if any(e.name == f.name for e in done):
                 skipped.append(f)
-            elif done or f.sha256 in seen:
+            elif done or f.digest in seen:
                 duplicates.append(f)
             else:
                 learned.append(f)
-            seen.add(f.sha256)
+            seen.add(f.digest)
         return learned, duplicates, skipped, refused
 
     def _warm_up(self, learned: list[FileFacts], stage: Path | None):
@@ -602,7 +612,7 @@ class _Run:
                 if stage is None or p.pass_no != last_pass or p.hi != f.valid_rows:
                     continue
                 if p.lo == 0:   # the piece was the whole file and wrote its labels
-                    written[p.file] = labels_name(f.name, f.sha256,
+                    written[p.file] = labels_name(f.name, f.digest,
                                                   self.settings.output.format)
                 else:
                     written[p.file] = self._assemble(f, versions[p.file],
@@ -675,22 +685,24 @@ class _Run:
         outcome.update({f.index: "duplicate" for f in duplicates})
         for f in refused:
             quarantine(Path(f.path), self.layout.quarantine, f.reason, f.detail, move=False,
-                       now=now, facts={"sha256": f.sha256, "size": f.size})
+                       now=now, facts={"digest": f.digest, "size": f.size,
+                                       "digest_algorithm": f.digest_algorithm if f.digest
+                                       else None})
             log_event("input_quarantined", logging.WARNING, file=f.name, reason=f.reason,
                       detail=f.detail)
         fmt = self.settings.output.format
         entries = []
         for f in facts:
             if f.reason is not None:
-                entries.append((LedgerEntry(sha256=f.sha256, name=f.name, size=f.size,
+                entries.append((LedgerEntry(digest=f.digest, name=f.name, size=f.size,
                                             outcome="quarantined",
                                             reason=f"{f.reason}: {f.detail}",
                                             seen_at=seen_at, finished_at=now), False))
             elif f.index in outcome:
-                entries.append((LedgerEntry(sha256=f.sha256, name=f.name, size=f.size,
+                entries.append((LedgerEntry(digest=f.digest, name=f.name, size=f.size,
                                             outcome=outcome[f.index], rows=f.rows,
                                             rows_invalid=f.rows_invalid,
-                                            labels=labels_name(f.name, f.sha256, fmt)
+                                            labels=labels_name(f.name, f.digest, fmt)
                                             if labelled else None,
                                             seen_at=seen_at, finished_at=now),
                                 outcome[f.index] == "committed"))

@@ -27,7 +27,6 @@ rename, and only the last input's checkpoint stored. The inputs are moved to
 from __future__ import annotations
 
 import contextlib
-import hashlib
 import logging
 import os
 import stat as stat_mod
@@ -50,6 +49,7 @@ from shoal.core import (
     select_n_components,
 )
 from shoal.core import fused
+from shoal.daemon.digest import digest_file
 from shoal.daemon.errors import (
     InputRefused,
     InputRejected,
@@ -270,9 +270,9 @@ class Pipeline:
         for step in after:
             step()
 
-    def _pending_done(self, sha: str) -> list[LedgerEntry]:
-        """Inputs of the open group with this content (committed or duplicate)."""
-        return [p.commit.entry for p in self._group or () if p.commit.entry.sha256 == sha]
+    def _pending_done(self, digest: str) -> list[LedgerEntry]:
+        """Inputs of the open group with this content digest (committed or duplicate)."""
+        return [p.commit.entry for p in self._group or () if p.commit.entry.digest == digest]
 
     def _process(self, path: Path, name: str, in_inbox: bool, seen_at: float) -> Result:
         kind = input_kind(name)
@@ -288,42 +288,43 @@ class Pipeline:
                 raise InputRejected("unsupported_type", "expected a name ending in .csv, "
                                     ".csv.gz, .parquet or .pq", size=size)
             self._check_stop()
-            entry = LedgerEntry(sha256="", name=name, size=size, outcome="committed",
+            entry = LedgerEntry(digest="", name=name, size=size, outcome="committed",
                                 seen_at=seen_at)
             # The content hash is made in a thread while the input is learned as if new;
             # the ledger is asked once the hash is known, before the labels file is
             # named: an input it already has is dropped there (nothing of it was kept)
             # and taken as below.
             threaded = size >= _THREADED_BYTES
-            with file_digest(f, threaded) as digest:
+            algorithm = self.store.digest_algorithm
+            with file_digest(f, algorithm, threaded) as hashing:
                 def claim() -> str:
-                    sha = digest.result()
-                    done = self.store.find_done(sha) + self._pending_done(sha)
+                    digest = hashing.result()
+                    done = self.store.find_done(digest) + self._pending_done(digest)
                     if done:
-                        raise _Seen(sha, done)
-                    return sha
+                        raise _Seen(digest, done)
+                    return digest
 
                 try:
                     try:
                         result = self._learn(self._frames(f, kind, threaded), entry, claim,
-                                             digest.ready)
+                                             hashing.ready)
                     except _Seen as seen:
                         if any(e.name == name for e in seen.done):
                             if self._group:
                                 self._flush()  # moved only once its ledger row is committed
-                            self._finish(path, seen.sha, in_inbox)
+                            self._finish(path, in_inbox)
                             return Result("already_done", name,
                                           model_version=self.state.version)
                         f.seek(0)
                         result = self._duplicate(self._frames(f, kind, threaded),
-                                                 _with(entry, sha256=seen.sha))
+                                                 _with(entry, digest=seen.digest))
                 except InputRejected as exc:
                     with contextlib.suppress(OSError, RuntimeError):
-                        exc.facts.setdefault("sha256", digest.result())
+                        exc.facts.setdefault("digest", hashing.result())
+                        exc.facts.setdefault("digest_algorithm", algorithm)
                     exc.facts.setdefault("size", size)
                     raise
-                sha = digest.result()
-        finish = lambda: self._finish(path, sha, in_inbox)  # noqa: E731
+        finish = lambda: self._finish(path, in_inbox)  # noqa: E731
         if self._group:
             self._group[-1].after.append(finish)  # after the group's commit
         else:
@@ -344,33 +345,33 @@ class Pipeline:
                claim: Callable[[], str] | None = None,
                ready: Callable[[], bool] | None = None) -> tuple[Path, str]:
         """Write the labels ``tables(frames)`` as they are made; returns the file and the
-        input's hash. ``claim()`` gives the hash (when ``entry`` has none yet) and
+        input's content digest. ``claim()`` gives the digest (when ``entry`` has none yet) and
         ``version()`` the labels' model version (None without scores): as the first
         table is written if ``ready()`` says the hash is known, else after the first
         table for which it is (the hash is made beside the model, which does not wait
         for it), at the latest once the last table is written."""
         fmt = self.settings.output.format
-        sha = [entry.sha256]
+        digest = [entry.digest]
+        algorithm = self.store.digest_algorithm
 
         def metadata() -> dict:
             if claim is not None:
-                sha[0] = claim()
-            return {"input_sha256": sha[0], "input_name": entry.name,
-                    "model_version": version()}
+                digest[0] = claim()
+            return _labels_metadata(digest[0], algorithm, entry.name, version())
 
         def checked(frames):
             for table in tables(frames):
                 self._check_stop()
                 yield table
-        # named after a placeholder hash until the hash is known
-        target = self.layout.outbox / labels_name(entry.name, entry.sha256 or "0" * 16, fmt)
+        # named after a placeholder digest until the digest is known
+        target = self.layout.outbox / labels_name(entry.name, entry.digest or "0" * 16, fmt)
         with frames:
             path = write_labels_stream(
                 checked(frames), target, fmt, metadata,
                 sync_folder=self._group is None,  # a group syncs it once
-                final=lambda: self.layout.outbox / labels_name(entry.name, sha[0], fmt),
+                final=lambda: self.layout.outbox / labels_name(entry.name, digest[0], fmt),
                 threaded=frames.threaded, ready=ready)
-        return path, sha[0]
+        return path, digest[0]
 
     def _duplicate(self, frames: prefetch, entry: LedgerEntry) -> Result:
         """Same content under another name: labels written, the model not updated."""
@@ -407,8 +408,8 @@ class Pipeline:
             if rebaseline is not None:
                 watch.rebaseline(st.mixture, rebaseline[1])
         run = _Run(self, extra, version, watch, life)
-        labels, sha = self._write(frames, run.tables, entry,
-                                  lambda: version if run.scored else None, claim, ready)
+        labels, digest = self._write(frames, run.tables, entry,
+                                     lambda: version if run.scored else None, claim, ready)
         mixture, extra = run.mixture, run.extra
         warmup_keep, clear_warmup = run.warmup_keep, run.clear_warmup
         if mixture is not None:
@@ -425,7 +426,7 @@ class Pipeline:
                                watch.segment_drift() if watch is not None else None)
             if life is not None:
                 history = life.history(history)
-        entry = _with(entry, sha256=sha, labels=labels.name, rows=run.rows,
+        entry = _with(entry, digest=digest, labels=labels.name, rows=run.rows,
                       rows_invalid=run.invalid)
         self._check_stop()
         alerts = (watch.alerts if watch is not None else []) + \
@@ -605,7 +606,7 @@ class Pipeline:
         return extra
 
     # -- endings -------------------------------------------------------------------
-    def _finish(self, path: Path, sha: str, in_inbox: bool) -> None:
+    def _finish(self, path: Path, in_inbox: bool) -> None:
         if not in_inbox or self.settings.output.keep_inputs:
             return
         move_out(path, self.layout.processed)
@@ -619,7 +620,7 @@ class Pipeline:
         sidecar = quarantine(path, self.layout.quarantine, exc.reason, exc.detail,
                              move=in_inbox, now=now, facts=facts)
         self.store.record_quarantine(LedgerEntry(
-            sha256=facts.get("sha256"), name=name, size=int(facts.get("size", 0) or 0),
+            digest=facts.get("digest"), name=name, size=int(facts.get("size", 0) or 0),
             outcome="quarantined", reason=f"{exc.reason}: {exc.detail}", seen_at=seen_at,
             finished_at=now))
         log_event("input_quarantined", logging.WARNING, file=name, reason=exc.reason,
@@ -629,7 +630,8 @@ class Pipeline:
 
     # -- label only ----------------------------------------------------------------
     def label_only(self, path: Path, out: Path) -> Result:
-        """Label ``path`` with the current model into ``out``; no learning, no commit."""
+        """Label ``path`` with the current model into ``out``; no learning, no commit. The
+        labels file's metadata gives the input's digest in the store's algorithm."""
         st = self.state
         if st.mixture is None:
             raise StateError("no model yet: the warm-up has not finished "
@@ -641,16 +643,15 @@ class Pipeline:
                                 ".parquet or .pq")
         fmt = "csv" if out.name.lower().endswith(".csv") else "parquet"
         count = _Count()
+        algorithm = self.store.digest_algorithm
         with open_input(path) as f:
-            sha = hashlib.file_digest(f, "sha256").hexdigest()
-            f.seek(0)
+            digest = digest_file(f, algorithm)
             with self._frames(f, kind, os.fstat(f.fileno()).st_size >= _THREADED_BYTES) \
                     as frames:
                 tables = _scored_tables(count.counted(frames, st.mixture), st.mixture,
                                         st.extra.get("unusual_below", -np.inf), st.version)
-                write_labels_stream(tables, out, fmt, lambda: {
-                    "input_sha256": sha, "input_name": path.name,
-                    "model_version": st.version}, threaded=frames.threaded)
+                write_labels_stream(tables, out, fmt, lambda: _labels_metadata(
+                    digest, algorithm, path.name, st.version), threaded=frames.threaded)
         return Result("labelled", path.name, count.rows, count.invalid, out,
                       model_version=st.version)
 
@@ -660,6 +661,12 @@ def _log_result(result: Result, duration: float) -> None:
               rows_invalid=result.rows_invalid or None,
               labels=result.labels.name if result.labels else None,
               model_version=result.model_version, duration=round(duration, 4))
+
+
+def _labels_metadata(digest: str, algorithm: str, name: str, version: int | None) -> dict:
+    """The ``shoal.*`` keys of a labels file's metadata."""
+    return {"input_digest": digest, "digest_algorithm": algorithm, "input_name": name,
+            "model_version": version}
 
 
 def _with(entry: LedgerEntry, **changes) -> LedgerEntry:
@@ -693,9 +700,9 @@ def _history(mixture: Mixture, extra: dict, drift: dict | None = None) -> list[H
 class _Seen(Exception):
     """The ledger (or the open group) already has an input of this content."""
 
-    def __init__(self, sha: str, done: list[LedgerEntry]):
-        super().__init__(sha)
-        self.sha, self.done = sha, done
+    def __init__(self, digest: str, done: list[LedgerEntry]):
+        super().__init__(digest)
+        self.digest, self.done = digest, done
 
 
 class _Count:

@@ -12,7 +12,6 @@ from __future__ import annotations
 import contextlib
 import csv
 import gzip
-import hashlib
 import io
 import os
 import queue
@@ -28,6 +27,7 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
 from shoal.config import Settings
+from shoal.daemon.digest import BLOCK, content_hasher
 from shoal.daemon.errors import InputRejected, Interrupted
 
 __all__ = ["Frame", "read_input", "iter_frames", "prefetch", "file_digest", "BATCH_ROWS",
@@ -205,15 +205,17 @@ class prefetch:
 
 
 class file_digest:
-    """SHA-256 of an open file, computed in a thread (``os.pread``: the file's offset is
-    left to its reader), so that hashing overlaps with reading and learning. Use it as a
-    context manager; :meth:`result` waits for the hex digest. ``threaded=False`` hashes
-    in :meth:`result` instead (small inputs)."""
+    """The content digest of an open file (:func:`shoal.daemon.digest.content_hasher` with
+    ``algorithm``, the state store's), computed in a thread (``os.pread``: the file's
+    offset is left to its reader), so that hashing overlaps with reading and learning.
+    Use it as a context manager; :meth:`result` waits for the hex digest.
+    ``threaded=False`` hashes in :meth:`result` instead (small inputs)."""
 
-    BLOCK = 1 << 20
+    BLOCK = BLOCK
 
-    def __init__(self, f: BinaryIO, threaded: bool = True):
+    def __init__(self, f: BinaryIO, algorithm: str, threaded: bool = True):
         self._fd = f.fileno()
+        self._hasher = content_hasher(algorithm)   # an unknown algorithm fails here
         self._stop = threading.Event()
         self._digest: str | None = None
         self._error: BaseException | None = None
@@ -246,7 +248,7 @@ class file_digest:
         return self._digest
 
     def _run(self) -> None:
-        h = hashlib.sha256()
+        h = self._hasher
         offset = 0
         try:
             while not self._stop.is_set():

@@ -1,14 +1,19 @@
 """The state store: one SQLite database (WAL, ``synchronous=FULL``).
 
-It holds the ledger (one row per input), model checkpoints (numpy arrays as
+It holds the ledger (one row per input, keyed by the input's content digest in the
+algorithm the store records: :mod:`shoal.daemon.digest`), model checkpoints (numpy arrays as
 ``.npy`` bytes, read back with ``allow_pickle=False``), the warm-up buffer,
 the segment history and the alert outbox. :meth:`StateStore.commit_input`
 writes everything one input changes in ONE transaction, and
 :meth:`StateStore.commit_inputs` several inputs in order in one transaction (all
 of them or none): the exactly-once rule of the design rests on it.
+
+A store of an earlier schema version is migrated when it is opened, in the transaction
+that opens it (:data:`MIGRATIONS`): all of a migration or none of it.
 """
 from __future__ import annotations
 
+import contextlib
 import io
 import json
 import sqlite3
@@ -19,12 +24,21 @@ from typing import Any, Iterable, Mapping
 
 import numpy as np
 
+from shoal.daemon.digest import (
+    DIGEST_ALGORITHMS,
+    NEW_STORE_ALGORITHM,
+    UNRECORDED_ALGORITHM,
+    check_algorithm,
+)
 from shoal.daemon.errors import StateError
+from shoal.daemon.logs import log_event
 
 __all__ = ["StateStore", "LedgerEntry", "Checkpoint", "HistoryRow", "InputCommit", "npy_bytes",
-           "npy_array", "SCHEMA_VERSION"]
+           "npy_array", "SCHEMA_VERSION", "MIGRATIONS"]
 
-SCHEMA_VERSION = 1
+# 2: the ledger's content column is `digest` (was `sha256`), in the algorithm the meta
+#    key `digest_algorithm` records (a version-1 store's is SHA-256).
+SCHEMA_VERSION = 2
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (
@@ -33,7 +47,7 @@ CREATE TABLE IF NOT EXISTS meta (
 );
 CREATE TABLE IF NOT EXISTS ledger (
     id            INTEGER PRIMARY KEY,
-    sha256        TEXT,
+    digest        TEXT,
     name          TEXT NOT NULL,
     size          INTEGER NOT NULL,
     rows          INTEGER,
@@ -45,7 +59,7 @@ CREATE TABLE IF NOT EXISTS ledger (
     seen_at       REAL NOT NULL,
     finished_at   REAL NOT NULL
 );
-CREATE INDEX IF NOT EXISTS ledger_sha256 ON ledger (sha256);
+CREATE INDEX IF NOT EXISTS ledger_digest ON ledger (digest);
 CREATE TABLE IF NOT EXISTS checkpoints (
     version INTEGER PRIMARY KEY,
     created REAL NOT NULL,
@@ -101,6 +115,20 @@ CREATE TABLE IF NOT EXISTS rebaselines (
 """
 
 
+def _migrate_1_to_2(db: sqlite3.Connection) -> None:
+    """Version 1 -> 2: the ledger's ``sha256`` column becomes ``digest``, and the store
+    records that its digests are SHA-256 (what version 1 made) and stay so: an input
+    committed before the upgrade is still found done after it."""
+    db.execute("ALTER TABLE ledger RENAME COLUMN sha256 TO digest")
+    db.execute("DROP INDEX IF EXISTS ledger_sha256")
+    db.execute("CREATE INDEX ledger_digest ON ledger (digest)")
+    db.execute("INSERT INTO meta (key, value) VALUES ('digest_algorithm', 'sha256')")
+
+
+# schema version -> the function that brings a store of that version to the next one
+MIGRATIONS = {1: _migrate_1_to_2}
+
+
 # .npy headers by (dtype, shape): a checkpoint stores the same dozen arrays every time.
 _NPY_HEADERS: dict[tuple[str, tuple], bytes] = {}
 
@@ -135,7 +163,7 @@ def npy_array(blob: bytes) -> np.ndarray:
 
 @dataclass(frozen=True)
 class LedgerEntry:
-    sha256: str | None
+    digest: str | None   # of the input's content, in the store's digest_algorithm
     name: str
     size: int
     outcome: str
@@ -202,18 +230,62 @@ class StateStore:
             self.db.execute("PRAGMA synchronous=FULL")
             self.db.execute("PRAGMA foreign_keys=ON")
             with self._transaction():
+                found = self._schema_version()
+                migrated = self._migrate(found) if found is not None else None
                 for statement in _SCHEMA.split(";"):
                     if statement.strip():
                         self.db.execute(statement)
-                found = self._meta("schema_version")
-                if found is None:
+                if found is None:   # a new store
                     self._set_meta("schema_version", str(SCHEMA_VERSION))
                     self._set_meta("model_version", "0")
-                elif int(found) != SCHEMA_VERSION:
-                    raise StateError(f"state store {self.path} has schema version {found}; "
-                                     f"this shoal reads version {SCHEMA_VERSION}")
+                    self._set_meta("digest_algorithm", NEW_STORE_ALGORITHM)
+                algorithm = self._meta("digest_algorithm") or UNRECORDED_ALGORITHM
+                if algorithm not in DIGEST_ALGORITHMS:
+                    raise StateError(
+                        f"state store {self.path} records its inputs' content digests as "
+                        f"{algorithm!r}, which this shoal does not compute (it computes "
+                        f"{', '.join(DIGEST_ALGORITHMS)}); open it with the shoal that made "
+                        "it, or start a new state folder")
         except sqlite3.DatabaseError as exc:
+            self._close_after_failure()
             raise StateError(f"state store {self.path} cannot be used: {exc}") from exc
+        except StateError:
+            self._close_after_failure()
+            raise
+        if migrated:
+            log_event("state_store_migrated", store=str(self.path), from_version=found,
+                      to_version=SCHEMA_VERSION, digest_algorithm=algorithm)
+
+    def _close_after_failure(self) -> None:
+        db = getattr(self, "db", None)
+        if db is not None:
+            with contextlib.suppress(sqlite3.Error):
+                db.close()
+
+    def _schema_version(self) -> int | None:
+        """The stored schema version; None for a new (empty) store."""
+        if self.db.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' AND "
+                           "name = 'meta'").fetchone() is None:
+            return None
+        found = self._meta("schema_version")
+        return None if found is None else int(found)
+
+    def _migrate(self, found: int) -> bool:
+        """Bring a store of schema version ``found`` to :data:`SCHEMA_VERSION` inside the
+        opening transaction (a failure leaves the store as it was); True if it changed."""
+        if found > SCHEMA_VERSION:
+            raise StateError(f"state store {self.path} has schema version {found}; "
+                             f"this shoal reads versions up to {SCHEMA_VERSION}")
+        if found < min(MIGRATIONS):
+            raise StateError(f"state store {self.path} has schema version {found}, which "
+                             f"this shoal cannot migrate (it migrates versions "
+                             f"{min(MIGRATIONS)} to {SCHEMA_VERSION - 1})")
+        for version in range(found, SCHEMA_VERSION):
+            MIGRATIONS[version](self.db)
+        if found == SCHEMA_VERSION:
+            return False
+        self._set_meta("schema_version", str(SCHEMA_VERSION))
+        return True
 
     # -- plumbing -------------------------------------------------------------
     def _transaction(self):
@@ -253,11 +325,17 @@ class StateStore:
     def model_version(self) -> int:
         return int(self._meta("model_version") or 0)
 
-    def find_done(self, sha256: str) -> list[LedgerEntry]:
-        """Committed or duplicate inputs with this content, oldest first."""
+    @property
+    def digest_algorithm(self) -> str:
+        """The algorithm of the ledger's content digests (``blake3`` for a store made by
+        this version, ``sha256`` for one made before the record existed)."""
+        return check_algorithm(self._meta("digest_algorithm") or UNRECORDED_ALGORITHM)
+
+    def find_done(self, digest: str) -> list[LedgerEntry]:
+        """Committed or duplicate inputs with this content digest, oldest first."""
         rows = self.db.execute(
-            "SELECT * FROM ledger WHERE sha256 = ? AND outcome IN ('committed', 'duplicate') "
-            "ORDER BY id", (sha256,)).fetchall()
+            "SELECT * FROM ledger WHERE digest = ? AND outcome IN ('committed', 'duplicate') "
+            "ORDER BY id", (digest,)).fetchall()
         return [self._entry(r) for r in rows]
 
     def ledger(self, outcome: str | None = None) -> list[LedgerEntry]:
@@ -269,9 +347,9 @@ class StateStore:
         return [self._entry(r) for r in self.db.execute(sql + " ORDER BY id", args)]
 
     def _entry(self, row) -> LedgerEntry:
-        (id_, sha, name, size, rows, bad, outcome, reason, labels, version, seen,
+        (id_, digest, name, size, rows, bad, outcome, reason, labels, version, seen,
          finished) = row
-        return LedgerEntry(sha256=sha, name=name, size=size, rows=rows, rows_invalid=bad,
+        return LedgerEntry(digest=digest, name=name, size=size, rows=rows, rows_invalid=bad,
                            outcome=outcome, reason=reason, labels=labels,
                            model_version=version, seen_at=seen, finished_at=finished, id=id_)
 
@@ -520,9 +598,9 @@ class StateStore:
 
     def _insert_entry(self, e: LedgerEntry, model_version: int | None = None) -> int:
         cur = self.db.execute(
-            "INSERT INTO ledger (sha256, name, size, rows, rows_invalid, outcome, reason, "
+            "INSERT INTO ledger (digest, name, size, rows, rows_invalid, outcome, reason, "
             "labels, model_version, seen_at, finished_at) VALUES (?,?,?,?,?,?,?,?,?,?,?)",
-            (e.sha256, e.name, e.size, e.rows, e.rows_invalid, e.outcome, e.reason, e.labels,
+            (e.digest, e.name, e.size, e.rows, e.rows_invalid, e.outcome, e.reason, e.labels,
              model_version if model_version is not None else e.model_version,
              e.seen_at, e.finished_at or self.clock()))
         return int(cur.lastrowid)

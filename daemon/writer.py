@@ -41,9 +41,10 @@ def safe_stem(name: str, limit: int = 80) -> str:
     return base[:limit] or "input"
 
 
-def labels_name(input_name: str, sha256: str, fmt: str) -> str:
+def labels_name(input_name: str, digest: str, fmt: str) -> str:
+    """``<safe stem>.<first 16 hex digits of the content digest>.labels.<ext>``."""
     ext = "parquet" if fmt == "parquet" else "csv"
-    return f"{safe_stem(input_name)}.{sha256[:16]}.labels.{ext}"
+    return f"{safe_stem(input_name)}.{digest[:16]}.labels.{ext}"
 
 
 def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray | None,

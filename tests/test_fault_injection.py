@@ -132,7 +132,7 @@ def test_a_failed_write_commits_nothing_and_is_retried(tmp_path, monkeypatch, re
         # While failing: the state is readable and holds only the first input.
         if point != "sqlite_commit_lost_reply":  # that COMMIT did reach the disk
             assert svc.reader.model_version == 1
-            assert [e.name for e in svc.reader.find_done(_sha(svc, NAMES[1]))] == []
+            assert [e.name for e in svc.reader.find_done(_digest(svc, NAMES[1]))] == []
             assert (svc.layout.inbox / NAMES[1]).exists()
         assert not [p for p in svc.layout.outbox.iterdir() if p.name.endswith(".tmp")]
         assert len(svc.results) == 1
@@ -154,6 +154,7 @@ def test_a_failed_write_commits_nothing_and_is_retried(tmp_path, monkeypatch, re
     assert labels == ref_labels
 
 
-def _sha(svc, name: str) -> str:
-    import hashlib
-    return hashlib.sha256((svc.layout.inbox / name).read_bytes()).hexdigest()
+def _digest(svc, name: str) -> str:
+    """The input's ledger digest: a new store's is BLAKE3 (computed by the blake3 package)."""
+    import blake3
+    return blake3.blake3((svc.layout.inbox / name).read_bytes()).hexdigest()

@@ -173,13 +173,13 @@ def test_status_and_metrics_read_alerts_written_through_the_store(tmp_path):
     resolved = [("a2.resolved", {"id": "a2", "status": "resolved", "severity": "warning",
                                  "segment": 1, "statistic": "weight_change", "value": 0.01,
                                  "bound": 0.05})]
-    store.commit_input(LedgerEntry(sha256="0" * 64, name="x.csv", size=10, outcome="committed",
+    store.commit_input(LedgerEntry(digest="0" * 64, name="x.csv", size=10, outcome="committed",
                                    rows=5, rows_invalid=1, seen_at=100.0, finished_at=100.5),
                        learned=True, alerts=payloads)
-    store.commit_input(LedgerEntry(sha256="1" * 64, name="y.csv", size=10, outcome="committed",
+    store.commit_input(LedgerEntry(digest="1" * 64, name="y.csv", size=10, outcome="committed",
                                    rows=5, rows_invalid=0, seen_at=102.0, finished_at=102.5),
                        learned=True, alerts=resolved)
-    store.record_quarantine(LedgerEntry(sha256=None, name="bad.csv", size=3,
+    store.record_quarantine(LedgerEntry(digest=None, name="bad.csv", size=3,
                                         outcome="quarantined", reason="bad_row: line 2",
                                         seen_at=101.0, finished_at=101.1))
     reader = StateReader(layout.db)

@@ -202,7 +202,8 @@ def test_labels_metadata_asked_late_gives_the_same_file(tmp_path, ready_after):
     from shoal.daemon.writer import write_labels_stream
 
     tables = _labels_tables()
-    meta = {"input_sha256": "ab" * 32, "input_name": "in.parquet", "model_version": 3}
+    meta = {"input_digest": "ab" * 32, "digest_algorithm": "blake3", "input_name": "in.parquet",
+            "model_version": 3}
     reference = write_labels_stream(iter(tables), tmp_path / "ref.parquet", "parquet",
                                     lambda: meta, threaded=False)
     written, asked = [], []
@@ -221,7 +222,7 @@ def test_labels_metadata_asked_late_gives_the_same_file(tmp_path, ready_after):
                               threaded=False, ready=ready)
     assert asked == [{None: 1, 0: 1, 2: 3, 99: 3}[ready_after]]
     assert out.read_bytes() == reference.read_bytes()
-    assert pq.read_schema(out).metadata[b"shoal.input_sha256"] == b"ab" * 32
+    assert pq.read_schema(out).metadata[b"shoal.input_digest"] == b"ab" * 32
     assert pq.read_table(out).equals(pa.concat_tables(tables).replace_schema_metadata(
         pq.read_table(out).schema.metadata))
 

@@ -17,8 +17,8 @@ from shoal.daemon.store import (
 )
 
 
-def _entry(name="a.csv", sha="ab" * 32, outcome="committed"):
-    return LedgerEntry(sha256=sha, name=name, size=10, outcome=outcome, rows=3, rows_invalid=0,
+def _entry(name="a.csv", digest="ab" * 32, outcome="committed"):
+    return LedgerEntry(digest=digest, name=name, size=10, outcome=outcome, rows=3, rows_invalid=0,
                        seen_at=1.0)
 
 
@@ -41,7 +41,7 @@ def test_wal_and_full_sync(tmp_path):
 def test_checkpoint_round_trip_is_exact_and_versions_follow(tmp_path):
     store = StateStore(tmp_path / "s.db", checkpoints_kept=2)
     for v in (1, 2, 3):
-        store.commit_input(_entry(f"{v}.csv", sha=f"{v:064x}"), learned=True, checkpoint=_cp(v, v),
+        store.commit_input(_entry(f"{v}.csv", digest=f"{v:064x}"), learned=True, checkpoint=_cp(v, v),
                            history=[HistoryRow(0, 0.5, 10, [1.0, 2.0], [0.1, 0.2])])
     store.close()
     store = StateStore(tmp_path / "s.db", checkpoints_kept=2)
@@ -73,9 +73,9 @@ def test_pickled_arrays_are_refused(tmp_path):
 
 def test_a_failed_commit_leaves_no_trace(tmp_path):
     store = StateStore(tmp_path / "s.db")
-    store.commit_input(_entry("first.csv", sha="1" * 64), learned=True, checkpoint=_cp(1))
+    store.commit_input(_entry("first.csv", digest="1" * 64), learned=True, checkpoint=_cp(1))
     with pytest.raises(sqlite3.IntegrityError):  # same checkpoint version twice
-        store.commit_input(_entry("second.csv", sha="2" * 64), learned=False, checkpoint=_cp(1),
+        store.commit_input(_entry("second.csv", digest="2" * 64), learned=False, checkpoint=_cp(1),
                            warmup_rows=np.ones((4, 2)))
     assert [e.name for e in store.ledger()] == ["first.csv"]
     assert store.warmup_rows() is None and store.model_version == 1
@@ -83,16 +83,16 @@ def test_a_failed_commit_leaves_no_trace(tmp_path):
 
 def test_find_done_and_warmup_buffer(tmp_path):
     store = StateStore(tmp_path / "s.db")
-    store.commit_input(_entry("a.csv", sha="f" * 64), learned=True, warmup_rows=np.zeros((2, 3)))
-    store.commit_input(_entry("b.csv", sha="f" * 64, outcome="duplicate"), learned=False)
-    store.record_quarantine(_entry("c.csv", sha="e" * 64, outcome="quarantined"))
-    store.commit_input(_entry("d.csv", sha="d" * 64), learned=True, warmup_rows=np.ones((3, 3)))
+    store.commit_input(_entry("a.csv", digest="f" * 64), learned=True, warmup_rows=np.zeros((2, 3)))
+    store.commit_input(_entry("b.csv", digest="f" * 64, outcome="duplicate"), learned=False)
+    store.record_quarantine(_entry("c.csv", digest="e" * 64, outcome="quarantined"))
+    store.commit_input(_entry("d.csv", digest="d" * 64), learned=True, warmup_rows=np.ones((3, 3)))
     assert [e.name for e in store.find_done("f" * 64)] == ["a.csv", "b.csv"]
     assert store.find_done("e" * 64) == []  # a quarantined content may be tried again
     assert store.model_version == 2
     np.testing.assert_array_equal(store.warmup_rows(), np.vstack([np.zeros((2, 3)),
                                                                   np.ones((3, 3))]))
-    store.commit_input(_entry("e.csv", sha="c" * 64), learned=True, clear_warmup=True)
+    store.commit_input(_entry("e.csv", digest="c" * 64), learned=True, clear_warmup=True)
     assert store.warmup_rows() is None
 
 
@@ -119,10 +119,10 @@ def test_npy_bytes_are_what_np_save_writes(array):
 
 def test_commit_inputs_is_one_transaction_with_a_version_per_input(tmp_path):
     store = StateStore(tmp_path / "s.db")
-    group = [InputCommit(_entry("a.csv", sha="a" * 64), learned=True,
+    group = [InputCommit(_entry("a.csv", digest="a" * 64), learned=True,
                          history=[HistoryRow(0, 1.0, 5, [0.0], [1.0])], alerts=[("x1", {"n": 1})]),
-             InputCommit(_entry("b.csv", sha="a" * 64, outcome="duplicate"), learned=False),
-             InputCommit(_entry("c.csv", sha="c" * 64), learned=True, checkpoint=_cp(2),
+             InputCommit(_entry("b.csv", digest="a" * 64, outcome="duplicate"), learned=False),
+             InputCommit(_entry("c.csv", digest="c" * 64), learned=True, checkpoint=_cp(2),
                          history=[HistoryRow(0, 1.0, 9, [0.5], [1.0])])]
     assert store.commit_inputs(group) == [1, 1, 2]
     assert [(e.name, e.model_version) for e in store.ledger()] == \
@@ -131,8 +131,8 @@ def test_commit_inputs_is_one_transaction_with_a_version_per_input(tmp_path):
     assert [(h["version"], h["rows"]) for h in store.history(0)] == [(1, 5), (2, 9)]
     assert [a["version"] for a in store.alerts()] == [1]
     # A group fails as a whole: the second input's checkpoint does not follow.
-    bad = [InputCommit(_entry("d.csv", sha="d" * 64), learned=True),
-           InputCommit(_entry("e.csv", sha="e" * 64), learned=True, checkpoint=_cp(9))]
+    bad = [InputCommit(_entry("d.csv", digest="d" * 64), learned=True),
+           InputCommit(_entry("e.csv", digest="e" * 64), learned=True, checkpoint=_cp(9))]
     with pytest.raises(StateError, match="does not follow"):
         store.commit_inputs(bad)
     assert store.model_version == 2 and len(store.ledger()) == 3
