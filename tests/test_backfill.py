@@ -4,6 +4,7 @@ The reference for the distributed rounds is the core's single-process ``Mixture.
 over the same stream with ``refresh_rows`` set to the round size: rounds that end at
 multiples of R are exactly its refresh intervals (core/distributed.py says why).
 """
+import hashlib
 import os
 import signal
 import socket
@@ -19,6 +20,7 @@ import pyarrow.parquet as pq
 import pytest
 from distributed import Client, LocalCluster, WorkerPlugin
 
+from _v1_store import write_v1_store
 from shoal.config import load_config
 from shoal.core import Mixture, StepSchedule, initialise
 from shoal.daemon.backfill import backfill, plan_rounds
@@ -268,6 +270,36 @@ def test_watch_after_backfill_takes_only_new_files(tmp_path, client):
     finally:
         store.close()
     assert names == [p.name for p in paths] + ["new-000.parquet"]
+
+
+def test_backfill_into_a_migrated_v1_store_keeps_its_sha256(tmp_path, client):
+    """A store made before BLAKE3 keeps SHA-256 after its migration: the file its version-1
+    ledger holds is skipped, a copy of it is a duplicate, and the new files' ledger rows
+    and labels carry their SHA-256 (hashlib on the bytes, the reference)."""
+    paths = make_history(tmp_path, 3)
+    history = paths[0].parent
+    (history / "z-copy-of-h000.parquet").write_bytes(paths[0].read_bytes())
+    settings = load_config(write_config(tmp_path))
+    [recorded] = write_v1_store(settings.state / "state.db", paths[:1])  # its rows buffered
+    report = backfill(settings, [history], client=client, round_rows=ROUND_ROWS,
+                      labels="final")
+    assert (report.learned, report.duplicates, report.skipped) == (2, 1, 1)
+    store = StateStore(settings.state / "state.db")
+    try:
+        assert store.digest_algorithm == "sha256"
+        ledger = [(e.name, e.outcome, e.digest) for e in store.ledger()]
+    finally:
+        store.close()
+    sha = {p.name: hashlib.sha256(p.read_bytes()).hexdigest() for p in history.iterdir()}
+    assert recorded == sha["h000.parquet"]
+    assert ledger == [("h000.parquet", "committed", recorded),
+                      ("h001.parquet", "committed", sha["h001.parquet"]),
+                      ("h002.parquet", "committed", sha["h002.parquet"]),
+                      ("z-copy-of-h000.parquet", "duplicate", sha["h000.parquet"])]
+    [labels] = (tmp_path / "outbox").glob(f"h001.{sha['h001.parquet'][:16]}.labels.parquet")
+    meta = pq.read_schema(labels).metadata
+    assert meta[b"shoal.input_digest"].decode() == sha["h001.parquet"]
+    assert meta[b"shoal.digest_algorithm"] == b"sha256"
 
 
 def test_unreachable_scheduler_is_a_clear_error(tmp_path):
