@@ -264,7 +264,7 @@ def memory_table(tmp: Path, warm: Path, small: Path, rows: int, big_rows: int) -
 # (stage, module, owner, attribute): the time of the calls is charged to the stage, in
 # the thread that made them; nested calls of timed functions count once.
 STAGES = [
-    ("hash (SHA-256 of the file)", "shoal.daemon.readers", "file_digest", "_run"),
+    ("hash (BLAKE3 of the file)", "shoal.daemon.readers", "file_digest", "_run"),
     ("frame build (float64 rows, checks)", "shoal.daemon.readers", None, "_frame"),
     ("model E+M (Mixture.learn)", "shoal.core.mixture", "Mixture", "learn"),
     ("drift (window sums, evaluation)", "shoal.daemon.monitor", "InputWatch", "observe"),

@@ -18,10 +18,10 @@ import numpy as np
 def bench_latency(drops: int = 100, rows: int = 1000, seed: int = 0,
                   workdir: Path | None = None, fmt: str = "parquet") -> dict:
     """Seconds per drop (p50, p95, max) from rename into the inbox to labels file present."""
-    import hashlib
-
+    from shoal.daemon.digest import digest_file
     from shoal.daemon.drills import (ServiceProcess, synthetic_table, wait_until, write_config,
                                      write_drop)
+    from shoal.daemon.readout import StateReader
     from shoal.daemon.writer import labels_name
 
     with tempfile.TemporaryDirectory(prefix="shoal-bench-") as tmp:
@@ -31,6 +31,9 @@ def bench_latency(drops: int = 100, rows: int = 1000, seed: int = 0,
         latencies = []
         try:
             svc.wait_event("service_started", timeout=60)
+            reader = StateReader(folder / "state" / "state.db")
+            algorithm = reader.digest_algorithm   # the labels files are named by it
+            reader.close()
             # warm-up drop: the first model is fitted here, not timed
             tables = [synthetic_table(i, rows, seed) for i in range(drops + 1)]
             staging = folder / "staging"
@@ -38,8 +41,9 @@ def bench_latency(drops: int = 100, rows: int = 1000, seed: int = 0,
             for i, table in enumerate(tables):
                 name = f"bench-{i:04d}.{fmt}"
                 staged = write_drop(table, staging, name)   # written, not yet in the inbox
-                sha = hashlib.sha256(staged.read_bytes()).hexdigest()
-                target = folder / "outbox" / labels_name(name, sha, "parquet")
+                with open(staged, "rb") as f:
+                    digest = digest_file(f, algorithm)
+                target = folder / "outbox" / labels_name(name, digest, "parquet")
                 t0 = time.perf_counter()
                 staged.rename(folder / "inbox" / name)
                 wait_until(target.exists, 60, f"labels of {name}", interval=0.0005)
