@@ -347,6 +347,97 @@ fail:
     return NULL;
 }
 
+/* ------------------------------------------------------------ rows from columns */
+/* rows_from_columns(columns, out, bound, center, limit, valid): out[i, j] = columns[j][i]
+ * (a sequence of D float64 arrays of n values) and valid[i] = every |x| <= bound and, with
+ * center and limit (arrays of D, or None), every |x - center| <= limit; NaN fails both.
+ * The rows are filled in blocks that stay in cache. */
+HOT static void c_rows_from_columns(const double *const *cols, Py_ssize_t D, Py_ssize_t n,
+                                    double *restrict out, double bound,
+                                    const double *restrict center,
+                                    const double *restrict limit, char *restrict valid) {
+    const Py_ssize_t B = 512;
+    for (Py_ssize_t lo = 0; lo < n; lo += B) {
+        Py_ssize_t hi = lo + B < n ? lo + B : n;
+        /* the checks column by column (contiguous: vectorised), then the copy row by row */
+        for (Py_ssize_t i = lo; i < hi; i++) valid[i] = 1;
+        for (Py_ssize_t j = 0; j < D; j++) {
+            const double *restrict c = cols[j];
+            double mid = center ? center[j] : 0.0, lim = center ? limit[j] : INFINITY;
+            for (Py_ssize_t i = lo; i < hi; i++) {
+                double v = c[i];
+                valid[i] &= (char)((fabs(v) <= bound) & (fabs(v - mid) <= lim));
+            }
+        }
+        for (Py_ssize_t i = lo; i < hi; i++) {
+            double *o = out + i * D;
+            for (Py_ssize_t j = 0; j < D; j++) o[j] = cols[j][i];
+        }
+    }
+}
+
+static PyObject *rows_from_columns(PyObject *self, PyObject *args) {
+    PyObject *ocols, *oout, *ocenter, *olimit, *ovalid, *seq = NULL;
+    double bound;
+    Py_ssize_t dout[2], dc[1], dl[1], dv[1], D = 0;
+    Py_buffer *views = NULL;
+    const double **ptrs = NULL;
+    Py_ssize_t taken = 0;
+    Bufs s = {.n = 0};
+    if (!PyArg_ParseTuple(args, "OOdOOO", &ocols, &oout, &bound, &ocenter, &olimit, &ovalid))
+        return NULL;
+    TAKE(double *, out, oout, "out", F64, 2, 1, dout);
+    TAKE(char *, valid, ovalid, "valid", BOOL, 1, 1, dv);
+    const double *center = NULL, *limit = NULL;
+    D = dout[1];
+    if (ocenter != Py_None) {
+        TAKE(const double *, c, ocenter, "center", F64, 1, 0, dc);
+        TAKE(const double *, l, olimit, "limit", F64, 1, 0, dl);
+        NEED(dc[0] == D && dl[0] == D, "rows_from_columns: center and limit need one value per column");
+        center = c;
+        limit = l;
+    }
+    NEED(dv[0] == dout[0], "rows_from_columns: valid needs one value per row");
+    seq = PySequence_Fast(ocols, "rows_from_columns: columns must be a sequence");
+    if (!seq) goto fail;
+    NEED(PySequence_Fast_GET_SIZE(seq) == D, "rows_from_columns: one column per output column");
+    views = PyMem_Calloc((size_t)(D > 0 ? D : 1), sizeof(Py_buffer));
+    ptrs = PyMem_Calloc((size_t)(D > 0 ? D : 1), sizeof(double *));
+    if (!views || !ptrs) {
+        PyErr_NoMemory();
+        goto fail;
+    }
+    for (; taken < D; taken++) {
+        Py_buffer *v = &views[taken];
+        if (PyObject_GetBuffer(PySequence_Fast_GET_ITEM(seq, taken), v,
+                               PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0)
+            goto fail;
+        if (v->ndim != 1 || kind_of(v) != F64 || v->shape[0] != dout[0]) {
+            PyBuffer_Release(v);
+            PyErr_SetString(PyExc_ValueError,
+                            "rows_from_columns: each column must be float64 of one value per row");
+            goto fail;
+        }
+        ptrs[taken] = v->buf;
+    }
+    Py_BEGIN_ALLOW_THREADS
+    c_rows_from_columns(ptrs, D, dout[0], out, bound, center, limit, valid);
+    Py_END_ALLOW_THREADS
+    for (Py_ssize_t j = 0; j < taken; j++) PyBuffer_Release(&views[j]);
+    PyMem_Free(views);
+    PyMem_Free(ptrs);
+    Py_DECREF(seq);
+    release(&s);
+    Py_RETURN_NONE;
+fail:
+    for (Py_ssize_t j = 0; j < taken; j++) PyBuffer_Release(&views[j]);
+    PyMem_Free(views);
+    PyMem_Free(ptrs);
+    Py_XDECREF(seq);
+    release(&s);
+    return NULL;
+}
+
 /* ------------------------------------------------------------ tiled log-joint */
 /* The log-joint of a block of rows without BLAS: the GEMM it replaces has an inner
  * dimension of only D + 1 (full) or 2D + 1 (diag) and K*D or K outputs per row, shapes
@@ -816,6 +907,9 @@ static PyMethodDef methods[] = {
     {"spherical_derive", spherical_derive, METH_VARARGS,
      "spherical_derive(s0, s1, s2, n_eff, reg_covar, prior_weight, tiny, weights, means, "
      "var)"},
+    {"rows_from_columns", rows_from_columns, METH_VARARGS,
+     "rows_from_columns(columns, out, bound, center, limit, valid): the columns as rows, "
+     "valid where every value is within bound (and within limit of center)"},
     {"tile_isa", tile_isa, METH_VARARGS,
      "tile_isa([name]): the instruction set of the tiled log-joint ('avx512', 'avx2' or "
      "'none' for the BLAS path); with a name, use that one (at most the CPU's best)"},

@@ -27,6 +27,7 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
 from shoal.config import Settings
+from shoal.core import fused
 from shoal.daemon.digest import BLOCK, content_hasher
 from shoal.daemon.errors import InputRejected, Interrupted
 
@@ -280,38 +281,29 @@ _FILL_ROWS = 4096   # rows of the feature matrix filled at a time (they stay in 
 
 def _frame(batches: list[pa.RecordBatch], settings: Settings, pass_schema: pa.Schema,
            model_range: tuple[np.ndarray, np.ndarray] | None = None) -> Frame:
-    """One frame from record batches. Each feature is checked on its Arrow buffer (viewed,
-    not copied, where it is float64): values past +-1e50 are refused like NaN (squares of
-    their log-densities, in the drift statistics, would overflow), and with
-    ``model_range`` values further than ``limit`` from ``center``. Where the range lies
-    well inside +-1e50 it implies the bound, which is then not checked again. The
-    feature matrix is then filled in blocks of rows that stay in cache (a transposing
-    copy of a whole (features, rows) matrix took twice as long)."""
+    """One frame from record batches. Feature values past +-1e50 are refused like NaN
+    (squares of their log-densities, in the drift statistics, would overflow), and with
+    ``model_range`` values further than ``limit`` from ``center``. The columns are viewed
+    on their Arrow buffers (not copied, where float64) and copied into the row-major
+    feature matrix, in one compiled pass where the core's kernels are built."""
     n = sum(b.num_rows for b in batches)
     names = settings.features
-    valid = np.ones(n, dtype=bool)
-    scratch = np.empty(n)
-    implied = np.zeros(len(names), dtype=bool)
-    if model_range is not None:
-        center, limit = model_range
-        implied = np.abs(center) + limit <= FEATURE_BOUND / 2
     columns = []
-    for j, name in enumerate(names):
+    for name in names:
         parts = [_feature_values(batch.column(name)) for batch in batches]
-        values = parts[0] if len(parts) == 1 else np.concatenate(parts)
-        if not implied[j]:
-            np.abs(values, out=scratch)
-            valid &= scratch <= FEATURE_BOUND   # False for NaN
-        if model_range is not None:
-            np.subtract(values, center[j], out=scratch)
-            np.abs(scratch, out=scratch)
-            valid &= scratch <= limit[j]
-        columns.append(values)
+        columns.append(parts[0] if len(parts) == 1 else np.concatenate(parts))
     features = np.empty((n, len(names)))
-    for lo in range(0, n, _FILL_ROWS):
-        block = features[lo:lo + _FILL_ROWS]
-        for j, values in enumerate(columns):
-            block[:, j] = values[lo:lo + _FILL_ROWS]
+    valid = np.empty(n, dtype=bool)
+    if fused.enabled():
+        # one compiled pass: checks column by column, copy row by row (~65 ns a row at
+        # D=16 against ~280 for the numpy passes below)
+        center = limit = None
+        if model_range is not None:
+            center, limit = (np.ascontiguousarray(a, dtype=np.float64) for a in model_range)
+        fused.kernels().rows_from_columns(columns, features, FEATURE_BOUND, center, limit,
+                                          valid)
+    else:
+        _fill_checked(columns, features, valid, model_range)
     beyond = 0
     if model_range is not None and not valid.all():
         refused = features[~valid]
@@ -321,6 +313,33 @@ def _frame(batches: list[pa.RecordBatch], settings: Settings, pass_schema: pa.Sc
     return Frame(features=features,
                  passthrough=pa.Table.from_batches(passes, schema=pass_schema), valid=valid,
                  model_range=model_range, beyond_range=beyond)
+
+
+def _fill_checked(columns: list[np.ndarray], features: np.ndarray, valid: np.ndarray,
+                  model_range: tuple[np.ndarray, np.ndarray] | None) -> None:
+    """``features`` from ``columns`` and ``valid`` from their bounds, in numpy. Where the
+    range lies well inside +-1e50 it implies the bound, which is then not checked again;
+    the matrix is filled in blocks of rows that stay in cache (a transposing copy of a
+    whole (features, rows) matrix took twice as long)."""
+    n = len(valid)
+    valid[:] = True
+    scratch = np.empty(n)
+    implied = np.zeros(len(columns), dtype=bool)
+    if model_range is not None:
+        center, limit = model_range
+        implied = np.abs(center) + limit <= FEATURE_BOUND / 2
+    for j, values in enumerate(columns):
+        if not implied[j]:
+            np.abs(values, out=scratch)
+            valid &= scratch <= FEATURE_BOUND   # False for NaN
+        if model_range is not None:
+            np.subtract(values, center[j], out=scratch)
+            np.abs(scratch, out=scratch)
+            valid &= scratch <= limit[j]
+    for lo in range(0, n, _FILL_ROWS):
+        block = features[lo:lo + _FILL_ROWS]
+        for j, values in enumerate(columns):
+            block[:, j] = values[lo:lo + _FILL_ROWS]
 
 
 def _feature_values(col: pa.Array) -> np.ndarray:

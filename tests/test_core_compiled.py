@@ -285,3 +285,28 @@ def test_a_non_finite_value_is_refused_on_both_paths(bad, covariance, mixture_da
     with np.errstate(over="ignore", invalid="ignore"):   # their densities do overflow
         a, b = numpy_then_compiled(lambda: outcome(lambda: m.score(Z)))
     assert a == b == "accepted"
+
+
+def test_rows_from_columns_copies_and_checks_like_numpy():
+    kern = fused.kernels()
+    rng = np.random.default_rng(75)
+    n, D = 1500, 5
+    cols = [rng.normal(size=n) for _ in range(D)]
+    cols[0][3], cols[1][700], cols[2][1499], cols[4][10] = np.nan, np.inf, -1e60, 40.0
+    center, limit = np.full(D, 0.5), np.full(D, 30.0)
+    X = np.column_stack(cols)
+    with np.errstate(invalid="ignore"):
+        in_bound = np.all(np.abs(X) <= 1e50, axis=1)
+        in_range = np.all(np.abs(X - center) <= limit, axis=1)
+    for c, lim, want in ((None, None, in_bound), (center, limit, in_bound & in_range)):
+        out, valid = np.empty((n, D)), np.empty(n, dtype=bool)
+        kern.rows_from_columns(cols, out, 1e50, c, lim, valid)
+        np.testing.assert_array_equal(out, X)
+        np.testing.assert_array_equal(valid, want)
+    assert (~in_bound).sum() == 3 and (in_bound & ~in_range).sum() == 1
+    with pytest.raises(ValueError, match="one value per row"):
+        kern.rows_from_columns(cols[:-1] + [cols[-1][:-1]], np.empty((n, D)), 1e50, None,
+                               None, np.empty(n, dtype=bool))
+    with pytest.raises(ValueError, match="one column per output column"):
+        kern.rows_from_columns(cols[:-1], np.empty((n, D)), 1e50, None, None,
+                               np.empty(n, dtype=bool))

@@ -27,7 +27,7 @@ def threaded(request, monkeypatch):
     return request.param
 
 
-def test_frames_do_not_depend_on_the_files_record_batches(tmp_path):
+def test_frames_do_not_depend_on_the_files_record_batches(tmp_path, frame_build):
     table = synthetic_table(0, 5000, SEED)
     pq.write_table(table, tmp_path / "one.parquet")
     pq.write_table(table, tmp_path / "many.parquet", row_group_size=333)
@@ -51,11 +51,25 @@ def test_frames_do_not_depend_on_the_files_record_batches(tmp_path):
         np.testing.assert_array_equal(X[:, j], table.column(name).to_numpy())
 
 
-def test_frames_checked_against_a_model_range_refuse_the_rows_the_model_would(tmp_path):
+@pytest.fixture(params=["compiled", "numpy"])
+def frame_build(request):
+    """Frames built by the core's compiled rows_from_columns or by numpy passes."""
+    from shoal.core import fused
+    if request.param == "compiled" and not fused.enabled():
+        pytest.skip("the shoal.core._kernels extension is not built")
+    before = fused.enabled()
+    fused.set_enabled(request.param == "compiled")
+    yield request.param
+    fused.set_enabled(before)
+
+
+def test_frames_checked_against_a_model_range_refuse_the_rows_the_model_would(tmp_path,
+                                                                            frame_build):
     """Rows read with a model's range are refused exactly where the check of a whole
     frame against the model (pipeline._mark_beyond_model, as before the reader did it)
     refuses them, whatever the record batches; NaN, infinite and past-1e50 rows stay
-    invalid without counting as beyond the range; ranges near 1e50 keep that bound."""
+    invalid without counting as beyond the range; ranges near 1e50 keep that bound.
+    (On both ways of building frames: compiled and numpy.)"""
     from shoal.daemon.readers import FEATURE_BOUND, Frame
 
     table = synthetic_table(0, 3000, SEED)
