@@ -458,6 +458,15 @@ static Py_ssize_t packed_full_len(Py_ssize_t D) {
     return n;
 }
 
+/* Series of the tiled softmax's exp and log (highest power first; see _kernels_tile.h):
+ * 1/k! for k = 13..0, and 1/(2k+1) for k = 10..1 (atanh(s) = s + s z/3 + s z^2/5 + ...). */
+static const double EXP_SERIES[14] = {
+    1.0 / 6227020800.0, 1.0 / 479001600.0, 1.0 / 39916800.0, 1.0 / 3628800.0, 1.0 / 362880.0,
+    1.0 / 40320.0, 1.0 / 5040.0, 1.0 / 720.0, 1.0 / 120.0, 1.0 / 24.0, 1.0 / 6.0, 0.5, 1.0, 1.0};
+static const double ATANH_SERIES[10] = {1.0 / 21.0, 1.0 / 19.0, 1.0 / 17.0, 1.0 / 15.0,
+                                        1.0 / 13.0, 1.0 / 11.0, 1.0 / 9.0,  1.0 / 7.0,
+                                        1.0 / 5.0,  1.0 / 3.0};
+
 #if (defined(__GNUC__) || defined(__clang__)) && defined(__x86_64__)
 #include <immintrin.h>
 #define TILED 1
@@ -472,6 +481,15 @@ static Py_ssize_t packed_full_len(Py_ssize_t D) {
 #define TV_SET1 _mm512_set1_pd
 #define TV_FMA _mm512_fmadd_pd
 #define TV_SUB _mm512_sub_pd
+#define TV_ADD _mm512_add_pd
+#define TV_MUL _mm512_mul_pd
+#define TV_DIV _mm512_div_pd
+#define TV_MAX _mm512_max_pd
+#define TV_PICK_GT(a, b, x, y) _mm512_mask_blend_pd(_mm512_cmp_pd_mask(a, b, _CMP_GT_OQ), y, x)
+#define TV_EXPONENT(x) _mm512_getexp_pd(x)
+#define TV_MANTISSA(x) _mm512_getmant_pd(x, _MM_MANT_NORM_1_2, _MM_MANT_SIGN_src)
+#define TV_POW2(t) \
+    _mm512_castsi512_pd(_mm512_slli_epi64(_mm512_add_epi64(_mm512_castpd_si512(t), _mm512_set1_epi64(1023)), 52))
 #define TV_ZERO _mm512_setzero_pd
 #include "_kernels_tile.h" /* undefines the parameters above */
 
@@ -485,6 +503,21 @@ static Py_ssize_t packed_full_len(Py_ssize_t D) {
 #define TV_SET1 _mm256_set1_pd
 #define TV_FMA _mm256_fmadd_pd
 #define TV_SUB _mm256_sub_pd
+#define TV_ADD _mm256_add_pd
+#define TV_MUL _mm256_mul_pd
+#define TV_DIV _mm256_div_pd
+#define TV_MAX _mm256_max_pd
+#define TV_PICK_GT(a, b, x, y) _mm256_blendv_pd(y, x, _mm256_cmp_pd(a, b, _CMP_GT_OQ))
+#define TV_EXPONENT(x)                                                                      \
+    _mm256_sub_pd(_mm256_castsi256_pd(_mm256_or_si256(_mm256_srli_epi64(_mm256_castpd_si256(x), 52), \
+                                                      _mm256_set1_epi64x(0x4330000000000000LL))), \
+                  _mm256_set1_pd(4503599627371519.0)) /* 2^52 + 1023 */
+#define TV_MANTISSA(x)                                                                      \
+    _mm256_castsi256_pd(_mm256_or_si256(                                                    \
+        _mm256_and_si256(_mm256_castpd_si256(x), _mm256_set1_epi64x(0x000FFFFFFFFFFFFFLL)), \
+        _mm256_set1_epi64x(0x3FF0000000000000LL)))
+#define TV_POW2(t) \
+    _mm256_castsi256_pd(_mm256_slli_epi64(_mm256_add_epi64(_mm256_castpd_si256(t), _mm256_set1_epi64x(1023)), 52))
 #define TV_ZERO _mm256_setzero_pd
 #include "_kernels_tile.h" /* undefines the parameters above */
 #endif
@@ -588,6 +621,40 @@ static PyObject *log_joint(PyObject *self, PyObject *args) {
     Py_END_ALLOW_THREADS
 #endif
     RETURN_NONE_OR_FAIL_FREEING(scratch);
+}
+
+/* softmax(L, lo, n, lss, best, log_density, confidence): the tiled softmax of rows
+ * lo..lo+n-1 (shift, normalise and the log-density in one pass; see _kernels_tile.h). */
+static PyObject *softmax(PyObject *self, PyObject *args) {
+    PyObject *oL, *ob, *old, *oc;
+    Py_ssize_t lo, n, dL[2], db[1], dl[1], dc[1];
+    double lss, *tmp = NULL;
+    Bufs s = {.n = 0};
+    if (!PyArg_ParseTuple(args, "OnndOOO", &oL, &lo, &n, &lss, &ob, &old, &oc)) return NULL;
+    TAKE(double *, L, oL, "L", F64, 2, 1, dL);
+    TAKE(int64_t *, best, ob, "best", I64, 1, 1, db);
+    TAKE(double *, ld, old, "log_density", F64, 1, 1, dl);
+    TAKE(double *, conf, oc, "confidence", F64, 1, 1, dc);
+    NEED(lo >= 0 && n >= 0 && lo + n <= dL[1] && db[0] == dL[1] && dl[0] == dL[1] &&
+             dc[0] == dL[1] && dL[0] >= 1,
+         "softmax: rows out of range");
+    NEED(isa_used != ISA_NONE, "softmax: no tiled kernel on this CPU (tile_isa is none)");
+#ifdef TILED
+    tmp = PyMem_Malloc(sizeof(double) * (size_t)(8 * dL[0] + 8)); /* K vectors, aligned */
+    if (!tmp) {
+        PyErr_NoMemory();
+        goto fail;
+    }
+    double *ev = tmp + (8 - ((uintptr_t)tmp / sizeof(double)) % 8) % 8;
+    int isa = isa_used;
+    Py_BEGIN_ALLOW_THREADS
+    if (isa == ISA_AVX512)
+        t512_softmax(L, dL[0], dL[1], lo, n, lss, best, ld, conf, (__m512d *)ev);
+    else
+        t256_softmax(L, dL[0], dL[1], lo, n, lss, best, ld, conf, (__m256d *)ev);
+    Py_END_ALLOW_THREADS
+#endif
+    RETURN_NONE_OR_FAIL_FREEING(tmp);
 }
 
 /* ---------------------------------------------------------------- refresh */
@@ -918,6 +985,9 @@ static PyMethodDef methods[] = {
     {"log_joint", log_joint, METH_VARARGS,
      "log_joint(A, op, const, n_features, L, lo): tiled log-joint of rows A into "
      "L[:, lo:lo+len(A)] (full: op packed, const (K,); linear: op (K, W), const None)"},
+    {"softmax", softmax, METH_VARARGS,
+     "softmax(L, lo, n, lss, best, log_density, confidence): responsibilities, component, "
+     "log-density and confidence of rows lo..lo+n-1 from their log-joint (tiled)"},
     {"diag_operator", diag_operator, METH_VARARGS, "diag_operator(means, prec, log_const, BT)"},
     {"spherical_operator", spherical_operator, METH_VARARGS,
      "spherical_operator(means, prec, log_const, BT)"},

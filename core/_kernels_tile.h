@@ -3,7 +3,10 @@
  *
  * The includer defines TILE_NAME (a prefix), TILE_TARGET (a function attribute),
  * TILE_VL (doubles per vector), TILE_NV (vectors of rows per tile), and the vector
- * type and operations TV, TV_LOADU, TV_STOREU, TV_SET1, TV_FMA (a*b+c), TV_SUB, TV_ZERO;
+ * type and operations TV, TV_LOADU, TV_STOREU, TV_SET1, TV_FMA (a*b+c), TV_ADD, TV_SUB,
+ * TV_MUL, TV_DIV, TV_MAX, TV_ZERO, TV_PICK_GT(a, b, x, y) (x where a > b, else y) and
+ * TV_POW2(t) (2^n from the low bits of t = n + 1.5 * 2^52), TV_EXPONENT(x) and
+ * TV_MANTISSA(x) (x = m 2^e, m in [1, 2), for positive normal x);
  * all of them are undefined again at the end.
  *
  * A tile is T = TILE_VL * TILE_NV rows, copied transposed into `zb` (feature-major) so
@@ -110,6 +113,101 @@ TILE_TARGET static inline void TILE_CAT(TILE_NAME, _linear_tile)(
     }
 }
 
+/* c[0] x^(n-1) + ... + c[n-1], by Horner's rule. */
+TILE_TARGET static inline TV TILE_CAT(TILE_NAME, _horner)(const double *c, int n, TV x) {
+    TV p = TV_SET1(c[0]);
+#pragma GCC unroll 16
+    for (int i = 1; i < n; i++) p = TV_FMA(p, x, TV_SET1(c[i]));
+    return p;
+}
+
+/* exp(x) for x in [CLAMP, 0] (all the softmax needs): x = n ln2 + r with |r| <= ln2/2,
+ * exp(r) by its Taylor series to r^13 (truncation below 2e-16 relative), 2^n built in
+ * the exponent bits (n >= -332: a normal number). About 1 ulp. */
+TILE_TARGET static inline TV TILE_CAT(TILE_NAME, _exp)(TV x) {
+    const TV magic = TV_SET1(6755399441055744.0); /* 1.5 * 2^52: rounds to an integer */
+    TV t = TV_FMA(x, TV_SET1(1.4426950408889634), magic);
+    TV n = TV_SUB(t, magic);
+    TV r = TV_FMA(n, TV_SET1(-6.93147180369123816490e-01), x); /* ln2, high part */
+    r = TV_FMA(n, TV_SET1(-1.90821492927058770002e-10), r);    /* ln2, low part */
+    TV p = TILE_CAT(TILE_NAME, _horner)(EXP_SERIES, 14, r);
+    return TV_MUL(p, TV_POW2(t)); /* TV_POW2: 2^n from the low bits of t */
+}
+
+/* log(x) for x >= 1 (totals of the softmax, in [1, K]): x = m 2^e with m in
+ * [sqrt(1/2), sqrt(2)), log m = 2 atanh(s), s = (m - 1) / (m + 1), |s| < 0.172, by its
+ * series to s^21 (truncation below 1e-18). About 1 ulp. */
+TILE_TARGET static inline TV TILE_CAT(TILE_NAME, _log)(TV x) {
+    TV e = TV_EXPONENT(x), m = TV_MANTISSA(x);           /* m in [1, 2) */
+    TV big = TV_PICK_GT(m, TV_SET1(1.4142135623730951), TV_SET1(1.0), TV_ZERO());
+    m = TV_DIV(m, TV_ADD(TV_SET1(1.0), big));              /* halved where above sqrt 2 */
+    e = TV_ADD(e, big);
+    TV s = TV_DIV(TV_SUB(m, TV_SET1(1.0)), TV_ADD(m, TV_SET1(1.0)));
+    TV z = TV_MUL(s, s);
+    TV p = TILE_CAT(TILE_NAME, _horner)(ATANH_SERIES, 10, z);
+    TV half = TV_MUL(TV_MUL(s, z), p);                     /* atanh(s) - s */
+    TV lo = TV_FMA(e, TV_SET1(1.90821492927058770002e-10), TV_ADD(half, half));
+    return TV_ADD(TV_FMA(e, TV_SET1(6.93147180369123816490e-01), TV_ADD(s, s)), lo);
+}
+
+/* The softmax of rows lo..lo+n-1 of L (K x N) in place, in vectors of rows: the row
+ * maximum and its component (first on ties), L <- exp(max(L - top, CLAMP)) / total
+ * (as a product with 1 / total: one division a row), total = the sum of those
+ * exponentials, confidence = 1 / total, and log_density = log(total) + top - lss. The
+ * exponentials wait in `ev` (K vectors of scratch): stored into L and read back they
+ * would hit L's rows 32 KiB apart, whose stores and loads alias in the L1. */
+TILE_TARGET static void TILE_CAT(TILE_NAME, _softmax)(
+    double *restrict L, Py_ssize_t K, Py_ssize_t N, Py_ssize_t lo, Py_ssize_t n, double lss,
+    int64_t *restrict best, double *restrict ld, double *restrict conf, TV *restrict ev) {
+    Py_ssize_t nv = n - n % TILE_VL;
+    double lanes[TILE_VL];
+    for (Py_ssize_t r = 0; r < nv; r += TILE_VL) {
+        double *L0 = L + lo + r;
+        TV top = TV_LOADU(L0), arg = TV_ZERO();
+        ev[0] = top;
+        for (Py_ssize_t k = 1; k < K; k++) {
+            TV v = TV_LOADU(L0 + k * N);
+            ev[k] = v;
+            arg = TV_PICK_GT(v, top, TV_SET1((double)k), arg);
+            top = TV_MAX(v, top);
+        }
+        TV total = TV_ZERO();
+        for (Py_ssize_t k = 0; k < K; k++) {
+            TV e = TILE_CAT(TILE_NAME, _exp)(TV_MAX(TV_SUB(ev[k], top), TV_SET1(CLAMP)));
+            ev[k] = e;
+            total = TV_ADD(total, e);
+        }
+        TV inv = TV_DIV(TV_SET1(1.0), total);   /* one division per row, not K */
+        for (Py_ssize_t k = 0; k < K; k++) TV_STOREU(L0 + k * N, TV_MUL(ev[k], inv));
+        TV_STOREU(conf + lo + r, inv);
+        TV_STOREU(ld + lo + r,
+                  TV_SUB(TV_ADD(TILE_CAT(TILE_NAME, _log)(total), top), TV_SET1(lss)));
+        TV_STOREU(lanes, arg);
+        for (int l = 0; l < TILE_VL; l++) best[lo + r + l] = (int64_t)lanes[l];
+    }
+    for (Py_ssize_t r = nv; r < n; r++) {   /* the last rows one by one */
+        double *L0 = L + lo + r, top = L0[0], total = 0.0;
+        int64_t arg = 0;
+        for (Py_ssize_t k = 1; k < K; k++)
+            if (L0[k * N] > top) {
+                top = L0[k * N];
+                arg = k;
+            }
+        for (Py_ssize_t k = 0; k < K; k++) {
+            double v = L0[k * N] - top;
+            v = v > CLAMP ? v : CLAMP;
+            double e = exp(v);
+            L0[k * N] = e;
+            total += e;
+        }
+        double inv = 1.0 / total;
+        for (Py_ssize_t k = 0; k < K; k++) L0[k * N] *= inv;
+        conf[lo + r] = inv;
+        ld[lo + r] = log(total) + top - lss;
+        best[lo + r] = arg;
+    }
+}
+
 /* Rows 0..m-1 of A (m x W): L[k, lo + r] for every component, by whole tiles; the last
  * partial tile goes through `tail` (K x T). `zb` holds C x T doubles. full: C = D and
  * the operator is packed; linear: C = W and the operator is B (K x W). */
@@ -146,4 +244,12 @@ TILE_TARGET static void TILE_CAT(TILE_NAME, _log_joint)(
 #undef TV_SET1
 #undef TV_FMA
 #undef TV_SUB
+#undef TV_ADD
+#undef TV_MUL
+#undef TV_DIV
+#undef TV_MAX
+#undef TV_PICK_GT
+#undef TV_POW2
+#undef TV_EXPONENT
+#undef TV_MANTISSA
 #undef TV_ZERO

@@ -8,9 +8,9 @@ refresh of the parameters is a few dozen small numpy and LAPACK calls. The C
 extension ``shoal.core._kernels`` (core/_kernels.c) runs the passes between the BLAS
 calls as a few loops over the block while it sits in the cache, gathers the rows each
 component learns from for one SYRK per component, and derives a refresh's parameters
-in one call. The log-joint itself runs in row-tiled kernels for AVX-512 or AVX2 with
-FMA (picked by the CPU; elsewhere a BLAS GEMM); BLAS keeps the M-step SYRKs and numpy
-keeps ``exp``.
+in one call. The log-joint and the softmax run in row-tiled kernels for AVX-512 or
+AVX2 with FMA (picked by the CPU; elsewhere a BLAS GEMM and numpy's ``exp``); BLAS
+keeps the M-step SYRKs.
 
 The extension is built when shoal is installed (it needs a C compiler; the build is
 optional). Without it, or with ``SHOAL_COMPILED=0`` in the environment,

@@ -340,15 +340,18 @@ class Mixture:
                 kern.full_log_joint(Yb, const, D, R, a)
             else:
                 np.matmul(BT, Ab.T, out=R[:, a:b])
-            kern.shift(R, a, m, top, out.component)
-            Rb = R[:, a:b]
-            np.exp(Rb, out=Rb)
-            kern.normalise(R, a, m, total)
-            ld = out.log_density[a:b]
-            np.log(total[:m], out=ld)
-            ld += top[:m]
-            ld -= lss
-            np.divide(1.0, total[:m], out=out.confidence[a:b])
+            if tiled:
+                kern.softmax(R, a, m, lss, out.component, out.log_density, out.confidence)
+            else:
+                kern.shift(R, a, m, top, out.component)
+                Rb = R[:, a:b]
+                np.exp(Rb, out=Rb)
+                kern.normalise(R, a, m, total)
+                ld = out.log_density[a:b]
+                np.log(total[:m], out=ld)
+                ld += top[:m]
+                ld -= lss
+                np.divide(1.0, total[:m], out=out.confidence[a:b])
             if learn:
                 wb = row_w[a - lo : b - lo]
                 if full:

@@ -310,3 +310,34 @@ def test_rows_from_columns_copies_and_checks_like_numpy():
     with pytest.raises(ValueError, match="one column per output column"):
         kern.rows_from_columns(cols[:-1], np.empty((n, D)), 1e50, None, None,
                                np.empty(n, dtype=bool))
+
+
+@pytest.mark.parametrize("K", [1, 2, 7, 9])
+@pytest.mark.parametrize("n", [1, 13, 64])
+def test_tiled_softmax_equals_its_definition(K, n, tile_isa):
+    # reference: numpy's exp and log of the definition (shift by the row maximum, clamp
+    # at -230, normalise); the compiled exp and log are series of their own (~1 ulp)
+    kern = fused.kernels()
+    rng = np.random.default_rng(K * 100 + n)
+    L0 = rng.normal(-40.0, 60.0, (K, n + 4))
+    L0[:, 5 % (n + 4)] = 3.0                     # a tie: the first component wins
+    L0[-1, 1 % (n + 4)] = L0[0, 1 % (n + 4)] - 500.0   # far below: clamped at e^-230
+    lo, lss = 2, 0.75
+    top = L0[:, lo:lo + n].max(axis=0)
+    e = np.exp(np.maximum(L0[:, lo:lo + n] - top, -230.0))
+    total = e.sum(axis=0)
+    for isa in _isas()[1:]:
+        tile_isa(isa)
+        L = L0.copy()
+        best, ld, conf = np.full(n + 4, -1), np.full(n + 4, np.nan), np.full(n + 4, np.nan)
+        kern.softmax(L, lo, n, lss, best, ld, conf)
+        np.testing.assert_allclose(L[:, lo:lo + n], e / total, rtol=1e-14, atol=1e-300,
+                                   err_msg=isa)
+        np.testing.assert_array_equal(best[lo:lo + n], np.argmax(L0[:, lo:lo + n], axis=0))
+        np.testing.assert_allclose(ld[lo:lo + n], np.log(total) + top - lss, rtol=1e-14,
+                                   atol=1e-14, err_msg=isa)
+        np.testing.assert_allclose(conf[lo:lo + n], 1.0 / total, rtol=1e-14, err_msg=isa)
+        # rows outside lo..lo+n untouched
+        np.testing.assert_array_equal(L[:, :lo], L0[:, :lo])
+        np.testing.assert_array_equal(L[:, lo + n:], L0[:, lo + n:])
+        assert (best[:lo] == -1).all() and np.isnan(ld[lo + n:]).all()
