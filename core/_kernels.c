@@ -487,6 +487,7 @@ static const double ATANH_SERIES[10] = {1.0 / 21.0, 1.0 / 19.0, 1.0 / 17.0, 1.0 
 #define TV_MAX _mm512_max_pd
 #define TV_PICK_GT(a, b, x, y) _mm512_mask_blend_pd(_mm512_cmp_pd_mask(a, b, _CMP_GT_OQ), y, x)
 #define TV_EXPONENT(x) _mm512_getexp_pd(x)
+#define TV_HSUM(v) _mm512_reduce_add_pd(v)
 #define TV_MANTISSA(x) _mm512_getmant_pd(x, _MM_MANT_NORM_1_2, _MM_MANT_SIGN_src)
 #define TV_POW2(t) \
     _mm512_castsi512_pd(_mm512_slli_epi64(_mm512_add_epi64(_mm512_castpd_si512(t), _mm512_set1_epi64(1023)), 52))
@@ -508,6 +509,11 @@ static const double ATANH_SERIES[10] = {1.0 / 21.0, 1.0 / 19.0, 1.0 / 17.0, 1.0 
 #define TV_DIV _mm256_div_pd
 #define TV_MAX _mm256_max_pd
 #define TV_PICK_GT(a, b, x, y) _mm256_blendv_pd(y, x, _mm256_cmp_pd(a, b, _CMP_GT_OQ))
+static inline __attribute__((target("avx2,fma"))) double hsum256(__m256d v) {
+    __m128d s = _mm_add_pd(_mm256_castpd256_pd128(v), _mm256_extractf128_pd(v, 1));
+    return _mm_cvtsd_f64(_mm_add_sd(s, _mm_unpackhi_pd(s, s)));
+}
+#define TV_HSUM(v) hsum256(v)
 #define TV_EXPONENT(x)                                                                      \
     _mm256_sub_pd(_mm256_castsi256_pd(_mm256_or_si256(_mm256_srli_epi64(_mm256_castpd_si256(x), 52), \
                                                       _mm256_set1_epi64x(0x4330000000000000LL))), \
@@ -655,6 +661,45 @@ static PyObject *softmax(PyObject *self, PyObject *args) {
     Py_END_ALLOW_THREADS
 #endif
     RETURN_NONE_OR_FAIL_FREEING(tmp);
+}
+
+/* gather_syrk(A, resp, lo, row_w, floor, P): the full type's M-step of rows A (m x W)
+ * into P (K x W x W), += (tiled; see _kernels_tile.h). gather_rows and a SYRK per
+ * component on the BLAS path. */
+static PyObject *gather_syrk(PyObject *self, PyObject *args) {
+    PyObject *oA, *oR, *ow, *oP;
+    Py_ssize_t lo, dA[2], dR[2], dw[1], dP[3];
+    double floor;
+    void *scratch = NULL;
+    Bufs s = {.n = 0};
+    if (!PyArg_ParseTuple(args, "OOnOdO", &oA, &oR, &lo, &ow, &floor, &oP)) return NULL;
+    TAKE(const double *, A, oA, "A", F64, 2, 0, dA);
+    TAKE(const double *, R, oR, "resp", F64, 2, 0, dR);
+    TAKE(const double *, w, ow, "row_w", F64, 1, 0, dw);
+    TAKE(double *, P, oP, "P", F64, 3, 1, dP);
+    Py_ssize_t m = dA[0], W = dA[1], K = dR[0];
+    NEED(lo >= 0 && lo + m <= dR[1] && dw[0] >= m && dP[0] == K && dP[1] == W && dP[2] == W,
+         "gather_syrk: shapes disagree");
+    NEED(isa_used != ISA_NONE, "gather_syrk: no tiled kernel on this CPU (tile_isa is none)");
+#ifdef TILED
+    Py_ssize_t Wp = (W + 3) / 4 * 4, cap = (m + 7) / 8 * 8 + 8; /* rows of GT off 4 KiB */
+    scratch = PyMem_Malloc(sizeof(int32_t) * (size_t)(m + 1) +
+                           sizeof(double) * (size_t)(m + 1 + Wp * cap));
+    if (!scratch) {
+        PyErr_NoMemory();
+        goto fail;
+    }
+    double *sw = scratch, *GT = sw + m + 1;
+    int32_t *idx = (int32_t *)(GT + Wp * cap);
+    int isa = isa_used;
+    Py_BEGIN_ALLOW_THREADS
+    if (isa == ISA_AVX512)
+        t512_gather_syrk(A, m, W, R, dR[1], lo, w, floor, K, P, idx, sw, GT, cap);
+    else
+        t256_gather_syrk(A, m, W, R, dR[1], lo, w, floor, K, P, idx, sw, GT, cap);
+    Py_END_ALLOW_THREADS
+#endif
+    RETURN_NONE_OR_FAIL_FREEING(scratch);
 }
 
 /* ---------------------------------------------------------------- refresh */
@@ -988,6 +1033,9 @@ static PyMethodDef methods[] = {
     {"softmax", softmax, METH_VARARGS,
      "softmax(L, lo, n, lss, best, log_density, confidence): responsibilities, component, "
      "log-density and confidence of rows lo..lo+n-1 from their log-joint (tiled)"},
+    {"gather_syrk", gather_syrk, METH_VARARGS,
+     "gather_syrk(A, resp, lo, row_w, floor, P): P[k] += the sum of resp * row_w * a a^T "
+     "over the rows with responsibility > 0 and >= floor (tiled)"},
     {"diag_operator", diag_operator, METH_VARARGS, "diag_operator(means, prec, log_const, BT)"},
     {"spherical_operator", spherical_operator, METH_VARARGS,
      "spherical_operator(means, prec, log_const, BT)"},

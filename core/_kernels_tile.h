@@ -6,7 +6,8 @@
  * type and operations TV, TV_LOADU, TV_STOREU, TV_SET1, TV_FMA (a*b+c), TV_ADD, TV_SUB,
  * TV_MUL, TV_DIV, TV_MAX, TV_ZERO, TV_PICK_GT(a, b, x, y) (x where a > b, else y) and
  * TV_POW2(t) (2^n from the low bits of t = n + 1.5 * 2^52), TV_EXPONENT(x) and
- * TV_MANTISSA(x) (x = m 2^e, m in [1, 2), for positive normal x);
+ * TV_MANTISSA(x) (x = m 2^e, m in [1, 2), for positive normal x), TV_HSUM(v) (the sum of
+ * the lanes, pairwise);
  * all of them are undefined again at the end.
  *
  * A tile is T = TILE_VL * TILE_NV rows, copied transposed into `zb` (feature-major) so
@@ -208,6 +209,68 @@ TILE_TARGET static void TILE_CAT(TILE_NAME, _softmax)(
     }
 }
 
+/* The full type's M-step: P[k] += sum over the rows with responsibility > 0 and >= floor
+ * of resp * row_w * a a^T, a = A[row] (W = D + 1 values, the last a 1). Per component:
+ * its rows are listed without branches, copied scaled by sqrt(resp * row_w) into GT
+ * transposed (Wp = W rounded up to 4 rows of `cap` values; the rows past the count and
+ * past W are zeros), and GT GT^T is summed in blocks of 4 x TILE_NV entries held in
+ * vectors of rows (blocks on or above the diagonal only), then across the vector into
+ * P's upper triangle; P is made symmetric at the end. Scratch: idx (m), sw (m), GT (Wp x cap). */
+TILE_TARGET static void TILE_CAT(TILE_NAME, _gather_syrk)(
+    const double *restrict A, Py_ssize_t m, Py_ssize_t W, const double *restrict R,
+    Py_ssize_t N, Py_ssize_t lo, const double *restrict w, double floor, Py_ssize_t K,
+    double *restrict P, int32_t *restrict idx, double *restrict sw, double *restrict GT,
+    Py_ssize_t cap) {
+    Py_ssize_t Wp = (W + 3) / 4 * 4;
+    for (Py_ssize_t k = 0; k < K; k++) {
+        const double *rk = R + k * N + lo;
+        Py_ssize_t cnt = 0;
+        for (Py_ssize_t r = 0; r < m; r++) {
+            double v = rk[r];
+            idx[cnt] = (int32_t)r;
+            sw[cnt] = v * w[r];
+            cnt += (v > 0.0) & (v >= floor);
+        }
+        if (cnt == 0) continue;
+        Py_ssize_t cv = (cnt + TILE_VL - 1) / TILE_VL * TILE_VL;
+        for (Py_ssize_t j = 0; j < cnt; j++) {
+            double s = sqrt(sw[j]);
+            const double *a = A + (Py_ssize_t)idx[j] * W;
+            for (Py_ssize_t c = 0; c < W; c++) GT[c * cap + j] = s * a[c];
+        }
+        for (Py_ssize_t c = 0; c < Wp; c++)
+            for (Py_ssize_t j = c < W ? cnt : 0; j < cv; j++) GT[c * cap + j] = 0.0;
+        double *Pk = P + k * W * W;
+        /* blocks of 4 x TILE_NV entries (TILE_NV divides 4: Wp covers both) */
+        for (Py_ssize_t i0 = 0; i0 < Wp; i0 += 4)
+            for (Py_ssize_t j0 = i0; j0 < Wp; j0 += TILE_NV) {
+                TV acc[4][TILE_NV];
+#pragma GCC unroll 4
+                for (int ii = 0; ii < 4; ii++)
+#pragma GCC unroll 4
+                    for (int jj = 0; jj < TILE_NV; jj++) acc[ii][jj] = TV_ZERO();
+                for (Py_ssize_t r = 0; r < cv; r += TILE_VL) {
+                    TV y[TILE_NV];
+#pragma GCC unroll 4
+                    for (int q = 0; q < TILE_NV; q++) y[q] = TV_LOADU(GT + (j0 + q) * cap + r);
+#pragma GCC unroll 4
+                    for (int ii = 0; ii < 4; ii++) {
+                        TV x = TV_LOADU(GT + (i0 + ii) * cap + r);
+#pragma GCC unroll 4
+                        for (int jj = 0; jj < TILE_NV; jj++) acc[ii][jj] = TV_FMA(x, y[jj], acc[ii][jj]);
+                    }
+                }
+                for (int ii = 0; ii < 4 && i0 + ii < W; ii++)
+                    for (int jj = 0; jj < TILE_NV && j0 + jj < W; jj++) {
+                        if (j0 + jj < i0 + ii) continue;   /* the upper triangle */
+                        Pk[(i0 + ii) * W + j0 + jj] += TV_HSUM(acc[ii][jj]);
+                    }
+            }
+        for (Py_ssize_t i = 0; i < W; i++)
+            for (Py_ssize_t j = 0; j < i; j++) Pk[i * W + j] = Pk[j * W + i];
+    }
+}
+
 /* Rows 0..m-1 of A (m x W): L[k, lo + r] for every component, by whole tiles; the last
  * partial tile goes through `tail` (K x T). `zb` holds C x T doubles. full: C = D and
  * the operator is packed; linear: C = W and the operator is B (K x W). */
@@ -250,6 +313,7 @@ TILE_TARGET static void TILE_CAT(TILE_NAME, _log_joint)(
 #undef TV_MAX
 #undef TV_PICK_GT
 #undef TV_POW2
+#undef TV_HSUM
 #undef TV_EXPONENT
 #undef TV_MANTISSA
 #undef TV_ZERO

@@ -311,8 +311,9 @@ class Mixture:
                 Y = np.empty((K * D, nb))
             if learn:
                 P = np.zeros((K, W, W))
-                G = np.empty((K, nb, W))
-                counts = np.empty(K, dtype=np.intp)
+                if not tiled:
+                    G = np.empty((K, nb, W))
+                    counts = np.empty(K, dtype=np.intp)
         else:
             BT = self._scoring_operator
             if learn:
@@ -354,7 +355,9 @@ class Mixture:
                 np.divide(1.0, total[:m], out=out.confidence[a:b])
             if learn:
                 wb = row_w[a - lo : b - lo]
-                if full:
+                if full and tiled:
+                    kern.gather_syrk(Ab, R, a, wb, floor, P)
+                elif full:
                     kern.gather_rows(Ab, R, a, wb, floor, G, counts)
                     for k in range(K):
                         c = counts[k]

@@ -341,3 +341,26 @@ def test_tiled_softmax_equals_its_definition(K, n, tile_isa):
         np.testing.assert_array_equal(L[:, :lo], L0[:, :lo])
         np.testing.assert_array_equal(L[:, lo + n:], L0[:, lo + n:])
         assert (best[:lo] == -1).all() and np.isnan(ld[lo + n:]).all()
+
+
+@pytest.mark.parametrize("W", [2, 5, 8, 17])
+@pytest.mark.parametrize("m", [1, 9, 100])
+def test_tiled_gather_syrk_equals_the_weighted_outer_products(W, m, tile_isa):
+    # the definition: P[k] += sum over rows with resp > 0 and >= floor of resp*w*a a^T
+    kern = fused.kernels()
+    rng = np.random.default_rng(W * 1000 + m)
+    K, lo, floor = 3, 4, 0.2
+    A = np.hstack([rng.normal(size=(m, W - 1)), np.ones((m, 1))])
+    R = rng.random((K, m + 6))
+    R[1, lo:lo + m] = 0.0                       # a component no row is active for
+    R[2, lo] = floor                            # exactly at the floor: counts
+    w = rng.random(m + 2)
+    P0 = rng.normal(size=(K, W, W))
+    P0 = P0 + np.swapaxes(P0, 1, 2)             # symmetric, as the statistics are
+    act = np.where(R[:, lo:lo + m] >= floor, R[:, lo:lo + m], 0.0) * w[:m]
+    want = P0 + np.einsum("kn,ni,nj->kij", act, A, A)
+    for isa in _isas()[1:]:
+        tile_isa(isa)
+        P = P0.copy()
+        kern.gather_syrk(A, R, lo, w, floor, P)
+        np.testing.assert_allclose(P, want, rtol=1e-12, atol=1e-12, err_msg=isa)
