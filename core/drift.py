@@ -74,6 +74,7 @@ from .distances import (
 )
 from .errors import ModelError
 from .lifecycle import segment_index
+from . import fused
 from .mixture import Mixture
 
 __all__ = [
@@ -92,7 +93,28 @@ __all__ = [
     "segment_drift",
     "spread_noise",
     "weight_noise",
+    "add_segment_scatter",
 ]
+
+def add_segment_scatter(S: np.ndarray, X: np.ndarray, resp_kn: np.ndarray,
+                        floor: float) -> None:
+    """``S[k] += sum_i resp_kn[k, i] x_i x_i^T`` over the rows whose responsibility for
+    ``k`` is above ``floor`` (rows under it add less than that share each; on separated
+    segments most rows are left out). ``S`` is (K, D, D), ``X`` (n, D), ``resp_kn`` (K, n).
+    One compiled pass where the tiled kernels run, else a gather and a product per
+    segment."""
+    if fused.enabled() and fused.tiled():
+        fused.kernels().gather_syrk(np.ascontiguousarray(X, dtype=np.float64),
+                                    np.ascontiguousarray(resp_kn, dtype=np.float64), 0,
+                                    np.ones(X.shape[0]), float(np.nextafter(floor, np.inf)),
+                                    S)
+        return
+    for k in range(resp_kn.shape[0]):
+        rows = np.flatnonzero(resp_kn[k] > floor)
+        if rows.size:
+            Xk = X[rows]
+            S[k] += (Xk * resp_kn[k, rows, None]).T @ Xk
+
 
 WHOLE_MODEL = "all"
 """The segment key of statistics about the whole model (``fit_drop``)."""

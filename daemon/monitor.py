@@ -43,6 +43,7 @@ from shoal.core.distances import GaussianSet, hotelling_t2_pvalue
 from shoal.core.drift import (
     WHOLE_MODEL,
     Reference,
+    add_segment_scatter,
     evaluate_bounds,
     explain,
     mean_shift_noise,
@@ -305,17 +306,13 @@ class InputWatch:
             sums = self._pending = {"window": win, "ids": ids, "T": np.zeros(K),
                                     "Q": np.zeros(K), "M": np.zeros((K, D)),
                                     "S": np.zeros((K, D, D))}
-        T = resp_kn.sum(axis=1)
-        sums["T"] += T
+        sums["T"] += resp_kn.sum(axis=1)
         sums["Q"] += np.einsum("kn,kn->k", resp_kn, resp_kn)
         sums["M"] += resp_kn @ Xc
-        for k in np.flatnonzero(T > 0.0).tolist():
-            # Second moments from the rows that carry weight for this segment: rows
-            # under _NEGLIGIBLE add less than that share of a row each, far below the
-            # statistics' noise, and on separated segments most rows are skipped.
-            rows = np.flatnonzero(resp_kn[k] > _NEGLIGIBLE)
-            Xk = Xc[rows]
-            sums["S"][k] += (Xk * resp_kn[k, rows, None]).T @ Xk
+        # Second moments from the rows that carry weight for each segment: rows under
+        # _NEGLIGIBLE add less than that share of a row each, far below the statistics'
+        # noise, and on separated segments most rows are skipped.
+        add_segment_scatter(sums["S"], Xc, resp_kn, _NEGLIGIBLE)
         limit = self._state.get("reference_info", {}) or {}
         below = limit.get("unusual_below")
         if below is not None:

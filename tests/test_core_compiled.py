@@ -364,3 +364,27 @@ def test_tiled_gather_syrk_equals_the_weighted_outer_products(W, m, tile_isa):
         P = P0.copy()
         kern.gather_syrk(A, R, lo, w, floor, P)
         np.testing.assert_allclose(P, want, rtol=1e-12, atol=1e-12, err_msg=isa)
+
+
+def test_segment_scatter_is_the_same_on_both_paths(numpy_then_compiled):
+    # drift windows' second moments (shoal.core.drift.add_segment_scatter): rows at or
+    # under the floor are left out on both paths, the rest weighted by responsibility
+    from shoal.core.drift import add_segment_scatter
+    rng = np.random.default_rng(76)
+    X = rng.normal(size=(700, 6))
+    R = rng.dirichlet(np.ones(4), size=700).T.copy()
+    R[2, :50] = 1e-12                              # exactly at the floor: left out
+    R[3, 50:60] = 0.0
+    S0 = np.zeros((4, 6, 6))
+
+    def run():
+        S = S0.copy()
+        add_segment_scatter(S, X, R, 1e-12)
+        add_segment_scatter(S, X[:100], R[:, :100], 1e-12)   # accumulates
+        return S
+    a, b = numpy_then_compiled(run)
+    keep = np.where(R > 1e-12, R, 0.0)
+    want = np.einsum("kn,ni,nj->kij", keep, X, X) + \
+        np.einsum("kn,ni,nj->kij", keep[:, :100], X[:100], X[:100])
+    np.testing.assert_allclose(a, want, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(b, want, rtol=1e-12, atol=1e-12)
