@@ -410,13 +410,23 @@ def _parquet_batches(f: BinaryIO, settings: Settings):
     if size < 12 or head != b"PAR1" or tail != b"PAR1":
         raise InputRejected("truncated_parquet", "not a complete Parquet file (the 'PAR1' "
                             "magic is missing at its start or end)")
+    source = _arrow_source(f)
+    try:
+        return _parquet_open(source, settings)
+    except BaseException:
+        if source is not f:
+            source.close()
+        raise
+
+
+def _parquet_open(source, settings: Settings):
     try:
         # Strings are read as dictionaries, so that what they decode to is counted
         # against limits.max_data_bytes before it is made.
         # buffer_size, no pre_buffer: column chunks are read in pieces, not whole, so
         # memory is bounded whatever the row-group size (1,000,000-row groups, 17 columns:
         # peak RSS of a bare read 272 MB with pyarrow's defaults, 166 MB this way)
-        pf = pq.ParquetFile(f, read_dictionary=list(settings.passthrough),
+        pf = pq.ParquetFile(source, read_dictionary=list(settings.passthrough),
                             buffer_size=_PARQUET_BUFFER, pre_buffer=False,
                             thrift_string_size_limit=_THRIFT_STRING_LIMIT,
                             thrift_container_size_limit=_THRIFT_CONTAINER_LIMIT)
@@ -444,8 +454,39 @@ def _parquet_batches(f: BinaryIO, settings: Settings):
             raise InputRejected("non_numeric_feature",
                                 f"feature column {name!r} has type {t}, expected a number",
                                 column=name)
-    return pf.iter_batches(batch_size=BATCH_ROWS, columns=list(settings.columns),
-                           use_threads=False), schema
+    batches = pf.iter_batches(batch_size=BATCH_ROWS, columns=list(settings.columns),
+                              use_threads=False)
+    return _closing(batches, source), schema
+
+
+def _closing(batches, source):
+    """``batches``, closing ``source`` (an Arrow file of our own) when done or dropped."""
+    try:
+        yield from batches
+    finally:
+        if isinstance(source, pa.NativeFile):
+            source.close()
+
+
+def _arrow_source(f: BinaryIO):
+    """``f`` as a file Arrow reads itself (without the interpreter lock and without copies
+    into Python bytes: ~15% less CPU to decode a Parquet file), reopened through
+    /proc/self/fd so that it is the very file ``f`` holds open (not whatever its name
+    now points to); ``f`` itself where that is not possible."""
+    try:
+        fd = f.fileno()
+        source = pa.OSFile(f"/proc/self/fd/{fd}")
+    except (OSError, AttributeError, ValueError, pa.ArrowException):
+        return f
+    try:
+        same = os.fstat(fd)
+        st = os.stat(f"/proc/self/fd/{fd}")
+        if (st.st_dev, st.st_ino) == (same.st_dev, same.st_ino):
+            return source
+    except OSError:
+        pass
+    source.close()
+    return f
 
 
 def _parquet_data_bytes(meta: pq.FileMetaData) -> int:

@@ -280,3 +280,28 @@ def test_rows_far_beyond_the_models_range_are_invalid_not_poison(tmp_path, monke
     assert copy.column("segment").is_null().equals(labels.column("segment").is_null())
     unbounded = _huge_rows_then_normal(tmp_path / "unbounded", monkeypatch, np.inf)
     assert any(r.outcome == "quarantined" for r in unbounded[1:5])
+
+
+def test_parquet_inputs_leave_no_file_open(tmp_path):
+    # the reader opens its own Arrow file on the input (through /proc/self/fd on Linux):
+    # read to the end, left part-way or refused, it is closed again
+    import os
+    if not os.path.isdir("/proc/self/fd"):
+        pytest.skip("needs /proc/self/fd")
+    table = synthetic_table(0, 3000, SEED)
+    good = tmp_path / "good.parquet"
+    pq.write_table(table, good)
+    narrow = tmp_path / "narrow.parquet"
+    pq.write_table(table.select(["f1"]), narrow)        # a feature column is missing
+    settings = load_config(write_config(tmp_path))
+    before = len(os.listdir("/proc/self/fd"))
+    for _ in range(20):
+        with open(good, "rb") as f:
+            assert sum(fr.n_rows for fr in iter_frames(f, "parquet", settings, rows=1024)) == 3000
+        with open(good, "rb") as f:
+            frames = iter_frames(f, "parquet", settings, rows=1024)
+            next(frames)
+            frames.close()                               # left part-way
+        with open(narrow, "rb") as f, pytest.raises(readers.InputRejected):
+            next(iter_frames(f, "parquet", settings))
+    assert len(os.listdir("/proc/self/fd")) <= before
