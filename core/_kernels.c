@@ -558,6 +558,16 @@ static PyObject *tile_isa(PyObject *self, PyObject *args) {
     return PyUnicode_FromString(isa_names[isa_used]);
 }
 
+static PyObject *packed_len(PyObject *self, PyObject *args) {
+    Py_ssize_t D;
+    if (!PyArg_ParseTuple(args, "n", &D)) return NULL;
+    if (D < 1) {
+        PyErr_SetString(PyExc_ValueError, "packed_len: n_features must be at least 1");
+        return NULL;
+    }
+    return PyLong_FromSsize_t(packed_full_len(D));
+}
+
 /* The full type's packed operator from its whitening operator WT (K*D x D+1). */
 static PyObject *pack_full(PyObject *self, PyObject *args) {
     PyObject *ow, *op;
@@ -1025,6 +1035,8 @@ static PyMethodDef methods[] = {
     {"tile_isa", tile_isa, METH_VARARGS,
      "tile_isa([name]): the instruction set of the tiled log-joint ('avx512', 'avx2' or "
      "'none' for the BLAS path); with a name, use that one (at most the CPU's best)"},
+    {"packed_len", packed_len, METH_VARARGS,
+     "packed_len(n_features): doubles per component of pack_full's operator"},
     {"pack_full", pack_full, METH_VARARGS,
      "pack_full(WT, P): the full type's operator packed for log_joint"},
     {"log_joint", log_joint, METH_VARARGS,

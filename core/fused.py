@@ -65,11 +65,10 @@ def tiled() -> bool:
 
 
 def packed_full_len(n_components: int, n_features: int) -> int:
-    """Length of the full type's operator packed for the tiled kernel (``pack_full``):
-    per component and per block of 4 whitened coordinates j0..j0+3, four offsets and
-    four weights for each feature below min(j0 + 4, n_features)."""
-    per = sum(4 * (1 + min(j0 + 4, n_features)) for j0 in range(0, n_features, 4))
-    return n_components * per
+    """Length of the full type's operator packed for the tiled kernel (``pack_full``;
+    the layout is the extension's own: per component and per block of 4 whitened
+    coordinates, four offsets and four weights for each feature below the block's end)."""
+    return n_components * kernels().packed_len(n_features)
 
 
 def warm() -> bool:

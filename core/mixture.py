@@ -299,9 +299,10 @@ class Mixture:
         full = self.covariance == "full"
         nb = min(FUSED_ROWS if full else LINEAR_ROWS, hi - lo)
         A = np.empty((nb, W))
-        top, total = np.empty(nb), np.empty(nb)
         R = out.resp_kn
         tiled = fused.tiled()
+        if not tiled:
+            top, total = np.empty(nb), np.empty(nb)
         if full:
             WT, const = self._scoring_operator
             const = const[:, 0].copy()
