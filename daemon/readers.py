@@ -28,7 +28,7 @@ import pyarrow.parquet as pq
 
 from shoal.config import Settings
 from shoal.core import fused
-from shoal.daemon.digest import BLOCK, content_hasher
+from shoal.daemon.digest import BLOCK, content_hasher, hash_blocks
 from shoal.daemon.errors import InputRejected, Interrupted
 
 __all__ = ["Frame", "read_input", "iter_frames", "prefetch", "file_digest", "BATCH_ROWS",
@@ -207,12 +207,10 @@ class prefetch:
 
 class file_digest:
     """The content digest of an open file (:func:`shoal.daemon.digest.content_hasher` with
-    ``algorithm``, the state store's), computed in a thread (``os.pread``: the file's
+    ``algorithm``, the state store's), computed in a thread (``os.preadv``: the file's
     offset is left to its reader), so that hashing overlaps with reading and learning.
     Use it as a context manager; :meth:`result` waits for the hex digest.
     ``threaded=False`` hashes in :meth:`result` instead (small inputs)."""
-
-    BLOCK = BLOCK
 
     def __init__(self, f: BinaryIO, algorithm: str, threaded: bool = True):
         self._fd = f.fileno()
@@ -249,16 +247,9 @@ class file_digest:
         return self._digest
 
     def _run(self) -> None:
-        h = self._hasher
-        offset = 0
         try:
-            while not self._stop.is_set():
-                block = os.pread(self._fd, self.BLOCK, offset)
-                if not block:
-                    self._digest = h.hexdigest()
-                    return
-                h.update(block)
-                offset += len(block)
+            if hash_blocks(self._hasher, self._fd, self._stop.is_set):
+                self._digest = self._hasher.hexdigest()
         except OSError as exc:   # handed to result()
             self._error = exc
 
