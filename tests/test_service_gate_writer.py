@@ -248,3 +248,26 @@ def test_labels_metadata_refusing_part_way_leaves_no_file(tmp_path):
                             threaded=False, ready=lambda: len(written) >= 2)
     assert len(written) == 2
     assert list(tmp_path.iterdir()) == []
+
+
+def test_labels_parquet_encodings_per_column_and_the_values_read_back(tmp_path):
+    """Integer and time pass-through columns are delta-encoded, the labels columns with few
+    values dictionary-encoded (Parquet has no dictionary for booleans: ``unusual`` stays
+    bit-packed), the float labels plain; every value reads back (pyarrow's
+    own reader as the reference) whatever the encoding."""
+    from shoal.daemon.writer import write_labels_stream
+
+    tables = _labels_tables(3)
+    out = write_labels_stream(iter(tables), tmp_path / "enc.parquet", "parquet",
+                              lambda: {"model_version": 3}, threaded=False)
+    meta = pq.ParquetFile(out).metadata
+    for g in range(meta.num_row_groups):
+        enc = {meta.row_group(g).column(i).path_in_schema:
+               set(meta.row_group(g).column(i).encodings) for i in range(meta.num_columns)}
+        assert "DELTA_BINARY_PACKED" in enc["id"] and "DELTA_BINARY_PACKED" in enc["ts"]
+        for name in ("segment", "model_version"):
+            assert "RLE_DICTIONARY" in enc[name], name
+        for name in ("confidence", "log_density"):
+            assert enc[name] & {"RLE_DICTIONARY", "DELTA_BINARY_PACKED"} == set(), name
+    back = pq.read_table(out)
+    assert back.equals(pa.concat_tables(tables).replace_schema_metadata(back.schema.metadata))
