@@ -26,6 +26,7 @@ for _var in ("OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 
 from shoal.config import ConfigError, Settings, dump_settings, load_config  # noqa: E402
+from shoal.daemon.allocator import tune_allocator  # noqa: E402
 from shoal.core import ShoalError  # noqa: E402
 from shoal.daemon.alert_commands import add_alert_commands, alert_delivery  # noqa: E402
 from shoal.daemon.backfill import add_backfill_command  # noqa: E402
@@ -208,6 +209,7 @@ def _cmd_demo(args) -> int:
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)  # usage errors: argparse prints and exits 2
+    tune_allocator()   # frames' buffers reused, not fresh pages each (shoal.daemon.allocator)
     try:
         return int(args.func(args) or 0)
     except ConfigError as exc:
