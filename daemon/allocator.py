@@ -14,6 +14,11 @@ machine (2 cores, a virtual machine) that was 0.15-0.25 CPU-s of kernel time for
 128 MiB free at an arena's top, so the frames reuse the same memory. The peak resident
 memory does not grow (the same blocks are reused), but up to that much may stay
 resident between inputs.
+
+Arrow's own allocator (mimalloc) does the same by default: memory it frees goes back to
+the kernel 10 ms later. ``ARROW_PURGE_DELAY`` (an environment variable and its value,
+which the command line sets unless it is set already, before pyarrow first allocates)
+makes it keep that memory for reuse.
 """
 from __future__ import annotations
 
@@ -21,13 +26,14 @@ import ctypes
 import os
 import sys
 
-__all__ = ["tune_allocator", "MMAP_THRESHOLD", "TRIM_THRESHOLD"]
+__all__ = ["tune_allocator", "MMAP_THRESHOLD", "TRIM_THRESHOLD", "ARROW_PURGE_DELAY"]
 
 # mallopt parameters (glibc <malloc.h>)
 _M_TRIM_THRESHOLD = -1
 _M_MMAP_THRESHOLD = -3
 MMAP_THRESHOLD = 32 << 20    # glibc's largest (HEAP_MAX_SIZE / 2 on 64-bit)
 TRIM_THRESHOLD = 128 << 20
+ARROW_PURGE_DELAY = ("MIMALLOC_PURGE_DELAY", "-1")   # milliseconds; -1: never hand back
 
 
 def tune_allocator(environ=os.environ) -> bool:
