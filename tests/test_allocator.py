@@ -90,3 +90,17 @@ def test_arrow_memory_freed_between_frames_is_reused_not_handed_back():
     _, handed_back = _arrow_faults(MIMALLOC_PURGE_DELAY="0")
     # measured: ~40 faults kept against ~250 with mimalloc's default (10 ms)
     assert kept * 3 < handed_back, (kept, handed_back)
+
+
+def test_the_command_line_moves_start_up_objects_out_of_the_collectors_view():
+    """After ``main`` starts, the objects of the imports are frozen (gc.freeze), so a full
+    collection during an input does not walk them."""
+    script = ("import gc, sys\n"
+              "from shoal.daemon.cli import main\n"
+              "before = gc.get_freeze_count()\n"
+              "main(['check-config', '-c', sys.argv[1]])   # a configuration error\n"
+              "print(before, gc.get_freeze_count(), len(gc.get_objects(generation=2)))\n")
+    out = subprocess.run([sys.executable, "-c", script, "/nonexistent/shoal.yaml"],
+                         capture_output=True, text=True, check=True)
+    before, frozen, oldest = map(int, out.stdout.split())
+    assert before == 0 and frozen > 10_000 and oldest < frozen // 10
