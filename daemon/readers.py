@@ -37,7 +37,11 @@ __all__ = ["Frame", "read_input", "iter_frames", "prefetch", "file_digest", "BAT
 BATCH_ROWS = 65536
 FEATURE_BOUND = 1e50
 _CSV_BLOCK = 1 << 20
-_PARQUET_BUFFER = 1 << 20
+# Read buffer per Parquet column chunk. A page larger than the buffer is read straight
+# into its own buffer, a smaller one through the buffer (a copy): with 64 KiB, pyarrow's
+# usual 1 MiB pages skip that copy and 17 columns' buffers stay in L2. Reading a
+# 1M-row, 17-column file: 0.255 CPU-s (median of 8) against 0.275 with 1 MiB buffers.
+_PARQUET_BUFFER = 64 << 10
 _HEADER_LIMIT = 1 << 20
 # A .csv.gz may inflate this much whatever its ratio (small files compress well).
 _INFLATE_FREE = 16 << 20
