@@ -28,7 +28,7 @@ import pyarrow.parquet as pq
 
 from shoal.config import Settings
 from shoal.core import fused
-from shoal.daemon.digest import BLOCK, content_hasher, hash_blocks
+from shoal.daemon.digest import content_hasher, hash_blocks
 from shoal.daemon.errors import InputRejected, Interrupted
 
 __all__ = ["Frame", "read_input", "iter_frames", "prefetch", "file_digest", "BATCH_ROWS",
