@@ -122,7 +122,7 @@ def core_table(n_rows):
             print(f"{D:>3} {cov:>5} | {ours:>13,.0f} {plain:>11,.0f} {ref:>18,.0f} {gemm:>13,.0f} |"
                   f" {ours / ref:>9.2f} {plain / ref:>11.2f} {100 * ours / gemm:>8.1f}%"
                   f"   (shoal {how}, sklearn {ref_how})")
-    print("targets (issue 2): full D=16 >= 6x scikit-learn per iteration; diag D=16 >= 3x")
+    print("targets: full D=16 >= 6x scikit-learn per iteration; diag D=16 >= 3x")
     return results
 
 
@@ -150,7 +150,7 @@ def accuracy_run(n_rows=1_000_000, warmup=20_000):
     print(f"{'truth-started batch EM':<34} {best:>16.5f} {0.0:>21.5f} {'':>8}")
     print(f"{'shoal warm-up + one stepwise pass':<34} {ours:>16.5f} {best - ours:>21.5f} {t_init + t_pass:>8.1f}")
     print(f"{'scikit-learn default (n_init=1)':<34} {sk:>16.5f} {best - sk:>21.5f} {t_ref:>8.1f}")
-    print("targets (issue 2): gap <= 0.02 nats/row; shoal no worse than scikit-learn's default fit")
+    print("targets: gap <= 0.02 nats/row; shoal no worse than scikit-learn's default fit")
 
 
 def latency_table():
@@ -162,7 +162,7 @@ def latency_table():
     for fmt in ("parquet", "csv"):
         r = bench_latency(fmt=fmt)
         print(f"{fmt:>8} {r['p50_ms']:>8.1f} {r['p95_ms']:>8.1f} {r['max_ms']:>8.1f}")
-    print("targets (issue 3): p50 <= 150 ms, p95 <= 400 ms")
+    print("targets: p50 <= 150 ms, p95 <= 400 ms")
 
 
 def main(argv=None):
@@ -176,7 +176,7 @@ def main(argv=None):
     parser.add_argument("--e2e", action="store_true",
                         help="`shoal ingest` of 1,000,000-row Parquet/CSV drops against pyarrow's "
                              "read rate and the core E+M rate, and peak RSS for 1M vs 10M rows "
-                             "(issue 9; prints the core table too)")
+                             "(prints the core table too)")
     parser.add_argument("--all", action="store_true", help="run every benchmark")
     parser.add_argument("--blas-threads", type=int, default=None,
                         help="limit BLAS threads for shoal and the anchors alike "

@@ -1,4 +1,4 @@
-"""Benchmark of ``shoal backfill`` (issue 8): a history of Parquet files learned on local
+"""Benchmark of ``shoal backfill``: a history of Parquet files learned on local
 Dask workers against the same files taken by one process (the service's pipeline, as
 ``shoal ingest`` runs it). Prints a table; asserts nothing.
 

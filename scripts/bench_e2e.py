@@ -321,7 +321,7 @@ def e2e_table(rows: int = 1_000_000, big_rows: int = 10_000_000, repeats: int = 
                           f"{r['input'] / core:>8.2f} {r['first'] / core:>10.2f} {near[1]} "
                           f"{r['input'] / read:>8.2f} {r['first'] / read:>10.2f} "
                           f"{r['rss_mb']:>6.0f} MB")
-        print("targets (issue 9): Parquet full e2e >= 0.60 x core; CSV e2e >= 0.50 x read")
+        print("targets: Parquet full e2e >= 0.60 x core; CSV e2e >= 0.50 x read")
         del X
         peaks = memory_table(tmp, warm, drops["parquet"], rows, big_rows) if memory else None
     return {"rates": results, "memory": peaks}
@@ -339,7 +339,7 @@ def memory_table(tmp: Path, warm: Path, small: Path, rows: int, big_rows: int) -
         out[n] = r["rss_mb"]
         print(f"{n:>12,} {drop.stat().st_size / 2**20:>8.0f} {r['rss_mb']:>12.0f} "
               f"{n / r['input']:>11,.0f}")
-    print(f"ratio {out[big_rows] / out[rows]:.2f}; targets (issue 9): 10M within 20% of 1M "
+    print(f"ratio {out[big_rows] / out[rows]:.2f}; targets: 10M within 20% of 1M "
           "(ratio <= 1.20) and under 500 MB")
     return out
 

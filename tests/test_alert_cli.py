@@ -1,8 +1,8 @@
 """The alert commands as a user runs them (subprocesses): replay, demo, alerts, rebaseline.
 
-Issue 4, acceptance 5 (``shoal replay`` on the demo scenario prints the
-compressor-drift alert at the right place and leaves the live state untouched) and
-6 (the demo prints the drift alert and the new-state alert with their explanations).
+``shoal replay`` on the demo scenario prints the compressor-drift alert at the right
+place and leaves the live state untouched; the demo prints the drift alert and the
+new-state alert with their explanations.
 """
 import hashlib
 import json
@@ -130,7 +130,7 @@ def test_demo_prints_the_drift_and_new_state_alerts_with_explanations(tmp_path):
     # the new state: the fit drops, the unusual rows explained by the fan slowing down
     at = [i for i, x in enumerate(lines) if "FIRING" in x and "fit_drop" in x]
     assert at and "unusual" in lines[at[0] + 2] and "fan_rpm" in lines[at[0] + 2], out
-    # issue 5, acceptance 6: ice build-up is born as a new segment, announced with its
+    # ice build-up is born as a new segment, announced with its
     # summary in data units, and listed among the segments nearest the ice state
     at = [i for i, x in enumerate(lines) if x.strip().startswith("BORN")]
     assert len(at) == 1, out

@@ -1,4 +1,4 @@
-"""Alert delivery against a real HTTP server on loopback (issue 4, acceptance 4).
+"""Alert delivery against a real HTTP server on loopback.
 
 The receiver is ``http.server`` on 127.0.0.1, started by the test. Alerts come from
 the real pipeline (a group of rows moves); the sender is the one ``shoal watch`` and

@@ -1,4 +1,4 @@
-"""shoal backfill on a local Dask cluster (issue 8).
+"""shoal backfill on a local Dask cluster.
 
 The reference for the distributed rounds is the core's single-process ``Mixture.learn``
 over the same stream with ``refresh_rows`` set to the round size: rounds that end at

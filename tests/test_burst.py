@@ -1,4 +1,4 @@
-"""Burst (issue 7, acceptance 2, short form): 1,000 small files renamed into a watched
+"""Burst: 1,000 small files renamed into a watched
 inbox at once are all committed, none twice, none missed. The 10,000-file form is
 ``scripts/soak --burst 10000``."""
 import os

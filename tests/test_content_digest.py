@@ -1,4 +1,4 @@
-"""Content digests of inputs (issue 9): a new state store records BLAKE3 and its ledger holds
+"""Content digests of inputs: a new state store records BLAKE3 and its ledger holds
 BLAKE3 of each input's bytes; a version-1 store is migrated in one transaction and keeps
 SHA-256, so an input it committed before the upgrade is still found done after it; a store
 that records an algorithm shoal does not compute is refused with a clear error.

@@ -60,7 +60,7 @@ def test_old_faithful_reaches_the_maximum_likelihood_fit():
     m = initialise(X, 2, "full", seed=0, n_init=10)
     order = np.argsort(m.data_means()[:, 0])
     # Reference values: the maximum-likelihood K=2 full fit of this data set, recomputed
-    # with scikit-learn's GaussianMixture with restarts (issue 2, acceptance 3).
+    # with scikit-learn's GaussianMixture with restarts.
     assert abs(m.log_density(X).sum() - (-1130.264)) <= 0.01
     np.testing.assert_allclose(m.weights[order], [0.3559, 0.6441], rtol=1e-3)
     np.testing.assert_allclose(m.data_means()[order], [[2.0364, 54.4785], [4.2897, 79.9681]], rtol=1e-3)
@@ -81,6 +81,6 @@ def test_iris_three_full_components():
     iris = load_iris()
     m = initialise(iris.data, 3, "full", seed=0, n_init=10)
     # Reference: total log-likelihood -180.186 and ARI 0.904 at that maximum,
-    # recomputed with scikit-learn's GaussianMixture (issue 2, acceptance 4).
+    # recomputed with scikit-learn's GaussianMixture.
     assert abs(m.log_density(iris.data).sum() - (-180.186)) <= 0.01
     assert adjusted_rand_score(iris.target, m.score(iris.data).component) >= 0.90

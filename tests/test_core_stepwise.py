@@ -88,7 +88,7 @@ def test_the_same_stream_cut_differently_gives_the_same_model(mixture_data):
         "ragged": _stream_fit(start, stream, ragged),
     }
     avg = {k: float(np.mean(m.log_density(stream))) for k, m in fits.items()}
-    # Issue 2 acceptance 6 asks 0.005 nats/row; refreshing at global row multiples
+    # The target is 0.005 nats/row; refreshing at global row multiples
     # makes the models equal up to rounding, which we check far more tightly.
     assert max(avg.values()) - min(avg.values()) < 0.005
     for name in ("500", "ragged"):
@@ -156,7 +156,7 @@ def test_a_starved_component_keeps_a_valid_covariance(mixture_data):
 
 
 def test_stepwise_pass_reaches_the_fit_started_from_the_truth(mixture_data):
-    # Issue 2 acceptance 9, test form: 200,000 rows, K=8, D=4, full covariances.
+    # 200,000 rows, K=8, D=4, full covariances.
     X, _, weights, means, covs = mixture_data(200_000, 8, 4, seed=36, spread=5.0)
     warm = X[:10_000]
     m = initialise(warm, 8, "full", seed=0, n_init=5)

@@ -1,4 +1,4 @@
-"""Acceptance 3: bad inputs are quarantined (or refused) and the service goes on.
+"""Bad inputs are quarantined (or refused) and the service goes on.
 
 One in-process service (worker thread + watchdog observer) takes every kind of
 bad input in turn; a good drop after each shows it still runs, and the outbox

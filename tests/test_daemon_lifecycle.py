@@ -1,5 +1,5 @@
-"""Real `shoal watch` processes: SIGTERM mid-file (acceptance 6), SIGKILL at random
-moments (acceptance 2, short form of scripts/crashtest), 50 demo drops (acceptance 1)."""
+"""Real `shoal watch` processes: SIGTERM mid-file, SIGKILL at random
+moments (short form of scripts/crashtest), 50 demo drops."""
 import json
 import sqlite3
 import time

@@ -1,5 +1,5 @@
-"""Watching: incomplete files are not read (acceptance 4), lost events do not lose
-files (acceptance 5), a dead observer is rebuilt, ready files go oldest first."""
+"""Watching: incomplete files are not read, lost events do not lose
+files, a dead observer is rebuilt, ready files go oldest first."""
 import os
 import threading
 import time

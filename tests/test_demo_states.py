@@ -1,4 +1,4 @@
-"""The demo's segments match the warehouse scenario's operating states (issue 2, item 11).
+"""The demo's segments match the warehouse scenario's operating states.
 
 The scenario is our own invented data (daemon/scenario.py); this checks that the core,
 warmed up and then learning stepwise as the service does, ends with one segment per

@@ -1,9 +1,9 @@
 """Drift alerts from the pipeline: quiet on a stationary stream, and each kind of change found.
 
-Issue 4, acceptance 2 (2,000,000 stationary rows, K=6, D=5, default bounds: no alert)
-and 3 (a 1-sd mean shift of a segment with >= 10% of rows alerted within 20,000 rows,
-naming that segment and the moved feature first; a weight change of 0.15; a doubling
-of a segment's spread; the alert resolves after the population returns). Streams are
+2,000,000 stationary rows (K=6, D=5, default bounds) raise no alert; a 1-sd mean shift
+of a segment with >= 10% of rows is alerted within 20,000 rows, naming that segment and
+the moved feature first; so are a weight change of 0.15 and a doubling of a segment's
+spread; the alert ends after the population returns. Streams are
 seeded synthetic mixtures (tests/conftest.py) fed as Parquet drops through the real
 pipeline in-process, with the shipped default settings except ``segments: 6``.
 """
@@ -108,7 +108,7 @@ def _windows_evaluated(s):
 
 
 def test_two_million_stationary_rows_raise_no_alert(stream):
-    # Acceptance 2. 40 drops of 50,000 rows with the default bounds; the drift layer
+    # 40 drops of 50,000 rows with the default bounds; the drift layer
     # must have been live the whole time (reference taken, every window after it
     # evaluated: ~480 of the default 4,096 rows).
     weights, means, covs = _truth()
@@ -126,7 +126,7 @@ def test_two_million_stationary_rows_raise_no_alert(stream):
     assert s.alerts() == []
     # nothing was even part-way to firing at the end
     assert state["bounds"]["entries"] == {}
-    # issue 5, acceptance 5: no birth, retirement or merge either (they would be alerts
+    # no birth, retirement or merge either (they would be alerts
     # too); the lifecycle was watching: decision points passed, the pool stayed small
     assert [h for h in s.store.history() if h["event"]] == []
     assert s.pipeline.state.mixture.ids.tolist() == list(range(K))

@@ -1,4 +1,4 @@
-"""Fault injection (issue 7, acceptance 3): writes of the labels file and of the state
+"""Fault injection: writes of the labels file and of the state
 store fail with ENOSPC or EIO at chosen points while a watched service runs.
 
 For each point: the service stays up, logs the failure and commits nothing of that

@@ -1,4 +1,4 @@
-"""Property-based fuzzing of the readers and validation (issue 7, acceptance 1).
+"""Property-based fuzzing of the readers and validation.
 
 Generated CSV (column order and extra columns, quoting, UTF-8 with and without a
 BOM, Latin-1 and UTF-16, numbers written in many ways, huge and tiny values, empty

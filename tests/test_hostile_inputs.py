@@ -1,4 +1,4 @@
-"""Hostile resources (issue 7, acceptance 5): each is refused by its limit, and the
+"""Hostile resources: each is refused by its limit, and the
 process that refuses it never holds more than 300 MB.
 
 Every case is ingested by its own ``shoal ingest`` subprocess (its own state folder);

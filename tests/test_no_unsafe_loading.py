@@ -1,4 +1,4 @@
-"""Security review (issue 7): no pickle anywhere, YAML only through safe loading.
+"""Security review: no pickle anywhere, YAML only through safe loading.
 
 The package and its scripts are scanned as text. A checkpoint, a warm-up buffer or
 a backfill piece is numpy ``.npy`` bytes read with ``allow_pickle=False``; a

@@ -1,6 +1,6 @@
 """The status endpoint and the report against a real `shoal watch` process fed 20 demo drops:
-/metrics against the ledger (issue 6, acceptance 2), the status page in headless Chromium
-(acceptance 1), the report in headless Chromium (acceptance 3), and the endpoint's rules
+/metrics against the ledger, the status page and the report in headless Chromium, and the
+endpoint's rules
 (read-only, health, readiness)."""
 import base64
 import io

@@ -1,6 +1,5 @@
-"""In-process checks of the operating parts: /healthz when the worker stops or stalls
-(issue 6, acceptance 6), the notify client, reload rules, progress bars, and alerts read
-from the store by `shoal status` and /metrics."""
+"""In-process checks of the operating parts: /healthz when the worker stops or stalls, the
+notify client, reload rules, progress bars, and alerts read from the store by `shoal status` and /metrics."""
 import io
 import json
 import threading

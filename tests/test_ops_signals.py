@@ -1,5 +1,5 @@
 """A real `shoal watch` process and the service manager's side of it: the notify socket
-(issue 6, acceptance 4) and SIGHUP reloads (acceptance 5)."""
+and SIGHUP reloads."""
 import signal
 import socket
 import time

@@ -1,15 +1,14 @@
 """Segments with a life in the service: births, retirements and merges, and stable labels.
 
-Issue 5, acceptance 1 (a new group of 5% of the rows is born as a segment within
-20,000 rows, its mean within 0.5 sd of the truth, old ids and labels unchanged),
-2 (a group that stops appearing retires after the configured span, no other id
-changes), 3 (two groups drifting into each other merge once their overlap passes the
-bound; the merged parameters are the statistics-sum of the two, checked against a
-direct computation from the checkpoint before the merge) and 4 (no lifecycle event:
-labels of a fixed probe set agree between consecutive model versions, adjusted Rand
-index >= 0.99 over 100 versions). Acceptance 5 (2,000,000 stationary rows, no event)
-is checked in tests/test_drift_alerts.py's stationary run, 6 (the demo's ice build-up
-born) in tests/test_alert_cli.py's demo run.
+A new group of 5% of the rows is born as a segment within 20,000 rows, its mean within
+0.5 sd of the truth, old ids and labels unchanged; a group that stops appearing retires
+after the configured span, no other id changes; two groups drifting into each other
+merge once their overlap passes the bound (the merged parameters are the statistics-sum
+of the two, checked against a direct computation from the checkpoint before the merge);
+with no lifecycle event, labels of a fixed probe set agree between consecutive model
+versions (adjusted Rand index >= 0.99 over 100 versions). 2,000,000 stationary rows
+with no event are checked in tests/test_drift_alerts.py's stationary run, the demo's
+ice build-up born in tests/test_alert_cli.py's demo run.
 
 Streams are the seeded K=6, D=5 mixture of tests/test_drift_alerts.py, fed as Parquet
 drops through the real pipeline in-process.

@@ -1,4 +1,4 @@
-"""A stateful test of the inbox (issue 7): hypothesis picks a sequence of drops - new
+"""A stateful test of the inbox: hypothesis picks a sequence of drops - new
 files renamed into the inbox, files written in place half-way then finished,
 duplicates under a new name, corrupt files - and
 crashes at chosen moments of an input (before its labels file, after it, after the

@@ -1,4 +1,4 @@
-"""Inputs read, learned and labelled frame by frame (issue 9): the frames do not depend
+"""Inputs read, learned and labelled frame by frame: the frames do not depend
 on how the file cuts its record batches, the model and labels do not depend on the frame
 size, and a reader-thread error ends as a quarantine, not a hang."""
 import functools
