@@ -8,6 +8,7 @@ was found, e.g. ``watch.settle_seconds: expected a number >= 0, found 'soon'``.
 from __future__ import annotations
 
 import dataclasses
+import difflib
 import re
 import types
 import typing
@@ -152,8 +153,10 @@ def _build(cls: type, data: Any, prefix: str):
     fields = {f.name: f for f in dataclasses.fields(cls)}
     for key in data:
         if key not in fields:
+            near = difflib.get_close_matches(str(key), list(fields), n=1, cutoff=0.75)
+            hint = f"did you mean {prefix}{near[0]}? " if near else ""
             raise ConfigError(
-                f"{prefix}{key}: unknown setting; expected one of "
+                f"{prefix}{str(key)[:80]}: unknown setting; {hint}expected one of "
                 f"{', '.join(sorted(fields))}")
     hints = typing.get_type_hints(cls)
     values = {}

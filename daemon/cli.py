@@ -179,6 +179,8 @@ def _cmd_label(args) -> int:
     src, out = Path(args.file), Path(args.out)
     if not src.exists():
         raise UsageError(f"no such file: {src}")
+    if not out.parent.is_dir():
+        raise UsageError(f"--out {out}: no such folder {out.parent}")
     with open_service_parts(settings, lock=False) as (layout, store, pipeline):
         with _stop_on_signals(pipeline.stop):
             try:
@@ -238,6 +240,14 @@ def main(argv: list[str] | None = None) -> int:
         return 1
     except KeyboardInterrupt:
         return 130
+    except BrokenPipeError:
+        # The reader of our output went away (`shoal alerts | head`): not an error of
+        # ours. Point stdout at /dev/null so the interpreter's final flush does not
+        # fail again, and exit as a process killed by SIGPIPE would (128 + 13).
+        with contextlib.suppress(OSError):
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, sys.stdout.fileno())
+        return 141
 
 
 if __name__ == "__main__":
