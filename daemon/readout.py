@@ -100,6 +100,14 @@ def _alert_record(row: dict) -> dict:
     return out
 
 
+def _notification_order(record: dict) -> tuple:
+    """Oldest first: by commit time, then model version (inputs committed together share a
+    time), then the alert's own sequence (raised before resolved), then the name."""
+    status = record.get("status")
+    return (record.get("created") or 0, record.get("version") or 0,
+            1 if status == "resolved" else 0, str(record.get("notification") or record.get("id")))
+
+
 def read_alerts(reader: StateReader, since: float | None = None,
                 limit: int | None = None) -> list[dict]:
     """Alerts newest first (``created`` epoch seconds >= ``since``); [] when none exist."""
@@ -112,14 +120,14 @@ def read_alerts(reader: StateReader, since: float | None = None,
     rows = [_alert_record(dict(zip(names, r))) for r in cur.fetchall()]
     if since is not None:
         rows = [r for r in rows if (r.get("created") or 0) >= since]
-    rows.sort(key=lambda r: (r.get("created") or 0, str(r.get("id"))), reverse=True)
+    rows.sort(key=_notification_order, reverse=True)
     return rows if limit is None else rows[:limit]
 
 
 def open_alerts(alerts: list[dict]) -> list[dict]:
     """Alerts whose latest notification is 'firing' (not yet resolved), newest first."""
     latest: dict[str, dict] = {}
-    for a in sorted(alerts, key=lambda r: (r.get("created") or 0, str(r.get("notification")))):
+    for a in sorted(alerts, key=_notification_order):
         latest[str(a.get("id"))] = a
     return [a for a in sorted(latest.values(), key=lambda r: r.get("created") or 0,
                               reverse=True) if a.get("status") == "firing"]
