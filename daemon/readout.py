@@ -81,7 +81,7 @@ def _alert_record(row: dict) -> dict:
     """One alert notification as a flat dict, whatever table it came from.
 
     A row's own ``id`` names the notification (``notification``); the payload's ``id``
-    names the alert, the same for its firing and its resolved notification.
+    names the alert, the same for its raised and its cleared notification.
     """
     out = dict(row)
     out["notification"] = out.get("id")
@@ -95,17 +95,17 @@ def _alert_record(row: dict) -> dict:
         for key, value in payload.items():
             out.setdefault(key, value)
         out["id"] = payload.get("id", out.get("id"))
-    out.setdefault("status", "firing")
+    out.setdefault("status", "raised")
     out.setdefault("severity", "warning")
     return out
 
 
 def _notification_order(record: dict) -> tuple:
     """Oldest first: by commit time, then model version (inputs committed together share a
-    time), then the alert's own sequence (raised before resolved), then the name."""
+    time), then the alert's own sequence (raised before cleared), then the name."""
     status = record.get("status")
     return (record.get("created") or 0, record.get("version") or 0,
-            1 if status == "resolved" else 0, str(record.get("notification") or record.get("id")))
+            1 if status == "cleared" else 0, str(record.get("notification") or record.get("id")))
 
 
 def read_alerts(reader: StateReader, since: float | None = None,
@@ -125,12 +125,12 @@ def read_alerts(reader: StateReader, since: float | None = None,
 
 
 def open_alerts(alerts: list[dict]) -> list[dict]:
-    """Alerts whose latest notification is 'firing' (not yet resolved), newest first."""
+    """Alerts whose latest notification is 'raised' (not yet cleared), newest first."""
     latest: dict[str, dict] = {}
     for a in sorted(alerts, key=_notification_order):
         latest[str(a.get("id"))] = a
     return [a for a in sorted(latest.values(), key=lambda r: r.get("created") or 0,
-                              reverse=True) if a.get("status") == "firing"]
+                              reverse=True) if a.get("status") == "raised"]
 
 
 def inbox_backlog(settings: Settings, layout: Layout, done_names: set[str] | None = None,
@@ -173,7 +173,7 @@ def state_snapshot(reader: StateReader, settings: Settings, layout: Layout,
     for a in alerts:
         key = f"{a.get('status')}/{a.get('severity')}"
         counts[key] = counts.get(key, 0) + 1
-    firing = open_alerts(alerts)
+    raised = open_alerts(alerts)
     done = None
     if settings.output.keep_inputs:
         done = {n for (n,) in reader.db.execute(
@@ -190,7 +190,7 @@ def state_snapshot(reader: StateReader, settings: Settings, layout: Layout,
         "last_input": totals["last_input"],
         "last_error": totals["last_error"],
         "alert_counts": counts,
-        "alerts_firing": len(firing),
+        "alerts_active": len(raised),
         "recent_alerts": alerts[:recent_alerts],
         "backlog": inbox_backlog(settings, layout, done, now),
     }
@@ -247,7 +247,7 @@ def format_status(snap: dict, width: int = 100) -> str:
             lines.append(f"(+{len(head) - shown} more features: shoal segments -c CONFIG)")
     lines.append("")
     counts = snap["alert_counts"]
-    lines.append(f"alerts: {snap.get('alerts_firing', 0)} firing now; notifications: "
+    lines.append(f"alerts: {snap.get('alerts_active', 0)} active now; notifications: "
                  + (", ".join(f"{v} {k}" for k, v in sorted(counts.items())) or "none"))
     for a in snap["recent_alerts"][:5]:
         lines.append(f"  {a.get('status', '?'):9s} {a.get('severity', '?'):8s} segment "

@@ -512,7 +512,7 @@ class StateStore:
     def apply_rebaseline(self, request_id: int, version: int, extra: Mapping[str, Any],
                          alerts: Iterable[tuple[str, Mapping[str, Any]]] = ()) -> None:
         """Apply a re-baseline to checkpoint ``version`` (the latest) in one transaction:
-        its extras (the drift state) replaced, the request marked, resolved alerts queued."""
+        its extras (the drift state) replaced, the request marked, cleared alerts queued."""
         now = self.clock()
         with self._transaction():
             if self.model_version != version:
