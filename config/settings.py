@@ -189,10 +189,11 @@ class WebhookSettings:
     url: str = _f("", "http:// or https:// URL that receives each alert as a JSON POST",
                   required=True)
     secret_file: Path | None = _f(
-        None, "file holding the HMAC-SHA256 signing secret (relative: from the config's "
-              "folder)")
+        None, "file holding the signing secret, whsec_<base64 key> (a secret without the "
+              "prefix is used as its bytes; relative: from the config's folder)")
     secret_env: str | None = _f(None, "environment variable holding the signing secret")
-    timeout_seconds: float = _f(5.0, "timeout of one request", min=0.1, max=300.0)
+    timeout_seconds: float = _f(5.0, "deadline of one whole request, connect to last byte",
+                                min=0.1, max=300.0)
     retries: int = _f(8, "failed attempts retried this many times before the alert waits "
                          "for the next start", min=0, max=1000)
     backoff_seconds: float = _f(1.0, "first retry delay; doubles each retry, with jitter",
