@@ -136,7 +136,7 @@ class LedgerCollector(Collector):
         yield notes
         raised = GaugeMetricFamily("shoal_alerts_active", "Alerts raised and not yet cleared",
                                    labels=["severity"])
-        by_severity = {"warning": 0, "critical": 0}
+        by_severity = {"major": 0, "critical": 0}     # a drift alert's severities
         for a in open_alerts(alerts):
             sev = str(a.get("severity"))
             by_severity[sev] = by_severity.get(sev, 0) + 1

@@ -52,9 +52,13 @@ from shoal.core.drift import (
 )
 from shoal.daemon.logs import log_event
 
-__all__ = ["DriftMonitor", "InputWatch", "alert_id", "STATISTIC_UNITS", "SEGMENT_STATISTICS"]
+__all__ = ["DriftMonitor", "InputWatch", "alert_id", "STATISTIC_UNITS", "SEGMENT_STATISTICS",
+           "PAYLOAD_SCHEMA_VERSION"]
 
 STATE_FORMAT = 1
+# Version of the alert payload's fields (README, "Alert payload"); a change to a field's
+# name or meaning bumps it, so a receiver can tell which fields to expect.
+PAYLOAD_SCHEMA_VERSION = 1
 SEGMENT_STATISTICS = ("mean_shift", "spread_ratio", "weight_change")
 STATISTIC_UNITS = {
     "mean_shift": "baseline sds",
@@ -551,6 +555,7 @@ class InputWatch:
         if e["status"] == "raised":
             windows = [w for w in st["recent"] if w["index"] >= e["first_at"]]
             payload = {
+                "schema_version": PAYLOAD_SCHEMA_VERSION,
                 "id": alert_id(st["baseline_number"], seg, stat, e["first_at"]),
                 "kind": "drift",
                 "status": "raised",
@@ -577,11 +582,12 @@ class InputWatch:
         else:
             opened = st["open"].pop(key, None)
             base = opened["payload"] if opened else {
+                "schema_version": PAYLOAD_SCHEMA_VERSION,
                 "id": alert_id(st["baseline_number"], seg, stat, e["first_at"] or e["at"]),
                 "kind": "drift", "segment": seg, "statistic": stat,
                 "unit": STATISTIC_UNITS[stat.split("[")[0]],
                 "model_version": {"first": self.version}, "rows": {"first": info["rows"][0]},
-                "severity": "warning", "baseline": None}
+                "severity": "major", "baseline": None}
             windows = st["recent"][-self.drift.resolve_persist:]
             payload = dict(base)
             payload.update({
@@ -614,7 +620,9 @@ class InputWatch:
                       summary=(payload.get("explanation") or {}).get("summary"))
 
     def _severity(self, stat, value, bound) -> str:
-        return "critical" if value >= self.drift.critical_multiple * bound else "warning"
+        """X.733 perceived severity: ``critical`` at ``critical_multiple`` times the bound,
+        ``major`` past the bound (segment events are ``warning``)."""
+        return "critical" if value >= self.drift.critical_multiple * bound else "major"
 
     def _explain(self, seg, stat, detail, ref: Baseline) -> dict:
         names = self.monitor.features

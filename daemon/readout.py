@@ -96,7 +96,7 @@ def _alert_record(row: dict) -> dict:
             out.setdefault(key, value)
         out["id"] = payload.get("id", out.get("id"))
     out.setdefault("status", "raised")
-    out.setdefault("severity", "warning")
+    out.setdefault("severity", "major")
     return out
 
 

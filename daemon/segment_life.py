@@ -47,6 +47,7 @@ from shoal.core.lifecycle import (
     unexplained_below,
 )
 from shoal.daemon.logs import log_event
+from shoal.daemon.monitor import PAYLOAD_SCHEMA_VERSION
 from shoal.daemon.store import HistoryRow
 
 __all__ = ["LifeWatch", "lifecycle_alert_id", "STATE_FORMAT"]
@@ -287,10 +288,11 @@ class LifeWatch:
                  "spread": np.asarray(spread).tolist(), **more}
         self.events.append(event)
         payload = {
+            "schema_version": PAYLOAD_SCHEMA_VERSION,
             "id": lifecycle_alert_id(kind, sid),
             "kind": "lifecycle",
             "status": kind,
-            "severity": "info",
+            "severity": "warning",
             "segment": int(sid),
             "statistic": "segments",
             "model_version": {"first": self.version, "last": self.version},

@@ -162,15 +162,15 @@ def test_status_and_metrics_read_alerts_written_through_the_store(tmp_path):
     settings = load_config(write_config(tmp_path))
     layout = prepare_folders(settings)
     store = StateStore(layout.db)
-    # One row per notification, as the drift layer writes them: a1 fires; a2 fires and
-    # clears (its cleared notification committed with a later input).
+    # One row per notification, as the drift layer writes them: a1 is raised; a2 is raised
+    # and cleared (its cleared notification committed with a later input).
     payloads = [("a1.raised", {"id": "a1", "status": "raised", "severity": "critical",
                                "segment": 2, "statistic": "mean_shift", "value": 1.7,
                                "bound": 0.5}),
-                ("a2.raised", {"id": "a2", "status": "raised", "severity": "warning",
+                ("a2.raised", {"id": "a2", "status": "raised", "severity": "major",
                                "segment": 1, "statistic": "weight_change", "value": 0.07,
                                "bound": 0.05})]
-    cleared = [("a2.cleared", {"id": "a2", "status": "cleared", "severity": "warning",
+    cleared = [("a2.cleared", {"id": "a2", "status": "cleared", "severity": "major",
                                  "segment": 1, "statistic": "weight_change", "value": 0.01,
                                  "bound": 0.05})]
     store.commit_input(LedgerEntry(digest="0" * 64, name="x.csv", size=10, outcome="committed",
@@ -185,8 +185,8 @@ def test_status_and_metrics_read_alerts_written_through_the_store(tmp_path):
     reader = StateReader(layout.db)
     try:
         snap = state_snapshot(reader, settings, layout, now=200.0)
-        assert snap["alert_counts"] == {"raised/critical": 1, "raised/warning": 1,
-                                        "cleared/warning": 1}
+        assert snap["alert_counts"] == {"raised/critical": 1, "raised/major": 1,
+                                        "cleared/major": 1}
         assert snap["alerts_active"] == 1          # a2's latest notification cleared it
         assert snap["last_error"]["name"] == "bad.csv"
         text = format_status(snap)
@@ -197,10 +197,10 @@ def test_status_and_metrics_read_alerts_written_through_the_store(tmp_path):
         alerts = {(s.labels["status"], s.labels["severity"]): s.value
                   for s in fams["shoal_alert_notifications"].samples
                   if s.name.endswith("_total")}
-        assert alerts == {("raised", "critical"): 1, ("raised", "warning"): 1,
-                          ("cleared", "warning"): 1}
+        assert alerts == {("raised", "critical"): 1, ("raised", "major"): 1,
+                          ("cleared", "major"): 1}
         raised = {s.labels["severity"]: s.value for s in fams["shoal_alerts_active"].samples}
-        assert raised == {"critical": 1, "warning": 0}
+        assert raised == {"critical": 1, "major": 0}
         assert fams["shoal_alerts_undelivered"].samples[0].value == 3
         inputs = {s.labels["outcome"]: s.value for s in fams["shoal_inputs"].samples}
         assert inputs == {"committed": 2, "duplicate": 0, "quarantined": 1}
