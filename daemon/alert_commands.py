@@ -22,7 +22,8 @@ from shoal.daemon.progress import progress
 from shoal.daemon.report import parse_since
 from shoal.daemon.store import StateStore
 
-__all__ = ["add_alert_commands", "alert_delivery", "deliver_alerts", "format_alert", "replay"]
+__all__ = ["add_alert_commands", "alert_delivery", "deliver_alerts", "format_alert", "replay",
+           "replay_counts"]
 
 def _n(x) -> str:
     return "-" if x is None else f"{x:.4g}" if isinstance(x, float) else str(x)
@@ -241,11 +242,24 @@ def replay(config: Path, folder_in: Path, *, state_dir: str | None = None,
             sender.deliver_due()
         finally:
             sender.stop()
-    raised = sum(a["status"] == "raised" for a in summary["alerts"])
+    summary["counts"] = replay_counts(summary["alerts"])
+    c = summary["counts"]
     print(f"replay done: {summary['rows']} rows in {len(files)} inputs {summary['outcomes']}; "
-          f"{raised} alerts raised, {len(summary['alerts']) - raised} cleared; alerts in "
-          f"{settings.alerts.file}", file=out)
+          f"{c['raised']} alerts raised, {c['cleared']} cleared, {c['lifecycle']} segment "
+          f"events; alerts in {settings.alerts.file}", file=out)
     return summary
+
+
+def replay_counts(alerts: list[dict]) -> dict[str, int]:
+    """Drift alerts raised, drift alerts cleared and segment events (born, retired,
+    merged), each counted under its own word."""
+    counts = {"raised": 0, "cleared": 0, "lifecycle": 0}
+    for a in alerts:
+        if a.get("kind") == "lifecycle":
+            counts["lifecycle"] += 1
+        elif a.get("status") in ("raised", "cleared"):
+            counts[a["status"]] += 1
+    return counts
 
 
 def _cmd_replay(args) -> int:

@@ -1,8 +1,8 @@
 """The alert commands as a user runs them (subprocesses): replay, demo, alerts, rebaseline.
 
-Issue 4, acceptance 5 (``shoal replay`` on the demo scenario prints the
-compressor-drift alert at the right place and leaves the live state untouched) and
-6 (the demo prints the drift alert and the new-state alert with their explanations).
+``shoal replay`` on the demo scenario prints the compressor-drift alert at the right
+place and leaves the live state untouched; the demo prints the drift alert and the
+new-state alert with their explanations.
 """
 import hashlib
 import json
@@ -164,3 +164,31 @@ def test_demo_prints_the_drift_and_new_state_alerts_with_explanations(tmp_path):
         a["payload"]["id"] for a in listed if a["payload"]["status"] == "cleared"}
     assert {a["id"] for a in by_rebaseline} == still_raised
     assert all(a["note"] == "ice build-up is the new normal" for a in by_rebaseline)
+
+
+def test_replay_counts_raised_cleared_and_segment_events_each_under_its_own_word(tmp_path):
+    # Under the lively config eight warehouse drops raise and clear drift alerts and
+    # give birth to segments; the summary line counts each kind apart, as the alert
+    # file (read here) has them.
+    import io
+    import re
+
+    from shoal.daemon.alert_commands import replay
+
+    from _lively import LIVELY_CONFIG, lively_drops
+
+    lively_drops(tmp_path / "history", 0, 8)
+    cfg = tmp_path / "live" / "shoal.yaml"
+    cfg.parent.mkdir()
+    cfg.write_text(yaml.safe_dump(LIVELY_CONFIG))
+    out = io.StringIO()
+    replay(cfg, tmp_path / "history", state_dir=str(tmp_path / "trial"), out=out)
+    alerts = [json.loads(x) for x in (tmp_path / "trial" / "alerts.jsonl").read_text()
+              .splitlines()]
+    want = (sum(a["kind"] == "drift" and a["status"] == "raised" for a in alerts),
+            sum(a["kind"] == "drift" and a["status"] == "cleared" for a in alerts),
+            sum(a["kind"] == "lifecycle" for a in alerts))
+    assert all(want), want                         # each kind happened at least once
+    line = out.getvalue().splitlines()[-1]
+    found = re.search(r"(\d+) alerts raised, (\d+) cleared, (\d+) segment events", line)
+    assert found and tuple(map(int, found.groups())) == want, line

@@ -78,6 +78,13 @@ def test_config_prints_the_effective_config(tmp_path):
     assert r.returncode == 0
     assert "valid" in r.stdout and "settle_seconds: 0.5" in r.stdout
     assert f"inbox: {tmp_path / 'inbox'}" in r.stdout
+    # an error in the config: exit 2, the key named, nothing printed as valid
+    bad = write_config(tmp_path / "bad", drift={"persist": 0})
+    r = shoal("config", "-c", bad)
+    assert r.returncode == 2 and "drift.persist" in r.stderr and r.stdout == ""
+    # the command has one name: the earlier one is not a command any more
+    r = shoal("check" + "-config", "-c", cfg)
+    assert r.returncode == 2 and "invalid choice" in r.stderr
 
 
 def test_ingest_label_segments(tmp_path):

@@ -15,36 +15,23 @@ import shutil
 import sqlite3
 from pathlib import Path
 
-import pyarrow as pa
 import pytest
 import yaml
 
 from shoal.config import load_config
 from shoal.daemon import store_words
 from shoal.daemon.delivery import AlertSender
-from shoal.daemon.drills import write_drop
-from shoal.daemon.scenario import FEATURES, drops
 from shoal.daemon.store import SCHEMA_VERSION, StateStore
 
+from _lively import LIVELY_CONFIG, lively_drops
 from _webhook import VerifyingReceiver, log  # noqa: F401 (log)
 
 FIXTURE = Path(__file__).parent / "data" / "store-v2-old-alert-words.db"
 OLD_WORDS = ('"firing"', '"resolved"', "resolved_by", "fired_at", '"reference"',
              "reference_mean", "current_mean", "reference_weight", "reference sds",
              '"info"')
-OLD_CONFIG = {
-    "features": list(FEATURES), "passthrough": ["unit_id", "timestamp"], "segments": 3,
-    "covariance": "diag", "warmup_rows": 1000, "seed": 3,
-    "learning": {"n_init": 1, "checkpoints_kept": 1},
-    "inbox": "inbox", "outbox": "outbox", "state": "state",
-    "drift": {"settle_rows": 1000, "window_rows": 500, "noise_multiple": 0.0, "persist": 1,
-              "resolve_persist": 1, "resolve_fraction": 1.0, "cool_down_windows": 0,
-              "time_column": "timestamp",
-              "bounds": {"weight_change": 0.02, "mean_shift": None, "spread_ratio": None,
-                         "fit_drop": None}},
-    "lifecycle": {"check_rows": 500, "unexplained_quantile": 0.9, "birth_rows": 20,
-                  "birth_max_spread": 5.0, "pool_span_rows": 5000},
-}
+# the config the fixture was written under (tests/_lively.py)
+OLD_CONFIG = LIVELY_CONFIG
 
 
 def _raw(db: Path) -> dict:
@@ -179,13 +166,7 @@ def test_a_migrated_store_learns_on_and_clears_its_open_alerts_in_the_new_words(
     assert len(open_before) == 2
     cfg = tmp_path / "shoal.yaml"
     cfg.write_text(yaml.safe_dump(OLD_CONFIG))
-    files = tmp_path / "more"
-    files.mkdir()
-    paths = []
-    for i, columns in enumerate(drops(14, 500, seed=7)):   # the drops after the first 8
-        if i >= 8:
-            columns.pop("state")
-            paths.append(write_drop(pa.table(columns), files, f"fleet-{i:03d}.parquet"))
+    paths = lively_drops(tmp_path / "more", 8, 14)        # the drops after the first 8
     assert main(["ingest", "-c", str(cfg), *map(str, paths)]) == 0
     lines = [json.loads(x) for x in (tmp_path / "state" / "alerts.jsonl").read_text()
              .splitlines()]
