@@ -20,7 +20,12 @@ from shoal.config import Settings
 from shoal.daemon.errors import StateError
 from shoal.daemon.gate import ReadinessGate
 from shoal.daemon.layout import Layout
-from shoal.daemon.store import StateStore
+from shoal.daemon.store import Checkpoint, StateStore
+from shoal.daemon.store_words import (
+    extra_in_current_words,
+    notification_in_current_words,
+    payload_in_current_words,
+)
 from shoal.daemon.summary import segment_summary
 
 __all__ = ["StateReader", "open_reader", "read_alerts", "open_alerts", "inbox_backlog", "state_snapshot",
@@ -45,6 +50,13 @@ class StateReader(StateStore):
             self.db.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()
         except sqlite3.DatabaseError as exc:
             raise StateError(f"state store {self.path} cannot be read: {exc}") from exc
+
+    def checkpoint(self, version: int) -> Checkpoint:
+        """A checkpoint, its drift state in today's words (a store not yet migrated by a
+        writer keeps the earlier ones on disk)."""
+        cp = super().checkpoint(version)
+        cp.extra = extra_in_current_words(cp.extra)
+        return cp
 
     def tables(self) -> set[str]:
         return {name for (name,) in self.db.execute(
@@ -92,6 +104,9 @@ def _alert_record(row: dict) -> dict:
         except json.JSONDecodeError:
             payload = {"payload": payload}
     if isinstance(payload, dict):
+        if "schema_version" not in payload:   # a store not yet migrated by a writer
+            out["notification"] = notification_in_current_words(str(out["notification"]))
+        payload = payload_in_current_words(payload)
         for key, value in payload.items():
             out.setdefault(key, value)
         out["id"] = payload.get("id", out.get("id"))

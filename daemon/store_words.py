@@ -9,7 +9,10 @@ snapshot as ``reference`` (``reference_number``, ``reference_info``, explanation
 severities ``warning`` (drift) and ``info`` (segment events). :func:`migrate_alert_words`
 rewrites all of it to the words of the ITU-T X.733 alarm model (raised, cleared;
 critical, major, warning) and the baseline, inside the transaction that opens the
-store, so a notification still waiting for delivery goes out in the new words.
+store, so a notification still waiting for delivery goes out in the new words. A payload
+in the old words is told by its lack of ``schema_version``. The read-only readers
+(``shoal status``, the status page, ``shoal report``) translate an old store's alerts
+and drift state the same way when they read it, before any writer has migrated it.
 
 This module is the one place that still spells the old words; nothing else reads them.
 """
@@ -19,7 +22,8 @@ import json
 import re
 import sqlite3
 
-__all__ = ["migrate_alert_words", "PAYLOAD_SCHEMA_VERSION"]
+__all__ = ["migrate_alert_words", "payload_in_current_words", "extra_in_current_words",
+           "notification_in_current_words", "PAYLOAD_SCHEMA_VERSION"]
 
 # the payload schema the migrated notifications are brought to (daemon/monitor.py's
 # PAYLOAD_SCHEMA_VERSION at the time of this migration)
@@ -53,8 +57,20 @@ def _renamed(node):
     return node
 
 
+def payload_in_current_words(payload: dict) -> dict:
+    """One notification's payload in the new words; a payload that carries a
+    ``schema_version`` is already in them and comes back unchanged."""
+    return payload if "schema_version" in payload else _payload(payload)
+
+
+def extra_in_current_words(extra: dict) -> dict:
+    """A checkpoint's extras with the drift state in the new words (a no-op on new ones)."""
+    if isinstance(extra.get("drift"), dict):
+        extra = dict(extra, drift=_drift_state(extra["drift"]))
+    return extra
+
+
 def _payload(payload: dict) -> dict:
-    """One notification's payload in the new words."""
     out = _renamed(payload)
     if out.get("status") in _STATES:
         out["status"] = _STATES[out["status"]]
@@ -69,7 +85,8 @@ def _payload(payload: dict) -> dict:
     return out
 
 
-def _notification_id(old: str) -> str:
+def notification_in_current_words(old: str) -> str:
+    """An outbox id ``<alert>.<state>`` with the state in the new words."""
     head, dot, state = old.rpartition(".")
     return f"{head}.{_STATES[state]}" if dot and state in _STATES else old
 
@@ -88,7 +105,7 @@ def _drift_state(state: dict) -> dict:
     if isinstance(out.get("open"), dict):
         for alert in out["open"].values():
             if isinstance(alert, dict) and isinstance(alert.get("payload"), dict):
-                alert["payload"] = _payload(alert["payload"])
+                alert["payload"] = payload_in_current_words(alert["payload"])
     return out
 
 
@@ -99,16 +116,14 @@ def migrate_alert_words(db: sqlite3.Connection) -> None:
     db.execute("PRAGMA defer_foreign_keys = ON")
     rows = db.execute("SELECT id, payload FROM alert_outbox ORDER BY rowid").fetchall()
     for old_id, text in rows:
-        new_id = _notification_id(old_id)
-        payload = json.dumps(_payload(json.loads(text)), sort_keys=True)
+        new_id = notification_in_current_words(old_id)
+        payload = json.dumps(payload_in_current_words(json.loads(text)), sort_keys=True)
         db.execute("UPDATE alert_outbox SET id = ?, payload = ? WHERE id = ?",
                    (new_id, payload, old_id))
         if new_id != old_id:
             db.execute("UPDATE alert_delivery SET outbox_id = ? WHERE outbox_id = ?",
                        (new_id, old_id))
     for version, text in db.execute("SELECT version, extra FROM checkpoints").fetchall():
-        extra = json.loads(text)
-        if isinstance(extra.get("drift"), dict):
-            extra["drift"] = _drift_state(extra["drift"])
-            db.execute("UPDATE checkpoints SET extra = ? WHERE version = ?",
-                       (json.dumps(extra, sort_keys=True), version))
+        db.execute("UPDATE checkpoints SET extra = ? WHERE version = ?",
+                   (json.dumps(extra_in_current_words(json.loads(text)), sort_keys=True),
+                    version))

@@ -175,3 +175,31 @@ def test_a_migrated_store_learns_on_and_clears_its_open_alerts_in_the_new_words(
     assert {a["status"] for a in lines} <= {"raised", "cleared", "born", "retired", "merged"}
     assert all(a["schema_version"] == 1 and "baseline" in a for a in lines
                if a["kind"] == "drift")
+
+
+def test_status_and_report_readers_show_an_unmigrated_store_in_the_new_words(tmp_path,
+                                                                           old_store):
+    # shoal status, the status page and shoal report open the store read-only, so they
+    # may see a store no writer has migrated yet: they read it in the new words.
+    from shoal.daemon.layout import prepare_folders
+    from shoal.daemon.readout import StateReader, format_status, read_alerts, state_snapshot
+
+    cfg = tmp_path / "shoal.yaml"
+    cfg.write_text(yaml.safe_dump(OLD_CONFIG))
+    settings = load_config(cfg)
+    before = _raw(old_store)
+    reader = StateReader(old_store)
+    try:
+        alerts = read_alerts(reader)
+        text = format_status(state_snapshot(reader, settings, prepare_folders(settings)))
+        drift = reader.latest_checkpoint().extra["drift"]
+    finally:
+        reader.close()
+    assert _raw(old_store) == before                # read, not written
+    assert sorted(a["status"] for a in alerts) == ["born"] * 3 + ["cleared"] + ["raised"] * 3
+    assert {a["notification"].rpartition(".")[2] for a in alerts} == {"born", "raised",
+                                                                       "cleared"}
+    assert "alerts: 2 active now" in text, text
+    assert "baseline" in drift and "reference" not in drift
+    for word in ("firing", "resolved", "reference", " info "):
+        assert word not in text and word not in json.dumps(alerts), word
