@@ -366,7 +366,7 @@ def test_stationary_batches_stay_quiet_and_a_shifted_segment_fires():
     ref = Baseline.from_mixture(mixture)
     bounds = {"batch_mean_shift": 0.25, "batch_weight_change": 0.05}
     rng = np.random.default_rng(11)
-    state, fired = None, []
+    state, raised = None, []
     means = MEANS.copy()
     for at in range(40):
         if at == 25:
@@ -374,9 +374,9 @@ def test_stationary_batches_stay_quiet_and_a_shifted_segment_fires():
         X = _rows(rng, 2000, means=means)
         values, noise = batch_drift(ref, X, mixture.score(X).resp, mixture.ids).bound_inputs()
         state, events = evaluate_bounds(values, noise, bounds, state, at=at)
-        fired.extend((e["at"], e["segment"], e["statistic"]) for e in events)
-    assert fired and fired[0] == (27, 2, "batch_mean_shift")
-    assert all(seg == 2 for _, seg, _ in fired)
+        raised.extend((e["at"], e["segment"], e["statistic"]) for e in events)
+    assert raised and raised[0] == (27, 2, "batch_mean_shift")
+    assert all(seg == 2 for _, seg, _ in raised)
 
 
 def test_trigamma_is_scipys_polygamma_of_order_one():

@@ -253,9 +253,9 @@ def test_overrides_bound_one_feature_and_silence_one_segment(stream):
                       "overrides": [{"feature": "x1", "feature_shift": 0.12}]})
     s.feed(np.concatenate([base, moved]), 10_000)
     seg0 = s.segment_of(means[0])
-    fired = {(a["segment"], a["statistic"]) for a in s.alerts() if a["status"] == "raised"}
-    assert (seg0, "feature_shift[x1]") in fired
-    assert (seg0, "mean_shift") not in fired
+    raised = {(a["segment"], a["statistic"]) for a in s.alerts() if a["status"] == "raised"}
+    assert (seg0, "feature_shift[x1]") in raised
+    assert (seg0, "mean_shift") not in raised
 
     big = _rows(rng, 16_000, weights, means, covs, shift=(0, 1, 2.0 * sd0))
     quiet = stream(drift={"settle_rows": 8000, "window_rows": 2000})
@@ -272,7 +272,7 @@ def test_overrides_bound_one_feature_and_silence_one_segment(stream):
                 ("mean_shift", "spread_ratio", "weight_change")], quiet.alerts()
 
 
-def test_rebaseline_accepts_the_present_and_resolves_firing_alerts(stream):
+def test_rebaseline_accepts_the_present_and_clears_raised_alerts(stream):
     weights, means, covs = _truth()
     rng = np.random.default_rng(12)
     s = stream(drift={"settle_rows": 8000, "window_rows": 2000})

@@ -103,11 +103,11 @@ def test_group_that_stops_appearing_retires_after_the_span(stream):
     assert [(a["status"], a["segment"]) for a in events] == [("retired", segment)]
     event = events[0]
     # its fading raised a weight_change alert; the retirement cleared it
-    fired = {a["id"] for a in s.alerts() if a["status"] == "raised"
+    raised = {a["id"] for a in s.alerts() if a["status"] == "raised"
              and a["segment"] == segment}
     cleared = {a["id"] for a in s.alerts() if a["status"] == "cleared"
                 and a.get("cleared_by") == "retired"}
-    assert fired and fired == cleared
+    assert raised and raised == cleared
     assert not [k for k in s.drift_state()["open"] if k.startswith(f"{segment}|")]
     stop_row = 30_000
     under = event["explanation"]["under_since_row"]
