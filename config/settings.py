@@ -117,14 +117,14 @@ class HttpSettings:
 
 @dataclass(frozen=True)
 class DriftBounds:
-    """How far a segment may move from its reference before it counts as drift.
+    """How far a segment may move from its baseline before it counts as drift.
 
     Each statistic is measured over one evaluation window of rows against the
-    reference snapshot; null switches a statistic off.
+    baseline; null switches a statistic off.
     """
 
     mean_shift: float | None = _f(
-        0.3, "segment mean moved this many reference standard deviations (Mahalanobis)",
+        0.3, "segment mean moved this many baseline standard deviations (Mahalanobis)",
         min=0.0, min_open=True)
     spread_ratio: float | None = _f(
         1.5, "segment spread grew or shrank by this factor (geometric mean of the sd ratios)",
@@ -133,10 +133,10 @@ class DriftBounds:
         0.05, "segment's share of rows changed by this much (absolute)", min=0.0, max=1.0,
         min_open=True)
     fit_drop: float | None = _f(
-        0.5, "mean log-density per row fell this far below the reference level (nats/row)",
+        0.5, "mean log-density per row fell this far below the baseline level (nats/row)",
         min=0.0, min_open=True)
     feature_shift: float | None = _f(
-        None, "one feature's mean moved this many reference sds (null: off; set it per "
+        None, "one feature's mean moved this many baseline sds (null: off; set it per "
               "feature in overrides)", min=0.0, min_open=True)
 
 
@@ -156,25 +156,25 @@ class BoundOverride:
 
 @dataclass(frozen=True)
 class DriftSettings:
-    enabled: bool = _f(True, "compare segments with their reference and raise alerts")
+    enabled: bool = _f(True, "compare segments with their baseline and raise alerts")
     window_rows: int = _f(4096, "rows per evaluation window (the unit of persistence)",
                           min=100, max=10_000_000)
     settle_rows: int = _f(
-        20000, "rows learned after warm-up before the reference snapshot is taken",
+        20000, "rows learned after warm-up before the baseline is taken",
         min=0, max=1_000_000_000)
     bounds: DriftBounds = _f(DriftBounds(), "bounds of each statistic")
     overrides: tuple[BoundOverride, ...] = _f(
         (), "per-segment or per-feature bounds, e.g. [{segment: 3, mean_shift: 1.0}]")
     noise_multiple: float = _f(
         3.0, "a move must also exceed this many times its estimation noise", min=0.0)
-    persist: int = _f(3, "consecutive windows past a bound before an alert fires", min=1,
+    persist: int = _f(3, "consecutive windows past a bound before an alert is raised", min=1,
                       max=1000)
     resolve_fraction: float = _f(
-        0.8, "a firing alert resolves once the statistic is back under this share of its "
+        0.8, "a raised alert clears once the statistic is back under this share of its "
              "bound", min=0.0, max=1.0, min_open=True)
     resolve_persist: int = _f(3, "... for this many consecutive windows", min=1, max=1000)
     cool_down_windows: int = _f(
-        5, "after an alert resolves, the same segment and statistic cannot fire again for "
+        5, "after an alert clears, the same segment and statistic cannot be raised again for "
            "this many windows", min=0, max=1_000_000)
     critical_multiple: float = _f(
         2.0, "severity is critical when the value is at least this multiple of its bound "
@@ -189,10 +189,11 @@ class WebhookSettings:
     url: str = _f("", "http:// or https:// URL that receives each alert as a JSON POST",
                   required=True)
     secret_file: Path | None = _f(
-        None, "file holding the HMAC-SHA256 signing secret (relative: from the config's "
-              "folder)")
+        None, "file holding the signing secret, whsec_<base64 key> (a secret without the "
+              "prefix is used as its bytes; relative: from the config's folder)")
     secret_env: str | None = _f(None, "environment variable holding the signing secret")
-    timeout_seconds: float = _f(5.0, "timeout of one request", min=0.1, max=300.0)
+    timeout_seconds: float = _f(5.0, "deadline of one whole request, connect to last byte",
+                                min=0.1, max=300.0)
     retries: int = _f(8, "failed attempts retried this many times before the alert waits "
                          "for the next start", min=0, max=1000)
     backoff_seconds: float = _f(1.0, "first retry delay; doubles each retry, with jitter",
@@ -241,7 +242,7 @@ class LifecycleSettings:
     merge_distance: float | None = _f(
         0.4, "two segments closer than this merge (null: never)", min=0.0, min_open=True)
     settle_rows: int = _f(
-        20000, "a born segment joins the drift reference after this many rows", min=0)
+        20000, "a born segment joins the drift baseline after this many rows", min=0)
 
 
 @dataclass(frozen=True)
@@ -266,7 +267,7 @@ class Settings:
     output: OutputSettings = _f(OutputSettings(), "labels files")
     learning: LearningSettings = _f(LearningSettings(), "model updates")
     http: HttpSettings = _f(HttpSettings(), "status page, metrics and health over HTTP")
-    drift: DriftSettings = _f(DriftSettings(), "drift of segments against their reference")
+    drift: DriftSettings = _f(DriftSettings(), "drift of segments against their baseline")
     alerts: AlertSettings = _f(AlertSettings(), "where alerts are delivered")
     lifecycle: LifecycleSettings = _f(LifecycleSettings(), "births, retirements and merges "
                                       "of segments")

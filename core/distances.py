@@ -367,7 +367,7 @@ class GaussianSet:
 
     ``mahalanobis`` and ``log_variance_ratio`` give what :func:`mahalanobis_distance` and
     :func:`log_generalised_variance_ratio` give against member ``index``, without
-    re-validating and re-factorising the set on every call (a drift reference is
+    re-validating and re-factorising the set on every call (a drift baseline is
     compared with every window of the stream).
 
     Parameters
@@ -502,7 +502,7 @@ def hotelling_t2_pvalue(t2, n_features, cov_dof=None):
     cov_dof : float or array_like, optional
         Degrees of freedom ``m`` of the covariance estimate (for a sample covariance of
         ``n`` rows, ``n - 1``). ``None`` (default) treats the covariance as known, as
-        for a reference snapshot fitted on far more rows than a batch holds: then
+        for a baseline fitted on far more rows than a batch holds: then
         ``T^2 ~ chi2(n_features)``. Otherwise ``T^2 ~ m p / (m - p + 1) F(p, m - p + 1)``
         with ``p = n_features``.
 

@@ -1,29 +1,29 @@
-"""Drift of each segment against a reference snapshot, the noise of every statistic, and bounds.
+"""Drift of each segment against a baseline, the noise of every statistic, and bounds.
 
-A :class:`Reference` keeps, per stable segment id, the weight, mean and covariance
+A :class:`Baseline` keeps, per stable segment id, the weight, mean and covariance
 matrix in the data's own units and how many effective rows stood behind them, plus
 the mean log-density per row of the data around the snapshot. Statistics compare a
 current :class:`~shoal.core.mixture.Mixture`, or one batch of scored rows, with it,
 segment by segment, matched by id:
 
 ``mean_shift``
-    Mahalanobis distance of the current mean from the reference mean under the
-    reference covariance: how many reference standard deviations the mean moved.
+    Mahalanobis distance of the current mean from the baseline mean under the
+    baseline covariance: how many baseline standard deviations the mean moved.
 ``spread_change``
     ``log |S_now| - log |S_ref|``, the log ratio of generalised variances (signed;
     bounds compare its magnitude).
 ``hellinger``
-    Hellinger distance between the reference and the current Gaussian, in [0, 1].
+    Hellinger distance between the baseline and the current Gaussian, in [0, 1].
 ``weight_change``
     ``|w_now - w_ref|``.
 ``batch_mean_shift``
-    The responsibility-weighted mean of one batch's rows, in reference sds, with
+    The responsibility-weighted mean of one batch's rows, in baseline sds, with
     Hotelling's ``T^2 = n_eff d^2`` and its chi-square p-value, ``n_eff`` being
     Kish's effective sample size of the segment's responsibilities.
 ``batch_weight_change``
     ``|share of the batch's responsibility - w_ref|``.
 ``fit_drop``
-    Reference mean log-density per row minus the batch's (nats per row; positive
+    Baseline mean log-density per row minus the batch's (nats per row; positive
     when the data fit the model worse than they did).
 
 Noise levels. Each statistic comes with the root-mean-square size it reaches from
@@ -44,7 +44,7 @@ features, and a covariance type with ``q`` free parameters per component
 * weight: a share of ``N`` effective rows is binomial, ``sd = sqrt(w (1 - w) / N)``;
 * fit: the standard error of a batch mean, ``sd(log-density) / sqrt(n_rows)``.
 
-When the reference is itself an estimate (from ``n_ref`` effective rows), the two
+When the baseline is itself an estimate (from ``n_ref`` effective rows), the two
 errors add: the variance is ``v(n) + v(n_ref)``. This is exact for independent
 estimates and errs on the large (quiet) side when the two share rows. A segment's
 effective rows in a mixture are taken as ``weight * n_eff`` of the mixture (Kish's
@@ -52,7 +52,7 @@ effective rows in a mixture are taken as ``weight * n_eff`` of the mixture (Kish
 assignments that fall at random among the rows.
 
 Bounds. :func:`evaluate_bounds` turns statistics, noise levels and bounds into
-firing and resolved events with persistence and hysteresis, keeping its state as a
+raised and cleared events with persistence and hysteresis, keeping its state as a
 plain JSON-able dict.
 """
 
@@ -80,7 +80,7 @@ from .mixture import Mixture
 __all__ = [
     "BatchDrift",
     "FitDrop",
-    "Reference",
+    "Baseline",
     "SegmentDrift",
     "WHOLE_MODEL",
     "batch_drift",
@@ -122,11 +122,11 @@ WHOLE_MODEL = "all"
 STATE_FORMAT = 1
 
 
-# --------------------------------------------------------------------------- reference
+# --------------------------------------------------------------------------- baseline
 
 
 @dataclass(frozen=True, eq=False)
-class Reference:
+class Baseline:
     """What each segment looked like when the model was last accepted as normal.
 
     Attributes
@@ -162,7 +162,7 @@ class Reference:
         return int(self.means.shape[1])
 
     @classmethod
-    def from_mixture(cls, mixture: Mixture, log_density=None) -> "Reference":
+    def from_mixture(cls, mixture: Mixture, log_density=None) -> "Baseline":
         """Snapshot every segment of ``mixture``.
 
         Parameters
@@ -183,16 +183,16 @@ class Reference:
         )
 
     def index_of(self, segment_id) -> int:
-        """Position of a segment id in the reference (a clear error if it has none)."""
-        return segment_index(self.ids, segment_id, "the reference")
+        """Position of a segment id in the baseline (a clear error if it has none)."""
+        return segment_index(self.ids, segment_id, "the baseline")
 
-    def adopt(self, mixture: Mixture, ids) -> "Reference":
-        """A copy in which the given segments take their present state as reference.
+    def adopt(self, mixture: Mixture, ids) -> "Baseline":
+        """A copy in which the given segments take their present state as baseline.
 
         For a segment born after the snapshot, once it has settled. Other segments
-        keep their reference; ``total_n_eff`` and ``log_density`` are unchanged.
+        keep their baseline; ``total_n_eff`` and ``log_density`` are unchanged.
         """
-        fresh = Reference.from_mixture(mixture)
+        fresh = Baseline.from_mixture(mixture)
         keep = self.without(ids)
         take = np.array([fresh.index_of(i) for i in ids], dtype=np.int64)
         return replace(
@@ -204,7 +204,7 @@ class Reference:
             n_eff=np.concatenate([keep.n_eff, fresh.n_eff[take]]),
         )
 
-    def without(self, ids) -> "Reference":
+    def without(self, ids) -> "Baseline":
         """A copy without the given segments (for example retired ones)."""
         keep = ~np.isin(self.ids, np.asarray(list(ids), dtype=np.int64))
         return replace(
@@ -231,16 +231,16 @@ class Reference:
         }
 
     @classmethod
-    def from_dict(cls, data: Mapping) -> "Reference":
-        """Rebuild a reference saved by :meth:`to_dict`."""
+    def from_dict(cls, data: Mapping) -> "Baseline":
+        """Rebuild a baseline saved by :meth:`to_dict`."""
         if data.get("format") != STATE_FORMAT:
             raise ModelError(
-                f"reference has format {data.get('format')!r}; this shoal reads {STATE_FORMAT}"
+                f"baseline has format {data.get('format')!r}; this shoal reads {STATE_FORMAT}"
             )
         missing = [k for k in ("ids", "weights", "means", "covariances", "n_eff",
                                "total_n_eff", "log_density", "covariance") if k not in data]
         if missing:
-            raise ModelError(f"reference lacks {missing}")
+            raise ModelError(f"baseline lacks {missing}")
         n_features = len(data["means"][0]) if data["means"] else 0
         return cls(
             ids=np.array(data["ids"], dtype=np.int64),
@@ -318,7 +318,7 @@ def _check_covariance_type(covariance):
 
 
 def mean_shift_noise(n_eff, n_features, ref_n_eff=math.inf):
-    """RMS mean shift (reference sds) from estimation noise alone: ``sqrt(D / n)``.
+    """RMS mean shift (baseline sds) from estimation noise alone: ``sqrt(D / n)``.
 
     Parameters
     ----------
@@ -326,7 +326,7 @@ def mean_shift_noise(n_eff, n_features, ref_n_eff=math.inf):
         Effective rows behind the current mean.
     n_features : int
     ref_n_eff : float or array_like, default inf
-        Effective rows behind the reference mean (``inf``: the reference is exact).
+        Effective rows behind the baseline mean (``inf``: the baseline is exact).
 
     Returns
     -------
@@ -340,7 +340,7 @@ def spread_noise(n_eff, n_features, covariance="full", ref_n_eff=math.inf):
     """Standard deviation of ``log |S|`` estimated from ``n_eff`` Gaussian rows.
 
     ``sum_{i=1..D} psi1((n - i) / 2)`` (full), ``D psi1((n - 1) / 2)`` (diag),
-    ``D^2 psi1(D (n - 1) / 2)`` (spherical), each about ``2 D / n``; the reference's
+    ``D^2 psi1(D (n - 1) / 2)`` (spherical), each about ``2 D / n``; the baseline's
     variance is added. ``inf`` when there are too few rows for a covariance
     (``n <= D`` full, ``n <= 1`` otherwise).
     """
@@ -367,11 +367,11 @@ def weight_noise(weight, total_n_eff, ref_total_n_eff=math.inf):
     Parameters
     ----------
     weight : float or array_like
-        The weight under "no change" (the reference weight).
+        The weight under "no change" (the baseline weight).
     total_n_eff : float
         Effective rows behind the current weights (for a batch, its row count).
     ref_total_n_eff : float, default inf
-        Effective rows behind the reference weights.
+        Effective rows behind the baseline weights.
     """
     share = np.asarray(weight, dtype=np.float64)
     spread = share * (1.0 - share)
@@ -391,14 +391,14 @@ def fit_noise(log_density) -> float:
     return float(np.std(values, ddof=1) / math.sqrt(values.size))
 
 
-# --------------------------------------------------------------------- model vs reference
+# --------------------------------------------------------------------- model vs baseline
 
 
-def _matched(reference: Reference, ids):
-    """Positions of the ids common to both, in reference order."""
+def _matched(baseline: Baseline, ids):
+    """Positions of the ids common to both, in baseline order."""
     ids = np.asarray(ids, dtype=np.int64)
-    in_ref = np.flatnonzero(np.isin(reference.ids, ids))
-    current = np.array([int(np.flatnonzero(ids == reference.ids[i])[0]) for i in in_ref],
+    in_ref = np.flatnonzero(np.isin(baseline.ids, ids))
+    current = np.array([int(np.flatnonzero(ids == baseline.ids[i])[0]) for i in in_ref],
                        dtype=np.int64)
     return in_ref, current
 
@@ -411,12 +411,12 @@ def _keyed(ids, table):
 
 @dataclass(frozen=True, eq=False)
 class SegmentDrift:
-    """Drift of each segment of a mixture against the reference.
+    """Drift of each segment of a mixture against the baseline.
 
     Attributes
     ----------
     ids : ndarray of int64, shape (n_matched,)
-        Segments present in both, in reference order.
+        Segments present in both, in baseline order.
     n_eff : ndarray of shape (n_matched,)
         Effective rows behind each current segment (``weight * mixture.n_eff``).
     means : ndarray of shape (n_matched, n_features)
@@ -426,7 +426,7 @@ class SegmentDrift:
     noise : dict of str to ndarray of shape (n_matched,)
         The noise level of each statistic (see the module notes).
     new_ids : ndarray of int64
-        Segments of the mixture without a reference.
+        Segments of the mixture without a baseline.
     missing_ids : ndarray of int64
         Referenced segments no longer in the mixture.
     """
@@ -448,32 +448,32 @@ class SegmentDrift:
         return _keyed(self.ids, values), _keyed(self.ids, self.noise)
 
 
-def segment_drift(reference: Reference, mixture: Mixture) -> SegmentDrift:
-    """Compare every segment of ``mixture`` with its reference, matched by id.
+def segment_drift(baseline: Baseline, mixture: Mixture) -> SegmentDrift:
+    """Compare every segment of ``mixture`` with its baseline, matched by id.
 
     Parameters
     ----------
-    reference : Reference
+    baseline : Baseline
     mixture : Mixture
-        Must have the reference's number of features.
+        Must have the baseline's number of features.
 
     Returns
     -------
     drift : SegmentDrift
     """
-    if mixture.n_features != reference.n_features:
+    if mixture.n_features != baseline.n_features:
         raise ModelError(
-            f"the mixture has {mixture.n_features} features, the reference "
-            f"{reference.n_features}"
+            f"the mixture has {mixture.n_features} features, the baseline "
+            f"{baseline.n_features}"
         )
-    ref_at, cur_at = _matched(reference, mixture.ids)
-    d = reference.n_features
-    ref_means, ref_covs = reference.means[ref_at], reference.covariances[ref_at]
+    ref_at, cur_at = _matched(baseline, mixture.ids)
+    d = baseline.n_features
+    ref_means, ref_covs = baseline.means[ref_at], baseline.covariances[ref_at]
     means = mixture.data_means()[cur_at]
     covs = mixture.data_covariance_matrices()[cur_at]
     weights = mixture.weights[cur_at]
     n_eff = weights * mixture.n_eff
-    ref_n = reference.n_eff[ref_at]
+    ref_n = baseline.n_eff[ref_at]
     if ref_at.size:
         values = {
             "mean_shift": np.atleast_1d(mahalanobis_distance(means, ref_means, ref_covs)),
@@ -482,32 +482,32 @@ def segment_drift(reference: Reference, mixture: Mixture) -> SegmentDrift:
         }
     else:
         values = {name: np.empty(0) for name in ("mean_shift", "spread_change", "hellinger")}
-    values["weight_change"] = np.abs(weights - reference.weights[ref_at])
+    values["weight_change"] = np.abs(weights - baseline.weights[ref_at])
     noise = {
         "mean_shift": np.atleast_1d(mean_shift_noise(n_eff, d, ref_n)),
         "spread_change": np.atleast_1d(spread_noise(n_eff, d, mixture.covariance, ref_n)),
         "hellinger": np.atleast_1d(hellinger_noise(n_eff, d, mixture.covariance, ref_n)),
         "weight_change": np.atleast_1d(weight_noise(
-            reference.weights[ref_at], mixture.n_eff, reference.total_n_eff)),
+            baseline.weights[ref_at], mixture.n_eff, baseline.total_n_eff)),
     }
     return SegmentDrift(
-        ids=reference.ids[ref_at], n_eff=n_eff, means=means, values=values, noise=noise,
-        new_ids=mixture.ids[~np.isin(mixture.ids, reference.ids)],
-        missing_ids=reference.ids[~np.isin(reference.ids, mixture.ids)],
+        ids=baseline.ids[ref_at], n_eff=n_eff, means=means, values=values, noise=noise,
+        new_ids=mixture.ids[~np.isin(mixture.ids, baseline.ids)],
+        missing_ids=baseline.ids[~np.isin(baseline.ids, mixture.ids)],
     )
 
 
-# ----------------------------------------------------------------------- batch vs reference
+# ----------------------------------------------------------------------- batch vs baseline
 
 
 @dataclass(frozen=True, eq=False)
 class BatchDrift:
-    """One batch of rows against the reference, segment by segment.
+    """One batch of rows against the baseline, segment by segment.
 
     Attributes
     ----------
     ids : ndarray of int64, shape (n_matched,)
-        Referenced segments among the responsibility columns, in reference order.
+        Referenced segments among the responsibility columns, in baseline order.
     n_eff : ndarray of shape (n_matched,)
         Kish's effective sample size of each segment's responsibilities (0 if none).
     share : ndarray of shape (n_matched,)
@@ -515,10 +515,10 @@ class BatchDrift:
     means : ndarray of shape (n_matched, n_features)
         Responsibility-weighted batch means, data units (``nan`` where ``n_eff`` is 0).
     t2, p_value : ndarray of shape (n_matched,)
-        Hotelling's ``T^2 = n_eff d^2`` against the reference mean and covariance, and
+        Hotelling's ``T^2 = n_eff d^2`` against the baseline mean and covariance, and
         its chi-square p-value (``nan`` where ``n_eff`` is 0).
     values, noise : dict of str to ndarray of shape (n_matched,)
-        ``batch_mean_shift`` (reference sds) and ``batch_weight_change``.
+        ``batch_mean_shift`` (baseline sds) and ``batch_weight_change``.
     """
 
     ids: np.ndarray
@@ -535,12 +535,12 @@ class BatchDrift:
         return _keyed(self.ids, self.values), _keyed(self.ids, self.noise)
 
 
-def batch_drift(reference: Reference, X, resp, ids) -> BatchDrift:
-    """Test each segment's batch mean and share against the reference.
+def batch_drift(baseline: Baseline, X, resp, ids) -> BatchDrift:
+    """Test each segment's batch mean and share against the baseline.
 
     Parameters
     ----------
-    reference : Reference
+    baseline : Baseline
     X : array_like of shape (n_samples, n_features)
         The batch's rows in data units.
     resp : array_like of shape (n_samples, n_components)
@@ -557,7 +557,7 @@ def batch_drift(reference: Reference, X, resp, ids) -> BatchDrift:
     X = np.asarray(X, dtype=np.float64)
     resp = np.asarray(resp, dtype=np.float64)
     ids = np.asarray(ids, dtype=np.int64)
-    d = reference.n_features
+    d = baseline.n_features
     if X.ndim != 2 or X.shape[1] != d:
         raise ModelError(f"X should have shape (n_samples, {d}), got {X.shape}")
     if resp.shape != (X.shape[0], ids.shape[0]):
@@ -566,7 +566,7 @@ def batch_drift(reference: Reference, X, resp, ids) -> BatchDrift:
         )
     if not (np.all(np.isfinite(X)) and np.all(np.isfinite(resp))):
         raise ModelError("X and resp should be finite")
-    ref_at, cur_at = _matched(reference, ids)
+    ref_at, cur_at = _matched(baseline, ids)
     weights = resp[:, cur_at]
     n_rows = X.shape[0]
     totals = weights.sum(axis=0)
@@ -577,27 +577,27 @@ def batch_drift(reference: Reference, X, resp, ids) -> BatchDrift:
     shift = np.full(cur_at.size, np.nan)
     if np.any(seen):
         shift[seen] = mahalanobis_distance(
-            means[seen], reference.means[ref_at][seen], reference.covariances[ref_at][seen]
+            means[seen], baseline.means[ref_at][seen], baseline.covariances[ref_at][seen]
         )
     t2 = n_eff * shift**2
     p_value = np.asarray(hotelling_t2_pvalue(t2, d), dtype=np.float64).reshape(t2.shape)
     share = totals / n_rows if n_rows else np.full(cur_at.size, np.nan)
-    ref_weights = reference.weights[ref_at]
+    ref_weights = baseline.weights[ref_at]
     values = {
         "batch_mean_shift": shift,
         "batch_weight_change": np.abs(share - ref_weights),
     }
     noise = {
-        "batch_mean_shift": np.atleast_1d(mean_shift_noise(n_eff, d, reference.n_eff[ref_at])),
+        "batch_mean_shift": np.atleast_1d(mean_shift_noise(n_eff, d, baseline.n_eff[ref_at])),
         "batch_weight_change": np.atleast_1d(
-            weight_noise(ref_weights, float(n_rows), reference.total_n_eff)),
+            weight_noise(ref_weights, float(n_rows), baseline.total_n_eff)),
     }
-    return BatchDrift(ids=reference.ids[ref_at], n_eff=n_eff, share=share, means=means,
+    return BatchDrift(ids=baseline.ids[ref_at], n_eff=n_eff, share=share, means=means,
                       t2=t2, p_value=p_value, values=values, noise=noise)
 
 
 class FitDrop(NamedTuple):
-    """How much worse a batch fits than the reference level (nats per row)."""
+    """How much worse a batch fits than the baseline level (nats per row)."""
 
     value: float
     noise: float
@@ -609,34 +609,34 @@ class FitDrop(NamedTuple):
         return {key: self.value}, {key: self.noise}
 
 
-def fit_drop(reference: Reference, log_density) -> FitDrop:
-    """Reference mean log-density per row minus the batch's, with its standard error.
+def fit_drop(baseline: Baseline, log_density) -> FitDrop:
+    """Baseline mean log-density per row minus the batch's, with its standard error.
 
     Parameters
     ----------
-    reference : Reference
+    baseline : Baseline
         Its ``log_density`` must be known.
     log_density : array_like of shape (n_samples,)
         ``Scores.log_density`` of the batch (data units).
     """
-    if not math.isfinite(reference.log_density):
-        raise ModelError("the reference has no log-density level; take it with log_density=")
+    if not math.isfinite(baseline.log_density):
+        raise ModelError("the baseline has no log-density level; take it with log_density=")
     values = np.asarray(log_density, dtype=np.float64).ravel()
     if not np.all(np.isfinite(values)):
         raise ModelError("log_density should be finite")
-    value = reference.log_density - float(np.mean(values)) if values.size else math.nan
+    value = baseline.log_density - float(np.mean(values)) if values.size else math.nan
     return FitDrop(value=value, noise=fit_noise(values), n_rows=int(values.size))
 
 
 # ------------------------------------------------------------------------------ explain
 
 
-def explain(reference: Reference, segment_id, mean, *, feature_names=None, top=None):
+def explain(baseline: Baseline, segment_id, mean, *, feature_names=None, top=None):
     """Which features of a segment moved, most first, in the data's own units.
 
     Parameters
     ----------
-    reference : Reference
+    baseline : Baseline
     segment_id : int
     mean : array_like of shape (n_features,)
         The segment's current mean (or a batch mean), data units.
@@ -648,28 +648,28 @@ def explain(reference: Reference, segment_id, mean, *, feature_names=None, top=N
     Returns
     -------
     features : list of dict
-        ``{"feature", "index", "reference_mean", "current_mean", "shift_sd"}`` where
-        ``shift_sd = (current - reference) / reference sd`` of that feature; sorted by
+        ``{"feature", "index", "baseline_mean", "window_mean", "shift_sd"}`` where
+        ``shift_sd = (current - baseline) / baseline sd`` of that feature; sorted by
         ``|shift_sd|`` (largest first), ties by index.
     """
-    at = reference.index_of(segment_id)
-    d = reference.n_features
+    at = baseline.index_of(segment_id)
+    d = baseline.n_features
     mean = np.asarray(mean, dtype=np.float64)
     if mean.shape != (d,):
         raise ModelError(f"mean should have shape ({d},), got {mean.shape}")
     names = [f"x{j}" for j in range(d)] if feature_names is None else list(feature_names)
     if len(names) != d:
         raise ModelError(f"feature_names should name {d} features, got {len(names)}")
-    ref_mean = reference.means[at]
-    ref_sd = np.sqrt(np.diagonal(reference.covariances[at]))
+    ref_mean = baseline.means[at]
+    ref_sd = np.sqrt(np.diagonal(baseline.covariances[at]))
     shift = (mean - ref_mean) / ref_sd
     order = sorted(range(d), key=lambda j: (-abs(shift[j]), j))
     rows = [
         {
             "feature": names[j],
             "index": j,
-            "reference_mean": float(ref_mean[j]),
-            "current_mean": float(mean[j]),
+            "baseline_mean": float(ref_mean[j]),
+            "window_mean": float(mean[j]),
             "shift_sd": float(shift[j]),
         }
         for j in order
@@ -685,17 +685,17 @@ def _segment_order(segment):
 
 
 def _fresh_entry():
-    return {"status": "ok", "above": 0, "below": 0, "first_at": None, "fired_at": None,
+    return {"status": "ok", "above": 0, "below": 0, "first_at": None, "raised_at": None,
             "peak": None}
 
 
 def evaluate_bounds(values, noise, bounds, state=None, *, noise_multiple=3.0, persist=3,
                     resolve_fraction=0.8, resolve_persist=3, at=None):
-    """Decide which (segment, statistic) pairs start or stop firing.
+    """Decide which (segment, statistic) pairs are raised or cleared.
 
     A value *crosses* when it exceeds its bound and also ``noise_multiple`` times its
-    noise level. A pair fires after ``persist`` consecutive crossings; a firing pair
-    resolves after ``resolve_persist`` consecutive values below
+    noise level. A pair is raised after ``persist`` consecutive crossings; a raised pair
+    clears after ``resolve_persist`` consecutive values below
     ``bound * resolve_fraction``. A pair with no value this time, a non-finite value,
     or no bound keeps its state unchanged (no evidence either way).
 
@@ -720,10 +720,10 @@ def evaluate_bounds(values, noise, bounds, state=None, *, noise_multiple=3.0, pe
     -------
     state : dict
         The new state, JSON-able; the input is not modified. Only pairs that are
-        firing or part-way to firing are kept.
+        raised or part-way to being raised are kept.
     events : list of dict
-        ``{"segment", "statistic", "status" ("firing" or "resolved"), "value",
-        "bound", "noise", "first_at", "fired_at", "at", "peak"}``, ordered by segment
+        ``{"segment", "statistic", "status" ("raised" or "cleared"), "value",
+        "bound", "noise", "first_at", "raised_at", "at", "peak"}``, ordered by segment
         (integer ids first) then statistic.
     """
     if not (isinstance(persist, (int, np.integer)) and persist >= 1):
@@ -750,15 +750,15 @@ def evaluate_bounds(values, noise, bounds, state=None, *, noise_multiple=3.0, pe
         seg_key, stat_key = str(segment), str(statistic)
         entry = entries.get(seg_key, {}).get(stat_key) or _fresh_entry()
         event = None
-        if entry["status"] != "firing":
+        if entry["status"] != "raised":
             if value > bound and value > noise_multiple * level:
                 entry["above"] += 1
                 if entry["above"] == 1:
                     entry["first_at"] = at
                 entry["peak"] = max(value, entry["peak"] or value)
                 if entry["above"] >= persist:
-                    entry.update(status="firing", fired_at=at, below=0)
-                    event = "firing"
+                    entry.update(status="raised", raised_at=at, below=0)
+                    event = "raised"
             else:
                 entry = _fresh_entry()
         else:
@@ -766,19 +766,19 @@ def evaluate_bounds(values, noise, bounds, state=None, *, noise_multiple=3.0, pe
             if value < bound * resolve_fraction:
                 entry["below"] += 1
                 if entry["below"] >= resolve_persist:
-                    event = "resolved"
+                    event = "cleared"
             else:
                 entry["below"] = 0
         if event is not None:
             events.append({
                 "segment": segment, "statistic": statistic, "status": event,
                 "value": value, "bound": bound, "noise": level,
-                "first_at": entry["first_at"], "fired_at": entry["fired_at"], "at": at,
+                "first_at": entry["first_at"], "raised_at": entry["raised_at"], "at": at,
                 "peak": entry["peak"],
             })
-        if event == "resolved":
+        if event == "cleared":
             entry = _fresh_entry()
-        if entry["status"] == "firing" or entry["above"] > 0:
+        if entry["status"] == "raised" or entry["above"] > 0:
             entries.setdefault(seg_key, {})[stat_key] = entry
         elif stat_key in entries.get(seg_key, {}):
             del entries[seg_key][stat_key]

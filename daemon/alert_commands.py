@@ -22,14 +22,15 @@ from shoal.daemon.progress import progress
 from shoal.daemon.report import parse_since
 from shoal.daemon.store import StateStore
 
-__all__ = ["add_alert_commands", "alert_delivery", "deliver_alerts", "format_alert", "replay"]
+__all__ = ["add_alert_commands", "alert_delivery", "deliver_alerts", "format_alert", "replay",
+           "replay_counts"]
 
 def _n(x) -> str:
     return "-" if x is None else f"{x:.4g}" if isinstance(x, float) else str(x)
 
 
 def format_alert(payload: dict, created: float | None = None, prefix: str = "") -> str:
-    """Two or three lines: what fired, where in the stream, and the explanation."""
+    """Two or three lines: what was raised, where in the stream, and the explanation."""
     p = payload
     when = "" if created is None else _dt.datetime.fromtimestamp(
         created, _dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%S ")
@@ -49,8 +50,8 @@ def format_alert(payload: dict, created: float | None = None, prefix: str = "") 
         files = p["inputs"]
         where += f", inputs {', '.join(files[:4])}" + (f" (+{len(files) - 4})" if len(files) > 4
                                                        else "")
-    if p.get("resolved_by"):
-        where += f", resolved by {p['resolved_by']}: {p.get('note')!r}"
+    if p.get("cleared_by"):
+        where += f", cleared by {p['cleared_by']}: {p.get('note')!r}"
     lines = [head, where]
     summary = (p.get("explanation") or {}).get("summary")
     if summary:
@@ -99,8 +100,8 @@ def _cmd_rebaseline(args, open_parts) -> int:
                 raise
             rows = max(settings.drift.settle_rows, settings.drift.window_rows)
             print(f"re-baselined at model version {pipeline.state.version} ({args.note!r}): "
-                  f"firing alerts are resolved, and the next {rows} rows become the new "
-                  "reference")
+                  f"raised alerts are cleared, and the next {rows} rows become the new "
+                  "baseline")
             for _, payload in alerts:
                 print(format_alert(payload))
             deliver_alerts(settings, layout, timeout=10.0)
@@ -203,7 +204,7 @@ def replay_settings(config: Path, sets: list[str], folder: Path) -> tuple[Settin
 def replay(config: Path, folder_in: Path, *, state_dir: str | None = None,
            sets: list[str] = (), out=sys.stdout) -> dict:
     """Backtest the drops in ``folder_in`` (name order) from a fresh model in an isolated
-    state folder; print each alert as it would have fired. Returns a summary."""
+    state folder; print each alert as it would have been raised. Returns a summary."""
     folder_in = Path(folder_in)
     if not folder_in.is_dir():
         raise UsageError(f"no such folder: {folder_in}")
@@ -241,11 +242,24 @@ def replay(config: Path, folder_in: Path, *, state_dir: str | None = None,
             sender.deliver_due()
         finally:
             sender.stop()
-    firing = sum(a["status"] == "firing" for a in summary["alerts"])
+    summary["counts"] = replay_counts(summary["alerts"])
+    c = summary["counts"]
     print(f"replay done: {summary['rows']} rows in {len(files)} inputs {summary['outcomes']}; "
-          f"{firing} alerts fired, {len(summary['alerts']) - firing} resolved; alerts in "
-          f"{settings.alerts.file}", file=out)
+          f"{c['raised']} alerts raised, {c['cleared']} cleared, {c['lifecycle']} segment "
+          f"events; alerts in {settings.alerts.file}", file=out)
     return summary
+
+
+def replay_counts(alerts: list[dict]) -> dict[str, int]:
+    """Drift alerts raised, drift alerts cleared and segment events (born, retired,
+    merged), each counted under its own word."""
+    counts = {"raised": 0, "cleared": 0, "lifecycle": 0}
+    for a in alerts:
+        if a.get("kind") == "lifecycle":
+            counts["lifecycle"] += 1
+        elif a.get("status") in ("raised", "cleared"):
+            counts[a["status"]] += 1
+    return counts
 
 
 def _cmd_replay(args) -> int:
@@ -259,19 +273,19 @@ def _cmd_replay(args) -> int:
 
 def add_alert_commands(cmd, with_config, open_parts) -> None:
     """Register ``alerts``, ``rebaseline`` and ``replay`` on the ``shoal`` parser."""
-    sp = with_config(cmd("alerts", "list drift alerts (firing and resolved), oldest first",
+    sp = with_config(cmd("alerts", "list drift alerts (raised and cleared), oldest first",
                          _cmd_alerts))
     sp.add_argument("--since", metavar="WHEN",
                     help="only alerts raised since WHEN: 30m, 2h, 7d or an ISO date/time")
     sp.add_argument("--json", action="store_true", help="print JSON instead of text")
     sp = with_config(cmd("rebaseline", "accept the present segments as the new normal: "
-                                       "they become the drift reference",
+                                       "they become the drift baseline",
                          lambda args: _cmd_rebaseline(args, open_parts)))
     sp.add_argument("--note", required=True, metavar="TEXT",
-                    help="why (recorded with the re-baseline and in resolved alerts)")
+                    help="why (recorded with the re-baseline and in cleared alerts)")
     sp = with_config(cmd("replay", "backtest a folder of drops from a fresh model in an "
                                    "isolated state folder and print the alerts that would "
-                                   "have fired", _cmd_replay))
+                                   "have been raised", _cmd_replay))
     sp.add_argument("dir", metavar="DIR", help="folder of historical drops (name order)")
     sp.add_argument("--state-dir", metavar="TMP",
                     help="empty folder for the isolated state (default: a new temp folder)")

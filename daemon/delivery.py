@@ -4,30 +4,46 @@ Alerts reach the outbox table in the same transaction as the model version that
 raised them; :class:`AlertSender` takes them from there, oldest first and in order
 for each sink (one waiting for its retry holds back the later ones), and marks
 each sink's delivery in the state store, so a restart delivers whatever was left
-undelivered (a notification may then arrive twice; its id and the
+undelivered (a notification may then arrive twice; its ``webhook-id`` and the
 ``Idempotency-Key`` header let the receiver drop the repeat).
 
 Sinks:
 
 * the JSON-lines file (``alerts.file``): one JSON object per line, appended and
-  fsynced;
-* each webhook (``alerts.webhooks``): an HTTP POST of the same JSON, with
-  ``X-Shoal-Signature: sha256=<hex HMAC-SHA256 of the body under the secret>``
-  and ``Idempotency-Key: <notification id>``. Only 2xx counts as delivered;
-  redirects are not followed (a 3xx is a failure). A failure is retried after
-  ``backoff_seconds * 2^(attempt-1)`` (capped at ``max_backoff_seconds``) times a
-  random factor in [0.5, 1.5); after ``retries`` retries the notification waits
-  for the next start of the service. A webhook whose host is not in
-  ``alerts.allow_hosts`` is refused with an error log line and never contacted.
+  fsynced. On the sender's thread it has a worker of its own, so it never waits for
+  a webhook;
+* each webhook (``alerts.webhooks``): an HTTP POST of the same JSON, signed by the
+  Standard Webhooks specification (https://www.standardwebhooks.com/):
+
+  - ``webhook-id``: the notification id (``<alert id>.<status>``), also sent as
+    ``Idempotency-Key``;
+  - ``webhook-timestamp``: the attempt's time in whole Unix seconds (each retry is
+    signed afresh, so a receiver may refuse old timestamps and with them replays);
+  - ``webhook-signature``: ``v1,<base64 HMAC-SHA256 of "<id>.<timestamp>.<body>">``.
+
+  The secret (``secret_file`` or ``secret_env``) is in the specification's format,
+  ``whsec_`` followed by the base64 of the key; a secret without that prefix is used
+  as its bytes as they stand (a UTF-8 string as its UTF-8 bytes), so a raw secret
+  signs with the same key as it always did. Only 2xx counts as delivered; redirects
+  are not followed (a 3xx is a failure). ``timeout_seconds`` bounds the whole
+  request, from connecting to the last byte of the answer, whatever pace the
+  receiver keeps. A failure is retried after ``backoff_seconds * 2^(attempt-1)``
+  (capped at ``max_backoff_seconds``) times a random factor in [0.5, 1.5); after
+  ``retries`` retries the notification waits for the next start of the service. A
+  webhook whose host is not in ``alerts.allow_hosts`` is refused with an error log
+  line and never contacted.
 """
 from __future__ import annotations
 
+import base64
+import binascii
 import hashlib
 import hmac
 import http.client
 import logging
 import os
 import random
+import socket
 import ssl
 import threading
 import time
@@ -40,10 +56,14 @@ from shoal.config.settings import WebhookSettings
 from shoal.daemon.logs import log_event
 from shoal.daemon.store import StateStore
 
-__all__ = ["AlertSender", "sign", "SIGNATURE_HEADER", "IDEMPOTENCY_HEADER", "alert_body"]
+__all__ = ["AlertSender", "sign", "signing_key", "ID_HEADER", "TIMESTAMP_HEADER",
+           "SIGNATURE_HEADER", "IDEMPOTENCY_HEADER", "SECRET_PREFIX", "alert_body"]
 
-SIGNATURE_HEADER = "X-Shoal-Signature"
+ID_HEADER = "webhook-id"
+TIMESTAMP_HEADER = "webhook-timestamp"
+SIGNATURE_HEADER = "webhook-signature"
 IDEMPOTENCY_HEADER = "Idempotency-Key"
+SECRET_PREFIX = "whsec_"
 _RESPONSE_LIMIT = 65536
 
 
@@ -52,9 +72,77 @@ def alert_body(payload_text: str) -> bytes:
     return payload_text.encode("utf-8")
 
 
-def sign(secret: bytes, body: bytes) -> str:
-    """``sha256=<hex>``: HMAC-SHA256 of ``body`` under ``secret``."""
-    return "sha256=" + hmac.new(secret, body, hashlib.sha256).hexdigest()
+def signing_key(secret: bytes) -> bytes:
+    """The HMAC key of a secret: ``whsec_<base64>`` decoded, any other secret as it is.
+
+    Raises ``ValueError`` for a ``whsec_`` secret whose rest is not base64."""
+    prefix = SECRET_PREFIX.encode()
+    if not secret.startswith(prefix):
+        return secret
+    try:
+        key = base64.b64decode(secret[len(prefix):], validate=True)
+    except binascii.Error as exc:
+        raise ValueError(f"the secret starts with {SECRET_PREFIX!r} but the rest is not "
+                         f"base64 ({exc})") from None
+    if not key:
+        raise ValueError(f"the secret is {SECRET_PREFIX!r} with no key after it")
+    return key
+
+
+def sign(key: bytes, message_id: str, timestamp: int, body: bytes) -> str:
+    """``v1,<base64>``: HMAC-SHA256 of ``<id>.<timestamp>.<body>`` under ``key``."""
+    signed = f"{message_id}.{timestamp}.".encode("utf-8") + body
+    return "v1," + base64.b64encode(hmac.new(key, signed, hashlib.sha256).digest()).decode()
+
+
+# -- one deadline for a whole request ---------------------------------------------------
+_request = threading.local()   # .deadline: time.monotonic() by which the request must end
+
+
+class _Deadline:
+    """Socket operations that each wait only for the time left to the request's deadline
+    (a per-operation timeout lets a receiver that answers a byte at a time hold the
+    sender for ever)."""
+
+    def _time_left(self) -> None:
+        deadline = getattr(_request, "deadline", None)
+        if deadline is not None:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                raise TimeoutError("the request's deadline passed")
+            self.settimeout(left)
+
+    def recv(self, *args):
+        self._time_left()
+        return super().recv(*args)
+
+    def recv_into(self, *args):
+        self._time_left()
+        return super().recv_into(*args)
+
+    def send(self, *args):
+        self._time_left()
+        return super().send(*args)
+
+    def sendall(self, *args):
+        self._time_left()
+        return super().sendall(*args)
+
+
+class _DeadlineSocket(_Deadline, socket.socket):
+    pass
+
+
+class _DeadlineSSLSocket(_Deadline, ssl.SSLSocket):
+    def do_handshake(self, *args):
+        self._time_left()
+        return super().do_handshake(*args)
+
+
+def _connect(address, timeout, source_address=None):
+    """``socket.create_connection`` whose socket keeps to the request's deadline."""
+    plain = socket.create_connection(address, timeout, source_address)
+    return _DeadlineSocket(plain.family, plain.type, plain.proto, fileno=plain.detach())
 
 
 def _user_agent() -> str:
@@ -88,9 +176,10 @@ class _FileSink:
 
 
 class _WebhookSink:
-    def __init__(self, hook: WebhookSettings, secret: bytes):
+    def __init__(self, hook: WebhookSettings, key: bytes, clock=time.time):
         self.hook = hook
-        self.secret = secret
+        self.key = key
+        self.clock = clock
         self.url = urllib.parse.urlsplit(hook.url)
         shown = f"{self.url.scheme}://{self.url.hostname}"
         if self.url.port:
@@ -104,21 +193,30 @@ class _WebhookSink:
         u = self.url
         timeout = self.hook.timeout_seconds
         if u.scheme == "https":
+            context = ssl.create_default_context()
+            context.sslsocket_class = _DeadlineSSLSocket
             conn = http.client.HTTPSConnection(u.hostname, u.port, timeout=timeout,
-                                               context=ssl.create_default_context())
+                                               context=context)
         else:
             conn = http.client.HTTPConnection(u.hostname, u.port, timeout=timeout)
+        conn._create_connection = _connect
         path = (u.path or "/") + (f"?{u.query}" if u.query else "")
+        timestamp = int(self.clock())     # each attempt signed afresh
         headers = {"Content-Type": "application/json", "User-Agent": _user_agent(),
-                   SIGNATURE_HEADER: sign(self.secret, body), IDEMPOTENCY_HEADER: outbox_id}
+                   ID_HEADER: outbox_id, TIMESTAMP_HEADER: str(timestamp),
+                   SIGNATURE_HEADER: sign(self.key, outbox_id, timestamp, body),
+                   IDEMPOTENCY_HEADER: outbox_id}
+        _request.deadline = time.monotonic() + timeout
         try:
             conn.request("POST", path, body=body, headers=headers)
             resp = conn.getresponse()
             resp.read(_RESPONSE_LIMIT)
         except (OSError, http.client.HTTPException) as exc:
-            raise DeliveryFailed(f"POST {self.shown} failed: {type(exc).__name__}: {exc}") \
-                from exc
+            raise DeliveryFailed(f"POST {self.shown} failed: {type(exc).__name__}: {exc}"
+                                 + (f" (the request's deadline is {timeout:g} s)"
+                                    if isinstance(exc, TimeoutError) else "")) from exc
         finally:
+            _request.deadline = None
             conn.close()
         if 300 <= resp.status < 400:
             raise DeliveryFailed(f"POST {self.shown} answered {resp.status} (redirect to "
@@ -128,43 +226,56 @@ class _WebhookSink:
 
 
 def _read_secret(hook: WebhookSettings) -> bytes | None:
+    """The webhook's HMAC key (see :func:`signing_key`), or None after an error log line."""
     if hook.secret_file is not None:
+        where = {"file": str(hook.secret_file)}
         try:
-            return Path(hook.secret_file).read_bytes().strip()
+            secret = Path(hook.secret_file).read_bytes().strip()
         except OSError as exc:
-            log_event("webhook_secret_unreadable", logging.ERROR, file=str(hook.secret_file),
-                      detail=exc.strerror)
+            log_event("webhook_secret_unreadable", logging.ERROR, **where, detail=exc.strerror)
             return None
-    value = os.environ.get(hook.secret_env or "")
-    if not value:
-        log_event("webhook_secret_missing", logging.ERROR, variable=hook.secret_env,
-                  detail="the environment variable is not set; alerts are not sent to "
-                         "this webhook")
+    else:
+        where = {"variable": hook.secret_env}
+        value = os.environ.get(hook.secret_env or "")
+        if not value:
+            log_event("webhook_secret_missing", logging.ERROR, **where,
+                      detail="the environment variable is not set; alerts are not sent to "
+                             "this webhook")
+            return None
+        secret = value.encode("utf-8")
+    try:
+        return signing_key(secret)
+    except ValueError as exc:
+        log_event("webhook_secret_invalid", logging.ERROR, **where,
+                  detail=f"{exc}; alerts are not sent to this webhook")
         return None
-    return value.encode("utf-8")
 
 
 class AlertSender:
-    """Deliver the outbox to the sinks, on a thread (``start``/``wake``/``stop``) or in
-    passes (:meth:`deliver_due`). Opens its own connection to the state store."""
+    """Deliver the outbox to the sinks, on threads (``start``/``wake``/``stop``: one for the
+    file, one for the webhooks, so the file never waits for a webhook) or in passes
+    (:meth:`deliver_due`). Opens its own connections to the state store."""
 
     def __init__(self, settings: Settings, db: Path, *, clock=time.time,
                  rng: random.Random | None = None, webhooks: bool = True):
         self.clock = clock
         self.rng = rng or random.Random()
+        self.db = Path(db)
         self.store = StateStore(db, clock=clock)
         self.webhooks = webhooks
         self._pending_settings: Settings | None = None
+        self._sinks_lock = threading.Lock()
         self._build_sinks(settings)
-        self._wake = threading.Event()
+        self._wakes = {"file": threading.Event(), "webhook": threading.Event()}
         self._stop = threading.Event()
-        self._thread: threading.Thread | None = None
+        self._threads: list[threading.Thread] = []
+        self._thread_stores: list[StateStore] = []
         self.store.retry_undelivered_now()
 
     def _build_sinks(self, settings: Settings) -> None:
         self.settings = settings
-        self.sinks: list = [_FileSink(settings.alerts.file)]
-        self.hooks: dict[str, WebhookSettings] = {}
+        sinks: list = [_FileSink(settings.alerts.file)]
+        hooks: dict[str, WebhookSettings] = {}
         allowed = {h.lower() for h in settings.alerts.allow_hosts}
         for hook in settings.alerts.webhooks if self.webhooks else ():
             host = (urllib.parse.urlsplit(hook.url).hostname or "").lower()
@@ -173,51 +284,70 @@ class AlertSender:
                           detail=f"webhook host {host!r} is not in alerts.allow_hosts "
                                  f"{sorted(allowed)}; no alert is sent to it")
                 continue
-            secret = _read_secret(hook)
-            if secret is None:
+            key = _read_secret(hook)
+            if key is None:
                 continue
-            sink = _WebhookSink(hook, secret)
-            self.sinks.append(sink)
-            self.hooks[sink.name] = hook
-        self.sink_names = [s.name for s in self.sinks]
-        self._by_name = {s.name: s for s in self.sinks}
+            sink = _WebhookSink(hook, key, clock=self.clock)
+            sinks.append(sink)
+            hooks[sink.name] = hook
+        self.sinks, self.hooks = sinks, hooks
+        self.sink_names = [s.name for s in sinks]
+        self._by_name = {s.name: s for s in sinks}
 
     def replace_settings(self, settings: Settings) -> None:
         """New sinks (SIGHUP): taken up at the start of the next pass (any thread)."""
         self._pending_settings = settings
-        self._wake.set()
+        self.wake()
+
+    def _take_new_settings(self) -> None:
+        with self._sinks_lock:
+            if self._pending_settings is not None:
+                settings, self._pending_settings = self._pending_settings, None
+                self._build_sinks(settings)
+                log_event("alert_sinks_reloaded",
+                          sinks=[n.split("#")[0] for n in self.sink_names])
 
     # -- one pass --------------------------------------------------------------------
-    def deliver_due(self) -> int:
-        """Try every notification due now, oldest first; return how many were delivered."""
-        if self._pending_settings is not None:
-            settings, self._pending_settings = self._pending_settings, None
-            self._build_sinks(settings)
-            log_event("alert_sinks_reloaded", sinks=[n.split("#")[0] for n in self.sink_names])
+    def deliver_due(self, kind: str | None = None, store: StateStore | None = None) -> int:
+        """Try every notification due now, oldest first, for the sinks of ``kind`` ("file"
+        or "webhook"; None: the file, then the webhooks); return how many were delivered."""
+        store = store or self.store
+        self._take_new_settings()
+        with self._sinks_lock:
+            names, by_name = list(self.sink_names), dict(self._by_name)
+        groups = [[n for n in names if (n == _FileSink.name) == (k == "file")]
+                  for k in (("file", "webhook") if kind is None else (kind,))]
         delivered = 0
-        now = self.clock()
+        for chosen in groups:
+            if chosen:
+                delivered += self._deliver(store, chosen, names, by_name)
+        return delivered
+
+    def _deliver(self, store: StateStore, chosen: list[str], names: list[str],
+                 by_name: dict) -> int:
+        delivered = 0
         failed_sinks: set[str] = set()
-        for outbox_id, sink_name, attempts, payload in self.store.deliveries_due(
-                self.sink_names, now):
+        for outbox_id, sink_name, attempts, payload in store.deliveries_due(
+                chosen, self.clock()):
             if self._stop.is_set():
                 break
             if sink_name in failed_sinks:   # keep the order: later ones wait their turn
                 continue
-            sink = self._by_name[sink_name]
             try:
-                sink.send(outbox_id, payload)
+                by_name[sink_name].send(outbox_id, payload)
             except DeliveryFailed as exc:
                 failed_sinks.add(sink_name)
-                self._failed(outbox_id, sink_name, attempts + 1, str(exc))
+                self._failed(store, outbox_id, sink_name, attempts + 1, str(exc), names)
                 continue
-            self.store.record_delivery(outbox_id, sink_name, ok=True, attempts=attempts + 1,
-                                       sinks=self.sink_names)
+            store.record_delivery(outbox_id, sink_name, ok=True, attempts=attempts + 1,
+                                  sinks=names)
             delivered += 1
             log_event("alert_delivered", logging.DEBUG, notification=outbox_id,
                       sink=sink_name.split("#")[0], attempts=attempts + 1)
         return delivered
 
-    def _failed(self, outbox_id: str, sink_name: str, attempts: int, error: str) -> None:
+    def _failed(self, store: StateStore, outbox_id: str, sink_name: str, attempts: int,
+                error: str, names: list[str]) -> None:
         hook = self.hooks.get(sink_name)
         retries = hook.retries if hook else 3
         if attempts > retries:
@@ -233,8 +363,8 @@ class AlertSender:
             log_event("alert_delivery_failed", logging.WARNING, notification=outbox_id,
                       sink=sink_name.split("#")[0], attempts=attempts, detail=error,
                       retry_in=round(delay, 3))
-        self.store.record_delivery(outbox_id, sink_name, ok=False, attempts=attempts,
-                                   next_at=next_at, error=error, sinks=self.sink_names)
+        store.record_delivery(outbox_id, sink_name, ok=False, attempts=attempts,
+                              next_at=next_at, error=error, sinks=names)
 
     def pending(self) -> int:
         return len(self.store.pending_alerts())
@@ -254,33 +384,49 @@ class AlertSender:
                 return False
             time.sleep(max(wait, 0.0))
 
-    # -- thread ----------------------------------------------------------------------
+    # -- threads ---------------------------------------------------------------------
     def wake(self, *_args) -> None:
-        self._wake.set()
+        for event in self._wakes.values():
+            event.set()
 
     def start(self) -> "AlertSender":
-        self._thread = threading.Thread(target=self._run, name="shoal-alerts", daemon=True)
-        self._thread.start()
+        """One thread for the file and one for the webhooks, each with its own connection
+        to the state store."""
+        for kind in ("file", "webhook"):
+            store = self.store if kind == "file" else StateStore(self.db, clock=self.clock)
+            if store is not self.store:
+                self._thread_stores.append(store)
+            thread = threading.Thread(target=self._run, args=(kind, store),
+                                      name=f"shoal-alerts-{kind}", daemon=True)
+            self._threads.append(thread)
+            thread.start()
         return self
 
-    def _run(self) -> None:
+    def _run(self, kind: str, store: StateStore) -> None:
+        wake = self._wakes[kind]
         while not self._stop.is_set():
             try:
-                self.deliver_due()
+                self.deliver_due(kind, store)
             except Exception as exc:  # noqa: BLE001 - the sender must not die silently
-                log_event("alert_sender_error", logging.ERROR,
+                log_event("alert_sender_error", logging.ERROR, sink_kind=kind,
                           detail=f"{type(exc).__name__}: {exc}")
-            nxt = self.store.next_delivery_at()
+            nxt = store.next_delivery_at()
             wait = 1.0 if nxt is None else min(max(nxt - self.clock(), 0.01), 1.0)
-            self._wake.wait(wait)
-            self._wake.clear()
+            wake.wait(wait)
+            wake.clear()
 
     def stop(self, timeout: float = 10.0) -> None:
         self._stop.set()
-        self._wake.set()
-        if self._thread is not None:
-            self._thread.join(timeout)
-            if self._thread.is_alive():
-                log_event("alert_sender_stuck", logging.ERROR,
-                          detail=f"the alert sender did not stop within {timeout} s")
+        self.wake()
+        end = time.monotonic() + timeout
+        stuck = False
+        for thread in self._threads:
+            thread.join(max(end - time.monotonic(), 0.0))
+            stuck = stuck or thread.is_alive()
+        if stuck:
+            log_event("alert_sender_stuck", logging.ERROR,
+                      detail=f"the alert sender did not stop within {timeout} s")
+        else:
+            for store in self._thread_stores:
+                store.close()
         self.store.close()

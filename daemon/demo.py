@@ -136,7 +136,7 @@ def _print_alerts(alerts: list, settings, total_rows: int) -> None:
     print(f"injected: {drift.unit}'s compressor current rising from row {drift.start_row} "
           f"(+{rise:.1f} A by row {total_rows}); ice build-up in {new_state.share:.0%} of rows "
           f"from row {new_state.start_row}")
-    print(f"drift alerts and segment events ({len(alerts)}; reference taken after "
+    print(f"drift alerts and segment events ({len(alerts)}; baseline taken after "
           f"{settings.drift.settle_rows} rows past warm-up):")
     if not alerts:
         print("  none")

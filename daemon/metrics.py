@@ -112,7 +112,7 @@ class LedgerCollector(Collector):
         weight = GaugeMetricFamily("shoal_segment_weight", "Share of rows of each segment",
                                    labels=["segment"])
         drift = GaugeMetricFamily("shoal_segment_drift",
-                                  "Drift statistics of each segment against its reference",
+                                  "Drift statistics of each segment against its baseline",
                                   labels=["segment", "statistic"])
         if row[0] is not None:
             for segment, w, stats in self.reader.db.execute(
@@ -124,7 +124,7 @@ class LedgerCollector(Collector):
         yield weight
         yield drift
         notes = CounterMetricFamily("shoal_alert_notifications",
-                                    "Alert notifications raised (firing, resolved), by severity",
+                                    "Alert notifications by status and severity",
                                     labels=["status", "severity"])
         counts: dict[tuple[str, str], int] = {}
         alerts = read_alerts(self.reader)
@@ -134,15 +134,15 @@ class LedgerCollector(Collector):
         for key, n in sorted(counts.items()):
             notes.add_metric(list(key), n)
         yield notes
-        firing = GaugeMetricFamily("shoal_alerts_firing", "Alerts firing now (not resolved)",
+        raised = GaugeMetricFamily("shoal_alerts_active", "Alerts raised and not yet cleared",
                                    labels=["severity"])
-        by_severity = {"warning": 0, "critical": 0}
+        by_severity = {"major": 0, "critical": 0}     # a drift alert's severities
         for a in open_alerts(alerts):
             sev = str(a.get("severity"))
             by_severity[sev] = by_severity.get(sev, 0) + 1
         for sev, n in sorted(by_severity.items()):
-            firing.add_metric([sev], n)
-        yield firing
+            raised.add_metric([sev], n)
+        yield raised
         pending = self.reader.db.execute(
             "SELECT COUNT(*) FROM alert_outbox WHERE delivered_at IS NULL").fetchone()[0]
         yield GaugeMetricFamily("shoal_alerts_undelivered", "Alerts in the outbox not yet "

@@ -1,4 +1,4 @@
-"""Drift of each segment against its reference, window by window, and the alerts it raises.
+"""Drift of each segment against its baseline, window by window, and the alerts it raises.
 
 The pipeline hands every piece of rows it learns to an :class:`InputWatch` (one per
 input). Rows are gathered into evaluation windows of ``drift.window_rows`` rows,
@@ -9,21 +9,21 @@ log-density sums and the unusual rows), so a window may span inputs; the sums tr
 in the checkpoint's ``extra["drift"]`` and are committed with the model.
 
 When ``drift.settle_rows`` rows have been learned after warm-up (rounded up to a
-whole window) the model is taken as the reference (:class:`shoal.core.drift.Reference`)
+whole window) the model is taken as the baseline (:class:`shoal.core.drift.Baseline`)
 together with the mean log-density of the last window. After that each window is
 compared with it, per segment:
 
-``mean_shift``     the window's responsibility-weighted mean, in reference sds
-                   (Mahalanobis distance under the reference covariance);
+``mean_shift``     the window's responsibility-weighted mean, in baseline sds
+                   (Mahalanobis distance under the baseline covariance);
 ``spread_ratio``   ``exp(|log|S_window| - log|S_ref|| / (2 D))``, the geometric mean of
                    the sd ratios either way (evaluated on its log);
-``weight_change``  ``|share of the window's rows - reference weight|``;
-``feature_shift[f]`` one feature's window mean in reference sds (only when bounded);
-``fit_drop``       (whole model) reference mean log-density per row minus the window's.
+``weight_change``  ``|share of the window's rows - baseline weight|``;
+``feature_shift[f]`` one feature's window mean in baseline sds (only when bounded);
+``fit_drop``       (whole model) baseline mean log-density per row minus the window's.
 
 Each comes with its estimation noise at Kish's effective rows of the window and of
-the reference (:mod:`shoal.core.drift`). :func:`shoal.core.drift.evaluate_bounds`
-turns them into firing and resolved events (bound and noise, persistence,
+the baseline (:mod:`shoal.core.drift`). :func:`shoal.core.drift.evaluate_bounds`
+turns them into raised and cleared events (bound and noise, persistence,
 hysteresis); here they become alert payloads with deterministic ids and an
 explanation in the data's own units.
 """
@@ -42,7 +42,7 @@ from shoal.core import Mixture
 from shoal.core.distances import GaussianSet, hotelling_t2_pvalue
 from shoal.core.drift import (
     WHOLE_MODEL,
-    Reference,
+    Baseline,
     add_segment_scatter,
     evaluate_bounds,
     explain,
@@ -52,23 +52,27 @@ from shoal.core.drift import (
 )
 from shoal.daemon.logs import log_event
 
-__all__ = ["DriftMonitor", "InputWatch", "alert_id", "STATISTIC_UNITS", "SEGMENT_STATISTICS"]
+__all__ = ["DriftMonitor", "InputWatch", "alert_id", "STATISTIC_UNITS", "SEGMENT_STATISTICS",
+           "PAYLOAD_SCHEMA_VERSION"]
 
 STATE_FORMAT = 1
+# Version of the alert payload's fields (README, "Alert payload"); a change to a field's
+# name or meaning bumps it, so a receiver can tell which fields to expect.
+PAYLOAD_SCHEMA_VERSION = 1
 SEGMENT_STATISTICS = ("mean_shift", "spread_ratio", "weight_change")
 STATISTIC_UNITS = {
-    "mean_shift": "reference sds",
+    "mean_shift": "baseline sds",
     "spread_ratio": "ratio of sds",
     "weight_change": "share of rows",
     "fit_drop": "nats per row",
-    "feature_shift": "reference sds",
+    "feature_shift": "baseline sds",
 }
 _TOP_FEATURES = 3
 
 
-def alert_id(reference_number: int, segment, statistic: str, first_window: int) -> str:
-    """The same cause (reference, segment, statistic, first crossing window) -> the same id."""
-    cause = json.dumps([int(reference_number), str(segment), statistic, int(first_window)])
+def alert_id(baseline_number: int, segment, statistic: str, first_window: int) -> str:
+    """The same cause (baseline, segment, statistic, first crossing window) -> the same id."""
+    cause = json.dumps([int(baseline_number), str(segment), statistic, int(first_window)])
     return "drift-" + hashlib.sha256(cause.encode()).hexdigest()[:20]
 
 
@@ -225,7 +229,7 @@ class InputWatch:
             raise ValueError(f"drift state has format {state.get('format')!r}")
         self._state = json.loads(json.dumps(state)) if state is not None else None
         self.last_values: dict[str, dict[str, float]] = {}
-        self._ref_cache = None   # (reference dict, Reference, GaussianSet)
+        self._ref_cache = None   # (baseline dict, Baseline, GaussianSet)
         # the open window's per-segment sums of the pieces since the last flush, as arrays
         # (adding each piece to the state's JSON lists cost more than computing it)
         self._pending: dict | None = None
@@ -246,8 +250,8 @@ class InputWatch:
     def start(self, stream_offset: int) -> None:
         """A new model: windows count from its first learned row (stream row ``stream_offset``)."""
         self.state = {"format": STATE_FORMAT, "offset": int(stream_offset),
-                      "window_rows": int(self.drift.window_rows), "reference": None,
-                      "reference_number": 0, "reference_info": None, "window": None,
+                      "window_rows": int(self.drift.window_rows), "baseline": None,
+                      "baseline_number": 0, "baseline_info": None, "window": None,
                       "bounds": None, "cool": {}, "recent": [], "open": {},
                       "last_ld": None, "rebase": None}
 
@@ -313,7 +317,7 @@ class InputWatch:
         # _NEGLIGIBLE add less than that share of a row each, far below the statistics'
         # noise, and on separated segments most rows are skipped.
         add_segment_scatter(sums["S"], Xc, resp_kn, _NEGLIGIBLE)
-        limit = self._state.get("reference_info", {}) or {}
+        limit = self._state.get("baseline_info", {}) or {}
         below = limit.get("unusual_below")
         if below is not None:
             mask = ld < below
@@ -360,7 +364,7 @@ class InputWatch:
 
     def _close(self, win, mixture: Mixture, first_window_row: int) -> None:
         st = self._state
-        if st.get("rebase") is not None or st["reference"] is None:
+        if st.get("rebase") is not None or st["baseline"] is None:
             self._flush()    # sums kept for the re-baseline (or not needed)
             segments = None
         else:
@@ -372,64 +376,64 @@ class InputWatch:
         if st.get("rebase") is not None:
             self._collect(win, mixture, info)
             return
-        if st["reference"] is None:
+        if st["baseline"] is None:
             if first_window_row + win["n"] >= self.drift.settle_rows:
-                self._take_reference(mixture, st["last_ld"], info)
+                self._take_baseline(mixture, st["last_ld"], info)
             return
         self._evaluate(win, info, segments)
 
-    def _take_reference(self, mixture: Mixture, log_density, info, ref=None) -> None:
+    def _take_baseline(self, mixture: Mixture, log_density, info, ref=None) -> None:
         st = self.state
         if ref is None:
-            ref = Reference.from_mixture(mixture, log_density=log_density)
-        st["reference"] = ref.to_dict()
-        st["reference_info"] = {"number": st["reference_number"], "model_version": self.version,
+            ref = Baseline.from_mixture(mixture, log_density=log_density)
+        st["baseline"] = ref.to_dict()
+        st["baseline_info"] = {"number": st["baseline_number"], "model_version": self.version,
                                 "row": info["rows"][1] + 1, "unusual_below": self.unusual_below,
                                 "note": None}
         st["bounds"], st["cool"], st["open"] = None, {}, {}
-        log_event("drift_reference_taken", reference=st["reference_number"],
+        log_event("drift_baseline_taken", baseline=st["baseline_number"],
                   model_version=self.version, row=info["rows"][1] + 1,
                   segments=[int(i) for i in ref.ids])
 
     def rebaseline(self, mixture: Mixture, note: str) -> None:
-        """Accept the present as normal: firing alerts resolve now, and the next
-        ``settle_rows`` rows (whole windows, at least one) become the new reference.
+        """Accept the present as normal: raised alerts clear now, and the next
+        ``settle_rows`` rows (whole windows, at least one) become the new baseline.
 
-        The reference is taken from those rows themselves (responsibility-weighted
+        The baseline is taken from those rows themselves (responsibility-weighted
         weights, means and covariances), not from the model, which lags a population
         that has just moved by about a half-life.
         """
         st = self._ensure()
         for key, alert in sorted(st["open"].items()):
-            payload = dict(alert["payload"], status="resolved", value=None,
-                           resolved_by="rebaseline", note=note)
+            payload = dict(alert["payload"], status="cleared", value=None,
+                           cleared_by="rebaseline", note=note)
             payload["model_version"] = {"first": alert["payload"]["model_version"]["first"],
                                         "last": self.version}
             self._emit(payload)
-        if st["reference"] is not None:
-            st["reference_number"] += 1
-        st["reference"], st["bounds"], st["cool"], st["open"] = None, None, {}, {}
+        if st["baseline"] is not None:
+            st["baseline_number"] += 1
+        st["baseline"], st["bounds"], st["cool"], st["open"] = None, None, {}, {}
         st["rebase"] = {"note": note, "requested_version": self.version, "sums": None}
         self.rebaselined = True
-        log_event("drift_rebaseline_started", reference=st["reference_number"],
+        log_event("drift_rebaseline_started", baseline=st["baseline_number"],
                   model_version=self.version, note=note,
                   rows=max(self.drift.settle_rows, self.window_rows))
 
     def _collect(self, win, mixture: Mixture, info) -> None:
-        """Add a window to the re-baseline sums; take the reference once there are enough."""
+        """Add a window to the re-baseline sums; take the baseline once there are enough."""
         st = self.state
         rebase = st["rebase"]
         sums = rebase["sums"] = _merge_sums(rebase["sums"], win)
         if sums["n"] < max(self.drift.settle_rows, self.window_rows):
             return
-        ref = _reference_from_sums(sums, mixture)
+        ref = _baseline_from_sums(sums, mixture)
         st["rebase"] = None
-        self._take_reference(mixture, ref.log_density, info, ref=ref)
-        st["reference_info"]["note"] = rebase["note"]
+        self._take_baseline(mixture, ref.log_density, info, ref=ref)
+        st["baseline_info"]["note"] = rebase["note"]
 
     def _evaluate(self, win, info, segments: dict | None = None) -> None:
         st = self.state
-        ref, factors = self._reference()
+        ref, factors = self._baseline()
         values, noise, detail = self._statistics(win, ref, factors, segments)
         at = win["index"]
         for key in list(st["cool"]):
@@ -453,15 +457,15 @@ class InputWatch:
         for e in events:
             self._event(e, detail, ref, info)
 
-    def _reference(self) -> tuple[Reference, GaussianSet]:
-        """The reference in force and its factorised Gaussians, parsed once per reference."""
-        doc = self.state["reference"]
+    def _baseline(self) -> tuple[Baseline, GaussianSet]:
+        """The baseline in force and its factorised Gaussians, parsed once per baseline."""
+        doc = self.state["baseline"]
         if self._ref_cache is None or self._ref_cache[0] is not doc:
-            ref = Reference.from_dict(doc)
+            ref = Baseline.from_dict(doc)
             self._ref_cache = (doc, ref, GaussianSet(ref.means, ref.covariances))
         return self._ref_cache[1], self._ref_cache[2]
 
-    def _statistics(self, win, ref: Reference, factors: GaussianSet,
+    def _statistics(self, win, ref: Baseline, factors: GaussianSet,
                     segments: dict | None = None):
         """(values, noise, detail) of one window (its per-segment sums ``segments``, or
         ``win["segments"]``); the core's kernels are called once per window on all
@@ -482,7 +486,7 @@ class InputWatch:
             share = (acc["T"] / n) if acc else 0.0
             values[(sid, "weight_change")] = abs(share - w_ref)
             noise[(sid, "weight_change")] = float(w_noise[k])
-            detail[sid] = {"share": share, "reference_weight": w_ref, "n_eff": 0.0}
+            detail[sid] = {"share": share, "baseline_weight": w_ref, "n_eff": 0.0}
             if not acc or acc["T"] <= 0.0 or acc["Q"] <= 0.0:
                 continue
             dev = np.asarray(acc["M"]) / acc["T"]
@@ -528,7 +532,7 @@ class InputWatch:
                     noise[(sid, _feature_stat(f))] = float(f_noise[i])
         return self._fit_statistics(win, ref, values, noise, detail)
 
-    def _fit_statistics(self, win, ref: Reference, values, noise, detail):
+    def _fit_statistics(self, win, ref: Baseline, values, noise, detail):
         n = win["n"]
         center = np.asarray(win["center"])
         if n >= 2 and math.isfinite(ref.log_density):
@@ -544,16 +548,17 @@ class InputWatch:
         return values, noise, detail
 
     # -- events -> alerts ------------------------------------------------------------
-    def _event(self, e: dict, detail: dict, ref: Reference, info: dict) -> None:
+    def _event(self, e: dict, detail: dict, ref: Baseline, info: dict) -> None:
         st = self.state
         seg, stat = e["segment"], e["statistic"]
         key = f"{seg}|{stat}"
-        if e["status"] == "firing":
+        if e["status"] == "raised":
             windows = [w for w in st["recent"] if w["index"] >= e["first_at"]]
             payload = {
-                "id": alert_id(st["reference_number"], seg, stat, e["first_at"]),
+                "schema_version": PAYLOAD_SCHEMA_VERSION,
+                "id": alert_id(st["baseline_number"], seg, stat, e["first_at"]),
                 "kind": "drift",
-                "status": "firing",
+                "status": "raised",
                 "severity": self._severity(stat, e["value"], e["bound"]),
                 "segment": seg if seg == WHOLE_MODEL else int(seg),
                 "statistic": stat,
@@ -568,7 +573,7 @@ class InputWatch:
                 "inputs": _files(windows),
                 "windows": {"first": e["first_at"], "last": e["at"],
                             "rows_each": self.window_rows},
-                "reference": {k: v for k, v in (st["reference_info"] or {}).items()
+                "baseline": {k: v for k, v in (st["baseline_info"] or {}).items()
                               if k in ("number", "model_version", "row")},
                 "explanation": self._explain(seg, stat, detail, ref),
             }
@@ -577,15 +582,16 @@ class InputWatch:
         else:
             opened = st["open"].pop(key, None)
             base = opened["payload"] if opened else {
-                "id": alert_id(st["reference_number"], seg, stat, e["first_at"] or e["at"]),
+                "schema_version": PAYLOAD_SCHEMA_VERSION,
+                "id": alert_id(st["baseline_number"], seg, stat, e["first_at"] or e["at"]),
                 "kind": "drift", "segment": seg, "statistic": stat,
                 "unit": STATISTIC_UNITS[stat.split("[")[0]],
                 "model_version": {"first": self.version}, "rows": {"first": info["rows"][0]},
-                "severity": "warning", "reference": None}
+                "severity": "major", "baseline": None}
             windows = st["recent"][-self.drift.resolve_persist:]
             payload = dict(base)
             payload.update({
-                "status": "resolved",
+                "status": "cleared",
                 "value": _num(_shown(stat, e["value"])),
                 "bound": _num(_shown(stat, e["bound"])),
                 "noise": _num(_shown_noise(stat, e["noise"])),
@@ -606,7 +612,7 @@ class InputWatch:
     def log_alerts(self, model_version: int) -> None:
         """One log line per alert; called once they are committed."""
         for _, payload in self.alerts:
-            level = logging.WARNING if payload["status"] == "firing" else logging.INFO
+            level = logging.WARNING if payload["status"] == "raised" else logging.INFO
             log_event(f"alert_{payload['status']}", level, id=payload["id"],
                       model_version=model_version, severity=payload.get("severity"),
                       segment=payload.get("segment"), statistic=payload.get("statistic"),
@@ -614,9 +620,11 @@ class InputWatch:
                       summary=(payload.get("explanation") or {}).get("summary"))
 
     def _severity(self, stat, value, bound) -> str:
-        return "critical" if value >= self.drift.critical_multiple * bound else "warning"
+        """X.733 perceived severity: ``critical`` at ``critical_multiple`` times the bound,
+        ``major`` past the bound (segment events are ``warning``)."""
+        return "critical" if value >= self.drift.critical_multiple * bound else "major"
 
-    def _explain(self, seg, stat, detail, ref: Reference) -> dict:
+    def _explain(self, seg, stat, detail, ref: Baseline) -> dict:
         names = self.monitor.features
         if seg == WHOLE_MODEL:
             return self._explain_fit(detail.get(WHOLE_MODEL), ref)
@@ -624,12 +632,12 @@ class InputWatch:
         if "mean" not in info:
             share = info.get("share", 0.0)
             return {"summary": f"segment {seg} took {share:.1%} of the window's rows "
-                               f"(reference weight {info.get('reference_weight', 0.0):.1%}) "
+                               f"(baseline weight {info.get('baseline_weight', 0.0):.1%}) "
                                "and had no rows to compare",
-                    "share": share, "reference_weight": info.get("reference_weight")}
+                    "share": share, "baseline_weight": info.get("baseline_weight")}
         moved = explain(ref, seg, info["mean"], feature_names=names)
         out = {"features": moved, "share": info["share"],
-               "reference_weight": info["reference_weight"], "effective_rows": info["n_eff"]}
+               "baseline_weight": info["baseline_weight"], "effective_rows": info["n_eff"]}
         if stat == "mean_shift":   # T^2 = n_eff d^2 against chi-square(D) (scipy.stats.chi2)
             out["hotelling_t2"] = info["t2"]
             out["p_value"] = float(hotelling_t2_pvalue(info["t2"], len(names)))
@@ -639,30 +647,30 @@ class InputWatch:
                             np.diag(ref.covariances[k]))
             order = sorted(range(len(names)), key=lambda j: (-abs(math.log(max(ratio[j], 1e-300))), j))
             out["spreads"] = [{"feature": names[j],
-                               "reference_sd": float(math.sqrt(ref.covariances[k][j, j])),
-                               "current_sd": float(math.sqrt(max(info["cov"][j, j], 0.0))),
+                               "baseline_sd": float(math.sqrt(ref.covariances[k][j, j])),
+                               "window_sd": float(math.sqrt(max(info["cov"][j, j], 0.0))),
                                "ratio": float(ratio[j])} for j in order]
-            top = ", ".join(f"{s['feature']} sd {_fmt(s['reference_sd'])} -> "
-                            f"{_fmt(s['current_sd'])} (x{s['ratio']:.2f})"
+            top = ", ".join(f"{s['feature']} sd {_fmt(s['baseline_sd'])} -> "
+                            f"{_fmt(s['window_sd'])} (x{s['ratio']:.2f})"
                             for s in out["spreads"][:_TOP_FEATURES])
             out["summary"] = f"segment {seg} spread changed: {top}"
         elif stat == "weight_change":
             out["summary"] = (f"segment {seg} took {info['share']:.1%} of the rows against a "
-                              f"reference weight of {info['reference_weight']:.1%}; "
+                              f"baseline weight of {info['baseline_weight']:.1%}; "
                               + _moves(moved))
         else:
             out["summary"] = f"segment {seg} moved: " + _moves(moved)
         return out
 
-    def _explain_fit(self, info, ref: Reference) -> dict:
+    def _explain_fit(self, info, ref: Baseline) -> dict:
         if not info:
             return {"summary": "no rows"}
         out = {"mean_log_density": info["mean_log_density"],
-               "reference_log_density": float(ref.log_density),
+               "baseline_log_density": float(ref.log_density),
                "unusual_rows": info["unusual"], "rows": info["n"],
                "expected_unusual_share": self.monitor.settings.output.unusual_quantile}
         head = (f"mean log-density {_fmt(info['mean_log_density'])} against "
-                f"{_fmt(ref.log_density)} nats/row at the reference; "
+                f"{_fmt(ref.log_density)} nats/row at the baseline; "
                 f"{info['unusual'] / info['n']:.1%} of rows unusual (expected "
                 f"{self.monitor.settings.output.unusual_quantile:.1%})")
         by_seg = info["unusual_by_segment"]
@@ -672,7 +680,7 @@ class InputWatch:
                 moved = explain(ref, int(near), info["unusual_mean"],
                                 feature_names=self.monitor.features)
                 out.update(nearest_segment=int(near), features=moved)
-                head += (f"; most are labelled segment {near}, from whose reference they "
+                head += (f"; most are labelled segment {near}, from whose baseline they "
                          f"differ: " + _moves(moved))
         out["summary"] = head
         return out
@@ -697,10 +705,10 @@ def _merge_sums(into: dict | None, win: dict) -> dict:
     return into
 
 
-def _reference_from_sums(sums: dict, mixture: Mixture) -> Reference:
-    """A reference from the rows themselves; a segment with too few rows for a covariance
+def _baseline_from_sums(sums: dict, mixture: Mixture) -> Baseline:
+    """A baseline from the rows themselves; a segment with too few rows for a covariance
     keeps the model's mean and covariance."""
-    model = Reference.from_mixture(mixture)
+    model = Baseline.from_mixture(mixture)
     d = mixture.n_features
     center = np.asarray(sums["center"])
     n = sums["n"]
@@ -720,13 +728,13 @@ def _reference_from_sums(sums: dict, mixture: Mixture) -> Reference:
         if np.all(np.linalg.eigvalsh(cov) > 0):
             means[k], covs[k] = center + dev, cov
             n_eff[k] = acc["T"] ** 2 / acc["Q"]
-    return Reference(ids=model.ids, weights=weights, means=means, covariances=covs,
+    return Baseline(ids=model.ids, weights=weights, means=means, covariances=covs,
                      n_eff=n_eff, total_n_eff=float(n), log_density=sums["ld"] / n,
                      covariance=mixture.covariance)
 
 
 def _moves(moved) -> str:
-    return ", ".join(f"{m['feature']} {_fmt(m['reference_mean'])} -> {_fmt(m['current_mean'])} "
+    return ", ".join(f"{m['feature']} {_fmt(m['baseline_mean'])} -> {_fmt(m['window_mean'])} "
                      f"({m['shift_sd']:+.2f} sd)" for m in moved[:_TOP_FEATURES])
 
 

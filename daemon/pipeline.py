@@ -476,7 +476,7 @@ class Pipeline:
         st = self.state
         if st.mixture is None:
             raise StateError("no model yet: the warm-up has not finished, so there is "
-                             "nothing to take as the reference")
+                             "nothing to take as the baseline")
         watch = self.monitor.begin(st.extra.get("drift"), version=st.version, file="",
                                    unusual_below=st.extra.get("unusual_below"))
         if watch is None:

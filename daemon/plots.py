@@ -109,12 +109,12 @@ def weights_png(history: Sequence[Mapping[str, Any]]) -> bytes:
 
 
 def means_png(history: Sequence[Mapping[str, Any]], features: Sequence[str],
-              units: Mapping[str, str], reference: Mapping[int, tuple] | None = None) -> bytes:
-    """One panel per feature: each segment's mean over time, its reference mean ± 1 sd shaded.
+              units: Mapping[str, str], baseline: Mapping[int, tuple] | None = None) -> bytes:
+    """One panel per feature: each segment's mean over time, its baseline mean ± 1 sd shaded.
 
-    ``reference``: segment id -> (means, sds) in data units, per feature.
+    ``baseline``: segment id -> (means, sds) in data units, per feature.
     """
-    title = "Segment mean per feature over time (band: reference mean ± 1 sd)"
+    title = "Segment mean per feature over time (band: baseline mean ± 1 sd)"
     if not history:
         return message_png(title, "no model yet: the warm-up has not finished", "mean")
     n = len(features)
@@ -130,8 +130,8 @@ def means_png(history: Sequence[Mapping[str, Any]], features: Sequence[str],
             t = _times([r["created"] for r in rows])
             ax.plot(t, [r["mean"][j] for r in rows], color=st["color"],
                     linestyle=st["linestyle"], linewidth=1.4, label=f"segment {sid}")
-            if reference and sid in reference:
-                m, s = reference[sid][0][j], reference[sid][1][j]
+            if baseline and sid in baseline:
+                m, s = baseline[sid][0][j], baseline[sid][1][j]
                 ax.axhspan(m - s, m + s, color=st["color"], alpha=0.15, linewidth=0)
         ax.set_title(feat, fontsize="medium")
         ax.set_ylabel(f"mean ({units.get(feat, 'data units')})")
@@ -150,7 +150,7 @@ def means_png(history: Sequence[Mapping[str, Any]], features: Sequence[str],
 def drift_png(history: Sequence[Mapping[str, Any]], bounds: Mapping[str, float],
               alerts: Sequence[Mapping[str, Any]]) -> bytes:
     """One panel per drift statistic: each segment's value over time, the bound dashed,
-    alerts marked with a triangle where they fired (a circle where they resolved)."""
+    alerts marked with a triangle where they were raised (a circle where they were cleared)."""
     title = "Drift statistics against their bounds (markers: alerts)"
     stats: dict[str, dict[int, list]] = {}
     bounds = dict(bounds)
@@ -187,9 +187,9 @@ def drift_png(history: Sequence[Mapping[str, Any]], bounds: Mapping[str, float],
                 continue
             sid = a.get("segment")
             color = segment_style(sid)["color"] if isinstance(sid, int) else "black"
-            resolved = a.get("status") == "resolved"
+            cleared = a.get("status") == "cleared"
             ax.plot(_times([when]), [float(a["value"])], linestyle="none",
-                    marker="o" if resolved else "^", markersize=9, markerfacecolor=color,
+                    marker="o" if cleared else "^", markersize=9, markerfacecolor=color,
                     markeredgecolor="black")
         ax.set_title(name, fontsize="medium")
         ax.set_ylabel(f"{name} ({_STAT_UNITS.get(name, 'statistic units')})")
@@ -204,9 +204,9 @@ def drift_png(history: Sequence[Mapping[str, Any]], bounds: Mapping[str, float],
 
 
 _STAT_UNITS = {
-    "mean_shift": "reference sds",
-    "batch_mean_shift": "reference sds",
-    "feature_shift": "reference sds",
+    "mean_shift": "baseline sds",
+    "batch_mean_shift": "baseline sds",
+    "feature_shift": "baseline sds",
     "spread_change": "log ratio",
     "spread_ratio": "ratio",
     "hellinger": "distance, 0-1",

@@ -20,7 +20,12 @@ from shoal.config import Settings
 from shoal.daemon.errors import StateError
 from shoal.daemon.gate import ReadinessGate
 from shoal.daemon.layout import Layout
-from shoal.daemon.store import StateStore
+from shoal.daemon.store import Checkpoint, StateStore
+from shoal.daemon.store_words import (
+    extra_in_current_words,
+    notification_in_current_words,
+    payload_in_current_words,
+)
 from shoal.daemon.summary import segment_summary
 
 __all__ = ["StateReader", "open_reader", "read_alerts", "open_alerts", "inbox_backlog", "state_snapshot",
@@ -45,6 +50,13 @@ class StateReader(StateStore):
             self.db.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()
         except sqlite3.DatabaseError as exc:
             raise StateError(f"state store {self.path} cannot be read: {exc}") from exc
+
+    def checkpoint(self, version: int) -> Checkpoint:
+        """A checkpoint, its drift state in today's words (a store not yet migrated by a
+        writer keeps the earlier ones on disk)."""
+        cp = super().checkpoint(version)
+        cp.extra = extra_in_current_words(cp.extra)
+        return cp
 
     def tables(self) -> set[str]:
         return {name for (name,) in self.db.execute(
@@ -81,7 +93,7 @@ def _alert_record(row: dict) -> dict:
     """One alert notification as a flat dict, whatever table it came from.
 
     A row's own ``id`` names the notification (``notification``); the payload's ``id``
-    names the alert, the same for its firing and its resolved notification.
+    names the alert, the same for its raised and its cleared notification.
     """
     out = dict(row)
     out["notification"] = out.get("id")
@@ -92,12 +104,23 @@ def _alert_record(row: dict) -> dict:
         except json.JSONDecodeError:
             payload = {"payload": payload}
     if isinstance(payload, dict):
+        if "schema_version" not in payload:   # a store not yet migrated by a writer
+            out["notification"] = notification_in_current_words(str(out["notification"]))
+        payload = payload_in_current_words(payload)
         for key, value in payload.items():
             out.setdefault(key, value)
         out["id"] = payload.get("id", out.get("id"))
-    out.setdefault("status", "firing")
-    out.setdefault("severity", "warning")
+    out.setdefault("status", "raised")
+    out.setdefault("severity", "major")
     return out
+
+
+def _notification_order(record: dict) -> tuple:
+    """Oldest first: by commit time, then model version (inputs committed together share a
+    time), then the alert's own sequence (raised before cleared), then the name."""
+    status = record.get("status")
+    return (record.get("created") or 0, record.get("version") or 0,
+            1 if status == "cleared" else 0, str(record.get("notification") or record.get("id")))
 
 
 def read_alerts(reader: StateReader, since: float | None = None,
@@ -112,17 +135,17 @@ def read_alerts(reader: StateReader, since: float | None = None,
     rows = [_alert_record(dict(zip(names, r))) for r in cur.fetchall()]
     if since is not None:
         rows = [r for r in rows if (r.get("created") or 0) >= since]
-    rows.sort(key=lambda r: (r.get("created") or 0, str(r.get("id"))), reverse=True)
+    rows.sort(key=_notification_order, reverse=True)
     return rows if limit is None else rows[:limit]
 
 
 def open_alerts(alerts: list[dict]) -> list[dict]:
-    """Alerts whose latest notification is 'firing' (not yet resolved), newest first."""
+    """Alerts whose latest notification is 'raised' (not yet cleared), newest first."""
     latest: dict[str, dict] = {}
-    for a in sorted(alerts, key=lambda r: (r.get("created") or 0, str(r.get("notification")))):
+    for a in sorted(alerts, key=_notification_order):
         latest[str(a.get("id"))] = a
     return [a for a in sorted(latest.values(), key=lambda r: r.get("created") or 0,
-                              reverse=True) if a.get("status") == "firing"]
+                              reverse=True) if a.get("status") == "raised"]
 
 
 def inbox_backlog(settings: Settings, layout: Layout, done_names: set[str] | None = None,
@@ -165,7 +188,7 @@ def state_snapshot(reader: StateReader, settings: Settings, layout: Layout,
     for a in alerts:
         key = f"{a.get('status')}/{a.get('severity')}"
         counts[key] = counts.get(key, 0) + 1
-    firing = open_alerts(alerts)
+    raised = open_alerts(alerts)
     done = None
     if settings.output.keep_inputs:
         done = {n for (n,) in reader.db.execute(
@@ -182,7 +205,7 @@ def state_snapshot(reader: StateReader, settings: Settings, layout: Layout,
         "last_input": totals["last_input"],
         "last_error": totals["last_error"],
         "alert_counts": counts,
-        "alerts_firing": len(firing),
+        "alerts_active": len(raised),
         "recent_alerts": alerts[:recent_alerts],
         "backlog": inbox_backlog(settings, layout, done, now),
     }
@@ -239,7 +262,7 @@ def format_status(snap: dict, width: int = 100) -> str:
             lines.append(f"(+{len(head) - shown} more features: shoal segments -c CONFIG)")
     lines.append("")
     counts = snap["alert_counts"]
-    lines.append(f"alerts: {snap.get('alerts_firing', 0)} firing now; notifications: "
+    lines.append(f"alerts: {snap.get('alerts_active', 0)} active now; notifications: "
                  + (", ".join(f"{v} {k}" for k, v in sorted(counts.items())) or "none"))
     for a in snap["recent_alerts"][:5]:
         lines.append(f"  {a.get('status', '?'):9s} {a.get('severity', '?'):8s} segment "

@@ -2,7 +2,7 @@
 
 Everything comes from the state store, read-only (the report can be made
 beside a running service): the segment history, the alerts, the latest
-checkpoint (current segments, reference bands) and a sample of recent rows
+checkpoint (current segments, baseline bands) and a sample of recent rows
 (the committed inputs in ``processed/``, or the inbox when inputs are kept,
 joined row by row with their labels files). Images are PNG, embedded as
 ``data:`` URIs; the page has no script and loads nothing from elsewhere.
@@ -37,7 +37,7 @@ __all__ = ["REPORT_PLOTS", "parse_since", "report_data", "render_plots", "build_
 # id -> caption of every plot in the report (the status page shows the first and last).
 REPORT_PLOTS = {
     "weights": "Segment weights over time",
-    "means": "Each segment's mean per feature over time, with its reference band",
+    "means": "Each segment's mean per feature over time, with its baseline band",
     "drift": "Drift statistics against their bounds, with alert markers",
     "pca": "Recent rows in the two most informative directions (PCA), with 2-sd ellipses",
 }
@@ -132,13 +132,13 @@ def recent_rows(reader: StateReader, settings: Settings, layout: Layout, *,
     return X, s
 
 
-def _reference_bands(extra: Mapping[str, Any], history: Sequence[Mapping]) -> dict:
-    """Segment id -> (means, sds): the stored reference snapshot if there is one, else
+def _baseline_bands(extra: Mapping[str, Any], history: Sequence[Mapping]) -> dict:
+    """Segment id -> (means, sds): the stored baseline if there is one, else
     each segment's first recorded state."""
     ref = None
     if isinstance(extra, Mapping):  # the drift watch keeps it in extra["drift"]
         drift = extra.get("drift")
-        ref = extra.get("reference") or (drift.get("reference") if isinstance(drift, Mapping)
+        ref = extra.get("baseline") or (drift.get("baseline") if isinstance(drift, Mapping)
                                          else None)
     out: dict[int, tuple] = {}
     if isinstance(ref, Mapping) and ref.get("ids") and ref.get("means"):
@@ -174,7 +174,7 @@ def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
     return {
         "snapshot": state_snapshot(reader, settings, layout, now=now, recent_alerts=50),
         "history": history,
-        "reference": _reference_bands(cp.extra if cp else {}, all_history),
+        "baseline": _baseline_bands(cp.extra if cp else {}, all_history),
         "alerts": alerts,
         "means": means,
         "covariances": covs,
@@ -195,7 +195,7 @@ def render_plots(data: Mapping[str, Any], which: Sequence[str] = tuple(REPORT_PL
     makers = {
         "weights": lambda: plots.weights_png(data["history"]),
         "means": lambda: plots.means_png(data["history"], data["features"], data["units"],
-                                         data["reference"]),
+                                         data["baseline"]),
         "drift": lambda: plots.drift_png(data["history"], data["bounds"], data["alerts"]),
         "pca": lambda: plots.pca_png(data["sample"][0], data["sample"][1], data["means"],
                                      data["covariances"], data["features"]),
@@ -228,7 +228,7 @@ th,td{border:1px solid #ccc;padding:.25rem .5rem;text-align:right}
 th{background:#f2f2f2}td.l,th.l{text-align:left}
 figure{margin:1rem 0}figure img{max-width:100%;height:auto;border:1px solid #ddd}
 figcaption{font-size:.9rem;color:#444}.meta{color:#444;font-size:.9rem}
-.firing{color:#D55E00;font-weight:bold}.resolved{color:#0072B2}
+.raised{color:#D55E00;font-weight:bold}.cleared{color:#0072B2}
 .swatch{display:inline-block;width:.8em;height:.8em;margin-right:.3em;vertical-align:middle}
 """
 
@@ -265,8 +265,8 @@ def alerts_table(alerts: Sequence[Mapping[str, Any]], limit: int = 50) -> str:
         expl = a.get("explanation")
         if isinstance(expl, (list, tuple)) and expl and isinstance(expl[0], Mapping):
             top = expl[0]
-            expl = (f"{top.get('feature')}: {_fmt(top.get('reference_mean'))} → "
-                    f"{_fmt(top.get('current_mean'))} ({_fmt(top.get('shift_sd'))} sd)")
+            expl = (f"{top.get('feature')}: {_fmt(top.get('baseline_mean'))} → "
+                    f"{_fmt(top.get('window_mean'))} ({_fmt(top.get('shift_sd'))} sd)")
         elif isinstance(expl, Mapping):
             expl = expl.get("summary") or expl.get("text") or ""
         rows.append(

@@ -22,7 +22,7 @@ birth   rows no segment explains (chi-square bound) sit in a bounded pool; when 
 
 The pool and the bookkeeping travel in the checkpoint's ``extra["lifecycle"]`` and are
 committed with the model. Each event becomes a segment-history entry and an alert
-(``kind: lifecycle``); the drift reference drops a retired or merged-away id at once
+(``kind: lifecycle``); the drift baseline drops a retired or merged-away id at once
 and takes a born segment in once it has settled (``lifecycle.settle_rows`` rows).
 """
 from __future__ import annotations
@@ -36,7 +36,7 @@ import numpy as np
 
 from shoal.config import Settings
 from shoal.core import Mixture, ModelError
-from shoal.core.drift import Reference
+from shoal.core.drift import Baseline
 from shoal.core.lifecycle import (
     add_component,
     compact_group,
@@ -47,6 +47,7 @@ from shoal.core.lifecycle import (
     unexplained_below,
 )
 from shoal.daemon.logs import log_event
+from shoal.daemon.monitor import PAYLOAD_SCHEMA_VERSION
 from shoal.daemon.store import HistoryRow
 
 __all__ = ["LifeWatch", "lifecycle_alert_id", "STATE_FORMAT"]
@@ -167,7 +168,7 @@ class LifeWatch:
             mixture = retire(mixture, sid)
             low.pop(str(sid), None)
             st["unsettled"].pop(str(sid), None)
-            self._drop_reference(watch, [sid], "retired")
+            self._drop_baseline(watch, [sid], "retired")
             self._event("retired", sid, n, weight=weight, mean=mean, spread=sd,
                         under_since_row=self.state["offset"] + since,
                         summary=(f"segment {sid} retired: its weight stayed under "
@@ -195,7 +196,7 @@ class LifeWatch:
         mean, sd = mixture.data_means()[k], mixture.data_stds()[k]
         self.state["unsettled"].pop(str(drop), None)
         self.state["low_since"].pop(str(drop), None)
-        self._drop_reference(watch, [drop], "merged")
+        self._drop_baseline(watch, [drop], "merged")
         measure = self.cfg.merge_measure
         self._event("merged", drop, n, into=keep, distance=distance, measure=measure,
                     before=before, weight=float(mixture.weights[k]), mean=mean, spread=sd,
@@ -238,7 +239,7 @@ class LifeWatch:
         return mixture
 
     def _settle(self, mixture: Mixture, n: int, watch) -> None:
-        """Born segments that have settled join the drift reference."""
+        """Born segments that have settled join the drift baseline."""
         unsettled = self.state["unsettled"]
         ready = sorted(int(sid) for sid, at in unsettled.items()
                        if n - at >= self.cfg.settle_rows)
@@ -248,30 +249,30 @@ class LifeWatch:
             del unsettled[str(sid)]
         st = getattr(watch, "state", None)
         present = [sid for sid in ready if sid in set(mixture.ids.tolist())]
-        if st is None or st.get("reference") is None or not present:
-            return   # a reference taken later includes them
-        ref = Reference.from_dict(st["reference"]).adopt(mixture, present)
-        st["reference"] = ref.to_dict()
-        log_event("drift_reference_adopted", segments=present, model_version=self.version)
+        if st is None or st.get("baseline") is None or not present:
+            return   # a baseline taken later includes them
+        ref = Baseline.from_dict(st["baseline"]).adopt(mixture, present)
+        st["baseline"] = ref.to_dict()
+        log_event("drift_baseline_adopted", segments=present, model_version=self.version)
 
-    def _drop_reference(self, watch, ids, why: str) -> None:
-        """A segment that left: out of the drift reference, its firing drift alerts
-        resolved (``resolved_by`` the event), its part-way crossings forgotten."""
+    def _drop_baseline(self, watch, ids, why: str) -> None:
+        """A segment that left: out of the drift baseline, its raised drift alerts
+        cleared (``cleared_by`` the event), its part-way crossings forgotten."""
         st = getattr(watch, "state", None)
         if st is None:
             return
-        if st.get("reference") is not None:
-            st["reference"] = Reference.from_dict(st["reference"]).without(ids).to_dict()
+        if st.get("baseline") is not None:
+            st["baseline"] = Baseline.from_dict(st["baseline"]).without(ids).to_dict()
         gone = {str(int(i)) for i in ids}
         for key in sorted(st.get("open", {})):
             if key.split("|")[0] not in gone:
                 continue
             alert = st["open"].pop(key)
-            payload = dict(alert["payload"], status="resolved", value=None, resolved_by=why,
+            payload = dict(alert["payload"], status="cleared", value=None, cleared_by=why,
                            note=f"segment {key.split('|')[0]} {why}")
             payload["model_version"] = {"first": alert["payload"]["model_version"]["first"],
                                         "last": self.version}
-            watch.alerts.append((f"{payload['id']}.resolved", payload))
+            watch.alerts.append((f"{payload['id']}.cleared", payload))
         if st.get("bounds"):
             for sid in gone:
                 st["bounds"]["entries"].pop(sid, None)
@@ -287,10 +288,11 @@ class LifeWatch:
                  "spread": np.asarray(spread).tolist(), **more}
         self.events.append(event)
         payload = {
+            "schema_version": PAYLOAD_SCHEMA_VERSION,
             "id": lifecycle_alert_id(kind, sid),
             "kind": "lifecycle",
             "status": kind,
-            "severity": "info",
+            "severity": "warning",
             "segment": int(sid),
             "statistic": "segments",
             "model_version": {"first": self.version, "last": self.version},

@@ -32,13 +32,16 @@ from shoal.daemon.digest import (
 )
 from shoal.daemon.errors import StateError
 from shoal.daemon.logs import log_event
+from shoal.daemon.store_words import migrate_alert_words
 
 __all__ = ["StateStore", "LedgerEntry", "Checkpoint", "HistoryRow", "InputCommit", "npy_bytes",
            "npy_array", "SCHEMA_VERSION", "MIGRATIONS"]
 
 # 2: the ledger's content column is `digest` (was `sha256`), in the algorithm the meta
 #    key `digest_algorithm` records (a version-1 store's is SHA-256).
-SCHEMA_VERSION = 2
+# 3: alert notifications and the drift state in the alert words of daemon/store_words.py
+#    (raised/cleared, X.733 severities, the baseline).
+SCHEMA_VERSION = 3
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (
@@ -126,7 +129,7 @@ def _migrate_1_to_2(db: sqlite3.Connection) -> None:
 
 
 # schema version -> the function that brings a store of that version to the next one
-MIGRATIONS = {1: _migrate_1_to_2}
+MIGRATIONS = {1: _migrate_1_to_2, 2: migrate_alert_words}
 
 
 # .npy headers by (dtype, shape): a checkpoint stores the same dozen arrays every time.
@@ -512,7 +515,7 @@ class StateStore:
     def apply_rebaseline(self, request_id: int, version: int, extra: Mapping[str, Any],
                          alerts: Iterable[tuple[str, Mapping[str, Any]]] = ()) -> None:
         """Apply a re-baseline to checkpoint ``version`` (the latest) in one transaction:
-        its extras (the drift state) replaced, the request marked, resolved alerts queued."""
+        its extras (the drift state) replaced, the request marked, cleared alerts queued."""
         now = self.clock()
         with self._transaction():
             if self.model_version != version:

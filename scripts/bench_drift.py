@@ -69,7 +69,7 @@ def run(folder: Path, parts, **overrides):
 
 
 def first(alerts, statistic):
-    hits = [a for a in alerts if a["status"] == "firing" and a["statistic"] == statistic]
+    hits = [a for a in alerts if a["status"] == "raised" and a["statistic"] == statistic]
     return hits[0] if hits else None
 
 

@@ -71,7 +71,7 @@ def test_replay_of_the_demo_prints_the_compressor_alert_and_leaves_live_state_al
     assert _snapshot(live) == before                     # the live state is untouched
 
     alerts = [json.loads(x) for x in (replay_dir / "alerts.jsonl").read_text().splitlines()]
-    compressor = [a for a in alerts if a["status"] == "firing"
+    compressor = [a for a in alerts if a["status"] == "raised"
                   and a["statistic"] == "mean_shift"
                   and a["explanation"]["features"][0]["feature"] == "compressor_a"]
     assert compressor, r.stdout
@@ -88,7 +88,7 @@ def test_replay_of_the_demo_prints_the_compressor_alert_and_leaves_live_state_al
     assert line.split(":")[0] in first["inputs"]
     assert f"segment {first['segment']} moved: compressor_a" in r.stdout
     # the new state shows as a fit drop explained by the fan slowing down
-    fit = [a for a in alerts if a["status"] == "firing" and a["statistic"] == "fit_drop"]
+    fit = [a for a in alerts if a["status"] == "raised" and a["statistic"] == "fit_drop"]
     assert fit and fit[0]["rows"]["first"] >= NEW_STATE.start_row - ROWS
     assert "fan_rpm" in fit[0]["explanation"]["summary"]
     assert "replay done" in r.stdout
@@ -125,10 +125,10 @@ def test_demo_prints_the_drift_and_new_state_alerts_with_explanations(tmp_path):
     assert "drift alerts and segment events (" in out
     lines = out.splitlines()
     # the compressor drift: a segment's mean moved, compressor_a first
-    at = [i for i, x in enumerate(lines) if "FIRING" in x and "mean_shift" in x]
+    at = [i for i, x in enumerate(lines) if "RAISED" in x and "mean_shift" in x]
     assert any("moved: compressor_a" in lines[i + 2] for i in at), out
     # the new state: the fit drops, the unusual rows explained by the fan slowing down
-    at = [i for i, x in enumerate(lines) if "FIRING" in x and "fit_drop" in x]
+    at = [i for i, x in enumerate(lines) if "RAISED" in x and "fit_drop" in x]
     assert at and "unusual" in lines[at[0] + 2] and "fan_rpm" in lines[at[0] + 2], out
     # ice build-up is born as a new segment, announced with its
     # summary in data units, and listed among the segments nearest the ice state
@@ -147,20 +147,48 @@ def test_demo_prints_the_drift_and_new_state_alerts_with_explanations(tmp_path):
     assert r.returncode == 0, r.stderr
     listed = json.loads(r.stdout)
     assert listed and all(a["delivered_at"] for a in listed)      # the JSON-lines sink
-    assert sum(x.strip().startswith(("FIRING", "RESOLVED", "BORN", "RETIRED", "MERGED"))
+    assert sum(x.strip().startswith(("RAISED", "CLEARED", "BORN", "RETIRED", "MERGED"))
                for x in lines) == len(listed)
     r = shoal("alerts", "-c", cfg, "--since", "1h")
     assert r.returncode == 0 and listed[0]["payload"]["id"] in r.stdout
     r = shoal("alerts", "-c", cfg, "--since", "soonish")
     assert r.returncode == 2 and "--since" in r.stderr
 
-    # accepting the present resolves every firing alert, with the reason recorded
+    # accepting the present clears every raised alert, with the reason recorded
     r = shoal("rebaseline", "-c", cfg, "--note", "ice build-up is the new normal")
     assert r.returncode == 0, r.stderr
     assert "re-baselined" in r.stdout
     after = json.loads(shoal("alerts", "-c", cfg, "--json").stdout)
-    by_rebaseline = [a["payload"] for a in after if a["payload"].get("resolved_by")]
-    still_firing = {a["payload"]["id"] for a in listed if a["payload"]["kind"] == "drift"} - {
-        a["payload"]["id"] for a in listed if a["payload"]["status"] == "resolved"}
-    assert {a["id"] for a in by_rebaseline} == still_firing
+    by_rebaseline = [a["payload"] for a in after if a["payload"].get("cleared_by")]
+    still_raised = {a["payload"]["id"] for a in listed if a["payload"]["kind"] == "drift"} - {
+        a["payload"]["id"] for a in listed if a["payload"]["status"] == "cleared"}
+    assert {a["id"] for a in by_rebaseline} == still_raised
     assert all(a["note"] == "ice build-up is the new normal" for a in by_rebaseline)
+
+
+def test_replay_counts_raised_cleared_and_segment_events_each_under_its_own_word(tmp_path):
+    # Under the lively config eight warehouse drops raise and clear drift alerts and
+    # give birth to segments; the summary line counts each kind apart, as the alert
+    # file (read here) has them.
+    import io
+    import re
+
+    from shoal.daemon.alert_commands import replay
+
+    from _lively import LIVELY_CONFIG, lively_drops
+
+    lively_drops(tmp_path / "history", 0, 8)
+    cfg = tmp_path / "live" / "shoal.yaml"
+    cfg.parent.mkdir()
+    cfg.write_text(yaml.safe_dump(LIVELY_CONFIG))
+    out = io.StringIO()
+    replay(cfg, tmp_path / "history", state_dir=str(tmp_path / "trial"), out=out)
+    alerts = [json.loads(x) for x in (tmp_path / "trial" / "alerts.jsonl").read_text()
+              .splitlines()]
+    want = (sum(a["kind"] == "drift" and a["status"] == "raised" for a in alerts),
+            sum(a["kind"] == "drift" and a["status"] == "cleared" for a in alerts),
+            sum(a["kind"] == "lifecycle" for a in alerts))
+    assert all(want), want                         # each kind happened at least once
+    line = out.getvalue().splitlines()[-1]
+    found = re.search(r"(\d+) alerts raised, (\d+) cleared, (\d+) segment events", line)
+    assert found and tuple(map(int, found.groups())) == want, line

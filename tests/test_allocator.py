@@ -98,7 +98,7 @@ def test_the_command_line_moves_start_up_objects_out_of_the_collectors_view():
     script = ("import gc, sys\n"
               "from shoal.daemon.cli import main\n"
               "before = gc.get_freeze_count()\n"
-              "main(['check-config', '-c', sys.argv[1]])   # a configuration error\n"
+              "main(['config', '-c', sys.argv[1]])   # a configuration error\n"
               "print(before, gc.get_freeze_count(), len(gc.get_objects(generation=2)))\n")
     out = subprocess.run([sys.executable, "-c", script, "/nonexistent/shoal.yaml"],
                          capture_output=True, text=True, check=True)

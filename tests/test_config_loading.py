@@ -39,7 +39,7 @@ def test_minimal_config_gets_defaults_and_absolute_folders(tmp_path):
     assert s.inbox == tmp_path / "inbox" and s.state == tmp_path / "state"
     assert s.half_life_rows == 50000 and s.covariance == "full"
     assert s.watch.settle_seconds == 1.0 and s.output.format == "parquet"
-    # the effective config printed by check-config reads back to the same settings
+    # the effective config printed by `shoal config` reads back to the same settings
     assert parse_config(yaml.safe_load(dump_settings(s)), "/elsewhere") == s
 
 

@@ -20,7 +20,7 @@ def shoal(*args, timeout=120):
 def test_help_and_version():
     r = shoal("--help")
     assert r.returncode == 0
-    for cmd in ("watch", "ingest", "label", "segments", "check-config", "demo"):
+    for cmd in ("watch", "ingest", "label", "segments", "config", "demo"):
         assert cmd in r.stdout
     r = shoal("--version")
     assert r.returncode == 0 and r.stdout.startswith("shoal ")
@@ -72,12 +72,19 @@ def test_folder_not_usable_exits_2(tmp_path):
     assert "state: expected a folder that exists or can be created" in r.stderr
 
 
-def test_check_config_prints_the_effective_config(tmp_path):
+def test_config_prints_the_effective_config(tmp_path):
     cfg = write_config(tmp_path)
-    r = shoal("check-config", "-c", cfg)
+    r = shoal("config", "-c", cfg)
     assert r.returncode == 0
     assert "valid" in r.stdout and "settle_seconds: 0.5" in r.stdout
     assert f"inbox: {tmp_path / 'inbox'}" in r.stdout
+    # an error in the config: exit 2, the key named, nothing printed as valid
+    bad = write_config(tmp_path / "bad", drift={"persist": 0})
+    r = shoal("config", "-c", bad)
+    assert r.returncode == 2 and "drift.persist" in r.stderr and r.stdout == ""
+    # the command has one name: the earlier one is not a command any more
+    r = shoal("check" + "-config", "-c", cfg)
+    assert r.returncode == 2 and "invalid choice" in r.stderr
 
 
 def test_ingest_label_segments(tmp_path):

@@ -1,4 +1,4 @@
-"""Drift statistics against a reference, their noise levels (checked by simulation), bounds."""
+"""Drift statistics against a baseline, their noise levels (checked by simulation), bounds."""
 
 import json
 import math
@@ -11,7 +11,7 @@ from shoal.core import Mixture, ModelError, StepSchedule
 from shoal.core.distances import hellinger_distance
 from shoal.core.drift import (
     WHOLE_MODEL,
-    Reference,
+    Baseline,
     batch_drift,
     evaluate_bounds,
     explain,
@@ -46,28 +46,28 @@ def _rows(rng, n, weights=WEIGHTS, means=MEANS, covs=COVS):
     return means[labels] + np.einsum("nde,ne->nd", chol[labels], rng.normal(size=(n, 3)))
 
 
-# ---------------------------------------------------------------------------- reference
+# ---------------------------------------------------------------------------- baseline
 
 
 def test_reference_snapshot_and_json_round_trip():
     mixture = _mixture(n_eff=2000.0)
-    ref = Reference.from_mixture(mixture, log_density=-4.25)
+    ref = Baseline.from_mixture(mixture, log_density=-4.25)
     np.testing.assert_allclose(ref.means, MEANS, rtol=1e-12)
     np.testing.assert_allclose(ref.covariances, COVS, rtol=1e-10)
     np.testing.assert_allclose(ref.n_eff, WEIGHTS * 2000.0)
     assert ref.total_n_eff == pytest.approx(2000.0)
-    back = Reference.from_dict(json.loads(json.dumps(ref.to_dict())))
+    back = Baseline.from_dict(json.loads(json.dumps(ref.to_dict())))
     for name in ("ids", "weights", "means", "covariances", "n_eff"):
         np.testing.assert_array_equal(getattr(back, name), getattr(ref, name))
     assert (back.log_density, back.covariance) == (-4.25, "full")
-    exact = Reference.from_dict(dict(ref.to_dict(), n_eff=[None] * 3, log_density=None))
+    exact = Baseline.from_dict(dict(ref.to_dict(), n_eff=[None] * 3, log_density=None))
     assert np.all(np.isposinf(exact.n_eff)) and math.isnan(exact.log_density)
-    with pytest.raises(ModelError, match="reference lacks"):
-        Reference.from_dict({"format": 1, "ids": []})
+    with pytest.raises(ModelError, match="baseline lacks"):
+        Baseline.from_dict({"format": 1, "ids": []})
 
 
 def test_reference_adopts_a_born_segment_and_drops_a_retired_one():
-    ref = Reference.from_mixture(_mixture())
+    ref = Baseline.from_mixture(_mixture())
     later = _mixture(weights=[0.4, 0.3, 0.2, 0.1],
                      means=np.vstack([MEANS + 1.0, [[0.0, 0.0, 0.0]]]),
                      covs=np.concatenate([COVS, COVS[:1]]), ids=[0, 1, 2, 5])
@@ -85,14 +85,14 @@ def test_segment_drift_values_match_direct_computations():
     means, covs = MEANS.copy(), COVS.copy()
     means[1] += shift
     covs[0] = 1.5 * COVS[0]
-    ref = Reference.from_mixture(_mixture())
+    ref = Baseline.from_mixture(_mixture())
     # the current model lists its segments in another order: matching is by id
     order = [2, 0, 1]
     now = _mixture(weights=[0.15, 0.55, 0.3], means=means[order], covs=covs[order],
                    ids=order)
     drift = segment_drift(ref, now)
     assert drift.ids.tolist() == [0, 1, 2]
-    # Mahalanobis under the reference covariance, computed with a dense solve here
+    # Mahalanobis under the baseline covariance, computed with a dense solve here
     expected_shift = np.sqrt(shift @ np.linalg.solve(COVS[1], shift))
     np.testing.assert_allclose(drift.values["mean_shift"], [0.0, expected_shift, 0.0],
                                atol=1e-9)
@@ -111,7 +111,7 @@ def test_segment_drift_values_match_direct_computations():
 
 
 def test_segment_drift_reports_new_and_missing_segments():
-    ref = Reference.from_mixture(_mixture())
+    ref = Baseline.from_mixture(_mixture())
     now = _mixture(weights=[0.6, 0.4], means=MEANS[[0, 2]], covs=COVS[[0, 2]], ids=[0, 7])
     drift = segment_drift(ref, now)
     assert drift.ids.tolist() == [0]
@@ -201,11 +201,11 @@ def test_fit_noise_is_the_standard_error_of_the_mean_log_density():
 
 
 def test_batch_statistics_under_no_change_follow_their_null_distributions():
-    # Batches drawn from the reference model itself and scored by it: T^2 with Kish's
+    # Batches drawn from the baseline model itself and scored by it: T^2 with Kish's
     # n_eff of the (soft) responsibilities should follow chi2(3), so its mean is 3 and
     # about 5% of p-values fall under 0.05; the batch mean shift's rms is its noise.
     mixture = _mixture()
-    ref = Reference.from_mixture(mixture)
+    ref = Baseline.from_mixture(mixture)
     rng = np.random.default_rng(7)
     t2, shift, noise, p = [], [], [], []
     for _ in range(300):
@@ -237,7 +237,7 @@ def test_mean_shift_of_a_stepwise_model_is_within_its_noise_level():
                                         refresh_rows=1024)
         labels = rng.choice(2, size=10 * 1024, p=[0.4, 0.6])
         learned, _ = truth.learn(means[labels] + rng.normal(size=(labels.size, 2)))
-        exact = replace(Reference.from_mixture(truth), n_eff=np.full(2, np.inf))
+        exact = replace(Baseline.from_mixture(truth), n_eff=np.full(2, np.inf))
         drift = segment_drift(exact, learned)
         ratios.append(drift.values["mean_shift"] / drift.noise["mean_shift"])
     # mean of 32 chi2(2)/2 draws: sd 0.18; allow about 2.5 sd either side
@@ -249,7 +249,7 @@ def test_mean_shift_of_a_stepwise_model_is_within_its_noise_level():
 
 def test_batch_drift_detects_a_one_sd_shift_and_explain_names_the_feature():
     mixture = _mixture()
-    ref = Reference.from_mixture(mixture)
+    ref = Baseline.from_mixture(mixture)
     rng = np.random.default_rng(8)
     means = MEANS.copy()
     means[1, 2] += np.sqrt(COVS[1, 2, 2])          # feature 2 of segment 1 moves by 1 sd
@@ -260,18 +260,18 @@ def test_batch_drift_detects_a_one_sd_shift_and_explain_names_the_feature():
     top = explain(ref, 1, drift.means[1], feature_names=["temp", "pressure", "humidity"])
     assert top[0]["feature"] == "humidity" and top[0]["index"] == 2
     assert top[0]["shift_sd"] == pytest.approx(1.0, abs=0.15)
-    assert top[0]["reference_mean"] == pytest.approx(0.0)
-    assert top[0]["current_mean"] == pytest.approx(means[1, 2], abs=0.002)
+    assert top[0]["baseline_mean"] == pytest.approx(0.0)
+    assert top[0]["window_mean"] == pytest.approx(means[1, 2], abs=0.002)
 
 
 def test_explain_ranks_by_shift_in_reference_sds_not_data_units():
-    ref = Reference.from_mixture(_mixture())
+    ref = Baseline.from_mixture(_mixture())
     moved = MEANS[0] + np.array([4.0, 0.5, 0.03])   # 1 sd, 0.5 sd, 3 sd
     rows = explain(ref, 0, moved)
     assert [r["index"] for r in rows] == [2, 0, 1]
     np.testing.assert_allclose([r["shift_sd"] for r in rows], [3.0, 1.0, 0.5])
     assert [r["feature"] for r in explain(ref, 0, moved, top=1)] == ["x2"]
-    with pytest.raises(ModelError, match="segment 9 is not in the reference"):
+    with pytest.raises(ModelError, match="segment 9 is not in the baseline"):
         explain(ref, 9, moved)
 
 
@@ -279,7 +279,7 @@ def test_fit_drop_is_the_fall_in_mean_log_density():
     mixture = _mixture()
     rng = np.random.default_rng(9)
     level = float(np.mean(mixture.log_density(_rows(rng, 20_000))))
-    ref = Reference.from_mixture(mixture, log_density=level)
+    ref = Baseline.from_mixture(mixture, log_density=level)
     same = fit_drop(ref, mixture.log_density(_rows(rng, 2000)))
     assert abs(same.value) < 4 * same.noise
     worse = fit_drop(ref, mixture.log_density(_rows(rng, 2000, covs=4.0 * COVS)))
@@ -287,7 +287,7 @@ def test_fit_drop_is_the_fall_in_mean_log_density():
     values, _ = worse.bound_inputs()
     assert values == {(WHOLE_MODEL, "fit_drop"): worse.value}
     with pytest.raises(ModelError, match="no log-density level"):
-        fit_drop(Reference.from_mixture(mixture), [0.0, 1.0])
+        fit_drop(Baseline.from_mixture(mixture), [0.0, 1.0])
 
 
 # ------------------------------------------------------------------------------ bounds
@@ -310,8 +310,8 @@ def test_a_crossing_must_persist_to_fire_and_come_back_under_to_resolve():
     events, state = _run(sequence, {"mean_shift": 1.0}, persist=3, resolve_fraction=0.8,
                          resolve_persist=3)
     # two crossings then a dip: nothing; three in a row fire at the third (at=6); 1.5
-    # is under neither level; 0.7 twice then 1.2 resets; three times 0.7 resolve (at=14)
-    assert events == [(6, 3, "mean_shift", "firing"), (14, 3, "mean_shift", "resolved")]
+    # is under neither level; 0.7 twice then 1.2 resets; three times 0.7 clear (at=14)
+    assert events == [(6, 3, "mean_shift", "raised"), (14, 3, "mean_shift", "cleared")]
     assert state["entries"]["3"]["mean_shift"]["above"] == 1      # at=15 starts anew
 
 
@@ -321,7 +321,7 @@ def test_a_crossing_within_the_noise_never_fires():
     events, _ = _run(sequence, {"weight_change": 0.1}, noise_multiple=3.0, persist=2)
     assert events == []
     events, _ = _run(sequence, {"weight_change": 0.1}, noise_multiple=1.5, persist=2)
-    assert events == [(1, 1, "weight_change", "firing")]
+    assert events == [(1, 1, "weight_change", "raised")]
 
 
 def test_missing_or_unbounded_values_keep_the_state_and_overrides_apply():
@@ -332,7 +332,7 @@ def test_missing_or_unbounded_values_keep_the_state_and_overrides_apply():
         ({a: 0.5, b: 0.5, (0, "unbounded"): 9.0}, {}),
     ]
     events, state = _run(sequence, {"hellinger": 0.3, (4, "hellinger"): 0.6}, persist=2)
-    assert events == [(2, 0, "hellinger", "firing")]        # segment 4's own bound is 0.6
+    assert events == [(2, 0, "hellinger", "raised")]        # segment 4's own bound is 0.6
     assert set(state["entries"]) == {"0"} and state["entries"]["0"]["hellinger"]["first_at"] == 0
 
 
@@ -363,10 +363,10 @@ def test_bounds_are_deterministic_and_leave_the_input_state_alone():
 
 def test_stationary_batches_stay_quiet_and_a_shifted_segment_fires():
     mixture = _mixture()
-    ref = Reference.from_mixture(mixture)
+    ref = Baseline.from_mixture(mixture)
     bounds = {"batch_mean_shift": 0.25, "batch_weight_change": 0.05}
     rng = np.random.default_rng(11)
-    state, fired = None, []
+    state, raised = None, []
     means = MEANS.copy()
     for at in range(40):
         if at == 25:
@@ -374,9 +374,9 @@ def test_stationary_batches_stay_quiet_and_a_shifted_segment_fires():
         X = _rows(rng, 2000, means=means)
         values, noise = batch_drift(ref, X, mixture.score(X).resp, mixture.ids).bound_inputs()
         state, events = evaluate_bounds(values, noise, bounds, state, at=at)
-        fired.extend((e["at"], e["segment"], e["statistic"]) for e in events)
-    assert fired and fired[0] == (27, 2, "batch_mean_shift")
-    assert all(seg == 2 for _, seg, _ in fired)
+        raised.extend((e["at"], e["segment"], e["statistic"]) for e in events)
+    assert raised and raised[0] == (27, 2, "batch_mean_shift")
+    assert all(seg == 2 for _, seg, _ in raised)
 
 
 def test_trigamma_is_scipys_polygamma_of_order_one():

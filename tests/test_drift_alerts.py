@@ -78,8 +78,8 @@ class Stream:
         return self.pipeline.state.extra["drift"]
 
     def segment_of(self, true_mean):
-        """The segment whose reference mean is nearest a true component mean."""
-        ref = self.drift_state()["reference"]
+        """The segment whose baseline mean is nearest a true component mean."""
+        ref = self.drift_state()["baseline"]
         d = np.linalg.norm(np.asarray(ref["means"]) - true_mean, axis=1)
         return int(ref["ids"][int(np.argmin(d))])
 
@@ -103,13 +103,13 @@ def stream(tmp_path):
 
 def _windows_evaluated(s):
     st = s.drift_state()
-    return st["recent"][-1]["index"] + 1 - st["reference_info"]["row"] // \
+    return st["recent"][-1]["index"] + 1 - st["baseline_info"]["row"] // \
         s.settings.drift.window_rows
 
 
 def test_two_million_stationary_rows_raise_no_alert(stream):
     # 40 drops of 50,000 rows with the default bounds; the drift layer
-    # must have been live the whole time (reference taken, every window after it
+    # must have been live the whole time (baseline taken, every window after it
     # evaluated: ~480 of the default 4,096 rows).
     weights, means, covs = _truth()
     rng = np.random.default_rng(2024)
@@ -118,13 +118,13 @@ def test_two_million_stationary_rows_raise_no_alert(stream):
         s.feed(_rows(rng, 50_000, weights, means, covs), 50_000)
     assert s.rows == 2_000_000
     state = s.drift_state()
-    assert state["reference"] is not None
+    assert state["baseline"] is not None
     w = s.settings.drift.window_rows
     settle_windows = -(-s.settings.drift.settle_rows // w)
     assert _windows_evaluated(s) == (s.rows - s.settings.warmup_rows) // w - settle_windows
     assert _windows_evaluated(s) >= 450
     assert s.alerts() == []
-    # nothing was even part-way to firing at the end
+    # nothing was even part-way to being raised at the end
     assert state["bounds"]["entries"] == {}
     # no birth, retirement or merge either (they would be alerts
     # too); the lifecycle was watching: decision points passed, the pool stayed small
@@ -140,8 +140,8 @@ CHANGE_ROW = 60_000        # stream row of the change (not on a window boundary)
 AFTER = 40_000             # rows fed after it
 
 
-def _first_firing(alerts, statistic, segment=None):
-    hits = [a for a in alerts if a["status"] == "firing" and a["statistic"] == statistic
+def _first_raised(alerts, statistic, segment=None):
+    hits = [a for a in alerts if a["status"] == "raised" and a["statistic"] == statistic
             and (segment is None or a["segment"] == segment)]
     return hits[0] if hits else None
 
@@ -158,7 +158,7 @@ def test_one_sd_mean_shift_is_alerted_within_20000_rows_naming_segment_and_featu
     segment = s.segment_of(means[comp])
     after = _rows(rng, AFTER, weights, means, covs, shift=(comp, feature, sd))
     s.feed(after, 10_000)
-    alert = _first_firing(s.alerts(), "mean_shift")
+    alert = _first_raised(s.alerts(), "mean_shift")
     assert alert is not None, s.alerts()
     delay = alert["rows"]["last"] + 1 - CHANGE_ROW
     print(f"1-sd mean shift alerted {delay} rows after the change")
@@ -170,12 +170,12 @@ def test_one_sd_mean_shift_is_alerted_within_20000_rows_naming_segment_and_featu
     # no other segment is blamed
     assert {a["segment"] for a in s.alerts()} == {segment}
 
-    # the population returns: the same alert (same id) resolves
+    # the population returns: the same alert (same id) clears
     s.feed(_rows(rng, 40_000, weights, means, covs), 10_000)
-    resolved = [a for a in s.alerts() if a["status"] == "resolved" and a["id"] == alert["id"]]
-    assert len(resolved) == 1
-    assert resolved[0]["rows"]["first"] == alert["rows"]["first"]
-    print(f"resolved {resolved[0]['rows']['last'] + 1 - (CHANGE_ROW + AFTER)} rows after "
+    cleared = [a for a in s.alerts() if a["status"] == "cleared" and a["id"] == alert["id"]]
+    assert len(cleared) == 1
+    assert cleared[0]["rows"]["first"] == alert["rows"]["first"]
+    print(f"cleared {cleared[0]['rows']['last'] + 1 - (CHANGE_ROW + AFTER)} rows after "
           "the return")
 
 
@@ -189,7 +189,7 @@ def test_weight_change_of_015_is_alerted(stream):
     s.feed(_rows(rng, CHANGE_ROW, weights, means, covs), 10_000)
     segments = {s.segment_of(means[0]), s.segment_of(means[2])}
     s.feed(_rows(rng, AFTER, moved, means, covs), 10_000)
-    alert = _first_firing(s.alerts(), "weight_change")
+    alert = _first_raised(s.alerts(), "weight_change")
     assert alert is not None, s.alerts()
     assert alert["segment"] in segments
     assert alert["value"] == pytest.approx(0.15, abs=0.03)
@@ -204,7 +204,7 @@ def test_doubling_of_a_segments_spread_is_alerted(stream):
     s.feed(_rows(rng, CHANGE_ROW, weights, means, covs), 10_000)
     segment = s.segment_of(means[comp])
     s.feed(_rows(rng, AFTER, weights, means, covs, spread=(comp, 2.0)), 10_000)
-    alert = _first_firing(s.alerts(), "spread_ratio", segment)
+    alert = _first_raised(s.alerts(), "spread_ratio", segment)
     assert alert is not None, s.alerts()
     assert alert["value"] > 1.5
     print(f"spread doubling alerted {alert['rows']['last'] + 1 - CHANGE_ROW} rows after it, "
@@ -253,9 +253,9 @@ def test_overrides_bound_one_feature_and_silence_one_segment(stream):
                       "overrides": [{"feature": "x1", "feature_shift": 0.12}]})
     s.feed(np.concatenate([base, moved]), 10_000)
     seg0 = s.segment_of(means[0])
-    fired = {(a["segment"], a["statistic"]) for a in s.alerts() if a["status"] == "firing"}
-    assert (seg0, "feature_shift[x1]") in fired
-    assert (seg0, "mean_shift") not in fired
+    raised = {(a["segment"], a["statistic"]) for a in s.alerts() if a["status"] == "raised"}
+    assert (seg0, "feature_shift[x1]") in raised
+    assert (seg0, "mean_shift") not in raised
 
     big = _rows(rng, 16_000, weights, means, covs, shift=(0, 1, 2.0 * sd0))
     quiet = stream(drift={"settle_rows": 8000, "window_rows": 2000})
@@ -272,7 +272,7 @@ def test_overrides_bound_one_feature_and_silence_one_segment(stream):
                 ("mean_shift", "spread_ratio", "weight_change")], quiet.alerts()
 
 
-def test_rebaseline_accepts_the_present_and_resolves_firing_alerts(stream):
+def test_rebaseline_accepts_the_present_and_clears_raised_alerts(stream):
     weights, means, covs = _truth()
     rng = np.random.default_rng(12)
     s = stream(drift={"settle_rows": 8000, "window_rows": 2000})
@@ -280,29 +280,29 @@ def test_rebaseline_accepts_the_present_and_resolves_firing_alerts(stream):
     shifted = means.copy()
     shifted[2, 0] += 2.0
     s.feed(_rows(rng, 20_000, weights, shifted, covs), 10_000)
-    firing = [a for a in s.alerts() if a["status"] == "firing"]
-    assert firing
+    raised = [a for a in s.alerts() if a["status"] == "raised"]
+    assert raised
     segment = s.segment_of(means[2])
-    before = s.drift_state()["reference_info"]["number"]
+    before = s.drift_state()["baseline_info"]["number"]
     request = s.store.request_rebaseline("new compressor fitted")
     s.pipeline.rebaseline_now(request, "new compressor fitted")
     state = s.drift_state()
-    assert state["reference"] is None and state["rebase"]["note"] == "new compressor fitted"
+    assert state["baseline"] is None and state["rebase"]["note"] == "new compressor fitted"
     assert s.store.pending_rebaseline() is None
     assert s.store.rebaselines()[0]["model_version"] == s.pipeline.state.version
-    resolved = [a for a in s.alerts() if a["status"] == "resolved"]
-    assert {a["id"] for a in firing} == {a["id"] for a in resolved}
-    assert all(a["resolved_by"] == "rebaseline" for a in resolved)
+    cleared = [a for a in s.alerts() if a["status"] == "cleared"]
+    assert {a["id"] for a in raised} == {a["id"] for a in cleared}
+    assert all(a["cleared_by"] == "rebaseline" for a in cleared)
     # the stored checkpoint carries the re-baseline (a restart keeps it)
     again = Pipeline(s.settings, s.layout, s.store)
     assert again.state.extra["drift"] == state
-    # the next settle_rows rows become the reference: the shifted population is normal
+    # the next settle_rows rows become the baseline: the shifted population is normal
     n_alerts = len(s.alerts())
     s.feed(_rows(rng, 30_000, weights, shifted, covs), 10_000)
     state = s.drift_state()
-    assert state["reference_info"]["number"] == before + 1
-    assert state["reference_info"]["note"] == "new compressor fitted"
-    ref = state["reference"]
+    assert state["baseline_info"]["number"] == before + 1
+    assert state["baseline_info"]["note"] == "new compressor fitted"
+    ref = state["baseline"]
     at = ref["ids"].index(segment)
     sd = np.sqrt(covs[2][0, 0])
     assert abs(ref["means"][at][0] - shifted[2, 0]) < 0.1 * sd    # the data, not the model

@@ -176,7 +176,7 @@ def test_report_of_the_demo_run_in_headless_chromium(running, tmp_path):
     with chromium() as driver:
         driver.get(out.as_uri())
         assert driver.title == "shoal report"
-        # The plots the issue lists: weights, means with reference bands, drift against
+        # The plots the issue lists: weights, means with baseline bands, drift against
         # bounds, recent rows by PCA; and the two tables.
         _check_images(driver, ["weights", "means", "drift", "pca"])
         ids = sorted(int(r.get_attribute("data-segment")) for r in
@@ -201,9 +201,9 @@ def test_status_command_one_screen(running, capsys):
     listed = [int(line.split()[0]) for line in out.splitlines()
               if line.strip() and line.split()[0].isdigit()]
     assert listed == ledger["segments"]
-    firing = {a["id"] for a in ledger["alerts"] if a["status"] == "firing"} - {
-        a["id"] for a in ledger["alerts"] if a["status"] == "resolved"}
-    assert f"alerts: {len(firing)} firing now" in out, out
+    raised = {a["id"] for a in ledger["alerts"] if a["status"] == "raised"} - {
+        a["id"] for a in ledger["alerts"] if a["status"] == "cleared"}
+    assert f"alerts: {len(raised)} active now" in out, out
     assert "last error: none" in out
     assert len(out.splitlines()) <= 24                     # one terminal screen
     assert main(["status", "-c", str(running["config"]), "--json"]) == 0

@@ -161,15 +161,15 @@ def test_status_and_metrics_read_alerts_written_through_the_store(tmp_path):
     settings = load_config(write_config(tmp_path))
     layout = prepare_folders(settings)
     store = StateStore(layout.db)
-    # One row per notification, as the drift layer writes them: a1 fires; a2 fires and
-    # resolves (its resolved notification committed with a later input).
-    payloads = [("a1.firing", {"id": "a1", "status": "firing", "severity": "critical",
+    # One row per notification, as the drift layer writes them: a1 is raised; a2 is raised
+    # and cleared (its cleared notification committed with a later input).
+    payloads = [("a1.raised", {"id": "a1", "status": "raised", "severity": "critical",
                                "segment": 2, "statistic": "mean_shift", "value": 1.7,
                                "bound": 0.5}),
-                ("a2.firing", {"id": "a2", "status": "firing", "severity": "warning",
+                ("a2.raised", {"id": "a2", "status": "raised", "severity": "major",
                                "segment": 1, "statistic": "weight_change", "value": 0.07,
                                "bound": 0.05})]
-    resolved = [("a2.resolved", {"id": "a2", "status": "resolved", "severity": "warning",
+    cleared = [("a2.cleared", {"id": "a2", "status": "cleared", "severity": "major",
                                  "segment": 1, "statistic": "weight_change", "value": 0.01,
                                  "bound": 0.05})]
     store.commit_input(LedgerEntry(digest="0" * 64, name="x.csv", size=10, outcome="committed",
@@ -177,29 +177,29 @@ def test_status_and_metrics_read_alerts_written_through_the_store(tmp_path):
                        learned=True, alerts=payloads)
     store.commit_input(LedgerEntry(digest="1" * 64, name="y.csv", size=10, outcome="committed",
                                    rows=5, rows_invalid=0, seen_at=102.0, finished_at=102.5),
-                       learned=True, alerts=resolved)
+                       learned=True, alerts=cleared)
     store.record_quarantine(LedgerEntry(digest=None, name="bad.csv", size=3,
                                         outcome="quarantined", reason="bad_row: line 2",
                                         seen_at=101.0, finished_at=101.1))
     reader = StateReader(layout.db)
     try:
         snap = state_snapshot(reader, settings, layout, now=200.0)
-        assert snap["alert_counts"] == {"firing/critical": 1, "firing/warning": 1,
-                                        "resolved/warning": 1}
-        assert snap["alerts_firing"] == 1          # a2's latest notification resolved it
+        assert snap["alert_counts"] == {"raised/critical": 1, "raised/major": 1,
+                                        "cleared/major": 1}
+        assert snap["alerts_active"] == 1          # a2's latest notification cleared it
         assert snap["last_error"]["name"] == "bad.csv"
         text = format_status(snap)
-        assert "1 firing/critical" in text and "bad_row: line 2" in text
+        assert "1 raised/critical" in text and "bad_row: line 2" in text
         assert "segment 2 mean_shift value 1.7 bound 0.5" in text
         fams = {f.name: f for f in text_string_to_metric_families(
             render_metrics(build_registry(reader)).decode())}
         alerts = {(s.labels["status"], s.labels["severity"]): s.value
                   for s in fams["shoal_alert_notifications"].samples
                   if s.name.endswith("_total")}
-        assert alerts == {("firing", "critical"): 1, ("firing", "warning"): 1,
-                          ("resolved", "warning"): 1}
-        firing = {s.labels["severity"]: s.value for s in fams["shoal_alerts_firing"].samples}
-        assert firing == {"critical": 1, "warning": 0}
+        assert alerts == {("raised", "critical"): 1, ("raised", "major"): 1,
+                          ("cleared", "major"): 1}
+        raised = {s.labels["severity"]: s.value for s in fams["shoal_alerts_active"].samples}
+        assert raised == {"critical": 1, "major": 0}
         assert fams["shoal_alerts_undelivered"].samples[0].value == 3
         inputs = {s.labels["outcome"]: s.value for s in fams["shoal_inputs"].samples}
         assert inputs == {"committed": 2, "duplicate": 0, "quarantined": 1}

@@ -121,8 +121,8 @@ def test_sighup_with_a_changed_drift_bound_changes_alerting_without_restart(tmp_
         watch.wait_event("service_ready", timeout=60)
         demo_drops(inbox, 12, 500, start=0)       # warm-up 2000, reference at 4000, 2 windows
         wait_until(lambda: ledger_counts(db).get("committed", 0) == 12, 90, "12 commits")
-        watch.wait_event("drift_reference_taken", timeout=10)
-        assert watch.events("alert_firing") == []
+        watch.wait_event("drift_baseline_taken", timeout=10)
+        assert watch.events("alert_raised") == []
 
         _write(cfg, {**base, "drift": {**drift, "noise_multiple": 0.0, "persist": 1,
                                        "bounds": {"weight_change": 1e-6}}})
@@ -130,8 +130,8 @@ def test_sighup_with_a_changed_drift_bound_changes_alerting_without_restart(tmp_
         reloaded = watch.wait_event("config_reloaded", timeout=30)
         assert "drift.bounds.weight_change" in reloaded["changed"]
         demo_drops(inbox, 4, 500, start=12)       # two more windows under the new bound
-        fired = watch.wait_event("alert_firing", timeout=60)
-        assert fired["statistic"] == "weight_change" and fired["bound"] == 1e-6
+        raised = watch.wait_event("alert_raised", timeout=60)
+        assert raised["statistic"] == "weight_change" and raised["bound"] == 1e-6
         assert len(watch.events("service_started")) == 1          # never restarted
         assert watch.stop() == 0
     finally:

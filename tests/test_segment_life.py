@@ -70,9 +70,9 @@ def test_new_group_is_born_within_20000_rows_and_old_labels_stay(stream):
     # a new id, never used before; the old ones unchanged, their rows labelled as before
     assert event["segment"] == before.next_id
     assert after.ids.tolist() == before.ids.tolist() + [event["segment"]]
-    # settled (lifecycle.settle_rows after birth): it joined the drift reference, the
+    # settled (lifecycle.settle_rows after birth): it joined the drift baseline, the
     # old segments kept theirs
-    ref = s.drift_state()["reference"]
+    ref = s.drift_state()["baseline"]
     assert ref["ids"] == before.ids.tolist() + [event["segment"]]
     assert _mahalanobis(ref["means"][-1], new_mean, new_cov) <= 0.5
     agree = float(np.mean(after.score(probe).segment == labels_before))
@@ -101,12 +101,12 @@ def test_group_that_stops_appearing_retires_after_the_span(stream):
     events = _events(s)
     assert [(a["status"], a["segment"]) for a in events] == [("retired", segment)]
     event = events[0]
-    # its fading fired a weight_change alert; the retirement resolved it
-    fired = {a["id"] for a in s.alerts() if a["status"] == "firing"
+    # its fading raised a weight_change alert; the retirement cleared it
+    raised = {a["id"] for a in s.alerts() if a["status"] == "raised"
              and a["segment"] == segment}
-    resolved = {a["id"] for a in s.alerts() if a["status"] == "resolved"
-                and a.get("resolved_by") == "retired"}
-    assert fired and fired == resolved
+    cleared = {a["id"] for a in s.alerts() if a["status"] == "cleared"
+                and a.get("cleared_by") == "retired"}
+    assert raised and raised == cleared
     assert not [k for k in s.drift_state()["open"] if k.startswith(f"{segment}|")]
     stop_row = 30_000
     under = event["explanation"]["under_since_row"]
@@ -116,8 +116,8 @@ def test_group_that_stops_appearing_retires_after_the_span(stream):
     assert under > stop_row
     after = s.pipeline.state.mixture
     assert after.ids.tolist() == [i for i in before.ids.tolist() if i != segment]
-    # the drift reference no longer holds it; the history records it with the version
-    assert segment not in s.drift_state()["reference"]["ids"]
+    # the drift baseline no longer holds it; the history records it with the version
+    assert segment not in s.drift_state()["baseline"]["ids"]
     rows = [h for h in s.store.history(segment) if h["event"]]
     assert len(rows) == 1 and rows[0]["event"].startswith("retired")
     assert rows[0]["version"] == event["model_version"]["first"]
