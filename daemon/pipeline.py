@@ -63,6 +63,8 @@ from shoal.daemon.logs import log_event
 from shoal.daemon.quarantine import move_out, quarantine
 from shoal.daemon.readers import Frame, file_digest, iter_frames, prefetch
 from shoal.daemon.store import Checkpoint, HistoryRow, InputCommit, LedgerEntry, StateStore
+from shoal.daemon import transforming
+from shoal.core import FeatureTransforms
 from shoal.daemon.writer import fsync_dir, labels_name, labels_table, write_labels_stream
 
 if TYPE_CHECKING:
@@ -91,6 +93,7 @@ class Result:
     reason: str | None = None
     detail: str | None = None
     model_version: int | None = None
+    rows_outside_domain: int = 0   # of rows_invalid: outside a transform's domain
 
 
 @dataclass
@@ -109,6 +112,7 @@ class ModelState:
     mixture: Mixture | None = None
     extra: dict[str, Any] = field(default_factory=dict)
     warmup: np.ndarray | None = None   # buffered rows while mixture is None
+    transforms: FeatureTransforms | None = None   # the model's (fitted at warm-up)
 
 
 def open_input(path: Path) -> BinaryIO:
@@ -166,7 +170,8 @@ class Pipeline:
         version = self.store.model_version
         cp = self.store.latest_checkpoint()
         if cp is None:
-            return ModelState(version=version, warmup=self.store.warmup_rows())
+            return ModelState(version=version, warmup=self.store.warmup_rows(),
+                              transforms=transforming.configured(self.settings))
         if cp.version != version:
             raise StateError(f"state store's latest checkpoint is version {cp.version} but "
                              f"the model version is {version}")
@@ -178,7 +183,10 @@ class Pipeline:
             raise StateError(f"the stored model has {mixture.n_features} features but the "
                              f"config lists {len(self.settings.features)}; use a new state "
                              "folder for a different feature set")
-        return ModelState(version=version, mixture=mixture, extra=cp.extra)
+        transforms = transforming.from_meta(cp.meta, mixture.n_features)
+        transforming.check_stored(transforms, self.settings)
+        return ModelState(version=version, mixture=mixture, extra=cp.extra,
+                          transforms=transforms)
 
     def _check_stop(self) -> None:
         if self.stop.is_set():
@@ -335,6 +343,13 @@ class Pipeline:
         """The input's frames, read in a thread a few frames ahead of the model; with a
         model, checked against its range as they are read (:func:`_mark_beyond_model`)."""
         mixture = self.state.mixture
+        transforms = self.state.transforms
+        if transforms is not None and not transforms.identity:
+            # the features go to the model's units in the reader thread; the model's
+            # range, in those units, is checked afterwards (_mark_beyond_model)
+            return prefetch(transforming.transformed_frames(
+                iter_frames(f, kind, self.settings, self.stop.is_set), transforms,
+                self.settings.features), threaded=threaded)
         return prefetch(iter_frames(f, kind, self.settings, self.stop.is_set,
                                     model_range=None if mixture is None
                                     else _model_range(mixture)),
@@ -385,7 +400,7 @@ class Pipeline:
         entry = _with(entry, outcome="duplicate", labels=labels.name, rows=count.rows,
                       rows_invalid=count.invalid)
         result = Result("duplicate", entry.name, count.rows, count.invalid, labels,
-                        model_version=st.version)
+                        model_version=st.version, rows_outside_domain=count.outside)
         self._commit(InputCommit(entry, learned=False), st.version, result)
         return result
 
@@ -421,9 +436,11 @@ class Pipeline:
         checkpoint = history = None
         if mixture is not None:
             arrays, meta = mixture.to_state()
+            meta = transforming.to_meta(meta, run.transforms)
             checkpoint = Checkpoint(version, arrays, meta, extra)
             history = _history(mixture, extra,
-                               watch.segment_drift() if watch is not None else None)
+                               watch.segment_drift() if watch is not None else None,
+                               run.transforms)
             if life is not None:
                 history = life.history(history)
         entry = _with(entry, digest=digest, labels=labels.name, rows=run.rows,
@@ -454,13 +471,13 @@ class Pipeline:
                     listener(version)
 
         result = Result("committed", entry.name, run.rows, run.invalid, labels,
-                        model_version=version)
+                        model_version=version, rows_outside_domain=run.outside)
         self._commit(commit, version, result, after)
         buffered = None
         if mixture is None:
             parts = [a for a in (st.warmup, warmup_keep) if a is not None and len(a)]
             buffered = np.concatenate(parts) if parts else None
-        self.state = ModelState(version, mixture, extra, buffered)
+        self.state = ModelState(version, mixture, extra, buffered, run.transforms)
         return result
 
     def _times(self, frame: Frame):
@@ -484,7 +501,7 @@ class Pipeline:
         watch.rebaseline(st.mixture, note)
         extra = dict(st.extra, drift=watch.state)
         self.store.apply_rebaseline(request_id, st.version, extra, watch.alerts)
-        self.state = ModelState(st.version, st.mixture, extra, st.warmup)
+        self.state = replace(st, extra=extra)
         log_event("drift_rebaselined", model_version=st.version, note=note)
         watch.log_alerts(st.version)
         if watch.alerts:
@@ -507,14 +524,18 @@ class Pipeline:
         return LifeWatch(self.settings, state, version=version, file=file)
 
     def _warm_up(self, X: np.ndarray, watch: InputWatch | None = None,
-                 life: LifeWatch | None = None):
+                 life: LifeWatch | None = None, buffered: np.ndarray | None = None):
         """Buffer rows until ``warmup_rows``; then fit the first model.
 
+        ``buffered`` stands for the stored warm-up buffer (its rows transformed).
         Returns ``(mixture or None, scores or None, rows to add to the buffer,
         checkpoint extras of the new model)``.
         """
         s = self.settings
-        buffered = self.state.warmup if self.state.warmup is not None else np.empty((0, X.shape[1]))
+        if buffered is None:
+            buffered = self.state.warmup
+        if buffered is None:
+            buffered = np.empty((0, X.shape[1]))
         if len(buffered) + len(X) < s.warmup_rows:
             return None, None, X, {}
         need = max(s.warmup_rows - len(buffered), 0)
@@ -659,6 +680,7 @@ class Pipeline:
 def _log_result(result: Result, duration: float) -> None:
     log_event(f"input_{result.outcome}", logging.INFO, file=result.name, rows=result.rows,
               rows_invalid=result.rows_invalid or None,
+              rows_outside_transform_domain=result.rows_outside_domain or None,
               labels=result.labels.name if result.labels else None,
               model_version=result.model_version, duration=round(duration, 4))
 
@@ -703,9 +725,15 @@ def _concat(*parts):
                           for name in first.__dataclass_fields__})
 
 
-def _history(mixture: Mixture, extra: dict, drift: dict | None = None) -> list[HistoryRow]:
+def _history(mixture: Mixture, extra: dict, drift: dict | None = None,
+             transforms: FeatureTransforms | None = None) -> list[HistoryRow]:
     means = mixture.data_means()
     stds = mixture.data_stds()
+    if transforms is not None and not transforms.identity:
+        # in the data's units: a transformed feature's median and half its central
+        # 68% interval
+        means, low, high = transforming.centres(transforms, means, stds)
+        stds = (high - low) / 2.0
     counts = extra.get("segment_rows", {})
     drift = drift or {}
     return [HistoryRow(segment=int(sid), weight=float(mixture.weights[k]),
@@ -727,7 +755,7 @@ class _Count:
     """Rows and rows without a segment of the frames that went through ``counted``."""
 
     def __init__(self):
-        self.rows = self.invalid = 0
+        self.rows = self.invalid = self.outside = 0
 
     def counted(self, frames: Iterable[Frame], mixture: Mixture | None = None):
         """The frames, counted; with a model, rows beyond its range marked invalid first
@@ -737,6 +765,7 @@ class _Count:
                 _mark_beyond_model(frame, mixture)
             self.rows += frame.n_rows
             self.invalid += frame.n_invalid
+            self.outside += frame.outside_domain
             yield frame
 
 
@@ -792,7 +821,7 @@ def _labels(frame: Frame, scores, unusual_below: float, version: int | None) -> 
                         None if scores is None else scores.segment,
                         None if scores is None else scores.confidence,
                         None if scores is None else scores.log_density,
-                        unusual_below, version)
+                        unusual_below, version, transforming.valid_log_jacobian(frame))
 
 
 def _rows_of(scores, start: int, stop: int):
@@ -820,7 +849,9 @@ class _Run:
         self.extra = extra
         self.version = version
         self.watch, self.life = watch, life
-        self.rows = self.invalid = 0
+        self.transforms = pipeline.state.transforms
+        self.fitted_here = False       # Yeo-Johnson fitted in this input's warm-up
+        self.rows = self.invalid = self.outside = 0
         self.scored = False            # some rows got scores (the labels' model version)
         self.warmup_keep: np.ndarray | None = None
         self.clear_warmup = False
@@ -830,10 +861,13 @@ class _Run:
 
     def tables(self, frames: Iterable[Frame]):
         for frame in frames:
+            if self.fitted_here:   # read before the parameters existed
+                transforming.apply_fitted([frame], self.transforms)
             if self.mixture is not None:
                 _mark_beyond_model(frame, self.mixture)
             self.rows += frame.n_rows
             self.invalid += frame.n_invalid
+            self.outside += frame.outside_domain
             self.held.append(frame)
             if self.mixture is None:
                 self._warm_up()
@@ -889,9 +923,18 @@ class _Run:
         self.warm_up_tried = True
         X = np.concatenate([_valid_rows(f) for f in self.held])
         self._times(self.held)
-        mixture, scores, _, init_extra = p._warm_up(X, self.watch, self.life)
+        buffered, fitted = None, self.transforms
+        if fitted is not None and not fitted.fitted:
+            # Yeo-Johnson parameters from the warm-up rows, then kept with the model
+            stored = p.state.warmup if p.state.warmup is not None else X[:0]
+            fitted, buffered, X = transforming.fit_at_warm_up(
+                fitted, stored, X, p.settings.warmup_rows, self.held)
+        mixture, scores, _, init_extra = p._warm_up(X, self.watch, self.life, buffered)
         if mixture is None:
             return
+        if fitted is not self.transforms:
+            transforming.apply_fitted(self.held, fitted)
+            self.transforms, self.fitted_here = fitted, True
         self.mixture, self.clear_warmup = mixture, True
         self.extra.update(init_extra)
         start = 0

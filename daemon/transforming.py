@@ -1,0 +1,211 @@
+"""The configured per-feature transforms, between the reader and the model.
+
+Rows become float frames in :mod:`shoal.daemon.readers`; :func:`transformed_frames`
+maps each frame's features into the model's units as it is read (in the reader
+thread), marks rows outside a transform's domain invalid (reason
+``outside_transform_domain``, counted per frame) and keeps each row's log-Jacobian,
+which the labels add to the model's log-density so that ``log_density`` stays a
+density in the data's units.
+
+A ``yeo-johnson`` feature has no parameter until the warm-up: until then its values
+pass through as they are; :func:`fit_at_warm_up` fits the parameter on the warm-up
+rows and transforms those rows and the frames held for their labels.
+
+The transforms (names and fitted parameters) are part of the model: they are stored
+in the checkpoint's metadata (``meta["transforms"]``) and a config that names other
+transforms for a stored model is refused (:func:`check_stored`).
+
+Summaries in the data's units: a segment is Gaussian in the transformed units, so for
+a monotone transform the back-transformed mean is the segment's median in the data's
+units and the back-transformed ``mean +- 1 sd`` its central 68% interval
+(:func:`centres`).
+"""
+from __future__ import annotations
+
+import logging
+from typing import Iterable, Iterator
+
+import numpy as np
+
+from shoal.config import Settings
+from shoal.core import FeatureTransforms
+from shoal.core.transforms import yeo_johnson, yeo_johnson_log_jacobian
+from shoal.daemon.errors import UsageError
+from shoal.daemon.logs import log_event
+
+__all__ = ["OUTSIDE_DOMAIN", "META_KEY", "configured", "from_meta", "to_meta",
+           "check_stored", "transformed_frames", "fit_at_warm_up", "centres",
+           "valid_log_jacobian", "feature_centres", "apply_fitted"]
+
+OUTSIDE_DOMAIN = "outside_transform_domain"
+META_KEY = "transforms"
+# a central interval of +-1 sd of a Gaussian holds 68.27% of it
+INTERVAL_SDS = 1.0
+
+
+def configured(settings: Settings) -> FeatureTransforms:
+    """The transforms the config names (Yeo-Johnson parameters not fitted)."""
+    return FeatureTransforms.from_kinds(settings.transform_kinds)
+
+
+def from_meta(meta: dict, n_features: int) -> FeatureTransforms:
+    """The transforms a checkpoint's metadata holds (none for a model stored without)."""
+    data = meta.get(META_KEY)
+    if data is None:
+        return FeatureTransforms.from_kinds(("none",) * n_features)
+    return FeatureTransforms.from_dict(data)
+
+
+def to_meta(meta: dict, transforms: FeatureTransforms) -> dict:
+    """``meta`` with the transforms added (kept out when every feature is ``none``, so
+    that a model without transforms is stored as it always was)."""
+    if transforms.identity:
+        return meta
+    return dict(meta, **{META_KEY: transforms.to_dict()})
+
+
+def check_stored(stored: FeatureTransforms, settings: Settings) -> None:
+    """Refuse a config whose transforms differ from the stored model's (exit code 2)."""
+    for name, was, now in zip(settings.features, stored.kinds, settings.transform_kinds):
+        if was != now:
+            raise UsageError(
+                f"transforms.{name}: the stored model was learned with {was!r}, the config "
+                f"says {now!r}; a model's transforms cannot change (they are part of the "
+                "model): restore the setting, or use a new state folder")
+
+
+def transformed_frames(frames: Iterable, transforms: FeatureTransforms,
+                       names: tuple[str, ...]) -> Iterator:
+    """``frames`` with their features in the model's units (see the module docstring).
+
+    Each frame gets ``log_jacobian`` (shape (n_rows,), 0 for invalid rows and for
+    ``yeo-johnson`` features not fitted yet) and ``outside_domain`` (rows made invalid
+    here). ``model_range`` is cleared: a range checked on the raw values means nothing
+    in the transformed units (the pipeline checks it again).
+    """
+    if transforms.identity:
+        yield from frames
+        return
+    pending = not transforms.fitted
+    usable = _without_pending(transforms) if pending else transforms
+    for frame in frames:
+        _transform(frame, usable, names)
+        yield frame
+
+
+def _without_pending(t: FeatureTransforms) -> FeatureTransforms:
+    """``t`` with the ``yeo-johnson`` features not yet fitted left as they are."""
+    kinds = tuple("none" if k == "yeo-johnson" and not np.isfinite(l) else k
+                  for k, l in zip(t.kinds, t.lambdas))
+    return FeatureTransforms(kinds, t.lambdas)
+
+
+def _transform(frame, t: FeatureTransforms, names: tuple[str, ...]) -> None:
+    valid = frame.valid
+    X = frame.features[valid]
+    Y, inside = t.forward(X)
+    jac = np.zeros(frame.n_rows)
+    jac_valid = np.zeros(len(X))
+    if inside.any():
+        jac_valid[inside] = t.log_jacobian(X[inside])
+    jac[valid] = jac_valid
+    frame.features[valid] = Y
+    outside = int(np.count_nonzero(~inside))
+    if outside:
+        rows = np.flatnonzero(valid)[~inside]
+        frame.valid[rows] = False
+    frame.log_jacobian = jac
+    frame.outside_domain = outside
+    frame.model_range = None
+    frame.beyond_range = 0
+    if outside:
+        log_event("rows_invalid", logging.WARNING, reason=OUTSIDE_DOMAIN, rows=outside,
+                  features=_outside_features(X[~inside], t, names))
+
+
+def _outside_features(X: np.ndarray, t: FeatureTransforms, names: tuple[str, ...]) -> dict:
+    """How many of the refused rows are outside the domain in each feature."""
+    out = {}
+    for j, kind in enumerate(t.kinds):
+        one = FeatureTransforms((kind,), t.lambdas[j:j + 1])
+        n = int(np.count_nonzero(~one.inside(X[:, j:j + 1])))
+        if n:
+            out[names[j]] = n
+    return out
+
+
+def fit_at_warm_up(transforms: FeatureTransforms, buffered: np.ndarray, X: np.ndarray,
+                   warmup_rows: int, held: list) -> tuple[FeatureTransforms, np.ndarray,
+                                                          np.ndarray]:
+    """Fit the ``yeo-johnson`` parameters on the first ``warmup_rows`` of the buffered
+    rows and ``X`` (their ``yeo-johnson`` columns still in the data's units).
+
+    Returns ``(fitted transforms, buffered rows transformed, X transformed)`` (copies).
+    ``held`` frames (whose valid rows are ``X``) are transformed in place by
+    :func:`apply_fitted` once the warm-up has succeeded.
+    """
+    rows = np.concatenate([buffered, X])[:warmup_rows]
+    fitted = transforms.fit(rows)
+    return fitted, _yj_columns(buffered, fitted)[0], _yj_columns(X, fitted)[0]
+
+
+def apply_fitted(held: list, fitted: FeatureTransforms) -> None:
+    """Transform the ``yeo-johnson`` columns of the valid rows of ``held`` frames (read
+    before the parameters existed) and add their log-Jacobians."""
+    for frame in held:
+        valid = frame.valid
+        Y, jac = _yj_columns(frame.features[valid], fitted)
+        frame.features[valid] = Y
+        if getattr(frame, "log_jacobian", None) is None:
+            frame.log_jacobian = np.zeros(frame.n_rows)
+        frame.log_jacobian[valid] += jac
+
+
+def _yj_columns(X: np.ndarray, t: FeatureTransforms) -> tuple[np.ndarray, np.ndarray]:
+    Y = np.array(X, dtype=np.float64)
+    jac = np.zeros(len(X))
+    for j, kind in enumerate(t.kinds):
+        if kind == "yeo-johnson":
+            jac += yeo_johnson_log_jacobian(X[:, j], t.lambdas[j])
+            Y[:, j] = yeo_johnson(X[:, j], t.lambdas[j])
+    return Y, jac
+
+
+def valid_log_jacobian(frame) -> np.ndarray | None:
+    """The log-Jacobian of a frame's valid rows (None without transforms)."""
+    jac = getattr(frame, "log_jacobian", None)
+    if jac is None:
+        return None
+    return jac if frame.n_invalid == 0 else jac[frame.valid]
+
+
+def centres(transforms: FeatureTransforms, means: np.ndarray, sds: np.ndarray):
+    """Segment centres and central 68% intervals in the data's units.
+
+    Parameters
+    ----------
+    transforms : FeatureTransforms
+    means, sds : ndarray of shape (n_components, n_features)
+        Per-feature means and sds of each segment in the model's (transformed) units.
+
+    Returns
+    -------
+    centre, low, high : ndarray of shape (n_components, n_features)
+        For a transformed feature the segment's median in the data's units and the
+        back-transformed ``mean -+ 1 sd``; for the others the mean and ``mean -+ sd``.
+    """
+    centre = transforms.inverse(means)
+    low = transforms.inverse(means - INTERVAL_SDS * sds)
+    high = transforms.inverse(means + INTERVAL_SDS * sds)
+    return centre, low, high
+
+
+def feature_centres(transforms: FeatureTransforms, features, means, sds) -> dict:
+    """Per transformed feature of one segment: ``{name: {"median", "interval"}}``.
+
+    ``means`` and ``sds`` have shape (n_features,), in the model's units.
+    """
+    centre, low, high = centres(transforms, np.asarray(means)[None], np.asarray(sds)[None])
+    return {name: {"median": float(centre[0, j]),
+                   "interval": [float(low[0, j]), float(high[0, j])]}
+            for j, name in enumerate(features) if transforms.kinds[j] != "none"}
