@@ -51,6 +51,7 @@ from shoal.core.drift import (
     weight_noise,
 )
 from shoal.daemon.logs import log_event
+from shoal.daemon.transforming import moves_in_data_units
 
 __all__ = ["DriftMonitor", "InputWatch", "alert_id", "STATISTIC_UNITS", "SEGMENT_STATISTICS"]
 
@@ -210,6 +211,10 @@ class DriftMonitor:
 
 class InputWatch:
     """Drift evaluation for the rows of one input; ``state`` and ``alerts`` go to the commit."""
+
+    # the model's FeatureTransforms (set by the pipeline): explanations give a
+    # transformed feature's medians in the data's units
+    transforms = None
 
     def __init__(self, monitor: DriftMonitor, state: dict | None, *, version: int, file: str,
                  times=None, unusual_below=None):
@@ -627,7 +632,8 @@ class InputWatch:
                                f"(reference weight {info.get('reference_weight', 0.0):.1%}) "
                                "and had no rows to compare",
                     "share": share, "reference_weight": info.get("reference_weight")}
-        moved = explain(ref, seg, info["mean"], feature_names=names)
+        moved = moves_in_data_units(explain(ref, seg, info["mean"], feature_names=names),
+                                    self.transforms)
         out = {"features": moved, "share": info["share"],
                "reference_weight": info["reference_weight"], "effective_rows": info["n_eff"]}
         if stat == "mean_shift":   # T^2 = n_eff d^2 against chi-square(D) (scipy.stats.chi2)
@@ -669,8 +675,9 @@ class InputWatch:
         if info["unusual"] and by_seg:
             near = max(by_seg, key=lambda s: (by_seg[s], -int(s)))
             if int(near) in set(ref.ids.tolist()):
-                moved = explain(ref, int(near), info["unusual_mean"],
-                                feature_names=self.monitor.features)
+                moved = moves_in_data_units(explain(ref, int(near), info["unusual_mean"],
+                                                    feature_names=self.monitor.features),
+                                            self.transforms)
                 out.update(nearest_segment=int(near), features=moved)
                 head += (f"; most are labelled segment {near}, from whose reference they "
                          f"differ: " + _moves(moved))
@@ -727,7 +734,9 @@ def _reference_from_sums(sums: dict, mixture: Mixture) -> Reference:
 
 def _moves(moved) -> str:
     return ", ".join(f"{m['feature']} {_fmt(m['reference_mean'])} -> {_fmt(m['current_mean'])} "
-                     f"({m['shift_sd']:+.2f} sd)" for m in moved[:_TOP_FEATURES])
+                     + (f"(median, {m['shift_sd']:+.2f} sd of {m['transform']})"
+                        if m.get("centre") == "median" else f"({m['shift_sd']:+.2f} sd)")
+                     for m in moved[:_TOP_FEATURES])
 
 
 def _shown(stat, v):

@@ -413,6 +413,7 @@ class Pipeline:
         if self.settings.drift.enabled:
             watch = self.monitor.begin(extra.get("drift"), version=version, file=entry.name,
                                        unusual_below=extra.get("unusual_below"))
+            watch.transforms = st.transforms
         life = self._life(extra.get("lifecycle"), version, entry.name)
         rebaseline = None
         if watch is not None and st.mixture is not None:
@@ -498,6 +499,7 @@ class Pipeline:
                                    unusual_below=st.extra.get("unusual_below"))
         if watch is None:
             raise StateError("drift watching is off (drift.enabled: false)")
+        watch.transforms = st.transforms
         watch.rebaseline(st.mixture, note)
         extra = dict(st.extra, drift=watch.state)
         self.store.apply_rebaseline(request_id, st.version, extra, watch.alerts)
@@ -935,6 +937,8 @@ class _Run:
         if fitted is not self.transforms:
             transforming.apply_fitted(self.held, fitted)
             self.transforms, self.fitted_here = fitted, True
+            if self.watch is not None:
+                self.watch.transforms = fitted
         self.mixture, self.clear_warmup = mixture, True
         self.extra.update(init_extra)
         start = 0

@@ -35,7 +35,8 @@ from shoal.daemon.logs import log_event
 
 __all__ = ["OUTSIDE_DOMAIN", "META_KEY", "configured", "from_meta", "to_meta",
            "check_stored", "transformed_frames", "fit_at_warm_up", "centres",
-           "valid_log_jacobian", "feature_centres", "apply_fitted"]
+           "valid_log_jacobian", "feature_centres", "apply_fitted",
+           "moves_in_data_units"]
 
 OUTSIDE_DOMAIN = "outside_transform_domain"
 META_KEY = "transforms"
@@ -209,3 +210,25 @@ def feature_centres(transforms: FeatureTransforms, features, means, sds) -> dict
     return {name: {"median": float(centre[0, j]),
                    "interval": [float(low[0, j]), float(high[0, j])]}
             for j, name in enumerate(features) if transforms.kinds[j] != "none"}
+
+
+def moves_in_data_units(moved: list, transforms: FeatureTransforms | None) -> list:
+    """Drift explanations (:func:`shoal.core.drift.explain` records, in the model's
+    units) with a transformed feature's reference and current centre in the data's
+    units: the back-transformed means, i.e. medians (``"centre": "median"``); the shift
+    stays in the model's (transformed) sds."""
+    if transforms is None or transforms.identity:
+        return moved
+    out = []
+    for m in moved:
+        j = m["index"]
+        kind = transforms.kinds[j]
+        if kind == "none":
+            out.append(m)
+            continue
+        two = np.zeros((2, transforms.n_features))
+        two[:, j] = (m["reference_mean"], m["current_mean"])
+        back = transforms.inverse(two)[:, j]
+        out.append(dict(m, reference_mean=float(back[0]), current_mean=float(back[1]),
+                        centre="median", transform=kind))
+    return out
