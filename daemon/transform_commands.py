@@ -7,7 +7,8 @@ values nearly symmetric, and says why (skewness before and after, share of zeros
 * ``|skewness| < 0.5``: ``none`` (a common rule of thumb for "roughly symmetric");
 * values strictly between 0 and 1: ``logit``;
 * positive values: ``log``; with zeros and nothing negative: ``log1p``;
-* otherwise, or when that leaves ``|skewness| >= 0.5`` and Yeo-Johnson does better:
+* otherwise, or when that leaves the values still clearly skewed (``|skewness| >= 1``;
+  between 0.5 and 1 counts as moderate, common practice) and Yeo-Johnson does better:
   ``yeo-johnson`` (its parameter is fitted again on the warm-up rows, not taken from
   the sample);
 * ``none`` when no transform lowers ``|skewness|``.
@@ -29,6 +30,7 @@ __all__ = ["suggest_transforms", "format_suggestions", "add_transform_commands",
            "SYMMETRIC_SKEW", "SAMPLE_ROWS"]
 
 SYMMETRIC_SKEW = 0.5     # |skewness| below this counts as symmetric (common practice)
+MODERATE_SKEW = 1.0      # below this a simpler transform is kept (moderate skew)
 SAMPLE_ROWS = 200_000    # rows of the file looked at (the first ones)
 
 
@@ -67,7 +69,7 @@ def suggest_one(x: np.ndarray) -> dict:
     else:
         kind = "yeo-johnson"
     after = _skew_after(kind, x)
-    if abs(after) >= SYMMETRIC_SKEW and kind != "yeo-johnson":
+    if abs(after) >= MODERATE_SKEW and kind != "yeo-johnson":
         yj = _skew_after("yeo-johnson", x)
         if abs(yj) < abs(after):
             kind, after = "yeo-johnson", yj

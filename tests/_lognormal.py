@@ -33,3 +33,48 @@ def log_rows(rng, n, weights, meanlog, covs, *, shift=None):
         comp, feature, amount = shift
         Y[labels == comp, feature] += amount
     return labels, Y
+
+
+class Stream:
+    """The real pipeline on a fresh state folder, fed Parquet drops of these features."""
+
+    def __init__(self, folder, features=FEATURES, **overrides):
+        from shoal.config import parse_config
+        from shoal.daemon.layout import prepare_folders
+        from shoal.daemon.pipeline import Pipeline
+        from shoal.daemon.store import StateStore
+
+        folder.mkdir(parents=True, exist_ok=True)
+        self.folder, self.features = folder, list(features)
+        self.settings = parse_config({"features": self.features, "segments": K,
+                                      **overrides}, folder)
+        self.layout = prepare_folders(self.settings)
+        self.store = StateStore(self.layout.db)
+        self.pipeline = Pipeline(self.settings, self.layout, self.store)
+        self.n = 0
+
+    def feed(self, X, drop_rows=10_000):
+        """Feed ``X`` in drops; returns the ``segment`` labels of every row (NaN: none)."""
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        segments = []
+        for start in range(0, len(X), drop_rows):
+            part = X[start:start + drop_rows]
+            path = self.folder / f"drop-{self.n:06d}.parquet"
+            pq.write_table(pa.table({f: part[:, j] for j, f in enumerate(self.features)}),
+                           path)
+            r = self.pipeline.process(path, in_inbox=False)
+            assert r.outcome == "committed", r
+            segments.append(pq.read_table(r.labels).column("segment")
+                            .to_numpy(zero_copy_only=False).astype(float))
+            r.labels.unlink()
+            path.unlink()
+            self.n += 1
+        return np.concatenate(segments)
+
+    def alerts(self):
+        return [a["payload"] for a in self.store.alerts()]
+
+    def close(self):
+        self.store.close()
