@@ -415,6 +415,8 @@ class Pipeline:
                                        unusual_below=extra.get("unusual_below"))
             watch.transforms = st.transforms
         life = self._life(extra.get("lifecycle"), version, entry.name)
+        if life is not None:
+            life.transforms = st.transforms
         rebaseline = None
         if watch is not None and st.mixture is not None:
             rebaseline = self.store.pending_rebaseline()
@@ -937,8 +939,9 @@ class _Run:
         if fitted is not self.transforms:
             transforming.apply_fitted(self.held, fitted)
             self.transforms, self.fitted_here = fitted, True
-            if self.watch is not None:
-                self.watch.transforms = fitted
+            for part in (self.watch, self.life):
+                if part is not None:
+                    part.transforms = fitted
         self.mixture, self.clear_warmup = mixture, True
         self.extra.update(init_extra)
         start = 0
