@@ -47,6 +47,9 @@ DEMO_CONFIG = {
     "watch": {"settle_seconds": 0.5, "rescan_seconds": 2.0},
     "learning": {"n_init": 3},
     "drift": {"time_column": "timestamp"},
+    # a new state shows in many rows at once (ice build-up: 300 of the first 2,500);
+    # 100 rows keep the scattered rows of one worn compressor from forming a segment
+    "lifecycle": {"birth_rows": 100},
 }
 
 

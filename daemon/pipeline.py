@@ -41,6 +41,7 @@ import pyarrow as pa
 
 from shoal.config import Settings
 from shoal.core import (
+    FeatureTransforms,
     Mixture,
     ModelError,
     NotEnoughDataError,
@@ -64,7 +65,6 @@ from shoal.daemon.quarantine import move_out, quarantine
 from shoal.daemon.readers import Frame, file_digest, iter_frames, prefetch
 from shoal.daemon.store import Checkpoint, HistoryRow, InputCommit, LedgerEntry, StateStore
 from shoal.daemon import transforming
-from shoal.core import FeatureTransforms
 from shoal.daemon.writer import fsync_dir, labels_name, labels_table, write_labels_stream
 
 if TYPE_CHECKING:
@@ -932,7 +932,7 @@ class _Run:
             # Yeo-Johnson parameters from the warm-up rows, then kept with the model
             stored = p.state.warmup if p.state.warmup is not None else X[:0]
             fitted, buffered, X = transforming.fit_at_warm_up(
-                fitted, stored, X, p.settings.warmup_rows, self.held)
+                fitted, stored, X, p.settings.warmup_rows)
         mixture, scores, _, init_extra = p._warm_up(X, self.watch, self.life, buffered)
         if mixture is None:
             return

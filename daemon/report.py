@@ -133,9 +133,11 @@ def recent_rows(reader: StateReader, settings: Settings, layout: Layout, *,
     return X, s
 
 
-def _reference_bands(extra: Mapping[str, Any], history: Sequence[Mapping]) -> dict:
+def _reference_bands(extra: Mapping[str, Any], history: Sequence[Mapping],
+                     transforms=None) -> dict:
     """Segment id -> (means, sds): the stored reference snapshot if there is one, else
-    each segment's first recorded state."""
+    each segment's first recorded state (the history is in the data's units already;
+    the snapshot is in the model's, mapped back with ``transforms``)."""
     ref = None
     if isinstance(extra, Mapping):  # the drift watch keeps it in extra["drift"]
         drift = extra.get("drift")
@@ -149,7 +151,7 @@ def _reference_bands(extra: Mapping[str, Any], history: Sequence[Mapping]) -> di
             sd = (np.sqrt(np.diag(np.asarray(covs[i], float))) if i < len(covs)
                   else np.zeros_like(mean))
             out[int(sid)] = (mean, sd)
-        return out
+        return _bands_in_data_units(out, transforms)
     for h in history:
         out.setdefault(int(h["segment"]), (np.asarray(h["mean"]), np.asarray(h["spread"])))
     return out
@@ -180,8 +182,8 @@ def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
     return {
         "snapshot": state_snapshot(reader, settings, layout, now=now, recent_alerts=50),
         "history": history,
-        "reference": _bands_in_data_units(
-            _reference_bands(cp.extra if cp else {}, all_history),
+        "reference": _reference_bands(
+            cp.extra if cp else {}, all_history,
             from_meta(cp.meta, len(settings.features)) if cp else None),
         "alerts": alerts,
         "means": means,

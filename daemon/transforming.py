@@ -136,13 +136,12 @@ def _outside_features(X: np.ndarray, t: FeatureTransforms, names: tuple[str, ...
 
 
 def fit_at_warm_up(transforms: FeatureTransforms, buffered: np.ndarray, X: np.ndarray,
-                   warmup_rows: int, held: list) -> tuple[FeatureTransforms, np.ndarray,
-                                                          np.ndarray]:
+                   warmup_rows: int) -> tuple[FeatureTransforms, np.ndarray, np.ndarray]:
     """Fit the ``yeo-johnson`` parameters on the first ``warmup_rows`` of the buffered
     rows and ``X`` (their ``yeo-johnson`` columns still in the data's units).
 
     Returns ``(fitted transforms, buffered rows transformed, X transformed)`` (copies).
-    ``held`` frames (whose valid rows are ``X``) are transformed in place by
+    The frames whose valid rows are ``X`` are transformed in place by
     :func:`apply_fitted` once the warm-up has succeeded.
     """
     rows = np.concatenate([buffered, X])[:warmup_rows]

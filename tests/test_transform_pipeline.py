@@ -165,3 +165,36 @@ def test_a_changed_transform_is_refused_naming_feature_and_values(stream, tmp_pa
                          str(drop)], capture_output=True, text=True, timeout=60)
     assert r2.returncode == 2, r2.stderr
     assert "transforms.dur_s" in r2.stderr and "'log1p'" in r2.stderr and "'logit'" in r2.stderr
+
+
+def test_status_and_report_show_medians_of_a_transformed_feature(stream):
+    from shoal.daemon.readout import format_status, open_reader, state_snapshot
+    from shoal.daemon.report import report_data, segments_table, write_report
+
+    rng = np.random.default_rng(SEED + 4)
+    s = stream(transforms={"dur_s": "log"}, output={"keep_inputs": True})
+    s.feed(_rows(rng, 3000))
+    reader = open_reader(s.layout)
+    try:
+        snap = state_snapshot(reader, s.settings, s.layout)
+        assert "dur_s median" in format_status(snap) and "temp_c mean" in format_status(snap)
+        table = segments_table(snap, {})
+        assert "dur_s median [68%]" in table and "temp_c mean ± sd" in table
+        data = report_data(reader, s.settings, s.layout)
+        # the band of dur_s is in seconds: each holds one of the generating log-normals'
+        # medians, e^2 and e^0
+        medians = [np.exp(2.0), 1.0]
+        for mean, sd in data["reference"].values():
+            assert sum(mean[0] - sd[0] < m < mean[0] + sd[0] for m in medians) == 1
+        out = write_report(reader, s.settings, s.layout, s.folder / "r.html", config="c")
+        assert "dur_s median [68%]" in out.read_text()
+    finally:
+        reader.close()
+
+
+def test_backfill_refuses_transforms_it_does_not_apply(tmp_path):
+    from shoal.daemon.backfill import backfill
+
+    settings = parse_config({"features": FEATURES, "transforms": {"dur_s": "log"}}, tmp_path)
+    with pytest.raises(UsageError, match="does not apply transforms"):
+        backfill(settings, [tmp_path])
