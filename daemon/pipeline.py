@@ -731,13 +731,8 @@ def _concat(*parts):
 
 def _history(mixture: Mixture, extra: dict, drift: dict | None = None,
              transforms: FeatureTransforms | None = None) -> list[HistoryRow]:
-    means = mixture.data_means()
-    stds = mixture.data_stds()
-    if transforms is not None and not transforms.identity:
-        # in the data's units: a transformed feature's median and half its central
-        # 68% interval
-        means, low, high = transforming.centres(transforms, means, stds)
-        stds = (high - low) / 2.0
+    means, stds = transforming.history_units(transforms, mixture.data_means(),
+                                             mixture.data_stds())
     counts = extra.get("segment_rows", {})
     drift = drift or {}
     return [HistoryRow(segment=int(sid), weight=float(mixture.weights[k]),

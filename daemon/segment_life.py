@@ -48,6 +48,7 @@ from shoal.core.lifecycle import (
 )
 from shoal.daemon.logs import log_event
 from shoal.daemon.store import HistoryRow
+from shoal.daemon.transforming import feature_centres, history_units
 
 __all__ = ["LifeWatch", "lifecycle_alert_id", "STATE_FORMAT"]
 
@@ -282,8 +283,6 @@ class LifeWatch:
 
     # -- events ----------------------------------------------------------------------
     def _describe(self, mean, sd) -> str:
-        from shoal.daemon.transforming import feature_centres
-
         t = self.transforms
         back = {} if t is None or t.identity else feature_centres(t, self.features, mean, sd)
         return ", ".join(
@@ -293,6 +292,7 @@ class LifeWatch:
 
     def _event(self, kind: str, sid: int, n: int, *, weight, mean, spread, summary, **more):
         row = self.state["offset"] + n
+        mean, spread = history_units(self.transforms, mean, spread)   # the data's units
         event = {"event": kind, "segment": int(sid), "row": int(row),
                  "weight": float(weight), "mean": np.asarray(mean).tolist(),
                  "spread": np.asarray(spread).tolist(), **more}

@@ -36,7 +36,7 @@ from shoal.daemon.logs import log_event
 __all__ = ["OUTSIDE_DOMAIN", "META_KEY", "configured", "from_meta", "to_meta",
            "check_stored", "transformed_frames", "fit_at_warm_up", "centres",
            "valid_log_jacobian", "feature_centres", "apply_fitted",
-           "moves_in_data_units"]
+           "moves_in_data_units", "history_units"]
 
 OUTSIDE_DOMAIN = "outside_transform_domain"
 META_KEY = "transforms"
@@ -198,6 +198,19 @@ def centres(transforms: FeatureTransforms, means: np.ndarray, sds: np.ndarray):
     low = transforms.inverse(means - INTERVAL_SDS * sds)
     high = transforms.inverse(means + INTERVAL_SDS * sds)
     return centre, low, high
+
+
+def history_units(transforms: FeatureTransforms | None, means, sds):
+    """Means and sds (model units, shape (..., n_features)) as the segment history keeps
+    them, in the data's units: a transformed feature's median and half its central 68%
+    interval."""
+    means, sds = np.asarray(means, dtype=np.float64), np.asarray(sds, dtype=np.float64)
+    if transforms is None or transforms.identity:
+        return means, sds
+    one = means.ndim == 1
+    centre, low, high = centres(transforms, np.atleast_2d(means), np.atleast_2d(sds))
+    half = (high - low) / 2.0
+    return (centre[0], half[0]) if one else (centre, half)
 
 
 def feature_centres(transforms: FeatureTransforms, features, means, sds) -> dict:
