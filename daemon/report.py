@@ -190,6 +190,9 @@ def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
         "covariances": covs,
         "sample": (X, seg),
         "units": feature_units(settings),
+        # a transformed feature is drawn by its median (band: central 68% interval)
+        "centres": {f: "median" for f, k in zip(settings.features, settings.transform_kinds)
+                    if k != "none"},
         "bounds": drift_bounds(settings),
         "features": list(settings.features),
         "since": since,
@@ -205,7 +208,7 @@ def render_plots(data: Mapping[str, Any], which: Sequence[str] = tuple(REPORT_PL
     makers = {
         "weights": lambda: plots.weights_png(data["history"]),
         "means": lambda: plots.means_png(data["history"], data["features"], data["units"],
-                                         data["reference"]),
+                                         data["reference"], data.get("centres")),
         "drift": lambda: plots.drift_png(data["history"], data["bounds"], data["alerts"]),
         "pca": lambda: plots.pca_png(data["sample"][0], data["sample"][1], data["means"],
                                      data["covariances"], data["features"]),
