@@ -198,3 +198,21 @@ def test_backfill_refuses_transforms_it_does_not_apply(tmp_path):
     settings = parse_config({"features": FEATURES, "transforms": {"dur_s": "log"}}, tmp_path)
     with pytest.raises(UsageError, match="does not apply transforms"):
         backfill(settings, [tmp_path])
+
+
+def test_yeo_johnson_fitted_inside_a_large_input_gives_the_model_of_a_cut_stream(stream):
+    # frames read before the parameter existed are mapped once it does: one input of
+    # three frames learns the model that a first input of exactly the warm-up rows and
+    # a second of the rest learn (the same stream cut otherwise)
+    rng = np.random.default_rng(SEED + 5)
+    X = _rows(rng, 140_000)
+    one = stream(transforms={"dur_s": "yeo-johnson"})
+    one.feed(X)
+    two = stream(transforms={"dur_s": "yeo-johnson"})
+    two.feed(X[:600])
+    two.feed(X[600:])
+    a, b = one.pipeline.state, two.pipeline.state
+    assert a.transforms.lambdas[0] == b.transforms.lambdas[0]
+    assert a.mixture.n_rows == b.mixture.n_rows == 140_000 - 600
+    np.testing.assert_allclose(a.mixture.data_means(), b.mixture.data_means(), rtol=1e-9)
+    np.testing.assert_allclose(a.mixture.weights, b.mixture.weights, rtol=1e-9)
