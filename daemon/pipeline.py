@@ -112,7 +112,7 @@ class ModelState:
     mixture: Mixture | None = None
     extra: dict[str, Any] = field(default_factory=dict)
     warmup: np.ndarray | None = None   # buffered rows while mixture is None
-    transforms: FeatureTransforms | None = None   # the model's (fitted at warm-up)
+    transforms: FeatureTransforms | None = None   # the model's (fixed at warm-up)
 
 
 def open_input(path: Path) -> BinaryIO:
@@ -345,11 +345,12 @@ class Pipeline:
         mixture = self.state.mixture
         transforms = self.state.transforms
         if transforms is not None and not transforms.identity:
-            # the features go to the model's units in the reader thread; the model's
-            # range, in those units, is checked afterwards (_mark_beyond_model)
+            # the features go to the model's units in the reader thread (before the
+            # first model only checked: the warm-up rows stay in the data's units); the
+            # model's range, in those units, is checked afterwards (_mark_beyond_model)
             return prefetch(transforming.transformed_frames(
                 iter_frames(f, kind, self.settings, self.stop.is_set), transforms,
-                self.settings.features), threaded=threaded)
+                self.settings.features, check_only=mixture is None), threaded=threaded)
         return prefetch(iter_frames(f, kind, self.settings, self.stop.is_set,
                                     model_range=None if mixture is None
                                     else _model_range(mixture)),
@@ -849,7 +850,7 @@ class _Run:
         self.version = version
         self.watch, self.life = watch, life
         self.transforms = pipeline.state.transforms
-        self.fitted_here = False       # Yeo-Johnson fitted in this input's warm-up
+        self.mapped_here = False       # transforms fixed in this input's warm-up
         self.rows = self.invalid = self.outside = 0
         self.scored = False            # some rows got scores (the labels' model version)
         self.warmup_keep: np.ndarray | None = None
@@ -860,8 +861,8 @@ class _Run:
 
     def tables(self, frames: Iterable[Frame]):
         for frame in frames:
-            if self.fitted_here:   # read before the parameters existed
-                transforming.apply_fitted([frame], self.transforms)
+            if self.mapped_here:   # read in the data's units, before the first model
+                transforming.map_frames([frame], self.transforms)
             if self.mixture is not None:
                 _mark_beyond_model(frame, self.mixture)
             self.rows += frame.n_rows
@@ -923,8 +924,9 @@ class _Run:
         X = np.concatenate([_valid_rows(f) for f in self.held])
         self._times(self.held)
         buffered, fitted = None, self.transforms
-        if fitted is not None and not fitted.fitted:
-            # Yeo-Johnson parameters from the warm-up rows, then kept with the model
+        if fitted is not None and not fitted.identity:
+            # the warm-up rows are in the data's units: the transforms (Yeo-Johnson
+            # parameters fitted on these rows) are fixed here and kept with the model
             stored = p.state.warmup if p.state.warmup is not None else X[:0]
             fitted, buffered, X = transforming.fit_at_warm_up(
                 fitted, stored, X, p.settings.warmup_rows)
@@ -932,8 +934,8 @@ class _Run:
         if mixture is None:
             return
         if fitted is not self.transforms:
-            transforming.apply_fitted(self.held, fitted)
-            self.transforms, self.fitted_here = fitted, True
+            transforming.map_frames(self.held, fitted)
+            self.transforms, self.mapped_here = fitted, True
             for part in (self.watch, self.life):
                 if part is not None:
                     part.transforms = fitted

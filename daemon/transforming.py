@@ -7,9 +7,11 @@ thread), marks rows outside a transform's domain invalid (reason
 which the labels add to the model's log-density so that ``log_density`` stays a
 density in the data's units.
 
-A ``yeo-johnson`` feature has no parameter until the warm-up: until then its values
-pass through as they are; :func:`fit_at_warm_up` fits the parameter on the warm-up
-rows and transforms those rows and the frames held for their labels.
+Before the first model, rows are only checked against the domains (and counted) and
+stay in the data's units, so that the warm-up buffer does not depend on the
+transforms: :func:`fit_at_warm_up` fixes them when the first model is fitted (a
+``yeo-johnson`` feature's parameter by maximum likelihood on the warm-up rows) and
+maps those rows; :func:`map_frames` maps the frames held for their labels.
 
 The transforms (names and fitted parameters) are part of the model: they are stored
 in the checkpoint's metadata (``meta["transforms"]``) and a config that names other
@@ -29,13 +31,12 @@ import numpy as np
 
 from shoal.config import Settings
 from shoal.core import FeatureTransforms
-from shoal.core.transforms import yeo_johnson, yeo_johnson_log_jacobian
 from shoal.daemon.errors import UsageError
 from shoal.daemon.logs import log_event
 
 __all__ = ["OUTSIDE_DOMAIN", "META_KEY", "configured", "from_meta", "to_meta",
            "check_stored", "transformed_frames", "fit_at_warm_up", "centres",
-           "valid_log_jacobian", "feature_centres", "apply_fitted",
+           "valid_log_jacobian", "feature_centres", "map_frames",
            "moves_in_data_units", "history_units"]
 
 OUTSIDE_DOMAIN = "outside_transform_domain"
@@ -76,46 +77,41 @@ def check_stored(stored: FeatureTransforms, settings: Settings) -> None:
 
 
 def transformed_frames(frames: Iterable, transforms: FeatureTransforms,
-                       names: tuple[str, ...]) -> Iterator:
+                       names: tuple[str, ...], check_only: bool = False) -> Iterator:
     """``frames`` with their features in the model's units (see the module docstring).
 
-    Each frame gets ``log_jacobian`` (shape (n_rows,), 0 for invalid rows and for
-    ``yeo-johnson`` features not fitted yet) and ``outside_domain`` (rows made invalid
-    here). ``model_range`` is cleared: a range checked on the raw values means nothing
-    in the transformed units (the pipeline checks it again).
+    Each frame gets ``outside_domain`` (rows made invalid here) and ``log_jacobian``
+    (shape (n_rows,), 0 for invalid rows). ``model_range`` is cleared: a range checked
+    on the raw values means nothing in the transformed units (the pipeline checks it
+    again). With ``check_only`` (no model yet) the features stay as they are and no
+    log-Jacobian is made.
     """
     if transforms.identity:
         yield from frames
         return
-    pending = not transforms.fitted
-    usable = _without_pending(transforms) if pending else transforms
     for frame in frames:
-        _transform(frame, usable, names)
+        _transform(frame, transforms, names, check_only)
         yield frame
 
 
-def _without_pending(t: FeatureTransforms) -> FeatureTransforms:
-    """``t`` with the ``yeo-johnson`` features not yet fitted left as they are."""
-    kinds = tuple("none" if k == "yeo-johnson" and not np.isfinite(l) else k
-                  for k, l in zip(t.kinds, t.lambdas))
-    return FeatureTransforms(kinds, t.lambdas)
-
-
-def _transform(frame, t: FeatureTransforms, names: tuple[str, ...]) -> None:
+def _transform(frame, t: FeatureTransforms, names: tuple[str, ...], check_only: bool) -> None:
     valid = frame.valid
     X = frame.features[valid]
-    Y, inside = t.forward(X)
-    jac = np.zeros(frame.n_rows)
-    jac_valid = np.zeros(len(X))
-    if inside.any():
-        jac_valid[inside] = t.log_jacobian(X[inside])
-    jac[valid] = jac_valid
-    frame.features[valid] = Y
+    if check_only:
+        inside = t.inside(X)
+    else:
+        Y, inside = t.forward(X)
+        jac = np.zeros(frame.n_rows)
+        jac_valid = np.zeros(len(X))
+        if inside.any():
+            jac_valid[inside] = t.log_jacobian(X[inside])
+        jac[valid] = jac_valid
+        frame.features[valid] = Y
+        frame.log_jacobian = jac
     outside = int(np.count_nonzero(~inside))
     if outside:
         rows = np.flatnonzero(valid)[~inside]
         frame.valid[rows] = False
-    frame.log_jacobian = jac
     frame.outside_domain = outside
     frame.model_range = None
     frame.beyond_range = 0
@@ -137,38 +133,33 @@ def _outside_features(X: np.ndarray, t: FeatureTransforms, names: tuple[str, ...
 
 def fit_at_warm_up(transforms: FeatureTransforms, buffered: np.ndarray, X: np.ndarray,
                    warmup_rows: int) -> tuple[FeatureTransforms, np.ndarray, np.ndarray]:
-    """Fit the ``yeo-johnson`` parameters on the first ``warmup_rows`` of the buffered
-    rows and ``X`` (their ``yeo-johnson`` columns still in the data's units).
+    """Fix the transforms for the first model: fit the ``yeo-johnson`` parameters on the
+    first ``warmup_rows`` of the buffered rows and ``X`` (both in the data's units).
 
     Returns ``(fitted transforms, buffered rows transformed, X transformed)`` (copies).
-    The frames whose valid rows are ``X`` are transformed in place by
-    :func:`apply_fitted` once the warm-up has succeeded.
+    Buffered rows outside a domain (buffered under other settings) are left out, with
+    a warning. The frames whose valid rows are ``X`` are mapped in place by
+    :func:`map_frames` once the warm-up has succeeded.
     """
-    rows = np.concatenate([buffered, X])[:warmup_rows]
-    fitted = transforms.fit(rows)
-    return fitted, _yj_columns(buffered, fitted)[0], _yj_columns(X, fitted)[0]
+    inside = transforms.inside(buffered)
+    if not inside.all():
+        log_event("rows_invalid", logging.WARNING, reason=OUTSIDE_DOMAIN,
+                  rows=int(np.count_nonzero(~inside)), where="warm-up buffer")
+        buffered = buffered[inside]
+    fitted = transforms.fit(np.concatenate([buffered, X])[:warmup_rows])
+    return fitted, fitted.forward(buffered)[0], fitted.forward(X)[0]
 
 
-def apply_fitted(held: list, fitted: FeatureTransforms) -> None:
-    """Transform the ``yeo-johnson`` columns of the valid rows of ``held`` frames (read
-    before the parameters existed) and add their log-Jacobians."""
-    for frame in held:
+def map_frames(frames: list, fitted: FeatureTransforms) -> None:
+    """Map the valid rows of ``frames`` (read before the first model, checked against
+    the domains, still in the data's units) to the model's units, in place, with their
+    log-Jacobians."""
+    for frame in frames:
         valid = frame.valid
-        Y, jac = _yj_columns(frame.features[valid], fitted)
-        frame.features[valid] = Y
-        if getattr(frame, "log_jacobian", None) is None:
-            frame.log_jacobian = np.zeros(frame.n_rows)
-        frame.log_jacobian[valid] += jac
-
-
-def _yj_columns(X: np.ndarray, t: FeatureTransforms) -> tuple[np.ndarray, np.ndarray]:
-    Y = np.array(X, dtype=np.float64)
-    jac = np.zeros(len(X))
-    for j, kind in enumerate(t.kinds):
-        if kind == "yeo-johnson":
-            jac += yeo_johnson_log_jacobian(X[:, j], t.lambdas[j])
-            Y[:, j] = yeo_johnson(X[:, j], t.lambdas[j])
-    return Y, jac
+        X = frame.features[valid]
+        frame.log_jacobian = np.zeros(frame.n_rows)
+        frame.log_jacobian[valid] = fitted.log_jacobian(X)
+        frame.features[valid] = fitted.forward(X)[0]
 
 
 def valid_log_jacobian(frame) -> np.ndarray | None:
