@@ -679,7 +679,7 @@ class Pipeline:
                 write_labels_stream(tables, out, fmt, lambda: _labels_metadata(
                     digest, algorithm, path.name, st.version), threaded=frames.threaded)
         return Result("labelled", path.name, count.rows, count.invalid, out,
-                      model_version=st.version)
+                      model_version=st.version, rows_outside_domain=count.outside)
 
 
 def _log_result(result: Result, duration: float) -> None:
