@@ -141,3 +141,19 @@ def test_drift_on_log_normal_rows_quiet_then_a_doubled_median_alerted(streams):
     assert f"{FEATURES[feature]} " in alert["explanation"]["summary"]
     assert "(median, " in alert["explanation"]["summary"]
     print(alert["explanation"]["summary"])
+
+
+@pytest.mark.parametrize("make, expected", [
+    (lambda rng: rng.beta(2.0, 20.0, 5000), "logit"),             # skewed shares
+    (lambda rng: 5.0 - rng.lognormal(0.0, 0.8, 5000), "yeo-johnson"),  # left tail, signs
+    (lambda rng: rng.uniform(-1.0, 1.0, 5000), "none"),           # symmetric
+])
+def test_suggest_one_for_shares_and_signed_values(make, expected):
+    from scipy import stats
+    x = make(np.random.default_rng(104))
+    got = suggest_one(x)
+    assert got["transform"] == expected, got
+    # scipy.stats.skew as the reference for the reason's figures
+    assert got["skewness"] == pytest.approx(stats.skew(x), rel=1e-10)
+    if expected != "none":
+        assert abs(got["skewness_after"]) < min(1.0, abs(got["skewness"]))
