@@ -7,6 +7,7 @@ was found, e.g. ``watch.settle_seconds: expected a number >= 0, found 'soon'``.
 """
 from __future__ import annotations
 
+import collections.abc
 import dataclasses
 import difflib
 import re
@@ -173,6 +174,8 @@ def _build(cls: type, data: Any, prefix: str):
 
 def _expected(hint: Any, fld: dataclasses.Field) -> str:
     meta = fld.metadata
+    if typing.get_origin(hint) is collections.abc.Mapping:
+        return "a mapping {feature: " + " | ".join(meta.get("choices", ())) + "}"
     if "choices" in meta:
         return "one of " + ", ".join(repr(c) for c in meta["choices"])
     base = {int: "an integer", float: "a number", bool: "true or false", str: "a string",
@@ -223,6 +226,8 @@ def _convert(value: Any, hint: Any, fld: dataclasses.Field, key: str):
             raise ConfigError(f"{key}: expected min <= max, found min={built.min}, "
                               f"max={built.max}")
         return built
+    if typing.get_origin(hint) is collections.abc.Mapping:
+        return _convert_mapping(value, fld, key, bad)
     if typing.get_origin(hint) is tuple and dataclasses.is_dataclass(typing.get_args(hint)[0]):
         if not isinstance(value, list):
             raise bad()
@@ -269,8 +274,28 @@ def _convert(value: Any, hint: Any, fld: dataclasses.Field, key: str):
     return value
 
 
+def _convert_mapping(value: Any, fld: dataclasses.Field, key: str, bad):
+    """A mapping of column names to one of ``fld``'s choices (``transforms``)."""
+    if value is None:
+        value = {}
+    if not isinstance(value, dict):
+        raise bad()
+    choices = fld.metadata.get("choices", ())
+    for name, item in value.items():
+        if not isinstance(name, str) or not _COLUMN_NAME.match(name):
+            raise ConfigError(f"{key}: expected column names as keys, found {_describe(name)}")
+        if item not in choices:
+            raise ConfigError(f"{key}.{name}: expected one of "
+                              f"{', '.join(repr(c) for c in choices)}, found {_describe(item)}")
+    return types.MappingProxyType(dict(value))
+
+
 def _check_whole(s: Settings) -> None:
     """Rules that involve more than one key."""
+    unknown = [name for name in s.transforms if name not in s.features]
+    if unknown:
+        raise ConfigError(f"transforms.{unknown[0]}: expected one of the features "
+                          f"{list(s.features)}, found {unknown[0]!r}")
     both = sorted(set(s.features) & set(s.passthrough))
     if both:
         raise ConfigError(f"passthrough: expected columns other than the features, found "
@@ -302,6 +327,8 @@ def settings_to_dict(s: Any) -> Any:
         return s.min if s.fixed else {"min": s.min, "max": s.max}
     if dataclasses.is_dataclass(s):
         return {f.name: settings_to_dict(getattr(s, f.name)) for f in dataclasses.fields(s)}
+    if isinstance(s, collections.abc.Mapping):
+        return {k: settings_to_dict(v) for k, v in s.items()}
     if isinstance(s, tuple):
         return [settings_to_dict(v) for v in s]
     if isinstance(s, Path):

@@ -8,6 +8,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import MappingProxyType
+from typing import Mapping
 
 __all__ = [
     "SegmentCount",
@@ -26,12 +28,16 @@ __all__ = [
     "COVARIANCE_TYPES",
     "OUTPUT_FORMATS",
     "LOG_LEVELS",
+    "TRANSFORM_NAMES",
 ]
 
 COVARIANCE_TYPES = ("full", "diag", "spherical")
 OUTPUT_FORMATS = ("parquet", "csv")
 OVERLAP_MEASURES = ("hellinger", "bhattacharyya")
 LOG_LEVELS = ("debug", "info", "warning", "error")
+# the names of shoal.core.transforms.TRANSFORMS (a test keeps them equal; config does not
+# import the core's numerics to read a file)
+TRANSFORM_NAMES = ("none", "log", "log1p", "logit", "yeo-johnson")
 
 
 def _f(default, doc, **checks):
@@ -254,6 +260,11 @@ class Settings:
     outbox: Path = _f(Path("outbox"), "folder where labels files are written")
     state: Path = _f(Path("state"), "folder of the state store, quarantine/ and processed/")
     passthrough: tuple[str, ...] = _f((), "columns copied to the labels unchanged (keys, times)")
+    transforms: Mapping[str, str] = field(
+        default_factory=lambda: MappingProxyType({}),   # read-only, like the tuples
+        metadata={"doc": "per feature, a transform applied before the model: log, log1p, "
+                         "logit, yeo-johnson or none (the default)",
+                  "choices": TRANSFORM_NAMES})
     segments: SegmentCount = _f(SegmentCount(), "an integer, or {min, max} chosen by BIC")
     covariance: str = _f("full", "covariance type", choices=COVARIANCE_TYPES)
     warmup_rows: int = _f(2000, "rows buffered before the first model is fitted", min=10)
@@ -271,6 +282,11 @@ class Settings:
     alerts: AlertSettings = _f(AlertSettings(), "where alerts are delivered")
     lifecycle: LifecycleSettings = _f(LifecycleSettings(), "births, retirements and merges "
                                       "of segments")
+
+    @property
+    def transform_kinds(self) -> tuple[str, ...]:
+        """The transform of each feature, in the order of ``features``."""
+        return tuple(self.transforms.get(name, "none") for name in self.features)
 
     @property
     def columns(self) -> tuple[str, ...]:

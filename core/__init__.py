@@ -7,11 +7,13 @@ from .covariance import COVARIANCE_TYPES
 from .errors import IllConditionedError, ModelError, NotEnoughDataError, ShoalError
 from .mixture import FORMAT_VERSION, Mixture, Scores
 from .schedule import StepSchedule, floor_from_half_life
+from .transforms import TRANSFORMS, FeatureTransforms, data_log_density
 from .warmup import batch_em, bic, initialise, kmeans_plus_plus, select_n_components
 
 __all__ = [
     "COVARIANCE_TYPES",
     "FORMAT_VERSION",
+    "FeatureTransforms",
     "IllConditionedError",
     "Mixture",
     "ModelError",
@@ -19,8 +21,10 @@ __all__ = [
     "Scores",
     "ShoalError",
     "StepSchedule",
+    "TRANSFORMS",
     "batch_em",
     "bic",
+    "data_log_density",
     "floor_from_half_life",
     "initialise",
     "kmeans_plus_plus",

@@ -410,6 +410,9 @@ def backfill(settings: Settings, sources, *, client=None, scheduler: str | None 
         raise UsageError(f"labels should be one of {LABEL_MODES}, got {labels!r}")
     if passes < 1:
         raise UsageError(f"passes should be at least 1, got {passes}")
+    if any(kind != "none" for kind in settings.transform_kinds):
+        raise UsageError("shoal backfill does not apply transforms yet: learn a history "
+                         "with transformed features through shoal ingest")
     stop = stop or threading.Event()
     paths = list_sources(sources)
     if not paths:

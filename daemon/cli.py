@@ -45,6 +45,7 @@ from shoal.daemon.ops_commands import add_operating_commands, run_watch  # noqa:
 from shoal.daemon.pipeline import Pipeline  # noqa: E402
 from shoal.daemon.progress import progress  # noqa: E402
 from shoal.daemon.store import StateStore  # noqa: E402
+from shoal.daemon.transform_commands import add_transform_commands  # noqa: E402
 
 __all__ = ["main", "build_parser", "open_service_parts"]
 
@@ -91,8 +92,9 @@ def build_parser() -> argparse.ArgumentParser:
     add_operating_commands(cmd, with_config)   # report, status
     add_alert_commands(cmd, with_config, open_service_parts)   # alerts, rebaseline, replay
     add_backfill_command(cmd, with_config, _stop_on_signals)   # backfill (Dask)
-    with_config(cmd("config", "print the effective configuration (every key, defaults "
-                              "filled in); exit 2 if it is not valid", _cmd_config))
+    add_transform_commands(cmd, with_config)   # suggest-transforms
+    with_config(cmd("check-config", "validate the configuration and print it in full",
+                    _cmd_check_config))
     sp = cmd("demo", "run the cold-storage warehouse scenario end to end", _cmd_demo)
     sp.add_argument("--dir", default="demo-run", metavar="DIR",
                     help="folder for the demo's config, inbox, outbox and state "

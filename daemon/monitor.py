@@ -51,6 +51,7 @@ from shoal.core.drift import (
     weight_noise,
 )
 from shoal.daemon.logs import log_event
+from shoal.daemon.transforming import moves_in_data_units
 
 __all__ = ["DriftMonitor", "InputWatch", "alert_id", "STATISTIC_UNITS", "SEGMENT_STATISTICS",
            "PAYLOAD_SCHEMA_VERSION"]
@@ -214,6 +215,10 @@ class DriftMonitor:
 
 class InputWatch:
     """Drift evaluation for the rows of one input; ``state`` and ``alerts`` go to the commit."""
+
+    # the model's FeatureTransforms (set by the pipeline): explanations give a
+    # transformed feature's medians in the data's units
+    transforms = None
 
     def __init__(self, monitor: DriftMonitor, state: dict | None, *, version: int, file: str,
                  times=None, unusual_below=None):
@@ -634,8 +639,9 @@ class InputWatch:
             return {"summary": f"segment {seg} took {share:.1%} of the window's rows "
                                f"(baseline weight {info.get('baseline_weight', 0.0):.1%}) "
                                "and had no rows to compare",
-                    "share": share, "baseline_weight": info.get("baseline_weight")}
-        moved = explain(ref, seg, info["mean"], feature_names=names)
+                    "share": share, "reference_weight": info.get("reference_weight")}
+        moved = moves_in_data_units(explain(ref, seg, info["mean"], feature_names=names),
+                                    self.transforms)
         out = {"features": moved, "share": info["share"],
                "baseline_weight": info["baseline_weight"], "effective_rows": info["n_eff"]}
         if stat == "mean_shift":   # T^2 = n_eff d^2 against chi-square(D) (scipy.stats.chi2)
@@ -677,8 +683,9 @@ class InputWatch:
         if info["unusual"] and by_seg:
             near = max(by_seg, key=lambda s: (by_seg[s], -int(s)))
             if int(near) in set(ref.ids.tolist()):
-                moved = explain(ref, int(near), info["unusual_mean"],
-                                feature_names=self.monitor.features)
+                moved = moves_in_data_units(explain(ref, int(near), info["unusual_mean"],
+                                                    feature_names=self.monitor.features),
+                                            self.transforms)
                 out.update(nearest_segment=int(near), features=moved)
                 head += (f"; most are labelled segment {near}, from whose baseline they "
                          f"differ: " + _moves(moved))
@@ -734,8 +741,10 @@ def _baseline_from_sums(sums: dict, mixture: Mixture) -> Baseline:
 
 
 def _moves(moved) -> str:
-    return ", ".join(f"{m['feature']} {_fmt(m['baseline_mean'])} -> {_fmt(m['window_mean'])} "
-                     f"({m['shift_sd']:+.2f} sd)" for m in moved[:_TOP_FEATURES])
+    return ", ".join(f"{m['feature']} {_fmt(m['reference_mean'])} -> {_fmt(m['current_mean'])} "
+                     + (f"(median, {m['shift_sd']:+.2f} sd of {m['transform']})"
+                        if m.get("centre") == "median" else f"({m['shift_sd']:+.2f} sd)")
+                     for m in moved[:_TOP_FEATURES])
 
 
 def _shown(stat, v):

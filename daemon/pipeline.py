@@ -41,6 +41,7 @@ import pyarrow as pa
 
 from shoal.config import Settings
 from shoal.core import (
+    FeatureTransforms,
     Mixture,
     ModelError,
     NotEnoughDataError,
@@ -63,6 +64,7 @@ from shoal.daemon.logs import log_event
 from shoal.daemon.quarantine import move_out, quarantine
 from shoal.daemon.readers import Frame, file_digest, iter_frames, prefetch
 from shoal.daemon.store import Checkpoint, HistoryRow, InputCommit, LedgerEntry, StateStore
+from shoal.daemon import transforming
 from shoal.daemon.writer import fsync_dir, labels_name, labels_table, write_labels_stream
 
 if TYPE_CHECKING:
@@ -91,6 +93,7 @@ class Result:
     reason: str | None = None
     detail: str | None = None
     model_version: int | None = None
+    rows_outside_domain: int = 0   # of rows_invalid: outside a transform's domain
 
 
 @dataclass
@@ -109,6 +112,7 @@ class ModelState:
     mixture: Mixture | None = None
     extra: dict[str, Any] = field(default_factory=dict)
     warmup: np.ndarray | None = None   # buffered rows while mixture is None
+    transforms: FeatureTransforms | None = None   # the model's (fixed at warm-up)
 
 
 def open_input(path: Path) -> BinaryIO:
@@ -166,7 +170,8 @@ class Pipeline:
         version = self.store.model_version
         cp = self.store.latest_checkpoint()
         if cp is None:
-            return ModelState(version=version, warmup=self.store.warmup_rows())
+            return ModelState(version=version, warmup=self.store.warmup_rows(),
+                              transforms=transforming.configured(self.settings))
         if cp.version != version:
             raise StateError(f"state store's latest checkpoint is version {cp.version} but "
                              f"the model version is {version}")
@@ -178,7 +183,10 @@ class Pipeline:
             raise StateError(f"the stored model has {mixture.n_features} features but the "
                              f"config lists {len(self.settings.features)}; use a new state "
                              "folder for a different feature set")
-        return ModelState(version=version, mixture=mixture, extra=cp.extra)
+        transforms = transforming.from_meta(cp.meta, mixture.n_features)
+        transforming.check_stored(transforms, self.settings)
+        return ModelState(version=version, mixture=mixture, extra=cp.extra,
+                          transforms=transforms)
 
     def _check_stop(self) -> None:
         if self.stop.is_set():
@@ -335,6 +343,14 @@ class Pipeline:
         """The input's frames, read in a thread a few frames ahead of the model; with a
         model, checked against its range as they are read (:func:`_mark_beyond_model`)."""
         mixture = self.state.mixture
+        transforms = self.state.transforms
+        if transforms is not None and not transforms.identity:
+            # the features go to the model's units in the reader thread (before the
+            # first model only checked: the warm-up rows stay in the data's units); the
+            # model's range, in those units, is checked afterwards (_mark_beyond_model)
+            return prefetch(transforming.transformed_frames(
+                iter_frames(f, kind, self.settings, self.stop.is_set), transforms,
+                self.settings.features, check_only=mixture is None), threaded=threaded)
         return prefetch(iter_frames(f, kind, self.settings, self.stop.is_set,
                                     model_range=None if mixture is None
                                     else _model_range(mixture)),
@@ -385,7 +401,7 @@ class Pipeline:
         entry = _with(entry, outcome="duplicate", labels=labels.name, rows=count.rows,
                       rows_invalid=count.invalid)
         result = Result("duplicate", entry.name, count.rows, count.invalid, labels,
-                        model_version=st.version)
+                        model_version=st.version, rows_outside_domain=count.outside)
         self._commit(InputCommit(entry, learned=False), st.version, result)
         return result
 
@@ -398,7 +414,10 @@ class Pipeline:
         if self.settings.drift.enabled:
             watch = self.monitor.begin(extra.get("drift"), version=version, file=entry.name,
                                        unusual_below=extra.get("unusual_below"))
+            watch.transforms = st.transforms
         life = self._life(extra.get("lifecycle"), version, entry.name)
+        if life is not None:
+            life.transforms = st.transforms
         rebaseline = None
         if watch is not None and st.mixture is not None:
             rebaseline = self.store.pending_rebaseline()
@@ -421,9 +440,11 @@ class Pipeline:
         checkpoint = history = None
         if mixture is not None:
             arrays, meta = mixture.to_state()
+            meta = transforming.to_meta(meta, run.transforms)
             checkpoint = Checkpoint(version, arrays, meta, extra)
             history = _history(mixture, extra,
-                               watch.segment_drift() if watch is not None else None)
+                               watch.segment_drift() if watch is not None else None,
+                               run.transforms)
             if life is not None:
                 history = life.history(history)
         entry = _with(entry, digest=digest, labels=labels.name, rows=run.rows,
@@ -454,13 +475,13 @@ class Pipeline:
                     listener(version)
 
         result = Result("committed", entry.name, run.rows, run.invalid, labels,
-                        model_version=version)
+                        model_version=version, rows_outside_domain=run.outside)
         self._commit(commit, version, result, after)
         buffered = None
         if mixture is None:
             parts = [a for a in (st.warmup, warmup_keep) if a is not None and len(a)]
             buffered = np.concatenate(parts) if parts else None
-        self.state = ModelState(version, mixture, extra, buffered)
+        self.state = ModelState(version, mixture, extra, buffered, run.transforms)
         return result
 
     def _times(self, frame: Frame):
@@ -481,10 +502,11 @@ class Pipeline:
                                    unusual_below=st.extra.get("unusual_below"))
         if watch is None:
             raise StateError("drift watching is off (drift.enabled: false)")
+        watch.transforms = st.transforms
         watch.rebaseline(st.mixture, note)
         extra = dict(st.extra, drift=watch.state)
         self.store.apply_rebaseline(request_id, st.version, extra, watch.alerts)
-        self.state = ModelState(st.version, st.mixture, extra, st.warmup)
+        self.state = replace(st, extra=extra)
         log_event("drift_rebaselined", model_version=st.version, note=note)
         watch.log_alerts(st.version)
         if watch.alerts:
@@ -507,14 +529,18 @@ class Pipeline:
         return LifeWatch(self.settings, state, version=version, file=file)
 
     def _warm_up(self, X: np.ndarray, watch: InputWatch | None = None,
-                 life: LifeWatch | None = None):
+                 life: LifeWatch | None = None, buffered: np.ndarray | None = None):
         """Buffer rows until ``warmup_rows``; then fit the first model.
 
+        ``buffered`` stands for the stored warm-up buffer (its rows transformed).
         Returns ``(mixture or None, scores or None, rows to add to the buffer,
         checkpoint extras of the new model)``.
         """
         s = self.settings
-        buffered = self.state.warmup if self.state.warmup is not None else np.empty((0, X.shape[1]))
+        if buffered is None:
+            buffered = self.state.warmup
+        if buffered is None:
+            buffered = np.empty((0, X.shape[1]))
         if len(buffered) + len(X) < s.warmup_rows:
             return None, None, X, {}
         need = max(s.warmup_rows - len(buffered), 0)
@@ -653,12 +679,13 @@ class Pipeline:
                 write_labels_stream(tables, out, fmt, lambda: _labels_metadata(
                     digest, algorithm, path.name, st.version), threaded=frames.threaded)
         return Result("labelled", path.name, count.rows, count.invalid, out,
-                      model_version=st.version)
+                      model_version=st.version, rows_outside_domain=count.outside)
 
 
 def _log_result(result: Result, duration: float) -> None:
     log_event(f"input_{result.outcome}", logging.INFO, file=result.name, rows=result.rows,
               rows_invalid=result.rows_invalid or None,
+              rows_outside_transform_domain=result.rows_outside_domain or None,
               labels=result.labels.name if result.labels else None,
               model_version=result.model_version, duration=round(duration, 4))
 
@@ -703,9 +730,10 @@ def _concat(*parts):
                           for name in first.__dataclass_fields__})
 
 
-def _history(mixture: Mixture, extra: dict, drift: dict | None = None) -> list[HistoryRow]:
-    means = mixture.data_means()
-    stds = mixture.data_stds()
+def _history(mixture: Mixture, extra: dict, drift: dict | None = None,
+             transforms: FeatureTransforms | None = None) -> list[HistoryRow]:
+    means, stds = transforming.history_units(transforms, mixture.data_means(),
+                                             mixture.data_stds())
     counts = extra.get("segment_rows", {})
     drift = drift or {}
     return [HistoryRow(segment=int(sid), weight=float(mixture.weights[k]),
@@ -727,7 +755,7 @@ class _Count:
     """Rows and rows without a segment of the frames that went through ``counted``."""
 
     def __init__(self):
-        self.rows = self.invalid = 0
+        self.rows = self.invalid = self.outside = 0
 
     def counted(self, frames: Iterable[Frame], mixture: Mixture | None = None):
         """The frames, counted; with a model, rows beyond its range marked invalid first
@@ -737,6 +765,7 @@ class _Count:
                 _mark_beyond_model(frame, mixture)
             self.rows += frame.n_rows
             self.invalid += frame.n_invalid
+            self.outside += frame.outside_domain
             yield frame
 
 
@@ -792,7 +821,7 @@ def _labels(frame: Frame, scores, unusual_below: float, version: int | None) -> 
                         None if scores is None else scores.segment,
                         None if scores is None else scores.confidence,
                         None if scores is None else scores.log_density,
-                        unusual_below, version)
+                        unusual_below, version, transforming.valid_log_jacobian(frame))
 
 
 def _rows_of(scores, start: int, stop: int):
@@ -820,7 +849,9 @@ class _Run:
         self.extra = extra
         self.version = version
         self.watch, self.life = watch, life
-        self.rows = self.invalid = 0
+        self.transforms = pipeline.state.transforms
+        self.mapped_here = False       # transforms fixed in this input's warm-up
+        self.rows = self.invalid = self.outside = 0
         self.scored = False            # some rows got scores (the labels' model version)
         self.warmup_keep: np.ndarray | None = None
         self.clear_warmup = False
@@ -830,10 +861,13 @@ class _Run:
 
     def tables(self, frames: Iterable[Frame]):
         for frame in frames:
+            if self.mapped_here:   # read in the data's units, before the first model
+                transforming.map_frames([frame], self.transforms)
             if self.mixture is not None:
                 _mark_beyond_model(frame, self.mixture)
             self.rows += frame.n_rows
             self.invalid += frame.n_invalid
+            self.outside += frame.outside_domain
             self.held.append(frame)
             if self.mixture is None:
                 self._warm_up()
@@ -889,9 +923,22 @@ class _Run:
         self.warm_up_tried = True
         X = np.concatenate([_valid_rows(f) for f in self.held])
         self._times(self.held)
-        mixture, scores, _, init_extra = p._warm_up(X, self.watch, self.life)
+        buffered, fitted = None, self.transforms
+        if fitted is not None and not fitted.identity:
+            # the warm-up rows are in the data's units: the transforms (Yeo-Johnson
+            # parameters fitted on these rows) are fixed here and kept with the model
+            stored = p.state.warmup if p.state.warmup is not None else X[:0]
+            fitted, buffered, X = transforming.fit_at_warm_up(
+                fitted, stored, X, p.settings.warmup_rows)
+        mixture, scores, _, init_extra = p._warm_up(X, self.watch, self.life, buffered)
         if mixture is None:
             return
+        if fitted is not self.transforms:
+            transforming.map_frames(self.held, fitted)
+            self.transforms, self.mapped_here = fitted, True
+            for part in (self.watch, self.life):
+                if part is not None:
+                    part.transforms = fitted
         self.mixture, self.clear_warmup = mixture, True
         self.extra.update(init_extra)
         start = 0

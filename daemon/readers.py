@@ -58,6 +58,9 @@ class Frame:
     # (and within model_range when the frame was read with one)
     model_range: tuple[np.ndarray, np.ndarray] | None = None   # (center, limit) checked
     beyond_range: int = 0     # rows refused by model_range alone (finite, within the bound)
+    # set by shoal.daemon.transforming when features are transformed:
+    log_jacobian: np.ndarray | None = None   # (n_rows,) of the transforms, 0 where invalid
+    outside_domain: int = 0   # rows refused for a value outside a transform's domain
 
     @property
     def n_rows(self) -> int:

@@ -249,7 +249,9 @@ def format_status(snap: dict, width: int = 100) -> str:
     if snap["segments"]:
         lines.append("")
         feats = list(snap["features"])
-        head = ["segment", "weight", "rows"] + [f"{f} mean" for f in feats]
+        median = snap["segments"][0].get("median", {})   # transformed features
+        head = ["segment", "weight", "rows"] + [f"{f} median" if f in median else f"{f} mean"
+                                                for f in feats]
         table = [head] + [[str(s["id"]), f"{s['weight']:.3f}", str(s["rows"])]
                           + [f"{s['mean'][f]:.4g}" for f in feats] for s in snap["segments"]]
         widths = [max(len(r[i]) for r in table) for i in range(len(head))]

@@ -20,7 +20,7 @@ __all__ = ["FIXED_SETTINGS", "changed_keys", "check_reloadable", "reload_config"
 
 # Dotted keys (or whole sections) that only a restart may change.
 FIXED_SETTINGS = (
-    "features", "passthrough", "inbox", "outbox", "state", "segments", "covariance",
+    "features", "transforms", "passthrough", "inbox", "outbox", "state", "segments", "covariance",
     "warmup_rows", "half_life_rows", "seed", "learning", "watch.polling", "watch.poll_seconds",
     "watch.queue_size", "http",
 )

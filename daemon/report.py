@@ -30,6 +30,7 @@ from shoal.daemon.pipeline import open_input
 from shoal.daemon.progress import progress
 from shoal.daemon.readers import read_input
 from shoal.daemon.readout import StateReader, read_alerts, state_snapshot
+from shoal.daemon.transforming import centres, from_meta
 
 __all__ = ["REPORT_PLOTS", "parse_since", "report_data", "render_plots", "build_report",
            "write_report", "recent_rows", "feature_units", "drift_bounds", "page_html"]
@@ -132,9 +133,11 @@ def recent_rows(reader: StateReader, settings: Settings, layout: Layout, *,
     return X, s
 
 
-def _baseline_bands(extra: Mapping[str, Any], history: Sequence[Mapping]) -> dict:
-    """Segment id -> (means, sds): the stored baseline if there is one, else
-    each segment's first recorded state."""
+def _reference_bands(extra: Mapping[str, Any], history: Sequence[Mapping],
+                     transforms=None) -> dict:
+    """Segment id -> (means, sds): the stored reference snapshot if there is one, else
+    each segment's first recorded state (the history is in the data's units already;
+    the snapshot is in the model's, mapped back with ``transforms``)."""
     ref = None
     if isinstance(extra, Mapping):  # the drift watch keeps it in extra["drift"]
         drift = extra.get("drift")
@@ -148,7 +151,7 @@ def _baseline_bands(extra: Mapping[str, Any], history: Sequence[Mapping]) -> dic
             sd = (np.sqrt(np.diag(np.asarray(covs[i], float))) if i < len(covs)
                   else np.zeros_like(mean))
             out[int(sid)] = (mean, sd)
-        return out
+        return _bands_in_data_units(out, transforms)
     for h in history:
         out.setdefault(int(h["segment"]), (np.asarray(h["mean"]), np.asarray(h["spread"])))
     return out
@@ -170,16 +173,26 @@ def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
             means[int(sid)] = m.data_means()[k]
             covs[int(sid)] = m.data_covariance_matrices()[k]
     X, seg = recent_rows(reader, settings, layout, since=since)
+    if cp is not None:   # the PCA view shares the model's (transformed) units
+        transforms = from_meta(cp.meta, len(settings.features))
+        if not transforms.identity and len(X):
+            Y, inside = transforms.forward(X)
+            X, seg = Y[inside], seg[inside]
     alerts = read_alerts(reader, since=since)
     return {
         "snapshot": state_snapshot(reader, settings, layout, now=now, recent_alerts=50),
         "history": history,
-        "baseline": _baseline_bands(cp.extra if cp else {}, all_history),
+        "reference": _reference_bands(
+            cp.extra if cp else {}, all_history,
+            from_meta(cp.meta, len(settings.features)) if cp else None),
         "alerts": alerts,
         "means": means,
         "covariances": covs,
         "sample": (X, seg),
         "units": feature_units(settings),
+        # a transformed feature is drawn by its median (band: central 68% interval)
+        "centres": {f: "median" for f, k in zip(settings.features, settings.transform_kinds)
+                    if k != "none"},
         "bounds": drift_bounds(settings),
         "features": list(settings.features),
         "since": since,
@@ -195,7 +208,7 @@ def render_plots(data: Mapping[str, Any], which: Sequence[str] = tuple(REPORT_PL
     makers = {
         "weights": lambda: plots.weights_png(data["history"]),
         "means": lambda: plots.means_png(data["history"], data["features"], data["units"],
-                                         data["baseline"]),
+                                         data["reference"], data.get("centres")),
         "drift": lambda: plots.drift_png(data["history"], data["bounds"], data["alerts"]),
         "pca": lambda: plots.pca_png(data["sample"][0], data["sample"][1], data["means"],
                                      data["covariances"], data["features"]),
@@ -233,16 +246,34 @@ figcaption{font-size:.9rem;color:#444}.meta{color:#444;font-size:.9rem}
 """
 
 
+def _bands_in_data_units(bands: dict, transforms) -> dict:
+    """Reference bands of transformed features as (centre, half-width) of their central
+    68% interval in the data's units, so that ``centre -+ half-width`` is that interval."""
+    if transforms is None or transforms.identity:
+        return bands
+    out = {}
+    for sid, (mean, sd) in bands.items():
+        _, low, high = centres(transforms, np.asarray(mean)[None], np.asarray(sd)[None])
+        keep = np.array([k == "none" for k in transforms.kinds])
+        mid, half = (low[0] + high[0]) / 2, (high[0] - low[0]) / 2
+        out[sid] = (np.where(keep, mean, mid), np.where(keep, sd, half))
+    return out
+
+
 def segments_table(snap: Mapping[str, Any], units: Mapping[str, str]) -> str:
     from shoal.daemon.plots import segment_style
 
     feats = snap["features"]
-    head = "".join(f"<th>{html.escape(f)} mean ± sd<br>({html.escape(units.get(f, ''))})</th>"
-                   for f in feats)
+    median = snap["segments"][0].get("median", {}) if snap["segments"] else {}
+    head = "".join(f"<th>{html.escape(f)} {'median [68%]' if f in median else 'mean ± sd'}"
+                   f"<br>({html.escape(units.get(f, ''))})</th>" for f in feats)
     rows = []
     for s in snap["segments"]:
         colour = segment_style(s["id"])["color"]
-        cells = "".join(f"<td>{s['mean'][f]:.4g} ± {s['spread'][f]:.3g}</td>" for f in feats)
+        cells = "".join(
+            f"<td>{s['median'][f]:.4g} [{s['interval'][f][0]:.4g}, {s['interval'][f][1]:.4g}]"
+            "</td>" if f in s.get("interval", {}) else
+            f"<td>{s['mean'][f]:.4g} ± {s['spread'][f]:.3g}</td>" for f in feats)
         rows.append(f'<tr data-segment="{s["id"]}"><td class="l">'
                     f'<span class="swatch" style="background:{colour}"></span>{s["id"]}</td>'
                     f"<td>{s['weight']:.3f}</td><td>{s['rows']}</td>"

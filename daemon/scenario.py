@@ -17,8 +17,10 @@ at full current bringing the room back down from warm), then *holding* at
 setpoint, broken by two *door traffic* episodes of 15-35 minutes (forklifts in
 and out: door open most of the minute, return air warmer, compressor working
 harder). Within a state, readings are Gaussian with the covariances below, except
-that fan speed cannot go below 0 and door time must lie in 0..60 s: values past a
-limit are reflected back inside it (so there are no piles of identical values).
+that door time is right-skewed, as durations are: ``log(1 + door_open_s)`` is the
+Gaussian one (about 1 s/min while holding, 30 in door traffic); fan speed cannot go
+below 0 and door time must lie in 0..60 s: values past a limit are reflected back
+inside it (so there are no piles of identical values).
 
 Two changes can be injected for the drift demo:
 
@@ -77,36 +79,39 @@ _LIMITS = {
     "return_air_c": (-math.inf, math.inf),
     "compressor_a": (-math.inf, math.inf),
     "fan_rpm": (0.0, math.inf),
-    "door_open_s": (0.0, 60.0),
+    "door_open_s": (0.0, math.log1p(60.0)),     # on its log(1 + s) scale
 }
+# Features whose state parameters are on the log(1 + x) scale.
+_LOG1P = ("door_open_s",)
 
-# Per state: Gaussian mean and standard deviation of each feature (FEATURES order)
-# and the correlations that are not zero.
+# Per state: Gaussian mean and standard deviation of each feature (FEATURES order;
+# door time as log(1 + s): 0.69 is a median of 1 s/min, 3.43 of 30) and the
+# correlations that are not zero.
 _S, _R, _C, _F, _D = range(5)
 _STATE_PARAMETERS = {
     "pull_down": (
-        (-12.0, -7.0, 31.0, 1460.0, 1.5),
-        (3.0, 3.0, 2.0, 15.0, 1.0),
+        (-12.0, -7.0, 31.0, 1460.0, 0.92),
+        (3.0, 3.0, 2.0, 15.0, 0.4),
         {(_S, _R): 0.85, (_R, _C): 0.4, (_S, _C): 0.3},
     ),
     "holding": (
-        (-22.0, -19.0, 18.0, 1450.0, 1.0),
-        (0.6, 0.7, 1.5, 15.0, 0.6),
+        (-22.0, -19.0, 18.0, 1450.0, 0.69),
+        (0.6, 0.7, 1.5, 15.0, 0.35),
         {(_S, _R): 0.6, (_S, _C): -0.3, (_R, _C): 0.3, (_R, _D): 0.2},
     ),
     "defrost": (
-        (-6.0, -13.0, 1.2, 10.0, 0.5),
-        (2.5, 2.0, 0.4, 6.0, 0.4),
+        (-6.0, -13.0, 1.2, 10.0, 0.41),
+        (2.5, 2.0, 0.4, 6.0, 0.3),
         {(_S, _R): 0.7},
     ),
     "door_traffic": (
-        (-18.5, -13.0, 24.0, 1440.0, 30.0),
-        (1.2, 1.8, 2.0, 20.0, 9.0),
+        (-18.5, -13.0, 24.0, 1440.0, 3.43),
+        (1.2, 1.8, 2.0, 20.0, 0.3),
         {(_S, _R): 0.6, (_R, _D): 0.6, (_R, _C): 0.4, (_C, _D): 0.3},
     ),
     NEW_STATE: (
-        (-16.0, -14.5, 27.0, 1150.0, 1.0),
-        (1.5, 1.5, 2.0, 40.0, 0.6),
+        (-16.0, -14.5, 27.0, 1150.0, 0.69),
+        (1.5, 1.5, 2.0, 40.0, 0.35),
         {(_S, _R): 0.7, (_S, _C): 0.2},
     ),
 }
@@ -291,6 +296,8 @@ def generate(n_rows, seed, start_row=0, drift=None, new_state=None):
     }
     for j, name in enumerate(FEATURES):
         columns[name] = _reflect(values[:, j], *_LIMITS[name])
+        if name in _LOG1P:
+            columns[name] = np.expm1(columns[name])
     columns["state"] = np.array(_ALL_STATES)[codes]
     return columns
 
@@ -361,6 +368,20 @@ def _reflected_mean(mean, sd, low, high):
     return result
 
 
+def _reflected_expm1_mean(mean, sd, low, high, points=200_001):
+    """Mean of ``exp(Y) - 1`` for ``Y`` N(mean, sd^2) reflected once at each limit: the
+    reflected density ``f(y) + f(2 low - y) + f(2 high - y)`` on [low, high],
+    integrated by the trapezoid rule (the integrand is smooth; 200,001 points)."""
+    y = np.linspace(low, high, points)
+
+    def f(x):
+        return np.exp(-0.5 * ((x - mean) / sd) ** 2) / (sd * math.sqrt(2.0 * math.pi))
+
+    density = f(y) + f(2.0 * low - y) + f(2.0 * high - y)
+    values = np.expm1(y) * density
+    return float(np.sum((values[1:] + values[:-1]) * np.diff(y)) / 2.0)
+
+
 def describe_states(include_new_state=True):
     """The true mean of each feature in each state, in the data's units.
 
@@ -377,7 +398,8 @@ def describe_states(include_new_state=True):
     for name in names:
         code = _ALL_STATES.index(name)
         out[name] = {
-            feature: _reflected_mean(float(_MEANS[code, j]), float(_SDS[code, j]), *_LIMITS[feature])
+            feature: (_reflected_expm1_mean if feature in _LOG1P else _reflected_mean)(
+                float(_MEANS[code, j]), float(_SDS[code, j]), *_LIMITS[feature])
             for j, feature in enumerate(FEATURES)
         }
     return out

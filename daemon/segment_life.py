@@ -49,6 +49,7 @@ from shoal.core.lifecycle import (
 from shoal.daemon.logs import log_event
 from shoal.daemon.monitor import PAYLOAD_SCHEMA_VERSION
 from shoal.daemon.store import HistoryRow
+from shoal.daemon.transforming import feature_centres, history_units
 
 __all__ = ["LifeWatch", "lifecycle_alert_id", "STATE_FORMAT"]
 
@@ -69,6 +70,10 @@ def _fmt(x: float) -> str:
 class LifeWatch:
     """Lifecycle decisions for the rows of one input; ``state``, ``events`` and ``alerts``
     go to the commit."""
+
+    # the model's FeatureTransforms (set by the pipeline): summaries give a transformed
+    # feature's median and central 68% interval in the data's units
+    transforms = None
 
     def __init__(self, settings: Settings, state: dict | None, *, version: int, file: str):
         self.settings = settings
@@ -279,10 +284,16 @@ class LifeWatch:
 
     # -- events ----------------------------------------------------------------------
     def _describe(self, mean, sd) -> str:
-        return ", ".join(f"{f} {_fmt(m)}±{_fmt(s)}" for f, m, s in zip(self.features, mean, sd))
+        t = self.transforms
+        back = {} if t is None or t.identity else feature_centres(t, self.features, mean, sd)
+        return ", ".join(
+            f"{f} {_fmt(back[f]['median'])} [{_fmt(back[f]['interval'][0])}, "
+            f"{_fmt(back[f]['interval'][1])}]" if f in back else f"{f} {_fmt(m)}±{_fmt(s)}"
+            for f, m, s in zip(self.features, mean, sd))
 
     def _event(self, kind: str, sid: int, n: int, *, weight, mean, spread, summary, **more):
         row = self.state["offset"] + n
+        mean, spread = history_units(self.transforms, mean, spread)   # the data's units
         event = {"event": kind, "segment": int(sid), "row": int(row),
                  "weight": float(weight), "mean": np.asarray(mean).tolist(),
                  "spread": np.asarray(spread).tolist(), **more}

@@ -7,6 +7,7 @@ from typing import Any
 from shoal.config import Settings
 from shoal.core import Mixture
 from shoal.daemon.store import StateStore
+from shoal.daemon.transforming import feature_centres, from_meta
 
 __all__ = ["segment_summary", "format_segments"]
 
@@ -26,13 +27,14 @@ def segment_summary(store: StateStore, settings: Settings, now: float | None = N
         return out
     m = Mixture.from_state(cp.arrays, cp.meta)
     means, stds = m.data_means(), m.data_stds()
+    transforms = from_meta(cp.meta, m.n_features)
     rows = cp.extra.get("segment_rows", {})
     born = cp.extra.get("segment_born", {})
     out["checkpoint_version"] = cp.version
     out["rows_learned"] = int(m.n_rows)
     for k, sid in enumerate(m.ids.tolist()):
         b = born.get(str(sid), {})
-        out["segments"].append({
+        record = {
             "id": int(sid),
             "weight": float(m.weights[k]),
             "rows": int(rows.get(str(sid), 0)),
@@ -41,10 +43,34 @@ def segment_summary(store: StateStore, settings: Settings, now: float | None = N
             "born_version": b.get("version"),
             "age_versions": None if b.get("version") is None else cp.version - b["version"],
             "age_seconds": None if b.get("time") is None else round(now - b["time"], 1),
-        })
+        }
+        _in_data_units(record, feature_centres(transforms, settings.features, means[k],
+                                                stds[k]))
+        out["segments"].append(record)
     if include_gone:
         out["gone"] = _gone_segments(store, settings, set(m.ids.tolist()), born)
     return out
+
+
+def _in_data_units(record: dict, centres: dict) -> None:
+    """A transformed feature's ``mean`` is its median in the data's units (``median``),
+    its ``spread`` None and ``interval`` the central 68% interval (a segment is
+    Gaussian in the model's units, not in the data's)."""
+    if not centres:
+        return
+    record["median"] = {f: c["median"] for f, c in centres.items()}
+    record["interval"] = {f: c["interval"] for f, c in centres.items()}
+    for f, c in centres.items():
+        record["mean"][f] = c["median"]
+        record["spread"][f] = None
+
+
+def _cell(s: dict, f: str) -> str:
+    """One feature of a segment: ``mean±sd``, or ``median [low, high]`` if transformed."""
+    if f in s.get("interval", {}):
+        low, high = s["interval"][f]
+        return f"{_num(s['median'][f])} [{_num(low)}, {_num(high)}]"
+    return f"{_num(s['mean'][f])}±{_num(s['spread'][f])}"
 
 
 def _gone_segments(store: StateStore, settings: Settings, current: set, born: dict) -> list:
@@ -75,12 +101,15 @@ def format_segments(summary: dict) -> str:
         return "\n".join(lines)
     lines[0] += f", {summary['rows_learned']} rows learned after warm-up"
     feats = summary["features"]
-    head = ["segment", "weight", "rows", "age"] + [f"{f} (mean±sd)" for f in feats]
+    first = summary["segments"][0]
+    head = ["segment", "weight", "rows", "age"] + [
+        f"{f} (median [68%])" if f in first.get("interval", {}) else f"{f} (mean±sd)"
+        for f in feats]
     table = [head]
     for s in summary["segments"]:
         age = "-" if s["age_versions"] is None else f"{s['age_versions']} inputs"
         table.append([str(s["id"]), f"{s['weight']:.3f}", str(s["rows"]), age] +
-                     [f"{_num(s['mean'][f])}±{_num(s['spread'][f])}" for f in feats])
+                     [_cell(s, f) for f in feats])
     widths = [max(len(r[i]) for r in table) for i in range(len(head))]
     for r in table:
         lines.append("  ".join(c.rjust(w) for c, w in zip(r, widths)))

@@ -49,8 +49,13 @@ def labels_name(input_name: str, digest: str, fmt: str) -> str:
 
 def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray | None,
                  confidence: np.ndarray | None, log_density: np.ndarray | None,
-                 unusual_below: float, model_version: int | None) -> pa.Table:
+                 unusual_below: float, model_version: int | None,
+                 log_jacobian: np.ndarray | None = None) -> pa.Table:
     """The labels of one input, one row per input row.
+
+    ``unusual`` compares ``log_density`` (the model's own units) with ``unusual_below``;
+    the ``log_density`` column adds ``log_jacobian`` (valid rows, the configured
+    transforms'), so that it is a density in the data's units.
 
     ``segment``/``confidence``/``log_density`` hold values for the valid rows
     only (or are None when no model exists yet); invalid rows get nulls.
@@ -83,11 +88,14 @@ def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray |
                                      null_count=nulls)
 
     ld = spread(log_density, np.float64)
+    unusual = np.packbits(ld < unusual_below, bitorder="little")
+    if scored and log_jacobian is not None:
+        ld = spread(log_density + log_jacobian, np.float64)
     cols = {
         "segment": column(pa.int64(), spread(segment, np.int64)),
         "confidence": column(pa.float64(), spread(confidence, np.float64)),
         "log_density": column(pa.float64(), ld),
-        "unusual": column(pa.bool_(), np.packbits(ld < unusual_below, bitorder="little")),
+        "unusual": column(pa.bool_(), unusual),
         "model_version": column(pa.int64(), np.full(n, model_version if scored else 0,
                                                     dtype=np.int64)),
     }
