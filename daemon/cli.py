@@ -93,8 +93,8 @@ def build_parser() -> argparse.ArgumentParser:
     add_alert_commands(cmd, with_config, open_service_parts)   # alerts, rebaseline, replay
     add_backfill_command(cmd, with_config, _stop_on_signals)   # backfill (Dask)
     add_transform_commands(cmd, with_config)   # suggest-transforms
-    with_config(cmd("check-config", "validate the configuration and print it in full",
-                    _cmd_check_config))
+    with_config(cmd("config", "print the effective configuration (every key, defaults "
+                              "filled in); exit 2 if it is not valid", _cmd_config))
     sp = cmd("demo", "run the cold-storage warehouse scenario end to end", _cmd_demo)
     sp.add_argument("--dir", default="demo-run", metavar="DIR",
                     help="folder for the demo's config, inbox, outbox and state "

@@ -639,7 +639,7 @@ class InputWatch:
             return {"summary": f"segment {seg} took {share:.1%} of the window's rows "
                                f"(baseline weight {info.get('baseline_weight', 0.0):.1%}) "
                                "and had no rows to compare",
-                    "share": share, "reference_weight": info.get("reference_weight")}
+                    "share": share, "baseline_weight": info.get("baseline_weight")}
         moved = moves_in_data_units(explain(ref, seg, info["mean"], feature_names=names),
                                     self.transforms)
         out = {"features": moved, "share": info["share"],
@@ -741,7 +741,7 @@ def _baseline_from_sums(sums: dict, mixture: Mixture) -> Baseline:
 
 
 def _moves(moved) -> str:
-    return ", ".join(f"{m['feature']} {_fmt(m['reference_mean'])} -> {_fmt(m['current_mean'])} "
+    return ", ".join(f"{m['feature']} {_fmt(m['baseline_mean'])} -> {_fmt(m['window_mean'])} "
                      + (f"(median, {m['shift_sd']:+.2f} sd of {m['transform']})"
                         if m.get("centre") == "median" else f"({m['shift_sd']:+.2f} sd)")
                      for m in moved[:_TOP_FEATURES])

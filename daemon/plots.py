@@ -109,18 +109,18 @@ def weights_png(history: Sequence[Mapping[str, Any]]) -> bytes:
 
 
 def means_png(history: Sequence[Mapping[str, Any]], features: Sequence[str],
-              units: Mapping[str, str], reference: Mapping[int, tuple] | None = None,
+              units: Mapping[str, str], baseline: Mapping[int, tuple] | None = None,
               centres: Mapping[str, str] | None = None) -> bytes:
-    """One panel per feature: each segment's mean over time, its reference mean ± 1 sd shaded.
+    """One panel per feature: each segment's mean over time, its baseline mean ± 1 sd shaded.
 
-    ``reference``: segment id -> (means, sds) in data units, per feature. ``centres``:
+    ``baseline``: segment id -> (means, sds) in data units, per feature. ``centres``:
     features drawn by another centre (``"median"`` for a transformed feature, whose
     band is its central 68% interval).
     """
-    title = "Segment mean per feature over time (band: reference mean ± 1 sd)"
+    title = "Segment mean per feature over time (band: baseline mean ± 1 sd)"
     if centres:
         title = ("Segment mean (median where transformed) per feature over time "
-                 "(band: reference mean ± 1 sd, or 68% interval)")
+                 "(band: baseline mean ± 1 sd, or 68% interval)")
     if not history:
         return message_png(title, "no model yet: the warm-up has not finished", "mean")
     n = len(features)

@@ -133,9 +133,9 @@ def recent_rows(reader: StateReader, settings: Settings, layout: Layout, *,
     return X, s
 
 
-def _reference_bands(extra: Mapping[str, Any], history: Sequence[Mapping],
+def _baseline_bands(extra: Mapping[str, Any], history: Sequence[Mapping],
                      transforms=None) -> dict:
-    """Segment id -> (means, sds): the stored reference snapshot if there is one, else
+    """Segment id -> (means, sds): the stored baseline if there is one, else
     each segment's first recorded state (the history is in the data's units already;
     the snapshot is in the model's, mapped back with ``transforms``)."""
     ref = None
@@ -182,7 +182,7 @@ def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
     return {
         "snapshot": state_snapshot(reader, settings, layout, now=now, recent_alerts=50),
         "history": history,
-        "reference": _reference_bands(
+        "baseline": _baseline_bands(
             cp.extra if cp else {}, all_history,
             from_meta(cp.meta, len(settings.features)) if cp else None),
         "alerts": alerts,
@@ -208,7 +208,7 @@ def render_plots(data: Mapping[str, Any], which: Sequence[str] = tuple(REPORT_PL
     makers = {
         "weights": lambda: plots.weights_png(data["history"]),
         "means": lambda: plots.means_png(data["history"], data["features"], data["units"],
-                                         data["reference"], data.get("centres")),
+                                         data["baseline"], data.get("centres")),
         "drift": lambda: plots.drift_png(data["history"], data["bounds"], data["alerts"]),
         "pca": lambda: plots.pca_png(data["sample"][0], data["sample"][1], data["means"],
                                      data["covariances"], data["features"]),
@@ -247,7 +247,7 @@ figcaption{font-size:.9rem;color:#444}.meta{color:#444;font-size:.9rem}
 
 
 def _bands_in_data_units(bands: dict, transforms) -> dict:
-    """Reference bands of transformed features as (centre, half-width) of their central
+    """Baseline bands of transformed features as (centre, half-width) of their central
     68% interval in the data's units, so that ``centre -+ half-width`` is that interval."""
     if transforms is None or transforms.identity:
         return bands

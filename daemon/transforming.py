@@ -217,7 +217,7 @@ def feature_centres(transforms: FeatureTransforms, features, means, sds) -> dict
 
 def moves_in_data_units(moved: list, transforms: FeatureTransforms | None) -> list:
     """Drift explanations (:func:`shoal.core.drift.explain` records, in the model's
-    units) with a transformed feature's reference and current centre in the data's
+    units) with a transformed feature's baseline and window centre in the data's
     units: the back-transformed means, i.e. medians (``"centre": "median"``); the shift
     stays in the model's (transformed) sds."""
     if transforms is None or transforms.identity:
@@ -230,8 +230,8 @@ def moves_in_data_units(moved: list, transforms: FeatureTransforms | None) -> li
             out.append(m)
             continue
         two = np.zeros((2, transforms.n_features))
-        two[:, j] = (m["reference_mean"], m["current_mean"])
+        two[:, j] = (m["baseline_mean"], m["window_mean"])
         back = transforms.inverse(two)[:, j]
-        out.append(dict(m, reference_mean=float(back[0]), current_mean=float(back[1]),
+        out.append(dict(m, baseline_mean=float(back[0]), window_mean=float(back[1]),
                         centre="median", transform=kind))
     return out

@@ -76,8 +76,8 @@ def main() -> None:
             X = np.exp(Y) if X is None else X
             _, alerts, seconds, state = timed(tmp / label.split()[0], X, **extra)
             runs[label] = n / seconds
-            firing = sum(a["status"] == "firing" for a in alerts)
-            print(f"{label:28s} {n:10d} {firing:7d} {state.mixture.n_components:9d} "
+            raised = sum(a["status"] == "raised" for a in alerts)
+            print(f"{label:28s} {n:10d} {raised:7d} {state.mixture.n_components:9d} "
                   f"{n / seconds:10.0f} {runs[label] / runs['logged rows (anchor)']:13.2f}")
             del X
 
@@ -94,10 +94,10 @@ def main() -> None:
             s = Stream(tmp / f"d{i}", **LOG)
             s.feed(np.exp(before), 50_000)
             s.feed(np.exp(after), window)
-            firing = [a for a in s.alerts() if a["status"] == "firing"]
+            raised = [a for a in s.alerts() if a["status"] == "raised"]
             s.close()
-            if firing:
-                a = firing[0]
+            if raised:
+                a = raised[0]
                 windows = f"{(a['rows']['last'] + 1 - change) / window:.0f}"
                 why = a["explanation"]["summary"]
             else:

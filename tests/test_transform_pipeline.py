@@ -184,7 +184,7 @@ def test_status_and_report_show_medians_of_a_transformed_feature(stream):
         # the band of dur_s is in seconds: each holds one of the generating log-normals'
         # medians, e^2 and e^0
         medians = [np.exp(2.0), 1.0]
-        for mean, sd in data["reference"].values():
+        for mean, sd in data["baseline"].values():
             assert sum(mean[0] - sd[0] < m < mean[0] + sd[0] for m in medians) == 1
         out = write_report(reader, s.settings, s.layout, s.folder / "r.html", config="c")
         assert "dur_s median [68%]" in out.read_text()

@@ -116,26 +116,26 @@ def test_drift_on_log_normal_rows_quiet_then_a_doubled_median_alerted(streams):
     change = WARMUP + 40 * window
     _, Y = log_rows(rng, change, weights, meanlog, covs)
     s.feed(np.exp(Y))
-    assert s.pipeline.state.extra["drift"]["reference"] is not None
+    assert s.pipeline.state.extra["drift"]["baseline"] is not None
     assert s.alerts() == []                                  # stationary: quiet
     comp, feature = 2, 1
-    ref = s.pipeline.state.extra["drift"]["reference"]
+    ref = s.pipeline.state.extra["drift"]["baseline"]
     segment = int(ref["ids"][int(np.argmin(np.linalg.norm(
         np.asarray(ref["means"]) - meanlog[comp], axis=1)))])
     _, Y = log_rows(rng, 3 * window, weights, meanlog, covs,
                     shift=(comp, feature, np.log(2.0)))      # the median doubles
     s.feed(np.exp(Y), drop_rows=window)
-    firing = [a for a in s.alerts() if a["status"] == "firing"]
-    assert firing, "no alert within three windows of the change"
-    alert = firing[0]
+    raised = [a for a in s.alerts() if a["status"] == "raised"]
+    assert raised, "no alert within three windows of the change"
+    alert = raised[0]
     assert alert["segment"] == segment and alert["statistic"] == "mean_shift"
     assert alert["rows"]["last"] + 1 - change <= 3 * window
     top = alert["explanation"]["features"][0]
     assert top["feature"] == FEATURES[feature] and top["centre"] == "median"
     # medians in the data's units: the true median exp(mu) and twice it
     true_median = np.exp(meanlog[comp, feature])
-    assert top["reference_mean"] == pytest.approx(true_median, rel=0.05)
-    assert top["current_mean"] == pytest.approx(2 * true_median, rel=0.1)
+    assert top["baseline_mean"] == pytest.approx(true_median, rel=0.05)
+    assert top["window_mean"] == pytest.approx(2 * true_median, rel=0.1)
     sdlog = np.sqrt(covs[comp, feature, feature])
     assert top["shift_sd"] == pytest.approx(np.log(2.0) / sdlog, rel=0.2)
     assert f"{FEATURES[feature]} " in alert["explanation"]["summary"]
