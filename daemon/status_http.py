@@ -29,7 +29,7 @@ from shoal.daemon.readout import StateReader, state_snapshot
 
 __all__ = ["Health", "StatusServer"]
 
-PAGE_PLOTS = ("weights", "drift", "pca")  # of report.REPORT_PLOTS: the key ones for the page
+PAGE_PLOTS = ("weights", "drift", "fit", "pca")  # of report.REPORT_PLOTS: the key ones for the page
 _REFRESH_SECONDS = 30
 
 

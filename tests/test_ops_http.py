@@ -2,8 +2,6 @@
 /metrics against the ledger (issue 6, acceptance 2), the status page in headless Chromium
 (acceptance 1), the report in headless Chromium (acceptance 3), and the endpoint's rules
 (read-only, health, readiness)."""
-import base64
-import io
 import json
 import os
 import sqlite3
@@ -13,16 +11,14 @@ import tempfile
 from pathlib import Path
 
 import pytest
-from PIL import Image
 from prometheus_client.parser import text_string_to_metric_families
 
-from _browser import IMAGES_JS, chromium, console_errors
+from _browser import PNG_SIGNATURE, check_images, chromium, console_errors
 from _ops import Watch, demo_config, demo_drops, get
 from shoal.daemon.drills import ledger_counts, wait_until
 
 N_DROPS = 20
 ROWS = 500
-PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # the PNG specification (ISO/IEC 15948), section 5.2
 
 
 @pytest.fixture(scope="module")
@@ -128,22 +124,6 @@ def _artefacts() -> Path:
     return Path(tempfile.mkdtemp(prefix="shoal-artefacts-"))
 
 
-def _check_images(driver, expected_ids):
-    images = driver.execute_script(IMAGES_JS)
-    by_id = {i["id"]: i for i in images}
-    for plot in expected_ids:
-        img = by_id.get(f"plot-{plot}")
-        assert img is not None, f"plot {plot} missing; images: {[i['id'] for i in images]}"
-        assert img["complete"] and img["width"] > 0 and img["height"] > 0, img["id"]
-        assert img["src"].startswith("data:image/png;base64,")
-        data = base64.b64decode(img["src"].split(",", 1)[1])
-        assert data[:8] == PNG_SIGNATURE
-        with Image.open(io.BytesIO(data)) as im:
-            im.verify()                          # a full decode of the PNG's chunks
-            assert im.size == (img["width"], img["height"])
-    return images
-
-
 def test_status_page_in_headless_chromium(running):
     ledger = _ledger(running["db"])
     artefacts = _artefacts()
@@ -154,7 +134,7 @@ def test_status_page_in_headless_chromium(running):
         listed = sorted(int(r.get_attribute("data-segment")) for r in rows)
         first_cells = sorted(int(r.find_element("css selector", "td").text) for r in rows)
         assert listed == first_cells == ledger["segments"] and len(listed) >= 2
-        _check_images(driver, ["weights", "drift", "pca"])
+        check_images(driver, ["weights", "drift", "fit", "pca"])
         assert driver.find_elements("css selector", "table#alerts tbody tr")
         assert console_errors(driver) == []
         shot = artefacts / "status-page.png"
@@ -176,9 +156,9 @@ def test_report_of_the_demo_run_in_headless_chromium(running, tmp_path):
     with chromium() as driver:
         driver.get(out.as_uri())
         assert driver.title == "shoal report"
-        # The plots the issue lists: weights, means with reference bands, drift against
-        # bounds, recent rows by PCA; and the two tables.
-        _check_images(driver, ["weights", "means", "drift", "pca"])
+        # The plots: weights, means with baseline bands, drift against bounds, the
+        # model's fit (fit_drop), recent rows by PCA; and the two tables.
+        check_images(driver, ["weights", "means", "drift", "fit", "pca"])
         ids = sorted(int(r.get_attribute("data-segment")) for r in
                      driver.find_elements("css selector", "table#segments tbody tr"))
         assert ids == _ledger(running["db"])["segments"]
