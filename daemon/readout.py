@@ -20,11 +20,12 @@ from shoal.config import Settings
 from shoal.daemon.errors import StateError
 from shoal.daemon.gate import ReadinessGate
 from shoal.daemon.layout import Layout
+from shoal.daemon.liveness import service_state
 from shoal.daemon.store import StateStore
 from shoal.daemon.summary import segment_summary
 
 __all__ = ["StateReader", "open_reader", "read_alerts", "open_alerts", "inbox_backlog", "state_snapshot",
-           "format_status", "ledger_totals"]
+           "format_status", "format_service", "ledger_totals"]
 
 _ALERT_TABLES = ("alert_history", "alerts", "alert_outbox")
 
@@ -172,6 +173,7 @@ def state_snapshot(reader: StateReader, settings: Settings, layout: Layout,
             "SELECT name FROM ledger WHERE outcome IN ('committed', 'duplicate')")}
     return {
         "time": now,
+        "service": service_state(layout.state, layout.lock, now),
         "model_version": summary["model_version"],
         "features": summary["features"],
         "warmup": summary.get("warmup"),
@@ -205,7 +207,7 @@ def _num(v) -> str:
 def format_status(snap: dict, width: int = 100) -> str:
     """One terminal screen: model, inputs, lag, segments, alerts, last error."""
     now = snap["time"]
-    lines = []
+    lines = [format_service(snap.get("service"), now)]
     inputs = snap["inputs"]
     n = {k: v["inputs"] for k, v in inputs.items()}
     lines.append(f"model version {snap['model_version']}"
@@ -249,4 +251,28 @@ def format_status(snap: dict, width: int = 100) -> str:
     lines.append("last error: " + ("none" if err is None else
                                    f"{err['name']}: {err['reason']} "
                                    f"({_ago(now - err['time'])} ago)"[:width]))
+    failure = (snap.get("service") or {}).get("last_failure")
+    if failure:
+        lines.append(f"last worker failure: {failure.get('detail')} (pid {failure.get('pid')}, "
+                     f"{_ago(now - failure['time'])} ago)"[:width])
     return "\n".join(lines)
+
+
+def format_service(service: dict | None, now: float) -> str:
+    """'service: running, pid N, last progress 1.2 s ago' or 'service: not running ...'."""
+    if not service:
+        return "service: unknown"
+    if service["running"]:
+        text = f"service: running, pid {service['pid'] or '?'}"
+        if service.get("last_progress") is not None:
+            text += f", last progress {_ago(now - service['last_progress'])} ago"
+        if service.get("worker_alive") is False:
+            text += " (its worker has stopped)"
+        return text
+    text = "service: not running"
+    last = service.get("last_run")
+    if last and last.get("pid"):
+        when = last.get("stopped") or last.get("last_progress")
+        text += (f" (last run pid {last['pid']}"
+                 + (f", ended {_ago(now - when)} ago" if when else "") + ")")
+    return text

@@ -25,7 +25,7 @@ from shoal.config import ConfigError, Settings
 from shoal.daemon.layout import Layout
 from shoal.daemon.logs import log_event
 from shoal.daemon.metrics import build_registry, render_metrics
-from shoal.daemon.readout import StateReader, state_snapshot
+from shoal.daemon.readout import StateReader, format_service, state_snapshot
 
 __all__ = ["Health", "StatusServer"]
 
@@ -138,6 +138,7 @@ class StatusServer:
         last = snap["last_input"]
         lag = snap["backlog"]["lag_seconds"]
         facts = [
+            ("service", format_service(snap.get("service"), now).split(": ", 1)[1]),
             ("health", h["status"]),
             ("ready", r["status"]),
             ("model version", snap["model_version"]),

@@ -28,7 +28,7 @@ def running(tmp_path_factory):
     # Drift watching starts early and a weight_change bound far below any real move fires
     # alerts, so that the page, the metrics and the report have alerts to show.
     cfg = demo_config(folder, http={"port": 0},
-                      drift={"settle_rows": 2000, "window_rows": 1000, "noise_multiple": 0.0,
+                      drift={"time_column": "timestamp", "settle_rows": 2000, "window_rows": 1000, "noise_multiple": 0.0,
                              "persist": 1, "bounds": {"weight_change": 1e-6}})
     watch = Watch(cfg, folder / "watch.log")
     try:
@@ -175,7 +175,10 @@ def test_status_command_one_screen(running, capsys):
     assert main(["status", "-c", str(running["config"])]) == 0
     out = capsys.readouterr().out
     ledger = _ledger(running["db"])
-    assert out.startswith(f"model version {N_DROPS},")
+    lines = out.splitlines()
+    assert lines[0].startswith(f"service: running, pid {running['watch'].proc.pid}, "
+                               "last progress "), lines[0]
+    assert lines[1].startswith(f"model version {N_DROPS},")
     assert f"inputs: {N_DROPS} committed" in out
     assert f"last input: {running['names'][-1]} (committed" in out
     listed = [int(line.split()[0]) for line in out.splitlines()
