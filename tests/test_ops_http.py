@@ -28,8 +28,9 @@ def running(tmp_path_factory):
     # Drift watching starts early and a weight_change bound far below any real move fires
     # alerts, so that the page, the metrics and the report have alerts to show.
     cfg = demo_config(folder, http={"port": 0},
-                      drift={"time_column": "timestamp", "settle_rows": 2000, "window_rows": 1000, "noise_multiple": 0.0,
-                             "persist": 1, "bounds": {"weight_change": 1e-6}})
+                      drift={"time_column": "timestamp", "settle_rows": 2000,
+                             "window_rows": 1000, "noise_multiple": 0.0, "persist": 1,
+                             "bounds": {"weight_change": 1e-6}})
     watch = Watch(cfg, folder / "watch.log")
     try:
         started = watch.wait_event("http_started", timeout=60)
