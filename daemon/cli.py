@@ -44,6 +44,7 @@ from shoal.daemon.logs import log_event, setup_logging  # noqa: E402
 from shoal.daemon.ops_commands import add_operating_commands, run_watch  # noqa: E402
 from shoal.daemon.pipeline import Pipeline  # noqa: E402
 from shoal.daemon.progress import progress  # noqa: E402
+from shoal.daemon.retention import RetentionKeeper, add_prune_command  # noqa: E402
 from shoal.daemon.store import StateStore  # noqa: E402
 
 __all__ = ["main", "build_parser", "open_service_parts"]
@@ -91,6 +92,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_operating_commands(cmd, with_config)   # report, status
     add_alert_commands(cmd, with_config, open_service_parts)   # alerts, rebaseline, replay
     add_backfill_command(cmd, with_config, _stop_on_signals)   # backfill (Dask)
+    add_prune_command(cmd, with_config, open_service_parts)    # prune (retention)
     with_config(cmd("check-config", "validate the configuration and print it in full",
                     _cmd_check_config))
     sp = cmd("demo", "run the cold-storage warehouse scenario end to end", _cmd_demo)
@@ -161,10 +163,13 @@ def _cmd_ingest(args) -> int:
     results = []
     with alert_delivery(open_service_parts, settings, drain_seconds=10.0) as (
             layout, store, pipeline):
+        retention = RetentionKeeper(pipeline)
         with _stop_on_signals(pipeline.stop):
             for p in progress(paths, total=len(paths), desc="inputs", unit="file"):
                 in_inbox = p.resolve().parent == layout.inbox
                 results.append(pipeline.process(p, in_inbox=in_inbox))
+                retention.between_inputs()
+        retention.run()
     bad = [r for r in results if r.outcome in ("quarantined", "refused", "vanished")]
     for r in results:
         extra = f" ({r.reason}: {r.detail})" if r.reason else \

@@ -25,6 +25,7 @@ from prometheus_client.core import (
 from prometheus_client.registry import Collector
 
 from shoal.daemon.readout import StateReader, open_alerts, read_alerts
+from shoal.daemon.retention import compacted_totals
 
 __all__ = ["LedgerCollector", "build_registry", "render_metrics", "PROCESSING_BUCKETS"]
 
@@ -51,6 +52,11 @@ class LedgerCollector(Collector):
         self._inputs = dict.fromkeys(OUTCOMES, 0)
         self._rows = dict.fromkeys(OUTCOMES, 0)
         self._rows_invalid = 0
+        # Ledger rows removed by retention still count (their totals are kept apart).
+        for outcome, t in compacted_totals(reader.db).items():
+            self._inputs[outcome] = self._inputs.get(outcome, 0) + t["inputs"]
+            self._rows[outcome] = self._rows.get(outcome, 0) + t["rows"]
+            self._rows_invalid += t["rows_invalid"]
         self._buckets = [0] * (len(PROCESSING_BUCKETS) + 1)
         self._seconds_sum = 0.0
         self._last_commit = None

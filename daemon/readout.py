@@ -21,6 +21,7 @@ from shoal.daemon.errors import StateError
 from shoal.daemon.gate import ReadinessGate
 from shoal.daemon.layout import Layout
 from shoal.daemon.liveness import service_state
+from shoal.daemon.retention import compacted_totals
 from shoal.daemon.store import StateStore
 from shoal.daemon.summary import segment_summary
 
@@ -58,11 +59,14 @@ def open_reader(layout: Layout) -> StateReader:
 
 def ledger_totals(reader: StateStore) -> dict[str, Any]:
     """Inputs and rows per ledger outcome, the last commit time and the last input."""
-    by = {}
+    by = {k: dict(v) for k, v in compacted_totals(reader.db).items()}  # rows pruned away
     for outcome, n, rows, bad in reader.db.execute(
             "SELECT outcome, COUNT(*), COALESCE(SUM(rows), 0), COALESCE(SUM(rows_invalid), 0) "
             "FROM ledger GROUP BY outcome"):
-        by[outcome] = {"inputs": n, "rows": rows, "rows_invalid": bad}
+        t = by.setdefault(outcome, {"inputs": 0, "rows": 0, "rows_invalid": 0})
+        t["inputs"] += n
+        t["rows"] += rows
+        t["rows_invalid"] += bad
     last_commit = reader.db.execute(
         "SELECT MAX(finished_at) FROM ledger WHERE outcome = 'committed'").fetchone()[0]
     last = reader.db.execute("SELECT name, outcome, rows, finished_at, model_version FROM ledger "

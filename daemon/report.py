@@ -34,6 +34,7 @@ from shoal.daemon.pipeline import open_input
 from shoal.daemon.progress import progress
 from shoal.daemon.readers import read_input
 from shoal.daemon.readout import StateReader, read_alerts, state_snapshot
+from shoal.daemon.retention import compacted_totals
 from shoal.daemon.timeline import Axis, axis_events, build_axis, parse_bound
 
 __all__ = ["REPORT_PLOTS", "parse_since", "report_data", "render_figures", "render_plots",
@@ -200,7 +201,9 @@ def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
     data time when ``drift.time_column`` is set, else stream rows.
     """
     now = time.time() if now is None else now
-    axis = build_axis(reader.ledger("committed"), layout.outbox, settings.drift.time_column)
+    pruned = compacted_totals(reader.db).get("committed", {}).get("rows", 0)
+    axis = build_axis(reader.ledger("committed"), layout.outbox, settings.drift.time_column,
+                      rows_before=pruned)
     lo = parse_bound(since, axis, "--since")
     hi = parse_bound(until, axis, "--until")
     if lo is not None and hi is not None and hi < lo:

@@ -9,7 +9,8 @@ SIGTERM sends ``STOPPING=1`` and waits for the worker.
 
 The supervisor also keeps ``state/liveness.json`` (:mod:`shoal.daemon.liveness`): its
 pid, the wall time of the last progress and the last worker failure, for ``shoal
-status`` run from another process.
+status`` run from another process; and it applies the retention settings between
+inputs (:class:`~shoal.daemon.retention.RetentionKeeper`, on the worker).
 
 Progress is a heartbeat stamped every time the worker asks whether it should
 stop: once per turn of its loop, per record batch read and per chunk learned
@@ -32,6 +33,7 @@ from shoal.daemon.logs import log_event
 from shoal.daemon.notify import Notifier
 from shoal.daemon.pipeline import Pipeline, Result
 from shoal.daemon.reload import reload_config
+from shoal.daemon.retention import RetentionKeeper
 from shoal.daemon.service import Service
 from shoal.daemon.status_http import Health, StatusServer
 
@@ -89,8 +91,15 @@ class Supervisor:
             raise RuntimeError("the pipeline's stop event is already set")
         self.worker = threading.Thread(target=self._work, name="shoal-worker")
         pipeline.stop = BeatingEvent(self.heartbeat, self.worker)
+        self.retention = RetentionKeeper(pipeline, clock=clock)
+
+        def each_result(result: Result) -> None:
+            if on_result is not None:
+                on_result(result)
+            self.retention.between_inputs()
+
         self.service = Service(settings, layout, pipeline, observer_factory=observer_factory,
-                               clock=clock, on_result=on_result)
+                               clock=clock, on_result=each_result)
         self.stop_event = pipeline.stop
         self.wake = threading.Event()
         self.worker_error: BaseException | None = None

@@ -167,16 +167,18 @@ class Axis:
         return (min(lows), max(highs)) if lows else None
 
 
-def build_axis(entries: Sequence[Any], outbox: Path, time_column: str | None) -> Axis:
+def build_axis(entries: Sequence[Any], outbox: Path, time_column: str | None,
+               rows_before: int = 0) -> Axis:
     """The axis of the committed ledger ``entries`` (oldest first): data time when the
-    time column is configured and readable in at least one labels file, else stream rows.
+    time column is configured and readable in at least one labels file, else stream rows
+    (counted from ``rows_before``, the rows of ledger rows removed by retention).
 
     Facts are read for every entry that has a labels file (the fit panel needs them
     whichever the axis).
     """
     rows_axis = Axis("rows", "stream rows (end of each input)")
     time_axis = None
-    total = 0
+    total = int(rows_before)
     for e in entries:
         if e.model_version is None:
             continue
