@@ -209,3 +209,29 @@ def test_undelivered_and_open_alerts_are_kept(tmp_path):
         assert left == {"a1.firing", "a3.firing", "a3.resolved"}
     finally:
         store.close()
+
+
+def test_the_running_service_applies_retention_between_inputs(tmp_path):
+    from shoal.daemon.drills import wait_until
+    from shoal.daemon.layout import prepare_folders
+    from shoal.daemon.notify import Notifier
+    from shoal.daemon.pipeline import Pipeline
+    from shoal.daemon.supervise import Supervisor
+
+    settings = load_config(_config(tmp_path, processed_days=0, check_seconds=0))
+    layout = prepare_folders(settings)
+    store = StateStore(layout.db)
+    pipeline = Pipeline(settings, layout, store)
+    done = []
+    sup = Supervisor(settings, layout, pipeline, notifier=Notifier({}), on_result=done.append)
+    sup.start()
+    try:
+        _drops(tmp_path, 0, 12)
+        wait_until(lambda: len(done) >= 12, 60, "12 inputs", interval=0.05)
+        # the pass after the last input removed what it had moved to processed/
+        wait_until(lambda: not any(layout.processed.iterdir()), 10, "processed/ emptied",
+                   interval=0.05)
+    finally:
+        sup.shutdown(timeout=30)
+        store.close()
+    assert [r.outcome for r in done] == ["committed"] * 12
