@@ -44,6 +44,7 @@ from shoal.daemon.logs import log_event, setup_logging  # noqa: E402
 from shoal.daemon.ops_commands import add_operating_commands, run_watch  # noqa: E402
 from shoal.daemon.pipeline import Pipeline  # noqa: E402
 from shoal.daemon.progress import progress  # noqa: E402
+from shoal.daemon.quarantine_commands import add_quarantine_commands  # noqa: E402
 from shoal.daemon.retention import RetentionKeeper, add_prune_command  # noqa: E402
 from shoal.daemon.store import StateStore  # noqa: E402
 
@@ -93,6 +94,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_alert_commands(cmd, with_config, open_service_parts)   # alerts, rebaseline, replay
     add_backfill_command(cmd, with_config, _stop_on_signals)   # backfill (Dask)
     add_prune_command(cmd, with_config, open_service_parts)    # prune (retention)
+    add_quarantine_commands(cmd, with_config)                  # quarantine list/retry/drop
     with_config(cmd("check-config", "validate the configuration and print it in full",
                     _cmd_check_config))
     sp = cmd("demo", "run the cold-storage warehouse scenario end to end", _cmd_demo)

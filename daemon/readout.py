@@ -21,6 +21,7 @@ from shoal.daemon.errors import StateError
 from shoal.daemon.gate import ReadinessGate
 from shoal.daemon.layout import Layout
 from shoal.daemon.liveness import service_state
+from shoal.daemon.quarantine_commands import quarantine_summary
 from shoal.daemon.retention import compacted_totals
 from shoal.daemon.store import StateStore
 from shoal.daemon.summary import segment_summary
@@ -187,6 +188,7 @@ def state_snapshot(reader: StateReader, settings: Settings, layout: Layout,
         "last_commit_time": totals["last_commit_time"],
         "last_input": totals["last_input"],
         "last_error": totals["last_error"],
+        "quarantine": quarantine_summary(layout),
         "alert_counts": counts,
         "alerts_firing": len(firing),
         "recent_alerts": alerts[:recent_alerts],
@@ -251,6 +253,11 @@ def format_status(snap: dict, width: int = 100) -> str:
         lines.append(f"  {a.get('status', '?'):9s} {a.get('severity', '?'):8s} segment "
                      f"{a.get('segment', '-')} {a.get('statistic', '-')} "
                      f"value {_num(a.get('value'))} bound {_num(a.get('bound'))}"[:width])
+    q = snap.get("quarantine") or {}
+    latest = q.get("latest")
+    lines.append(f"quarantine: {q.get('count', 0)} input(s)" + (
+        f"; latest {latest['name']}: {latest['reason']} ({_ago(now - latest['time'])} ago)"
+        if latest else "")[:width])
     err = snap["last_error"]
     lines.append("last error: " + ("none" if err is None else
                                    f"{err['name']}: {err['reason']} "

@@ -20,7 +20,8 @@ What is never removed, whatever the settings:
   governs those), labels files (they are the service's output).
 
 Ledger totals removed with their rows are added to the meta key
-``compacted_ledger`` so that ``status`` and the metrics keep counting them.
+``compacted_ledger``, and removed notifications to ``compacted_notifications``, so
+that ``status`` and the metrics' counters keep counting them.
 """
 from __future__ import annotations
 
@@ -39,9 +40,11 @@ from shoal.daemon.layout import Layout
 from shoal.daemon.logs import log_event
 
 __all__ = ["Plan", "make_plan", "apply_plan", "RetentionKeeper", "compacted_totals",
-           "COMPACTED_KEY", "add_prune_command"]
+           "compacted_notifications", "COMPACTED_KEY", "COMPACTED_NOTIFICATIONS_KEY",
+           "add_prune_command"]
 
 COMPACTED_KEY = "compacted_ledger"
+COMPACTED_NOTIFICATIONS_KEY = "compacted_notifications"
 _DAY = 86400.0
 _OPEN_STATUSES = ("firing", "raised")
 
@@ -120,10 +123,10 @@ def _processed(plan: Plan, settings: Settings, layout: Layout, now: float) -> No
     plan.files.reverse()     # oldest first
 
 
-def _sidecar_time(path: Path, fallback: float) -> float:
+def _sidecar_time(path: Path, fallback: float, key: str = "time") -> float:
     try:
         record = json.loads(path.read_text("utf-8"))
-        when = _dt.datetime.fromisoformat(str(record["time"]))
+        when = _dt.datetime.fromisoformat(str(record[key]))
     except (OSError, ValueError, KeyError, TypeError):
         return fallback
     if when.tzinfo is None:
@@ -146,6 +149,9 @@ def _quarantine(plan: Plan, settings: Settings, layout: Layout, now: float) -> N
         if data in files:
             plan.files.append(("quarantined input", data, files[data].st_size))
         plan.files.append(("quarantine sidecar", path, st.st_size))
+    for path, st in sorted(_regular_files(layout.quarantine / "retried")):
+        if path.suffix == ".json" and _sidecar_time(path, st.st_ctime, "retried_at") <= cutoff:
+            plan.files.append(("retried quarantine sidecar", path, st.st_size))
     sidecars = {p.name[:-len(".json")] for p in files if p.suffix == ".json"}
     for path, st in sorted(files.items()):   # inputs whose sidecar is gone
         if path.suffix != ".json" and path.name not in sidecars and st.st_ctime <= cutoff:
@@ -239,6 +245,13 @@ def compacted_totals(db) -> dict[str, dict[str, int]]:
     return json.loads(row[0]) if row else {}
 
 
+def compacted_notifications(db) -> dict[str, int]:
+    """Alert notifications removed so far, per 'status/severity'."""
+    row = db.execute("SELECT value FROM meta WHERE key = ?",
+                     (COMPACTED_NOTIFICATIONS_KEY,)).fetchone()
+    return json.loads(row[0]) if row else {}
+
+
 def make_plan(settings: Settings, layout: Layout, db, now: float | None = None) -> Plan:
     """What a retention pass would remove now (reads only)."""
     now = time.time() if now is None else now
@@ -293,14 +306,21 @@ def _remove_rows(plan: Plan, store) -> None:
             marks = ",".join("?" * len(chunk))
             db.execute(f"DELETE FROM segment_history WHERE version IN ({marks})",  # noqa: S608
                        chunk)
+        removed = compacted_notifications(db)
         for chunk in _chunks(plan.notification_ids):
             marks = ",".join("?" * len(chunk))
+            for (payload,) in db.execute(f"SELECT payload FROM alert_outbox "  # noqa: S608
+                                         f"WHERE id IN ({marks})", chunk).fetchall():
+                p = json.loads(payload)
+                key = f"{p.get('status', 'firing')}/{p.get('severity', 'warning')}"
+                removed[key] = removed.get(key, 0) + 1
             db.execute(f"DELETE FROM alert_delivery WHERE outbox_id IN ({marks})",  # noqa: S608
                        chunk)
             db.execute(f"DELETE FROM alert_outbox WHERE id IN ({marks})", chunk)  # noqa: S608
-        db.execute("INSERT INTO meta (key, value) VALUES (?, ?) ON CONFLICT (key) DO UPDATE "
-                   "SET value = excluded.value", (COMPACTED_KEY, json.dumps(totals,
-                                                                             sort_keys=True)))
+        for key, value in ((COMPACTED_KEY, totals), (COMPACTED_NOTIFICATIONS_KEY, removed)):
+            db.execute("INSERT INTO meta (key, value) VALUES (?, ?) ON CONFLICT (key) DO "
+                       "UPDATE SET value = excluded.value", (key, json.dumps(value,
+                                                                              sort_keys=True)))
 
 
 def _chunks(items: list, size: int = 500):

@@ -60,7 +60,7 @@ class StatusServer:
         self.wall = wall
         self.lock = threading.Lock()      # one reader connection, one request at a time on it
         self.reader = StateReader(layout.db)
-        self.registry = build_registry(self.reader, self.live, self.lock)
+        self.registry = build_registry(self.reader, self.live, self.lock, layout=layout)
         self._plots: tuple[Any, dict[str, bytes]] | None = None
         self._httpd: ThreadingHTTPServer | None = None
         self._thread: threading.Thread | None = None
@@ -147,6 +147,7 @@ class StatusServer:
             ("waiting in the inbox", snap["backlog"]["files"]),
             ("lag", "-" if lag is None else f"{lag:.1f} s"),
             ("queue depth", snap["live"].get("queue_depth", "-")),
+            ("quarantine", _quarantine_fact(snap.get("quarantine") or {})),
             ("last error", "none" if snap["last_error"] is None else
              f"{snap['last_error']['name']}: {snap['last_error']['reason']}"),
         ]
@@ -163,6 +164,14 @@ class StatusServer:
                 + "".join(f"<h2>{html.escape(REPORT_PLOTS[k])}</h2>"
                           + figure_html(k, pngs[k], REPORT_PLOTS[k]) for k in PAGE_PLOTS))
         return page_html("shoal status", body, refresh_seconds=_REFRESH_SECONDS)
+
+
+def _quarantine_fact(q: dict) -> str:
+    latest = q.get("latest")
+    text = f"{q.get('count', 0)} input(s)"
+    if latest:
+        text += f"; latest {latest['name']}: {latest['reason']} ({latest['detail']})"
+    return text
 
 
 class _V6Server(ThreadingHTTPServer):

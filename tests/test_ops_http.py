@@ -131,6 +131,11 @@ def test_status_page_in_headless_chromium(running):
     with chromium() as driver:
         driver.get(running["url"])
         assert driver.title == "shoal status"
+        facts = {r.find_element("css selector", "th").text: r.find_element("css selector",
+                                                                           "td").text
+                 for r in driver.find_elements("css selector", "table#facts tr")}
+        assert facts["service"].startswith(f"running, pid {running['watch'].proc.pid}")
+        assert facts["quarantine"] == "0 input(s)"
         rows = driver.find_elements("css selector", "table#segments tbody tr")
         listed = sorted(int(r.get_attribute("data-segment")) for r in rows)
         first_cells = sorted(int(r.find_element("css selector", "td").text) for r in rows)
