@@ -94,6 +94,8 @@ class OutputSettings:
         min=0.0, max=0.5)
     keep_inputs: bool = _f(False, "leave committed inputs in the inbox instead of moving them "
                                   "to processed/")
+    segment_names: bool = _f(False, "add a segment_name column (the operator's name of each "
+                                    "row's segment, set with `shoal name`) to the labels")
 
 
 @dataclass(frozen=True)

@@ -46,6 +46,7 @@ from shoal.daemon.pipeline import Pipeline  # noqa: E402
 from shoal.daemon.progress import progress  # noqa: E402
 from shoal.daemon.quarantine_commands import add_quarantine_commands  # noqa: E402
 from shoal.daemon.retention import RetentionKeeper, add_prune_command  # noqa: E402
+from shoal.daemon.segment_names import add_name_command  # noqa: E402
 from shoal.daemon.store import StateStore  # noqa: E402
 
 __all__ = ["main", "build_parser", "open_service_parts"]
@@ -95,6 +96,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_backfill_command(cmd, with_config, _stop_on_signals)   # backfill (Dask)
     add_prune_command(cmd, with_config, open_service_parts)    # prune (retention)
     add_quarantine_commands(cmd, with_config)                  # quarantine list/retry/drop
+    add_name_command(cmd, with_config)                         # name a segment
     with_config(cmd("check-config", "validate the configuration and print it in full",
                     _cmd_check_config))
     sp = cmd("demo", "run the cold-storage warehouse scenario end to end", _cmd_demo)

@@ -157,14 +157,16 @@ def _mark_events(ax, axis, events: Sequence[Mapping[str, Any]]) -> None:
         line.set_gid(f"event:{kind}")
 
 
-def _segment_line(ax, axis, sid: int, xs, ys, **kw):
+def _segment_line(ax, axis, sid: int, xs, ys, names=None, **kw):
     """One segment's series with its own colour, line style and marker (``gid``
-    ``segment:<id>``); markers thinned to about a dozen per line."""
+    ``segment:<id>``), labelled with its name if it has one; markers thinned to about
+    a dozen per line."""
     st = segment_style(sid)
     n = len(xs)
+    name = (names or {}).get(sid)
     (line,) = ax.plot(_xs(axis, xs), ys, color=st["color"], linestyle=st["linestyle"],
                       marker=st["marker"], markersize=4, markevery=max(1, n // 12),
-                      label=f"segment {sid}", **kw)
+                      label=f"segment {sid} ({name})" if name else f"segment {sid}", **kw)
     line.set_gid(f"segment:{sid}")
     return line
 
@@ -199,14 +201,14 @@ def _no_history(title: str, ylabel: str, axis) -> Figure:
 
 
 def weights_figure(history: Sequence[Mapping[str, Any]], axis, events=(),
-                   view=None) -> Figure:
+                   view=None, names=None) -> Figure:
     title = "Segment weights"
     if not any(axis.of(h["version"]) is not None for h in history):
         return _no_history(title, "weight (share of rows)", axis)
     fig = Figure(figsize=(9, 3.8), layout="constrained")
     ax = fig.add_subplot()
     for sid, (xs, ys) in sorted(_series(history, axis, lambda h: h["weight"]).items()):
-        _segment_line(ax, axis, sid, xs, ys)
+        _segment_line(ax, axis, sid, xs, ys, names)
     _mark_events(ax, axis, events)
     ax.set_title(title)
     ax.set_ylabel("weight (share of rows)")
@@ -219,7 +221,7 @@ def weights_figure(history: Sequence[Mapping[str, Any]], axis, events=(),
 
 def means_figure(history: Sequence[Mapping[str, Any]], features: Sequence[str],
                  units: Mapping[str, str], reference: Mapping[int, tuple] | None = None,
-                 axis=None, events=(), view=None) -> Figure:
+                 axis=None, events=(), view=None, names=None) -> Figure:
     """One panel per feature: each segment's mean, its baseline mean ± 1 sd shaded.
 
     ``reference``: segment id -> (means, sds) in data units, per feature.
@@ -235,7 +237,7 @@ def means_figure(history: Sequence[Mapping[str, Any]], features: Sequence[str],
     for j, feat in enumerate(features):
         ax = axes[j // cols][j % cols]
         for sid, (xs, ys) in sorted(_series(history, axis, lambda h: h["mean"][j]).items()):
-            _segment_line(ax, axis, sid, xs, ys, linewidth=1.4)
+            _segment_line(ax, axis, sid, xs, ys, names, linewidth=1.4)
             if reference and sid in reference:
                 m, s = reference[sid][0][j], reference[sid][1][j]
                 ax.axhspan(m - s, m + s, color=segment_style(sid)["color"], alpha=0.15,
@@ -286,7 +288,7 @@ def _with_alert_keys(axes, handles: list, labels: list) -> tuple[list, list]:
 
 def drift_figure(history: Sequence[Mapping[str, Any]], bounds: Mapping[str, float],
                  alerts: Sequence[Mapping[str, Any]], axis=None, events=(),
-                 view=None) -> Figure:
+                 view=None, names=None) -> Figure:
     """One panel per segment drift statistic: each segment's value, the bound dashed,
     alerts marked; lines break at each re-baseline."""
     title = "Segment drift statistics against their bounds"
@@ -309,12 +311,12 @@ def drift_figure(history: Sequence[Mapping[str, Any]], bounds: Mapping[str, floa
             return v if isinstance(v, (int, float)) and not isinstance(v, bool) else None
         return value
 
-    names = sorted(stats)
-    fig = Figure(figsize=(10, 2.5 * len(names) + 0.8), layout="constrained")
-    axes = fig.subplots(len(names), 1, squeeze=False, sharex=True)
-    for ax, name in zip(axes[:, 0], names):
+    statistics = sorted(stats)
+    fig = Figure(figsize=(10, 2.5 * len(statistics) + 0.8), layout="constrained")
+    axes = fig.subplots(len(statistics), 1, squeeze=False, sharex=True)
+    for ax, name in zip(axes[:, 0], statistics):
         for sid, (xs, ys) in sorted(_series(history, axis, getter(name), breaks).items()):
-            _segment_line(ax, axis, sid, xs, ys, linewidth=1.3)
+            _segment_line(ax, axis, sid, xs, ys, names, linewidth=1.3)
         bound = bounds.get(name)
         if bound is not None:
             ax.axhline(bound, color="black", linestyle="--", linewidth=1, label="bound")

@@ -234,24 +234,32 @@ def format_status(snap: dict, width: int = 100) -> str:
     if snap["segments"]:
         lines.append("")
         feats = list(snap["features"])
-        head = ["segment", "weight", "rows"] + [f"{f} mean" for f in feats]
-        table = [head] + [[str(s["id"]), f"{s['weight']:.3f}", str(s["rows"])]
+        named = any(s.get("name") for s in snap["segments"])
+        fixed = 4 if named else 3
+        head = ["segment"] + (["name"] if named else []) + ["weight", "rows"] + \
+            [f"{f} mean" for f in feats]
+        table = [head] + [[str(s["id"])] + ([s.get("name") or "-"] if named else [])
+                          + [f"{s['weight']:.3f}", str(s["rows"])]
                           + [f"{s['mean'][f]:.4g}" for f in feats] for s in snap["segments"]]
         widths = [max(len(r[i]) for r in table) for i in range(len(head))]
         shown = len(head)   # whole columns only, as many as fit the screen
-        while shown > 3 and sum(widths[:shown]) + 2 * (shown - 1) > width:
+        while shown > fixed and sum(widths[:shown]) + 2 * (shown - 1) > width:
             shown -= 1
         for r in table:
-            lines.append("  ".join(c.rjust(w) for c, w in zip(r[:shown], widths)))
+            lines.append("  ".join(c.ljust(w) if named and i == 1 else c.rjust(w)
+                                   for i, (c, w) in enumerate(zip(r[:shown], widths))))
         if shown < len(head):
             lines.append(f"(+{len(head) - shown} more features: shoal segments -c CONFIG)")
     lines.append("")
     counts = snap["alert_counts"]
     lines.append(f"alerts: {snap.get('alerts_firing', 0)} firing now; notifications: "
                  + (", ".join(f"{v} {k}" for k, v in sorted(counts.items())) or "none"))
+    names = {s["id"]: s.get("name") for s in snap["segments"] if s.get("name")}
     for a in snap["recent_alerts"][:5]:
+        seg = a.get("segment", "-")
+        name = a.get("segment_name") or names.get(seg)
         lines.append(f"  {a.get('status', '?'):9s} {a.get('severity', '?'):8s} segment "
-                     f"{a.get('segment', '-')} {a.get('statistic', '-')} "
+                     f"{seg}{f' ({name})' if name else ''} {a.get('statistic', '-')} "
                      f"value {_num(a.get('value'))} bound {_num(a.get('bound'))}"[:width])
     q = snap.get("quarantine") or {}
     latest = q.get("latest")

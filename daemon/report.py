@@ -35,6 +35,7 @@ from shoal.daemon.progress import progress
 from shoal.daemon.readers import read_input
 from shoal.daemon.readout import StateReader, read_alerts, state_snapshot
 from shoal.daemon.retention import compacted_totals
+from shoal.daemon.segment_names import segment_names
 from shoal.daemon.timeline import Axis, axis_events, build_axis, parse_bound
 
 __all__ = ["REPORT_PLOTS", "parse_since", "report_data", "render_figures", "render_plots",
@@ -242,6 +243,7 @@ def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
         "units": feature_units(settings),
         "bounds": drift_bounds(settings),
         "features": list(settings.features),
+        "names": segment_names(reader.db),
         "axis": axis,
         "view": view,
         "events": events,
@@ -265,12 +267,13 @@ def render_figures(data: Mapping[str, Any], which: Sequence[str] = tuple(REPORT_
     from shoal.daemon import plots
 
     axis, events, view = data["axis"], data["events"], data["view"]
+    names = data.get("names") or {}
     makers = {
-        "weights": lambda: plots.weights_figure(data["history"], axis, events, view),
+        "weights": lambda: plots.weights_figure(data["history"], axis, events, view, names),
         "means": lambda: plots.means_figure(data["history"], data["features"], data["units"],
-                                            data["reference"], axis, events, view),
+                                            data["reference"], axis, events, view, names),
         "drift": lambda: plots.drift_figure(data["history"], data["bounds"], data["alerts"],
-                                            axis, events, view),
+                                            axis, events, view, names),
         "fit": lambda: plots.fit_figure(data["fit"], data["bounds"].get("fit_drop"),
                                         data["alerts"], axis, events, view),
         "pca": lambda: plots.pca_figure(data["sample"][0], data["sample"][1], data["means"],
@@ -346,13 +349,15 @@ def segments_table(snap: Mapping[str, Any], units: Mapping[str, str]) -> str:
         cells = "".join(f"<td>{s['mean'][f]:.4g} ± {s['spread'][f]:.3g}</td>" for f in feats)
         rows.append(f'<tr data-segment="{s["id"]}"><td class="l">'
                     f'<span class="swatch" style="background:{colour}"></span>{s["id"]}</td>'
+                    f'<td class="l name">{html.escape(s.get("name") or "")}</td>'
                     f"<td>{s['weight']:.3f}</td><td>{s['rows']}</td>"
                     f"<td>{_fmt(s.get('age_versions'))}</td>{cells}</tr>")
     if not rows:
         w = snap.get("warmup") or {}
         return (f"<p id=\"no-segments\">No model yet: the warm-up has {w.get('rows', 0)} of "
                 f"{w.get('needed', '?')} rows.</p>")
-    return ('<table id="segments"><thead><tr><th class="l">segment</th><th>weight</th>'
+    return ('<table id="segments"><thead><tr><th class="l">segment</th><th class="l">name</th>'
+            '<th>weight</th>'
             f"<th>rows</th><th>age (inputs)</th>{head}</tr></thead><tbody>"
             + "".join(rows) + "</tbody></table>")
 
@@ -374,7 +379,9 @@ def alerts_table(alerts: Sequence[Mapping[str, Any]], limit: int = 50) -> str:
             f"<tr><td class=\"l\">{_utc(a.get('created'))}</td>"
             f"<td class=\"l {status}\">{status}</td>"
             f"<td class=\"l\">{html.escape(str(a.get('severity', '')))}</td>"
-            f"<td>{html.escape(_fmt(a.get('segment')))}</td>"
+            f"<td>{html.escape(_fmt(a.get('segment')))}"
+            + (f" ({html.escape(str(a['segment_name']))})" if a.get("segment_name") else "")
+            + "</td>"
             f"<td class=\"l\">{html.escape(_fmt(a.get('statistic')))}</td>"
             f"<td>{html.escape(_fmt(a.get('value')))}</td>"
             f"<td>{html.escape(_fmt(a.get('bound')))}</td>"

@@ -6,6 +6,7 @@ from typing import Any
 
 from shoal.config import Settings
 from shoal.core import Mixture
+from shoal.daemon.segment_names import segment_names
 from shoal.daemon.store import StateStore
 
 __all__ = ["segment_summary", "format_segments"]
@@ -25,6 +26,7 @@ def segment_summary(store: StateStore, settings: Settings, now: float | None = N
                          "needed": settings.warmup_rows}
         return out
     m = Mixture.from_state(cp.arrays, cp.meta)
+    names = segment_names(store.db)
     means, stds = m.data_means(), m.data_stds()
     rows = cp.extra.get("segment_rows", {})
     born = cp.extra.get("segment_born", {})
@@ -34,6 +36,7 @@ def segment_summary(store: StateStore, settings: Settings, now: float | None = N
         b = born.get(str(sid), {})
         out["segments"].append({
             "id": int(sid),
+            "name": names.get(int(sid)),
             "weight": float(m.weights[k]),
             "rows": int(rows.get(str(sid), 0)),
             "mean": {f: float(v) for f, v in zip(settings.features, means[k])},
@@ -44,6 +47,8 @@ def segment_summary(store: StateStore, settings: Settings, now: float | None = N
         })
     if include_gone:
         out["gone"] = _gone_segments(store, settings, set(m.ids.tolist()), born)
+        for g in out["gone"]:
+            g["name"] = names.get(g["id"])
     return out
 
 
@@ -75,19 +80,25 @@ def format_segments(summary: dict) -> str:
         return "\n".join(lines)
     lines[0] += f", {summary['rows_learned']} rows learned after warm-up"
     feats = summary["features"]
-    head = ["segment", "weight", "rows", "age"] + [f"{f} (mean±sd)" for f in feats]
+    named = any(s.get("name") for s in summary["segments"])
+    head = ["segment"] + (["name"] if named else []) + ["weight", "rows", "age"] + \
+        [f"{f} (mean±sd)" for f in feats]
     table = [head]
     for s in summary["segments"]:
         age = "-" if s["age_versions"] is None else f"{s['age_versions']} inputs"
-        table.append([str(s["id"]), f"{s['weight']:.3f}", str(s["rows"]), age] +
+        table.append([str(s["id"])] + ([s.get("name") or "-"] if named else []) +
+                     [f"{s['weight']:.3f}", str(s["rows"]), age] +
                      [f"{_num(s['mean'][f])}±{_num(s['spread'][f])}" for f in feats])
     widths = [max(len(r[i]) for r in table) for i in range(len(head))]
     for r in table:
-        lines.append("  ".join(c.rjust(w) for c, w in zip(r, widths)))
+        lines.append("  ".join(c.ljust(w) if i == 1 and named else c.rjust(w)
+                               for i, (c, w) in enumerate(zip(r, widths))))
     if summary.get("gone"):
         lines.append("segments no longer in the model (last mean±sd):")
         for g in summary["gone"]:
-            lines.append(f"  {g['id']:>3}  {g['ended']} (model version {g['ended_version']})  " +
+            name = f" ({g['name']})" if g.get("name") else ""
+            lines.append(f"  {g['id']:>3}{name}  {g['ended']} (model version "
+                         f"{g['ended_version']})  " +
                          "  ".join(f"{f} {_num(g['mean'][f])}±{_num(g['spread'][f])}"
                                    for f in feats))
     return "\n".join(lines)
