@@ -121,6 +121,8 @@ def _finish_axis(ax, axis, view: tuple[float, float] | None, bottom: bool) -> No
         else:
             ax.xaxis.set_major_formatter(_ROW_FORMATTER)
     ax.set_xlabel(label if bottom else "")
+    if bottom:   # a shared axis hides the ticks of all but the last row; a bottom panel
+        ax.tick_params(axis="x", labelbottom=True)   # above an empty cell needs its own
 
 
 _NAMED_TICKS = 12
