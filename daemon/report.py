@@ -298,8 +298,8 @@ def history_span(data: Mapping[str, Any]) -> str:
     if view is None or not n:
         return "history: no inputs committed yet" if not axis.x else \
             "history: no inputs in the range asked for"
-    what = {"time": f"data time, column {html.escape(axis.label.split('column ')[-1])}",
-            "number": "time column's own units", "rows": "stream rows"}[axis.kind]
+    what = {"time": f"data time, column {axis.column}",
+            "number": f"column {axis.column}, in its own units", "rows": "stream rows"}[axis.kind]
     scope = "all " if data["since"] is None and data["until"] is None else ""
     out = (f"history: {scope}{n} input{'s' if n != 1 else ''}, {axis.describe(view[0])} to "
            f"{axis.describe(view[1])} ({what})")

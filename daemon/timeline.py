@@ -52,6 +52,7 @@ class InputFacts:
     time_first: float | None
     time_last: float | None
     mean_log_density: float | None
+    numeric: bool = False      # the time column holds plain numbers, not dates
 
 
 _FACTS: "OrderedDict[tuple[str, str | None], InputFacts]" = OrderedDict()
@@ -59,22 +60,36 @@ _FACTS_LOCK = threading.Lock()
 _FACTS_KEPT = 100_000
 
 
-def _to_seconds(column: pa.ChunkedArray | pa.Array) -> np.ndarray:
-    """A time column as float seconds: timestamps and dates since the epoch (UTC),
-    ISO text parsed, numbers as they are; NaN where there is no time."""
+def _to_seconds(column: pa.ChunkedArray | pa.Array) -> tuple[np.ndarray, bool]:
+    """A time column as float seconds since the epoch (UTC) for timestamps, dates and
+    ISO text, or as the numbers themselves for a numeric column (or text of numbers,
+    as CSV passes it through); NaN where there is no time. Also: whether numeric."""
     t = column.type
-    if pa.types.is_timestamp(t) or pa.types.is_date(t):
-        ms = pc.cast(column, pa.timestamp("ms", tz=getattr(t, "tz", None))) \
-            if not pa.types.is_date(t) else pc.cast(pc.cast(column, pa.date64()),
-                                                      pa.timestamp("ms"))
-        return np.asarray(pc.cast(ms, pa.int64()).to_numpy(zero_copy_only=False),
-                          dtype=float) / 1000.0
+    if pa.types.is_date(t):
+        column, t = pc.cast(pc.cast(column, pa.date64()), pa.timestamp("ms")), \
+            pa.timestamp("ms")
+    if pa.types.is_timestamp(t):
+        ms = pc.cast(column, pa.timestamp("ms", tz=t.tz))
+        values = ms.cast(pa.int64()).to_numpy(zero_copy_only=False)
+        return np.asarray(_with_nans(ms, values), dtype=float) / 1000.0, False
     if pa.types.is_integer(t) or pa.types.is_floating(t):
-        return np.asarray(column.to_numpy(zero_copy_only=False), dtype=float)
-    values = column.to_pylist()
-    out = np.full(len(values), np.nan)
-    for i, v in enumerate(values):
-        out[i] = _iso_seconds(v)
+        return np.asarray(_with_nans(column, column.cast(pa.float64()).to_numpy(
+            zero_copy_only=False)), dtype=float), True
+    try:
+        as_numbers = pc.cast(column, pa.float64())
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        values = column.to_pylist()
+        return np.array([_iso_seconds(v) for v in values], dtype=float), False
+    return np.asarray(_with_nans(as_numbers, as_numbers.to_numpy(zero_copy_only=False)),
+                      dtype=float), True
+
+
+def _with_nans(column, values) -> np.ndarray:
+    """``values`` (numpy, from ``column``) with NaN where ``column`` is null."""
+    out = np.asarray(values, dtype=float)
+    if column.null_count:
+        out = out.copy()
+        out[np.asarray(column.is_null().to_numpy(zero_copy_only=False), bool)] = np.nan
     return out
 
 
@@ -105,12 +120,13 @@ def _read_facts(path: Path, time_column: str | None) -> InputFacts:
           if "log_density" in table.column_names else np.empty(0))
     ld = ld[np.isfinite(ld)]
     first = last = None
+    numeric = False
     if time_column and time_column in table.column_names:
-        secs = _to_seconds(table.column(time_column))
+        secs, numeric = _to_seconds(table.column(time_column))
         secs = secs[np.isfinite(secs)]
         if secs.size:
             first, last = float(secs.min()), float(secs.max())
-    return InputFacts(first, last, float(ld.mean()) if ld.size else None)
+    return InputFacts(first, last, float(ld.mean()) if ld.size else None, numeric)
 
 
 def input_facts(path: Path, time_column: str | None) -> InputFacts | None:
@@ -145,6 +161,7 @@ class Axis:
     names: dict[int, str] = field(default_factory=dict)     # model version -> input name
     fit: dict[int, float] = field(default_factory=dict)     # version -> mean log-density/row
     left_out: int = 0                                       # inputs without a readable time
+    column: str | None = None                               # the time column, if on time
 
     @property
     def is_time(self) -> bool:
@@ -178,6 +195,7 @@ def build_axis(entries: Sequence[Any], outbox: Path, time_column: str | None,
     """
     rows_axis = Axis("rows", "stream rows (end of each input)")
     time_axis = None
+    numeric: list[bool] = []
     total = int(rows_before)
     for e in entries:
         if e.model_version is None:
@@ -196,6 +214,7 @@ def build_axis(entries: Sequence[Any], outbox: Path, time_column: str | None,
         if facts.time_last is not None:
             if time_axis is None:
                 time_axis = Axis("time", "")
+            numeric.append(facts.numeric)
             time_axis.x[v] = facts.time_last
             time_axis.span[v] = (facts.time_first, facts.time_last)
     if time_axis is None:
@@ -203,31 +222,13 @@ def build_axis(entries: Sequence[Any], outbox: Path, time_column: str | None,
     time_axis.names = rows_axis.names
     time_axis.fit = rows_axis.fit
     time_axis.left_out = sum(1 for v in rows_axis.x if v not in time_axis.x)
-    numeric = all(abs(x) < 1e8 for x in time_axis.x.values())  # not epoch seconds of a date
-    if numeric and _looks_numeric(entries, outbox, time_column):
+    time_axis.column = time_column
+    if all(numeric):
         time_axis.kind = "number"
         time_axis.label = f"{time_column} (the time column's own units)"
     else:
         time_axis.label = f"data time, column {time_column} (UTC)"
     return time_axis
-
-
-def _looks_numeric(entries, outbox: Path, time_column: str | None) -> bool:
-    """Whether the time column holds plain numbers rather than dates (one file looked at)."""
-    for e in entries:
-        if not e.labels:
-            continue
-        path = outbox / e.labels
-        try:
-            if path.name.endswith(".csv"):
-                t = pacsv.read_csv(path, convert_options=pacsv.ConvertOptions(
-                    include_columns=[time_column])).column(time_column).type
-            else:
-                t = pq.read_schema(path).field(time_column).type
-        except (OSError, pa.ArrowException, KeyError, ValueError):
-            continue
-        return pa.types.is_integer(t) or pa.types.is_floating(t)
-    return False
 
 
 _DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(s|min|m|h|d|w)\s*$")

@@ -217,3 +217,28 @@ def test_thirty_day_report_in_headless_chromium(on_time, tmp_path):
         check_images(driver, list(REPORT_PLOTS))
         assert len(driver.find_elements("css selector", "figure img")) == len(REPORT_PLOTS)
         assert console_errors(driver) == []
+
+
+def test_a_numeric_time_column_is_drawn_in_its_own_units(tmp_path, capsys):
+    from shoal.config import load_config
+    from shoal.daemon.cli import main
+    from shoal.daemon.drills import synthetic_table, write_config, write_drop
+    from shoal.daemon.layout import Layout
+
+    cfg = write_config(tmp_path, drift={"time_column": "ts", "settle_rows": 400,
+                                        "window_rows": 200})
+    (tmp_path / "inbox").mkdir()
+    paths = [write_drop(synthetic_table(i, 300, seed=2), tmp_path / "inbox", f"n{i}.csv",
+                        index=i) for i in range(6)]
+    assert main(["ingest", "-c", str(cfg), *map(str, paths)]) == 0
+    settings = load_config(cfg)
+    reader = StateReader(Layout.of(settings).db)
+    try:
+        data = report_data(reader, settings, Layout.of(settings), since="900")
+    finally:
+        reader.close()
+    axis = data["axis"]
+    assert axis.kind == "number" and axis.x[6] == 6 * 300 - 1    # ts counts rows from 0
+    assert data["view"] == (900.0, 1799.0) and data["shown_inputs"] == 3
+    ax = render_figures(data, which=["weights"])["weights"].axes[0]
+    assert ax.get_xlim() == (900.0, 1799.0) and ax.get_xlabel().startswith("ts")
