@@ -131,13 +131,15 @@ class LivenessWriter:
                                        "stopped": None,
                                        "last_failure": previous.get("last_failure")}
         self._written = -float("inf")
+        self._shape: tuple | None = None
 
     def tick(self, progress: float | None, worker_alive: bool) -> None:
         if progress is not None:   # the heartbeat's monotonic time as a wall time
             self.record["last_progress"] = self.wall() - (self.monotonic() - progress)
         self.record["worker_alive"] = worker_alive
-        if self.monotonic() - self._written >= _WRITE_EVERY_SECONDS:
-            self._write()
+        shape = (self.record["last_progress"] is None, worker_alive)
+        if shape != self._shape or self.monotonic() - self._written >= _WRITE_EVERY_SECONDS:
+            self._write()   # at once when the first progress comes or the worker stops
 
     def failed(self, detail: str) -> None:
         self.record["last_failure"] = {"time": self.wall(), "pid": os.getpid(),
@@ -162,3 +164,4 @@ class LivenessWriter:
                       detail=str(exc))
             return
         self._written = self.monotonic()
+        self._shape = (self.record["last_progress"] is None, self.record["worker_alive"])
