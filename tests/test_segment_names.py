@@ -107,6 +107,8 @@ def test_names_in_every_view_payload_and_labels_through_a_merge(tmp_path, capsys
     new = [p for p in _payloads(tmp_path, seen)[0] if isinstance(p.get("segment"), int)]
     assert {p["segment"] for p in new} >= {1, 2}
     assert all(p["segment_name"] == expect[p["segment"]] for p in new)
+    code, shown = _run(capsys, "alerts", "-c", str(cfg))
+    assert code == 0 and "segment 1 (door traffic)" in shown
 
     # merges: the surviving id keeps its name; the absorbed ones keep theirs in history
     c = yaml.safe_load(cfg.read_text())
