@@ -344,20 +344,22 @@ def segments_table(snap: Mapping[str, Any], units: Mapping[str, str]) -> str:
     head = "".join(f"<th>{html.escape(f)} mean ± sd<br>({html.escape(units.get(f, ''))})</th>"
                    for f in feats)
     rows = []
+    named = any(s.get("name") for s in snap["segments"])
     for s in snap["segments"]:
         colour = segment_style(s["id"])["color"]
         cells = "".join(f"<td>{s['mean'][f]:.4g} ± {s['spread'][f]:.3g}</td>" for f in feats)
         rows.append(f'<tr data-segment="{s["id"]}"><td class="l">'
                     f'<span class="swatch" style="background:{colour}"></span>{s["id"]}</td>'
-                    f'<td class="l name">{html.escape(s.get("name") or "")}</td>'
+                    + (f'<td class="l name">{html.escape(s.get("name") or "")}</td>'
+                       if named else "") +
                     f"<td>{s['weight']:.3f}</td><td>{s['rows']}</td>"
                     f"<td>{_fmt(s.get('age_versions'))}</td>{cells}</tr>")
     if not rows:
         w = snap.get("warmup") or {}
         return (f"<p id=\"no-segments\">No model yet: the warm-up has {w.get('rows', 0)} of "
                 f"{w.get('needed', '?')} rows.</p>")
-    return ('<table id="segments"><thead><tr><th class="l">segment</th><th class="l">name</th>'
-            '<th>weight</th>'
+    return ('<table id="segments"><thead><tr><th class="l">segment</th>'
+            + ('<th class="l">name</th>' if named else "") + "<th>weight</th>"
             f"<th>rows</th><th>age (inputs)</th>{head}</tr></thead><tbody>"
             + "".join(rows) + "</tbody></table>")
 
