@@ -24,6 +24,7 @@ __all__ = [
     "WebhookSettings",
     "AlertSettings",
     "LifecycleSettings",
+    "RetentionSettings",
     "Settings",
     "COVARIANCE_TYPES",
     "OUTPUT_FORMATS",
@@ -99,6 +100,8 @@ class OutputSettings:
         min=0.0, max=0.5)
     keep_inputs: bool = _f(False, "leave committed inputs in the inbox instead of moving them "
                                   "to processed/")
+    segment_names: bool = _f(False, "add a segment_name column (the operator's name of each "
+                                    "row's segment, set with `shoal name`) to the labels")
 
 
 @dataclass(frozen=True)
@@ -252,6 +255,39 @@ class LifecycleSettings:
 
 
 @dataclass(frozen=True)
+class RetentionSettings:
+    """What is cleaned up, by the running service between inputs and by ``shoal prune``.
+
+    Nothing that exactly-once or an undelivered alert still needs is removed: the
+    ledger row of an input still in the inbox, alert notifications not yet delivered
+    or still open, lifecycle events of the segment history.
+    """
+
+    processed_days: float | None = _f(
+        7.0, "committed inputs in processed/ are deleted this many days after they were "
+             "moved there (0: at once; null: kept)", min=0.0)
+    processed_bytes: int | None = _f(
+        None, "processed/ is kept under this many bytes, oldest inputs deleted first "
+              "(null: no limit)", min=0)
+    quarantine_days: float | None = _f(
+        30.0, "quarantined inputs and their sidecars are deleted this many days after they "
+              "were quarantined (null: kept)", min=0.0)
+    alerts_file_bytes: int | None = _f(
+        64 * 1024**2, "the alerts file is rotated (alerts.jsonl.1, .2, ...) once it is this "
+                      "large (null: never)", min=1)
+    alerts_files_kept: int = _f(5, "rotated alerts files kept beside the current one",
+                                min=0, max=1000)
+    history_days: float | None = _f(
+        90.0, "segment history older than this is thinned to one model version a day "
+              "(lifecycle events kept), delivered and closed alert notifications and ledger "
+              "rows older than this are removed; a redelivered input is recognised as done "
+              "for this long (null: keep everything)", min=0.0)
+    check_seconds: float = _f(
+        60.0, "the running service applies retention between inputs at most this often",
+        min=0.0, max=86400.0)
+
+
+@dataclass(frozen=True)
 class Settings:
     """The whole configuration. Folders are absolute once loaded."""
 
@@ -282,6 +318,7 @@ class Settings:
     alerts: AlertSettings = _f(AlertSettings(), "where alerts are delivered")
     lifecycle: LifecycleSettings = _f(LifecycleSettings(), "births, retirements and merges "
                                       "of segments")
+    retention: RetentionSettings = _f(RetentionSettings(), "what is cleaned up, and when")
 
     @property
     def transform_kinds(self) -> tuple[str, ...]:

@@ -35,6 +35,8 @@ def format_alert(payload: dict, created: float | None = None, prefix: str = "") 
     when = "" if created is None else _dt.datetime.fromtimestamp(
         created, _dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%S ")
     seg = "whole model" if p.get("segment") == "all" else f"segment {p.get('segment')}"
+    if p.get("segment_name"):
+        seg += f" ({p['segment_name']})"
     head = (f"{prefix}{when}{p.get('status', '?').upper():8s} {p.get('severity', ''):8s} "
             f"{seg}  {p.get('statistic')} {_n(p.get('value'))} (bound {_n(p.get('bound'))}, "
             f"noise {_n(p.get('noise'))}; {p.get('unit', '')})  id {p.get('id')}")

@@ -75,6 +75,7 @@ from shoal.daemon.pipeline import (
 from shoal.daemon.progress import progress
 from shoal.daemon.quarantine import quarantine
 from shoal.daemon.readers import Frame, read_input
+from shoal.daemon.segment_names import segment_names, with_segment_names
 from shoal.daemon.store import Checkpoint, HistoryRow, LedgerEntry, StateStore
 from shoal.daemon.writer import atomic_file, labels_name, labels_table, write_labels
 
@@ -274,6 +275,7 @@ class LabelsTo:
     unusual_below: float
     outbox: str
     stage: str
+    names: tuple = ()      # (segment id, name) pairs for a segment_name column; () for none
 
 
 def piece_statistics(facts: FileFacts, piece: Piece, stop: int, snapshot,
@@ -290,7 +292,7 @@ def piece_statistics(facts: FileFacts, piece: Piece, stop: int, snapshot,
     if labels is not None and piece.lo == 0 and len(X) == facts.valid_rows:
         _write_labels(facts, settings, frame, scores.segment, scores.confidence,
                       scores.log_density, labels.unusual_below, labels.version,
-                      labels.outbox)
+                      labels.outbox, labels.names)
     elif labels is not None:
         save_scores(Path(labels.stage), facts.index, piece.lo, scores)
     counts = np.bincount(scores.component, minlength=snapshot.n_components)
@@ -309,10 +311,13 @@ def save_scores(stage: Path, index: int, lo: int, scores) -> Path:
 
 
 def _write_labels(facts: FileFacts, settings: Settings, frame: Frame, segment, confidence,
-                  log_density, unusual_below: float, version: int, outbox: str) -> str:
+                  log_density, unusual_below: float, version: int, outbox: str,
+                  names: tuple = ()) -> str:
     fmt = settings.output.format
     table = labels_table(frame.passthrough, frame.valid, segment, confidence, log_density,
                          unusual_below, version)
+    if settings.output.segment_names:
+        (table,) = with_segment_names([table], dict(names))
     target = Path(outbox) / labels_name(facts.name, facts.digest, fmt)
     write_labels(table, target, fmt, _labels_metadata(facts.digest, facts.digest_algorithm,
                                                       facts.name, version))
@@ -320,12 +325,12 @@ def _write_labels(facts: FileFacts, settings: Settings, frame: Frame, segment, c
 
 
 def label_file(facts: FileFacts, settings: Settings, model, version: int,
-               unusual_below: float, outbox: str) -> str:
+               unusual_below: float, outbox: str, names: tuple = ()) -> str:
     """Label every row of one input with ``model``; write the labels file atomically."""
     frame = _read_again(facts, settings)
     scores = model.score(frame.features[frame.valid])
     return _write_labels(facts, settings, frame, scores.segment, scores.confidence,
-                         scores.log_density, unusual_below, version, outbox)
+                         scores.log_density, unusual_below, version, outbox, names)
 
 
 def assemble_labels(facts: FileFacts, settings: Settings, labels: LabelsTo) -> str:
@@ -340,7 +345,7 @@ def assemble_labels(facts: FileFacts, settings: Settings, labels: LabelsTo) -> s
                             f"{facts.valid_rows} valid rows")
     return _write_labels(facts, settings, frame, cols["segment"], cols["confidence"],
                          cols["log_density"], labels.unusual_below, labels.version,
-                         labels.outbox)
+                         labels.outbox, labels.names)
 
 
 # -- the cluster -------------------------------------------------------------------
@@ -636,7 +641,13 @@ class _Run:
 
     def _labels_to(self, version: int, below: float | None, stage: Path) -> LabelsTo:
         return LabelsTo(version, -np.inf if below is None else float(below),
-                        str(self.layout.outbox), str(stage))
+                        str(self.layout.outbox), str(stage), self._names())
+
+    def _names(self) -> tuple:
+        """The segments' names for the labels (read from the store when configured)."""
+        if not self.settings.output.segment_names:
+            return ()
+        return tuple(sorted(segment_names(self.store.db).items()))
 
     def _assemble(self, f: FileFacts, version: int, below: float | None, stage: Path):
         return self.client.submit(assemble_labels, f, self.settings,
@@ -652,7 +663,7 @@ class _Run:
 
         def submit(model, attempt):
             return [self.client.submit(label_file, f, self.settings, model, version, below,
-                                       str(self.layout.outbox),
+                                       str(self.layout.outbox), self._names(),
                                        key=f"shoal-labels-{self.tag}-{f.index}-{attempt}")
                     for f in files]
 

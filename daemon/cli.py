@@ -44,6 +44,9 @@ from shoal.daemon.logs import log_event, setup_logging  # noqa: E402
 from shoal.daemon.ops_commands import add_operating_commands, run_watch  # noqa: E402
 from shoal.daemon.pipeline import Pipeline  # noqa: E402
 from shoal.daemon.progress import progress  # noqa: E402
+from shoal.daemon.quarantine_commands import add_quarantine_commands  # noqa: E402
+from shoal.daemon.retention import RetentionKeeper, add_prune_command  # noqa: E402
+from shoal.daemon.segment_names import add_name_command  # noqa: E402
 from shoal.daemon.store import StateStore  # noqa: E402
 from shoal.daemon.transform_commands import add_transform_commands  # noqa: E402
 
@@ -93,6 +96,9 @@ def build_parser() -> argparse.ArgumentParser:
     add_alert_commands(cmd, with_config, open_service_parts)   # alerts, rebaseline, replay
     add_backfill_command(cmd, with_config, _stop_on_signals)   # backfill (Dask)
     add_transform_commands(cmd, with_config)   # suggest-transforms
+    add_prune_command(cmd, with_config, open_service_parts)    # prune (retention)
+    add_quarantine_commands(cmd, with_config)                  # quarantine list/retry/drop
+    add_name_command(cmd, with_config)                         # name a segment
     with_config(cmd("config", "print the effective configuration (every key, defaults "
                               "filled in); exit 2 if it is not valid", _cmd_config))
     sp = cmd("demo", "run the cold-storage warehouse scenario end to end", _cmd_demo)
@@ -163,10 +169,13 @@ def _cmd_ingest(args) -> int:
     results = []
     with alert_delivery(open_service_parts, settings, drain_seconds=10.0) as (
             layout, store, pipeline):
+        retention = RetentionKeeper(pipeline)
         with _stop_on_signals(pipeline.stop):
             for p in progress(paths, total=len(paths), desc="inputs", unit="file"):
                 in_inbox = p.resolve().parent == layout.inbox
                 results.append(pipeline.process(p, in_inbox=in_inbox))
+                retention.between_inputs()
+        retention.run()
     bad = [r for r in results if r.outcome in ("quarantined", "refused", "vanished")]
     for r in results:
         extra = f" ({r.reason}: {r.detail})" if r.reason else \

@@ -25,6 +25,8 @@ from prometheus_client.core import (
 from prometheus_client.registry import Collector
 
 from shoal.daemon.readout import StateReader, open_alerts, read_alerts
+from shoal.daemon.quarantine_commands import quarantine_summary
+from shoal.daemon.retention import compacted_notifications, compacted_totals
 
 __all__ = ["LedgerCollector", "build_registry", "render_metrics", "PROCESSING_BUCKETS"]
 
@@ -42,8 +44,10 @@ class LedgerCollector(Collector):
     """
 
     def __init__(self, reader: StateReader, live: Callable[[], dict] | None = None,
-                 lock: threading.Lock | None = None, wall: Callable[[], float] = time.time):
+                 lock: threading.Lock | None = None, wall: Callable[[], float] = time.time,
+                 layout=None):
         self.reader = reader
+        self.layout = layout
         self.live = live
         self.lock = lock or threading.Lock()
         self.wall = wall
@@ -51,6 +55,11 @@ class LedgerCollector(Collector):
         self._inputs = dict.fromkeys(OUTCOMES, 0)
         self._rows = dict.fromkeys(OUTCOMES, 0)
         self._rows_invalid = 0
+        # Ledger rows removed by retention still count (their totals are kept apart).
+        for outcome, t in compacted_totals(reader.db).items():
+            self._inputs[outcome] = self._inputs.get(outcome, 0) + t["inputs"]
+            self._rows[outcome] = self._rows.get(outcome, 0) + t["rows"]
+            self._rows_invalid += t["rows_invalid"]
         self._buckets = [0] * (len(PROCESSING_BUCKETS) + 1)
         self._seconds_sum = 0.0
         self._last_commit = None
@@ -127,6 +136,9 @@ class LedgerCollector(Collector):
                                     "Alert notifications by status and severity",
                                     labels=["status", "severity"])
         counts: dict[tuple[str, str], int] = {}
+        for key, n in compacted_notifications(self.reader.db).items():  # removed by retention
+            status, severity = key.split("/", 1)
+            counts[(status, severity)] = n
         alerts = read_alerts(self.reader)
         for a in alerts:
             key = (str(a.get("status")), str(a.get("severity")))
@@ -147,6 +159,13 @@ class LedgerCollector(Collector):
             "SELECT COUNT(*) FROM alert_outbox WHERE delivered_at IS NULL").fetchone()[0]
         yield GaugeMetricFamily("shoal_alerts_undelivered", "Alerts in the outbox not yet "
                                 "delivered to every sink", value=pending)
+        if self.layout is not None:
+            held = GaugeMetricFamily("shoal_quarantined_inputs",
+                                     "Inputs in the quarantine folder now, by reason",
+                                     labels=["reason"])
+            for reason, n in sorted(quarantine_summary(self.layout)["by_reason"].items()):
+                held.add_metric([reason], n)
+            yield held
 
     def _live_families(self, live: dict):
         if "queue_depth" in live:
@@ -184,10 +203,12 @@ def _numbers(stats) -> list[tuple[str, float]]:
 
 
 def build_registry(reader: StateReader, live: Callable[[], dict] | None = None,
-                   lock: threading.Lock | None = None) -> CollectorRegistry:
-    """A registry of its own (never the global one) holding shoal's collector."""
+                   lock: threading.Lock | None = None, layout=None) -> CollectorRegistry:
+    """A registry of its own (never the global one) holding shoal's collector.
+
+    With ``layout``, also the inputs in quarantine by reason."""
     registry = CollectorRegistry(auto_describe=False)
-    registry.register(LedgerCollector(reader, live, lock))
+    registry.register(LedgerCollector(reader, live, lock, layout=layout))
     return registry
 
 

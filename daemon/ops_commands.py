@@ -19,7 +19,12 @@ def add_operating_commands(cmd, with_config) -> None:
     sp.add_argument("--out", default="shoal-report.html", metavar="PATH",
                     help="HTML file to write (default: shoal-report.html)")
     sp.add_argument("--since", metavar="WHEN",
-                    help="only history from then on: 24h, 30min, 7d, or an ISO date/time")
+                    help="only history from then on, in the plots' x units: with "
+                         "drift.time_column a data time (ISO, e.g. 2026-05-01T08:00) or a "
+                         "duration back from the newest data (7d, 24h, 30min); without one "
+                         "a stream row (250000, 250k, 1.5M)")
+    sp.add_argument("--until", metavar="WHEN",
+                    help="only history up to then, in the same units as --since")
     sp = with_config(cmd("status", "one-screen summary: segments, alert counts, lag, "
                                    "last error", _cmd_status))
     sp.add_argument("--json", action="store_true", help="print JSON instead of text")
@@ -43,14 +48,13 @@ def _reader(settings):
 
 
 def _cmd_report(args) -> int:
-    from shoal.daemon.report import parse_since, write_report
+    from shoal.daemon.report import write_report
 
     settings = _settings(args)
-    since = parse_since(args.since)
     layout, reader = _reader(settings)
     try:
         out = write_report(reader, settings, layout, Path(args.out), config=str(args.config),
-                           since=since)
+                           since=args.since, until=args.until)
     finally:
         reader.close()
     print(f"report written to {out}")

@@ -62,6 +62,7 @@ from shoal.daemon.gate import input_kind
 from shoal.daemon.layout import Layout
 from shoal.daemon.logs import log_event
 from shoal.daemon.quarantine import move_out, quarantine
+from shoal.daemon.segment_names import name_alerts, segment_names, with_segment_names
 from shoal.daemon.readers import Frame, file_digest, iter_frames, prefetch
 from shoal.daemon.store import Checkpoint, HistoryRow, InputCommit, LedgerEntry, StateStore
 from shoal.daemon import transforming
@@ -376,7 +377,7 @@ class Pipeline:
             return _labels_metadata(digest[0], algorithm, entry.name, version())
 
         def checked(frames):
-            for table in tables(frames):
+            for table in self._named(tables(frames)):
                 self._check_stop()
                 yield table
         # named after a placeholder digest until the digest is known
@@ -450,8 +451,9 @@ class Pipeline:
         entry = _with(entry, digest=digest, labels=labels.name, rows=run.rows,
                       rows_invalid=run.invalid)
         self._check_stop()
-        alerts = (watch.alerts if watch is not None else []) + \
-            (life.alerts if life is not None else [])
+        alerts = name_alerts((watch.alerts if watch is not None else []) +
+                             (life.alerts if life is not None else []),
+                             segment_names(self.store.db))
         applied = rebaseline is not None and watch.rebaselined
         commit = InputCommit(entry, learned=True, checkpoint=checkpoint,
                              warmup_rows=warmup_keep, clear_warmup=clear_warmup,
@@ -484,6 +486,12 @@ class Pipeline:
         self.state = ModelState(version, mixture, extra, buffered, run.transforms)
         return result
 
+    def _named(self, tables):
+        """Labels tables with the ``segment_name`` column when ``output.segment_names``."""
+        if not self.settings.output.segment_names:
+            return tables
+        return with_segment_names(tables, segment_names(self.store.db))
+
     def _times(self, frame: Frame):
         """The time column of the valid rows (``drift.time_column``), or None."""
         name = self.settings.drift.time_column
@@ -505,7 +513,8 @@ class Pipeline:
         watch.transforms = st.transforms
         watch.rebaseline(st.mixture, note)
         extra = dict(st.extra, drift=watch.state)
-        self.store.apply_rebaseline(request_id, st.version, extra, watch.alerts)
+        self.store.apply_rebaseline(request_id, st.version, extra,
+                                    name_alerts(watch.alerts, segment_names(self.store.db)))
         self.state = replace(st, extra=extra)
         log_event("drift_rebaselined", model_version=st.version, note=note)
         watch.log_alerts(st.version)
@@ -674,8 +683,9 @@ class Pipeline:
             digest = digest_file(f, algorithm)
             with self._frames(f, kind, os.fstat(f.fileno()).st_size >= _THREADED_BYTES) \
                     as frames:
-                tables = _scored_tables(count.counted(frames, st.mixture), st.mixture,
-                                        st.extra.get("unusual_below", -np.inf), st.version)
+                tables = self._named(_scored_tables(
+                    count.counted(frames, st.mixture), st.mixture,
+                    st.extra.get("unusual_below", -np.inf), st.version))
                 write_labels_stream(tables, out, fmt, lambda: _labels_metadata(
                     digest, algorithm, path.name, st.version), threaded=frames.threaded)
         return Result("labelled", path.name, count.rows, count.invalid, out,

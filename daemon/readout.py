@@ -20,6 +20,9 @@ from shoal.config import Settings
 from shoal.daemon.errors import StateError
 from shoal.daemon.gate import ReadinessGate
 from shoal.daemon.layout import Layout
+from shoal.daemon.liveness import service_state
+from shoal.daemon.quarantine_commands import quarantine_summary
+from shoal.daemon.retention import compacted_totals
 from shoal.daemon.store import Checkpoint, StateStore
 from shoal.daemon.store_words import (
     extra_in_current_words,
@@ -29,7 +32,7 @@ from shoal.daemon.store_words import (
 from shoal.daemon.summary import segment_summary
 
 __all__ = ["StateReader", "open_reader", "read_alerts", "open_alerts", "inbox_backlog", "state_snapshot",
-           "format_status", "ledger_totals"]
+           "format_status", "format_service", "ledger_totals"]
 
 _ALERT_TABLES = ("alert_history", "alerts", "alert_outbox")
 
@@ -69,11 +72,14 @@ def open_reader(layout: Layout) -> StateReader:
 
 def ledger_totals(reader: StateStore) -> dict[str, Any]:
     """Inputs and rows per ledger outcome, the last commit time and the last input."""
-    by = {}
+    by = {k: dict(v) for k, v in compacted_totals(reader.db).items()}  # rows pruned away
     for outcome, n, rows, bad in reader.db.execute(
             "SELECT outcome, COUNT(*), COALESCE(SUM(rows), 0), COALESCE(SUM(rows_invalid), 0) "
             "FROM ledger GROUP BY outcome"):
-        by[outcome] = {"inputs": n, "rows": rows, "rows_invalid": bad}
+        t = by.setdefault(outcome, {"inputs": 0, "rows": 0, "rows_invalid": 0})
+        t["inputs"] += n
+        t["rows"] += rows
+        t["rows_invalid"] += bad
     last_commit = reader.db.execute(
         "SELECT MAX(finished_at) FROM ledger WHERE outcome = 'committed'").fetchone()[0]
     last = reader.db.execute("SELECT name, outcome, rows, finished_at, model_version FROM ledger "
@@ -195,6 +201,7 @@ def state_snapshot(reader: StateReader, settings: Settings, layout: Layout,
             "SELECT name FROM ledger WHERE outcome IN ('committed', 'duplicate')")}
     return {
         "time": now,
+        "service": service_state(layout.state, layout.lock, now),
         "model_version": summary["model_version"],
         "features": summary["features"],
         "warmup": summary.get("warmup"),
@@ -204,6 +211,7 @@ def state_snapshot(reader: StateReader, settings: Settings, layout: Layout,
         "last_commit_time": totals["last_commit_time"],
         "last_input": totals["last_input"],
         "last_error": totals["last_error"],
+        "quarantine": quarantine_summary(layout),
         "alert_counts": counts,
         "alerts_active": len(raised),
         "recent_alerts": alerts[:recent_alerts],
@@ -228,7 +236,7 @@ def _num(v) -> str:
 def format_status(snap: dict, width: int = 100) -> str:
     """One terminal screen: model, inputs, lag, segments, alerts, last error."""
     now = snap["time"]
-    lines = []
+    lines = [format_service(snap.get("service"), now)]
     inputs = snap["inputs"]
     n = {k: v["inputs"] for k, v in inputs.items()}
     lines.append(f"model version {snap['model_version']}"
@@ -250,28 +258,64 @@ def format_status(snap: dict, width: int = 100) -> str:
         lines.append("")
         feats = list(snap["features"])
         median = snap["segments"][0].get("median", {})   # transformed features
-        head = ["segment", "weight", "rows"] + [f"{f} median" if f in median else f"{f} mean"
-                                                for f in feats]
-        table = [head] + [[str(s["id"]), f"{s['weight']:.3f}", str(s["rows"])]
+        named = any(s.get("name") for s in snap["segments"])
+        fixed = 4 if named else 3
+        head = ["segment"] + (["name"] if named else []) + ["weight", "rows"] + \
+            [f"{f} median" if f in median else f"{f} mean" for f in feats]
+        table = [head] + [[str(s["id"])] + ([s.get("name") or "-"] if named else [])
+                          + [f"{s['weight']:.3f}", str(s["rows"])]
                           + [f"{s['mean'][f]:.4g}" for f in feats] for s in snap["segments"]]
         widths = [max(len(r[i]) for r in table) for i in range(len(head))]
         shown = len(head)   # whole columns only, as many as fit the screen
-        while shown > 3 and sum(widths[:shown]) + 2 * (shown - 1) > width:
+        while shown > fixed and sum(widths[:shown]) + 2 * (shown - 1) > width:
             shown -= 1
         for r in table:
-            lines.append("  ".join(c.rjust(w) for c, w in zip(r[:shown], widths)))
+            lines.append("  ".join(c.ljust(w) if named and i == 1 else c.rjust(w)
+                                   for i, (c, w) in enumerate(zip(r[:shown], widths))))
         if shown < len(head):
             lines.append(f"(+{len(head) - shown} more features: shoal segments -c CONFIG)")
     lines.append("")
     counts = snap["alert_counts"]
     lines.append(f"alerts: {snap.get('alerts_active', 0)} active now; notifications: "
                  + (", ".join(f"{v} {k}" for k, v in sorted(counts.items())) or "none"))
+    names = {s["id"]: s.get("name") for s in snap["segments"] if s.get("name")}
     for a in snap["recent_alerts"][:5]:
+        seg = a.get("segment", "-")
+        name = a.get("segment_name") or names.get(seg)
         lines.append(f"  {a.get('status', '?'):9s} {a.get('severity', '?'):8s} segment "
-                     f"{a.get('segment', '-')} {a.get('statistic', '-')} "
+                     f"{seg}{f' ({name})' if name else ''} {a.get('statistic', '-')} "
                      f"value {_num(a.get('value'))} bound {_num(a.get('bound'))}"[:width])
+    q = snap.get("quarantine") or {}
+    latest = q.get("latest")
+    lines.append(f"quarantine: {q.get('count', 0)} input(s)" + (
+        f"; latest {latest['name']}: {latest['reason']} ({_ago(now - latest['time'])} ago)"
+        if latest else "")[:width])
     err = snap["last_error"]
     lines.append("last error: " + ("none" if err is None else
                                    f"{err['name']}: {err['reason']} "
                                    f"({_ago(now - err['time'])} ago)"[:width]))
+    failure = (snap.get("service") or {}).get("last_failure")
+    if failure:
+        lines.append(f"last worker failure: {failure.get('detail')} (pid {failure.get('pid')}, "
+                     f"{_ago(now - failure['time'])} ago)"[:width])
     return "\n".join(lines)
+
+
+def format_service(service: dict | None, now: float) -> str:
+    """'service: running, pid N, last progress 1.2 s ago' or 'service: not running ...'."""
+    if not service:
+        return "service: unknown"
+    if service["running"]:
+        text = f"service: running, pid {service['pid'] or '?'}"
+        if service.get("last_progress") is not None:
+            text += f", last progress {_ago(now - service['last_progress'])} ago"
+        if service.get("worker_alive") is False:
+            text += " (its worker has stopped)"
+        return text
+    text = "service: not running"
+    last = service.get("last_run")
+    if last and last.get("pid"):
+        when = last.get("stopped") or last.get("last_progress")
+        text += (f" (last run pid {last['pid']}"
+                 + (f", ended {_ago(now - when)} ago" if when else "") + ")")
+    return text

@@ -1,10 +1,12 @@
 """``shoal report``: one self-contained HTML file with the segment history in pictures.
 
-Everything comes from the state store, read-only (the report can be made
-beside a running service): the segment history, the alerts, the latest
-checkpoint (current segments, baseline bands) and a sample of recent rows
-(the committed inputs in ``processed/``, or the inbox when inputs are kept,
-joined row by row with their labels files). Images are PNG, embedded as
+Everything comes from the state store and the labels files, read-only (the report
+can be made beside a running service): the segment history, the alerts, the
+latest checkpoint (current segments, baseline bands), each input's place on the
+x axis and its fit (:mod:`shoal.daemon.timeline`: data time when
+``drift.time_column`` is set, else stream rows) and a sample of recent rows (the
+committed inputs in ``processed/``, or the inbox when inputs are kept, joined row
+by row with their labels files). Images are PNG, embedded as
 ``data:`` URIs; the page has no script and loads nothing from elsewhere.
 """
 from __future__ import annotations
@@ -12,6 +14,8 @@ from __future__ import annotations
 import base64
 import datetime as _dt
 import html
+import json
+import math
 import re
 import time
 from pathlib import Path
@@ -31,15 +35,20 @@ from shoal.daemon.progress import progress
 from shoal.daemon.readers import read_input
 from shoal.daemon.readout import StateReader, read_alerts, state_snapshot
 from shoal.daemon.transforming import centres, from_meta
+from shoal.daemon.retention import compacted_totals
+from shoal.daemon.segment_names import segment_names
+from shoal.daemon.timeline import Axis, axis_events, build_axis, parse_bound
 
-__all__ = ["REPORT_PLOTS", "parse_since", "report_data", "render_plots", "build_report",
+__all__ = ["REPORT_PLOTS", "parse_since", "report_data", "render_figures", "render_plots",
+           "history_span", "build_report",
            "write_report", "recent_rows", "feature_units", "drift_bounds", "page_html"]
 
 # id -> caption of every plot in the report (the status page shows the first and last).
 REPORT_PLOTS = {
     "weights": "Segment weights over time",
     "means": "Each segment's mean per feature over time, with its baseline band",
-    "drift": "Drift statistics against their bounds, with alert markers",
+    "drift": "Segment drift statistics against their bounds, with alert markers",
+    "fit": "Fit of the whole model (fit_drop) against its bound, with alert markers",
     "pca": "Recent rows in the two most informative directions (PCA), with 2-sd ellipses",
 }
 
@@ -97,15 +106,16 @@ def _read_labels(path: Path) -> np.ndarray:
 
 
 def recent_rows(reader: StateReader, settings: Settings, layout: Layout, *,
-                since: float | None = None, max_rows: int = 3000,
+                versions: set[int] | None = None, max_rows: int = 3000,
                 max_inputs: int = 8) -> tuple[np.ndarray, np.ndarray]:
     """A seeded sample of recent rows (data units) and their segments (-1: none).
 
-    Inputs are found in ``processed/`` (or the inbox when inputs are kept) by name and
-    checked against the ledger's size; an input that has gone is skipped.
+    Inputs (of ``versions`` when given) are found in ``processed/`` (or the inbox when
+    inputs are kept) by name and checked against the ledger's size; an input that has
+    gone is skipped.
     """
     entries = [e for e in reversed(reader.ledger("committed"))
-               if e.labels and (since is None or e.finished_at >= since)][:max_inputs]
+               if e.labels and (versions is None or e.model_version in versions)][:max_inputs]
     xs, segs = [], []
     for e in entries:
         src = (layout.inbox if settings.output.keep_inputs else layout.processed) / e.name
@@ -157,14 +167,62 @@ def _baseline_bands(extra: Mapping[str, Any], history: Sequence[Mapping],
     return out
 
 
+def _fit_points(reader: StateReader, axis: Axis) -> list[tuple[int, float]]:
+    """(model version, fit_drop) of each input with a known baseline in force: the
+    baseline's mean log-density per row (kept checkpoints record each baseline and the
+    version it was taken at) minus the input's mean, from its labels file."""
+    taken: dict[int, float] = {}
+    for (extra,) in reader.db.execute("SELECT extra FROM checkpoints ORDER BY version"):
+        drift = json.loads(extra).get("drift") or {}
+        ref, info = drift.get("baseline"), drift.get("baseline_info")
+        if isinstance(ref, Mapping) and isinstance(info, Mapping) and \
+                isinstance(ref.get("log_density"), (int, float)) and \
+                info.get("model_version") is not None:
+            taken[int(info["model_version"])] = float(ref["log_density"])
+    if not taken:
+        return []
+    applied = sorted(int(r["model_version"]) for r in reader.rebaselines()
+                     if r.get("applied") is not None and r.get("model_version") is not None)
+    starts = sorted(taken)
+    out = []
+    for v, ld in sorted(axis.fit.items()):
+        at = [m for m in starts if m <= v]
+        if not at:
+            continue
+        m = at[-1]
+        if any(m < r < v and r not in taken for r in applied):
+            continue          # a baseline taken in between that no kept checkpoint records
+        out.append((v, taken[m] - ld))
+    return out
+
+
 def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
-                since: float | None = None, now: float | None = None) -> dict[str, Any]:
-    """Everything the report draws, read from the state."""
+                since: str | None = None, until: str | None = None,
+                now: float | None = None) -> dict[str, Any]:
+    """Everything the report draws, read from the state.
+
+    ``since``/``until`` are in the units of the x axis (:func:`timeline.parse_bound`):
+    data time when ``drift.time_column`` is set, else stream rows.
+    """
     now = time.time() if now is None else now
-    history = reader.history()
-    all_history = history
-    if since is not None:
-        history = [h for h in history if h["created"] >= since]
+    pruned = compacted_totals(reader.db).get("committed", {}).get("rows", 0)
+    axis = build_axis(reader.ledger("committed"), layout.outbox, settings.drift.time_column,
+                      rows_before=pruned)
+    lo = parse_bound(since, axis, "--since")
+    hi = parse_bound(until, axis, "--until")
+    if lo is not None and hi is not None and hi < lo:
+        raise UsageError(f"--until ({until}) is before --since ({since})")
+    shown = {v for v, x in axis.x.items()
+             if (lo is None or x >= lo) and (hi is None or x <= hi)}
+    all_history = reader.history()
+    history = [h for h in all_history if h["version"] in shown]
+    spans = [axis.span[v] for v in shown if v in axis.span]
+    view = None
+    if spans:   # the shown inputs' data, cut to the range asked for
+        view = (max(min(a for a, _ in spans), -math.inf if lo is None else lo),
+                min(max(b for _, b in spans), math.inf if hi is None else hi))
+    events = [e for e in axis_events(axis, all_history, reader.rebaselines())
+              if e["version"] in shown]
     cp = reader.latest_checkpoint()
     means, covs = {}, {}
     if cp is not None:
@@ -172,13 +230,16 @@ def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
         for k, sid in enumerate(m.ids.tolist()):
             means[int(sid)] = m.data_means()[k]
             covs[int(sid)] = m.data_covariance_matrices()[k]
-    X, seg = recent_rows(reader, settings, layout, since=since)
+    X, seg = recent_rows(reader, settings, layout,
+                         versions=shown if (lo is not None or hi is not None) else None)
     if cp is not None:   # the PCA view shares the model's (transformed) units
         transforms = from_meta(cp.meta, len(settings.features))
         if not transforms.identity and len(X):
             Y, inside = transforms.forward(X)
             X, seg = Y[inside], seg[inside]
-    alerts = read_alerts(reader, since=since)
+    alerts = read_alerts(reader)
+    if lo is not None or hi is not None:
+        alerts = [a for a in alerts if _alert_version(a) in shown]
     return {
         "snapshot": state_snapshot(reader, settings, layout, now=now, recent_alerts=50),
         "history": history,
@@ -195,26 +256,70 @@ def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
                     if k != "none"},
         "bounds": drift_bounds(settings),
         "features": list(settings.features),
-        "since": since,
+        "names": segment_names(reader.db),
+        "axis": axis,
+        "view": view,
+        "events": events,
+        "fit": [(v, y) for v, y in _fit_points(reader, axis) if v in shown],
+        "since": lo,
+        "until": hi,
+        "shown_inputs": len(shown),
         "now": now,
     }
+
+
+def _alert_version(alert: Mapping[str, Any]) -> int | None:
+    mv = alert.get("model_version")
+    v = mv.get("last") if isinstance(mv, Mapping) else alert.get("version")
+    return None if v is None else int(v)
+
+
+def render_figures(data: Mapping[str, Any], which: Sequence[str] = tuple(REPORT_PLOTS),
+                   wrap: Callable = lambda items, **kw: items) -> dict[str, Any]:
+    """The matplotlib figure of each plot id in ``which`` (what tests inspect)."""
+    from shoal.daemon import plots
+
+    axis, events, view = data["axis"], data["events"], data["view"]
+    names = data.get("names") or {}
+    makers = {
+        "weights": lambda: plots.weights_figure(data["history"], axis, events, view, names),
+        "means": lambda: plots.means_figure(data["history"], data["features"], data["units"],
+                                            data["baseline"], axis, events, view, names,
+                                            data.get("centres")),
+        "drift": lambda: plots.drift_figure(data["history"], data["bounds"], data["alerts"],
+                                            axis, events, view, names),
+        "fit": lambda: plots.fit_figure(data["fit"], data["bounds"].get("fit_drop"),
+                                        data["alerts"], axis, events, view),
+        "pca": lambda: plots.pca_figure(data["sample"][0], data["sample"][1], data["means"],
+                                        data["covariances"], data["features"]),
+    }
+    return {name: makers[name]() for name in wrap(list(which), total=len(which),
+                                                  desc="plots", unit="plot")}
 
 
 def render_plots(data: Mapping[str, Any], which: Sequence[str] = tuple(REPORT_PLOTS),
                  wrap: Callable = lambda items, **kw: items) -> dict[str, bytes]:
     """PNG bytes of each plot id in ``which``."""
-    from shoal.daemon import plots
+    from shoal.daemon.plots import png
 
-    makers = {
-        "weights": lambda: plots.weights_png(data["history"]),
-        "means": lambda: plots.means_png(data["history"], data["features"], data["units"],
-                                         data["baseline"], data.get("centres")),
-        "drift": lambda: plots.drift_png(data["history"], data["bounds"], data["alerts"]),
-        "pca": lambda: plots.pca_png(data["sample"][0], data["sample"][1], data["means"],
-                                     data["covariances"], data["features"]),
-    }
-    return {name: makers[name]() for name in wrap(list(which), total=len(which),
-                                                  desc="plots", unit="plot")}
+    return {name: png(fig) for name, fig in render_figures(data, which, wrap).items()}
+
+
+def history_span(data: Mapping[str, Any]) -> str:
+    """What the plots cover, in words: '30 inputs, 2026-01-01 00:00 UTC to ... (data time,
+    column timestamp)'; never empty."""
+    axis, view, n = data["axis"], data["view"], data["shown_inputs"]
+    if view is None or not n:
+        return "history: no inputs committed yet" if not axis.x else \
+            "history: no inputs in the range asked for"
+    what = {"time": f"data time, column {axis.column}",
+            "number": f"column {axis.column}, in its own units", "rows": "stream rows"}[axis.kind]
+    scope = "all " if data["since"] is None and data["until"] is None else ""
+    out = (f"history: {scope}{n} input{'s' if n != 1 else ''}, {axis.describe(view[0])} to "
+           f"{axis.describe(view[1])} ({what})")
+    if axis.left_out:
+        out += f"; {axis.left_out} without a readable time left out"
+    return out
 
 
 def _utc(t: float | None) -> str:
@@ -268,6 +373,7 @@ def segments_table(snap: Mapping[str, Any], units: Mapping[str, str]) -> str:
     head = "".join(f"<th>{html.escape(f)} {'median [68%]' if f in median else 'mean ± sd'}"
                    f"<br>({html.escape(units.get(f, ''))})</th>" for f in feats)
     rows = []
+    named = any(s.get("name") for s in snap["segments"])
     for s in snap["segments"]:
         colour = segment_style(s["id"])["color"]
         cells = "".join(
@@ -276,13 +382,16 @@ def segments_table(snap: Mapping[str, Any], units: Mapping[str, str]) -> str:
             f"<td>{s['mean'][f]:.4g} ± {s['spread'][f]:.3g}</td>" for f in feats)
         rows.append(f'<tr data-segment="{s["id"]}"><td class="l">'
                     f'<span class="swatch" style="background:{colour}"></span>{s["id"]}</td>'
+                    + (f'<td class="l name">{html.escape(s.get("name") or "")}</td>'
+                       if named else "") +
                     f"<td>{s['weight']:.3f}</td><td>{s['rows']}</td>"
                     f"<td>{_fmt(s.get('age_versions'))}</td>{cells}</tr>")
     if not rows:
         w = snap.get("warmup") or {}
         return (f"<p id=\"no-segments\">No model yet: the warm-up has {w.get('rows', 0)} of "
                 f"{w.get('needed', '?')} rows.</p>")
-    return ('<table id="segments"><thead><tr><th class="l">segment</th><th>weight</th>'
+    return ('<table id="segments"><thead><tr><th class="l">segment</th>'
+            + ('<th class="l">name</th>' if named else "") + "<th>weight</th>"
             f"<th>rows</th><th>age (inputs)</th>{head}</tr></thead><tbody>"
             + "".join(rows) + "</tbody></table>")
 
@@ -304,7 +413,9 @@ def alerts_table(alerts: Sequence[Mapping[str, Any]], limit: int = 50) -> str:
             f"<tr><td class=\"l\">{_utc(a.get('created'))}</td>"
             f"<td class=\"l {status}\">{status}</td>"
             f"<td class=\"l\">{html.escape(str(a.get('severity', '')))}</td>"
-            f"<td>{html.escape(_fmt(a.get('segment')))}</td>"
+            f"<td>{html.escape(_fmt(a.get('segment')))}"
+            + (f" ({html.escape(str(a['segment_name']))})" if a.get("segment_name") else "")
+            + "</td>"
             f"<td class=\"l\">{html.escape(_fmt(a.get('statistic')))}</td>"
             f"<td>{html.escape(_fmt(a.get('value')))}</td>"
             f"<td>{html.escape(_fmt(a.get('bound')))}</td>"
@@ -334,11 +445,10 @@ def page_html(title: str, body: str, refresh_seconds: int | None = None) -> str:
 def build_report(data: Mapping[str, Any], pngs: Mapping[str, bytes], config: str) -> str:
     snap = data["snapshot"]
     n = {k: v["inputs"] for k, v in snap["inputs"].items()}
-    since = f" since {_utc(data['since'])}" if data["since"] else ""
     head = (f"<h1>shoal report</h1><p class=\"meta\">Config {html.escape(config)} · made "
             f"{_utc(data['now'])} · model version {snap['model_version']} · inputs "
             + html.escape(", ".join(f"{v} {k}" for k, v in sorted(n.items())) or "none")
-            + f" · history{html.escape(since)}</p>")
+            + f" · {html.escape(history_span(data))}</p>")
     toc = "<ul>" + "".join(f'<li><a href="#plot-{k}">{html.escape(v)}</a></li>'
                            for k, v in REPORT_PLOTS.items()) + (
         '<li><a href="#current-segments">Current segments</a></li>'
@@ -354,11 +464,11 @@ def build_report(data: Mapping[str, Any], pngs: Mapping[str, bytes], config: str
 
 
 def write_report(reader: StateReader, settings: Settings, layout: Layout, out: Path, *,
-                 config: str, since: float | None = None) -> Path:
+                 config: str, since: str | None = None, until: str | None = None) -> Path:
     """Build the report and write it atomically to ``out``."""
     from shoal.daemon.writer import atomic_file
 
-    data = report_data(reader, settings, layout, since=since)
+    data = report_data(reader, settings, layout, since=since, until=until)
     pngs = render_plots(data, wrap=progress)
     text = build_report(data, pngs, config)
     with atomic_file(Path(out), mode=0o644) as f:

@@ -25,11 +25,11 @@ from shoal.config import ConfigError, Settings
 from shoal.daemon.layout import Layout
 from shoal.daemon.logs import log_event
 from shoal.daemon.metrics import build_registry, render_metrics
-from shoal.daemon.readout import StateReader, state_snapshot
+from shoal.daemon.readout import StateReader, format_service, state_snapshot
 
 __all__ = ["Health", "StatusServer"]
 
-PAGE_PLOTS = ("weights", "drift", "pca")  # of report.REPORT_PLOTS: the key ones for the page
+PAGE_PLOTS = ("weights", "drift", "fit", "pca")  # of report.REPORT_PLOTS: the key ones for the page
 _REFRESH_SECONDS = 30
 
 
@@ -60,7 +60,7 @@ class StatusServer:
         self.wall = wall
         self.lock = threading.Lock()      # one reader connection, one request at a time on it
         self.reader = StateReader(layout.db)
-        self.registry = build_registry(self.reader, self.live, self.lock)
+        self.registry = build_registry(self.reader, self.live, self.lock, layout=layout)
         self._plots: tuple[Any, dict[str, bytes]] | None = None
         self._httpd: ThreadingHTTPServer | None = None
         self._thread: threading.Thread | None = None
@@ -138,6 +138,7 @@ class StatusServer:
         last = snap["last_input"]
         lag = snap["backlog"]["lag_seconds"]
         facts = [
+            ("service", format_service(snap.get("service"), now).split(": ", 1)[1]),
             ("health", h["status"]),
             ("ready", r["status"]),
             ("model version", snap["model_version"]),
@@ -146,6 +147,7 @@ class StatusServer:
             ("waiting in the inbox", snap["backlog"]["files"]),
             ("lag", "-" if lag is None else f"{lag:.1f} s"),
             ("queue depth", snap["live"].get("queue_depth", "-")),
+            ("quarantine", _quarantine_fact(snap.get("quarantine") or {})),
             ("last error", "none" if snap["last_error"] is None else
              f"{snap['last_error']['name']}: {snap['last_error']['reason']}"),
         ]
@@ -162,6 +164,14 @@ class StatusServer:
                 + "".join(f"<h2>{html.escape(REPORT_PLOTS[k])}</h2>"
                           + figure_html(k, pngs[k], REPORT_PLOTS[k]) for k in PAGE_PLOTS))
         return page_html("shoal status", body, refresh_seconds=_REFRESH_SECONDS)
+
+
+def _quarantine_fact(q: dict) -> str:
+    latest = q.get("latest")
+    text = f"{q.get('count', 0)} input(s)"
+    if latest:
+        text += f"; latest {latest['name']}: {latest['reason']} ({latest['detail']})"
+    return text
 
 
 class _V6Server(ThreadingHTTPServer):

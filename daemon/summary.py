@@ -6,6 +6,7 @@ from typing import Any
 
 from shoal.config import Settings
 from shoal.core import Mixture
+from shoal.daemon.segment_names import segment_names
 from shoal.daemon.store import StateStore
 from shoal.daemon.transforming import feature_centres, from_meta
 
@@ -26,6 +27,7 @@ def segment_summary(store: StateStore, settings: Settings, now: float | None = N
                          "needed": settings.warmup_rows}
         return out
     m = Mixture.from_state(cp.arrays, cp.meta)
+    names = segment_names(store.db)
     means, stds = m.data_means(), m.data_stds()
     transforms = from_meta(cp.meta, m.n_features)
     rows = cp.extra.get("segment_rows", {})
@@ -36,6 +38,7 @@ def segment_summary(store: StateStore, settings: Settings, now: float | None = N
         b = born.get(str(sid), {})
         record = {
             "id": int(sid),
+            "name": names.get(int(sid)),
             "weight": float(m.weights[k]),
             "rows": int(rows.get(str(sid), 0)),
             "mean": {f: float(v) for f, v in zip(settings.features, means[k])},
@@ -49,6 +52,8 @@ def segment_summary(store: StateStore, settings: Settings, now: float | None = N
         out["segments"].append(record)
     if include_gone:
         out["gone"] = _gone_segments(store, settings, set(m.ids.tolist()), born)
+        for g in out["gone"]:
+            g["name"] = names.get(g["id"])
     return out
 
 
@@ -102,21 +107,26 @@ def format_segments(summary: dict) -> str:
     lines[0] += f", {summary['rows_learned']} rows learned after warm-up"
     feats = summary["features"]
     first = summary["segments"][0]
-    head = ["segment", "weight", "rows", "age"] + [
+    named = any(s.get("name") for s in summary["segments"])
+    head = ["segment"] + (["name"] if named else []) + ["weight", "rows", "age"] + [
         f"{f} (median [68%])" if f in first.get("interval", {}) else f"{f} (mean±sd)"
         for f in feats]
     table = [head]
     for s in summary["segments"]:
         age = "-" if s["age_versions"] is None else f"{s['age_versions']} inputs"
-        table.append([str(s["id"]), f"{s['weight']:.3f}", str(s["rows"]), age] +
+        table.append([str(s["id"])] + ([s.get("name") or "-"] if named else []) +
+                     [f"{s['weight']:.3f}", str(s["rows"]), age] +
                      [_cell(s, f) for f in feats])
     widths = [max(len(r[i]) for r in table) for i in range(len(head))]
     for r in table:
-        lines.append("  ".join(c.rjust(w) for c, w in zip(r, widths)))
+        lines.append("  ".join(c.ljust(w) if i == 1 and named else c.rjust(w)
+                               for i, (c, w) in enumerate(zip(r, widths))))
     if summary.get("gone"):
         lines.append("segments no longer in the model (last mean±sd):")
         for g in summary["gone"]:
-            lines.append(f"  {g['id']:>3}  {g['ended']} (model version {g['ended_version']})  " +
+            name = f" ({g['name']})" if g.get("name") else ""
+            lines.append(f"  {g['id']:>3}{name}  {g['ended']} (model version "
+                         f"{g['ended_version']})  " +
                          "  ".join(f"{f} {_num(g['mean'][f])}±{_num(g['spread'][f])}"
                                    for f in feats))
     return "\n".join(lines)

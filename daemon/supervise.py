@@ -7,6 +7,11 @@ while the worker is alive and making progress, keeps ``STATUS=`` current,
 applies a SIGHUP reload between inputs, logs progress now and then, and on
 SIGTERM sends ``STOPPING=1`` and waits for the worker.
 
+The supervisor also keeps ``state/liveness.json`` (:mod:`shoal.daemon.liveness`): its
+pid, the wall time of the last progress and the last worker failure, for ``shoal
+status`` run from another process; and it applies the retention settings between
+inputs (:class:`~shoal.daemon.retention.RetentionKeeper`, on the worker).
+
 Progress is a heartbeat stamped every time the worker asks whether it should
 stop: once per turn of its loop, per record batch read and per chunk learned
 (:class:`BeatingEvent` stands in for the pipeline's stop event).
@@ -23,10 +28,12 @@ from typing import Callable
 
 from shoal.config import Settings
 from shoal.daemon.layout import Layout
+from shoal.daemon.liveness import LivenessWriter
 from shoal.daemon.logs import log_event
 from shoal.daemon.notify import Notifier
 from shoal.daemon.pipeline import Pipeline, Result
 from shoal.daemon.reload import reload_config
+from shoal.daemon.retention import RetentionKeeper
 from shoal.daemon.service import Service
 from shoal.daemon.status_http import Health, StatusServer
 
@@ -79,12 +86,20 @@ class Supervisor:
         self.notifier = notifier or Notifier()
         self.clock = clock
         self.heartbeat = Heartbeat(clock)
+        self.liveness = LivenessWriter(layout.state, monotonic=clock)
         if pipeline.stop.is_set():
             raise RuntimeError("the pipeline's stop event is already set")
         self.worker = threading.Thread(target=self._work, name="shoal-worker")
         pipeline.stop = BeatingEvent(self.heartbeat, self.worker)
+        self.retention = RetentionKeeper(pipeline, clock=clock)
+
+        def each_result(result: Result) -> None:
+            if on_result is not None:
+                on_result(result)
+            self.retention.between_inputs()
+
         self.service = Service(settings, layout, pipeline, observer_factory=observer_factory,
-                               clock=clock, on_result=on_result)
+                               clock=clock, on_result=each_result)
         self.stop_event = pipeline.stop
         self.wake = threading.Event()
         self.worker_error: BaseException | None = None
@@ -98,7 +113,9 @@ class Supervisor:
             self.service.run()
         except BaseException as exc:  # kept and re-raised by run() in the main thread
             self.worker_error = exc
-            log_event("worker_failed", logging.ERROR, detail=f"{type(exc).__name__}: {exc}")
+            detail = f"{type(exc).__name__}: {exc}"
+            log_event("worker_failed", logging.ERROR, detail=detail)
+            self.liveness.failed(detail)
         finally:
             self.wake.set()
 
@@ -205,12 +222,14 @@ class Supervisor:
         ready_sent, last_status, next_ping, next_log = False, None, 0.0, 0.0
         try:
             self.start()
+            self.liveness.tick(self.heartbeat.last, self.worker.is_alive())
             while self.worker.is_alive() and not self.stop_event.is_set():
                 self.wake.wait(tick)
                 self.wake.clear()
                 if self.stop_event.is_set() or not self.worker.is_alive():
                     break
                 now = self.clock()
+                self.liveness.tick(self.heartbeat.last, self.worker.is_alive())
                 if not ready_sent and self.heartbeat.last is not None:
                     ready_sent = True
                     self.notifier.ready(self.status_line())
@@ -233,6 +252,7 @@ class Supervisor:
         finally:
             self.notifier.stopping("stopping")
             self.shutdown()
+            self.liveness.stopped()
             self.notifier.close()
             if old_hup is not None:
                 signal.signal(signal.SIGHUP, old_hup)

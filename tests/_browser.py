@@ -4,12 +4,15 @@ A test that needs the browser calls :func:`chromium` . Without a chromium binary
 the test is skipped with the reason, unless CI is set: in CI (where .ci/run
 installs Debian's chromium and chromium-driver) a missing browser fails.
 """
+import base64
 import contextlib
+import io
 import os
 import shutil
 import tempfile
 
 import pytest
+from PIL import Image
 
 FLAGS = ("--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
          "--disable-background-networking", "--disable-component-update", "--disable-sync",
@@ -66,3 +69,23 @@ return Array.from(document.images).map(img => ({
 def console_errors(driver):
     """Console entries at level SEVERE (errors) since the last call."""
     return [e for e in driver.get_log("browser") if e.get("level") == "SEVERE"]
+
+
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # the PNG specification (ISO/IEC 15948), section 5.2
+
+
+def check_images(driver, expected_ids):
+    """Each ``figure#plot-<id>`` image is there, loaded, and a PNG that decodes in full."""
+    images = driver.execute_script(IMAGES_JS)
+    by_id = {i["id"]: i for i in images}
+    for plot in expected_ids:
+        img = by_id.get(f"plot-{plot}")
+        assert img is not None, f"plot {plot} missing; images: {[i['id'] for i in images]}"
+        assert img["complete"] and img["width"] > 0 and img["height"] > 0, img["id"]
+        assert img["src"].startswith("data:image/png;base64,")
+        data = base64.b64decode(img["src"].split(",", 1)[1])
+        assert data[:8] == PNG_SIGNATURE
+        with Image.open(io.BytesIO(data)) as im:
+            im.verify()                          # a full decode of the PNG's chunks
+            assert im.size == (img["width"], img["height"])
+    return images

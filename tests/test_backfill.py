@@ -371,3 +371,19 @@ def test_extra_passes_learn_the_history_again_and_label_from_the_last(tmp_path, 
         [out] = (tmp_path / "outbox").glob(f"{p.stem}.*.labels.parquet")
         np.testing.assert_array_equal(pq.read_table(out).column("segment").to_numpy(),
                                       last[i * ROWS:(i + 1) * ROWS])
+
+
+def test_backfill_labels_carry_segment_names_when_configured(tmp_path, client):
+    from shoal.daemon.segment_names import set_segment_name
+
+    paths = make_history(tmp_path, 12)
+    settings = load_config(write_config(tmp_path, output={"segment_names": True}))
+    backfill(settings, paths[:6], client=client, round_rows=ROUND_ROWS)
+    set_segment_name(settings.state / "state.db", 1, "group B", by="test")
+    backfill(settings, paths, client=client, round_rows=ROUND_ROWS)
+    for p in paths[6:]:
+        labels = pq.read_table(next((tmp_path / "outbox").glob(f"{p.stem}.*.labels.parquet")))
+        segs = labels.column("segment").to_pylist()
+        names = labels.column("segment_name").to_pylist()
+        assert 1 in segs
+        assert names == ["group B" if s == 1 else None for s in segs]

@@ -2,8 +2,6 @@
 /metrics against the ledger, the status page and the report in headless Chromium, and the
 endpoint's rules
 (read-only, health, readiness)."""
-import base64
-import io
 import json
 import os
 import sqlite3
@@ -13,16 +11,14 @@ import tempfile
 from pathlib import Path
 
 import pytest
-from PIL import Image
 from prometheus_client.parser import text_string_to_metric_families
 
-from _browser import IMAGES_JS, chromium, console_errors
+from _browser import PNG_SIGNATURE, check_images, chromium, console_errors
 from _ops import Watch, demo_config, demo_drops, get
 from shoal.daemon.drills import ledger_counts, wait_until
 
 N_DROPS = 20
 ROWS = 500
-PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # the PNG specification (ISO/IEC 15948), section 5.2
 
 
 @pytest.fixture(scope="module")
@@ -32,8 +28,9 @@ def running(tmp_path_factory):
     # Drift watching starts early and a weight_change bound far below any real move fires
     # alerts, so that the page, the metrics and the report have alerts to show.
     cfg = demo_config(folder, http={"port": 0},
-                      drift={"settle_rows": 2000, "window_rows": 1000, "noise_multiple": 0.0,
-                             "persist": 1, "bounds": {"weight_change": 1e-6}})
+                      drift={"time_column": "timestamp", "settle_rows": 2000,
+                             "window_rows": 1000, "noise_multiple": 0.0, "persist": 1,
+                             "bounds": {"weight_change": 1e-6}})
     watch = Watch(cfg, folder / "watch.log")
     try:
         started = watch.wait_event("http_started", timeout=60)
@@ -128,33 +125,22 @@ def _artefacts() -> Path:
     return Path(tempfile.mkdtemp(prefix="shoal-artefacts-"))
 
 
-def _check_images(driver, expected_ids):
-    images = driver.execute_script(IMAGES_JS)
-    by_id = {i["id"]: i for i in images}
-    for plot in expected_ids:
-        img = by_id.get(f"plot-{plot}")
-        assert img is not None, f"plot {plot} missing; images: {[i['id'] for i in images]}"
-        assert img["complete"] and img["width"] > 0 and img["height"] > 0, img["id"]
-        assert img["src"].startswith("data:image/png;base64,")
-        data = base64.b64decode(img["src"].split(",", 1)[1])
-        assert data[:8] == PNG_SIGNATURE
-        with Image.open(io.BytesIO(data)) as im:
-            im.verify()                          # a full decode of the PNG's chunks
-            assert im.size == (img["width"], img["height"])
-    return images
-
-
 def test_status_page_in_headless_chromium(running):
     ledger = _ledger(running["db"])
     artefacts = _artefacts()
     with chromium() as driver:
         driver.get(running["url"])
         assert driver.title == "shoal status"
+        facts = {r.find_element("css selector", "th").text: r.find_element("css selector",
+                                                                           "td").text
+                 for r in driver.find_elements("css selector", "table#facts tr")}
+        assert facts["service"].startswith(f"running, pid {running['watch'].proc.pid}")
+        assert facts["quarantine"] == "0 input(s)"
         rows = driver.find_elements("css selector", "table#segments tbody tr")
         listed = sorted(int(r.get_attribute("data-segment")) for r in rows)
         first_cells = sorted(int(r.find_element("css selector", "td").text) for r in rows)
         assert listed == first_cells == ledger["segments"] and len(listed) >= 2
-        _check_images(driver, ["weights", "drift", "pca"])
+        check_images(driver, ["weights", "drift", "fit", "pca"])
         assert driver.find_elements("css selector", "table#alerts tbody tr")
         assert console_errors(driver) == []
         shot = artefacts / "status-page.png"
@@ -176,9 +162,9 @@ def test_report_of_the_demo_run_in_headless_chromium(running, tmp_path):
     with chromium() as driver:
         driver.get(out.as_uri())
         assert driver.title == "shoal report"
-        # The plots the issue lists: weights, means with baseline bands, drift against
-        # bounds, recent rows by PCA; and the two tables.
-        _check_images(driver, ["weights", "means", "drift", "pca"])
+        # The plots: weights, means with baseline bands, drift against bounds, the
+        # model's fit (fit_drop), recent rows by PCA; and the two tables.
+        check_images(driver, ["weights", "means", "drift", "fit", "pca"])
         ids = sorted(int(r.get_attribute("data-segment")) for r in
                      driver.find_elements("css selector", "table#segments tbody tr"))
         assert ids == _ledger(running["db"])["segments"]
@@ -195,7 +181,10 @@ def test_status_command_one_screen(running, capsys):
     assert main(["status", "-c", str(running["config"])]) == 0
     out = capsys.readouterr().out
     ledger = _ledger(running["db"])
-    assert out.startswith(f"model version {N_DROPS},")
+    lines = out.splitlines()
+    assert lines[0].startswith(f"service: running, pid {running['watch'].proc.pid}, "
+                               "last progress "), lines[0]
+    assert lines[1].startswith(f"model version {N_DROPS},")
     assert f"inputs: {N_DROPS} committed" in out
     assert f"last input: {running['names'][-1]} (committed" in out
     listed = [int(line.split()[0]) for line in out.splitlines()
