@@ -138,12 +138,17 @@ def _time_range(times):
     if times is None or len(times) == 0:
         return None
     t = np.asarray(times)
-    if t.dtype == object or t.dtype.kind == "U":     # text (CSV): ISO times if they parse
+    if t.dtype == object or t.dtype.kind == "U":
+        # text (CSV): numbers if they all parse as numbers (as the same column read from
+        # Parquet gives), else ISO times if they parse
+        values = [str(v) for v in t.tolist() if v is not None]
         try:
-            t = np.array([str(v).rstrip("Z") for v in t.tolist() if v is not None],
-                         dtype="datetime64[ms]")
+            t = np.array([float(v) for v in values])
         except ValueError:
-            pass
+            try:
+                t = np.array([v.rstrip("Z") for v in values], dtype="datetime64[ms]")
+            except ValueError:
+                pass
     if np.issubdtype(t.dtype, np.datetime64):
         t = t[~np.isnat(t)]
         if not t.size:
@@ -329,7 +334,15 @@ class InputWatch:
         win["versions"] = _widen(win["versions"], self.version, self.version)
         span = _time_range(times)
         if span is not None:
-            win["time"] = _widen(win["time"], *span)
+            if win["time"][0] is None or _time_kind(win["time"][0]) == _time_kind(span[0]):
+                win["time"] = _widen(win["time"], *span)
+            else:   # numbers after times or text, or the other way: not comparable
+                win["times_dropped"] = win.get("times_dropped", 0) + len(X)
+                log_event("time_column_kind_changed", logging.WARNING, file=self.file,
+                          rows=len(X), window_time=win["time"], input_time=list(span),
+                          detail="drift.time_column changed kind (numbers / times or "
+                                 "text) between inputs; these rows' times are left out "
+                                 "of the window's time range")
         win["center"] = mixture.center.tolist()
 
     def _flush(self) -> None:
@@ -750,8 +763,16 @@ def _files(windows) -> list[str]:
     return out
 
 
+def _time_kind(value) -> str:
+    """Times in a window's range are numbers or text (ISO times); never both."""
+    return "number" if isinstance(value, (int, float)) and not isinstance(value, bool) \
+        else "text"
+
+
 def _span(pairs):
     pairs = [p for p in pairs if p]
     if not pairs:
         return None
+    kind = _time_kind(pairs[-1][0])   # the latest kind, if the column changed kind
+    pairs = [p for p in pairs if _time_kind(p[0]) == kind]
     return {"first": min(p[0] for p in pairs), "last": max(p[1] for p in pairs)}

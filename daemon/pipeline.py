@@ -29,9 +29,11 @@ from __future__ import annotations
 import contextlib
 import logging
 import os
+import sqlite3
 import stat as stat_mod
 import threading
 import time
+import traceback
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, BinaryIO, Callable, Iterable
@@ -53,8 +55,10 @@ from shoal.daemon.digest import digest_file
 from shoal.daemon.errors import (
     InputRefused,
     InputRejected,
+    InputChanged,
     InputVanished,
     Interrupted,
+    ServiceError,
     StateError,
 )
 from shoal.daemon.gate import input_kind
@@ -63,7 +67,13 @@ from shoal.daemon.logs import log_event
 from shoal.daemon.quarantine import move_out, quarantine
 from shoal.daemon.readers import Frame, file_digest, iter_frames, prefetch
 from shoal.daemon.store import Checkpoint, HistoryRow, InputCommit, LedgerEntry, StateStore
-from shoal.daemon.writer import fsync_dir, labels_name, labels_table, write_labels_stream
+from shoal.daemon.writer import (
+    display_name,
+    fsync_dir,
+    labels_name,
+    labels_table,
+    write_labels_stream,
+)
 
 if TYPE_CHECKING:
     from shoal.daemon.monitor import DriftMonitor, InputWatch
@@ -79,6 +89,8 @@ _UNUSUAL_MEMORY_ROWS = 50_000
 # smaller ones in the worker's thread (starting a thread can take a few ms: a switch
 # interval of the interpreter lock).
 _THREADED_BYTES = 8 << 20
+# Quarantine reasons of failures nobody foresaw (logged with their traceback).
+_UNEXPECTED = ("unreadable", "internal_error")
 
 
 @dataclass
@@ -145,6 +157,8 @@ class Pipeline:
         self.settings_listeners: list = []
         self.state = self.load_state()
         self._group: list[_Pending] | None = None   # the open group (process_group)
+        self._attempt: str | None = None   # the attempt key of the input in progress
+        self._attempted: set[str | None] = set()   # attempt keys this process recorded
         # the compiled scoring kernels checked once (milliseconds) at start-up rather
         # than failing inside the first input
         fused.warm()
@@ -186,10 +200,17 @@ class Pipeline:
 
     # -- one input -----------------------------------------------------------------
     def process(self, path: Path, *, in_inbox: bool = True) -> Result:
+        """Process one input and commit it (a group of one: :meth:`process_group`)."""
+        results = self.process_group([path], in_inbox=in_inbox)
+        if not results:
+            raise Interrupted("stop requested")
+        return results[0]
+
+    def _process_one(self, path: Path, in_inbox: bool) -> Result:
         path = Path(path)
         t0 = self.monotonic()
         seen_at = self.wall()
-        name = path.name
+        name = display_name(path.name)
         log_event("input_started", logging.DEBUG, file=name, model_version=self.state.version)
         try:
             result = self._process(path, name, in_inbox, seen_at)
@@ -199,6 +220,9 @@ class Pipeline:
         except InputRefused as exc:
             log_event("input_refused", logging.WARNING, file=name, detail=str(exc))
             return Result("refused", name, detail=str(exc))
+        except InputChanged as exc:
+            log_event("input_changed", logging.WARNING, file=name, detail=str(exc))
+            return Result("changed", name, detail=str(exc))
         except InputRejected as exc:
             return self._quarantine(path, name, in_inbox, exc, seen_at, t0)
         duration = self.monotonic() - t0
@@ -220,25 +244,77 @@ class Pipeline:
         fails (``OSError``, ``sqlite3.Error``), nothing of the uncommitted inputs
         is kept and the error is raised: ``self.state`` is then ahead of the store
         and the caller reloads it (:meth:`load_state`).
+
+        Each input's attempt is recorded in the store before it is read
+        (:meth:`StateStore.attempts`) and cleared by its commit or quarantine. An input
+        with an attempt left by an earlier process (which died on it, or on an input
+        of its group) is taken on its own, and quarantined unread once
+        ``limits.max_attempts`` processes died on it.
         """
         if self._group is not None:
             raise RuntimeError("process_group called inside a group")
         self._group = []
         results: list[Result] = []
         try:
-            for path in paths:
+            for run, suspect in self._attempt_runs([Path(p) for p in paths]):
                 self._check_stop()
-                results.append(self.process(path, in_inbox=in_inbox))
+                if suspect:
+                    self._flush()   # the inputs before it are not lost with it
+                    key, = run.values()
+                    tried = self.store.attempts([key])[key]
+                    if tried >= self.settings.limits.max_attempts:
+                        path, = run
+                        results.append(self._crashed(path, in_inbox, key, tried))
+                        continue
+                self.store.attempts([k for k in run.values()
+                                     if k is not None and k not in self._attempted], add=True)
+                self._attempted.update(run.values())
+                for path, key in run.items():
+                    self._check_stop()
+                    self._attempt = key
+                    results.append(self._process_one(path, in_inbox))
+                if suspect:
+                    self._flush()
         except Interrupted:
             pass  # the inputs done so far are committed below
         except BaseException:
             self._group = None
             raise
+        finally:
+            self._attempt = None
         try:
             self._flush()
         finally:
             self._group = None
         return results
+
+    def _attempt_runs(self, paths: list[Path]):
+        """``paths`` in order as runs ``({path: attempt key}, suspect)``: an input with an
+        attempt of an earlier process alone (suspect), the others together."""
+        keys = {p: _attempt_key(p) for p in paths}
+        prior = self.store.attempts([k for k in keys.values()
+                                     if k is not None and k not in self._attempted])
+        run: dict[Path, str | None] = {}
+        for path, key in keys.items():
+            if key is not None and prior.get(key, 0) > 0:
+                if run:
+                    yield run, False
+                    run = {}
+                yield {path: key}, True
+            else:
+                run[path] = key
+        if run:
+            yield run, False
+
+    def _crashed(self, path: Path, in_inbox: bool, key: str, tried: int) -> Result:
+        """Quarantine an input that processes died on ``tried`` times, unread."""
+        exc = InputRejected("internal_error", f"the process ended {tried} times while this "
+                            "input was processed (limits.max_attempts="
+                            f"{self.settings.limits.max_attempts}); not tried again",
+                            attempts=tried)
+        self._attempt = key
+        return self._quarantine(path, display_name(path.name), in_inbox, exc, self.wall(),
+                                self.monotonic())
 
     def _flush(self) -> None:
         """Commit the open group's inputs in ONE transaction, then finish each."""
@@ -260,6 +336,7 @@ class Pipeline:
                 *after: Callable[[], None]) -> None:
         """Commit one input now, or (inside a group) when the group is committed;
         ``after`` runs once the commit is durable."""
+        commit = replace(commit, attempt=self._attempt)
         if self._group is not None:
             self._group.append(_Pending(commit, result, version, 0.0, list(after)))
             return
@@ -278,7 +355,8 @@ class Pipeline:
         kind = input_kind(name)
         limits = self.settings.limits
         with open_input(path) as f:
-            size = os.fstat(f.fileno()).st_size
+            pin = os.fstat(f.fileno())   # the file read, as it was when reading began
+            size = pin.st_size
             if size == 0:
                 raise InputRejected("empty", "the input is empty (0 bytes)", size=0)
             if size > limits.max_file_bytes:
@@ -304,27 +382,43 @@ class Pipeline:
                         raise _Seen(digest, done)
                     return digest
 
+                def unchanged() -> None:
+                    """Raise InputChanged if the file grew or was rewritten since it was
+                    opened (a writer that paused past the settle time): not committed."""
+                    now = os.fstat(f.fileno())
+                    if (now.st_size, now.st_mtime_ns) != (pin.st_size, pin.st_mtime_ns):
+                        raise InputChanged(f"{name} changed while it was read ({pin.st_size}"
+                                           f" -> {now.st_size} bytes); taken again once "
+                                           "settled")
+
                 try:
                     try:
-                        result = self._learn(self._frames(f, kind, threaded), entry, claim,
-                                             hashing.ready)
-                    except _Seen as seen:
-                        if any(e.name == name for e in seen.done):
-                            if self._group:
-                                self._flush()  # moved only once its ledger row is committed
-                            self._finish(path, in_inbox)
-                            return Result("already_done", name,
-                                          model_version=self.state.version)
-                        f.seek(0)
-                        result = self._duplicate(self._frames(f, kind, threaded),
-                                                 _with(entry, digest=seen.digest))
+                        try:
+                            result = self._learn(self._frames(f, kind, threaded), entry,
+                                                 claim, unchanged, hashing.ready)
+                        except _Seen as seen:
+                            if any(e.name == name for e in seen.done):
+                                if self._group:
+                                    self._flush()  # moved once its ledger row is committed
+                                self._finish(path, in_inbox, pin)
+                                return Result("already_done", name,
+                                              model_version=self.state.version)
+                            f.seek(0)
+                            result = self._duplicate(self._frames(f, kind, threaded),
+                                                     _with(entry, digest=seen.digest),
+                                                     unchanged)
+                    except (OSError, sqlite3.Error, ServiceError):
+                        raise   # a fault to retry, a stop, or a reason already given
+                    except Exception as exc:   # a failure that belongs to this input alone
+                        raise InputRejected("internal_error", f"{type(exc).__name__}: {exc}",
+                                            exception=type(exc).__name__) from exc
                 except InputRejected as exc:
                     with contextlib.suppress(OSError, RuntimeError):
                         exc.facts.setdefault("digest", hashing.result())
                         exc.facts.setdefault("digest_algorithm", algorithm)
                     exc.facts.setdefault("size", size)
                     raise
-        finish = lambda: self._finish(path, in_inbox)  # noqa: E731
+        finish = lambda: self._finish(path, in_inbox, pin)  # noqa: E731
         if self._group:
             self._group[-1].after.append(finish)  # after the group's commit
         else:
@@ -343,7 +437,8 @@ class Pipeline:
     def _write(self, frames: prefetch, tables: Callable[[Iterable[Frame]], Iterable[pa.Table]],
                entry: LedgerEntry, version: Callable[[], int | None],
                claim: Callable[[], str] | None = None,
-               ready: Callable[[], bool] | None = None) -> tuple[Path, str]:
+               ready: Callable[[], bool] | None = None,
+               unchanged: Callable[[], None] = lambda: None) -> tuple[Path, str]:
         """Write the labels ``tables(frames)`` as they are made; returns the file and the
         input's content digest. ``claim()`` gives the digest (when ``entry`` has none yet) and
         ``version()`` the labels' model version (None without scores): as the first
@@ -363,17 +458,22 @@ class Pipeline:
             for table in tables(frames):
                 self._check_stop()
                 yield table
+        def final() -> Path:
+            unchanged()   # the labels are not named for a file that has changed since
+            return self.layout.outbox / labels_name(entry.name, digest[0], fmt)
+
         # named after a placeholder digest until the digest is known
         target = self.layout.outbox / labels_name(entry.name, entry.digest or "0" * 16, fmt)
         with frames:
             path = write_labels_stream(
                 checked(frames), target, fmt, metadata,
                 sync_folder=self._group is None,  # a group syncs it once
-                final=lambda: self.layout.outbox / labels_name(entry.name, digest[0], fmt),
+                final=final,
                 threaded=frames.threaded, ready=ready)
         return path, digest[0]
 
-    def _duplicate(self, frames: prefetch, entry: LedgerEntry) -> Result:
+    def _duplicate(self, frames: prefetch, entry: LedgerEntry,
+                   unchanged: Callable[[], None]) -> Result:
         """Same content under another name: labels written, the model not updated."""
         st = self.state
         count = _Count()
@@ -381,7 +481,8 @@ class Pipeline:
         def tables(frames):
             return _scored_tables(count.counted(frames, st.mixture), st.mixture,
                                   st.extra.get("unusual_below", -np.inf), st.version)
-        labels, _ = self._write(frames, tables, entry, lambda: st.version)
+        labels, _ = self._write(frames, tables, entry, lambda: st.version,
+                                unchanged=unchanged)
         entry = _with(entry, outcome="duplicate", labels=labels.name, rows=count.rows,
                       rows_invalid=count.invalid)
         result = Result("duplicate", entry.name, count.rows, count.invalid, labels,
@@ -390,7 +491,8 @@ class Pipeline:
         return result
 
     def _learn(self, frames: prefetch, entry: LedgerEntry, claim: Callable[[], str],
-               ready: Callable[[], bool] | None = None) -> Result:
+               unchanged: Callable[[], None], ready: Callable[[], bool] | None = None
+               ) -> Result:
         st = self.state
         version = st.version + 1
         extra = dict(st.extra)
@@ -409,7 +511,8 @@ class Pipeline:
                 watch.rebaseline(st.mixture, rebaseline[1])
         run = _Run(self, extra, version, watch, life)
         labels, digest = self._write(frames, run.tables, entry,
-                                     lambda: version if run.scored else None, claim, ready)
+                                     lambda: version if run.scored else None, claim, ready,
+                                     unchanged)
         mixture, extra = run.mixture, run.extra
         warmup_keep, clear_warmup = run.warmup_keep, run.clear_warmup
         if mixture is not None:
@@ -606,10 +709,16 @@ class Pipeline:
         return extra
 
     # -- endings -------------------------------------------------------------------
-    def _finish(self, path: Path, in_inbox: bool) -> None:
+    def _finish(self, path: Path, in_inbox: bool, pin: os.stat_result) -> None:
+        """Move the input read (``pin``: by device and inode, not by name) out of the
+        inbox; a file renamed over it meanwhile is a new input and stays."""
         if not in_inbox or self.settings.output.keep_inputs:
             return
-        move_out(path, self.layout.processed)
+        if move_out(path, self.layout.processed, identity=(pin.st_dev, pin.st_ino)) is None \
+                and os.path.lexists(path):
+            log_event("input_replaced", logging.INFO, file=display_name(path.name),
+                      detail="another file took its name while it was processed; that file "
+                             "is a new input")
 
     def _quarantine(self, path: Path, name: str, in_inbox: bool, exc: InputRejected,
                     seen_at: float, t0: float) -> Result:
@@ -622,10 +731,17 @@ class Pipeline:
         self.store.record_quarantine(LedgerEntry(
             digest=facts.get("digest"), name=name, size=int(facts.get("size", 0) or 0),
             outcome="quarantined", reason=f"{exc.reason}: {exc.detail}", seen_at=seen_at,
-            finished_at=now))
+            finished_at=now), attempt=self._attempt)
+        cause = exc.__cause__
         log_event("input_quarantined", logging.WARNING, file=name, reason=exc.reason,
-                  detail=exc.detail, sidecar=sidecar.name,
-                  duration=round(self.monotonic() - t0, 4))
+                  detail=exc.detail, sidecar=display_name(sidecar.name),
+                  duration=round(self.monotonic() - t0, 4),
+                  traceback=None if cause is None or exc.reason not in _UNEXPECTED else
+                  "".join(traceback.format_exception(cause)))
+        if exc.reason in _UNEXPECTED:
+            # what failed may have changed the model's objects part-way: the state is
+            # taken again from the store (which holds every input before this one)
+            self.state = self.load_state()
         return Result("quarantined", name, reason=exc.reason, detail=exc.detail)
 
     # -- label only ----------------------------------------------------------------
@@ -651,9 +767,20 @@ class Pipeline:
                 tables = _scored_tables(count.counted(frames, st.mixture), st.mixture,
                                         st.extra.get("unusual_below", -np.inf), st.version)
                 write_labels_stream(tables, out, fmt, lambda: _labels_metadata(
-                    digest, algorithm, path.name, st.version), threaded=frames.threaded)
-        return Result("labelled", path.name, count.rows, count.invalid, out,
+                    digest, algorithm, display_name(path.name), st.version),
+                    threaded=frames.threaded)
+        return Result("labelled", display_name(path.name), count.rows, count.invalid, out,
                       model_version=st.version)
+
+
+def _attempt_key(path: Path) -> str | None:
+    """What an attempt is recorded under: the file (device, inode) as it stands (size,
+    modification time) and its name; None if it cannot be looked at."""
+    try:
+        st = os.lstat(path)
+    except OSError:
+        return None
+    return f"{st.st_dev}:{st.st_ino}:{st.st_size}:{st.st_mtime_ns}:{display_name(path.name)}"
 
 
 def _log_result(result: Result, duration: float) -> None:

@@ -17,6 +17,7 @@ import os
 import queue
 import re
 import threading
+import zlib
 from dataclasses import dataclass
 from typing import BinaryIO, Callable, Iterator
 
@@ -92,8 +93,22 @@ def iter_frames(f: BinaryIO, kind: str, settings: Settings,
     are copied, in the same pass as the finite check).
 
     Limits are checked as the batches arrive: a file past one raises
-    :class:`InputRejected` part-way, after frames before it were yielded.
+    :class:`InputRejected` part-way, after frames before it were yielded. Any other
+    failure of reading (a parser's error nobody foresaw) is :class:`InputRejected` too,
+    reason ``unreadable``; an ``OSError`` of the file itself is raised as it is.
     """
+    try:
+        yield from _iter_frames(f, kind, settings, should_stop, rows, model_range)
+    except (InputRejected, Interrupted, OSError):
+        raise
+    except Exception as exc:
+        raise InputRejected("unreadable", f"{type(exc).__name__}: {exc}",
+                            exception=type(exc).__name__) from exc
+
+
+def _iter_frames(f: BinaryIO, kind: str, settings: Settings, should_stop: Callable[[], bool],
+                 rows: int, model_range: tuple[np.ndarray, np.ndarray] | None
+                 ) -> Iterator[Frame]:
     if kind == "parquet":
         batches, schema = _parquet_batches(f, settings)
     elif kind == "csv":
@@ -529,7 +544,11 @@ class _InflateGuard(io.RawIOBase):
         return self.inflated
 
     def readinto(self, buffer) -> int:
-        n = self.gz.readinto(buffer)
+        try:
+            n = self.gz.readinto(buffer)
+        except (OSError, EOFError, zlib.error) as exc:   # gzip.BadGzipFile is an OSError
+            raise InputRejected("bad_compression", f"cannot be decompressed after "
+                                f"{self.inflated} bytes: {type(exc).__name__}: {exc}") from exc
         self.inflated += n
         if self.inflated > self.limits.max_data_bytes:
             raise _too_much_data(self.inflated, self.settings, " after decompression")
@@ -543,20 +562,32 @@ class _InflateGuard(io.RawIOBase):
 
 
 def _csv_header(stream: BinaryIO) -> list[str]:
+    """The header's names. A line ends at LF, CR LF or a lone CR, as Arrow's CSV reader
+    ends it (files from old Mac tools end every line with a CR alone)."""
     try:
         line = stream.readline(_HEADER_LIMIT)
     except (OSError, EOFError) as exc:
         raise InputRejected("bad_compression", f"cannot be decompressed: {exc}") from exc
     if not line:
         raise InputRejected("empty", "the input is empty (no header line)")
+    end = len(line)
+    for mark in (b"\r", b"\n"):
+        at = line.find(mark)
+        if at >= 0:
+            end = min(end, at)
+    if end == len(line) and len(line) >= _HEADER_LIMIT:
+        raise InputRejected("bad_header", f"header line longer than {_HEADER_LIMIT} bytes")
+    line = line[:end]
     try:
         text = line.decode("utf-8-sig")  # a byte-order mark is not part of the first name
     except UnicodeDecodeError as exc:
         raise InputRejected("encoding", f"line 1 (header) is not UTF-8: byte "
                             f"{line[exc.start]:#04x} at position {exc.start}", line=1) from exc
-    if not text.endswith("\n") and len(line) >= _HEADER_LIMIT:
-        raise InputRejected("bad_header", f"header line longer than {_HEADER_LIMIT} bytes")
-    return next(csv.reader([text.rstrip("\r\n")]), [])
+    try:
+        return next(csv.reader([text]), [])
+    except csv.Error as exc:   # a name past the csv module's field limit (128 KiB) ...
+        raise InputRejected("bad_header", f"line 1 (header) cannot be parsed: {exc}",
+                            line=1) from exc
 
 
 def _csv_batches(stream: BinaryIO, settings: Settings):

@@ -38,7 +38,7 @@ __all__ = ["StateStore", "LedgerEntry", "Checkpoint", "HistoryRow", "InputCommit
 
 # 2: the ledger's content column is `digest` (was `sha256`), in the algorithm the meta
 #    key `digest_algorithm` records (a version-1 store's is SHA-256).
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (
@@ -105,6 +105,11 @@ CREATE TABLE IF NOT EXISTS alert_delivery (
     last_error   TEXT,
     PRIMARY KEY (outbox_id, sink)
 );
+CREATE TABLE IF NOT EXISTS attempts (
+    input   TEXT PRIMARY KEY,
+    count   INTEGER NOT NULL,
+    last_at REAL NOT NULL
+);
 CREATE TABLE IF NOT EXISTS rebaselines (
     id            INTEGER PRIMARY KEY,
     requested     REAL NOT NULL,
@@ -125,8 +130,15 @@ def _migrate_1_to_2(db: sqlite3.Connection) -> None:
     db.execute("INSERT INTO meta (key, value) VALUES ('digest_algorithm', 'sha256')")
 
 
+def _migrate_2_to_3(db: sqlite3.Connection) -> None:
+    """Version 2 -> 3: the ``attempts`` table (inputs being processed, and how many
+    processes ended while processing them)."""
+    db.execute("CREATE TABLE attempts (input TEXT PRIMARY KEY, count INTEGER NOT NULL, "
+               "last_at REAL NOT NULL)")
+
+
 # schema version -> the function that brings a store of that version to the next one
-MIGRATIONS = {1: _migrate_1_to_2}
+MIGRATIONS = {1: _migrate_1_to_2, 2: _migrate_2_to_3}
 
 
 # .npy headers by (dtype, shape): a checkpoint stores the same dozen arrays every time.
@@ -204,7 +216,8 @@ class InputCommit:
     ``learned``: the input advances the model version by one (a new input); a
     duplicate does not. ``checkpoint.version``, when given, must be the version
     after this input. ``alerts`` go to the outbox (an id already there is kept as
-    it was); ``rebaseline`` is a request id applied by this input.
+    it was); ``rebaseline`` is a request id applied by this input; ``attempt`` the
+    input's attempt key (:meth:`StateStore.attempts`), cleared by the commit.
     """
     entry: LedgerEntry
     learned: bool
@@ -214,6 +227,12 @@ class InputCommit:
     history: Iterable[HistoryRow] = ()
     alerts: Iterable[tuple[str, Mapping[str, Any]]] = ()
     rebaseline: int | None = None
+    attempt: str | None = None
+
+
+# Attempt rows of inputs that never finished here (gone from the inbox meanwhile) are
+# dropped after this long.
+_ATTEMPTS_KEPT_SECONDS = 7 * 86400
 
 
 class StateStore:
@@ -543,9 +562,34 @@ class StateStore:
                             (alert_id, version, now, json.dumps(payload, sort_keys=True)))
 
     # -- writes -----------------------------------------------------------------
-    def record_quarantine(self, entry: LedgerEntry) -> None:
+    def attempts(self, keys: Iterable[str], add: bool = False) -> dict[str, int]:
+        """How many times each input (by its attempt key) was taken without being finished
+        (committed or quarantined), 0 for none; with ``add``, first one more for each, in
+        one transaction, made before the inputs are read: a process that dies while
+        processing them leaves the count behind for the next one to see."""
+        keys = list(keys)
+        if add and keys:
+            now = self.clock()
+            with self._transaction():
+                self.db.executemany(
+                    "INSERT INTO attempts (input, count, last_at) VALUES (?, 1, ?) ON CONFLICT "
+                    "(input) DO UPDATE SET count = count + 1, last_at = excluded.last_at",
+                    [(k, now) for k in keys])
+                self.db.execute("DELETE FROM attempts WHERE last_at < ?",
+                                (now - _ATTEMPTS_KEPT_SECONDS,))
+        found = {}
+        for i in range(0, len(keys), 500):
+            part = keys[i:i + 500]
+            found.update(self.db.execute(
+                f"SELECT input, count FROM attempts WHERE input IN "
+                f"({', '.join('?' * len(part))})", part).fetchall())
+        return {k: int(found.get(k, 0)) for k in keys}
+
+    def record_quarantine(self, entry: LedgerEntry, attempt: str | None = None) -> None:
         with self._transaction():
             self._insert_entry(entry)
+            if attempt is not None:
+                self.db.execute("DELETE FROM attempts WHERE input = ?", (attempt,))
 
     def commit_input(self, entry: LedgerEntry, *, learned: bool,
                      checkpoint: Checkpoint | None = None,
@@ -591,6 +635,8 @@ class StateStore:
                 self._insert_alerts(c.alerts, version, now)
                 if c.rebaseline is not None:
                     self._mark_rebaseline(c.rebaseline, version, now)
+                if c.attempt is not None:
+                    self.db.execute("DELETE FROM attempts WHERE input = ?", (c.attempt,))
                 versions.append(version)
             if version != start:
                 self._set_meta("model_version", str(version))

@@ -44,7 +44,13 @@ class FailingConnection:
         self._real, self._fault, self._sql, self._after = real, fault, sql, after
 
     def execute(self, sql, *args):
-        if self._fault.armed and sql.startswith(self._sql):
+        if sql.startswith("BEGIN"):
+            self._ledger = False
+        elif sql.startswith("INSERT INTO ledger"):
+            self._ledger = True
+        # a COMMIT fails only where it commits an input (not an attempt's record)
+        if self._fault.armed and sql.startswith(self._sql) and \
+                (self._sql != "COMMIT" or getattr(self, "_ledger", False)):
             if self._after:
                 self._real.execute(sql, *args)
                 self._fault.fire(sqlite3.OperationalError("disk I/O error"))
