@@ -27,6 +27,7 @@ rename, and only the last input's checkpoint stored. The inputs are moved to
 from __future__ import annotations
 
 import contextlib
+import errno
 import logging
 import os
 import sqlite3
@@ -123,6 +124,12 @@ class ModelState:
     warmup: np.ndarray | None = None   # buffered rows while mixture is None
 
 
+# Errors of opening an input that may pass: out of descriptors or memory, permissions
+# not yet set by the producer, an I/O error.
+_TRANSIENT_OPEN = frozenset({errno.EMFILE, errno.ENFILE, errno.ENOMEM, errno.EACCES,
+                             errno.EPERM, errno.EIO, errno.EAGAIN, errno.EINTR})
+
+
 def open_input(path: Path) -> BinaryIO:
     """Open a regular file for reading without following links or blocking on FIFOs."""
     flags = os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC
@@ -131,6 +138,8 @@ def open_input(path: Path) -> BinaryIO:
     except FileNotFoundError as exc:
         raise InputVanished(f"{path.name} no longer exists") from exc
     except OSError as exc:  # ELOOP: a symlink; ENXIO: a socket
+        if exc.errno in _TRANSIENT_OPEN:
+            raise   # retried in order (the service's fault path), not refused for good
         raise InputRefused(f"{path.name} cannot be opened as a regular file: "
                            f"{exc.strerror}") from exc
     st = os.fstat(fd)

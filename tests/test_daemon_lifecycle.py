@@ -54,6 +54,7 @@ def test_sigkill_at_random_moments_short_crash_drill(tmp_path):
     assert report.committed == 40 and report.labels_files == 40
     assert report.labels_identical == 40                       # byte for byte
     assert report.model_identical and report.model_version == report.reference_version == 40
+    assert report.slow_copies > 0 and report.ledger_identical, report.ledger_difference
 
 
 def test_fifty_demo_drops_csv_and_parquet(tmp_path):
