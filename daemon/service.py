@@ -257,8 +257,7 @@ class Service:
             self.gate.forget(path)
             if result.outcome == "changed":   # a writer still at work: once it settles
                 self._consider(path)
-                continue
-            if os.path.lexists(path):
+            elif os.path.lexists(path):
                 self._settled_out[path] = (d.size, d.mtime_ns, d.inode)
             else:
                 self._settled_out.pop(path, None)
