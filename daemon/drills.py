@@ -27,7 +27,7 @@ import yaml
 __all__ = ["synthetic_table", "write_drop", "write_config", "ServiceProcess", "ledger_counts",
            "wait_until", "crash_drill", "DrillReport", "MTIME_BASE", "InProcessService",
            "LEDGER_FIELDS", "ledger_rows", "ledger_difference", "final_arrays", "same_arrays",
-           "ingest_in_order", "slow_copy"]
+           "ingest_in_order", "slow_copy", "deliver"]
 
 # Drops get modification times from this fixed past epoch on, one second apart, so
 # that the order the service takes them in (oldest first) is the order they were made.
@@ -217,6 +217,7 @@ class DrillReport:
     drops: int
     kills: int
     slow_copies: int
+    in_place: int
     committed: int
     labels_files: int
     labels_identical: int
@@ -289,10 +290,9 @@ def ingest_in_order(config: Path, files: list[Path], python: str = sys.executabl
                    stderr=subprocess.DEVNULL, timeout=timeout)
 
 
-def slow_copy(data: bytes, target: Path, index: int, pieces: int, pause: float) -> None:
+def slow_copy(data: bytes, target: Path, pieces: int, pause: float) -> None:
     """Write ``data`` into ``target`` in place, in ``pieces`` with ``pause`` seconds
-    between them (a producer copying slowly, shorter pauses than the settle time), then
-    give it the drop's modification time (as ``cp -p`` would)."""
+    between them (a producer copying slowly, with shorter pauses than the settle time)."""
     cut = np.linspace(0, len(data), pieces + 1).astype(int)
     with open(target, "wb") as f:
         for i in range(pieces):
@@ -300,7 +300,25 @@ def slow_copy(data: bytes, target: Path, index: int, pieces: int, pause: float) 
             f.flush()
             if i + 1 < pieces:
                 time.sleep(pause)
-    os.utime(target, ns=((MTIME_BASE + index) * 10**9,) * 2)
+
+
+def deliver(data: bytes, inbox: Path, name: str, how: str, pause: float = 0.0) -> int:
+    """Put a drop into ``inbox`` the way a producer would: ``rename`` (written beside the
+    inbox, renamed in: complete at once), ``in_place`` (written straight into the inbox:
+    complete once settled) or ``slow`` (in place, in three pieces ``pause`` apart).
+    Returns its modification time (ns), taken before the service can move it."""
+    if how == "rename":
+        staging = inbox.parent / (inbox.name + ".staging")
+        staging.mkdir(exist_ok=True)
+        (staging / name).write_bytes(data)
+        mtime = os.stat(staging / name).st_mtime_ns
+        os.rename(staging / name, inbox / name)
+        return mtime
+    if how == "slow":
+        slow_copy(data, inbox / name, pieces=3, pause=pause)
+    else:
+        (inbox / name).write_bytes(data)
+    return os.stat(inbox / name).st_mtime_ns   # settling: not taken for a while yet
 
 
 def _drop_bytes(table: pa.Table, name: str) -> bytes:
@@ -317,8 +335,10 @@ def crash_drill(workdir: Path, drops: int = 200, kills: int = 20, rows: int = 30
                 slow_share: float = 0.15) -> DrillReport:
     """Feed ``drops`` inputs to a service killed with SIGKILL ``kills`` times; compare.
 
-    Drops arrive renamed in, or (a ``slow_share`` of them) copied slowly in place; the
-    drops after a kill are written while the service starts again. The reference is
+    Drops arrive renamed in, written in place, or copied slowly in place (a
+    ``slow_share`` of them each: :func:`deliver`); the drops after a kill arrive while
+    the service starts again. Their modification times are real ones, in the order they
+    arrive. The reference is
     ``shoal ingest`` of the same files in the defined order (:func:`ingest_in_order`)
     in a state folder of its own: the final model must be the same bit for bit, every
     labels file the same byte for byte, and the ledgers the same in order on
@@ -334,25 +354,21 @@ def crash_drill(workdir: Path, drops: int = 200, kills: int = 20, rows: int = 30
     ref_cfg, run_cfg = write_config(ref, limits=limits), write_config(run, limits=limits)
     for folder in (ref / "inbox", run / "inbox", ref / "files"):
         folder.mkdir(parents=True, exist_ok=True)
-    tables = [synthetic_table(i, rows, seed) for i in range(drops)]
-    files = [write_drop(t, ref / "files", n, i) for i, (t, n) in enumerate(zip(tables, names))]
-    ingest_in_order(ref_cfg, files, python, timeout)
+    data = [_drop_bytes(synthetic_table(i, rows, seed), n) for i, n in enumerate(names)]
     kill_after = set(rng.choice(np.arange(1, drops), size=min(kills, drops - 1),
                                 replace=False).tolist())
-    slow = set(rng.choice(np.arange(drops), size=int(drops * slow_share),
-                          replace=False).tolist())
+    how = rng.choice(["rename", "in_place", "slow"], size=drops,
+                     p=[1 - 2 * slow_share, slow_share, slow_share])
     settle = 0.5   # write_config's watch.settle_seconds
     service = ServiceProcess(run_cfg, run / "service.log", python).start()
     db = run / "state" / "state.db"
     n_kills = 0
+    mtimes = []
     try:
         starts = 1
-        for i, (table, name) in enumerate(zip(tables, names)):
-            if i in slow:
-                slow_copy(_drop_bytes(table, name), run / "inbox" / name, i, pieces=3,
-                          pause=float(rng.uniform(0.1, 0.6)) * settle)
-            else:
-                write_drop(table, run / "inbox", name, i)
+        for i, name in enumerate(names):
+            mtimes.append(deliver(data[i], run / "inbox", name, str(how[i]),
+                                  pause=float(rng.uniform(0.1, 0.6)) * settle))
             time.sleep(float(rng.uniform(0.0, 0.03)))
             if i in kill_after:
                 # Kill a running service (not one still starting) a random moment after
@@ -369,6 +385,12 @@ def crash_drill(workdir: Path, drops: int = 200, kills: int = 20, rows: int = 30
         service.stop()
     finally:
         service.kill()
+    files = []
+    for name, blob, mtime in zip(names, data, mtimes):   # the same bytes and times
+        files.append(ref / "files" / name)
+        files[-1].write_bytes(blob)
+        os.utime(files[-1], ns=(mtime, mtime))
+    ingest_in_order(ref_cfg, files, python, timeout)
     committed = ledger_counts(db).get("committed", 0)
     outs = sorted(p.name for p in (run / "outbox").iterdir())
     ref_outs = sorted(p.name for p in (ref / "outbox").iterdir())
@@ -377,7 +399,8 @@ def crash_drill(workdir: Path, drops: int = 200, kills: int = 20, rows: int = 30
     version, arrays = final_arrays(db)
     ref_version, ref_arrays = final_arrays(ref / "state" / "state.db")
     difference = ledger_difference(ledger_rows(db), ledger_rows(ref / "state" / "state.db"))
-    return DrillReport(drops=drops, kills=n_kills, slow_copies=len(slow), committed=committed,
+    return DrillReport(drops=drops, kills=n_kills, slow_copies=int(np.sum(how == "slow")),
+                       in_place=int(np.sum(how == "in_place")), committed=committed,
                        labels_files=len(outs), labels_identical=same,
                        model_identical=same_arrays(arrays, ref_arrays), model_version=version,
                        reference_version=ref_version, ledger_identical=not difference,
