@@ -49,6 +49,13 @@ _INFLATE_FREE = 16 << 20
 # Parquet footers: Thrift strings and lists past these are refused by the parser.
 _THRIFT_STRING_LIMIT = 16 << 20
 _THRIFT_CONTAINER_LIMIT = 1 << 20
+# Parquet footers past this many bytes, or with more column chunks (row groups x
+# columns) than this, are refused unparsed (memory to parse one: ~10 times its size).
+_FOOTER_LIMIT = 8 << 20
+_COLUMN_CHUNK_LIMIT = 100_000
+# Record batches held for one frame are joined once this many are held (a file of tiny
+# row groups would otherwise hold 65,536 one-row batches, ~2 KB of objects each).
+_HELD_BATCHES = 256
 
 
 @dataclass
@@ -138,6 +145,8 @@ def _iter_frames(f: BinaryIO, kind: str, settings: Settings, should_stop: Callab
             raise _too_much_data(decoded, settings, " once decoded")
         held.append(_decode_dictionaries(batch))
         n_held += batch.num_rows
+        if len(held) >= _HELD_BATCHES and n_held < rows:
+            held = pa.Table.from_batches(held).combine_chunks().to_batches()
         while n_held >= rows:
             take, held = _split(held, rows)
             n_held -= rows
@@ -420,6 +429,15 @@ def _parquet_batches(f: BinaryIO, settings: Settings):
     if size < 12 or head != b"PAR1" or tail != b"PAR1":
         raise InputRejected("truncated_parquet", "not a complete Parquet file (the 'PAR1' "
                             "magic is missing at its start or end)")
+    f.seek(max(size - 8, 0))
+    footer = int.from_bytes(f.read(4), "little")
+    f.seek(0)
+    if footer > _FOOTER_LIMIT:
+        # parsing a footer takes ~10 times its size in memory (200,000 one-row row
+        # groups: a 108 MB footer, 1.5 GB to read); refused before it is parsed
+        raise InputRejected("too_much_metadata", f"the Parquet footer is {footer} bytes, more "
+                            f"than {_FOOTER_LIMIT} (too many row groups or columns: write "
+                            "larger row groups)", limit=_FOOTER_LIMIT)
     source = _arrow_source(f)
     try:
         return _parquet_open(source, settings)
@@ -451,6 +469,12 @@ def _parquet_open(source, settings: Settings):
     if len(schema.names) > settings.limits.max_columns:
         raise InputRejected("too_many_columns", f"{len(schema.names)} columns, more than "
                             f"limits.max_columns={settings.limits.max_columns}")
+    chunks = pf.metadata.num_row_groups * max(pf.metadata.num_columns, 1)
+    if chunks > _COLUMN_CHUNK_LIMIT:
+        raise InputRejected("too_much_metadata", f"{pf.metadata.num_row_groups} row groups of "
+                            f"{pf.metadata.num_columns} columns, more than "
+                            f"{_COLUMN_CHUNK_LIMIT} column chunks: write larger row groups",
+                            limit=_COLUMN_CHUNK_LIMIT)
     if pf.metadata.num_rows > settings.limits.max_rows:
         raise InputRejected("too_many_rows", f"{pf.metadata.num_rows} rows, more than "
                             f"limits.max_rows={settings.limits.max_rows}")
