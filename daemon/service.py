@@ -168,9 +168,9 @@ class Service:
         d = self.gate.check(path)
         if d.verdict is Verdict.READY:
             key = (d.size, d.mtime_ns, d.inode)
+            self._unwait(path)
             if self._settled_out.get(path) == key:
                 return  # kept in the inbox after commit (output.keep_inputs)
-            self._unwait(path)
             heapq.heappush(self._ready, (d.mtime_ns, path))
             self._in_ready.add(path)
         elif d.verdict is Verdict.WAIT:
