@@ -96,7 +96,9 @@ _UNEXPECTED = ("unreadable", "internal_error")
 
 @dataclass
 class Result:
-    outcome: str          # committed | duplicate | already_done | quarantined | vanished | refused
+    # committed | duplicate | already_done | quarantined | vanished | refused | changed
+    # (| failed, in shoal ingest's report)
+    outcome: str
     name: str
     rows: int = 0
     rows_invalid: int = 0

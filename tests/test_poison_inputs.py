@@ -130,13 +130,13 @@ def test_poison_inputs_are_read_or_quarantined_and_watch_goes_on(tmp_path):
 # compiled library would): os._exit once reading it begins.
 _CRASHING = """
 import os, sys
-from shoal.daemon import readers
-real = readers._iter_frames
+from shoal.daemon import pipeline
+real = pipeline.iter_frames
 def frames(f, *args, **kw):
     if os.readlink(f"/proc/self/fd/{f.fileno()}").endswith("crash.csv"):
         os._exit(9)
     return real(f, *args, **kw)
-readers._iter_frames = frames
+pipeline.iter_frames = frames
 from shoal.daemon.cli import main
 sys.exit(main(sys.argv[1:]))
 """
