@@ -725,6 +725,16 @@ class Pipeline:
         inbox; a file renamed over it meanwhile is a new input and stays."""
         if not in_inbox or self.settings.output.keep_inputs:
             return
+        with contextlib.suppress(OSError):
+            now = os.lstat(path)
+            if (now.st_dev, now.st_ino) == (pin.st_dev, pin.st_ino) and \
+                    (now.st_size, now.st_mtime_ns) != (pin.st_size, pin.st_mtime_ns):
+                # written to between the check before its commit and now: what was read
+                # is committed, what was added since is not labelled; said, not silent
+                log_event("input_changed_after_commit", logging.WARNING,
+                          file=display_name(path.name), size_read=pin.st_size,
+                          size_now=now.st_size, detail="the bytes past size_read are not "
+                          "labelled; write inputs elsewhere and rename them in")
         if move_out(path, self.layout.processed, identity=(pin.st_dev, pin.st_ino)) is None \
                 and os.path.lexists(path):
             log_event("input_replaced", logging.INFO, file=display_name(path.name),
