@@ -266,6 +266,8 @@ class Pipeline:
             raise RuntimeError("process_group called inside a group")
         self._group = []
         results: list[Result] = []
+        recorded: list[str] = []      # attempts recorded by this call
+        finished: set[str | None] = set()
         try:
             for run, suspect in self._attempt_runs([Path(p) for p in paths]):
                 self._check_stop()
@@ -277,27 +279,47 @@ class Pipeline:
                         path, = run
                         results.append(self._crashed(path, in_inbox, key, tried))
                         continue
-                self.store.attempts([k for k in run.values()
-                                     if k is not None and k not in self._attempted], add=True)
-                self._attempted.update(run.values())
+                new = [k for k in run.values() if k is not None and k not in self._attempted]
+                self.store.attempts(new, add=1)
+                self._attempted.update(new)
+                recorded += new
                 for path, key in run.items():
                     self._check_stop()
                     self._attempt = key
                     results.append(self._process_one(path, in_inbox))
+                    if results[-1].outcome in ("committed", "duplicate", "quarantined"):
+                        finished.add(key)   # its row goes with its commit
                 if suspect:
                     self._flush()
         except Interrupted:
             pass  # the inputs done so far are committed below
         except BaseException:
             self._group = None
+            self._give_up_attempts(recorded)
             raise
         finally:
             self._attempt = None
         try:
             self._flush()
+        except BaseException:
+            self._give_up_attempts(recorded)
+            raise
         finally:
             self._group = None
+        self._give_up_attempts([k for k in recorded if k not in finished])
         return results
+
+    def _give_up_attempts(self, keys: list[str]) -> None:
+        """Take back the attempts of inputs this process gave up cleanly (a stop, a fault
+        to retry, an input not taken after all): only a death leaves one behind."""
+        if not keys:
+            return
+        self._attempted.difference_update(keys)
+        try:
+            self.store.attempts(keys, add=-1)
+        except (OSError, sqlite3.Error) as exc:   # a full disk: counted once more, no more
+            log_event("attempts_not_cleared", logging.WARNING, inputs=len(keys),
+                      detail=f"{type(exc).__name__}: {exc}")
 
     def _attempt_runs(self, paths: list[Path]):
         """``paths`` in order as runs ``({path: attempt key}, suspect)``: an input with an

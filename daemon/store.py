@@ -562,20 +562,21 @@ class StateStore:
                             (alert_id, version, now, json.dumps(payload, sort_keys=True)))
 
     # -- writes -----------------------------------------------------------------
-    def attempts(self, keys: Iterable[str], add: bool = False) -> dict[str, int]:
+    def attempts(self, keys: Iterable[str], add: int = 0) -> dict[str, int]:
         """How many times each input (by its attempt key) was taken without being finished
-        (committed or quarantined), 0 for none; with ``add``, first one more for each, in
-        one transaction, made before the inputs are read: a process that dies while
-        processing them leaves the count behind for the next one to see."""
+        (committed or quarantined), 0 for none; with ``add``, first that many more (or
+        fewer: an attempt given up cleanly) for each, in one transaction. Recorded before
+        the inputs are read, a process that dies while processing them leaves the count
+        behind for the next one to see."""
         keys = list(keys)
         if add and keys:
             now = self.clock()
             with self._transaction():
                 self.db.executemany(
-                    "INSERT INTO attempts (input, count, last_at) VALUES (?, 1, ?) ON CONFLICT "
-                    "(input) DO UPDATE SET count = count + 1, last_at = excluded.last_at",
-                    [(k, now) for k in keys])
-                self.db.execute("DELETE FROM attempts WHERE last_at < ?",
+                    "INSERT INTO attempts (input, count, last_at) VALUES (?, ?, ?) ON CONFLICT "
+                    "(input) DO UPDATE SET count = count + excluded.count, "
+                    "last_at = excluded.last_at", [(k, add, now) for k in keys])
+                self.db.execute("DELETE FROM attempts WHERE count <= 0 OR last_at < ?",
                                 (now - _ATTEMPTS_KEPT_SECONDS,))
         found = {}
         for i in range(0, len(keys), 500):

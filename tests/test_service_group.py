@@ -130,4 +130,6 @@ def test_a_stop_commits_the_inputs_before_it(tmp_path):
     assert not paths[0].exists() and not paths[1].exists()
     assert paths[2].exists() and paths[3].exists()
     assert np.isfinite(pipeline.state.mixture.weights).all()
+    # a stop is not a death: no attempt is left to count against the inputs not taken
+    assert store.db.execute("SELECT COUNT(*) FROM attempts").fetchone()[0] == 0
     store.close()
