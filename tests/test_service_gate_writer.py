@@ -97,6 +97,10 @@ def test_parquet_without_its_footer_waits_as_incomplete_then_is_passed_on(tmp_pa
     mono.t += 100
     wall.t = os.stat(q).st_mtime_ns / 1e9 + 6
     assert gate.check(q).verdict is Verdict.READY
+    r = tmp_path / "not-parquet.parquet"         # no leading magic: no Parquet being written
+    r.write_bytes(b"key,ts\n1,2\n")
+    wall.t = os.stat(r).st_mtime_ns / 1e9 + 6
+    assert gate.check(r).verdict is Verdict.READY  # settled: the reader refuses it at once
 
 
 def test_ignored_refused_and_gone(tmp_path):
