@@ -226,6 +226,7 @@ class InputWatch:
         self.unusual_below = unusual_below
         self.alerts: list[tuple[str, dict]] = []
         self.rebaselined = False
+        self._times_dropped = 0   # rows whose times did not fit their window's kind
         if state is not None and state.get("format") != STATE_FORMAT:
             raise ValueError(f"drift state has format {state.get('format')!r}")
         self._state = json.loads(json.dumps(state)) if state is not None else None
@@ -338,12 +339,17 @@ class InputWatch:
                 win["time"] = _widen(win["time"], *span)
             else:   # numbers after times or text, or the other way: not comparable
                 win["times_dropped"] = win.get("times_dropped", 0) + len(X)
-                log_event("time_column_kind_changed", logging.WARNING, file=self.file,
-                          rows=len(X), window_time=win["time"], input_time=list(span),
-                          detail="drift.time_column changed kind (numbers / times or "
-                                 "text) between inputs; these rows' times are left out "
-                                 "of the window's time range")
+                self._times_dropped += len(X)
         win["center"] = mixture.center.tolist()
+
+    def _log_times_dropped(self) -> None:
+        """Say once per input how many of its rows' times were left out (if any)."""
+        if self._times_dropped:
+            log_event("time_column_kind_changed", logging.WARNING, file=self.file,
+                      rows=self._times_dropped,
+                      detail="drift.time_column changed kind (numbers / times or text) "
+                             "between inputs; these rows' times are left out of their "
+                             "windows' time ranges (counted as times_dropped)")
 
     def _flush(self) -> None:
         """Add the pending per-segment sums to their window's JSON-able sums."""
@@ -618,6 +624,7 @@ class InputWatch:
 
     def log_alerts(self, model_version: int) -> None:
         """One log line per alert; called once they are committed."""
+        self._log_times_dropped()
         for _, payload in self.alerts:
             level = logging.WARNING if payload["status"] == "firing" else logging.INFO
             log_event(f"alert_{payload['status']}", level, id=payload["id"],
