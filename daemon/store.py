@@ -41,7 +41,9 @@ __all__ = ["StateStore", "LedgerEntry", "Checkpoint", "HistoryRow", "InputCommit
 #    key `digest_algorithm` records (a version-1 store's is SHA-256).
 # 3: alert notifications and the drift state in the alert words of daemon/store_words.py
 #    (raised/cleared, X.733 severities, the baseline).
-SCHEMA_VERSION = 3
+# 4: the ``attempts`` table (inputs being processed, and how many processes ended while
+#    processing them).
+SCHEMA_VERSION = 4
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (
@@ -108,6 +110,11 @@ CREATE TABLE IF NOT EXISTS alert_delivery (
     last_error   TEXT,
     PRIMARY KEY (outbox_id, sink)
 );
+CREATE TABLE IF NOT EXISTS attempts (
+    input   TEXT PRIMARY KEY,
+    count   INTEGER NOT NULL,
+    last_at REAL NOT NULL
+);
 CREATE TABLE IF NOT EXISTS rebaselines (
     id            INTEGER PRIMARY KEY,
     requested     REAL NOT NULL,
@@ -128,8 +135,15 @@ def _migrate_1_to_2(db: sqlite3.Connection) -> None:
     db.execute("INSERT INTO meta (key, value) VALUES ('digest_algorithm', 'sha256')")
 
 
+def _migrate_3_to_4(db: sqlite3.Connection) -> None:
+    """Version 3 -> 4: the ``attempts`` table (inputs being processed, and how many
+    processes ended while processing them)."""
+    db.execute("CREATE TABLE attempts (input TEXT PRIMARY KEY, count INTEGER NOT NULL, "
+               "last_at REAL NOT NULL)")
+
+
 # schema version -> the function that brings a store of that version to the next one
-MIGRATIONS = {1: _migrate_1_to_2, 2: migrate_alert_words}
+MIGRATIONS = {1: _migrate_1_to_2, 2: migrate_alert_words, 3: _migrate_3_to_4}
 
 
 # .npy headers by (dtype, shape): a checkpoint stores the same dozen arrays every time.
@@ -207,7 +221,8 @@ class InputCommit:
     ``learned``: the input advances the model version by one (a new input); a
     duplicate does not. ``checkpoint.version``, when given, must be the version
     after this input. ``alerts`` go to the outbox (an id already there is kept as
-    it was); ``rebaseline`` is a request id applied by this input.
+    it was); ``rebaseline`` is a request id applied by this input; ``attempt`` the
+    input's attempt key (:meth:`StateStore.attempts`), cleared by the commit.
     """
     entry: LedgerEntry
     learned: bool
@@ -217,6 +232,12 @@ class InputCommit:
     history: Iterable[HistoryRow] = ()
     alerts: Iterable[tuple[str, Mapping[str, Any]]] = ()
     rebaseline: int | None = None
+    attempt: str | None = None
+
+
+# Attempt rows of inputs that never finished here (gone from the inbox meanwhile) are
+# dropped after this long.
+_ATTEMPTS_KEPT_SECONDS = 7 * 86400
 
 
 class StateStore:
@@ -546,9 +567,35 @@ class StateStore:
                             (alert_id, version, now, json.dumps(payload, sort_keys=True)))
 
     # -- writes -----------------------------------------------------------------
-    def record_quarantine(self, entry: LedgerEntry) -> None:
+    def attempts(self, keys: Iterable[str], add: int = 0) -> dict[str, int]:
+        """How many times each input (by its attempt key) was taken without being finished
+        (committed or quarantined), 0 for none; with ``add``, first that many more (or
+        fewer: an attempt given up cleanly) for each, in one transaction. Recorded before
+        the inputs are read, a process that dies while processing them leaves the count
+        behind for the next one to see."""
+        keys = list(keys)
+        if add and keys:
+            now = self.clock()
+            with self._transaction():
+                self.db.executemany(
+                    "INSERT INTO attempts (input, count, last_at) VALUES (?, ?, ?) ON CONFLICT "
+                    "(input) DO UPDATE SET count = count + excluded.count, "
+                    "last_at = excluded.last_at", [(k, add, now) for k in keys])
+                self.db.execute("DELETE FROM attempts WHERE count <= 0 OR last_at < ?",
+                                (now - _ATTEMPTS_KEPT_SECONDS,))
+        found = {}
+        for i in range(0, len(keys), 500):
+            part = keys[i:i + 500]
+            found.update(self.db.execute(
+                f"SELECT input, count FROM attempts WHERE input IN "
+                f"({', '.join('?' * len(part))})", part).fetchall())
+        return {k: int(found.get(k, 0)) for k in keys}
+
+    def record_quarantine(self, entry: LedgerEntry, attempt: str | None = None) -> None:
         with self._transaction():
             self._insert_entry(entry)
+            if attempt is not None:
+                self.db.execute("DELETE FROM attempts WHERE input = ?", (attempt,))
 
     def commit_input(self, entry: LedgerEntry, *, learned: bool,
                      checkpoint: Checkpoint | None = None,
@@ -594,6 +641,8 @@ class StateStore:
                 self._insert_alerts(c.alerts, version, now)
                 if c.rebaseline is not None:
                     self._mark_rebaseline(c.rebaseline, version, now)
+                if c.attempt is not None:
+                    self.db.execute("DELETE FROM attempts WHERE input = ?", (c.attempt,))
                 versions.append(version)
             if version != start:
                 self._set_meta("model_version", str(version))

@@ -215,5 +215,5 @@ def test_a_store_of_a_later_schema_version_is_refused(tmp_path):
                     (str(SCHEMA_VERSION + 1),))
     con.close()
     with pytest.raises(StateError, match=f"schema version {SCHEMA_VERSION + 1}; this shoal "
-                                         f"reads versions up to {SCHEMA_VERSION}"):
+                       f"reads versions up to {SCHEMA_VERSION}"):
         StateStore(db)
