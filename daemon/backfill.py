@@ -381,6 +381,18 @@ def cluster_client(scheduler: str | None = None, local_workers: int | None = Non
 
 
 # -- the run -----------------------------------------------------------------------
+def _first_model_version(learned: list[FileFacts], warmup_rows: int,
+                         versions: dict[int, int]) -> int | None:
+    """The model version of the file whose rows complete the warm-up (its model is the
+    first); None if no file does."""
+    at = 0
+    for f in learned:
+        at += f.valid_rows
+        if at >= warmup_rows:
+            return versions[f.index]
+    return None
+
+
 @dataclass
 class BackfillReport:
     files: int = 0
@@ -494,9 +506,14 @@ class _Run:
             if stage is not None:   # files that no round touches (all warm-up rows)
                 touched = {p.file for r in rounds for p in r.pieces
                            if p.pass_no == passes - 1}
+                # labelled by the first model, under its version (as the service does)
+                first = _first_model_version(learned, skip, versions) if clear_warmup \
+                    else None
                 for f in learned:
                     if f.index not in touched:
-                        written[f.index] = self._assemble(f, versions[f.index],
+                        labelled = versions[f.index] if first is None or not f.valid_rows \
+                            else max(versions[f.index], first)
+                        written[f.index] = self._assemble(f, labelled,
                                                           extra.get("unusual_below"), stage)
             mixture, extra = self._rounds(mixture, extra, rounds, facts, stage, versions,
                                           written, passes - 1)
@@ -765,6 +782,7 @@ def _commit_all(store: StateStore, entries: list[tuple[LedgerEntry, bool]],
         store._set_meta("model_version", str(version))
         if clear_warmup:
             store.db.execute("DELETE FROM warmup")
+            store.db.execute("DELETE FROM warmup_valid")
         if checkpoint is not None:
             store._insert_checkpoint(checkpoint, now)
         store._insert_history(history, version, now)

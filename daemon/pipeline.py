@@ -69,13 +69,21 @@ from shoal.daemon.logs import log_event
 from shoal.daemon.quarantine import move_out, quarantine
 from shoal.daemon.segment_names import name_alerts, segment_names, with_segment_names
 from shoal.daemon.readers import Frame, file_digest, iter_frames, prefetch
-from shoal.daemon.store import Checkpoint, HistoryRow, InputCommit, LedgerEntry, StateStore
+from shoal.daemon.store import (
+    Checkpoint,
+    HistoryRow,
+    InputCommit,
+    LedgerEntry,
+    StateStore,
+    WarmupInput,
+)
 from shoal.daemon import transforming
 from shoal.daemon.writer import (
     display_name,
     fsync_dir,
     labels_name,
     labels_table,
+    relabel_file,
     write_labels_stream,
 )
 
@@ -129,6 +137,8 @@ class ModelState:
     extra: dict[str, Any] = field(default_factory=dict)
     warmup: np.ndarray | None = None   # buffered rows while mixture is None
     transforms: FeatureTransforms | None = None   # the model's (fixed at warm-up)
+    # the inputs of the warm-up rows, labelled once the first model exists
+    warmup_inputs: list[WarmupInput] = field(default_factory=list)
 
 
 # Errors of opening an input that may pass: out of descriptors or memory, permissions
@@ -197,6 +207,7 @@ class Pipeline:
         cp = self.store.latest_checkpoint()
         if cp is None:
             return ModelState(version=version, warmup=self.store.warmup_rows(),
+                              warmup_inputs=self.store.warmup_inputs(),
                               transforms=transforming.configured(self.settings))
         if cp.version != version:
             raise StateError(f"state store's latest checkpoint is version {cp.version} but "
@@ -568,6 +579,10 @@ class Pipeline:
                                      unchanged)
         mixture, extra = run.mixture, run.extra
         warmup_keep, clear_warmup = run.warmup_keep, run.clear_warmup
+        if mixture is not None and st.mixture is None:
+            # the inputs before this one wait with null segments: the first model labels them
+            self._label_warmup_inputs(mixture, run.transforms,
+                                      run.first_unusual_below, version)
         if mixture is not None:
             extra = self._born(extra, mixture, version)
         if watch is not None and watch.state is not None:
@@ -592,7 +607,8 @@ class Pipeline:
                              segment_names(self.store.db))
         applied = rebaseline is not None and watch.rebaselined
         commit = InputCommit(entry, learned=True, checkpoint=checkpoint,
-                             warmup_rows=warmup_keep, clear_warmup=clear_warmup,
+                             warmup_rows=warmup_keep, warmup_valid=run.warmup_valid,
+                             clear_warmup=clear_warmup,
                              history=history or (), alerts=alerts,
                              rebaseline=rebaseline[0] if applied else None)
         if checkpoint is not None:
@@ -615,12 +631,48 @@ class Pipeline:
         result = Result("committed", entry.name, run.rows, run.invalid, labels,
                         model_version=version, rows_outside_domain=run.outside)
         self._commit(commit, version, result, after)
-        buffered = None
+        buffered, waiting = None, []
         if mixture is None:
             parts = [a for a in (st.warmup, warmup_keep) if a is not None and len(a)]
             buffered = np.concatenate(parts) if parts else None
-        self.state = ModelState(version, mixture, extra, buffered, run.transforms)
+            waiting = st.warmup_inputs + ([WarmupInput(labels.name, warmup_keep,
+                                                       run.warmup_valid)]
+                                          if warmup_keep is not None else [])
+        self.state = ModelState(version, mixture, extra, buffered, run.transforms, waiting)
         return result
+
+    def _label_warmup_inputs(self, mixture: Mixture, transforms: FeatureTransforms | None,
+                             unusual_below: float, version: int) -> None:
+        """Write the labels of the inputs taken before the first model again, scored by
+        it (``version``: the first model's). Each file is replaced atomically before the
+        commit of the input that made the model; a crash before that commit makes the same
+        model from the same rows again, and the same files."""
+        fmt = self.settings.output.format
+        for waiting in self.state.warmup_inputs:
+            if waiting.labels is None:
+                continue
+            path = self.layout.outbox / waiting.labels
+            X, valid = waiting.rows, waiting.valid
+            jacobian = None
+            if transforms is not None and not transforms.identity:
+                inside = transforms.inside(X)
+                jacobian = transforms.log_jacobian(X[inside])
+                X = transforms.forward(X[inside])[0]
+                if valid is not None and not inside.all():
+                    valid = valid.copy()
+                    valid[np.flatnonzero(valid)[~inside]] = False
+            try:
+                relabel_file(path, fmt, valid, mixture.score(X), unusual_below, version,
+                             jacobian, self._named)
+            except FileNotFoundError:
+                log_event("warmup_labels_missing", logging.WARNING, labels=waiting.labels)
+            except ValueError as exc:
+                log_event("warmup_labels_not_rewritten", logging.WARNING,
+                          labels=waiting.labels, detail=str(exc))
+        if self.state.warmup_inputs:
+            log_event("warmup_inputs_labelled", inputs=len(self.state.warmup_inputs),
+                      rows=sum(len(w.rows) for w in self.state.warmup_inputs),
+                      model_version=version)
 
     def _named(self, tables):
         """Labels tables with the ``segment_name`` column when ``output.segment_names``."""
@@ -1035,6 +1087,8 @@ class _Run:
         self.scored = False            # some rows got scores (the labels' model version)
         self.warmup_keep: np.ndarray | None = None
         self.clear_warmup = False
+        self.warmup_valid: np.ndarray | None = None   # which rows warmup_keep are
+        self.first_unusual_below = -np.inf   # the threshold when the first model is made
         self.held: list[Frame] = []
         self.held_scores: list = []     # scores of the held frames once made
         self.warm_up_tried = False
@@ -1059,6 +1113,8 @@ class _Run:
             parts = [_valid_rows(f) for f in self.held]
             rows = np.concatenate(parts) if parts else None
             self.warmup_keep = rows if rows is not None and len(rows) else None
+            if self.warmup_keep is not None:
+                self.warmup_valid = np.concatenate([f.valid for f in self.held])
         self.held_scores += [None] * (len(self.held) - len(self.held_scores))
         yield from self._release(force=True)
 
@@ -1121,6 +1177,7 @@ class _Run:
                     part.transforms = fitted
         self.mixture, self.clear_warmup = mixture, True
         self.extra.update(init_extra)
+        self.first_unusual_below = init_extra.get("unusual_below", -np.inf)
         start = 0
         for f in self.held:
             n = f.n_rows - f.n_invalid

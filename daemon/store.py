@@ -34,7 +34,8 @@ from shoal.daemon.errors import StateError
 from shoal.daemon.logs import log_event
 from shoal.daemon.store_words import migrate_alert_words
 
-__all__ = ["StateStore", "LedgerEntry", "Checkpoint", "HistoryRow", "InputCommit", "npy_bytes",
+__all__ = ["StateStore", "LedgerEntry", "Checkpoint", "HistoryRow", "InputCommit", "WarmupInput",
+           "npy_bytes",
            "npy_array", "SCHEMA_VERSION", "MIGRATIONS"]
 
 # 2: the ledger's content column is `digest` (was `sha256`), in the algorithm the meta
@@ -78,6 +79,10 @@ CREATE TABLE IF NOT EXISTS checkpoint_arrays (
     PRIMARY KEY (version, name)
 );
 CREATE TABLE IF NOT EXISTS warmup (
+    ledger_id INTEGER PRIMARY KEY,
+    npy       BLOB NOT NULL
+);
+CREATE TABLE IF NOT EXISTS warmup_valid (
     ledger_id INTEGER PRIMARY KEY,
     npy       BLOB NOT NULL
 );
@@ -214,6 +219,16 @@ class HistoryRow:
     event: str | None = None
 
 
+@dataclass(frozen=True)
+class WarmupInput:
+    """An input committed before the first model: its labels file (segments still
+    null), its valid rows in the data's units, and which of its rows they are (None for
+    an input buffered before the store kept that)."""
+    labels: str | None
+    rows: np.ndarray
+    valid: np.ndarray | None
+
+
 @dataclass
 class InputCommit:
     """Everything one input changes in the store (the arguments of ``commit_input``).
@@ -228,6 +243,7 @@ class InputCommit:
     learned: bool
     checkpoint: Checkpoint | None = None
     warmup_rows: np.ndarray | None = None
+    warmup_valid: np.ndarray | None = None
     clear_warmup: bool = False
     history: Iterable[HistoryRow] = ()
     alerts: Iterable[tuple[str, Mapping[str, Any]]] = ()
@@ -401,6 +417,18 @@ class StateStore:
         blobs = [npy_array(b) for (b,) in self.db.execute(
             "SELECT npy FROM warmup ORDER BY ledger_id")]
         return np.concatenate(blobs, axis=0) if blobs else None
+
+    def warmup_inputs(self) -> list[WarmupInput]:
+        """The inputs whose rows wait in the warm-up buffer, in arrival order: their
+        labels file, buffered rows and which of their rows those are."""
+        rows = self.db.execute(
+            "SELECT ledger.labels, warmup.npy, warmup_valid.npy FROM warmup "
+            "JOIN ledger ON ledger.id = warmup.ledger_id "
+            "LEFT JOIN warmup_valid ON warmup_valid.ledger_id = warmup.ledger_id "
+            "ORDER BY warmup.ledger_id").fetchall()
+        return [WarmupInput(labels, npy_array(rows_npy),
+                            None if valid is None else npy_array(valid))
+                for labels, rows_npy, valid in rows]
 
     def history(self, segment: int | None = None) -> list[dict[str, Any]]:
         sql = ("SELECT version, segment, weight, rows, mean, spread, drift, event, created "
@@ -633,8 +661,12 @@ class StateStore:
                 if c.warmup_rows is not None and len(c.warmup_rows):
                     self.db.execute("INSERT INTO warmup (ledger_id, npy) VALUES (?, ?)",
                                     (entry_id, npy_bytes(c.warmup_rows)))
+                    if c.warmup_valid is not None:
+                        self.db.execute("INSERT INTO warmup_valid (ledger_id, npy) VALUES "
+                                        "(?, ?)", (entry_id, npy_bytes(c.warmup_valid)))
                 if c.clear_warmup:
                     self.db.execute("DELETE FROM warmup")
+                    self.db.execute("DELETE FROM warmup_valid")
                 if c.checkpoint is not None:
                     self._insert_checkpoint(c.checkpoint, now)
                 self._insert_history(c.history, version, now)

@@ -25,7 +25,7 @@ import pyarrow.parquet as pq
 from shoal.daemon.readers import prefetch
 
 __all__ = ["labels_name", "safe_stem", "display_name", "labels_table", "atomic_file", "write_labels",
-           "write_labels_stream", "fsync_dir", "OUTPUT_MODE"]
+           "write_labels_stream", "relabel_file", "fsync_dir", "OUTPUT_MODE", "LABELS_COLUMNS"]
 
 OUTPUT_MODE = 0o640
 _UNSAFE = re.compile(r"[^A-Za-z0-9._-]+")
@@ -129,6 +129,43 @@ def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray |
     return table
 
 
+# shoal's own columns of a labels file, after the pass-through columns
+LABELS_COLUMNS = ("segment", "confidence", "log_density", "unusual", "model_version",
+                  "segment_name")
+
+
+def relabel_file(path: Path, fmt: str, valid: np.ndarray | None, scores,
+                 unusual_below: float, model_version: int,
+                 log_jacobian: np.ndarray | None = None,
+                 named: Callable[[Iterable[pa.Table]], Iterable[pa.Table]] = lambda t: t
+                 ) -> None:
+    """Replace the labels columns of the labels file ``path`` (written without a model)
+    by ``scores`` of its ``valid`` rows, atomically; the pass-through columns and the
+    other ``shoal.*`` metadata stay. ``valid`` None: every row (the count must agree).
+    ``named`` adds the segment names where configured. Raises ValueError when the rows
+    do not match the scores."""
+    table = pq.read_table(path) if fmt == "parquet" else pacsv.read_csv(path)
+    n_scored = len(scores.segment)
+    if valid is None:
+        if table.num_rows != n_scored:
+            raise ValueError(f"{table.num_rows} rows in the file, {n_scored} scored, and "
+                             "which rows were valid was not kept")
+        valid = np.ones(table.num_rows, dtype=bool)
+    if len(valid) != table.num_rows or int(np.count_nonzero(valid)) != n_scored:
+        raise ValueError(f"{table.num_rows} rows in the file, {len(valid)} known, "
+                         f"{n_scored} scored")
+    meta = {k.decode()[len("shoal."):]: v.decode()
+            for k, v in (table.schema.metadata or {}).items() if k.startswith(b"shoal.")}
+    meta["model_version"] = model_version
+    passthrough = table.drop_columns([c for c in LABELS_COLUMNS if c in table.column_names])
+    passthrough = passthrough.replace_schema_metadata(
+        {k: v for k, v in (table.schema.metadata or {}).items()
+         if not k.startswith(b"shoal.") and k != b"ARROW:schema"} or None)
+    new = labels_table(passthrough, valid, scores.segment, scores.confidence,
+                       scores.log_density, unusual_below, model_version, log_jacobian)
+    write_labels_stream(list(named([new])), path, fmt, lambda: meta, threaded=False)
+
+
 def fsync_dir(path: Path) -> None:
     fd = os.open(path, os.O_RDONLY | os.O_DIRECTORY)
     try:
@@ -174,7 +211,7 @@ def write_labels(table: pa.Table, target: Path, fmt: str, metadata: dict[str, st
     (``sync_folder``: see :func:`atomic_file`)."""
     if fmt == "parquet":
         meta = dict(table.schema.metadata or {})
-        meta.update({f"shoal.{k}".encode(): str(v).encode() for k, v in metadata.items()})
+        meta.update(_shoal_keys(metadata))
         table = table.replace_schema_metadata(meta)
     with atomic_file(target, sync_folder=sync_folder) as f:
         if fmt == "parquet":
@@ -253,9 +290,15 @@ def write_labels_stream(tables: Iterable[pa.Table], target: Path, fmt: str,
     return names[-1]
 
 
+def _shoal_keys(meta: dict) -> dict:
+    """``shoal.*`` metadata keys; a value that is None (no model version during the
+    warm-up) is left out rather than written as the text 'None'."""
+    return {f"shoal.{k}".encode(): str(v).encode() for k, v in meta.items() if v is not None}
+
+
 def _schema_metadata(schema: pa.Schema, meta: dict) -> dict:
     out = dict(schema.metadata or {})
-    out.update({f"shoal.{k}".encode(): str(v).encode() for k, v in meta.items()})
+    out.update(_shoal_keys(meta))
     return out
 
 

@@ -157,7 +157,9 @@ def test_backfill_matches_single_process_and_labels_every_row(tmp_path, client):
         source = pq.read_table(p)
         assert table.column("key").to_pylist() == source.column("key").to_pylist()
         assert table.column("segment").null_count == 0
-        assert set(table.column("model_version").to_pylist()) == {i + 1}
+        # a file of warm-up rows only is labelled by the first model, under its version
+        first = settings.warmup_rows // ROWS + 1
+        assert set(table.column("model_version").to_pylist()) == {max(i + 1, first)}
         rows = slice(i * ROWS, (i + 1) * ROWS)
         np.testing.assert_array_equal(table.column("segment").to_numpy(),
                                       ref_labels["segment"][rows])
@@ -387,3 +389,32 @@ def test_backfill_labels_carry_segment_names_when_configured(tmp_path, client):
         names = labels.column("segment_name").to_pylist()
         assert 1 in segs
         assert names == ["group B" if s == 1 else None for s in segs]
+
+
+def test_backfill_and_ingest_label_the_warm_up_rows_alike(tmp_path, client):
+    """The same history through ``shoal ingest`` (one input after another, the warm-up
+    inputs labelled once the first model exists) and ``shoal backfill``: the warm-up rows
+    get the same segment and model version, and the other columns agree to rtol 1e-9."""
+    from shoal.daemon.cli import main
+
+    paths = make_history(tmp_path, 4)
+    settings = {}
+    for how in ("ingest", "backfill"):
+        settings[how] = load_config(write_config(tmp_path / how, warmup_rows=1200))
+    backfill(settings["backfill"], paths, client=client, round_rows=ROUND_ROWS)
+    assert main(["ingest", "-c", str(tmp_path / "ingest" / "shoal.yaml"),
+                 *map(str, paths)]) == 0
+    warm = 0
+    for p in paths[:3]:        # 500 + 500 + the first 200 rows of the third file
+        tables = {how: pq.read_table(next((tmp_path / how / "outbox").glob(
+            f"{p.stem}.*.labels.parquet"))) for how in settings}
+        rows = min(ROWS, 1200 - warm)
+        warm += rows
+        got, ref = (tables[how].slice(0, rows) for how in ("ingest", "backfill"))
+        assert got.column("segment").null_count == 0
+        for name in ("segment", "model_version", "unusual", "key"):
+            assert got.column(name).to_pylist() == ref.column(name).to_pylist(), name
+        assert set(got.column("model_version").to_pylist()) == {3}
+        for name in ("confidence", "log_density"):
+            np.testing.assert_allclose(got.column(name).to_numpy(), ref.column(name).to_numpy(),
+                                       rtol=1e-9, err_msg=name)
