@@ -198,6 +198,13 @@ class DriftSettings:
     time_column: str | None = _f(
         None, "a passthrough column holding each row's time; alerts give time ranges "
               "from it")
+    time_unit: str | None = _f(
+        None, "the unit of epoch times in time_column when they are numbers: s, ms, us or "
+              "ns (unset: inferred from their size, and logged)",
+        choices=("s", "ms", "us", "ns"))
+    time_format: str | None = _f(
+        None, "a strptime format for time_column's text (e.g. '%m/%d/%Y %H:%M:%S'); "
+              "unset: ISO 8601")
 
 
 @dataclass(frozen=True)

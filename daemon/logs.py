@@ -10,6 +10,7 @@ import datetime as _dt
 import json
 import logging
 import sys
+import warnings
 from typing import Any, TextIO
 
 __all__ = ["LOGGER_NAME", "JsonLineFormatter", "setup_logging", "log_event"]
@@ -35,7 +36,8 @@ class JsonLineFormatter(logging.Formatter):
 def setup_logging(level: str = "info", stream: TextIO | None = None) -> None:
     """Send the ``shoal`` logger's records to ``stream`` (stderr) as JSON lines.
 
-    Python warnings (e.g. from the numeric core) are routed into the same log.
+    Python warnings (e.g. from the numeric core) are routed into the same log as
+    ``python_warning`` events.
     """
     handler = logging.StreamHandler(stream or sys.stderr)
     handler.setFormatter(JsonLineFormatter())
@@ -44,7 +46,7 @@ def setup_logging(level: str = "info", stream: TextIO | None = None) -> None:
     _log.addHandler(handler)
     _log.setLevel(level.upper())
     _log.propagate = False
-    logging.captureWarnings(True)
+    warnings.showwarning = _warning_event
     for other in ("py.warnings", "watchdog"):  # library messages as JSON lines too
         lib_log = logging.getLogger(other)
         for old in list(lib_log.handlers):
@@ -52,6 +54,13 @@ def setup_logging(level: str = "info", stream: TextIO | None = None) -> None:
         lib_log.addHandler(handler)
         lib_log.setLevel(logging.WARNING)
         lib_log.propagate = False
+
+
+def _warning_event(message, category, filename, lineno, file=None, line=None) -> None:
+    """A Python warning as the log event ``python_warning`` (its category, text and the
+    source line that raised it as fields), not as a record named by its text."""
+    log_event("python_warning", logging.WARNING, category=category.__name__,
+              message=str(message), source=f"{filename}:{lineno}")
 
 
 def log_event(event: str, level: int = logging.INFO, **fields: Any) -> None:

@@ -51,6 +51,7 @@ from shoal.core.drift import (
     weight_noise,
 )
 from shoal.daemon.logs import log_event
+from shoal.daemon.times import iso_utc
 from shoal.daemon.transforming import moves_in_data_units
 
 __all__ = ["DriftMonitor", "InputWatch", "alert_id", "STATISTIC_UNITS", "SEGMENT_STATISTICS",
@@ -158,8 +159,7 @@ def _time_range(times):
         t = t[~np.isnat(t)]
         if not t.size:
             return None
-        return (str(np.datetime_as_string(t.min(), unit="ms")) + "Z",
-                str(np.datetime_as_string(t.max(), unit="ms")) + "Z")
+        return iso_utc(t.min()), iso_utc(t.max())
     if np.issubdtype(t.dtype, np.number):
         t = t[np.isfinite(t.astype(np.float64))]
         return (float(t.min()), float(t.max())) if t.size else None
@@ -236,6 +236,7 @@ class InputWatch:
         self.alerts: list[tuple[str, dict]] = []
         self.rebaselined = False
         self._times_dropped = 0   # rows whose times did not fit their window's kind
+        self.times_unreadable = 0   # time values present that could not be read
         if state is not None and state.get("format") != STATE_FORMAT:
             raise ValueError(f"drift state has format {state.get('format')!r}")
         self._state = json.loads(json.dumps(state)) if state is not None else None
@@ -353,6 +354,11 @@ class InputWatch:
 
     def _log_times_dropped(self) -> None:
         """Say once per input how many of its rows' times were left out (if any)."""
+        if self.times_unreadable:
+            log_event("time_unreadable", logging.WARNING, file=self.file,
+                      rows=self.times_unreadable, column=self.drift.time_column,
+                      detail="these rows' times could not be read (see drift.time_unit "
+                             "and drift.time_format); they have no time in their windows")
         if self._times_dropped:
             log_event("time_column_kind_changed", logging.WARNING, file=self.file,
                       rows=self._times_dropped,

@@ -69,6 +69,7 @@ from shoal.daemon.logs import log_event
 from shoal.daemon.quarantine import move_out, quarantine
 from shoal.daemon.segment_names import name_alerts, segment_names, with_segment_names
 from shoal.daemon.readers import Frame, file_digest, iter_frames, prefetch
+from shoal.daemon.times import RowTimes, row_times
 from shoal.daemon.store import (
     Checkpoint,
     HistoryRow,
@@ -185,6 +186,7 @@ class Pipeline:
         self._group: list[_Pending] | None = None   # the open group (process_group)
         self._attempt: str | None = None   # the attempt key of the input in progress
         self._attempted: set[str | None] = set()   # attempt keys this process recorded
+        self._time_unit_said: str | None = None   # the epoch unit last said inferred
         # the compiled scoring kernels checked once (milliseconds) at start-up rather
         # than failing inside the first input
         fused.warm()
@@ -680,13 +682,18 @@ class Pipeline:
             return tables
         return with_segment_names(tables, segment_names(self.store.db))
 
-    def _times(self, frame: Frame):
-        """The time column of the valid rows (``drift.time_column``), or None."""
-        name = self.settings.drift.time_column
+    def _times(self, frame: Frame) -> RowTimes | None:
+        """The times of the valid rows (``drift.time_column``) as UTC instants, or None."""
+        drift = self.settings.drift
+        name = drift.time_column
         if name is None or name not in frame.passthrough.column_names:
             return None
-        column = frame.passthrough.column(name).to_numpy(zero_copy_only=False)
-        return column[frame.valid]
+        got = row_times(frame.passthrough.column(name), drift.time_unit, drift.time_format)
+        if got.inferred_unit is not None and got.inferred_unit != self._time_unit_said:
+            self._time_unit_said = got.inferred_unit
+            log_event("time_unit_inferred", column=name, unit=got.inferred_unit,
+                      detail="epoch times as numbers; set drift.time_unit to say which")
+        return replace(got, values=got.values[frame.valid])
 
     def rebaseline_now(self, request_id: int, note: str) -> list[tuple[str, dict]]:
         """Apply a re-baseline request to the latest checkpoint (no input needed)."""
@@ -1132,7 +1139,11 @@ class _Run:
         if self.watch is None:
             return
         times = [self.pipeline._times(f) for f in frames]
-        self.watch.times = None if times[0] is None else np.concatenate(times)
+        if times[0] is None:
+            self.watch.times = None
+            return
+        self.watch.times = np.concatenate([t.values for t in times])
+        self.watch.times_unreadable += sum(t.unreadable for t in times)
 
     def _learn(self, frame: Frame) -> None:
         X = _valid_rows(frame)
