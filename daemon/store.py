@@ -604,13 +604,21 @@ class StateStore:
         keys = list(keys)
         if add and keys:
             now = self.clock()
-            with self._transaction():
-                self.db.executemany(
-                    "INSERT INTO attempts (input, count, last_at) VALUES (?, ?, ?) ON CONFLICT "
-                    "(input) DO UPDATE SET count = count + excluded.count, "
-                    "last_at = excluded.last_at", [(k, add, now) for k in keys])
-                self.db.execute("DELETE FROM attempts WHERE count <= 0 OR last_at < ?",
-                                (now - _ATTEMPTS_KEPT_SECONDS,))
+            # Written without an fsync (synchronous=NORMAL in WAL mode): in the OS's
+            # cache the record outlives the process, which is what it is for; a power
+            # cut may lose it, and with it one count of an input's deaths (~6 ms an
+            # input saved here, against ~0.05 ms).
+            self.db.execute("PRAGMA synchronous=NORMAL")
+            try:
+                with self._transaction():
+                    self.db.executemany(
+                        "INSERT INTO attempts (input, count, last_at) VALUES (?, ?, ?) ON "
+                        "CONFLICT (input) DO UPDATE SET count = count + excluded.count, "
+                        "last_at = excluded.last_at", [(k, add, now) for k in keys])
+                    self.db.execute("DELETE FROM attempts WHERE count <= 0 OR last_at < ?",
+                                    (now - _ATTEMPTS_KEPT_SECONDS,))
+            finally:
+                self.db.execute("PRAGMA synchronous=FULL")
         found = {}
         for i in range(0, len(keys), 500):
             part = keys[i:i + 500]
