@@ -175,7 +175,7 @@ def _build(cls: type, data: Any, prefix: str):
 def _expected(hint: Any, fld: dataclasses.Field) -> str:
     meta = fld.metadata
     if typing.get_origin(hint) is collections.abc.Mapping:
-        return "a mapping {feature: " + " | ".join(meta.get("choices", ())) + "}"
+        return "a mapping {column: " + " | ".join(meta.get("choices", ())) + "}"
     if "choices" in meta:
         return "one of " + ", ".join(repr(c) for c in meta["choices"])
     base = {int: "an integer", float: "a number", bool: "true or false", str: "a string",
@@ -296,6 +296,10 @@ def _check_whole(s: Settings) -> None:
     if unknown:
         raise ConfigError(f"transforms.{unknown[0]}: expected one of the features "
                           f"{list(s.features)}, found {unknown[0]!r}")
+    unknown = [name for name in s.passthrough_types if name not in s.passthrough]
+    if unknown:
+        raise ConfigError(f"passthrough_types.{unknown[0]}: expected one of the passthrough "
+                          f"columns {list(s.passthrough)}, found {unknown[0]!r}")
     both = sorted(set(s.features) & set(s.passthrough))
     if both:
         raise ConfigError(f"passthrough: expected columns other than the features, found "

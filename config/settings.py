@@ -315,6 +315,12 @@ class Settings:
         metadata={"doc": "per feature, a transform applied before the model: log, log1p, "
                          "logit, yeo-johnson or none (the default)",
                   "choices": TRANSFORM_NAMES})
+    passthrough_types: Mapping[str, str] = field(
+        default_factory=lambda: MappingProxyType({}),
+        metadata={"doc": "per passthrough column, its type in the labels: string, int64, "
+                         "float64, bool, timestamp or date (unset: the stream's first "
+                         "input's)",
+                  "choices": ("string", "int64", "float64", "bool", "timestamp", "date")})
     segments: SegmentCount = _f(SegmentCount(), "an integer, or {min, max} chosen by BIC")
     covariance: str = _f("full", "covariance type", choices=COVARIANCE_TYPES)
     warmup_rows: int = _f(2000, "rows buffered before the first model is fitted", min=10)

@@ -69,6 +69,12 @@ from shoal.daemon.logs import log_event
 from shoal.daemon.quarantine import move_out, quarantine
 from shoal.daemon.segment_names import name_alerts, segment_names, with_segment_names
 from shoal.daemon.readers import Frame, file_digest, iter_frames, prefetch
+from shoal.daemon.labels_schema import (
+    LABELS_SCHEMA_VERSION,
+    Conformer,
+    schema_from_text,
+    schema_text,
+)
 from shoal.daemon.times import RowTimes, row_times
 from shoal.daemon.store import (
     Checkpoint,
@@ -187,6 +193,7 @@ class Pipeline:
         self._attempt: str | None = None   # the attempt key of the input in progress
         self._attempted: set[str | None] = set()   # attempt keys this process recorded
         self._time_unit_said: str | None = None   # the epoch unit last said inferred
+        self._conformer: Conformer | None = None   # the input in progress's
         # the compiled scoring kernels checked once (milliseconds) at start-up rather
         # than failing inside the first input
         fused.warm()
@@ -205,6 +212,8 @@ class Pipeline:
 
     # -- state ---------------------------------------------------------------------
     def load_state(self) -> ModelState:
+        text = self.store.labels_schema()
+        self._labels_schema = None if text is None else schema_from_text(text)
         version = self.store.model_version
         cp = self.store.latest_checkpoint()
         if cp is None:
@@ -482,20 +491,33 @@ class Pipeline:
 
     def _frames(self, f: BinaryIO, kind: str, threaded: bool) -> prefetch:
         """The input's frames, read in a thread a few frames ahead of the model; with a
-        model, checked against its range as they are read (:func:`_mark_beyond_model`)."""
+        model, checked against its range as they are read (:func:`_mark_beyond_model`);
+        their pass-through columns in the stream's types (:mod:`labels_schema`)."""
         mixture = self.state.mixture
         transforms = self.state.transforms
+        self._conformer = Conformer(self._labels_schema, kind,
+                                    dict(self.settings.passthrough_types))
         if transforms is not None and not transforms.identity:
             # the features go to the model's units in the reader thread (before the
             # first model only checked: the warm-up rows stay in the data's units); the
             # model's range, in those units, is checked afterwards (_mark_beyond_model)
-            return prefetch(transforming.transformed_frames(
+            frames = transforming.transformed_frames(
                 iter_frames(f, kind, self.settings, self.stop.is_set), transforms,
-                self.settings.features, check_only=mixture is None), threaded=threaded)
-        return prefetch(iter_frames(f, kind, self.settings, self.stop.is_set,
-                                    model_range=None if mixture is None
-                                    else _model_range(mixture)),
-                        threaded=threaded)
+                self.settings.features, check_only=mixture is None)
+        else:
+            frames = iter_frames(f, kind, self.settings, self.stop.is_set,
+                                 model_range=None if mixture is None
+                                 else _model_range(mixture))
+        return prefetch(self._conformer.frames(frames), threaded=threaded)
+
+    def _fixed_schema(self) -> str | None:
+        """The pass-through types the input just read fixed for the stream (its first),
+        as the commit keeps them; None when they were fixed before."""
+        fixed = self._conformer.fixed if self._conformer is not None else None
+        if fixed is None:
+            return None
+        self._labels_schema = fixed
+        return schema_text(fixed)
 
     def _write(self, frames: prefetch, tables: Callable[[Iterable[Frame]], Iterable[pa.Table]],
                entry: LedgerEntry, version: Callable[[], int | None],
@@ -550,7 +572,8 @@ class Pipeline:
                       rows_invalid=count.invalid)
         result = Result("duplicate", entry.name, count.rows, count.invalid, labels,
                         model_version=st.version, rows_outside_domain=count.outside)
-        self._commit(InputCommit(entry, learned=False), st.version, result)
+        self._commit(InputCommit(entry, learned=False, labels_schema=self._fixed_schema()),
+                     st.version, result)
         return result
 
     def _learn(self, frames: prefetch, entry: LedgerEntry, claim: Callable[[], str],
@@ -609,6 +632,7 @@ class Pipeline:
                              segment_names(self.store.db))
         applied = rebaseline is not None and watch.rebaselined
         commit = InputCommit(entry, learned=True, checkpoint=checkpoint,
+                             labels_schema=self._fixed_schema(),
                              warmup_rows=warmup_keep, warmup_valid=run.warmup_valid,
                              clear_warmup=clear_warmup,
                              history=history or (), alerts=alerts,
@@ -861,6 +885,9 @@ class Pipeline:
                     seen_at: float, t0: float) -> Result:
         if self._group:
             self._flush()  # the inputs before it first: the ledger keeps their order
+        if self._conformer is not None and self._conformer.fixed is not None:
+            text = self.store.labels_schema()   # types this input fixed are not kept
+            self._labels_schema = None if text is None else schema_from_text(text)
         now = self.wall()
         facts = {k: v for k, v in exc.facts.items()}
         sidecar = quarantine(path, self.layout.quarantine, exc.reason, exc.detail,
@@ -950,7 +977,7 @@ def linear_quantile(x: np.ndarray, q: float) -> float:
 def _labels_metadata(digest: str, algorithm: str, name: str, version: int | None) -> dict:
     """The ``shoal.*`` keys of a labels file's metadata."""
     return {"input_digest": digest, "digest_algorithm": algorithm, "input_name": name,
-            "model_version": version}
+            "model_version": version, "labels_schema_version": LABELS_SCHEMA_VERSION}
 
 
 def _with(entry: LedgerEntry, **changes) -> LedgerEntry:

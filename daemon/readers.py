@@ -13,6 +13,7 @@ import contextlib
 import csv
 import gzip
 import io
+import json
 import os
 import queue
 import re
@@ -457,18 +458,22 @@ def _parquet_open(source, settings: Settings):
         # buffer_size, no pre_buffer: column chunks are read in pieces, not whole, so
         # memory is bounded whatever the row-group size (1,000,000-row groups, 17 columns:
         # peak RSS of a bare read 272 MB with pyarrow's defaults, 166 MB this way)
-        pf = pq.ParquetFile(source, read_dictionary=list(settings.passthrough),
-                            buffer_size=_PARQUET_BUFFER, pre_buffer=False,
-                            thrift_string_size_limit=_THRIFT_STRING_LIMIT,
-                            thrift_container_size_limit=_THRIFT_CONTAINER_LIMIT)
+        pf = _parquet_file(source, list(settings.passthrough))
     except (pa.ArrowException, OSError, ValueError) as exc:  # ArrowNotImplementedError too
         raise InputRejected("bad_parquet", f"Parquet metadata cannot be read: {exc}") from exc
     except KeyError as exc:  # read_dictionary names a passthrough column the file lacks
+        # (or holds as a pandas RangeIndex, or in a nested type it cannot read that way)
+        pf = _parquet_plain(source)
         name = exc.args[0].decode("utf-8", "replace") if exc.args and \
             isinstance(exc.args[0], bytes) else str(exc)
-        raise InputRejected("missing_column", f"passthrough column {name!r} is missing",
-                            column=name) from exc
+        ranges = _pandas_range_index(pf.schema_arrow, settings)
+        if name not in ranges:
+            _check_nested(pf.schema_arrow, settings)
+            raise InputRejected("missing_column", f"passthrough column {name!r} is missing",
+                                column=name) from exc
+        pf = _parquet_file(source, [c for c in settings.passthrough if c not in ranges])
     schema = pf.schema_arrow
+    ranges = _pandas_range_index(schema, settings)
     if len(schema.names) > settings.limits.max_columns:
         raise InputRejected("too_many_columns", f"{len(schema.names)} columns, more than "
                             f"limits.max_columns={settings.limits.max_columns}")
@@ -481,19 +486,84 @@ def _parquet_open(source, settings: Settings):
     if pf.metadata.num_rows > settings.limits.max_rows:
         raise InputRejected("too_many_rows", f"{pf.metadata.num_rows} rows, more than "
                             f"limits.max_rows={settings.limits.max_rows}")
-    _check_columns(schema.names, settings)
+    _check_columns(schema.names + list(ranges), settings)
+    _check_nested(schema, settings)
     declared = _parquet_data_bytes(pf.metadata)
     if declared > settings.limits.max_data_bytes:
         raise _too_much_data(declared, settings, " (declared in the Parquet footer)")
     for name in settings.features:
         t = schema.field(name).type
-        if not (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)):
+        if not (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)
+                or pa.types.is_null(t)):   # a column of nulls only: rows without a value
             raise InputRejected("non_numeric_feature",
                                 f"feature column {name!r} has type {t}, expected a number",
                                 column=name)
-    batches = pf.iter_batches(batch_size=BATCH_ROWS, columns=list(settings.columns),
+    batches = pf.iter_batches(batch_size=BATCH_ROWS,
+                              columns=[c for c in settings.columns if c not in ranges],
                               use_threads=False)
+    if ranges:
+        batches = _with_range_index(batches, ranges)
+        for name in ranges:
+            schema = schema.append(pa.field(name, pa.int64()))
     return _closing(batches, source), schema
+
+
+def _pandas_range_index(schema: pa.Schema, settings: Settings) -> dict[str, tuple[int, int]]:
+    """Pass-through columns that a file written by pandas holds as its RangeIndex (kept
+    in the pandas metadata only, as start and step): name -> (start, step)."""
+    raw = (schema.metadata or {}).get(b"pandas")
+    if raw is None:
+        return {}
+    try:
+        index = json.loads(raw).get("index_columns", [])
+    except (ValueError, AttributeError):
+        return {}
+    out = {}
+    for entry in index:
+        if isinstance(entry, dict) and entry.get("kind") == "range" and \
+                entry.get("name") in settings.passthrough and \
+                entry["name"] not in schema.names:
+            out[entry["name"]] = (int(entry.get("start", 0)), int(entry.get("step", 1)))
+    return out
+
+
+def _with_range_index(batches, ranges: dict[str, tuple[int, int]]):
+    """``batches`` with the pandas RangeIndex columns made from their start and step."""
+    at = 0
+    for batch in batches:
+        arrays, names = list(batch.columns), list(batch.schema.names)
+        for name, (start, step) in ranges.items():
+            arrays.append(pa.array(start + step * np.arange(at, at + batch.num_rows,
+                                                            dtype=np.int64)))
+            names.append(name)
+        at += batch.num_rows
+        yield pa.RecordBatch.from_arrays(arrays, names=names)
+
+
+def _check_nested(schema: pa.Schema, settings: Settings) -> None:
+    """A pass-through column of a nested type (struct, list, map) cannot be passed on."""
+    for name in settings.passthrough:
+        if name in schema.names:
+            t = schema.field(name).type
+            if pa.types.is_nested(t):
+                raise InputRejected("unsupported_type", f"passthrough column {name!r} has "
+                                    f"type {t}, an unsupported type (struct, list and map "
+                                    "columns cannot be passed through)", column=name)
+
+
+def _parquet_file(source, dictionary: list[str]) -> pq.ParquetFile:
+    return pq.ParquetFile(source, read_dictionary=dictionary,
+                          buffer_size=_PARQUET_BUFFER, pre_buffer=False,
+                          thrift_string_size_limit=_THRIFT_STRING_LIMIT,
+                          thrift_container_size_limit=_THRIFT_CONTAINER_LIMIT)
+
+
+def _parquet_plain(source) -> pq.ParquetFile:
+    """The file opened again without dictionaries, to say why the first open failed."""
+    try:
+        return _parquet_file(source, [])
+    except (pa.ArrowException, OSError, ValueError) as exc:
+        raise InputRejected("bad_parquet", f"Parquet metadata cannot be read: {exc}") from exc
 
 
 def _closing(batches, source):

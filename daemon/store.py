@@ -249,6 +249,7 @@ class InputCommit:
     alerts: Iterable[tuple[str, Mapping[str, Any]]] = ()
     rebaseline: int | None = None
     attempt: str | None = None
+    labels_schema: str | None = None   # the stream's pass-through types, fixed by this input
 
 
 # Attempt rows of inputs that never finished here (gone from the inbox meanwhile) are
@@ -417,6 +418,11 @@ class StateStore:
         blobs = [npy_array(b) for (b,) in self.db.execute(
             "SELECT npy FROM warmup ORDER BY ledger_id")]
         return np.concatenate(blobs, axis=0) if blobs else None
+
+    def labels_schema(self) -> str | None:
+        """The stream's pass-through types (:mod:`shoal.daemon.labels_schema`), once its
+        first input is committed."""
+        return self._meta("labels_schema")
 
     def warmup_inputs(self) -> list[WarmupInput]:
         """The inputs whose rows wait in the warm-up buffer, in arrival order: their
@@ -683,6 +689,9 @@ class StateStore:
                     self._mark_rebaseline(c.rebaseline, version, now)
                 if c.attempt is not None:
                     self.db.execute("DELETE FROM attempts WHERE input = ?", (c.attempt,))
+                if c.labels_schema is not None:
+                    self.db.execute("INSERT OR IGNORE INTO meta (key, value) VALUES "
+                                    "('labels_schema', ?)", (c.labels_schema,))
                 versions.append(version)
             if version != start:
                 self._set_meta("model_version", str(version))

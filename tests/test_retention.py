@@ -197,7 +197,7 @@ def test_undelivered_and_open_alerts_are_kept(tmp_path):
             store.db.execute("UPDATE alert_outbox SET delivered_at = ? WHERE id NOT LIKE 'a3%'",
                              (old,))
         plan = make_plan(cfg, layout, store.db)
-        assert sorted(plan.notification_ids) == ["a2.raised", "a2.cleared"]
+        assert sorted(plan.notification_ids) == ["a2.cleared", "a2.raised"]
         assert len(plan.ledger_ids) == 1
         from shoal.daemon.retention import apply_plan
 
