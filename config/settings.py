@@ -112,6 +112,19 @@ class OutputSettings:
 
 
 @dataclass(frozen=True)
+class InputSettings:
+    bad_rows: str = _f("quarantine", "a CSV row with the wrong number of fields or a feature "
+                       "value that is no number: quarantine the input, or skip the row "
+                       "(counted, its line in a sidecar next to the labels)",
+                       choices=("quarantine", "skip"))
+    delimiter: str = _f(",", "the CSV field delimiter (.tsv files: a tab)",
+                        choices=(",", ";", "\t", "|", " "))
+    decimal: str = _f(".", "the decimal mark of CSV numbers ('.' or ',')", choices=(".", ","))
+    columns: tuple[str, ...] = _f((), "CSV files without a header line: the names of their "
+                                      "columns in order (empty: the first line is a header)")
+
+
+@dataclass(frozen=True)
 class LearningSettings:
     step_exponent: float = _f(
         0.7, "stepwise EM step size decays as (row + offset)^-exponent", min=0.5, max=1.0,
@@ -332,6 +345,7 @@ class Settings:
     watch: WatchSettings = _f(WatchSettings(), "inbox watching")
     limits: LimitSettings = _f(LimitSettings(), "input limits")
     output: OutputSettings = _f(OutputSettings(), "labels files")
+    input: InputSettings = _f(InputSettings(), "how CSV inputs are written")
     learning: LearningSettings = _f(LearningSettings(), "model updates")
     http: HttpSettings = _f(HttpSettings(), "status page, metrics and health over HTTP")
     drift: DriftSettings = _f(DriftSettings(), "drift of segments against their baseline")

@@ -23,14 +23,19 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Iterable
 
+from shoal.daemon.logs import log_event
+
 __all__ = ["Verdict", "Decision", "ReadinessGate", "input_kind", "PARQUET_MAGIC"]
 
 PARQUET_MAGIC = b"PAR1"
-_KINDS = ((".csv.gz", "csv.gz"), (".csv", "csv"), (".parquet", "parquet"), (".pq", "parquet"))
+_TOLD_NAMES = 100_000   # ignored names remembered as logged (then no more are logged)
+_KINDS = ((".csv.gz", "csv.gz"), (".csv", "csv"), (".tsv.gz", "tsv.gz"), (".tsv", "tsv"),
+          (".parquet", "parquet"), (".pq", "parquet"))
 
 
 def input_kind(name: str) -> str | None:
-    """``'parquet'``, ``'csv'``, ``'csv.gz'``, or None for an unsupported name."""
+    """``'parquet'``, ``'csv'``, ``'csv.gz'``, ``'tsv'``, ``'tsv.gz'``, or None for an
+    unsupported name."""
     low = name.lower()
     for suffix, kind in _KINDS:
         if low.endswith(suffix) and len(low) > len(suffix):
@@ -85,9 +90,20 @@ class ReadinessGate:
         self.wall = wall
         self.lstat = lstat
         self._seen: dict[str, _Seen] = {}
+        self._told: set[str] = set()   # ignored names already logged
 
     def ignored(self, name: str) -> bool:
         return any(fnmatch.fnmatchcase(name, pattern) for pattern in self.ignore)
+
+    def _say_ignored(self, name: str) -> None:
+        """Log each ignored name once (``..csv`` matches ``.*``: a name that looks like
+        an input should not vanish from view without a word)."""
+        if name in self._told or len(self._told) >= _TOLD_NAMES:
+            return
+        self._told.add(name)
+        pattern = next(p for p in self.ignore if fnmatch.fnmatchcase(name, p))
+        log_event("input_ignored", file=os.fsencode(name).decode("utf-8", "backslashreplace"),
+                  pattern=pattern, detail="the name matches watch.ignore; it is not read")
 
     def note_renamed(self, path: str | os.PathLike) -> None:
         """A move event put ``path`` into the inbox: it is complete as it stands."""
@@ -104,6 +120,7 @@ class ReadinessGate:
         path = str(path)
         name = os.path.basename(path)
         if self.ignored(name):
+            self._say_ignored(name)
             return Decision(Verdict.IGNORE, "name matches an ignore pattern")
         try:
             st = self.lstat(path)

@@ -168,6 +168,10 @@ class LedgerCollector(Collector):
             yield held
 
     def _live_families(self, live: dict):
+        if "rows_skipped" in live:
+            yield CounterMetricFamily("shoal_rows_skipped", "CSV rows skipped as bad rows "
+                                      "(input.bad_rows: skip) since the service started",
+                                      value=live["rows_skipped"])
         if "queue_depth" in live:
             yield GaugeMetricFamily("shoal_queue_depth", "Inputs found and not yet taken",
                                     value=live["queue_depth"])

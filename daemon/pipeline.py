@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import contextlib
 import errno
+import json
 import logging
 import os
 import sqlite3
@@ -86,6 +87,7 @@ from shoal.daemon.store import (
 )
 from shoal.daemon import transforming
 from shoal.daemon.writer import (
+    atomic_file,
     display_name,
     fsync_dir,
     labels_name,
@@ -194,6 +196,8 @@ class Pipeline:
         self._attempted: set[str | None] = set()   # attempt keys this process recorded
         self._time_unit_said: str | None = None   # the epoch unit last said inferred
         self._conformer: Conformer | None = None   # the input in progress's
+        self._skipped: list[int] = []   # lines of CSV rows skipped (input.bad_rows: skip)
+        self.rows_skipped = 0           # since start, for the metrics
         # the compiled scoring kernels checked once (milliseconds) at start-up rather
         # than failing inside the first input
         fused.warm()
@@ -428,7 +432,7 @@ class Pipeline:
                                     f"limits.max_file_bytes={limits.max_file_bytes}", size=size)
             if kind is None:
                 raise InputRejected("unsupported_type", "expected a name ending in .csv, "
-                                    ".csv.gz, .parquet or .pq", size=size)
+                                    ".csv.gz, .tsv, .tsv.gz, .parquet or .pq", size=size)
             self._check_stop()
             entry = LedgerEntry(digest="", name=name, size=size, outcome="committed",
                                 seen_at=seen_at)
@@ -497,17 +501,19 @@ class Pipeline:
         transforms = self.state.transforms
         self._conformer = Conformer(self._labels_schema, kind,
                                     dict(self.settings.passthrough_types))
+        self._skipped = []
         if transforms is not None and not transforms.identity:
             # the features go to the model's units in the reader thread (before the
             # first model only checked: the warm-up rows stay in the data's units); the
             # model's range, in those units, is checked afterwards (_mark_beyond_model)
             frames = transforming.transformed_frames(
-                iter_frames(f, kind, self.settings, self.stop.is_set), transforms,
+                iter_frames(f, kind, self.settings, self.stop.is_set,
+                            skipped=self._skipped), transforms,
                 self.settings.features, check_only=mixture is None)
         else:
             frames = iter_frames(f, kind, self.settings, self.stop.is_set,
                                  model_range=None if mixture is None
-                                 else _model_range(mixture))
+                                 else _model_range(mixture), skipped=self._skipped)
         return prefetch(self._conformer.frames(frames), threaded=threaded)
 
     def _fixed_schema(self) -> str | None:
@@ -555,7 +561,22 @@ class Pipeline:
                 sync_folder=self._group is None,  # a group syncs it once
                 final=final,
                 threaded=frames.threaded, ready=ready)
+        if self._skipped:
+            self._note_skipped(path, entry.name)
         return path, digest[0]
+
+    def _note_skipped(self, labels: Path, name: str) -> None:
+        """The lines of rows skipped (``input.bad_rows: skip``) in a sidecar next to the
+        labels (``<labels file>.bad_rows.json``, written before the commit), a log line
+        and the count."""
+        lines = list(self._skipped)
+        sidecar = labels.with_name(labels.name + ".bad_rows.json")
+        with atomic_file(sidecar, sync_folder=self._group is None) as f:
+            f.write(json.dumps({"input": name, "labels": labels.name, "rows_skipped":
+                                len(lines), "lines": lines}).encode())
+        self.rows_skipped += len(lines)
+        log_event("rows_skipped", logging.WARNING, file=name, rows=len(lines),
+                  lines=lines[:20], sidecar=sidecar.name)
 
     def _duplicate(self, frames: prefetch, entry: LedgerEntry,
                    unchanged: Callable[[], None]) -> Result:
@@ -920,7 +941,7 @@ class Pipeline:
         kind = input_kind(path.name)
         if kind is None:
             raise InputRejected("unsupported_type", "expected a name ending in .csv, .csv.gz, "
-                                ".parquet or .pq")
+                                ".tsv, .tsv.gz, .parquet or .pq")
         fmt = "csv" if out.name.lower().endswith(".csv") else "parquet"
         count = _Count()
         algorithm = self.store.digest_algorithm

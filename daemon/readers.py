@@ -94,7 +94,8 @@ def read_input(f: BinaryIO, kind: str, settings: Settings,
 def iter_frames(f: BinaryIO, kind: str, settings: Settings,
                 should_stop: Callable[[], bool] = lambda: False,
                 rows: int = BATCH_ROWS,
-                model_range: tuple[np.ndarray, np.ndarray] | None = None) -> Iterator[Frame]:
+                model_range: tuple[np.ndarray, np.ndarray] | None = None,
+                skipped: list[int] | None = None) -> Iterator[Frame]:
     """Read an open input file of ``kind`` as frames of ``rows`` rows (the last one may be
     shorter), whatever record batches the file holds, so that memory stays bounded and
     the cut does not depend on how the file was written.
@@ -107,9 +108,12 @@ def iter_frames(f: BinaryIO, kind: str, settings: Settings,
     :class:`InputRejected` part-way, after frames before it were yielded. Any other
     failure of reading (a parser's error nobody foresaw) is :class:`InputRejected` too,
     reason ``unreadable``; an ``OSError`` of the file itself is raised as it is.
+
+    ``skipped``: a list that gets the line numbers of CSV rows left out under
+    ``input.bad_rows: skip`` (without it, such a row refuses the input).
     """
     try:
-        yield from _iter_frames(f, kind, settings, should_stop, rows, model_range)
+        yield from _iter_frames(f, kind, settings, should_stop, rows, model_range, skipped)
     except (InputRejected, Interrupted, OSError):
         raise
     except Exception as exc:
@@ -118,19 +122,19 @@ def iter_frames(f: BinaryIO, kind: str, settings: Settings,
 
 
 def _iter_frames(f: BinaryIO, kind: str, settings: Settings, should_stop: Callable[[], bool],
-                 rows: int, model_range: tuple[np.ndarray, np.ndarray] | None
-                 ) -> Iterator[Frame]:
+                 rows: int, model_range: tuple[np.ndarray, np.ndarray] | None,
+                 skipped: list[int] | None = None) -> Iterator[Frame]:
     if kind == "parquet":
         batches, schema = _parquet_batches(f, settings)
-    elif kind == "csv":
+    elif kind in ("csv", "tsv"):
         size = f.seek(0, io.SEEK_END)
         f.seek(0)
         if size > settings.limits.max_data_bytes:
             raise _too_much_data(size, settings)
-        batches, schema = _csv_batches(f, settings)
-    elif kind == "csv.gz":
+        batches, schema = _csv_batches(f, settings, kind == "tsv", skipped)
+    elif kind in ("csv.gz", "tsv.gz"):
         batches, schema = _csv_batches(io.BufferedReader(_InflateGuard(f, settings), 1 << 16),
-                                       settings)
+                                       settings, kind == "tsv.gz", skipped)
     else:
         raise InputRejected("unsupported_type", f"unsupported input type {kind!r}")
     pass_schema = pa.schema([_plain(schema.field(c)) for c in settings.passthrough])
@@ -658,7 +662,7 @@ class _InflateGuard(io.RawIOBase):
         return n
 
 
-def _csv_header(stream: BinaryIO) -> list[str]:
+def _csv_header(stream: BinaryIO, delimiter: str = ",") -> list[str]:
     """The header's names. A line ends at LF, CR LF or a lone CR, as Arrow's CSV reader
     ends it (files from old Mac tools end every line with a CR alone)."""
     try:
@@ -681,34 +685,63 @@ def _csv_header(stream: BinaryIO) -> list[str]:
         raise InputRejected("encoding", f"line 1 (header) is not UTF-8: byte "
                             f"{line[exc.start]:#04x} at position {exc.start}", line=1) from exc
     try:
-        return next(csv.reader([text]), [])
+        return next(csv.reader([text], delimiter=delimiter), [])
     except csv.Error as exc:   # a name past the csv module's field limit (128 KiB) ...
         raise InputRejected("bad_header", f"line 1 (header) cannot be parsed: {exc}",
                             line=1) from exc
 
 
-def _csv_batches(stream: BinaryIO, settings: Settings):
-    header = _csv_header(stream)
+def _csv_batches(stream: BinaryIO, settings: Settings, tab: bool = False,
+                 skipped: list[int] | None = None):
+    """Record batches of a CSV input (``tab``: a .tsv file). With ``input.bad_rows:
+    skip``, rows with the wrong number of fields or a feature value that is no number
+    are left out and their line numbers added to ``skipped``."""
+    given = settings.input
+    delimiter = "\t" if tab else given.delimiter
+    if given.columns:            # no header line: the configured names
+        header = list(given.columns)
+    else:
+        header = _csv_header(stream, delimiter)
     if len(header) > settings.limits.max_columns:
         raise InputRejected("too_many_columns", f"{len(header)} columns, more than "
                             f"limits.max_columns={settings.limits.max_columns}")
     _check_columns(header, settings)
     stream.seek(0)
-    types = {c: pa.float64() for c in settings.features}
+    skip = given.bad_rows == "skip" and skipped is not None
+    # skipping: the features are read as text and converted here, so that a value that
+    # is no number marks its row rather than failing the whole block
+    types = {c: pa.string() if skip else pa.float64() for c in settings.features}
     types.update({c: pa.string() for c in settings.passthrough})
+    width: list[int] = []
+
+    def bad_width(row) -> str:
+        width.append(row.number if row.number is not None else -1)
+        return "skip"
+
     try:
         reader = pacsv.open_csv(
             stream,
-            read_options=pacsv.ReadOptions(use_threads=False, block_size=_CSV_BLOCK),
-            parse_options=pacsv.ParseOptions(newlines_in_values=False),
+            read_options=pacsv.ReadOptions(use_threads=False, block_size=_CSV_BLOCK,
+                                           column_names=header if given.columns else None),
+            parse_options=pacsv.ParseOptions(newlines_in_values=False, delimiter=delimiter,
+                                             invalid_row_handler=bad_width if skip else None),
             convert_options=pacsv.ConvertOptions(
                 column_types=types, include_columns=list(settings.columns),
+                decimal_point=given.decimal,
                 # pass-through strings are never null; a quoted empty feature ("") is,
                 # as an unquoted one is (writers that quote every field make those)
                 strings_can_be_null=False, quoted_strings_can_be_null=True))
     except (pa.ArrowInvalid, pa.ArrowKeyError, OSError, EOFError) as exc:
         raise _explain(exc, "csv", header) from exc
-    return _CsvBatches(reader, header), reader.schema
+    batches = _CsvBatches(reader, header)
+    schema = reader.schema
+    if skip:
+        first = 1 if given.columns else 2
+        batches = _skipping(batches, settings, width, skipped, first)
+        schema = pa.schema([schema.field(n).with_type(pa.float64())
+                            if n in settings.features else schema.field(n)
+                            for n in schema.names])
+    return batches, schema
 
 
 class _CsvBatches:
@@ -720,6 +753,55 @@ class _CsvBatches:
             yield from self.reader
         except (pa.ArrowInvalid, pa.ArrowKeyError, OSError, EOFError) as exc:
             raise _explain(exc, "csv", self.header) from exc
+
+
+# a number as Arrow's CSV reader parses one (after a decimal comma became a point)
+_NUMBER = r"^[+-]?(([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?|inf|infinity|nan)$"
+
+
+def _skipping(batches, settings: Settings, width: list[int], skipped: list[int],
+              first_line: int):
+    """CSV batches (features as text) with the rows whose features are not numbers left
+    out, features as float64; every skipped row's line goes to ``skipped`` (rows of the
+    wrong width, which the reader left out, too). An empty feature value stays: null."""
+    row = 0          # data rows the reader gave so far
+    told = 0         # of ``width``, lines already put in ``skipped``
+    for batch in batches:
+        columns, bad = {}, np.zeros(batch.num_rows, dtype=bool)
+        for name in settings.features:
+            col = pc.utf8_trim_whitespace(batch.column(name))
+            col = pc.if_else(pc.equal(col, ""), pa.scalar(None, pa.string()), col)
+            if settings.input.decimal == ",":
+                col = pc.replace_substring(col, ",", ".")
+            ok = pc.fill_null(pc.match_substring_regex(col, _NUMBER, ignore_case=True), True)
+            bad |= ~ok.to_numpy(zero_copy_only=False)
+            columns[name] = pc.if_else(ok, col, pa.scalar(None, pa.string()))
+        new_width = sorted(w for w in width[told:] if w >= 0)
+        told = len(width)
+        skipped.extend(new_width)
+        if bad.any():
+            skipped.extend(_lines(np.flatnonzero(bad) + row, first_line, skipped))
+        row += batch.num_rows
+        arrays = [pc.cast(columns[n], pa.float64()) if n in columns else batch.column(n)
+                  for n in batch.schema.names]
+        out = pa.RecordBatch.from_arrays(arrays, names=batch.schema.names)
+        yield out.filter(pa.array(~bad)) if bad.any() else out
+    skipped.extend(sorted(w for w in width[told:] if w >= 0))
+    skipped.sort()
+
+
+def _lines(rows: np.ndarray, first_line: int, skipped: list[int]) -> list[int]:
+    """The file lines of data rows ``rows`` (0-based among the rows read), given the
+    lines the reader itself left out (``skipped``, the wrong-width rows)."""
+    gone = sorted(skipped)
+    out = []
+    for r in rows.tolist():
+        line = first_line + r
+        for g in gone:       # each line left out before it moves it down one
+            if g <= line:
+                line += 1
+        out.append(line)
+    return out
 
 
 def _check_columns(names: list[str], settings: Settings) -> None:
@@ -745,7 +827,7 @@ _CONVERT = re.compile(r"In CSV column #(\d+): Row #(\d+): CSV conversion error t
 def _explain(exc: Exception, kind: str, header: list[str] | None = None) -> InputRejected:
     """A reader error as a reason code and a detail that names the line or column."""
     msg = str(exc)
-    if kind.startswith("csv"):
+    if kind.startswith(("csv", "tsv")):
         m = _ROW_WIDTH.search(msg)
         if m:
             line, want, got = (int(g) for g in m.groups())
@@ -761,7 +843,7 @@ def _explain(exc: Exception, kind: str, header: list[str] | None = None) -> Inpu
             return InputRejected("non_numeric_feature" if target == "double" else "bad_value",
                                  f"line {line}, column {col!r}: {what}, expected a number",
                                  line=line, column=col)
-        if isinstance(exc, (OSError, EOFError)) and kind == "csv.gz":
+        if isinstance(exc, (OSError, EOFError)) and kind.endswith(".gz"):
             return InputRejected("bad_compression", f"cannot be decompressed: {msg}")
         if "UTF8" in msg or "UTF-8" in msg:
             return InputRejected("encoding", f"not UTF-8: {msg}")

@@ -150,7 +150,8 @@ class Supervisor:
         counts = dict(s.counts)
         return {"queue_depth": depth, "worker_healthy": self.health().ok,
                 "heartbeat_age_seconds": age if age is not None else float("nan"),
-                "not_read": {k: counts.get(k, 0) for k in ("refused", "vanished")}}
+                "not_read": {k: counts.get(k, 0) for k in ("refused", "vanished")},
+                "rows_skipped": self.pipeline.rows_skipped}
 
     def status_line(self) -> str:
         st = self.pipeline.state

@@ -29,7 +29,8 @@ __all__ = ["labels_name", "safe_stem", "display_name", "labels_table", "atomic_f
 
 OUTPUT_MODE = 0o640
 _UNSAFE = re.compile(r"[^A-Za-z0-9._-]+")
-_INPUT_SUFFIX = re.compile(r"(\.csv\.gz|\.csv|\.parquet|\.pq)$", re.IGNORECASE)
+_INPUT_SUFFIX = re.compile(r"(\.csv\.gz|\.csv|\.tsv\.gz|\.tsv|\.parquet|\.pq)$",
+                           re.IGNORECASE)
 
 
 def safe_stem(name: str, limit: int = 80) -> str:
@@ -52,7 +53,7 @@ def display_name(name: str) -> str:
 # Input suffixes whose names keep their labels file name plain: a stem made only of safe
 # characters names one input with such a suffix (``.pq`` may hold the same bytes as
 # ``.parquet``, ``a.CSV`` those of ``a.csv``, so those names are told apart by a tag).
-_PLAIN_SUFFIXES = (".csv", ".csv.gz", ".parquet")
+_PLAIN_SUFFIXES = (".csv", ".csv.gz", ".tsv", ".tsv.gz", ".parquet")
 
 
 def labels_name(input_name: str, digest: str, fmt: str) -> str:

@@ -83,7 +83,9 @@ def _drop(inbox: Path, name: bytes, data: bytes, index: int) -> None:
 
 
 def test_poison_inputs_are_read_or_quarantined_and_watch_goes_on(tmp_path):
-    cfg = write_config(tmp_path, warmup_rows=600, drift={"time_column": "ts"})
+    # ts as text in the labels, so that inputs whose ts changes kind are all taken
+    cfg = write_config(tmp_path, warmup_rows=600, drift={"time_column": "ts"},
+                       passthrough_types={"ts": "string"})
     service = ServiceProcess(cfg, tmp_path / "watch.log").start()
     db = tmp_path / "state" / "state.db"
     drops = poison_drops()
@@ -183,7 +185,8 @@ def test_an_input_that_kills_the_process_is_quarantined_at_a_later_start(tmp_pat
 
 
 def test_ingest_says_in_one_line_what_became_of_each_input(tmp_path, capsys):
-    cfg = write_config(tmp_path, warmup_rows=600, drift={"time_column": "ts"})
+    cfg = write_config(tmp_path, warmup_rows=600, drift={"time_column": "ts"},
+                       passthrough_types={"ts": "string"})
     files = tmp_path / "files"
     files.mkdir()
     paths = []
