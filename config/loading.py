@@ -120,6 +120,12 @@ def _check_drift_and_alerts(s: Settings) -> None:
         if url.scheme not in ("http", "https") or not url.hostname:
             raise ConfigError(f"{key}.url: expected an http:// or https:// URL with a host, "
                               f"found {h.url!r}")
+        if url.username is not None or url.password is not None:
+            # credentials in a URL are not sent (and would be logged with it): refused
+            shown = url._replace(netloc=f"***@{url.netloc.rsplit('@', 1)[-1]}").geturl()
+            raise ConfigError(f"{key}.url: expected a URL without user:password@ (shoal "
+                              f"signs each alert with the HMAC secret instead; put a token the "
+                              f"receiver needs in its path or query), found {shown!r}")
         if h.secret_file is None and h.secret_env is None:
             raise ConfigError(f"{key}: expected secret_file or secret_env (the HMAC signing "
                               "secret), found neither")

@@ -64,16 +64,12 @@ def format_alert(payload: dict, created: float | None = None, prefix: str = "") 
 # ------------------------------------------------------------------------------ alerts
 
 
-def _cmd_alerts(args) -> int:
+def _cmd_alerts(args, open_read_parts) -> int:
     settings = load_config(args.config)
     setup_logging(settings.log_level)
     since = parse_since(args.since) if args.since else None
-    layout = prepare_folders(settings)
-    store = StateStore(layout.db)
-    try:
+    with open_read_parts(settings) as (_layout, store, _pipeline):   # never writes
         rows = store.alerts(since=since)
-    finally:
-        store.close()
     if args.json:
         print(json.dumps(rows, indent=2))
         return 0
@@ -212,11 +208,17 @@ def replay(config: Path, folder_in: Path, *, state_dir: str | None = None,
         raise UsageError(f"no such folder: {folder_in}")
     live = load_config(config)
     iso = _isolated_folder(live, state_dir)
-    _, settings = replay_settings(config, list(sets), iso)
-    files = sorted(p for p in folder_in.iterdir()
-                   if p.is_file() and not p.is_symlink() and input_kind(p.name) is not None)
-    if not files:
-        raise UsageError(f"{folder_in} holds no .parquet, .pq, .csv or .csv.gz files")
+    try:
+        _, settings = replay_settings(config, list(sets), iso)
+        files = sorted(p for p in folder_in.iterdir()
+                       if p.is_file() and not p.is_symlink() and input_kind(p.name) is not None)
+        if not files:
+            raise UsageError(f"{folder_in} holds no .parquet, .pq, .csv, .csv.gz, .tsv or "
+                             ".tsv.gz files")
+    except BaseException:
+        with contextlib.suppress(OSError):   # nothing was run: no empty folder is left
+            iso.rmdir()
+        raise
     layout = prepare_folders(settings)
     print(f"replay: {len(files)} inputs from {folder_in} in name order, fresh model, isolated "
           f"state in {iso}", file=out)
@@ -273,10 +275,10 @@ def _cmd_replay(args) -> int:
 # ---------------------------------------------------------------------------- commands
 
 
-def add_alert_commands(cmd, with_config, open_parts) -> None:
+def add_alert_commands(cmd, with_config, open_parts, open_read_parts) -> None:
     """Register ``alerts``, ``rebaseline`` and ``replay`` on the ``shoal`` parser."""
     sp = with_config(cmd("alerts", "list drift alerts (raised and cleared), oldest first",
-                         _cmd_alerts))
+                         lambda args: _cmd_alerts(args, open_read_parts)))
     sp.add_argument("--since", metavar="WHEN",
                     help="only alerts raised since WHEN: 30m, 2h, 7d or an ISO date/time")
     sp.add_argument("--json", action="store_true", help="print JSON instead of text")

@@ -14,6 +14,7 @@ import json
 import os
 import signal
 import sqlite3
+import stat
 import sys
 import threading
 from importlib import metadata
@@ -40,7 +41,12 @@ from shoal.core import ShoalError  # noqa: E402
 from shoal.daemon.alert_commands import add_alert_commands, alert_delivery  # noqa: E402
 from shoal.daemon.backfill import add_backfill_command  # noqa: E402
 from shoal.daemon.errors import InputRejected, ServiceError, UsageError  # noqa: E402
-from shoal.daemon.layout import StateLock, prepare_folders, remove_stale_temps  # noqa: E402
+from shoal.daemon.layout import (  # noqa: E402
+    Layout,
+    StateLock,
+    prepare_folders,
+    remove_stale_temps,
+)
 from shoal.daemon.logs import log_event, setup_logging  # noqa: E402
 from shoal.daemon.ops_commands import add_operating_commands, run_watch  # noqa: E402
 from shoal.daemon.pipeline import Pipeline, Result  # noqa: E402
@@ -48,6 +54,7 @@ from shoal.daemon.progress import progress  # noqa: E402
 from shoal.daemon.quarantine_commands import add_quarantine_commands  # noqa: E402
 from shoal.daemon.retention import RetentionKeeper, add_prune_command  # noqa: E402
 from shoal.daemon.segment_names import add_name_command  # noqa: E402
+from shoal.daemon.readout import StateReader  # noqa: E402
 from shoal.daemon.store import StateStore  # noqa: E402
 from shoal.daemon.transform_commands import add_transform_commands  # noqa: E402
 from shoal.daemon.writer import display_name  # noqa: E402
@@ -84,7 +91,9 @@ def build_parser() -> argparse.ArgumentParser:
                              "then follow new drops", _cmd_watch))
     sp = with_config(cmd("ingest", "run the pipeline on the named files against the same "
                                    "state, then exit (1 if any was quarantined)", _cmd_ingest))
-    sp.add_argument("files", nargs="+", metavar="FILE")
+    sp.add_argument("files", nargs="+", metavar="FILE",
+                    help="input files, or folders whose inputs are taken oldest first "
+                         "(as the service takes them)")
     sp = with_config(cmd("label", "label a file with the current model, without learning",
                          _cmd_label))
     sp.add_argument("file", metavar="FILE")
@@ -95,7 +104,8 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--all", action="store_true",
                     help="also list the segments that retired or merged away")
     add_operating_commands(cmd, with_config)   # report, status
-    add_alert_commands(cmd, with_config, open_service_parts)   # alerts, rebaseline, replay
+    add_alert_commands(cmd, with_config, open_service_parts,   # alerts, rebaseline, replay
+                       open_read_parts)
     add_backfill_command(cmd, with_config, _stop_on_signals)   # backfill (Dask)
     add_transform_commands(cmd, with_config)   # suggest-transforms
     add_prune_command(cmd, with_config, open_service_parts)    # prune (retention)
@@ -132,6 +142,23 @@ def open_service_parts(settings: Settings, *, lock: bool = True):
 
 
 @contextlib.contextmanager
+def open_read_parts(settings: Settings):
+    """The state opened read-only (no folder made, no lock, no write: a read-only state
+    folder works) with a pipeline on it, for the commands that only read; a state folder
+    with no store yet is prepared as the service would."""
+    layout = Layout.of(settings)
+    if not layout.db.exists():
+        with open_service_parts(settings, lock=False) as parts:
+            yield parts
+        return
+    store = StateReader(layout.db)
+    try:
+        yield layout, store, Pipeline(settings, layout, store)
+    finally:
+        store.close()
+
+
+@contextlib.contextmanager
 def _stop_on_signals(stop: threading.Event, wake=None):
     """SIGTERM/SIGINT set ``stop``; a second signal exits at once (nothing committed)."""
     def handler(signum, frame):
@@ -164,10 +191,12 @@ def _cmd_watch(args) -> int:
 
 def _cmd_ingest(args) -> int:
     settings = _load(args)
-    paths = [Path(f) for f in args.files]
-    for p in paths:
+    paths = []
+    for f in args.files:
+        p = Path(f)
         if not p.exists() and not p.is_symlink():
             raise UsageError(f"no such file: {p}")
+        paths += _folder_inputs(p, settings) if p.is_dir() and not p.is_symlink() else [p]
     results = []
     with alert_delivery(open_service_parts, settings, drain_seconds=10.0) as (
             layout, store, pipeline):
@@ -191,9 +220,32 @@ def _cmd_ingest(args) -> int:
             (f" ({r.detail})" if r.detail else "")
         print(f"{r.outcome:12s} {r.name}{extra}")
     left = len(paths) - len(results)
-    print(f"{len(results) - len(bad)} of {len(paths)} inputs committed, {len(bad)} not"
-          + (f", {left} not tried" if left else ""))
+    count = {o: sum(r.outcome == o for r in results)
+             for o in ("committed", "duplicate", "already_done")}
+    print(f"{count['committed']} of {len(paths)} inputs committed"
+          + (f", {count['duplicate']} duplicate" if count["duplicate"] else "")
+          + (f", {count['already_done']} already done" if count["already_done"] else "")
+          + f", {len(bad)} not" + (f", {left} not tried" if left else ""))
     return 1 if bad or left else 0
+
+
+def _folder_inputs(folder: Path, settings: Settings) -> list[Path]:
+    """The inputs in ``folder`` in the service's order (oldest modification first, then
+    name): regular files of a known kind whose names ``watch.ignore`` does not match."""
+    from shoal.daemon.gate import ReadinessGate, input_kind
+
+    gate = ReadinessGate(0.0, settings.watch.ignore)
+    found = []
+    for p in folder.iterdir():
+        if gate.ignored(p.name) or input_kind(p.name) is None:
+            continue
+        try:
+            st = p.lstat()
+        except OSError:
+            continue
+        if stat.S_ISREG(st.st_mode):
+            found.append((st.st_mtime_ns, str(p), p))
+    return [p for _, _, p in sorted(found)]
 
 
 def _cmd_label(args) -> int:
@@ -203,7 +255,7 @@ def _cmd_label(args) -> int:
         raise UsageError(f"no such file: {src}")
     if not out.parent.is_dir():
         raise UsageError(f"--out {out}: no such folder {out.parent}")
-    with open_service_parts(settings, lock=False) as (layout, store, pipeline):
+    with open_read_parts(settings) as (layout, store, pipeline):
         with _stop_on_signals(pipeline.stop):
             try:
                 r = pipeline.label_only(src, out)
@@ -219,7 +271,7 @@ def _cmd_segments(args) -> int:
     from shoal.daemon.summary import format_segments, segment_summary
 
     settings = _load(args)
-    with open_service_parts(settings, lock=False) as (layout, store, pipeline):
+    with open_read_parts(settings) as (layout, store, pipeline):
         summary = segment_summary(store, settings, include_gone=args.all)
     print(json.dumps(summary, indent=2) if args.json else format_segments(summary))
     return 0

@@ -41,19 +41,24 @@ def _ensure_dir(path: Path, key: str, mode: int | None) -> None:
                           f"found {path} ({exc.strerror})") from exc
     if path.is_symlink() or not path.is_dir():
         raise ConfigError(f"{key}: expected a folder, found {path} which is not a folder")
+    # a state folder that exists but cannot be written is unusable (exit 3); the read-only
+    # commands (segments, alerts, status, label) do not come here
+    unusable = StateError if key == "state" else ConfigError
     if mode is not None:
         try:
             os.chmod(path, mode)
         except OSError as exc:
-            raise ConfigError(f"{key}: cannot set permissions of {path}: {exc.strerror}") from exc
+            raise unusable(f"{key}: cannot set permissions of {path}: {exc.strerror} (a "
+                           "writable state folder is needed to learn; segments, alerts, "
+                           "status and label only read it)") from exc
     probe = path / f".shoal-write-probe-{os.getpid()}"
     try:
         fd = os.open(probe, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
         os.close(fd)
         os.unlink(probe)
     except OSError as exc:
-        raise ConfigError(f"{key}: expected a writable folder, found {path} not writable "
-                          f"({exc.strerror})") from exc
+        raise unusable(f"{key}: expected a writable folder, found {path} not writable "
+                       f"({exc.strerror})") from exc
 
 
 def prepare_folders(settings: Settings) -> Layout:

@@ -47,12 +47,27 @@ class StateReader(StateStore):
         if not self.path.exists():
             raise StateError(f"no state store at {self.path} yet: nothing has been processed")
         try:
-            self.db = sqlite3.connect(f"file:{self.path}?mode=ro", uri=True, timeout=10.0,
-                                      check_same_thread=False)
-            self.db.execute("PRAGMA query_only=ON")
-            self.db.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()
+            self.db = self._connect("mode=ro")
         except sqlite3.DatabaseError as exc:
-            raise StateError(f"state store {self.path} cannot be read: {exc}") from exc
+            if os.access(self.path.parent, os.W_OK) and not _read_only_mount(self.path.parent):
+                raise StateError(f"state store {self.path} cannot be read: {exc}") from exc
+            # a read-only state folder: SQLite cannot make the shared-memory file a
+            # store in WAL mode is read through, and no writer can be at work on it
+            try:
+                self.db = self._connect("mode=ro&immutable=1")
+            except sqlite3.DatabaseError as exc2:
+                raise StateError(f"state store {self.path} cannot be read: {exc2}") from exc2
+
+    def _connect(self, flags: str) -> sqlite3.Connection:
+        db = sqlite3.connect(f"file:{self.path}?{flags}", uri=True, timeout=10.0,
+                             check_same_thread=False)
+        try:
+            db.execute("PRAGMA query_only=ON")
+            db.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()
+        except sqlite3.DatabaseError:
+            db.close()
+            raise
+        return db
 
     def checkpoint(self, version: int) -> Checkpoint:
         """A checkpoint, its drift state in today's words (a store not yet migrated by a
@@ -61,9 +76,24 @@ class StateReader(StateStore):
         cp.extra = extra_in_current_words(cp.extra)
         return cp
 
+    def alerts(self, since: float | None = None, version: int | None = None) -> list[dict]:
+        """The store's alerts, in today's words (a store not yet migrated keeps the
+        earlier ones on disk)."""
+        return [dict(r, payload=payload_in_current_words(r["payload"]))
+                for r in super().alerts(since=since, version=version)]
+
     def tables(self) -> set[str]:
         return {name for (name,) in self.db.execute(
             "SELECT name FROM sqlite_master WHERE type = 'table'")}
+
+
+def _read_only_mount(folder: Path) -> bool:
+    """Whether ``folder`` is on a file system mounted read-only (root may write anywhere
+    else, so ``os.access`` says nothing there)."""
+    try:
+        return bool(os.statvfs(folder).f_flag & os.ST_RDONLY)
+    except OSError:
+        return False
 
 
 def open_reader(layout: Layout) -> StateReader:

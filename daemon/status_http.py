@@ -243,4 +243,14 @@ def _handler_for(server: StatusServer) -> type[BaseHTTPRequestHandler]:
 
         do_POST = do_PUT = do_DELETE = do_PATCH = do_OPTIONS = _refuse  # noqa: N815
 
+        def __getattr__(self, name: str):
+            # any other method (TRACE, PROPFIND, a made-up one): 405 too, not http.server's
+            # 501 "unsupported method"
+            if name.startswith("do_"):
+                return self._refuse
+            raise AttributeError(name)
+
+        def version_string(self) -> str:
+            return self.server_version   # "shoal", without http.server's trailing " "
+
     return Handler

@@ -21,10 +21,11 @@ def segment_summary(store: StateStore, settings: Settings, now: float | None = N
     cp = store.latest_checkpoint()
     out: dict[str, Any] = {"model_version": store.model_version,
                            "features": list(settings.features), "segments": []}
-    if cp is None:
+    if cp is None:   # no model yet: the inputs taken so far only fill the warm-up
         buffered = store.warmup_rows()
         out["warmup"] = {"rows": 0 if buffered is None else int(len(buffered)),
-                         "needed": settings.warmup_rows}
+                         "needed": settings.warmup_rows, "inputs": store.model_version}
+        out["model_version"] = None
         return out
     m = Mixture.from_state(cp.arrays, cp.meta)
     names = segment_names(store.db)
@@ -98,12 +99,11 @@ def _num(v: float) -> str:
 
 def format_segments(summary: dict) -> str:
     """A plain-text table: one line per segment, mean ± spread per feature."""
-    lines = [f"model version {summary['model_version']}"]
-    if not summary["segments"]:
+    if summary["model_version"] is None:
         w = summary.get("warmup", {})
-        lines.append(f"no model yet: warm-up has {w.get('rows', 0)} of "
-                     f"{w.get('needed', '?')} rows")
-        return "\n".join(lines)
+        return (f"no model yet: warm-up has {w.get('rows', 0)} of {w.get('needed', '?')} "
+                f"rows (from {w.get('inputs', 0)} inputs)")
+    lines = [f"model version {summary['model_version']}"]
     lines[0] += f", {summary['rows_learned']} rows learned after warm-up"
     feats = summary["features"]
     first = summary["segments"][0]
