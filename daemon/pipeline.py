@@ -567,10 +567,11 @@ class Pipeline:
 
     def _note_skipped(self, labels: Path, name: str) -> None:
         """The lines of rows skipped (``input.bad_rows: skip``) in a sidecar next to the
-        labels (``<labels file>.bad_rows.json``, written before the commit), a log line
-        and the count."""
+        labels (``_<labels file>.bad_rows.json``, written before the commit: the leading
+        ``_`` keeps dataset readers, pyarrow's among them, from taking it for data), a
+        log line and the count."""
         lines = list(self._skipped)
-        sidecar = labels.with_name(labels.name + ".bad_rows.json")
+        sidecar = labels.with_name(f"_{labels.name}.bad_rows.json")
         with atomic_file(sidecar, sync_folder=self._group is None) as f:
             f.write(json.dumps({"input": name, "labels": labels.name, "rows_skipped":
                                 len(lines), "lines": lines}).encode())

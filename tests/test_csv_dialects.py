@@ -53,7 +53,7 @@ def test_bad_rows_are_skipped_with_their_lines_in_a_sidecar(tmp_path, capsys):
     assert table.num_rows == 298
     skipped_keys = {rows[3][0], rows[8][0]}
     assert not skipped_keys & set(table.column("key").to_pylist())
-    side = json.loads(path.with_name(path.name + ".bad_rows.json").read_text())
+    side = json.loads(path.with_name(f"_{path.name}.bad_rows.json").read_text())
     assert (side["rows_skipped"], side["lines"]) == (2, [5, 10])
     # the row with empty values is kept, invalid (null segment)
     keys = table.column("key").to_pylist()
