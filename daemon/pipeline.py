@@ -627,9 +627,10 @@ class Pipeline:
         mixture, extra = run.mixture, run.extra
         warmup_keep, clear_warmup = run.warmup_keep, run.clear_warmup
         if mixture is not None and st.mixture is None:
-            # the inputs before this one wait with null segments: the first model labels them
-            self._label_warmup_inputs(mixture, run.transforms,
-                                      run.first_unusual_below, version)
+            # the inputs before this one wait with null segments: the first model labels
+            # them, and their rows count in the segments' row counts (as in backfill)
+            extra = _count_rows(extra, self._label_warmup_inputs(
+                mixture, run.transforms, run.first_unusual_below, version))
         if mixture is not None:
             extra = self._born(extra, mixture, version)
         if watch is not None and watch.state is not None:
@@ -690,12 +691,13 @@ class Pipeline:
         return result
 
     def _label_warmup_inputs(self, mixture: Mixture, transforms: FeatureTransforms | None,
-                             unusual_below: float, version: int) -> None:
+                             unusual_below: float, version: int) -> list[np.ndarray]:
         """Write the labels of the inputs taken before the first model again, scored by
         it (``version``: the first model's). Each file is replaced atomically before the
         commit of the input that made the model; a crash before that commit makes the same
-        model from the same rows again, and the same files."""
+        model from the same rows again, and the same files. Returns the segments given."""
         fmt = self.settings.output.format
+        given = []
         for waiting in self.state.warmup_inputs:
             if waiting.labels is None:
                 continue
@@ -709,8 +711,10 @@ class Pipeline:
                 if valid is not None and not inside.all():
                     valid = valid.copy()
                     valid[np.flatnonzero(valid)[~inside]] = False
+            scores = mixture.score(X)
+            given.append(scores.segment)
             try:
-                relabel_file(path, fmt, valid, mixture.score(X), unusual_below, version,
+                relabel_file(path, fmt, valid, scores, unusual_below, version,
                              jacobian, self._named)
             except FileNotFoundError:
                 log_event("warmup_labels_missing", logging.WARNING, labels=waiting.labels)
@@ -721,6 +725,7 @@ class Pipeline:
             log_event("warmup_inputs_labelled", inputs=len(self.state.warmup_inputs),
                       rows=sum(len(w.rows) for w in self.state.warmup_inputs),
                       model_version=version)
+        return given
 
     def _named(self, tables):
         """Labels tables with the ``segment_name`` column when ``output.segment_names``."""
@@ -867,12 +872,7 @@ class Pipeline:
         return extra
 
     def _after_scoring(self, extra: dict, scores, mixture: Mixture) -> dict:
-        extra = dict(extra)
-        counts = dict(extra.get("segment_rows", {}))
-        ids, n = np.unique(scores.segment, return_counts=True)
-        for sid, k in zip(ids.tolist(), n.tolist()):
-            counts[str(sid)] = counts.get(str(sid), 0) + int(k)
-        extra["segment_rows"] = counts
+        extra = _count_rows(dict(extra), [scores.segment])
         q = self.settings.output.unusual_quantile
         if len(scores.log_density) and "unusual_below" in extra:
             w = len(scores.log_density) / (len(scores.log_density) + _UNUSUAL_MEMORY_ROWS)
@@ -1090,6 +1090,17 @@ def _mark_beyond_model(frame: Frame, mixture: Mixture) -> None:
     if far:
         log_event("rows_beyond_model_range", logging.WARNING, rows=far,
                   limit_sds=MODEL_RANGE_SDS)
+
+
+def _count_rows(extra: dict, segments: list[np.ndarray]) -> dict:
+    """``extra`` with ``segments`` (rows' segment ids) added to its per-segment counts."""
+    if not segments or not sum(len(s) for s in segments):
+        return extra
+    counts = dict(extra.get("segment_rows", {}))
+    ids, n = np.unique(np.concatenate(segments), return_counts=True)
+    for sid, k in zip(ids.tolist(), n.tolist()):
+        counts[str(sid)] = counts.get(str(sid), 0) + int(k)
+    return dict(extra, segment_rows=counts)
 
 
 def _valid_rows(frame: Frame) -> np.ndarray:

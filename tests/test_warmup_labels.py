@@ -72,8 +72,12 @@ def test_rows_of_inputs_before_the_first_model_end_with_its_segment(tmp_path, ca
     store = StateStore(settings.state / "state.db")
     try:
         assert store.warmup_inputs() == []      # nothing left waiting
+        counts = store.latest_checkpoint().extra["segment_rows"]
     finally:
         store.close()
+    # every valid row of the four inputs counted in its segment, the warm-up's too
+    invalid_per_input = int(np.count_nonzero(~valid[:ROWS]))
+    assert sum(counts.values()) == 4 * (ROWS - invalid_per_input)
 
 
 def test_labels_written_during_the_warm_up_carry_no_model_version_text(tmp_path):
