@@ -70,6 +70,9 @@ class WatchSettings:
     ignore: tuple[str, ...] = _f(
         ("*.tmp", "*.part", "*.partial", "*.swp", "*~", ".*"),
         "glob patterns of names never read (temporary and hidden files)")
+    recursive: bool = _f(False, "also take inputs in sub-folders of the inbox (named by their "
+                                "path relative to it; a sub-folder whose name matches ignore "
+                                "is passed over)")
     polling: bool = _f(False, "poll the folder instead of using OS events (network filesystems)")
     poll_seconds: float = _f(1.0, "polling interval when polling is on", min=0.05, max=3600.0)
     queue_size: int = _f(10000, "bound of the queue between file events and the worker",

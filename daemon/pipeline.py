@@ -240,6 +240,18 @@ class Pipeline:
         return ModelState(version=version, mixture=mixture, extra=cp.extra,
                           transforms=transforms)
 
+    def _input_name(self, path: Path) -> str:
+        """An input's name in the ledger, logs and labels: its file name, or with
+        ``watch.recursive`` its path relative to the inbox (``2025/05/a.csv``)."""
+        if self.settings.watch.recursive:
+            try:
+                rel = path.relative_to(self.layout.inbox)
+            except ValueError:
+                rel = None
+            if rel is not None and len(rel.parts) > 1:
+                return display_name(rel.as_posix())
+        return display_name(path.name)
+
     def _check_stop(self) -> None:
         if self.stop.is_set():
             raise Interrupted("stop requested")
@@ -256,7 +268,7 @@ class Pipeline:
         path = Path(path)
         t0 = self.monotonic()
         seen_at = self.wall()
-        name = display_name(path.name)
+        name = self._input_name(path)
         log_event("input_started", logging.DEBUG, file=name, model_version=self.state.version)
         try:
             result = self._process(path, name, in_inbox, seen_at)
@@ -381,7 +393,7 @@ class Pipeline:
                             f"{self.settings.limits.max_attempts}); not tried again",
                             attempts=tried)
         self._attempt = key
-        return self._quarantine(path, display_name(path.name), in_inbox, exc, self.wall(),
+        return self._quarantine(path, self._input_name(path), in_inbox, exc, self.wall(),
                                 self.monotonic())
 
     def _flush(self) -> None:

@@ -22,6 +22,7 @@ __all__ = ["FIXED_SETTINGS", "changed_keys", "check_reloadable", "reload_config"
 FIXED_SETTINGS = (
     "features", "transforms", "passthrough", "inbox", "outbox", "state", "segments", "covariance",
     "warmup_rows", "half_life_rows", "seed", "learning", "watch.polling", "watch.poll_seconds",
+    "watch.recursive",
     "watch.queue_size", "http",
 )
 

@@ -59,7 +59,7 @@ class Service:
         self.gate = ReadinessGate(w.settle_seconds, w.ignore,
                                   incomplete_seconds=w.incomplete_seconds, clock=clock)
         self.watcher = InboxWatcher(layout.inbox, w.queue_size, w.polling, w.poll_seconds,
-                                    observer_factory=observer_factory)
+                                    observer_factory=observer_factory, recursive=w.recursive)
         self._waiting: dict[str, float] = {}        # path -> monotonic time of next check
         # path -> (mtime_ns, path) of a waiting file that newer ones may not overtake
         self._holding: dict[str, tuple[int, str]] = {}
@@ -136,7 +136,8 @@ class Service:
     # -- discovery -------------------------------------------------------------------
     def rescan(self) -> None:
         try:
-            paths = scan_inbox(self.layout.inbox)
+            paths = scan_inbox(self.layout.inbox, self.settings.watch.recursive,
+                               self.gate.ignored)
         except OSError as exc:
             log_event("inbox_unreadable", logging.ERROR, detail=str(exc))
             return
@@ -162,6 +163,8 @@ class Service:
     def _consider(self, path: str) -> None:
         if path in self._in_ready:
             return
+        if self.settings.watch.recursive and self._in_sub_folder(path):
+            return
         if self._retry_at.get(path, 0.0) > self.clock():  # failed: not before its retry
             self._waiting[path] = self._retry_at[path]
             return
@@ -182,6 +185,20 @@ class Service:
                 self._count("refused")
                 log_event("input_refused", logging.WARNING, file=os.path.basename(path),
                           detail=d.reason)
+
+    def _in_sub_folder(self, path: str) -> bool:
+        """(``watch.recursive``) Whether ``path`` is not itself an input to consider: a
+        sub-folder (its files are considered, now: one moved in whole brings no event
+        for them), or an entry of a sub-folder whose name is ignored."""
+        rel = os.path.relpath(path, self.layout.inbox)
+        if any(self.gate.ignored(part) for part in rel.split(os.sep)[:-1]):
+            return True
+        if os.path.isdir(path) and not os.path.islink(path):
+            if not self.gate.ignored(os.path.basename(path)):
+                for inner in scan_inbox(Path(path), True, self.gate.ignored):
+                    self._consider(inner)
+            return True
+        return False
 
     def _wait(self, path: str, d, at: float | None = None) -> None:
         """``path`` waits until ``at`` (``d.recheck_at``). Unless it only waits for its

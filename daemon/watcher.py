@@ -40,14 +40,18 @@ EVENTS = [FileMovedEvent, FileCreatedEvent, FileModifiedEvent, FileClosedEvent,
 class EnqueueHandler(FileSystemEventHandler):
     """Puts paths of interest on ``events``; never blocks, never does real work."""
 
-    def __init__(self, inbox: Path, events: "queue.Queue[tuple[str, bool]]"):
+    def __init__(self, inbox: Path, events: "queue.Queue[tuple[str, bool]]",
+                 recursive: bool = False):
         self.inbox = os.path.normpath(str(inbox))
         self.events = events
+        self.recursive = recursive
         self.overflowed = threading.Event()
 
     def _put(self, path: str, renamed: bool) -> None:
-        if os.path.dirname(os.path.normpath(path)) != self.inbox:
-            return  # only entries directly in the inbox
+        folder = os.path.dirname(os.path.normpath(path))
+        if folder != self.inbox and not (
+                self.recursive and folder.startswith(self.inbox + os.sep)):
+            return  # only entries in the inbox (or, recursive, in its sub-folders)
         try:
             self.events.put_nowait((path, renamed))
         except queue.Full:
@@ -73,10 +77,20 @@ def _event_observer():
     return InotifyObserver(generate_full_events=True)
 
 
-def scan_inbox(inbox: Path) -> list[str]:
-    """Every entry directly in the inbox (no recursion, links not followed)."""
-    with os.scandir(inbox) as it:
-        return sorted(os.path.join(inbox, e.name) for e in it)
+def scan_inbox(inbox: Path, recursive: bool = False,
+               ignored: Callable[[str], bool] = lambda name: False) -> list[str]:
+    """Every entry directly in the inbox, links not followed; ``recursive``: the entries
+    of its sub-folders too (not the folders themselves, nor those ``ignored`` by name)."""
+    if not recursive:
+        with os.scandir(inbox) as it:
+            return sorted(os.path.join(inbox, e.name) for e in it)
+    out = []
+    for folder, dirs, files in os.walk(inbox, followlinks=False):
+        dirs[:] = [d for d in dirs if not ignored(d)]
+        out += [os.path.join(folder, f) for f in files]
+        # links to folders are entries too (the gate refuses them, as at the top level)
+        out += [os.path.join(folder, d) for d in dirs if os.path.islink(os.path.join(folder, d))]
+    return sorted(out)
 
 
 class InboxWatcher:
@@ -88,10 +102,12 @@ class InboxWatcher:
 
     def __init__(self, inbox: Path, queue_size: int = 10000, polling: bool = False,
                  poll_seconds: float = 1.0,
-                 observer_factory: Callable[[], object] | None = None):
+                 observer_factory: Callable[[], object] | None = None,
+                 recursive: bool = False):
         self.inbox = Path(inbox)
+        self.recursive = recursive
         self.events: queue.Queue[tuple[str, bool]] = queue.Queue(maxsize=queue_size)
-        self.handler = EnqueueHandler(self.inbox, self.events)
+        self.handler = EnqueueHandler(self.inbox, self.events, recursive)
         if observer_factory is None:
             if polling:
                 observer_factory = lambda: PollingObserver(timeout=poll_seconds)  # noqa: E731
@@ -104,7 +120,8 @@ class InboxWatcher:
     def start(self) -> None:
         observer = self._factory()
         observer.daemon = True
-        observer.schedule(self.handler, str(self.inbox), recursive=False, event_filter=EVENTS)
+        observer.schedule(self.handler, str(self.inbox), recursive=self.recursive,
+                          event_filter=EVENTS)
         observer.start()
         self._observer = observer
 
