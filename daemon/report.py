@@ -207,7 +207,8 @@ def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
     now = time.time() if now is None else now
     pruned = compacted_totals(reader.db).get("committed", {}).get("rows", 0)
     axis = build_axis(reader.ledger("committed"), layout.outbox, settings.drift.time_column,
-                      rows_before=pruned)
+                      rows_before=pruned, time_unit=settings.drift.time_unit,
+                      time_format=settings.drift.time_format)
     lo = parse_bound(since, axis, "--since")
     hi = parse_bound(until, axis, "--until")
     if lo is not None and hi is not None and hi < lo:

@@ -37,6 +37,7 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
 from shoal.daemon.errors import UsageError
+from shoal.daemon.times import row_times
 
 __all__ = ["Axis", "InputFacts", "input_facts", "build_axis", "parse_bound", "event_kind",
            "EVENT_KINDS", "axis_events"]
@@ -55,7 +56,7 @@ class InputFacts:
     numeric: bool = False      # the time column holds plain numbers, not dates
 
 
-_FACTS: "OrderedDict[tuple[str, str | None], InputFacts]" = OrderedDict()
+_FACTS: "OrderedDict[tuple, InputFacts]" = OrderedDict()
 _FACTS_LOCK = threading.Lock()
 _FACTS_KEPT = 100_000
 
@@ -108,7 +109,8 @@ def _iso_seconds(value: Any) -> float:
     return when.timestamp()
 
 
-def _read_facts(path: Path, time_column: str | None) -> InputFacts:
+def _read_facts(path: Path, time_column: str | None, time_unit: str | None = None,
+                time_format: str | None = None) -> InputFacts:
     columns = ["log_density"] + ([time_column] if time_column else [])
     if path.name.endswith(".csv"):
         table = pacsv.read_csv(path, convert_options=pacsv.ConvertOptions(
@@ -122,22 +124,33 @@ def _read_facts(path: Path, time_column: str | None) -> InputFacts:
     first = last = None
     numeric = False
     if time_column and time_column in table.column_names:
-        secs, numeric = _to_seconds(table.column(time_column))
+        if time_unit is not None or time_format is not None:
+            # read as the drift alerts read it: epoch numbers in drift.time_unit, text
+            # in drift.time_format (shoal.daemon.times)
+            instants = row_times(table.column(time_column), time_unit, time_format).values
+            secs = np.where(np.isnat(instants), np.nan,
+                            instants.astype(np.int64) / 1e6)
+            numeric = False
+        else:
+            secs, numeric = _to_seconds(table.column(time_column))
         secs = secs[np.isfinite(secs)]
         if secs.size:
             first, last = float(secs.min()), float(secs.max())
     return InputFacts(first, last, float(ld.mean()) if ld.size else None, numeric)
 
 
-def input_facts(path: Path, time_column: str | None) -> InputFacts | None:
-    """The facts of one labels file (None when it is gone or unreadable), kept per name."""
-    key = (str(path), time_column)
+def input_facts(path: Path, time_column: str | None, time_unit: str | None = None,
+                time_format: str | None = None) -> InputFacts | None:
+    """The facts of one labels file (None when it is gone or unreadable), kept per name;
+    ``time_unit``/``time_format`` as in ``drift`` (either given: the column is read as
+    the drift alerts read it; neither: numbers are the column's own units)."""
+    key = (str(path), time_column, time_unit, time_format)
     with _FACTS_LOCK:
         got = _FACTS.get(key)
     if got is not None:
         return got
     try:
-        got = _read_facts(path, time_column)
+        got = _read_facts(path, time_column, time_unit, time_format)
     except (OSError, pa.ArrowException, ValueError):
         return None
     with _FACTS_LOCK:
@@ -185,7 +198,8 @@ class Axis:
 
 
 def build_axis(entries: Sequence[Any], outbox: Path, time_column: str | None,
-               rows_before: int = 0) -> Axis:
+               rows_before: int = 0, time_unit: str | None = None,
+               time_format: str | None = None) -> Axis:
     """The axis of the committed ledger ``entries`` (oldest first): data time when the
     time column is configured and readable in at least one labels file, else stream rows
     (counted from ``rows_before``, the rows of ledger rows removed by retention).
@@ -206,7 +220,8 @@ def build_axis(entries: Sequence[Any], outbox: Path, time_column: str | None,
         rows_axis.x[v] = float(total)
         rows_axis.span[v] = (float(start), float(total))
         rows_axis.names[v] = e.name
-        facts = input_facts(outbox / e.labels, time_column) if e.labels else None
+        facts = input_facts(outbox / e.labels, time_column, time_unit, time_format) \
+            if e.labels else None
         if facts is None:
             continue
         if facts.mean_log_density is not None:
