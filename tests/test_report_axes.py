@@ -219,24 +219,30 @@ def test_thirty_day_report_in_headless_chromium(on_time, tmp_path):
         assert console_errors(driver) == []
 
 
-def test_a_numeric_time_column_is_drawn_in_its_own_units(tmp_path, capsys):
+def _report_of_csv_drops(tmp_path, drift: dict, n: int, **bounds) -> dict:
+    """The report's data after ``shoal ingest`` of ``n`` CSV drops of 300 rows whose
+    ``ts`` counts rows from 0."""
     from shoal.config import load_config
     from shoal.daemon.cli import main
     from shoal.daemon.drills import synthetic_table, write_config, write_drop
     from shoal.daemon.layout import Layout
 
-    cfg = write_config(tmp_path, drift={"time_column": "ts", "settle_rows": 400,
-                                        "window_rows": 200})
+    cfg = write_config(tmp_path, drift={"time_column": "ts", **drift})
     (tmp_path / "inbox").mkdir()
     paths = [write_drop(synthetic_table(i, 300, seed=2), tmp_path / "inbox", f"n{i}.csv",
-                        index=i) for i in range(6)]
+                        index=i) for i in range(n)]
     assert main(["ingest", "-c", str(cfg), *map(str, paths)]) == 0
     settings = load_config(cfg)
     reader = StateReader(Layout.of(settings).db)
     try:
-        data = report_data(reader, settings, Layout.of(settings), since="900")
+        return report_data(reader, settings, Layout.of(settings), **bounds)
     finally:
         reader.close()
+
+
+def test_a_numeric_time_column_is_drawn_in_its_own_units(tmp_path, capsys):
+    data = _report_of_csv_drops(tmp_path, {"settle_rows": 400, "window_rows": 200}, 6,
+                                since="900")
     axis = data["axis"]
     assert axis.kind == "number" and axis.x[6] == 6 * 300 - 1    # ts counts rows from 0
     assert data["view"] == (900.0, 1799.0) and data["shown_inputs"] == 3
@@ -247,23 +253,7 @@ def test_a_numeric_time_column_is_drawn_in_its_own_units(tmp_path, capsys):
 def test_epoch_numbers_with_a_time_unit_put_the_report_on_data_time(tmp_path):
     """With drift.time_unit the report reads a numeric time column as the alerts do:
     epoch times, drawn as UTC dates (without it: the column's own units, above)."""
-    from shoal.config import load_config
-    from shoal.daemon.cli import main
-    from shoal.daemon.drills import synthetic_table, write_config, write_drop
-    from shoal.daemon.layout import Layout
-
-    cfg = write_config(tmp_path, drift={"time_column": "ts", "time_unit": "ms"})
-    (tmp_path / "inbox").mkdir()
-    paths = [write_drop(synthetic_table(i, 300, seed=2), tmp_path / "inbox", f"n{i}.csv",
-                        index=i) for i in range(3)]
-    assert main(["ingest", "-c", str(cfg), *map(str, paths)]) == 0
-    settings = load_config(cfg)
-    reader = StateReader(Layout.of(settings).db)
-    try:
-        data = report_data(reader, settings, Layout.of(settings))
-    finally:
-        reader.close()
-    axis = data["axis"]
+    axis = _report_of_csv_drops(tmp_path, {"time_unit": "ms"}, 3)["axis"]
     # ts counts rows from 0: the last row of the third input, 899, is 0.899 s after 1970
     assert axis.kind == "time" and axis.x[3] == 0.899
     assert axis.describe(axis.x[3]) == "1970-01-01 00:00 UTC"
