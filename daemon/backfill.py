@@ -74,6 +74,7 @@ from shoal.daemon.pipeline import (
 )
 from shoal.daemon.progress import progress
 from shoal.daemon.quarantine import quarantine
+from shoal.daemon.labels_schema import conform, first_schema, schema_from_text, schema_text
 from shoal.daemon.readers import Frame, read_input
 from shoal.daemon.segment_names import segment_names, with_segment_names
 from shoal.daemon.store import Checkpoint, HistoryRow, LedgerEntry, StateStore
@@ -118,6 +119,7 @@ class FileFacts:
     rows_invalid: int = 0
     reason: str | None = None       # set when the file is refused (quarantined)
     detail: str | None = None
+    labels_schema: str | None = None   # the pass-through types it would fix as a first input
 
     @property
     def valid_rows(self) -> int:
@@ -227,12 +229,16 @@ def survey_file(index: int, path: str, settings: Settings,
                 raise InputRejected("too_large", f"{st.st_size} bytes, more than "
                                     f"limits.max_file_bytes={settings.limits.max_file_bytes}")
             facts = replace(facts, digest=digest_file(f, algorithm))
-            frame = read_input(f, input_kind(p.name), settings)
+            kind = input_kind(p.name)
+            frame = read_input(f, kind, settings)
+            schema = schema_text(first_schema(frame.passthrough, kind != "parquet",
+                                              dict(settings.passthrough_types)))
     except InputRejected as exc:
         return replace(facts, reason=exc.reason, detail=exc.detail)
     except (InputVanished, InputRefused) as exc:
         return replace(facts, reason="unreadable", detail=str(exc))
-    return replace(facts, rows=frame.n_rows, rows_invalid=frame.n_invalid)
+    return replace(facts, rows=frame.n_rows, rows_invalid=frame.n_invalid,
+                   labels_schema=schema)
 
 
 def _read_again(facts: FileFacts, settings: Settings) -> Frame:
@@ -276,6 +282,7 @@ class LabelsTo:
     outbox: str
     stage: str
     names: tuple = ()      # (segment id, name) pairs for a segment_name column; () for none
+    schema: str | None = None   # the stream's pass-through types (labels_schema)
 
 
 def piece_statistics(facts: FileFacts, piece: Piece, stop: int, snapshot,
@@ -292,7 +299,7 @@ def piece_statistics(facts: FileFacts, piece: Piece, stop: int, snapshot,
     if labels is not None and piece.lo == 0 and len(X) == facts.valid_rows:
         _write_labels(facts, settings, frame, scores.segment, scores.confidence,
                       scores.log_density, labels.unusual_below, labels.version,
-                      labels.outbox, labels.names)
+                      labels.outbox, labels.names, labels.schema)
     elif labels is not None:
         save_scores(Path(labels.stage), facts.index, piece.lo, scores)
     counts = np.bincount(scores.component, minlength=snapshot.n_components)
@@ -312,9 +319,17 @@ def save_scores(stage: Path, index: int, lo: int, scores) -> Path:
 
 def _write_labels(facts: FileFacts, settings: Settings, frame: Frame, segment, confidence,
                   log_density, unusual_below: float, version: int, outbox: str,
-                  names: tuple = ()) -> str:
+                  names: tuple = (), schema: str | None = None) -> str:
     fmt = settings.output.format
-    table = labels_table(frame.passthrough, frame.valid, segment, confidence, log_density,
+    passthrough = frame.passthrough
+    if schema is not None:   # the stream's pass-through types, as the service writes them
+        from_text = input_kind(facts.name) != "parquet"
+        try:
+            passthrough = conform(passthrough, schema_from_text(schema), from_text,
+                                  2 if from_text else 1)
+        except InputRejected as exc:
+            raise BackfillError(f"{facts.name}: {exc.detail}") from exc
+    table = labels_table(passthrough, frame.valid, segment, confidence, log_density,
                          unusual_below, version)
     if settings.output.segment_names:
         (table,) = with_segment_names([table], dict(names))
@@ -325,12 +340,13 @@ def _write_labels(facts: FileFacts, settings: Settings, frame: Frame, segment, c
 
 
 def label_file(facts: FileFacts, settings: Settings, model, version: int,
-               unusual_below: float, outbox: str, names: tuple = ()) -> str:
+               unusual_below: float, outbox: str, names: tuple = (),
+               schema: str | None = None) -> str:
     """Label every row of one input with ``model``; write the labels file atomically."""
     frame = _read_again(facts, settings)
     scores = model.score(frame.features[frame.valid])
     return _write_labels(facts, settings, frame, scores.segment, scores.confidence,
-                         scores.log_density, unusual_below, version, outbox, names)
+                         scores.log_density, unusual_below, version, outbox, names, schema)
 
 
 def assemble_labels(facts: FileFacts, settings: Settings, labels: LabelsTo) -> str:
@@ -345,7 +361,7 @@ def assemble_labels(facts: FileFacts, settings: Settings, labels: LabelsTo) -> s
                             f"{facts.valid_rows} valid rows")
     return _write_labels(facts, settings, frame, cols["segment"], cols["confidence"],
                          cols["log_density"], labels.unusual_below, labels.version,
-                         labels.outbox, labels.names)
+                         labels.outbox, labels.names, labels.schema)
 
 
 # -- the cluster -------------------------------------------------------------------
@@ -456,6 +472,7 @@ class _Run:
         self.settings, self.layout, self.store = settings, layout, store
         self.pipeline, self.client, self.stop, self.wall = pipeline, client, stop, wall
         self.tag = uuid.uuid4().hex[:12]   # task keys of this run
+        self.schema: str | None = None     # the stream's pass-through types (labels_schema)
         self.broadcasts_again = 0
 
     def _check_stop(self) -> None:
@@ -480,6 +497,9 @@ class _Run:
         report = BackfillReport(files=len(paths))
         facts = self._survey(paths)
         learned, duplicates, skipped, refused = self._classify(facts)
+        # one labels schema per stream: the store's, else fixed by the first file taken
+        self.schema = self.store.labels_schema() or next(
+            (f.labels_schema for f in learned + duplicates), None)
         report.learned, report.duplicates = len(learned), len(duplicates)
         report.skipped, report.quarantined = len(skipped), len(refused)
         st = self.pipeline.state
@@ -658,7 +678,7 @@ class _Run:
 
     def _labels_to(self, version: int, below: float | None, stage: Path) -> LabelsTo:
         return LabelsTo(version, -np.inf if below is None else float(below),
-                        str(self.layout.outbox), str(stage), self._names())
+                        str(self.layout.outbox), str(stage), self._names(), self.schema)
 
     def _names(self) -> tuple:
         """The segments' names for the labels (read from the store when configured)."""
@@ -680,7 +700,7 @@ class _Run:
 
         def submit(model, attempt):
             return [self.client.submit(label_file, f, self.settings, model, version, below,
-                                       str(self.layout.outbox), self._names(),
+                                       str(self.layout.outbox), self._names(), self.schema,
                                        key=f"shoal-labels-{self.tag}-{f.index}-{attempt}")
                     for f in files]
 
@@ -746,7 +766,8 @@ class _Run:
             arrays, meta = mixture.to_state()
             checkpoint = Checkpoint(version, arrays, meta, extra)
             history = _history(mixture, extra)
-        return _commit_all(self.store, entries, checkpoint, history or [], clear_warmup)
+        return _commit_all(self.store, entries, checkpoint, history or [], clear_warmup,
+                           self.schema)
 
 
 class _Slice:
@@ -760,7 +781,7 @@ class _Slice:
 
 def _commit_all(store: StateStore, entries: list[tuple[LedgerEntry, bool]],
                 checkpoint: Checkpoint | None, history: list[HistoryRow],
-                clear_warmup: bool) -> int:
+                clear_warmup: bool, labels_schema: str | None = None) -> int:
     """Every ledger row, the checkpoint and its history in ONE transaction.
 
     The store has no public call for many inputs at once (``commit_input`` is one input
@@ -786,6 +807,9 @@ def _commit_all(store: StateStore, entries: list[tuple[LedgerEntry, bool]],
         if checkpoint is not None:
             store._insert_checkpoint(checkpoint, now)
         store._insert_history(history, version, now)
+        if labels_schema is not None:
+            store.db.execute("INSERT OR IGNORE INTO meta (key, value) VALUES "
+                             "('labels_schema', ?)", (labels_schema,))
     return version
 
 

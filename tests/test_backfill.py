@@ -16,6 +16,7 @@ from pathlib import Path
 
 import cloudpickle
 import numpy as np
+import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 from distributed import Client, LocalCluster, WorkerPlugin
@@ -418,3 +419,28 @@ def test_backfill_and_ingest_label_the_warm_up_rows_alike(tmp_path, client):
         for name in ("confidence", "log_density"):
             np.testing.assert_allclose(got.column(name).to_numpy(), ref.column(name).to_numpy(),
                                        rtol=1e-9, err_msg=name)
+
+
+def test_backfill_and_ingest_of_csv_history_write_one_labels_schema(tmp_path, client):
+    """CSV pass-through columns come out in the stream's types whichever path took them:
+    a backfill after an ingest keeps the types the ingest fixed (ts: int64)."""
+    import pyarrow.csv as pacsv
+    import pyarrow.dataset as ds
+
+    from shoal.daemon.cli import main
+
+    history = tmp_path / "history"
+    history.mkdir()
+    paths = []
+    for i in range(4):
+        paths.append(history / f"h{i}.csv")
+        pacsv.write_csv(synthetic_table(i, ROWS, SEED), paths[-1])
+    settings = load_config(write_config(tmp_path, warmup_rows=600))
+    assert main(["ingest", "-c", str(tmp_path / "shoal.yaml"), *map(str, paths[:2])]) == 0
+    backfill(settings, paths[2:], client=client, round_rows=ROUND_ROWS)
+    files = sorted((tmp_path / "outbox").glob("*.labels.parquet"))
+    assert len(files) == 4
+    assert len({str(pq.read_schema(f).remove_metadata()) for f in files}) == 1
+    table = ds.dataset(files).to_table()
+    assert table.schema.field("ts").type == pa.int64()
+    assert sorted(table.column("ts").to_pylist()) == list(range(4 * ROWS))
