@@ -230,7 +230,8 @@ def survey_file(index: int, path: str, settings: Settings,
                                     f"limits.max_file_bytes={settings.limits.max_file_bytes}")
             facts = replace(facts, digest=digest_file(f, algorithm))
             kind = input_kind(p.name)
-            frame = read_input(f, kind, settings)
+            # rows skipped under input.bad_rows: skip are left out of every read alike
+            frame = read_input(f, kind, settings, skipped=[])
             schema = schema_text(first_schema(frame.passthrough, kind != "parquet",
                                               dict(settings.passthrough_types)))
     except InputRejected as exc:
@@ -249,7 +250,7 @@ def _read_again(facts: FileFacts, settings: Settings) -> Frame:
             raise BackfillError(f"{facts.path} changed during the backfill (size or "
                                 "modification time differs from the survey); run the "
                                 "backfill again on files that are no longer written")
-        return read_input(f, input_kind(facts.name), settings)
+        return read_input(f, input_kind(facts.name), settings, skipped=[])
 
 
 def head_rows(files: list[FileFacts], settings: Settings, n_rows: int) -> np.ndarray:

@@ -81,9 +81,11 @@ class Frame:
 
 
 def read_input(f: BinaryIO, kind: str, settings: Settings,
-               should_stop: Callable[[], bool] = lambda: False) -> Frame:
-    """Read an open input file of ``kind`` (``parquet``/``csv``/``csv.gz``) whole."""
-    frames = list(iter_frames(f, kind, settings, should_stop))
+               should_stop: Callable[[], bool] = lambda: False,
+               skipped: list[int] | None = None) -> Frame:
+    """Read an open input file of ``kind`` (``parquet``/``csv``/``csv.gz``/``tsv``...)
+    whole (``skipped``: see :func:`iter_frames`)."""
+    frames = list(iter_frames(f, kind, settings, should_stop, skipped=skipped))
     if len(frames) == 1:
         return frames[0]
     return Frame(features=np.concatenate([fr.features for fr in frames]),
