@@ -181,7 +181,8 @@ def _build(cls: type, data: Any, prefix: str):
 def _expected(hint: Any, fld: dataclasses.Field) -> str:
     meta = fld.metadata
     if typing.get_origin(hint) is collections.abc.Mapping:
-        return "a mapping {column: " + " | ".join(meta.get("choices", ())) + "}"
+        keys = "feature" if fld.name == "transforms" else "column"
+        return "a mapping {" + keys + ": " + " | ".join(meta.get("choices", ())) + "}"
     if "choices" in meta:
         return "one of " + ", ".join(repr(c) for c in meta["choices"])
     base = {int: "an integer", float: "a number", bool: "true or false", str: "a string",
