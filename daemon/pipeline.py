@@ -727,7 +727,7 @@ class Pipeline:
             given.append(scores.segment)
             try:
                 relabel_file(path, fmt, valid, scores, unusual_below, version,
-                             jacobian, self._named)
+                             jacobian, self._named, self._labels_schema)
             except FileNotFoundError:
                 log_event("warmup_labels_missing", logging.WARNING, labels=waiting.labels)
             except ValueError as exc:

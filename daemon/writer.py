@@ -138,14 +138,20 @@ LABELS_COLUMNS = ("segment", "confidence", "log_density", "unusual", "model_vers
 def relabel_file(path: Path, fmt: str, valid: np.ndarray | None, scores,
                  unusual_below: float, model_version: int,
                  log_jacobian: np.ndarray | None = None,
-                 named: Callable[[Iterable[pa.Table]], Iterable[pa.Table]] = lambda t: t
-                 ) -> None:
+                 named: Callable[[Iterable[pa.Table]], Iterable[pa.Table]] = lambda t: t,
+                 passthrough: pa.Schema | None = None) -> None:
     """Replace the labels columns of the labels file ``path`` (written without a model)
     by ``scores`` of its ``valid`` rows, atomically; the pass-through columns and the
     other ``shoal.*`` metadata stay. ``valid`` None: every row (the count must agree).
-    ``named`` adds the segment names where configured. Raises ValueError when the rows
-    do not match the scores."""
-    table = pq.read_table(path) if fmt == "parquet" else pacsv.read_csv(path)
+    ``named`` adds the segment names where configured; ``passthrough``, the stream's
+    pass-through types, reads a CSV file's columns back as they were written. Raises
+    ValueError when the rows do not match the scores."""
+    if fmt == "parquet":
+        table = pq.read_table(path)
+    else:
+        types = {} if passthrough is None else dict(zip(passthrough.names, passthrough.types))
+        table = pacsv.read_csv(path, convert_options=pacsv.ConvertOptions(
+            column_types=types, strings_can_be_null=True))
     n_scored = len(scores.segment)
     if valid is None:
         if table.num_rows != n_scored:

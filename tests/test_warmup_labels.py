@@ -87,3 +87,22 @@ def test_labels_written_during_the_warm_up_carry_no_model_version_text(tmp_path)
     table = _labels(tmp_path / "outbox", path)
     assert table.column("segment").null_count == ROWS
     assert b"shoal.model_version" not in table.schema.metadata
+
+
+def test_csv_labels_of_warm_up_inputs_keep_their_pass_through_values(tmp_path):
+    """output.format csv: the rewritten labels files read back as they were written (a key
+    like "007" stays text)."""
+    import pyarrow.csv as pacsv
+
+    cfg = write_config(tmp_path, warmup_rows=WARMUP, output={"format": "csv"})
+    paths = _drops(tmp_path / "drops", 3)
+    first = pq.read_table(paths[0])
+    keys = [f"{i:03d}" for i in range(ROWS)]
+    pq.write_table(first.set_column(0, "key", pa.array(keys)), paths[0])
+    assert main(["ingest", "-c", str(cfg), *map(str, paths)]) == 0
+    [found] = (tmp_path / "outbox").glob("d00.*.labels.csv")
+    table = pacsv.read_csv(found, convert_options=pacsv.ConvertOptions(
+        column_types={"key": pa.string()}))
+    assert table.column("key").to_pylist() == keys
+    assert table.column("segment").null_count == 0
+    assert set(table.column("model_version").to_pylist()) == {3}
