@@ -106,3 +106,24 @@ def test_csv_labels_of_warm_up_inputs_keep_their_pass_through_values(tmp_path):
     assert table.column("key").to_pylist() == keys
     assert table.column("segment").null_count == 0
     assert set(table.column("model_version").to_pylist()) == {3}
+
+
+def test_warm_up_inputs_of_one_group_are_labelled_at_its_commit(tmp_path):
+    """A backlog is taken as one group committed together: the inputs of the group
+    before the one that completes the warm-up are labelled too."""
+    import os
+
+    from shoal.daemon.drills import MTIME_BASE, InProcessService, wait_until
+
+    svc = InProcessService(tmp_path, warmup_rows=WARMUP)
+    for i, path in enumerate(_drops(tmp_path / "drops", 4)):
+        os.utime(path, ns=((MTIME_BASE + i) * 10**9,) * 2)
+        os.rename(path, svc.layout.inbox / path.name)
+    with svc:
+        wait_until(lambda: len(svc.results) >= 4, 30, "four inputs")
+        versions = [r.model_version for r in svc.results]
+    assert versions == [1, 2, 3, 4]
+    for i in range(3):
+        table = _labels(tmp_path / "outbox", tmp_path / "drops" / f"d{i:02d}.parquet")
+        assert table.column("segment").null_count == 0
+        assert set(table.column("model_version").to_pylist()) == {3}
