@@ -805,6 +805,7 @@ def _commit_all(store: StateStore, entries: list[tuple[LedgerEntry, bool]],
         if clear_warmup:
             store.db.execute("DELETE FROM warmup")
             store.db.execute("DELETE FROM warmup_valid")
+            store.db.execute("DELETE FROM warmup_duplicates")
         if checkpoint is not None:
             store._insert_checkpoint(checkpoint, now)
         store._insert_history(history, version, now)

@@ -596,8 +596,11 @@ class Pipeline:
         """Same content under another name: labels written, the model not updated."""
         st = self.state
         count = _Count()
+        kept: list[tuple] = []   # before the first model: rows kept to be labelled by it
 
         def tables(frames):
+            if st.mixture is None:
+                frames = _kept(frames, kept)
             return _scored_tables(count.counted(frames, st.mixture), st.mixture,
                                   st.extra.get("unusual_below", -np.inf), st.version)
         labels, _ = self._write(frames, tables, entry, lambda: st.version,
@@ -606,8 +609,17 @@ class Pipeline:
                       rows_invalid=count.invalid)
         result = Result("duplicate", entry.name, count.rows, count.invalid, labels,
                         model_version=st.version, rows_outside_domain=count.outside)
-        self._commit(InputCommit(entry, learned=False, labels_schema=self._fixed_schema()),
+        waiting = None
+        if kept:
+            waiting = WarmupInput(labels.name, np.concatenate([r for r, _ in kept]),
+                                  np.concatenate([v for _, v in kept]), learned=False)
+        self._commit(InputCommit(entry, learned=False, labels_schema=self._fixed_schema(),
+                                 duplicate_rows=None if waiting is None
+                                 else (waiting.rows, waiting.valid)),
                      st.version, result)
+        if waiting is not None and len(waiting.rows):
+            self.state = replace(self.state,
+                                 warmup_inputs=self.state.warmup_inputs + [waiting])
         return result
 
     def _learn(self, frames: prefetch, entry: LedgerEntry, claim: Callable[[], str],
@@ -724,7 +736,8 @@ class Pipeline:
                     valid = valid.copy()
                     valid[np.flatnonzero(valid)[~inside]] = False
             scores = mixture.score(X)
-            given.append(scores.segment)
+            if waiting.learned:   # a duplicate's rows are labelled, not counted
+                given.append(scores.segment)
             try:
                 relabel_file(path, fmt, valid, scores, unusual_below, version,
                              jacobian, self._named, self._labels_schema)
@@ -1102,6 +1115,13 @@ def _mark_beyond_model(frame: Frame, mixture: Mixture) -> None:
     if far:
         log_event("rows_beyond_model_range", logging.WARNING, rows=far,
                   limit_sds=MODEL_RANGE_SDS)
+
+
+def _kept(frames: Iterable[Frame], into: list[tuple]):
+    """The frames; their valid rows and validity added to ``into`` as they pass."""
+    for frame in frames:
+        into.append((_valid_rows(frame).copy(), frame.valid.copy()))
+        yield frame
 
 
 def _count_rows(extra: dict, segments: list[np.ndarray]) -> dict:

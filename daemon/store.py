@@ -86,6 +86,11 @@ CREATE TABLE IF NOT EXISTS warmup_valid (
     ledger_id INTEGER PRIMARY KEY,
     npy       BLOB NOT NULL
 );
+CREATE TABLE IF NOT EXISTS warmup_duplicates (
+    ledger_id INTEGER PRIMARY KEY,
+    npy       BLOB NOT NULL,
+    valid     BLOB NOT NULL
+);
 CREATE TABLE IF NOT EXISTS segment_history (
     version INTEGER NOT NULL,
     segment INTEGER NOT NULL,
@@ -227,6 +232,7 @@ class WarmupInput:
     labels: str | None
     rows: np.ndarray
     valid: np.ndarray | None
+    learned: bool = True   # False: a duplicate, labelled but not learned from
 
 
 @dataclass
@@ -244,6 +250,9 @@ class InputCommit:
     checkpoint: Checkpoint | None = None
     warmup_rows: np.ndarray | None = None
     warmup_valid: np.ndarray | None = None
+    # a duplicate taken before the first model: its valid rows and which rows they are,
+    # kept to label it once the model exists (not learned from)
+    duplicate_rows: tuple[np.ndarray, np.ndarray] | None = None
     clear_warmup: bool = False
     history: Iterable[HistoryRow] = ()
     alerts: Iterable[tuple[str, Mapping[str, Any]]] = ()
@@ -425,16 +434,19 @@ class StateStore:
         return self._meta("labels_schema")
 
     def warmup_inputs(self) -> list[WarmupInput]:
-        """The inputs whose rows wait in the warm-up buffer, in arrival order: their
-        labels file, buffered rows and which of their rows those are."""
+        """The inputs taken before the first model, in arrival order: their labels file,
+        valid rows (in the warm-up buffer, or kept for a duplicate) and which of their
+        rows those are."""
         rows = self.db.execute(
-            "SELECT ledger.labels, warmup.npy, warmup_valid.npy FROM warmup "
-            "JOIN ledger ON ledger.id = warmup.ledger_id "
+            "SELECT warmup.ledger_id, ledger.labels, warmup.npy, warmup_valid.npy, 1 "
+            "FROM warmup JOIN ledger ON ledger.id = warmup.ledger_id "
             "LEFT JOIN warmup_valid ON warmup_valid.ledger_id = warmup.ledger_id "
-            "ORDER BY warmup.ledger_id").fetchall()
+            "UNION ALL SELECT d.ledger_id, ledger.labels, d.npy, d.valid, 0 "
+            "FROM warmup_duplicates d JOIN ledger ON ledger.id = d.ledger_id "
+            "ORDER BY 1").fetchall()
         return [WarmupInput(labels, npy_array(rows_npy),
-                            None if valid is None else npy_array(valid))
-                for labels, rows_npy, valid in rows]
+                            None if valid is None else npy_array(valid), bool(learned))
+                for _, labels, rows_npy, valid, learned in rows]
 
     def history(self, segment: int | None = None) -> list[dict[str, Any]]:
         sql = ("SELECT version, segment, weight, rows, mean, spread, drift, event, created "
@@ -678,9 +690,15 @@ class StateStore:
                     if c.warmup_valid is not None:
                         self.db.execute("INSERT INTO warmup_valid (ledger_id, npy) VALUES "
                                         "(?, ?)", (entry_id, npy_bytes(c.warmup_valid)))
+                if c.duplicate_rows is not None and len(c.duplicate_rows[0]):
+                    self.db.execute("INSERT INTO warmup_duplicates (ledger_id, npy, valid) "
+                                    "VALUES (?, ?, ?)", (entry_id,
+                                                         npy_bytes(c.duplicate_rows[0]),
+                                                         npy_bytes(c.duplicate_rows[1])))
                 if c.clear_warmup:
                     self.db.execute("DELETE FROM warmup")
                     self.db.execute("DELETE FROM warmup_valid")
+                    self.db.execute("DELETE FROM warmup_duplicates")
                 if c.checkpoint is not None:
                     self._insert_checkpoint(c.checkpoint, now)
                 self._insert_history(c.history, version, now)

@@ -127,3 +127,22 @@ def test_warm_up_inputs_of_one_group_are_labelled_at_its_commit(tmp_path):
         table = _labels(tmp_path / "outbox", tmp_path / "drops" / f"d{i:02d}.parquet")
         assert table.column("segment").null_count == 0
         assert set(table.column("model_version").to_pylist()) == {3}
+
+
+def test_a_duplicate_taken_during_the_warm_up_is_labelled_too(tmp_path):
+    cfg = write_config(tmp_path, warmup_rows=WARMUP)
+    settings = load_config(cfg)
+    paths = _drops(tmp_path / "drops", 4)
+    copy = tmp_path / "drops" / "copy.parquet"
+    copy.write_bytes(paths[0].read_bytes())
+    assert main(["ingest", "-c", str(cfg), str(paths[0]), str(copy), *map(str, paths[1:])]) == 0
+    original = _labels(tmp_path / "outbox", paths[0])
+    duplicate = _labels(tmp_path / "outbox", copy)
+    assert duplicate.column("segment").null_count == 0
+    for name in ("segment", "model_version", "key"):
+        assert duplicate.column(name).to_pylist() == original.column(name).to_pylist()
+    store = StateStore(settings.state / "state.db")
+    try:   # the duplicate's rows were not learned: not counted in the segments' rows
+        assert sum(store.latest_checkpoint().extra["segment_rows"].values()) == 4 * ROWS
+    finally:
+        store.close()
