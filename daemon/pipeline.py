@@ -599,10 +599,11 @@ class Pipeline:
         kept: list[tuple] = []   # before the first model: rows kept to be labelled by it
 
         def tables(frames):
-            if st.mixture is None:
+            frames = count.counted(frames, st.mixture)
+            if st.mixture is None:   # kept once counted: which rows are valid is known
                 frames = _kept(frames, kept)
-            return _scored_tables(count.counted(frames, st.mixture), st.mixture,
-                                  st.extra.get("unusual_below", -np.inf), st.version)
+            return _scored_tables(frames, st.mixture, st.extra.get("unusual_below", -np.inf),
+                                  st.version)
         labels, _ = self._write(frames, tables, entry, lambda: st.version,
                                 unchanged=unchanged)
         entry = _with(entry, outcome="duplicate", labels=labels.name, rows=count.rows,
