@@ -23,6 +23,7 @@ import pyarrow.parquet as pq
 
 from shoal.config import Settings
 from shoal.core import Mixture
+from shoal.daemon.contract import settings_of_model
 from shoal.daemon.errors import InputRejected, UsageError
 from shoal.daemon.gate import input_kind
 from shoal.daemon.layout import Layout
@@ -30,6 +31,7 @@ from shoal.daemon.pipeline import open_input
 from shoal.daemon.progress import progress
 from shoal.daemon.readers import read_input
 from shoal.daemon.readout import StateReader, read_alerts, state_snapshot
+from shoal.daemon.summary import format_differences
 
 __all__ = ["REPORT_PLOTS", "parse_since", "report_data", "render_plots", "build_report",
            "write_report", "recent_rows", "feature_units", "drift_bounds", "page_html"]
@@ -156,8 +158,10 @@ def _reference_bands(extra: Mapping[str, Any], history: Sequence[Mapping]) -> di
 
 def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
                 since: float | None = None, now: float | None = None) -> dict[str, Any]:
-    """Everything the report draws, read from the state."""
+    """Everything the report draws, read from the state (under the stored model's feature
+    names, whatever the config says)."""
     now = time.time() if now is None else now
+    settings, _ = settings_of_model(reader, settings)
     history = reader.history()
     all_history = history
     if since is not None:
@@ -308,6 +312,10 @@ def build_report(data: Mapping[str, Any], pngs: Mapping[str, bytes], config: str
             f"{_utc(data['now'])} · model version {snap['model_version']} · inputs "
             + html.escape(", ".join(f"{v} {k}" for k, v in sorted(n.items())) or "none")
             + f" · history{html.escape(since)}</p>")
+    differs = format_differences(snap.get("config_differs", []))
+    if differs:
+        head += ('<p class="meta" id="config-differs">' + html.escape(differs[0]) + "<br>"
+                 + "<br>".join(html.escape(line.strip()) for line in differs[1:]) + "</p>")
     toc = "<ul>" + "".join(f'<li><a href="#plot-{k}">{html.escape(v)}</a></li>'
                            for k, v in REPORT_PLOTS.items()) + (
         '<li><a href="#current-segments">Current segments</a></li>'
