@@ -41,7 +41,8 @@ def model_contract(settings: Settings) -> dict[str, Any]:
     return {
         "features": list(settings.features),
         "covariance": settings.covariance,
-        "segments": {"min": settings.segments.min, "max": settings.segments.max},
+        "segments": settings.segments.min if settings.segments.fixed else
+        {"min": settings.segments.min, "max": settings.segments.max},   # as the config says
         "half_life_rows": settings.half_life_rows,
         "learning.step_exponent": settings.learning.step_exponent,
         "learning.reg_covar": settings.learning.reg_covar,

@@ -161,6 +161,7 @@ def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
     """Everything the report draws, read from the state (under the stored model's feature
     names, whatever the config says)."""
     now = time.time() if now is None else now
+    configured = settings
     settings, _ = settings_of_model(reader, settings)
     history = reader.history()
     all_history = history
@@ -176,7 +177,7 @@ def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
     X, seg = recent_rows(reader, settings, layout, since=since)
     alerts = read_alerts(reader, since=since)
     return {
-        "snapshot": state_snapshot(reader, settings, layout, now=now, recent_alerts=50),
+        "snapshot": state_snapshot(reader, configured, layout, now=now, recent_alerts=50),
         "history": history,
         "reference": _reference_bands(cp.extra if cp else {}, all_history),
         "alerts": alerts,

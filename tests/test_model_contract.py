@@ -1,0 +1,140 @@
+"""The model's contract (feature names in order, covariance, segments, schedule) is kept
+with the model: a config that differs is refused by name where it would change what the
+model means, taken going forward where that is safe, and shown by status and report."""
+import json
+import sqlite3
+import subprocess
+import sys
+
+import pyarrow.parquet as pq
+import pytest
+import yaml
+
+from shoal.daemon.cli import main
+from shoal.daemon.drills import synthetic_table, write_config
+
+SEED = 13
+
+
+def _drops(folder, first, n, rows=400):
+    paths = []
+    for i in range(first, first + n):
+        path = folder / f"d{i:03d}.parquet"
+        pq.write_table(synthetic_table(i, rows, SEED), path)
+        paths.append(path)
+    return paths
+
+
+def _with(cfg, **changes):
+    data = yaml.safe_load(cfg.read_text())
+    data.update(changes)
+    cfg.write_text(yaml.safe_dump(data))
+
+
+def _ledger(db):
+    con = sqlite3.connect(db)
+    try:
+        return con.execute("SELECT COUNT(*), MAX(model_version) FROM ledger").fetchone()
+    finally:
+        con.close()
+
+
+def _events(text, name):
+    return [json.loads(line) for line in text.splitlines()
+            if line.startswith("{") and json.loads(line).get("event") == name]
+
+
+@pytest.fixture
+def learned(tmp_path, capsys):
+    """A state folder whose model learned three drops with features [f1, f2, f3]."""
+    cfg = write_config(tmp_path, half_life_rows=5000)
+    assert main(["ingest", "-c", str(cfg), *map(str, _drops(tmp_path, 0, 3))]) == 0
+    capsys.readouterr()
+    return cfg
+
+
+def test_a_config_that_redefines_the_model_is_refused_naming_each_key(learned, tmp_path,
+                                                                      capsys):
+    db = tmp_path / "state" / "state.db"
+    before = _ledger(db)
+    _with(learned, features=["f3", "f2", "f1"], covariance="diag", segments=4)
+    new = _drops(tmp_path, 3, 1)
+    for argv in (["ingest", "-c", str(learned), str(new[0])], ["check-config", "-c", str(learned)],
+                 ["label", "-c", str(learned), str(new[0]), "--out", str(tmp_path / "l.parquet")]):
+        assert main(argv) == 2, argv
+        err = capsys.readouterr().err
+        for needle in ("features: stored ['f1', 'f2', 'f3'], configured ['f3', 'f2', 'f1']",
+                       "covariance: stored 'full', configured 'diag'",
+                       "segments: stored 3, configured 4"):
+            assert needle in err, (argv, err)
+        assert "Traceback" not in err
+    _with(learned, features=["f1", "f2", "temperature"], covariance="full", segments=3)
+    r = subprocess.run([sys.executable, "-m", "shoal.daemon.cli", "watch", "-c", str(learned)],
+                       capture_output=True, text=True, timeout=60)
+    assert r.returncode == 2
+    assert "features: stored ['f1', 'f2', 'f3'], configured ['f1', 'f2', 'temperature']" \
+        in r.stderr
+    assert _ledger(db) == before           # nothing was taken under the wrong contract
+
+
+def test_a_new_half_life_is_taken_going_forward_and_logged(learned, tmp_path, capsys):
+    _with(learned, half_life_rows=2000)
+    assert main(["check-config", "-c", str(learned)]) == 0
+    assert "taken going forward: half_life_rows 5000 -> 2000" in capsys.readouterr().out
+    assert main(["ingest", "-c", str(learned), str(_drops(tmp_path, 3, 1)[0])]) == 0
+    changed = _events(capsys.readouterr().err, "model_contract_changed")
+    assert [(e["key"], e["stored"], e["configured"]) for e in changed] == [
+        ("half_life_rows", 5000, 2000)]
+    con = sqlite3.connect(tmp_path / "state" / "state.db")
+    meta = json.loads(con.execute("SELECT meta FROM checkpoints ORDER BY version DESC "
+                                  "LIMIT 1").fetchone()[0])
+    contract = json.loads(con.execute("SELECT value FROM meta WHERE key = "
+                                      "'model_contract'").fetchone()[0])
+    con.close()
+    assert meta["schedule"]["half_life_rows"] == 2000 and contract["half_life_rows"] == 2000
+    _with(learned, half_life_rows=None)   # forgetting switched off: the model converges
+    assert main(["ingest", "-c", str(learned), str(_drops(tmp_path, 4, 1)[0])]) == 2
+    assert "half_life_rows: stored 2000, configured None" in capsys.readouterr().err
+
+
+def test_status_report_and_segments_show_the_stored_model_when_the_config_differs(
+        learned, tmp_path, capsys):
+    assert main(["segments", "-c", str(learned), "--json"]) == 0
+    shown = json.loads(capsys.readouterr().out)
+    means = {s["id"]: s["mean"] for s in shown["segments"]}
+    _with(learned, features=["f3", "f2", "f1"])
+    assert main(["status", "-c", str(learned)]) == 0
+    out = capsys.readouterr().out
+    assert "the config differs from the stored model" in out
+    assert "features: stored ['f1', 'f2', 'f3'], configured ['f3', 'f2', 'f1']" in out
+    assert main(["segments", "-c", str(learned), "--json"]) == 0
+    again = json.loads(capsys.readouterr().out)
+    assert {s["id"]: s["mean"] for s in again["segments"]} == means   # under the right names
+    _with(learned, features=["f1", "f2", "f3", "f4"])                 # one more feature
+    report = tmp_path / "r.html"
+    assert main(["report", "-c", str(learned), "--out", str(report)]) == 0
+    capsys.readouterr()
+    assert "configured [&#x27;f1&#x27;, &#x27;f2&#x27;, &#x27;f3&#x27;, &#x27;f4&#x27;]" \
+        in report.read_text()
+    assert main(["status", "-c", str(learned), "--json"]) == 0
+    snap = json.loads(capsys.readouterr().out)
+    assert snap["features"] == ["f1", "f2", "f3"]
+    assert [d["key"] for d in snap["config_differs"]] == ["features"]
+
+
+def test_a_store_without_a_contract_adopts_a_consistent_config_and_refuses_another(
+        learned, tmp_path, capsys):
+    db = tmp_path / "state" / "state.db"
+    con = sqlite3.connect(db)
+    with con:                              # as a store made before the contract was kept
+        con.execute("DELETE FROM meta WHERE key = 'model_contract'")
+    con.close()
+    _with(learned, features=["f1", "f2", "f3", "f4"])
+    assert main(["ingest", "-c", str(learned), str(_drops(tmp_path, 3, 1)[0])]) == 2
+    assert "features: stored '3 features (names not recorded)'" in capsys.readouterr().err
+    _with(learned, features=["f1", "f2", "f3"])
+    assert main(["ingest", "-c", str(learned), str(_drops(tmp_path, 4, 1)[0])]) == 0
+    recorded = _events(capsys.readouterr().err, "model_contract_recorded")
+    assert len(recorded) == 1 and recorded[0]["contract"]["features"] == ["f1", "f2", "f3"]
+    _with(learned, features=["f3", "f2", "f1"])   # from now on the names are known
+    assert main(["ingest", "-c", str(learned), str(_drops(tmp_path, 5, 1)[0])]) == 2
