@@ -6,23 +6,18 @@ import sqlite3
 import subprocess
 import sys
 
-import pyarrow.parquet as pq
 import pytest
 import yaml
 
+from _ops import parquet_drops
 from shoal.daemon.cli import main
-from shoal.daemon.drills import synthetic_table, write_config
+from shoal.daemon.drills import write_config
 
 SEED = 13
 
 
-def _drops(folder, first, n, rows=400):
-    paths = []
-    for i in range(first, first + n):
-        path = folder / f"d{i:03d}.parquet"
-        pq.write_table(synthetic_table(i, rows, SEED), path)
-        paths.append(path)
-    return paths
+def _drops(folder, first, n):
+    return parquet_drops(folder, first, n, SEED)
 
 
 def _with(cfg, **changes):

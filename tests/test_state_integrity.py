@@ -7,9 +7,9 @@ import subprocess
 import sys
 
 import numpy as np
-import pyarrow.parquet as pq
 import pytest
 
+from _ops import parquet_drops
 from shoal.daemon import store as store_module
 from shoal.daemon.cli import main
 from shoal.daemon.drills import synthetic_table, wait_until, write_config, write_drop
@@ -20,13 +20,8 @@ from shoal.daemon.store import StateStore, npy_array, npy_bytes
 SEED = 11
 
 
-def _drops(folder, first, n, rows=400):
-    paths = []
-    for i in range(first, first + n):
-        path = folder / f"d{i:03d}.parquet"
-        pq.write_table(synthetic_table(i, rows, SEED), path)
-        paths.append(path)
-    return paths
+def _drops(folder, first, n):
+    return parquet_drops(folder, first, n, SEED)
 
 
 def _ingest(cfg, paths):
