@@ -5,6 +5,7 @@ from shoal.config.loading import (
     dump_settings,
     load_config,
     parse_config,
+    read_secret_file,
     settings_to_dict,
 )
 from shoal.config.settings import (
@@ -30,6 +31,7 @@ __all__ = [
     "dump_settings",
     "load_config",
     "parse_config",
+    "read_secret_file",
     "settings_to_dict",
     "COVARIANCE_TYPES",
     "AlertSettings",

@@ -35,7 +35,7 @@ import urllib.parse
 from importlib import metadata
 from pathlib import Path
 
-from shoal.config import Settings
+from shoal.config import ConfigError, Settings, read_secret_file
 from shoal.config.settings import WebhookSettings
 from shoal.daemon.logs import log_event
 from shoal.daemon.store import StateStore
@@ -129,11 +129,11 @@ class _WebhookSink:
 
 def _read_secret(hook: WebhookSettings) -> bytes | None:
     if hook.secret_file is not None:
-        try:
-            return Path(hook.secret_file).read_bytes().strip()
-        except OSError as exc:
+        try:   # a bounded regular file, opened without blocking (not /dev/zero, a FIFO)
+            return read_secret_file(hook.secret_file)
+        except (OSError, ConfigError) as exc:
             log_event("webhook_secret_unreadable", logging.ERROR, file=str(hook.secret_file),
-                      detail=exc.strerror)
+                      detail=exc.strerror if isinstance(exc, OSError) else str(exc))
             return None
     value = os.environ.get(hook.secret_env or "")
     if not value:

@@ -36,14 +36,24 @@ class Layout:
 
 
 def _ensure_dir(path: Path, key: str, mode: int | None) -> None:
+    """Make ``path`` if missing (with ``mode``, whatever the umask) and check it is a
+    writable folder. A folder that exists keeps its mode: an operator's choice, and
+    possibly shared (shoal sets modes only on folders it makes)."""
+    made = False
     try:
-        path.mkdir(parents=True, exist_ok=True, mode=mode or 0o777)
+        if not path.is_dir():
+            path.parent.mkdir(parents=True, exist_ok=True)
+            try:
+                path.mkdir(mode=mode or 0o777)
+                made = True
+            except FileExistsError:
+                pass   # made meanwhile by another, or not a folder (found out below)
     except OSError as exc:
         raise ConfigError(f"{key}: expected a folder that exists or can be created, "
                           f"found {path} ({exc.strerror})") from exc
     if path.is_symlink() or not path.is_dir():
         raise ConfigError(f"{key}: expected a folder, found {path} which is not a folder")
-    if mode is not None:
+    if mode is not None and made:
         try:
             os.chmod(path, mode)
         except OSError as exc:
