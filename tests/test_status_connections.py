@@ -5,6 +5,7 @@ import resource
 import socket
 import subprocess
 import sys
+import time
 import urllib.request
 
 import pyarrow.parquet as pq
@@ -49,8 +50,16 @@ def test_two_thousand_idle_connections_leave_healthz_answering_and_inputs_flowin
                                 stdin=subprocess.DEVNULL, preexec_fn=_limit_files)
     try:
         port = _port(log, proc)
-        for _ in range(IDLE):              # connect, send nothing, keep it open
-            idle.append(socket.create_connection(("127.0.0.1", port), timeout=10))
+        held = []
+        for i in range(IDLE):              # connect, send nothing, keep it open
+            s = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+            s.setblocking(False)           # not held back by a full listen queue: the
+            s.connect_ex(("127.0.0.1", port))   # kernel retries a dropped SYN itself
+            idle.append(s)
+            time.sleep(0.001)              # a steady stream, as a flood of clients makes
+            if i % 100 == 99:              # the service's descriptors, as the flood goes on
+                held.append(len(os.listdir(f"/proc/{proc.pid}/fd")))
+                assert held[-1] < 256, held
         with urllib.request.urlopen(f"http://127.0.0.1:{port}/healthz", timeout=10) as r:
             assert r.status == 200
         # connections are accepted in order: all were taken before /healthz, and the
@@ -60,14 +69,13 @@ def test_two_thousand_idle_connections_leave_healthz_answering_and_inputs_flowin
         def closed_by_service():
             for i, s in enumerate(idle):
                 if i not in closed:
-                    s.setblocking(False)
                     try:
                         if s.recv(1) == b"":
                             closed.add(i)
-                    except BlockingIOError:
-                        pass
-                    except OSError:       # reset by the service: closed too
+                    except ConnectionResetError:   # reset by the service: closed too
                         closed.add(i)
+                    except OSError:       # nothing to read yet, or still connecting
+                        pass
             return len(closed) >= IDLE - 64
 
         wait_until(closed_by_service, 30, "the service to close the oldest idle connections")
