@@ -15,6 +15,7 @@ from shoal.config import ConfigError, Settings, load_config, parse_config
 from shoal.daemon.delivery import AlertSender
 from shoal.daemon.errors import StateError, UsageError
 from shoal.daemon.gate import input_kind
+from shoal.daemon.contract import open_model_store
 from shoal.daemon.layout import StateLock, open_store, prepare_folders
 from shoal.daemon.logs import setup_logging
 from shoal.daemon.pipeline import Pipeline
@@ -219,7 +220,7 @@ def replay(config: Path, folder_in: Path, *, state_dir: str | None = None,
     summary = {"inputs": len(files), "rows": 0, "alerts": [], "state": str(iso),
                "outcomes": {}}
     with StateLock(layout.lock):
-        store = open_store(layout)
+        store = open_model_store(layout, settings, write=True)
         try:
             pipeline = Pipeline(settings, layout, store)
             for path in progress(files, total=len(files), desc="replay", unit="file"):

@@ -113,8 +113,8 @@ def check_model_contract(store: StateStore, settings: Settings, *, write: bool) 
     state lock), store the contract when there is none and record adopted changes, each
     logged as ``model_contract_changed``. Returns the adopted differences."""
     differences = contract_differences(store, settings)
-    learned = store.model_version > 0 or store.latest_checkpoint() is not None
-    buffered = not learned and store.warmup_rows() is not None
+    learned = store.latest_checkpoint() is not None      # a model was fitted
+    buffered = not learned and (store.model_version > 0 or store.warmup_rows() is not None)
     adopted = [d for d in differences
                if _adoptable(d["key"], d["stored"], d["configured"], learned, buffered)]
     refused = [d for d in differences if d not in adopted]

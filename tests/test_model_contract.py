@@ -133,3 +133,22 @@ def test_a_store_without_a_contract_adopts_a_consistent_config_and_refuses_anoth
     assert len(recorded) == 1 and recorded[0]["contract"]["features"] == ["f1", "f2", "f3"]
     _with(learned, features=["f3", "f2", "f1"])   # from now on the names are known
     assert main(["ingest", "-c", str(learned), str(_drops(tmp_path, 5, 1)[0])]) == 2
+
+
+def test_while_the_warm_up_fills_only_the_features_are_fixed(tmp_path, capsys):
+    cfg = write_config(tmp_path, warmup_rows=5000)
+    assert main(["ingest", "-c", str(cfg), str(_drops(tmp_path, 0, 1)[0])]) == 0
+    _with(cfg, features=["f3", "f2", "f1"])   # the buffered rows are in the stored order
+    assert main(["ingest", "-c", str(cfg), str(_drops(tmp_path, 1, 1)[0])]) == 2
+    assert "features: stored ['f1', 'f2', 'f3']" in capsys.readouterr().err
+    _with(cfg, features=["f1", "f2", "f3"], covariance="diag", segments=4, warmup_rows=600)
+    assert main(["ingest", "-c", str(cfg), str(_drops(tmp_path, 1, 1)[0])]) == 0
+    changed = {e["key"] for e in _events(capsys.readouterr().err, "model_contract_changed")}
+    assert changed == {"covariance", "segments", "warmup_rows"}
+    con = sqlite3.connect(tmp_path / "state" / "state.db")
+    meta = json.loads(con.execute("SELECT meta FROM checkpoints").fetchone()[0])
+    con.close()
+    assert meta["covariance"] == "diag"    # the first model is fitted as now configured
+    _with(cfg, covariance="full")
+    assert main(["ingest", "-c", str(cfg), str(_drops(tmp_path, 2, 1)[0])]) == 2
+    assert "covariance: stored 'diag', configured 'full'" in capsys.readouterr().err
