@@ -7,6 +7,7 @@ from shoal.config.loading import (
     parse_config,
     read_secret_file,
     settings_to_dict,
+    shown,
 )
 from shoal.config.settings import (
     COVARIANCE_TYPES,
@@ -33,6 +34,7 @@ __all__ = [
     "parse_config",
     "read_secret_file",
     "settings_to_dict",
+    "shown",
     "COVARIANCE_TYPES",
     "AlertSettings",
     "BoundOverride",

@@ -27,6 +27,7 @@ __all__ = [
     "ConfigError",
     "load_config",
     "read_secret_file",
+    "shown",
     "parse_config",
     "default_config_text",
     "settings_to_dict",
@@ -190,12 +191,12 @@ def _check_drift_and_alerts(s: Settings) -> None:
     d = s.drift
     if d.time_column is not None and d.time_column not in s.passthrough:
         raise ConfigError(f"drift.time_column: expected one of the passthrough columns "
-                          f"{_shown(list(s.passthrough))}, found {_shown(d.time_column)}")
+                          f"{shown(list(s.passthrough))}, found {shown(d.time_column)}")
     for i, o in enumerate(d.overrides):
         key = f"drift.overrides[{i}]"
         if o.feature is not None and o.feature not in s.features:
             raise ConfigError(f"{key}.feature: expected one of the features "
-                              f"{_shown(list(s.features))}, found {_shown(o.feature)}")
+                              f"{shown(list(s.features))}, found {shown(o.feature)}")
         others = [n for n in ("mean_shift", "spread_ratio", "weight_change")
                   if getattr(o, n) is not None]
         if o.feature is not None and (others or o.feature_shift is None):
@@ -209,7 +210,7 @@ def _check_drift_and_alerts(s: Settings) -> None:
         url = urllib.parse.urlsplit(h.url)
         if url.scheme not in ("http", "https") or not url.hostname:
             raise ConfigError(f"{key}.url: expected an http:// or https:// URL with a host, "
-                              f"found {_shown(h.url)}")
+                              f"found {shown(h.url)}")
         if h.secret_file is None and h.secret_env is None:
             raise ConfigError(f"{key}: expected secret_file or secret_env (the HMAC signing "
                               "secret), found neither")
@@ -239,8 +240,8 @@ def _describe(value: Any) -> str:
     if isinstance(value, bool):
         return f"the boolean {value}"
     if isinstance(value, (dict, list)):
-        return f"a {type(value).__name__} {_shown(value)}"
-    return f"{_shown(value)} ({type(value).__name__})"
+        return f"a {type(value).__name__} {shown(value)}"
+    return f"{shown(value)} ({type(value).__name__})"
 
 
 _SHOWN = reprlib.Repr()
@@ -249,7 +250,7 @@ _SHOWN.maxlist = _SHOWN.maxtuple = _SHOWN.maxdict = _SHOWN.maxset = 8
 _SHOWN_CHARS = 120
 
 
-def _shown(value: Any) -> str:
+def shown(value: Any) -> str:
     """``repr(value)`` for a message, never whole when large (reprlib elides without
     building the whole text): cut to ~120 characters, with an ellipsis and the length."""
     text = _SHOWN.repr(value)
@@ -272,7 +273,7 @@ def _build(cls: type, data: Any, prefix: str):
     for key in data:
         if key not in fields:
             raise ConfigError(
-                f"{prefix}{_shown(key) if not isinstance(key, str) or len(key) > 60 else key}"
+                f"{prefix}{shown(key) if not isinstance(key, str) or len(key) > 60 else key}"
                 ": unknown setting; expected one of "
                 f"{', '.join(sorted(fields))}")
     hints = typing.get_type_hints(cls)

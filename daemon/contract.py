@@ -24,7 +24,7 @@ import dataclasses
 import logging
 from typing import Any
 
-from shoal.config import ConfigError, Settings
+from shoal.config import ConfigError, Settings, shown
 from shoal.daemon.layout import Layout, open_store
 from shoal.daemon.logs import log_event
 from shoal.daemon.store import StateStore
@@ -98,9 +98,20 @@ def _adoptable(key: str, stored: Any, configured: Any, learned: bool, buffered: 
     return key in ADOPTABLE and stored is not None and configured is not None
 
 
+def _first_change(d: dict) -> str:
+    """Where two lists of feature names first part, when the lists are too long to show."""
+    a, b = d["stored"], d["configured"]
+    if not (isinstance(a, list) and isinstance(b, list)) or max(len(a), len(b)) <= 8:
+        return ""
+    i = next((i for i, (x, y) in enumerate(zip(a, b)) if x != y), min(len(a), len(b)))
+    return (f" (first difference at position {i + 1}: stored "
+            f"{shown(a[i]) if i < len(a) else 'nothing'}, configured "
+            f"{shown(b[i]) if i < len(b) else 'nothing'})")
+
+
 def _refuse(store: StateStore, refused: list[dict]) -> ConfigError:
-    items = "; ".join(f"{d['key']}: stored {d['stored']!r}, configured {d['configured']!r}"
-                      for d in refused)
+    items = "; ".join(f"{d['key']}: stored {shown(d['stored'])}, configured "
+                      f"{shown(d['configured'])}{_first_change(d)}" for d in refused)
     return ConfigError(
         f"the config differs from the model stored in {store.path} on what defines that "
         f"model: {items}. Put the stored values back in the config, or give a new state "

@@ -4,7 +4,7 @@ from __future__ import annotations
 import time
 from typing import Any
 
-from shoal.config import Settings
+from shoal.config import Settings, shown
 from shoal.core import Mixture
 from shoal.daemon.contract import settings_of_model
 from shoal.daemon.store import StateStore
@@ -76,7 +76,7 @@ def format_differences(differs: list[dict]) -> list[str]:
         return []
     return ["the config differs from the stored model (shown as stored; commands that "
             "learn refuse this config):"] + [
-        f"  {d['key']}: stored {d['stored']!r}, configured {d['configured']!r}"
+        f"  {d['key']}: stored {shown(d['stored'])}, configured {shown(d['configured'])}"
         for d in differs]
 
 

@@ -152,3 +152,26 @@ def test_while_the_warm_up_fills_only_the_features_are_fixed(tmp_path, capsys):
     _with(cfg, covariance="full")
     assert main(["ingest", "-c", str(cfg), str(_drops(tmp_path, 2, 1)[0])]) == 2
     assert "covariance: stored 'diag', configured 'full'" in capsys.readouterr().err
+
+
+def test_a_long_feature_list_is_cut_in_the_refusal_with_its_first_difference(tmp_path):
+    from shoal.config import ConfigError, parse_config
+    from shoal.daemon.contract import check_model_contract, model_contract
+    from shoal.daemon.store import LedgerEntry, StateStore
+
+    names = [f"sensor_{i:03d}" for i in range(400)]
+    stored = parse_config({"features": names, "warmup_rows": 1000}, base_dir=tmp_path)
+    store = StateStore(tmp_path / "state.db")
+    try:
+        store.set_model_contract(model_contract(stored))
+        store.commit_input(LedgerEntry("d", "a.csv", 1, "committed"), learned=True)
+        moved = names[:200] + ["sensor_x"] + names[201:]
+        configured = parse_config({"features": moved, "warmup_rows": 1000}, base_dir=tmp_path)
+        with pytest.raises(ConfigError) as caught:
+            check_model_contract(store, configured, write=False)
+    finally:
+        store.close()
+    message = str(caught.value)
+    assert "(400 items)" in message and len(message) < 800, message
+    assert "first difference at position 201: stored 'sensor_200', configured 'sensor_x'" \
+        in message
