@@ -21,6 +21,7 @@ import contextlib
 import os
 import re
 import secrets
+import zlib
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -29,7 +30,8 @@ __all__ = ["Marker", "marker_path", "read_marker", "create_marker", "new_store_i
 
 _HEAD = "shoal state marker: made with the state store; do not delete\n"
 _ID = re.compile(r"^store_id ([0-9a-f]{32})$", re.M)
-_COUNTERS = re.compile(r"^ledger_rows (\d{20})\nmodel_version (\d{20})$", re.M)
+_COUNTERS = re.compile(r"^ledger_rows (\d{20})\nmodel_version (\d{20})\ncheck ([0-9a-f]{8})$",
+                       re.M)
 _MAX_BYTES = 4096
 
 
@@ -51,24 +53,38 @@ def new_store_id() -> str:
 
 
 def _counters(ledger_rows: int, model_version: int) -> bytes:
-    return f"ledger_rows {ledger_rows:020d}\nmodel_version {model_version:020d}\n".encode()
+    """The counters' fixed-width lines, with a CRC-32 of them: a read that overlaps a
+    rewrite (another process's, in place) is told from a real value."""
+    body = f"ledger_rows {ledger_rows:020d}\nmodel_version {model_version:020d}\n"
+    return (body + f"check {zlib.crc32(body.encode()):08x}\n").encode()
+
+
+def _parse_counters(text: str) -> tuple[int, int] | None:
+    found = _COUNTERS.search(text)
+    if found is None:
+        return None
+    rows, version = int(found.group(1)), int(found.group(2))
+    return (rows, version) if _counters(rows, version).decode() == found.group(0) + "\n" \
+        else None
 
 
 def read_marker(db: Path) -> Marker | None:
     """The marker of the store at ``db``; None when there is none."""
     path = marker_path(db)
-    try:
-        with open(path, "rb") as f:
-            text = f.read(_MAX_BYTES).decode("ascii", "replace")
-    except FileNotFoundError:
-        return None
-    except IsADirectoryError:
-        return Marker(path, None, None, None)
+    for _ in range(5):   # a read torn by a concurrent rewrite fails its check: read again
+        try:
+            with open(path, "rb") as f:
+                text = f.read(_MAX_BYTES).decode("ascii", "replace")
+        except FileNotFoundError:
+            return None
+        except IsADirectoryError:
+            return Marker(path, None, None, None)
+        counters = _parse_counters(text)
+        if counters is not None:
+            break
     found = _ID.search(text)
-    counters = _COUNTERS.search(text)
     return Marker(path, found.group(1) if found else None,
-                  int(counters.group(1)) if counters else None,
-                  int(counters.group(2)) if counters else None)
+                  *(counters if counters is not None else (None, None)))
 
 
 def create_marker(db: Path, store_id: str, ledger_rows: int, model_version: int) -> Marker:
@@ -104,8 +120,8 @@ class MarkerWriter:
         path = marker_path(db)
         self.fd = os.open(path, os.O_RDWR | os.O_CLOEXEC)
         text = os.pread(self.fd, _MAX_BYTES, 0).decode("ascii", "replace")
-        found = _COUNTERS.search(text)
-        self.offset = None if found is None else len(text[:found.start()].encode())
+        at = text.find("\nledger_rows ")   # rewritten whole, so a torn record is repaired
+        self.offset = None if at < 0 else len(text[:at + 1].encode())
         self.last: tuple[int, int] | None = None
 
     def note(self, ledger_rows: int, model_version: int) -> None:

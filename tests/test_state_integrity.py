@@ -168,3 +168,23 @@ def test_a_version_2_store_migrates_and_its_checkpoints_get_checksums(tmp_path, 
             store.latest_checkpoint()
     finally:
         store.close()
+
+
+def test_a_torn_marker_record_skips_the_check_once_and_is_rewritten(tmp_path):
+    from shoal.daemon.store import LedgerEntry
+
+    db = tmp_path / "state.db"
+    store = StateStore(db)
+    store.commit_input(LedgerEntry("d1", "a.csv", 1, "committed"), learned=True)
+    store.close()
+    marker = db.with_suffix(".marker")
+    text = marker.read_text()
+    torn = text.replace("ledger_rows 00000000000000000001", "ledger_rows 00000000000000000091")
+    marker.write_text(torn)                 # a digit from another write: its check fails
+    assert read_marker(db).ledger_rows is None and read_marker(db).store_id is not None
+    store = StateStore(db)                  # not refused as rolled back (91 > 1)
+    try:
+        store.commit_input(LedgerEntry("d2", "b.csv", 1, "committed"), learned=True)
+    finally:
+        store.close()
+    assert (read_marker(db).ledger_rows, read_marker(db).model_version) == (2, 2)
