@@ -348,15 +348,15 @@ class StateStore:
                 f"replaced. {advice}")
         if marker.ledger_rows is None:
             log_event("state_marker_unreadable", logging.WARNING, marker=str(marker.path),
-                      detail="its counters cannot be read; the roll-back check is skipped")
+                      detail="its counters cannot be read; the roll-back check is skipped "
+                             "this time")
         elif rows < marker.ledger_rows or version < marker.model_version:
             raise StateError(
                 f"state store {self.path} was rolled back: it holds {rows} ledger rows and "
                 f"model version {version}, but {marker.ledger_rows} ledger rows and model "
                 f"version {marker.model_version} had been committed (state.db-wal deleted "
                 f"after a crash, or an older copy of state.db restored). {advice}")
-        if marker.ledger_rows is not None:
-            self._marker = MarkerWriter(self.path)
+        self._marker = MarkerWriter(self.path)   # a bad record is rewritten at the next commit
 
     def _ledger_rows(self) -> int:
         return int(self.db.execute("SELECT COALESCE(MAX(id), 0) FROM ledger").fetchone()[0])
