@@ -122,6 +122,11 @@ class HttpSettings:
     address: str = _f("127.0.0.1", "address the status endpoint listens on (loopback by default)")
     port: int | None = _f(None, "port of the status endpoint (null: off; 0: any free port)",
                           min=0, max=65535)
+    max_connections: int = _f(
+        64, "open connections at most; past it a new one closes the oldest idle one",
+        min=1, max=10000)
+    idle_seconds: float = _f(10.0, "a connection that sends no complete request this long "
+                                   "is closed", min=0.1, max=3600.0)
 
 
 @dataclass(frozen=True)

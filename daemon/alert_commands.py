@@ -15,12 +15,12 @@ from shoal.config import ConfigError, Settings, load_config, parse_config
 from shoal.daemon.delivery import AlertSender
 from shoal.daemon.errors import StateError, UsageError
 from shoal.daemon.gate import input_kind
-from shoal.daemon.layout import StateLock, prepare_folders
+from shoal.daemon.contract import open_model_store
+from shoal.daemon.layout import StateLock, open_store, prepare_folders
 from shoal.daemon.logs import setup_logging
 from shoal.daemon.pipeline import Pipeline
 from shoal.daemon.progress import progress
 from shoal.daemon.report import parse_since
-from shoal.daemon.store import StateStore
 
 __all__ = ["add_alert_commands", "alert_delivery", "deliver_alerts", "format_alert", "replay",
            "replay_counts"]
@@ -69,7 +69,7 @@ def _cmd_alerts(args) -> int:
     setup_logging(settings.log_level)
     since = parse_since(args.since) if args.since else None
     layout = prepare_folders(settings)
-    store = StateStore(layout.db)
+    store = open_store(layout)
     try:
         rows = store.alerts(since=since)
     finally:
@@ -111,7 +111,7 @@ def _cmd_rebaseline(args, open_parts) -> int:
         if "in use by another shoal process" not in str(exc):
             raise
         layout = prepare_folders(settings)
-        store = StateStore(layout.db)
+        store = open_store(layout)
         try:
             store.request_rebaseline(args.note)
         finally:
@@ -223,7 +223,7 @@ def replay(config: Path, folder_in: Path, *, state_dir: str | None = None,
     summary = {"inputs": len(files), "rows": 0, "alerts": [], "state": str(iso),
                "outcomes": {}}
     with StateLock(layout.lock):
-        store = StateStore(layout.db)
+        store = open_model_store(layout, settings, write=True)
         try:
             pipeline = Pipeline(settings, layout, store)
             for path in progress(files, total=len(files), desc="replay", unit="file"):

@@ -63,6 +63,7 @@ from shoal.daemon.errors import (
     UsageError,
 )
 from shoal.daemon.gate import input_kind
+from shoal.daemon.contract import open_model_store
 from shoal.daemon.layout import Layout, StateLock, prepare_folders, remove_stale_temps
 from shoal.daemon.logs import log_event
 from shoal.daemon.pipeline import (
@@ -425,7 +426,7 @@ def backfill(settings: Settings, sources, *, client=None, scheduler: str | None 
     layout = prepare_folders(settings)
     with StateLock(layout.lock):
         remove_stale_temps(layout)
-        store = StateStore(layout.db, checkpoints_kept=settings.learning.checkpoints_kept)
+        store = open_model_store(layout, settings, write=True)
         try:
             pipeline = Pipeline(settings, layout, store, stop=stop, wall=wall)
             if client is not None:

@@ -39,7 +39,14 @@ from shoal.core import ShoalError  # noqa: E402
 from shoal.daemon.alert_commands import add_alert_commands, alert_delivery  # noqa: E402
 from shoal.daemon.backfill import add_backfill_command  # noqa: E402
 from shoal.daemon.errors import InputRejected, ServiceError, UsageError  # noqa: E402
-from shoal.daemon.layout import StateLock, prepare_folders, remove_stale_temps  # noqa: E402
+from shoal.daemon.contract import check_model_contract, open_model_store  # noqa: E402
+from shoal.daemon.layout import (  # noqa: E402
+    Layout,
+    StateLock,
+    open_store,
+    prepare_folders,
+    remove_stale_temps,
+)
 from shoal.daemon.logs import log_event, setup_logging  # noqa: E402
 from shoal.daemon.ops_commands import add_operating_commands, run_watch  # noqa: E402
 from shoal.daemon.pipeline import Pipeline  # noqa: E402
@@ -47,7 +54,6 @@ from shoal.daemon.progress import progress  # noqa: E402
 from shoal.daemon.quarantine_commands import add_quarantine_commands  # noqa: E402
 from shoal.daemon.retention import RetentionKeeper, add_prune_command  # noqa: E402
 from shoal.daemon.segment_names import add_name_command  # noqa: E402
-from shoal.daemon.store import StateStore  # noqa: E402
 from shoal.daemon.transform_commands import add_transform_commands  # noqa: E402
 
 __all__ = ["main", "build_parser", "open_service_parts"]
@@ -119,7 +125,7 @@ def open_service_parts(settings: Settings, *, lock: bool = True):
     try:
         if lock:
             remove_stale_temps(layout)
-        store = StateStore(layout.db, checkpoints_kept=settings.learning.checkpoints_kept)
+        store = open_model_store(layout, settings, write=lock)
         pipeline = Pipeline(settings, layout, store)
         yield layout, store, pipeline
     finally:
@@ -208,15 +214,42 @@ def _cmd_segments(args) -> int:
     from shoal.daemon.summary import format_segments, segment_summary
 
     settings = _load(args)
-    with open_service_parts(settings, lock=False) as (layout, store, pipeline):
+    store = open_store(prepare_folders(settings))
+    try:   # the stored model as it is, whatever the config says (it says how it differs)
         summary = segment_summary(store, settings, include_gone=args.all)
+    finally:
+        store.close()
     print(json.dumps(summary, indent=2) if args.json else format_segments(summary))
     return 0
 
 
+def check_config(settings: Settings) -> str | None:
+    """Everything ``shoal config`` checks beyond loading: the model's contract in an
+    existing state store (:mod:`shoal.daemon.contract`), read-only. ConfigError (exit 2)
+    names each key that differs; returns a line saying what was compared, or None."""
+    from shoal.daemon.readout import StateReader
+
+    layout = Layout.of(settings)
+    if not layout.db.is_file() or layout.db.stat().st_size == 0:
+        return None
+    reader = StateReader(layout.db)
+    try:
+        adopted = check_model_contract(reader, settings, write=False)
+    finally:
+        reader.close()
+    note = f"# the model's contract in {layout.db} matches"
+    if adopted:
+        note += " (taken going forward: " + ", ".join(
+            f"{d['key']} {d['stored']!r} -> {d['configured']!r}" for d in adopted) + ")"
+    return note
+
+
 def _cmd_config(args) -> int:
     settings = load_config(args.config)
+    note = check_config(settings)
     print(f"# {args.config}: valid. Effective configuration:")
+    if note:
+        print(note)
     print(dump_settings(settings), end="")
     return 0
 

@@ -21,13 +21,12 @@ from shoal.config import load_config
 from shoal.daemon.alert_commands import format_alert
 from shoal.daemon.delivery import AlertSender
 from shoal.daemon.errors import UsageError
-from shoal.daemon.layout import StateLock, prepare_folders, remove_stale_temps
+from shoal.daemon.layout import StateLock, open_store, prepare_folders, remove_stale_temps
 from shoal.daemon.logs import setup_logging
 from shoal.daemon.pipeline import Pipeline
 from shoal.daemon import scenario
 from shoal.daemon.scenario import FEATURE_UNITS, FEATURES, demo_changes, describe_states
 from shoal.daemon.service import Service
-from shoal.daemon.store import StateStore
 from shoal.daemon.summary import format_segments, segment_summary
 
 __all__ = ["run_demo", "DEMO_CONFIG"]
@@ -104,7 +103,7 @@ def run_demo(folder: Path, drops: int | None = None, rows_per_file: int = 4000,
           f"invented data) into {layout.inbox}")
     with StateLock(layout.lock):
         remove_stale_temps(layout)
-        store = StateStore(layout.db)
+        store = open_store(layout)
         try:
             pipeline = Pipeline(settings, layout, store)
             done = []

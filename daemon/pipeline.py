@@ -176,10 +176,19 @@ class Pipeline:
         if cp.version != version:
             raise StateError(f"state store's latest checkpoint is version {cp.version} but "
                              f"the model version is {version}")
+        meta = cp.meta
+        schedule = meta.get("schedule")
+        half_life = self.settings.half_life_rows
+        if isinstance(schedule, dict) and None not in (schedule.get("half_life_rows"), half_life) \
+                and schedule["half_life_rows"] != half_life:
+            # a new half-life is taken from the next row on (shoal.daemon.contract)
+            meta = {**meta, "schedule": {**schedule, "half_life_rows": half_life}}
         try:
-            mixture = Mixture.from_state(cp.arrays, cp.meta)
-        except ModelError as exc:
-            raise StateError(f"checkpoint {cp.version} cannot be loaded: {exc}") from exc
+            mixture = Mixture.from_state(cp.arrays, meta)
+        except (ModelError, KeyError, TypeError, ValueError, AttributeError) as exc:
+            raise StateError(f"checkpoint {cp.version} in {self.store.path} cannot be loaded "
+                             f"({type(exc).__name__}: {exc}); the state is unusable: restore "
+                             "the state folder from a backup") from exc
         if mixture.n_features != len(self.settings.features):
             raise StateError(f"the stored model has {mixture.n_features} features but the "
                              f"config lists {len(self.settings.features)}; use a new state "
