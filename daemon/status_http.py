@@ -180,7 +180,6 @@ def _quarantine_fact(q: dict) -> str:
     return text
 
 
-class _V6Server(ThreadingHTTPServer):
 class _BoundedServer(ThreadingHTTPServer):
     """A thread per connection, at most ``max_connections`` of them: at the bound a new
     connection closes the oldest idle one (no complete request yet), or is itself closed
