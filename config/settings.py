@@ -77,6 +77,10 @@ class WatchSettings:
     stall_seconds: float = _f(
         60.0, "the worker counts as stuck (unhealthy; no systemd watchdog ping) after this "
               "long without progress", min=1.0, max=86400.0)
+    incomplete_seconds: float = _f(
+        600.0, "a Parquet file without its footer (still being written) waits this long "
+               "after its last change, then is quarantined as truncated", min=0.0,
+        max=86400.0)
 
 
 @dataclass(frozen=True)
@@ -90,6 +94,9 @@ class LimitSettings:
     max_gzip_ratio: float = _f(
         100.0, "a .csv.gz input that inflates to more than this many times its compressed "
                "bytes (past the first 16 MiB) is quarantined as a decompression bomb", min=1.0)
+    max_attempts: int = _f(
+        3, "an input the process ended on (a crash no handler catches) this many times is "
+           "quarantined, unread, at the next start", min=1, max=1000)
 
 
 @dataclass(frozen=True)

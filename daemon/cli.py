@@ -13,6 +13,7 @@ import gc
 import json
 import os
 import signal
+import sqlite3
 import sys
 import threading
 from importlib import metadata
@@ -49,12 +50,13 @@ from shoal.daemon.layout import (  # noqa: E402
 )
 from shoal.daemon.logs import log_event, setup_logging  # noqa: E402
 from shoal.daemon.ops_commands import add_operating_commands, run_watch  # noqa: E402
-from shoal.daemon.pipeline import Pipeline  # noqa: E402
+from shoal.daemon.pipeline import Pipeline, Result  # noqa: E402
 from shoal.daemon.progress import progress  # noqa: E402
 from shoal.daemon.quarantine_commands import add_quarantine_commands  # noqa: E402
 from shoal.daemon.retention import RetentionKeeper, add_prune_command  # noqa: E402
 from shoal.daemon.segment_names import add_name_command  # noqa: E402
 from shoal.daemon.transform_commands import add_transform_commands  # noqa: E402
+from shoal.daemon.writer import display_name  # noqa: E402
 
 __all__ = ["main", "build_parser", "open_service_parts"]
 
@@ -179,16 +181,25 @@ def _cmd_ingest(args) -> int:
         with _stop_on_signals(pipeline.stop):
             for p in progress(paths, total=len(paths), desc="inputs", unit="file"):
                 in_inbox = p.resolve().parent == layout.inbox
-                results.append(pipeline.process(p, in_inbox=in_inbox))
+                try:
+                    results.append(pipeline.process(p, in_inbox=in_inbox))
+                except (OSError, sqlite3.Error) as exc:
+                    # a fault of the machine, not of the input (disk full, unwritable
+                    # outbox): nothing of it was kept; the rest wait, in order, for a rerun
+                    results.append(Result("failed", display_name(p.name),
+                                          detail=f"{type(exc).__name__}: {exc}"))
+                    break
                 retention.between_inputs()
         retention.run()
-    bad = [r for r in results if r.outcome in ("quarantined", "refused", "vanished")]
-    for r in results:
+    bad = [r for r in results if r.outcome not in ("committed", "duplicate", "already_done")]
+    for r in results:   # one line per input, whatever became of it
         extra = f" ({r.reason}: {r.detail})" if r.reason else \
             (f" ({r.detail})" if r.detail else "")
         print(f"{r.outcome:12s} {r.name}{extra}")
-    print(f"{len(results) - len(bad)} of {len(results)} inputs committed, {len(bad)} not")
-    return 1 if bad else 0
+    left = len(paths) - len(results)
+    print(f"{len(results) - len(bad)} of {len(paths)} inputs committed, {len(bad)} not"
+          + (f", {left} not tried" if left else ""))
+    return 1 if bad or left else 0
 
 
 def _cmd_label(args) -> int:

@@ -25,7 +25,9 @@ import pyarrow.parquet as pq
 import yaml
 
 __all__ = ["synthetic_table", "write_drop", "write_config", "ServiceProcess", "ledger_counts",
-           "wait_until", "crash_drill", "DrillReport", "MTIME_BASE", "InProcessService"]
+           "wait_until", "crash_drill", "DrillReport", "MTIME_BASE", "InProcessService",
+           "LEDGER_FIELDS", "ledger_rows", "ledger_difference", "final_arrays", "same_arrays",
+           "ingest_in_order", "slow_copy", "deliver"]
 
 # Drops get modification times from this fixed past epoch on, one second apart, so
 # that the order the service takes them in (oldest first) is the order they were made.
@@ -214,22 +216,53 @@ class InProcessService:
 class DrillReport:
     drops: int
     kills: int
+    slow_copies: int
+    in_place: int
     committed: int
     labels_files: int
     labels_identical: int
     model_identical: bool
     model_version: int
     reference_version: int
+    ledger_identical: bool
+    ledger_difference: str
     seconds: float
 
     @property
     def ok(self) -> bool:
         return (self.committed == self.drops and self.labels_files == self.drops
                 and self.labels_identical == self.drops and self.model_identical
-                and self.model_version == self.reference_version)
+                and self.model_version == self.reference_version and self.ledger_identical)
 
 
-def _final_arrays(db: Path) -> tuple[int, dict[str, np.ndarray]]:
+# The ledger's fields compared between runs: all but times (and attempt counts, which
+# live outside the ledger).
+LEDGER_FIELDS = ("digest", "name", "size", "rows", "outcome", "reason", "labels",
+                 "model_version")
+
+
+def ledger_rows(db: Path) -> list[tuple]:
+    """The ledger in order, ``LEDGER_FIELDS`` of each row."""
+    con = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=10.0)
+    try:
+        return con.execute(f"SELECT {', '.join(LEDGER_FIELDS)} FROM ledger "
+                           "ORDER BY id").fetchall()
+    finally:
+        con.close()
+
+
+def ledger_difference(rows: list[tuple], reference: list[tuple]) -> str:
+    """'' if equal, else where the first difference is."""
+    for i, (a, b) in enumerate(zip(rows, reference)):
+        if a != b:
+            return f"row {i + 1}: {a} against {b}"
+    if len(rows) != len(reference):
+        return f"{len(rows)} rows against {len(reference)}"
+    return ""
+
+
+def final_arrays(db: Path) -> tuple[int, dict[str, np.ndarray]]:
+    """The store's model version and its latest checkpoint's arrays."""
     from shoal.daemon.store import StateStore
 
     store = StateStore(db)
@@ -240,40 +273,107 @@ def _final_arrays(db: Path) -> tuple[int, dict[str, np.ndarray]]:
         store.close()
 
 
+def same_arrays(a: dict[str, np.ndarray], b: dict[str, np.ndarray]) -> bool:
+    """Bit for bit: the same names, dtypes, shapes and bytes."""
+    return bool(a) and a.keys() == b.keys() and all(
+        a[k].dtype == b[k].dtype and a[k].shape == b[k].shape and a[k].tobytes() == b[k].tobytes()
+        for k in a)
+
+
+def ingest_in_order(config: Path, files: list[Path], python: str = sys.executable,
+                    timeout: float = 300.0) -> None:
+    """``shoal ingest`` of ``files`` in the defined order: oldest first (modification time,
+    then name), the order ``shoal watch`` takes them in."""
+    ordered = sorted(files, key=lambda p: (os.stat(p).st_mtime_ns, p.name))
+    subprocess.run([python, "-m", "shoal.daemon.cli", "ingest", "-c", str(config),
+                    *map(str, ordered)], check=True, stdout=subprocess.DEVNULL,
+                   stderr=subprocess.DEVNULL, timeout=timeout)
+
+
+def slow_copy(data: bytes, target: Path, pieces: int, pause: float) -> None:
+    """Write ``data`` into ``target`` in place, in ``pieces`` with ``pause`` seconds
+    between them (a producer copying slowly, with shorter pauses than the settle time)."""
+    cut = np.linspace(0, len(data), pieces + 1).astype(int)
+    with open(target, "wb") as f:
+        for i in range(pieces):
+            f.write(data[cut[i]:cut[i + 1]])
+            f.flush()
+            if i + 1 < pieces:
+                time.sleep(pause)
+
+
+def deliver(data: bytes, inbox: Path, name: str, how: str, pause: float = 0.0) -> int:
+    """Put a drop into ``inbox`` the way a producer would: ``rename`` (written beside the
+    inbox, renamed in: complete at once), ``in_place`` (written straight into the inbox:
+    complete once settled) or ``slow`` (in place, in three pieces ``pause`` apart).
+    Returns its modification time (ns), taken before the service can move it."""
+    if how == "rename":
+        staging = inbox.parent / (inbox.name + ".staging")
+        staging.mkdir(exist_ok=True)
+        (staging / name).write_bytes(data)
+        mtime = os.stat(staging / name).st_mtime_ns
+        os.rename(staging / name, inbox / name)
+        return mtime
+    if how == "slow":
+        slow_copy(data, inbox / name, pieces=3, pause=pause)
+    else:
+        (inbox / name).write_bytes(data)
+    return os.stat(inbox / name).st_mtime_ns   # settling: not taken for a while yet
+
+
+def _drop_bytes(table: pa.Table, name: str) -> bytes:
+    sink = pa.BufferOutputStream()
+    if name.endswith(".parquet"):
+        pq.write_table(table, sink)
+    else:
+        pacsv.write_csv(table, sink)
+    return sink.getvalue().to_pybytes()
+
+
 def crash_drill(workdir: Path, drops: int = 200, kills: int = 20, rows: int = 300,
-                seed: int = 0, python: str = sys.executable,
-                timeout: float = 300.0) -> DrillReport:
+                seed: int = 0, python: str = sys.executable, timeout: float = 300.0,
+                slow_share: float = 0.15) -> DrillReport:
     """Feed ``drops`` inputs to a service killed with SIGKILL ``kills`` times; compare.
 
-    The reference is ``shoal ingest`` of the same files in the same order, in a
-    state folder of its own.
+    Drops arrive renamed in, written in place, or copied slowly in place (a
+    ``slow_share`` of them each: :func:`deliver`); the drops after a kill arrive while
+    the service starts again. Their modification times are real ones, in the order they
+    arrive. The reference is
+    ``shoal ingest`` of the same files in the defined order (:func:`ingest_in_order`)
+    in a state folder of its own: the final model must be the same bit for bit, every
+    labels file the same byte for byte, and the ledgers the same in order on
+    ``LEDGER_FIELDS``.
     """
     t0 = time.monotonic()
     rng = np.random.default_rng(seed)
     names = [f"drop-{i:04d}." + ("parquet" if i % 3 == 0 else "csv") for i in range(drops)]
     ref, run = workdir / "reference", workdir / "crashed"
-    ref_cfg, run_cfg = write_config(ref), write_config(run)
+    # The drill kills on purpose, maybe several times in a row while one input is
+    # processed: those are not the input's fault, so they never reach its attempts bound.
+    limits = {"max_attempts": kills + 2}
+    ref_cfg, run_cfg = write_config(ref, limits=limits), write_config(run, limits=limits)
     for folder in (ref / "inbox", run / "inbox", ref / "files"):
         folder.mkdir(parents=True, exist_ok=True)
-    tables = [synthetic_table(i, rows, seed) for i in range(drops)]
-    files = [write_drop(t, ref / "files", n, i) for i, (t, n) in enumerate(zip(tables, names))]
-    subprocess.run([python, "-m", "shoal.daemon.cli", "ingest", "-c", str(ref_cfg),
-                    *map(str, files)], check=True, stdout=subprocess.DEVNULL,
-                   stderr=subprocess.DEVNULL, timeout=timeout)
+    data = [_drop_bytes(synthetic_table(i, rows, seed), n) for i, n in enumerate(names)]
     kill_after = set(rng.choice(np.arange(1, drops), size=min(kills, drops - 1),
                                 replace=False).tolist())
+    how = rng.choice(["rename", "in_place", "slow"], size=drops,
+                     p=[1 - 2 * slow_share, slow_share, slow_share])
+    settle = 0.5   # write_config's watch.settle_seconds
     service = ServiceProcess(run_cfg, run / "service.log", python).start()
     db = run / "state" / "state.db"
     n_kills = 0
+    mtimes = []
     try:
         starts = 1
-        for i, (table, name) in enumerate(zip(tables, names)):
-            write_drop(table, run / "inbox", name, i)
+        for i, name in enumerate(names):
+            mtimes.append(deliver(data[i], run / "inbox", name, str(how[i]),
+                                  pause=float(rng.uniform(0.1, 0.6)) * settle))
             time.sleep(float(rng.uniform(0.0, 0.03)))
             if i in kill_after:
                 # Kill a running service (not one still starting) a random moment after
                 # a drop, so that kills land while inputs are being read, learned,
-                # written or committed.
+                # written or committed; the next drops arrive while it starts again.
                 service.wait_event("service_started", timeout, count=starts)
                 time.sleep(float(rng.uniform(0.0, 0.06)))
                 service.kill()
@@ -285,17 +385,23 @@ def crash_drill(workdir: Path, drops: int = 200, kills: int = 20, rows: int = 30
         service.stop()
     finally:
         service.kill()
+    files = []
+    for name, blob, mtime in zip(names, data, mtimes):   # the same bytes and times
+        files.append(ref / "files" / name)
+        files[-1].write_bytes(blob)
+        os.utime(files[-1], ns=(mtime, mtime))
+    ingest_in_order(ref_cfg, files, python, timeout)
     committed = ledger_counts(db).get("committed", 0)
     outs = sorted(p.name for p in (run / "outbox").iterdir())
     ref_outs = sorted(p.name for p in (ref / "outbox").iterdir())
     same = sum((run / "outbox" / n).read_bytes() == (ref / "outbox" / n).read_bytes()
                for n in set(outs) & set(ref_outs))
-    version, arrays = _final_arrays(db)
-    ref_version, ref_arrays = _final_arrays(ref / "state" / "state.db")
-    model_same = arrays.keys() == ref_arrays.keys() and all(
-        arrays[k].dtype == ref_arrays[k].dtype and arrays[k].shape == ref_arrays[k].shape
-        and arrays[k].tobytes() == ref_arrays[k].tobytes() for k in arrays)
-    return DrillReport(drops=drops, kills=n_kills, committed=committed, labels_files=len(outs),
-                       labels_identical=same, model_identical=bool(model_same and arrays),
-                       model_version=version, reference_version=ref_version,
-                       seconds=round(time.monotonic() - t0, 1))
+    version, arrays = final_arrays(db)
+    ref_version, ref_arrays = final_arrays(ref / "state" / "state.db")
+    difference = ledger_difference(ledger_rows(db), ledger_rows(ref / "state" / "state.db"))
+    return DrillReport(drops=drops, kills=n_kills, slow_copies=int(np.sum(how == "slow")),
+                       in_place=int(np.sum(how == "in_place")), committed=committed,
+                       labels_files=len(outs), labels_identical=same,
+                       model_identical=same_arrays(arrays, ref_arrays), model_version=version,
+                       reference_version=ref_version, ledger_identical=not difference,
+                       ledger_difference=difference, seconds=round(time.monotonic() - t0, 1))

@@ -16,6 +16,7 @@ __all__ = [
     "InputRejected",
     "InputVanished",
     "InputRefused",
+    "InputChanged",
 ]
 
 
@@ -58,3 +59,8 @@ class InputVanished(ServiceError):
 
 class InputRefused(ServiceError):
     """Not a regular file (symlink, FIFO, device, folder): never opened, left untouched."""
+
+
+class InputChanged(ServiceError):
+    """The input grew or was rewritten while it was read (a writer still at work): nothing
+    of it is committed; it is taken again once settled."""

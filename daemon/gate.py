@@ -6,8 +6,9 @@ move event, or, when the move came from outside the watched folder (reported
 as a creation), from the file's change time being later than its modification
 time: a rename (or ``utime``/``chmod`` after writing) leaves that mark, while
 every write sets both times to the same instant. Parquet must
-also end with its footer magic; a settled Parquet file without it is passed on
-so that the reader quarantines it as truncated. Symlinks, FIFOs, devices and
+also end with its footer magic: a Parquet file begun without it is incomplete and
+waits (``incomplete_seconds`` after its last change, at least the settle time),
+then is passed on so that the reader quarantines it as truncated. Symlinks, FIFOs, devices and
 folders are refused without being opened; names matching an ignore pattern
 are skipped.
 """
@@ -53,6 +54,7 @@ class Decision:
     mtime_ns: int = 0
     size: int = 0
     inode: int = 0
+    incomplete: bool = False   # WAIT: a Parquet file past its settle time without a footer
 
 
 @dataclass
@@ -72,10 +74,12 @@ class ReadinessGate:
     """
 
     def __init__(self, settle_seconds: float, ignore: Iterable[str] = (), *,
+                 incomplete_seconds: float = 600.0,
                  clock: Callable[[], float] = time.monotonic,
                  wall: Callable[[], float] = time.time,
                  lstat: Callable[[str | os.PathLike], os.stat_result] = os.lstat):
         self.settle = float(settle_seconds)
+        self.incomplete = max(float(incomplete_seconds), self.settle)
         self.ignore = tuple(ignore)
         self.clock = clock
         self.wall = wall
@@ -129,19 +133,29 @@ class ReadinessGate:
             wait = self.settle - quiet_for
             return Decision(Verdict.WAIT, "still changing", recheck_at=now + max(wait, 0.01),
                             **facts)
-        if input_kind(name) == "parquet" and not settled and not _has_parquet_footer(path):
-            return Decision(Verdict.WAIT, "Parquet footer not written yet",
-                            recheck_at=now + max(self.settle - quiet_for, 0.01), **facts)
+        if input_kind(name) == "parquet" and _parquet_incomplete(path):
+            # incomplete, not bad: its writer may resume; quarantined as truncated once
+            # unchanged for watch.incomplete_seconds
+            if quiet_for < self.incomplete:
+                at = now + max(min(self.incomplete - quiet_for, max(self.settle, 0.5)), 0.01)
+                return Decision(Verdict.WAIT, "Parquet footer not written yet", recheck_at=at,
+                                incomplete=True, **facts)
         return Decision(Verdict.READY, "renamed in" if renamed else "settled", **facts)
 
 
-def _has_parquet_footer(path: str) -> bool:
+def _parquet_incomplete(path: str) -> bool:
+    """A Parquet file begun (its leading magic, or nothing yet) whose footer magic is not
+    written yet. A file without the leading magic is no Parquet file being written:
+    not incomplete, so the reader refuses it at once."""
     try:
         fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC)
     except OSError:
         return False
     try:
         size = os.fstat(fd).st_size
-        return size >= 12 and os.pread(fd, 4, size - 4) == PARQUET_MAGIC
+        head = os.pread(fd, 4, 0)
+        if head != PARQUET_MAGIC[:len(head)]:
+            return False
+        return size < 12 or os.pread(fd, 4, size - 4) != PARQUET_MAGIC
     finally:
         os.close(fd)

@@ -143,12 +143,17 @@ def _time_range(times):
     if times is None or len(times) == 0:
         return None
     t = np.asarray(times)
-    if t.dtype == object or t.dtype.kind == "U":     # text (CSV): ISO times if they parse
+    if t.dtype == object or t.dtype.kind == "U":
+        # text (CSV): numbers if they all parse as numbers (as the same column read from
+        # Parquet gives), else ISO times if they parse
+        values = [str(v) for v in t.tolist() if v is not None]
         try:
-            t = np.array([str(v).rstrip("Z") for v in t.tolist() if v is not None],
-                         dtype="datetime64[ms]")
+            t = np.array([float(v) for v in values])
         except ValueError:
-            pass
+            try:
+                t = np.array([v.rstrip("Z") for v in values], dtype="datetime64[ms]")
+            except ValueError:
+                pass
     if np.issubdtype(t.dtype, np.datetime64):
         t = t[~np.isnat(t)]
         if not t.size:
@@ -230,6 +235,7 @@ class InputWatch:
         self.unusual_below = unusual_below
         self.alerts: list[tuple[str, dict]] = []
         self.rebaselined = False
+        self._times_dropped = 0   # rows whose times did not fit their window's kind
         if state is not None and state.get("format") != STATE_FORMAT:
             raise ValueError(f"drift state has format {state.get('format')!r}")
         self._state = json.loads(json.dumps(state)) if state is not None else None
@@ -338,8 +344,21 @@ class InputWatch:
         win["versions"] = _widen(win["versions"], self.version, self.version)
         span = _time_range(times)
         if span is not None:
-            win["time"] = _widen(win["time"], *span)
+            if win["time"][0] is None or _time_kind(win["time"][0]) == _time_kind(span[0]):
+                win["time"] = _widen(win["time"], *span)
+            else:   # numbers after times or text, or the other way: not comparable
+                win["times_dropped"] = win.get("times_dropped", 0) + len(X)
+                self._times_dropped += len(X)
         win["center"] = mixture.center.tolist()
+
+    def _log_times_dropped(self) -> None:
+        """Say once per input how many of its rows' times were left out (if any)."""
+        if self._times_dropped:
+            log_event("time_column_kind_changed", logging.WARNING, file=self.file,
+                      rows=self._times_dropped,
+                      detail="drift.time_column changed kind (numbers / times or text) "
+                             "between inputs; these rows' times are left out of their "
+                             "windows' time ranges (counted as times_dropped)")
 
     def _flush(self) -> None:
         """Add the pending per-segment sums to their window's JSON-able sums."""
@@ -616,6 +635,7 @@ class InputWatch:
 
     def log_alerts(self, model_version: int) -> None:
         """One log line per alert; called once they are committed."""
+        self._log_times_dropped()
         for _, payload in self.alerts:
             level = logging.WARNING if payload["status"] == "raised" else logging.INFO
             log_event(f"alert_{payload['status']}", level, id=payload["id"],
@@ -767,8 +787,16 @@ def _files(windows) -> list[str]:
     return out
 
 
+def _time_kind(value) -> str:
+    """Times in a window's range are numbers or text (ISO times); never both."""
+    return "number" if isinstance(value, (int, float)) and not isinstance(value, bool) \
+        else "text"
+
+
 def _span(pairs):
     pairs = [p for p in pairs if p]
     if not pairs:
         return None
+    kind = _time_kind(pairs[-1][0])   # the latest kind, if the column changed kind
+    pairs = [p for p in pairs if _time_kind(p[0]) == kind]
     return {"first": min(p[0] for p in pairs), "last": max(p[1] for p in pairs)}

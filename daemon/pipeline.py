@@ -27,11 +27,14 @@ rename, and only the last input's checkpoint stored. The inputs are moved to
 from __future__ import annotations
 
 import contextlib
+import errno
 import logging
 import os
+import sqlite3
 import stat as stat_mod
 import threading
 import time
+import traceback
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, BinaryIO, Callable, Iterable
@@ -54,8 +57,10 @@ from shoal.daemon.digest import digest_file
 from shoal.daemon.errors import (
     InputRefused,
     InputRejected,
+    InputChanged,
     InputVanished,
     Interrupted,
+    ServiceError,
     StateError,
 )
 from shoal.daemon.gate import input_kind
@@ -66,7 +71,13 @@ from shoal.daemon.segment_names import name_alerts, segment_names, with_segment_
 from shoal.daemon.readers import Frame, file_digest, iter_frames, prefetch
 from shoal.daemon.store import Checkpoint, HistoryRow, InputCommit, LedgerEntry, StateStore
 from shoal.daemon import transforming
-from shoal.daemon.writer import fsync_dir, labels_name, labels_table, write_labels_stream
+from shoal.daemon.writer import (
+    display_name,
+    fsync_dir,
+    labels_name,
+    labels_table,
+    write_labels_stream,
+)
 
 if TYPE_CHECKING:
     from shoal.daemon.monitor import DriftMonitor, InputWatch
@@ -82,11 +93,15 @@ _UNUSUAL_MEMORY_ROWS = 50_000
 # smaller ones in the worker's thread (starting a thread can take a few ms: a switch
 # interval of the interpreter lock).
 _THREADED_BYTES = 8 << 20
+# Quarantine reasons of failures nobody foresaw (logged with their traceback).
+_UNEXPECTED = ("unreadable", "internal_error")
 
 
 @dataclass
 class Result:
-    outcome: str          # committed | duplicate | already_done | quarantined | vanished | refused
+    # committed | duplicate | already_done | quarantined | vanished | refused | changed
+    # (| failed, in shoal ingest's report)
+    outcome: str
     name: str
     rows: int = 0
     rows_invalid: int = 0
@@ -116,6 +131,12 @@ class ModelState:
     transforms: FeatureTransforms | None = None   # the model's (fixed at warm-up)
 
 
+# Errors of opening an input that may pass: out of descriptors or memory, permissions
+# not yet set by the producer, an I/O error.
+_TRANSIENT_OPEN = frozenset({errno.EMFILE, errno.ENFILE, errno.ENOMEM, errno.EACCES,
+                             errno.EPERM, errno.EIO, errno.EAGAIN, errno.EINTR})
+
+
 def open_input(path: Path) -> BinaryIO:
     """Open a regular file for reading without following links or blocking on FIFOs."""
     flags = os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC
@@ -124,6 +145,8 @@ def open_input(path: Path) -> BinaryIO:
     except FileNotFoundError as exc:
         raise InputVanished(f"{path.name} no longer exists") from exc
     except OSError as exc:  # ELOOP: a symlink; ENXIO: a socket
+        if exc.errno in _TRANSIENT_OPEN:
+            raise   # retried in order (the service's fault path), not refused for good
         raise InputRefused(f"{path.name} cannot be opened as a regular file: "
                            f"{exc.strerror}") from exc
     st = os.fstat(fd)
@@ -150,6 +173,8 @@ class Pipeline:
         self.settings_listeners: list = []
         self.state = self.load_state()
         self._group: list[_Pending] | None = None   # the open group (process_group)
+        self._attempt: str | None = None   # the attempt key of the input in progress
+        self._attempted: set[str | None] = set()   # attempt keys this process recorded
         # the compiled scoring kernels checked once (milliseconds) at start-up rather
         # than failing inside the first input
         fused.warm()
@@ -204,10 +229,17 @@ class Pipeline:
 
     # -- one input -----------------------------------------------------------------
     def process(self, path: Path, *, in_inbox: bool = True) -> Result:
+        """Process one input and commit it (a group of one: :meth:`process_group`)."""
+        results = self.process_group([path], in_inbox=in_inbox)
+        if not results:
+            raise Interrupted("stop requested")
+        return results[0]
+
+    def _process_one(self, path: Path, in_inbox: bool) -> Result:
         path = Path(path)
         t0 = self.monotonic()
         seen_at = self.wall()
-        name = path.name
+        name = display_name(path.name)
         log_event("input_started", logging.DEBUG, file=name, model_version=self.state.version)
         try:
             result = self._process(path, name, in_inbox, seen_at)
@@ -217,6 +249,9 @@ class Pipeline:
         except InputRefused as exc:
             log_event("input_refused", logging.WARNING, file=name, detail=str(exc))
             return Result("refused", name, detail=str(exc))
+        except InputChanged as exc:
+            log_event("input_changed", logging.WARNING, file=name, detail=str(exc))
+            return Result("changed", name, detail=str(exc))
         except InputRejected as exc:
             return self._quarantine(path, name, in_inbox, exc, seen_at, t0)
         duration = self.monotonic() - t0
@@ -238,25 +273,99 @@ class Pipeline:
         fails (``OSError``, ``sqlite3.Error``), nothing of the uncommitted inputs
         is kept and the error is raised: ``self.state`` is then ahead of the store
         and the caller reloads it (:meth:`load_state`).
+
+        Each input's attempt is recorded in the store before it is read
+        (:meth:`StateStore.attempts`) and cleared by its commit or quarantine. An input
+        with an attempt left by an earlier process (which died on it, or on an input
+        of its group) is taken on its own, and quarantined unread once
+        ``limits.max_attempts`` processes died on it.
         """
         if self._group is not None:
             raise RuntimeError("process_group called inside a group")
         self._group = []
         results: list[Result] = []
+        recorded: list[str] = []      # attempts recorded by this call
+        finished: set[str | None] = set()
         try:
-            for path in paths:
+            for run, suspect in self._attempt_runs([Path(p) for p in paths]):
                 self._check_stop()
-                results.append(self.process(path, in_inbox=in_inbox))
+                if suspect:
+                    self._flush()   # the inputs before it are not lost with it
+                    key, = run.values()
+                    tried = self.store.attempts([key])[key]
+                    if tried >= self.settings.limits.max_attempts:
+                        path, = run
+                        results.append(self._crashed(path, in_inbox, key, tried))
+                        continue
+                new = [k for k in run.values() if k is not None and k not in self._attempted]
+                self.store.attempts(new, add=1)
+                self._attempted.update(new)
+                recorded += new
+                for path, key in run.items():
+                    self._check_stop()
+                    self._attempt = key
+                    results.append(self._process_one(path, in_inbox))
+                    if results[-1].outcome in ("committed", "duplicate", "quarantined"):
+                        finished.add(key)   # its row goes with its commit
+                if suspect:
+                    self._flush()
         except Interrupted:
             pass  # the inputs done so far are committed below
         except BaseException:
             self._group = None
+            self._give_up_attempts(recorded)
             raise
+        finally:
+            self._attempt = None
         try:
             self._flush()
+        except BaseException:
+            self._give_up_attempts(recorded)
+            raise
         finally:
             self._group = None
+        self._give_up_attempts([k for k in recorded if k not in finished])
         return results
+
+    def _give_up_attempts(self, keys: list[str]) -> None:
+        """Take back the attempts of inputs this process gave up cleanly (a stop, a fault
+        to retry, an input not taken after all): only a death leaves one behind."""
+        if not keys:
+            return
+        self._attempted.difference_update(keys)
+        try:
+            self.store.attempts(keys, add=-1)
+        except (OSError, sqlite3.Error) as exc:   # a full disk: counted once more, no more
+            log_event("attempts_not_cleared", logging.WARNING, inputs=len(keys),
+                      detail=f"{type(exc).__name__}: {exc}")
+
+    def _attempt_runs(self, paths: list[Path]):
+        """``paths`` in order as runs ``({path: attempt key}, suspect)``: an input with an
+        attempt of an earlier process alone (suspect), the others together."""
+        keys = {p: _attempt_key(p) for p in paths}
+        prior = self.store.attempts([k for k in keys.values()
+                                     if k is not None and k not in self._attempted])
+        run: dict[Path, str | None] = {}
+        for path, key in keys.items():
+            if key is not None and prior.get(key, 0) > 0:
+                if run:
+                    yield run, False
+                    run = {}
+                yield {path: key}, True
+            else:
+                run[path] = key
+        if run:
+            yield run, False
+
+    def _crashed(self, path: Path, in_inbox: bool, key: str, tried: int) -> Result:
+        """Quarantine an input that processes died on ``tried`` times, unread."""
+        exc = InputRejected("internal_error", f"the process ended {tried} times while this "
+                            "input was processed (limits.max_attempts="
+                            f"{self.settings.limits.max_attempts}); not tried again",
+                            attempts=tried)
+        self._attempt = key
+        return self._quarantine(path, display_name(path.name), in_inbox, exc, self.wall(),
+                                self.monotonic())
 
     def _flush(self) -> None:
         """Commit the open group's inputs in ONE transaction, then finish each."""
@@ -278,6 +387,7 @@ class Pipeline:
                 *after: Callable[[], None]) -> None:
         """Commit one input now, or (inside a group) when the group is committed;
         ``after`` runs once the commit is durable."""
+        commit = replace(commit, attempt=self._attempt)
         if self._group is not None:
             self._group.append(_Pending(commit, result, version, 0.0, list(after)))
             return
@@ -296,7 +406,8 @@ class Pipeline:
         kind = input_kind(name)
         limits = self.settings.limits
         with open_input(path) as f:
-            size = os.fstat(f.fileno()).st_size
+            pin = os.fstat(f.fileno())   # the file read, as it was when reading began
+            size = pin.st_size
             if size == 0:
                 raise InputRejected("empty", "the input is empty (0 bytes)", size=0)
             if size > limits.max_file_bytes:
@@ -322,27 +433,43 @@ class Pipeline:
                         raise _Seen(digest, done)
                     return digest
 
+                def unchanged() -> None:
+                    """Raise InputChanged if the file grew or was rewritten since it was
+                    opened (a writer that paused past the settle time): not committed."""
+                    now = os.fstat(f.fileno())
+                    if (now.st_size, now.st_mtime_ns) != (pin.st_size, pin.st_mtime_ns):
+                        raise InputChanged(f"{name} changed while it was read ({pin.st_size}"
+                                           f" -> {now.st_size} bytes); taken again once "
+                                           "settled")
+
                 try:
                     try:
-                        result = self._learn(self._frames(f, kind, threaded), entry, claim,
-                                             hashing.ready)
-                    except _Seen as seen:
-                        if any(e.name == name for e in seen.done):
-                            if self._group:
-                                self._flush()  # moved only once its ledger row is committed
-                            self._finish(path, in_inbox)
-                            return Result("already_done", name,
-                                          model_version=self.state.version)
-                        f.seek(0)
-                        result = self._duplicate(self._frames(f, kind, threaded),
-                                                 _with(entry, digest=seen.digest))
+                        try:
+                            result = self._learn(self._frames(f, kind, threaded), entry,
+                                                 claim, unchanged, hashing.ready)
+                        except _Seen as seen:
+                            if any(e.name == name for e in seen.done):
+                                if self._group:
+                                    self._flush()  # moved once its ledger row is committed
+                                self._finish(path, in_inbox, pin)
+                                return Result("already_done", name,
+                                              model_version=self.state.version)
+                            f.seek(0)
+                            result = self._duplicate(self._frames(f, kind, threaded),
+                                                     _with(entry, digest=seen.digest),
+                                                     unchanged)
+                    except (OSError, sqlite3.Error, ServiceError):
+                        raise   # a fault to retry, a stop, or a reason already given
+                    except Exception as exc:   # a failure that belongs to this input alone
+                        raise InputRejected("internal_error", f"{type(exc).__name__}: {exc}",
+                                            exception=type(exc).__name__) from exc
                 except InputRejected as exc:
                     with contextlib.suppress(OSError, RuntimeError):
                         exc.facts.setdefault("digest", hashing.result())
                         exc.facts.setdefault("digest_algorithm", algorithm)
                     exc.facts.setdefault("size", size)
                     raise
-        finish = lambda: self._finish(path, in_inbox)  # noqa: E731
+        finish = lambda: self._finish(path, in_inbox, pin)  # noqa: E731
         if self._group:
             self._group[-1].after.append(finish)  # after the group's commit
         else:
@@ -369,7 +496,8 @@ class Pipeline:
     def _write(self, frames: prefetch, tables: Callable[[Iterable[Frame]], Iterable[pa.Table]],
                entry: LedgerEntry, version: Callable[[], int | None],
                claim: Callable[[], str] | None = None,
-               ready: Callable[[], bool] | None = None) -> tuple[Path, str]:
+               ready: Callable[[], bool] | None = None,
+               unchanged: Callable[[], None] = lambda: None) -> tuple[Path, str]:
         """Write the labels ``tables(frames)`` as they are made; returns the file and the
         input's content digest. ``claim()`` gives the digest (when ``entry`` has none yet) and
         ``version()`` the labels' model version (None without scores): as the first
@@ -389,17 +517,22 @@ class Pipeline:
             for table in self._named(tables(frames)):
                 self._check_stop()
                 yield table
+        def final() -> Path:
+            unchanged()   # the labels are not named for a file that has changed since
+            return self.layout.outbox / labels_name(entry.name, digest[0], fmt)
+
         # named after a placeholder digest until the digest is known
         target = self.layout.outbox / labels_name(entry.name, entry.digest or "0" * 16, fmt)
         with frames:
             path = write_labels_stream(
                 checked(frames), target, fmt, metadata,
                 sync_folder=self._group is None,  # a group syncs it once
-                final=lambda: self.layout.outbox / labels_name(entry.name, digest[0], fmt),
+                final=final,
                 threaded=frames.threaded, ready=ready)
         return path, digest[0]
 
-    def _duplicate(self, frames: prefetch, entry: LedgerEntry) -> Result:
+    def _duplicate(self, frames: prefetch, entry: LedgerEntry,
+                   unchanged: Callable[[], None]) -> Result:
         """Same content under another name: labels written, the model not updated."""
         st = self.state
         count = _Count()
@@ -407,7 +540,8 @@ class Pipeline:
         def tables(frames):
             return _scored_tables(count.counted(frames, st.mixture), st.mixture,
                                   st.extra.get("unusual_below", -np.inf), st.version)
-        labels, _ = self._write(frames, tables, entry, lambda: st.version)
+        labels, _ = self._write(frames, tables, entry, lambda: st.version,
+                                unchanged=unchanged)
         entry = _with(entry, outcome="duplicate", labels=labels.name, rows=count.rows,
                       rows_invalid=count.invalid)
         result = Result("duplicate", entry.name, count.rows, count.invalid, labels,
@@ -416,7 +550,8 @@ class Pipeline:
         return result
 
     def _learn(self, frames: prefetch, entry: LedgerEntry, claim: Callable[[], str],
-               ready: Callable[[], bool] | None = None) -> Result:
+               unchanged: Callable[[], None], ready: Callable[[], bool] | None = None
+               ) -> Result:
         st = self.state
         version = st.version + 1
         extra = dict(st.extra)
@@ -438,7 +573,8 @@ class Pipeline:
                 watch.rebaseline(st.mixture, rebaseline[1])
         run = _Run(self, extra, version, watch, life)
         labels, digest = self._write(frames, run.tables, entry,
-                                     lambda: version if run.scored else None, claim, ready)
+                                     lambda: version if run.scored else None, claim, ready,
+                                     unchanged)
         mixture, extra = run.mixture, run.extra
         warmup_keep, clear_warmup = run.warmup_keep, run.clear_warmup
         if mixture is not None:
@@ -650,10 +786,26 @@ class Pipeline:
         return extra
 
     # -- endings -------------------------------------------------------------------
-    def _finish(self, path: Path, in_inbox: bool) -> None:
+    def _finish(self, path: Path, in_inbox: bool, pin: os.stat_result) -> None:
+        """Move the input read (``pin``: by device and inode, not by name) out of the
+        inbox; a file renamed over it meanwhile is a new input and stays."""
         if not in_inbox or self.settings.output.keep_inputs:
             return
-        move_out(path, self.layout.processed)
+        with contextlib.suppress(OSError):
+            now = os.lstat(path)
+            if (now.st_dev, now.st_ino) == (pin.st_dev, pin.st_ino) and \
+                    (now.st_size, now.st_mtime_ns) != (pin.st_size, pin.st_mtime_ns):
+                # written to between the check before its commit and now: what was read
+                # is committed, what was added since is not labelled; said, not silent
+                log_event("input_changed_after_commit", logging.WARNING,
+                          file=display_name(path.name), size_read=pin.st_size,
+                          size_now=now.st_size, detail="the bytes past size_read are not "
+                          "labelled; write inputs elsewhere and rename them in")
+        if move_out(path, self.layout.processed, identity=(pin.st_dev, pin.st_ino)) is None \
+                and os.path.lexists(path):
+            log_event("input_replaced", logging.INFO, file=display_name(path.name),
+                      detail="another file took its name while it was processed; that file "
+                             "is a new input")
 
     def _quarantine(self, path: Path, name: str, in_inbox: bool, exc: InputRejected,
                     seen_at: float, t0: float) -> Result:
@@ -666,10 +818,17 @@ class Pipeline:
         self.store.record_quarantine(LedgerEntry(
             digest=facts.get("digest"), name=name, size=int(facts.get("size", 0) or 0),
             outcome="quarantined", reason=f"{exc.reason}: {exc.detail}", seen_at=seen_at,
-            finished_at=now))
+            finished_at=now), attempt=self._attempt)
+        cause = exc.__cause__
         log_event("input_quarantined", logging.WARNING, file=name, reason=exc.reason,
-                  detail=exc.detail, sidecar=sidecar.name,
-                  duration=round(self.monotonic() - t0, 4))
+                  detail=exc.detail, sidecar=display_name(sidecar.name),
+                  duration=round(self.monotonic() - t0, 4),
+                  traceback=None if cause is None or exc.reason not in _UNEXPECTED else
+                  "".join(traceback.format_exception(cause)))
+        if exc.reason in _UNEXPECTED:
+            # what failed may have changed the model's objects part-way: the state is
+            # taken again from the store (which holds every input before this one)
+            self.state = self.load_state()
         return Result("quarantined", name, reason=exc.reason, detail=exc.detail)
 
     # -- label only ----------------------------------------------------------------
@@ -696,9 +855,20 @@ class Pipeline:
                     count.counted(frames, st.mixture), st.mixture,
                     st.extra.get("unusual_below", -np.inf), st.version))
                 write_labels_stream(tables, out, fmt, lambda: _labels_metadata(
-                    digest, algorithm, path.name, st.version), threaded=frames.threaded)
-        return Result("labelled", path.name, count.rows, count.invalid, out,
+                    digest, algorithm, display_name(path.name), st.version),
+                    threaded=frames.threaded)
+        return Result("labelled", display_name(path.name), count.rows, count.invalid, out,
                       model_version=st.version, rows_outside_domain=count.outside)
+
+
+def _attempt_key(path: Path) -> str | None:
+    """What an attempt is recorded under: the file (device, inode) as it stands (size,
+    modification time) and its name; None if it cannot be looked at."""
+    try:
+        st = os.lstat(path)
+    except OSError:
+        return None
+    return f"{st.st_dev}:{st.st_ino}:{st.st_size}:{st.st_mtime_ns}:{display_name(path.name)}"
 
 
 def _log_result(result: Result, duration: float) -> None:

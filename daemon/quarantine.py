@@ -14,7 +14,7 @@ import shutil
 from pathlib import Path
 from typing import Any
 
-from shoal.daemon.writer import atomic_file, fsync_dir, safe_stem
+from shoal.daemon.writer import atomic_file, display_name, fsync_dir, safe_stem
 
 __all__ = ["quarantine", "free_name", "move_out"]
 
@@ -33,13 +33,23 @@ def free_name(folder: Path, name: str) -> Path:
     raise FileExistsError(f"no free name for {name} in {folder}")
 
 
-def move_out(path: Path, folder: Path, target: Path | None = None) -> Path | None:
-    """Move an inbox file into ``folder`` (free name); None if it was already gone.
+def move_out(path: Path, folder: Path, target: Path | None = None,
+             identity: tuple[int, int] | None = None) -> Path | None:
+    """Move an inbox file into ``folder`` (free name); None if it was already gone, or if
+    ``identity`` (device, inode: the file that was read) is given and ``path`` now names
+    another file (renamed over it: a new input, left where it is).
 
     A hard link then an unlink, not a rename: the inbox watcher then sees a
     deletion, which it reports at once, instead of an unmatched move, which the
     inotify observer holds back for half a second (delaying every event behind it).
     """
+    if identity is not None:
+        try:
+            st = os.lstat(path)
+        except FileNotFoundError:
+            return None
+        if (st.st_dev, st.st_ino) != identity:
+            return None
     target = target or free_name(folder, path.name)
     try:
         os.link(path, target, follow_symlinks=False)
@@ -70,9 +80,9 @@ def quarantine(path: Path, folder: Path, reason: str, detail: str, *, move: bool
     record = {
         "reason": reason,
         "detail": detail,
-        "input": name,
-        "source": str(path),
-        "moved_to": str(target) if move else None,
+        "input": display_name(name),
+        "source": display_name(str(path)),
+        "moved_to": display_name(str(target)) if move else None,
         "time": _dt.datetime.fromtimestamp(now, _dt.timezone.utc).isoformat(),
         **(facts or {}),
     }

@@ -17,6 +17,7 @@ import os
 import queue
 import re
 import threading
+import zlib
 from dataclasses import dataclass
 from typing import BinaryIO, Callable, Iterator
 
@@ -48,6 +49,13 @@ _INFLATE_FREE = 16 << 20
 # Parquet footers: Thrift strings and lists past these are refused by the parser.
 _THRIFT_STRING_LIMIT = 16 << 20
 _THRIFT_CONTAINER_LIMIT = 1 << 20
+# Parquet footers past this many bytes, or with more column chunks (row groups x
+# columns) than this, are refused unparsed (memory to parse one: ~10 times its size).
+_FOOTER_LIMIT = 8 << 20
+_COLUMN_CHUNK_LIMIT = 100_000
+# Record batches held for one frame are joined once this many are held (a file of tiny
+# row groups would otherwise hold 65,536 one-row batches, ~2 KB of objects each).
+_HELD_BATCHES = 256
 
 
 @dataclass
@@ -95,8 +103,22 @@ def iter_frames(f: BinaryIO, kind: str, settings: Settings,
     are copied, in the same pass as the finite check).
 
     Limits are checked as the batches arrive: a file past one raises
-    :class:`InputRejected` part-way, after frames before it were yielded.
+    :class:`InputRejected` part-way, after frames before it were yielded. Any other
+    failure of reading (a parser's error nobody foresaw) is :class:`InputRejected` too,
+    reason ``unreadable``; an ``OSError`` of the file itself is raised as it is.
     """
+    try:
+        yield from _iter_frames(f, kind, settings, should_stop, rows, model_range)
+    except (InputRejected, Interrupted, OSError):
+        raise
+    except Exception as exc:
+        raise InputRejected("unreadable", f"{type(exc).__name__}: {exc}",
+                            exception=type(exc).__name__) from exc
+
+
+def _iter_frames(f: BinaryIO, kind: str, settings: Settings, should_stop: Callable[[], bool],
+                 rows: int, model_range: tuple[np.ndarray, np.ndarray] | None
+                 ) -> Iterator[Frame]:
     if kind == "parquet":
         batches, schema = _parquet_batches(f, settings)
     elif kind == "csv":
@@ -126,6 +148,8 @@ def iter_frames(f: BinaryIO, kind: str, settings: Settings,
             raise _too_much_data(decoded, settings, " once decoded")
         held.append(_decode_dictionaries(batch))
         n_held += batch.num_rows
+        if len(held) >= _HELD_BATCHES and n_held < rows:
+            held = pa.Table.from_batches(held).combine_chunks().to_batches()
         while n_held >= rows:
             take, held = _split(held, rows)
             n_held -= rows
@@ -408,6 +432,15 @@ def _parquet_batches(f: BinaryIO, settings: Settings):
     if size < 12 or head != b"PAR1" or tail != b"PAR1":
         raise InputRejected("truncated_parquet", "not a complete Parquet file (the 'PAR1' "
                             "magic is missing at its start or end)")
+    f.seek(max(size - 8, 0))
+    footer = int.from_bytes(f.read(4), "little")
+    f.seek(0)
+    if footer > _FOOTER_LIMIT:
+        # parsing a footer takes ~10 times its size in memory (200,000 one-row row
+        # groups: a 108 MB footer, 1.5 GB to read); refused before it is parsed
+        raise InputRejected("too_much_metadata", f"the Parquet footer is {footer} bytes, more "
+                            f"than {_FOOTER_LIMIT} (too many row groups or columns: write "
+                            "larger row groups)", limit=_FOOTER_LIMIT)
     source = _arrow_source(f)
     try:
         return _parquet_open(source, settings)
@@ -439,6 +472,12 @@ def _parquet_open(source, settings: Settings):
     if len(schema.names) > settings.limits.max_columns:
         raise InputRejected("too_many_columns", f"{len(schema.names)} columns, more than "
                             f"limits.max_columns={settings.limits.max_columns}")
+    chunks = pf.metadata.num_row_groups * max(pf.metadata.num_columns, 1)
+    if chunks > _COLUMN_CHUNK_LIMIT:
+        raise InputRejected("too_much_metadata", f"{pf.metadata.num_row_groups} row groups of "
+                            f"{pf.metadata.num_columns} columns, more than "
+                            f"{_COLUMN_CHUNK_LIMIT} column chunks: write larger row groups",
+                            limit=_COLUMN_CHUNK_LIMIT)
     if pf.metadata.num_rows > settings.limits.max_rows:
         raise InputRejected("too_many_rows", f"{pf.metadata.num_rows} rows, more than "
                             f"limits.max_rows={settings.limits.max_rows}")
@@ -532,7 +571,11 @@ class _InflateGuard(io.RawIOBase):
         return self.inflated
 
     def readinto(self, buffer) -> int:
-        n = self.gz.readinto(buffer)
+        try:
+            n = self.gz.readinto(buffer)
+        except (OSError, EOFError, zlib.error) as exc:   # gzip.BadGzipFile is an OSError
+            raise InputRejected("bad_compression", f"cannot be decompressed after "
+                                f"{self.inflated} bytes: {type(exc).__name__}: {exc}") from exc
         self.inflated += n
         if self.inflated > self.limits.max_data_bytes:
             raise _too_much_data(self.inflated, self.settings, " after decompression")
@@ -546,20 +589,32 @@ class _InflateGuard(io.RawIOBase):
 
 
 def _csv_header(stream: BinaryIO) -> list[str]:
+    """The header's names. A line ends at LF, CR LF or a lone CR, as Arrow's CSV reader
+    ends it (files from old Mac tools end every line with a CR alone)."""
     try:
         line = stream.readline(_HEADER_LIMIT)
     except (OSError, EOFError) as exc:
         raise InputRejected("bad_compression", f"cannot be decompressed: {exc}") from exc
     if not line:
         raise InputRejected("empty", "the input is empty (no header line)")
+    end = len(line)
+    for mark in (b"\r", b"\n"):
+        at = line.find(mark)
+        if at >= 0:
+            end = min(end, at)
+    if end == len(line) and len(line) >= _HEADER_LIMIT:
+        raise InputRejected("bad_header", f"header line longer than {_HEADER_LIMIT} bytes")
+    line = line[:end]
     try:
         text = line.decode("utf-8-sig")  # a byte-order mark is not part of the first name
     except UnicodeDecodeError as exc:
         raise InputRejected("encoding", f"line 1 (header) is not UTF-8: byte "
                             f"{line[exc.start]:#04x} at position {exc.start}", line=1) from exc
-    if not text.endswith("\n") and len(line) >= _HEADER_LIMIT:
-        raise InputRejected("bad_header", f"header line longer than {_HEADER_LIMIT} bytes")
-    return next(csv.reader([text.rstrip("\r\n")]), [])
+    try:
+        return next(csv.reader([text]), [])
+    except csv.Error as exc:   # a name past the csv module's field limit (128 KiB) ...
+        raise InputRejected("bad_header", f"line 1 (header) cannot be parsed: {exc}",
+                            line=1) from exc
 
 
 def _csv_batches(stream: BinaryIO, settings: Settings):

@@ -56,10 +56,13 @@ class Service:
         self.clock = clock
         self.on_result = on_result
         w = settings.watch
-        self.gate = ReadinessGate(w.settle_seconds, w.ignore, clock=clock)
+        self.gate = ReadinessGate(w.settle_seconds, w.ignore,
+                                  incomplete_seconds=w.incomplete_seconds, clock=clock)
         self.watcher = InboxWatcher(layout.inbox, w.queue_size, w.polling, w.poll_seconds,
                                     observer_factory=observer_factory)
         self._waiting: dict[str, float] = {}        # path -> monotonic time of next check
+        # path -> (mtime_ns, path) of a waiting file that newer ones may not overtake
+        self._holding: dict[str, tuple[int, str]] = {}
         self._ready: list[tuple[int, str]] = []     # heap of (mtime_ns, path)
         self._in_ready: set[str] = set()
         self._settled_out: dict[str, tuple] = {}    # path -> stat key of a file left behind
@@ -95,6 +98,7 @@ class Service:
         settings, self._new_settings = self._new_settings, None
         self.settings = self.pipeline.settings = settings
         self.gate.settle = float(settings.watch.settle_seconds)
+        self.gate.incomplete = max(float(settings.watch.incomplete_seconds), self.gate.settle)
         self.gate.ignore = tuple(settings.watch.ignore)
         if self._new_settings_note is not None:
             self._new_settings_note(settings)
@@ -119,8 +123,7 @@ class Service:
                     next_rescan = now + self.settings.watch.rescan_seconds
                 self._drain_events(timeout=0.0)
                 self._recheck_waiting()
-                if self._ready:
-                    self._process_next()
+                if self._ready and self._process_next():
                     continue
                 due = min([next_rescan, *self._waiting.values()])
                 self._drain_events(timeout=max(0.0, min(due - self.clock(), _IDLE_WAIT)))
@@ -165,20 +168,35 @@ class Service:
         d = self.gate.check(path)
         if d.verdict is Verdict.READY:
             key = (d.size, d.mtime_ns, d.inode)
+            self._unwait(path)
             if self._settled_out.get(path) == key:
                 return  # kept in the inbox after commit (output.keep_inputs)
-            self._waiting.pop(path, None)
             heapq.heappush(self._ready, (d.mtime_ns, path))
             self._in_ready.add(path)
         elif d.verdict is Verdict.WAIT:
-            self._waiting[path] = d.recheck_at
+            self._wait(path, d)
         else:
-            self._waiting.pop(path, None)
+            self._unwait(path)
             if d.verdict is Verdict.REFUSE and self._settled_out.get(path) != ("refused", d.inode):
                 self._settled_out[path] = ("refused", d.inode)
                 self._count("refused")
                 log_event("input_refused", logging.WARNING, file=os.path.basename(path),
                           detail=d.reason)
+
+    def _wait(self, path: str, d, at: float | None = None) -> None:
+        """``path`` waits until ``at`` (``d.recheck_at``). Unless it only waits for its
+        Parquet footer (its writer paused: its final modification time will be later),
+        newer files wait behind it: the order stays oldest first however a file was found
+        and whatever held it back (settling at start-up, a retry after a fault)."""
+        self._waiting[path] = d.recheck_at if at is None else at
+        if d.incomplete:
+            self._holding.pop(path, None)
+        else:
+            self._holding[path] = (d.mtime_ns, path)
+
+    def _unwait(self, path: str) -> None:
+        self._waiting.pop(path, None)
+        self._holding.pop(path, None)
 
     def _recheck_waiting(self) -> None:
         now = self.clock()
@@ -195,9 +213,10 @@ class Service:
         d = self.gate.check(path)  # it may have changed or gone since it was queued
         if d.verdict is not Verdict.READY:
             if d.verdict is Verdict.WAIT:
-                self._waiting[path] = d.recheck_at
+                self._wait(path, d)
             else:
                 self._retry_at.pop(path, None)
+                self._unwait(path)
             return None
         if self._ready and (d.mtime_ns, path) > self._ready[0]:
             heapq.heappush(self._ready, (d.mtime_ns, path))  # touched: no longer the oldest
@@ -205,12 +224,15 @@ class Service:
             return None
         return path, d
 
-    def _process_next(self) -> None:
-        """Take the ready inputs (oldest first, up to a group's bounds) and process them
-        as one group; nothing of a group is committed if a write or the commit fails."""
+    def _process_next(self) -> bool:
+        """Take the ready inputs (oldest first, up to a group's bounds, none newer than a
+        file still waiting) and process them as one group; nothing of a group is
+        committed if a write or the commit fails. False if none could be taken."""
         group: list[tuple[str, object]] = []
         size = 0
         while self._ready and len(group) < _GROUP_INPUTS:
+            if self._holding and self._ready[0] > min(self._holding.values()):
+                break   # an older file is still waiting: nothing newer goes first
             taken = self._take_ready()
             if taken is None:
                 continue
@@ -222,18 +244,20 @@ class Service:
             group.append(taken)
             size += d.size
         if not group:
-            return
+            return False
         try:
             results = self.pipeline.process_group([Path(p) for p, _ in group], in_inbox=True)
         except (OSError, sqlite3.Error) as exc:
-            self._failed([p for p, _ in group], exc)
-            return
+            self._failed([(p, d) for p, d in group], exc)
+            return True
         self._failures = 0
         for (path, d), result in zip(group, results):
             self._retry_at.pop(path, None)
             self._count(result.outcome)
             self.gate.forget(path)
-            if os.path.lexists(path):
+            if result.outcome == "changed":   # a writer still at work: once it settles
+                self._consider(path)
+            elif os.path.lexists(path):
                 self._settled_out[path] = (d.size, d.mtime_ns, d.inode)
             else:
                 self._settled_out.pop(path, None)
@@ -241,11 +265,14 @@ class Service:
                 self.on_result(result)
         for path, _ in group[len(results):]:  # left by a stop request: not taken
             self.gate.forget(path)
+        return True
 
-    def _failed(self, paths: list[str], exc: BaseException) -> None:
-        """Writing or committing a group failed (ENOSPC, EIO ...): nothing of its
-        uncommitted inputs was kept. Reload the model from the store, leave the inputs
-        in the inbox and try them again later, in the same order."""
+    def _failed(self, group: list[tuple[str, object]], exc: BaseException) -> None:
+        """Opening, writing or committing a group failed (ENOSPC, EIO, EMFILE, EACCES ...):
+        nothing of its uncommitted inputs was kept. Reload the model from the store, leave
+        the inputs in the inbox and try them again later, in the same order, before
+        anything newer."""
+        paths = [p for p, _ in group]
         self._failures += 1
         wait = min(_RETRY_FIRST * 2 ** (self._failures - 1), _RETRY_MAX)
         self._count("failed")
@@ -257,8 +284,9 @@ class Service:
         except (OSError, sqlite3.Error) as again:
             log_event("state_reload_failed", logging.ERROR, detail=str(again))
         at = self.clock() + wait
-        for path in paths:
-            self._retry_at[path] = self._waiting[path] = at
+        for path, d in group:
+            self._retry_at[path] = at
+            self._wait(path, d, at)
 
     def _count(self, outcome: str) -> None:
         self.counts[outcome] = self.counts.get(outcome, 0) + 1

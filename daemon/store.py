@@ -46,7 +46,9 @@ __all__ = ["StateStore", "LedgerEntry", "Checkpoint", "HistoryRow", "InputCommit
 #    (raised/cleared, X.733 severities, the baseline).
 # 4: each checkpoint array, and each checkpoint's meta and extra JSON, carries a checksum
 #    verified when it is loaded.
-SCHEMA_VERSION = 4
+# 5: the attempts table (inputs being processed, and how many processes ended while
+#    processing them).
+SCHEMA_VERSION = 5
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (
@@ -115,6 +117,11 @@ CREATE TABLE IF NOT EXISTS alert_delivery (
     last_error   TEXT,
     PRIMARY KEY (outbox_id, sink)
 );
+CREATE TABLE IF NOT EXISTS attempts (
+    input   TEXT PRIMARY KEY,
+    count   INTEGER NOT NULL,
+    last_at REAL NOT NULL
+);
 CREATE TABLE IF NOT EXISTS rebaselines (
     id            INTEGER PRIMARY KEY,
     requested     REAL NOT NULL,
@@ -136,7 +143,7 @@ def _migrate_1_to_2(db: sqlite3.Connection) -> None:
 
 
 def _migrate_3_to_4(db: sqlite3.Connection) -> None:
-    """Version 2 -> 3: checksums of the checkpoints kept, computed from what the store holds
+    """Version 3 -> 4: checksums of the checkpoints kept, computed from what the store holds
     now (a checkpoint damaged before the upgrade is not found out by them; one damaged
     after it is)."""
     db.execute("ALTER TABLE checkpoints ADD COLUMN checksum TEXT")
@@ -151,8 +158,16 @@ def _migrate_3_to_4(db: sqlite3.Connection) -> None:
                    (checksum(blob), version, name))
 
 
+def _migrate_4_to_5(db: sqlite3.Connection) -> None:
+    """Version 4 -> 5: the ``attempts`` table (inputs being processed, and how many
+    processes ended while processing them)."""
+    db.execute("CREATE TABLE IF NOT EXISTS attempts (input TEXT PRIMARY KEY, count INTEGER NOT NULL, "
+               "last_at REAL NOT NULL)")
+
+
 # schema version -> the function that brings a store of that version to the next one
-MIGRATIONS = {1: _migrate_1_to_2, 2: migrate_alert_words, 3: _migrate_3_to_4}
+MIGRATIONS = {1: _migrate_1_to_2, 2: migrate_alert_words, 3: _migrate_3_to_4,
+              4: _migrate_4_to_5}
 
 
 def checksum(data: bytes) -> str:
@@ -239,7 +254,8 @@ class InputCommit:
     ``learned``: the input advances the model version by one (a new input); a
     duplicate does not. ``checkpoint.version``, when given, must be the version
     after this input. ``alerts`` go to the outbox (an id already there is kept as
-    it was); ``rebaseline`` is a request id applied by this input.
+    it was); ``rebaseline`` is a request id applied by this input; ``attempt`` the
+    input's attempt key (:meth:`StateStore.attempts`), cleared by the commit.
     """
     entry: LedgerEntry
     learned: bool
@@ -249,6 +265,12 @@ class InputCommit:
     history: Iterable[HistoryRow] = ()
     alerts: Iterable[tuple[str, Mapping[str, Any]]] = ()
     rebaseline: int | None = None
+    attempt: str | None = None
+
+
+# Attempt rows of inputs that never finished here (gone from the inbox meanwhile) are
+# dropped after this long.
+_ATTEMPTS_KEPT_SECONDS = 7 * 86400
 
 
 class StateStore:
@@ -703,9 +725,43 @@ class StateStore:
                             (alert_id, version, now, json.dumps(payload, sort_keys=True)))
 
     # -- writes -----------------------------------------------------------------
-    def record_quarantine(self, entry: LedgerEntry) -> None:
+    def attempts(self, keys: Iterable[str], add: int = 0) -> dict[str, int]:
+        """How many times each input (by its attempt key) was taken without being finished
+        (committed or quarantined), 0 for none; with ``add``, first that many more (or
+        fewer: an attempt given up cleanly) for each, in one transaction. Recorded before
+        the inputs are read, a process that dies while processing them leaves the count
+        behind for the next one to see."""
+        keys = list(keys)
+        if add and keys:
+            now = self.clock()
+            # Written without an fsync (synchronous=NORMAL in WAL mode): in the OS's
+            # cache the record outlives the process, which is what it is for; a power
+            # cut may lose it, and with it one count of an input's deaths (~6 ms an
+            # input saved here, against ~0.05 ms).
+            self.db.execute("PRAGMA synchronous=NORMAL")
+            try:
+                with self._transaction():
+                    self.db.executemany(
+                        "INSERT INTO attempts (input, count, last_at) VALUES (?, ?, ?) ON "
+                        "CONFLICT (input) DO UPDATE SET count = count + excluded.count, "
+                        "last_at = excluded.last_at", [(k, add, now) for k in keys])
+                    self.db.execute("DELETE FROM attempts WHERE count <= 0 OR last_at < ?",
+                                    (now - _ATTEMPTS_KEPT_SECONDS,))
+            finally:
+                self.db.execute("PRAGMA synchronous=FULL")
+        found = {}
+        for i in range(0, len(keys), 500):
+            part = keys[i:i + 500]
+            found.update(self.db.execute(
+                f"SELECT input, count FROM attempts WHERE input IN "
+                f"({', '.join('?' * len(part))})", part).fetchall())
+        return {k: int(found.get(k, 0)) for k in keys}
+
+    def record_quarantine(self, entry: LedgerEntry, attempt: str | None = None) -> None:
         with self._transaction():
             self._insert_entry(entry)
+            if attempt is not None:
+                self.db.execute("DELETE FROM attempts WHERE input = ?", (attempt,))
         self._note_progress()
 
     def commit_input(self, entry: LedgerEntry, *, learned: bool,
@@ -752,6 +808,8 @@ class StateStore:
                 self._insert_alerts(c.alerts, version, now)
                 if c.rebaseline is not None:
                     self._mark_rebaseline(c.rebaseline, version, now)
+                if c.attempt is not None:
+                    self.db.execute("DELETE FROM attempts WHERE input = ?", (c.attempt,))
                 versions.append(version)
             if version != start:
                 self._set_meta("model_version", str(version))

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import base64
 import contextlib
+import hashlib
 import os
 import re
 import unicodedata
@@ -23,7 +24,7 @@ import pyarrow.parquet as pq
 
 from shoal.daemon.readers import prefetch
 
-__all__ = ["labels_name", "safe_stem", "labels_table", "atomic_file", "write_labels",
+__all__ = ["labels_name", "safe_stem", "display_name", "labels_table", "atomic_file", "write_labels",
            "write_labels_stream", "fsync_dir", "OUTPUT_MODE"]
 
 OUTPUT_MODE = 0o640
@@ -41,10 +42,33 @@ def safe_stem(name: str, limit: int = 80) -> str:
     return base[:limit] or "input"
 
 
+def display_name(name: str) -> str:
+    """``name`` as text that is valid UTF-8 everywhere (ledger, logs, metadata, sidecars):
+    the bytes of a file name that are not UTF-8 (which Python keeps as lone surrogates)
+    become ``\\xNN`` escapes; any other name is returned as it is."""
+    return os.fsencode(name).decode("utf-8", "backslashreplace")
+
+
+# Input suffixes whose names keep their labels file name plain: a stem made only of safe
+# characters names one input with such a suffix (``.pq`` may hold the same bytes as
+# ``.parquet``, ``a.CSV`` those of ``a.csv``, so those names are told apart by a tag).
+_PLAIN_SUFFIXES = (".csv", ".csv.gz", ".parquet")
+
+
 def labels_name(input_name: str, digest: str, fmt: str) -> str:
-    """``<safe stem>.<first 16 hex digits of the content digest>.labels.<ext>``."""
+    """``<safe stem>.<first 16 hex digits of the content digest>.labels.<ext>``.
+
+    Where the safe stem loses something of the name (``sensor 1.csv`` and ``sensor_1.csv``
+    share the stem ``sensor_1``), the stem is followed by ``-`` and 8 hex digits of a
+    hash of the whole name, so two inputs of one content under different names (the
+    second a duplicate) never share a labels file.
+    """
     ext = "parquet" if fmt == "parquet" else "csv"
-    return f"{safe_stem(input_name)}.{digest[:16]}.labels.{ext}"
+    stem = safe_stem(input_name.replace("\\", "_"))   # an input name is never a path
+    if not any(input_name == stem + suffix for suffix in _PLAIN_SUFFIXES):
+        tag = hashlib.blake2b(os.fsencode(input_name), digest_size=4).hexdigest()
+        stem = f"{stem[:71]}-{tag}"
+    return f"{stem}.{digest[:16]}.labels.{ext}"
 
 
 def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray | None,

@@ -25,7 +25,7 @@ from shoal.daemon.drills import synthetic_table, write_config
 from shoal.daemon.errors import StateError
 from shoal.daemon.layout import prepare_folders
 from shoal.daemon.readers import file_digest
-from shoal.daemon.store import StateStore
+from shoal.daemon.store import SCHEMA_VERSION, StateStore
 
 SEED = 5
 

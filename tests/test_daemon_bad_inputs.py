@@ -35,7 +35,8 @@ def _csv(table):
 @pytest.fixture
 def svc(tmp_path):
     with Running(tmp_path, warmup_rows=500,
-                 limits={"max_file_bytes": 400_000, "max_rows": 2000, "max_columns": 12}) as s:
+                 limits={"max_file_bytes": 400_000, "max_rows": 2000, "max_columns": 12},
+                 watch={"incomplete_seconds": 1.0}) as s:
         r = s.drop(synthetic_table(0, 700, SEED), "seed.parquet")
         assert r.outcome == "committed" and r.model_version == 1
         yield s

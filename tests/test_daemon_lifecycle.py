@@ -49,11 +49,13 @@ def test_sigterm_during_a_two_million_row_file(tmp_path):
 
 
 def test_sigkill_at_random_moments_short_crash_drill(tmp_path):
-    report = crash_drill(tmp_path, drops=40, kills=6, rows=300, seed=1, timeout=120)
+    report = crash_drill(tmp_path, drops=40, kills=6, rows=300, seed=3, timeout=120)
     assert report.kills == 6
     assert report.committed == 40 and report.labels_files == 40
     assert report.labels_identical == 40                       # byte for byte
     assert report.model_identical and report.model_version == report.reference_version == 40
+    assert report.slow_copies > 0 and report.in_place > 0
+    assert report.ledger_identical, report.ledger_difference
 
 
 def test_fifty_demo_drops_csv_and_parquet(tmp_path):

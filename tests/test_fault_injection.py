@@ -1,10 +1,12 @@
-"""Fault injection: writes of the labels file and of the state
-store fail with ENOSPC or EIO at chosen points while a watched service runs.
+"""Fault injection: writes of the labels file and of the state store fail with ENOSPC,
+EIO or EACCES at chosen points while a watched service runs, and inputs cannot be opened
+for a while (EMFILE, EACCES).
 
 For each point: the service stays up, logs the failure and commits nothing of that
 input; the state store stays readable (model version and ledger as before); no temp
 file is left in the outbox. Once the fault is gone the input is retried and committed
-once, and the final model, ledger and labels equal a run that never saw a fault.
+once, before anything newer, and the final model, ledger and labels equal ``shoal
+ingest`` of the same files oldest first.
 """
 import errno
 import os
@@ -14,7 +16,15 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from shoal.daemon.drills import InProcessService, synthetic_table, wait_until, write_drop
+from shoal.daemon.drills import (
+    InProcessService,
+    ingest_in_order,
+    ledger_rows,
+    synthetic_table,
+    wait_until,
+    write_config,
+    write_drop,
+)
 
 SEED = 21
 NAMES = ["first.parquet", "second.csv", "third.parquet"]
@@ -44,7 +54,13 @@ class FailingConnection:
         self._real, self._fault, self._sql, self._after = real, fault, sql, after
 
     def execute(self, sql, *args):
-        if self._fault.armed and sql.startswith(self._sql):
+        if sql.startswith("BEGIN"):
+            self._ledger = False
+        elif sql.startswith("INSERT INTO ledger"):
+            self._ledger = True
+        # a COMMIT fails only where it commits an input (not an attempt's record)
+        if self._fault.armed and sql.startswith(self._sql) and \
+                (self._sql != "COMMIT" or getattr(self, "_ledger", False)):
             if self._after:
                 self._real.execute(sql, *args)
                 self._fault.fire(sqlite3.OperationalError("disk I/O error"))
@@ -85,13 +101,13 @@ def _inject(point: str, fault: Fault, svc, monkeypatch) -> None:
 
 
 def _snapshot(folder: Path):
-    """Ledger (name, outcome, version), final model arrays, labels bytes of a run."""
+    """Ledger (drills.LEDGER_FIELDS in order), model version, final model arrays, labels
+    bytes of a run."""
     from shoal.daemon.store import StateStore
 
+    ledger = ledger_rows(folder / "state" / "state.db")
     store = StateStore(folder / "state" / "state.db")
     try:
-        ledger = store.db.execute(
-            "SELECT name, outcome, model_version FROM ledger ORDER BY id").fetchall()
         cp = store.latest_checkpoint()
         version = store.model_version
     finally:
@@ -102,11 +118,24 @@ def _snapshot(folder: Path):
 
 @pytest.fixture(scope="module")
 def reference(tmp_path_factory):
+    """``shoal ingest`` of the drops, oldest first, in a state folder of its own."""
     folder = tmp_path_factory.mktemp("reference")
-    with InProcessService(folder, timeout=60, warmup_rows=600) as svc:
-        for i, name in enumerate(NAMES):
-            assert svc.drop(synthetic_table(i, ROWS[i], SEED), name).outcome == "committed"
+    cfg = write_config(folder, warmup_rows=600)
+    (folder / "files").mkdir()
+    files = [write_drop(synthetic_table(i, ROWS[i], SEED), folder / "files", name, i)
+             for i, name in enumerate(NAMES)]
+    ingest_in_order(cfg, files, timeout=120)
     return _snapshot(folder)
+
+
+def _same_as(reference, folder: Path) -> None:
+    ledger, version, arrays, labels = _snapshot(folder)
+    ref_ledger, ref_version, ref_arrays, ref_labels = reference
+    assert ledger == ref_ledger and version == ref_version == 3   # none lost, none twice
+    assert arrays.keys() == ref_arrays.keys()
+    for key in arrays:
+        np.testing.assert_array_equal(arrays[key], ref_arrays[key])
+    assert labels == ref_labels
 
 
 POINTS = ["fsync_labels", "fsync_outbox", "replace_labels", "sqlite_insert", "sqlite_commit",
@@ -145,13 +174,48 @@ def test_a_failed_write_commits_nothing_and_is_retried(tmp_path, monkeypatch, re
         assert (r.name, r.outcome) == (NAMES[2], "committed")
         counts = dict(svc.service.counts)
     assert fault.hits >= tries and counts["failed"] == fault.hits
-    ledger, version, arrays, labels = _snapshot(tmp_path)
-    ref_ledger, ref_version, ref_arrays, ref_labels = reference
-    assert ledger == ref_ledger and version == ref_version == 3   # none lost, none twice
-    assert arrays.keys() == ref_arrays.keys()
-    for key in arrays:
-        np.testing.assert_array_equal(arrays[key], ref_arrays[key])
-    assert labels == ref_labels
+    _same_as(reference, tmp_path)
+
+
+def _fail_opening(fault: Fault, folder: str, error: int, monkeypatch) -> None:
+    """``os.open`` of a file in ``folder`` fails with ``error`` while ``fault`` is armed."""
+    real = os.open
+
+    def failing_open(path, *args, **kw):
+        if fault.armed and os.fspath(path).startswith(folder):
+            fault.fire(OSError(error, os.strerror(error), os.fspath(path)))
+        return real(path, *args, **kw)
+
+    monkeypatch.setattr(os, "open", failing_open)
+
+
+@pytest.mark.parametrize("fault_kind", ["full_disk", "unwritable_outbox", "input_emfile",
+                                        "input_eacces"])
+def test_after_a_fault_clears_the_failed_input_goes_before_newer_ones(
+        tmp_path, monkeypatch, reference, fault_kind):
+    import shoal.daemon.service as service_module
+
+    monkeypatch.setattr(service_module, "_RETRY_FIRST", 1.0)
+    fault = Fault()
+    with InProcessService(tmp_path, timeout=60, warmup_rows=600) as svc:
+        assert svc.drop(synthetic_table(0, ROWS[0], SEED), NAMES[0]).outcome == "committed"
+        if fault_kind == "full_disk":
+            _inject("replace_labels", fault, svc, monkeypatch)
+        else:
+            folder, error = {"unwritable_outbox": (svc.layout.outbox, errno.EACCES),
+                             "input_emfile": (svc.layout.inbox, errno.EMFILE),
+                             "input_eacces": (svc.layout.inbox, errno.EACCES)}[fault_kind]
+            _fail_opening(fault, str(folder), error, monkeypatch)
+        fault.armed = True
+        write_drop(synthetic_table(1, ROWS[1], SEED), svc.layout.inbox, NAMES[1])
+        wait_until(lambda: svc.service.counts.get("failed", 0) >= 1, 30, "a failed try")
+        assert len(svc.results) == 1 and svc.reader.model_version == 1
+        fault.armed = False   # cleared: a newer drop arrives before the retry is due
+        write_drop(synthetic_table(2, ROWS[2], SEED), svc.layout.inbox, NAMES[2])
+        done = [svc.wait_results(2), svc.wait_results(3)]
+        assert [(r.name, r.outcome) for r in done] == [(NAMES[1], "committed"),
+                                                       (NAMES[2], "committed")]
+    _same_as(reference, tmp_path)
 
 
 def _digest(svc, name: str) -> str:

@@ -66,12 +66,12 @@ def test_healthz_turns_unhealthy_when_the_worker_stalls_on_an_input(tmp_path):
         release = threading.Event()
         entered = threading.Event()
 
-        def stuck(path, in_inbox=True):             # an input that never makes progress
+        def stuck(path, in_inbox):                  # an input that never makes progress
             entered.set()
             release.wait(20)
             return Result("vanished", path.name)
 
-        run.pipeline.process = stuck
+        run.pipeline._process_one = stuck
         wait_until(lambda: run.healthz()[0] == 200, 30, "a healthy worker")
         write_drop(synthetic_table(0, 50, seed=3), run.layout.inbox, "stuck.csv")
         assert entered.wait(30)

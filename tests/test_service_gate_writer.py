@@ -72,8 +72,9 @@ def test_change_time_after_last_write_marks_a_move_from_outside(tmp_path):
     assert gate.check(tmp_path / "a.csv").verdict is Verdict.READY
 
 
-def test_parquet_waits_for_its_footer_until_settled(tmp_path):
-    gate, mono, wall = _gate(settle=5.0)
+def test_parquet_without_its_footer_waits_as_incomplete_then_is_passed_on(tmp_path):
+    mono, wall = Clock(), Clock(0.0)
+    gate = ReadinessGate(5.0, incomplete_seconds=60.0, clock=mono, wall=wall)
     p = tmp_path / "a.parquet"
     pq.write_table(pa.table({"x": [1.0, 2.0]}), p)
     data = p.read_bytes()
@@ -83,7 +84,23 @@ def test_parquet_waits_for_its_footer_until_settled(tmp_path):
     assert gate.check(p).verdict is Verdict.WAIT
     mono.t += 6
     wall.t += 6
-    assert gate.check(p).verdict is Verdict.READY  # settled: the reader will quarantine it
+    d = gate.check(p)                            # settled, still no footer: incomplete
+    assert d.verdict is Verdict.WAIT and d.incomplete, d
+    mono.t += 55
+    wall.t += 55
+    assert gate.check(p).verdict is Verdict.READY  # given up: the reader quarantines it
+    q = tmp_path / "b.parquet"
+    q.write_bytes(data[:-6])
+    wall.t = os.stat(q).st_mtime_ns / 1e9 + 30   # paused past the settle time
+    assert gate.check(q).verdict is Verdict.WAIT
+    q.write_bytes(data)                          # the writer finished it
+    mono.t += 100
+    wall.t = os.stat(q).st_mtime_ns / 1e9 + 6
+    assert gate.check(q).verdict is Verdict.READY
+    r = tmp_path / "not-parquet.parquet"         # no leading magic: no Parquet being written
+    r.write_bytes(b"key,ts\n1,2\n")
+    wall.t = os.stat(r).st_mtime_ns / 1e9 + 6
+    assert gate.check(r).verdict is Verdict.READY  # settled: the reader refuses it at once
 
 
 def test_ignored_refused_and_gone(tmp_path):

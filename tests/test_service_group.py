@@ -115,19 +115,21 @@ def test_a_failed_group_commit_keeps_nothing_and_is_redone(tmp_path, one_by_one,
 def test_a_stop_commits_the_inputs_before_it(tmp_path):
     layout, store, pipeline = _open(tmp_path)
     paths = _drops(layout.inbox)[:4]
-    real = pipeline.process
+    real = pipeline._process_one
 
-    def stop_after_two(path, **kw):
-        result = real(path, **kw)
+    def stop_after_two(path, in_inbox):
+        result = real(path, in_inbox)
         if path == paths[1]:
             pipeline.stop.set()
         return result
 
-    pipeline.process = stop_after_two
+    pipeline._process_one = stop_after_two
     results = pipeline.process_group(paths)
     assert [r.name for r in results] == ["d0.csv", "d1.parquet"]
     assert [e.name for e in store.ledger()] == ["d0.csv", "d1.parquet"]
     assert not paths[0].exists() and not paths[1].exists()
     assert paths[2].exists() and paths[3].exists()
     assert np.isfinite(pipeline.state.mixture.weights).all()
+    # a stop is not a death: no attempt is left to count against the inputs not taken
+    assert store.db.execute("SELECT COUNT(*) FROM attempts").fetchone()[0] == 0
     store.close()
