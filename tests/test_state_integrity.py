@@ -140,8 +140,8 @@ def test_a_damaged_checkpoint_is_state_unusable_never_a_model_or_a_traceback(tmp
 
 
 def _as_version_2(db):
-    """Undo what the checkpoint checksums (schema version 4) and the alert words (3)
-    changed, as a version-2 shoal left the store."""
+    """Undo what schema versions 3-5 changed (the alert words, the checkpoint checksums,
+    the attempts table), as a version-2 shoal left the store."""
     con = sqlite3.connect(db)
     with con:
         con.execute("ALTER TABLE checkpoints DROP COLUMN checksum")
@@ -159,7 +159,7 @@ def test_a_version_2_store_migrates_and_its_checkpoints_get_checksums(tmp_path, 
     _as_version_2(db)
     store = StateStore(db)
     try:
-        assert store._meta("schema_version") == str(store_module.SCHEMA_VERSION) == "4"
+        assert store._meta("schema_version") == str(store_module.SCHEMA_VERSION) == "5"
         cp = store.latest_checkpoint()
         sums = dict(store.db.execute("SELECT name, checksum FROM checkpoint_arrays WHERE "
                                      "version = ?", (cp.version,)))
