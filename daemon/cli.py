@@ -234,7 +234,7 @@ def _cmd_segments(args) -> int:
     return 0
 
 
-def check_config(settings: Settings) -> str | None:
+def contract_note(settings: Settings) -> str | None:
     """Everything ``shoal config`` checks beyond loading: the model's contract in an
     existing state store (:mod:`shoal.daemon.contract`), read-only. ConfigError (exit 2)
     names each key that differs; returns a line saying what was compared, or None."""
@@ -257,7 +257,7 @@ def check_config(settings: Settings) -> str | None:
 
 def _cmd_config(args) -> int:
     settings = load_config(args.config)
-    note = check_config(settings)
+    note = contract_note(settings)
     print(f"# {args.config}: valid. Effective configuration:")
     if note:
         print(note)
