@@ -18,11 +18,12 @@ ends in the same model.
 from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
-from functools import cached_property
+from functools import cached_property, wraps
 
 import numpy as np
 
-from . import fused
+from . import fused, missing
+from .missing import Gaps
 from .covariance import (
     COVARIANCE_TYPES,
     FAMILIES,
@@ -44,6 +45,42 @@ _TINY = 10.0 * np.finfo(np.float64).eps
 _DESIGN_KIND = {"full": 0, "diag": 1, "spherical": 2}   # core/_kernels.c design()
 _PARAMETERS = frozenset({"weights", "means", "covariances", "prec_chol", "log_det"})
 _NOT_FINITE = "X contains NaN or infinite values; drop or mark those rows first"
+
+
+# ------------------------------------------------------ rows with missing features
+class _MissingValues(ModelError):
+    """Raised inside the complete-row paths when a row holds NaN; the public methods
+    catch it and start again with the rows' gaps filled and marked (:func:`_gap_aware`).
+    A ModelError, so that a path that does not handle gaps refuses them as before."""
+
+
+def _not_finite(X) -> ModelError:
+    return _MissingValues(_NOT_FINITE) if np.isnan(X).any() else ModelError(_NOT_FINITE)
+
+
+def _gap_aware(method):
+    """Run ``method`` on complete rows as it is (no extra pass over them); if a row has
+    a missing feature, run it again on the rows filled at the centre, with ``_gaps``."""
+    @wraps(method)
+    def wrapper(self, X, *args, _gaps=None, **kwargs):
+        if _gaps is not None:
+            return method(self, X, *args, _gaps=_gaps, **kwargs)
+        try:
+            return method(self, X, *args, **kwargs)
+        except _MissingValues:
+            filled, gaps = missing.fill(self._rows(X, check=False), self.center)
+            return method(self, filled, *args, _gaps=gaps, **kwargs)
+    return wrapper
+
+
+def _without_gaps(row_w, gaps) -> np.ndarray:
+    """The row weights with the rows that have gaps at zero (the complete-row kernels
+    then learn nothing from them; :meth:`Mixture._learn_gaps` does)."""
+    if not len(gaps):
+        return row_w
+    w = row_w.copy()
+    w[gaps.rows] = 0.0
+    return w
 
 
 @dataclass(frozen=True)
@@ -227,7 +264,7 @@ class Mixture:
         # a finite sum means finite rows (one pass, no temporary); if the sum is not
         # finite, look row by row (a sum of huge finite values can overflow)
         if check and not np.isfinite(np.sum(X)) and not np.all(np.isfinite(X)):
-            raise ModelError(_NOT_FINITE)
+            raise _not_finite(X)
         return X
 
     def standardise(self, X) -> np.ndarray:
@@ -241,6 +278,11 @@ class Mixture:
         # (K, n) layout: every reduction over components runs along contiguous rows.
         resp = out.resp_kn[:, lo:hi]
         self.family.log_joint(A, operator, out=resp)
+        self._normalise(resp, out, lo, hi)
+
+    def _normalise(self, resp, out, lo, hi):
+        """Log-joint ``resp`` (K, hi - lo) -> responsibilities in place; the other scores
+        of rows ``lo:hi`` into ``out``."""
         top = np.max(resp, axis=0)
         resp -= top
         # The most responsible component now sits at exactly 0 (first one on ties).
@@ -332,7 +374,7 @@ class Mixture:
             b = min(a + nb, hi)
             m = b - a
             if not kern.design(X, a - first, m, center, scale, kind, A):
-                raise ModelError(_NOT_FINITE)
+                raise _not_finite(X)
             Ab = A[:m]
             if tiled:
                 kern.log_joint(Ab, packed if full else BT, const if full else None, D, R, a)
@@ -405,7 +447,8 @@ class Mixture:
     def _log_scale_sum(self):
         return float(np.sum(np.log(self.scale)))
 
-    def score(self, X) -> Scores:
+    @_gap_aware
+    def score(self, X, *, _gaps=None) -> Scores:
         """Score rows without learning from them.
 
         Rows are scored in blocks of a few thousand, so memory beyond the outputs does
@@ -414,17 +457,20 @@ class Mixture:
         Parameters
         ----------
         X : array-like of shape (n_samples, n_features)
-            Finite rows in the data's own units.
+            Rows in the data's own units; NaN marks a missing feature (the row is
+            scored by the marginal over its observed features).
         """
         X = self._rows(X, check=not fused.enabled())
         out = _ScoreBuffer(X.shape[0], self.n_components)
         if fused.enabled():
             self._fused_span(X, 0, X.shape[0], out)
-            return out.scores(self.ids)
-        operator = self._scoring_operator
-        rows = _Standardiser(self.center, self.scale)
-        for lo in range(0, X.shape[0], SPAN_ROWS):
-            self._score_span(X, lo, min(lo + SPAN_ROWS, X.shape[0]), out, operator, rows)
+        else:
+            operator = self._scoring_operator
+            rows = _Standardiser(self.center, self.scale)
+            for lo in range(0, X.shape[0], SPAN_ROWS):
+                self._score_span(X, lo, min(lo + SPAN_ROWS, X.shape[0]), out, operator, rows)
+        if _gaps is not None:
+            self._score_gaps(X, _gaps, out)
         return out.scores(self.ids)
 
     def _score_z(self, Z, moments_weight=None):
@@ -551,7 +597,8 @@ class Mixture:
         out.update(avg_s0=avg0, avg_s1=avg1, avg_s2=avg2, avg_count=count)
         return out
 
-    def learn(self, X) -> tuple["Mixture", Scores]:
+    @_gap_aware
+    def learn(self, X, *, _gaps=None) -> tuple["Mixture", Scores]:
         """Score rows, then learn from them with stepwise EM.
 
         Rows are taken in order. Each row is scored with the parameters in force at
@@ -561,6 +608,8 @@ class Mixture:
         Parameters
         ----------
         X : array-like of shape (n_samples, n_features)
+            NaN marks a missing feature: the row is scored by the marginal over its
+            observed features and learned from by EM with missing data.
 
         Returns
         -------
@@ -583,12 +632,16 @@ class Mixture:
             # they are scored in cache-sized blocks, then learned from in one go
             take = min(n - pos, self.refresh_rows - at % self.refresh_rows)
             row_w, keep = self.schedule.row_weights(at, take)
+            fast_w = row_w if _gaps is None else _without_gaps(row_w, _gaps.within(pos, pos + take))
             if jit:
-                b0, b1, b2 = model._fused_span(X, pos, pos + take, out, True, row_w,
+                b0, b1, b2 = model._fused_span(X, pos, pos + take, out, True, fast_w,
                                                self.resp_floor)
             else:
                 A = model._score_span(X, pos, pos + take, out, model._scoring_operator, rows)
-                b0, b1, b2 = model._accumulate(A, out.resp_kn[:, pos : pos + take], row_w)
+                b0, b1, b2 = model._accumulate(A, out.resp_kn[:, pos : pos + take], fast_w)
+            if _gaps is not None:
+                b0, b1, b2 = model._learn_gaps(X, pos, pos + take, _gaps, row_w, out,
+                                               (b0, b1, b2))
             s0 = keep * s0 + b0
             s1 = keep * s1 + b1
             s2 = keep * s2 + b2
@@ -600,14 +653,18 @@ class Mixture:
         model = model._evolve(s0=s0, s1=s1, s2=s2, sumsq=sumsq, n_rows=at)
         return model, out.scores(self.ids)
 
-    def em_step(self, X) -> tuple["Mixture", float]:
+    @_gap_aware
+    def em_step(self, X, *, _gaps=None) -> tuple["Mixture", float]:
         """One full-batch EM iteration (step size 1) on ``X``.
 
         Returns the mixture whose statistics are the batch averages and whose
         parameters are derived from them, and the mean log-density per row of ``X``
-        under the parameters *before* the step (data units).
+        under the parameters *before* the step (data units). NaN marks a missing
+        feature (EM with missing data).
         """
         Z = self.standardise(X)
+        if _gaps is not None:
+            return self._em_step_gaps(Z, _gaps)
         return self._em_step(Z)
 
     def _em_step(self, Z):
@@ -619,6 +676,70 @@ class Mixture:
         params = self._derive(s0, s1, s2, sumsq)
         new = replace(self, s0=s0, s1=s1, s2=s2, sumsq=sumsq, **params)
         return new, float(np.mean(scores.log_density))
+
+    # ---------------------------------------------- rows with missing features
+    def _gap_block(self, X, gaps, out, lo, learn):
+        """Score the rows ``lo + gaps.rows`` of the filled data-unit rows ``X`` by their
+        marginals, into ``out``; with ``learn``, also return their E-step pieces."""
+        rows = lo + gaps.rows
+        Zf = (X[rows] - self.center) / self.scale
+        L, aux = missing.gap_log_joint(self, Zf, gaps.mask, learn)
+        sub = _ScoreBuffer(rows.size, self.n_components)
+        sub.resp_kn[:] = L
+        self._normalise(sub.resp_kn, sub, 0, rows.size)
+        out.resp_kn[:, rows] = sub.resp_kn
+        out.log_density[rows] = sub.log_density
+        out.component[rows] = sub.component
+        out.confidence[rows] = sub.confidence
+        return sub.resp_kn, aux
+
+    def _score_gaps(self, X, gaps, out):
+        """Overwrite the scores of the rows with gaps (scored filled) by their marginals."""
+        for a in range(0, len(gaps), missing.BLOCK_ROWS):
+            part = Gaps(gaps.rows[a : a + missing.BLOCK_ROWS],
+                        gaps.mask[a : a + missing.BLOCK_ROWS])
+            self._gap_block(X, part, out, 0, learn=False)
+
+    def _learn_gaps(self, X, lo, hi, gaps, row_w, out, stats):
+        """Add the E-step statistics of the rows with gaps in ``lo:hi`` (weights
+        ``row_w`` of that span) to ``stats``; their scores go into ``out``."""
+        part = gaps.within(lo, hi)
+        if not len(part):
+            return stats
+        resp, aux = self._gap_block(X, part, out, lo, learn=True)
+        W = resp * row_w[part.rows]
+        if self.resp_floor > 0.0:
+            W[resp < self.resp_floor] = 0.0
+        extra = missing.gap_moments(self, W, aux)
+        return tuple(a + b for a, b in zip(stats, extra))
+
+    def _em_step_gaps(self, Z, gaps):
+        """:meth:`_em_step` on standardised rows with gaps (filled at zero): the complete
+        rows through the ordinary batch E-step, the others by EM with missing data."""
+        n = Z.shape[0]
+        complete = np.ones(n, dtype=bool)
+        complete[gaps.rows] = False
+        log_density = np.empty(n)
+        if complete.any():
+            out, stats = self._score_z(np.ascontiguousarray(Z[complete]), moments_weight=1.0 / n)
+            log_density[complete] = out.log_density
+        else:
+            stats = (np.zeros_like(self.s0), np.zeros_like(self.s1), np.zeros_like(self.s2))
+        out = _ScoreBuffer(n, self.n_components)
+        # in standardised units: the gap kernels add back log-scale terms of the missing
+        # features that standardised rows do not carry
+        unit = self._evolve(center=np.zeros_like(self.center), scale=np.ones_like(self.scale))
+        for a in range(0, len(gaps), missing.BLOCK_ROWS):
+            part = Gaps(gaps.rows[a : a + missing.BLOCK_ROWS],
+                        gaps.mask[a : a + missing.BLOCK_ROWS])
+            resp, aux = unit._gap_block(Z, part, out, 0, learn=True)
+            stats = tuple(x + y for x, y in zip(stats, missing.gap_moments(self, resp / n, aux)))
+        log_density[gaps.rows] = (out.log_density[gaps.rows] - self._log_scale_sum
+                                  + gaps.mask @ np.log(self.scale))
+        s0, s1, s2 = stats
+        params = self._derive(s0, s1, s2, 1.0 / n)
+        new = replace(self, s0=s0, s1=s1, s2=s2, sumsq=1.0 / n, **params)
+        return new, float(np.mean(log_density))
 
     # ------------------------------------------------------------- reporting
     def data_means(self) -> np.ndarray:

@@ -1,0 +1,234 @@
+"""Rows with missing features: marginal scoring and EM with missing data.
+
+A missing feature is NaN in the rows handed to :class:`~shoal.core.mixture.Mixture`.
+For a row with observed features ``o`` and missing ``m``, component ``k`` scores the
+row by its Gaussian marginal over ``o`` (mean ``mu_o``, covariance ``Sigma_oo``), and
+the E-step of learning completes the row with the conditional mean and adds the
+conditional covariance to the second moment (Ghahramani & Jordan 1994, "Supervised
+learning from incomplete data via an EM approach"; Little & Rubin, *Statistical
+Analysis with Missing Data*, ch. 11):
+
+    E[z_m | z_o, k]        = mu_m + Sigma_mo Sigma_oo^-1 (z_o - mu_o)
+    Cov[z_m | z_o, k]      = Sigma_mm - Sigma_mo Sigma_oo^-1 Sigma_om
+    E[z z^T | z_o, k]      = zhat zhat^T + [[0, 0], [0, Cov[z_m | z_o, k]]]
+
+The full type works from the precision ``Lam = Sigma^-1 = U U^T`` rather than from
+``Sigma_oo^-1``, so that rows need no factorisation per missingness pattern: with the
+missing coordinates filled by any value (zero here, the warm-up mean) and
+``d = z - mu``, ``g = (Lam d)_m`` and ``H = Lam_mm``,
+
+    (z_o - mu_o)^T Sigma_oo^-1 (z_o - mu_o) = d^T Lam d - g^T H^-1 g
+    log det Sigma_oo = log det Sigma + log det H
+    E[z_m | z_o] = z_m - H^-1 g,         Cov[z_m | z_o] = H^-1
+
+(the Schur complement of ``Lam_mm`` in ``Lam`` is ``Sigma_oo^-1``). So the log-density
+of the filled row by the ordinary scoring kernels, plus a correction that needs only the
+``|m| x |m|`` block ``H``, is the marginal log-density. Rows are grouped by how many
+features they miss: one and two in closed form, more by batched LAPACK. The diag and
+spherical types drop the missing terms from the sum (``H`` is diagonal).
+
+Complete rows never come here: the mixture sends them down its ordinary paths and only
+the rows with a gap, filled, through these kernels.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .covariance import LOG_2PI
+from .errors import ModelError
+
+__all__ = ["Gaps", "fill", "gap_log_joint", "gap_moments"]
+
+BLOCK_ROWS = 2048   # incomplete rows handled at once: (K, rows, D) arrays stay small
+
+
+@dataclass(frozen=True)
+class Gaps:
+    """Where a block of rows has missing features.
+
+    Attributes
+    ----------
+    rows : ndarray of shape (n_gappy,)
+        Increasing indices of the rows with at least one missing feature.
+    mask : ndarray of shape (n_gappy, n_features)
+        True where that row's feature is missing.
+    """
+
+    rows: np.ndarray
+    mask: np.ndarray
+
+    def within(self, lo: int, hi: int) -> "Gaps":
+        """The gaps of rows ``lo:hi``, indexed from ``lo``."""
+        a, b = np.searchsorted(self.rows, [lo, hi])
+        return Gaps(self.rows[a:b] - lo, self.mask[a:b])
+
+    def __len__(self) -> int:
+        return int(self.rows.shape[0])
+
+
+def fill(X, center) -> tuple[np.ndarray, Gaps | None]:
+    """``X`` with each NaN replaced by the feature's ``center``, and where they were.
+
+    ``X`` is float64 of shape (n_samples, n_features). Returns ``(X, None)`` when no value
+    is missing. Infinite values are not missing: they raise :class:`ModelError`.
+    """
+    nan = np.isnan(X)
+    gappy = np.flatnonzero(nan.any(axis=1))
+    if gappy.size == 0:
+        return X, None
+    if np.isinf(X).any():
+        raise ModelError("X contains infinite values; drop or mark those rows first "
+                         "(NaN marks a missing feature)")
+    filled = np.where(nan, center, X)
+    return filled, Gaps(gappy, nan[gappy])
+
+
+# ------------------------------------------------------------------- full type
+def _precision(model):
+    """``Lam_k = U_k U_k^T`` and ``Lam_k mu_k``, shapes (K, D, D) and (K, D)."""
+    U = model.prec_chol
+    lam = U @ np.swapaxes(U, 1, 2)
+    return lam, np.einsum("kde,ke->kd", lam, model.means)
+
+
+def _groups(mask):
+    """Rows grouped by how many features they miss: ``(r, rows, cols)`` with ``cols`` of
+    shape (len(rows), r) listing each row's missing features in increasing order."""
+    count = mask.sum(axis=1)
+    for r in np.unique(count):
+        rows = np.flatnonzero(count == r)
+        cols = np.nonzero(mask[rows])[1].reshape(rows.size, r)
+        yield int(r), rows, cols
+
+
+def _solve_small(H, g):
+    """``H^-1 g``, ``H^-1`` and ``log det H`` for stacks of small positive-definite ``H``
+    of shape (..., r, r), ``g`` (..., r); closed forms for r = 1 and 2."""
+    r = H.shape[-1]
+    if r == 1:
+        inv = 1.0 / H
+        return g * inv[..., 0], inv, np.log(H[..., 0, 0])
+    if r == 2:
+        a, b, c = H[..., 0, 0], H[..., 0, 1], H[..., 1, 1]
+        det = a * c - b * b
+        inv = np.empty_like(H)
+        inv[..., 0, 0], inv[..., 1, 1] = c / det, a / det
+        inv[..., 0, 1] = inv[..., 1, 0] = -b / det
+        return np.einsum("...rs,...s->...r", inv, g), inv, np.log(det)
+    chol = np.linalg.cholesky(H)
+    inv = np.linalg.inv(H)
+    log_det = 2.0 * np.sum(np.log(np.diagonal(chol, axis1=-2, axis2=-1)), axis=-1)
+    return np.einsum("...rs,...s->...r", inv, g), inv, log_det
+
+
+def _full_gaps(model, Z, mask, learn):
+    """Correction (K, n) to the filled rows' log-joint and, with ``learn``, the completed
+    rows (K, n, D) and the conditional covariances by group."""
+    lam, lam_mu = _precision(model)
+    K, n, D = model.n_components, Z.shape[0], Z.shape[1]
+    corr = np.empty((K, n))
+    zhat = np.broadcast_to(Z, (K, n, D)).copy() if learn else None
+    conds = []
+    for r, rows, cols in _groups(mask):
+        Zr = Z[rows]
+        g = np.einsum("knrd,nd->knr", lam[:, cols, :], Zr) - lam_mu[:, cols]
+        H = lam[:, cols[:, :, None], cols[:, None, :]]
+        step, inv, log_det = _solve_small(H, g)
+        corr[:, rows] = 0.5 * (r * LOG_2PI - log_det + np.sum(g * step, axis=-1))
+        if learn:
+            # E[z_m | z_o, k] = z_m - H^-1 g, written into each row's missing slots
+            kk = np.arange(K)[:, None, None]
+            zhat[kk, rows[None, :, None], cols[None]] -= step
+            conds.append((rows, cols, inv))
+    return corr, zhat, conds
+
+
+def _full_second(W, zhat, conds, D):
+    s2 = np.matmul(np.swapaxes(zhat * W[:, :, None], 1, 2), zhat)
+    K = W.shape[0]
+    flat = s2.reshape(K, D * D)
+    for rows, cols, inv in conds:
+        # sum_i W_ki Cov_ki at (m_i, m_i): one bincount per component over flat indices
+        at = (cols[:, :, None] * D + cols[:, None, :]).reshape(rows.size, -1)
+        wk = W[:, rows, None] * inv.reshape(K, rows.size, -1)
+        for k in range(K):
+            flat[k] += np.bincount(at.ravel(), weights=wk[k].ravel(), minlength=D * D)
+    return s2
+
+
+# ------------------------------------------------------- diag and spherical types
+def _diag_gaps(model, Z, mask, learn):
+    K, D = model.n_components, Z.shape[1]
+    prec = model.prec_chol ** 2
+    if prec.ndim == 1:
+        prec = np.repeat(prec[:, None], D, axis=1)
+    d = Z[None, :, :] - model.means[:, None, :]
+    term = LOG_2PI - np.log(prec)[:, None, :] + prec[:, None, :] * d * d
+    corr = 0.5 * np.einsum("knd,nd->kn", term, mask.astype(np.float64))
+    if not learn:
+        return corr, None, None
+    # the missing coordinates complete to the component's mean, with its variance
+    zhat = np.where(mask[None], model.means[:, None, :], Z[None])
+    cond_var = mask[None] / prec[:, None, :]
+    return corr, zhat, cond_var
+
+
+def _diag_second(W, zhat, cond_var, D):
+    return np.einsum("kn,knd->kd", W, zhat * zhat + cond_var)
+
+
+_GAPS = {"full": _full_gaps, "diag": _diag_gaps, "spherical": _diag_gaps}
+
+
+def _scale_term(model, mask):
+    """``sum(log scale[m])`` per row: the mixture subtracts the log-scale of every feature,
+    a marginal only those of the observed ones."""
+    return mask @ np.log(model.scale)
+
+
+def gap_log_joint(model, Zf, mask, learn=False):
+    """``log w_k + log N(z_o | mu_ko, Sigma_koo)`` for rows with gaps, standardised units.
+
+    Parameters
+    ----------
+    model : Mixture
+    Zf : ndarray of shape (n_samples, n_features)
+        Standardised rows with the missing features filled by zero.
+    mask : ndarray of shape (n_samples, n_features)
+        True where a feature is missing.
+    learn : bool
+        Also return what the E-step needs.
+
+    Returns
+    -------
+    log_joint : ndarray of shape (n_components, n_samples)
+        Plus ``sum(log scale[m])`` per row, so that subtracting the log-scale of every
+        feature (as the mixture does) leaves the data-unit marginal.
+    aux : tuple or None
+        With ``learn``: the completed rows and the conditional covariances.
+    """
+    family = model.family
+    base = family.log_joint(family.design(Zf), model._scoring_operator)
+    corr, zhat, cond = _GAPS[model.covariance](model, Zf, mask, learn)
+    base += corr
+    base += _scale_term(model, mask)
+    return base, ((zhat, cond) if learn else None)
+
+
+def gap_moments(model, W, aux):
+    """Statistics ``(s0, s1, s2)`` of rows with gaps for the E-step weights ``W``
+    (n_components, n_samples): the completed rows' moments plus the conditional
+    covariances in the second moment."""
+    zhat, cond = aux
+    D = model.n_features
+    s0 = W.sum(axis=1)
+    s1 = np.einsum("kn,knd->kd", W, zhat)
+    if model.covariance == "full":
+        return s0, s1, _full_second(W, zhat, cond, D)
+    s2 = _diag_second(W, zhat, cond, D)
+    if model.covariance == "spherical":
+        s2 = s2.sum(axis=1) / D
+    return s0, s1, s2
