@@ -40,7 +40,7 @@ import numpy as np
 from .covariance import LOG_2PI
 from .errors import ModelError
 
-__all__ = ["Gaps", "fill", "gap_log_joint", "gap_moments"]
+__all__ = ["Gaps", "find", "fill", "gap_log_joint", "gap_moments", "pack", "Packed", "Bound"]
 
 BLOCK_ROWS = 2048   # incomplete rows handled at once: (K, rows, D) arrays stay small
 
@@ -69,21 +69,36 @@ class Gaps:
         return int(self.rows.shape[0])
 
 
-def fill(X, center) -> tuple[np.ndarray, Gaps | None]:
-    """``X`` with each NaN replaced by the feature's ``center``, and where they were.
+def find(X, kern=None) -> Gaps | None:
+    """Where ``X`` (float64, shape (n_samples, n_features)) has NaN; None if nowhere.
 
-    ``X`` is float64 of shape (n_samples, n_features). Returns ``(X, None)`` when no value
-    is missing. Infinite values are not missing: they raise :class:`ModelError`.
+    One pass finds the rows to look at: the compiled ``kern.nonfinite_rows`` if given,
+    else numpy's row sums (a NaN or an infinity makes the sum non-finite). Infinite
+    values are not missing: they raise :class:`ModelError`.
     """
-    nan = np.isnan(X)
-    gappy = np.flatnonzero(nan.any(axis=1))
-    if gappy.size == 0:
-        return X, None
-    if np.isinf(X).any():
+    if kern is not None and X.flags.c_contiguous:
+        suspect = np.empty(X.shape[0], dtype=np.int64)
+        suspect = suspect[: kern.nonfinite_rows(X, suspect)]
+    else:
+        suspect = np.flatnonzero(~np.isfinite(np.add.reduce(X, axis=1)))
+    if suspect.size == 0:
+        return None
+    sub = X[suspect]
+    if np.isinf(sub).any():
         raise ModelError("X contains infinite values; drop or mark those rows first "
                          "(NaN marks a missing feature)")
-    filled = np.where(nan, center, X)
-    return filled, Gaps(gappy, nan[gappy])
+    nan = np.isnan(sub)
+    keep = nan.any(axis=1)     # the others only overflowed their sum: finite rows
+    if not keep.any():
+        return None
+    return Gaps(suspect[keep], nan[keep])
+
+
+def fill(X, center, gaps: Gaps) -> np.ndarray:
+    """A copy of ``X`` with its missing values at the feature's ``center``."""
+    filled = X.copy()
+    filled[gaps.rows] = np.where(gaps.mask, center, X[gaps.rows])
+    return filled
 
 
 # ------------------------------------------------------------------- full type
@@ -232,3 +247,90 @@ def gap_moments(model, W, aux):
     if model.covariance == "spherical":
         s2 = s2.sum(axis=1) / D
     return s0, s1, s2
+
+
+# ------------------------------------------------------------------ compiled path
+_KIND = {"full": 0, "diag": 1, "spherical": 2}
+
+
+@dataclass(frozen=True)
+class Packed:
+    """Gaps laid out for the compiled kernels (``gap_log_joint``, ``gap_moments`` in
+    core/_kernels_gaps.h): the rows, their missing features by offsets, and room for the
+    E-step's steps and conditional covariances."""
+
+    rows: np.ndarray     # (n_gappy,) int64, increasing
+    off: np.ndarray      # (n_gappy + 1,) int64: row g misses cols[off[g]:off[g+1]]
+    cols: np.ndarray     # (off[-1],) int64
+    hoff: np.ndarray     # (n_gappy + 1,) int64: offsets of each row's H^-1 / K
+    step: np.ndarray     # (K * off[-1],)
+    hinv: np.ndarray     # (K * hoff[-1],)
+
+
+def pack(gaps: Gaps, covariance: str, n_components: int) -> Packed:
+    """:class:`Packed` for ``gaps`` of a mixture of that type and size."""
+    count = gaps.mask.sum(axis=1).astype(np.int64)
+    off = np.zeros(len(gaps) + 1, dtype=np.int64)
+    np.cumsum(count, out=off[1:])
+    hoff = off
+    if covariance == "full":
+        hoff = np.zeros_like(off)
+        np.cumsum(count * count, out=hoff[1:])
+    cols = np.nonzero(gaps.mask)[1].astype(np.int64)
+    return Packed(gaps.rows.astype(np.int64), off, cols, hoff,
+                  np.empty(n_components * int(off[-1])), np.empty(n_components * int(hoff[-1])))
+
+
+class Bound:
+    """:class:`Packed` gaps with one parameter set's precision, for one span of rows."""
+
+    __slots__ = ("packed", "kind", "lam", "lam_mu", "half_const", "log_scale", "kern")
+
+    def __init__(self, packed: Packed, model, data_units: bool, kern):
+        self.packed, self.kern = packed, kern
+        self.kind = _KIND[model.covariance]
+        D = model.n_features
+        if model.covariance == "full":
+            self.lam, self.lam_mu = (np.ascontiguousarray(a) for a in _precision(model))
+        else:
+            prec = model.prec_chol ** 2
+            self.lam = np.ascontiguousarray(np.broadcast_to(
+                prec[:, None] if prec.ndim == 1 else prec, (model.n_components, D)))
+            self.lam_mu = np.ascontiguousarray(model.means)
+        diag = self.lam if self.lam.ndim == 2 else np.diagonal(self.lam, axis1=1, axis2=2)
+        # a feature missing alone: 0.5 (log 2 pi - log Lam_jj) of the correction
+        self.half_const = 0.5 * (LOG_2PI - np.log(diag))
+        self.log_scale = np.log(model.scale) if data_units else np.zeros(D)
+
+    def _range(self, lo, hi):
+        a, b = np.searchsorted(self.packed.rows, [lo, hi])
+        return int(a), int(b)
+
+    def fix(self, A, lo):
+        """Design rows ``A`` from row ``lo`` as if the missing values were at the centre
+        (the design kernel wrote NaN there)."""
+        ga, gb = self._range(lo, lo + A.shape[0])
+        if ga < gb:
+            p = self.packed
+            self.kern.gap_fix(A, lo, p.rows, p.off, p.cols, ga, gb, self.kind)
+
+    def log_joint(self, A, lo, L):
+        """Correct the log-joint ``L`` of the block of design rows ``A`` from row ``lo``."""
+        ga, gb = self._range(lo, lo + A.shape[0])
+        if ga == gb:
+            return
+        p = self.packed
+        if not self.kern.gap_log_joint(A, lo, L, p.rows, p.off, p.cols, p.hoff, ga, gb,
+                                       self.lam, self.lam_mu, self.half_const,
+                                       self.log_scale, self.kind, p.step, p.hinv):
+            raise ModelError("a component's precision is not positive definite on the "
+                             "missing features; raise reg_covar")
+
+    def moments(self, A, lo, R, row_w, floor, P):
+        """Add the block's gappy rows' M-step corrections to the design products ``P``."""
+        ga, gb = self._range(lo, lo + A.shape[0])
+        if ga == gb:
+            return
+        p = self.packed
+        self.kern.gap_moments(A, lo, R, row_w, floor, p.rows, p.off, p.cols, p.hoff, ga, gb,
+                              p.step, p.hinv, self.kind, P)

@@ -55,22 +55,32 @@ class _MissingValues(ModelError):
 
 
 def _not_finite(X) -> ModelError:
-    return _MissingValues(_NOT_FINITE) if np.isnan(X).any() else ModelError(_NOT_FINITE)
+    """The error for rows with a non-finite value: :func:`_gap_aware` looks for NaN."""
+    return _MissingValues(_NOT_FINITE)
 
 
-def _gap_aware(method):
-    """Run ``method`` on complete rows as it is (no extra pass over them); if a row has
-    a missing feature, run it again on the rows filled at the centre, with ``_gaps``."""
-    @wraps(method)
-    def wrapper(self, X, *args, _gaps=None, **kwargs):
-        if _gaps is not None:
-            return method(self, X, *args, _gaps=_gaps, **kwargs)
-        try:
-            return method(self, X, *args, **kwargs)
-        except _MissingValues:
-            filled, gaps = missing.fill(self._rows(X, check=False), self.center)
-            return method(self, filled, *args, _gaps=gaps, **kwargs)
-    return wrapper
+def _gap_aware(always_fill=False):
+    """Run the method on complete rows as it is (no extra pass over them); if a row has
+    a missing feature, run it again with ``_gaps`` saying where. The compiled kernels
+    read the NaN and mend the rows' design themselves; the numpy path (and, with
+    ``always_fill``, the method on either path) gets a copy filled at the centre."""
+    def decorate(method):
+        @wraps(method)
+        def wrapper(self, X, *args, _gaps=None, **kwargs):
+            if _gaps is not None:
+                return method(self, X, *args, _gaps=_gaps, **kwargs)
+            try:
+                return method(self, X, *args, **kwargs)
+            except _MissingValues:
+                X = self._rows(X, check=False)
+                gaps = missing.find(X, fused.kernels() if fused.enabled() else None)
+                if gaps is None:        # nothing missing: only overflowing sums
+                    raise ModelError(_NOT_FINITE) from None
+                if always_fill or not fused.enabled():
+                    X = missing.fill(X, self.center, gaps)
+                return method(self, X, *args, _gaps=gaps, **kwargs)
+        return wrapper
+    return decorate
 
 
 def _without_gaps(row_w, gaps) -> np.ndarray:
@@ -318,7 +328,7 @@ class Mixture:
             self._score_design(Ab, out, a, operator)
         return A
 
-    def _fused_span(self, X, lo, hi, out, data_units=True, row_w=None, floor=0.0):
+    def _fused_span(self, X, lo, hi, out, data_units=True, row_w=None, floor=0.0, gaps=None):
         """Score rows ``lo:hi`` with the compiled kernels; with ``row_w`` also learn.
 
         ``X`` holds rows in the data's own units (standardised here with the
@@ -326,7 +336,9 @@ class Mixture:
         Returns the statistics ``(s0, s1, s2)`` of the span weighted by
         ``resp * row_w`` (responsibilities under ``floor`` count as zero), or None
         when ``row_w`` is None. Same results as :meth:`_score_span` and
-        :meth:`_accumulate` up to rounding.
+        :meth:`_accumulate` up to rounding. ``gaps`` (:class:`missing.Packed`) lists the
+        rows filled at the centre: they are scored by their marginals and learned from by
+        EM with missing data.
         """
         kern = fused.kernels()
         family = self.family
@@ -368,14 +380,18 @@ class Mixture:
         else:
             center, scale = np.zeros(D), np.ones(D)
         first = 0           # row of X that row `lo` of the span is
+        if gaps is not None:
+            gaps = missing.Bound(gaps, self, data_units, kern)
         if not X.flags.c_contiguous:
             X, first = np.ascontiguousarray(X[lo:hi]), lo
         for a in range(lo, hi, nb):
             b = min(a + nb, hi)
             m = b - a
-            if not kern.design(X, a - first, m, center, scale, kind, A):
+            if not kern.design(X, a - first, m, center, scale, kind, A) and gaps is None:
                 raise _not_finite(X)
             Ab = A[:m]
+            if gaps is not None:
+                gaps.fix(Ab, a)     # the rows' NaN (the only non-finite values) to zero
             if tiled:
                 kern.log_joint(Ab, packed if full else BT, const if full else None, D, R, a)
             elif full:
@@ -384,6 +400,8 @@ class Mixture:
                 kern.full_log_joint(Yb, const, D, R, a)
             else:
                 np.matmul(BT, Ab.T, out=R[:, a:b])
+            if gaps is not None:
+                gaps.log_joint(Ab, a, R)
             if tiled:
                 kern.softmax(R, a, m, lss, out.component, out.log_density, out.confidence)
             else:
@@ -409,6 +427,8 @@ class Mixture:
                             P[k] += Gk.T @ Gk     # numpy runs A^T A as one SYRK
                 else:
                     kern.accumulate_rows(Ab, R, a, wb, floor, P)
+                if gaps is not None:
+                    gaps.moments(Ab, a, R, wb, floor, P)
         return family.split_moments(P, D) if learn else None
 
     @property
@@ -447,7 +467,7 @@ class Mixture:
     def _log_scale_sum(self):
         return float(np.sum(np.log(self.scale)))
 
-    @_gap_aware
+    @_gap_aware()
     def score(self, X, *, _gaps=None) -> Scores:
         """Score rows without learning from them.
 
@@ -463,14 +483,16 @@ class Mixture:
         X = self._rows(X, check=not fused.enabled())
         out = _ScoreBuffer(X.shape[0], self.n_components)
         if fused.enabled():
-            self._fused_span(X, 0, X.shape[0], out)
+            packed = None if _gaps is None else missing.pack(_gaps, self.covariance,
+                                                              self.n_components)
+            self._fused_span(X, 0, X.shape[0], out, gaps=packed)
         else:
             operator = self._scoring_operator
             rows = _Standardiser(self.center, self.scale)
             for lo in range(0, X.shape[0], SPAN_ROWS):
                 self._score_span(X, lo, min(lo + SPAN_ROWS, X.shape[0]), out, operator, rows)
-        if _gaps is not None:
-            self._score_gaps(X, _gaps, out)
+            if _gaps is not None:
+                self._score_gaps(X, _gaps, out)
         return out.scores(self.ids)
 
     def _score_z(self, Z, moments_weight=None):
@@ -597,7 +619,7 @@ class Mixture:
         out.update(avg_s0=avg0, avg_s1=avg1, avg_s2=avg2, avg_count=count)
         return out
 
-    @_gap_aware
+    @_gap_aware()
     def learn(self, X, *, _gaps=None) -> tuple["Mixture", Scores]:
         """Score rows, then learn from them with stepwise EM.
 
@@ -627,20 +649,25 @@ class Mixture:
         s0, s1, s2, sumsq = self.s0, self.s1, self.s2, self.sumsq
         at = self.n_rows
         pos = 0
+        # rows with gaps: in the compiled kernels on that path, else by core/missing.py
+        packed = None if _gaps is None or not jit else missing.pack(
+            _gaps, self.covariance, self.n_components)
+        gap_rows = None if jit else _gaps
         while pos < n:
             # pieces end at refresh points, which sit at fixed places in the stream;
             # they are scored in cache-sized blocks, then learned from in one go
             take = min(n - pos, self.refresh_rows - at % self.refresh_rows)
             row_w, keep = self.schedule.row_weights(at, take)
-            fast_w = row_w if _gaps is None else _without_gaps(row_w, _gaps.within(pos, pos + take))
+            fast_w = row_w if gap_rows is None else _without_gaps(
+                row_w, gap_rows.within(pos, pos + take))
             if jit:
                 b0, b1, b2 = model._fused_span(X, pos, pos + take, out, True, fast_w,
-                                               self.resp_floor)
+                                               self.resp_floor, packed)
             else:
                 A = model._score_span(X, pos, pos + take, out, model._scoring_operator, rows)
                 b0, b1, b2 = model._accumulate(A, out.resp_kn[:, pos : pos + take], fast_w)
-            if _gaps is not None:
-                b0, b1, b2 = model._learn_gaps(X, pos, pos + take, _gaps, row_w, out,
+            if gap_rows is not None:
+                b0, b1, b2 = model._learn_gaps(X, pos, pos + take, gap_rows, row_w, out,
                                                (b0, b1, b2))
             s0 = keep * s0 + b0
             s1 = keep * s1 + b1
@@ -653,7 +680,7 @@ class Mixture:
         model = model._evolve(s0=s0, s1=s1, s2=s2, sumsq=sumsq, n_rows=at)
         return model, out.scores(self.ids)
 
-    @_gap_aware
+    @_gap_aware(always_fill=True)
     def em_step(self, X, *, _gaps=None) -> tuple["Mixture", float]:
         """One full-batch EM iteration (step size 1) on ``X``.
 
