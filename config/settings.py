@@ -106,6 +106,15 @@ class LearningSettings:
     chunk_rows: int = _f(65536, "rows per stepwise update inside one input", min=1,
                          max=10_000_000)
     checkpoints_kept: int = _f(20, "model checkpoints kept in the state store", min=1)
+    min_observed: int | None = _f(
+        None, "rows with fewer features present (not null, NaN or empty) get no segment and "
+        "are not learned from (null: half the features, rounded up)", min=1)
+
+    def observed_floor(self, n_features: int) -> int:
+        """``min_observed`` resolved for ``n_features`` features."""
+        if self.min_observed is not None:
+            return int(self.min_observed)
+        return max(1, (n_features + 1) // 2)
 
 
 @dataclass(frozen=True)

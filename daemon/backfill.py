@@ -62,6 +62,7 @@ from shoal.daemon.errors import (
     ServiceError,
     UsageError,
 )
+from shoal.daemon.gaps import observed_counts
 from shoal.daemon.gate import input_kind
 from shoal.daemon.layout import Layout, StateLock, prepare_folders, remove_stale_temps
 from shoal.daemon.logs import log_event
@@ -312,7 +313,7 @@ def _write_labels(facts: FileFacts, settings: Settings, frame: Frame, segment, c
                   log_density, unusual_below: float, version: int, outbox: str) -> str:
     fmt = settings.output.format
     table = labels_table(frame.passthrough, frame.valid, segment, confidence, log_density,
-                         unusual_below, version)
+                         unusual_below, version, observed=observed_counts(frame.features))
     target = Path(outbox) / labels_name(facts.name, facts.digest, fmt)
     write_labels(table, target, fmt, _labels_metadata(facts.digest, facts.digest_algorithm,
                                                       facts.name, version))

@@ -58,6 +58,7 @@ class Frame:
     # (and within model_range when the frame was read with one)
     model_range: tuple[np.ndarray, np.ndarray] | None = None   # (center, limit) checked
     beyond_range: int = 0     # rows refused by model_range alone (finite, within the bound)
+    observed: np.ndarray | None = None   # (n_rows,) features present per row, once counted
 
     @property
     def n_rows(self) -> int:
