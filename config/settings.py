@@ -141,6 +141,9 @@ class DriftBounds:
     weight_change: float | None = _f(
         0.05, "segment's share of rows changed by this much (absolute)", min=0.0, max=1.0,
         min_open=True)
+    missing_share: float | None = _f(
+        0.2, "share of a segment's rows missing a feature changed by this much (absolute)",
+        min=0.0, max=1.0, min_open=True)
     fit_drop: float | None = _f(
         0.5, "mean log-density per row fell this far below the reference level (nats/row)",
         min=0.0, min_open=True)
@@ -159,6 +162,8 @@ class BoundOverride:
     mean_shift: float | None = _f(None, "see drift.bounds", min=0.0, min_open=True)
     spread_ratio: float | None = _f(None, "see drift.bounds", min=1.0, min_open=True)
     weight_change: float | None = _f(None, "see drift.bounds", min=0.0, max=1.0,
+                                     min_open=True)
+    missing_share: float | None = _f(None, "see drift.bounds", min=0.0, max=1.0,
                                      min_open=True)
     feature_shift: float | None = _f(None, "see drift.bounds", min=0.0, min_open=True)
 

@@ -334,3 +334,35 @@ class Bound:
         p = self.packed
         self.kern.gap_moments(A, lo, R, row_w, floor, p.rows, p.off, p.cols, p.hoff, ga, gb,
                               p.step, p.hinv, self.kind, P)
+
+
+# ---------------------------------------------------------------- drift windows
+def expected_scatter(model, Zf, mask, resp):
+    """E-step moments of rows with gaps for given responsibilities, standardised units.
+
+    Parameters
+    ----------
+    model : Mixture
+    Zf : ndarray of shape (n_samples, n_features)
+        Standardised rows, the missing features at zero.
+    mask : ndarray of shape (n_samples, n_features)
+        True where a feature is missing.
+    resp : ndarray of shape (n_components, n_samples)
+        The rows' weights per component.
+
+    Returns
+    -------
+    s1 : ndarray of shape (n_components, n_features)
+        ``sum_i resp_ki E[z_i | z_io, k]``.
+    scatter : ndarray of shape (n_components, n_features, n_features)
+        ``sum_i resp_ki E[z_i z_i^T | z_io, k]`` as a full matrix whatever the type.
+    """
+    _, (zhat, cond) = gap_log_joint(model, Zf, mask, learn=True)
+    D = Zf.shape[1]
+    s1 = np.einsum("kn,knd->kd", resp, zhat)
+    if model.covariance == "full":
+        return s1, _full_second(resp, zhat, cond, D)
+    scatter = np.matmul(np.swapaxes(zhat * resp[:, :, None], 1, 2), zhat)
+    idx = np.arange(D)
+    scatter[:, idx, idx] += np.einsum("kn,knd->kd", resp, cond)
+    return s1, scatter

@@ -51,12 +51,22 @@ from shoal.core.drift import (
     weight_noise,
 )
 from shoal.daemon.logs import log_event
+from shoal.daemon.missing_drift import (
+    add_gap_sums,
+    gap_piece,
+    merge_gap_sums,
+    missing_note,
+    missing_share_statistics,
+    observed_feature_means,
+    window_shares,
+)
 
 __all__ = ["DriftMonitor", "InputWatch", "alert_id", "STATISTIC_UNITS", "SEGMENT_STATISTICS"]
 
 STATE_FORMAT = 1
-SEGMENT_STATISTICS = ("mean_shift", "spread_ratio", "weight_change")
+SEGMENT_STATISTICS = ("mean_shift", "spread_ratio", "weight_change", "missing_share")
 STATISTIC_UNITS = {
+    "missing_share": "share of rows",
     "mean_shift": "reference sds",
     "spread_ratio": "ratio of sds",
     "weight_change": "share of rows",
@@ -126,6 +136,7 @@ def _add_sums(segments: dict, sums: dict, add) -> None:
         acc["Q"] += float(sums["Q"][k])
         acc["M"] = add(acc["M"], sums["M"][k])
         acc["S"] = add(acc["S"], sums["S"][k])
+        merge_gap_sums(acc, sums, k, add)
 
 
 def _widen(pair, lo, hi):
@@ -294,6 +305,7 @@ class InputWatch:
         if self._rows_buffer is None or len(self._rows_buffer) < n:
             self._rows_buffer = np.empty((n, X.shape[1]))
         Xc = np.subtract(X, mixture.center, out=self._rows_buffer[:n])
+        gaps = gap_piece(mixture, X, Xc, resp_kn)    # rows with missing features, or None
         ld = scores.log_density
         win["n"] += n
         win["ld"] += float(ld.sum())
@@ -312,7 +324,9 @@ class InputWatch:
         # Second moments from the rows that carry weight for each segment: rows under
         # _NEGLIGIBLE add less than that share of a row each, far below the statistics'
         # noise, and on separated segments most rows are skipped.
-        add_segment_scatter(sums["S"], Xc, resp_kn, _NEGLIGIBLE)
+        add_segment_scatter(sums["S"], Xc, resp_kn if gaps is None else gaps.resp, _NEGLIGIBLE)
+        if gaps is not None:
+            add_gap_sums(sums, gaps)
         limit = self._state.get("reference_info", {}) or {}
         below = limit.get("unusual_below")
         if below is not None:
@@ -375,6 +389,7 @@ class InputWatch:
         if st["reference"] is None:
             if first_window_row + win["n"] >= self.drift.settle_rows:
                 self._take_reference(mixture, st["last_ld"], info)
+                st["reference_info"]["missing_share"] = window_shares(win["segments"])
             return
         self._evaluate(win, info, segments)
 
@@ -426,6 +441,7 @@ class InputWatch:
         st["rebase"] = None
         self._take_reference(mixture, ref.log_density, info, ref=ref)
         st["reference_info"]["note"] = rebase["note"]
+        st["reference_info"]["missing_share"] = window_shares(sums["segments"])
 
     def _evaluate(self, win, info, segments: dict | None = None) -> None:
         st = self.state
@@ -490,6 +506,9 @@ class InputWatch:
             n_effs.append(acc["T"] * acc["T"] / acc["Q"])
             means.append(center + dev)
             covs.append(np.asarray(acc["S"]) / acc["T"] - np.outer(dev, dev))
+        missing_share_statistics(segments, ref.ids.tolist(), ref.n_eff,
+                                 (self._state.get("reference_info") or {}).get("missing_share"),
+                                 d, values, noise, detail)
         if not seen:
             return self._fit_statistics(win, ref, values, noise, detail)
         at = np.array(seen)
@@ -519,13 +538,17 @@ class InputWatch:
                 noise[(sid, "spread_ratio")] = float(spread[i]) / (2 * d)
         if self.monitor.wants_feature_shift():
             ref_sd = np.sqrt(np.diagonal(ref.covariances[at], axis1=1, axis2=2))
-            z = np.abs(means - ref.means[at]) / ref_sd
+            # each feature over the rows that observed it (missing_drift)
+            f_means, f_neff = observed_feature_means(segments, ids, center, means, n_effs)
+            z = np.abs(f_means - ref.means[at]) / ref_sd
             inv_ref = np.where(np.isinf(ref_n), 0.0, 1.0 / ref_n)
-            f_noise = np.sqrt(1.0 / n_effs + inv_ref)
+            with np.errstate(divide="ignore"):
+                f_noise = np.sqrt(1.0 / f_neff + inv_ref[:, None])
             for i, sid in enumerate(ids):
                 for j, f in enumerate(features):
-                    values[(sid, _feature_stat(f))] = float(z[i, j])
-                    noise[(sid, _feature_stat(f))] = float(f_noise[i])
+                    if f_neff[i, j] > 0.0:
+                        values[(sid, _feature_stat(f))] = float(z[i, j])
+                        noise[(sid, _feature_stat(f))] = float(f_noise[i, j])
         return self._fit_statistics(win, ref, values, noise, detail)
 
     def _fit_statistics(self, win, ref: Reference, values, noise, detail):
@@ -621,6 +644,8 @@ class InputWatch:
         if seg == WHOLE_MODEL:
             return self._explain_fit(detail.get(WHOLE_MODEL), ref)
         info = detail.get(seg, {})
+        if stat == "missing_share":
+            return self._explain_missing(seg, info)
         if "mean" not in info:
             share = info.get("share", 0.0)
             return {"summary": f"segment {seg} took {share:.1%} of the window's rows "
@@ -652,7 +677,22 @@ class InputWatch:
                               + _moves(moved))
         else:
             out["summary"] = f"segment {seg} moved: " + _moves(moved)
+        note = missing_note(info, names)
+        if note:
+            out["summary"] += f"; {note}"
         return out
+
+    def _explain_missing(self, seg, info) -> dict:
+        names = self.monitor.features
+        m = info.get("missing") or {}
+        if not m:
+            return {"summary": f"segment {seg} had no rows to compare"}
+        f = names[m["feature"]]
+        return {"summary": f"feature {f} missing from {m['share']:.1%} of segment {seg}'s "
+                           f"rows (reference {m['baseline_share']:.1%})",
+                "feature": f, "share": m["share"], "reference_share": m["baseline_share"],
+                "shares": {names[j]: s for j, s in enumerate(m["shares"])},
+                "effective_rows": info.get("n_eff")}
 
     def _explain_fit(self, info, ref: Reference) -> dict:
         if not info:
@@ -694,6 +734,9 @@ def _merge_sums(into: dict | None, win: dict) -> dict:
         old["Q"] += acc["Q"]
         old["M"] = _add(old["M"], acc["M"])
         old["S"] = _add(old["S"], acc["S"])
+        for key in ("miss", "miss2", "imputed"):
+            if acc.get(key) is not None:
+                old[key] = _add(old.get(key), acc[key])
     return into
 
 

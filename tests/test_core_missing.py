@@ -217,3 +217,32 @@ def test_compiled_gaps_equal_the_numpy_path_on_every_instruction_set(covariance,
         np.testing.assert_allclose(getattr(a_model, name), getattr(b_model, name),
                                    rtol=1e-9, atol=1e-12, err_msg=name)
     np.testing.assert_allclose(a_ld, b_ld, rtol=1e-9)
+
+
+@pytest.mark.parametrize("covariance", TYPES)
+def test_expected_scatter_is_the_ghahramani_jordan_second_moment(covariance):
+    # the drift windows' E-step sums against the written-out G&J expectations above
+    from shoal.core.missing import expected_scatter, find
+    m, rng = _mixture(covariance, seed=41, prior_weight=0.0)
+    X = _with_gaps(m.data_means()[rng.integers(0, 3, 60)] + rng.normal(0, 1.2, (60, 5)),
+                   rng, share=0.3)
+    gaps = find(X)
+    Zf = np.where(gaps.mask, 0.0, (X[gaps.rows] - m.center) / m.scale)
+    resp = m.score(X).resp[gaps.rows].T
+    s1, scatter = expected_scatter(m, Zf, gaps.mask, resp)
+    means, covs = m.data_means(), m.data_covariance_matrices()
+    for k in range(m.n_components):
+        ref1, ref2 = np.zeros(5), np.zeros((5, 5))
+        for j, x in enumerate(X[gaps.rows]):
+            o, mi = ~np.isnan(x), np.isnan(x)
+            S = covs[k]
+            B = S[np.ix_(mi, o)] @ np.linalg.inv(S[np.ix_(o, o)])
+            v = x.copy()
+            v[mi] = means[k][mi] + B @ (x[o] - means[k][o])
+            C = np.zeros((5, 5))
+            C[np.ix_(mi, mi)] = S[np.ix_(mi, mi)] - B @ S[np.ix_(o, mi)]
+            z = (v - m.center) / m.scale
+            ref1 += resp[k, j] * z
+            ref2 += resp[k, j] * (np.outer(z, z) + C / np.outer(m.scale, m.scale))
+        np.testing.assert_allclose(s1[k], ref1, rtol=1e-9, atol=1e-12)
+        np.testing.assert_allclose(scatter[k], ref2, rtol=1e-9, atol=1e-12)

@@ -1,0 +1,100 @@
+"""Rows with missing features through the real pipeline: labels (segment, observed,
+unusual), drift windows that stay quiet under missing-at-random values, and the
+missing-share alert when a feature goes missing from one segment's rows.
+
+Streams are the seeded K=6, D=5 synthetic mixtures of tests/test_drift_alerts.py fed as
+Parquet drops with nulls, with the shipped default settings except ``segments: 6``.
+The long stationary run (2,000,000 rows) is ``scripts/soak_missing.py``.
+"""
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from test_drift_alerts import D, FEATURES, K, _first_firing, _rows, _truth, stream  # noqa: F401
+
+
+def _mar(rng, X, share):
+    """Missing at random: feature j is missing with a probability that depends on the
+    observed feature 0 (never missing) so that the mean share is ``share``."""
+    X = X.copy()
+    hi = X[:, 0] > np.median(X[:, 0])
+    p = np.where(hi, 1.6 * share, 0.4 * share)[:, None]
+    hole = rng.random(X.shape) < p
+    hole[:, 0] = False
+    X[hole] = np.nan
+    return X
+
+
+def test_stationary_stream_with_missing_at_random_values_raises_nothing(stream):
+    weights, means, covs = _truth()
+    rng = np.random.default_rng(31)
+    s = stream()
+    for _ in range(12):
+        s.feed(_mar(rng, _rows(rng, 25_000, weights, means, covs), 0.05), 25_000)
+    state = s.drift_state()
+    assert state["reference"] is not None
+    shares = state["reference_info"]["missing_share"]
+    assert shares and max(max(v) for v in shares.values()) > 0.02   # gaps were seen
+    assert s.alerts() == []
+    assert state["bounds"]["entries"] == {}
+
+
+def test_a_feature_missing_from_one_segments_rows_alerts_within_three_windows(stream):
+    weights, means, covs = _truth()
+    comp, feature = 2, 3
+    rng = np.random.default_rng(32)
+    s = stream()
+    change = 60_000
+    s.feed(_mar(rng, _rows(rng, change, weights, means, covs), 0.02), 10_000)
+    segment = s.segment_of(means[comp])
+    after = _mar(rng, _rows(rng, 40_000, weights, means, covs), 0.02)
+    # the component's rows: nearest true mean over the observed features
+    dist = np.nansum((after[:, None, :] - means[None]) ** 2, axis=2)
+    mine = np.flatnonzero(np.argmin(dist, axis=1) == comp)
+    drop = mine[rng.random(mine.size) < 0.6]
+    after[drop, feature] = np.nan
+    s.feed(after, 10_000)
+    alert = _first_firing(s.alerts(), "missing_share")
+    assert alert is not None, s.alerts()
+    w = s.settings.drift.window_rows
+    first_full_window = (change - s.settings.warmup_rows) // w + 1
+    windows_after = alert["windows"]["last"] - first_full_window + 1
+    print(f"missing-share alert after {windows_after} windows of {w} rows")
+    assert windows_after <= 3
+    assert alert["segment"] == segment
+    assert alert["explanation"]["feature"] == FEATURES[feature]
+    assert 0.45 < alert["value"] < 0.75
+    assert "missing from" in alert["explanation"]["summary"]
+
+
+def test_labels_of_rows_with_missing_features(stream, tmp_path):
+    weights, means, covs = _truth()
+    rng = np.random.default_rng(33)
+    s = stream()
+    s.feed(_rows(rng, 30_000, weights, means, covs), 30_000)
+    X = _rows(rng, 5_000, weights, means, covs)
+    hole = rng.random(X.shape) < 0.25
+    X[hole] = np.nan
+    path = tmp_path / "gappy.parquet"
+    pq.write_table(pa.table({f: X[:, j] for j, f in enumerate(FEATURES)}), path)
+    r = s.pipeline.process(path, in_inbox=False)
+    labels = pq.read_table(r.labels)
+    observed = labels.column("observed").to_numpy()
+    np.testing.assert_array_equal(observed, D - hole.sum(axis=1))
+    segment = labels.column("segment").to_pylist()
+    floor = (D + 1) // 2
+    # a segment exactly on the rows with at least min_observed features present
+    assert [v is not None for v in segment] == (observed >= floor).tolist()
+    # unusual compares like with like: the share among rows with gaps is near the
+    # configured quantile, not 0 (their marginal densities are higher) nor far above
+    unusual = np.array([bool(u) for u in labels.column("unusual").to_pylist()])
+    q = s.settings.output.unusual_quantile
+    for c in range(floor, D):
+        rows = observed == c
+        assert rows.sum() > 300
+        assert unusual[rows].mean() < 4 * q + 0.01
+    gappy = (observed >= floor) & (observed < D)
+    assert 0.2 * q < unusual[gappy].mean() < 3 * q
+    extra = s.pipeline.state.extra
+    by = extra["unusual_below_observed"]
+    assert by[D] == extra["unusual_below"] and all(by[c] is not None for c in range(floor, D))
