@@ -98,3 +98,21 @@ def test_labels_of_rows_with_missing_features(stream, tmp_path):
     extra = s.pipeline.state.extra
     by = extra["unusual_below_observed"]
     assert by[D] == extra["unusual_below"] and all(by[c] is not None for c in range(floor, D))
+
+
+def test_recovery_from_missing_values_against_the_complete_data_fit():
+    # scripts/missing_recovery.py at a quarter of its size: K=4, D=6, 100,000 rows, 20%
+    # of values missing; reference scikit-learn GaussianMixture on the rows complete,
+    # components matched by scipy.optimize.linear_sum_assignment
+    import sys
+    from pathlib import Path
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "scripts"))
+    from missing_recovery import run
+
+    r = run(100_000, out=lambda *a: None)
+    mean_err, sd_err, gap = r[("MCAR", "EM with missing data")]
+    assert mean_err <= 0.05 and sd_err <= 0.10 and abs(gap) <= 0.02, r
+    # missing at random given feature 0: dropping the incomplete rows (the old way)
+    # is worse on held-out complete rows by at least 0.05 nats/row
+    assert r[("MAR", "EM with missing data")][2] - r[("MAR", "incomplete rows dropped")][2] \
+        >= 0.05, r
