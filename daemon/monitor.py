@@ -688,8 +688,13 @@ class InputWatch:
         if not m:
             return {"summary": f"segment {seg} had no rows to compare"}
         f = names[m["feature"]]
-        return {"summary": f"feature {f} missing from {m['share']:.1%} of segment {seg}'s "
-                           f"rows (reference {m['baseline_share']:.1%})",
+        if m["share"] == m["baseline_share"]:
+            summary = (f"segment {seg}: no feature missing from a share of its rows other "
+                       "than the reference's")
+        else:
+            summary = (f"feature {f} missing from {m['share']:.1%} of segment {seg}'s rows "
+                       f"(reference {m['baseline_share']:.1%})")
+        return {"summary": summary,
                 "feature": f, "share": m["share"], "reference_share": m["baseline_share"],
                 "shares": {names[j]: s for j, s in enumerate(m["shares"])},
                 "effective_rows": info.get("n_eff")}

@@ -4,7 +4,7 @@ missing-share alert when a feature goes missing from one segment's rows.
 
 Streams are the seeded K=6, D=5 synthetic mixtures of tests/test_drift_alerts.py fed as
 Parquet drops with nulls, with the shipped default settings except ``segments: 6``.
-The long stationary run (2,000,000 rows) is ``scripts/soak_missing.py``.
+The long stationary run (2,000,000 rows) is ``scripts/bench_drift_missing.py``.
 """
 import numpy as np
 import pyarrow as pa
