@@ -19,18 +19,8 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from bench_drift import CHANGE_ROW, first, rows, run, truth  # noqa: E402
+from missing_recovery import mar  # noqa: E402
 from shoal.daemon.logs import setup_logging  # noqa: E402
-
-
-def mar(rng, X, share):
-    """Feature 0 always present; the others missing 1.6 x share above its median and
-    0.4 x share below (share on average): missing at random given feature 0."""
-    X = X.copy()
-    hi = X[:, 0] > np.median(X[:, 0])
-    hole = rng.random(X.shape) < np.where(hi, 1.6 * share, 0.4 * share)[:, None]
-    hole[:, 0] = False
-    X[hole] = np.nan
-    return X
 
 
 def main() -> None:
@@ -42,16 +32,16 @@ def main() -> None:
     rng = np.random.default_rng(41)
     print(f"{'case':52s} {'rows':>10s} {'alerts':>7s} {'missing-share alert after':>26s}")
     with tempfile.TemporaryDirectory() as tmp:
-        parts = [mar(rng, rows(rng, 100_000, weights, means, covs), 0.05)
-                 for _ in range(args.stationary_rows // 100_000)]
+        parts = [mar(rows(rng, 100_000, weights, means, covs), 0.05, seed)
+                 for seed in range(args.stationary_rows // 100_000)]
         alerts, seconds = run(Path(tmp), parts)
         print(f"{'stationary, 5% missing at random':52s} {args.stationary_rows:>10,d} "
               f"{sum(a['status'] == 'firing' for a in alerts):>7d} {'-':>26s}"
               f"   ({args.stationary_rows / seconds:,.0f} rows/s)")
     for comp in (2, 3):
         with tempfile.TemporaryDirectory() as tmp:
-            before = mar(rng, rows(rng, CHANGE_ROW, weights, means, covs), 0.02)
-            after = mar(rng, rows(rng, 60_000, weights, means, covs), 0.02)
+            before = mar(rows(rng, CHANGE_ROW, weights, means, covs), 0.02, 100 + comp)
+            after = mar(rows(rng, 60_000, weights, means, covs), 0.02, 200 + comp)
             near = np.argmin(np.nansum((after[:, None, :] - means[None]) ** 2, axis=2), axis=1)
             mine = np.flatnonzero(near == comp)
             after[mine[rng.random(mine.size) < 0.6], 3] = np.nan
