@@ -1053,8 +1053,12 @@ static PyMethodDef methods[] = {
     {"diag_operator", diag_operator, METH_VARARGS, "diag_operator(means, prec, log_const, BT)"},
     {"spherical_operator", spherical_operator, METH_VARARGS,
      "spherical_operator(means, prec, log_const, BT)"},
+    {"gap_index", gap_index, METH_VARARGS,
+     "gap_index(X, rows, off, cols) -> count: the rows with a NaN and their NaN's features; "
+     "-1 if a value is infinite"},
     {"nonfinite_rows", nonfinite_rows, METH_VARARGS,
-     "nonfinite_rows(X, idx) -> count: the rows of X with a NaN or an infinity, into idx"},
+     "nonfinite_rows(X, idx) -> count: the rows of X with a NaN or an infinity, into idx; "
+     "-1 if a value is infinite"},
     {"gap_fix", gap_fix, METH_VARARGS,
      "gap_fix(A, lo, rows, off, cols, ga, gb, kind): design rows with missing values as if "
      "those were at the centre"},

@@ -50,7 +50,7 @@ static void gap_solve(const double *C, Py_ssize_t r, const double *b, double *x)
 }
 
 /* Returns 0 if some H is not positive definite. scratch: 3 D + D * D doubles. */
-static int c_gap_log_joint(const double *A, Py_ssize_t W, Py_ssize_t D, Py_ssize_t lo,
+HOT static int c_gap_log_joint(const double *A, Py_ssize_t W, Py_ssize_t D, Py_ssize_t lo,
                            double *L, Py_ssize_t K, Py_ssize_t N, const int64_t *rows,
                            const int64_t *off, const int64_t *cols, const int64_t *hoff,
                            Py_ssize_t ga, Py_ssize_t gb, const double *lam,
@@ -128,7 +128,7 @@ static int c_gap_log_joint(const double *A, Py_ssize_t W, Py_ssize_t D, Py_ssize
     return 1;
 }
 
-static void c_gap_moments(const double *A, Py_ssize_t W, Py_ssize_t D, Py_ssize_t lo,
+HOT static void c_gap_moments(const double *A, Py_ssize_t W, Py_ssize_t D, Py_ssize_t lo,
                           const double *R, Py_ssize_t K, Py_ssize_t N, const double *row_w,
                           double floor, const int64_t *rows, const int64_t *off,
                           const int64_t *cols, const int64_t *hoff, Py_ssize_t ga,
@@ -327,18 +327,23 @@ static PyObject *gap_fix(PyObject *self, PyObject *args) {
 }
 
 /* nonfinite_rows(X, idx) -> count: the rows of X (n x D) holding a NaN or an infinity,
- * their indices into idx (n values, int64) in increasing order. */
+ * their indices into idx (n values, int64) in increasing order; -1 if a value is
+ * infinite (then idx means nothing). */
 HOT static Py_ssize_t c_nonfinite_rows(const double *restrict X, Py_ssize_t n, Py_ssize_t D,
                                        int64_t *restrict idx) {
     Py_ssize_t count = 0;
+    int inf = 0;
     for (Py_ssize_t i = 0; i < n; i++) {
         const double *x = X + i * D;
         double chk = 0.0;
         for (Py_ssize_t d = 0; d < D; d++) chk += x[d] * 0.0;
         idx[count] = i;
-        count += chk != 0.0 || chk != chk;
+        if (chk != 0.0) { /* NaN: look for an infinity among the values */
+            count++;
+            for (Py_ssize_t d = 0; d < D; d++) inf |= isinf(x[d]);
+        }
     }
-    return count;
+    return inf ? -1 : count;
 }
 
 static PyObject *nonfinite_rows(PyObject *self, PyObject *args) {
@@ -351,6 +356,50 @@ static PyObject *nonfinite_rows(PyObject *self, PyObject *args) {
     NEED(di[0] >= dX[0], "nonfinite_rows: idx shorter than X");
     Py_BEGIN_ALLOW_THREADS
     count = c_nonfinite_rows(X, dX[0], dX[1], idx);
+    Py_END_ALLOW_THREADS
+    release(&s);
+    return PyLong_FromSsize_t(count);
+fail:
+    release(&s);
+    return NULL;
+}
+
+/* gap_index(X, rows, off, cols) -> count: the rows of X (n x D) with a NaN into rows (n
+ * values), the NaN's features of row g into cols[off[g]:off[g+1]] (off: n + 1 values,
+ * cols: n * D), all int64; -1 if a value is infinite (then the outputs mean nothing). */
+HOT static Py_ssize_t c_gap_index(const double *restrict X, Py_ssize_t n, Py_ssize_t D,
+                                  int64_t *restrict rows, int64_t *restrict off,
+                                  int64_t *restrict cols) {
+    Py_ssize_t count = 0, nc = 0;
+    off[0] = 0;
+    for (Py_ssize_t i = 0; i < n; i++) {
+        const double *x = X + i * D;
+        double chk = 0.0;
+        for (Py_ssize_t d = 0; d < D; d++) chk += x[d] * 0.0;
+        if (chk == 0.0) continue;
+        for (Py_ssize_t d = 0; d < D; d++) {
+            if (isinf(x[d])) return -1;
+            if (x[d] != x[d]) cols[nc++] = d;
+        }
+        rows[count++] = i;
+        off[count] = nc;
+    }
+    return count;
+}
+
+static PyObject *gap_index(PyObject *self, PyObject *args) {
+    PyObject *oX, *or, *oo, *oc;
+    Py_ssize_t dX[2], dr[1], doff[1], dc[1], count = 0;
+    Bufs s = {.n = 0};
+    if (!PyArg_ParseTuple(args, "OOOO", &oX, &or, &oo, &oc)) return NULL;
+    TAKE(const double *, X, oX, "X", F64, 2, 0, dX);
+    TAKE(int64_t *, rows, or, "rows", I64, 1, 1, dr);
+    TAKE(int64_t *, off, oo, "off", I64, 1, 1, doff);
+    TAKE(int64_t *, cols, oc, "cols", I64, 1, 1, dc);
+    NEED(dr[0] >= dX[0] && doff[0] >= dX[0] + 1 && dc[0] >= dX[0] * dX[1],
+         "gap_index: outputs shorter than X needs");
+    Py_BEGIN_ALLOW_THREADS
+    count = c_gap_index(X, dX[0], dX[1], rows, off, cols);
     Py_END_ALLOW_THREADS
     release(&s);
     return PyLong_FromSsize_t(count);

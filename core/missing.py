@@ -43,9 +43,10 @@ from .errors import ModelError
 __all__ = ["Gaps", "find", "fill", "gap_log_joint", "gap_moments", "pack", "Packed", "Bound"]
 
 BLOCK_ROWS = 2048   # incomplete rows handled at once: (K, rows, D) arrays stay small
+_INFINITE = ("X contains infinite values; drop or mark those rows first (NaN marks a "
+             "missing feature)")
 
 
-@dataclass(frozen=True)
 class Gaps:
     """Where a block of rows has missing features.
 
@@ -54,16 +55,31 @@ class Gaps:
     rows : ndarray of shape (n_gappy,)
         Increasing indices of the rows with at least one missing feature.
     mask : ndarray of shape (n_gappy, n_features)
-        True where that row's feature is missing.
+        True where that row's feature is missing (made on first use when the gaps were
+        given as ``off`` and ``cols``: row ``g`` misses ``cols[off[g]:off[g+1]]``).
     """
 
-    rows: np.ndarray
-    mask: np.ndarray
+    __slots__ = ("rows", "_mask", "off", "cols", "n_features")
+
+    def __init__(self, rows, mask=None, *, off=None, cols=None, n_features=None):
+        self.rows, self._mask = rows, mask
+        self.off, self.cols, self.n_features = off, cols, n_features
+
+    @property
+    def mask(self) -> np.ndarray:
+        if self._mask is None:
+            mask = np.zeros((len(self), self.n_features), dtype=bool)
+            mask[np.repeat(np.arange(len(self)), np.diff(self.off)), self.cols] = True
+            self._mask = mask
+        return self._mask
 
     def within(self, lo: int, hi: int) -> "Gaps":
         """The gaps of rows ``lo:hi``, indexed from ``lo``."""
         a, b = np.searchsorted(self.rows, [lo, hi])
-        return Gaps(self.rows[a:b] - lo, self.mask[a:b])
+        if self._mask is not None:
+            return Gaps(self.rows[a:b] - lo, self._mask[a:b])
+        return Gaps(self.rows[a:b] - lo, off=self.off[a:b + 1] - self.off[a],
+                    cols=self.cols[self.off[a]:self.off[b]], n_features=self.n_features)
 
     def __len__(self) -> int:
         return int(self.rows.shape[0])
@@ -77,16 +93,22 @@ def find(X, kern=None) -> Gaps | None:
     values are not missing: they raise :class:`ModelError`.
     """
     if kern is not None and X.flags.c_contiguous:
-        suspect = np.empty(X.shape[0], dtype=np.int64)
-        suspect = suspect[: kern.nonfinite_rows(X, suspect)]
-    else:
-        suspect = np.flatnonzero(~np.isfinite(np.add.reduce(X, axis=1)))
+        n, D = X.shape
+        rows, off = np.empty(n, dtype=np.int64), np.empty(n + 1, dtype=np.int64)
+        cols = np.empty(n * D, dtype=np.int64)
+        count = kern.gap_index(X, rows, off, cols)
+        if count < 0:
+            raise ModelError(_INFINITE)
+        if count == 0:
+            return None
+        return Gaps(rows[:count], off=off[: count + 1], cols=cols[: off[count]],
+                    n_features=D)
+    suspect = np.flatnonzero(~np.isfinite(np.add.reduce(X, axis=1)))
     if suspect.size == 0:
         return None
     sub = X[suspect]
     if np.isinf(sub).any():
-        raise ModelError("X contains infinite values; drop or mark those rows first "
-                         "(NaN marks a missing feature)")
+        raise ModelError(_INFINITE)
     nan = np.isnan(sub)
     keep = nan.any(axis=1)     # the others only overflowed their sum: finite rows
     if not keep.any():
@@ -148,15 +170,14 @@ def _full_gaps(model, Z, mask, learn):
     zhat = np.broadcast_to(Z, (K, n, D)).copy() if learn else None
     conds = []
     for r, rows, cols in _groups(mask):
-        Zr = Z[rows]
-        g = np.einsum("knrd,nd->knr", lam[:, cols, :], Zr) - lam_mu[:, cols]
+        g = np.einsum("knrd,nd->knr", lam[:, cols, :], Z[rows]) - lam_mu[:, cols]
         H = lam[:, cols[:, :, None], cols[:, None, :]]
         step, inv, log_det = _solve_small(H, g)
         corr[:, rows] = 0.5 * (r * LOG_2PI - log_det + np.sum(g * step, axis=-1))
         if learn:
             # E[z_m | z_o, k] = z_m - H^-1 g, written into each row's missing slots
-            kk = np.arange(K)[:, None, None]
-            zhat[kk, rows[None, :, None], cols[None]] -= step
+            flat = (rows[:, None] * D + cols).ravel()
+            zhat.reshape(K, n * D)[:, flat] -= step.reshape(K, -1)
             conds.append((rows, cols, inv))
     return corr, zhat, conds
 
@@ -164,35 +185,43 @@ def _full_gaps(model, Z, mask, learn):
 def _full_second(W, zhat, conds, D):
     s2 = np.matmul(np.swapaxes(zhat * W[:, :, None], 1, 2), zhat)
     K = W.shape[0]
-    flat = s2.reshape(K, D * D)
     for rows, cols, inv in conds:
-        # sum_i W_ki Cov_ki at (m_i, m_i): one bincount per component over flat indices
+        # sum_i W_ki Cov_ki at (m_i, m_i): one bincount over (component, entry) indices
         at = (cols[:, :, None] * D + cols[:, None, :]).reshape(rows.size, -1)
-        wk = W[:, rows, None] * inv.reshape(K, rows.size, -1)
-        for k in range(K):
-            flat[k] += np.bincount(at.ravel(), weights=wk[k].ravel(), minlength=D * D)
+        at = (np.arange(K)[:, None, None] * (D * D) + at[None]).ravel()
+        wk = (W[:, rows, None] * inv.reshape(K, rows.size, -1)).ravel()
+        s2 += np.bincount(at, weights=wk, minlength=K * D * D).reshape(K, D, D)
     return s2
 
 
 # ------------------------------------------------------- diag and spherical types
 def _diag_gaps(model, Z, mask, learn):
-    K, D = model.n_components, Z.shape[1]
+    # With the missing z at zero each missing feature j adds the same term to every row
+    # that misses it: 0.5 (log 2 pi - log prec_kj + prec_kj mu_kj^2); one product sums
+    # them. The missing coordinates complete to the component's mean, with its variance.
+    D = Z.shape[1]
     prec = model.prec_chol ** 2
     if prec.ndim == 1:
         prec = np.repeat(prec[:, None], D, axis=1)
-    d = Z[None, :, :] - model.means[:, None, :]
-    term = LOG_2PI - np.log(prec)[:, None, :] + prec[:, None, :] * d * d
-    corr = 0.5 * np.einsum("knd,nd->kn", term, mask.astype(np.float64))
-    if not learn:
-        return corr, None, None
-    # the missing coordinates complete to the component's mean, with its variance
-    zhat = np.where(mask[None], model.means[:, None, :], Z[None])
-    cond_var = mask[None] / prec[:, None, :]
-    return corr, zhat, cond_var
+    M = mask.astype(np.float64)
+    term = 0.5 * (LOG_2PI - np.log(prec) + prec * model.means**2)
+    corr = term @ M.T
+    return corr, ((Z, M, model.means, 1.0 / prec) if learn else None), None
 
 
-def _diag_second(W, zhat, cond_var, D):
-    return np.einsum("kn,knd->kd", W, zhat * zhat + cond_var)
+def _diag_moments(W, aux):
+    """``(s1, diagonal of s2)`` of rows completed by their components' means."""
+    Z, M, means, var = aux
+    WM = W @ M
+    return W @ Z + means * WM, W @ (Z * Z) + (means * means + var) * WM
+
+
+def _diag_completed(aux):
+    """The completed rows (K, n, D) and their conditional variances (K, n, D)."""
+    Z, M, means, var = aux
+    mask = M.astype(bool)
+    return (np.where(mask[None], means[:, None, :], Z[None]),
+            M[None] * var[:, None, :])
 
 
 _GAPS = {"full": _full_gaps, "diag": _diag_gaps, "spherical": _diag_gaps}
@@ -227,23 +256,24 @@ def gap_log_joint(model, Zf, mask, learn=False):
     """
     family = model.family
     base = family.log_joint(family.design(Zf), model._scoring_operator)
-    corr, zhat, cond = _GAPS[model.covariance](model, Zf, mask, learn)
+    corr, first, second = _GAPS[model.covariance](model, Zf, mask, learn)
     base += corr
     base += _scale_term(model, mask)
-    return base, ((zhat, cond) if learn else None)
+    if not learn:
+        return base, None
+    return base, ((first, second) if model.covariance == "full" else first)
 
 
 def gap_moments(model, W, aux):
     """Statistics ``(s0, s1, s2)`` of rows with gaps for the E-step weights ``W``
     (n_components, n_samples): the completed rows' moments plus the conditional
     covariances in the second moment."""
-    zhat, cond = aux
     D = model.n_features
     s0 = W.sum(axis=1)
-    s1 = np.einsum("kn,knd->kd", W, zhat)
     if model.covariance == "full":
-        return s0, s1, _full_second(W, zhat, cond, D)
-    s2 = _diag_second(W, zhat, cond, D)
+        zhat, cond = aux
+        return s0, np.einsum("kn,knd->kd", W, zhat), _full_second(W, zhat, cond, D)
+    s1, s2 = _diag_moments(W, aux)
     if model.covariance == "spherical":
         s2 = s2.sum(axis=1) / D
     return s0, s1, s2
@@ -269,14 +299,18 @@ class Packed:
 
 def pack(gaps: Gaps, covariance: str, n_components: int) -> Packed:
     """:class:`Packed` for ``gaps`` of a mixture of that type and size."""
-    count = gaps.mask.sum(axis=1).astype(np.int64)
-    off = np.zeros(len(gaps) + 1, dtype=np.int64)
-    np.cumsum(count, out=off[1:])
+    if gaps.off is not None:
+        off, cols = gaps.off, gaps.cols
+        count = np.diff(off)
+    else:
+        count = gaps.mask.sum(axis=1).astype(np.int64)
+        off = np.zeros(len(gaps) + 1, dtype=np.int64)
+        np.cumsum(count, out=off[1:])
+        cols = np.nonzero(gaps.mask)[1].astype(np.int64)
     hoff = off
     if covariance == "full":
         hoff = np.zeros_like(off)
         np.cumsum(count * count, out=hoff[1:])
-    cols = np.nonzero(gaps.mask)[1].astype(np.int64)
     return Packed(gaps.rows.astype(np.int64), off, cols, hoff,
                   np.empty(n_components * int(off[-1])), np.empty(n_components * int(hoff[-1])))
 
@@ -284,7 +318,8 @@ def pack(gaps: Gaps, covariance: str, n_components: int) -> Packed:
 class Bound:
     """:class:`Packed` gaps with one parameter set's precision, for one span of rows."""
 
-    __slots__ = ("packed", "kind", "lam", "lam_mu", "half_const", "log_scale", "kern")
+    __slots__ = ("packed", "kind", "lam", "lam_mu", "half_const", "log_scale", "kern",
+                 "_block")
 
     def __init__(self, packed: Packed, model, data_units: bool, kern):
         self.packed, self.kern = packed, kern
@@ -301,10 +336,14 @@ class Bound:
         # a feature missing alone: 0.5 (log 2 pi - log Lam_jj) of the correction
         self.half_const = 0.5 * (LOG_2PI - np.log(diag))
         self.log_scale = np.log(model.scale) if data_units else np.zeros(D)
+        self._block = (None, 0, 0)
 
     def _range(self, lo, hi):
-        a, b = np.searchsorted(self.packed.rows, [lo, hi])
-        return int(a), int(b)
+        """The gappy rows of block ``lo:hi`` (found once per block)."""
+        if self._block[0] != (lo, hi):
+            a, b = np.searchsorted(self.packed.rows, [lo, hi])
+            self._block = ((lo, hi), int(a), int(b))
+        return self._block[1], self._block[2]
 
     def fix(self, A, lo):
         """Design rows ``A`` from row ``lo`` as if the missing values were at the centre
@@ -357,11 +396,13 @@ def expected_scatter(model, Zf, mask, resp):
     scatter : ndarray of shape (n_components, n_features, n_features)
         ``sum_i resp_ki E[z_i z_i^T | z_io, k]`` as a full matrix whatever the type.
     """
-    _, (zhat, cond) = gap_log_joint(model, Zf, mask, learn=True)
+    _, aux = gap_log_joint(model, Zf, mask, learn=True)
     D = Zf.shape[1]
-    s1 = np.einsum("kn,knd->kd", resp, zhat)
     if model.covariance == "full":
-        return s1, _full_second(resp, zhat, cond, D)
+        zhat, cond = aux
+        return np.einsum("kn,knd->kd", resp, zhat), _full_second(resp, zhat, cond, D)
+    zhat, cond = _diag_completed(aux)
+    s1 = np.einsum("kn,knd->kd", resp, zhat)
     scatter = np.matmul(np.swapaxes(zhat * resp[:, :, None], 1, 2), zhat)
     idx = np.arange(D)
     scatter[:, idx, idx] += np.einsum("kn,knd->kd", resp, cond)

@@ -83,16 +83,6 @@ def _gap_aware(always_fill=False):
     return decorate
 
 
-def _without_gaps(row_w, gaps) -> np.ndarray:
-    """The row weights with the rows that have gaps at zero (the complete-row kernels
-    then learn nothing from them; :meth:`Mixture._learn_gaps` does)."""
-    if not len(gaps):
-        return row_w
-    w = row_w.copy()
-    w[gaps.rows] = 0.0
-    return w
-
-
 @dataclass(frozen=True)
 class Scores:
     """What scoring says about each row.
@@ -658,17 +648,15 @@ class Mixture:
             # they are scored in cache-sized blocks, then learned from in one go
             take = min(n - pos, self.refresh_rows - at % self.refresh_rows)
             row_w, keep = self.schedule.row_weights(at, take)
-            fast_w = row_w if gap_rows is None else _without_gaps(
-                row_w, gap_rows.within(pos, pos + take))
             if jit:
-                b0, b1, b2 = model._fused_span(X, pos, pos + take, out, True, fast_w,
+                b0, b1, b2 = model._fused_span(X, pos, pos + take, out, True, row_w,
                                                self.resp_floor, packed)
+            elif gap_rows is not None:
+                b0, b1, b2 = model._learn_span_gaps(X, pos, pos + take, gap_rows, row_w, out,
+                                                    rows)
             else:
                 A = model._score_span(X, pos, pos + take, out, model._scoring_operator, rows)
-                b0, b1, b2 = model._accumulate(A, out.resp_kn[:, pos : pos + take], fast_w)
-            if gap_rows is not None:
-                b0, b1, b2 = model._learn_gaps(X, pos, pos + take, gap_rows, row_w, out,
-                                               (b0, b1, b2))
+                b0, b1, b2 = model._accumulate(A, out.resp_kn[:, pos : pos + take], row_w)
             s0 = keep * s0 + b0
             s1 = keep * s1 + b1
             s2 = keep * s2 + b2
@@ -714,10 +702,7 @@ class Mixture:
         sub = _ScoreBuffer(rows.size, self.n_components)
         sub.resp_kn[:] = L
         self._normalise(sub.resp_kn, sub, 0, rows.size)
-        out.resp_kn[:, rows] = sub.resp_kn
-        out.log_density[rows] = sub.log_density
-        out.component[rows] = sub.component
-        out.confidence[rows] = sub.confidence
+        out.put(rows, sub)
         return sub.resp_kn, aux
 
     def _score_gaps(self, X, gaps, out):
@@ -727,12 +712,26 @@ class Mixture:
                         gaps.mask[a : a + missing.BLOCK_ROWS])
             self._gap_block(X, part, out, 0, learn=False)
 
-    def _learn_gaps(self, X, lo, hi, gaps, row_w, out, stats):
-        """Add the E-step statistics of the rows with gaps in ``lo:hi`` (weights
-        ``row_w`` of that span) to ``stats``; their scores go into ``out``."""
+    def _learn_span_gaps(self, X, lo, hi, gaps, row_w, out, rows):
+        """The numpy path's statistics of rows ``lo:hi`` of the filled rows ``X`` (weights
+        ``row_w``), scores into ``out``: the complete rows gathered through the ordinary
+        kernels, then the rows with gaps by EM with missing data."""
         part = gaps.within(lo, hi)
         if not len(part):
-            return stats
+            A = self._score_span(X, lo, hi, out, self._scoring_operator, rows)
+            return self._accumulate(A, out.resp_kn[:, lo:hi], row_w)
+        keep = np.ones(hi - lo, dtype=bool)
+        keep[part.rows] = False
+        at = np.flatnonzero(keep)
+        sub = _ScoreBuffer(at.size, self.n_components)
+        A = self._score_span(X[lo + at], 0, at.size, sub, self._scoring_operator, rows)
+        stats = self._accumulate(A, sub.resp_kn, row_w[at])
+        out.put(lo + at, sub)
+        return self._learn_gaps(X, lo, part, row_w, out, stats)
+
+    def _learn_gaps(self, X, lo, part, row_w, out, stats):
+        """Add the E-step statistics of the rows ``lo + part.rows`` (weights ``row_w``
+        from row ``lo``) to ``stats``; their scores go into ``out``."""
         resp, aux = self._gap_block(X, part, out, lo, learn=True)
         W = resp * row_w[part.rows]
         if self.resp_floor > 0.0:
@@ -909,6 +908,13 @@ class _ScoreBuffer:
         self.log_density = np.empty(n_samples)
         self.component = np.empty(n_samples, dtype=np.intp)
         self.confidence = np.empty(n_samples)
+
+    def put(self, rows, sub: "_ScoreBuffer") -> None:
+        """The scores of ``sub`` into ``rows``."""
+        self.resp_kn[:, rows] = sub.resp_kn
+        self.log_density[rows] = sub.log_density
+        self.component[rows] = sub.component
+        self.confidence[rows] = sub.confidence
 
     def scores(self, ids) -> Scores:
         return Scores(
