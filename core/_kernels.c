@@ -1056,9 +1056,6 @@ static PyMethodDef methods[] = {
     {"gap_index", gap_index, METH_VARARGS,
      "gap_index(X, rows, off, cols) -> count: the rows with a NaN and their NaN's features; "
      "-1 if a value is infinite"},
-    {"nonfinite_rows", nonfinite_rows, METH_VARARGS,
-     "nonfinite_rows(X, idx) -> count: the rows of X with a NaN or an infinity, into idx; "
-     "-1 if a value is infinite"},
     {"gap_fix", gap_fix, METH_VARARGS,
      "gap_fix(A, lo, rows, off, cols, ga, gb, kind): design rows with missing values as if "
      "those were at the centre"},

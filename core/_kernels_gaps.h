@@ -326,44 +326,6 @@ static PyObject *gap_fix(PyObject *self, PyObject *args) {
     RETURN_NONE_OR_FAIL;
 }
 
-/* nonfinite_rows(X, idx) -> count: the rows of X (n x D) holding a NaN or an infinity,
- * their indices into idx (n values, int64) in increasing order; -1 if a value is
- * infinite (then idx means nothing). */
-HOT static Py_ssize_t c_nonfinite_rows(const double *restrict X, Py_ssize_t n, Py_ssize_t D,
-                                       int64_t *restrict idx) {
-    Py_ssize_t count = 0;
-    int inf = 0;
-    for (Py_ssize_t i = 0; i < n; i++) {
-        const double *x = X + i * D;
-        double chk = 0.0;
-        for (Py_ssize_t d = 0; d < D; d++) chk += x[d] * 0.0;
-        idx[count] = i;
-        if (chk != 0.0) { /* NaN: look for an infinity among the values */
-            count++;
-            for (Py_ssize_t d = 0; d < D; d++) inf |= isinf(x[d]);
-        }
-    }
-    return inf ? -1 : count;
-}
-
-static PyObject *nonfinite_rows(PyObject *self, PyObject *args) {
-    PyObject *oX, *oi;
-    Py_ssize_t dX[2], di[1], count = 0;
-    Bufs s = {.n = 0};
-    if (!PyArg_ParseTuple(args, "OO", &oX, &oi)) return NULL;
-    TAKE(const double *, X, oX, "X", F64, 2, 0, dX);
-    TAKE(int64_t *, idx, oi, "idx", I64, 1, 1, di);
-    NEED(di[0] >= dX[0], "nonfinite_rows: idx shorter than X");
-    Py_BEGIN_ALLOW_THREADS
-    count = c_nonfinite_rows(X, dX[0], dX[1], idx);
-    Py_END_ALLOW_THREADS
-    release(&s);
-    return PyLong_FromSsize_t(count);
-fail:
-    release(&s);
-    return NULL;
-}
-
 /* gap_index(X, rows, off, cols) -> count: the rows of X (n x D) with a NaN into rows (n
  * values), the NaN's features of row g into cols[off[g]:off[g+1]] (off: n + 1 values,
  * cols: n * D), all int64; -1 if a value is infinite (then the outputs mean nothing). */

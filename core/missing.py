@@ -88,7 +88,7 @@ class Gaps:
 def find(X, kern=None) -> Gaps | None:
     """Where ``X`` (float64, shape (n_samples, n_features)) has NaN; None if nowhere.
 
-    One pass finds the rows to look at: the compiled ``kern.nonfinite_rows`` if given,
+    One pass finds the rows to look at: the compiled ``kern.gap_index`` if given,
     else numpy's row sums (a NaN or an infinity makes the sum non-finite). Infinite
     values are not missing: they raise :class:`ModelError`.
     """

@@ -26,14 +26,17 @@ __all__ = ["admit", "observed_counts", "frame_observed", "Unusual", "complete_ro
 
 def observed_counts(X: np.ndarray) -> np.ndarray:
     """Features present (not NaN) per row of ``X`` (n, D), as int64. One compiled pass
-    finds the rows with a NaN where the kernels are built; only those are counted."""
+    finds the rows with a NaN where the kernels are built (unless a value is infinite);
+    only those are counted."""
     n, D = X.shape
     out = np.full(n, D, dtype=np.int64)
     if fused.enabled() and X.flags.c_contiguous and X.dtype == np.float64:
-        idx = np.empty(n, dtype=np.int64)
-        idx = idx[: fused.kernels().nonfinite_rows(X, idx)]
-    else:
-        idx = np.flatnonzero(~np.isfinite(np.add.reduce(X, axis=1)))
+        rows, off = np.empty(n, dtype=np.int64), np.empty(n + 1, dtype=np.int64)
+        count = fused.kernels().gap_index(X, rows, off, np.empty(n * D, dtype=np.int64))
+        if count >= 0:
+            out[rows[:count]] = D - np.diff(off[: count + 1])
+            return out
+    idx = np.flatnonzero(~np.isfinite(np.add.reduce(X, axis=1)))
     if idx.size:
         out[idx] = D - np.count_nonzero(np.isnan(X[idx]), axis=1)
     return out
