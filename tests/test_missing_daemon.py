@@ -116,3 +116,26 @@ def test_recovery_from_missing_values_against_the_complete_data_fit():
     # is worse on held-out complete rows by at least 0.05 nats/row
     assert r[("MAR", "EM with missing data")][2] - r[("MAR", "incomplete rows dropped")][2] \
         >= 0.05, r
+
+
+def test_warm_up_fits_on_complete_rows_and_says_when_it_waits_for_them(stream, caplog):
+    weights, means, covs = _truth()
+    rng = np.random.default_rng(34)
+    s = stream(warmup_rows=2000)
+    X = _rows(rng, 3000, weights, means, covs)
+    X[rng.random(len(X)) < 0.6, 1] = np.nan            # 60% of the rows miss x1
+    with caplog.at_level("WARNING", logger="shoal"):
+        s.feed(X, 3000)
+    assert s.pipeline.state.mixture is None             # ~1,200 complete rows of 2,000
+    assert "warmup_waiting_for_complete_rows" in [r.message for r in caplog.records]
+    Y = _rows(rng, 3000, weights, means, covs)
+    Y[rng.random(len(Y)) < 0.6, 2] = np.nan
+    path = s.folder / "second.parquet"
+    pq.write_table(pa.table({f: Y[:, j] for j, f in enumerate(FEATURES)}), path)
+    r = s.pipeline.process(path, in_inbox=False)
+    model = s.pipeline.state.mixture
+    assert model is not None and np.all(np.isfinite(model.means))
+    labels = pq.read_table(r.labels)
+    # every row of the input that made the model has a segment, gaps or not
+    assert labels.column("segment").null_count == 0
+    assert (labels.column("observed").to_numpy() == D - 1).sum() > 1500
