@@ -134,8 +134,8 @@ def _precision(model):
 def _groups(mask):
     """Rows grouped by how many features they miss: ``(r, rows, cols)`` with ``cols`` of
     shape (len(rows), r) listing each row's missing features in increasing order."""
-    count = mask.sum(axis=1)
-    for r in np.unique(count):
+    count = np.count_nonzero(mask, axis=1)
+    for r in np.flatnonzero(np.bincount(count)):
         rows = np.flatnonzero(count == r)
         cols = np.nonzero(mask[rows])[1].reshape(rows.size, r)
         yield int(r), rows, cols
@@ -183,8 +183,15 @@ def _full_gaps(model, Z, mask, learn):
 
 
 def _full_second(W, zhat, conds, D):
-    s2 = np.matmul(np.swapaxes(zhat * W[:, :, None], 1, 2), zhat)
+    # per component over the rows with weight for it (the responsibility floor leaves
+    # most rows to one or two components): a fraction of one dense batched product
     K = W.shape[0]
+    s2 = np.zeros((K, D, D))
+    for k in range(K):
+        on = np.flatnonzero(W[k])
+        if on.size:
+            zk = zhat[k, on]
+            s2[k] = (zk * W[k, on, None]).T @ zk
     for rows, cols, inv in conds:
         # sum_i W_ki Cov_ki at (m_i, m_i): one bincount over (component, entry) indices
         at = (cols[:, :, None] * D + cols[:, None, :]).reshape(rows.size, -1)
