@@ -183,42 +183,6 @@ def test_stepwise_learning_of_gaps_equals_batch_statistics_at_step_one(covarianc
     np.testing.assert_allclose(learned.s2, batch.s2, rtol=1e-9, atol=1e-12)
 
 
-@pytest.mark.parametrize("isa", ["none", "avx2", "avx512"])
-@pytest.mark.parametrize("covariance", TYPES)
-def test_compiled_gaps_equal_the_numpy_path_on_every_instruction_set(covariance, isa,
-                                                                    scoring_path):
-    # the compiled kernels (core/_kernels_gaps.h) against core/missing.py's numpy path,
-    # over several refreshes and blocks, with a sparse responsibility floor
-    from shoal.core import fused
-    if scoring_path != "compiled":
-        pytest.skip("compares the compiled kernels with the numpy path")
-    kern = fused.kernels()
-    best = kern.tile_isa()
-    order = ["none", "avx2", "avx512"]
-    if order.index(isa) > order.index(best):
-        pytest.skip(f"the CPU has no {isa}")
-    m, rng = _mixture(covariance, seed=31, n_components=4, n_features=7)
-    m = m._evolve(refresh_rows=512, resp_floor=1e-6)
-    X = _with_gaps(m.data_means()[rng.integers(0, 4, 3000)] + rng.normal(0, 1.5, (3000, 7)),
-                   rng, share=0.08)
-    try:
-        kern.tile_isa(isa)
-        a_model, a_scores = m.learn(X)
-        a_ld = a_model.score(X).log_density
-        fused.set_enabled(False)
-        b_model, b_scores = m.learn(X)
-        b_ld = b_model.score(X).log_density
-    finally:
-        fused.set_enabled(True)
-        kern.tile_isa(best)
-    np.testing.assert_allclose(a_scores.log_density, b_scores.log_density, rtol=1e-9)
-    np.testing.assert_allclose(a_scores.resp, b_scores.resp, rtol=1e-7, atol=1e-12)
-    for name in ("s0", "s1", "s2", "means", "covariances"):
-        np.testing.assert_allclose(getattr(a_model, name), getattr(b_model, name),
-                                   rtol=1e-9, atol=1e-12, err_msg=name)
-    np.testing.assert_allclose(a_ld, b_ld, rtol=1e-9)
-
-
 @pytest.mark.parametrize("covariance", TYPES)
 def test_expected_scatter_is_the_ghahramani_jordan_second_moment(covariance):
     # the drift windows' E-step sums against the written-out G&J expectations above

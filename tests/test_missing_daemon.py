@@ -139,3 +139,12 @@ def test_warm_up_fits_on_complete_rows_and_says_when_it_waits_for_them(stream, c
     # every row of the input that made the model has a segment, gaps or not
     assert labels.column("segment").null_count == 0
     assert (labels.column("observed").to_numpy() == D - 1).sum() > 1500
+
+
+def test_explanations_name_the_features_missing_from_most_rows():
+    from shoal.daemon.missing_drift import missing_note
+    info = {"missing": {"shares": [0.0, 0.72, 0.5, 0.51]}}
+    assert missing_note(info, ["a", "b", "c", "d"]) == \
+        "mostly missing in the window: b (72%), d (51%)"
+    assert missing_note({"missing": {"shares": [0.1, 0.5]}}, ["a", "b"]) is None
+    assert missing_note({}, ["a"]) is None
