@@ -169,8 +169,10 @@ def _full_gaps(model, Z, mask, learn):
     corr = np.empty((K, n))
     zhat = np.broadcast_to(Z, (K, n, D)).copy() if learn else None
     conds = []
+    # Lam_k z for every row in one product; each row then takes its missing entries
+    lam_z = (lam.reshape(K * D, D) @ Z.T).reshape(K, D, n)
     for r, rows, cols in _groups(mask):
-        g = np.einsum("knrd,nd->knr", lam[:, cols, :], Z[rows]) - lam_mu[:, cols]
+        g = lam_z[:, cols, rows[:, None]] - lam_mu[:, cols]
         H = lam[:, cols[:, :, None], cols[:, None, :]]
         step, inv, log_det = _solve_small(H, g)
         corr[:, rows] = 0.5 * (r * LOG_2PI - log_det + np.sum(g * step, axis=-1))
