@@ -421,7 +421,7 @@ def _check_whole(s: Settings) -> None:
     if both:
         raise ConfigError(f"passthrough: expected columns other than the features, found "
                           f"{both[0]!r} in both features and passthrough")
-    reserved = {"segment", "confidence", "log_density", "unusual", "model_version"}
+    reserved = {"segment", "confidence", "log_density", "unusual", "observed", "model_version"}
     clash = sorted(reserved & set(s.passthrough))
     if clash:
         raise ConfigError(f"passthrough: expected names other than the labels' own columns "
@@ -437,6 +437,9 @@ def _check_whole(s: Settings) -> None:
     if s.lifecycle.birth_rows > s.lifecycle.pool_rows:
         raise ConfigError(f"lifecycle.birth_rows: expected at most lifecycle.pool_rows "
                           f"({s.lifecycle.pool_rows}), found {s.lifecycle.birth_rows}")
+    if s.learning.min_observed is not None and s.learning.min_observed > len(s.features):
+        raise ConfigError(f"learning.min_observed: expected at most the number of features "
+                          f"({len(s.features)}), found {s.learning.min_observed}")
     if s.segments.max * 2 > s.warmup_rows:
         raise ConfigError(f"warmup_rows: expected at least twice segments.max "
                           f"({2 * s.segments.max}), found {s.warmup_rows}")

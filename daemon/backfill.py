@@ -62,6 +62,7 @@ from shoal.daemon.errors import (
     ServiceError,
     UsageError,
 )
+from shoal.daemon.gaps import observed_counts
 from shoal.daemon.gate import input_kind
 from shoal.daemon.contract import open_model_store
 from shoal.daemon.layout import Layout, StateLock, prepare_folders, remove_stale_temps
@@ -316,7 +317,7 @@ def _write_labels(facts: FileFacts, settings: Settings, frame: Frame, segment, c
                   names: tuple = ()) -> str:
     fmt = settings.output.format
     table = labels_table(frame.passthrough, frame.valid, segment, confidence, log_density,
-                         unusual_below, version)
+                         unusual_below, version, observed=observed_counts(frame.features))
     if settings.output.segment_names:
         (table,) = with_segment_names([table], dict(names))
     target = Path(outbox) / labels_name(facts.name, facts.digest, fmt)

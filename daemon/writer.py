@@ -73,8 +73,9 @@ def labels_name(input_name: str, digest: str, fmt: str) -> str:
 
 def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray | None,
                  confidence: np.ndarray | None, log_density: np.ndarray | None,
-                 unusual_below: float, model_version: int | None,
-                 log_jacobian: np.ndarray | None = None) -> pa.Table:
+                 unusual_below, model_version: int | None,
+                 log_jacobian: np.ndarray | None = None,
+                 observed: np.ndarray | None = None) -> pa.Table:
     """The labels of one input, one row per input row.
 
     ``unusual`` compares ``log_density`` (the model's own units) with ``unusual_below``;
@@ -83,6 +84,9 @@ def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray |
 
     ``segment``/``confidence``/``log_density`` hold values for the valid rows
     only (or are None when no model exists yet); invalid rows get nulls.
+    ``unusual_below`` is one threshold, or one per valid row (rows with missing features
+    have their own: :class:`shoal.daemon.gaps.Unusual`). ``observed`` (every row's
+    number of features present) becomes the ``observed`` column, never null.
     The columns are made from numpy buffers directly (``pa.Array.from_buffers``):
     ``pa.array`` on a numpy array imports pandas on its first call (0.3-0.6 s of the
     first input of every process) and copies the values once more.
@@ -112,6 +116,8 @@ def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray |
                                      null_count=nulls)
 
     ld = spread(log_density, np.float64)
+    if not np.isscalar(unusual_below):
+        unusual_below = spread(unusual_below, np.float64)
     unusual = np.packbits(ld < unusual_below, bitorder="little")
     if scored and log_jacobian is not None:
         ld = spread(log_density + log_jacobian, np.float64)
@@ -123,6 +129,9 @@ def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray |
         "model_version": column(pa.int64(), np.full(n, model_version if scored else 0,
                                                     dtype=np.int64)),
     }
+    if observed is not None:
+        cols["observed"] = pa.Array.from_buffers(
+            pa.int64(), n, [None, pa.py_buffer(np.ascontiguousarray(observed, np.int64))])
     table = passthrough
     for name, arr in cols.items():
         table = table.append_column(name, arr)
