@@ -5,7 +5,9 @@ from shoal.config.loading import (
     dump_settings,
     load_config,
     parse_config,
+    read_secret_file,
     settings_to_dict,
+    shown,
 )
 from shoal.config.settings import (
     COVARIANCE_TYPES,
@@ -31,7 +33,9 @@ __all__ = [
     "dump_settings",
     "load_config",
     "parse_config",
+    "read_secret_file",
     "settings_to_dict",
+    "shown",
     "COVARIANCE_TYPES",
     "AlertSettings",
     "BoundOverride",

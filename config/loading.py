@@ -10,7 +10,10 @@ from __future__ import annotations
 import collections.abc
 import dataclasses
 import difflib
+import os
 import re
+import reprlib
+import stat
 import types
 import typing
 import urllib.parse
@@ -25,6 +28,8 @@ from shoal.config.settings import SegmentCount, Settings
 __all__ = [
     "ConfigError",
     "load_config",
+    "read_secret_file",
+    "shown",
     "parse_config",
     "default_config_text",
     "settings_to_dict",
@@ -32,6 +37,11 @@ __all__ = [
 ]
 
 _COLUMN_NAME = re.compile(r"^[^\x00-\x1f]{1,256}$")
+# A config file is a few KiB; these bounds keep a hostile or mistaken one (a YAML alias
+# bomb: a few lines that expand to billions of values) from hanging or filling memory.
+MAX_CONFIG_BYTES = 1 << 20
+MAX_CONFIG_VALUES = 100_000      # scalars, lists and mappings, counted through aliases
+MAX_SECRET_BYTES = 64 << 10
 
 
 class ConfigError(ValueError):
@@ -45,11 +55,55 @@ def default_config_text() -> str:
     return resources.files("shoal.config").joinpath("default.yaml").read_text("utf-8")
 
 
+def _expanded_size(node: yaml.Node, limit: int) -> int:
+    """How many values ``node`` stands for once its aliases are expanded (counted on the
+    node graph, each distinct node once, so a bomb is measured without being built);
+    stops counting past ``limit``."""
+    sizes: dict[int, int] = {}
+    stack = [(node, False)]
+    while stack:
+        current, children_done = stack.pop()
+        if id(current) in sizes:
+            continue
+        if isinstance(current, yaml.SequenceNode):
+            children = current.value
+        elif isinstance(current, yaml.MappingNode):
+            children = [n for pair in current.value for n in pair]
+        else:
+            sizes[id(current)] = 1
+            continue
+        if children_done:
+            sizes[id(current)] = min(limit + 1, 1 + sum(sizes[id(c)] for c in children))
+        else:
+            stack.append((current, True))
+            stack.extend((c, False) for c in children if id(c) not in sizes)
+    return sizes[id(node)]
+
+
+def _safe_load(text: str, source: str) -> Any:
+    """``yaml.safe_load``, refusing a document that expands past MAX_CONFIG_VALUES."""
+    loader = yaml.SafeLoader(text)
+    try:
+        node = loader.get_single_node()
+        if node is None:
+            return None
+        size = _expanded_size(node, MAX_CONFIG_VALUES)
+        if size > MAX_CONFIG_VALUES:
+            raise ConfigError(f"{source}: expected at most {MAX_CONFIG_VALUES} values, found "
+                              "more once its YAML aliases (*name) are expanded: refused "
+                              "unread (an alias bomb?)")
+        return loader.construct_document(node)
+    finally:
+        loader.dispose()
+
+
 def _read_yaml(text: str, source: str) -> dict:
     try:
-        data = yaml.safe_load(text)
+        data = _safe_load(text, source)
     except yaml.YAMLError as exc:
         raise ConfigError(f"{source}: not valid YAML: {exc}") from exc
+    except RecursionError as exc:
+        raise ConfigError(f"{source}: not valid YAML: nested too deeply") from exc
     if data is None:
         return {}
     if not isinstance(data, dict):
@@ -62,12 +116,51 @@ def load_config(path: str | Path) -> Settings:
     """Load ``path`` over the defaults. Relative folders are taken from the file's folder."""
     path = Path(path)
     try:
-        text = path.read_text("utf-8")
+        raw = _read_regular_file(path, MAX_CONFIG_BYTES, "config file")
+        text = raw.decode("utf-8")
     except FileNotFoundError as exc:
         raise ConfigError(f"config file {str(path)!r} does not exist") from exc
     except (OSError, UnicodeDecodeError) as exc:
         raise ConfigError(f"config file {str(path)!r} cannot be read: {exc}") from exc
     return parse_config(_read_yaml(text, str(path)), base_dir=path.resolve().parent)
+
+
+def _read_regular_file(path: Path, max_bytes: int, what: str) -> bytes:
+    """The bytes of ``path``, a regular file of at most ``max_bytes`` (opened without
+    blocking, so a FIFO cannot hang the caller; a device such as /dev/zero is refused)."""
+    fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK | os.O_CLOEXEC)
+    try:
+        st = os.fstat(fd)
+        if not stat.S_ISREG(st.st_mode):
+            raise ConfigError(f"{what} {str(path)!r}: expected a regular file, found "
+                              f"{_file_kind(st.st_mode)}")
+        if st.st_size > max_bytes:
+            raise ConfigError(f"{what} {str(path)!r}: expected at most {max_bytes} bytes, "
+                              f"found {st.st_size}")
+        os.set_blocking(fd, True)
+        with os.fdopen(fd, "rb", closefd=False) as f:
+            data = f.read(max_bytes + 1)
+    finally:
+        os.close(fd)
+    if len(data) > max_bytes:    # it grew while read
+        raise ConfigError(f"{what} {str(path)!r}: expected at most {max_bytes} bytes, found "
+                          "more")
+    return data
+
+
+def _file_kind(mode: int) -> str:
+    for test, name in ((stat.S_ISFIFO, "a FIFO"), (stat.S_ISCHR, "a character device"),
+                       (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket"),
+                       (stat.S_ISDIR, "a folder")):
+        if test(mode):
+            return name
+    return "not a regular file"
+
+
+def read_secret_file(path: str | Path) -> bytes:
+    """A webhook's signing secret: a regular file of at most 64 KiB, stripped.
+    ConfigError when it is anything else; OSError when it cannot be read."""
+    return _read_regular_file(Path(path), MAX_SECRET_BYTES, "secret_file").strip()
 
 
 def parse_config(data: Mapping[str, Any], base_dir: str | Path = ".") -> Settings:
@@ -100,12 +193,12 @@ def _check_drift_and_alerts(s: Settings) -> None:
     d = s.drift
     if d.time_column is not None and d.time_column not in s.passthrough:
         raise ConfigError(f"drift.time_column: expected one of the passthrough columns "
-                          f"{list(s.passthrough)}, found {d.time_column!r}")
+                          f"{shown(list(s.passthrough))}, found {shown(d.time_column)}")
     for i, o in enumerate(d.overrides):
         key = f"drift.overrides[{i}]"
         if o.feature is not None and o.feature not in s.features:
             raise ConfigError(f"{key}.feature: expected one of the features "
-                              f"{list(s.features)}, found {o.feature!r}")
+                              f"{shown(list(s.features))}, found {shown(o.feature)}")
         others = [n for n in ("mean_shift", "spread_ratio", "weight_change")
                   if getattr(o, n) is not None]
         if o.feature is not None and (others or o.feature_shift is None):
@@ -119,16 +212,23 @@ def _check_drift_and_alerts(s: Settings) -> None:
         url = urllib.parse.urlsplit(h.url)
         if url.scheme not in ("http", "https") or not url.hostname:
             raise ConfigError(f"{key}.url: expected an http:// or https:// URL with a host, "
-                              f"found {h.url!r}")
+                              f"found {shown(h.url)}")
         if url.username is not None or url.password is not None:
             # credentials in a URL are not sent (and would be logged with it): refused
-            shown = url._replace(netloc=f"***@{url.netloc.rsplit('@', 1)[-1]}").geturl()
+            hidden = url._replace(netloc=f"***@{url.netloc.rsplit('@', 1)[-1]}").geturl()
             raise ConfigError(f"{key}.url: expected a URL without user:password@ (shoal "
                               f"signs each alert with the HMAC secret instead; put a token the "
-                              f"receiver needs in its path or query), found {shown!r}")
+                              f"receiver needs in its path or query), found {hidden!r}")
         if h.secret_file is None and h.secret_env is None:
             raise ConfigError(f"{key}: expected secret_file or secret_env (the HMAC signing "
                               "secret), found neither")
+        if h.secret_file is not None and os.path.lexists(h.secret_file):
+            try:   # checked now, not when the first alert is sent
+                read_secret_file(h.secret_file)
+            except ConfigError as exc:
+                raise ConfigError(f"{key}.{exc}") from None
+            except OSError:
+                pass   # unreadable for now: logged when alerts are sent
     # The host allow-list is enforced, with a log line, when alerts are sent.
 
 
@@ -148,8 +248,28 @@ def _describe(value: Any) -> str:
     if isinstance(value, bool):
         return f"the boolean {value}"
     if isinstance(value, (dict, list)):
-        return f"a {type(value).__name__} {value!r}"[:120]
-    return f"{value!r} ({type(value).__name__})"[:120]
+        return f"a {type(value).__name__} {shown(value)}"
+    return f"{shown(value)} ({type(value).__name__})"
+
+
+_SHOWN = reprlib.Repr()
+_SHOWN.maxlevel, _SHOWN.maxstring, _SHOWN.maxother = 3, 60, 60
+_SHOWN.maxlist = _SHOWN.maxtuple = _SHOWN.maxdict = _SHOWN.maxset = 8
+_SHOWN_CHARS = 120
+
+
+def shown(value: Any) -> str:
+    """``repr(value)`` for a message, never whole when large (reprlib elides without
+    building the whole text): cut to ~120 characters, with an ellipsis and the length."""
+    text = _SHOWN.repr(value)
+    if len(text) > _SHOWN_CHARS:
+        text = text[:_SHOWN_CHARS - 3] + "..."
+    if isinstance(value, str) and len(value) > _SHOWN.maxstring:
+        text += f" ({len(value)} characters)"
+    elif isinstance(value, (list, tuple, dict)) and \
+            (len(value) > _SHOWN.maxlist or text.endswith("...")):
+        text += f" ({len(value)} items)"
+    return text
 
 
 def _build(cls: type, data: Any, prefix: str):
@@ -163,7 +283,8 @@ def _build(cls: type, data: Any, prefix: str):
             near = difflib.get_close_matches(str(key), list(fields), n=1, cutoff=0.75)
             hint = f"did you mean {prefix}{near[0]}? " if near else ""
             raise ConfigError(
-                f"{prefix}{str(key)[:80]}: unknown setting; {hint}expected one of "
+                f"{prefix}{shown(key) if not isinstance(key, str) or len(key) > 60 else key}"
+                f": unknown setting; {hint}expected one of "
                 f"{', '.join(sorted(fields))}")
     hints = typing.get_type_hints(cls)
     values = {}
@@ -311,7 +432,7 @@ def _check_whole(s: Settings) -> None:
     if both:
         raise ConfigError(f"passthrough: expected columns other than the features, found "
                           f"{both[0]!r} in both features and passthrough")
-    reserved = {"segment", "confidence", "log_density", "unusual", "model_version"}
+    reserved = {"segment", "confidence", "log_density", "unusual", "observed", "model_version"}
     clash = sorted(reserved & set(s.passthrough))
     if clash:
         raise ConfigError(f"passthrough: expected names other than the labels' own columns "
@@ -327,6 +448,9 @@ def _check_whole(s: Settings) -> None:
     if s.lifecycle.birth_rows > s.lifecycle.pool_rows:
         raise ConfigError(f"lifecycle.birth_rows: expected at most lifecycle.pool_rows "
                           f"({s.lifecycle.pool_rows}), found {s.lifecycle.birth_rows}")
+    if s.learning.min_observed is not None and s.learning.min_observed > len(s.features):
+        raise ConfigError(f"learning.min_observed: expected at most the number of features "
+                          f"({len(s.features)}), found {s.learning.min_observed}")
     if s.segments.max * 2 > s.warmup_rows:
         raise ConfigError(f"warmup_rows: expected at least twice segments.max "
                           f"({2 * s.segments.max}), found {s.warmup_rows}")

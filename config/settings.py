@@ -138,6 +138,15 @@ class LearningSettings:
     chunk_rows: int = _f(65536, "rows per stepwise update inside one input", min=1,
                          max=10_000_000)
     checkpoints_kept: int = _f(20, "model checkpoints kept in the state store", min=1)
+    min_observed: int | None = _f(
+        None, "rows with fewer features present (not null, NaN or empty) get no segment and "
+        "are not learned from (null: half the features, rounded up)", min=1)
+
+    def observed_floor(self, n_features: int) -> int:
+        """``min_observed`` cleared for ``n_features`` features."""
+        if self.min_observed is not None:
+            return int(self.min_observed)
+        return max(1, (n_features + 1) // 2)
 
 
 @dataclass(frozen=True)
@@ -145,6 +154,11 @@ class HttpSettings:
     address: str = _f("127.0.0.1", "address the status endpoint listens on (loopback by default)")
     port: int | None = _f(None, "port of the status endpoint (null: off; 0: any free port)",
                           min=0, max=65535)
+    max_connections: int = _f(
+        64, "open connections at most; past it a new one closes the oldest idle one",
+        min=1, max=10000)
+    idle_seconds: float = _f(10.0, "a connection that sends no complete request this long "
+                                   "is closed", min=0.1, max=3600.0)
 
 
 @dataclass(frozen=True)
@@ -164,6 +178,9 @@ class DriftBounds:
     weight_change: float | None = _f(
         0.05, "segment's share of rows changed by this much (absolute)", min=0.0, max=1.0,
         min_open=True)
+    missing_share: float | None = _f(
+        0.2, "share of a segment's rows missing a feature changed by this much (absolute)",
+        min=0.0, max=1.0, min_open=True)
     fit_drop: float | None = _f(
         0.5, "mean log-density per row fell this far below the baseline level (nats/row)",
         min=0.0, min_open=True)
@@ -182,6 +199,8 @@ class BoundOverride:
     mean_shift: float | None = _f(None, "see drift.bounds", min=0.0, min_open=True)
     spread_ratio: float | None = _f(None, "see drift.bounds", min=1.0, min_open=True)
     weight_change: float | None = _f(None, "see drift.bounds", min=0.0, max=1.0,
+                                     min_open=True)
+    missing_share: float | None = _f(None, "see drift.bounds", min=0.0, max=1.0,
                                      min_open=True)
     feature_shift: float | None = _f(None, "see drift.bounds", min=0.0, min_open=True)
 

@@ -997,6 +997,8 @@ static PyObject *spherical_operator(PyObject *self, PyObject *args) {
     return linear_operator(args, 1);
 }
 
+#include "_kernels_gaps.h"
+
 /* ------------------------------------------------------------------ module */
 static PyMethodDef methods[] = {
     {"full_log_joint", full_log_joint, METH_VARARGS,
@@ -1051,6 +1053,20 @@ static PyMethodDef methods[] = {
     {"diag_operator", diag_operator, METH_VARARGS, "diag_operator(means, prec, log_const, BT)"},
     {"spherical_operator", spherical_operator, METH_VARARGS,
      "spherical_operator(means, prec, log_const, BT)"},
+    {"gap_index", gap_index, METH_VARARGS,
+     "gap_index(X, rows, off, cols) -> count: the rows with a NaN and their NaN's features; "
+     "-1 if a value is infinite"},
+    {"gap_fix", gap_fix, METH_VARARGS,
+     "gap_fix(A, lo, rows, off, cols, ga, gb, kind): design rows with missing values as if "
+     "those were at the centre"},
+    {"gap_log_joint", gap_log_joint, METH_VARARGS,
+     "gap_log_joint(A, lo, L, rows, off, cols, hoff, ga, gb, lam, lam_mu, half_const, "
+     "log_scale, kind, step, hinv): the log-joint of rows with missing features (designed filled at zero) "
+     "corrected to the observed marginal; keeps the E-step's steps and conditional "
+     "covariances; False if a precision block is not positive definite"},
+    {"gap_moments", gap_moments, METH_VARARGS,
+     "gap_moments(A, lo, R, row_w, floor, rows, off, cols, hoff, ga, gb, step, hinv, kind, P): "
+     "the M-step corrections of rows with missing features to the design products P"},
     {NULL, NULL, 0, NULL}};
 
 static struct PyModuleDef module = {PyModuleDef_HEAD_INIT, "_kernels",

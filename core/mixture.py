@@ -18,11 +18,12 @@ ends in the same model.
 from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
-from functools import cached_property
+from functools import cached_property, wraps
 
 import numpy as np
 
-from . import fused
+from . import fused, missing
+from .missing import Gaps
 from .covariance import (
     COVARIANCE_TYPES,
     FAMILIES,
@@ -44,6 +45,42 @@ _TINY = 10.0 * np.finfo(np.float64).eps
 _DESIGN_KIND = {"full": 0, "diag": 1, "spherical": 2}   # core/_kernels.c design()
 _PARAMETERS = frozenset({"weights", "means", "covariances", "prec_chol", "log_det"})
 _NOT_FINITE = "X contains NaN or infinite values; drop or mark those rows first"
+
+
+# ------------------------------------------------------ rows with missing features
+class _MissingValues(ModelError):
+    """Raised inside the complete-row paths when a row holds NaN; the public methods
+    catch it and start again with the rows' gaps filled and marked (:func:`_gap_aware`).
+    A ModelError, so that a path that does not handle gaps refuses them as before."""
+
+
+def _not_finite(X) -> ModelError:
+    """The error for rows with a non-finite value: :func:`_gap_aware` looks for NaN."""
+    return _MissingValues(_NOT_FINITE)
+
+
+def _gap_aware(always_fill=False):
+    """Run the method on complete rows as it is (no extra pass over them); if a row has
+    a missing feature, run it again with ``_gaps`` saying where. The compiled kernels
+    read the NaN and mend the rows' design themselves; the numpy path (and, with
+    ``always_fill``, the method on either path) gets a copy filled at the centre."""
+    def decorate(method):
+        @wraps(method)
+        def wrapper(self, X, *args, _gaps=None, **kwargs):
+            if _gaps is not None:
+                return method(self, X, *args, _gaps=_gaps, **kwargs)
+            try:
+                return method(self, X, *args, **kwargs)
+            except _MissingValues:
+                X = self._rows(X, check=False)
+                gaps = missing.find(X, fused.kernels() if fused.enabled() else None)
+                if gaps is None:        # nothing missing: only overflowing sums
+                    raise ModelError(_NOT_FINITE) from None
+                if always_fill or not fused.enabled():
+                    X = missing.fill(X, self.center, gaps)
+                return method(self, X, *args, _gaps=gaps, **kwargs)
+        return wrapper
+    return decorate
 
 
 @dataclass(frozen=True)
@@ -227,7 +264,7 @@ class Mixture:
         # a finite sum means finite rows (one pass, no temporary); if the sum is not
         # finite, look row by row (a sum of huge finite values can overflow)
         if check and not np.isfinite(np.sum(X)) and not np.all(np.isfinite(X)):
-            raise ModelError(_NOT_FINITE)
+            raise _not_finite(X)
         return X
 
     def standardise(self, X) -> np.ndarray:
@@ -241,6 +278,11 @@ class Mixture:
         # (K, n) layout: every reduction over components runs along contiguous rows.
         resp = out.resp_kn[:, lo:hi]
         self.family.log_joint(A, operator, out=resp)
+        self._normalise(resp, out, lo, hi)
+
+    def _normalise(self, resp, out, lo, hi):
+        """Log-joint ``resp`` (K, hi - lo) -> responsibilities in place; the other scores
+        of rows ``lo:hi`` into ``out``."""
         top = np.max(resp, axis=0)
         resp -= top
         # The most responsible component now sits at exactly 0 (first one on ties).
@@ -276,7 +318,7 @@ class Mixture:
             self._score_design(Ab, out, a, operator)
         return A
 
-    def _fused_span(self, X, lo, hi, out, data_units=True, row_w=None, floor=0.0):
+    def _fused_span(self, X, lo, hi, out, data_units=True, row_w=None, floor=0.0, gaps=None):
         """Score rows ``lo:hi`` with the compiled kernels; with ``row_w`` also learn.
 
         ``X`` holds rows in the data's own units (standardised here with the
@@ -284,7 +326,9 @@ class Mixture:
         Returns the statistics ``(s0, s1, s2)`` of the span weighted by
         ``resp * row_w`` (responsibilities under ``floor`` count as zero), or None
         when ``row_w`` is None. Same results as :meth:`_score_span` and
-        :meth:`_accumulate` up to rounding.
+        :meth:`_accumulate` up to rounding. ``gaps`` (:class:`missing.Packed`) lists the
+        rows filled at the centre: they are scored by their marginals and learned from by
+        EM with missing data.
         """
         kern = fused.kernels()
         family = self.family
@@ -326,14 +370,18 @@ class Mixture:
         else:
             center, scale = np.zeros(D), np.ones(D)
         first = 0           # row of X that row `lo` of the span is
+        if gaps is not None:
+            gaps = missing.Bound(gaps, self, data_units, kern)
         if not X.flags.c_contiguous:
             X, first = np.ascontiguousarray(X[lo:hi]), lo
         for a in range(lo, hi, nb):
             b = min(a + nb, hi)
             m = b - a
-            if not kern.design(X, a - first, m, center, scale, kind, A):
-                raise ModelError(_NOT_FINITE)
+            if not kern.design(X, a - first, m, center, scale, kind, A) and gaps is None:
+                raise _not_finite(X)
             Ab = A[:m]
+            if gaps is not None:
+                gaps.fix(Ab, a)     # the rows' NaN (the only non-finite values) to zero
             if tiled:
                 kern.log_joint(Ab, packed if full else BT, const if full else None, D, R, a)
             elif full:
@@ -342,6 +390,8 @@ class Mixture:
                 kern.full_log_joint(Yb, const, D, R, a)
             else:
                 np.matmul(BT, Ab.T, out=R[:, a:b])
+            if gaps is not None:
+                gaps.log_joint(Ab, a, R)
             if tiled:
                 kern.softmax(R, a, m, lss, out.component, out.log_density, out.confidence)
             else:
@@ -367,6 +417,8 @@ class Mixture:
                             P[k] += Gk.T @ Gk     # numpy runs A^T A as one SYRK
                 else:
                     kern.accumulate_rows(Ab, R, a, wb, floor, P)
+                if gaps is not None:
+                    gaps.moments(Ab, a, R, wb, floor, P)
         return family.split_moments(P, D) if learn else None
 
     @property
@@ -405,7 +457,8 @@ class Mixture:
     def _log_scale_sum(self):
         return float(np.sum(np.log(self.scale)))
 
-    def score(self, X) -> Scores:
+    @_gap_aware()
+    def score(self, X, *, _gaps=None) -> Scores:
         """Score rows without learning from them.
 
         Rows are scored in blocks of a few thousand, so memory beyond the outputs does
@@ -414,17 +467,22 @@ class Mixture:
         Parameters
         ----------
         X : array-like of shape (n_samples, n_features)
-            Finite rows in the data's own units.
+            Rows in the data's own units; NaN marks a missing feature (the row is
+            scored by the marginal over its observed features).
         """
         X = self._rows(X, check=not fused.enabled())
         out = _ScoreBuffer(X.shape[0], self.n_components)
         if fused.enabled():
-            self._fused_span(X, 0, X.shape[0], out)
-            return out.scores(self.ids)
-        operator = self._scoring_operator
-        rows = _Standardiser(self.center, self.scale)
-        for lo in range(0, X.shape[0], SPAN_ROWS):
-            self._score_span(X, lo, min(lo + SPAN_ROWS, X.shape[0]), out, operator, rows)
+            packed = None if _gaps is None else missing.pack(_gaps, self.covariance,
+                                                              self.n_components)
+            self._fused_span(X, 0, X.shape[0], out, gaps=packed)
+        else:
+            operator = self._scoring_operator
+            rows = _Standardiser(self.center, self.scale)
+            for lo in range(0, X.shape[0], SPAN_ROWS):
+                self._score_span(X, lo, min(lo + SPAN_ROWS, X.shape[0]), out, operator, rows)
+            if _gaps is not None:
+                self._score_gaps(X, _gaps, out)
         return out.scores(self.ids)
 
     def _score_z(self, Z, moments_weight=None):
@@ -551,7 +609,8 @@ class Mixture:
         out.update(avg_s0=avg0, avg_s1=avg1, avg_s2=avg2, avg_count=count)
         return out
 
-    def learn(self, X) -> tuple["Mixture", Scores]:
+    @_gap_aware()
+    def learn(self, X, *, _gaps=None) -> tuple["Mixture", Scores]:
         """Score rows, then learn from them with stepwise EM.
 
         Rows are taken in order. Each row is scored with the parameters in force at
@@ -561,6 +620,8 @@ class Mixture:
         Parameters
         ----------
         X : array-like of shape (n_samples, n_features)
+            NaN marks a missing feature: the row is scored by the marginal over its
+            observed features and learned from by EM with missing data.
 
         Returns
         -------
@@ -578,6 +639,10 @@ class Mixture:
         s0, s1, s2, sumsq = self.s0, self.s1, self.s2, self.sumsq
         at = self.n_rows
         pos = 0
+        # rows with gaps: in the compiled kernels on that path, else by core/missing.py
+        packed = None if _gaps is None or not jit else missing.pack(
+            _gaps, self.covariance, self.n_components)
+        gap_rows = None if jit else _gaps
         while pos < n:
             # pieces end at refresh points, which sit at fixed places in the stream;
             # they are scored in cache-sized blocks, then learned from in one go
@@ -585,7 +650,10 @@ class Mixture:
             row_w, keep = self.schedule.row_weights(at, take)
             if jit:
                 b0, b1, b2 = model._fused_span(X, pos, pos + take, out, True, row_w,
-                                               self.resp_floor)
+                                               self.resp_floor, packed)
+            elif gap_rows is not None:
+                b0, b1, b2 = model._learn_span_gaps(X, pos, pos + take, gap_rows, row_w, out,
+                                                    rows)
             else:
                 A = model._score_span(X, pos, pos + take, out, model._scoring_operator, rows)
                 b0, b1, b2 = model._accumulate(A, out.resp_kn[:, pos : pos + take], row_w)
@@ -600,14 +668,18 @@ class Mixture:
         model = model._evolve(s0=s0, s1=s1, s2=s2, sumsq=sumsq, n_rows=at)
         return model, out.scores(self.ids)
 
-    def em_step(self, X) -> tuple["Mixture", float]:
+    @_gap_aware(always_fill=True)
+    def em_step(self, X, *, _gaps=None) -> tuple["Mixture", float]:
         """One full-batch EM iteration (step size 1) on ``X``.
 
         Returns the mixture whose statistics are the batch averages and whose
         parameters are derived from them, and the mean log-density per row of ``X``
-        under the parameters *before* the step (data units).
+        under the parameters *before* the step (data units). NaN marks a missing
+        feature (EM with missing data).
         """
         Z = self.standardise(X)
+        if _gaps is not None:
+            return self._em_step_gaps(Z, _gaps)
         return self._em_step(Z)
 
     def _em_step(self, Z):
@@ -619,6 +691,81 @@ class Mixture:
         params = self._derive(s0, s1, s2, sumsq)
         new = replace(self, s0=s0, s1=s1, s2=s2, sumsq=sumsq, **params)
         return new, float(np.mean(scores.log_density))
+
+    # ---------------------------------------------- rows with missing features
+    def _gap_block(self, X, gaps, out, lo, learn):
+        """Score the rows ``lo + gaps.rows`` of the filled data-unit rows ``X`` by their
+        marginals, into ``out``; with ``learn``, also return their E-step pieces."""
+        rows = lo + gaps.rows
+        Zf = (X[rows] - self.center) / self.scale
+        L, aux = missing.gap_log_joint(self, Zf, gaps.mask, learn)
+        sub = _ScoreBuffer(rows.size, self.n_components)
+        sub.resp_kn[:] = L
+        self._normalise(sub.resp_kn, sub, 0, rows.size)
+        out.put(rows, sub)
+        return sub.resp_kn, aux
+
+    def _score_gaps(self, X, gaps, out):
+        """Overwrite the scores of the rows with gaps (scored filled) by their marginals."""
+        for a in range(0, len(gaps), missing.BLOCK_ROWS):
+            part = Gaps(gaps.rows[a : a + missing.BLOCK_ROWS],
+                        gaps.mask[a : a + missing.BLOCK_ROWS])
+            self._gap_block(X, part, out, 0, learn=False)
+
+    def _learn_span_gaps(self, X, lo, hi, gaps, row_w, out, rows):
+        """The numpy path's statistics of rows ``lo:hi`` of the filled rows ``X`` (weights
+        ``row_w``), scores into ``out``: the complete rows gathered through the ordinary
+        kernels, then the rows with gaps by EM with missing data."""
+        part = gaps.within(lo, hi)
+        if not len(part):
+            A = self._score_span(X, lo, hi, out, self._scoring_operator, rows)
+            return self._accumulate(A, out.resp_kn[:, lo:hi], row_w)
+        keep = np.ones(hi - lo, dtype=bool)
+        keep[part.rows] = False
+        at = np.flatnonzero(keep)
+        sub = _ScoreBuffer(at.size, self.n_components)
+        A = self._score_span(X[lo + at], 0, at.size, sub, self._scoring_operator, rows)
+        stats = self._accumulate(A, sub.resp_kn, row_w[at])
+        out.put(lo + at, sub)
+        return self._learn_gaps(X, lo, part, row_w, out, stats)
+
+    def _learn_gaps(self, X, lo, part, row_w, out, stats):
+        """Add the E-step statistics of the rows ``lo + part.rows`` (weights ``row_w``
+        from row ``lo``) to ``stats``; their scores go into ``out``."""
+        resp, aux = self._gap_block(X, part, out, lo, learn=True)
+        W = resp * row_w[part.rows]
+        if self.resp_floor > 0.0:
+            W[resp < self.resp_floor] = 0.0
+        extra = missing.gap_moments(self, W, aux)
+        return tuple(a + b for a, b in zip(stats, extra))
+
+    def _em_step_gaps(self, Z, gaps):
+        """:meth:`_em_step` on standardised rows with gaps (filled at zero): the complete
+        rows through the ordinary batch E-step, the others by EM with missing data."""
+        n = Z.shape[0]
+        complete = np.ones(n, dtype=bool)
+        complete[gaps.rows] = False
+        log_density = np.empty(n)
+        if complete.any():
+            out, stats = self._score_z(np.ascontiguousarray(Z[complete]), moments_weight=1.0 / n)
+            log_density[complete] = out.log_density
+        else:
+            stats = (np.zeros_like(self.s0), np.zeros_like(self.s1), np.zeros_like(self.s2))
+        out = _ScoreBuffer(n, self.n_components)
+        # in standardised units: the gap kernels add back log-scale terms of the missing
+        # features that standardised rows do not carry
+        unit = self._evolve(center=np.zeros_like(self.center), scale=np.ones_like(self.scale))
+        for a in range(0, len(gaps), missing.BLOCK_ROWS):
+            part = Gaps(gaps.rows[a : a + missing.BLOCK_ROWS],
+                        gaps.mask[a : a + missing.BLOCK_ROWS])
+            resp, aux = unit._gap_block(Z, part, out, 0, learn=True)
+            stats = tuple(x + y for x, y in zip(stats, missing.gap_moments(self, resp / n, aux)))
+        log_density[gaps.rows] = (out.log_density[gaps.rows] - self._log_scale_sum
+                                  + gaps.mask @ np.log(self.scale))
+        s0, s1, s2 = stats
+        params = self._derive(s0, s1, s2, 1.0 / n)
+        new = replace(self, s0=s0, s1=s1, s2=s2, sumsq=1.0 / n, **params)
+        return new, float(np.mean(log_density))
 
     # ------------------------------------------------------------- reporting
     def data_means(self) -> np.ndarray:
@@ -761,6 +908,13 @@ class _ScoreBuffer:
         self.log_density = np.empty(n_samples)
         self.component = np.empty(n_samples, dtype=np.intp)
         self.confidence = np.empty(n_samples)
+
+    def put(self, rows, sub: "_ScoreBuffer") -> None:
+        """The scores of ``sub`` into ``rows``."""
+        self.resp_kn[:, rows] = sub.resp_kn
+        self.log_density[rows] = sub.log_density
+        self.component[rows] = sub.component
+        self.confidence[rows] = sub.confidence
 
     def scores(self, ids) -> Scores:
         return Scores(

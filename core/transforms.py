@@ -298,8 +298,9 @@ class FeatureTransforms:
         X = self._check(X)
         lambdas = self.lambdas.copy()
         for j, kind in enumerate(self.kinds):
-            if kind == "yeo-johnson":
-                lambdas[j] = fit_yeo_johnson(X[:, j])
+            if kind == "yeo-johnson":   # on the values present (NaN: a missing value)
+                col = X[:, j]
+                lambdas[j] = fit_yeo_johnson(col[~np.isnan(col)])
         return FeatureTransforms(self.kinds, lambdas)
 
     def inside(self, X) -> np.ndarray:
@@ -346,6 +347,63 @@ class FeatureTransforms:
                 Y[:, j] = _KERNELS[kind][0](X[:, j], self.lambdas[j])
         inside &= np.all(np.isfinite(Y), axis=1)
         return Y, inside
+
+    def inside_observed(self, X) -> np.ndarray:
+        """:meth:`inside` with NaN as a missing value: a row is inside when every value
+        present is finite and inside its transform's domain.
+
+        Parameters
+        ----------
+        X : ndarray of shape (n_samples, n_features)
+
+        Returns
+        -------
+        inside : ndarray of shape (n_samples,), bool
+        """
+        X = self._check(X)
+        ok = np.ones(X.shape[0], dtype=bool)
+        with np.errstate(invalid="ignore"):
+            for j, kind in enumerate(self.kinds):
+                col = X[:, j]
+                ok &= np.isnan(col) | (np.isfinite(col) & _KERNELS[kind][3](col))
+        return ok
+
+    def forward_observed(self, X) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """:meth:`forward` and :meth:`log_jacobian` of rows with missing values (NaN).
+
+        A missing value stays NaN and adds nothing to the log-Jacobian: the density of
+        the values present is the marginal of the observed features, whose Jacobian is
+        that of those features alone.
+
+        Parameters
+        ----------
+        X : ndarray of shape (n_samples, n_features)
+
+        Returns
+        -------
+        Y : ndarray of shape (n_samples, n_features)
+            Transformed rows, NaN where ``X`` is NaN.
+        inside : ndarray of shape (n_samples,), bool
+            Every value present inside its domain, with a finite transform.
+        log_jacobian : ndarray of shape (n_samples,)
+            Sum over the values present (0 for a row outside).
+        """
+        X = self._check(X)
+        self._need_fit()
+        Y = np.empty_like(X)
+        inside = self.inside_observed(X)
+        jac = np.zeros(X.shape[0])
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            for j, kind in enumerate(self.kinds):
+                col = X[:, j]
+                Y[:, j] = _KERNELS[kind][0](col, self.lambdas[j])
+                inside &= np.isnan(col) | np.isfinite(Y[:, j])
+            for j, kind in enumerate(self.kinds):
+                if kind != "none":
+                    col = X[:, j]
+                    term = _KERNELS[kind][2](col, self.lambdas[j])
+                    jac += np.where(np.isnan(col) | ~inside, 0.0, term)
+        return Y, inside, jac
 
     def inverse(self, Y) -> np.ndarray:
         """Rows back in the data's units (NaN outside a transform's range).

@@ -15,12 +15,12 @@ from shoal.config import ConfigError, Settings, load_config, parse_config
 from shoal.daemon.delivery import AlertSender
 from shoal.daemon.errors import StateError, UsageError
 from shoal.daemon.gate import input_kind
-from shoal.daemon.layout import StateLock, prepare_folders
+from shoal.daemon.contract import open_model_store
+from shoal.daemon.layout import StateLock, open_store, prepare_folders
 from shoal.daemon.logs import setup_logging
 from shoal.daemon.pipeline import Pipeline
 from shoal.daemon.progress import progress
 from shoal.daemon.report import parse_since
-from shoal.daemon.store import StateStore
 
 __all__ = ["add_alert_commands", "alert_delivery", "deliver_alerts", "format_alert", "replay",
            "replay_counts"]
@@ -64,12 +64,15 @@ def format_alert(payload: dict, created: float | None = None, prefix: str = "") 
 # ------------------------------------------------------------------------------ alerts
 
 
-def _cmd_alerts(args, open_read_parts) -> int:
+def _cmd_alerts(args, open_read_store) -> int:
     settings = load_config(args.config)
     setup_logging(settings.log_level)
     since = parse_since(args.since) if args.since else None
-    with open_read_parts(settings) as (_layout, store, _pipeline):   # never writes
+    store = open_read_store(settings)   # never writes
+    try:
         rows = store.alerts(since=since)
+    finally:
+        store.close()
     if args.json:
         print(json.dumps(rows, indent=2))
         return 0
@@ -107,7 +110,7 @@ def _cmd_rebaseline(args, open_parts) -> int:
         if "in use by another shoal process" not in str(exc):
             raise
         layout = prepare_folders(settings)
-        store = StateStore(layout.db)
+        store = open_store(layout)
         try:
             store.request_rebaseline(args.note)
         finally:
@@ -225,7 +228,7 @@ def replay(config: Path, folder_in: Path, *, state_dir: str | None = None,
     summary = {"inputs": len(files), "rows": 0, "alerts": [], "state": str(iso),
                "outcomes": {}}
     with StateLock(layout.lock):
-        store = StateStore(layout.db)
+        store = open_model_store(layout, settings, write=True)
         try:
             pipeline = Pipeline(settings, layout, store)
             for path in progress(files, total=len(files), desc="replay", unit="file"):
@@ -275,10 +278,10 @@ def _cmd_replay(args) -> int:
 # ---------------------------------------------------------------------------- commands
 
 
-def add_alert_commands(cmd, with_config, open_parts, open_read_parts) -> None:
+def add_alert_commands(cmd, with_config, open_parts, open_read_store) -> None:
     """Register ``alerts``, ``rebaseline`` and ``replay`` on the ``shoal`` parser."""
     sp = with_config(cmd("alerts", "list drift alerts (raised and cleared), oldest first",
-                         lambda args: _cmd_alerts(args, open_read_parts)))
+                         lambda args: _cmd_alerts(args, open_read_store)))
     sp.add_argument("--since", metavar="WHEN",
                     help="only alerts raised since WHEN: 30m, 2h, 7d or an ISO date/time")
     sp.add_argument("--json", action="store_true", help="print JSON instead of text")

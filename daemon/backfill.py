@@ -62,7 +62,9 @@ from shoal.daemon.errors import (
     ServiceError,
     UsageError,
 )
+from shoal.daemon.gaps import observed_counts
 from shoal.daemon.gate import input_kind
+from shoal.daemon.contract import open_model_store
 from shoal.daemon.layout import Layout, StateLock, prepare_folders, remove_stale_temps
 from shoal.daemon.logs import log_event
 from shoal.daemon.pipeline import (
@@ -331,7 +333,7 @@ def _write_labels(facts: FileFacts, settings: Settings, frame: Frame, segment, c
         except InputRejected as exc:
             raise BackfillError(f"{facts.name}: {exc.detail}") from exc
     table = labels_table(passthrough, frame.valid, segment, confidence, log_density,
-                         unusual_below, version)
+                         unusual_below, version, observed=observed_counts(frame.features))
     if settings.output.segment_names:
         (table,) = with_segment_names([table], dict(names))
     target = Path(outbox) / labels_name(facts.name, facts.digest, fmt)
@@ -454,7 +456,7 @@ def backfill(settings: Settings, sources, *, client=None, scheduler: str | None 
     layout = prepare_folders(settings)
     with StateLock(layout.lock):
         remove_stale_temps(layout)
-        store = StateStore(layout.db, checkpoints_kept=settings.learning.checkpoints_kept)
+        store = open_model_store(layout, settings, write=True)
         try:
             pipeline = Pipeline(settings, layout, store, stop=stop, wall=wall)
             if client is not None:

@@ -41,9 +41,11 @@ from shoal.core import ShoalError  # noqa: E402
 from shoal.daemon.alert_commands import add_alert_commands, alert_delivery  # noqa: E402
 from shoal.daemon.backfill import add_backfill_command  # noqa: E402
 from shoal.daemon.errors import InputRejected, ServiceError, UsageError  # noqa: E402
+from shoal.daemon.contract import check_model_contract, open_model_store  # noqa: E402
 from shoal.daemon.layout import (  # noqa: E402
     Layout,
     StateLock,
+    open_store,
     prepare_folders,
     remove_stale_temps,
 )
@@ -55,7 +57,6 @@ from shoal.daemon.quarantine_commands import add_quarantine_commands  # noqa: E4
 from shoal.daemon.retention import RetentionKeeper, add_prune_command  # noqa: E402
 from shoal.daemon.segment_names import add_name_command  # noqa: E402
 from shoal.daemon.readout import StateReader  # noqa: E402
-from shoal.daemon.store import StateStore  # noqa: E402
 from shoal.daemon.transform_commands import add_transform_commands  # noqa: E402
 from shoal.daemon.writer import display_name  # noqa: E402
 
@@ -105,7 +106,7 @@ def build_parser() -> argparse.ArgumentParser:
                     help="also list the segments that retired or merged away")
     add_operating_commands(cmd, with_config)   # report, status
     add_alert_commands(cmd, with_config, open_service_parts,   # alerts, rebaseline, replay
-                       open_read_parts)
+                       open_read_store)
     add_backfill_command(cmd, with_config, _stop_on_signals)   # backfill (Dask)
     add_transform_commands(cmd, with_config)   # suggest-transforms
     add_prune_command(cmd, with_config, open_service_parts)    # prune (retention)
@@ -131,7 +132,7 @@ def open_service_parts(settings: Settings, *, lock: bool = True):
     try:
         if lock:
             remove_stale_temps(layout)
-        store = StateStore(layout.db, checkpoints_kept=settings.learning.checkpoints_kept)
+        store = open_model_store(layout, settings, write=lock)
         pipeline = Pipeline(settings, layout, store)
         yield layout, store, pipeline
     finally:
@@ -141,19 +142,24 @@ def open_service_parts(settings: Settings, *, lock: bool = True):
             state_lock.release()
 
 
-@contextlib.contextmanager
-def open_read_parts(settings: Settings):
-    """The state opened read-only (no folder made, no lock, no write: a read-only state
-    folder works) with a pipeline on it, for the commands that only read; a state folder
-    with no store yet is prepared as the service would."""
+def open_read_store(settings: Settings):
+    """The state store opened read-only (no folder made, no lock, no write: a read-only
+    state folder works), for the commands that only read; a state folder with no store
+    yet is prepared as the service would prepare it."""
     layout = Layout.of(settings)
     if not layout.db.exists():
-        with open_service_parts(settings, lock=False) as parts:
-            yield parts
-        return
-    store = StateReader(layout.db)
+        return open_store(prepare_folders(settings))
+    return StateReader(layout.db)
+
+
+@contextlib.contextmanager
+def open_read_parts(settings: Settings):
+    """:func:`open_read_store` with its contract checked against the config and a pipeline
+    on it (``shoal label``)."""
+    store = open_read_store(settings)
     try:
-        yield layout, store, Pipeline(settings, layout, store)
+        check_model_contract(store, settings, write=False)
+        yield Layout.of(settings), store, Pipeline(settings, Layout.of(settings), store)
     finally:
         store.close()
 
@@ -271,15 +277,42 @@ def _cmd_segments(args) -> int:
     from shoal.daemon.summary import format_segments, segment_summary
 
     settings = _load(args)
-    with open_read_parts(settings) as (layout, store, pipeline):
+    store = open_read_store(settings)
+    try:   # the stored model as it is, whatever the config says (it says how it differs)
         summary = segment_summary(store, settings, include_gone=args.all)
+    finally:
+        store.close()
     print(json.dumps(summary, indent=2) if args.json else format_segments(summary))
     return 0
 
 
+def contract_note(settings: Settings) -> str | None:
+    """Everything ``shoal config`` checks beyond loading: the model's contract in an
+    existing state store (:mod:`shoal.daemon.contract`), read-only. ConfigError (exit 2)
+    names each key that differs; returns a line saying what was compared, or None."""
+    from shoal.daemon.readout import StateReader
+
+    layout = Layout.of(settings)
+    if not layout.db.is_file() or layout.db.stat().st_size == 0:
+        return None
+    reader = StateReader(layout.db)
+    try:
+        adopted = check_model_contract(reader, settings, write=False)
+    finally:
+        reader.close()
+    note = f"# the model's contract in {layout.db} matches"
+    if adopted:
+        note += " (taken going forward: " + ", ".join(
+            f"{d['key']} {d['stored']!r} -> {d['configured']!r}" for d in adopted) + ")"
+    return note
+
+
 def _cmd_config(args) -> int:
     settings = load_config(args.config)
+    note = contract_note(settings)
     print(f"# {args.config}: valid. Effective configuration:")
+    if note:
+        print(note)
     print(dump_settings(settings), end="")
     return 0
 

@@ -51,7 +51,7 @@ import urllib.parse
 from importlib import metadata
 from pathlib import Path
 
-from shoal.config import Settings
+from shoal.config import ConfigError, Settings, read_secret_file
 from shoal.config.settings import WebhookSettings
 from shoal.daemon.logs import log_event
 from shoal.daemon.store import StateStore
@@ -229,10 +229,11 @@ def _read_secret(hook: WebhookSettings) -> bytes | None:
     """The webhook's HMAC key (see :func:`signing_key`), or None after an error log line."""
     if hook.secret_file is not None:
         where = {"file": str(hook.secret_file)}
-        try:
-            secret = Path(hook.secret_file).read_bytes().strip()
-        except OSError as exc:
-            log_event("webhook_secret_unreadable", logging.ERROR, **where, detail=exc.strerror)
+        try:   # a bounded regular file, opened without blocking (not /dev/zero, a FIFO)
+            secret = read_secret_file(hook.secret_file)
+        except (OSError, ConfigError) as exc:
+            log_event("webhook_secret_unreadable", logging.ERROR, **where,
+                      detail=exc.strerror if isinstance(exc, OSError) else str(exc))
             return None
     else:
         where = {"variable": hook.secret_env}

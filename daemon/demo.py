@@ -21,13 +21,18 @@ from shoal.config import load_config
 from shoal.daemon.alert_commands import format_alert
 from shoal.daemon.delivery import AlertSender
 from shoal.daemon.errors import UsageError
-from shoal.daemon.layout import StateLock, prepare_folders, remove_stale_temps
+from shoal.daemon.layout import StateLock, open_store, prepare_folders, remove_stale_temps
 from shoal.daemon.logs import setup_logging
 from shoal.daemon.pipeline import Pipeline
 from shoal.daemon import scenario
-from shoal.daemon.scenario import FEATURE_UNITS, FEATURES, demo_changes, describe_states
+from shoal.daemon.scenario import (
+    FEATURE_UNITS,
+    FEATURES,
+    demo_changes,
+    demo_dropout,
+    describe_states,
+)
 from shoal.daemon.service import Service
-from shoal.daemon.store import StateStore
 from shoal.daemon.summary import format_segments, segment_summary
 
 __all__ = ["run_demo", "DEMO_CONFIG"]
@@ -104,7 +109,7 @@ def run_demo(folder: Path, drops: int | None = None, rows_per_file: int = 4000,
           f"invented data) into {layout.inbox}")
     with StateLock(layout.lock):
         remove_stale_temps(layout)
-        store = StateStore(layout.db)
+        store = open_store(layout)
         try:
             pipeline = Pipeline(settings, layout, store)
             done = []
@@ -147,9 +152,11 @@ def _print_alerts(alerts: list, settings, total_rows: int) -> None:
     scenario's changes were injected for comparison."""
     drift, new_state = demo_changes(total_rows)
     rise = drift.amps_per_10k_rows * (total_rows - drift.start_row) / 10_000
+    out = demo_dropout(total_rows)
     print(f"injected: {drift.unit}'s compressor current rising from row {drift.start_row} "
           f"(+{rise:.1f} A by row {total_rows}); ice build-up in {new_state.share:.0%} of rows "
-          f"from row {new_state.start_row}")
+          f"from row {new_state.start_row}; {out.feature} not reported by "
+          f"{', '.join(out.units)} for rows {out.start_row}-{out.start_row + out.n_rows - 1}")
     print(f"drift alerts and segment events ({len(alerts)}; baseline taken after "
           f"{settings.drift.settle_rows} rows past warm-up):")
     if not alerts:
@@ -158,13 +165,20 @@ def _print_alerts(alerts: list, settings, total_rows: int) -> None:
         print(format_alert(a["payload"], prefix="  "))
 
 
+def demo_table(columns: dict) -> pa.Table:
+    """A drop's table: a missing reading (NaN) is written as null, as a logger would."""
+    return pa.table({name: pa.array(col, mask=np.isnan(col)) if name in FEATURES
+                     else col for name, col in columns.items()})
+
+
 def _feed(inbox: Path, n_files: int, rows_per_file: int, seed: int, pause: float) -> None:
     from shoal.daemon.drills import write_drop
 
     drift, new_state = demo_changes(n_files * rows_per_file)
+    dropout = demo_dropout(n_files * rows_per_file)
     for i, columns in enumerate(scenario.drops(n_files, rows_per_file, seed, drift,
-                                                        new_state)):
+                                                        new_state, dropout=dropout)):
         columns.pop("state")
         name = f"fleet-{i:04d}." + ("csv" if i % 4 == 3 else "parquet")
-        write_drop(pa.table(columns), inbox, name)
+        write_drop(demo_table(columns), inbox, name)
         time.sleep(pause)

@@ -9,8 +9,10 @@ from pathlib import Path
 
 from shoal.config import ConfigError, Settings
 from shoal.daemon.errors import StateError
+from shoal.daemon.store import StateStore
 
-__all__ = ["Layout", "prepare_folders", "StateLock", "remove_stale_temps"]
+__all__ = ["Layout", "prepare_folders", "StateLock", "remove_stale_temps", "folder_use",
+           "open_store"]
 
 STATE_MODE = 0o700
 
@@ -34,8 +36,18 @@ class Layout:
 
 
 def _ensure_dir(path: Path, key: str, mode: int | None) -> None:
+    """Make ``path`` if missing (with ``mode``, whatever the umask) and check it is a
+    writable folder. A folder that exists keeps its mode: an operator's choice, and
+    possibly shared (shoal sets modes only on folders it makes)."""
+    made = False
     try:
-        path.mkdir(parents=True, exist_ok=True, mode=mode or 0o777)
+        if not path.is_dir():
+            path.parent.mkdir(parents=True, exist_ok=True)
+            try:
+                path.mkdir(mode=mode or 0o777)
+                made = True
+            except FileExistsError:
+                pass   # made meanwhile by another, or not a folder (found out below)
     except OSError as exc:
         raise ConfigError(f"{key}: expected a folder that exists or can be created, "
                           f"found {path} ({exc.strerror})") from exc
@@ -44,7 +56,7 @@ def _ensure_dir(path: Path, key: str, mode: int | None) -> None:
     # a state folder that exists but cannot be written is unusable (exit 3); the read-only
     # commands (segments, alerts, status, label) do not come here
     unusable = StateError if key == "state" else ConfigError
-    if mode is not None:
+    if mode is not None and made:
         try:
             os.chmod(path, mode)
         except OSError as exc:
@@ -117,3 +129,27 @@ def remove_stale_temps(layout: Layout) -> int:
                 path.unlink()
                 removed += 1
     return removed
+
+
+def _count(folder: Path, pattern: str) -> int:
+    try:
+        return sum(1 for p in folder.glob(pattern) if not p.name.startswith("."))
+    except OSError:
+        return 0
+
+
+def folder_use(layout: Layout) -> str | None:
+    """What shows that this state folder was used before (labels in the outbox, inputs in
+    ``processed/`` or ``quarantine/``), or None: a store missing or emptied in a used
+    folder is refused, not made afresh (see :class:`~shoal.daemon.store.StateStore`)."""
+    found = [f"{n} {what}" for n, what in (
+        (_count(layout.outbox, "*.labels.*"), f"labels files in {layout.outbox}"),
+        (_count(layout.processed, "*"), f"inputs in {layout.processed}"),
+        (_count(layout.quarantine, "*.json"), f"quarantine records in {layout.quarantine}"),
+    ) if n]
+    return "; ".join(found) or None
+
+
+def open_store(layout: Layout, **kwargs) -> StateStore:
+    """The state store of ``layout``, refused if it was lost from a used folder."""
+    return StateStore(layout.db, used_evidence=lambda: folder_use(layout), **kwargs)

@@ -53,6 +53,15 @@ from shoal.core.drift import (
 from shoal.daemon.logs import log_event
 from shoal.daemon.times import iso_utc
 from shoal.daemon.transforming import moves_in_data_units
+from shoal.daemon.missing_drift import (
+    add_gap_sums,
+    gap_piece,
+    merge_gap_sums,
+    missing_note,
+    missing_share_statistics,
+    observed_feature_means,
+    window_shares,
+)
 
 __all__ = ["DriftMonitor", "InputWatch", "alert_id", "STATISTIC_UNITS", "SEGMENT_STATISTICS",
            "PAYLOAD_SCHEMA_VERSION"]
@@ -61,8 +70,9 @@ STATE_FORMAT = 1
 # Version of the alert payload's fields (README, "Alert payload"); a change to a field's
 # name or meaning bumps it, so a receiver can tell which fields to expect.
 PAYLOAD_SCHEMA_VERSION = 1
-SEGMENT_STATISTICS = ("mean_shift", "spread_ratio", "weight_change")
+SEGMENT_STATISTICS = ("mean_shift", "spread_ratio", "weight_change", "missing_share")
 STATISTIC_UNITS = {
+    "missing_share": "share of rows",
     "mean_shift": "baseline sds",
     "spread_ratio": "ratio of sds",
     "weight_change": "share of rows",
@@ -132,6 +142,7 @@ def _add_sums(segments: dict, sums: dict, add) -> None:
         acc["Q"] += float(sums["Q"][k])
         acc["M"] = add(acc["M"], sums["M"][k])
         acc["S"] = add(acc["S"], sums["S"][k])
+        merge_gap_sums(acc, sums, k, add)
 
 
 def _widen(pair, lo, hi):
@@ -310,6 +321,7 @@ class InputWatch:
         if self._rows_buffer is None or len(self._rows_buffer) < n:
             self._rows_buffer = np.empty((n, X.shape[1]))
         Xc = np.subtract(X, mixture.center, out=self._rows_buffer[:n])
+        gaps = gap_piece(mixture, X, Xc, resp_kn)    # rows with missing features, or None
         ld = scores.log_density
         win["n"] += n
         win["ld"] += float(ld.sum())
@@ -328,7 +340,9 @@ class InputWatch:
         # Second moments from the rows that carry weight for each segment: rows under
         # _NEGLIGIBLE add less than that share of a row each, far below the statistics'
         # noise, and on separated segments most rows are skipped.
-        add_segment_scatter(sums["S"], Xc, resp_kn, _NEGLIGIBLE)
+        add_segment_scatter(sums["S"], Xc, resp_kn if gaps is None else gaps.resp, _NEGLIGIBLE)
+        if gaps is not None:
+            add_gap_sums(sums, gaps)
         limit = self._state.get("baseline_info", {}) or {}
         below = limit.get("unusual_below")
         if below is not None:
@@ -409,6 +423,7 @@ class InputWatch:
         if st["baseline"] is None:
             if first_window_row + win["n"] >= self.drift.settle_rows:
                 self._take_baseline(mixture, st["last_ld"], info)
+                st["baseline_info"]["missing_share"] = window_shares(win["segments"])
             return
         self._evaluate(win, info, segments)
 
@@ -460,6 +475,7 @@ class InputWatch:
         st["rebase"] = None
         self._take_baseline(mixture, ref.log_density, info, ref=ref)
         st["baseline_info"]["note"] = rebase["note"]
+        st["baseline_info"]["missing_share"] = window_shares(sums["segments"])
 
     def _evaluate(self, win, info, segments: dict | None = None) -> None:
         st = self.state
@@ -524,6 +540,9 @@ class InputWatch:
             n_effs.append(acc["T"] * acc["T"] / acc["Q"])
             means.append(center + dev)
             covs.append(np.asarray(acc["S"]) / acc["T"] - np.outer(dev, dev))
+        missing_share_statistics(segments, ref.ids.tolist(), ref.n_eff,
+                                 (self._state.get("baseline_info") or {}).get("missing_share"),
+                                 d, values, noise, detail)
         if not seen:
             return self._fit_statistics(win, ref, values, noise, detail)
         at = np.array(seen)
@@ -553,13 +572,17 @@ class InputWatch:
                 noise[(sid, "spread_ratio")] = float(spread[i]) / (2 * d)
         if self.monitor.wants_feature_shift():
             ref_sd = np.sqrt(np.diagonal(ref.covariances[at], axis1=1, axis2=2))
-            z = np.abs(means - ref.means[at]) / ref_sd
+            # each feature over the rows that observed it (missing_drift)
+            f_means, f_neff = observed_feature_means(segments, ids, center, means, n_effs)
+            z = np.abs(f_means - ref.means[at]) / ref_sd
             inv_ref = np.where(np.isinf(ref_n), 0.0, 1.0 / ref_n)
-            f_noise = np.sqrt(1.0 / n_effs + inv_ref)
+            with np.errstate(divide="ignore"):
+                f_noise = np.sqrt(1.0 / f_neff + inv_ref[:, None])
             for i, sid in enumerate(ids):
                 for j, f in enumerate(features):
-                    values[(sid, _feature_stat(f))] = float(z[i, j])
-                    noise[(sid, _feature_stat(f))] = float(f_noise[i])
+                    if f_neff[i, j] > 0.0:
+                        values[(sid, _feature_stat(f))] = float(z[i, j])
+                        noise[(sid, _feature_stat(f))] = float(f_noise[i, j])
         return self._fit_statistics(win, ref, values, noise, detail)
 
     def _fit_statistics(self, win, ref: Baseline, values, noise, detail):
@@ -660,6 +683,8 @@ class InputWatch:
         if seg == WHOLE_MODEL:
             return self._explain_fit(detail.get(WHOLE_MODEL), ref)
         info = detail.get(seg, {})
+        if stat == "missing_share":
+            return self._explain_missing(seg, info)
         if "mean" not in info:
             share = info.get("share", 0.0)
             return {"summary": f"segment {seg} took {share:.1%} of the window's rows "
@@ -692,7 +717,27 @@ class InputWatch:
                               + _moves(moved))
         else:
             out["summary"] = f"segment {seg} moved: " + _moves(moved)
+        note = missing_note(info, names)
+        if note:
+            out["summary"] += f"; {note}"
         return out
+
+    def _explain_missing(self, seg, info) -> dict:
+        names = self.monitor.features
+        m = info.get("missing") or {}
+        if not m:
+            return {"summary": f"segment {seg} had no rows to compare"}
+        f = names[m["feature"]]
+        if m["share"] == m["baseline_share"]:
+            summary = (f"segment {seg}: no feature missing from a share of its rows other "
+                       "than the baseline's")
+        else:
+            summary = (f"feature {f} missing from {m['share']:.1%} of segment {seg}'s rows "
+                       f"(baseline {m['baseline_share']:.1%})")
+        return {"summary": summary,
+                "feature": f, "share": m["share"], "baseline_share": m["baseline_share"],
+                "shares": {names[j]: s for j, s in enumerate(m["shares"])},
+                "effective_rows": info.get("n_eff")}
 
     def _explain_fit(self, info, ref: Baseline) -> dict:
         if not info:
@@ -735,6 +780,9 @@ def _merge_sums(into: dict | None, win: dict) -> dict:
         old["Q"] += acc["Q"]
         old["M"] = _add(old["M"], acc["M"])
         old["S"] = _add(old["S"], acc["S"])
+        for key in ("miss", "miss2", "imputed"):
+            if acc.get(key) is not None:
+                old[key] = _add(old.get(key), acc[key])
     return into
 
 

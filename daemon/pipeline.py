@@ -64,6 +64,7 @@ from shoal.daemon.errors import (
     ServiceError,
     StateError,
 )
+from shoal.daemon.gaps import Unusual, admit, complete_rows, frame_observed, observed_counts
 from shoal.daemon.gate import input_kind
 from shoal.daemon.layout import Layout
 from shoal.daemon.logs import log_event
@@ -227,10 +228,19 @@ class Pipeline:
         if cp.version != version:
             raise StateError(f"state store's latest checkpoint is version {cp.version} but "
                              f"the model version is {version}")
+        meta = cp.meta
+        schedule = meta.get("schedule")
+        half_life = self.settings.half_life_rows
+        if isinstance(schedule, dict) and None not in (schedule.get("half_life_rows"), half_life) \
+                and schedule["half_life_rows"] != half_life:
+            # a new half-life is taken from the next row on (shoal.daemon.contract)
+            meta = {**meta, "schedule": {**schedule, "half_life_rows": half_life}}
         try:
-            mixture = Mixture.from_state(cp.arrays, cp.meta)
-        except ModelError as exc:
-            raise StateError(f"checkpoint {cp.version} cannot be loaded: {exc}") from exc
+            mixture = Mixture.from_state(cp.arrays, meta)
+        except (ModelError, KeyError, TypeError, ValueError, AttributeError) as exc:
+            raise StateError(f"checkpoint {cp.version} in {self.store.path} cannot be loaded "
+                             f"({type(exc).__name__}: {exc}); the state is unusable: restore "
+                             "the state folder from a backup") from exc
         if mixture.n_features != len(self.settings.features):
             raise StateError(f"the stored model has {mixture.n_features} features but the "
                              f"config lists {len(self.settings.features)}; use a new state "
@@ -599,11 +609,10 @@ class Pipeline:
         kept: list[tuple] = []   # before the first model: rows kept to be labelled by it
 
         def tables(frames):
-            frames = count.counted(frames, st.mixture)
+            frames = count.counted(frames, st.mixture, self._floor())
             if st.mixture is None:   # kept once counted: which rows are valid is known
                 frames = _kept(frames, kept)
-            return _scored_tables(frames, st.mixture, st.extra.get("unusual_below", -np.inf),
-                                  st.version)
+            return _scored_tables(frames, st.mixture, Unusual.from_extra(st.extra), st.version)
         labels, _ = self._write(frames, tables, entry, lambda: st.version,
                                 unchanged=unchanged)
         entry = _with(entry, outcome="duplicate", labels=labels.name, rows=count.rows,
@@ -655,7 +664,7 @@ class Pipeline:
             # the inputs before this one wait with null segments: the first model labels
             # them, and their rows count in the segments' row counts (as in backfill)
             extra = _count_rows(extra, self._label_warmup_inputs(
-                mixture, run.transforms, run.first_unusual_below, version))
+                mixture, run.transforms, run.first_unusual, version))
         if mixture is not None:
             extra = self._born(extra, mixture, version)
         if watch is not None and watch.state is not None:
@@ -716,7 +725,7 @@ class Pipeline:
         return result
 
     def _label_warmup_inputs(self, mixture: Mixture, transforms: FeatureTransforms | None,
-                             unusual_below: float, version: int) -> list[np.ndarray]:
+                             unusual: Unusual, version: int) -> list[np.ndarray]:
         """Write the labels of the inputs taken before the first model again, scored by
         it (``version``: the first model's). Each file is replaced atomically before the
         commit of the input that made the model; a crash before that commit makes the same
@@ -737,10 +746,11 @@ class Pipeline:
                     valid = valid.copy()
                     valid[np.flatnonzero(valid)[~inside]] = False
             scores = mixture.score(X)
+            below = unusual.per_row(observed_counts(X), X.shape[1])
             if waiting.learned:   # a duplicate's rows are labelled, not counted
                 given.append(scores.segment)
             try:
-                relabel_file(path, fmt, valid, scores, unusual_below, version,
+                relabel_file(path, fmt, valid, scores, below, version,
                              jacobian, self._named, self._labels_schema)
             except FileNotFoundError:
                 log_event("warmup_labels_missing", logging.WARNING, labels=waiting.labels)
@@ -801,6 +811,10 @@ class Pipeline:
         return StepSchedule(alpha=s.learning.step_exponent, i0=None,
                             half_life_rows=s.half_life_rows)
 
+    def _floor(self) -> int:
+        """Features a row needs present to be scored and learned (``min_observed``)."""
+        return self.settings.learning.observed_floor(len(self.settings.features))
+
     def _life(self, state: dict | None, version: int, file: str) -> LifeWatch | None:
         """Births, retirements and merges for one input (None when switched off)."""
         if not self.settings.lifecycle.enabled:
@@ -822,10 +836,14 @@ class Pipeline:
             buffered = self.state.warmup
         if buffered is None:
             buffered = np.empty((0, X.shape[1]))
-        if len(buffered) + len(X) < s.warmup_rows:
+        # the first model is fitted on complete rows only: warmup_rows of them
+        have = int(np.count_nonzero(observed_counts(buffered) == X.shape[1]))
+        complete_x = np.cumsum(observed_counts(X) == X.shape[1])
+        if have + (int(complete_x[-1]) if len(X) else 0) < s.warmup_rows:
             return None, None, X, {}
-        need = max(s.warmup_rows - len(buffered), 0)
-        Xw = np.concatenate([buffered, X[:need]])
+        need = int(np.searchsorted(complete_x, s.warmup_rows - have) + 1) \
+            if have < s.warmup_rows else 0
+        Xw = complete_rows(np.concatenate([buffered, X[:need]]))
         self._check_stop()
         try:
             if s.segments.fixed:
@@ -846,15 +864,15 @@ class Pipeline:
                   bic=[{k: (float(v) if k != "n_components" else int(v)) for k, v in r.items()}
                        for r in table] if table else None)
         head = mixture.score(X[:need])
-        extra = {"unusual_below": float(np.quantile(mixture.score(Xw).log_density,
-                                                     s.output.unusual_quantile))}
+        extra = Unusual.at_warm_up(mixture, Xw, s.output.unusual_quantile, self._floor(),
+                                   s.seed).to_extra({})
         if watch is not None:
-            watch.start(stream_offset=len(Xw))
+            watch.start(stream_offset=len(buffered) + need)
             watch.unusual_below = extra["unusual_below"]
             if watch.times is not None:
                 watch.times = watch.times[need:]
         if life is not None:
-            life.start(stream_offset=len(Xw))
+            life.start(stream_offset=len(buffered) + need)
         mixture, tail = self._learn_chunks(mixture, X[need:], watch, life)
         return mixture, _concat(head, tail), None, extra
 
@@ -881,7 +899,7 @@ class Pipeline:
                 if watch is not None:
                     watch.observe(mixture, piece, scores, start)
                 if life is not None:
-                    life.observe(before, piece, scores)
+                    life.observe(before, piece, _complete_only(piece, scores))
                 parts.append(scores)
                 start += take
         except (ModelError, np.linalg.LinAlgError) as exc:
@@ -897,14 +915,15 @@ class Pipeline:
         extra["segment_born"] = born
         return extra
 
-    def _after_scoring(self, extra: dict, scores, mixture: Mixture) -> dict:
+    def _after_scoring(self, extra: dict, scores, mixture: Mixture,
+                       observed: np.ndarray | None = None) -> dict:
         extra = _count_rows(dict(extra), [scores.segment])
         q = self.settings.output.unusual_quantile
         if len(scores.log_density) and "unusual_below" in extra:
-            w = len(scores.log_density) / (len(scores.log_density) + _UNUSUAL_MEMORY_ROWS)
-            here = linear_quantile(scores.log_density, q)
-            extra["unusual_below"] = float(extra["unusual_below"] +
-                                           w * (here - extra["unusual_below"]))
+            unusual = Unusual.from_extra(extra).follow(
+                scores.log_density, observed, mixture.n_features, q, _UNUSUAL_MEMORY_ROWS,
+                linear_quantile)
+            extra = unusual.to_extra(extra)
         return extra
 
     # -- endings -------------------------------------------------------------------
@@ -977,8 +996,8 @@ class Pipeline:
             with self._frames(f, kind, os.fstat(f.fileno()).st_size >= _THREADED_BYTES) \
                     as frames:
                 tables = self._named(_scored_tables(
-                    count.counted(frames, st.mixture), st.mixture,
-                    st.extra.get("unusual_below", -np.inf), st.version))
+                    count.counted(frames, st.mixture, self._floor()), st.mixture,
+                    Unusual.from_extra(st.extra), st.version))
                 write_labels_stream(tables, out, fmt, lambda: _labels_metadata(
                     digest, algorithm, display_name(path.name), st.version),
                     threaded=frames.threaded)
@@ -1071,10 +1090,13 @@ class _Count:
     def __init__(self):
         self.rows = self.invalid = self.outside = 0
 
-    def counted(self, frames: Iterable[Frame], mixture: Mixture | None = None):
-        """The frames, counted; with a model, rows beyond its range marked invalid first
-        (as when they are learned, so a duplicate's labels equal the original's)."""
+    def counted(self, frames: Iterable[Frame], mixture: Mixture | None = None,
+                floor: int | None = None):
+        """The frames, counted; rows with missing features admitted (with ``floor``) and,
+        with a model, rows beyond its range marked invalid first (as when they are
+        learned, so a duplicate's labels equal the original's)."""
         for frame in frames:
+            _admit(frame, floor, mixture)
             if mixture is not None:
                 _mark_beyond_model(frame, mixture)
             self.rows += frame.n_rows
@@ -1136,24 +1158,42 @@ def _count_rows(extra: dict, segments: list[np.ndarray]) -> dict:
     return dict(extra, segment_rows=counts)
 
 
+def _admit(frame: Frame, floor: int | None, mixture: Mixture | None) -> None:
+    """Rows of ``frame`` with missing features but ``floor`` present made valid."""
+    if floor is not None:
+        admit(frame, floor, None if mixture is None else _model_range(mixture))
+
+
+def _complete_only(X: np.ndarray, scores):
+    """``scores`` with the rows of ``X`` that miss a feature at log-density +inf: their
+    marginal densities are over fewer features, not comparable (never unexplained)."""
+    gappy = observed_counts(X) < X.shape[1]
+    if not gappy.any():
+        return scores
+    return replace(scores, log_density=np.where(gappy, np.inf, scores.log_density))
+
+
 def _valid_rows(frame: Frame) -> np.ndarray:
     return frame.features if frame.n_invalid == 0 else frame.features[frame.valid]
 
 
-def _scored_tables(frames: Iterable[Frame], mixture: Mixture | None, unusual_below: float,
+def _scored_tables(frames: Iterable[Frame], mixture: Mixture | None, unusual: Unusual,
                    version: int):
     """Labels tables of ``frames`` scored by a fixed ``mixture`` (None: no model yet)."""
     for frame in frames:
         scores = mixture.score(_valid_rows(frame)) if mixture is not None else None
-        yield _labels(frame, scores, unusual_below, version)
+        yield _labels(frame, scores, unusual, version)
 
 
-def _labels(frame: Frame, scores, unusual_below: float, version: int | None) -> pa.Table:
+def _labels(frame: Frame, scores, unusual: Unusual, version: int | None) -> pa.Table:
+    observed = frame_observed(frame)
+    below = unusual.per_row(observed[frame.valid], frame.features.shape[1])
     return labels_table(frame.passthrough, frame.valid,
                         None if scores is None else scores.segment,
                         None if scores is None else scores.confidence,
                         None if scores is None else scores.log_density,
-                        unusual_below, version, transforming.valid_log_jacobian(frame))
+                        below, version, transforming.valid_log_jacobian(frame),
+                        observed=observed)
 
 
 def _rows_of(scores, start: int, stop: int):
@@ -1188,15 +1228,18 @@ class _Run:
         self.warmup_keep: np.ndarray | None = None
         self.clear_warmup = False
         self.warmup_valid: np.ndarray | None = None   # which rows warmup_keep are
-        self.first_unusual_below = -np.inf   # the threshold when the first model is made
+        self.first_unusual = Unusual(-np.inf)   # the thresholds when the first model is made
         self.held: list[Frame] = []
         self.held_scores: list = []     # scores of the held frames once made
         self.warm_up_tried = False
+        self.said_waiting = False       # warned that too few rows are complete
 
     def tables(self, frames: Iterable[Frame]):
+        floor = self.pipeline._floor()
         for frame in frames:
             if self.mapped_here:   # read in the data's units, before the first model
                 transforming.map_frames([frame], self.transforms)
+            _admit(frame, floor, self.mixture)
             if self.mixture is not None:
                 _mark_beyond_model(frame, self.mixture)
             self.rows += frame.n_rows
@@ -1222,10 +1265,10 @@ class _Run:
         """Labels of the held frames, if their scores are known (or the input ended)."""
         if not force and (self.mixture is None or not self.scored):
             return
-        unusual_below = self.extra.get("unusual_below", -np.inf)
+        unusual = Unusual.from_extra(self.extra)
         version = self.version if self.scored else None
         for frame, scores in zip(self.held, self.held_scores):
-            yield _labels(frame, scores, unusual_below, version)
+            yield _labels(frame, scores, unusual, version)
         self.held, self.held_scores = [], []
 
     def _times(self, frames: list[Frame]):
@@ -1244,21 +1287,32 @@ class _Run:
         self.mixture, scores = self.pipeline._learn_chunks(self.mixture, X, self.watch,
                                                            self.life)
         self.held_scores.append(scores)
-        self._scored(scores)
+        self._scored(scores, frame_observed(frame)[frame.valid])
 
-    def _scored(self, scores) -> None:
+    def _scored(self, scores, observed=None) -> None:
         if scores is None or not len(scores.log_density):
             return
         self.scored = True
-        self.extra = self.pipeline._after_scoring(self.extra, scores, self.mixture)
+        self.extra = self.pipeline._after_scoring(self.extra, scores, self.mixture, observed)
 
     def _warm_up(self) -> None:
         """Fit the first model once the buffer and the held frames hold enough rows (one
         try per input, as the rows it is fitted on are the first ``warmup_rows``)."""
         p = self.pipeline
-        buffered = 0 if p.state.warmup is None else len(p.state.warmup)
-        if self.warm_up_tried or \
-                buffered + sum(f.n_rows - f.n_invalid for f in self.held) < p.settings.warmup_rows:
+        D = len(p.settings.features)
+        buffered = 0 if p.state.warmup is None else \
+            int(np.count_nonzero(observed_counts(p.state.warmup) == D))
+        complete = buffered + sum(int(np.count_nonzero(frame_observed(f)[f.valid] == D))
+                                  for f in self.held)
+        if self.warm_up_tried or complete < p.settings.warmup_rows:
+            if not self.said_waiting and complete < p.settings.warmup_rows <= \
+                    (0 if p.state.warmup is None else len(p.state.warmup)) + \
+                    sum(f.n_rows - f.n_invalid for f in self.held):
+                self.said_waiting = True     # said once per input
+                log_event("warmup_waiting_for_complete_rows", logging.WARNING,
+                          complete_rows=complete, needed=p.settings.warmup_rows,
+                          detail="the first model is fitted on rows with every feature "
+                                 "present; rows with missing features wait for it")
             return
         self.warm_up_tried = True
         X = np.concatenate([_valid_rows(f) for f in self.held])
@@ -1281,10 +1335,10 @@ class _Run:
                     part.transforms = fitted
         self.mixture, self.clear_warmup = mixture, True
         self.extra.update(init_extra)
-        self.first_unusual_below = init_extra.get("unusual_below", -np.inf)
+        self.first_unusual = Unusual.from_extra(init_extra)
         start = 0
         for f in self.held:
             n = f.n_rows - f.n_invalid
             self.held_scores.append(_rows_of(scores, start, start + n))
             start += n
-        self._scored(scores)
+        self._scored(scores, observed_counts(X))

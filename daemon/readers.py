@@ -70,6 +70,7 @@ class Frame:
     # set by shoal.daemon.transforming when features are transformed:
     log_jacobian: np.ndarray | None = None   # (n_rows,) of the transforms, 0 where invalid
     outside_domain: int = 0   # rows refused for a value outside a transform's domain
+    observed: np.ndarray | None = None   # (n_rows,) features present per row, once counted
 
     @property
     def n_rows(self) -> int:

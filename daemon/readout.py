@@ -29,7 +29,7 @@ from shoal.daemon.store_words import (
     notification_in_current_words,
     payload_in_current_words,
 )
-from shoal.daemon.summary import segment_summary
+from shoal.daemon.summary import format_differences, segment_summary
 
 __all__ = ["StateReader", "open_reader", "read_alerts", "open_alerts", "inbox_backlog", "state_snapshot",
            "format_status", "format_service", "ledger_totals"]
@@ -234,6 +234,7 @@ def state_snapshot(reader: StateReader, settings: Settings, layout: Layout,
         "service": service_state(layout.state, layout.lock, now),
         "model_version": summary["model_version"],
         "features": summary["features"],
+        "config_differs": summary["config_differs"],
         "warmup": summary.get("warmup"),
         "rows_learned": summary.get("rows_learned"),
         "segments": summary["segments"],
@@ -271,6 +272,7 @@ def format_status(snap: dict, width: int = 100) -> str:
     n = {k: v["inputs"] for k, v in inputs.items()}
     lines.append(f"model version {snap['model_version']}"
                  + (f", {snap['rows_learned']} rows learned" if snap.get("rows_learned") else ""))
+    lines += format_differences(snap.get("config_differs", []))
     lines.append("inputs: " + (", ".join(f"{v} {k}" for k, v in sorted(n.items())) or "none yet"))
     last = snap["last_input"]
     if last:

@@ -48,8 +48,17 @@ def _is_fixed(key: str) -> bool:
 
 def check_reloadable(old: Settings, new: Settings) -> list[str]:
     """The changed keys; ConfigError naming them when a fixed setting changed."""
+    from shoal.daemon.contract import ADOPTABLE, model_contract
+
     changed = changed_keys(old, new)
     fixed = [k for k in changed if _is_fixed(k)]
+    defining = [k for k in fixed if (k.split(".")[0] == "segments" or k in model_contract(old))
+                and k not in ADOPTABLE]
+    if defining:   # a restart would refuse them too (shoal.daemon.contract)
+        raise ConfigError(f"{', '.join(fixed)}: cannot change while running; "
+                          f"{', '.join(defining)} define the stored model: once one is "
+                          "learned, a restart with this config is refused too: put the stored values back, or use a "
+                          "new state folder for a new model")
     if fixed:
         raise ConfigError(f"{', '.join(fixed)}: cannot change while running; restart shoal "
                           "to use the new value")

@@ -27,6 +27,7 @@ import pyarrow.parquet as pq
 
 from shoal.config import Settings
 from shoal.core import Mixture
+from shoal.daemon.contract import settings_of_model
 from shoal.daemon.errors import InputRejected, UsageError
 from shoal.daemon.gate import input_kind
 from shoal.daemon.layout import Layout
@@ -38,6 +39,7 @@ from shoal.daemon.transforming import centres, from_meta
 from shoal.daemon.retention import compacted_totals
 from shoal.daemon.segment_names import segment_names
 from shoal.daemon.timeline import Axis, axis_events, build_axis, parse_bound
+from shoal.daemon.summary import format_differences
 
 __all__ = ["REPORT_PLOTS", "parse_since", "report_data", "render_figures", "render_plots",
            "history_span", "build_report",
@@ -205,6 +207,8 @@ def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
     data time when ``drift.time_column`` is set, else stream rows.
     """
     now = time.time() if now is None else now
+    configured = settings   # the stored model's names win for what is drawn
+    settings, _ = settings_of_model(reader, settings)
     pruned = compacted_totals(reader.db).get("committed", {}).get("rows", 0)
     axis = build_axis(reader.ledger("committed"), layout.outbox, settings.drift.time_column,
                       rows_before=pruned, time_unit=settings.drift.time_unit,
@@ -242,7 +246,7 @@ def report_data(reader: StateReader, settings: Settings, layout: Layout, *,
     if lo is not None or hi is not None:
         alerts = [a for a in alerts if _alert_version(a) in shown]
     return {
-        "snapshot": state_snapshot(reader, settings, layout, now=now, recent_alerts=50),
+        "snapshot": state_snapshot(reader, configured, layout, now=now, recent_alerts=50),
         "history": history,
         "baseline": _baseline_bands(
             cp.extra if cp else {}, all_history,
@@ -450,6 +454,10 @@ def build_report(data: Mapping[str, Any], pngs: Mapping[str, bytes], config: str
             f"{_utc(data['now'])} · model version {snap['model_version']} · inputs "
             + html.escape(", ".join(f"{v} {k}" for k, v in sorted(n.items())) or "none")
             + f" · {html.escape(history_span(data))}</p>")
+    differs = format_differences(snap.get("config_differs", []))
+    if differs:
+        head += ('<p class="meta" id="config-differs">' + html.escape(differs[0]) + "<br>"
+                 + "<br>".join(html.escape(line.strip()) for line in differs[1:]) + "</p>")
     toc = "<ul>" + "".join(f'<li><a href="#plot-{k}">{html.escape(v)}</a></li>'
                            for k, v in REPORT_PLOTS.items()) + (
         '<li><a href="#current-segments">Current segments</a></li>'

@@ -210,18 +210,21 @@ def _state_rows(plan: Plan, settings: Settings, layout: Layout, db, now: float) 
     kept_versions |= set(day_last.values())
     plan.history_versions = sorted(old - kept_versions)
     # Ledger rows: old ones, but never of an input still in the inbox, of a warm-up
-    # under way, or of a model version the history keeps.
+    # under way, or of a model version the history keeps; and never the newest row,
+    # whose id is how far the store's commits got (the state marker compares it, so a
+    # store that lost commits is told from one that was pruned; shoal.daemon.marker).
     try:
         in_inbox = {e.name for e in os.scandir(layout.inbox)}
     except OSError:
         in_inbox = None        # cannot tell: remove no ledger row
     if in_inbox is not None:
         warmup = {i for (i,) in db.execute("SELECT ledger_id FROM warmup")}
+        newest = db.execute("SELECT MAX(id) FROM ledger").fetchone()[0]
         for id_, name, version in db.execute(
                 "SELECT id, name, model_version FROM ledger WHERE finished_at < ? ORDER BY id",
                 (cutoff,)):
-            if name in in_inbox or id_ in warmup or (version in kept_versions
-                                                     and version is not None):
+            if name in in_inbox or id_ in warmup or id_ == newest or (
+                    version in kept_versions and version is not None):
                 continue
             plan.ledger_ids.append(int(id_))
     # Notifications delivered to every sink whose alert is closed (a later notification

@@ -30,6 +30,9 @@ Two changes can be injected for the drift demo:
   model has not seen, *ice build-up* on the evaporator coil (airflow restricted:
   fan slowed, supply air warmer, compressor current high).
 
+and one outage: :class:`Dropout`, some units' probe for one feature stops reporting for
+a stretch of rows (the reading is missing: NaN here, null in the drops).
+
 Rows are numbered from 0 in the order minute by minute, unit by unit, and row
 ``r`` is always the same reading for the same seed, however the stream is cut:
 ``generate(n, seed, start_row=s)`` returns rows ``s .. s + n - 1`` of one endless
@@ -53,8 +56,10 @@ __all__ = [
     "STATES",
     "UNITS",
     "Drift",
+    "Dropout",
     "NewState",
     "demo_changes",
+    "demo_dropout",
     "describe_states",
     "drops",
     "generate",
@@ -192,6 +197,26 @@ class NewState:
             raise ValueError(f"new state share should lie in (0, 1], got {self.share!r}")
 
 
+@dataclass(frozen=True)
+class Dropout:
+    """The ``feature`` probe of ``units`` reports nothing for rows ``start_row`` up to
+    ``start_row + n_rows`` (those readings are NaN)."""
+
+    feature: str
+    units: tuple
+    start_row: int
+    n_rows: int
+
+    def __post_init__(self):
+        if self.feature not in FEATURES:
+            raise ValueError(f"dropout feature should be one of {FEATURES}, got {self.feature!r}")
+        bad = [u for u in self.units if u not in UNITS]
+        if bad or not self.units:
+            raise ValueError(f"dropout units should be some of {UNITS}, got {self.units!r}")
+        _check_rows("dropout start_row", self.start_row)
+        _check_rows("dropout n_rows", self.n_rows)
+
+
 def _check_rows(name, value):
     if isinstance(value, bool) or int(value) != value or value < 0:
         raise ValueError(f"{name} should be an integer >= 0, got {value!r}")
@@ -245,7 +270,7 @@ def _reflect(values, low, high):
     return np.clip(values, low, high)
 
 
-def generate(n_rows, seed, start_row=0, drift=None, new_state=None):
+def generate(n_rows, seed, start_row=0, drift=None, new_state=None, dropout=None):
     """Rows ``start_row .. start_row + n_rows - 1`` of the warehouse stream.
 
     Parameters
@@ -260,6 +285,8 @@ def generate(n_rows, seed, start_row=0, drift=None, new_state=None):
         A unit's compressor current rising from a given row on.
     new_state : NewState, optional
         Ice build-up appearing from a given row on.
+    dropout : Dropout, optional
+        Some units' probe for one feature silent for a stretch of rows (NaN).
 
     Returns
     -------
@@ -298,18 +325,23 @@ def generate(n_rows, seed, start_row=0, drift=None, new_state=None):
         columns[name] = _reflect(values[:, j], *_LIMITS[name])
         if name in _LOG1P:
             columns[name] = np.expm1(columns[name])
+    if dropout is not None:
+        silent = ((rows >= dropout.start_row) & (rows < dropout.start_row + dropout.n_rows)
+                  & np.isin(rows % n_units, [UNITS.index(u) for u in dropout.units]))
+        columns[dropout.feature][silent] = np.nan
     columns["state"] = np.array(_ALL_STATES)[codes]
     return columns
 
 
-def drops(n_files, rows_per_file, seed, drift=None, new_state=None, start_row=0):
+def drops(n_files, rows_per_file, seed, drift=None, new_state=None, start_row=0,
+          dropout=None):
     """Yield ``n_files`` consecutive pieces of the stream, as the demo's input drops.
 
     Parameters
     ----------
     n_files, rows_per_file : int
     seed : int
-    drift, new_state : optional
+    drift, new_state, dropout : optional
         As in :func:`generate`; their rows count from the start of the stream.
     start_row : int, default 0
         Row at which the first file begins.
@@ -323,7 +355,8 @@ def drops(n_files, rows_per_file, seed, drift=None, new_state=None, start_row=0)
     n_files = _check_rows("n_files", n_files)
     rows_per_file = _check_rows("rows_per_file", rows_per_file)
     for i in range(n_files):
-        yield generate(rows_per_file, seed, start_row + i * rows_per_file, drift, new_state)
+        yield generate(rows_per_file, seed, start_row + i * rows_per_file, drift, new_state,
+                       dropout)
 
 
 def demo_changes(total_rows, unit="RU-03", rise_a=8.0, new_state_share=0.12):
@@ -345,6 +378,14 @@ def demo_changes(total_rows, unit="RU-03", rise_a=8.0, new_state_share=0.12):
         Drift(unit=unit, start_row=drift_start, amps_per_10k_rows=rate),
         NewState(start_row=int(0.7 * total_rows), share=new_state_share),
     )
+
+
+def demo_dropout(total_rows, feature="fan_rpm", units=UNITS[:4]):
+    """The demo's probe outage: ``feature`` of ``units`` (half the fleet) silent from
+    25% to 35% of a stream of ``total_rows`` rows."""
+    total_rows = _check_rows("total_rows", total_rows)
+    return Dropout(feature=feature, units=tuple(units), start_row=int(0.25 * total_rows),
+                   n_rows=int(0.10 * total_rows))
 
 
 def _normal_cdf(x):

@@ -3,12 +3,16 @@
 
 Standard library ``http.server`` on a thread of its own, loopback by default
 and off unless ``http.port`` is set. GET and HEAD only: every other method is
-answered 405. The state is read through its own read-only connection
+answered 405. Connections are bounded (``http.max_connections``: past it a new one closes
+the oldest that has not sent a complete request) and one that sends nothing for
+``http.idle_seconds`` is closed, so idle or half-open connections cannot use up the
+process's file descriptors (which the inputs need too) or its threads. The state is read through its own read-only connection
 (:class:`~shoal.daemon.readout.StateReader`), never the worker's. The page's
 plots are drawn once per model version and kept.
 """
 from __future__ import annotations
 
+import contextlib
 import html
 import json
 import logging
@@ -69,9 +73,10 @@ class StatusServer:
     def start(self) -> tuple[str, int]:
         address, port = self.settings.http.address, self.settings.http.port
         handler = _handler_for(self)
-        server_class = _V6Server if ":" in address else ThreadingHTTPServer
+        server_class = _V6Server if ":" in address else _BoundedServer
         try:
-            httpd = server_class((address, port), handler)
+            httpd = server_class((address, port), handler,
+                                 max_connections=self.settings.http.max_connections)
         except OSError as exc:
             raise ConfigError(f"http: cannot listen on {address}:{port}: {exc.strerror}") \
                 from exc
@@ -87,6 +92,7 @@ class StatusServer:
     def stop(self, timeout: float = 5.0) -> None:
         if self._httpd is not None:
             self._httpd.shutdown()
+            self._httpd.close_connections()
             self._httpd.server_close()
             self._httpd = None
         if self._thread is not None:
@@ -174,7 +180,54 @@ def _quarantine_fact(q: dict) -> str:
     return text
 
 
-class _V6Server(ThreadingHTTPServer):
+class _BoundedServer(ThreadingHTTPServer):
+    """A thread per connection, at most ``max_connections`` of them: at the bound a new
+    connection closes the oldest idle one (no complete request yet), or is itself closed
+    when every one is busy answering."""
+
+    request_queue_size = 1024   # the listen backlog: a burst of connects waits in the kernel
+
+    def __init__(self, address, handler, *, max_connections: int):
+        super().__init__(address, handler)
+        self.max_connections = max_connections
+        self._lock = threading.Lock()
+        self._open: dict[socket.socket, bool] = {}   # connection -> busy; oldest first
+
+    def process_request(self, request, client_address) -> None:
+        with self._lock:
+            if len(self._open) >= self.max_connections:
+                idle = next((c for c, busy in self._open.items() if not busy), None)
+                if idle is None:
+                    log_event("http_connection_refused", logging.WARNING,
+                              open=len(self._open), detail="every connection is busy")
+                    super().shutdown_request(request)
+                    return
+                del self._open[idle]
+                with contextlib.suppress(OSError):   # its thread reads EOF and ends
+                    idle.shutdown(socket.SHUT_RDWR)
+            self._open[request] = False
+        super().process_request(request, client_address)
+
+    def mark_busy(self, request) -> None:
+        with self._lock:
+            if request in self._open:
+                self._open[request] = True
+
+    def shutdown_request(self, request) -> None:
+        with self._lock:
+            self._open.pop(request, None)
+        super().shutdown_request(request)
+
+    def close_connections(self) -> None:
+        """At stop: end every connection's thread now rather than at its idle timeout."""
+        with self._lock:
+            open_, self._open = list(self._open), {}
+        for c in open_:
+            with contextlib.suppress(OSError):
+                c.shutdown(socket.SHUT_RDWR)
+
+
+class _V6Server(_BoundedServer):
     address_family = socket.AF_INET6
 
 
@@ -186,7 +239,13 @@ def _handler_for(server: StatusServer) -> type[BaseHTTPRequestHandler]:
     class Handler(BaseHTTPRequestHandler):
         server_version = "shoal"
         sys_version = ""
-        timeout = 10
+        timeout = server.settings.http.idle_seconds   # on every read and write
+
+        def parse_request(self) -> bool:
+            ok = super().parse_request()
+            if ok:   # a complete request: no longer idle, not to be closed for another
+                self.server.mark_busy(self.request)
+            return ok
 
         def log_message(self, format: str, *args) -> None:  # noqa: A002 - the base's name
             log_event("http_request", logging.DEBUG, request=format % args)

@@ -14,13 +14,15 @@ that opens it (:data:`MIGRATIONS`): all of a migration or none of it.
 from __future__ import annotations
 
 import contextlib
+import hashlib
 import io
 import json
+import logging
 import sqlite3
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterable, Mapping
+from typing import Any, Callable, Iterable, Mapping
 
 import numpy as np
 
@@ -33,18 +35,20 @@ from shoal.daemon.digest import (
 from shoal.daemon.errors import StateError
 from shoal.daemon.logs import log_event
 from shoal.daemon.store_words import migrate_alert_words
+from shoal.daemon.marker import MarkerWriter, create_marker, new_store_id, read_marker
 
 __all__ = ["StateStore", "LedgerEntry", "Checkpoint", "HistoryRow", "InputCommit", "WarmupInput",
-           "npy_bytes",
-           "npy_array", "SCHEMA_VERSION", "MIGRATIONS"]
+           "npy_bytes", "npy_array", "checksum", "SCHEMA_VERSION", "MIGRATIONS"]
 
 # 2: the ledger's content column is `digest` (was `sha256`), in the algorithm the meta
 #    key `digest_algorithm` records (a version-1 store's is SHA-256).
 # 3: alert notifications and the drift state in the alert words of daemon/store_words.py
 #    (raised/cleared, X.733 severities, the baseline).
-# 4: the ``attempts`` table (inputs being processed, and how many processes ended while
+# 4: each checkpoint array, and each checkpoint's meta and extra JSON, carries a checksum
+#    verified when it is loaded.
+# 5: the attempts table (inputs being processed, and how many processes ended while
 #    processing them).
-SCHEMA_VERSION = 4
+SCHEMA_VERSION = 5
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (
@@ -70,12 +74,14 @@ CREATE TABLE IF NOT EXISTS checkpoints (
     version INTEGER PRIMARY KEY,
     created REAL NOT NULL,
     meta    TEXT NOT NULL,
-    extra   TEXT NOT NULL
+    extra   TEXT NOT NULL,
+    checksum TEXT
 );
 CREATE TABLE IF NOT EXISTS checkpoint_arrays (
     version INTEGER NOT NULL REFERENCES checkpoints (version) ON DELETE CASCADE,
     name    TEXT NOT NULL,
     npy     BLOB NOT NULL,
+    checksum TEXT,
     PRIMARY KEY (version, name)
 );
 CREATE TABLE IF NOT EXISTS warmup (
@@ -146,14 +152,40 @@ def _migrate_1_to_2(db: sqlite3.Connection) -> None:
 
 
 def _migrate_3_to_4(db: sqlite3.Connection) -> None:
-    """Version 3 -> 4: the ``attempts`` table (inputs being processed, and how many
+    """Version 3 -> 4: checksums of the checkpoints kept, computed from what the store holds
+    now (a checkpoint damaged before the upgrade is not found out by them; one damaged
+    after it is)."""
+    db.execute("ALTER TABLE checkpoints ADD COLUMN checksum TEXT")
+    db.execute("ALTER TABLE checkpoint_arrays ADD COLUMN checksum TEXT")
+    for version, meta, extra in db.execute(
+            "SELECT version, meta, extra FROM checkpoints").fetchall():
+        db.execute("UPDATE checkpoints SET checksum = ? WHERE version = ?",
+                   (_json_checksum(meta, extra), version))
+    for version, name, blob in db.execute("SELECT version, name, npy FROM "
+                                          "checkpoint_arrays").fetchall():
+        db.execute("UPDATE checkpoint_arrays SET checksum = ? WHERE version = ? AND name = ?",
+                   (checksum(blob), version, name))
+
+
+def _migrate_4_to_5(db: sqlite3.Connection) -> None:
+    """Version 4 -> 5: the ``attempts`` table (inputs being processed, and how many
     processes ended while processing them)."""
-    db.execute("CREATE TABLE attempts (input TEXT PRIMARY KEY, count INTEGER NOT NULL, "
+    db.execute("CREATE TABLE IF NOT EXISTS attempts (input TEXT PRIMARY KEY, count INTEGER NOT NULL, "
                "last_at REAL NOT NULL)")
 
 
 # schema version -> the function that brings a store of that version to the next one
-MIGRATIONS = {1: _migrate_1_to_2, 2: migrate_alert_words, 3: _migrate_3_to_4}
+MIGRATIONS = {1: _migrate_1_to_2, 2: migrate_alert_words, 3: _migrate_3_to_4,
+              4: _migrate_4_to_5}
+
+
+def checksum(data: bytes) -> str:
+    """BLAKE2b-128 of ``data`` in hex: a stored checkpoint part is checked against it."""
+    return hashlib.blake2b(data, digest_size=16).hexdigest()
+
+
+def _json_checksum(meta: str, extra: str) -> str:
+    return checksum(meta.encode() + b"\0" + extra.encode())
 
 
 # .npy headers by (dtype, shape): a checkpoint stores the same dozen arrays every time.
@@ -269,10 +301,29 @@ _ATTEMPTS_KEPT_SECONDS = 7 * 86400
 class StateStore:
     """Access to ``state.db``. One instance per process; not shared across threads."""
 
-    def __init__(self, path: Path, checkpoints_kept: int = 20, clock=time.time):
+    def __init__(self, path: Path, checkpoints_kept: int = 20, clock=time.time, *,
+                 used_evidence: Callable[[], str | None] | None = None):
+        """Open (or make) the store at ``path``.
+
+        ``used_evidence`` says what shows that the state folder was used before (labels
+        in the outbox, inputs in ``processed/``), for a folder made before the marker
+        existed (:mod:`shoal.daemon.marker`): a missing or empty store in a used folder
+        is refused rather than made afresh.
+        """
         self.path = Path(path)
         self.checkpoints_kept = checkpoints_kept
         self.clock = clock
+        self._marker: MarkerWriter | None = None
+        marker = read_marker(self.path)
+
+        def evidence() -> str | None:
+            if marker is not None:
+                return f"its marker {marker.path.name} (written when the store was made)"
+            return used_evidence() if used_evidence is not None else None
+
+        if not self.path.exists() or self.path.stat().st_size == 0:
+            self._refuse_if_used(evidence(), "is missing" if not self.path.exists()
+                                 else "is empty (0 bytes)")
         try:
             self.db = sqlite3.connect(self.path, isolation_level=None, timeout=30.0,
                                       check_same_thread=False)
@@ -281,6 +332,8 @@ class StateStore:
             self.db.execute("PRAGMA foreign_keys=ON")
             with self._transaction():
                 found = self._schema_version()
+                if found is None:
+                    self._refuse_if_used(evidence(), "holds no tables")
                 migrated = self._migrate(found) if found is not None else None
                 for statement in _SCHEMA.split(";"):
                     if statement.strip():
@@ -289,6 +342,8 @@ class StateStore:
                     self._set_meta("schema_version", str(SCHEMA_VERSION))
                     self._set_meta("model_version", "0")
                     self._set_meta("digest_algorithm", NEW_STORE_ALGORITHM)
+                if self._meta("store_id") is None:   # new, or made before the marker
+                    self._set_meta("store_id", new_store_id())
                 algorithm = self._meta("digest_algorithm") or UNRECORDED_ALGORITHM
                 if algorithm not in DIGEST_ALGORITHMS:
                     raise StateError(
@@ -296,17 +351,74 @@ class StateStore:
                         f"{algorithm!r}, which this shoal does not compute (it computes "
                         f"{', '.join(DIGEST_ALGORITHMS)}); open it with the shoal that made "
                         "it, or start a new state folder")
+            self._check_marker(marker)
         except sqlite3.DatabaseError as exc:
             self._close_after_failure()
             raise StateError(f"state store {self.path} cannot be used: {exc}") from exc
-        except StateError:
+        except (StateError, OSError) as exc:
             self._close_after_failure()
+            if isinstance(exc, OSError):
+                raise StateError(f"state marker beside {self.path} cannot be used: "
+                                 f"{exc}") from exc
             raise
         if migrated:
             log_event("state_store_migrated", store=str(self.path), from_version=found,
                       to_version=SCHEMA_VERSION, digest_algorithm=algorithm)
 
+    def _refuse_if_used(self, evidence: str | None, what: str) -> None:
+        if evidence is None:
+            return
+        raise StateError(
+            f"state store {self.path} {what}, but this state folder has been used "
+            f"({evidence}): the store was lost or emptied, and a new one would learn "
+            "again what was committed. Restore state.db (with state.db-wal, if it was "
+            "kept) from a backup; or, to start a new model from nothing on purpose, "
+            "move the state folder aside (and the outbox's labels files, which the new "
+            "model would not match) and start again")
+
+    def _check_marker(self, marker) -> None:
+        """Refuse a store behind its marker (rolled back, replaced); make a missing marker."""
+        store_id = self._meta("store_id")
+        rows, version = self._ledger_rows(), self.model_version
+        if marker is None:
+            marker = create_marker(self.path, store_id, rows, version)
+            if marker is None:
+                return
+        advice = ("Restore the store that belongs here (with its state.db-wal, if it "
+                  "was kept) from a backup; or, to go on from this store on purpose "
+                  "(inputs committed after it are not learned again unless dropped "
+                  f"again), delete {marker.path}")
+        if marker.store_id is None:
+            raise StateError(f"state marker {marker.path} is damaged (no store id): "
+                             f"it cannot vouch for {self.path}. {advice}")
+        if marker.store_id != store_id:
+            raise StateError(
+                f"state store {self.path} is not the store this state folder was made with "
+                f"(store id {store_id}; the folder's marker says {marker.store_id}): it was "
+                f"replaced. {advice}")
+        if marker.ledger_rows is None:
+            log_event("state_marker_unreadable", logging.WARNING, marker=str(marker.path),
+                      detail="its counters cannot be read; the roll-back check is skipped "
+                             "this time")
+        elif rows < marker.ledger_rows or version < marker.model_version:
+            raise StateError(
+                f"state store {self.path} was rolled back: it holds {rows} ledger rows and "
+                f"model version {version}, but {marker.ledger_rows} ledger rows and model "
+                f"version {marker.model_version} had been committed (state.db-wal deleted "
+                f"after a crash, or an older copy of state.db restored). {advice}")
+        self._marker = MarkerWriter(self.path)   # a bad record is rewritten at the next commit
+
+    def _ledger_rows(self) -> int:
+        return int(self.db.execute("SELECT COALESCE(MAX(id), 0) FROM ledger").fetchone()[0])
+
+    def _note_progress(self) -> None:
+        """After a commit: the marker's counters follow the store (see shoal.daemon.marker)."""
+        if self._marker is not None:
+            self._marker.note(self._ledger_rows(), self.model_version)
+
     def _close_after_failure(self) -> None:
+        if getattr(self, "_marker", None) is not None:
+            self._marker.close()
         db = getattr(self, "db", None)
         if db is not None:
             with contextlib.suppress(sqlite3.Error):
@@ -368,6 +480,8 @@ class StateStore:
                         "ON CONFLICT (key) DO UPDATE SET value = excluded.value", (key, value))
 
     def close(self) -> None:
+        if getattr(self, "_marker", None) is not None:
+            self._marker.close()
         self.db.close()
 
     # -- reads ------------------------------------------------------------------
@@ -409,18 +523,58 @@ class StateStore:
         return None if row is None else self.checkpoint(row[0])
 
     def checkpoint(self, version: int) -> Checkpoint:
-        row = self.db.execute("SELECT created, meta, extra FROM checkpoints WHERE version = ?",
-                              (version,)).fetchone()
+        """Checkpoint ``version``, each part checked against its checksum: a damaged one is
+        a :class:`StateError` (the state cannot be used), never a wrong model."""
+        has_sums = "checksum" in {r[1] for r in self.db.execute(
+            "PRAGMA table_info(checkpoints)")}   # a read-only reader of an older store
+        row = self.db.execute(
+            "SELECT created, meta, extra" + (", checksum" if has_sums else ", NULL") +
+            " FROM checkpoints WHERE version = ?", (version,)).fetchone()
         if row is None:
             raise StateError(f"state store {self.path} has no checkpoint {version}")
+        created, meta_text, extra_text, json_sum = row
+        damaged = f"checkpoint {version} in {self.path} is damaged"
+        if json_sum is not None and _json_checksum(meta_text, extra_text) != json_sum:
+            raise StateError(f"{damaged}: its meta or extra data fails its checksum; "
+                             "restore the state folder from a backup")
+        arrays = {}
+        for name, blob, array_sum in self.db.execute(
+                "SELECT name, npy" + (", checksum" if has_sums else ", NULL") +
+                " FROM checkpoint_arrays WHERE version = ? ORDER BY name", (version,)):
+            if array_sum is not None and checksum(blob) != array_sum:
+                raise StateError(f"{damaged}: array {name!r} fails its checksum; restore "
+                                 "the state folder from a backup")
+            try:
+                arrays[name] = npy_array(blob)
+            except (ValueError, EOFError, OSError) as exc:   # pickled object arrays too
+                raise StateError(f"{damaged}: array {name!r} is unreadable: {exc}") from exc
         try:
-            arrays = {name: npy_array(blob) for name, blob in self.db.execute(
-                "SELECT name, npy FROM checkpoint_arrays WHERE version = ? ORDER BY name",
-                (version,))}
-        except ValueError as exc:  # pickled object arrays are refused here
-            raise StateError(f"checkpoint {version} in {self.path} is unreadable: {exc}") from exc
-        return Checkpoint(version=version, arrays=arrays, meta=json.loads(row[1]),
-                          extra=json.loads(row[2]), created=row[0])
+            meta, extra = json.loads(meta_text), json.loads(extra_text)
+        except (ValueError, TypeError) as exc:
+            raise StateError(f"{damaged}: its meta or extra data is not JSON: {exc}") from exc
+        if not isinstance(meta, dict) or not isinstance(extra, dict):
+            raise StateError(f"{damaged}: its meta and extra data are not JSON objects")
+        return Checkpoint(version=version, arrays=arrays, meta=meta, extra=extra,
+                          created=created)
+
+    def model_contract(self) -> dict[str, Any] | None:
+        """What defines the model (:mod:`shoal.daemon.contract`), as stored; None if none."""
+        text = self._meta("model_contract")
+        if text is None:
+            return None
+        try:
+            contract = json.loads(text)
+        except ValueError as exc:
+            raise StateError(f"state store {self.path}: the stored model contract is not "
+                             f"JSON: {exc}") from exc
+        if not isinstance(contract, dict):
+            raise StateError(f"state store {self.path}: the stored model contract is not a "
+                             "JSON object")
+        return contract
+
+    def set_model_contract(self, contract: Mapping[str, Any]) -> None:
+        with self._transaction():
+            self._set_meta("model_contract", json.dumps(contract, sort_keys=True))
 
     def warmup_rows(self) -> np.ndarray | None:
         """The buffered warm-up rows in arrival order, or None when there are none."""
@@ -588,8 +742,11 @@ class StateStore:
             if self.model_version != version:
                 raise StateError(f"the model moved on to version {self.model_version} while "
                                  f"re-baselining version {version}; try again")
-            self.db.execute("UPDATE checkpoints SET extra = ? WHERE version = ?",
-                            (json.dumps(extra, sort_keys=True), version))
+            meta_text = self.db.execute("SELECT meta FROM checkpoints WHERE version = ?",
+                                        (version,)).fetchone()[0]
+            extra_text = json.dumps(extra, sort_keys=True)
+            self.db.execute("UPDATE checkpoints SET extra = ?, checksum = ? WHERE version = ?",
+                            (extra_text, _json_checksum(meta_text, extra_text), version))
             self._mark_rebaseline(request_id, version, now)
             self._insert_alerts(alerts, version, now)
 
@@ -650,6 +807,7 @@ class StateStore:
             self._insert_entry(entry)
             if attempt is not None:
                 self.db.execute("DELETE FROM attempts WHERE input = ?", (attempt,))
+        self._note_progress()
 
     def commit_input(self, entry: LedgerEntry, *, learned: bool,
                      checkpoint: Checkpoint | None = None,
@@ -713,6 +871,7 @@ class StateStore:
                 versions.append(version)
             if version != start:
                 self._set_meta("model_version", str(version))
+        self._note_progress()
         return versions
 
     def _insert_entry(self, e: LedgerEntry, model_version: int | None = None) -> int:
@@ -725,15 +884,18 @@ class StateStore:
         return int(cur.lastrowid)
 
     def _insert_checkpoint(self, c: Checkpoint, now: float) -> None:
-        self.db.execute("INSERT INTO checkpoints (version, created, meta, extra) "
-                        "VALUES (?, ?, ?, ?)",
-                        (c.version, now, json.dumps(c.meta, sort_keys=True),
-                         json.dumps(c.extra, sort_keys=True)))
+        meta_text = json.dumps(c.meta, sort_keys=True)
+        extra_text = json.dumps(c.extra, sort_keys=True)
+        self.db.execute("INSERT INTO checkpoints (version, created, meta, extra, checksum) "
+                        "VALUES (?, ?, ?, ?, ?)",
+                        (c.version, now, meta_text, extra_text,
+                         _json_checksum(meta_text, extra_text)))
         for name, array in sorted(c.arrays.items()):
             if np.asarray(array).dtype == object:
                 raise StateError(f"checkpoint array {name!r} has dtype object; only numeric "
                                  "arrays are stored")
-            self.db.execute("INSERT INTO checkpoint_arrays (version, name, npy) "
-                            "VALUES (?, ?, ?)", (c.version, name, npy_bytes(array)))
+            blob = npy_bytes(array)
+            self.db.execute("INSERT INTO checkpoint_arrays (version, name, npy, checksum) "
+                            "VALUES (?, ?, ?, ?)", (c.version, name, blob, checksum(blob)))
         self.db.execute("DELETE FROM checkpoints WHERE version <= ?",
                         (c.version - self.checkpoints_kept,))

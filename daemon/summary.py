@@ -4,23 +4,28 @@ from __future__ import annotations
 import time
 from typing import Any
 
-from shoal.config import Settings
+from shoal.config import Settings, shown
 from shoal.core import Mixture
 from shoal.daemon.segment_names import segment_names
+from shoal.daemon.contract import settings_of_model
 from shoal.daemon.store import StateStore
 from shoal.daemon.transforming import feature_centres, from_meta
 
-__all__ = ["segment_summary", "format_segments"]
+__all__ = ["segment_summary", "format_segments", "format_differences"]
 
 
 def segment_summary(store: StateStore, settings: Settings, now: float | None = None,
                     include_gone: bool = False) -> dict:
     """Model version, warm-up progress and one record per current segment; with
-    ``include_gone``, also the segments that retired or merged away (``gone``)."""
+    ``include_gone``, also the segments that retired or merged away (``gone``). The
+    segments are shown under the stored model's feature names; ``config_differs`` lists
+    the keys where the config differs from the stored model's contract."""
     now = time.time() if now is None else now
+    settings, differs = settings_of_model(store, settings)
     cp = store.latest_checkpoint()
     out: dict[str, Any] = {"model_version": store.model_version,
-                           "features": list(settings.features), "segments": []}
+                           "features": list(settings.features), "segments": [],
+                           "config_differs": differs}
     if cp is None:   # no model yet: the inputs taken so far only fill the warm-up
         buffered = store.warmup_rows()
         out["warmup"] = {"rows": 0 if buffered is None else int(len(buffered)),
@@ -97,13 +102,25 @@ def _num(v: float) -> str:
     return f"{v:.4g}"
 
 
+def format_differences(differs: list[dict]) -> list[str]:
+    """Lines saying how the config differs from the stored model (none when it does not)."""
+    if not differs:
+        return []
+    return ["the config differs from the stored model (shown as stored; commands that "
+            "learn refuse this config):"] + [
+        f"  {d['key']}: stored {shown(d['stored'])}, configured {shown(d['configured'])}"
+        for d in differs]
+
+
 def format_segments(summary: dict) -> str:
     """A plain-text table: one line per segment, mean ± spread per feature."""
+    differences = format_differences(summary.get("config_differs", []))
     if summary["model_version"] is None:
         w = summary.get("warmup", {})
-        return (f"no model yet: warm-up has {w.get('rows', 0)} of {w.get('needed', '?')} "
-                f"rows (from {w.get('inputs', 0)} inputs)")
-    lines = [f"model version {summary['model_version']}"]
+        return "\n".join([f"no model yet: warm-up has {w.get('rows', 0)} of "
+                          f"{w.get('needed', '?')} rows (from {w.get('inputs', 0)} inputs)"]
+                         + differences)
+    lines = [f"model version {summary['model_version']}"] + differences
     lines[0] += f", {summary['rows_learned']} rows learned after warm-up"
     feats = summary["features"]
     first = summary["segments"][0]

@@ -94,24 +94,32 @@ def transformed_frames(frames: Iterable, transforms: FeatureTransforms,
         yield frame
 
 
+def _candidates(frame) -> np.ndarray:
+    """Rows the transforms apply to: the valid ones, and those invalid only for missing
+    values (NaN), which the missing-data rule may still admit (shoal.daemon.gaps)."""
+    X = frame.features
+    with np.errstate(invalid="ignore"):
+        gappy = np.isnan(X).any(axis=1) & np.all(np.isnan(X) | np.isfinite(X), axis=1)
+    return frame.valid | gappy
+
+
 def _transform(frame, t: FeatureTransforms, names: tuple[str, ...], check_only: bool) -> None:
-    valid = frame.valid
-    X = frame.features[valid]
+    rows = np.flatnonzero(_candidates(frame))
+    X = frame.features[rows]
     if check_only:
-        inside = t.inside(X)
+        inside = t.inside_observed(X)
     else:
-        Y, inside = t.forward(X)
+        Y, inside, jac_rows = t.forward_observed(X)
         jac = np.zeros(frame.n_rows)
-        jac_valid = np.zeros(len(X))
-        if inside.any():
-            jac_valid[inside] = t.log_jacobian(X[inside])
-        jac[valid] = jac_valid
-        frame.features[valid] = Y
+        jac[rows] = jac_rows
+        frame.features[rows] = Y
         frame.log_jacobian = jac
     outside = int(np.count_nonzero(~inside))
     if outside:
-        rows = np.flatnonzero(valid)[~inside]
-        frame.valid[rows] = False
+        bad = rows[~inside]
+        frame.valid[bad] = False
+        # never admitted as a row with missing values: its reason is the domain
+        frame.features[bad] = np.inf
     frame.outside_domain = outside
     frame.model_range = None
     frame.beyond_range = 0
@@ -125,7 +133,7 @@ def _outside_features(X: np.ndarray, t: FeatureTransforms, names: tuple[str, ...
     out = {}
     for j, kind in enumerate(t.kinds):
         one = FeatureTransforms((kind,), t.lambdas[j:j + 1])
-        n = int(np.count_nonzero(~one.inside(X[:, j:j + 1])))
+        n = int(np.count_nonzero(~one.inside_observed(X[:, j:j + 1])))
         if n:
             out[names[j]] = n
     return out
@@ -141,13 +149,13 @@ def fit_at_warm_up(transforms: FeatureTransforms, buffered: np.ndarray, X: np.nd
     a warning. The frames whose valid rows are ``X`` are mapped in place by
     :func:`map_frames` once the warm-up has succeeded.
     """
-    inside = transforms.inside(buffered)
+    inside = transforms.inside_observed(buffered)
     if not inside.all():
         log_event("rows_invalid", logging.WARNING, reason=OUTSIDE_DOMAIN,
                   rows=int(np.count_nonzero(~inside)), where="warm-up buffer")
         buffered = buffered[inside]
     fitted = transforms.fit(np.concatenate([buffered, X])[:warmup_rows])
-    return fitted, fitted.forward(buffered)[0], fitted.forward(X)[0]
+    return fitted, fitted.forward_observed(buffered)[0], fitted.forward_observed(X)[0]
 
 
 def map_frames(frames: list, fitted: FeatureTransforms) -> None:
@@ -155,11 +163,11 @@ def map_frames(frames: list, fitted: FeatureTransforms) -> None:
     the domains, still in the data's units) to the model's units, in place, with their
     log-Jacobians."""
     for frame in frames:
-        valid = frame.valid
-        X = frame.features[valid]
+        rows = np.flatnonzero(_candidates(frame))
+        Y, _, jac = fitted.forward_observed(frame.features[rows])
         frame.log_jacobian = np.zeros(frame.n_rows)
-        frame.log_jacobian[valid] = fitted.log_jacobian(X)
-        frame.features[valid] = fitted.forward(X)[0]
+        frame.log_jacobian[rows] = jac
+        frame.features[rows] = Y
 
 
 def valid_log_jacobian(frame) -> np.ndarray | None:

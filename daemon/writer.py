@@ -74,8 +74,9 @@ def labels_name(input_name: str, digest: str, fmt: str) -> str:
 
 def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray | None,
                  confidence: np.ndarray | None, log_density: np.ndarray | None,
-                 unusual_below: float, model_version: int | None,
-                 log_jacobian: np.ndarray | None = None) -> pa.Table:
+                 unusual_below, model_version: int | None,
+                 log_jacobian: np.ndarray | None = None,
+                 observed: np.ndarray | None = None) -> pa.Table:
     """The labels of one input, one row per input row.
 
     ``unusual`` compares ``log_density`` (the model's own units) with ``unusual_below``;
@@ -84,6 +85,9 @@ def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray |
 
     ``segment``/``confidence``/``log_density`` hold values for the valid rows
     only (or are None when no model exists yet); invalid rows get nulls.
+    ``unusual_below`` is one threshold, or one per valid row (rows with missing features
+    have their own: :class:`shoal.daemon.gaps.Unusual`). ``observed`` (every row's
+    number of features present) becomes the ``observed`` column, never null.
     The columns are made from numpy buffers directly (``pa.Array.from_buffers``):
     ``pa.array`` on a numpy array imports pandas on its first call (0.3-0.6 s of the
     first input of every process) and copies the values once more.
@@ -113,6 +117,8 @@ def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray |
                                      null_count=nulls)
 
     ld = spread(log_density, np.float64)
+    if not np.isscalar(unusual_below):
+        unusual_below = spread(unusual_below, np.float64)
     unusual = np.packbits(ld < unusual_below, bitorder="little")
     if scored and log_jacobian is not None:
         ld = spread(log_density + log_jacobian, np.float64)
@@ -124,6 +130,9 @@ def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray |
         "model_version": column(pa.int64(), np.full(n, model_version if scored else 0,
                                                     dtype=np.int64)),
     }
+    if observed is not None:
+        cols["observed"] = pa.Array.from_buffers(
+            pa.int64(), n, [None, pa.py_buffer(np.ascontiguousarray(observed, np.int64))])
     table = passthrough
     for name, arr in cols.items():
         table = table.append_column(name, arr)
@@ -132,7 +141,7 @@ def labels_table(passthrough: pa.Table, valid: np.ndarray, segment: np.ndarray |
 
 # shoal's own columns of a labels file, after the pass-through columns
 LABELS_COLUMNS = ("segment", "confidence", "log_density", "unusual", "model_version",
-                  "segment_name")
+                  "observed", "segment_name")
 
 
 def relabel_file(path: Path, fmt: str, valid: np.ndarray | None, scores,
@@ -164,12 +173,15 @@ def relabel_file(path: Path, fmt: str, valid: np.ndarray | None, scores,
     meta = {k.decode()[len("shoal."):]: v.decode()
             for k, v in (table.schema.metadata or {}).items() if k.startswith(b"shoal.")}
     meta["model_version"] = model_version
+    observed = table.column("observed").to_numpy() if "observed" in table.column_names \
+        else None   # every row's count of features present, as it was written
     passthrough = table.drop_columns([c for c in LABELS_COLUMNS if c in table.column_names])
     passthrough = passthrough.replace_schema_metadata(
         {k: v for k, v in (table.schema.metadata or {}).items()
          if not k.startswith(b"shoal.") and k != b"ARROW:schema"} or None)
     new = labels_table(passthrough, valid, scores.segment, scores.confidence,
-                       scores.log_density, unusual_below, model_version, log_jacobian)
+                       scores.log_density, unusual_below, model_version, log_jacobian,
+                       observed=observed)
     write_labels_stream(list(named([new])), path, fmt, lambda: meta, threaded=False)
 
 

@@ -105,3 +105,17 @@ def notify_socket(folder: Path, kind: str):
         name = str(folder / "notify.sock")
         sock.bind(name)
     return sock, name
+
+
+def parquet_drops(folder: Path, first: int, n: int, seed: int, rows: int = 400) -> list[Path]:
+    """Synthetic drops ``d<first>.parquet`` .. written into ``folder`` (not an inbox)."""
+    import pyarrow.parquet as pq
+
+    from shoal.daemon.drills import synthetic_table
+
+    paths = []
+    for i in range(first, first + n):
+        path = folder / f"d{i:03d}.parquet"
+        pq.write_table(synthetic_table(i, rows, seed), path)
+        paths.append(path)
+    return paths

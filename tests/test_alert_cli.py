@@ -11,6 +11,7 @@ import sys
 from pathlib import Path
 
 import pyarrow as pa
+import pyarrow.parquet as pq
 import pytest
 import yaml
 
@@ -141,6 +142,20 @@ def test_demo_prints_the_drift_and_new_state_alerts_with_explanations(tmp_path):
     assert 0 < first_row - NEW_STATE.start_row <= 20_000
     assert f"segment {born} born from" in lines[at[0] + 2] and "fan_rpm 11" in lines[at[0] + 2]
     assert any(x.split() == [str(born), scenario.NEW_STATE, x.split()[-1]] for x in lines), out
+    # the fan-speed probes of half the fleet drop out for a while: the missing-share
+    # alert names fan_rpm, and every row with min_observed (3 of 5) features has a segment
+    at = [i for i, x in enumerate(lines) if "RAISED" in x and "missing_share" in x]
+    assert at and all("feature fan_rpm missing from" in lines[i + 2] for i in at), out
+    gappy = 0
+    for path in sorted((tmp_path / "demo" / "outbox").iterdir()):
+        labels = pq.read_table(path)
+        observed = labels.column("observed").to_numpy()
+        if (observed == 5).all():
+            continue                         # not one of the drops with the outage
+        segment = labels.column("segment").to_pylist()
+        assert [s is not None for s in segment] == (observed >= 3).tolist(), path.name
+        gappy += int((observed == 4).sum())
+    assert gappy > 4000                      # a quarter of 16,000 rows: 4 units of 8, half
 
     cfg = tmp_path / "demo" / "shoal.yaml"
     r = shoal("alerts", "-c", cfg, "--json")

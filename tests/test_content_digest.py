@@ -81,7 +81,7 @@ def test_a_new_store_records_blake3_and_its_ledger_holds_blake3_of_each_input(
     assert [e.digest for e in ledger] == want
     assert hashlib.sha256(parquet.read_bytes()).hexdigest() != want[0]
     assert _meta(layout.db)["digest_algorithm"] == "blake3"
-    assert _meta(layout.db)["schema_version"] == str(SCHEMA_VERSION)
+    assert _meta(layout.db)["schema_version"] == str(store_module.SCHEMA_VERSION)
     assert "digest" in _columns(layout.db) and "sha256" not in _columns(layout.db)
     for result, digest in zip(results[:2], want):
         assert result.labels.name.split(".")[1] == digest[:16]
@@ -146,7 +146,7 @@ def test_a_v1_store_is_migrated_and_still_knows_its_inputs_by_sha256(tmp_path, t
     assert meta[b"shoal.input_digest"].decode() == sha["new.parquet"]
     assert meta[b"shoal.digest_algorithm"] == b"sha256"
     assert learned.labels.name.split(".")[1] == sha["new.parquet"][:16]
-    assert _meta(layout.db)["schema_version"] == str(SCHEMA_VERSION)
+    assert _meta(layout.db)["schema_version"] == str(store_module.SCHEMA_VERSION)
     assert _meta(layout.db)["digest_algorithm"] == "sha256"
     assert _columns(layout.db)[1] == "digest" and "sha256" not in _columns(layout.db)
     assert _indexes(layout.db) == {"ledger_digest"}
@@ -212,8 +212,9 @@ def test_a_store_of_a_later_schema_version_is_refused(tmp_path):
     con = sqlite3.connect(db)
     with con:
         con.execute("UPDATE meta SET value = ? WHERE key = 'schema_version'",
-                    (str(SCHEMA_VERSION + 1),))
+                    (str(store_module.SCHEMA_VERSION + 1),))
     con.close()
-    with pytest.raises(StateError, match=f"schema version {SCHEMA_VERSION + 1}; this shoal "
-                       f"reads versions up to {SCHEMA_VERSION}"):
+    with pytest.raises(StateError, match=f"schema version {store_module.SCHEMA_VERSION + 1}; "
+                                         "this shoal reads versions up to "
+                                         f"{store_module.SCHEMA_VERSION}"):
         StateStore(db)

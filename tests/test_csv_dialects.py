@@ -26,7 +26,8 @@ def _text(rows, sep=",", decimal=".", header=HEADER):
 
 
 def _ingest(tmp_path, files, **config):
-    cfg = write_config(tmp_path, warmup_rows=250, **config)
+    # every feature required: a row with an empty value is invalid (null segment)
+    cfg = write_config(tmp_path, warmup_rows=250, learning={"min_observed": 3}, **config)
     drops = tmp_path / "drops"
     drops.mkdir(exist_ok=True)
     paths = []

@@ -94,18 +94,21 @@ def test_parquet_without_a_passthrough_column_is_quarantined(svc):
 
 
 def test_non_finite_cells_are_null_labelled_and_file_committed(svc):
+    # NaN and empty cells are missing values: those rows (2 of 3 features present, the
+    # default min_observed) are scored and learned; infinite cells make a row invalid
     data = (b"key,ts,f1,f2,f3\na,1,0.1,0.2,0.3\nb,2,nan,0.2,0.3\nc,3,inf,0.2,0.3\n"
-            b"d,4,,0.2,0.3\ne,5,-inf,0.2,0.3\nf,6,6.0,0.1,1.0\n")
+            b"d,4,,0.2,0.3\ne,5,-inf,0.2,0.3\nf,6,6.0,0.1,1.0\ng,7,,,0.3\n")
     r = svc.drop_bytes(gzip.compress(data), "holes.csv.gz")
-    assert r.outcome == "committed" and r.rows == 6 and r.rows_invalid == 4
+    assert r.outcome == "committed" and r.rows == 7 and r.rows_invalid == 3
     labels = pq.read_table(r.labels)
-    assert labels.column("key").to_pylist() == list("abcdef")
+    assert labels.column("key").to_pylist() == list("abcdefg")
     seg = labels.column("segment").to_pylist()
-    assert [s is None for s in seg] == [False, True, True, True, True, False]
-    # invalid rows were not learned from: the model advanced by the two good rows only
+    assert [s is None for s in seg] == [False, False, True, False, True, False, True]
+    assert labels.column("observed").to_pylist() == [3, 2, 3, 2, 3, 3, 1]
+    # invalid rows were not learned from: the model advanced by the four good rows only
     entry = svc.reader.ledger("committed")[-1]
-    assert (entry.rows, entry.rows_invalid) == (6, 4)
-    assert svc.pipeline.state.mixture.n_rows == 200 + 2  # 700-row seed: 500 warm-up, 200 learned
+    assert (entry.rows, entry.rows_invalid) == (7, 3)
+    assert svc.pipeline.state.mixture.n_rows == 200 + 4  # 700-row seed: 500 warm-up, 200 learned
 
 
 def test_each_limit(svc):

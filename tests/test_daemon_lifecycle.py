@@ -91,7 +91,7 @@ def test_fifty_demo_drops_csv_and_parquet(tmp_path):
         t = pq.read_table(tmp_path / "outbox" / labels[name])
         assert t.num_rows == n
         assert t.column_names == ["unit_id", "timestamp", "segment", "confidence",
-                                  "log_density", "unusual", "model_version"]
+                                  "log_density", "unusual", "model_version", "observed"]
     last = pq.read_table(tmp_path / "outbox" / labels["fleet-049.parquet"])
     assert last.column("segment").null_count == 0
     assert set(last.column("segment").to_pylist()) <= {0, 1, 2, 3}

@@ -5,8 +5,8 @@ BOM, Latin-1 and UTF-16, numbers written in many ways, huge and tiny values, emp
 cells, CRLF) and Parquet (types, nulls, row groups, compression, dictionaries,
 nested extra columns) files go through ``Pipeline.process``, the call the
 service's loop makes for every input. Each must come back committed (labels for
-every row, a null segment exactly on the rows with a null, NaN, infinite or
-out-of-range feature) or quarantined with a reason and a sidecar; ``process`` never raises,
+every row, a null segment exactly on the rows with an infinite or out-of-range
+feature, or with fewer than half their features present (not null, NaN or empty)) or quarantined with a reason and a sidecar; ``process`` never raises,
 the outbox only ever holds complete labels files, and the model stays finite.
 
 A generator knows what it made: a well-formed file must be committed, a broken
@@ -17,6 +17,7 @@ way. CI runs a bounded number of examples; ``SHOAL_DEEP=1`` runs many more
 import codecs
 import itertools
 import json
+import math
 import os
 
 import numpy as np
@@ -107,8 +108,8 @@ class Harness:
         mixture = self.pipeline.state.mixture
         reach = pipeline_module.MODEL_RANGE_SDS * mixture.scale
         expected = [v is not None
-                    and bool(np.all(np.abs(np.array([float(x) for x in v]) - mixture.center)
-                                    <= reach))
+                    and bool(np.all((np.abs(np.array(v) - mixture.center) <= reach)
+                                    | np.isnan(np.array(v))))
                     for v in valid]
         assert [s is not None for s in segment] == expected
         ids = set(self.pipeline.state.mixture.ids.tolist())
@@ -146,6 +147,20 @@ def _usable(value) -> bool:
     return value is not None and abs(float(value)) <= 1e50
 
 
+def _missing(value) -> bool:
+    return value is None or math.isnan(float(value))
+
+
+def _row(values):
+    """A row's features if it is learned from, else None: every present value usable
+    and at least half the features (rounded up, the default min_observed) present;
+    missing values (null, NaN, empty) as NaN."""
+    present = [v for v in values if not _missing(v)]
+    if len(present) < (len(values) + 1) // 2 or not all(_usable(v) for v in present):
+        return None
+    return tuple(np.nan if _missing(v) else float(v) for v in values)
+
+
 def _value(token: str) -> float | None:
     t = token.strip()
     return None if t == "" else float(t)
@@ -175,7 +190,7 @@ def csv_files(draw):
         rows.append([_quote(cells[c], quote_all) for c in header])
         keys.append(cells["key"])
         floats = [_value(v) for v in values.values()]
-        valid.append(tuple(floats) if all(_usable(v) for v in floats) else None)
+        valid.append(_row(floats))
     expect = "commit"
     broken = draw(st.sampled_from(["none"] * 6 + ["text", "width", "missing"]))
     if broken == "text":
@@ -246,7 +261,7 @@ def parquet_files(draw):
             columns[f] = pa.array(values, type=t)
         for row, v in zip(row_values, values):
             row.append(v)
-    valid = [tuple(r) if all(_usable(v) for v in r) else None for r in row_values]
+    valid = [_row(r) for r in row_values]
     keys = [f"k{i}" for i in range(n)]
     key_type = draw(st.sampled_from(["string", "large_string", "dictionary"]))
     columns["key"] = (pa.array(keys).dictionary_encode() if key_type == "dictionary"

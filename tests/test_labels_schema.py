@@ -35,7 +35,9 @@ def _write(folder, name, table):
 
 
 def _ingest(tmp_path, paths, **config):
-    cfg = write_config(tmp_path, passthrough=["id", "ts", "tag"], warmup_rows=400, **config)
+    # every feature required: a row without a value is invalid (null segment)
+    cfg = write_config(tmp_path, passthrough=["id", "ts", "tag"], warmup_rows=400,
+                       learning={"min_observed": 3}, **config)
     return main(["ingest", "-c", str(cfg), *map(str, paths)])
 
 

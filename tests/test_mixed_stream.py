@@ -105,7 +105,7 @@ def _write_drops(folder):
 def test_a_mixed_stream_ends_labelled_with_one_schema_and_alert_times_of_their_rows(
         tmp_path):
     cfg = write_config(
-        tmp_path, passthrough=["id", "ts"], warmup_rows=1000,
+        tmp_path, passthrough=["id", "ts"], warmup_rows=1000, learning={"min_observed": 3},
         input={"delimiter": ";", "decimal": ",", "bad_rows": "skip"},
         drift={"time_column": "ts", "time_unit": "s", "settle_rows": 400,
                "window_rows": 200, "noise_multiple": 0.0, "persist": 1,

@@ -238,3 +238,42 @@ def test_warm_up_rows_wait_in_the_data_units_until_the_first_model(stream):
     # log-means 0 and 2 of dur_s (under log1p they would sit near 0.55 and 2.1)
     got = np.sort(m.data_means()[:, 0])
     np.testing.assert_allclose(got, [0.0, 2.0], atol=0.15)
+
+
+def test_missing_values_of_a_transformed_feature_are_missing_not_outside(stream):
+    # A row with a missing value is scored by the features present (their marginal), so
+    # under a transform its density in the data's units carries the Jacobian of the
+    # features present only; a value present but outside the domain still makes the row
+    # invalid, and is counted, even when another feature is missing.
+    rng = np.random.default_rng(SEED + 7)
+    s = stream(transforms={"dur_s": "log"}, covariance="full")
+    s.feed(_rows(rng, 1500))
+    X = _rows(rng, 300)
+    X[0:50, 1] = np.nan        # temperature missing: scored on log(dur)
+    X[50:100, 0] = np.nan      # duration missing: scored on temperature
+    X[100:110, 0] = 0.0        # outside log's domain ...
+    X[100:110, 1] = np.nan     # ... with the other feature missing: still invalid
+    src, out = s.folder / "gaps-in.parquet", s.folder / "gaps.parquet"
+    pq.write_table(pa.table({f: X[:, j] for j, f in enumerate(FEATURES)}), src)
+    r = s.pipeline.label_only(src, out)
+    assert r.rows_outside_domain == 10 and r.rows_invalid == 10
+    labels = pq.read_table(out)
+    seg = labels.column("segment").to_numpy(zero_copy_only=False)
+    assert np.isnan(seg[100:110]).all() and not np.isnan(seg[:100]).any()
+    assert not np.isnan(seg[110:]).any()
+    observed = labels.column("observed").to_numpy()
+    np.testing.assert_array_equal(observed[:100], 1)
+    got = labels.column("log_density").to_numpy(zero_copy_only=False)
+    cp = s.store.latest_checkpoint()
+    m = Mixture.from_state(cp.arrays, cp.meta)
+    w, mu, cov = m.weights, m.data_means(), m.data_covariance_matrices()
+    # reference: scipy.stats.norm of each observed margin (in the model's units), mixed
+    # by the stored weights, plus -log(dur) where dur is the feature present
+    log_dur = np.log(X[0:50, 0])
+    dens_dur = sum(wk * stats.norm(mk[0], np.sqrt(ck[0, 0])).pdf(log_dur)
+                   for wk, mk, ck in zip(w, mu, cov))
+    np.testing.assert_allclose(got[0:50], np.log(dens_dur) - log_dur, rtol=1e-10)
+    temp = X[50:100, 1]
+    dens_temp = sum(wk * stats.norm(mk[1], np.sqrt(ck[1, 1])).pdf(temp)
+                    for wk, mk, ck in zip(w, mu, cov))
+    np.testing.assert_allclose(got[50:100], np.log(dens_temp), rtol=1e-10)

@@ -39,7 +39,8 @@ def _labels(outbox, path):
 
 
 def test_rows_of_inputs_before_the_first_model_end_with_its_segment(tmp_path, capsys):
-    cfg = write_config(tmp_path, warmup_rows=WARMUP)
+    # every feature required: a row with a null feature stays invalid (null segment)
+    cfg = write_config(tmp_path, warmup_rows=WARMUP, learning={"min_observed": 3})
     settings = load_config(cfg)
     paths = _drops(tmp_path / "drops", 4, invalid_every=97)
     assert main(["ingest", "-c", str(cfg), *map(str, paths)]) == 0

@@ -1,0 +1,418 @@
+"""Rows with missing features: marginal scoring and EM with missing data.
+
+A missing feature is NaN in the rows handed to :class:`~shoal.core.mixture.Mixture`.
+For a row with observed features ``o`` and missing ``m``, component ``k`` scores the
+row by its Gaussian marginal over ``o`` (mean ``mu_o``, covariance ``Sigma_oo``), and
+the E-step of learning completes the row with the conditional mean and adds the
+conditional covariance to the second moment (Ghahramani & Jordan 1994, "Supervised
+learning from incomplete data via an EM approach"; Little & Rubin, *Statistical
+Analysis with Missing Data*, ch. 11):
+
+    E[z_m | z_o, k]        = mu_m + Sigma_mo Sigma_oo^-1 (z_o - mu_o)
+    Cov[z_m | z_o, k]      = Sigma_mm - Sigma_mo Sigma_oo^-1 Sigma_om
+    E[z z^T | z_o, k]      = zhat zhat^T + [[0, 0], [0, Cov[z_m | z_o, k]]]
+
+The full type works from the precision ``Lam = Sigma^-1 = U U^T`` rather than from
+``Sigma_oo^-1``, so that rows need no factorisation per missingness pattern: with the
+missing coordinates filled by any value (zero here, the warm-up mean) and
+``d = z - mu``, ``g = (Lam d)_m`` and ``H = Lam_mm``,
+
+    (z_o - mu_o)^T Sigma_oo^-1 (z_o - mu_o) = d^T Lam d - g^T H^-1 g
+    log det Sigma_oo = log det Sigma + log det H
+    E[z_m | z_o] = z_m - H^-1 g,         Cov[z_m | z_o] = H^-1
+
+(the Schur complement of ``Lam_mm`` in ``Lam`` is ``Sigma_oo^-1``). So the log-density
+of the filled row by the ordinary scoring kernels, plus a correction that needs only the
+``|m| x |m|`` block ``H``, is the marginal log-density. Rows are grouped by how many
+features they miss: one and two in closed form, more by batched LAPACK. The diag and
+spherical types drop the missing terms from the sum (``H`` is diagonal).
+
+Complete rows never come here: the mixture sends them down its ordinary paths and only
+the rows with a gap, filled, through these kernels.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .covariance import LOG_2PI
+from .errors import ModelError
+
+__all__ = ["Gaps", "find", "fill", "gap_log_joint", "gap_moments", "pack", "Packed", "Bound"]
+
+BLOCK_ROWS = 2048   # incomplete rows handled at once: (K, rows, D) arrays stay small
+_INFINITE = ("X contains infinite values; drop or mark those rows first (NaN marks a "
+             "missing feature)")
+
+
+class Gaps:
+    """Where a block of rows has missing features.
+
+    Attributes
+    ----------
+    rows : ndarray of shape (n_gappy,)
+        Increasing indices of the rows with at least one missing feature.
+    mask : ndarray of shape (n_gappy, n_features)
+        True where that row's feature is missing (made on first use when the gaps were
+        given as ``off`` and ``cols``: row ``g`` misses ``cols[off[g]:off[g+1]]``).
+    """
+
+    __slots__ = ("rows", "_mask", "off", "cols", "n_features")
+
+    def __init__(self, rows, mask=None, *, off=None, cols=None, n_features=None):
+        self.rows, self._mask = rows, mask
+        self.off, self.cols, self.n_features = off, cols, n_features
+
+    @property
+    def mask(self) -> np.ndarray:
+        if self._mask is None:
+            mask = np.zeros((len(self), self.n_features), dtype=bool)
+            mask[np.repeat(np.arange(len(self)), np.diff(self.off)), self.cols] = True
+            self._mask = mask
+        return self._mask
+
+    def within(self, lo: int, hi: int) -> "Gaps":
+        """The gaps of rows ``lo:hi``, indexed from ``lo``."""
+        a, b = np.searchsorted(self.rows, [lo, hi])
+        if self._mask is not None:
+            return Gaps(self.rows[a:b] - lo, self._mask[a:b])
+        return Gaps(self.rows[a:b] - lo, off=self.off[a:b + 1] - self.off[a],
+                    cols=self.cols[self.off[a]:self.off[b]], n_features=self.n_features)
+
+    def __len__(self) -> int:
+        return int(self.rows.shape[0])
+
+
+def find(X, kern=None) -> Gaps | None:
+    """Where ``X`` (float64, shape (n_samples, n_features)) has NaN; None if nowhere.
+
+    One pass finds the rows to look at: the compiled ``kern.gap_index`` if given,
+    else numpy's row sums (a NaN or an infinity makes the sum non-finite). Infinite
+    values are not missing: they raise :class:`ModelError`.
+    """
+    if kern is not None and X.flags.c_contiguous:
+        n, D = X.shape
+        rows, off = np.empty(n, dtype=np.int64), np.empty(n + 1, dtype=np.int64)
+        cols = np.empty(n * D, dtype=np.int64)
+        count = kern.gap_index(X, rows, off, cols)
+        if count < 0:
+            raise ModelError(_INFINITE)
+        if count == 0:
+            return None
+        return Gaps(rows[:count], off=off[: count + 1], cols=cols[: off[count]],
+                    n_features=D)
+    suspect = np.flatnonzero(~np.isfinite(np.add.reduce(X, axis=1)))
+    if suspect.size == 0:
+        return None
+    sub = X[suspect]
+    if np.isinf(sub).any():
+        raise ModelError(_INFINITE)
+    nan = np.isnan(sub)
+    keep = nan.any(axis=1)     # the others only overflowed their sum: finite rows
+    if not keep.any():
+        return None
+    return Gaps(suspect[keep], nan[keep])
+
+
+def fill(X, center, gaps: Gaps) -> np.ndarray:
+    """A copy of ``X`` with its missing values at the feature's ``center``."""
+    filled = X.copy()
+    filled[gaps.rows] = np.where(gaps.mask, center, X[gaps.rows])
+    return filled
+
+
+# ------------------------------------------------------------------- full type
+def _precision(model):
+    """``Lam_k = U_k U_k^T`` and ``Lam_k mu_k``, shapes (K, D, D) and (K, D)."""
+    U = model.prec_chol
+    lam = U @ np.swapaxes(U, 1, 2)
+    return lam, np.einsum("kde,ke->kd", lam, model.means)
+
+
+def _groups(mask):
+    """Rows grouped by how many features they miss: ``(r, rows, cols)`` with ``cols`` of
+    shape (len(rows), r) listing each row's missing features in increasing order."""
+    count = np.count_nonzero(mask, axis=1)
+    for r in np.flatnonzero(np.bincount(count)):
+        rows = np.flatnonzero(count == r)
+        cols = np.nonzero(mask[rows])[1].reshape(rows.size, r)
+        yield int(r), rows, cols
+
+
+def _solve_small(H, g):
+    """``H^-1 g``, ``H^-1`` and ``log det H`` for stacks of small positive-definite ``H``
+    of shape (..., r, r), ``g`` (..., r); closed forms for r = 1 and 2."""
+    r = H.shape[-1]
+    if r == 1:
+        inv = 1.0 / H
+        return g * inv[..., 0], inv, np.log(H[..., 0, 0])
+    if r == 2:
+        a, b, c = H[..., 0, 0], H[..., 0, 1], H[..., 1, 1]
+        det = a * c - b * b
+        inv = np.empty_like(H)
+        inv[..., 0, 0], inv[..., 1, 1] = c / det, a / det
+        inv[..., 0, 1] = inv[..., 1, 0] = -b / det
+        return np.einsum("...rs,...s->...r", inv, g), inv, np.log(det)
+    chol = np.linalg.cholesky(H)
+    inv = np.linalg.inv(H)
+    log_det = 2.0 * np.sum(np.log(np.diagonal(chol, axis1=-2, axis2=-1)), axis=-1)
+    return np.einsum("...rs,...s->...r", inv, g), inv, log_det
+
+
+def _full_gaps(model, Z, mask, learn):
+    """Correction (K, n) to the filled rows' log-joint and, with ``learn``, the completed
+    rows (K, n, D) and the conditional covariances by group."""
+    lam, lam_mu = _precision(model)
+    K, n, D = model.n_components, Z.shape[0], Z.shape[1]
+    corr = np.empty((K, n))
+    zhat = np.broadcast_to(Z, (K, n, D)).copy() if learn else None
+    conds = []
+    # Lam_k z for every row in one product; each row then takes its missing entries
+    lam_z = (lam.reshape(K * D, D) @ Z.T).reshape(K, D, n)
+    for r, rows, cols in _groups(mask):
+        g = lam_z[:, cols, rows[:, None]] - lam_mu[:, cols]
+        H = lam[:, cols[:, :, None], cols[:, None, :]]
+        step, inv, log_det = _solve_small(H, g)
+        corr[:, rows] = 0.5 * (r * LOG_2PI - log_det + np.sum(g * step, axis=-1))
+        if learn:
+            # E[z_m | z_o, k] = z_m - H^-1 g, written into each row's missing slots
+            flat = (rows[:, None] * D + cols).ravel()
+            zhat.reshape(K, n * D)[:, flat] -= step.reshape(K, -1)
+            conds.append((rows, cols, inv))
+    return corr, zhat, conds
+
+
+def _full_second(W, zhat, conds, D):
+    # per component over the rows with weight for it (the responsibility floor leaves
+    # most rows to one or two components): a fraction of one dense batched product
+    K = W.shape[0]
+    s2 = np.zeros((K, D, D))
+    for k in range(K):
+        on = np.flatnonzero(W[k])
+        if on.size:
+            zk = zhat[k, on]
+            s2[k] = (zk * W[k, on, None]).T @ zk
+    for rows, cols, inv in conds:
+        # sum_i W_ki Cov_ki at (m_i, m_i): one bincount over (component, entry) indices
+        at = (cols[:, :, None] * D + cols[:, None, :]).reshape(rows.size, -1)
+        at = (np.arange(K)[:, None, None] * (D * D) + at[None]).ravel()
+        wk = (W[:, rows, None] * inv.reshape(K, rows.size, -1)).ravel()
+        s2 += np.bincount(at, weights=wk, minlength=K * D * D).reshape(K, D, D)
+    return s2
+
+
+# ------------------------------------------------------- diag and spherical types
+def _diag_gaps(model, Z, mask, learn):
+    # With the missing z at zero each missing feature j adds the same term to every row
+    # that misses it: 0.5 (log 2 pi - log prec_kj + prec_kj mu_kj^2); one product sums
+    # them. The missing coordinates complete to the component's mean, with its variance.
+    D = Z.shape[1]
+    prec = model.prec_chol ** 2
+    if prec.ndim == 1:
+        prec = np.repeat(prec[:, None], D, axis=1)
+    M = mask.astype(np.float64)
+    term = 0.5 * (LOG_2PI - np.log(prec) + prec * model.means**2)
+    corr = term @ M.T
+    return corr, ((Z, M, model.means, 1.0 / prec) if learn else None), None
+
+
+def _diag_moments(W, aux):
+    """``(s1, diagonal of s2)`` of rows completed by their components' means."""
+    Z, M, means, var = aux
+    WM = W @ M
+    return W @ Z + means * WM, W @ (Z * Z) + (means * means + var) * WM
+
+
+def _diag_completed(aux):
+    """The completed rows (K, n, D) and their conditional variances (K, n, D)."""
+    Z, M, means, var = aux
+    mask = M.astype(bool)
+    return (np.where(mask[None], means[:, None, :], Z[None]),
+            M[None] * var[:, None, :])
+
+
+_GAPS = {"full": _full_gaps, "diag": _diag_gaps, "spherical": _diag_gaps}
+
+
+def _scale_term(model, mask):
+    """``sum(log scale[m])`` per row: the mixture subtracts the log-scale of every feature,
+    a marginal only those of the observed ones."""
+    return mask @ np.log(model.scale)
+
+
+def gap_log_joint(model, Zf, mask, learn=False):
+    """``log w_k + log N(z_o | mu_ko, Sigma_koo)`` for rows with gaps, standardised units.
+
+    Parameters
+    ----------
+    model : Mixture
+    Zf : ndarray of shape (n_samples, n_features)
+        Standardised rows with the missing features filled by zero.
+    mask : ndarray of shape (n_samples, n_features)
+        True where a feature is missing.
+    learn : bool
+        Also return what the E-step needs.
+
+    Returns
+    -------
+    log_joint : ndarray of shape (n_components, n_samples)
+        Plus ``sum(log scale[m])`` per row, so that subtracting the log-scale of every
+        feature (as the mixture does) leaves the data-unit marginal.
+    aux : tuple or None
+        With ``learn``: the completed rows and the conditional covariances.
+    """
+    family = model.family
+    base = family.log_joint(family.design(Zf), model._scoring_operator)
+    corr, first, second = _GAPS[model.covariance](model, Zf, mask, learn)
+    base += corr
+    base += _scale_term(model, mask)
+    if not learn:
+        return base, None
+    return base, ((first, second) if model.covariance == "full" else first)
+
+
+def gap_moments(model, W, aux):
+    """Statistics ``(s0, s1, s2)`` of rows with gaps for the E-step weights ``W``
+    (n_components, n_samples): the completed rows' moments plus the conditional
+    covariances in the second moment."""
+    D = model.n_features
+    s0 = W.sum(axis=1)
+    if model.covariance == "full":
+        zhat, cond = aux
+        return s0, np.einsum("kn,knd->kd", W, zhat), _full_second(W, zhat, cond, D)
+    s1, s2 = _diag_moments(W, aux)
+    if model.covariance == "spherical":
+        s2 = s2.sum(axis=1) / D
+    return s0, s1, s2
+
+
+# ------------------------------------------------------------------ compiled path
+_KIND = {"full": 0, "diag": 1, "spherical": 2}
+
+
+@dataclass(frozen=True)
+class Packed:
+    """Gaps laid out for the compiled kernels (``gap_log_joint``, ``gap_moments`` in
+    core/_kernels_gaps.h): the rows, their missing features by offsets, and room for the
+    E-step's steps and conditional covariances."""
+
+    rows: np.ndarray     # (n_gappy,) int64, increasing
+    off: np.ndarray      # (n_gappy + 1,) int64: row g misses cols[off[g]:off[g+1]]
+    cols: np.ndarray     # (off[-1],) int64
+    hoff: np.ndarray     # (n_gappy + 1,) int64: offsets of each row's H^-1 / K
+    step: np.ndarray     # (K * off[-1],)
+    hinv: np.ndarray     # (K * hoff[-1],)
+
+
+def pack(gaps: Gaps, covariance: str, n_components: int) -> Packed:
+    """:class:`Packed` for ``gaps`` of a mixture of that type and size."""
+    if gaps.off is not None:
+        off, cols = gaps.off, gaps.cols
+        count = np.diff(off)
+    else:
+        count = gaps.mask.sum(axis=1).astype(np.int64)
+        off = np.zeros(len(gaps) + 1, dtype=np.int64)
+        np.cumsum(count, out=off[1:])
+        cols = np.nonzero(gaps.mask)[1].astype(np.int64)
+    hoff = off
+    if covariance == "full":
+        hoff = np.zeros_like(off)
+        np.cumsum(count * count, out=hoff[1:])
+    return Packed(gaps.rows.astype(np.int64), off, cols, hoff,
+                  np.empty(n_components * int(off[-1])), np.empty(n_components * int(hoff[-1])))
+
+
+class Bound:
+    """:class:`Packed` gaps with one parameter set's precision, for one span of rows."""
+
+    __slots__ = ("packed", "kind", "lam", "lam_mu", "half_const", "log_scale", "kern",
+                 "_block")
+
+    def __init__(self, packed: Packed, model, data_units: bool, kern):
+        self.packed, self.kern = packed, kern
+        self.kind = _KIND[model.covariance]
+        D = model.n_features
+        if model.covariance == "full":
+            self.lam, self.lam_mu = (np.ascontiguousarray(a) for a in _precision(model))
+        else:
+            prec = model.prec_chol ** 2
+            self.lam = np.ascontiguousarray(np.broadcast_to(
+                prec[:, None] if prec.ndim == 1 else prec, (model.n_components, D)))
+            self.lam_mu = np.ascontiguousarray(model.means)
+        diag = self.lam if self.lam.ndim == 2 else np.diagonal(self.lam, axis1=1, axis2=2)
+        # a feature missing alone: 0.5 (log 2 pi - log Lam_jj) of the correction
+        self.half_const = 0.5 * (LOG_2PI - np.log(diag))
+        self.log_scale = np.log(model.scale) if data_units else np.zeros(D)
+        self._block = (None, 0, 0)
+
+    def _range(self, lo, hi):
+        """The gappy rows of block ``lo:hi`` (found once per block)."""
+        if self._block[0] != (lo, hi):
+            a, b = np.searchsorted(self.packed.rows, [lo, hi])
+            self._block = ((lo, hi), int(a), int(b))
+        return self._block[1], self._block[2]
+
+    def fix(self, A, lo):
+        """Design rows ``A`` from row ``lo`` as if the missing values were at the centre
+        (the design kernel wrote NaN there)."""
+        ga, gb = self._range(lo, lo + A.shape[0])
+        if ga < gb:
+            p = self.packed
+            self.kern.gap_fix(A, lo, p.rows, p.off, p.cols, ga, gb, self.kind)
+
+    def log_joint(self, A, lo, L):
+        """Correct the log-joint ``L`` of the block of design rows ``A`` from row ``lo``."""
+        ga, gb = self._range(lo, lo + A.shape[0])
+        if ga == gb:
+            return
+        p = self.packed
+        if not self.kern.gap_log_joint(A, lo, L, p.rows, p.off, p.cols, p.hoff, ga, gb,
+                                       self.lam, self.lam_mu, self.half_const,
+                                       self.log_scale, self.kind, p.step, p.hinv):
+            raise ModelError("a component's precision is not positive definite on the "
+                             "missing features; raise reg_covar")
+
+    def moments(self, A, lo, R, row_w, floor, P):
+        """Add the block's gappy rows' M-step corrections to the design products ``P``."""
+        ga, gb = self._range(lo, lo + A.shape[0])
+        if ga == gb:
+            return
+        p = self.packed
+        self.kern.gap_moments(A, lo, R, row_w, floor, p.rows, p.off, p.cols, p.hoff, ga, gb,
+                              p.step, p.hinv, self.kind, P)
+
+
+# ---------------------------------------------------------------- drift windows
+def expected_scatter(model, Zf, mask, resp):
+    """E-step moments of rows with gaps for given responsibilities, standardised units.
+
+    Parameters
+    ----------
+    model : Mixture
+    Zf : ndarray of shape (n_samples, n_features)
+        Standardised rows, the missing features at zero.
+    mask : ndarray of shape (n_samples, n_features)
+        True where a feature is missing.
+    resp : ndarray of shape (n_components, n_samples)
+        The rows' weights per component.
+
+    Returns
+    -------
+    s1 : ndarray of shape (n_components, n_features)
+        ``sum_i resp_ki E[z_i | z_io, k]``.
+    scatter : ndarray of shape (n_components, n_features, n_features)
+        ``sum_i resp_ki E[z_i z_i^T | z_io, k]`` as a full matrix whatever the type.
+    """
+    _, aux = gap_log_joint(model, Zf, mask, learn=True)
+    D = Zf.shape[1]
+    if model.covariance == "full":
+        zhat, cond = aux
+        return np.einsum("kn,knd->kd", resp, zhat), _full_second(resp, zhat, cond, D)
+    zhat, cond = _diag_completed(aux)
+    s1 = np.einsum("kn,knd->kd", resp, zhat)
+    scatter = np.matmul(np.swapaxes(zhat * resp[:, :, None], 1, 2), zhat)
+    idx = np.arange(D)
+    scatter[:, idx, idx] += np.einsum("kn,knd->kd", resp, cond)
+    return s1, scatter
