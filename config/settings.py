@@ -98,7 +98,8 @@ class OutputSettings:
 @dataclass(frozen=True)
 class LearningSettings:
     step_exponent: float = _f(
-        0.7, "stepwise EM step size decays as (row + offset)^-exponent", min=0.5, max=1.0,
+        0.7, "without half_life_rows, the stepwise EM step decays as "
+             "(row + offset)^-exponent", min=0.5, max=1.0,
         min_open=True)
     reg_covar: float = _f(1e-6, "added to covariance diagonals (standardised units)",
                           min=0.0, max=1.0)
@@ -257,8 +258,8 @@ class Settings:
     covariance: str = _f("full", "covariance type", choices=COVARIANCE_TYPES)
     warmup_rows: int = _f(2000, "rows buffered before the first model is fitted", min=10)
     half_life_rows: int | None = _f(
-        50000, "rows after which old data counts half, so the model tracks a moving "
-               "population (null: no forgetting)", min=1)
+        50000, "rows after which old data counts half, from the end of warm-up on, so "
+               "the model tracks a moving population (null: no forgetting)", min=1)
     seed: int = _f(0, "seed of every random choice", min=0, max=2**32 - 1)
     log_level: str = _f("info", "lowest level logged", choices=LOG_LEVELS)
     watch: WatchSettings = _f(WatchSettings(), "inbox watching")
