@@ -106,6 +106,10 @@ class LearningSettings:
     n_init: int = _f(5, "k-means++ restarts at warm-up", min=1, max=100)
     chunk_rows: int = _f(65536, "rows per stepwise update inside one input", min=1,
                          max=10_000_000)
+    refresh_rows: int = _f(
+        4096, "the model's parameters are derived anew from its statistics at every "
+              "multiple of this many rows learned after warm-up (a slow stream sets fewer); "
+              "fixed once a model exists in the state folder", min=1, max=10_000_000)
     checkpoints_kept: int = _f(20, "model checkpoints kept in the state store", min=1)
 
 
@@ -158,8 +162,9 @@ class BoundOverride:
 @dataclass(frozen=True)
 class DriftSettings:
     enabled: bool = _f(True, "compare segments with their reference and raise alerts")
-    window_rows: int = _f(4096, "rows per evaluation window (the unit of persistence)",
-                          min=100, max=10_000_000)
+    window_rows: int = _f(4096, "rows per evaluation window (the unit of persistence); "
+                                "best a multiple of learning.refresh_rows",
+                          min=1, max=10_000_000)
     settle_rows: int = _f(
         20000, "rows learned after warm-up before the reference snapshot is taken",
         min=0, max=1_000_000_000)
@@ -218,7 +223,8 @@ class LifecycleSettings:
     enabled: bool = _f(True, "segments are born, retired and merged as the population changes")
     check_rows: int = _f(
         4096, "births, retirements and merges are decided at every multiple of this many "
-              "rows learned after warm-up", min=100, max=10_000_000)
+              "rows learned after warm-up; best a multiple of learning.refresh_rows",
+        min=1, max=10_000_000)
     unexplained_quantile: float = _f(
         0.999, "a row is unexplained when its squared Mahalanobis distance to every segment "
                "exceeds this chi-square quantile", min=0.5, max=1.0, min_open=True)

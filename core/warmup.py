@@ -178,6 +178,9 @@ def initialise(
         work on separated data. Batch EM (warm-up) is always exact. Measured on
         seeded 8-component streams (tests/test_core_stepwise.py): 1e-3 costs under
         1e-4 nats/row of average log-likelihood. 0 keeps every responsibility.
+    refresh_rows : int
+        The parameters are derived from the statistics at every multiple of this many
+        learned rows (fewer for a slow stream, so that it learns between inputs).
     averaging : bool or None
         Derive parameters from the running average of the statistics at refresh
         points (Polyak-Ruppert). ``None``: on when the schedule has no floor (the
@@ -192,6 +195,8 @@ def initialise(
     X = _check_rows(X, n_components)
     if int(n_init) < 1:
         raise ModelError(f"n_init should be >= 1, got {n_init!r}")
+    if int(refresh_rows) < 1:
+        raise ModelError(f"refresh_rows should be >= 1, got {refresh_rows!r}")
     n, d = X.shape
     center = X.mean(axis=0)
     scale = X.std(axis=0)
