@@ -239,10 +239,11 @@ class LifecycleSettings:
              "times that of the widest segment", min=0.0, min_open=True)
     max_segments: int = _f(12, "no birth beyond this many segments", min=1, max=1000)
     retire_weight: float = _f(
-        0.005, "a segment whose weight stays under this for retire_rows rows retires",
-        min=0.0, max=1.0)
-    retire_rows: int = _f(100000, "rows a segment's weight must stay under retire_weight "
-                                  "before it retires", min=1)
+        0.005, "a segment whose share of recent rows stays under this for retire_rows rows "
+               "retires", min=0.0, max=1.0)
+    retire_rows: int = _f(30000, "rows a segment's share of recent rows (counted between "
+                                 "decision points) must stay under retire_weight before it "
+                                 "retires", min=1)
     merge_measure: str = _f("hellinger", "distance between two segments' Gaussians",
                             choices=OVERLAP_MEASURES)
     merge_distance: float | None = _f(

@@ -10,8 +10,12 @@ from the same checkpoint and decides the same).
 
 At a decision point, in this order:
 
-retire  a segment whose weight has been under ``retire_weight`` since a decision
-        point ``retire_rows`` or more rows back is dropped (:func:`shoal.core.lifecycle.retire`);
+retire  a segment whose share of the rows learned between decision points (the sum
+        of its responsibilities over them) has been under ``retire_weight`` for
+        ``retire_rows`` rows or more is dropped (:func:`shoal.core.lifecycle.retire`).
+        The evidence is the recent rows, not the model's weight, which fades with
+        the half-life (from 10% to 0.5% takes 4.3 half-lives) and so would keep a
+        vanished segment long after its rows stopped;
 merge   the two segments that overlap most, if closer than ``merge_distance``, are
         merged by adding their statistics; the older id survives
         (:func:`shoal.core.lifecycle.merge`);
@@ -88,7 +92,8 @@ class LifeWatch:
     def start(self, stream_offset: int) -> None:
         """A new model: stream rows are ``stream_offset`` + rows learned after warm-up."""
         self.state = {"format": STATE_FORMAT, "offset": int(stream_offset), "done_at": 0,
-                      "low_since": {}, "unsettled": {}, "pool": {"X": [], "rows": []}}
+                      "low_since": {}, "unsettled": {}, "pool": {"X": [], "rows": []},
+                      "recent": {"rows": 0, "mass": {}}}
         self._load_pool()
 
     def _ensure(self) -> dict:
@@ -118,7 +123,12 @@ class LifeWatch:
     def observe(self, before: Mixture, X: np.ndarray, scores) -> None:
         """Pool the rows of a learned piece that no segment explains; ``before`` is the
         model that scored them (its ``n_rows`` is the piece's first learned row)."""
-        self._ensure()
+        st = self._ensure()
+        recent = st.setdefault("recent", {"rows": 0, "mass": {}})
+        recent["rows"] += len(X)
+        mass = scores.resp.sum(axis=0)
+        for sid, m in zip(before.ids.tolist(), mass.tolist()):
+            recent["mass"][str(sid)] = recent["mass"].get(str(sid), 0.0) + m
         q = self.cfg.unexplained_quantile
         near = np.flatnonzero(scores.log_density < unexplained_below(before, q) + 1e-9)
         if near.size == 0:
@@ -151,12 +161,19 @@ class LifeWatch:
         st = self.state
         low = {sid: at for sid, at in st["low_since"].items()
                if int(sid) in set(mixture.ids.tolist())}
-        for k, sid in enumerate(mixture.ids.tolist()):
-            if mixture.weights[k] < self.cfg.retire_weight:
-                low.setdefault(str(sid), n)
-            else:
-                low.pop(str(sid), None)
-        due = sorted((float(mixture.weights[k]), sid) for k, sid in enumerate(mixture.ids.tolist())
+        recent = st.get("recent") or {"rows": 0, "mass": {}}
+        st["recent"] = {"rows": 0, "mass": {}}
+        share = {}
+        if recent["rows"] > 0:
+            start = n - recent["rows"]
+            for sid in mixture.ids.tolist():
+                share[sid] = recent["mass"].get(str(sid), 0.0) / recent["rows"]
+                if share[sid] < self.cfg.retire_weight:
+                    low.setdefault(str(sid), start)
+                else:
+                    low.pop(str(sid), None)
+        due = sorted((share.get(sid, float(mixture.weights[k])), sid)
+                     for k, sid in enumerate(mixture.ids.tolist())
                      if str(sid) in low and n - low[str(sid)] >= self.cfg.retire_rows)
         for weight, sid in due:
             if mixture.n_components < 2:
@@ -170,9 +187,10 @@ class LifeWatch:
             self._drop_reference(watch, [sid], "retired")
             self._event("retired", sid, n, weight=weight, mean=mean, spread=sd,
                         under_since_row=self.state["offset"] + since,
-                        summary=(f"segment {sid} retired: its weight stayed under "
-                                 f"{self.cfg.retire_weight:.2%} for {n - since} rows "
-                                 f"(last {weight:.2%}); its rows go to the others; "
+                        summary=(f"segment {sid} retired: its share of recent rows "
+                                 f"stayed under {self.cfg.retire_weight:.2%} for "
+                                 f"{n - since} rows (last {weight:.2%}); its rows go "
+                                 f"to the others; "
                                  f"it was {self._describe(mean, sd)}"))
         st["low_since"] = low
         return mixture

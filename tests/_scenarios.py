@@ -1,0 +1,106 @@
+"""Randomised, seeded lifecycle scenarios through the real pipeline (in-process).
+
+Each scenario draws a mixture of K (3-6) well-separated Gaussians in D (2-8) features,
+the smallest weight at least 8%, and feeds it as Parquet drops with the shipped
+defaults except ``half_life_rows: 50000`` and ``warmup_rows: 5000``. Used by the
+lifecycle tests (a few seeds) and by ``scripts/lifecycle_scenarios.py`` (20 or 50
+seeds, a table).
+"""
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from test_drift_alerts import Stream
+
+MIN_WEIGHT = 0.08
+SETTINGS = {"half_life_rows": 50_000, "warmup_rows": 5000}
+SHAPE = ("mean_shift", "spread_ratio")
+
+
+class Truth:
+    """A drawn mixture: weights (K,), means (K, D), covariances (K, D, D)."""
+
+    def __init__(self, seed: int):
+        rng = np.random.default_rng(seed)
+        self.seed = seed
+        self.K = int(rng.integers(3, 7))
+        self.D = int(rng.integers(2, 9))
+        self.weights = MIN_WEIGHT + (1.0 - MIN_WEIGHT * self.K) * rng.dirichlet(
+            np.full(self.K, 2.0))
+        covs = []
+        for _ in range(self.K):
+            q, _ = np.linalg.qr(rng.normal(size=(self.D, self.D)))
+            sd = rng.uniform(0.6, 1.4, self.D)
+            covs.append((q * sd**2) @ q.T)
+        self.covs = np.array(covs)
+        # well separated: every pair of means at least 8 units (5.7 of the largest sd)
+        means = []
+        while len(means) < self.K:
+            m = rng.normal(0.0, 6.0, self.D)
+            if all(np.linalg.norm(m - other) >= 8.0 for other in means):
+                means.append(m)
+        self.means = np.array(means)
+        self.rng = np.random.default_rng(seed + 10_000)
+        self.features = [f"x{j}" for j in range(self.D)]
+
+    def rows(self, n, weights=None, means=None, covs=None):
+        weights = self.weights if weights is None else weights
+        means = self.means if means is None else means
+        covs = self.covs if covs is None else covs
+        labels = self.rng.choice(len(weights), size=n, p=weights / weights.sum())
+        chol = np.linalg.cholesky(covs)
+        z = self.rng.standard_normal((n, self.D))
+        return means[labels] + np.einsum("nde,ne->nd", chol[labels], z)
+
+
+class Run(Stream):
+    """The pipeline on a fresh state folder for one scenario."""
+
+    def __init__(self, folder: Path, truth: Truth, **overrides):
+        folder.mkdir(parents=True, exist_ok=True)
+        super().__init__(folder, truth.features, truth.K, **{**SETTINGS, **overrides})
+        self.truth = truth
+
+    def feed(self, X, drop_rows=10_000):
+        super().feed(X, drop_rows)
+
+    def events(self, status=None):
+        return [a for a in self.alerts() if a.get("kind") == "lifecycle"
+                and (status is None or a["status"] == status)]
+
+    def segment_of(self, true_mean):
+        """The segment of the current model whose mean is nearest a true mean."""
+        m = self.pipeline.state.mixture
+        return int(m.ids[int(np.argmin(np.linalg.norm(m.data_means() - true_mean, axis=1)))])
+
+
+def vanish(folder: Path, seed: int, after=60_000):
+    """A component of weight >= 8% stops appearing at a stream row drawn in 50,000-60,000.
+
+    Returns a dict: K, D, the component's weight, the retirement delay in rows (None if
+    it did not retire), the shape alerts (mean_shift, spread_ratio) on its segment
+    that fired after the vanishing, and every other lifecycle event.
+    """
+    truth = Truth(seed)
+    comp = int(truth.rng.integers(truth.K))
+    before = int(truth.rng.integers(50_000, 60_000))
+    run = Run(folder, truth)
+    try:
+        run.feed(truth.rows(before))
+        segment = run.segment_of(truth.means[comp])
+        gone = truth.weights.copy()
+        gone[comp] = 0.0
+        run.feed(truth.rows(after, weights=gone))
+        retired = [e for e in run.events("retired") if e["segment"] == segment]
+        shape = [a for a in run.alerts() if a.get("kind") == "drift"
+                 and a["status"] == "firing" and a["segment"] == segment
+                 and a["statistic"] in SHAPE and a["rows"]["last"] >= before]
+        others = [(e["status"], e["segment"]) for e in run.events()
+                  if not (e["status"] == "retired" and e["segment"] == segment)]
+        return {"seed": seed, "K": truth.K, "D": truth.D, "weight": float(truth.weights[comp]),
+                "delay": retired[0]["rows"]["first"] - before if retired else None,
+                "shape_alerts": [a["statistic"] for a in shape], "other_events": others}
+    finally:
+        run.close()
