@@ -347,8 +347,9 @@ def compact_group(X, *, min_rows, max_sd=np.inf, threshold=0.999, max_groups=3, 
     A small batch-EM fit on the rows (1 to ``max_groups`` components, the number
     chosen by BIC, :func:`~shoal.core.warmup.select_n_components`); the heaviest
     component is then refined on the rows it explains (squared Mahalanobis distance
-    under the ``threshold`` chi-square quantile), twice, so that scattered rows around
-    it do not widen it.
+    under the ``threshold`` chi-square quantile), re-estimated from the three
+    quarters of them nearest its centre in each round, so that scattered rows around
+    it neither widen it nor pull its mean.
 
     Parameters
     ----------
@@ -384,23 +385,51 @@ def compact_group(X, *, min_rows, max_sd=np.inf, threshold=0.999, max_groups=3, 
     bound = chi2_quantile(threshold, d)
     order = np.argsort(-fit.weights, kind="stable")
     means, covs = fit.data_means(), fit.data_covariance_matrices()
+    need = max(int(min_rows), d + 2)
     for j in order:
-        mean, cov = means[j], covs[j]
-        members = None
-        for _ in range(3):
-            try:
-                chol = np.linalg.cholesky(cov)
-            except np.linalg.LinAlgError:
-                members = None
-                break
-            white = np.linalg.solve(chol, (X - mean).T)
-            members = np.einsum("ij,ij->j", white, white) <= bound
-            if members.sum() < max(int(min_rows), d + 2):
-                members = None
-                break
-            mean = X[members].mean(axis=0)
-            cov = np.cov(X[members], rowvar=False) + reg_covar * np.eye(d)
-        if members is not None and \
-                0.5 * np.linalg.slogdet(cov)[1] / d <= np.log(max_sd):
-            return mean, cov, members
+        found = _trimmed_group(X, means[j], covs[j], bound, need, reg_covar)
+        if found is not None and \
+                0.5 * np.linalg.slogdet(found[1])[1] / d <= np.log(max_sd):
+            return found
     return None
+
+
+def _squared_distances(X, mean, cov):
+    chol = np.linalg.cholesky(cov)
+    white = np.linalg.solve(chol, (X - mean).T)
+    return np.einsum("ij,ij->j", white, white)
+
+
+def _trimmed_group(X, mean, cov, bound, need, reg_covar, keep=0.75, rounds=3):
+    """Mean, covariance and members of the group around ``(mean, cov)``, robust to the
+    scattered rows near it.
+
+    Each round takes the rows within the chi-square ``bound`` and re-estimates from the
+    ``keep`` share of them nearest the centre (a concentration step of FAST-MCD,
+    Rousseeuw & Van Driessen 1999), the covariance scaled back to the whole Gaussian
+    by ``keep / P(chi2_{D+2} <= chi2_D^{-1}(keep))`` (Croux & Haesbroeck 1999). Rows far
+    from the group then no longer pull the estimate; the last round is the plain
+    mean and covariance of the rows within the bound.
+    """
+    d = X.shape[1]
+    eye = reg_covar * np.eye(d)
+    cut = chi2_quantile(keep, d)
+    consistency = keep / float(special.gammainc(0.5 * (d + 2), 0.5 * cut))
+    try:
+        for _ in range(rounds):
+            d2 = _squared_distances(X, mean, cov)
+            inner = np.flatnonzero(d2 <= bound)
+            if inner.size < need:
+                return None
+            h = max(int(np.ceil(keep * inner.size)), d + 2)
+            core_rows = inner[np.argsort(d2[inner], kind="stable")[:h]]
+            mean = X[core_rows].mean(axis=0)
+            cov = consistency * np.cov(X[core_rows], rowvar=False) + eye
+        members = _squared_distances(X, mean, cov) <= bound
+        if int(members.sum()) < need:
+            return None
+        mean = X[members].mean(axis=0)
+        cov = np.cov(X[members], rowvar=False) + eye
+    except np.linalg.LinAlgError:
+        return None
+    return mean, cov, members

@@ -57,6 +57,28 @@ __all__ = ["LifeWatch", "lifecycle_alert_id", "STATE_FORMAT"]
 
 STATE_FORMAT = 1
 _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT = 1e-3, 0.5
+_BIRTH_ROWS_PER_FEATURE = 20
+"""A group is born only from at least this many rows per feature (besides
+``birth_rows``): its mean is then known to about ``sqrt(D / n) = 0.22`` of its sds
+(Mahalanobis), the rms error of a mean from ``n`` rows."""
+
+
+def _recent_share(rows: np.ndarray, n: int, trim: float = 0.1) -> float:
+    """The share of the stream's rows that a group born at row ``n`` takes, from the
+    stream positions ``rows`` of its members in the pool.
+
+    A new group's rows arrive at a steady rate since it appeared, while a few older
+    scattered rows may sit in the pool with them. The oldest ``trim`` share of the
+    members is set aside: with ``c`` members sorted by row, ``r_j`` the first kept
+    (``j = ceil(trim c)``), the share is ``(c - j + 1) / (n - r_j)``. For rows at a
+    steady rate since row ``s`` this is ``c / (n - s)`` up to sampling, whatever
+    ``trim``; the group's first rows alone would let one old stray row stretch the
+    span (and shrink the share) as far back as the pool reaches.
+    """
+    rows = np.sort(np.asarray(rows, dtype=np.int64))
+    c = rows.size
+    j = max(int(np.ceil(trim * c)), 1)
+    return (c - j + 1) / max(n - int(rows[j - 1]), c - j + 1)
 
 
 def lifecycle_alert_id(event: str, segment: int) -> str:
@@ -229,7 +251,8 @@ class LifeWatch:
         covs = mixture.data_covariance_matrices()
         widest = max(float(np.exp(0.5 * np.linalg.slogdet(c)[1] / mixture.n_features))
                      for c in covs)
-        group = compact_group(self._pool_X, min_rows=cfg.birth_rows,
+        group = compact_group(self._pool_X,
+                              min_rows=max(cfg.birth_rows, _BIRTH_ROWS_PER_FEATURE * len(self.features)),
                               max_sd=cfg.birth_max_spread * widest,
                               threshold=cfg.unexplained_quantile, seed=self.settings.seed,
                               reg_covar=self.settings.learning.reg_covar)
@@ -237,8 +260,8 @@ class LifeWatch:
             return mixture
         mean, cov, members = group
         count = int(members.sum())
-        covered = max(n - int(self._pool_rows[members].min()), count)
-        weight = float(np.clip(count / covered, _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT))
+        weight = float(np.clip(_recent_share(self._pool_rows[members], n),
+                               _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT))
         try:
             mixture = add_component(mixture, weight, mean, cov)
         except ModelError as exc:   # e.g. a group too extreme for float64: no birth

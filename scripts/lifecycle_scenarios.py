@@ -9,6 +9,9 @@ Kinds:
 
 vanish      a component of weight >= 8% stops appearing (row 50,000-60,000): rows until its
             segment retires, and shape alerts (mean_shift, spread_ratio) on it after
+birth       a new group of 8% of the rows appears (row 40,000-50,000): rows until its
+            ``born`` event, the event's mean error (Mahalanobis distance under the
+            group's true covariance) and share
 
 Usage: ``python scripts/lifecycle_scenarios.py [--kind vanish] [--seeds 20]``.
 Prints a table; asserts nothing.
@@ -45,7 +48,31 @@ def _vanish(seeds, folder):
           f"scenarios with a shape alert after the vanishing: {shape}")
 
 
-KINDS = {"vanish": _vanish}
+def _birth(seeds, folder):
+    print(f"{'seed':>4} {'K':>2} {'D':>2} {'born after':>10} {'mean error':>10} "
+          f"{'share':>6} {'other events':>12}")
+    good, runs = 0, []
+    for seed in seeds:
+        r = _scenarios.birth(folder / f"birth-{seed}", seed)
+        runs.append(r)
+        ok = r["error"] is not None and r["error"] <= 0.5 and abs(r["share"] - 0.08) <= 0.03
+        good += ok
+        print(f"{seed:>4} {r['K']:>2} {r['D']:>2} "
+              f"{r['delay'] if r['delay'] is not None else 'never':>10} "
+              f"{r['error'] if r['error'] is not None else float('nan'):>10.3f} "
+              f"{r['share'] if r['share'] is not None else float('nan'):>6.3f} "
+              f"{str(r['other_events']):>12}")
+    born = [r for r in runs if r["delay"] is not None]
+    print(f"born with mean within 0.5 (Mahalanobis) and share within 0.03 of 8%: "
+          f"{good} of {len(seeds)}")
+    if born:
+        print(f"born after {min(r['delay'] for r in born)}-{max(r['delay'] for r in born)} "
+              f"rows; mean error up to {max(r['error'] for r in born):.3f}; shares "
+              f"{min(r['share'] for r in born):.3f}-{max(r['share'] for r in born):.3f}; "
+              f"other events in {sum(bool(r['other_events']) for r in runs)} scenarios")
+
+
+KINDS = {"vanish": _vanish, "birth": _birth}
 
 
 def main(argv=None) -> int:

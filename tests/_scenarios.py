@@ -104,3 +104,46 @@ def vanish(folder: Path, seed: int, after=60_000):
                 "shape_alerts": [a["statistic"] for a in shape], "other_events": others}
     finally:
         run.close()
+
+
+def _far_mean(truth: Truth, rng) -> np.ndarray:
+    """A mean at least 8 units from every component's (as the components are apart)."""
+    while True:
+        m = rng.normal(0.0, 6.0, truth.D)
+        if np.all(np.linalg.norm(truth.means - m, axis=1) >= 8.0):
+            return m
+
+
+def birth(folder: Path, seed: int, share=0.08, after=30_000):
+    """A new group of ``share`` of the rows appears at a stream row drawn in 40,000-50,000.
+
+    Returns a dict: K, D, the rows from its appearance to its ``born`` event (None if no
+    birth), the event's mean error (Mahalanobis distance under the group's true
+    covariance) and share, and every other lifecycle event.
+    """
+    truth = Truth(seed)
+    rng = np.random.default_rng(seed + 20_000)
+    start = int(rng.integers(40_000, 50_000))
+    new_mean = _far_mean(truth, rng)
+    q, _ = np.linalg.qr(rng.normal(size=(truth.D, truth.D)))
+    new_cov = (q * rng.uniform(0.6, 1.4, truth.D) ** 2) @ q.T
+    weights = np.append(truth.weights * (1.0 - share), share)
+    means = np.vstack([truth.means, new_mean])
+    covs = np.concatenate([truth.covs, new_cov[None]])
+    run = Run(folder, truth)
+    try:
+        run.feed(truth.rows(start))
+        run.feed(truth.rows(after, weights, means, covs))
+        born = run.events("born")
+        first = born[0] if born else None
+        error = None
+        if first is not None:
+            diff = np.array(list(first["explanation"]["mean"].values())) - new_mean
+            error = float(np.sqrt(diff @ np.linalg.solve(new_cov, diff)))
+        return {"seed": seed, "K": truth.K, "D": truth.D,
+                "delay": first["rows"]["first"] - start if first else None,
+                "error": error, "share": first["explanation"]["weight"] if first else None,
+                "other_events": [(e["status"], e["segment"]) for e in run.events()
+                                 if first is None or e["id"] != first["id"]]}
+    finally:
+        run.close()

@@ -345,3 +345,18 @@ def test_compact_group_finds_a_group_among_scattered_rows_and_nothing_in_scatter
 def test_chi2_quantile_equals_scipy_stats(p, dof):
     # Reference: scipy.stats.chi2.ppf (the lifecycle code avoids importing scipy.stats).
     assert chi2_quantile(p, dof) == pytest.approx(stats.chi2.ppf(p, dof), rel=1e-12)
+
+
+@pytest.mark.parametrize("seed", range(10))
+def test_compact_group_is_not_pulled_by_scattered_rows_around_it(seed):
+    # 50 rows of a unit Gaussian in 4 features among 25 rows scattered over a box 12
+    # sds wide (a pool at a first decision point). Re-fitting on the rows within the
+    # chi-square bound alone, from a start the scatter widened, stays 0.24-0.83 sd off
+    # on these seeds (computed here while the trimmed estimate was written); the
+    # trimmed estimate is within 0.25 sd of the group's own mean.
+    rng = np.random.default_rng(seed)
+    group = rng.standard_normal((50, 4))
+    X = np.concatenate([group, rng.uniform(-6.0, 6.0, (25, 4))])
+    mean, cov, members = compact_group(X, min_rows=40, seed=0)
+    assert np.linalg.norm(mean - group.mean(axis=0)) < 0.25
+    assert members[:50].mean() >= 0.95 and members[50:].sum() <= 3
