@@ -40,6 +40,7 @@ __all__ = [
     "OVERLAP_MEASURES",
     "add_component",
     "compact_group",
+    "widening_explains",
     "merge",
     "overlap",
     "overlapping_pairs",
@@ -433,3 +434,59 @@ def _trimmed_group(X, mean, cov, bound, need, reg_covar, keep=0.75, rounds=3):
     except np.linalg.LinAlgError:
         return None
     return mean, cov, members
+
+
+def widening_explains(mixture: Mixture, X, mean, covariance, threshold: float = 0.999):
+    """Whether rows are explained as well by widening an existing segment as by a new
+    Gaussian group.
+
+    Two tests, either of which gives the rows to a segment. First, a group whose
+    ``threshold`` chi-square bound holds a segment's mean surrounds that segment: its
+    rows are what the segment leaves unexplained after its spread grew, not a
+    population of their own (a compact new group beside a segment does not reach
+    back to its centre). Second, by BIC (Schwarz 1978): the new group costs ``D + D (D + 1) / 2`` free parameters; widening segment ``k``
+    (its covariance times ``c >= 1``, its mean kept) costs one, with the maximum
+    likelihood ``c = mean(d2_k) / D`` from the rows' squared Mahalanobis distances
+    ``d2_k`` to it. A spread that grew puts the segment's rows beyond its chi-square
+    bound all around it: a Gaussian fitted to that shell explains them no better than
+    the widened segment, and is no new group.
+
+    Parameters
+    ----------
+    X : array_like of shape (n_samples, n_features)
+        The group's rows, data units.
+    mean, covariance : array_like of shapes (n_features,), (n_features, n_features)
+        The group's Gaussian, data units.
+
+    Returns
+    -------
+    widened : int or None
+        The id of the segment whose widening explains the rows at least as well
+        (the best one), or None when the new group wins.
+    gain : float
+        Log-likelihood of the group minus that of the best widened segment, minus the
+        BIC penalty of the difference in parameters (> 0: the group wins); ``nan``
+        when the group surrounds a segment.
+    """
+    X = np.asarray(X, dtype=np.float64)
+    n, d = X.shape
+    mean = np.asarray(mean, dtype=np.float64)
+    chol = np.linalg.cholesky(np.asarray(covariance, dtype=np.float64))
+    inside = np.linalg.solve(chol, (mixture.data_means() - mean).T)
+    inside = np.einsum("ij,ij->j", inside, inside)          # segment means, group metric
+    nearest = int(np.argmin(inside))
+    if inside[nearest] <= chi2_quantile(threshold, d):
+        return int(mixture.ids[nearest]), float("nan")
+    d2 = squared_mahalanobis(mixture, X)                          # (n, K)
+    # log |Sigma_k| in data units: -2 log det U_k (standardised) + 2 sum log scale
+    log_det_cov = -2.0 * mixture.log_det + 2.0 * float(np.sum(np.log(mixture.scale)))
+    c = np.maximum(d2.mean(axis=0) / d, 1.0)
+    widened = -0.5 * (n * (d * _LOG_2PI + log_det_cov + d * np.log(c))
+                      + d2.sum(axis=0) / c)
+    white = np.linalg.solve(chol, (X - mean).T)
+    group = -0.5 * (n * (d * _LOG_2PI + 2.0 * float(np.sum(np.log(np.diag(chol)))))
+                    + float(np.sum(white * white)))
+    extra = d + d * (d + 1) / 2 - 1
+    best = int(np.argmax(widened))
+    gain = float(group - widened[best] - 0.5 * extra * np.log(n))
+    return (None if gain > 0 else int(mixture.ids[best])), gain

@@ -49,6 +49,7 @@ from shoal.core.lifecycle import (
     retire,
     unexplained,
     unexplained_below,
+    widening_explains,
 )
 from shoal.daemon.logs import log_event
 from shoal.daemon.store import HistoryRow
@@ -260,6 +261,13 @@ class LifeWatch:
             return mixture
         mean, cov, members = group
         count = int(members.sum())
+        widened, gain = widening_explains(mixture, self._pool_X[members], mean, cov,
+                                          cfg.unexplained_quantile)
+        if widened is not None:
+            log_event("segment_birth_declined", logging.DEBUG, rows=count, segment=widened,
+                      detail=f"segment {widened} widened explains the group as well "
+                             f"(BIC gain of a new group {gain:.1f}; nan: centred on it)")
+            return mixture
         weight = float(np.clip(_recent_share(self._pool_rows[members], n),
                                _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT))
         try:

@@ -12,6 +12,9 @@ vanish      a component of weight >= 8% stops appearing (row 50,000-60,000): row
 birth       a new group of 8% of the rows appears (row 40,000-50,000): rows until its
             ``born`` event, the event's mean error (Mahalanobis distance under the
             group's true covariance) and share
+spread      one component's spread doubles (row 40,000-50,000): lifecycle events in
+            the 100,000 rows after (a birth there is a flap)
+stationary  300,000 rows of an unchanging mixture: every alert and lifecycle event
 
 Usage: ``python scripts/lifecycle_scenarios.py [--kind vanish] [--seeds 20]``.
 Prints a table; asserts nothing.
@@ -72,7 +75,31 @@ def _birth(seeds, folder):
               f"other events in {sum(bool(r['other_events']) for r in runs)} scenarios")
 
 
-KINDS = {"vanish": _vanish, "birth": _birth}
+def _spread(seeds, folder):
+    print(f"{'seed':>4} {'K':>2} {'D':>2}  lifecycle events (kind, segment, rows after)")
+    births = flaps = 0
+    for seed in seeds:
+        r = _scenarios.spread(folder / f"spread-{seed}", seed)
+        born = {e[1] for e in r["events"] if e[0] == "born"}
+        births += bool(born)
+        flaps += any(e[0] == "merged" and e[1] in born for e in r["events"])
+        print(f"{seed:>4} {r['K']:>2} {r['D']:>2}  {r['events']}")
+    print(f"scenarios with a birth: {births} of {len(seeds)}; born and merged back: {flaps}")
+
+
+def _stationary(seeds, folder):
+    print(f"{'seed':>4} {'K':>2} {'D':>2} {'smallest':>8}  alerts (kind, status, segment, "
+          f"statistic, row)")
+    noisy = 0
+    for seed in seeds:
+        r = _scenarios.stationary(folder / f"stationary-{seed}", seed)
+        noisy += bool(r["alerts"])
+        print(f"{seed:>4} {r['K']:>2} {r['D']:>2} {min(r['weights']):>8.3f}  {r['alerts']}")
+    print(f"300,000-row stationary scenarios with any alert or lifecycle event: {noisy} of "
+          f"{len(seeds)}")
+
+
+KINDS = {"vanish": _vanish, "birth": _birth, "spread": _spread, "stationary": _stationary}
 
 
 def main(argv=None) -> int:

@@ -147,3 +147,41 @@ def birth(folder: Path, seed: int, share=0.08, after=30_000):
                                  if first is None or e["id"] != first["id"]]}
     finally:
         run.close()
+
+
+def spread(folder: Path, seed: int, factor=2.0, after=100_000):
+    """One component's spread grows ``factor`` times at a stream row drawn in
+    40,000-50,000. Returns K, D, and the lifecycle events after the change (a
+    spread change should be followed by the segment widening, not by a birth)."""
+    truth = Truth(seed)
+    rng = np.random.default_rng(seed + 30_000)
+    comp = int(rng.integers(truth.K))
+    start = int(rng.integers(40_000, 50_000))
+    covs = truth.covs.copy()
+    covs[comp] *= factor**2
+    run = Run(folder, truth)
+    try:
+        run.feed(truth.rows(start))
+        run.feed(truth.rows(after, covs=covs))
+        return {"seed": seed, "K": truth.K, "D": truth.D,
+                "events": [(e["status"], e["segment"], e["rows"]["first"] - start)
+                           for e in run.events()]}
+    finally:
+        run.close()
+
+
+def stationary(folder: Path, seed: int, rows=300_000, weights=None):
+    """``rows`` rows of an unchanging mixture (its weights from 8% up, or ``weights``).
+    Returns K, D and every alert (drift and lifecycle)."""
+    truth = Truth(seed)
+    if weights is not None:
+        truth.weights = np.asarray(weights, dtype=np.float64)
+    run = Run(folder, truth)
+    try:
+        run.feed(truth.rows(rows))
+        return {"seed": seed, "K": truth.K, "D": truth.D,
+                "weights": truth.weights.round(3).tolist(),
+                "alerts": [(a.get("kind"), a["status"], a["segment"], a["statistic"],
+                            a["rows"]["first"]) for a in run.alerts()]}
+    finally:
+        run.close()

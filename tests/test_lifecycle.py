@@ -13,6 +13,7 @@ from shoal.core.lifecycle import (
     add_component,
     chi2_quantile,
     compact_group,
+    widening_explains,
     merge,
     overlap,
     overlapping_pairs,
@@ -360,3 +361,21 @@ def test_compact_group_is_not_pulled_by_scattered_rows_around_it(seed):
     mean, cov, members = compact_group(X, min_rows=40, seed=0)
     assert np.linalg.norm(mean - group.mean(axis=0)) < 0.25
     assert members[:50].mean() >= 0.95 and members[50:].sum() <= 3
+
+
+def test_widening_explains_a_spread_that_grew_but_not_a_new_group():
+    # A segment N(0, I) in 3 features. Its spread doubles: the rows it leaves
+    # unexplained are a shell around it, and the Gaussian fitted to them holds its
+    # mean (widening). A compact group 8 sds away is a new group: widening the
+    # segment to reach it costs far more likelihood than the group's 9 parameters.
+    d = 3
+    m = Mixture.from_parameters([0.5, 0.5], [[0.0] * d, [30.0] * d], np.stack([np.eye(d)] * 2))
+    rng = np.random.default_rng(43)
+    wide = rng.standard_normal((20_000, d)) * 2.0
+    shell = wide[np.sum(wide**2, axis=1) > chi2_quantile(0.999, d)]
+    widened, gain = widening_explains(m, shell, shell.mean(axis=0),
+                                      np.cov(shell, rowvar=False))
+    assert widened == 0 and np.isnan(gain)
+    group = rng.standard_normal((80, d)) * 0.8 + [8.0, 0.0, 0.0]
+    widened, gain = widening_explains(m, group, group.mean(axis=0), np.cov(group, rowvar=False))
+    assert widened is None and gain > 100.0

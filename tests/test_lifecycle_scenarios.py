@@ -27,3 +27,18 @@ def test_a_born_segment_reports_the_group_that_is_born(seed, tmp_path):
     assert r["error"] <= 0.5, r            # Mahalanobis under the group's true covariance
     assert abs(r["share"] - 0.08) <= 0.03, r
     assert r["other_events"] == [], r
+
+
+# seeds where, before births were weighed against widening the segment, the tail rows
+# of a segment whose spread doubled gave birth to a new segment
+@pytest.mark.parametrize("seed", [0, 4, 9, 12])
+def test_a_spread_that_doubles_is_no_birth(seed, tmp_path):
+    r = _scenarios.spread(tmp_path, seed)
+    print(r)
+    assert [e for e in r["events"] if e[0] == "born"] == [], r
+
+
+@pytest.mark.parametrize("seed", [2, 25, 41])
+def test_a_stationary_stream_of_300000_rows_raises_nothing(seed, tmp_path):
+    r = _scenarios.stationary(tmp_path, seed)
+    assert r["alerts"] == [], r
