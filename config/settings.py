@@ -249,7 +249,11 @@ class LifecycleSettings:
     merge_distance: float | None = _f(
         0.4, "two segments closer than this merge (null: never)", min=0.0, min_open=True)
     settle_rows: int = _f(
-        20000, "a born segment joins the drift reference after this many rows", min=0)
+        20000, "a born or split segment joins the drift reference after this many rows",
+        min=0)
+    cool_down_rows: int = _f(
+        50000, "a pair split or merged is not merged or split back for this many rows",
+        min=0)
 
 
 @dataclass(frozen=True)

@@ -33,7 +33,7 @@ from .distances import (
     pair_indices,
     pairwise_bhattacharyya,
 )
-from .errors import ModelError
+from .errors import ModelError, NotEnoughDataError
 from .mixture import Mixture
 
 __all__ = [
@@ -41,6 +41,8 @@ __all__ = [
     "add_component",
     "compact_group",
     "widening_explains",
+    "split",
+    "split_test",
     "merge",
     "overlap",
     "overlapping_pairs",
@@ -160,6 +162,58 @@ def retire(mixture: Mixture, segment_id) -> Mixture:
     return _rebuilt(mixture, np.delete(mixture.ids, drop), mixture.next_id, arrays)
 
 
+def _second_moment(mixture: Mixture, mean, covariance):
+    """A Gaussian in data units as a standardised mean and second moment of the
+    mixture's covariance type."""
+    zmean = (np.asarray(mean, dtype=np.float64) - mixture.center) / mixture.scale
+    zcov = np.asarray(covariance, dtype=np.float64) / np.outer(mixture.scale, mixture.scale)
+    if mixture.covariance == "full":
+        return zmean, zcov + np.outer(zmean, zmean)
+    if mixture.covariance == "diag":
+        return zmean, np.diagonal(zcov) + zmean**2
+    return zmean, np.trace(zcov) / mixture.n_features + np.mean(zmean**2)
+
+
+def split(mixture: Mixture, segment_id, fractions, means, covariances) -> Mixture:
+    """Split a segment in two; the larger part keeps the id, the other takes ``next_id``.
+
+    Parameters
+    ----------
+    mixture : Mixture
+    segment_id : int
+    fractions : array_like of shape (2,)
+        Shares of the segment's mass the two parts take (normalised here).
+    means : array_like of shape (2, n_features)
+        In the data's own units.
+    covariances : array_like of shape (2, n_features, n_features)
+        Full covariance matrices in data units (reduced to the mixture's type).
+
+    Returns
+    -------
+    split : Mixture
+        One component more: the larger part in the segment's place with its id, the
+        other appended last with id ``mixture.next_id``. The segment's mass is
+        shared between the two; the other segments are unchanged.
+    """
+    k = segment_index(mixture.ids, segment_id)
+    fractions = np.asarray(fractions, dtype=np.float64)
+    if fractions.shape != (2,) or not np.all(fractions > 0):
+        raise ModelError(f"fractions should be two positive shares, got {fractions!r}")
+    fractions = fractions / fractions.sum()
+    order = [0, 1] if fractions[0] >= fractions[1] else [1, 0]
+    parts = [_second_moment(mixture, means[j], covariances[j]) for j in order]
+    arrays = _all_stats(mixture)
+    for s0_name, names in (("s0", _STATS), ("avg_s0", _AVG_STATS)):
+        mass = float(arrays[s0_name][k])
+        stats = [[mass * fractions[j], mass * fractions[j] * zm, mass * fractions[j] * m2]
+                 for j, (zm, m2) in zip(order, parts)]
+        for i, name in enumerate(names):
+            arrays[name][k] = stats[0][i]
+            arrays[name] = np.concatenate([arrays[name], np.asarray(stats[1][i])[None]])
+    ids = np.append(mixture.ids, np.int64(mixture.next_id))
+    return _rebuilt(mixture, ids, mixture.next_id + 1, arrays)
+
+
 def add_component(mixture: Mixture, weight, mean, covariance) -> Mixture:
     """Add a new segment, for example one fitted on a pool of unexplained rows.
 
@@ -195,14 +249,7 @@ def add_component(mixture: Mixture, weight, mean, covariance) -> Mixture:
         )
     if not (np.all(np.isfinite(mean)) and np.all(np.isfinite(covariance))):
         raise ModelError("mean and covariance should be finite")
-    zmean = (mean - mixture.center) / mixture.scale
-    zcov = covariance / np.outer(mixture.scale, mixture.scale)
-    if mixture.covariance == "full":
-        second = zcov + np.outer(zmean, zmean)
-    elif mixture.covariance == "diag":
-        second = np.diagonal(zcov) + zmean**2
-    else:
-        second = np.trace(zcov) / n_features + np.mean(zmean**2)
+    zmean, second = _second_moment(mixture, mean, covariance)
     arrays = _all_stats(mixture)
     for s0_name, names in (("s0", _STATS), ("avg_s0", _AVG_STATS)):
         mass = weight * float(np.sum(arrays[s0_name]))
@@ -490,3 +537,76 @@ def widening_explains(mixture: Mixture, X, mean, covariance, threshold: float = 
     best = int(np.argmax(widened))
     gain = float(group - widened[best] - 0.5 * extra * np.log(n))
     return (None if gain > 0 else int(mixture.ids[best])), gain
+
+
+def _gaussian_fit_log_likelihood(X) -> float:
+    """The log-likelihood of rows under their own maximum-likelihood Gaussian,
+    ``-n/2 (D log 2 pi + log |S| + D)``."""
+    n, d = X.shape
+    sign, log_det = np.linalg.slogdet(np.cov(X, rowvar=False, bias=True).reshape(d, d))
+    if sign <= 0:
+        return -np.inf
+    return -0.5 * n * (d * _LOG_2PI + log_det + d)
+
+
+def _hard_split_gain(X, rng) -> float:
+    """BIC gain of two Gaussians over one, the two from a 2-means partition of the
+    rows (a classification likelihood): a cheap screen before the EM fit. On one
+    Gaussian, 2-means halves it and each half's variance along the cut falls to
+    ``1 - 2/pi`` of the whole, a gain of ``-log(1 - 2/pi) / 2 - log 2 = -0.18`` nats
+    per row, below zero before any penalty; two separated groups gain far more."""
+    from .warmup import _lloyd, kmeans_plus_plus
+
+    n, d = X.shape
+    scale = X.std(axis=0)
+    scale[scale <= 0] = 1.0
+    Z = (X - X.mean(axis=0)) / scale
+    labels = _lloyd(Z, kmeans_plus_plus(Z, 2, rng))
+    sizes = np.bincount(labels, minlength=2)
+    if sizes.min() < d + 2:
+        return -np.inf
+    two = sum(_gaussian_fit_log_likelihood(X[labels == j]) + sizes[j] * np.log(sizes[j] / n)
+              for j in range(2))
+    extra = 1 + d + d * (d + 1) / 2
+    return float(two - _gaussian_fit_log_likelihood(X) - 0.5 * extra * np.log(n))
+
+
+def split_test(X, *, covariance="full", min_share=0.1, seed=0, n_init=3, reg_covar=1e-6):
+    """Whether a segment's rows are better explained by two Gaussians than by one.
+
+    BIC (Schwarz 1978) of a two-component fit (k-means++ restarts and batch EM,
+    :func:`~shoal.core.warmup.initialise`) against one Gaussian, on the rows. The
+    split is the second step of the split-and-merge EM of Ueda et al. (2000), with
+    BIC in place of their local KL criterion so that the extra parameters are paid for.
+
+    Parameters
+    ----------
+    X : ndarray of shape (n_samples, n_features)
+        The segment's recent rows, data units.
+    covariance : {"full", "diag", "spherical"}
+        The mixture's covariance type (the parameter count follows it).
+    min_share : float
+        Each part must hold at least this share of the rows.
+
+    Returns
+    -------
+    parts : tuple (fractions, means, covariances, gain) or None
+        ``fractions`` (2,), ``means`` (2, D), ``covariances`` (2, D, D) in data units,
+        and ``gain``, the BIC of one Gaussian minus that of two (> 0), when two win.
+    """
+    from .warmup import bic, initialise   # warmup imports this module's siblings
+
+    X = np.asarray(X, dtype=np.float64)
+    if _hard_split_gain(X, np.random.default_rng(seed)) <= 0.0:
+        return None
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            one = initialise(X, 1, covariance, seed=seed, n_init=1, reg_covar=reg_covar)
+            two = initialise(X, 2, covariance, seed=seed, n_init=n_init, reg_covar=reg_covar)
+    except (NotEnoughDataError, ModelError, np.linalg.LinAlgError):
+        return None
+    gain = bic(one, X) - bic(two, X)
+    if not gain > 0.0 or two.weights.min() < min_share:
+        return None
+    return two.weights.copy(), two.data_means(), two.data_covariance_matrices(), float(gain)

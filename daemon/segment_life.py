@@ -31,6 +31,7 @@ and takes a born segment in once it has settled (``lifecycle.settle_rows`` rows)
 """
 from __future__ import annotations
 
+import base64
 import hashlib
 import json
 import logging
@@ -43,10 +44,13 @@ from shoal.core import Mixture, ModelError
 from shoal.core.drift import Reference
 from shoal.core.lifecycle import (
     add_component,
+    OVERLAP_MEASURES,
     compact_group,
     merge,
     overlapping_pairs,
     retire,
+    split,
+    split_test,
     unexplained,
     unexplained_below,
     widening_explains,
@@ -58,10 +62,26 @@ __all__ = ["LifeWatch", "lifecycle_alert_id", "STATE_FORMAT"]
 
 STATE_FORMAT = 1
 _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT = 1e-3, 0.5
+_SAMPLE_STRIDE = 4
+_SAMPLE_MIN, _SAMPLE_PER_FEATURE, _SAMPLE_MAX = 200, 50, 500
+"""Every fourth row of the stream goes to its segment's sample (the newest 50 per
+feature, 200 to 500 rows), on which the split test runs each time all of it is new."""
 _BIRTH_ROWS_PER_FEATURE = 20
 """A group is born only from at least this many rows per feature (besides
 ``birth_rows``): its mean is then known to about ``sqrt(D / n) = 0.22`` of its sds
 (Mahalanobis), the rms error of a mean from ``n`` rows."""
+
+
+def _pack(rows: np.ndarray) -> str:
+    """Rows as base64 of their float64 bytes: the checkpoint's JSON carries a sample of
+    hundreds of rows as one string, which encodes and decodes far faster than lists."""
+    return base64.b64encode(np.ascontiguousarray(rows, dtype="<f8").tobytes()).decode("ascii")
+
+
+def _unpack(packed: str | None, n_features: int) -> np.ndarray:
+    if not packed:
+        return np.empty((0, n_features))
+    return np.frombuffer(base64.b64decode(packed), dtype="<f8").reshape(-1, n_features).copy()
 
 
 def _recent_share(rows: np.ndarray, n: int, trim: float = 0.1) -> float:
@@ -116,7 +136,8 @@ class LifeWatch:
         """A new model: stream rows are ``stream_offset`` + rows learned after warm-up."""
         self.state = {"format": STATE_FORMAT, "offset": int(stream_offset), "done_at": 0,
                       "low_since": {}, "unsettled": {}, "pool": {"X": [], "rows": []},
-                      "recent": {"rows": 0, "mass": {}}}
+                      "recent": {"rows": 0, "mass": {}}, "sample": {}, "fresh": {},
+                      "cool": {}}
         self._load_pool()
 
     def _ensure(self) -> dict:
@@ -152,6 +173,7 @@ class LifeWatch:
         mass = scores.resp.sum(axis=0)
         for sid, m in zip(before.ids.tolist(), mass.tolist()):
             recent["mass"][str(sid)] = recent["mass"].get(str(sid), 0.0) + m
+        self._sample(before, X, scores)
         q = self.cfg.unexplained_quantile
         near = np.flatnonzero(scores.log_density < unexplained_below(before, q) + 1e-9)
         if near.size == 0:
@@ -162,6 +184,31 @@ class LifeWatch:
         keep = self.cfg.pool_rows
         self._pool_X = np.concatenate([self._pool_X, X[far]])[-keep:]
         self._pool_rows = np.concatenate([self._pool_rows, before.n_rows + far])[-keep:]
+
+    def _sample(self, before: Mixture, X: np.ndarray, scores) -> None:
+        """Keep every ``_SAMPLE_STRIDE``-th row of the stream (by position, so the same
+        rows whatever the cut) in its segment's sample, the newest ``_sample_cap``."""
+        st = self.state
+        sample, fresh = st.setdefault("sample", {}), st.setdefault("fresh", {})
+        first = (-int(before.n_rows)) % _SAMPLE_STRIDE
+        picked = np.arange(first, len(X), _SAMPLE_STRIDE)
+        if picked.size == 0:
+            return
+        cap = self._sample_cap()
+        labels = scores.segment[picked]
+        for sid in np.unique(labels).tolist():
+            rows = X[picked[labels == sid]]
+            key = str(sid)
+            sample[key] = _pack(np.concatenate([self._sampled(key), rows])[-cap:])
+            fresh[key] = fresh.get(key, 0) + len(rows)
+
+    def _sampled(self, key: str) -> np.ndarray:
+        """The rows of a segment's sample, shape (n, n_features)."""
+        packed = self.state.get("sample", {}).get(key)
+        return _unpack(packed, len(self.features))
+
+    def _sample_cap(self) -> int:
+        return int(min(max(_SAMPLE_MIN, _SAMPLE_PER_FEATURE * len(self.features)), _SAMPLE_MAX))
 
     # -- decision points -------------------------------------------------------------
     def at_boundary(self, mixture: Mixture, watch=None) -> Mixture:
@@ -177,6 +224,7 @@ class LifeWatch:
         mixture = self._retire(mixture, n, watch)
         mixture = self._merge(mixture, n, watch)
         mixture = self._birth(mixture, n)
+        mixture = self._split(mixture, n, watch)
         self._settle(mixture, n, watch)
         return mixture
 
@@ -222,10 +270,13 @@ class LifeWatch:
         bound = self.cfg.merge_distance
         if bound is None or mixture.n_components < 2:
             return mixture
-        pairs = overlapping_pairs(mixture, bound, self.cfg.merge_measure)
+        cool = self._cooling(n)
+        pairs = [p for p in overlapping_pairs(mixture, bound, self.cfg.merge_measure)
+                 if f"{p[0]}|{p[1]}" not in cool]
         if not pairs:
             return mixture
         keep, drop, distance = pairs[0]
+        cool[str(keep)] = n + self.cfg.cool_down_rows   # no split of the merged segment
         means, sds = mixture.data_means(), mixture.data_stds()
         ka, kb = (int(np.flatnonzero(mixture.ids == i)[0]) for i in (keep, drop))
         before = {str(sid): {"weight": float(mixture.weights[k]), "mean": means[k].tolist(),
@@ -243,6 +294,74 @@ class LifeWatch:
                     summary=(f"segment {drop} merged into segment {keep} ({measure} distance "
                              f"{distance:.3f} < {bound:g}); merged segment "
                              f"{self._describe(mean, sd)}, weight {mixture.weights[k]:.1%}"))
+        return mixture
+
+    def _cooling(self, n: int) -> dict:
+        """Pairs ("a|b", no merge) and segments ("a", no split) still cooling down."""
+        st = self.state
+        st["cool"] = {k: until for k, until in st.get("cool", {}).items() if until > n}
+        return st["cool"]
+
+    def _split(self, mixture: Mixture, n: int, watch) -> Mixture:
+        """Split the first segment whose renewed sample (the rows it still holds) two
+        Gaussians explain better than one (by BIC), if the two parts would not merge
+        back; one split per decision point."""
+        st = self.state
+        cap = self._sample_cap()
+        cool = self._cooling(n)
+        bound = self.cfg.merge_distance
+        for sid in mixture.ids.tolist():
+            key = str(sid)
+            rows = self._sampled(key)
+            if len(rows) < cap or st["fresh"].get(key, 0) < cap or key in cool:
+                continue
+            if mixture.n_components >= self.cfg.max_segments:
+                break
+            st["fresh"][key] = 0
+            # the rows the segment still holds (a birth or merge since may have
+            # taken some elsewhere)
+            rows = rows[mixture.score(rows).segment == sid]
+            if len(rows) < cap // 2:
+                continue
+            parts = split_test(rows, covariance=mixture.covariance,
+                               seed=self.settings.seed,
+                               reg_covar=self.settings.learning.reg_covar)
+            if parts is None:
+                continue
+            fractions, means, covs, gain = parts
+            if bound is not None:
+                apart = OVERLAP_MEASURES[self.cfg.merge_measure](means[0], covs[0],
+                                                                 means[1], covs[1])
+                if apart < bound:
+                    continue   # the merge rule would put them back together
+            k = int(np.flatnonzero(mixture.ids == sid)[0])
+            before = {"weight": float(mixture.weights[k]), "mean": mixture.data_means()[k].tolist(),
+                      "spread": mixture.data_stds()[k].tolist()}
+            try:
+                mixture = split(mixture, sid, fractions, means, covs)
+            except ModelError as exc:
+                log_event("segment_split_skipped", logging.WARNING, segment=sid,
+                          model_version=self.version, detail=str(exc))
+                continue
+            new = int(mixture.ids[-1])
+            cool[f"{sid}|{new}"] = n + self.cfg.cool_down_rows
+            for part in (key, str(new)):
+                st["sample"][part], st["fresh"][part] = _pack(np.empty((0, 0))), 0
+                st["unsettled"][part] = n
+            self._drop_reference(watch, [sid], "split")
+            ka = int(np.flatnonzero(mixture.ids == sid)[0])
+            means_now, sds_now = mixture.data_means(), mixture.data_stds()
+            self._event("split", sid, n, new=new, gain=gain, before=before,
+                        weight=float(mixture.weights[ka]), mean=means_now[ka],
+                        spread=sds_now[ka],
+                        new_weight=float(mixture.weights[-1]), new_mean=means_now[-1].tolist(),
+                        new_spread=sds_now[-1].tolist(),
+                        summary=(f"segment {sid} split in two (BIC gain {gain:.1f}): it keeps "
+                                 f"{self._describe(means_now[ka], sds_now[ka])}, weight "
+                                 f"{mixture.weights[ka]:.1%}; new segment {new} takes "
+                                 f"{self._describe(means_now[-1], sds_now[-1])}, weight "
+                                 f"{mixture.weights[-1]:.1%}"))
+            return mixture
         return mixture
 
     def _birth(self, mixture: Mixture, n: int) -> Mixture:
@@ -360,11 +479,15 @@ class LifeWatch:
         last: dict[int, dict] = {}
         for e in self.events:
             text = {"born": "born", "retired": "retired",
-                    "merged": f"merged into {e.get('into')}"}[e["event"]]
+                    "merged": f"merged into {e.get('into')}",
+                    "split": f"split, part {e.get('new')} new"}[e["event"]]
             notes.setdefault(e["segment"], []).append(f"{text} at row {e['row']}")
             if e["event"] == "merged":
                 notes.setdefault(e["into"], []).append(
                     f"absorbed {e['segment']} at row {e['row']}")
+            if e["event"] == "split":
+                notes.setdefault(e["new"], []).append(
+                    f"split from {e['segment']} at row {e['row']}")
             last[e["segment"]] = e
         out = []
         for r in rows:

@@ -15,6 +15,9 @@ birth       a new group of 8% of the rows appears (row 40,000-50,000): rows unti
 spread      one component's spread doubles (row 40,000-50,000): lifecycle events in
             the 100,000 rows after (a birth there is a flap)
 stationary  300,000 rows of an unchanging mixture: every alert and lifecycle event
+lumped      the model starts from the core's warm-up fit with one component fewer:
+            rows until the segment over two components splits, and how far the two
+            parts end from the true means (Mahalanobis, true covariances)
 
 Usage: ``python scripts/lifecycle_scenarios.py [--kind vanish] [--seeds 20]``.
 Prints a table; asserts nothing.
@@ -99,7 +102,26 @@ def _stationary(seeds, folder):
           f"{len(seeds)}")
 
 
-KINDS = {"vanish": _vanish, "birth": _birth, "spread": _spread, "stationary": _stationary}
+def _lumped(seeds, folder):
+    print(f"{'seed':>4} {'K':>2} {'D':>2} {'lumped':>7} {'split after':>11} "
+          f"{'mean errors':>12}  lifecycle events")
+    good = 0
+    for seed in seeds:
+        r = _scenarios.lumped(folder / f"lumped-{seed}", seed)
+        if r["lumped"] is None:
+            print(f"{seed:>4} {r['K']:>2} {r['D']:>2}  (the fit with one fewer lumped nothing)")
+            continue
+        ok = r["delay"] is not None and r["delay"] <= 50_000 and max(r["errors"]) <= 0.2
+        good += ok
+        print(f"{seed:>4} {r['K']:>2} {r['D']:>2} {str(r['lumped']):>7} "
+              f"{r['delay'] if r['delay'] is not None else 'never':>11} "
+              f"{' '.join(f'{e:.3f}' for e in r['errors']):>12}  {r['events']}")
+    print(f"lumped segment split within 50,000 rows, both parts within 0.2 sd of the "
+          f"truth: {good} of {len(seeds)}")
+
+
+KINDS = {"vanish": _vanish, "birth": _birth, "spread": _spread, "stationary": _stationary,
+         "lumped": _lumped}
 
 
 def main(argv=None) -> int:

@@ -185,3 +185,51 @@ def stationary(folder: Path, seed: int, rows=300_000, weights=None):
                             a["rows"]["first"]) for a in run.alerts()]}
     finally:
         run.close()
+
+
+def _mahalanobis(x, mean, cov) -> float:
+    diff = np.asarray(x) - mean
+    return float(np.sqrt(diff @ np.linalg.solve(cov, diff)))
+
+
+def lumped(folder: Path, seed: int, after=60_000):
+    """The model starts from a warm-up fit with one component fewer (the core's
+    ``initialise`` on the pipeline's own warm-up rows, put in place of the pipeline's
+    fit), so one segment lumps two components. Returns K, D, the rows from the end of
+    warm-up to the lumped segment's ``split`` event (None if none), and how far the
+    two parts' means end from the true means (Mahalanobis under the true
+    covariances), and every lifecycle event."""
+    from shoal.core import StepSchedule, initialise
+    from shoal.daemon.pipeline import ModelState
+
+    truth = Truth(seed)
+    run = Run(folder, truth)
+    try:
+        warm = truth.rows(SETTINGS["warmup_rows"])
+        run.feed(warm)
+        st, s = run.pipeline.state, run.settings
+        fewer = initialise(warm, truth.K - 1, s.covariance, seed=s.seed, n_init=s.learning.n_init,
+                           schedule=StepSchedule(alpha=s.learning.step_exponent,
+                                                 half_life_rows=s.half_life_rows),
+                           reg_covar=s.learning.reg_covar, refresh_rows=s.learning.refresh_rows)
+        run.pipeline.state = ModelState(st.version, fewer, st.extra, None)
+        owner = fewer.score(truth.means).segment           # the segment of each true mean
+        ids, counts = np.unique(owner, return_counts=True)
+        if counts.max() < 2:
+            return {"seed": seed, "K": truth.K, "D": truth.D, "lumped": None}
+        segment = int(ids[np.argmax(counts)])
+        comps = np.flatnonzero(owner == segment)
+        run.feed(truth.rows(after))
+        splits = [e for e in run.events("split") if e["segment"] == segment]
+        m = run.pipeline.state.mixture
+        errors = []
+        for c in comps:
+            errors.append(min(_mahalanobis(mean, truth.means[c], truth.covs[c])
+                              for mean in m.data_means()))
+        return {"seed": seed, "K": truth.K, "D": truth.D, "lumped": comps.tolist(),
+                "delay": splits[0]["rows"]["first"] - SETTINGS["warmup_rows"] if splits
+                else None, "errors": errors,
+                "events": [(e["status"], e["segment"], e["rows"]["first"])
+                           for e in run.events()]}
+    finally:
+        run.close()

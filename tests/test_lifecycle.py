@@ -13,6 +13,8 @@ from shoal.core.lifecycle import (
     add_component,
     chi2_quantile,
     compact_group,
+    split,
+    split_test,
     widening_explains,
     merge,
     overlap,
@@ -379,3 +381,34 @@ def test_widening_explains_a_spread_that_grew_but_not_a_new_group():
     group = rng.standard_normal((80, d)) * 0.8 + [8.0, 0.0, 0.0]
     widened, gain = widening_explains(m, group, group.mean(axis=0), np.cov(group, rowvar=False))
     assert widened is None and gain > 100.0
+
+
+def test_split_test_finds_two_groups_as_scikit_learn_does_and_none_in_one():
+    from sklearn.mixture import GaussianMixture
+
+    rng = np.random.default_rng(44)
+    X = np.concatenate([rng.multivariate_normal([0.0, 0.0, 0.0], np.eye(3), 300),
+                        rng.multivariate_normal([5.0, 1.0, 0.0], np.eye(3) * 0.5, 150)])
+    fractions, means, covs, gain = split_test(X, seed=0)
+    # reference: scikit-learn's EM fit of two Gaussians to the same rows
+    ref = GaussianMixture(2, n_init=5, random_state=0).fit(X)
+    order = np.argsort(ref.means_[:, 0])
+    mine = np.argsort(means[:, 0])
+    np.testing.assert_allclose(means[mine], ref.means_[order], atol=1e-3)
+    np.testing.assert_allclose(fractions[mine], ref.weights_[order], atol=1e-3)
+    assert gain > 0
+    # one Gaussian: two are never worth their parameters
+    assert split_test(rng.multivariate_normal([0.0, 0.0, 0.0], np.eye(3), 400), seed=0) is None
+
+
+def test_split_keeps_the_id_on_the_larger_part_and_leaves_the_others():
+    m = Mixture.from_parameters([0.6, 0.4], [[0.0, 0.0], [10.0, 0.0]],
+                                np.stack([np.eye(2) * 4.0, np.eye(2)]))
+    parts_means = np.array([[-2.0, 0.0], [2.0, 0.0]])
+    out = split(m, 0, [0.3, 0.7], parts_means, np.stack([np.eye(2)] * 2))
+    assert out.ids.tolist() == [0, 1, 2] and out.next_id == 3
+    np.testing.assert_allclose(out.weights, [0.6 * 0.7, 0.4, 0.6 * 0.3])
+    np.testing.assert_allclose(out.data_means(), [[2.0, 0.0], [10.0, 0.0], [-2.0, 0.0]],
+                               atol=1e-9)
+    # (reg_covar, 1e-6, is added to the diagonal when parameters are derived)
+    np.testing.assert_allclose(out.data_covariance_matrices()[1], np.eye(2), atol=2e-6)

@@ -42,3 +42,14 @@ def test_a_spread_that_doubles_is_no_birth(seed, tmp_path):
 def test_a_stationary_stream_of_300000_rows_raises_nothing(seed, tmp_path):
     r = _scenarios.stationary(tmp_path, seed)
     assert r["alerts"] == [], r
+
+
+@pytest.mark.parametrize("seed", [0, 4, 12, 19])
+def test_a_segment_over_two_components_splits_into_them(seed, tmp_path):
+    # the model starts from the core's warm-up fit with one component fewer
+    r = _scenarios.lumped(tmp_path, seed)
+    print(r)
+    assert r["lumped"] is not None and len(r["lumped"]) == 2, r
+    assert r["delay"] is not None and r["delay"] <= 50_000, r
+    assert max(r["errors"]) <= 0.2, r     # Mahalanobis under the true covariances
+    assert [e[0] for e in r["events"]] == ["split"], r
