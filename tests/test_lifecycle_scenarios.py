@@ -53,3 +53,28 @@ def test_a_segment_over_two_components_splits_into_them(seed, tmp_path):
     assert r["delay"] is not None and r["delay"] <= 50_000, r
     assert max(r["errors"]) <= 0.2, r     # Mahalanobis under the true covariances
     assert [e[0] for e in r["events"]] == ["split"], r
+
+
+def test_a_pair_that_split_is_not_merged_back_within_the_cool_down():
+    # Two segments closer than merge_distance: merged at a decision point, unless the
+    # pair is cooling down after a split (lifecycle.cool_down_rows).
+    import numpy as np
+
+    from shoal.config import parse_config
+    from shoal.core import Mixture
+    from shoal.daemon.segment_life import LifeWatch
+
+    settings = parse_config({"features": ["a", "b"], "segments": 3}, ".")
+    m = Mixture.from_parameters([0.4, 0.3, 0.3], [[0.0, 0.0], [0.5, 0.0], [20.0, 0.0]],
+                                np.stack([np.eye(2)] * 3))
+    n = settings.lifecycle.check_rows
+    m = m._evolve(n_rows=n)
+    results = {}
+    for cooling in (False, True):
+        life = LifeWatch(settings, None, version=1, file="")
+        life.start(stream_offset=1000)
+        if cooling:
+            life.state["cool"] = {"0|1": n + 1}
+        results[cooling] = life.at_boundary(m).ids.tolist()
+    assert results[False] == [0, 2]          # merged: the older id survives
+    assert results[True] == [0, 1, 2]        # cooling down: kept apart
