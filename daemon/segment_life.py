@@ -307,6 +307,9 @@ class LifeWatch:
         Gaussians explain better than one (by BIC), if the two parts would not merge
         back; one split per decision point."""
         st = self.state
+        live = {str(sid) for sid in mixture.ids.tolist()}
+        for name in ("sample", "fresh"):   # segments that left take their samples along
+            st[name] = {key: v for key, v in st.setdefault(name, {}).items() if key in live}
         cap = self._sample_cap()
         cool = self._cooling(n)
         bound = self.cfg.merge_distance
