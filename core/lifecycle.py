@@ -561,7 +561,7 @@ def _hard_split_gain(X, rng) -> float:
     scale = X.std(axis=0)
     scale[scale <= 0] = 1.0
     Z = (X - X.mean(axis=0)) / scale
-    labels = _lloyd(Z, kmeans_plus_plus(Z, 2, rng))
+    labels = _lloyd(Z, kmeans_plus_plus(Z, 2, rng), n_iter=10)
     sizes = np.bincount(labels, minlength=2)
     if sizes.min() < d + 2:
         return -np.inf
