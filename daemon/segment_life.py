@@ -21,8 +21,16 @@ merge   the two segments that overlap most, if closer than ``merge_distance``, a
         (:func:`shoal.core.lifecycle.merge`);
 birth   rows no segment explains (chi-square bound) sit in a bounded pool; when at
         least ``birth_rows`` of them form one compact group
-        (:func:`shoal.core.lifecycle.compact_group`) a segment is born from it with a
-        new id (:func:`shoal.core.lifecycle.add_component`).
+        (:func:`shoal.core.lifecycle.compact_group`) that widening a segment does not
+        explain as well (:func:`shoal.core.lifecycle.widening_explains`) a segment is
+        born from it with a new id (:func:`shoal.core.lifecycle.add_component`);
+split   every fourth row goes to its segment's sample; when two Gaussians explain a
+        segment's renewed sample better than one, by BIC
+        (:func:`shoal.core.lifecycle.split_test`), and the parts would not merge
+        back, it splits: the larger part keeps the id (:func:`shoal.core.lifecycle.split`).
+
+A pair that split or merged is not merged or split back for
+``lifecycle.cool_down_rows`` rows.
 
 The pool and the bookkeeping travel in the checkpoint's ``extra["lifecycle"]`` and are
 committed with the model. Each event becomes a segment-history entry and an alert
@@ -66,7 +74,7 @@ _SAMPLE_STRIDE = 4
 _SAMPLE_MIN, _SAMPLE_PER_FEATURE, _SAMPLE_MAX = 200, 50, 500
 """Every fourth row of the stream goes to its segment's sample (the newest 50 per
 feature, 200 to 500 rows), on which the split test runs each time twice its size has
-come in since the last test (so it costs a few percent of the pipeline's time)."""
+come in since the last test."""
 _BIRTH_ROWS_PER_FEATURE = 20
 """A group is born only from at least this many rows per feature (besides
 ``birth_rows``): its mean is then known to about ``sqrt(D / n) = 0.22`` of its sds
@@ -213,8 +221,8 @@ class LifeWatch:
 
     # -- decision points -------------------------------------------------------------
     def at_boundary(self, mixture: Mixture, watch=None) -> Mixture:
-        """At a decision point not yet taken, retire, merge and give birth; returns the
-        model to learn on with."""
+        """At a decision point not yet taken, retire, merge, give birth and split; returns
+        the model to learn on with."""
         st = self._ensure()
         n = int(mixture.n_rows)
         if n == 0 or n % self.cfg.check_rows or st["done_at"] == n:

@@ -14,7 +14,8 @@ birth       a new group of 8% of the rows appears (row 40,000-50,000): rows unti
             group's true covariance) and share
 spread      one component's spread doubles (row 40,000-50,000): lifecycle events in
             the 100,000 rows after (a birth there is a flap)
-stationary  300,000 rows of an unchanging mixture: every alert and lifecycle event
+stationary  300,000 rows (``--stationary-rows``) of an unchanging mixture: every alert
+            and lifecycle event
 lumped      the model starts from the core's warm-up fit with one component fewer:
             rows until the segment over two components splits, and how far the two
             parts end from the true means (Mahalanobis, true covariances)
@@ -90,16 +91,20 @@ def _spread(seeds, folder):
     print(f"scenarios with a birth: {births} of {len(seeds)}; born and merged back: {flaps}")
 
 
+STATIONARY_ROWS = [300_000]
+
+
 def _stationary(seeds, folder):
     print(f"{'seed':>4} {'K':>2} {'D':>2} {'smallest':>8}  alerts (kind, status, segment, "
           f"statistic, row)")
     noisy = 0
     for seed in seeds:
-        r = _scenarios.stationary(folder / f"stationary-{seed}", seed)
+        r = _scenarios.stationary(folder / f"stationary-{seed}", seed,
+                                  rows=STATIONARY_ROWS[0])
         noisy += bool(r["alerts"])
         print(f"{seed:>4} {r['K']:>2} {r['D']:>2} {min(r['weights']):>8.3f}  {r['alerts']}")
-    print(f"300,000-row stationary scenarios with any alert or lifecycle event: {noisy} of "
-          f"{len(seeds)}")
+    print(f"{STATIONARY_ROWS[0]:,}-row stationary scenarios with any alert or lifecycle "
+          f"event: {noisy} of {len(seeds)}")
 
 
 def _lumped(seeds, folder):
@@ -130,7 +135,10 @@ def main(argv=None) -> int:
                     help="scenario kind (repeatable; default: all)")
     ap.add_argument("--seeds", type=int, default=20, help="scenarios per kind (default 20)")
     ap.add_argument("--first-seed", type=int, default=0)
+    ap.add_argument("--stationary-rows", type=int, default=300_000,
+                    help="rows of each stationary scenario (default 300,000)")
     args = ap.parse_args(argv)
+    STATIONARY_ROWS[0] = args.stationary_rows
     seeds = list(range(args.first_seed, args.first_seed + args.seeds))
     with tempfile.TemporaryDirectory() as tmp:
         for kind in args.kind or sorted(KINDS):
