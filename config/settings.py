@@ -233,7 +233,8 @@ class LifecycleSettings:
     pool_span_rows: int = _f(20000, "unexplained rows older than this many rows leave the pool",
                              min=100)
     birth_rows: int = _f(
-        50, "a new segment needs at least this many pooled rows forming one group", min=10)
+        50, "a new segment needs at least this many pooled rows forming one group (and "
+            "20 per feature)", min=10)
     birth_max_spread: float = _f(
         2.0, "a group is compact when the geometric mean of its sds is at most this many "
              "times that of the widest segment", min=0.0, min_open=True)
