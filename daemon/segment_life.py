@@ -59,6 +59,7 @@ from shoal.core.lifecycle import (
     retire,
     split,
     split_test,
+    squared_mahalanobis,
     unexplained,
     unexplained_below,
     widening_explains,
@@ -82,15 +83,18 @@ _BIRTH_ROWS_PER_FEATURE = 20
 
 
 def _pack(rows: np.ndarray) -> str:
-    """Rows as base64 of their float64 bytes: the checkpoint's JSON carries a sample of
-    hundreds of rows as one string, which encodes and decodes far faster than lists."""
-    return base64.b64encode(np.ascontiguousarray(rows, dtype="<f8").tobytes()).decode("ascii")
+    """Rows as base64 of their float32 bytes: the checkpoint's JSON carries a sample of
+    hundreds of rows as one string, which encodes and decodes far faster than lists.
+    Seven digits are plenty for a split test, and every input reads the sample back
+    from this form, so a restart sees exactly what an uninterrupted run does."""
+    return base64.b64encode(np.ascontiguousarray(rows, dtype="<f4").tobytes()).decode("ascii")
 
 
 def _unpack(packed: str | None, n_features: int) -> np.ndarray:
     if not packed:
         return np.empty((0, n_features))
-    return np.frombuffer(base64.b64decode(packed), dtype="<f8").reshape(-1, n_features).copy()
+    rows = np.frombuffer(base64.b64decode(packed), dtype="<f4").reshape(-1, n_features)
+    return rows.astype(np.float64)
 
 
 def _recent_share(rows: np.ndarray, n: int, trim: float = 0.1) -> float:
@@ -394,6 +398,8 @@ class LifeWatch:
         count = int(members.sum())
         widened, gain = widening_explains(mixture, self._pool_X[members], mean, cov,
                                           cfg.unexplained_quantile)
+        if widened is None:
+            widened, gain = self._ring(mixture, mean, count)
         if widened is not None:
             log_event("segment_birth_declined", logging.DEBUG, rows=count, segment=widened,
                       detail=f"segment {widened} widened explains the group as well "
@@ -416,6 +422,24 @@ class LifeWatch:
                              f"(about {weight:.1%} of recent rows): "
                              f"{self._describe(mean, sd)}"))
         return mixture
+
+    def _ring(self, mixture: Mixture, mean, count: int):
+        """The widening test on every pooled row nearest the group's segment, when the
+        group is less than half of them: a spread that grew leaves a ring of rows
+        around the segment, and a compact arc of it is a group that does not surround
+        the segment although the ring does. ``(None, nan)`` otherwise."""
+        nearest = np.argmin(squared_mahalanobis(mixture, self._pool_X), axis=1)
+        k = int(np.argmin(squared_mahalanobis(mixture, np.asarray(mean)[None])[0]))
+        ring = self._pool_X[nearest == k]
+        d = mixture.n_features
+        if len(ring) < 2 * count or len(ring) < d + 2:
+            return None, float("nan")   # the group is most of them: it stands on its own
+        cov = np.cov(ring, rowvar=False) + self.settings.learning.reg_covar * np.eye(d)
+        try:
+            return widening_explains(mixture, ring, ring.mean(axis=0), cov,
+                                     self.cfg.unexplained_quantile)
+        except np.linalg.LinAlgError:
+            return None, float("nan")
 
     def _settle(self, mixture: Mixture, n: int, watch) -> None:
         """Born segments that have settled join the drift reference."""

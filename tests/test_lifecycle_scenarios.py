@@ -30,8 +30,9 @@ def test_a_born_segment_reports_the_group_that_is_born(seed, tmp_path):
 
 
 # seeds where, before births were weighed against widening the segment, the tail rows
-# of a segment whose spread doubled gave birth to a new segment
-@pytest.mark.parametrize("seed", [0, 4, 9, 12])
+# of a segment whose spread doubled gave birth to a new segment (3 and 11: an arc of
+# the ring of rows such a segment leaves unexplained, in 2 features)
+@pytest.mark.parametrize("seed", [0, 3, 4, 9, 11, 12])
 def test_a_spread_that_doubles_is_no_birth(seed, tmp_path):
     r = _scenarios.spread(tmp_path, seed)
     print(r)
