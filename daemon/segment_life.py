@@ -335,8 +335,10 @@ class LifeWatch:
                 break
             st["fresh"][key] = 0
             # the rows the segment still holds (a birth or merge since may have
-            # taken some elsewhere)
-            rows = rows[mixture.score(rows).segment == sid]
+            # taken some elsewhere) and explains: rows far from every segment are
+            # the pool's, for a birth
+            rows = rows[(mixture.score(rows).segment == sid)
+                        & ~unexplained(mixture, rows, self.cfg.unexplained_quantile)]
             if len(rows) < cap // 2:
                 continue
             parts = split_test(rows, covariance=mixture.covariance,

@@ -18,8 +18,10 @@ def test_a_vanished_segment_retires_within_50000_rows_without_shape_alerts(seed,
 
 # seeds whose birth, at the first decision point after the group appeared, took a few
 # older scattered pool rows with it (mean 1.1-6.4 from the truth, share 0.3-0.5%)
-# before the group's figures were trimmed of them
-@pytest.mark.parametrize("seed", [27, 39, 43, 52, 63])
+# before the group's figures were trimmed of them; in 62 the group's rows, hard-labelled
+# with the nearest segment, made that segment's sample split before the pool held
+# enough of them for a birth (a split sample now leaves unexplained rows to the pool)
+@pytest.mark.parametrize("seed", [27, 39, 43, 52, 62, 63])
 def test_a_born_segment_reports_the_group_that_is_born(seed, tmp_path):
     r = _scenarios.birth(tmp_path, seed)
     print(r)
