@@ -256,9 +256,9 @@ def _split_merge_check(Z, template, best, best_ll, rng, *, max_iter, tol,
 
     Restarts from k-means++ seeds can all put two seeds in one group and none in
     another; EM then keeps one component over two groups and two over one. Here the
-    split candidate is the component whose rows a 2-means cut explains best (the BIC
-    gain of :func:`shoal.core.lifecycle._hard_split_gain`; only a positive gain is
-    tried), and the merge candidates are the pairs whose responsibilities overlap most
+    split candidate is the component whose rows a cut along a main axis explains best
+    (the BIC gain of :func:`shoal.core.lifecycle._hard_split_gain`; only a positive
+    gain is tried), and the merge candidates are the pairs whose responsibilities overlap most
     (Ueda et al.'s ``J_merge``, the cosine of the two responsibility vectors). The new
     labels start a batch EM run like a restart's.
     """

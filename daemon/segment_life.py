@@ -133,6 +133,7 @@ class LifeWatch:
         self.settings = settings
         self.cfg = settings.lifecycle
         self.features = list(settings.features)
+        self._samples: dict[str, np.ndarray] = {}   # unpacked samples, packed at the end
         self.version = version
         self.file = file
         if state is not None and state.get("format") != STATE_FORMAT:
@@ -167,6 +168,9 @@ class LifeWatch:
     def final_state(self) -> dict:
         st = self._ensure()
         st["pool"] = {"X": self._pool_X.tolist(), "rows": self._pool_rows.tolist()}
+        sample = st.setdefault("sample", {})
+        for key, rows in self._samples.items():
+            sample[key] = _pack(rows)
         return st
 
     # -- pieces ----------------------------------------------------------------------
@@ -202,7 +206,7 @@ class LifeWatch:
         """Keep every ``_SAMPLE_STRIDE``-th row of the stream (by position, so the same
         rows whatever the cut) in its segment's sample, the newest ``_sample_cap``."""
         st = self.state
-        sample, fresh = st.setdefault("sample", {}), st.setdefault("fresh", {})
+        fresh = st.setdefault("fresh", {})
         first = (-int(before.n_rows)) % _SAMPLE_STRIDE
         picked = np.arange(first, len(X), _SAMPLE_STRIDE)
         if picked.size == 0:
@@ -210,15 +214,18 @@ class LifeWatch:
         cap = self._sample_cap()
         labels = scores.segment[picked]
         for sid in np.unique(labels).tolist():
-            rows = X[picked[labels == sid]]
+            # rounded as the checkpoint keeps them, so a restart sees the same rows
+            rows = X[picked[labels == sid]].astype(np.float32).astype(np.float64)
             key = str(sid)
-            sample[key] = _pack(np.concatenate([self._sampled(key), rows])[-cap:])
+            self._samples[key] = np.concatenate([self._sampled(key), rows])[-cap:]
             fresh[key] = fresh.get(key, 0) + len(rows)
 
     def _sampled(self, key: str) -> np.ndarray:
         """The rows of a segment's sample, shape (n, n_features)."""
-        packed = self.state.get("sample", {}).get(key)
-        return _unpack(packed, len(self.features))
+        if key not in self._samples:
+            packed = self.state.get("sample", {}).get(key)
+            self._samples[key] = _unpack(packed, len(self.features))
+        return self._samples[key]
 
     def _sample_cap(self) -> int:
         return int(min(max(_SAMPLE_MIN, _SAMPLE_PER_FEATURE * len(self.features)), _SAMPLE_MAX))
@@ -323,6 +330,7 @@ class LifeWatch:
         live = {str(sid) for sid in mixture.ids.tolist()}
         for name in ("sample", "fresh"):   # segments that left take their samples along
             st[name] = {key: v for key, v in st.setdefault(name, {}).items() if key in live}
+        self._samples = {key: v for key, v in self._samples.items() if key in live}
         cap = self._sample_cap()
         cool = self._cooling(n)
         bound = self.cfg.merge_distance
@@ -364,7 +372,8 @@ class LifeWatch:
             new = int(mixture.ids[-1])
             cool[f"{sid}|{new}"] = n + self.cfg.cool_down_rows
             for part in (key, str(new)):
-                st["sample"][part], st["fresh"][part] = _pack(np.empty((0, 0))), 0
+                self._samples[part] = np.empty((0, mixture.n_features))
+                st["fresh"][part] = 0
                 st["unsettled"][part] = n
             self._drop_reference(watch, [sid], "split")
             ka = int(np.flatnonzero(mixture.ids == sid)[0])
