@@ -389,6 +389,7 @@ def test_split_test_finds_two_groups_as_scikit_learn_does_and_none_in_one():
     rng = np.random.default_rng(44)
     X = np.concatenate([rng.multivariate_normal([0.0, 0.0, 0.0], np.eye(3), 300),
                         rng.multivariate_normal([5.0, 1.0, 0.0], np.eye(3) * 0.5, 150)])
+    X = X[rng.permutation(len(X))]          # side by side in the stream
     fractions, means, covs, gain = split_test(X, seed=0)
     # reference: scikit-learn's EM fit of two Gaussians to the same rows
     ref = GaussianMixture(2, n_init=5, random_state=0).fit(X)
@@ -399,6 +400,10 @@ def test_split_test_finds_two_groups_as_scikit_learn_does_and_none_in_one():
     assert gain > 0
     # one Gaussian: two are never worth their parameters
     assert split_test(rng.multivariate_normal([0.0, 0.0, 0.0], np.eye(3), 400), seed=0) is None
+    # one group that moved (the older rows first): a move, not two groups
+    moved = np.concatenate([rng.multivariate_normal([0.0, 0.0, 0.0], np.eye(3), 200),
+                            rng.multivariate_normal([5.0, 0.0, 0.0], np.eye(3), 200)])
+    assert split_test(moved, seed=0) is None
 
 
 def test_split_keeps_the_id_on_the_larger_part_and_leaves_the_others():
