@@ -130,13 +130,18 @@ class InputSettings:
 @dataclass(frozen=True)
 class LearningSettings:
     step_exponent: float = _f(
-        0.7, "stepwise EM step size decays as (row + offset)^-exponent", min=0.5, max=1.0,
+        0.7, "without half_life_rows, the stepwise EM step decays as "
+             "(row + offset)^-exponent", min=0.5, max=1.0,
         min_open=True)
     reg_covar: float = _f(1e-6, "added to covariance diagonals (standardised units)",
                           min=0.0, max=1.0)
     n_init: int = _f(5, "k-means++ restarts at warm-up", min=1, max=100)
     chunk_rows: int = _f(65536, "rows per stepwise update inside one input", min=1,
                          max=10_000_000)
+    refresh_rows: int = _f(
+        4096, "the model's parameters are derived anew from its statistics at every "
+              "multiple of this many rows learned after warm-up (a slow stream sets fewer); "
+              "fixed once a model exists in the state folder", min=1, max=10_000_000)
     checkpoints_kept: int = _f(20, "model checkpoints kept in the state store", min=1)
     min_observed: int | None = _f(
         None, "rows with fewer features present (not null, NaN or empty) get no segment and "
@@ -208,8 +213,9 @@ class BoundOverride:
 @dataclass(frozen=True)
 class DriftSettings:
     enabled: bool = _f(True, "compare segments with their baseline and raise alerts")
-    window_rows: int = _f(4096, "rows per evaluation window (the unit of persistence)",
-                          min=100, max=10_000_000)
+    window_rows: int = _f(4096, "rows per evaluation window (the unit of persistence); "
+                                "best a multiple of learning.refresh_rows",
+                          min=1, max=10_000_000)
     settle_rows: int = _f(
         20000, "rows learned after warm-up before the baseline is taken",
         min=0, max=1_000_000_000)
@@ -276,7 +282,8 @@ class LifecycleSettings:
     enabled: bool = _f(True, "segments are born, retired and merged as the population changes")
     check_rows: int = _f(
         4096, "births, retirements and merges are decided at every multiple of this many "
-              "rows learned after warm-up", min=100, max=10_000_000)
+              "rows learned after warm-up; best a multiple of learning.refresh_rows",
+        min=1, max=10_000_000)
     unexplained_quantile: float = _f(
         0.999, "a row is unexplained when its squared Mahalanobis distance to every segment "
                "exceeds this chi-square quantile", min=0.5, max=1.0, min_open=True)
@@ -285,22 +292,28 @@ class LifecycleSettings:
     pool_span_rows: int = _f(20000, "unexplained rows older than this many rows leave the pool",
                              min=100)
     birth_rows: int = _f(
-        50, "a new segment needs at least this many pooled rows forming one group", min=10)
+        50, "a new segment needs at least this many pooled rows forming one group (and "
+            "20 per feature)", min=10)
     birth_max_spread: float = _f(
         2.0, "a group is compact when the geometric mean of its sds is at most this many "
              "times that of the widest segment", min=0.0, min_open=True)
     max_segments: int = _f(12, "no birth beyond this many segments", min=1, max=1000)
     retire_weight: float = _f(
-        0.005, "a segment whose weight stays under this for retire_rows rows retires",
-        min=0.0, max=1.0)
-    retire_rows: int = _f(100000, "rows a segment's weight must stay under retire_weight "
-                                  "before it retires", min=1)
+        0.005, "a segment whose share of recent rows stays under this for retire_rows rows "
+               "retires", min=0.0, max=1.0)
+    retire_rows: int = _f(30000, "rows a segment's share of recent rows (counted between "
+                                 "decision points) must stay under retire_weight before it "
+                                 "retires", min=1)
     merge_measure: str = _f("hellinger", "distance between two segments' Gaussians",
                             choices=OVERLAP_MEASURES)
     merge_distance: float | None = _f(
         0.4, "two segments closer than this merge (null: never)", min=0.0, min_open=True)
     settle_rows: int = _f(
-        20000, "a born segment joins the drift baseline after this many rows", min=0)
+        20000, "a born or split segment joins the drift baseline after this many rows",
+        min=0)
+    cool_down_rows: int = _f(
+        50000, "a pair split or merged is not merged or split back for this many rows",
+        min=0)
 
 
 @dataclass(frozen=True)
@@ -360,8 +373,8 @@ class Settings:
     covariance: str = _f("full", "covariance type", choices=COVARIANCE_TYPES)
     warmup_rows: int = _f(2000, "rows buffered before the first model is fitted", min=10)
     half_life_rows: int | None = _f(
-        50000, "rows after which old data counts half, so the model tracks a moving "
-               "population (null: no forgetting)", min=1)
+        50000, "rows after which old data counts half, from the end of warm-up on, so "
+               "the model tracks a moving population (null: no forgetting)", min=1)
     seed: int = _f(0, "seed of every random choice", min=0, max=2**32 - 1)
     log_level: str = _f("info", "lowest level logged", choices=LOG_LEVELS)
     watch: WatchSettings = _f(WatchSettings(), "inbox watching")

@@ -33,13 +33,16 @@ from .distances import (
     pair_indices,
     pairwise_bhattacharyya,
 )
-from .errors import ModelError
+from .errors import ModelError, NotEnoughDataError
 from .mixture import Mixture
 
 __all__ = [
     "OVERLAP_MEASURES",
     "add_component",
     "compact_group",
+    "widening_explains",
+    "split",
+    "split_test",
     "merge",
     "overlap",
     "overlapping_pairs",
@@ -159,6 +162,58 @@ def retire(mixture: Mixture, segment_id) -> Mixture:
     return _rebuilt(mixture, np.delete(mixture.ids, drop), mixture.next_id, arrays)
 
 
+def _second_moment(mixture: Mixture, mean, covariance):
+    """A Gaussian in data units as a standardised mean and second moment of the
+    mixture's covariance type."""
+    zmean = (np.asarray(mean, dtype=np.float64) - mixture.center) / mixture.scale
+    zcov = np.asarray(covariance, dtype=np.float64) / np.outer(mixture.scale, mixture.scale)
+    if mixture.covariance == "full":
+        return zmean, zcov + np.outer(zmean, zmean)
+    if mixture.covariance == "diag":
+        return zmean, np.diagonal(zcov) + zmean**2
+    return zmean, np.trace(zcov) / mixture.n_features + np.mean(zmean**2)
+
+
+def split(mixture: Mixture, segment_id, fractions, means, covariances) -> Mixture:
+    """Split a segment in two; the larger part keeps the id, the other takes ``next_id``.
+
+    Parameters
+    ----------
+    mixture : Mixture
+    segment_id : int
+    fractions : array_like of shape (2,)
+        Shares of the segment's mass the two parts take (normalised here).
+    means : array_like of shape (2, n_features)
+        In the data's own units.
+    covariances : array_like of shape (2, n_features, n_features)
+        Full covariance matrices in data units (reduced to the mixture's type).
+
+    Returns
+    -------
+    split : Mixture
+        One component more: the larger part in the segment's place with its id, the
+        other appended last with id ``mixture.next_id``. The segment's mass is
+        shared between the two; the other segments are unchanged.
+    """
+    k = segment_index(mixture.ids, segment_id)
+    fractions = np.asarray(fractions, dtype=np.float64)
+    if fractions.shape != (2,) or not np.all(fractions > 0):
+        raise ModelError(f"fractions should be two positive shares, got {fractions!r}")
+    fractions = fractions / fractions.sum()
+    order = [0, 1] if fractions[0] >= fractions[1] else [1, 0]
+    parts = [_second_moment(mixture, means[j], covariances[j]) for j in order]
+    arrays = _all_stats(mixture)
+    for s0_name, names in (("s0", _STATS), ("avg_s0", _AVG_STATS)):
+        mass = float(arrays[s0_name][k])
+        stats = [[mass * fractions[j], mass * fractions[j] * zm, mass * fractions[j] * m2]
+                 for j, (zm, m2) in zip(order, parts)]
+        for i, name in enumerate(names):
+            arrays[name][k] = stats[0][i]
+            arrays[name] = np.concatenate([arrays[name], np.asarray(stats[1][i])[None]])
+    ids = np.append(mixture.ids, np.int64(mixture.next_id))
+    return _rebuilt(mixture, ids, mixture.next_id + 1, arrays)
+
+
 def add_component(mixture: Mixture, weight, mean, covariance) -> Mixture:
     """Add a new segment, for example one fitted on a pool of unexplained rows.
 
@@ -194,14 +249,7 @@ def add_component(mixture: Mixture, weight, mean, covariance) -> Mixture:
         )
     if not (np.all(np.isfinite(mean)) and np.all(np.isfinite(covariance))):
         raise ModelError("mean and covariance should be finite")
-    zmean = (mean - mixture.center) / mixture.scale
-    zcov = covariance / np.outer(mixture.scale, mixture.scale)
-    if mixture.covariance == "full":
-        second = zcov + np.outer(zmean, zmean)
-    elif mixture.covariance == "diag":
-        second = np.diagonal(zcov) + zmean**2
-    else:
-        second = np.trace(zcov) / n_features + np.mean(zmean**2)
+    zmean, second = _second_moment(mixture, mean, covariance)
     arrays = _all_stats(mixture)
     for s0_name, names in (("s0", _STATS), ("avg_s0", _AVG_STATS)):
         mass = weight * float(np.sum(arrays[s0_name]))
@@ -347,8 +395,9 @@ def compact_group(X, *, min_rows, max_sd=np.inf, threshold=0.999, max_groups=3, 
     A small batch-EM fit on the rows (1 to ``max_groups`` components, the number
     chosen by BIC, :func:`~shoal.core.warmup.select_n_components`); the heaviest
     component is then refined on the rows it explains (squared Mahalanobis distance
-    under the ``threshold`` chi-square quantile), twice, so that scattered rows around
-    it do not widen it.
+    under the ``threshold`` chi-square quantile), re-estimated from the three
+    quarters of them nearest its centre in each round, so that scattered rows around
+    it neither widen it nor pull its mean.
 
     Parameters
     ----------
@@ -384,23 +433,207 @@ def compact_group(X, *, min_rows, max_sd=np.inf, threshold=0.999, max_groups=3, 
     bound = chi2_quantile(threshold, d)
     order = np.argsort(-fit.weights, kind="stable")
     means, covs = fit.data_means(), fit.data_covariance_matrices()
+    need = max(int(min_rows), d + 2)
     for j in order:
-        mean, cov = means[j], covs[j]
-        members = None
-        for _ in range(3):
-            try:
-                chol = np.linalg.cholesky(cov)
-            except np.linalg.LinAlgError:
-                members = None
-                break
-            white = np.linalg.solve(chol, (X - mean).T)
-            members = np.einsum("ij,ij->j", white, white) <= bound
-            if members.sum() < max(int(min_rows), d + 2):
-                members = None
-                break
-            mean = X[members].mean(axis=0)
-            cov = np.cov(X[members], rowvar=False) + reg_covar * np.eye(d)
-        if members is not None and \
-                0.5 * np.linalg.slogdet(cov)[1] / d <= np.log(max_sd):
-            return mean, cov, members
+        found = _trimmed_group(X, means[j], covs[j], bound, need, reg_covar)
+        if found is not None and \
+                0.5 * np.linalg.slogdet(found[1])[1] / d <= np.log(max_sd):
+            return found
     return None
+
+
+def _squared_distances(X, mean, cov):
+    chol = np.linalg.cholesky(cov)
+    white = np.linalg.solve(chol, (X - mean).T)
+    return np.einsum("ij,ij->j", white, white)
+
+
+def _trimmed_group(X, mean, cov, bound, need, reg_covar, keep=0.75, rounds=3):
+    """Mean, covariance and members of the group around ``(mean, cov)``, robust to the
+    scattered rows near it.
+
+    Each round takes the rows within the chi-square ``bound`` and re-estimates from the
+    ``keep`` share of them nearest the centre (a concentration step of FAST-MCD,
+    Rousseeuw & Van Driessen 1999), the covariance scaled back to the whole Gaussian
+    by ``keep / P(chi2_{D+2} <= chi2_D^{-1}(keep))`` (Croux & Haesbroeck 1999). Rows far
+    from the group then no longer pull the estimate; the last round is the plain
+    mean and covariance of the rows within the bound.
+    """
+    d = X.shape[1]
+    eye = reg_covar * np.eye(d)
+    cut = chi2_quantile(keep, d)
+    consistency = keep / float(special.gammainc(0.5 * (d + 2), 0.5 * cut))
+    try:
+        for _ in range(rounds):
+            d2 = _squared_distances(X, mean, cov)
+            inner = np.flatnonzero(d2 <= bound)
+            if inner.size < need:
+                return None
+            h = max(int(np.ceil(keep * inner.size)), d + 2)
+            core_rows = inner[np.argsort(d2[inner], kind="stable")[:h]]
+            mean = X[core_rows].mean(axis=0)
+            cov = consistency * np.cov(X[core_rows], rowvar=False) + eye
+        members = _squared_distances(X, mean, cov) <= bound
+        if int(members.sum()) < need:
+            return None
+        mean = X[members].mean(axis=0)
+        cov = np.cov(X[members], rowvar=False) + eye
+    except np.linalg.LinAlgError:
+        return None
+    return mean, cov, members
+
+
+def widening_explains(mixture: Mixture, X, mean, covariance, threshold: float = 0.999):
+    """Whether rows are explained as well by widening an existing segment as by a new
+    Gaussian group.
+
+    Two tests, either of which gives the rows to a segment. First, a group whose
+    ``threshold`` chi-square bound holds a segment's mean surrounds that segment: its
+    rows are what the segment leaves unexplained after its spread grew, not a
+    population of their own (a compact new group beside a segment does not reach
+    back to its centre). Second, by BIC (Schwarz 1978): the new group costs ``D + D (D + 1) / 2`` free parameters; widening segment ``k``
+    (its covariance times ``c >= 1``, its mean kept) costs one, with the maximum
+    likelihood ``c = mean(d2_k) / D`` from the rows' squared Mahalanobis distances
+    ``d2_k`` to it. A spread that grew puts the segment's rows beyond its chi-square
+    bound all around it: a Gaussian fitted to that shell explains them no better than
+    the widened segment, and is no new group.
+
+    Parameters
+    ----------
+    X : array_like of shape (n_samples, n_features)
+        The group's rows, data units.
+    mean, covariance : array_like of shapes (n_features,), (n_features, n_features)
+        The group's Gaussian, data units.
+
+    Returns
+    -------
+    widened : int or None
+        The id of the segment whose widening explains the rows at least as well
+        (the best one), or None when the new group wins.
+    gain : float
+        Log-likelihood of the group minus that of the best widened segment, minus the
+        BIC penalty of the difference in parameters (> 0: the group wins); ``nan``
+        when the group surrounds a segment.
+    """
+    X = np.asarray(X, dtype=np.float64)
+    n, d = X.shape
+    mean = np.asarray(mean, dtype=np.float64)
+    chol = np.linalg.cholesky(np.asarray(covariance, dtype=np.float64))
+    inside = np.linalg.solve(chol, (mixture.data_means() - mean).T)
+    inside = np.einsum("ij,ij->j", inside, inside)          # segment means, group metric
+    nearest = int(np.argmin(inside))
+    if inside[nearest] <= chi2_quantile(threshold, d):
+        return int(mixture.ids[nearest]), float("nan")
+    d2 = squared_mahalanobis(mixture, X)                          # (n, K)
+    # log |Sigma_k| in data units: -2 log det U_k (standardised) + 2 sum log scale
+    log_det_cov = -2.0 * mixture.log_det + 2.0 * float(np.sum(np.log(mixture.scale)))
+    c = np.maximum(d2.mean(axis=0) / d, 1.0)
+    widened = -0.5 * (n * (d * _LOG_2PI + log_det_cov + d * np.log(c))
+                      + d2.sum(axis=0) / c)
+    white = np.linalg.solve(chol, (X - mean).T)
+    group = -0.5 * (n * (d * _LOG_2PI + 2.0 * float(np.sum(np.log(np.diag(chol)))))
+                    + float(np.sum(white * white)))
+    extra = d + d * (d + 1) / 2 - 1
+    best = int(np.argmax(widened))
+    gain = float(group - widened[best] - 0.5 * extra * np.log(n))
+    return (None if gain > 0 else int(mixture.ids[best])), gain
+
+
+def _gaussian_fit_log_likelihood(X) -> float:
+    """The log-likelihood of rows under their own maximum-likelihood Gaussian,
+    ``-n/2 (D log 2 pi + log |S| + D)``."""
+    n, d = X.shape
+    sign, log_det = np.linalg.slogdet(np.cov(X, rowvar=False, bias=True).reshape(d, d))
+    if sign <= 0:
+        return -np.inf
+    return -0.5 * n * (d * _LOG_2PI + log_det + d)
+
+
+def _hard_split_gain(X, rng=None) -> float:
+    """BIC gain of two Gaussians over one along the rows' two main axes, from the best
+    cut of each axis (a classification likelihood): a cheap screen before the EM fit.
+
+    Rows are projected on the two leading eigenvectors of their covariance; along
+    each, every cut of the sorted values into a left and a right part is scored at
+    once from cumulative sums (1-D 2-means done exactly). On one Gaussian the best
+    cut is near the median, where each half's variance is ``1 - 2/pi`` of the whole:
+    a gain of ``-log(1 - 2/pi) / 2 - log 2 = -0.19`` nats per row, below zero before
+    the penalty for the three extra parameters. Two groups apart along an axis gain
+    far more. ``rng`` is unused (the screen is deterministic); kept for callers."""
+    n, d = X.shape
+    if n < 12:
+        return -np.inf
+    centred = X - X.mean(axis=0)
+    _, vectors = np.linalg.eigh(centred.T @ centred / n)
+    least = max(5, n // 20)
+    best = -np.inf
+    for axis in vectors[:, -min(2, d):].T:
+        y = np.sort(centred @ axis)
+        c1, c2 = np.cumsum(y), np.cumsum(y * y)
+        left = np.arange(1, n, dtype=np.float64)
+        right = n - left
+        var_l = c2[:-1] / left - (c1[:-1] / left) ** 2
+        var_r = (c2[-1] - c2[:-1]) / right - ((c1[-1] - c1[:-1]) / right) ** 2
+        total = c2[-1] / n - (c1[-1] / n) ** 2
+        ok = (left >= least) & (right >= least) & (var_l > 0) & (var_r > 0)
+        if not ok.any() or total <= 0:
+            continue
+        two = (-0.5 * (left[ok] * np.log(var_l[ok]) + right[ok] * np.log(var_r[ok]))
+               + left[ok] * np.log(left[ok] / n) + right[ok] * np.log(right[ok] / n))
+        best = max(best, float(two.max()) + 0.5 * n * np.log(total))
+    return best - 1.5 * np.log(n)
+
+
+def split_test(X, *, covariance="full", min_share=0.1, min_gain=0.5, seed=0, n_init=3,
+               reg_covar=1e-6):
+    """Whether a segment's rows are better explained by two Gaussians than by one.
+
+    BIC (Schwarz 1978) of a two-component fit (k-means++ restarts and batch EM,
+    :func:`~shoal.core.warmup.initialise`) against one Gaussian, on the rows. The
+    split is the second step of the split-and-merge EM of Ueda et al. (2000), with
+    BIC in place of their local KL criterion so that the extra parameters are paid for.
+
+    Parameters
+    ----------
+    X : ndarray of shape (n_samples, n_features)
+        The segment's recent rows in stream order, data units. Two groups must both
+        hold at least half their share among the newer half of the rows: one group
+        that moved is not two.
+    covariance : {"full", "diag", "spherical"}
+        The mixture's covariance type (the parameter count follows it).
+    min_share : float
+        Each part must hold at least this share of the rows.
+    min_gain : float
+        ... and the BIC must fall by at least this much per row (0.5: a quarter of a
+        nat per row). Two groups apart enough to be segments gain 1.1-3.0 per row on
+        the seeded lumped scenarios; a sliver cut from a population on the move
+        gains a fraction of that (0.17 measured).
+
+    Returns
+    -------
+    parts : tuple (fractions, means, covariances, gain) or None
+        ``fractions`` (2,), ``means`` (2, D), ``covariances`` (2, D, D) in data units,
+        and ``gain``, the BIC of one Gaussian minus that of two, when two win.
+    """
+    from .warmup import bic, initialise   # warmup imports this module's siblings
+
+    X = np.asarray(X, dtype=np.float64)
+    if _hard_split_gain(X, np.random.default_rng(seed)) <= 0.0:
+        return None
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            one = initialise(X, 1, covariance, seed=seed, n_init=1, reg_covar=reg_covar)
+            two = initialise(X, 2, covariance, seed=seed, n_init=n_init, reg_covar=reg_covar)
+    except (NotEnoughDataError, ModelError, np.linalg.LinAlgError):
+        return None
+    gain = bic(one, X) - bic(two, X)
+    if not gain > min_gain * len(X) or two.weights.min() < min_share:
+        return None
+    # rows are in stream order: two groups that live side by side are both in the
+    # newer half; a group that moved leaves its old place empty there (a move, which
+    # the segment follows, not a split)
+    newer = np.bincount(two.score(X[len(X) // 2:]).component, minlength=2) / (len(X) - len(X) // 2)
+    if np.any(newer < 0.5 * two.weights):
+        return None
+    return two.weights.copy(), two.data_means(), two.data_covariance_matrices(), float(gain)

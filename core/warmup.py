@@ -178,6 +178,9 @@ def initialise(
         work on separated data. Batch EM (warm-up) is always exact. Measured on
         seeded 8-component streams (tests/test_core_stepwise.py): 1e-3 costs under
         1e-4 nats/row of average log-likelihood. 0 keeps every responsibility.
+    refresh_rows : int
+        The parameters are derived from the statistics at every multiple of this many
+        learned rows (fewer for a slow stream, so that it learns between inputs).
     averaging : bool or None
         Derive parameters from the running average of the statistics at refresh
         points (Polyak-Ruppert). ``None``: on when the schedule has no floor (the
@@ -192,6 +195,8 @@ def initialise(
     X = _check_rows(X, n_components)
     if int(n_init) < 1:
         raise ModelError(f"n_init should be >= 1, got {n_init!r}")
+    if int(refresh_rows) < 1:
+        raise ModelError(f"refresh_rows should be >= 1, got {refresh_rows!r}")
     n, d = X.shape
     center = X.mean(axis=0)
     scale = X.std(axis=0)
@@ -237,8 +242,58 @@ def initialise(
         fitted, history = _batch_em(Z, start, max_iter=min(SCREEN_ITER, max_iter), tol=tol)
         if history[-1] > best_ll or best is None:
             best, best_ll = fitted, history[-1]
-    best, _ = _batch_em(Z, best, max_iter=max_iter, tol=tol)
+    best, history = _batch_em(Z, best, max_iter=max_iter, tol=tol)
+    best = _split_merge_check(Z, template, best, float(history[-1]), rng,
+                              max_iter=max_iter, tol=tol)
     return replace(best, center=center, scale=scale, averaging=bool(averaging))
+
+
+def _split_merge_check(Z, template, best, best_ll, rng, *, max_iter, tol,
+                       n_pairs=3, rounds=3):
+    """A final check of a fit: merge a pair of components and split another, re-run EM,
+    and keep the result if it fits better (the split-and-merge EM of Ueda, Nakano,
+    Ghahramani & Hinton 2000).
+
+    Restarts from k-means++ seeds can all put two seeds in one group and none in
+    another; EM then keeps one component over two groups and two over one. Here the
+    split candidate is the component whose rows a cut along a main axis explains best
+    (the BIC gain of :func:`shoal.core.lifecycle._hard_split_gain`; only a positive
+    gain is tried), and the merge candidates are the pairs whose responsibilities overlap most
+    (Ueda et al.'s ``J_merge``, the cosine of the two responsibility vectors). The new
+    labels start a batch EM run like a restart's.
+    """
+    from .lifecycle import _hard_split_gain   # lifecycle imports this module's siblings
+
+    k = best.n_components
+    if k < 3:
+        return best
+    for _ in range(rounds):
+        scores = best.score(Z)
+        labels, resp = scores.component, scores.resp
+        gains = np.array([_hard_split_gain(Z[labels == j], rng) if np.sum(labels == j) > 2 * (
+            Z.shape[1] + 2) else -np.inf for j in range(k)])
+        split = int(np.argmax(gains))
+        if not gains[split] > 0.0:
+            return best
+        norms = np.sqrt(np.sum(resp * resp, axis=0))
+        overlap = (resp.T @ resp) / np.outer(norms, norms)
+        pairs = sorted(((overlap[a, b], a, b) for a in range(k) for b in range(a + 1, k)
+                        if split not in (a, b)), reverse=True)[:n_pairs]
+        improved = False
+        for _, a, b in pairs:
+            trial = labels.copy()
+            trial[trial == b] = a
+            rows = np.flatnonzero(labels == split)
+            cut = _lloyd(Z[rows], kmeans_plus_plus(Z[rows], 2, rng))
+            trial[rows[cut == 1]] = b
+            start = _from_hard_labels(template, Z, trial)
+            fitted, history = _batch_em(Z, start, max_iter=max_iter, tol=tol)
+            if history[-1] > best_ll + tol:
+                best, best_ll, improved = fitted, float(history[-1]), True
+                break
+        if not improved:
+            return best
+    return best
 
 
 def bic(mixture: Mixture, X) -> float:

@@ -21,6 +21,10 @@ compared with it, per segment:
 ``feature_shift[f]`` one feature's window mean in baseline sds (only when bounded);
 ``fit_drop``       (whole model) baseline mean log-density per row minus the window's.
 
+A segment whose share of the window is under a quarter of its baseline weight is
+not measured for the shape statistics (mean, spread, feature): the rows it still takes
+are mostly its neighbours' tails, and ``weight_change`` tells the story.
+
 Each comes with its estimation noise at Kish's effective rows of the window and of
 the baseline (:mod:`shoal.core.drift`). :func:`shoal.core.drift.evaluate_bounds`
 turns them into raised and cleared events (bound and noise, persistence,
@@ -80,6 +84,11 @@ STATISTIC_UNITS = {
     "feature_shift": "baseline sds",
 }
 _TOP_FEATURES = 3
+_SHAPE_MIN_SHARE = 0.25
+"""A segment whose share of a window's rows is under this fraction of its baseline
+weight is not measured for mean, spread or feature shifts in that window (it counts
+as not crossing): the few rows it still takes are mostly its neighbours' tails. Its
+``weight_change`` says what happened."""
 
 
 def alert_id(baseline_number: int, segment, statistic: str, first_window: int) -> str:
@@ -533,6 +542,12 @@ class InputWatch:
             values[(sid, "weight_change")] = abs(share - w_ref)
             noise[(sid, "weight_change")] = float(w_noise[k])
             detail[sid] = {"share": share, "baseline_weight": w_ref, "n_eff": 0.0}
+            if share < _SHAPE_MIN_SHARE * w_ref:
+                # a segment that lost most of its rows: what is left is mostly the
+                # neighbours' tails, whose mean and spread say nothing about it
+                for stat in self._shape_statistics():
+                    values[(sid, stat)], noise[(sid, stat)] = 0.0, 0.0
+                continue
             if not acc or acc["T"] <= 0.0 or acc["Q"] <= 0.0:
                 continue
             dev = np.asarray(acc["M"]) / acc["T"]
@@ -584,6 +599,12 @@ class InputWatch:
                         values[(sid, _feature_stat(f))] = float(z[i, j])
                         noise[(sid, _feature_stat(f))] = float(f_noise[i, j])
         return self._fit_statistics(win, ref, values, noise, detail)
+
+    def _shape_statistics(self) -> list[str]:
+        stats = ["mean_shift", "spread_ratio"]
+        if self.monitor.wants_feature_shift():
+            stats += [_feature_stat(f) for f in self.monitor.features]
+        return stats
 
     def _fit_statistics(self, win, ref: Baseline, values, noise, detail):
         n = win["n"]

@@ -849,13 +849,15 @@ class Pipeline:
             if s.segments.fixed:
                 mixture = initialise(Xw, n_components=s.segments.min, covariance=s.covariance,
                                      seed=s.seed, n_init=s.learning.n_init,
-                                     schedule=self._schedule(), reg_covar=s.learning.reg_covar)
+                                     schedule=self._schedule(), reg_covar=s.learning.reg_covar,
+                                     refresh_rows=s.learning.refresh_rows)
                 table = None
             else:
                 mixture, table = select_n_components(
                     Xw, s.segments.min, s.segments.max, covariance=s.covariance, seed=s.seed,
                     n_init=s.learning.n_init, schedule=self._schedule(),
-                    reg_covar=s.learning.reg_covar)
+                    reg_covar=s.learning.reg_covar,
+                    refresh_rows=s.learning.refresh_rows)
         except NotEnoughDataError as exc:
             log_event("warmup_not_enough_data", logging.WARNING, rows=len(Xw), detail=str(exc))
             return None, None, X, {}

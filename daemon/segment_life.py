@@ -10,15 +10,27 @@ from the same checkpoint and decides the same).
 
 At a decision point, in this order:
 
-retire  a segment whose weight has been under ``retire_weight`` since a decision
-        point ``retire_rows`` or more rows back is dropped (:func:`shoal.core.lifecycle.retire`);
+retire  a segment whose share of the rows learned between decision points (the sum
+        of its responsibilities over them) has been under ``retire_weight`` for
+        ``retire_rows`` rows or more is dropped (:func:`shoal.core.lifecycle.retire`).
+        The evidence is the recent rows, not the model's weight, which fades with
+        the half-life (from 10% to 0.5% takes 4.3 half-lives) and so would keep a
+        vanished segment long after its rows stopped;
 merge   the two segments that overlap most, if closer than ``merge_distance``, are
         merged by adding their statistics; the older id survives
         (:func:`shoal.core.lifecycle.merge`);
 birth   rows no segment explains (chi-square bound) sit in a bounded pool; when at
         least ``birth_rows`` of them form one compact group
-        (:func:`shoal.core.lifecycle.compact_group`) a segment is born from it with a
-        new id (:func:`shoal.core.lifecycle.add_component`).
+        (:func:`shoal.core.lifecycle.compact_group`) that widening a segment does not
+        explain as well (:func:`shoal.core.lifecycle.widening_explains`) a segment is
+        born from it with a new id (:func:`shoal.core.lifecycle.add_component`);
+split   every fourth row goes to its segment's sample; when two Gaussians explain a
+        segment's renewed sample better than one, by BIC
+        (:func:`shoal.core.lifecycle.split_test`), and the parts would not merge
+        back, it splits: the larger part keeps the id (:func:`shoal.core.lifecycle.split`).
+
+A pair that split or merged is not merged or split back for
+``lifecycle.cool_down_rows`` rows.
 
 The pool and the bookkeeping travel in the checkpoint's ``extra["lifecycle"]`` and are
 committed with the model. Each event becomes a segment-history entry and an alert
@@ -27,6 +39,7 @@ and takes a born segment in once it has settled (``lifecycle.settle_rows`` rows)
 """
 from __future__ import annotations
 
+import base64
 import hashlib
 import json
 import logging
@@ -39,12 +52,17 @@ from shoal.core import Mixture, ModelError
 from shoal.core.drift import Baseline
 from shoal.core.lifecycle import (
     add_component,
+    OVERLAP_MEASURES,
     compact_group,
     merge,
     overlapping_pairs,
     retire,
+    split,
+    split_test,
+    squared_mahalanobis,
     unexplained,
     unexplained_below,
+    widening_explains,
 )
 from shoal.daemon.logs import log_event
 from shoal.daemon.monitor import PAYLOAD_SCHEMA_VERSION
@@ -55,6 +73,48 @@ __all__ = ["LifeWatch", "lifecycle_alert_id", "STATE_FORMAT"]
 
 STATE_FORMAT = 1
 _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT = 1e-3, 0.5
+_SAMPLE_STRIDE = 4
+_SAMPLE_MIN, _SAMPLE_PER_FEATURE, _SAMPLE_MAX = 200, 50, 500
+"""Every fourth row of the stream goes to its segment's sample (the newest 50 per
+feature, 200 to 500 rows), on which the split test runs each time twice its size has
+come in since the last test."""
+_BIRTH_ROWS_PER_FEATURE = 20
+"""A group is born only from at least this many rows per feature (besides
+``birth_rows``): its mean is then known to about ``sqrt(D / n) = 0.22`` of its sds
+(Mahalanobis), the rms error of a mean from ``n`` rows."""
+
+
+def _pack(rows: np.ndarray) -> str:
+    """Rows as base64 of their float32 bytes: the checkpoint's JSON carries a sample of
+    hundreds of rows as one string, which encodes and decodes far faster than lists.
+    Seven digits are plenty for a split test, and every input reads the sample back
+    from this form, so a restart sees exactly what an uninterrupted run does."""
+    return base64.b64encode(np.ascontiguousarray(rows, dtype="<f4").tobytes()).decode("ascii")
+
+
+def _unpack(packed: str | None, n_features: int) -> np.ndarray:
+    if not packed:
+        return np.empty((0, n_features))
+    rows = np.frombuffer(base64.b64decode(packed), dtype="<f4").reshape(-1, n_features)
+    return rows.astype(np.float64)
+
+
+def _recent_share(rows: np.ndarray, n: int, trim: float = 0.1) -> float:
+    """The share of the stream's rows that a group born at row ``n`` takes, from the
+    stream positions ``rows`` of its members in the pool.
+
+    A new group's rows arrive at a steady rate since it appeared, while a few older
+    scattered rows may sit in the pool with them. The oldest ``trim`` share of the
+    members is set aside: with ``c`` members sorted by row, ``r_j`` the first kept
+    (``j = ceil(trim c)``), the share is ``(c - j + 1) / (n - r_j)``. For rows at a
+    steady rate since row ``s`` this is ``c / (n - s)`` up to sampling, whatever
+    ``trim``; the group's first rows alone would let one old stray row stretch the
+    span (and shrink the share) as far back as the pool reaches.
+    """
+    rows = np.sort(np.asarray(rows, dtype=np.int64))
+    c = rows.size
+    j = max(int(np.ceil(trim * c)), 1)
+    return (c - j + 1) / max(n - int(rows[j - 1]), c - j + 1)
 
 
 def lifecycle_alert_id(event: str, segment: int) -> str:
@@ -79,6 +139,7 @@ class LifeWatch:
         self.settings = settings
         self.cfg = settings.lifecycle
         self.features = list(settings.features)
+        self._samples: dict[str, np.ndarray] = {}   # unpacked samples, packed at the end
         self.version = version
         self.file = file
         if state is not None and state.get("format") != STATE_FORMAT:
@@ -94,7 +155,9 @@ class LifeWatch:
     def start(self, stream_offset: int) -> None:
         """A new model: stream rows are ``stream_offset`` + rows learned after warm-up."""
         self.state = {"format": STATE_FORMAT, "offset": int(stream_offset), "done_at": 0,
-                      "low_since": {}, "unsettled": {}, "pool": {"X": [], "rows": []}}
+                      "low_since": {}, "unsettled": {}, "pool": {"X": [], "rows": []},
+                      "recent": {"rows": 0, "mass": {}}, "sample": {}, "fresh": {},
+                      "cool": {}}
         self._load_pool()
 
     def _ensure(self) -> dict:
@@ -111,6 +174,9 @@ class LifeWatch:
     def final_state(self) -> dict:
         st = self._ensure()
         st["pool"] = {"X": self._pool_X.tolist(), "rows": self._pool_rows.tolist()}
+        sample = st.setdefault("sample", {})
+        for key, rows in self._samples.items():
+            sample[key] = _pack(rows)
         return st
 
     # -- pieces ----------------------------------------------------------------------
@@ -124,7 +190,13 @@ class LifeWatch:
     def observe(self, before: Mixture, X: np.ndarray, scores) -> None:
         """Pool the rows of a learned piece that no segment explains; ``before`` is the
         model that scored them (its ``n_rows`` is the piece's first learned row)."""
-        self._ensure()
+        st = self._ensure()
+        recent = st.setdefault("recent", {"rows": 0, "mass": {}})
+        recent["rows"] += len(X)
+        mass = scores.resp.sum(axis=0)
+        for sid, m in zip(before.ids.tolist(), mass.tolist()):
+            recent["mass"][str(sid)] = recent["mass"].get(str(sid), 0.0) + m
+        self._sample(before, X, scores)
         q = self.cfg.unexplained_quantile
         near = np.flatnonzero(scores.log_density < unexplained_below(before, q) + 1e-9)
         if near.size == 0:
@@ -136,10 +208,38 @@ class LifeWatch:
         self._pool_X = np.concatenate([self._pool_X, X[far]])[-keep:]
         self._pool_rows = np.concatenate([self._pool_rows, before.n_rows + far])[-keep:]
 
+    def _sample(self, before: Mixture, X: np.ndarray, scores) -> None:
+        """Keep every ``_SAMPLE_STRIDE``-th row of the stream (by position, so the same
+        rows whatever the cut) in its segment's sample, the newest ``_sample_cap``."""
+        st = self.state
+        fresh = st.setdefault("fresh", {})
+        first = (-int(before.n_rows)) % _SAMPLE_STRIDE
+        picked = np.arange(first, len(X), _SAMPLE_STRIDE)
+        if picked.size == 0:
+            return
+        cap = self._sample_cap()
+        labels = scores.segment[picked]
+        for sid in np.unique(labels).tolist():
+            # rounded as the checkpoint keeps them, so a restart sees the same rows
+            rows = X[picked[labels == sid]].astype(np.float32).astype(np.float64)
+            key = str(sid)
+            self._samples[key] = np.concatenate([self._sampled(key), rows])[-cap:]
+            fresh[key] = fresh.get(key, 0) + len(rows)
+
+    def _sampled(self, key: str) -> np.ndarray:
+        """The rows of a segment's sample, shape (n, n_features)."""
+        if key not in self._samples:
+            packed = self.state.get("sample", {}).get(key)
+            self._samples[key] = _unpack(packed, len(self.features))
+        return self._samples[key]
+
+    def _sample_cap(self) -> int:
+        return int(min(max(_SAMPLE_MIN, _SAMPLE_PER_FEATURE * len(self.features)), _SAMPLE_MAX))
+
     # -- decision points -------------------------------------------------------------
     def at_boundary(self, mixture: Mixture, watch=None) -> Mixture:
-        """At a decision point not yet taken, retire, merge and give birth; returns the
-        model to learn on with."""
+        """At a decision point not yet taken, retire, merge, give birth and split; returns
+        the model to learn on with."""
         st = self._ensure()
         n = int(mixture.n_rows)
         if n == 0 or n % self.cfg.check_rows or st["done_at"] == n:
@@ -150,6 +250,7 @@ class LifeWatch:
         mixture = self._retire(mixture, n, watch)
         mixture = self._merge(mixture, n, watch)
         mixture = self._birth(mixture, n)
+        mixture = self._split(mixture, n, watch)
         self._settle(mixture, n, watch)
         return mixture
 
@@ -157,12 +258,19 @@ class LifeWatch:
         st = self.state
         low = {sid: at for sid, at in st["low_since"].items()
                if int(sid) in set(mixture.ids.tolist())}
-        for k, sid in enumerate(mixture.ids.tolist()):
-            if mixture.weights[k] < self.cfg.retire_weight:
-                low.setdefault(str(sid), n)
-            else:
-                low.pop(str(sid), None)
-        due = sorted((float(mixture.weights[k]), sid) for k, sid in enumerate(mixture.ids.tolist())
+        recent = st.get("recent") or {"rows": 0, "mass": {}}
+        st["recent"] = {"rows": 0, "mass": {}}
+        share = {}
+        if recent["rows"] > 0:
+            start = n - recent["rows"]
+            for sid in mixture.ids.tolist():
+                share[sid] = recent["mass"].get(str(sid), 0.0) / recent["rows"]
+                if share[sid] < self.cfg.retire_weight:
+                    low.setdefault(str(sid), start)
+                else:
+                    low.pop(str(sid), None)
+        due = sorted((share.get(sid, float(mixture.weights[k])), sid)
+                     for k, sid in enumerate(mixture.ids.tolist())
                      if str(sid) in low and n - low[str(sid)] >= self.cfg.retire_rows)
         for weight, sid in due:
             if mixture.n_components < 2:
@@ -176,9 +284,10 @@ class LifeWatch:
             self._drop_baseline(watch, [sid], "retired")
             self._event("retired", sid, n, weight=weight, mean=mean, spread=sd,
                         under_since_row=self.state["offset"] + since,
-                        summary=(f"segment {sid} retired: its weight stayed under "
-                                 f"{self.cfg.retire_weight:.2%} for {n - since} rows "
-                                 f"(last {weight:.2%}); its rows go to the others; "
+                        summary=(f"segment {sid} retired: its share of recent rows "
+                                 f"stayed under {self.cfg.retire_weight:.2%} for "
+                                 f"{n - since} rows (last {weight:.2%}); its rows go "
+                                 f"to the others; "
                                  f"it was {self._describe(mean, sd)}"))
         st["low_since"] = low
         return mixture
@@ -187,10 +296,13 @@ class LifeWatch:
         bound = self.cfg.merge_distance
         if bound is None or mixture.n_components < 2:
             return mixture
-        pairs = overlapping_pairs(mixture, bound, self.cfg.merge_measure)
+        cool = self._cooling(n)
+        pairs = [p for p in overlapping_pairs(mixture, bound, self.cfg.merge_measure)
+                 if f"{p[0]}|{p[1]}" not in cool]
         if not pairs:
             return mixture
         keep, drop, distance = pairs[0]
+        cool[str(keep)] = n + self.cfg.cool_down_rows   # no split of the merged segment
         means, sds = mixture.data_means(), mixture.data_stds()
         ka, kb = (int(np.flatnonzero(mixture.ids == i)[0]) for i in (keep, drop))
         before = {str(sid): {"weight": float(mixture.weights[k]), "mean": means[k].tolist(),
@@ -210,6 +322,81 @@ class LifeWatch:
                              f"{self._describe(mean, sd)}, weight {mixture.weights[k]:.1%}"))
         return mixture
 
+    def _cooling(self, n: int) -> dict:
+        """Pairs ("a|b", no merge) and segments ("a", no split) still cooling down."""
+        st = self.state
+        st["cool"] = {k: until for k, until in st.get("cool", {}).items() if until > n}
+        return st["cool"]
+
+    def _split(self, mixture: Mixture, n: int, watch) -> Mixture:
+        """Split the first segment whose renewed sample (the rows it still holds) two
+        Gaussians explain better than one (by BIC), if the two parts would not merge
+        back; one split per decision point."""
+        st = self.state
+        live = {str(sid) for sid in mixture.ids.tolist()}
+        for name in ("sample", "fresh"):   # segments that left take their samples along
+            st[name] = {key: v for key, v in st.setdefault(name, {}).items() if key in live}
+        self._samples = {key: v for key, v in self._samples.items() if key in live}
+        cap = self._sample_cap()
+        cool = self._cooling(n)
+        bound = self.cfg.merge_distance
+        for sid in mixture.ids.tolist():
+            key = str(sid)
+            rows = self._sampled(key)
+            if len(rows) < cap or st["fresh"].get(key, 0) < 2 * cap or key in cool:
+                continue
+            if mixture.n_components >= self.cfg.max_segments:
+                break
+            st["fresh"][key] = 0
+            # the rows the segment still holds (a birth or merge since may have
+            # taken some elsewhere) and explains: rows far from every segment are
+            # the pool's, for a birth
+            rows = rows[(mixture.score(rows).segment == sid)
+                        & ~unexplained(mixture, rows, self.cfg.unexplained_quantile)]
+            if len(rows) < cap // 2:
+                continue
+            parts = split_test(rows, covariance=mixture.covariance,
+                               seed=self.settings.seed,
+                               reg_covar=self.settings.learning.reg_covar)
+            if parts is None:
+                continue
+            fractions, means, covs, gain = parts
+            if bound is not None:
+                apart = OVERLAP_MEASURES[self.cfg.merge_measure](means[0], covs[0],
+                                                                 means[1], covs[1])
+                if apart < bound:
+                    continue   # the merge rule would put them back together
+            k = int(np.flatnonzero(mixture.ids == sid)[0])
+            before = {"weight": float(mixture.weights[k]), "mean": mixture.data_means()[k].tolist(),
+                      "spread": mixture.data_stds()[k].tolist()}
+            try:
+                mixture = split(mixture, sid, fractions, means, covs)
+            except ModelError as exc:
+                log_event("segment_split_skipped", logging.WARNING, segment=sid,
+                          model_version=self.version, detail=str(exc))
+                continue
+            new = int(mixture.ids[-1])
+            cool[f"{sid}|{new}"] = n + self.cfg.cool_down_rows
+            for part in (key, str(new)):
+                self._samples[part] = np.empty((0, mixture.n_features))
+                st["fresh"][part] = 0
+                st["unsettled"][part] = n
+            self._drop_baseline(watch, [sid], "split")
+            ka = int(np.flatnonzero(mixture.ids == sid)[0])
+            means_now, sds_now = mixture.data_means(), mixture.data_stds()
+            self._event("split", sid, n, new=new, gain=gain, before=before,
+                        weight=float(mixture.weights[ka]), mean=means_now[ka],
+                        spread=sds_now[ka],
+                        new_weight=float(mixture.weights[-1]), new_mean=means_now[-1].tolist(),
+                        new_spread=sds_now[-1].tolist(),
+                        summary=(f"segment {sid} split in two (BIC gain {gain:.1f}): it keeps "
+                                 f"{self._describe(means_now[ka], sds_now[ka])}, weight "
+                                 f"{mixture.weights[ka]:.1%}; new segment {new} takes "
+                                 f"{self._describe(means_now[-1], sds_now[-1])}, weight "
+                                 f"{mixture.weights[-1]:.1%}"))
+            return mixture
+        return mixture
+
     def _birth(self, mixture: Mixture, n: int) -> Mixture:
         cfg = self.cfg
         if len(self._pool_X) < cfg.birth_rows or mixture.n_components >= cfg.max_segments:
@@ -217,7 +404,8 @@ class LifeWatch:
         covs = mixture.data_covariance_matrices()
         widest = max(float(np.exp(0.5 * np.linalg.slogdet(c)[1] / mixture.n_features))
                      for c in covs)
-        group = compact_group(self._pool_X, min_rows=cfg.birth_rows,
+        group = compact_group(self._pool_X,
+                              min_rows=max(cfg.birth_rows, _BIRTH_ROWS_PER_FEATURE * len(self.features)),
                               max_sd=cfg.birth_max_spread * widest,
                               threshold=cfg.unexplained_quantile, seed=self.settings.seed,
                               reg_covar=self.settings.learning.reg_covar)
@@ -225,8 +413,17 @@ class LifeWatch:
             return mixture
         mean, cov, members = group
         count = int(members.sum())
-        covered = max(n - int(self._pool_rows[members].min()), count)
-        weight = float(np.clip(count / covered, _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT))
+        widened, gain = widening_explains(mixture, self._pool_X[members], mean, cov,
+                                          cfg.unexplained_quantile)
+        if widened is None:
+            widened, gain = self._ring(mixture, mean, count)
+        if widened is not None:
+            log_event("segment_birth_declined", logging.DEBUG, rows=count, segment=widened,
+                      detail=f"segment {widened} widened explains the group as well "
+                             f"(BIC gain of a new group {gain:.1f}; nan: centred on it)")
+            return mixture
+        weight = float(np.clip(_recent_share(self._pool_rows[members], n),
+                               _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT))
         try:
             mixture = add_component(mixture, weight, mean, cov)
         except ModelError as exc:   # e.g. a group too extreme for float64: no birth
@@ -242,6 +439,24 @@ class LifeWatch:
                              f"(about {weight:.1%} of recent rows): "
                              f"{self._describe(mean, sd)}"))
         return mixture
+
+    def _ring(self, mixture: Mixture, mean, count: int):
+        """The widening test on every pooled row nearest the group's segment, when the
+        group is less than half of them: a spread that grew leaves a ring of rows
+        around the segment, and a compact arc of it is a group that does not surround
+        the segment although the ring does. ``(None, nan)`` otherwise."""
+        nearest = np.argmin(squared_mahalanobis(mixture, self._pool_X), axis=1)
+        k = int(np.argmin(squared_mahalanobis(mixture, np.asarray(mean)[None])[0]))
+        ring = self._pool_X[nearest == k]
+        d = mixture.n_features
+        if len(ring) < 2 * count or len(ring) < d + 2:
+            return None, float("nan")   # the group is most of them: it stands on its own
+        cov = np.cov(ring, rowvar=False) + self.settings.learning.reg_covar * np.eye(d)
+        try:
+            return widening_explains(mixture, ring, ring.mean(axis=0), cov,
+                                     self.cfg.unexplained_quantile)
+        except np.linalg.LinAlgError:
+            return None, float("nan")
 
     def _settle(self, mixture: Mixture, n: int, watch) -> None:
         """Born segments that have settled join the drift baseline."""
@@ -324,11 +539,15 @@ class LifeWatch:
         last: dict[int, dict] = {}
         for e in self.events:
             text = {"born": "born", "retired": "retired",
-                    "merged": f"merged into {e.get('into')}"}[e["event"]]
+                    "merged": f"merged into {e.get('into')}",
+                    "split": f"split, part {e.get('new')} new"}[e["event"]]
             notes.setdefault(e["segment"], []).append(f"{text} at row {e['row']}")
             if e["event"] == "merged":
                 notes.setdefault(e["into"], []).append(
                     f"absorbed {e['segment']} at row {e['row']}")
+            if e["event"] == "split":
+                notes.setdefault(e["new"], []).append(
+                    f"split from {e['segment']} at row {e['row']}")
             last[e["segment"]] = e
         out = []
         for r in rows:

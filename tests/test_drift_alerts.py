@@ -51,9 +51,11 @@ def _rows(rng, n, weights, means, covs, *, shift=None, spread=None):
 class Stream:
     """The real pipeline on a fresh state folder, fed one Parquet drop at a time."""
 
-    def __init__(self, folder, **overrides):
+    def __init__(self, folder, features=FEATURES, segments=K, **overrides):
         self.folder = folder
-        self.settings = parse_config({"features": FEATURES, "segments": K, **overrides}, folder)
+        self.features = list(features)
+        self.settings = parse_config({"features": self.features, "segments": segments,
+                                      **overrides}, folder)
         self.layout = prepare_folders(self.settings)
         self.store = StateStore(self.layout.db)
         self.pipeline = Pipeline(self.settings, self.layout, self.store)
@@ -64,7 +66,8 @@ class Stream:
         for start in range(0, len(X), drop_rows):
             part = X[start:start + drop_rows]
             path = self.folder / f"drop-{self.n:05d}.parquet"
-            pq.write_table(pa.table({f: part[:, j] for j, f in enumerate(FEATURES)}), path)
+            pq.write_table(pa.table({f: part[:, j] for j, f in enumerate(self.features)}),
+                           path)
             r = self.pipeline.process(path, in_inbox=False)
             assert r.outcome == "committed", r
             path.unlink()
