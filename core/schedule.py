@@ -54,7 +54,7 @@ figures are ``h`` and 0.998-1.003 ``h``. The earlier schedule gave 4,700 rows at
 A model saved under the earlier tracking schedule (``max(eta, (i + i0) ** -alpha)``)
 has the same stored fields (``alpha``, ``i0``, ``half_life_rows``) and statistics that
 are valid running averages, so it is carried on as it is: from the next row on its
-steps are ``eta``. ``alpha`` and ``i0`` are kept (and still resolved) but only the
+steps are ``eta``. ``alpha`` and ``i0`` are kept (and still filled in) but only the
 converging schedule uses them.
 """
 

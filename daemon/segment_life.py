@@ -215,6 +215,8 @@ class LifeWatch:
         fresh = st.setdefault("fresh", {})
         first = (-int(before.n_rows)) % _SAMPLE_STRIDE
         picked = np.arange(first, len(X), _SAMPLE_STRIDE)
+        # rows with missing features (NaN) have no place in a split test's sample
+        picked = picked[~np.isnan(X[picked]).any(axis=1)]
         if picked.size == 0:
             return
         cap = self._sample_cap()

@@ -1,6 +1,7 @@
 """A config under which a few drops of the warehouse scenario (seed 7, 500 rows each) raise
-and clear drift alerts and give birth to segments within 4,000 rows: tiny windows, no
-noise margin, a weight_change bound near the windows' own scatter, a loose birth rule."""
+and clear drift alerts and retire a segment within 4,000 rows: tiny windows, no noise
+margin, a weight_change bound near the windows' own scatter, a segment retired when its
+share of recent rows stays under 20% for 2,500 rows."""
 from shoal.daemon.scenario import FEATURES, drops as scenario_drops
 from shoal.daemon.drills import write_drop
 
@@ -17,7 +18,8 @@ LIVELY_CONFIG = {
               "bounds": {"weight_change": 0.02, "mean_shift": None, "spread_ratio": None,
                          "fit_drop": None}},
     "lifecycle": {"check_rows": 500, "unexplained_quantile": 0.9, "birth_rows": 20,
-                  "birth_max_spread": 5.0, "pool_span_rows": 5000},
+                  "birth_max_spread": 5.0, "pool_span_rows": 5000,
+                  "retire_weight": 0.2, "retire_rows": 2500},
 }
 
 

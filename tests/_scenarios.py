@@ -200,7 +200,7 @@ def lumped(folder: Path, seed: int, after=60_000):
     two parts' means end from the true means (Mahalanobis under the true
     covariances), and every lifecycle event."""
     from shoal.core import StepSchedule, initialise
-    from shoal.daemon.pipeline import ModelState
+    from dataclasses import replace
 
     truth = Truth(seed)
     run = Run(folder, truth)
@@ -212,7 +212,7 @@ def lumped(folder: Path, seed: int, after=60_000):
                            schedule=StepSchedule(alpha=s.learning.step_exponent,
                                                  half_life_rows=s.half_life_rows),
                            reg_covar=s.learning.reg_covar, refresh_rows=s.learning.refresh_rows)
-        run.pipeline.state = ModelState(st.version, fewer, st.extra, None)
+        run.pipeline.state = replace(st, mixture=fewer, warmup=None)
         owner = fewer.score(truth.means).segment           # the segment of each true mean
         ids, counts = np.unique(owner, return_counts=True)
         if counts.max() < 2:

@@ -136,8 +136,16 @@ def test_demo_prints_the_drift_and_new_state_alerts_with_explanations(tmp_path):
     assert at and "unusual" in lines[at[0] + 2] and "fan_rpm" in lines[at[0] + 2], out
     # ice build-up is born as a new segment, announced with its
     # summary in data units, and listed among the segments nearest the ice state
-    at = [i for i, x in enumerate(lines) if x.strip().startswith("BORN")]
+    born_lines = [i for i, x in enumerate(lines) if x.strip().startswith("BORN")]
+    at = [i for i in born_lines if "fan_rpm 11" in lines[i + 2]]
     assert len(at) == 1, out
+    # the only other birth allowed is the worn compressor's rows (RU-03 drawing several
+    # amperes more than the holding state) while the model's 50,000-row memory follows
+    # the wear: never a segment of another state
+    for i in born_lines:
+        if i != at[0]:
+            current = float(lines[i + 2].split("compressor_a ")[1].split("±")[0])
+            assert current > 20.0 and "fan_rpm 14" in lines[i + 2], out
     born = int(lines[at[0]].split("segment ")[1].split()[0])
     first_row = int(lines[at[0] + 1].split("rows ")[1].split("-")[0])
     print(f"ice build-up born as segment {born} {first_row - NEW_STATE.start_row} rows after "

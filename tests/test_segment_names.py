@@ -133,3 +133,52 @@ def test_labels_have_no_segment_name_unless_configured(tmp_path, capsys):
     assert _run(capsys, "name", "-c", str(cfg), "1", "door traffic")[0] == 0
     _ingest(cfg, tmp_path, [4], "b")
     assert "segment_name" not in _labels(tmp_path, "b4").column_names
+
+
+def test_a_name_follows_its_id_through_a_split(tmp_path):
+    # A segment over two real groups (the model started from a warm-up fit with one
+    # component fewer, as in tests/_scenarios.py) is named, then splits: the older id
+    # keeps its name on the larger part, the new id has none until someone names it;
+    # the split event's payload, the summary and the labels say so.
+    import numpy as np
+
+    import _scenarios
+    from shoal.core import StepSchedule, initialise
+    from dataclasses import replace
+    from shoal.daemon.segment_names import set_segment_name
+    from shoal.daemon.summary import segment_summary
+
+    truth = _scenarios.Truth(0)
+    run = _scenarios.Run(tmp_path / "run", truth, output={"segment_names": True})
+    try:
+        warm = truth.rows(_scenarios.SETTINGS["warmup_rows"])
+        run.feed(warm)
+        st, s = run.pipeline.state, run.settings
+        fewer = initialise(warm, truth.K - 1, s.covariance, seed=s.seed,
+                           n_init=s.learning.n_init,
+                           schedule=StepSchedule(alpha=s.learning.step_exponent,
+                                                 half_life_rows=s.half_life_rows),
+                           reg_covar=s.learning.reg_covar,
+                           refresh_rows=s.learning.refresh_rows)
+        run.pipeline.state = replace(st, mixture=fewer, warmup=None)
+        owner = fewer.score(truth.means).segment
+        ids, counts = np.unique(owner, return_counts=True)
+        assert counts.max() == 2, "seed 0 lumps two groups into one segment"
+        lumped = int(ids[np.argmax(counts)])
+        set_segment_name(run.layout.db, lumped, "two in one", by="test")
+        run.feed(truth.rows(60_000))
+        splits = [e for e in run.events("split") if e["segment"] == lumped]
+        assert len(splits) == 1, run.events()
+        new = splits[0]["explanation"]["new"]
+        assert splits[0]["segment_name"] == "two in one"
+        summary = {x["id"]: x for x in segment_summary(run.store, run.settings)["segments"]}
+        assert summary[lumped]["name"] == "two in one"
+        assert summary[new]["name"] is None
+        # the newest labels file: rows of the older id carry its name, the new id's none
+        newest = max(run.layout.outbox.glob("*.labels.parquet"), key=lambda p: p.stat().st_mtime_ns)
+        labels = pq.read_table(newest).to_pydict()
+        pairs = set(zip(labels["segment"], labels["segment_name"]))
+        assert (lumped, "two in one") in pairs and (new, None) in pairs, pairs
+        assert all(name is None for seg, name in pairs if seg != lumped)
+    finally:
+        run.close()

@@ -132,10 +132,16 @@ def test_drift_on_log_normal_rows_quiet_then_a_doubled_median_alerted(streams):
     assert alert["rows"]["last"] + 1 - change <= 3 * window
     top = alert["explanation"]["features"][0]
     assert top["feature"] == FEATURES[feature] and top["centre"] == "median"
-    # medians in the data's units: the true median exp(mu) and twice it
+    # medians in the data's units: the baseline's is exp of the baseline mean in the
+    # model's (log) units, the window's about twice it. (The baseline is the model a
+    # settle period after the warm-up, which with a constant step still leans on the
+    # 2,000-row warm-up fit, so each is compared with the true median loosely.)
+    k = int(np.flatnonzero(np.asarray(ref["ids"]) == segment)[0])
+    assert top["baseline_mean"] == pytest.approx(np.exp(ref["means"][k][feature]), rel=1e-9)
+    assert top["window_mean"] / top["baseline_mean"] == pytest.approx(2.0, rel=0.1)
     true_median = np.exp(meanlog[comp, feature])
-    assert top["baseline_mean"] == pytest.approx(true_median, rel=0.05)
-    assert top["window_mean"] == pytest.approx(2 * true_median, rel=0.1)
+    assert top["baseline_mean"] == pytest.approx(true_median, rel=0.2)
+    assert top["window_mean"] == pytest.approx(2 * true_median, rel=0.2)
     sdlog = np.sqrt(covs[comp, feature, feature])
     assert top["shift_sd"] == pytest.approx(np.log(2.0) / sdlog, rel=0.2)
     assert f"{FEATURES[feature]} " in alert["explanation"]["summary"]
