@@ -13,14 +13,13 @@ AVX2 with FMA (picked by the CPU; elsewhere a BLAS GEMM and numpy's ``exp``); BL
 keeps the M-step SYRKs.
 
 The extension is built when shoal is installed (it needs a C compiler; the build is
-optional). Without it, or with ``SHOAL_COMPILED=0`` in the environment,
+optional). Without it, or once switched off with :func:`set_enabled` (the daemon does
+so at start-up when ``SHOAL_COMPILED=0`` is in its environment; core reads none),
 :func:`enabled` is false and the mixture keeps its numpy path, which gives the same
 results up to the order of floating-point operations (tests compare the two).
 """
 
 from __future__ import annotations
-
-import os
 
 __all__ = ["enabled", "set_enabled", "kernels", "tiled", "packed_full_len"]
 
@@ -31,13 +30,11 @@ def enabled() -> bool:
     """Whether the compiled kernels are in use (the extension built, not switched off)."""
     on = _STATE.get("on")
     if on is None:
-        on = os.environ.get("SHOAL_COMPILED", "1").strip().lower() not in (
-            "0", "false", "no", "off")
-        if on:
-            try:
-                kernels()
-            except ImportError:
-                on = False
+        try:
+            kernels()
+            on = True
+        except ImportError:
+            on = False
         _STATE["on"] = on
     return on
 

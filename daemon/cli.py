@@ -40,6 +40,7 @@ from shoal.config import ConfigError, Settings, dump_settings, load_config  # no
 from shoal.core import ShoalError  # noqa: E402
 from shoal.daemon.alert_commands import add_alert_commands, alert_delivery  # noqa: E402
 from shoal.daemon.backfill import add_backfill_command  # noqa: E402
+from shoal.daemon.compiled_switch import apply_environment  # noqa: E402
 from shoal.daemon.errors import InputRejected, ServiceError, UsageError  # noqa: E402
 from shoal.daemon.contract import check_model_contract, open_model_store  # noqa: E402
 from shoal.daemon.layout import (  # noqa: E402
@@ -326,6 +327,7 @@ def _cmd_demo(args) -> int:
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)  # usage errors: argparse prints and exits 2
+    apply_environment()   # SHOAL_COMPILED=0: core's numpy path (shoal.daemon.compiled_switch)
     tune_allocator()   # frames' buffers reused, not fresh pages each (shoal.daemon.allocator)
     # The ~50,000 objects of the imports (modules, functions, classes) live as long as the
     # process: moved out of the cyclic collector's view, a full collection no longer
