@@ -67,26 +67,3 @@ def packed_full_len(n_components: int, n_features: int) -> int:
     coordinates, four offsets and four weights for each feature below the block's end)."""
     return n_components * kernels().packed_len(n_features)
 
-
-def warm() -> bool:
-    """Run every compiled kernel once on a few synthetic rows (a self-check at start-up:
-    a broken build fails here, not inside the first input). Milliseconds. Returns
-    whether the compiled kernels are in use."""
-    if not enabled():
-        return False
-    import numpy as np
-
-    from .mixture import Mixture
-    from .schedule import StepSchedule
-
-    X = np.random.default_rng(0).normal(size=(64, 2))
-    means = np.array([[0.0, 0.0], [2.0, 2.0]])
-    shapes = {"full": np.stack([np.eye(2)] * 2), "diag": np.ones((2, 2)),
-              "spherical": np.ones(2)}
-    for covariance, cov in shapes.items():
-        model = Mixture.from_parameters([0.5, 0.5], means, cov, covariance=covariance,
-                                        schedule=StepSchedule().resolved(100))
-        model, _ = model.learn(X)
-        model.score(X)
-        model.em_step(X)
-    return True

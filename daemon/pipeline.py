@@ -53,7 +53,7 @@ from shoal.core import (
     initialise,
     select_n_components,
 )
-from shoal.core import fused
+from shoal.core import kernel_check
 from shoal.daemon.digest import digest_file
 from shoal.daemon.errors import (
     InputRefused,
@@ -201,7 +201,7 @@ class Pipeline:
         self.rows_skipped = 0           # since start, for the metrics
         # the compiled scoring kernels checked once (milliseconds) at start-up rather
         # than failing inside the first input
-        fused.warm()
+        kernel_check.warm()
         if settings.drift.enabled or settings.lifecycle.enabled:
             # loaded now (with scipy.special and scipy.linalg, ~0.2-0.6 s) rather than
             # inside the first input's processing time
