@@ -1,9 +1,9 @@
 """The ``shoal`` command line. Errors become exit codes here and nowhere else.
 
-Exit codes: 0 done; 1 an input was quarantined (ingest) or a model error;
-2 usage or configuration error; 3 the state cannot be used; 4 the Dask
-scheduler cannot be reached (backfill); 130 stopped by a signal before finishing
-(ingest, label, backfill).
+Exit codes: each error's ``exit_code``; the table is in :mod:`shoal.daemon.errors`
+(0 done; 1 an input was quarantined or a model error; 2 usage or configuration
+error; 3 the state cannot be used; 4 the Dask scheduler cannot be reached; 130
+stopped by a signal; 141 broken pipe).
 """
 from __future__ import annotations
 
@@ -340,13 +340,13 @@ def main(argv: list[str] | None = None) -> int:
         return int(args.func(args) or 0)
     except ConfigError as exc:
         print(f"shoal: configuration error: {exc}", file=sys.stderr)
-        return ConfigError.exit_code
+        return exc.exit_code
     except ServiceError as exc:
         print(f"shoal: {exc}", file=sys.stderr)
         return exc.exit_code
     except ShoalError as exc:  # the numeric core refused: a model problem
         print(f"shoal: model error: {exc}", file=sys.stderr)
-        return 1
+        return exc.exit_code
     except KeyboardInterrupt:
         return 130
     except BrokenPipeError:

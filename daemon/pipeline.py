@@ -49,6 +49,7 @@ from shoal.core import (
     Mixture,
     ModelError,
     NotEnoughDataError,
+    ShoalError,
     StepSchedule,
     initialise,
     select_n_components,
@@ -1076,8 +1077,9 @@ def _history(mixture: Mixture, extra: dict, drift: dict | None = None,
 
 
 # -- the read -> score -> learn -> labels loop -----------------------------------------
-class _Seen(Exception):
-    """The ledger (or the open group) already has an input of this content."""
+class _Seen(ShoalError):
+    """The ledger (or the open group) already has an input of this content (a signal
+    caught within the pipeline, never shown)."""
 
     def __init__(self, digest: str, done: list[LedgerEntry]):
         super().__init__(digest)
