@@ -130,3 +130,13 @@ def test_layers_import_downward_only():
         if part_of(dst) != part_of(src) and part_of(dst) not in ALLOWED[part_of(src)]
     )
     assert not broken, "\n".join(broken)
+
+
+def test_scripts_and_tests_import_without_sys_path_edits():
+    # the scripts are a package (run as `python -m scripts.NAME`); pytest puts the root
+    # on the path (pyproject's pythonpath)
+    edits = [f"{path.relative_to(ROOT)}:{n}"
+             for folder in ("scripts", "tests") for path in sorted((ROOT / folder).glob("*.py"))
+             for n, line in enumerate(path.read_text().splitlines(), 1)
+             if "sys.path" in line and path.name != Path(__file__).name]
+    assert not edits, edits
