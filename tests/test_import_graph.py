@@ -140,3 +140,15 @@ def test_scripts_and_tests_import_without_sys_path_edits():
              for n, line in enumerate(path.read_text().splitlines(), 1)
              if "sys.path" in line and path.name != Path(__file__).name]
     assert not edits, edits
+
+
+def test_core_reads_no_environment():
+    # the daemon reads the environment at start-up and tells core (fused.set_enabled)
+    reads = []
+    for name, path in module_files().items():
+        if path is None or part_of(name) != "core":
+            continue
+        for node in ast.walk(ast.parse(path.read_text(), str(path))):
+            if isinstance(node, ast.Attribute) and node.attr in ("environ", "getenv", "environb"):
+                reads.append(f"{name}:{node.lineno}")
+    assert not reads, reads
