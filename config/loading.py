@@ -24,6 +24,7 @@ from typing import Any, Mapping
 import yaml
 
 from shoal.config.settings import SegmentCount, Settings
+from shoal.core.errors import ShoalError
 
 __all__ = [
     "ConfigError",
@@ -44,8 +45,9 @@ MAX_CONFIG_VALUES = 100_000      # scalars, lists and mappings, counted through 
 MAX_SECRET_BYTES = 64 << 10
 
 
-class ConfigError(ValueError):
-    """The configuration cannot be used. The message names the problem."""
+class ConfigError(ShoalError, ValueError):
+    """The configuration cannot be used. The message names the problem (a ``ValueError``
+    too, for callers that check values)."""
 
     exit_code = 2
 

@@ -11,6 +11,8 @@ from pathlib import Path
 from types import MappingProxyType
 from typing import Mapping
 
+from shoal.core.covariance import COVARIANCE_TYPES   # one list, the core's families
+
 __all__ = [
     "SegmentCount",
     "WatchSettings",
@@ -32,7 +34,6 @@ __all__ = [
     "TRANSFORM_NAMES",
 ]
 
-COVARIANCE_TYPES = ("full", "diag", "spherical")
 OUTPUT_FORMATS = ("parquet", "csv")
 OVERLAP_MEASURES = ("hellinger", "bhattacharyya")
 LOG_LEVELS = ("debug", "info", "warning", "error")

@@ -25,7 +25,7 @@ import numpy as np
 
 from .errors import ModelError
 from . import fused
-from .mixture import BLOCK_ROWS, Mixture, Scores, _ScoreBuffer
+from .mixture import BLOCK_ROWS, Mixture, Scores, ScoreBuffer
 from .schedule import StepSchedule
 
 __all__ = ["PartitionStatistics", "keep_between", "round_weights", "partition_statistics",
@@ -98,7 +98,7 @@ def partition_statistics(mixture: Mixture, X, weights) -> tuple[PartitionStatist
     if weights.shape != (X.shape[0],):
         raise ModelError(f"weights should have shape ({X.shape[0]},), got {weights.shape}")
     n = X.shape[0]
-    out = _ScoreBuffer(n, mixture.n_components)
+    out = ScoreBuffer(n, mixture.n_components)
     if n and fused.enabled():
         total = mixture._fused_span(X, 0, n, out, True, weights, mixture.resp_floor)
     else:

@@ -1,14 +1,20 @@
-"""The error hierarchy shared by every part of shoal.
+"""The root of the error hierarchy shared by every part of shoal.
 
-The daemon subclasses :class:`ShoalError` for its own failures and maps the whole
-hierarchy to exit codes in one place.
+Every error the package raises on purpose derives from :class:`ShoalError`: the
+core's model errors here, the configuration's ``ConfigError``, and the service's
+errors (delivery and backfill included) in :mod:`shoal.daemon.errors`. Each class
+carries ``exit_code``, what the ``shoal`` command returns for it; the table of exit
+codes is in :mod:`shoal.daemon.errors`.
 """
 
 __all__ = ["ShoalError", "ModelError", "NotEnoughDataError", "IllConditionedError"]
 
 
 class ShoalError(Exception):
-    """Base class of every error shoal raises on purpose."""
+    """Base class of every error shoal raises on purpose; ``exit_code`` is what the
+    ``shoal`` command returns for it (1 unless a subclass says otherwise)."""
+
+    exit_code = 1
 
 
 class ModelError(ShoalError, ValueError):

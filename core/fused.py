@@ -13,14 +13,13 @@ AVX2 with FMA (picked by the CPU; elsewhere a BLAS GEMM and numpy's ``exp``); BL
 keeps the M-step SYRKs.
 
 The extension is built when shoal is installed (it needs a C compiler; the build is
-optional). Without it, or with ``SHOAL_COMPILED=0`` in the environment,
+optional). Without it, or once switched off with :func:`set_enabled` (the daemon does
+so at start-up when ``SHOAL_COMPILED=0`` is in its environment; core reads none),
 :func:`enabled` is false and the mixture keeps its numpy path, which gives the same
 results up to the order of floating-point operations (tests compare the two).
 """
 
 from __future__ import annotations
-
-import os
 
 __all__ = ["enabled", "set_enabled", "kernels", "tiled", "packed_full_len"]
 
@@ -31,13 +30,11 @@ def enabled() -> bool:
     """Whether the compiled kernels are in use (the extension built, not switched off)."""
     on = _STATE.get("on")
     if on is None:
-        on = os.environ.get("SHOAL_COMPILED", "1").strip().lower() not in (
-            "0", "false", "no", "off")
-        if on:
-            try:
-                kernels()
-            except ImportError:
-                on = False
+        try:
+            kernels()
+            on = True
+        except ImportError:
+            on = False
         _STATE["on"] = on
     return on
 
@@ -70,26 +67,3 @@ def packed_full_len(n_components: int, n_features: int) -> int:
     coordinates, four offsets and four weights for each feature below the block's end)."""
     return n_components * kernels().packed_len(n_features)
 
-
-def warm() -> bool:
-    """Run every compiled kernel once on a few synthetic rows (a self-check at start-up:
-    a broken build fails here, not inside the first input). Milliseconds. Returns
-    whether the compiled kernels are in use."""
-    if not enabled():
-        return False
-    import numpy as np
-
-    from .mixture import Mixture
-    from .schedule import StepSchedule
-
-    X = np.random.default_rng(0).normal(size=(64, 2))
-    means = np.array([[0.0, 0.0], [2.0, 2.0]])
-    shapes = {"full": np.stack([np.eye(2)] * 2), "diag": np.ones((2, 2)),
-              "spherical": np.ones(2)}
-    for covariance, cov in shapes.items():
-        model = Mixture.from_parameters([0.5, 0.5], means, cov, covariance=covariance,
-                                        schedule=StepSchedule().resolved(100))
-        model, _ = model.learn(X)
-        model.score(X)
-        model.em_step(X)
-    return True

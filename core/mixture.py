@@ -471,7 +471,7 @@ class Mixture:
             scored by the marginal over its observed features).
         """
         X = self._rows(X, check=not fused.enabled())
-        out = _ScoreBuffer(X.shape[0], self.n_components)
+        out = ScoreBuffer(X.shape[0], self.n_components)
         if fused.enabled():
             packed = None if _gaps is None else missing.pack(_gaps, self.covariance,
                                                               self.n_components)
@@ -492,7 +492,7 @@ class Mixture:
         that weight each, i.e. the batch E-step's statistics.
         """
         n = Z.shape[0]
-        out = _ScoreBuffer(n, self.n_components)
+        out = ScoreBuffer(n, self.n_components)
         if fused.enabled():
             if moments_weight is None:
                 self._fused_span(Z, 0, n, out, data_units=False)
@@ -632,7 +632,7 @@ class Mixture:
         """
         X = self._rows(X, check=not fused.enabled())
         n = X.shape[0]
-        out = _ScoreBuffer(n, self.n_components)
+        out = ScoreBuffer(n, self.n_components)
         jit = fused.enabled()
         rows = None if jit else _Standardiser(self.center, self.scale)
         model = self  # the parameters in force; replaced at refresh points only
@@ -699,7 +699,7 @@ class Mixture:
         rows = lo + gaps.rows
         Zf = (X[rows] - self.center) / self.scale
         L, aux = missing.gap_log_joint(self, Zf, gaps.mask, learn)
-        sub = _ScoreBuffer(rows.size, self.n_components)
+        sub = ScoreBuffer(rows.size, self.n_components)
         sub.resp_kn[:] = L
         self._normalise(sub.resp_kn, sub, 0, rows.size)
         out.put(rows, sub)
@@ -723,7 +723,7 @@ class Mixture:
         keep = np.ones(hi - lo, dtype=bool)
         keep[part.rows] = False
         at = np.flatnonzero(keep)
-        sub = _ScoreBuffer(at.size, self.n_components)
+        sub = ScoreBuffer(at.size, self.n_components)
         A = self._score_span(X[lo + at], 0, at.size, sub, self._scoring_operator, rows)
         stats = self._accumulate(A, sub.resp_kn, row_w[at])
         out.put(lo + at, sub)
@@ -751,7 +751,7 @@ class Mixture:
             log_density[complete] = out.log_density
         else:
             stats = (np.zeros_like(self.s0), np.zeros_like(self.s1), np.zeros_like(self.s2))
-        out = _ScoreBuffer(n, self.n_components)
+        out = ScoreBuffer(n, self.n_components)
         # in standardised units: the gap kernels add back log-scale terms of the missing
         # features that standardised rows do not carry
         unit = self._evolve(center=np.zeros_like(self.center), scale=np.ones_like(self.scale))
@@ -898,7 +898,7 @@ class _Standardiser:
         return z.reshape(X.shape)
 
 
-class _ScoreBuffer:
+class ScoreBuffer:
     """Preallocated outputs that blocks of rows are scored into."""
 
     __slots__ = ("resp_kn", "log_density", "component", "confidence")
@@ -909,7 +909,7 @@ class _ScoreBuffer:
         self.component = np.empty(n_samples, dtype=np.intp)
         self.confidence = np.empty(n_samples)
 
-    def put(self, rows, sub: "_ScoreBuffer") -> None:
+    def put(self, rows, sub: "ScoreBuffer") -> None:
         """The scores of ``sub`` into ``rows``."""
         self.resp_kn[:, rows] = sub.resp_kn
         self.log_density[rows] = sub.log_density

@@ -68,10 +68,10 @@ from shoal.daemon.contract import open_model_store
 from shoal.daemon.layout import Layout, StateLock, prepare_folders, remove_stale_temps
 from shoal.daemon.logs import log_event
 from shoal.daemon.pipeline import (
-    _UNUSUAL_MEMORY_ROWS,
+    UNUSUAL_MEMORY_ROWS,
     Pipeline,
-    _history,
-    _labels_metadata,
+    history_rows,
+    labels_metadata,
     open_input,
 )
 from shoal.daemon.progress import progress
@@ -337,7 +337,7 @@ def _write_labels(facts: FileFacts, settings: Settings, frame: Frame, segment, c
     if settings.output.segment_names:
         (table,) = with_segment_names([table], dict(names))
     target = Path(outbox) / labels_name(facts.name, facts.digest, fmt)
-    write_labels(table, target, fmt, _labels_metadata(facts.digest, facts.digest_algorithm,
+    write_labels(table, target, fmt, labels_metadata(facts.digest, facts.digest_algorithm,
                                                       facts.name, version))
     return target.name
 
@@ -671,7 +671,7 @@ class _Run:
                 extra = self._add_counts(extra, mixture, r.counts)
                 if below is not None:
                     n = r.stats.n_rows
-                    below += n / (n + _UNUSUAL_MEMORY_ROWS) * (r.log_density_quantile - below)
+                    below += n / (n + UNUSUAL_MEMORY_ROWS) * (r.log_density_quantile - below)
             log_event("backfill_round", logging.DEBUG, round=number, rows=rnd.stop - rnd.start,
                       pieces=len(rnd.pieces), refreshed=rnd.refresh, n_rows=rnd.stop,
                       duration=round(time.monotonic() - t, 4))
@@ -768,7 +768,7 @@ class _Run:
             extra = dict(extra, segment_born=born)
             arrays, meta = mixture.to_state()
             checkpoint = Checkpoint(version, arrays, meta, extra)
-            history = _history(mixture, extra)
+            history = history_rows(mixture, extra)
         return _commit_all(self.store, entries, checkpoint, history or [], clear_warmup,
                            self.schema)
 

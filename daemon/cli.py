@@ -1,9 +1,9 @@
 """The ``shoal`` command line. Errors become exit codes here and nowhere else.
 
-Exit codes: 0 done; 1 an input was quarantined (ingest) or a model error;
-2 usage or configuration error; 3 the state cannot be used; 4 the Dask
-scheduler cannot be reached (backfill); 130 stopped by a signal before finishing
-(ingest, label, backfill).
+Exit codes: each error's ``exit_code``; the table is in :mod:`shoal.daemon.errors`
+(0 done; 1 an input was quarantined or a model error; 2 usage or configuration
+error; 3 the state cannot be used; 4 the Dask scheduler cannot be reached; 130
+stopped by a signal; 141 broken pipe).
 """
 from __future__ import annotations
 
@@ -40,6 +40,7 @@ from shoal.config import ConfigError, Settings, dump_settings, load_config  # no
 from shoal.core import ShoalError  # noqa: E402
 from shoal.daemon.alert_commands import add_alert_commands, alert_delivery  # noqa: E402
 from shoal.daemon.backfill import add_backfill_command  # noqa: E402
+from shoal.daemon.compiled_switch import apply_environment  # noqa: E402
 from shoal.daemon.errors import InputRejected, ServiceError, UsageError  # noqa: E402
 from shoal.daemon.contract import check_model_contract, open_model_store  # noqa: E402
 from shoal.daemon.layout import (  # noqa: E402
@@ -326,6 +327,7 @@ def _cmd_demo(args) -> int:
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)  # usage errors: argparse prints and exits 2
+    apply_environment()   # SHOAL_COMPILED=0: core's numpy path (shoal.daemon.compiled_switch)
     tune_allocator()   # frames' buffers reused, not fresh pages each (shoal.daemon.allocator)
     # The ~50,000 objects of the imports (modules, functions, classes) live as long as the
     # process: moved out of the cyclic collector's view, a full collection no longer
@@ -338,13 +340,13 @@ def main(argv: list[str] | None = None) -> int:
         return int(args.func(args) or 0)
     except ConfigError as exc:
         print(f"shoal: configuration error: {exc}", file=sys.stderr)
-        return ConfigError.exit_code
+        return exc.exit_code
     except ServiceError as exc:
         print(f"shoal: {exc}", file=sys.stderr)
         return exc.exit_code
     except ShoalError as exc:  # the numeric core refused: a model problem
         print(f"shoal: model error: {exc}", file=sys.stderr)
-        return 1
+        return exc.exit_code
     except KeyboardInterrupt:
         return 130
     except BrokenPipeError:

@@ -53,6 +53,7 @@ from pathlib import Path
 
 from shoal.config import ConfigError, Settings, read_secret_file
 from shoal.config.settings import WebhookSettings
+from shoal.daemon.errors import ServiceError
 from shoal.daemon.logs import log_event
 from shoal.daemon.store import StateStore
 
@@ -152,8 +153,8 @@ def _user_agent() -> str:
         return "shoal"
 
 
-class DeliveryFailed(Exception):
-    pass
+class DeliveryFailed(ServiceError):
+    """A sink did not take a notification (kept in the outbox and retried)."""
 
 
 class _FileSink:

@@ -1,8 +1,18 @@
-"""The service's errors. ``main()`` turns them into exit codes in one place.
+"""The service's errors, and the one table of the ``shoal`` command's exit codes.
 
-Exit codes: 0 success; 1 some input was quarantined, or a model error;
-2 usage or configuration error (:class:`shoal.config.ConfigError`);
-3 the state store cannot be used; 130 stopped by a signal before finishing.
+Every error derives from :class:`shoal.core.errors.ShoalError` and carries
+``exit_code``; ``main()`` (:mod:`shoal.daemon.cli`) returns it, and nothing else
+chooses an exit code. The table (a test keeps it and the classes in step):
+
+- 0: done.
+- 1: an input was quarantined (ingest), a model error, or another service failure
+  (ShoalError, ModelError, ServiceError, BackfillError).
+- 2: usage or configuration error (UsageError, ConfigError; argparse's usage errors).
+- 3: the state folder or store cannot be used (StateError).
+- 4: the Dask scheduler cannot be reached, or Dask is not installed (ClusterUnavailable,
+  backfill).
+- 130: stopped by a signal before finishing (Interrupted; ingest, label, backfill).
+- 141: the reader of the output went away (a broken pipe, as SIGPIPE would end it).
 """
 from __future__ import annotations
 

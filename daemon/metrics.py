@@ -26,7 +26,7 @@ from prometheus_client.registry import Collector
 
 from shoal.daemon.readout import StateReader, open_alerts, read_alerts
 from shoal.daemon.quarantine_commands import quarantine_summary
-from shoal.daemon.retention import compacted_notifications, compacted_totals
+from shoal.daemon.compacted import compacted_notifications, compacted_totals
 
 __all__ = ["LedgerCollector", "build_registry", "render_metrics", "PROCESSING_BUCKETS"]
 

@@ -49,11 +49,12 @@ from shoal.core import (
     Mixture,
     ModelError,
     NotEnoughDataError,
+    ShoalError,
     StepSchedule,
     initialise,
     select_n_components,
 )
-from shoal.core import fused
+from shoal.core import kernel_check
 from shoal.daemon.digest import digest_file
 from shoal.daemon.errors import (
     InputRefused,
@@ -101,12 +102,13 @@ if TYPE_CHECKING:
     from shoal.daemon.monitor import DriftMonitor, InputWatch
     from shoal.daemon.segment_life import LifeWatch
 
-__all__ = ["Pipeline", "Result", "ModelState", "open_input"]
+__all__ = ["Pipeline", "Result", "ModelState", "open_input", "labels_metadata", "history_rows",
+           "UNUSUAL_MEMORY_ROWS"]
 
 # A learned input moves the unusual-row threshold this far towards its own quantile:
-# weight n / (n + _UNUSUAL_MEMORY_ROWS), i.e. the threshold follows roughly the last
-# _UNUSUAL_MEMORY_ROWS rows.
-_UNUSUAL_MEMORY_ROWS = 50_000
+# weight n / (n + UNUSUAL_MEMORY_ROWS), i.e. the threshold follows roughly the last
+# UNUSUAL_MEMORY_ROWS rows.
+UNUSUAL_MEMORY_ROWS = 50_000
 # Inputs from this size on are hashed, read, learned and written by overlapping threads;
 # smaller ones in the worker's thread (starting a thread can take a few ms: a switch
 # interval of the interpreter lock).
@@ -201,7 +203,7 @@ class Pipeline:
         self.rows_skipped = 0           # since start, for the metrics
         # the compiled scoring kernels checked once (milliseconds) at start-up rather
         # than failing inside the first input
-        fused.warm()
+        kernel_check.warm()
         if settings.drift.enabled or settings.lifecycle.enabled:
             # loaded now (with scipy.special and scipy.linalg, ~0.2-0.6 s) rather than
             # inside the first input's processing time
@@ -565,7 +567,7 @@ class Pipeline:
         def metadata() -> dict:
             if claim is not None:
                 digest[0] = claim()
-            return _labels_metadata(digest[0], algorithm, entry.name, version())
+            return labels_metadata(digest[0], algorithm, entry.name, version())
 
         def checked(frames):
             for table in self._named(tables(frames)):
@@ -676,7 +678,7 @@ class Pipeline:
             arrays, meta = mixture.to_state()
             meta = transforming.to_meta(meta, run.transforms)
             checkpoint = Checkpoint(version, arrays, meta, extra)
-            history = _history(mixture, extra,
+            history = history_rows(mixture, extra,
                                watch.segment_drift() if watch is not None else None,
                                run.transforms)
             if life is not None:
@@ -923,7 +925,7 @@ class Pipeline:
         q = self.settings.output.unusual_quantile
         if len(scores.log_density) and "unusual_below" in extra:
             unusual = Unusual.from_extra(extra).follow(
-                scores.log_density, observed, mixture.n_features, q, _UNUSUAL_MEMORY_ROWS,
+                scores.log_density, observed, mixture.n_features, q, UNUSUAL_MEMORY_ROWS,
                 linear_quantile)
             extra = unusual.to_extra(extra)
         return extra
@@ -1000,7 +1002,7 @@ class Pipeline:
                 tables = self._named(_scored_tables(
                     count.counted(frames, st.mixture, self._floor()), st.mixture,
                     Unusual.from_extra(st.extra), st.version))
-                write_labels_stream(tables, out, fmt, lambda: _labels_metadata(
+                write_labels_stream(tables, out, fmt, lambda: labels_metadata(
                     digest, algorithm, display_name(path.name), st.version),
                     threaded=frames.threaded)
         return Result("labelled", display_name(path.name), count.rows, count.invalid, out,
@@ -1043,7 +1045,7 @@ def linear_quantile(x: np.ndarray, q: float) -> float:
     return b - d * (1.0 - t) if t >= 0.5 else a + d * t
 
 
-def _labels_metadata(digest: str, algorithm: str, name: str, version: int | None) -> dict:
+def labels_metadata(digest: str, algorithm: str, name: str, version: int | None) -> dict:
     """The ``shoal.*`` keys of a labels file's metadata."""
     return {"input_digest": digest, "digest_algorithm": algorithm, "input_name": name,
             "model_version": version, "labels_schema_version": LABELS_SCHEMA_VERSION}
@@ -1065,8 +1067,9 @@ def _concat(*parts):
                           for name in first.__dataclass_fields__})
 
 
-def _history(mixture: Mixture, extra: dict, drift: dict | None = None,
-             transforms: FeatureTransforms | None = None) -> list[HistoryRow]:
+def history_rows(mixture: Mixture, extra: dict, drift: dict | None = None,
+                 transforms: FeatureTransforms | None = None) -> list[HistoryRow]:
+    """The per-segment history rows of a model version (in the data's units)."""
     means, stds = transforming.history_units(transforms, mixture.data_means(),
                                              mixture.data_stds())
     counts = extra.get("segment_rows", {})
@@ -1078,8 +1081,9 @@ def _history(mixture: Mixture, extra: dict, drift: dict | None = None,
 
 
 # -- the read -> score -> learn -> labels loop -----------------------------------------
-class _Seen(Exception):
-    """The ledger (or the open group) already has an input of this content."""
+class _Seen(ShoalError):
+    """The ledger (or the open group) already has an input of this content (a signal
+    caught within the pipeline, never shown)."""
 
     def __init__(self, digest: str, done: list[LedgerEntry]):
         super().__init__(digest)

@@ -22,7 +22,7 @@ from shoal.daemon.gate import ReadinessGate
 from shoal.daemon.layout import Layout
 from shoal.daemon.liveness import service_state
 from shoal.daemon.quarantine_commands import quarantine_summary
-from shoal.daemon.retention import compacted_totals
+from shoal.daemon.compacted import compacted_totals
 from shoal.daemon.store import Checkpoint, StateStore
 from shoal.daemon.store_words import (
     extra_in_current_words,

@@ -36,7 +36,7 @@ from shoal.daemon.progress import progress
 from shoal.daemon.readers import read_input
 from shoal.daemon.readout import StateReader, read_alerts, state_snapshot
 from shoal.daemon.transforming import centres, from_meta
-from shoal.daemon.retention import compacted_totals
+from shoal.daemon.compacted import compacted_totals
 from shoal.daemon.segment_names import segment_names
 from shoal.daemon.timeline import Axis, axis_events, build_axis, parse_bound
 from shoal.daemon.summary import format_differences

@@ -36,6 +36,12 @@ from pathlib import Path
 from typing import Any, Callable
 
 from shoal.config import Settings
+from shoal.daemon.compacted import (
+    COMPACTED_KEY,
+    COMPACTED_NOTIFICATIONS_KEY,
+    compacted_notifications,
+    compacted_totals,
+)
 from shoal.daemon.layout import Layout
 from shoal.daemon.logs import log_event
 
@@ -43,8 +49,6 @@ __all__ = ["Plan", "make_plan", "apply_plan", "RetentionKeeper", "compacted_tota
            "compacted_notifications", "COMPACTED_KEY", "COMPACTED_NOTIFICATIONS_KEY",
            "add_prune_command"]
 
-COMPACTED_KEY = "compacted_ledger"
-COMPACTED_NOTIFICATIONS_KEY = "compacted_notifications"
 _DAY = 86400.0
 _OPEN_STATUSES = ("raised", "raised")
 
@@ -240,19 +244,6 @@ def _state_rows(plan: Plan, settings: Settings, layout: Layout, db, now: float) 
         if created < cutoff and delivered is not None and \
                 latest[str(p.get("id"))] not in _OPEN_STATUSES:
             plan.notification_ids.append(id_)
-
-
-def compacted_totals(db) -> dict[str, dict[str, int]]:
-    """Ledger totals of the rows removed so far, per outcome."""
-    row = db.execute("SELECT value FROM meta WHERE key = ?", (COMPACTED_KEY,)).fetchone()
-    return json.loads(row[0]) if row else {}
-
-
-def compacted_notifications(db) -> dict[str, int]:
-    """Alert notifications removed so far, per 'status/severity'."""
-    row = db.execute("SELECT value FROM meta WHERE key = ?",
-                     (COMPACTED_NOTIFICATIONS_KEY,)).fetchone()
-    return json.loads(row[0]) if row else {}
 
 
 def make_plan(settings: Settings, layout: Layout, db, now: float | None = None) -> Plan:

@@ -3,14 +3,10 @@
 from __future__ import annotations
 
 import argparse
-import sys
 import time
 import warnings
-from pathlib import Path
 
 import numpy as np
-
-sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from shoal.core import Mixture, StepSchedule, batch_em, initialise  # noqa: E402
 
@@ -197,7 +193,7 @@ def accuracy_run(n_rows=1_000_000, warmup=20_000):
 
 
 def latency_table():
-    from bench_latency import bench_latency
+    from scripts.bench_latency import bench_latency
 
     print("\nLatency: a 1,000-row drop renamed into a watched inbox until its labels file exists"
           " (100 drops, real `shoal watch` process)")
@@ -227,6 +223,10 @@ def main(argv=None):
     args = parser.parse_args(argv)
     from contextlib import nullcontext
 
+    from shoal.daemon.compiled_switch import apply_environment
+
+    apply_environment()   # SHOAL_COMPILED=0 benches the numpy path, as `shoal` would run
+
     try:
         from threadpoolctl import threadpool_info, threadpool_limits
 
@@ -246,11 +246,11 @@ def main(argv=None):
         if args.all or args.latency:
             latency_table()
         if args.all or args.backfill:
-            from bench_backfill import backfill_table
+            from scripts.bench_backfill import backfill_table
 
             backfill_table()
         if args.all or args.e2e:
-            from bench_e2e import e2e_table
+            from scripts.bench_e2e import e2e_table
 
             e2e_table()
     return 0

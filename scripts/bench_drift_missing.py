@@ -5,22 +5,19 @@ nothing.
 
 Seeded synthetic mixture (K=6, D=5, scripts/bench_drift.py's generator) through the real
 pipeline with the default settings, Parquet drops of 10,000 rows with nulls.
-Usage: ``.venv/bin/python scripts/bench_drift_missing.py [--stationary-rows N]``.
+Usage: ``.venv/bin/python -m scripts.bench_drift_missing [--stationary-rows N]``.
 """
 from __future__ import annotations
 
 import argparse
-import sys
 import tempfile
 from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-
-from bench_drift import CHANGE_ROW, first, rows, run, truth  # noqa: E402
-from missing_recovery import mar  # noqa: E402
-from shoal.daemon.logs import setup_logging  # noqa: E402
+from scripts.bench_drift import CHANGE_ROW, first, rows, run, truth
+from scripts.missing_recovery import mar
+from shoal.daemon.logs import setup_logging
 
 
 def main() -> None:

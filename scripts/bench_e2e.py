@@ -38,9 +38,7 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import yaml
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-
-from bench import BATCH, best_of  # noqa: E402
+from scripts.bench import BATCH, best_of
 
 N_FEATURES, N_COMPONENTS = 16, 8
 FEATURES = [f"x{j:02d}" for j in range(N_FEATURES)]

@@ -2,25 +2,22 @@
 a doubled median found; with the rate of the transformed pipeline against the same
 pipeline fed the logged rows (the anchor, same run).
 
-Seeded invented stream (``tests/_lognormal.py``: K=3 log-normal components, D=4,
+Seeded invented stream (``scripts/lognormal.py``: K=3 log-normal components, D=4,
 sdlog 0.6-1.0), fed as Parquet drops of 50,000 rows through the real pipeline in a
 temporary folder with the shipped defaults. Prints tables; asserts nothing.
-Usage: ``python scripts/bench_transforms.py [--stationary-rows N]``.
+Usage: ``python -m scripts.bench_transforms [--stationary-rows N]``.
 """
 from __future__ import annotations
 
 import argparse
-import sys
 import tempfile
 import time
 from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
-
-from _lognormal import FEATURES, Stream, log_rows, truth  # noqa: E402
-from shoal.daemon.logs import setup_logging  # noqa: E402
+from scripts.lognormal import FEATURES, Stream, log_rows, truth
+from shoal.daemon.logs import setup_logging
 
 LOG = {"transforms": {f: "log" for f in FEATURES}}
 WARMUP = 2000

@@ -5,6 +5,12 @@ import threading
 import numpy as np
 import pytest
 
+from shoal.daemon.compiled_switch import apply_environment
+
+# SHOAL_COMPILED=0 in the environment runs the suite on core's numpy path, as it does the
+# `shoal` command (core reads no environment; the daemon's start-up switch does).
+apply_environment()
+
 
 def make_mixture_data(n_rows, n_components, n_features, *, seed, spread=4.0, cond=0.3):
     """Rows from a seeded random full-covariance Gaussian mixture (synthetic test data).

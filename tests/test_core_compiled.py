@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from scipy.linalg import cho_factor
 
-from shoal.core import IllConditionedError, Mixture, fused, initialise
+from shoal.core import IllConditionedError, Mixture, fused, initialise, kernel_check
 from shoal.core.covariance import FAMILIES
 
 pytestmark = pytest.mark.skipif(not fused.enabled(),
@@ -105,7 +105,8 @@ def test_compiled_factor_reports_what_lapack_refuses():
 
 
 def test_shoal_compiled_0_switches_the_kernels_off():
-    code = "from shoal.core import fused; print(fused.enabled())"
+    code = ("from shoal.daemon.compiled_switch import apply_environment; apply_environment(); "
+            "from shoal.core import fused; print(fused.enabled())")
     env = dict(os.environ, SHOAL_COMPILED="0")
     off = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
                          text=True, timeout=120)
@@ -113,11 +114,21 @@ def test_shoal_compiled_0_switches_the_kernels_off():
     assert off.stdout.strip() == "False"
 
 
+def test_core_reads_no_environment():
+    # the switch is the daemon's: core alone keeps the compiled path it has built
+    code = "from shoal.core import fused; print(fused.enabled())"
+    env = dict(os.environ, SHOAL_COMPILED="0")
+    on = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
+                        text=True, timeout=120)
+    assert on.returncode == 0, on.stderr
+    assert on.stdout.strip() == "True"
+
+
 def test_warm_compiles_on_the_compiled_path_only():
-    assert fused.warm() is True
+    assert kernel_check.warm() is True
     try:
         fused.set_enabled(False)
-        assert fused.warm() is False
+        assert kernel_check.warm() is False
     finally:
         fused.set_enabled(True)
 

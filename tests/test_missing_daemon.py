@@ -104,10 +104,7 @@ def test_recovery_from_missing_values_against_the_complete_data_fit():
     # scripts/missing_recovery.py at a quarter of its size: K=4, D=6, 100,000 rows, 20%
     # of values missing; reference scikit-learn GaussianMixture on the rows complete,
     # components matched by scipy.optimize.linear_sum_assignment
-    import sys
-    from pathlib import Path
-    sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "scripts"))
-    from missing_recovery import run
+    from scripts.missing_recovery import run
 
     r = run(100_000, out=lambda *a: None)
     mean_err, sd_err, gap = r[("MCAR", "EM with missing data")]

@@ -6,7 +6,7 @@ import pytest
 import yaml
 from sklearn.metrics import adjusted_rand_score   # a test reference only
 
-from _lognormal import FEATURES, K, Stream, log_rows, truth
+from scripts.lognormal import FEATURES, K, Stream, log_rows, truth
 from shoal.daemon.summary import format_segments, segment_summary
 from shoal.daemon.transform_commands import format_suggestions, suggest_one
 

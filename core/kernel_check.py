@@ -1,0 +1,35 @@
+"""A self-check of the compiled kernels at start-up, over the mixture itself.
+
+It lives apart from :mod:`shoal.core.fused` because it drives a
+:class:`~shoal.core.mixture.Mixture`, which imports ``fused``: kept here, the two
+modules do not import each other.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from . import fused
+from .mixture import Mixture
+from .schedule import StepSchedule
+
+__all__ = ["warm"]
+
+
+def warm() -> bool:
+    """Run every compiled kernel once on a few synthetic rows (a self-check at start-up:
+    a broken build fails here, not inside the first input). Milliseconds. Returns
+    whether the compiled kernels are in use."""
+    if not fused.enabled():
+        return False
+    X = np.random.default_rng(0).normal(size=(64, 2))
+    means = np.array([[0.0, 0.0], [2.0, 2.0]])
+    shapes = {"full": np.stack([np.eye(2)] * 2), "diag": np.ones((2, 2)),
+              "spherical": np.ones(2)}
+    for covariance, cov in shapes.items():
+        model = Mixture.from_parameters([0.5, 0.5], means, cov, covariance=covariance,
+                                        schedule=StepSchedule().resolved(100))
+        model, _ = model.learn(X)
+        model.score(X)
+        model.em_step(X)
+    return True
