@@ -15,6 +15,7 @@ from .covariance import COVARIANCE_TYPES, FAMILIES
 from .errors import ModelError, NotEnoughDataError
 from .mixture import Mixture
 from .schedule import StepSchedule
+from .split_screen import hard_split_gain
 
 __all__ = ["kmeans_plus_plus", "batch_em", "initialise", "select_n_components", "bic"]
 
@@ -257,12 +258,11 @@ def _split_merge_check(Z, template, best, best_ll, rng, *, max_iter, tol,
     Restarts from k-means++ seeds can all put two seeds in one group and none in
     another; EM then keeps one component over two groups and two over one. Here the
     split candidate is the component whose rows a cut along a main axis explains best
-    (the BIC gain of :func:`shoal.core.lifecycle._hard_split_gain`; only a positive
+    (the BIC gain of :func:`shoal.core.split_screen.hard_split_gain`; only a positive
     gain is tried), and the merge candidates are the pairs whose responsibilities overlap most
     (Ueda et al.'s ``J_merge``, the cosine of the two responsibility vectors). The new
     labels start a batch EM run like a restart's.
     """
-    from .lifecycle import _hard_split_gain   # lifecycle imports this module's siblings
 
     k = best.n_components
     if k < 3:
@@ -270,7 +270,7 @@ def _split_merge_check(Z, template, best, best_ll, rng, *, max_iter, tol,
     for _ in range(rounds):
         scores = best.score(Z)
         labels, resp = scores.component, scores.resp
-        gains = np.array([_hard_split_gain(Z[labels == j], rng) if np.sum(labels == j) > 2 * (
+        gains = np.array([hard_split_gain(Z[labels == j], rng) if np.sum(labels == j) > 2 * (
             Z.shape[1] + 2) else -np.inf for j in range(k)])
         split = int(np.argmax(gains))
         if not gains[split] > 0.0:

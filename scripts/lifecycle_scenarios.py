@@ -20,7 +20,7 @@ lumped      the model starts from the core's warm-up fit with one component fewe
             rows until the segment over two components splits, and how far the two
             parts end from the true means (Mahalanobis, true covariances)
 
-Usage: ``python scripts/lifecycle_scenarios.py [--kind vanish] [--seeds 20]``.
+Usage: ``python -m scripts.lifecycle_scenarios [--kind vanish] [--seeds 20]`` (from the repository root).
 Prints a table; asserts nothing.
 """
 from __future__ import annotations
@@ -31,9 +31,9 @@ import tempfile
 import time
 from pathlib import Path
 
-sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
+from scripts.tests_support import load  # noqa: E402
 
-import _scenarios  # noqa: E402
+_scenarios = load("_scenarios")
 
 
 def _vanish(seeds, folder):

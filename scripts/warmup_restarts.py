@@ -7,7 +7,7 @@ with ``sklearn.mixture.GaussianMixture(n_init=20, max_iter=500, tol=1e-6)`` as t
 reference, and prints the mean log-likelihood per row of each and their difference.
 The target: within 0.01 nats/row of the reference in at least 99% of seeds.
 
-Usage: ``python scripts/warmup_restarts.py [--seeds 200] [--first-seed 0]``. Prints a
+Usage: ``python -m scripts.warmup_restarts [--seeds 200] [--first-seed 0]`` (from the repository root). Prints a
 table; asserts nothing.
 """
 from __future__ import annotations
@@ -20,9 +20,9 @@ from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
+from scripts.tests_support import load  # noqa: E402
 
-from _scenarios import warmup_gap  # noqa: E402
+warmup_gap = load("_scenarios").warmup_gap
 
 
 def main(argv=None) -> int:
