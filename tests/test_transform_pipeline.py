@@ -10,13 +10,13 @@ import pyarrow.parquet as pq
 import pytest
 from scipy import stats
 
+import test_drift_alerts as drift_alerts
+
 from shoal.config import parse_config
 from shoal.core import Mixture
 from shoal.daemon import transforming
 from shoal.daemon.errors import UsageError
-from shoal.daemon.layout import prepare_folders
 from shoal.daemon.pipeline import Pipeline
-from shoal.daemon.store import StateStore
 
 FEATURES = ["dur_s", "temp_c"]
 SEED = 11
@@ -31,15 +31,13 @@ def _rows(rng, n, zeros=0.0):
     return np.column_stack([dur, temp])
 
 
-class Stream:
+class Stream(drift_alerts.Stream):
+    """The real pipeline on a fresh state folder (tests/test_drift_alerts.py), two
+    segments over FEATURES; :meth:`feed` keeps the labels of one drop."""
+
     def __init__(self, folder, **overrides):
-        self.folder = folder
-        self.settings = parse_config({"features": FEATURES, "segments": 2, "warmup_rows": 600,
-                                      "learning": {"n_init": 2}, **overrides}, folder)
-        self.layout = prepare_folders(self.settings)
-        self.store = StateStore(self.layout.db)
-        self.pipeline = Pipeline(self.settings, self.layout, self.store)
-        self.n = 0
+        super().__init__(folder, FEATURES, 2, warmup_rows=600, learning={"n_init": 2},
+                         **overrides)
 
     def feed(self, X):
         path = self.folder / f"drop-{self.n:05d}.parquet"
@@ -48,9 +46,6 @@ class Stream:
         r = self.pipeline.process(path, in_inbox=False)
         assert r.outcome == "committed", r
         return r, pq.read_table(r.labels)
-
-    def close(self):
-        self.store.close()
 
 
 @pytest.fixture
