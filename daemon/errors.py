@@ -1,7 +1,7 @@
 """The service's errors, and the one table of the ``shoal`` command's exit codes.
 
 Every error derives from :class:`shoal.core.errors.ShoalError` and carries
-``exit_code``; ``main()`` (:mod:`shoal.daemon.cli`) returns it, and nothing else
+``exit_code``; ``main()`` (:mod:`shoal.daemon.cli.main`) returns it, and nothing else
 chooses an exit code. The table (a test keeps it and the classes in step):
 
 - 0: done.

@@ -223,7 +223,7 @@ def main(argv=None):
     args = parser.parse_args(argv)
     from contextlib import nullcontext
 
-    from shoal.daemon.compiled_switch import apply_environment
+    from shoal.daemon.runtime.compiled_switch import apply_environment
 
     apply_environment()   # SHOAL_COMPILED=0 benches the numpy path, as `shoal` would run
 

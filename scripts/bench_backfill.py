@@ -65,9 +65,9 @@ def write_bench_config(folder: Path) -> Path:
 def single_process(config: Path, paths: list[Path]) -> float:
     """Seconds for one process to take every file through the service's pipeline."""
     from shoal.config import load_config
-    from shoal.daemon.layout import prepare_folders
-    from shoal.daemon.pipeline import Pipeline
-    from shoal.daemon.store import StateStore
+    from shoal.daemon.files.layout import prepare_folders
+    from shoal.daemon.ingest.pipeline import Pipeline
+    from shoal.daemon.state.store import StateStore
 
     settings = load_config(config)
     layout = prepare_folders(settings)
@@ -89,7 +89,7 @@ def backfill_table(n_rows: int = 10_000_000, n_files: int = 100, workers: int = 
     from distributed import Client, LocalCluster
 
     from shoal.config import load_config
-    from shoal.daemon.backfill import DEFAULT_ROUND_ROWS, backfill
+    from shoal.daemon.backfill.learn import DEFAULT_ROUND_ROWS, backfill
 
     round_rows = round_rows or DEFAULT_ROUND_ROWS
     with tempfile.TemporaryDirectory(dir=workdir) as tmp:

@@ -17,11 +17,11 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from shoal.config import parse_config
-from shoal.daemon.layout import prepare_folders
-from shoal.daemon.logs import setup_logging
-from shoal.daemon import monitor  # noqa: F401  (scipy.stats loaded before any timing)
-from shoal.daemon.pipeline import Pipeline
-from shoal.daemon.store import StateStore
+from shoal.daemon.files.layout import prepare_folders
+from shoal.daemon.runtime.logs import setup_logging
+from shoal.daemon.segments import monitor  # noqa: F401  (scipy.stats loaded before any timing)
+from shoal.daemon.ingest.pipeline import Pipeline
+from shoal.daemon.state.store import StateStore
 
 K, D = 6, 5
 FEATURES = [f"x{j}" for j in range(D)]

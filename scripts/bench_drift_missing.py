@@ -17,7 +17,7 @@ import numpy as np
 
 from scripts.bench_drift import CHANGE_ROW, first, rows, run, truth
 from scripts.missing_recovery import mar
-from shoal.daemon.logs import setup_logging
+from shoal.daemon.runtime.logs import setup_logging
 
 
 def main() -> None:

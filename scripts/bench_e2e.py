@@ -125,7 +125,7 @@ def _ingest(cfg: Path, drop: Path, lead: Path | None = None) -> dict:
     files = [str(lead), str(drop)] if lead is not None else [str(drop)]
     with open(log, "wb") as err:
         t0 = time.perf_counter()
-        proc = subprocess.Popen([sys.executable, "-m", "shoal.daemon.cli", "ingest", "-c",
+        proc = subprocess.Popen([sys.executable, "-m", "shoal.daemon.cli.main", "ingest", "-c",
                                  str(cfg), *files], stdout=subprocess.DEVNULL, stderr=err)
         peak = 0.0
         while proc.poll() is None:
@@ -235,9 +235,9 @@ def beside_reading(once, cfg: Path, drop: Path):
     import threading
 
     from shoal.config.loading import load_config
-    from shoal.daemon.digest import NEW_STORE_ALGORITHM, digest_file
+    from shoal.daemon.files.digest import NEW_STORE_ALGORITHM, digest_file
     from shoal.daemon.errors import Interrupted
-    from shoal.daemon.readers import iter_frames
+    from shoal.daemon.files.readers import iter_frames
 
     settings = load_config(cfg)
     stop = threading.Event()
@@ -346,18 +346,18 @@ def memory_table(tmp: Path, warm: Path, small: Path, rows: int, big_rows: int) -
 # (stage, module, owner, attribute): the time of the calls is charged to the stage, in
 # the thread that made them; nested calls of timed functions count once.
 STAGES = [
-    ("hash (BLAKE3 of the file)", "shoal.daemon.readers", "file_digest", "_run"),
-    ("frame build (float64 rows, checks)", "shoal.daemon.readers", None, "_frame"),
+    ("hash (BLAKE3 of the file)", "shoal.daemon.files.readers", "file_digest", "_run"),
+    ("frame build (float64 rows, checks)", "shoal.daemon.files.readers", None, "_frame"),
     ("model E+M (Mixture.learn)", "shoal.core.mixture", "Mixture", "learn"),
-    ("drift (window sums, evaluation)", "shoal.daemon.monitor", "InputWatch", "observe"),
-    ("lifecycle decision points", "shoal.daemon.segment_life", "LifeWatch", "at_boundary"),
-    ("lifecycle unexplained rows", "shoal.daemon.segment_life", "LifeWatch", "observe"),
-    ("far-row bound (model thread)", "shoal.daemon.pipeline", None, "_mark_beyond_model"),
-    ("labels tables", "shoal.daemon.pipeline", None, "_labels"),
+    ("drift (window sums, evaluation)", "shoal.daemon.segments.monitor", "InputWatch", "observe"),
+    ("lifecycle decision points", "shoal.daemon.segments.segment_life", "LifeWatch", "at_boundary"),
+    ("lifecycle unexplained rows", "shoal.daemon.segments.segment_life", "LifeWatch", "observe"),
+    ("far-row bound (model thread)", "shoal.daemon.ingest.pipeline", None, "_mark_beyond_model"),
+    ("labels tables", "shoal.daemon.ingest.pipeline", None, "_labels"),
     ("labels encode + write", "pyarrow.parquet", "ParquetWriter", "write_table"),
     ("labels encode + write", "pyarrow.parquet", "ParquetWriter", "close"),
-    ("unusual threshold, counts", "shoal.daemon.pipeline", "Pipeline", "_after_scoring"),
-    ("commit (one transaction)", "shoal.daemon.store", "StateStore", "commit_inputs"),
+    ("unusual threshold, counts", "shoal.daemon.ingest.pipeline", "Pipeline", "_after_scoring"),
+    ("commit (one transaction)", "shoal.daemon.state.store", "StateStore", "commit_inputs"),
 ]
 
 
@@ -390,7 +390,7 @@ def _stage_child(cfg: str, drop: str) -> int:
         target = importlib.import_module(module)
         target = getattr(target, owner) if owner else target
         setattr(target, attr, timed(getattr(target, attr), stage))
-    from shoal.daemon import pipeline
+    from shoal.daemon.ingest import pipeline
     frames = pipeline.iter_frames
 
     def reading(*a, **k):   # the reader thread's time outside the frame build
@@ -406,7 +406,7 @@ def _stage_child(cfg: str, drop: str) -> int:
                 total += time.thread_time() - t
             yield item
     pipeline.iter_frames = reading
-    from shoal.daemon.cli import main as shoal_main
+    from shoal.daemon.cli.main import main as shoal_main
 
     before = resource.getrusage(resource.RUSAGE_SELF)
     t0 = time.perf_counter()

@@ -18,11 +18,11 @@ import numpy as np
 def bench_latency(drops: int = 100, rows: int = 1000, seed: int = 0,
                   workdir: Path | None = None, fmt: str = "parquet") -> dict:
     """Seconds per drop (p50, p95, max) from rename into the inbox to labels file present."""
-    from shoal.daemon.digest import digest_file
-    from shoal.daemon.drills import (ServiceProcess, synthetic_table, wait_until, write_config,
+    from shoal.daemon.files.digest import digest_file
+    from shoal.daemon.demo.drills import (ServiceProcess, synthetic_table, wait_until, write_config,
                                      write_drop)
-    from shoal.daemon.readout import StateReader
-    from shoal.daemon.writer import labels_name
+    from shoal.daemon.state.readout import StateReader
+    from shoal.daemon.files.writer import labels_name
 
     with tempfile.TemporaryDirectory(prefix="shoal-bench-") as tmp:
         folder = Path(workdir or tmp)

@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from scripts.lognormal import FEATURES, Stream, log_rows, truth
-from shoal.daemon.logs import setup_logging
+from shoal.daemon.runtime.logs import setup_logging
 
 LOG = {"transforms": {f: "log" for f in FEATURES}}
 WARMUP = 2000

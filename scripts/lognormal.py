@@ -40,9 +40,9 @@ class Stream:
 
     def __init__(self, folder, features=FEATURES, **overrides):
         from shoal.config import parse_config
-        from shoal.daemon.layout import prepare_folders
-        from shoal.daemon.pipeline import Pipeline
-        from shoal.daemon.store import StateStore
+        from shoal.daemon.files.layout import prepare_folders
+        from shoal.daemon.ingest.pipeline import Pipeline
+        from shoal.daemon.state.store import StateStore
 
         folder.mkdir(parents=True, exist_ok=True)
         self.folder, self.features = folder, list(features)

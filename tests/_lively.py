@@ -2,8 +2,8 @@
 and clear drift alerts and retire a segment within 4,000 rows: tiny windows, no noise
 margin, a weight_change bound near the windows' own scatter, a segment retired when its
 share of recent rows stays under 20% for 2,500 rows."""
-from shoal.daemon.scenario import FEATURES, drops as scenario_drops
-from shoal.daemon.drills import write_drop
+from shoal.daemon.demo.scenario import FEATURES, drops as scenario_drops
+from shoal.daemon.demo.drills import write_drop
 
 import pyarrow as pa
 

@@ -10,11 +10,11 @@ from pathlib import Path
 
 import pyarrow as pa
 
-from shoal.daemon.drills import wait_until, write_config, write_drop
+from shoal.daemon.demo.drills import wait_until, write_config, write_drop
 
 
 def demo_config(folder: Path, **overrides) -> Path:
-    from shoal.daemon.scenario import FEATURES
+    from shoal.daemon.demo.scenario import FEATURES
 
     return write_config(folder, features=list(FEATURES), passthrough=["unit_id", "timestamp"],
                         segments=4, warmup_rows=2000, learning={"n_init": 2}, **overrides)
@@ -22,7 +22,7 @@ def demo_config(folder: Path, **overrides) -> Path:
 
 def demo_drops(inbox: Path, n: int, rows: int, seed: int = 7, start: int = 0):
     """Write ``n`` drops of the warehouse scenario (seeded, invented data) into ``inbox``."""
-    from shoal.daemon.scenario import drops
+    from shoal.daemon.demo.scenario import drops
 
     names = []
     for i, columns in enumerate(drops(start + n, rows, seed=seed)):
@@ -36,13 +36,13 @@ def demo_drops(inbox: Path, n: int, rows: int, seed: int = 7, start: int = 0):
 
 
 class Watch:
-    """`python -m shoal.daemon.cli watch -c CONFIG`, stderr (JSON log) to a file."""
+    """`python -m shoal.daemon.cli.main watch -c CONFIG`, stderr (JSON log) to a file."""
 
     def __init__(self, config: Path, log: Path, env: dict | None = None):
         self.log = Path(log)
         with open(self.log, "ab") as err:
             self.proc = subprocess.Popen(
-                [sys.executable, "-m", "shoal.daemon.cli", "watch", "-c", str(config)],
+                [sys.executable, "-m", "shoal.daemon.cli.main", "watch", "-c", str(config)],
                 stdout=subprocess.DEVNULL, stderr=err, stdin=subprocess.DEVNULL,
                 env={**os.environ, **(env or {})})
 
@@ -111,7 +111,7 @@ def parquet_drops(folder: Path, first: int, n: int, seed: int, rows: int = 400) 
     """Synthetic drops ``d<first>.parquet`` .. written into ``folder`` (not an inbox)."""
     import pyarrow.parquet as pq
 
-    from shoal.daemon.drills import synthetic_table
+    from shoal.daemon.demo.drills import synthetic_table
 
     paths = []
     for i in range(first, first + n):

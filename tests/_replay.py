@@ -9,11 +9,11 @@ import pyarrow as pa
 
 from _ops import demo_config
 from shoal.config import load_config
-from shoal.daemon.drills import write_drop
-from shoal.daemon.layout import prepare_folders
-from shoal.daemon.pipeline import Pipeline
-from shoal.daemon.scenario import demo_changes, drops
-from shoal.daemon.store import StateStore
+from shoal.daemon.demo.drills import write_drop
+from shoal.daemon.files.layout import prepare_folders
+from shoal.daemon.ingest.pipeline import Pipeline
+from shoal.daemon.demo.scenario import demo_changes, drops
+from shoal.daemon.state.store import StateStore
 
 DAYS = 30
 ROWS = 400

@@ -1,5 +1,5 @@
 """A state store as shoal wrote it before schema version 2: the version-1 schema (a copy of
-the DDL of daemon/store.py at schema version 1, when the ledger's content column was
+the DDL of daemon/state/store.py at schema version 1, when the ledger's content column was
 ``sha256`` and the store recorded no digest algorithm), with inputs committed into the
 warm-up buffer as a version-1 shoal committed them, their digests SHA-256 (hashlib)."""
 import hashlib

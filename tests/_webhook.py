@@ -20,7 +20,7 @@ import time
 
 import pytest
 
-from shoal.daemon.logs import setup_logging
+from shoal.daemon.runtime.logs import setup_logging
 
 TOLERANCE_SECONDS = 5 * 60
 

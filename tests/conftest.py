@@ -5,7 +5,7 @@ import threading
 import numpy as np
 import pytest
 
-from shoal.daemon.compiled_switch import apply_environment
+from shoal.daemon.runtime.compiled_switch import apply_environment
 
 # SHOAL_COMPILED=0 in the environment runs the suite on core's numpy path, as it does the
 # `shoal` command (core reads no environment; the daemon's start-up switch does).

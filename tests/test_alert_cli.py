@@ -15,10 +15,10 @@ import pyarrow.parquet as pq
 import pytest
 import yaml
 
-from shoal.daemon import scenario
-from shoal.daemon.alert_commands import replay_settings
-from shoal.daemon.demo import DEMO_CONFIG
-from shoal.daemon.drills import write_drop
+from shoal.daemon.demo import scenario
+from shoal.daemon.cli.alert_commands import replay_settings
+from shoal.daemon.demo.command import DEMO_CONFIG
+from shoal.daemon.demo.drills import write_drop
 from shoal.daemon.errors import UsageError
 
 N_FILES, ROWS = 40, 4000      # the demo's defaults
@@ -27,7 +27,7 @@ DRIFT, NEW_STATE = scenario.demo_changes(TOTAL)
 
 
 def shoal(*args, timeout=300):
-    return subprocess.run([sys.executable, "-m", "shoal.daemon.cli", *map(str, args)],
+    return subprocess.run([sys.executable, "-m", "shoal.daemon.cli.main", *map(str, args)],
                           capture_output=True, text=True, timeout=timeout)
 
 
@@ -199,7 +199,7 @@ def test_replay_counts_raised_cleared_and_segment_events_each_under_its_own_word
     import io
     import re
 
-    from shoal.daemon.alert_commands import replay
+    from shoal.daemon.cli.alert_commands import replay
 
     from _lively import LIVELY_CONFIG, lively_drops
 

@@ -2,7 +2,7 @@
 
 The receiver is ``http.server`` on 127.0.0.1, started by the test. Alerts come from
 the real pipeline (a group of rows moves); the sender is the one ``shoal watch`` and
-``shoal ingest`` run (:func:`shoal.daemon.alert_commands.alert_delivery`).
+``shoal ingest`` run (:func:`shoal.daemon.cli.alert_commands.alert_delivery`).
 """
 import dataclasses
 import json
@@ -13,11 +13,11 @@ import pyarrow.parquet as pq
 import pytest
 
 from shoal.config import load_config
-from shoal.daemon.alert_commands import alert_delivery
-from shoal.daemon.cli import open_service_parts
-from shoal.daemon.delivery import AlertSender
-from shoal.daemon.drills import wait_until, write_config
-from shoal.daemon.store import StateStore
+from shoal.daemon.cli.alert_commands import alert_delivery
+from shoal.daemon.cli.main import open_service_parts
+from shoal.daemon.alerts.delivery import AlertSender
+from shoal.daemon.demo.drills import wait_until, write_config
+from shoal.daemon.state.store import StateStore
 
 from _webhook import LoopbackReceiver, log, spec_verify  # noqa: F401 (log)
 

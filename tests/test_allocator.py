@@ -1,4 +1,4 @@
-"""The C allocator's thresholds (shoal.daemon.allocator): frame-sized buffers come from
+"""The C allocator's thresholds (shoal.daemon.runtime.allocator): frame-sized buffers come from
 malloc's arenas (reused from frame to frame), not from a fresh ``mmap`` each."""
 import os
 import subprocess
@@ -6,14 +6,14 @@ import sys
 
 import pytest
 
-from shoal.daemon.allocator import tune_allocator
+from shoal.daemon.runtime.allocator import tune_allocator
 
 # In a fresh interpreter: bytes glibc holds in separate mmaps (mallinfo2's hblkhd) while
 # a frame's 8 MiB feature matrix (65,536 rows x 16 features) is alive.
 _FRAME = r"""
 import ctypes, sys
 import numpy as np
-from shoal.daemon.allocator import tune_allocator
+from shoal.daemon.runtime.allocator import tune_allocator
 
 class Info(ctypes.Structure):
     _fields_ = [(n, ctypes.c_size_t) for n in ("arena", "ordblks", "smblks", "hblks",
@@ -59,7 +59,7 @@ def test_an_operators_malloc_tunables_are_left_alone(monkeypatch):
 # default purge delay (10 ms), as frames are; prints the page faults taken meanwhile.
 _ARROW_FRAMES = r"""
 import resource, sys, time
-import shoal.daemon.cli  # noqa: F401  (sets the allocator's environment)
+import shoal.daemon.cli.main  # noqa: F401  (sets the allocator's environment)
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -96,7 +96,7 @@ def test_the_command_line_moves_start_up_objects_out_of_the_collectors_view():
     """After ``main`` starts, the objects of the imports are frozen (gc.freeze), so a full
     collection during an input does not walk them."""
     script = ("import gc, sys\n"
-              "from shoal.daemon.cli import main\n"
+              "from shoal.daemon.cli.main import main\n"
               "before = gc.get_freeze_count()\n"
               "main(['config', '-c', sys.argv[1]])   # a configuration error\n"
               "print(before, gc.get_freeze_count(), len(gc.get_objects(generation=2)))\n")

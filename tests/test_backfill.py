@@ -24,9 +24,9 @@ from distributed import Client, LocalCluster, WorkerPlugin
 from _v1_store import write_v1_store
 from shoal.config import load_config
 from shoal.core import Mixture, StepSchedule, initialise
-from shoal.daemon.backfill import backfill, plan_rounds
-from shoal.daemon.drills import InProcessService, synthetic_table, write_config
-from shoal.daemon.store import StateStore
+from shoal.daemon.backfill.learn import backfill, plan_rounds
+from shoal.daemon.demo.drills import InProcessService, synthetic_table, write_config
+from shoal.daemon.state.store import StateStore
 
 SEED = 11            # seeds the synthetic drops
 ROWS = 500           # rows per history file
@@ -311,7 +311,7 @@ def test_unreachable_scheduler_is_a_clear_error(tmp_path):
     with socket.socket() as s:            # a port nobody listens on
         s.bind(("127.0.0.1", 0))
         port = s.getsockname()[1]
-    r = subprocess.run([sys.executable, "-m", "shoal.daemon.cli", "backfill", "-c", str(cfg),
+    r = subprocess.run([sys.executable, "-m", "shoal.daemon.cli.main", "backfill", "-c", str(cfg),
                         str(tmp_path / "history"), "--scheduler", f"tcp://127.0.0.1:{port}",
                         "--connect-timeout", "1"],
                        capture_output=True, text=True, timeout=TIMEOUT)
@@ -325,7 +325,7 @@ def test_rest_of_shoal_does_not_import_dask_and_a_missing_dask_says_what_to_inst
     cfg = write_config(tmp_path)
     script = (
         "import sys\n"
-        "import shoal.daemon.cli as cli\n"
+        "import shoal.daemon.cli.main as cli\n"
         "assert not {'dask', 'distributed'} & set(sys.modules), 'shoal imported dask'\n"
         "sys.modules['distributed'] = None   # as if shoal[cluster] were not installed\n"
         f"sys.exit(cli.main(['backfill', '-c', {str(cfg)!r}, {str(tmp_path / 'history')!r}]))\n")
@@ -377,7 +377,7 @@ def test_extra_passes_learn_the_history_again_and_label_from_the_last(tmp_path, 
 
 
 def test_backfill_labels_carry_segment_names_when_configured(tmp_path, client):
-    from shoal.daemon.segment_names import set_segment_name
+    from shoal.daemon.segments.segment_names import set_segment_name
 
     paths = make_history(tmp_path, 12)
     settings = load_config(write_config(tmp_path, output={"segment_names": True}))
@@ -396,7 +396,7 @@ def test_backfill_and_ingest_label_the_warm_up_rows_alike(tmp_path, client):
     """The same history through ``shoal ingest`` (one input after another, the warm-up
     inputs labelled once the first model exists) and ``shoal backfill``: the warm-up rows
     get the same segment and model version, and the other columns agree to rtol 1e-9."""
-    from shoal.daemon.cli import main
+    from shoal.daemon.cli.main import main
 
     paths = make_history(tmp_path, 4)
     settings = {}
@@ -427,7 +427,7 @@ def test_backfill_and_ingest_of_csv_history_write_one_labels_schema(tmp_path, cl
     import pyarrow.csv as pacsv
     import pyarrow.dataset as ds
 
-    from shoal.daemon.cli import main
+    from shoal.daemon.cli.main import main
 
     history = tmp_path / "history"
     history.mkdir()

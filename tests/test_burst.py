@@ -7,7 +7,7 @@ import sqlite3
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
-from shoal.daemon.drills import MTIME_BASE, InProcessService, synthetic_table
+from shoal.daemon.demo.drills import MTIME_BASE, InProcessService, synthetic_table
 
 SEED = 11
 N_FILES = 1000

@@ -10,8 +10,8 @@ import textwrap
 import pytest
 
 from shoal.config import ConfigError, load_config, read_secret_file
-from shoal.daemon.cli import main
-from shoal.daemon.drills import write_config
+from shoal.daemon.cli.main import main
+from shoal.daemon.demo.drills import write_config
 
 # The classic "billion laughs" inside one value: nine levels of ten aliases each, 10**9
 # strings once expanded, in a few hundred bytes (common practice as the test of an
@@ -62,7 +62,7 @@ def test_a_secret_file_that_is_a_device_a_fifo_or_huge_is_refused_without_blocki
                            (big, "expected at most 65536 bytes, found 1048576")):
         cfg = write_config(tmp_path, alerts={"webhooks": [
             {"url": "http://127.0.0.1:9/hook", "secret_file": str(secret)}]})
-        r = subprocess.run([sys.executable, "-m", "shoal.daemon.cli", "config", "-c",
+        r = subprocess.run([sys.executable, "-m", "shoal.daemon.cli.main", "config", "-c",
                             str(cfg)], capture_output=True, text=True, timeout=60)
         assert r.returncode == 2, (secret, r.stderr)
         assert f"alerts.webhooks[0].secret_file {str(secret)!r}: " in r.stderr
@@ -118,7 +118,7 @@ def test_the_config_file_itself_must_be_a_bounded_regular_file(tmp_path):
     for path, needle in (("/dev/zero", "expected a regular file, found a character device"),
                          (fifo, "expected a regular file, found a FIFO"),
                          (big, "expected at most 1048576 bytes, found 2097168")):
-        r = subprocess.run([sys.executable, "-m", "shoal.daemon.cli", "config", "-c",
+        r = subprocess.run([sys.executable, "-m", "shoal.daemon.cli.main", "config", "-c",
                             str(path)], capture_output=True, text=True, timeout=60,
                            preexec_fn=_limited_memory)
         assert r.returncode == 2 and needle in r.stderr, (path, r.stderr[-1000:])

@@ -17,15 +17,15 @@ import pytest
 
 from _v1_store import write_v1_store
 from shoal.config import load_config
-from shoal.daemon import pipeline as pipeline_module
-from shoal.daemon import store as store_module
-from shoal.daemon.cli import main, open_service_parts
-from shoal.daemon.digest import content_hasher, digest_file
-from shoal.daemon.drills import synthetic_table, write_config
+from shoal.daemon.ingest import pipeline as pipeline_module
+from shoal.daemon.state import store as store_module
+from shoal.daemon.cli.main import main, open_service_parts
+from shoal.daemon.files.digest import content_hasher, digest_file
+from shoal.daemon.demo.drills import synthetic_table, write_config
 from shoal.daemon.errors import StateError
-from shoal.daemon.layout import prepare_folders
-from shoal.daemon.readers import file_digest
-from shoal.daemon.store import SCHEMA_VERSION, StateStore
+from shoal.daemon.files.layout import prepare_folders
+from shoal.daemon.files.readers import file_digest
+from shoal.daemon.state.store import SCHEMA_VERSION, StateStore
 
 SEED = 5
 

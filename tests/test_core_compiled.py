@@ -105,7 +105,7 @@ def test_compiled_factor_reports_what_lapack_refuses():
 
 
 def test_shoal_compiled_0_switches_the_kernels_off():
-    code = ("from shoal.daemon.compiled_switch import apply_environment; apply_environment(); "
+    code = ("from shoal.daemon.runtime.compiled_switch import apply_environment; apply_environment(); "
             "from shoal.core import fused; print(fused.enabled())")
     env = dict(os.environ, SHOAL_COMPILED="0")
     off = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,

@@ -4,8 +4,8 @@ import json
 
 import pyarrow.parquet as pq
 
-from shoal.daemon.cli import main
-from shoal.daemon.drills import synthetic_table, write_config
+from shoal.daemon.cli.main import main
+from shoal.daemon.demo.drills import synthetic_table, write_config
 
 SEED = 23
 HEADER = "key,ts,f1,f2,f3"
@@ -97,7 +97,7 @@ def test_semicolons_decimal_commas_tabs_and_headerless_files(tmp_path):
 def test_every_ignored_name_is_logged_once(tmp_path, caplog):
     import logging
 
-    from shoal.daemon.gate import ReadinessGate, input_kind
+    from shoal.daemon.intake.gate import ReadinessGate, input_kind
 
     gate = ReadinessGate(0.0, ["*.tmp", ".*"])
     for name in ("..csv", ".hidden.parquet", "..csv", "part.tmp"):

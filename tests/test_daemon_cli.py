@@ -7,13 +7,13 @@ import sys
 import pyarrow.parquet as pq
 import pytest
 
-from shoal.daemon.drills import synthetic_table, write_config, write_drop
+from shoal.daemon.demo.drills import synthetic_table, write_config, write_drop
 
 SEED = 5
 
 
 def shoal(*args, timeout=120):
-    return subprocess.run([sys.executable, "-m", "shoal.daemon.cli", *map(str, args)],
+    return subprocess.run([sys.executable, "-m", "shoal.daemon.cli.main", *map(str, args)],
                           capture_output=True, text=True, timeout=timeout)
 
 
@@ -133,7 +133,7 @@ def test_ingest_label_segments(tmp_path):
 
 
 def test_a_second_process_on_the_same_state_is_refused(tmp_path):
-    from shoal.daemon.layout import StateLock, prepare_folders
+    from shoal.daemon.files.layout import StateLock, prepare_folders
     from shoal.config import load_config
 
     cfg = write_config(tmp_path)

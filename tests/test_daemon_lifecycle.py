@@ -8,7 +8,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from shoal.daemon.drills import (
+from shoal.daemon.demo.drills import (
     ServiceProcess,
     crash_drill,
     ledger_counts,
@@ -59,7 +59,7 @@ def test_sigkill_at_random_moments_short_crash_drill(tmp_path):
 
 
 def test_fifty_demo_drops_csv_and_parquet(tmp_path):
-    from shoal.daemon.scenario import FEATURES, drops
+    from shoal.daemon.demo.scenario import FEATURES, drops
 
     cfg = write_config(tmp_path, features=list(FEATURES), passthrough=["unit_id", "timestamp"],
                        segments=4, warmup_rows=2000, learning={"n_init": 2})

@@ -7,7 +7,7 @@ import time
 import pyarrow as pa
 import pyarrow.csv as pacsv
 
-from shoal.daemon.drills import InProcessService, synthetic_table, wait_until, write_drop
+from shoal.daemon.demo.drills import InProcessService, synthetic_table, wait_until, write_drop
 
 SEED = 11
 
@@ -105,7 +105,7 @@ def test_waiting_files_are_taken_oldest_first_and_kept_inputs_not_redone(tmp_pat
 
 
 def test_the_observer_is_not_woken_by_the_workers_own_reads_and_deletions(tmp_path):
-    from shoal.daemon.watcher import InboxWatcher
+    from shoal.daemon.intake.watcher import InboxWatcher
 
     inbox = tmp_path / "inbox"
     inbox.mkdir()

@@ -1,6 +1,6 @@
 """The demo's segments match the warehouse scenario's operating states.
 
-The scenario is our own invented data (daemon/scenario.py); this checks that the core,
+The scenario is our own invented data (daemon/demo/scenario.py); this checks that the core,
 warmed up and then learning stepwise as the service does, ends with one segment per
 operating state, each close to that state's true mean.
 """
@@ -8,7 +8,7 @@ operating state, each close to that state's true mean.
 import numpy as np
 
 from shoal.core import StepSchedule, initialise
-from shoal.daemon import scenario
+from shoal.daemon.demo import scenario
 
 
 def test_segments_match_the_scenarios_states():
@@ -35,8 +35,8 @@ def test_segments_match_the_states_with_the_demos_transforms():
     # the demo config's transforms (door_open_s: log1p); the model learns in the
     # transformed units, the centres are compared in the data's units (medians)
     from shoal.core import FeatureTransforms
-    from shoal.daemon.demo import DEMO_CONFIG
-    from shoal.daemon.transforming import centres
+    from shoal.daemon.demo.command import DEMO_CONFIG
+    from shoal.daemon.model.transforming import centres
 
     kinds = [DEMO_CONFIG["transforms"].get(f, "none") for f in scenario.FEATURES]
     assert "log1p" in kinds

@@ -13,10 +13,10 @@ import pyarrow.parquet as pq
 import pytest
 
 from shoal.config import parse_config
-from shoal.daemon.layout import prepare_folders
-from shoal.daemon.monitor import alert_id
-from shoal.daemon.pipeline import Pipeline
-from shoal.daemon.store import StateStore
+from shoal.daemon.files.layout import prepare_folders
+from shoal.daemon.segments.monitor import alert_id
+from shoal.daemon.ingest.pipeline import Pipeline
+from shoal.daemon.state.store import StateStore
 
 K, D = 6, 5
 FEATURES = [f"x{j}" for j in range(D)]

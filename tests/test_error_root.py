@@ -15,13 +15,14 @@ import shoal.config
 import shoal.core
 import shoal.daemon
 from shoal.core.errors import ShoalError
-from shoal.daemon import cli, errors
+from shoal.daemon import errors
+from shoal.daemon.cli import main as cli
 
 
 def package_exceptions():
     found = []
     for pkg in (shoal.core, shoal.config, shoal.daemon):
-        for info in pkgutil.iter_modules(pkg.__path__, pkg.__name__ + "."):
+        for info in pkgutil.walk_packages(pkg.__path__, pkg.__name__ + "."):
             module = importlib.import_module(info.name)
             found += [c for c in vars(module).values()
                       if inspect.isclass(c) and issubclass(c, BaseException)

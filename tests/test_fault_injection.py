@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from shoal.daemon.drills import (
+from shoal.daemon.demo.drills import (
     InProcessService,
     ingest_in_order,
     ledger_rows,
@@ -103,7 +103,7 @@ def _inject(point: str, fault: Fault, svc, monkeypatch) -> None:
 def _snapshot(folder: Path):
     """Ledger (drills.LEDGER_FIELDS in order), model version, final model arrays, labels
     bytes of a run."""
-    from shoal.daemon.store import StateStore
+    from shoal.daemon.state.store import StateStore
 
     ledger = ledger_rows(folder / "state" / "state.db")
     store = StateStore(folder / "state" / "state.db")
@@ -144,7 +144,7 @@ POINTS = ["fsync_labels", "fsync_outbox", "replace_labels", "sqlite_insert", "sq
 
 @pytest.mark.parametrize("point", POINTS)
 def test_a_failed_write_commits_nothing_and_is_retried(tmp_path, monkeypatch, reference, point):
-    import shoal.daemon.service as service_module
+    import shoal.daemon.intake.service as service_module
 
     monkeypatch.setattr(service_module, "_RETRY_FIRST", 0.2)
     fault = Fault()
@@ -193,7 +193,7 @@ def _fail_opening(fault: Fault, folder: str, error: int, monkeypatch) -> None:
                                         "input_eacces"])
 def test_after_a_fault_clears_the_failed_input_goes_before_newer_ones(
         tmp_path, monkeypatch, reference, fault_kind):
-    import shoal.daemon.service as service_module
+    import shoal.daemon.intake.service as service_module
 
     monkeypatch.setattr(service_module, "_RETRY_FIRST", 1.0)
     fault = Fault()

@@ -27,8 +27,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from shoal.daemon import pipeline as pipeline_module
-from shoal.daemon.drills import synthetic_table, write_config
+from shoal.daemon.ingest import pipeline as pipeline_module
+from shoal.daemon.demo.drills import synthetic_table, write_config
 
 DEEP = os.environ.get("SHOAL_DEEP") == "1"
 EXAMPLES = int(os.environ.get("SHOAL_DEEP_EXAMPLES", 20_000)) if DEEP else 60
@@ -43,9 +43,9 @@ class Harness:
 
     def __init__(self, folder):
         from shoal.config import load_config
-        from shoal.daemon.layout import prepare_folders
-        from shoal.daemon.pipeline import Pipeline
-        from shoal.daemon.store import StateStore
+        from shoal.daemon.files.layout import prepare_folders
+        from shoal.daemon.ingest.pipeline import Pipeline
+        from shoal.daemon.state.store import StateStore
 
         cfg = write_config(folder, segments=2, warmup_rows=100,
                            limits={"max_rows": 5000, "max_columns": 40,

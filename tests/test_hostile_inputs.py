@@ -110,7 +110,7 @@ def peak():
 if sys.argv[1] == "-c":
     exec(sys.argv[2]); code = 0
 else:
-    from shoal.daemon.cli import main
+    from shoal.daemon.cli.main import main
     code = main(sys.argv[1:])
 print(peak())
 sys.exit(code)

@@ -16,18 +16,18 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import pytest
 
-from shoal.daemon import pipeline as pipeline_module
-from shoal.daemon import readers
-from shoal.daemon.drills import InProcessService, synthetic_table, wait_until, write_config
+from shoal.daemon.ingest import pipeline as pipeline_module
+from shoal.daemon.files import readers
+from shoal.daemon.demo.drills import InProcessService, synthetic_table, wait_until, write_config
 
 SEED = 11
 
 
 def _open(folder: Path, **overrides):
     from shoal.config import load_config
-    from shoal.daemon.layout import prepare_folders
-    from shoal.daemon.pipeline import Pipeline
-    from shoal.daemon.store import StateStore
+    from shoal.daemon.files.layout import prepare_folders
+    from shoal.daemon.ingest.pipeline import Pipeline
+    from shoal.daemon.state.store import StateStore
 
     settings = load_config(write_config(folder, warmup_rows=400, **overrides))
     layout = prepare_folders(settings)

@@ -9,7 +9,7 @@ import os
 import pyarrow as pa
 import pyarrow.csv as pacsv
 
-from shoal.daemon.drills import (
+from shoal.daemon.demo.drills import (
     InProcessService,
     final_arrays,
     ingest_in_order,

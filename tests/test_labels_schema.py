@@ -10,8 +10,8 @@ import pyarrow.csv as pacsv
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
-from shoal.daemon.cli import main
-from shoal.daemon.drills import synthetic_table, write_config
+from shoal.daemon.cli.main import main
+from shoal.daemon.demo.drills import synthetic_table, write_config
 
 SEED = 17
 

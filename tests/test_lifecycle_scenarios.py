@@ -65,7 +65,7 @@ def test_a_pair_that_split_is_not_merged_back_within_the_cool_down():
 
     from shoal.config import parse_config
     from shoal.core import Mixture
-    from shoal.daemon.segment_life import LifeWatch
+    from shoal.daemon.segments.segment_life import LifeWatch
 
     settings = parse_config({"features": ["a", "b"], "segments": 3}, ".")
     m = Mixture.from_parameters([0.4, 0.3, 0.3], [[0.0, 0.0], [0.5, 0.0], [20.0, 0.0]],

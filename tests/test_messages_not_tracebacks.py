@@ -9,13 +9,13 @@ import sys
 import pyarrow.parquet as pq
 import pytest
 
-from shoal.daemon.drills import synthetic_table, write_config, write_drop
+from shoal.daemon.demo.drills import synthetic_table, write_config, write_drop
 
 SEED = 29
 
 
 def shoal(*args, env=None, wrap=None):
-    cmd = [sys.executable, "-m", "shoal.daemon.cli", *map(str, args)]
+    cmd = [sys.executable, "-m", "shoal.daemon.cli.main", *map(str, args)]
     r = subprocess.run(wrap(cmd) if wrap else cmd, capture_output=True, text=True,
                        timeout=120, env=env)
     assert "Traceback" not in r.stderr, r.stderr
@@ -118,8 +118,8 @@ def test_replay_leaves_no_empty_folder_after_a_config_error(tmp_path):
 
 def test_http_server_header_and_unknown_methods(tmp_path):
     from shoal.config import load_config
-    from shoal.daemon.layout import Layout
-    from shoal.daemon.status_http import Health, StatusServer
+    from shoal.daemon.files.layout import Layout
+    from shoal.daemon.runtime.status_http import Health, StatusServer
 
     cfg = write_config(tmp_path, warmup_rows=600, http={"port": 0})
     assert shoal("ingest", "-c", cfg, *_drops(tmp_path / "drops", 1)).returncode == 0

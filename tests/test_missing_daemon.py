@@ -139,7 +139,7 @@ def test_warm_up_fits_on_complete_rows_and_says_when_it_waits_for_them(stream, c
 
 
 def test_explanations_name_the_features_missing_from_most_rows():
-    from shoal.daemon.missing_drift import missing_note
+    from shoal.daemon.segments.missing_drift import missing_note
     info = {"missing": {"shares": [0.0, 0.72, 0.5, 0.51]}}
     assert missing_note(info, ["a", "b", "c", "d"]) == \
         "mostly missing in the window: b (72%), d (51%)"

@@ -13,7 +13,7 @@ import pyarrow as pa
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
-from shoal.daemon.drills import (
+from shoal.daemon.demo.drills import (
     MTIME_BASE,
     ServiceProcess,
     ledger_counts,
@@ -21,7 +21,7 @@ from shoal.daemon.drills import (
     wait_until,
     write_config,
 )
-from shoal.daemon.store import StateStore
+from shoal.daemon.state.store import StateStore
 
 SEED = 31
 DROPS = 20

@@ -10,8 +10,8 @@ import pytest
 import yaml
 
 from _ops import parquet_drops
-from shoal.daemon.cli import main
-from shoal.daemon.drills import write_config
+from shoal.daemon.cli.main import main
+from shoal.daemon.demo.drills import write_config
 
 SEED = 13
 
@@ -64,7 +64,7 @@ def test_a_config_that_redefines_the_model_is_refused_naming_each_key(learned, t
             assert needle in err, (argv, err)
         assert "Traceback" not in err
     _with(learned, features=["f1", "f2", "temperature"], covariance="full", segments=3)
-    r = subprocess.run([sys.executable, "-m", "shoal.daemon.cli", "watch", "-c", str(learned)],
+    r = subprocess.run([sys.executable, "-m", "shoal.daemon.cli.main", "watch", "-c", str(learned)],
                        capture_output=True, text=True, timeout=60)
     assert r.returncode == 2
     assert "features: stored ['f1', 'f2', 'f3'], configured ['f1', 'f2', 'temperature']" \
@@ -156,8 +156,8 @@ def test_while_the_warm_up_fills_only_the_features_are_fixed(tmp_path, capsys):
 
 def test_a_long_feature_list_is_cut_in_the_refusal_with_its_first_difference(tmp_path):
     from shoal.config import ConfigError, parse_config
-    from shoal.daemon.contract import check_model_contract, model_contract
-    from shoal.daemon.store import LedgerEntry, StateStore
+    from shoal.daemon.model.contract import check_model_contract, model_contract
+    from shoal.daemon.state.store import LedgerEntry, StateStore
 
     names = [f"sensor_{i:03d}" for i in range(400)]
     stored = parse_config({"features": names, "warmup_rows": 1000}, base_dir=tmp_path)

@@ -15,7 +15,7 @@ from prometheus_client.parser import text_string_to_metric_families
 
 from _browser import PNG_SIGNATURE, check_images, chromium, console_errors
 from _ops import Watch, demo_config, demo_drops, get
-from shoal.daemon.drills import ledger_counts, wait_until
+from shoal.daemon.demo.drills import ledger_counts, wait_until
 
 N_DROPS = 20
 ROWS = 500
@@ -152,7 +152,7 @@ def test_status_page_in_headless_chromium(running):
 def test_report_of_the_demo_run_in_headless_chromium(running, tmp_path):
     out = tmp_path / "report.html"
     # Made beside the running service: the report only reads the state.
-    done = subprocess.run([sys.executable, "-m", "shoal.daemon.cli", "report", "-c",
+    done = subprocess.run([sys.executable, "-m", "shoal.daemon.cli.main", "report", "-c",
                            str(running["config"]), "--out", str(out)],
                           capture_output=True, text=True, timeout=120)
     assert done.returncode == 0, done.stderr
@@ -176,7 +176,7 @@ def test_report_of_the_demo_run_in_headless_chromium(running, tmp_path):
 
 
 def test_status_command_one_screen(running, capsys):
-    from shoal.daemon.cli import main
+    from shoal.daemon.cli.main import main
 
     assert main(["status", "-c", str(running["config"])]) == 0
     out = capsys.readouterr().out

@@ -10,12 +10,12 @@ from prometheus_client.parser import text_string_to_metric_families
 
 from _ops import get, notify_socket
 from shoal.config import ConfigError, load_config
-from shoal.daemon.drills import synthetic_table, wait_until, write_config, write_drop
-from shoal.daemon.layout import prepare_folders
-from shoal.daemon.notify import Notifier, watchdog_interval
-from shoal.daemon.pipeline import Pipeline, Result
-from shoal.daemon.store import LedgerEntry, StateStore
-from shoal.daemon.supervise import Supervisor
+from shoal.daemon.demo.drills import synthetic_table, wait_until, write_config, write_drop
+from shoal.daemon.files.layout import prepare_folders
+from shoal.daemon.runtime.notify import Notifier, watchdog_interval
+from shoal.daemon.ingest.pipeline import Pipeline, Result
+from shoal.daemon.state.store import LedgerEntry, StateStore
+from shoal.daemon.runtime.supervise import Supervisor
 
 
 class _Running:
@@ -126,7 +126,7 @@ def test_notifier_without_a_socket_and_watchdog_for_another_process():
 
 
 def test_reload_accepts_reloadable_keys_and_names_fixed_ones(tmp_path):
-    from shoal.daemon.reload import check_reloadable
+    from shoal.daemon.runtime.reload import check_reloadable
 
     old = load_config(write_config(tmp_path / "a"))
     new = load_config(write_config(tmp_path / "a", log_level="debug",
@@ -140,7 +140,7 @@ def test_reload_accepts_reloadable_keys_and_names_fixed_ones(tmp_path):
 def test_progress_bar_only_on_a_terminal():
     from tqdm import tqdm
 
-    from shoal.daemon.progress import progress
+    from shoal.daemon.runtime.progress import progress
 
     class Tty(io.StringIO):
         def isatty(self):
@@ -155,8 +155,8 @@ def test_progress_bar_only_on_a_terminal():
 
 
 def test_status_and_metrics_read_alerts_written_through_the_store(tmp_path):
-    from shoal.daemon.metrics import build_registry, render_metrics
-    from shoal.daemon.readout import StateReader, format_status, state_snapshot
+    from shoal.daemon.runtime.metrics import build_registry, render_metrics
+    from shoal.daemon.state.readout import StateReader, format_status, state_snapshot
 
     settings = load_config(write_config(tmp_path))
     layout = prepare_folders(settings)
@@ -214,7 +214,7 @@ def test_status_and_metrics_read_alerts_written_through_the_store(tmp_path):
 
 def test_since_accepts_durations_and_iso_times():
     from shoal.daemon.errors import UsageError
-    from shoal.daemon.report import parse_since
+    from shoal.daemon.views.report import parse_since
 
     assert parse_since("2h", now=10_000.0) == 10_000.0 - 7200
     assert parse_since("30min", now=10_000.0) == 10_000.0 - 1800
@@ -231,7 +231,7 @@ def test_example_systemd_unit(tmp_path):
     import sys
     from pathlib import Path
 
-    from shoal.daemon.cli import build_parser
+    from shoal.daemon.cli.main import build_parser
 
     text = (Path(__file__).parents[1] / "config" / "systemd" / "shoal.service").read_text()
     unit = configparser.ConfigParser(strict=False, interpolation=None, delimiters=("=",))

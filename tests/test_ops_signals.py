@@ -8,7 +8,7 @@ import pytest
 import yaml
 
 from _ops import Watch, demo_config, demo_drops, notify_socket
-from shoal.daemon.drills import ledger_counts, wait_until
+from shoal.daemon.demo.drills import ledger_counts, wait_until
 
 
 def _collect(sock: socket.socket, until, timeout: float) -> list[str]:

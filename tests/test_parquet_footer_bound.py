@@ -7,7 +7,7 @@ import sys
 
 import pyarrow.parquet as pq
 
-from shoal.daemon.drills import synthetic_table, write_config
+from shoal.daemon.demo.drills import synthetic_table, write_config
 
 
 def test_a_parquet_file_of_tiny_row_groups_is_refused_in_bounded_memory(tmp_path):
@@ -29,7 +29,7 @@ def test_a_parquet_file_of_tiny_row_groups_is_refused_in_bounded_memory(tmp_path
 # the test process it was forked from, which ru_maxrss would count too).
 _INGEST_THEN_PEAK = """
 import sys
-from shoal.daemon.cli import main
+from shoal.daemon.cli.main import main
 code = main(sys.argv[1:])
 peak = [l for l in open("/proc/self/status") if l.startswith("VmHWM:")][0]
 print(peak.strip())

@@ -16,8 +16,8 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
-from shoal.daemon.cli import main
-from shoal.daemon.drills import (
+from shoal.daemon.cli.main import main
+from shoal.daemon.demo.drills import (
     MTIME_BASE,
     ServiceProcess,
     ledger_counts,
@@ -96,12 +96,12 @@ def test_poison_inputs_are_read_or_quarantined_and_watch_goes_on(tmp_path):
         wait_until(lambda: sum(ledger_counts(db).values()) >= len(drops), 60,
                    "every drop in the ledger", interval=0.1)
         assert service.alive()
-        status = subprocess.run([sys.executable, "-m", "shoal.daemon.cli", "status", "-c",
+        status = subprocess.run([sys.executable, "-m", "shoal.daemon.cli.main", "status", "-c",
                                  str(cfg)], capture_output=True, text=True, timeout=60)
     finally:
         code, _ = service.stop(timeout=30)
     assert code == 0
-    from shoal.daemon.store import StateStore
+    from shoal.daemon.state.store import StateStore
 
     store = StateStore(db)
     try:
@@ -133,14 +133,14 @@ def test_poison_inputs_are_read_or_quarantined_and_watch_goes_on(tmp_path):
 # compiled library would): os._exit once reading it begins.
 _CRASHING = """
 import os, sys
-from shoal.daemon import pipeline
+from shoal.daemon.ingest import pipeline
 real = pipeline.iter_frames
 def frames(f, *args, **kw):
     if os.readlink(f"/proc/self/fd/{f.fileno()}").endswith("crash.csv"):
         os._exit(9)
     return real(f, *args, **kw)
 pipeline.iter_frames = frames
-from shoal.daemon.cli import main
+from shoal.daemon.cli.main import main
 sys.exit(main(sys.argv[1:]))
 """
 
@@ -169,7 +169,7 @@ def test_an_input_that_kills_the_process_is_quarantined_at_a_later_start(tmp_pat
             if service.alive():
                 codes[-1] = service.stop(timeout=30)[0]
     assert codes == [9, 9, 0]
-    from shoal.daemon.store import StateStore
+    from shoal.daemon.state.store import StateStore
 
     store = StateStore(tmp_path / "state" / "state.db")
     try:

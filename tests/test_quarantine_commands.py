@@ -7,11 +7,11 @@ import pytest
 from prometheus_client.parser import text_string_to_metric_families
 
 from shoal.config import load_config
-from shoal.daemon.cli import main
-from shoal.daemon.drills import synthetic_table, write_config, write_drop
-from shoal.daemon.layout import Layout
-from shoal.daemon.metrics import build_registry, render_metrics
-from shoal.daemon.readout import StateReader
+from shoal.daemon.cli.main import main
+from shoal.daemon.demo.drills import synthetic_table, write_config, write_drop
+from shoal.daemon.files.layout import Layout
+from shoal.daemon.runtime.metrics import build_registry, render_metrics
+from shoal.daemon.state.readout import StateReader
 
 
 def _run(capsys, *argv) -> tuple[int, str]:

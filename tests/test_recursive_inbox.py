@@ -5,7 +5,7 @@ import os
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
-from shoal.daemon.drills import MTIME_BASE, InProcessService, synthetic_table, wait_until
+from shoal.daemon.demo.drills import MTIME_BASE, InProcessService, synthetic_table, wait_until
 
 SEED = 37
 

@@ -10,9 +10,9 @@ import pytest
 
 from _replay import DAYS, FIRST_DAY, REBASELINE_AFTER, ROWS, replay
 from shoal.daemon.errors import UsageError
-from shoal.daemon.readout import StateReader
-from shoal.daemon.report import build_report, render_figures, render_plots, report_data
-from shoal.daemon.timeline import Axis, axis_events, event_kind, parse_bound
+from shoal.daemon.state.readout import StateReader
+from shoal.daemon.views.report import build_report, render_figures, render_plots, report_data
+from shoal.daemon.views.timeline import Axis, axis_events, event_kind, parse_bound
 
 TIME_PLOTS = ("weights", "means", "drift", "fit")
 FIRST = FIRST_DAY.astype("datetime64[s]").astype(int)            # 2026-01-01 00:00 UTC
@@ -146,7 +146,7 @@ def test_every_series_has_its_own_line_style_and_marker(on_time):
         assert len(set(pairs.values())) == len(pairs), (name, pairs)
         seen = max(seen, len(pairs))
     assert seen >= 6          # the replay's births give more segments than colours differ by
-    from shoal.daemon.plots import segment_style
+    from shoal.daemon.views.plots import segment_style
 
     styles = {(segment_style(i)["linestyle"], segment_style(i)["marker"]) for i in range(48)}
     assert len(styles) == 48
@@ -207,7 +207,7 @@ def test_meta_line_says_what_the_history_covers(on_time):
 
 def test_thirty_day_report_in_headless_chromium(on_time, tmp_path):
     from _browser import check_images, chromium, console_errors
-    from shoal.daemon.report import REPORT_PLOTS, write_report
+    from shoal.daemon.views.report import REPORT_PLOTS, write_report
 
     out = write_report(on_time["reader"], on_time["settings"], on_time["layout"],
                        tmp_path / "report.html", config="shoal.yaml")
@@ -223,9 +223,9 @@ def _report_of_csv_drops(tmp_path, drift: dict, n: int, **bounds) -> dict:
     """The report's data after ``shoal ingest`` of ``n`` CSV drops of 300 rows whose
     ``ts`` counts rows from 0."""
     from shoal.config import load_config
-    from shoal.daemon.cli import main
-    from shoal.daemon.drills import synthetic_table, write_config, write_drop
-    from shoal.daemon.layout import Layout
+    from shoal.daemon.cli.main import main
+    from shoal.daemon.demo.drills import synthetic_table, write_config, write_drop
+    from shoal.daemon.files.layout import Layout
 
     cfg = write_config(tmp_path, drift={"time_column": "ts", **drift})
     (tmp_path / "inbox").mkdir()

@@ -13,11 +13,11 @@ import pytest
 import yaml
 
 from shoal.config import load_config
-from shoal.daemon.cli import main
-from shoal.daemon.drills import synthetic_table, write_config, write_drop
-from shoal.daemon.layout import Layout
-from shoal.daemon.retention import COMPACTED_KEY, make_plan
-from shoal.daemon.store import LedgerEntry, StateStore
+from shoal.daemon.cli.main import main
+from shoal.daemon.demo.drills import synthetic_table, write_config, write_drop
+from shoal.daemon.files.layout import Layout
+from shoal.daemon.state.retention import COMPACTED_KEY, make_plan
+from shoal.daemon.state.store import LedgerEntry, StateStore
 
 N_DROPS = 500
 ROWS = 20
@@ -200,7 +200,7 @@ def test_undelivered_and_open_alerts_are_kept(tmp_path):
         plan = make_plan(cfg, layout, store.db)
         assert sorted(plan.notification_ids) == sorted(["a2.raised", "a2.cleared"])
         assert len(plan.ledger_ids) == 1
-        from shoal.daemon.retention import apply_plan
+        from shoal.daemon.state.retention import apply_plan
 
         apply_plan(plan, store)
         totals = json.loads(store.db.execute("SELECT value FROM meta WHERE key = ?",
@@ -213,11 +213,11 @@ def test_undelivered_and_open_alerts_are_kept(tmp_path):
 
 
 def test_the_running_service_applies_retention_between_inputs(tmp_path):
-    from shoal.daemon.drills import wait_until
-    from shoal.daemon.layout import prepare_folders
-    from shoal.daemon.notify import Notifier
-    from shoal.daemon.pipeline import Pipeline
-    from shoal.daemon.supervise import Supervisor
+    from shoal.daemon.demo.drills import wait_until
+    from shoal.daemon.files.layout import prepare_folders
+    from shoal.daemon.runtime.notify import Notifier
+    from shoal.daemon.ingest.pipeline import Pipeline
+    from shoal.daemon.runtime.supervise import Supervisor
 
     settings = load_config(_config(tmp_path, processed_days=0, check_seconds=0))
     layout = prepare_folders(settings)

@@ -13,9 +13,9 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import pytest
 
-from shoal.daemon.cli import main
-from shoal.daemon.drills import synthetic_table, write_config
-from shoal.daemon.times import iso_utc, row_times
+from shoal.daemon.cli.main import main
+from shoal.daemon.demo.drills import synthetic_table, write_config
+from shoal.daemon.files.times import iso_utc, row_times
 
 UTC = dt.timezone.utc
 # 2025-05-01T06:26:16.250Z and a second instant a day and a bit later
@@ -91,7 +91,7 @@ def _drift_state(tmp_path, table, name, **drift):
     path = drops / name
     (pacsv.write_csv if name.endswith(".csv") else pq.write_table)(table, path)
     assert main(["ingest", "-c", str(cfg), str(head), str(path)]) == 0
-    from shoal.daemon.store import StateStore
+    from shoal.daemon.state.store import StateStore
 
     store = StateStore(tmp_path / "state" / "state.db")
     try:
@@ -122,7 +122,7 @@ def test_zoned_timestamps_need_no_warning_and_warnings_are_named_events(tmp_path
         warnings.simplefilter("error")   # any Python warning on the way fails the test
         drift = _drift_state(tmp_path, table, "zoned.parquet")
     assert "2025-05-01T06:26:16.000Z" in json.dumps(drift)
-    from shoal.daemon.logs import setup_logging
+    from shoal.daemon.runtime.logs import setup_logging
 
     setup_logging("info")
     warnings.warn("a warning from a library", UserWarning)

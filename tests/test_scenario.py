@@ -4,7 +4,7 @@ and separable enough that a 4-component Gaussian mixture recovers its states."""
 import numpy as np
 import pytest
 
-from shoal.daemon.scenario import (
+from shoal.daemon.demo.scenario import (
     FEATURES,
     NEW_STATE,
     START_TIME,

@@ -18,8 +18,8 @@ import pytest
 from sklearn.metrics import adjusted_rand_score
 
 from shoal.core import Mixture
-from shoal.daemon.pipeline import Pipeline
-from shoal.daemon.summary import format_segments, segment_summary
+from shoal.daemon.ingest.pipeline import Pipeline
+from shoal.daemon.views.summary import format_segments, segment_summary
 
 from test_drift_alerts import D, _rows, _truth, stream  # noqa: F401 (stream: a fixture)
 

@@ -8,12 +8,12 @@ import pyarrow.parquet as pq
 import yaml
 
 from shoal.config import load_config
-from shoal.daemon.cli import main
-from shoal.daemon.drills import synthetic_table, write_config, write_drop
-from shoal.daemon.layout import Layout
-from shoal.daemon.readout import StateReader
-from shoal.daemon.report import build_report, render_figures, render_plots, report_data
-from shoal.daemon.segment_names import name_history
+from shoal.daemon.cli.main import main
+from shoal.daemon.demo.drills import synthetic_table, write_config, write_drop
+from shoal.daemon.files.layout import Layout
+from shoal.daemon.state.readout import StateReader
+from shoal.daemon.views.report import build_report, render_figures, render_plots, report_data
+from shoal.daemon.segments.segment_names import name_history
 
 
 def _cfg(folder, names: bool):
@@ -145,8 +145,8 @@ def test_a_name_follows_its_id_through_a_split(tmp_path):
     import _scenarios
     from shoal.core import StepSchedule, initialise
     from dataclasses import replace
-    from shoal.daemon.segment_names import set_segment_name
-    from shoal.daemon.summary import segment_summary
+    from shoal.daemon.segments.segment_names import set_segment_name
+    from shoal.daemon.views.summary import segment_summary
 
     truth = _scenarios.Truth(0)
     run = _scenarios.Run(tmp_path / "run", truth, output={"segment_names": True})

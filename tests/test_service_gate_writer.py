@@ -9,8 +9,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from shoal.daemon.gate import ReadinessGate, Verdict, input_kind
-from shoal.daemon.writer import atomic_file, labels_name, labels_table, safe_stem
+from shoal.daemon.intake.gate import ReadinessGate, Verdict, input_kind
+from shoal.daemon.files.writer import atomic_file, labels_name, labels_table, safe_stem
 
 
 class Clock:
@@ -216,7 +216,7 @@ def test_labels_metadata_asked_late_gives_the_same_file(tmp_path, ready_after):
     """Whether the metadata is asked as the first table is written (``ready`` None), after
     a later one, or only once the last is written, it is asked exactly once and the
     Parquet file is the same, byte for byte."""
-    from shoal.daemon.writer import write_labels_stream
+    from shoal.daemon.files.writer import write_labels_stream
 
     tables = _labels_tables()
     meta = {"input_digest": "ab" * 32, "digest_algorithm": "blake3", "input_name": "in.parquet",
@@ -247,7 +247,7 @@ def test_labels_metadata_asked_late_gives_the_same_file(tmp_path, ready_after):
 def test_labels_metadata_refusing_part_way_leaves_no_file(tmp_path):
     """An error from the metadata (a duplicate found once the hash is known) raised after
     some tables were written leaves no labels file and no temp file behind."""
-    from shoal.daemon.writer import write_labels_stream
+    from shoal.daemon.files.writer import write_labels_stream
 
     tables = _labels_tables(4)
     written = []
@@ -272,7 +272,7 @@ def test_labels_parquet_encodings_per_column_and_the_values_read_back(tmp_path):
     values dictionary-encoded (Parquet has no dictionary for booleans: ``unusual`` stays
     bit-packed), the float labels plain; every value reads back (pyarrow's
     own reader as the reference) whatever the encoding."""
-    from shoal.daemon.writer import write_labels_stream
+    from shoal.daemon.files.writer import write_labels_stream
 
     tables = _labels_tables(3)
     out = write_labels_stream(iter(tables), tmp_path / "enc.parquet", "parquet",

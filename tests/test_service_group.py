@@ -13,16 +13,16 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import pytest
 
-from shoal.daemon.drills import synthetic_table, write_config
+from shoal.daemon.demo.drills import synthetic_table, write_config
 
 SEED = 5
 
 
 def _open(folder: Path):
     from shoal.config import load_config
-    from shoal.daemon.layout import prepare_folders
-    from shoal.daemon.pipeline import Pipeline
-    from shoal.daemon.store import StateStore
+    from shoal.daemon.files.layout import prepare_folders
+    from shoal.daemon.ingest.pipeline import Pipeline
+    from shoal.daemon.state.store import StateStore
 
     settings = load_config(write_config(folder, warmup_rows=400))
     layout = prepare_folders(settings)

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from shoal.daemon.errors import StateError
-from shoal.daemon.store import (
+from shoal.daemon.state.store import (
     Checkpoint,
     HistoryRow,
     InputCommit,

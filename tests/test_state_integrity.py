@@ -10,12 +10,12 @@ import numpy as np
 import pytest
 
 from _ops import parquet_drops
-from shoal.daemon import store as store_module
-from shoal.daemon.cli import main
-from shoal.daemon.drills import synthetic_table, wait_until, write_config, write_drop
+from shoal.daemon.state import store as store_module
+from shoal.daemon.cli.main import main
+from shoal.daemon.demo.drills import synthetic_table, wait_until, write_config, write_drop
 from shoal.daemon.errors import StateError
-from shoal.daemon.marker import read_marker
-from shoal.daemon.store import StateStore, npy_array, npy_bytes
+from shoal.daemon.state.marker import read_marker
+from shoal.daemon.state.store import StateStore, npy_array, npy_bytes
 
 SEED = 11
 
@@ -38,7 +38,7 @@ def _ledger_rows(db):
 
 def _watch(cfg, log):
     with open(log, "ab") as err:
-        return subprocess.Popen([sys.executable, "-m", "shoal.daemon.cli", "watch", "-c",
+        return subprocess.Popen([sys.executable, "-m", "shoal.daemon.cli.main", "watch", "-c",
                                  str(cfg)], stdout=subprocess.DEVNULL, stderr=err,
                                 stdin=subprocess.DEVNULL)
 
@@ -177,7 +177,7 @@ def test_a_version_2_store_migrates_and_its_checkpoints_get_checksums(tmp_path, 
 
 
 def test_a_torn_marker_record_skips_the_check_once_and_is_rewritten(tmp_path):
-    from shoal.daemon.store import LedgerEntry
+    from shoal.daemon.state.store import LedgerEntry
 
     db = tmp_path / "state.db"
     store = StateStore(db)

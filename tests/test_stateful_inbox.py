@@ -26,8 +26,8 @@ from hypothesis import HealthCheck, settings
 from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, invariant, precondition, rule
 
-import shoal.daemon.pipeline as pipeline_module
-from shoal.daemon.drills import MTIME_BASE, synthetic_table, write_config
+import shoal.daemon.ingest.pipeline as pipeline_module
+from shoal.daemon.demo.drills import MTIME_BASE, synthetic_table, write_config
 
 DEEP = os.environ.get("SHOAL_DEEP") == "1"
 SEED = 17
@@ -40,9 +40,9 @@ class Crash(BaseException):
 
 def _open(folder):
     from shoal.config import load_config
-    from shoal.daemon.layout import prepare_folders
-    from shoal.daemon.pipeline import Pipeline
-    from shoal.daemon.store import StateStore
+    from shoal.daemon.files.layout import prepare_folders
+    from shoal.daemon.ingest.pipeline import Pipeline
+    from shoal.daemon.state.store import StateStore
 
     settings = load_config(folder / "shoal.yaml")
     layout = prepare_folders(settings)
@@ -65,7 +65,7 @@ class Inbox(RuleBasedStateMachine):
         self.contents: list[bytes] = []
         self.crashes = 0
         # The service's readiness gate, on a clock the test moves (settle time 2 s).
-        from shoal.daemon.gate import ReadinessGate
+        from shoal.daemon.intake.gate import ReadinessGate
         self.now = 0.0
         self.gate = ReadinessGate(2.0, clock=lambda: self.now)
 
@@ -107,7 +107,7 @@ class Inbox(RuleBasedStateMachine):
 
     def _drain(self) -> None:
         """Take the ready inputs oldest first, as the service does, until none is ready."""
-        from shoal.daemon.gate import Verdict
+        from shoal.daemon.intake.gate import Verdict
 
         inbox = self.pipeline.layout.inbox
         while True:

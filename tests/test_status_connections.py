@@ -11,7 +11,7 @@ import urllib.request
 import pyarrow.parquet as pq
 import pytest
 
-from shoal.daemon.drills import ledger_counts, synthetic_table, wait_until, write_config, \
+from shoal.daemon.demo.drills import ledger_counts, synthetic_table, wait_until, write_config, \
     write_drop
 
 SEED = 17
@@ -45,7 +45,7 @@ def test_two_thousand_idle_connections_leave_healthz_answering_and_inputs_flowin
     log = tmp_path / "watch.log"
     idle: list[socket.socket] = []
     with open(log, "ab") as err:
-        proc = subprocess.Popen([sys.executable, "-m", "shoal.daemon.cli", "watch", "-c",
+        proc = subprocess.Popen([sys.executable, "-m", "shoal.daemon.cli.main", "watch", "-c",
                                  str(cfg)], stdout=subprocess.DEVNULL, stderr=err,
                                 stdin=subprocess.DEVNULL, preexec_fn=_limit_files)
     try:

@@ -5,11 +5,11 @@ import os
 
 import pytest
 
-from shoal.daemon import liveness
-from shoal.daemon.cli import main, open_service_parts
-from shoal.daemon.drills import synthetic_table, write_config, write_drop
-from shoal.daemon.layout import StateLock
-from shoal.daemon.supervise import Supervisor
+from shoal.daemon.runtime import liveness
+from shoal.daemon.cli.main import main, open_service_parts
+from shoal.daemon.demo.drills import synthetic_table, write_config, write_drop
+from shoal.daemon.files.layout import StateLock
+from shoal.daemon.runtime.supervise import Supervisor
 
 
 @pytest.fixture()

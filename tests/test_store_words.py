@@ -19,9 +19,9 @@ import pytest
 import yaml
 
 from shoal.config import load_config
-from shoal.daemon import store_words
-from shoal.daemon.delivery import AlertSender
-from shoal.daemon.store import SCHEMA_VERSION, StateStore
+from shoal.daemon.state import store_words
+from shoal.daemon.alerts.delivery import AlertSender
+from shoal.daemon.state.store import SCHEMA_VERSION, StateStore
 
 from _lively import LIVELY_CONFIG, lively_drops
 from _webhook import VerifyingReceiver, log  # noqa: F401 (log)
@@ -158,7 +158,7 @@ def test_waiting_notifications_of_an_old_store_go_out_in_the_new_words(tmp_path,
 
 def test_a_migrated_store_learns_on_and_clears_its_open_alerts_in_the_new_words(tmp_path,
                                                                               old_store):
-    from shoal.daemon.cli import main
+    from shoal.daemon.cli.main import main
 
     outbox = _raw(old_store)["outbox"]
     open_before = ({json.loads(p)["id"] for i, p, _ in outbox if i.endswith(".firing")}
@@ -181,8 +181,8 @@ def test_status_and_report_readers_show_an_unmigrated_store_in_the_new_words(tmp
                                                                            old_store):
     # shoal status, the status page and shoal report open the store read-only, so they
     # may see a store no writer has migrated yet: they read it in the new words.
-    from shoal.daemon.layout import prepare_folders
-    from shoal.daemon.readout import StateReader, format_status, read_alerts, state_snapshot
+    from shoal.daemon.files.layout import prepare_folders
+    from shoal.daemon.state.readout import StateReader, format_status, read_alerts, state_snapshot
 
     cfg = tmp_path / "shoal.yaml"
     cfg.write_text(yaml.safe_dump(OLD_CONFIG))

@@ -11,11 +11,11 @@ import pyarrow.parquet as pq
 import pytest
 
 from shoal.config import load_config
-from shoal.daemon import pipeline as pipeline_module
-from shoal.daemon import readers
-from shoal.daemon.cli import open_service_parts
-from shoal.daemon.drills import synthetic_table, write_config
-from shoal.daemon.readers import iter_frames, prefetch
+from shoal.daemon.ingest import pipeline as pipeline_module
+from shoal.daemon.files import readers
+from shoal.daemon.cli.main import open_service_parts
+from shoal.daemon.demo.drills import synthetic_table, write_config
+from shoal.daemon.files.readers import iter_frames, prefetch
 
 SEED = 9
 
@@ -70,7 +70,7 @@ def test_frames_checked_against_a_model_range_refuse_the_rows_the_model_would(tm
     refuses them, whatever the record batches; NaN, infinite and past-1e50 rows stay
     invalid without counting as beyond the range; ranges near 1e50 keep that bound.
     (On both ways of building frames: compiled and numpy.)"""
-    from shoal.daemon.readers import FEATURE_BOUND, Frame
+    from shoal.daemon.files.readers import FEATURE_BOUND, Frame
 
     table = synthetic_table(0, 3000, SEED)
     X = np.column_stack([table.column(c).to_numpy() for c in ("f1", "f2", "f3")])

@@ -14,9 +14,9 @@ import test_drift_alerts as drift_alerts
 
 from shoal.config import parse_config
 from shoal.core import Mixture
-from shoal.daemon import transforming
+from shoal.daemon.model import transforming
 from shoal.daemon.errors import UsageError
-from shoal.daemon.pipeline import Pipeline
+from shoal.daemon.ingest.pipeline import Pipeline
 
 FEATURES = ["dur_s", "temp_c"]
 SEED = 11
@@ -156,15 +156,15 @@ def test_a_changed_transform_is_refused_naming_feature_and_values(stream, tmp_pa
     drop = s.folder / "more.parquet"
     X = _rows(rng, 100)
     pq.write_table(pa.table({f: X[:, j] for j, f in enumerate(FEATURES)}), drop)
-    r2 = subprocess.run([sys.executable, "-m", "shoal.daemon.cli", "ingest", "-c", str(cfg),
+    r2 = subprocess.run([sys.executable, "-m", "shoal.daemon.cli.main", "ingest", "-c", str(cfg),
                          str(drop)], capture_output=True, text=True, timeout=60)
     assert r2.returncode == 2, r2.stderr
     assert "transforms.dur_s" in r2.stderr and "'log1p'" in r2.stderr and "'logit'" in r2.stderr
 
 
 def test_status_and_report_show_medians_of_a_transformed_feature(stream):
-    from shoal.daemon.readout import format_status, open_reader, state_snapshot
-    from shoal.daemon.report import report_data, segments_table, write_report
+    from shoal.daemon.state.readout import format_status, open_reader, state_snapshot
+    from shoal.daemon.views.report import report_data, segments_table, write_report
 
     rng = np.random.default_rng(SEED + 4)
     s = stream(transforms={"dur_s": "log"}, output={"keep_inputs": True})
@@ -188,7 +188,7 @@ def test_status_and_report_show_medians_of_a_transformed_feature(stream):
 
 
 def test_backfill_refuses_transforms_it_does_not_apply(tmp_path):
-    from shoal.daemon.backfill import backfill
+    from shoal.daemon.backfill.learn import backfill
 
     settings = parse_config({"features": FEATURES, "transforms": {"dur_s": "log"}}, tmp_path)
     with pytest.raises(UsageError, match="does not apply transforms"):

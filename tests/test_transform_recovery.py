@@ -7,8 +7,8 @@ import yaml
 from sklearn.metrics import adjusted_rand_score   # a test reference only
 
 from scripts.lognormal import FEATURES, K, Stream, log_rows, truth
-from shoal.daemon.summary import format_segments, segment_summary
-from shoal.daemon.transform_commands import format_suggestions, suggest_one
+from shoal.daemon.views.summary import format_segments, segment_summary
+from shoal.daemon.cli.transform_commands import format_suggestions, suggest_one
 
 LOG = {"transforms": {f: "log" for f in FEATURES}}
 ROWS = 40_000
@@ -91,7 +91,7 @@ def test_suggest_transforms_proposes_log_for_log_normal_and_none_for_gaussian(tm
     pq.write_table(pa.table(table), sample)
     cfg = tmp_path / "shoal.yaml"
     cfg.write_text(yaml.safe_dump({"features": FEATURES + ["zeros", "temp"]}))
-    r = subprocess.run([sys.executable, "-m", "shoal.daemon.cli", "suggest-transforms",
+    r = subprocess.run([sys.executable, "-m", "shoal.daemon.cli.main", "suggest-transforms",
                         "-c", str(cfg), str(sample)], capture_output=True, text=True,
                        timeout=60)
     assert r.returncode == 0, r.stderr

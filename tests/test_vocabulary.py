@@ -3,13 +3,13 @@
 Alert states are ``raised`` / ``cleared`` (ITU-T X.733), the drift snapshot is the
 baseline, the configuration command is ``shoal config`` and webhooks are signed by the
 Standard Webhooks specification. The earlier words below may appear only in the
-migration that reads a store written before (``daemon/store_words.py``).
+migration that reads a store written before (``daemon/state/store_words.py``).
 """
 import re
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
-MIGRATION = ROOT / "daemon" / "store_words.py"
+MIGRATION = ROOT / "daemon" / "state" / "store_words.py"
 
 OLD_WORDS = {
     "an alert state firing": re.compile(r"firing", re.I),   # also shoal_alerts_firing

@@ -7,9 +7,9 @@ import pyarrow.parquet as pq
 
 from shoal.config import load_config
 from shoal.core import StepSchedule, initialise
-from shoal.daemon.cli import main
-from shoal.daemon.drills import synthetic_table, write_config
-from shoal.daemon.store import StateStore
+from shoal.daemon.cli.main import main
+from shoal.daemon.demo.drills import synthetic_table, write_config
+from shoal.daemon.state.store import StateStore
 
 SEED = 5          # seeds the synthetic drops
 ROWS = 1000       # rows per drop
@@ -114,7 +114,7 @@ def test_warm_up_inputs_of_one_group_are_labelled_at_its_commit(tmp_path):
     before the one that completes the warm-up are labelled too."""
     import os
 
-    from shoal.daemon.drills import MTIME_BASE, InProcessService, wait_until
+    from shoal.daemon.demo.drills import MTIME_BASE, InProcessService, wait_until
 
     svc = InProcessService(tmp_path, warmup_rows=WARMUP)
     for i, path in enumerate(_drops(tmp_path / "drops", 4)):

@@ -13,10 +13,10 @@ import time
 import pytest
 
 from shoal.config import load_config
-from shoal.daemon.delivery import AlertSender
-from shoal.daemon.drills import wait_until, write_config
-from shoal.daemon.layout import prepare_folders
-from shoal.daemon.store import LedgerEntry, StateStore
+from shoal.daemon.alerts.delivery import AlertSender
+from shoal.daemon.demo.drills import wait_until, write_config
+from shoal.daemon.files.layout import prepare_folders
+from shoal.daemon.state.store import LedgerEntry, StateStore
 
 from _webhook import VerifyingReceiver, log, spec_key, spec_verify  # noqa: F401 (log)
 

@@ -1,0 +1,1 @@
+"""``shoal demo``: the cold-storage warehouse scenario (invented data), end to end."""

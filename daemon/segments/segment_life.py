@@ -1,0 +1,573 @@
+"""Segments that are born, retire and merge, decided at fixed points along the stream.
+
+The pipeline hands every piece of rows it learns to a :class:`LifeWatch` (one per
+input), and asks it, before each piece, whether a decision point has been reached.
+Decision points sit at every multiple of ``lifecycle.check_rows`` rows learned after
+warm-up, and pieces never cross them or the model's refresh points, so each row is
+tested with the parameters that scored it and every decision is taken on the same
+model whatever the cut of the stream into files (a restart redoes the same input
+from the same checkpoint and decides the same).
+
+At a decision point, in this order:
+
+retire  a segment whose share of the rows learned between decision points (the sum
+        of its responsibilities over them) has been under ``retire_weight`` for
+        ``retire_rows`` rows or more is dropped (:func:`shoal.core.lifecycle.retire`).
+        The evidence is the recent rows, not the model's weight, which fades with
+        the half-life (from 10% to 0.5% takes 4.3 half-lives) and so would keep a
+        vanished segment long after its rows stopped;
+merge   the two segments that overlap most, if closer than ``merge_distance``, are
+        merged by adding their statistics; the older id survives
+        (:func:`shoal.core.lifecycle.merge`);
+birth   rows no segment explains (chi-square bound) sit in a bounded pool; when at
+        least ``birth_rows`` of them form one compact group
+        (:func:`shoal.core.lifecycle.compact_group`) that widening a segment does not
+        explain as well (:func:`shoal.core.lifecycle.widening_explains`) a segment is
+        born from it with a new id (:func:`shoal.core.lifecycle.add_component`);
+split   every fourth row goes to its segment's sample; when two Gaussians explain a
+        segment's renewed sample better than one, by BIC
+        (:func:`shoal.core.lifecycle.split_test`), and the parts would not merge
+        back, it splits: the larger part keeps the id (:func:`shoal.core.lifecycle.split`).
+
+A pair that split or merged is not merged or split back for
+``lifecycle.cool_down_rows`` rows.
+
+The pool and the bookkeeping travel in the checkpoint's ``extra["lifecycle"]`` and are
+committed with the model. Each event becomes a segment-history entry and an alert
+(``kind: lifecycle``); the drift baseline drops a retired or merged-away id at once
+and takes a born segment in once it has settled (``lifecycle.settle_rows`` rows).
+"""
+from __future__ import annotations
+
+import base64
+import hashlib
+import json
+import logging
+from dataclasses import replace
+
+import numpy as np
+
+from shoal.config import Settings
+from shoal.core import Mixture, ModelError
+from shoal.core.drift import Baseline
+from shoal.core.lifecycle import (
+    add_component,
+    OVERLAP_MEASURES,
+    compact_group,
+    merge,
+    overlapping_pairs,
+    retire,
+    split,
+    split_test,
+    squared_mahalanobis,
+    unexplained,
+    unexplained_below,
+    widening_explains,
+)
+from shoal.daemon.runtime.logs import log_event
+from shoal.daemon.segments.monitor import PAYLOAD_SCHEMA_VERSION
+from shoal.daemon.state.store import HistoryRow
+from shoal.daemon.model.transforming import feature_centres, history_units
+
+__all__ = ["LifeWatch", "lifecycle_alert_id", "STATE_FORMAT"]
+
+STATE_FORMAT = 1
+_MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT = 1e-3, 0.5
+_SAMPLE_STRIDE = 4
+_SAMPLE_MIN, _SAMPLE_PER_FEATURE, _SAMPLE_MAX = 200, 50, 500
+"""Every fourth row of the stream goes to its segment's sample (the newest 50 per
+feature, 200 to 500 rows), on which the split test runs each time twice its size has
+come in since the last test."""
+_BIRTH_ROWS_PER_FEATURE = 20
+"""A group is born only from at least this many rows per feature (besides
+``birth_rows``): its mean is then known to about ``sqrt(D / n) = 0.22`` of its sds
+(Mahalanobis), the rms error of a mean from ``n`` rows."""
+
+
+def _pack(rows: np.ndarray) -> str:
+    """Rows as base64 of their float32 bytes: the checkpoint's JSON carries a sample of
+    hundreds of rows as one string, which encodes and decodes far faster than lists.
+    Seven digits are plenty for a split test, and every input reads the sample back
+    from this form, so a restart sees exactly what an uninterrupted run does."""
+    return base64.b64encode(np.ascontiguousarray(rows, dtype="<f4").tobytes()).decode("ascii")
+
+
+def _unpack(packed: str | None, n_features: int) -> np.ndarray:
+    if not packed:
+        return np.empty((0, n_features))
+    rows = np.frombuffer(base64.b64decode(packed), dtype="<f4").reshape(-1, n_features)
+    return rows.astype(np.float64)
+
+
+def _recent_share(rows: np.ndarray, n: int, trim: float = 0.1) -> float:
+    """The share of the stream's rows that a group born at row ``n`` takes, from the
+    stream positions ``rows`` of its members in the pool.
+
+    A new group's rows arrive at a steady rate since it appeared, while a few older
+    scattered rows may sit in the pool with them. The oldest ``trim`` share of the
+    members is set aside: with ``c`` members sorted by row, ``r_j`` the first kept
+    (``j = ceil(trim c)``), the share is ``(c - j + 1) / (n - r_j)``. For rows at a
+    steady rate since row ``s`` this is ``c / (n - s)`` up to sampling, whatever
+    ``trim``; the group's first rows alone would let one old stray row stretch the
+    span (and shrink the share) as far back as the pool reaches.
+    """
+    rows = np.sort(np.asarray(rows, dtype=np.int64))
+    c = rows.size
+    j = max(int(np.ceil(trim * c)), 1)
+    return (c - j + 1) / max(n - int(rows[j - 1]), c - j + 1)
+
+
+def lifecycle_alert_id(event: str, segment: int) -> str:
+    """Ids are never reused, so an event and a segment id name one cause."""
+    cause = json.dumps([event, int(segment)])
+    return "segment-" + hashlib.sha256(cause.encode()).hexdigest()[:20]
+
+
+def _fmt(x: float) -> str:
+    return f"{x:.4g}"
+
+
+class LifeWatch:
+    """Lifecycle decisions for the rows of one input; ``state``, ``events`` and ``alerts``
+    go to the commit."""
+
+    # the model's FeatureTransforms (set by the pipeline): summaries give a transformed
+    # feature's median and central 68% interval in the data's units
+    transforms = None
+
+    def __init__(self, settings: Settings, state: dict | None, *, version: int, file: str):
+        self.settings = settings
+        self.cfg = settings.lifecycle
+        self.features = list(settings.features)
+        self._samples: dict[str, np.ndarray] = {}   # unpacked samples, packed at the end
+        self.version = version
+        self.file = file
+        if state is not None and state.get("format") != STATE_FORMAT:
+            raise ValueError(f"lifecycle state has format {state.get('format')!r}")
+        self.state = json.loads(json.dumps(state)) if state is not None else None
+        self.events: list[dict] = []
+        self.alerts: list[tuple[str, dict]] = []
+        self._pool_X = self._pool_rows = None
+        if self.state is not None:
+            self._load_pool()
+
+    # -- state -----------------------------------------------------------------------
+    def start(self, stream_offset: int) -> None:
+        """A new model: stream rows are ``stream_offset`` + rows learned after warm-up."""
+        self.state = {"format": STATE_FORMAT, "offset": int(stream_offset), "done_at": 0,
+                      "low_since": {}, "unsettled": {}, "pool": {"X": [], "rows": []},
+                      "recent": {"rows": 0, "mass": {}}, "sample": {}, "fresh": {},
+                      "cool": {}}
+        self._load_pool()
+
+    def _ensure(self) -> dict:
+        if self.state is None:   # a model made before lifecycle watching: count from here
+            self.start(self.settings.warmup_rows)
+        return self.state
+
+    def _load_pool(self) -> None:
+        pool = self.state["pool"]
+        d = len(self.features)
+        self._pool_X = np.array(pool["X"], dtype=np.float64).reshape(-1, d)
+        self._pool_rows = np.array(pool["rows"], dtype=np.int64)
+
+    def final_state(self) -> dict:
+        st = self._ensure()
+        st["pool"] = {"X": self._pool_X.tolist(), "rows": self._pool_rows.tolist()}
+        sample = st.setdefault("sample", {})
+        for key, rows in self._samples.items():
+            sample[key] = _pack(rows)
+        return st
+
+    # -- pieces ----------------------------------------------------------------------
+    def rows_to_boundary(self, mixture: Mixture) -> int:
+        """Rows the next piece may hold: it crosses no decision point and no refresh point
+        (so the whole piece is scored with one parameter set, the one it is tested with)."""
+        n = int(mixture.n_rows)
+        c, r = self.cfg.check_rows, int(mixture.refresh_rows)
+        return min(c - n % c, r - n % r)
+
+    def observe(self, before: Mixture, X: np.ndarray, scores) -> None:
+        """Pool the rows of a learned piece that no segment explains; ``before`` is the
+        model that scored them (its ``n_rows`` is the piece's first learned row)."""
+        st = self._ensure()
+        recent = st.setdefault("recent", {"rows": 0, "mass": {}})
+        recent["rows"] += len(X)
+        mass = scores.resp.sum(axis=0)
+        for sid, m in zip(before.ids.tolist(), mass.tolist()):
+            recent["mass"][str(sid)] = recent["mass"].get(str(sid), 0.0) + m
+        self._sample(before, X, scores)
+        q = self.cfg.unexplained_quantile
+        near = np.flatnonzero(scores.log_density < unexplained_below(before, q) + 1e-9)
+        if near.size == 0:
+            return
+        far = near[unexplained(before, X[near], q)]
+        if far.size == 0:
+            return
+        keep = self.cfg.pool_rows
+        self._pool_X = np.concatenate([self._pool_X, X[far]])[-keep:]
+        self._pool_rows = np.concatenate([self._pool_rows, before.n_rows + far])[-keep:]
+
+    def _sample(self, before: Mixture, X: np.ndarray, scores) -> None:
+        """Keep every ``_SAMPLE_STRIDE``-th row of the stream (by position, so the same
+        rows whatever the cut) in its segment's sample, the newest ``_sample_cap``."""
+        st = self.state
+        fresh = st.setdefault("fresh", {})
+        first = (-int(before.n_rows)) % _SAMPLE_STRIDE
+        picked = np.arange(first, len(X), _SAMPLE_STRIDE)
+        # rows with missing features (NaN) have no place in a split test's sample
+        picked = picked[~np.isnan(X[picked]).any(axis=1)]
+        if picked.size == 0:
+            return
+        cap = self._sample_cap()
+        labels = scores.segment[picked]
+        for sid in np.unique(labels).tolist():
+            # rounded as the checkpoint keeps them, so a restart sees the same rows
+            rows = X[picked[labels == sid]].astype(np.float32).astype(np.float64)
+            key = str(sid)
+            self._samples[key] = np.concatenate([self._sampled(key), rows])[-cap:]
+            fresh[key] = fresh.get(key, 0) + len(rows)
+
+    def _sampled(self, key: str) -> np.ndarray:
+        """The rows of a segment's sample, shape (n, n_features)."""
+        if key not in self._samples:
+            packed = self.state.get("sample", {}).get(key)
+            self._samples[key] = _unpack(packed, len(self.features))
+        return self._samples[key]
+
+    def _sample_cap(self) -> int:
+        return int(min(max(_SAMPLE_MIN, _SAMPLE_PER_FEATURE * len(self.features)), _SAMPLE_MAX))
+
+    # -- decision points -------------------------------------------------------------
+    def at_boundary(self, mixture: Mixture, watch=None) -> Mixture:
+        """At a decision point not yet taken, retire, merge, give birth and split; returns
+        the model to learn on with."""
+        st = self._ensure()
+        n = int(mixture.n_rows)
+        if n == 0 or n % self.cfg.check_rows or st["done_at"] == n:
+            return mixture
+        st["done_at"] = n
+        old = self._pool_rows >= n - self.cfg.pool_span_rows
+        self._pool_X, self._pool_rows = self._pool_X[old], self._pool_rows[old]
+        mixture = self._retire(mixture, n, watch)
+        mixture = self._merge(mixture, n, watch)
+        mixture = self._birth(mixture, n)
+        mixture = self._split(mixture, n, watch)
+        self._settle(mixture, n, watch)
+        return mixture
+
+    def _retire(self, mixture: Mixture, n: int, watch) -> Mixture:
+        st = self.state
+        low = {sid: at for sid, at in st["low_since"].items()
+               if int(sid) in set(mixture.ids.tolist())}
+        recent = st.get("recent") or {"rows": 0, "mass": {}}
+        st["recent"] = {"rows": 0, "mass": {}}
+        share = {}
+        if recent["rows"] > 0:
+            start = n - recent["rows"]
+            for sid in mixture.ids.tolist():
+                share[sid] = recent["mass"].get(str(sid), 0.0) / recent["rows"]
+                if share[sid] < self.cfg.retire_weight:
+                    low.setdefault(str(sid), start)
+                else:
+                    low.pop(str(sid), None)
+        due = sorted((share.get(sid, float(mixture.weights[k])), sid)
+                     for k, sid in enumerate(mixture.ids.tolist())
+                     if str(sid) in low and n - low[str(sid)] >= self.cfg.retire_rows)
+        for weight, sid in due:
+            if mixture.n_components < 2:
+                break
+            since = low[str(sid)]
+            k = int(np.flatnonzero(mixture.ids == sid)[0])
+            mean, sd = mixture.data_means()[k], mixture.data_stds()[k]
+            mixture = retire(mixture, sid)
+            low.pop(str(sid), None)
+            st["unsettled"].pop(str(sid), None)
+            self._drop_baseline(watch, [sid], "retired")
+            self._event("retired", sid, n, weight=weight, mean=mean, spread=sd,
+                        under_since_row=self.state["offset"] + since,
+                        summary=(f"segment {sid} retired: its share of recent rows "
+                                 f"stayed under {self.cfg.retire_weight:.2%} for "
+                                 f"{n - since} rows (last {weight:.2%}); its rows go "
+                                 f"to the others; "
+                                 f"it was {self._describe(mean, sd)}"))
+        st["low_since"] = low
+        return mixture
+
+    def _merge(self, mixture: Mixture, n: int, watch) -> Mixture:
+        bound = self.cfg.merge_distance
+        if bound is None or mixture.n_components < 2:
+            return mixture
+        cool = self._cooling(n)
+        pairs = [p for p in overlapping_pairs(mixture, bound, self.cfg.merge_measure)
+                 if f"{p[0]}|{p[1]}" not in cool]
+        if not pairs:
+            return mixture
+        keep, drop, distance = pairs[0]
+        cool[str(keep)] = n + self.cfg.cool_down_rows   # no split of the merged segment
+        means, sds = mixture.data_means(), mixture.data_stds()
+        ka, kb = (int(np.flatnonzero(mixture.ids == i)[0]) for i in (keep, drop))
+        before = {str(sid): {"weight": float(mixture.weights[k]), "mean": means[k].tolist(),
+                             "spread": sds[k].tolist()}
+                  for sid, k in ((keep, ka), (drop, kb))}
+        mixture = merge(mixture, keep, drop)
+        k = int(np.flatnonzero(mixture.ids == keep)[0])
+        mean, sd = mixture.data_means()[k], mixture.data_stds()[k]
+        self.state["unsettled"].pop(str(drop), None)
+        self.state["low_since"].pop(str(drop), None)
+        self._drop_baseline(watch, [drop], "merged")
+        measure = self.cfg.merge_measure
+        self._event("merged", drop, n, into=keep, distance=distance, measure=measure,
+                    before=before, weight=float(mixture.weights[k]), mean=mean, spread=sd,
+                    summary=(f"segment {drop} merged into segment {keep} ({measure} distance "
+                             f"{distance:.3f} < {bound:g}); merged segment "
+                             f"{self._describe(mean, sd)}, weight {mixture.weights[k]:.1%}"))
+        return mixture
+
+    def _cooling(self, n: int) -> dict:
+        """Pairs ("a|b", no merge) and segments ("a", no split) still cooling down."""
+        st = self.state
+        st["cool"] = {k: until for k, until in st.get("cool", {}).items() if until > n}
+        return st["cool"]
+
+    def _split(self, mixture: Mixture, n: int, watch) -> Mixture:
+        """Split the first segment whose renewed sample (the rows it still holds) two
+        Gaussians explain better than one (by BIC), if the two parts would not merge
+        back; one split per decision point."""
+        st = self.state
+        live = {str(sid) for sid in mixture.ids.tolist()}
+        for name in ("sample", "fresh"):   # segments that left take their samples along
+            st[name] = {key: v for key, v in st.setdefault(name, {}).items() if key in live}
+        self._samples = {key: v for key, v in self._samples.items() if key in live}
+        cap = self._sample_cap()
+        cool = self._cooling(n)
+        bound = self.cfg.merge_distance
+        for sid in mixture.ids.tolist():
+            key = str(sid)
+            rows = self._sampled(key)
+            if len(rows) < cap or st["fresh"].get(key, 0) < 2 * cap or key in cool:
+                continue
+            if mixture.n_components >= self.cfg.max_segments:
+                break
+            st["fresh"][key] = 0
+            # the rows the segment still holds (a birth or merge since may have
+            # taken some elsewhere) and explains: rows far from every segment are
+            # the pool's, for a birth
+            rows = rows[(mixture.score(rows).segment == sid)
+                        & ~unexplained(mixture, rows, self.cfg.unexplained_quantile)]
+            if len(rows) < cap // 2:
+                continue
+            parts = split_test(rows, covariance=mixture.covariance,
+                               seed=self.settings.seed,
+                               reg_covar=self.settings.learning.reg_covar)
+            if parts is None:
+                continue
+            fractions, means, covs, gain = parts
+            if bound is not None:
+                apart = OVERLAP_MEASURES[self.cfg.merge_measure](means[0], covs[0],
+                                                                 means[1], covs[1])
+                if apart < bound:
+                    continue   # the merge rule would put them back together
+            k = int(np.flatnonzero(mixture.ids == sid)[0])
+            before = {"weight": float(mixture.weights[k]), "mean": mixture.data_means()[k].tolist(),
+                      "spread": mixture.data_stds()[k].tolist()}
+            try:
+                mixture = split(mixture, sid, fractions, means, covs)
+            except ModelError as exc:
+                log_event("segment_split_skipped", logging.WARNING, segment=sid,
+                          model_version=self.version, detail=str(exc))
+                continue
+            new = int(mixture.ids[-1])
+            cool[f"{sid}|{new}"] = n + self.cfg.cool_down_rows
+            for part in (key, str(new)):
+                self._samples[part] = np.empty((0, mixture.n_features))
+                st["fresh"][part] = 0
+                st["unsettled"][part] = n
+            self._drop_baseline(watch, [sid], "split")
+            ka = int(np.flatnonzero(mixture.ids == sid)[0])
+            means_now, sds_now = mixture.data_means(), mixture.data_stds()
+            self._event("split", sid, n, new=new, gain=gain, before=before,
+                        weight=float(mixture.weights[ka]), mean=means_now[ka],
+                        spread=sds_now[ka],
+                        new_weight=float(mixture.weights[-1]), new_mean=means_now[-1].tolist(),
+                        new_spread=sds_now[-1].tolist(),
+                        summary=(f"segment {sid} split in two (BIC gain {gain:.1f}): it keeps "
+                                 f"{self._describe(means_now[ka], sds_now[ka])}, weight "
+                                 f"{mixture.weights[ka]:.1%}; new segment {new} takes "
+                                 f"{self._describe(means_now[-1], sds_now[-1])}, weight "
+                                 f"{mixture.weights[-1]:.1%}"))
+            return mixture
+        return mixture
+
+    def _birth(self, mixture: Mixture, n: int) -> Mixture:
+        cfg = self.cfg
+        if len(self._pool_X) < cfg.birth_rows or mixture.n_components >= cfg.max_segments:
+            return mixture
+        covs = mixture.data_covariance_matrices()
+        widest = max(float(np.exp(0.5 * np.linalg.slogdet(c)[1] / mixture.n_features))
+                     for c in covs)
+        group = compact_group(self._pool_X,
+                              min_rows=max(cfg.birth_rows, _BIRTH_ROWS_PER_FEATURE * len(self.features)),
+                              max_sd=cfg.birth_max_spread * widest,
+                              threshold=cfg.unexplained_quantile, seed=self.settings.seed,
+                              reg_covar=self.settings.learning.reg_covar)
+        if group is None:
+            return mixture
+        mean, cov, members = group
+        count = int(members.sum())
+        widened, gain = widening_explains(mixture, self._pool_X[members], mean, cov,
+                                          cfg.unexplained_quantile)
+        if widened is None:
+            widened, gain = self._ring(mixture, mean, count)
+        if widened is not None:
+            log_event("segment_birth_declined", logging.DEBUG, rows=count, segment=widened,
+                      detail=f"segment {widened} widened explains the group as well "
+                             f"(BIC gain of a new group {gain:.1f}; nan: centred on it)")
+            return mixture
+        weight = float(np.clip(_recent_share(self._pool_rows[members], n),
+                               _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT))
+        try:
+            mixture = add_component(mixture, weight, mean, cov)
+        except ModelError as exc:   # e.g. a group too extreme for float64: no birth
+            log_event("segment_birth_skipped", logging.WARNING, rows=count,
+                      model_version=self.version, detail=str(exc))
+            return mixture
+        sid = int(mixture.ids[-1])
+        self._pool_X, self._pool_rows = self._pool_X[~members], self._pool_rows[~members]
+        self.state["unsettled"][str(sid)] = n
+        sd = np.sqrt(np.diag(cov))
+        self._event("born", sid, n, weight=weight, mean=mean, spread=sd, rows=count,
+                    summary=(f"segment {sid} born from {count} unexplained rows "
+                             f"(about {weight:.1%} of recent rows): "
+                             f"{self._describe(mean, sd)}"))
+        return mixture
+
+    def _ring(self, mixture: Mixture, mean, count: int):
+        """The widening test on every pooled row nearest the group's segment, when the
+        group is less than half of them: a spread that grew leaves a ring of rows
+        around the segment, and a compact arc of it is a group that does not surround
+        the segment although the ring does. ``(None, nan)`` otherwise."""
+        nearest = np.argmin(squared_mahalanobis(mixture, self._pool_X), axis=1)
+        k = int(np.argmin(squared_mahalanobis(mixture, np.asarray(mean)[None])[0]))
+        ring = self._pool_X[nearest == k]
+        d = mixture.n_features
+        if len(ring) < 2 * count or len(ring) < d + 2:
+            return None, float("nan")   # the group is most of them: it stands on its own
+        cov = np.cov(ring, rowvar=False) + self.settings.learning.reg_covar * np.eye(d)
+        try:
+            return widening_explains(mixture, ring, ring.mean(axis=0), cov,
+                                     self.cfg.unexplained_quantile)
+        except np.linalg.LinAlgError:
+            return None, float("nan")
+
+    def _settle(self, mixture: Mixture, n: int, watch) -> None:
+        """Born segments that have settled join the drift baseline."""
+        unsettled = self.state["unsettled"]
+        ready = sorted(int(sid) for sid, at in unsettled.items()
+                       if n - at >= self.cfg.settle_rows)
+        if not ready:
+            return
+        for sid in ready:
+            del unsettled[str(sid)]
+        st = getattr(watch, "state", None)
+        present = [sid for sid in ready if sid in set(mixture.ids.tolist())]
+        if st is None or st.get("baseline") is None or not present:
+            return   # a baseline taken later includes them
+        ref = Baseline.from_dict(st["baseline"]).adopt(mixture, present)
+        st["baseline"] = ref.to_dict()
+        log_event("drift_baseline_adopted", segments=present, model_version=self.version)
+
+    def _drop_baseline(self, watch, ids, why: str) -> None:
+        """A segment that left: out of the drift baseline, its raised drift alerts
+        cleared (``cleared_by`` the event), its part-way crossings forgotten."""
+        st = getattr(watch, "state", None)
+        if st is None:
+            return
+        if st.get("baseline") is not None:
+            st["baseline"] = Baseline.from_dict(st["baseline"]).without(ids).to_dict()
+        gone = {str(int(i)) for i in ids}
+        for key in sorted(st.get("open", {})):
+            if key.split("|")[0] not in gone:
+                continue
+            alert = st["open"].pop(key)
+            payload = dict(alert["payload"], status="cleared", value=None, cleared_by=why,
+                           note=f"segment {key.split('|')[0]} {why}")
+            payload["model_version"] = {"first": alert["payload"]["model_version"]["first"],
+                                        "last": self.version}
+            watch.alerts.append((f"{payload['id']}.cleared", payload))
+        if st.get("bounds"):
+            for sid in gone:
+                st["bounds"]["entries"].pop(sid, None)
+
+    # -- events ----------------------------------------------------------------------
+    def _describe(self, mean, sd) -> str:
+        t = self.transforms
+        back = {} if t is None or t.identity else feature_centres(t, self.features, mean, sd)
+        return ", ".join(
+            f"{f} {_fmt(back[f]['median'])} [{_fmt(back[f]['interval'][0])}, "
+            f"{_fmt(back[f]['interval'][1])}]" if f in back else f"{f} {_fmt(m)}±{_fmt(s)}"
+            for f, m, s in zip(self.features, mean, sd))
+
+    def _event(self, kind: str, sid: int, n: int, *, weight, mean, spread, summary, **more):
+        row = self.state["offset"] + n
+        mean, spread = history_units(self.transforms, mean, spread)   # the data's units
+        event = {"event": kind, "segment": int(sid), "row": int(row),
+                 "weight": float(weight), "mean": np.asarray(mean).tolist(),
+                 "spread": np.asarray(spread).tolist(), **more}
+        self.events.append(event)
+        payload = {
+            "schema_version": PAYLOAD_SCHEMA_VERSION,
+            "id": lifecycle_alert_id(kind, sid),
+            "kind": "lifecycle",
+            "status": kind,
+            "severity": "warning",
+            "segment": int(sid),
+            "statistic": "segments",
+            "model_version": {"first": self.version, "last": self.version},
+            "rows": {"first": int(row), "last": int(row)},
+            "inputs": [self.file] if self.file else [],
+            "explanation": {"summary": summary,
+                            "mean": dict(zip(self.features, event["mean"])),
+                            "spread": dict(zip(self.features, event["spread"])),
+                            "weight": event["weight"],
+                            **{k: v for k, v in more.items()}},
+        }
+        self.alerts.append((f"{payload['id']}.{kind}", payload))
+
+    def history(self, rows: list[HistoryRow]) -> list[HistoryRow]:
+        """The segment history of this version with the events marked; a segment that
+        left gets a row of its own (weight 0, its last mean and spread)."""
+        notes: dict[int, list[str]] = {}
+        last: dict[int, dict] = {}
+        for e in self.events:
+            text = {"born": "born", "retired": "retired",
+                    "merged": f"merged into {e.get('into')}",
+                    "split": f"split, part {e.get('new')} new"}[e["event"]]
+            notes.setdefault(e["segment"], []).append(f"{text} at row {e['row']}")
+            if e["event"] == "merged":
+                notes.setdefault(e["into"], []).append(
+                    f"absorbed {e['segment']} at row {e['row']}")
+            if e["event"] == "split":
+                notes.setdefault(e["new"], []).append(
+                    f"split from {e['segment']} at row {e['row']}")
+            last[e["segment"]] = e
+        out = []
+        for r in rows:
+            if r.segment in notes:
+                r = replace(r, event="; ".join(notes.pop(r.segment)))
+            out.append(r)
+        for sid in sorted(notes):
+            e = last.get(sid)
+            if e is None:
+                continue
+            out.append(HistoryRow(segment=sid, weight=0.0, rows=0, mean=e["mean"],
+                                  spread=e["spread"], event="; ".join(notes[sid])))
+        return out
+
+    def log_events(self, model_version: int) -> None:
+        """One log line per event; called once they are committed."""
+        for _, payload in self.alerts:
+            log_event(f"segment_{payload['status']}", logging.INFO, id=payload["id"],
+                      segment=payload["segment"], model_version=model_version,
+                      row=payload["rows"]["first"],
+                      summary=payload["explanation"]["summary"])
