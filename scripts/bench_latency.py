@@ -19,8 +19,11 @@ def bench_latency(drops: int = 100, rows: int = 1000, seed: int = 0,
                   workdir: Path | None = None, fmt: str = "parquet") -> dict:
     """Seconds per drop (p50, p95, max) from rename into the inbox to labels file present."""
     from shoal.daemon.files.digest import digest_file
-    from shoal.daemon.demo.drills import (ServiceProcess, synthetic_table, wait_until, write_config,
-                                     write_drop)
+    from scripts.tests_support import load
+
+    drills = load("drills")   # the suite's support module, by file
+    ServiceProcess, synthetic_table = drills.ServiceProcess, drills.synthetic_table
+    wait_until, write_config, write_drop = drills.wait_until, drills.write_config, drills.write_drop
     from shoal.daemon.state.readout import StateReader
     from shoal.daemon.files.writer import labels_name
 

@@ -3,7 +3,7 @@
 Each scenario draws K (3-6) well-separated Gaussians in D (2-8) features, the smallest
 weight at least 8%, and runs the real pipeline in-process on Parquet drops of 10,000
 rows with the shipped defaults except ``half_life_rows: 50000`` and ``warmup_rows:
-5000`` (``tests/_scenarios.py``; the suite runs a few of the same seeds).
+5000`` (``tests/support/_scenarios.py``; the suite runs a few of the same seeds).
 
 Kinds:
 

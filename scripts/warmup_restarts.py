@@ -1,7 +1,7 @@
 """Warm-up fits against the best of 20 restarts of scikit-learn's EM, seed by seed.
 
 Each seed draws a warm-up buffer of 5,000 rows from K (3-6) well-separated Gaussians
-in D (2-8) features, the smallest weight 8% (``tests/_scenarios.py``), fits it with
+in D (2-8) features, the smallest weight 8% (``tests/support/_scenarios.py``), fits it with
 ``shoal.core.initialise`` (the service's defaults: ``n_init`` 5, full covariances) and
 with ``sklearn.mixture.GaussianMixture(n_init=20, max_iter=500, tol=1e-6)`` as the
 reference, and prints the mean log-likelihood per row of each and their difference.

@@ -172,7 +172,7 @@ def demo_table(columns: dict) -> pa.Table:
 
 
 def _feed(inbox: Path, n_files: int, rows_per_file: int, seed: int, pause: float) -> None:
-    from shoal.daemon.demo.drills import write_drop
+    from shoal.daemon.demo.drops import write_drop
 
     drift, new_state = demo_changes(n_files * rows_per_file)
     dropout = demo_dropout(n_files * rows_per_file)
