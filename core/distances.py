@@ -273,12 +273,13 @@ def hellinger_distance(mean0, cov0, mean1, cov1):
     Parameters
     ----------
     mean0, mean1 : array_like of shape (..., n_features)
+        The two Gaussians' means; leading dimensions broadcast.
     cov0, cov1 : array_like of shape (..., n_features, n_features)
-        Symmetric positive definite. Leading dimensions broadcast.
+        Their covariances, symmetric positive definite.
 
     Returns
     -------
-    distance : float or ndarray of shape (...)
+    hellinger : float or ndarray of shape (...)
         Symmetric; 0 for identical Gaussians, 1 for Gaussians that do not overlap.
     """
     distance = _bhattacharyya(*_check_pair(mean0, cov0, mean1, cov1))
