@@ -193,6 +193,7 @@ class FeatureTransforms:
         Parameters
         ----------
         X : ndarray of shape (n_samples, n_features)
+            Rows in the data's units.
 
         Returns
         -------
@@ -306,6 +307,7 @@ class FeatureTransforms:
         Parameters
         ----------
         Y : ndarray of shape (n_samples, n_features)
+            Rows in the transformed units (as the model sees them).
 
         Returns
         -------
