@@ -47,6 +47,15 @@ def _positive_branch_inverse(y, lmbda):
     return np.expm1(np.log1p(lmbda * y) / lmbda)
 
 
+def _mirrored(branch, values, lmbda):
+    """``branch(v, lmbda)`` where ``v >= 0`` and ``-branch(-v, 2 - lmbda)`` elsewhere."""
+    out = np.empty_like(values)
+    pos = values >= 0
+    out[pos] = branch(values[pos], lmbda)
+    out[~pos] = -branch(-values[~pos], 2.0 - lmbda)
+    return out
+
+
 def yeo_johnson(x, lmbda: float) -> np.ndarray:
     """The Yeo-Johnson transform of ``x`` with parameter ``lmbda``.
 
@@ -62,12 +71,7 @@ def yeo_johnson(x, lmbda: float) -> np.ndarray:
     y : ndarray of shape (n_samples,)
         By ``expm1``/``log1p``, so that ``lmbda`` near 0 or 2 loses no precision.
     """
-    x = np.asarray(x, dtype=np.float64)
-    y = np.empty_like(x)
-    pos = x >= 0
-    y[pos] = _positive_branch(x[pos], lmbda)
-    y[~pos] = -_positive_branch(-x[~pos], 2.0 - lmbda)
-    return y
+    return _mirrored(_positive_branch, np.asarray(x, dtype=np.float64), lmbda)
 
 
 def yeo_johnson_inverse(y, lmbda: float) -> np.ndarray:
@@ -86,13 +90,8 @@ def yeo_johnson_inverse(y, lmbda: float) -> np.ndarray:
         Not finite where ``y`` is outside the transform's range (for ``lmbda < 0``
         the range is ``y < -1 / lmbda``; for ``lmbda > 2``, ``y > -1 / (2 - lmbda)``).
     """
-    y = np.asarray(y, dtype=np.float64)
-    x = np.empty_like(y)
-    pos = y >= 0
     with np.errstate(invalid="ignore", divide="ignore"):
-        x[pos] = _positive_branch_inverse(y[pos], lmbda)
-        x[~pos] = -_positive_branch_inverse(-y[~pos], 2.0 - lmbda)
-    return x
+        return _mirrored(_positive_branch_inverse, np.asarray(y, dtype=np.float64), lmbda)
 
 
 def yeo_johnson_log_jacobian(x, lmbda: float) -> np.ndarray:
