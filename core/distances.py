@@ -37,6 +37,7 @@ __all__ = [
     "kish_effective_sample_size",
     "log_generalised_variance_ratio",
     "mahalanobis_distance",
+    "pair_indices",
 ]
 
 
