@@ -1,4 +1,12 @@
-"""Settings: typed configuration, YAML loading and validation, the default config."""
+"""shoal.config: the service's configuration, typed, loaded and checked.
+
+:mod:`shoal.config.settings` holds one frozen dataclass per section of the YAML file,
+each field with its default, bounds and one line of help; :mod:`shoal.config.loading`
+lays the user's file over the shipped ``default.yaml`` and checks every key, raising
+:class:`ConfigError` with a message that names the key, what was expected and what was
+found. The package imports only the core's names of covariance types and transforms,
+never the daemon.
+"""
 from shoal.config.loading import (
     ConfigError,
     default_config_text,

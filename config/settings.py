@@ -12,6 +12,7 @@ from types import MappingProxyType
 from typing import Mapping
 
 from shoal.core.covariance import COVARIANCE_TYPES   # one list, the core's families
+from shoal.core.transforms import TRANSFORMS
 
 __all__ = [
     "SegmentCount",
@@ -37,9 +38,7 @@ __all__ = [
 OUTPUT_FORMATS = ("parquet", "csv")
 OVERLAP_MEASURES = ("hellinger", "bhattacharyya")
 LOG_LEVELS = ("debug", "info", "warning", "error")
-# the names of shoal.core.transforms.TRANSFORMS (a test keeps them equal; config does not
-# import the core's numerics to read a file)
-TRANSFORM_NAMES = ("none", "log", "log1p", "logit", "yeo-johnson")
+TRANSFORM_NAMES = TRANSFORMS            # one list, the core's transforms
 
 
 def _f(default, doc, **checks):
@@ -51,18 +50,28 @@ def _f(default, doc, **checks):
 
 @dataclass(frozen=True)
 class SegmentCount:
-    """How many segments: fixed (``min == max``) or chosen by BIC at warm-up."""
+    """The ``segments`` setting: how many segments the model has. Fixed when ``min ==
+    max`` (a single integer in the file); otherwise the warm-up fits every count from
+    ``min`` to ``max`` and keeps the one with the lowest BIC."""
 
     min: int = _f(4, "fewest segments", min=1, max=1000)
     max: int = _f(4, "most segments", min=1, max=1000)
 
     @property
     def fixed(self) -> bool:
+        """True when the count is fixed rather than chosen at warm-up."""
         return self.min == self.max
 
 
 @dataclass(frozen=True)
 class WatchSettings:
+    """The ``watch`` section: how the inbox is watched and when a dropped file counts as
+    ready. File events (or polling, on network filesystems) put names on a bounded queue;
+    a periodic rescan catches events that were missed; a file is read only once it has
+    stayed unchanged for ``settle_seconds``, and the worker counts as stuck after
+    ``stall_seconds`` without progress.
+    """
+
     settle_seconds: float = _f(
         1.0, "a file written in place is read once unchanged this long", min=0.0, max=3600.0)
     rescan_seconds: float = _f(
@@ -89,6 +98,12 @@ class WatchSettings:
 
 @dataclass(frozen=True)
 class LimitSettings:
+    """The ``limits`` section: the bounds past which an input is quarantined rather
+    than read (bytes on disk, rows, columns, decoded bytes, gzip inflation), so that a
+    hostile or mistaken file cannot exhaust memory, and how many crashes on one input
+    set it aside unread.
+    """
+
     max_file_bytes: int = _f(4 * 1024**3, "larger inputs are quarantined", min=1)
     max_rows: int = _f(20_000_000, "inputs with more rows are quarantined", min=1)
     max_columns: int = _f(10_000, "inputs with more columns are quarantined", min=1)
@@ -105,6 +120,12 @@ class LimitSettings:
 
 @dataclass(frozen=True)
 class OutputSettings:
+    """The ``output`` section: the labels files written for each committed input
+    (their format, the quantile of log-density below which a row is marked unusual, an
+    optional column of the segments' names) and whether committed inputs leave the
+    inbox.
+    """
+
     format: str = _f("parquet", "labels file format", choices=OUTPUT_FORMATS)
     unusual_quantile: float = _f(
         0.01, "rows whose log-density is below this quantile are marked unusual",
@@ -117,6 +138,11 @@ class OutputSettings:
 
 @dataclass(frozen=True)
 class InputSettings:
+    """The ``input`` section: how CSV inputs are written (delimiter, decimal mark,
+    column names when there is no header line) and what happens to a malformed row:
+    the whole input is quarantined, or the row is skipped and recorded in a sidecar.
+    """
+
     bad_rows: str = _f("quarantine", "a CSV row with the wrong number of fields or a feature "
                        "value that is no number: quarantine the input, or skip the row "
                        "(counted, its line in a sidecar next to the labels)",
@@ -130,6 +156,12 @@ class InputSettings:
 
 @dataclass(frozen=True)
 class LearningSettings:
+    """The ``learning`` section: how the model is updated after warm-up (the stepwise
+    EM step's decay, the covariance regularisation, k-means++ restarts, rows per update
+    and per parameter refresh), how many checkpoints are kept, and how many features a
+    row needs present to be labelled and learned from.
+    """
+
     step_exponent: float = _f(
         0.7, "without half_life_rows, the stepwise EM step decays as "
              "(row + offset)^-exponent", min=0.5, max=1.0,
@@ -157,6 +189,11 @@ class LearningSettings:
 
 @dataclass(frozen=True)
 class HttpSettings:
+    """The ``http`` section: the optional status endpoint (status page, metrics and
+    health), off unless a port is given, listening on loopback by default, with a bound
+    on open connections and on how long an idle one is kept.
+    """
+
     address: str = _f("127.0.0.1", "address the status endpoint listens on (loopback by default)")
     port: int | None = _f(None, "port of the status endpoint (null: off; 0: any free port)",
                           min=0, max=65535)
@@ -197,7 +234,10 @@ class DriftBounds:
 
 @dataclass(frozen=True)
 class BoundOverride:
-    """Bounds for one segment, one feature, or one feature of one segment."""
+    """One entry of ``drift.overrides``: bounds for one segment, one feature, or one
+    feature of one segment, in place of ``drift.bounds``. A key left null keeps the
+    general bound; ``feature`` is the only way to set a ``feature_shift`` bound for a
+    single feature."""
 
     segment: int | None = _f(None, "segment id the override applies to (null: every segment)",
                              min=0)
@@ -213,6 +253,14 @@ class BoundOverride:
 
 @dataclass(frozen=True)
 class DriftSettings:
+    """The ``drift`` section: how segments are compared with their baseline and when
+    an alert is raised and cleared. Statistics are evaluated over windows of
+    ``window_rows`` rows once ``settle_rows`` rows have been learned; a move counts when
+    it passes its bound and ``noise_multiple`` times its estimation noise for
+    ``persist`` windows, and clears below ``resolve_fraction`` of the bound; an optional
+    time column gives alerts their time ranges.
+    """
+
     enabled: bool = _f(True, "compare segments with their baseline and raise alerts")
     window_rows: int = _f(4096, "rows per evaluation window (the unit of persistence); "
                                 "best a multiple of learning.refresh_rows",
@@ -251,6 +299,12 @@ class DriftSettings:
 
 @dataclass(frozen=True)
 class WebhookSettings:
+    """One entry of ``alerts.webhooks``: an HTTP endpoint that receives each alert as a
+    signed JSON POST, where its signing secret is read from (a file or an environment
+    variable), and how failed deliveries are retried with exponential backoff before
+    the alert waits for the next start.
+    """
+
     url: str = _f("", "http:// or https:// URL that receives each alert as a JSON POST",
                   required=True)
     secret_file: Path | None = _f(
@@ -268,6 +322,11 @@ class WebhookSettings:
 
 @dataclass(frozen=True)
 class AlertSettings:
+    """The ``alerts`` section: where alerts are delivered. Every alert is appended to
+    a JSON-lines file (by default in the state folder) and POSTed to each configured
+    webhook whose host is in ``allow_hosts``.
+    """
+
     file: Path | None = _f(
         None, "JSON-lines file every alert is appended to (null: alerts.jsonl in the state "
               "folder)")
@@ -278,7 +337,12 @@ class AlertSettings:
 
 @dataclass(frozen=True)
 class LifecycleSettings:
-    """Segments that are born, retire and merge, checked every ``check_rows`` learned rows."""
+    """The ``lifecycle`` section: segments that are born, retire, merge and split as the
+    population changes, decided every ``check_rows`` learned rows. Rows no segment
+    explains are pooled and a compact group of them becomes a new segment; a segment
+    whose share of recent rows stays small retires; two segments closer than
+    ``merge_distance`` merge; a pair just split or merged is left alone for
+    ``cool_down_rows`` rows."""
 
     enabled: bool = _f(True, "segments are born, retired and merged as the population changes")
     check_rows: int = _f(
@@ -352,7 +416,11 @@ class RetentionSettings:
 
 @dataclass(frozen=True)
 class Settings:
-    """The whole configuration. Folders are absolute once loaded."""
+    """The whole configuration, one frozen object: the features modelled, the folders
+    (absolute once loaded: relative ones are taken from the config file's folder), the
+    model's shape (segments, covariance type, warm-up, forgetting) and one section
+    object per part of the service. Build it with :func:`shoal.config.load_config` or
+    :func:`shoal.config.parse_config`, which validate every key."""
 
     features: tuple[str, ...] = _f((), "numeric columns modelled (required)", required=True)
     inbox: Path = _f(Path("inbox"), "folder watched for drops")

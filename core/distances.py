@@ -8,16 +8,13 @@ log-determinants come from the factor's diagonal.
 
 Formulas (``d`` features, ``dm = m1 - m0``):
 
-* Kullback-Leibler:
-  ``KL(N0 || N1) = 0.5 (tr(S1^-1 S0) + dm' S1^-1 dm - d + log|S1| - log|S0|)``.
 * Bhattacharyya, with ``S = (S0 + S1) / 2``:
   ``D_B = dm' S^-1 dm / 8 + 0.5 log(|S| / sqrt(|S0| |S1|))``; coefficient
   ``BC = exp(-D_B)``; Hellinger ``H = sqrt(1 - BC)`` (so ``0 <= H <= 1``).
-* 2-Wasserstein:
-  ``W2^2 = |dm|^2 + tr S0 + tr S1 - 2 tr (S1^1/2 S0 S1^1/2)^1/2``.
 * Mahalanobis distance of a mean under a reference covariance, and Hotelling's
   ``T^2 = n_eff * dm' S^-1 dm`` with Kish's effective sample size
-  ``n_eff = (sum w)^2 / sum w^2``.
+  ``n_eff = (sum w)^2 / sum w^2``, whose upper tail :func:`hotelling_t2_pvalue` gives.
+* Log generalised variance ratio ``log |S1| - log |S0|``.
 """
 
 from __future__ import annotations
@@ -30,21 +27,17 @@ from scipy import linalg, special
 from .errors import IllConditionedError, ModelError
 
 __all__ = [
-    "bhattacharyya_coefficient",
     "bhattacharyya_distance",
     "GaussianSet",
     "hellinger_distance",
     "hellinger_from_bhattacharyya",
     "pairwise_bhattacharyya",
     "bhattacharyya_lower_bound",
-    "hotelling_t2",
-    "hotelling_t2_critical_value",
     "hotelling_t2_pvalue",
     "kish_effective_sample_size",
-    "kl_divergence",
     "log_generalised_variance_ratio",
     "mahalanobis_distance",
-    "wasserstein2_distance",
+    "pair_indices",
 ]
 
 
@@ -121,9 +114,9 @@ def _solve_lower(chol, rhs):
     """``chol^-1 rhs`` for lower-triangular ``chol`` (..., D, D), ``rhs`` (..., D, m).
 
     A stack is solved by forward substitution over its D rows, each step one
-    vectorised product over the whole stack: a LAPACK call per matrix costs tens of
-    microseconds of call overhead each, which for the small stacks of the drift and
-    lifecycle checks (K(K-1)/2 pairs of 16 x 16 factors) was most of their time.
+    vectorised product over the whole stack: a LAPACK call per matrix pays its call
+    overhead once per matrix, which dominates for the small stacks of the drift and
+    lifecycle checks (K(K-1)/2 pairs of D x D factors).
     """
     if chol.ndim == 2 and rhs.ndim == 2:
         return linalg.solve_triangular(chol, rhs, lower=True, check_finite=False)
@@ -140,9 +133,22 @@ def _solve_lower(chol, rhs):
 
 @functools.lru_cache(maxsize=64)
 def pair_indices(n: int) -> tuple[np.ndarray, np.ndarray]:
-    """``np.triu_indices(n, k=1)``, made once per ``n`` (read-only): the unordered pairs
-    of ``n`` Gaussians, in the order the pairwise functions use (numpy builds them
-    from an (n, n) mask each call, ~0.1 ms; the lifecycle asks at every decision point)."""
+    """The unordered pairs of ``n`` Gaussians, in the order the pairwise functions use.
+
+    ``np.triu_indices(n, k=1)``, made once per ``n`` and kept read-only: numpy builds
+    them from an (n, n) mask on every call, and the lifecycle asks at every decision
+    point.
+
+    Parameters
+    ----------
+    n : int
+        The number of Gaussians.
+
+    Returns
+    -------
+    rows, cols : ndarray of shape (n (n - 1) / 2,), int
+        The first and second member of each pair, ``rows < cols``.
+    """
     rows, cols = np.triu_indices(n, k=1)
     rows.setflags(write=False)
     cols.setflags(write=False)
@@ -160,43 +166,11 @@ def _squared_mahalanobis_chol(diff, chol):
     return np.sum(white * white, axis=-1)
 
 
-def _sqrtm_psd(cov):
-    """Symmetric square root of a stack of symmetric PSD matrices, by eigh."""
-    eigval, eigvec = np.linalg.eigh(cov)
-    root = np.sqrt(np.clip(eigval, 0.0, None))
-    return (eigvec * root[..., None, :]) @ np.swapaxes(eigvec, -1, -2)
-
-
 def _scalar_or_array(value):
     return float(value) if np.ndim(value) == 0 else value
 
 
 # --------------------------------------------------------------------------- public
-
-
-def kl_divergence(mean0, cov0, mean1, cov1):
-    """Kullback-Leibler divergence ``KL(N(mean0, cov0) || N(mean1, cov1))`` in nats.
-
-    Parameters
-    ----------
-    mean0, mean1 : array_like of shape (..., n_features)
-    cov0, cov1 : array_like of shape (..., n_features, n_features)
-        Symmetric positive definite. Leading dimensions broadcast.
-
-    Returns
-    -------
-    kl : float or ndarray of shape (...)
-        Non-negative (rounding below zero is clipped to zero). Not symmetric.
-    """
-    mean0, cov0, mean1, cov1 = _check_pair(mean0, cov0, mean1, cov1)
-    chol0 = _cholesky(cov0, "cov0")
-    chol1 = _cholesky(cov1, "cov1")
-    n_features = mean0.shape[-1]
-    # tr(S1^-1 S0) = ||L1^-1 L0||_F^2
-    trace_term = np.sum(_solve_lower(chol1, chol0) ** 2, axis=(-2, -1))
-    maha = _squared_mahalanobis_chol(mean1 - mean0, chol1)
-    kl = 0.5 * (trace_term + maha - n_features + _log_det_chol(chol1) - _log_det_chol(chol0))
-    return _scalar_or_array(np.maximum(kl, 0.0))
 
 
 def _bhattacharyya(mean0, cov0, mean1, cov1):
@@ -215,6 +189,7 @@ def bhattacharyya_distance(mean0, cov0, mean1, cov1):
     ----------
     mean0, mean1 : array_like of shape (..., n_features)
     cov0, cov1 : array_like of shape (..., n_features, n_features)
+        Symmetric positive definite. Leading dimensions broadcast.
 
     Returns
     -------
@@ -222,14 +197,6 @@ def bhattacharyya_distance(mean0, cov0, mean1, cov1):
         Symmetric, non-negative, zero only for identical Gaussians.
     """
     return _scalar_or_array(_bhattacharyya(*_check_pair(mean0, cov0, mean1, cov1)))
-
-
-def bhattacharyya_coefficient(mean0, cov0, mean1, cov1):
-    """Bhattacharyya coefficient ``BC = integral sqrt(p0 p1) = exp(-D_B)``, in (0, 1].
-
-    Parameters and shapes as :func:`bhattacharyya_distance`.
-    """
-    return _scalar_or_array(np.exp(-_bhattacharyya(*_check_pair(mean0, cov0, mean1, cov1))))
 
 
 def pairwise_bhattacharyya(means, covs, pairs=None):
@@ -280,6 +247,11 @@ def bhattacharyya_lower_bound(means, covs):
     never negative: log det is concave), and ``d' S^-1 d >= |d|^2 / lambda_max(S) >=
     |d|^2 / tr(S)``, so ``D_B >= |d|^2 / (4 (tr S0 + tr S1))``: no factorisation needed.
 
+    Parameters
+    ----------
+    means : array_like of shape (K, n_features)
+    covs : array_like of shape (K, n_features, n_features)
+
     Returns
     -------
     bound : ndarray of shape (K(K-1)/2,)
@@ -296,50 +268,40 @@ def bhattacharyya_lower_bound(means, covs):
 def hellinger_distance(mean0, cov0, mean1, cov1):
     """Hellinger distance ``H = sqrt(1 - BC)`` between two Gaussians, in [0, 1].
 
-    Parameters and shapes as :func:`bhattacharyya_distance`. ``1 - BC`` is computed
-    as ``-expm1(-D_B)`` so that small distances keep their precision.
+    ``1 - BC`` is computed as ``-expm1(-D_B)`` so that small distances keep their
+    precision.
+
+    Parameters
+    ----------
+    mean0, mean1 : array_like of shape (..., n_features)
+        The two Gaussians' means; leading dimensions broadcast.
+    cov0, cov1 : array_like of shape (..., n_features, n_features)
+        Their covariances, symmetric positive definite.
+
+    Returns
+    -------
+    hellinger : float or ndarray of shape (...)
+        Symmetric; 0 for identical Gaussians, 1 for Gaussians that do not overlap.
     """
     distance = _bhattacharyya(*_check_pair(mean0, cov0, mean1, cov1))
     return _scalar_or_array(hellinger_from_bhattacharyya(distance))
 
 
 def hellinger_from_bhattacharyya(distance):
-    """``H = sqrt(1 - exp(-D_B))`` from Bhattacharyya distances, as ``-expm1`` for precision."""
-    return np.sqrt(-np.expm1(-np.asarray(distance, dtype=np.float64)))
-
-
-def wasserstein2_distance(mean0, cov0, mean1, cov1):
-    """2-Wasserstein distance between two Gaussians, in the data's units.
+    """Hellinger distances from Bhattacharyya distances, ``H = sqrt(1 - exp(-D_B))``.
 
     Parameters
     ----------
-    mean0, mean1 : array_like of shape (..., n_features)
-    cov0, cov1 : array_like of shape (..., n_features, n_features)
-        Symmetric positive semi-definite.
+    distance : float or array_like of shape (...)
+        Bhattacharyya distances, non-negative (``inf`` gives 1).
 
     Returns
     -------
-    distance : float or ndarray of shape (...)
-        ``sqrt(|m1 - m0|^2 + tr S0 + tr S1 - 2 tr (S1^1/2 S0 S1^1/2)^1/2)``.
-
-    Notes
-    -----
-    The matrix square roots come from symmetric eigendecompositions with the
-    eigenvalues clipped at zero, and ``S1^1/2 S0 S1^1/2`` is symmetrised before its
-    eigenvalues are taken, so rounding cannot produce complex or negative roots. For
-    two equal covariances the squared spread term is zero up to rounding of order
-    ``1e-16 * tr S``, so the distance itself is exact to about ``1e-8 sqrt(tr S)``.
+    hellinger : ndarray of shape (...)
+        In [0, 1]; ``1 - exp(-D_B)`` as ``-expm1(-D_B)`` so that small distances keep
+        their precision.
     """
-    mean0, cov0, mean1, cov1 = _check_pair(mean0, cov0, mean1, cov1)
-    root1 = _sqrtm_psd(cov1)
-    cross = root1 @ cov0 @ root1
-    cross = 0.5 * (cross + np.swapaxes(cross, -1, -2))
-    trace_root = np.sum(np.sqrt(np.clip(np.linalg.eigvalsh(cross), 0.0, None)), axis=-1)
-    trace0 = np.trace(cov0, axis1=-2, axis2=-1)
-    trace1 = np.trace(cov1, axis1=-2, axis2=-1)
-    diff = mean1 - mean0
-    squared = np.sum(diff * diff, axis=-1) + trace0 + trace1 - 2.0 * trace_root
-    return _scalar_or_array(np.sqrt(np.maximum(squared, 0.0)))
+    return np.sqrt(-np.expm1(-np.asarray(distance, dtype=np.float64)))
 
 
 def mahalanobis_distance(mean, ref_mean, ref_cov):
@@ -375,6 +337,14 @@ class GaussianSet:
     means : array_like of shape (K, n_features)
     covs : array_like of shape (K, n_features, n_features)
         Symmetric positive definite.
+
+    Attributes
+    ----------
+    means : ndarray of shape (K, n_features)
+    log_det : ndarray of shape (K,)
+        ``log |S_i|`` of each member.
+    inv_chol : ndarray of shape (K, n_features, n_features)
+        ``L_i^-1`` of each member's lower Cholesky factor ``S_i = L_i L_i'``.
     """
 
     def __init__(self, means, covs):
@@ -391,14 +361,38 @@ class GaussianSet:
         self.inv_chol = _solve_lower(chol, np.broadcast_to(np.eye(d), (n, d, d)))
 
     def mahalanobis(self, means, index) -> np.ndarray:
-        """``sqrt((m - mu_i)' S_i^-1 (m - mu_i))`` for rows ``means`` (n, D) against members
-        ``index`` (n,)."""
+        """Mahalanobis distance of each mean from a member, under that member's covariance.
+
+        Parameters
+        ----------
+        means : array_like of shape (n, n_features)
+        index : ndarray of shape (n,), int
+            The member each mean is compared with.
+
+        Returns
+        -------
+        distance : ndarray of shape (n,)
+            ``sqrt((m - mu_i)' S_i^-1 (m - mu_i))``.
+        """
         diff = np.asarray(means, dtype=np.float64) - self.means[index]
         white = np.einsum("nij,nj->ni", self.inv_chol[index], diff)
         return np.sqrt(np.einsum("ni,ni->n", white, white))
 
     def log_variance_ratio(self, covs, index) -> np.ndarray:
-        """``log |S| - log |S_i|`` for ``covs`` (n, D, D) against members ``index`` (n,)."""
+        """Log generalised variance ratio of each covariance against a member's.
+
+        Parameters
+        ----------
+        covs : array_like of shape (n, n_features, n_features)
+            Positive definite; symmetrised before it is factorised.
+        index : ndarray of shape (n,), int
+            The member each covariance is compared with.
+
+        Returns
+        -------
+        log_ratio : ndarray of shape (n,)
+            ``log |S| - log |S_i|``.
+        """
         covs = np.asarray(covs, dtype=np.float64)
         covs = 0.5 * (covs + np.swapaxes(covs, -1, -2))
         return _log_det_chol(_cholesky(covs, "cov")) - self.log_det[index]
@@ -455,93 +449,26 @@ def kish_effective_sample_size(weights, axis=0):
     return _scalar_or_array(n_eff)
 
 
-def hotelling_t2(mean, n_eff, ref_mean, ref_cov):
-    """Hotelling's ``T^2 = n_eff (mean - ref_mean)' ref_cov^-1 (mean - ref_mean)``.
+def hotelling_t2_pvalue(t2, n_features):
+    """Upper-tail p-value of a Hotelling ``T^2`` statistic against a known covariance.
 
     For a weighted batch mean ``sum w x / sum w`` of independent rows with covariance
     ``ref_cov``, the mean's covariance is ``ref_cov / n_eff`` with Kish's ``n_eff``
-    (:func:`kish_effective_sample_size`), so under "no change" ``T^2`` follows a
-    chi-square distribution with ``n_features`` degrees of freedom when ``ref_cov`` is
-    known, and Hotelling's ``T^2`` distribution when it is an estimate (see
-    :func:`hotelling_t2_pvalue`).
+    (:func:`kish_effective_sample_size`), so under "no change"
+    ``T^2 = n_eff (mean - ref_mean)' ref_cov^-1 (mean - ref_mean)`` follows a
+    chi-square distribution with ``n_features`` degrees of freedom. The reference
+    covariance counts as known: a baseline is fitted on far more rows than a batch
+    holds.
 
     Parameters
     ----------
-    mean, ref_mean : array_like of shape (..., n_features)
-    n_eff : float or array_like of shape (...)
-        Effective sample size of the batch mean; must be positive.
-    ref_cov : array_like of shape (..., n_features, n_features)
+    t2 : float or array_like of shape (...)
+    n_features : int
 
     Returns
     -------
-    t2 : float or ndarray of shape (...)
+    p_value : float or ndarray of shape (...)
     """
-    n_eff = np.asarray(n_eff, dtype=np.float64)
-    if np.any(n_eff <= 0) or not np.all(np.isfinite(n_eff)):
-        raise ModelError("n_eff should be positive and finite")
-    distance = mahalanobis_distance(mean, ref_mean, ref_cov)
-    return _scalar_or_array(n_eff * np.square(distance))
-
-
-def _check_t2_dof(n_features, cov_dof):
     if int(n_features) != n_features or n_features < 1:
         raise ModelError(f"n_features should be a positive integer, got {n_features!r}")
-    if cov_dof is not None and np.any(np.asarray(cov_dof) < n_features):
-        raise ModelError(
-            f"cov_dof should be at least n_features ({n_features}), got {cov_dof!r}"
-        )
-
-
-def hotelling_t2_pvalue(t2, n_features, cov_dof=None):
-    """Upper-tail p-value of a Hotelling ``T^2`` statistic.
-
-    Parameters
-    ----------
-    t2 : float or array_like
-    n_features : int
-    cov_dof : float or array_like, optional
-        Degrees of freedom ``m`` of the covariance estimate (for a sample covariance of
-        ``n`` rows, ``n - 1``). ``None`` (default) treats the covariance as known, as
-        for a baseline fitted on far more rows than a batch holds: then
-        ``T^2 ~ chi2(n_features)``. Otherwise ``T^2 ~ m p / (m - p + 1) F(p, m - p + 1)``
-        with ``p = n_features``.
-
-    Returns
-    -------
-    p_value : float or ndarray
-    """
-    _check_t2_dof(n_features, cov_dof)
-    t2 = np.asarray(t2, dtype=np.float64)
-    if cov_dof is None:
-        return _scalar_or_array(special.chdtrc(n_features, t2))
-    m = np.asarray(cov_dof, dtype=np.float64)
-    dfd = m - n_features + 1.0
-    return _scalar_or_array(special.fdtrc(n_features, dfd, t2 * dfd / (m * n_features)))
-
-
-def hotelling_t2_critical_value(alpha, n_features, cov_dof=None):
-    """The ``T^2`` value exceeded with probability ``alpha`` when nothing has changed.
-
-    Parameters
-    ----------
-    alpha : float or array_like
-        False-alarm probability per test, in (0, 1).
-    n_features : int
-    cov_dof : float or array_like, optional
-        As in :func:`hotelling_t2_pvalue`.
-
-    Returns
-    -------
-    critical : float or ndarray
-        ``sqrt(critical / n_eff)`` is the mean shift, in reference standard deviations,
-        that estimation noise alone reaches with probability ``alpha``.
-    """
-    _check_t2_dof(n_features, cov_dof)
-    alpha = np.asarray(alpha, dtype=np.float64)
-    if np.any((alpha <= 0) | (alpha >= 1)):
-        raise ModelError(f"alpha should lie in (0, 1), got {alpha!r}")
-    if cov_dof is None:
-        return _scalar_or_array(special.chdtri(n_features, alpha))
-    m = np.asarray(cov_dof, dtype=np.float64)
-    dfd = m - n_features + 1.0
-    return _scalar_or_array(special.fdtri(n_features, dfd, 1.0 - alpha) * m * n_features / dfd)
+    return _scalar_or_array(special.chdtrc(n_features, np.asarray(t2, dtype=np.float64)))

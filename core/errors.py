@@ -11,8 +11,13 @@ __all__ = ["ShoalError", "ModelError", "NotEnoughDataError", "IllConditionedErro
 
 
 class ShoalError(Exception):
-    """Base class of every error shoal raises on purpose; ``exit_code`` is what the
-    ``shoal`` command returns for it (1 unless a subclass says otherwise)."""
+    """Base class of every error shoal raises on purpose.
+
+    Attributes
+    ----------
+    exit_code : int
+        What the ``shoal`` command returns for it: 1 unless a subclass says otherwise.
+    """
 
     exit_code = 1
 

@@ -15,16 +15,8 @@ Transforms (``y = T(x)``, ``log |T'(x)|`` the log-Jacobian per feature):
 ``logit``
     ``y = log(x / (1 - x))``; ``0 < x < 1``; log-Jacobian ``-log x - log(1 - x)``.
 ``yeo-johnson``
-    Yeo & Johnson (2000), "A new family of power transformations to improve
-    normality or symmetry", Biometrika 87(4)::
-
-        y = ((1 + x)^l - 1) / l              x >= 0, l != 0
-        y = log(1 + x)                       x >= 0, l == 0
-        y = -((1 - x)^(2 - l) - 1) / (2 - l) x < 0,  l != 2
-        y = -log(1 - x)                      x < 0,  l == 2
-
-    every finite ``x``; log-Jacobian ``(l - 1) sign(x) log(1 + |x|)``. The parameter
-    ``l`` is fitted once by maximum likelihood (:func:`fit_yeo_johnson`) and then kept.
+    Yeo & Johnson's power transform with a parameter ``l`` fitted once by maximum
+    likelihood and then kept; every finite ``x`` (:mod:`shoal.core.yeo_johnson`).
 
 A row is inside the domain when every feature is inside its transform's domain and
 the transformed value is finite; domain checks return masks and never raise on data.
@@ -35,12 +27,21 @@ the sum of the log-Jacobians (change of variables).
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Callable, NamedTuple
 
 import numpy as np
-from scipy import optimize, special
+from scipy import special
 
 from .errors import ModelError
+from .yeo_johnson import (
+    fit_yeo_johnson,
+    yeo_johnson,
+    yeo_johnson_inverse,
+    yeo_johnson_log_jacobian,
+    yeo_johnson_log_likelihood,
+)
 
+# The Yeo-Johnson functions are re-exported: the service imports them from here.
 __all__ = [
     "TRANSFORMS",
     "FeatureTransforms",
@@ -56,139 +57,18 @@ __all__ = [
 TRANSFORMS = ("none", "log", "log1p", "logit", "yeo-johnson")
 
 
-# ----------------------------------------------------------------- Yeo-Johnson
-def yeo_johnson(x, lmbda: float) -> np.ndarray:
-    """The Yeo-Johnson transform of ``x`` with parameter ``lmbda``.
-
-    Parameters
-    ----------
-    x : ndarray of shape (n_samples,)
-    lmbda : float
-
-    Returns
-    -------
-    y : ndarray of shape (n_samples,)
-        By ``expm1``/``log1p``, so that ``lmbda`` near 0 or 2 loses no precision.
-    """
-    x = np.asarray(x, dtype=np.float64)
-    y = np.empty_like(x)
-    pos = x >= 0
-    xp, xn = x[pos], x[~pos]
-    if abs(lmbda) < 1e-12:
-        y[pos] = np.log1p(xp)
-    else:
-        y[pos] = np.expm1(lmbda * np.log1p(xp)) / lmbda
-    if abs(lmbda - 2.0) < 1e-12:
-        y[~pos] = -np.log1p(-xn)
-    else:
-        y[~pos] = -np.expm1((2.0 - lmbda) * np.log1p(-xn)) / (2.0 - lmbda)
-    return y
-
-
-def yeo_johnson_inverse(y, lmbda: float) -> np.ndarray:
-    """``x`` such that ``yeo_johnson(x, lmbda) == y``; NaN where ``y`` is outside the
-    transform's range (``lmbda < 0``: ``y < -1 / lmbda``; ``lmbda > 2``:
-    ``y > -1 / (2 - lmbda)``).
-
-    Parameters
-    ----------
-    y : ndarray of shape (n_samples,)
-    lmbda : float
-
-    Returns
-    -------
-    x : ndarray of shape (n_samples,)
-    """
-    y = np.asarray(y, dtype=np.float64)
-    x = np.empty_like(y)
-    pos = y >= 0
-    yp, yn = y[pos], y[~pos]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        if abs(lmbda) < 1e-12:
-            x[pos] = np.expm1(yp)
-        else:
-            x[pos] = np.expm1(np.log1p(lmbda * yp) / lmbda)
-        if abs(lmbda - 2.0) < 1e-12:
-            x[~pos] = -np.expm1(-yn)
-        else:
-            x[~pos] = -np.expm1(np.log1p(-(2.0 - lmbda) * yn) / (2.0 - lmbda))
-    return x
-
-
-def yeo_johnson_log_jacobian(x, lmbda: float) -> np.ndarray:
-    """``log |dy/dx|`` of the Yeo-Johnson transform, ``(lmbda - 1) sign(x) log1p(|x|)``.
-
-    Parameters
-    ----------
-    x : ndarray of shape (n_samples,)
-    lmbda : float
-
-    Returns
-    -------
-    log_jacobian : ndarray of shape (n_samples,)
-    """
-    x = np.asarray(x, dtype=np.float64)
-    return (lmbda - 1.0) * np.sign(x) * np.log1p(np.abs(x))
-
-
-def yeo_johnson_log_likelihood(x, lmbda: float) -> float:
-    """The profile log-likelihood of ``lmbda`` (Yeo & Johnson 2000, section 3):
-    ``-n/2 log(sigma^2(lmbda)) + (lmbda - 1) sum sign(x) log1p(|x|)``, with
-    ``sigma^2`` the maximum-likelihood variance of the transformed values; the
-    Gaussian's mean and variance are profiled out and constants dropped.
-
-    Parameters
-    ----------
-    x : ndarray of shape (n_samples,)
-    lmbda : float
-    """
-    x = np.asarray(x, dtype=np.float64)
-    y = yeo_johnson(x, lmbda)
-    var = np.mean((y - np.mean(y)) ** 2)
-    if not np.isfinite(var) or var <= 0.0:
-        return -np.inf
-    return float(-0.5 * x.size * np.log(var) + np.sum(yeo_johnson_log_jacobian(x, lmbda)))
-
-
-def fit_yeo_johnson(x) -> float:
-    """The maximum-likelihood Yeo-Johnson parameter of ``x``.
-
-    The profile log-likelihood (:func:`yeo_johnson_log_likelihood`) is maximised over
-    the interval of ``lmbda`` in which values up to 20 times the largest ``|x|``
-    transform without overflow or underflow in half the float exponent range (the
-    bounds scipy's ``yeojohnson_normmax`` uses), to ``xtol`` 1.48e-8.
-
-    Parameters
-    ----------
-    x : ndarray of shape (n_samples,)
-        Finite values, at least two distinct.
-
-    Raises
-    ------
-    ModelError
-        When ``x`` has fewer than two distinct finite values.
-    """
-    x = np.asarray(x, dtype=np.float64).ravel()
-    if x.size < 2 or not np.all(np.isfinite(x)) or np.ptp(x) == 0.0:
-        raise ModelError("the Yeo-Johnson parameter needs at least two distinct finite values")
-    log1p_max = np.log1p(20.0 * np.max(np.abs(x)))
-    eps, info = np.finfo(np.float64).eps, np.finfo(np.float64)
-    lo = (np.log(info.tiny) - np.log(eps)) / 2.0 / log1p_max
-    hi = (np.log(info.max) + np.log(eps)) / 2.0 / log1p_max
-    if np.all(x < 0):
-        lo, hi = 2.0 - hi, 2.0 - lo
-    elif np.any(x < 0):
-        lo, hi = max(2.0 - hi, lo), min(2.0 - lo, hi)
-
-    def negative(lmbda):
-        value = yeo_johnson_log_likelihood(x, lmbda)
-        return -value if np.isfinite(value) else np.inf
-
-    return float(optimize.fminbound(negative, lo, hi, xtol=1.48e-8))
-
-
 def skewness(x) -> float:
-    """The sample skewness ``m3 / m2^1.5`` of ``x`` (0 for constant values)."""
+    """The sample skewness ``m3 / m2^1.5`` of ``x``.
+
+    Parameters
+    ----------
+    x : array_like of shape (n_samples,)
+
+    Returns
+    -------
+    skewness : float
+        0 for constant values.
+    """
     x = np.asarray(x, dtype=np.float64)
     d = x - np.mean(x)
     m2 = np.mean(d * d)
@@ -197,53 +77,34 @@ def skewness(x) -> float:
     return float(np.mean(d**3) / m2**1.5)
 
 
-# ------------------------------------------------------------ per-feature kernels
-def _none(x, lmbda):
-    return x.copy()
+class _Kernels(NamedTuple):
+    """One transform's functions of a column: ``forward(x, lmbda)``,
+    ``inverse(y, lmbda)``, ``log_jacobian(x, lmbda)`` and ``domain(x)``, the mask of
+    finite ``x`` inside the domain. Callers set the floating-point error state."""
+
+    forward: Callable
+    inverse: Callable
+    log_jacobian: Callable
+    domain: Callable
 
 
-def _log(x, lmbda):
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return np.log(x)
+def _without_parameter(forward, inverse, log_jacobian, domain) -> _Kernels:
+    """Kernels of a transform without a parameter (``lmbda`` is ignored)."""
+    return _Kernels(lambda x, _: forward(x), lambda y, _: inverse(y),
+                    lambda x, _: log_jacobian(x), domain)
 
 
-def _log1p(x, lmbda):
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return np.log1p(x)
-
-
-def _logit(x, lmbda):
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return special.logit(x)
-
-
-def _jac_none(x, lmbda):
-    return np.zeros_like(x)
-
-
-def _jac_log(x, lmbda):
-    return -np.log(x)
-
-
-def _jac_log1p(x, lmbda):
-    return -np.log1p(x)
-
-
-def _jac_logit(x, lmbda):
-    return -np.log(x) - np.log1p(-x)
-
-
-def _inside_all(x):
-    return np.isfinite(x)
-
-
-# one entry per transform: forward, inverse, log-Jacobian, domain (finite x inside)
 _KERNELS = {
-    "none": (_none, lambda y, l: np.array(y, dtype=np.float64), _jac_none, _inside_all),
-    "log": (_log, lambda y, l: np.exp(y), _jac_log, lambda x: x > 0),
-    "log1p": (_log1p, lambda y, l: np.expm1(y), _jac_log1p, lambda x: x > -1),
-    "logit": (_logit, lambda y, l: special.expit(y), _jac_logit, lambda x: (x > 0) & (x < 1)),
-    "yeo-johnson": (yeo_johnson, yeo_johnson_inverse, yeo_johnson_log_jacobian, _inside_all),
+    "none": _without_parameter(np.copy, lambda y: np.array(y, dtype=np.float64),
+                               np.zeros_like, np.isfinite),
+    "log": _without_parameter(np.log, np.exp, lambda x: -np.log(x), lambda x: x > 0),
+    "log1p": _without_parameter(np.log1p, np.expm1, lambda x: -np.log1p(x),
+                                lambda x: x > -1),
+    "logit": _without_parameter(special.logit, special.expit,
+                                lambda x: -np.log(x) - np.log1p(-x),
+                                lambda x: (x > 0) & (x < 1)),
+    "yeo-johnson": _Kernels(yeo_johnson, yeo_johnson_inverse, yeo_johnson_log_jacobian,
+                            np.isfinite),
 }
 
 
@@ -265,7 +126,22 @@ class FeatureTransforms:
 
     @classmethod
     def from_kinds(cls, kinds) -> "FeatureTransforms":
-        """Transforms by name, Yeo-Johnson parameters not fitted yet."""
+        """Transforms by name, Yeo-Johnson parameters not fitted yet.
+
+        Parameters
+        ----------
+        kinds : sequence of str, length n_features
+            One of :data:`TRANSFORMS` per feature.
+
+        Returns
+        -------
+        transforms : FeatureTransforms
+
+        Raises
+        ------
+        ModelError
+            For a name not in :data:`TRANSFORMS`.
+        """
         kinds = tuple(kinds)
         unknown = [k for k in kinds if k not in _KERNELS]
         if unknown:
@@ -274,6 +150,7 @@ class FeatureTransforms:
 
     @property
     def n_features(self) -> int:
+        """The number of features transformed."""
         return len(self.kinds)
 
     @property
@@ -293,7 +170,14 @@ class FeatureTransforms:
         Parameters
         ----------
         X : ndarray of shape (n_samples, n_features)
-            Finite rows in the data's units (e.g. the warm-up rows).
+            Rows in the data's units (e.g. the warm-up rows); NaN is a missing value
+            and is left out of the fit.
+
+        Returns
+        -------
+        transforms : FeatureTransforms
+            A new object with every ``yeo-johnson`` parameter fitted; ``self`` is left
+            as it is.
         """
         X = self._check(X)
         lambdas = self.lambdas.copy()
@@ -309,19 +193,28 @@ class FeatureTransforms:
         Parameters
         ----------
         X : ndarray of shape (n_samples, n_features)
+            Rows in the data's units.
 
         Returns
         -------
         inside : ndarray of shape (n_samples,), bool
             False for a value outside the domain and for a NaN or infinite value.
         """
-        X = self._check(X)
-        ok = np.ones(X.shape[0], dtype=bool)
-        with np.errstate(invalid="ignore"):
-            for j, kind in enumerate(self.kinds):
-                col = X[:, j]
-                ok &= np.isfinite(col) & _KERNELS[kind][3](col)
-        return ok
+        return self._inside(self._check(X), missing_ok=False)
+
+    def inside_observed(self, X) -> np.ndarray:
+        """:meth:`inside` with NaN as a missing value: a row is inside when every value
+        present is finite and inside its transform's domain.
+
+        Parameters
+        ----------
+        X : ndarray of shape (n_samples, n_features)
+
+        Returns
+        -------
+        inside : ndarray of shape (n_samples,), bool
+        """
+        return self._inside(self._check(X), missing_ok=True)
 
     def forward(self, X) -> tuple[np.ndarray, np.ndarray]:
         """Transformed rows and the mask of rows inside the domain.
@@ -340,33 +233,8 @@ class FeatureTransforms:
         """
         X = self._check(X)
         self._need_fit()
-        Y = np.empty_like(X)
-        inside = self.inside(X)
-        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-            for j, kind in enumerate(self.kinds):
-                Y[:, j] = _KERNELS[kind][0](X[:, j], self.lambdas[j])
-        inside &= np.all(np.isfinite(Y), axis=1)
-        return Y, inside
-
-    def inside_observed(self, X) -> np.ndarray:
-        """:meth:`inside` with NaN as a missing value: a row is inside when every value
-        present is finite and inside its transform's domain.
-
-        Parameters
-        ----------
-        X : ndarray of shape (n_samples, n_features)
-
-        Returns
-        -------
-        inside : ndarray of shape (n_samples,), bool
-        """
-        X = self._check(X)
-        ok = np.ones(X.shape[0], dtype=bool)
-        with np.errstate(invalid="ignore"):
-            for j, kind in enumerate(self.kinds):
-                col = X[:, j]
-                ok &= np.isnan(col) | (np.isfinite(col) & _KERNELS[kind][3](col))
-        return ok
+        Y = self._forward(X)
+        return Y, self._inside(X, missing_ok=False) & np.all(np.isfinite(Y), axis=1)
 
     def forward_observed(self, X) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """:meth:`forward` and :meth:`log_jacobian` of rows with missing values (NaN).
@@ -390,20 +258,10 @@ class FeatureTransforms:
         """
         X = self._check(X)
         self._need_fit()
-        Y = np.empty_like(X)
-        inside = self.inside_observed(X)
-        jac = np.zeros(X.shape[0])
-        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-            for j, kind in enumerate(self.kinds):
-                col = X[:, j]
-                Y[:, j] = _KERNELS[kind][0](col, self.lambdas[j])
-                inside &= np.isnan(col) | np.isfinite(Y[:, j])
-            for j, kind in enumerate(self.kinds):
-                if kind != "none":
-                    col = X[:, j]
-                    term = _KERNELS[kind][2](col, self.lambdas[j])
-                    jac += np.where(np.isnan(col) | ~inside, 0.0, term)
-        return Y, inside, jac
+        Y = self._forward(X)
+        missing = np.isnan(X)
+        inside = self._inside(X, missing_ok=True) & np.all(missing | np.isfinite(Y), axis=1)
+        return Y, inside, self._log_jacobian(X, skip=missing | ~inside[:, None])
 
     def inverse(self, Y) -> np.ndarray:
         """Rows back in the data's units (NaN outside a transform's range).
@@ -423,7 +281,7 @@ class FeatureTransforms:
         X = np.empty_like(Y2)
         with np.errstate(over="ignore", invalid="ignore"):
             for j, kind in enumerate(self.kinds):
-                X[:, j] = _KERNELS[kind][1](Y2[:, j], self.lambdas[j])
+                X[:, j] = _KERNELS[kind].inverse(Y2[:, j], self.lambdas[j])
         return X[0] if one else X
 
     def log_jacobian(self, X) -> np.ndarray:
@@ -441,12 +299,7 @@ class FeatureTransforms:
         """
         X = self._check(X)
         self._need_fit()
-        total = np.zeros(X.shape[0])
-        with np.errstate(divide="ignore", invalid="ignore"):
-            for j, kind in enumerate(self.kinds):
-                if kind != "none":
-                    total += _KERNELS[kind][2](X[:, j], self.lambdas[j])
-        return total
+        return self._log_jacobian(X)
 
     def log_jacobian_from_transformed(self, Y) -> np.ndarray:
         """:meth:`log_jacobian` of the rows whose transforms are ``Y``.
@@ -454,6 +307,7 @@ class FeatureTransforms:
         Parameters
         ----------
         Y : ndarray of shape (n_samples, n_features)
+            Rows in the transformed units (as the model sees them).
 
         Returns
         -------
@@ -465,19 +319,63 @@ class FeatureTransforms:
 
     # ------------------------------------------------------------ serialisation
     def to_dict(self) -> dict:
-        """JSON-able: ``{"kinds": [...], "lambdas": [float or None, ...]}``."""
+        """The transforms as plain data, for a checkpoint's JSON.
+
+        Returns
+        -------
+        data : dict
+            ``{"kinds": [str, ...], "lambdas": [float or None, ...]}``, ``None`` for a
+            parameter not fitted or not used.
+        """
         return {"kinds": list(self.kinds),
                 "lambdas": [float(l) if np.isfinite(l) else None for l in self.lambdas]}
 
     @classmethod
     def from_dict(cls, data: dict) -> "FeatureTransforms":
-        """Rebuild what :meth:`to_dict` gave."""
+        """Rebuild what :meth:`to_dict` gave.
+
+        Parameters
+        ----------
+        data : dict
+            ``{"kinds": [...], "lambdas": [...]}`` with one lambda per kind.
+
+        Returns
+        -------
+        transforms : FeatureTransforms
+        """
         kinds = tuple(data["kinds"])
         out = cls.from_kinds(kinds)
         lambdas = np.array([np.nan if l is None else float(l) for l in data["lambdas"]])
         if lambdas.shape != (len(kinds),):
             raise ModelError(f"transforms should have {len(kinds)} lambdas, got {lambdas.shape}")
         return cls(out.kinds, lambdas)
+
+    # ------------------------------------------------------------- column loops
+    def _inside(self, X, missing_ok: bool) -> np.ndarray:
+        ok = np.ones(X.shape[0], dtype=bool)
+        with np.errstate(invalid="ignore"):
+            for j, kind in enumerate(self.kinds):
+                col = X[:, j]
+                here = np.isfinite(col) & _KERNELS[kind].domain(col)
+                ok &= (np.isnan(col) | here) if missing_ok else here
+        return ok
+
+    def _forward(self, X) -> np.ndarray:
+        Y = np.empty_like(X)
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            for j, kind in enumerate(self.kinds):
+                Y[:, j] = _KERNELS[kind].forward(X[:, j], self.lambdas[j])
+        return Y
+
+    def _log_jacobian(self, X, skip=None) -> np.ndarray:
+        """Sum of the log-Jacobians per row; values where ``skip`` (n, D) add nothing."""
+        total = np.zeros(X.shape[0])
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            for j, kind in enumerate(self.kinds):
+                if kind != "none":
+                    term = _KERNELS[kind].log_jacobian(X[:, j], self.lambdas[j])
+                    total += term if skip is None else np.where(skip[:, j], 0.0, term)
+        return total
 
     # ------------------------------------------------------------------ checks
     def _check(self, X) -> np.ndarray:

@@ -2,5 +2,6 @@
 
 Run them from the repository's root as modules, e.g. ``.venv/bin/python -m
 scripts.bench_e2e --stages`` (``./scripts/bench`` does so for ``scripts.bench``).
+``scripts.synthetic`` draws the seeded random mixtures the benchmarks share;
 ``scripts.lognormal`` is the seeded log-normal stream that the transform tests use too.
 """

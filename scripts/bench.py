@@ -8,6 +8,7 @@ import warnings
 
 import numpy as np
 
+from scripts.synthetic import mixture_rows
 from shoal.core import Mixture, StepSchedule, batch_em, initialise  # noqa: E402
 
 BATCH = 65_536
@@ -15,14 +16,7 @@ BATCH = 65_536
 
 def synthetic(n_rows, n_components, n_features, seed, spread=4.0):
     """Rows of a seeded random full-covariance mixture (synthetic benchmark data)."""
-    rng = np.random.default_rng(seed)
-    weights = rng.dirichlet(np.full(n_components, 5.0))
-    means = rng.normal(0.0, spread, (n_components, n_features))
-    A = rng.normal(0.0, 0.3, (n_components, n_features, n_features))
-    covs = A @ np.swapaxes(A, 1, 2) + 0.5 * np.eye(n_features)
-    labels = rng.choice(n_components, size=n_rows, p=weights)
-    chol = np.linalg.cholesky(covs)
-    X = means[labels] + np.einsum("nde,ne->nd", chol[labels], rng.normal(size=(n_rows, n_features)))
+    X, _, weights, means, covs = mixture_rows(n_rows, n_components, n_features, seed, spread)
     return X, weights, means, covs
 
 

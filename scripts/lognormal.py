@@ -2,6 +2,8 @@
 feature beside it, for the transform tests and scripts (invented data)."""
 import numpy as np
 
+from scripts import tests_support
+
 K, D = 3, 4
 FEATURES = [f"dur{j}" for j in range(D)]
 WEIGHTS = np.array([0.5, 0.3, 0.2])
@@ -35,46 +37,26 @@ def log_rows(rng, n, weights, meanlog, covs, *, shift=None):
     return labels, Y
 
 
-class Stream:
-    """The real pipeline on a fresh state folder, fed Parquet drops of these features."""
+class Stream(tests_support.load("drift_stream").Stream):
+    """The real pipeline on a fresh state folder (the drift tests' stream), K segments
+    over these features; :meth:`feed` returns the segment of every row fed."""
 
     def __init__(self, folder, features=FEATURES, **overrides):
-        from shoal.config import parse_config
-        from shoal.daemon.files.layout import prepare_folders
-        from shoal.daemon.ingest.pipeline import Pipeline
-        from shoal.daemon.state.store import StateStore
-
         folder.mkdir(parents=True, exist_ok=True)
-        self.folder, self.features = folder, list(features)
-        self.settings = parse_config({"features": self.features, "segments": K,
-                                      **overrides}, folder)
-        self.layout = prepare_folders(self.settings)
-        self.store = StateStore(self.layout.db)
-        self.pipeline = Pipeline(self.settings, self.layout, self.store)
-        self.n = 0
+        super().__init__(folder, features, K, **overrides)
 
     def feed(self, X, drop_rows=10_000):
-        """Feed ``X`` in drops; returns the ``segment`` labels of every row (NaN: none)."""
-        import pyarrow as pa
+        """Feed ``X`` in drops; returns the ``segment`` labels of every row (NaN: none).
+
+        The labels files of the drops are read back from the outbox in the order of
+        their names (the drops' numbered names) and removed.
+        """
         import pyarrow.parquet as pq
 
+        super().feed(X, drop_rows)
         segments = []
-        for start in range(0, len(X), drop_rows):
-            part = X[start:start + drop_rows]
-            path = self.folder / f"drop-{self.n:06d}.parquet"
-            pq.write_table(pa.table({f: part[:, j] for j, f in enumerate(self.features)}),
-                           path)
-            r = self.pipeline.process(path, in_inbox=False)
-            assert r.outcome == "committed", r
-            segments.append(pq.read_table(r.labels).column("segment")
+        for path in sorted(self.layout.outbox.glob("drop-*.labels.parquet")):
+            segments.append(pq.read_table(path).column("segment")
                             .to_numpy(zero_copy_only=False).astype(float))
-            r.labels.unlink()
             path.unlink()
-            self.n += 1
         return np.concatenate(segments)
-
-    def alerts(self):
-        return [a["payload"] for a in self.store.alerts()]
-
-    def close(self):
-        self.store.close()

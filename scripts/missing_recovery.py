@@ -2,13 +2,13 @@
 fit of the same rows complete; and what dropping incomplete rows costs under missing-at-
 random values. Seeded; prints a table.
 
-    .venv/bin/python scripts/missing_recovery.py              # K=4, D=6, 400,000 rows
-    .venv/bin/python scripts/missing_recovery.py --rows 100000
+    .venv/bin/python -m scripts.missing_recovery              # K=4, D=6, 400,000 rows
+    .venv/bin/python -m scripts.missing_recovery --rows 100000
 
-Rows: a seeded random full-covariance mixture (synthetic). 20% of the values are then
-removed completely at random (MCAR), or at random given feature 0 (MAR: feature 0 is
-always present; the others go missing 4 times as often when feature 0 is above its
-median, 20% on average). The streamed model starts from a warm-up on the first
+Rows: a seeded random full-covariance mixture (synthetic, ``scripts/synthetic.py``).
+20% of the values are then removed completely at random (MCAR), or at random given
+feature 0 (MAR: feature 0 is always present; the others go missing 4 times as often when
+feature 0 is above its median, 20% on average). The streamed model starts from a warm-up on the first
 ``warmup`` complete rows (as the service does) and learns every later row in batches of
 65,536. Reference: scikit-learn ``GaussianMixture`` (full, n_init=3) on the same rows
 before any value was removed; components matched by the Hungarian method
@@ -23,21 +23,10 @@ import sys
 import numpy as np
 from scipy.optimize import linear_sum_assignment
 
+from scripts.synthetic import mixture_rows
 from shoal.core import initialise
 
 BATCH = 65_536
-
-
-def mixture_rows(n, K, D, seed, spread=4.0):
-    rng = np.random.default_rng(seed)
-    weights = rng.dirichlet(np.full(K, 5.0))
-    means = rng.normal(0.0, spread, (K, D))
-    A = rng.normal(0.0, 0.4, (K, D, D))
-    covs = A @ np.swapaxes(A, 1, 2) + 0.5 * np.eye(D)
-    labels = rng.choice(K, size=n, p=weights)
-    chol = np.linalg.cholesky(covs)
-    X = means[labels] + np.einsum("nde,ne->nd", chol[labels], rng.normal(size=(n, D)))
-    return X, labels
 
 
 def mcar(X, share, seed):
@@ -88,7 +77,7 @@ def compare(model, ref, Xh):
 
 
 def run(n_rows, K=4, D=6, share=0.2, warmup=20_000, seed=5, held_out=50_000, out=print):
-    X, _ = mixture_rows(n_rows + held_out, K, D, seed)
+    X = mixture_rows(n_rows + held_out, K, D, seed, shape=0.4)[0]
     X, Xh = X[:n_rows], X[n_rows:]
     ref = sklearn_fit(X, K)
     results = {}

@@ -2,7 +2,7 @@
 unusual), drift windows that stay quiet under missing-at-random values, and the
 missing-share alert when a feature goes missing from one segment's rows.
 
-Streams are the seeded K=6, D=5 synthetic mixtures of tests/integration/test_drift_alerts.py fed as
+Streams are the seeded K=6, D=5 synthetic mixtures of tests/support/drift_stream.py fed as
 Parquet drops with nulls, with the shipped default settings except ``segments: 6``.
 The long stationary run (2,000,000 rows) is ``scripts/bench_drift_missing.py``.
 """
@@ -10,7 +10,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from test_drift_alerts import D, FEATURES, K, _first_raised, _rows, _truth, stream  # noqa: F401
+from drift_stream import (D, FEATURES, K, first_raised as _first_raised, rows as _rows,  # noqa: F401
+                          stream, truth as _truth)
 
 
 def _mar(rng, X, share):

@@ -10,7 +10,7 @@ versions (adjusted Rand index >= 0.99 over 100 versions). 2,000,000 stationary r
 with no event are checked in tests/integration/test_drift_alerts.py's stationary run, the demo's
 ice build-up born in tests/e2e/test_alert_cli.py's demo run.
 
-Streams are the seeded K=6, D=5 mixture of tests/integration/test_drift_alerts.py, fed as Parquet
+Streams are the seeded K=6, D=5 mixture of tests/support/drift_stream.py, fed as Parquet
 drops through the real pipeline in-process.
 """
 import numpy as np
@@ -21,7 +21,7 @@ from shoal.core import Mixture
 from shoal.daemon.ingest.pipeline import Pipeline
 from shoal.daemon.views.summary import format_segments, segment_summary
 
-from test_drift_alerts import D, _rows, _truth, stream  # noqa: F401 (stream: a fixture)
+from drift_stream import D, rows as _rows, truth as _truth, stream  # noqa: F401 (stream: a fixture)
 
 
 def _events(s, status=None):

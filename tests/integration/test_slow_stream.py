@@ -1,6 +1,6 @@
 """A slow stream (100-row drops) learns between drops when ``learning.refresh_rows`` is small.
 
-The stream is the seeded K=6, D=5 mixture of tests/integration/test_drift_alerts.py, fed as Parquet
+The stream is the seeded K=6, D=5 mixture of tests/support/drift_stream.py, fed as Parquet
 drops through the real pipeline in-process. The reference for "half the jump within a
 half-life" is the definition of the half-life under geometric forgetting (a constant
 step ``eta = 1 - 2^(-1/h)`` leaves ``(1 - eta)^n`` of the old mean after ``n`` rows);
@@ -9,7 +9,7 @@ the refreshes every 256 rows and the rows' responsibilities add the lag allowed 
 """
 import numpy as np
 
-from test_drift_alerts import FEATURES, _rows, _truth, stream  # noqa: F401 (stream: a fixture)
+from drift_stream import FEATURES, rows as _rows, truth as _truth, stream  # noqa: F401 (stream: a fixture)
 
 HALF_LIFE = 5000
 SLOW = {"half_life_rows": HALF_LIFE, "warmup_rows": 2000,

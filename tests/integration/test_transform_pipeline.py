@@ -10,7 +10,7 @@ import pyarrow.parquet as pq
 import pytest
 from scipy import stats
 
-import test_drift_alerts as drift_alerts
+import drift_stream as drift_alerts
 
 from shoal.config import parse_config
 from shoal.core import Mixture
@@ -32,7 +32,7 @@ def _rows(rng, n, zeros=0.0):
 
 
 class Stream(drift_alerts.Stream):
-    """The real pipeline on a fresh state folder (tests/integration/test_drift_alerts.py), two
+    """The real pipeline on a fresh state folder (tests/support/drift_stream.py), two
     segments over FEATURES; :meth:`feed` keeps the labels of one drop."""
 
     def __init__(self, folder, **overrides):

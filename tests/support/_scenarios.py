@@ -12,12 +12,12 @@ from pathlib import Path
 
 import numpy as np
 
-try:   # under pytest tests/ is on the path; a script loads this file by its path
-    from test_drift_alerts import Stream
+try:   # under pytest tests/support is on the path; a script loads this file by its path
+    from drift_stream import Stream
 except ImportError:
     from scripts.tests_support import load
 
-    Stream = load("test_drift_alerts").Stream
+    Stream = load("drift_stream").Stream
 
 MIN_WEIGHT = 0.08
 SETTINGS = {"half_life_rows": 50_000, "warmup_rows": 5000}

@@ -5,7 +5,7 @@ import pytest
 from scipy import optimize, stats
 
 from shoal.core import FeatureTransforms, Mixture, data_log_density
-from shoal.core.transforms import (
+from shoal.core.yeo_johnson import (
     fit_yeo_johnson,
     yeo_johnson,
     yeo_johnson_inverse,
