@@ -24,8 +24,13 @@ from prometheus_client.core import (
 )
 from prometheus_client.registry import Collector
 
-from shoal.daemon.state.readout import StateReader, open_alerts, read_alerts
-from shoal.daemon.cli.quarantine_commands import quarantine_summary
+from shoal.daemon.state.readout import (
+    StateReader,
+    notification_counts,
+    open_alerts,
+    read_alerts,
+)
+from shoal.daemon.files.quarantine import quarantine_summary
 from shoal.daemon.state.compacted import compacted_notifications, compacted_totals
 
 __all__ = ["LedgerCollector", "build_registry", "render_metrics", "PROCESSING_BUCKETS"]
@@ -140,9 +145,8 @@ class LedgerCollector(Collector):
             status, severity = key.split("/", 1)
             counts[(status, severity)] = n
         alerts = read_alerts(self.reader)
-        for a in alerts:
-            key = (str(a.get("status")), str(a.get("severity")))
-            counts[key] = counts.get(key, 0) + 1
+        for key, n in notification_counts(alerts).items():
+            counts[key] = counts.get(key, 0) + n
         for key, n in sorted(counts.items()):
             notes.add_metric(list(key), n)
         yield notes

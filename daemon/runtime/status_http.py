@@ -29,7 +29,8 @@ from shoal.config import ConfigError, Settings
 from shoal.daemon.files.layout import Layout
 from shoal.daemon.runtime.logs import log_event
 from shoal.daemon.runtime.metrics import build_registry, render_metrics
-from shoal.daemon.state.readout import StateReader, format_service, state_snapshot
+from shoal.daemon.state.readout import StateReader, state_snapshot
+from shoal.daemon.views.status_text import format_service
 
 __all__ = ["Health", "StatusServer"]
 
