@@ -39,6 +39,7 @@ from shoal.daemon.model.transforming import centres, from_meta
 from shoal.daemon.state.compacted import compacted_totals
 from shoal.daemon.segments.segment_names import segment_names
 from shoal.daemon.views.timeline import Axis, axis_events, build_axis, parse_bound
+from shoal.daemon.views.status_text import number_text
 from shoal.daemon.views.summary import format_differences
 
 __all__ = ["REPORT_PLOTS", "parse_since", "report_data", "render_figures", "render_plots",
@@ -333,14 +334,6 @@ def _utc(t: float | None) -> str:
     return _dt.datetime.fromtimestamp(t, _dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")
 
 
-def _fmt(v: Any) -> str:
-    if isinstance(v, float):
-        return f"{v:.4g}"
-    if v is None:
-        return "-"
-    return str(v)
-
-
 _CSS = """
 body{font-family:system-ui,-apple-system,"Segoe UI",sans-serif;margin:1.5rem auto;
 max-width:1100px;padding:0 1rem;color:#1a1a1a;line-height:1.4}
@@ -390,7 +383,7 @@ def segments_table(snap: Mapping[str, Any], units: Mapping[str, str]) -> str:
                     + (f'<td class="l name">{html.escape(s.get("name") or "")}</td>'
                        if named else "") +
                     f"<td>{s['weight']:.3f}</td><td>{s['rows']}</td>"
-                    f"<td>{_fmt(s.get('age_versions'))}</td>{cells}</tr>")
+                    f"<td>{number_text(s.get('age_versions'))}</td>{cells}</tr>")
     if not rows:
         w = snap.get("warmup") or {}
         return (f"<p id=\"no-segments\">No model yet: the warm-up has {w.get('rows', 0)} of "
@@ -410,21 +403,21 @@ def alerts_table(alerts: Sequence[Mapping[str, Any]], limit: int = 50) -> str:
         expl = a.get("explanation")
         if isinstance(expl, (list, tuple)) and expl and isinstance(expl[0], Mapping):
             top = expl[0]
-            expl = (f"{top.get('feature')}: {_fmt(top.get('baseline_mean'))} → "
-                    f"{_fmt(top.get('window_mean'))} ({_fmt(top.get('shift_sd'))} sd)")
+            expl = (f"{top.get('feature')}: {number_text(top.get('baseline_mean'))} → "
+                    f"{number_text(top.get('window_mean'))} ({number_text(top.get('shift_sd'))} sd)")
         elif isinstance(expl, Mapping):
             expl = expl.get("summary") or expl.get("text") or ""
         rows.append(
             f"<tr><td class=\"l\">{_utc(a.get('created'))}</td>"
             f"<td class=\"l {status}\">{status}</td>"
             f"<td class=\"l\">{html.escape(str(a.get('severity', '')))}</td>"
-            f"<td>{html.escape(_fmt(a.get('segment')))}"
+            f"<td>{html.escape(number_text(a.get('segment')))}"
             + (f" ({html.escape(str(a['segment_name']))})" if a.get("segment_name") else "")
             + "</td>"
-            f"<td class=\"l\">{html.escape(_fmt(a.get('statistic')))}</td>"
-            f"<td>{html.escape(_fmt(a.get('value')))}</td>"
-            f"<td>{html.escape(_fmt(a.get('bound')))}</td>"
-            f"<td class=\"l\">{html.escape(_fmt(expl) if expl else '')}</td></tr>")
+            f"<td class=\"l\">{html.escape(number_text(a.get('statistic')))}</td>"
+            f"<td>{html.escape(number_text(a.get('value')))}</td>"
+            f"<td>{html.escape(number_text(a.get('bound')))}</td>"
+            f"<td class=\"l\">{html.escape(number_text(expl) if expl else '')}</td></tr>")
     return ('<table id="alerts"><thead><tr><th class="l">time</th><th class="l">status</th>'
             '<th class="l">severity</th><th>segment</th><th class="l">statistic</th>'
             '<th>value</th><th>bound</th><th class="l">what moved</th></tr></thead><tbody>'

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from shoal.daemon.views.summary import format_differences
 
-__all__ = ["format_status", "format_service", "ago"]
+__all__ = ["format_status", "format_service", "ago", "number_text"]
 
 
 def ago(seconds: float | None) -> str:
@@ -22,7 +22,8 @@ def ago(seconds: float | None) -> str:
     return f"{seconds:.1f} s"
 
 
-def _num(v) -> str:
+def number_text(v) -> str:
+    """A value as shown in a table: a float to 4 significant digits, None as '-'."""
     return f"{v:.4g}" if isinstance(v, float) else "-" if v is None else str(v)
 
 
@@ -78,7 +79,7 @@ def format_status(snap: dict, width: int = 100) -> str:
         name = a.get("segment_name") or names.get(seg)
         lines.append(f"  {a.get('status', '?'):9s} {a.get('severity', '?'):8s} segment "
                      f"{seg}{f' ({name})' if name else ''} {a.get('statistic', '-')} "
-                     f"value {_num(a.get('value'))} bound {_num(a.get('bound'))}"[:width])
+                     f"value {number_text(a.get('value'))} bound {number_text(a.get('bound'))}"[:width])
     q = snap.get("quarantine") or {}
     latest = q.get("latest")
     lines.append(f"quarantine: {q.get('count', 0)} input(s)" + (
