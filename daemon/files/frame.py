@@ -28,6 +28,8 @@ FEATURE_BOUND = 1e50
 
 @dataclass
 class Frame:
+    """A block of an input's rows: the feature matrix, the pass-through columns, which
+    rows are valid, and what the validation and the transforms found about them."""
     features: np.ndarray      # (n_rows, n_features) float64; NaN where null
     passthrough: pa.Table     # (n_rows,) the pass-through columns
     valid: np.ndarray         # (n_rows,) bool: all features finite and within FEATURE_BOUND
