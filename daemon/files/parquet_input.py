@@ -52,8 +52,8 @@ def parquet_batches(f: BinaryIO, settings: Settings):
     footer = int.from_bytes(f.read(4), "little")
     f.seek(0)
     if footer > _FOOTER_LIMIT:
-        # parsing a footer takes ~10 times its size in memory (200,000 one-row row
-        # groups: a 108 MB footer, 1.5 GB to read); refused before it is parsed
+        # parsing a footer takes many times its size in memory (a file of many tiny
+        # row groups has a huge footer); refused before it is parsed
         raise InputRejected("too_much_metadata", f"the Parquet footer is {footer} bytes, more "
                             f"than {_FOOTER_LIMIT} (too many row groups or columns: write "
                             "larger row groups)", limit=_FOOTER_LIMIT)
@@ -71,8 +71,8 @@ def _parquet_open(source, settings: Settings):
         # Strings are read as dictionaries, so that what they decode to is counted
         # against limits.max_data_bytes before it is made.
         # buffer_size, no pre_buffer: column chunks are read in pieces, not whole, so
-        # memory is bounded whatever the row-group size (1,000,000-row groups, 17 columns:
-        # peak RSS of a bare read 272 MB with pyarrow's defaults, 166 MB this way)
+        # memory is bounded whatever the row-group size (pyarrow's defaults would hold
+        # whole column chunks of a large row group at once)
         pf = _parquet_file(source, list(settings.passthrough))
     except (pa.ArrowException, OSError, ValueError) as exc:  # ArrowNotImplementedError too
         raise InputRejected("bad_parquet", f"Parquet metadata cannot be read: {exc}") from exc
@@ -192,7 +192,7 @@ def _closing(batches, source):
 
 def _arrow_source(f: BinaryIO):
     """``f`` as a file Arrow reads itself (without the interpreter lock and without copies
-    into Python bytes: ~15% less CPU to decode a Parquet file), reopened through
+    into Python bytes, which costs CPU on every page), reopened through
     /proc/self/fd so that it is the very file ``f`` holds open (not whatever its name
     now points to); ``f`` itself where that is not possible."""
     try:
