@@ -37,7 +37,9 @@ from shoal.daemon.state.store_words import (
 )
 
 __all__ = ["StateReader", "open_reader", "read_alerts", "open_alerts", "inbox_backlog", "state_snapshot",
-           "ledger_totals", "notification_counts", "segment_summary"]
+           "ledger_totals", "notification_counts", "segment_summary", "ledger_rows_after",
+           "latest_history_version", "segment_rows_at", "undelivered_count",
+           "checkpoint_extras"]
 
 _ALERT_TABLES = ("alert_history", "alerts", "alert_outbox")
 
@@ -265,6 +267,38 @@ def _gone_segments(store: StateStore, settings: Settings, current: set, born: di
     return [gone[k] for k in sorted(gone)]
 
 
+def ledger_rows_after(reader: StateStore, last_id: int) -> list[tuple]:
+    """Ledger rows written after row ``last_id``, oldest first, as (id, outcome, rows,
+    rows_invalid, seen_at, finished_at): what a scrape adds to the counters it keeps."""
+    return reader.db.execute(
+        "SELECT id, outcome, rows, rows_invalid, seen_at, finished_at FROM ledger "
+        "WHERE id > ? ORDER BY id", (last_id,)).fetchall()
+
+
+def latest_history_version(reader: StateStore) -> int | None:
+    """The newest model version with segment history rows, or None."""
+    return reader.db.execute("SELECT MAX(version) FROM segment_history").fetchone()[0]
+
+
+def segment_rows_at(reader: StateStore, version: int) -> list[tuple]:
+    """The segment history rows of model ``version`` by segment, as (segment, weight,
+    drift JSON text or None)."""
+    return reader.db.execute("SELECT segment, weight, drift FROM segment_history "
+                             "WHERE version = ? ORDER BY segment", (version,)).fetchall()
+
+
+def undelivered_count(reader: StateStore) -> int:
+    """Notifications in the outbox not yet delivered to every sink."""
+    return reader.db.execute(
+        "SELECT COUNT(*) FROM alert_outbox WHERE delivered_at IS NULL").fetchone()[0]
+
+
+def checkpoint_extras(reader: StateStore) -> list[dict]:
+    """The extra data (drift and lifecycle state) of every kept checkpoint, oldest first."""
+    return [json.loads(extra) for (extra,) in
+            reader.db.execute("SELECT extra FROM checkpoints ORDER BY version")]
+
+
 def notification_counts(alerts: list[dict]) -> dict[tuple[str, str], int]:
     """How many notifications of ``alerts`` there are by (status, severity), in the order
     each pair first appears."""
@@ -304,10 +338,9 @@ def state_snapshot(reader: StateReader, settings: Settings, layout: Layout,
     totals = ledger_totals(reader)
     latest_drift = {}
     if summary.get("checkpoint_version") is not None:
-        for r in reader.db.execute("SELECT segment, drift FROM segment_history WHERE version = ?",
-                                   (summary["checkpoint_version"],)):
-            if r[1]:
-                latest_drift[int(r[0])] = json.loads(r[1])
+        for segment, _, drift in segment_rows_at(reader, summary["checkpoint_version"]):
+            if drift:
+                latest_drift[int(segment)] = json.loads(drift)
     for seg in summary["segments"]:
         seg["drift"] = latest_drift.get(seg["id"])
     alerts = read_alerts(reader)

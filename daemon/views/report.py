@@ -14,7 +14,6 @@ from __future__ import annotations
 import base64
 import datetime as _dt
 import html
-import json
 import math
 import re
 import time
@@ -34,7 +33,12 @@ from shoal.daemon.files.layout import Layout
 from shoal.daemon.ingest.pipeline import open_input
 from shoal.daemon.runtime.progress import progress
 from shoal.daemon.files.readers import read_input
-from shoal.daemon.state.readout import StateReader, read_alerts, state_snapshot
+from shoal.daemon.state.readout import (
+    StateReader,
+    checkpoint_extras,
+    read_alerts,
+    state_snapshot,
+)
 from shoal.daemon.model.transforming import centres, from_meta
 from shoal.daemon.state.compacted import compacted_totals
 from shoal.daemon.segments.segment_names import segment_names
@@ -175,8 +179,8 @@ def _fit_points(reader: StateReader, axis: Axis) -> list[tuple[int, float]]:
     baseline's mean log-density per row (kept checkpoints record each baseline and the
     version it was taken at) minus the input's mean, from its labels file."""
     taken: dict[int, float] = {}
-    for (extra,) in reader.db.execute("SELECT extra FROM checkpoints ORDER BY version"):
-        drift = json.loads(extra).get("drift") or {}
+    for extra in checkpoint_extras(reader):
+        drift = extra.get("drift") or {}
         ref, info = drift.get("baseline"), drift.get("baseline_info")
         if isinstance(ref, Mapping) and isinstance(info, Mapping) and \
                 isinstance(ref.get("log_density"), (int, float)) and \
