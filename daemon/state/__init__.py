@@ -8,6 +8,6 @@ the folder's :mod:`.marker`, retention and pruning, and :mod:`.readout`, the rea
 side that returns plain data for status, report and metrics (it reads; the views
 draw). May import config, core, errors and the lower parts of the daemon it reads
 through (files' digest, layout and quarantine; model's contract and transforms;
-segment names; runtime's logs and liveness); never ingest, intake's service, the
-views or the command line.
+segment names; runtime's logs and liveness; intake's readiness gate, to count the
+inbox's backlog); never ingest, intake's service, the views or the command line.
 """
