@@ -117,7 +117,8 @@ class StatusServer:
 
     def page_plots(self, snap: dict) -> dict[str, bytes]:
         """The page's plots, drawn again only when the model or the alerts changed."""
-        from shoal.daemon.views.report import render_plots, report_data
+        from shoal.daemon.views.report import render_plots
+        from shoal.daemon.views.report_data import report_data
         from shoal.daemon.views.status_page import PAGE_PLOTS
 
         key = (snap["model_version"], len(snap["recent_alerts"]),
@@ -133,7 +134,7 @@ class StatusServer:
 
     def page(self) -> str:
         """The HTML status page (drawn by :mod:`shoal.daemon.views.status_page`)."""
-        from shoal.daemon.views.report import feature_units
+        from shoal.daemon.views.report_data import feature_units
         from shoal.daemon.views.status_page import status_page_html
 
         snap = self.status()
