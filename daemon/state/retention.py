@@ -283,7 +283,7 @@ def apply_plan(plan: Plan, store) -> list[str]:
 
 def _remove_rows(plan: Plan, store) -> None:
     db = store.db
-    with store._transaction():
+    with store.transaction():
         totals = compacted_totals(db)
         for chunk in _chunks(plan.ledger_ids):
             marks = ",".join("?" * len(chunk))

@@ -190,6 +190,13 @@ class StateStore:
                 db.close()
 
     # -- plumbing -------------------------------------------------------------
+    def transaction(self):
+        """A context manager around one write transaction (``BEGIN IMMEDIATE``): committed
+        when the block ends, rolled back when it raises or when the commit fails, so
+        no transaction is left open. For writes composed outside this class (retention's
+        pruning); the store's own methods each take one."""
+        return self._transaction()
+
     def _transaction(self):
         store = self
 
