@@ -27,7 +27,7 @@ from shoal.daemon.model.contract import settings_of_model
 from shoal.daemon.model.transforming import feature_centres, from_meta
 from shoal.daemon.runtime.liveness import service_state
 from shoal.daemon.files.quarantine import quarantine_summary
-from shoal.daemon.state.compacted import compacted_totals
+from shoal.daemon.state.compacted import add_ledger_totals, compacted_totals
 from shoal.daemon.state.store import Checkpoint, StateStore
 from shoal.daemon.segments.segment_names import segment_names
 from shoal.daemon.state.store_words import (
@@ -110,13 +110,9 @@ def open_reader(layout: Layout) -> StateReader:
 def ledger_totals(reader: StateStore) -> dict[str, Any]:
     """Inputs and rows per ledger outcome, the last commit time and the last input."""
     by = {k: dict(v) for k, v in compacted_totals(reader.db).items()}  # rows pruned away
-    for outcome, n, rows, bad in reader.db.execute(
-            "SELECT outcome, COUNT(*), COALESCE(SUM(rows), 0), COALESCE(SUM(rows_invalid), 0) "
-            "FROM ledger GROUP BY outcome"):
-        t = by.setdefault(outcome, {"inputs": 0, "rows": 0, "rows_invalid": 0})
-        t["inputs"] += n
-        t["rows"] += rows
-        t["rows_invalid"] += bad
+    add_ledger_totals(by, reader.db.execute(
+        "SELECT outcome, COUNT(*), COALESCE(SUM(rows), 0), COALESCE(SUM(rows_invalid), 0) "
+        "FROM ledger GROUP BY outcome"))
     last_commit = reader.db.execute(
         "SELECT MAX(finished_at) FROM ledger WHERE outcome = 'committed'").fetchone()[0]
     last = reader.db.execute("SELECT name, outcome, rows, finished_at, model_version FROM ledger "
