@@ -38,6 +38,8 @@ class ServiceError(ShoalError):
 
 
 class UsageError(ServiceError):
+    """A command used wrongly (an option, a name, a range); exit code 2 with the message."""
+
     exit_code = 2
 
 

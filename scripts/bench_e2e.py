@@ -347,7 +347,7 @@ def memory_table(tmp: Path, warm: Path, small: Path, rows: int, big_rows: int) -
 # the thread that made them; nested calls of timed functions count once.
 STAGES = [
     ("hash (BLAKE3 of the file)", "shoal.daemon.files.readers", "file_digest", "_run"),
-    ("frame build (float64 rows, checks)", "shoal.daemon.files.readers", None, "_frame"),
+    ("frame build (float64 rows, checks)", "shoal.daemon.files.readers", None, "build_frame"),
     ("model E+M (Mixture.learn)", "shoal.core.mixture", "Mixture", "learn"),
     ("drift (window sums, evaluation)", "shoal.daemon.segments.monitor", "InputWatch", "observe"),
     ("lifecycle decision points", "shoal.daemon.segments.segment_life", "LifeWatch", "at_boundary"),

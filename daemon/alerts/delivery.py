@@ -100,6 +100,15 @@ def sign(key: bytes, message_id: str, timestamp: int, body: bytes) -> str:
 _request = threading.local()   # .deadline: time.monotonic() by which the request must end
 
 
+def _in_time(name: str):
+    """The socket method ``name``, waiting at most for the time left to the deadline."""
+    def method(self, *args):
+        self._time_left()
+        return getattr(super(_Deadline, self), name)(*args)
+    method.__name__ = method.__qualname__ = name
+    return method
+
+
 class _Deadline:
     """Socket operations that each wait only for the time left to the request's deadline
     (a per-operation timeout lets a receiver that answers a byte at a time hold the
@@ -113,21 +122,10 @@ class _Deadline:
                 raise TimeoutError("the request's deadline passed")
             self.settimeout(left)
 
-    def recv(self, *args):
-        self._time_left()
-        return super().recv(*args)
-
-    def recv_into(self, *args):
-        self._time_left()
-        return super().recv_into(*args)
-
-    def send(self, *args):
-        self._time_left()
-        return super().send(*args)
-
-    def sendall(self, *args):
-        self._time_left()
-        return super().sendall(*args)
+    recv = _in_time("recv")
+    recv_into = _in_time("recv_into")
+    send = _in_time("send")
+    sendall = _in_time("sendall")
 
 
 class _DeadlineSocket(_Deadline, socket.socket):
@@ -151,6 +149,11 @@ def _user_agent() -> str:
         return f"shoal/{metadata.version('shoal')}"
     except metadata.PackageNotFoundError:
         return "shoal"
+
+
+def _shown(sink_name: str) -> str:
+    """A sink's name as logged: without the hash that tells two webhooks apart."""
+    return sink_name.split("#")[0]
 
 
 class DeliveryFailed(ServiceError):
@@ -307,7 +310,7 @@ class AlertSender:
                 settings, self._pending_settings = self._pending_settings, None
                 self._build_sinks(settings)
                 log_event("alert_sinks_reloaded",
-                          sinks=[n.split("#")[0] for n in self.sink_names])
+                          sinks=[_shown(n) for n in self.sink_names])
 
     # -- one pass --------------------------------------------------------------------
     def deliver_due(self, kind: str | None = None, store: StateStore | None = None) -> int:
@@ -345,7 +348,7 @@ class AlertSender:
                                   sinks=names)
             delivered += 1
             log_event("alert_delivered", logging.DEBUG, notification=outbox_id,
-                      sink=sink_name.split("#")[0], attempts=attempts + 1)
+                      sink=_shown(sink_name), attempts=attempts + 1)
         return delivered
 
     def _failed(self, store: StateStore, outbox_id: str, sink_name: str, attempts: int,
@@ -355,7 +358,7 @@ class AlertSender:
         if attempts > retries:
             next_at = float("inf")
             log_event("alert_delivery_gave_up", logging.ERROR, notification=outbox_id,
-                      sink=sink_name.split("#")[0], attempts=attempts, detail=error,
+                      sink=_shown(sink_name), attempts=attempts, detail=error,
                       retry="at the next start of the service")
         else:
             base = hook.backoff_seconds if hook else 1.0
@@ -363,7 +366,7 @@ class AlertSender:
             delay = min(cap, base * 2 ** (attempts - 1)) * (0.5 + self.rng.random())
             next_at = self.clock() + delay
             log_event("alert_delivery_failed", logging.WARNING, notification=outbox_id,
-                      sink=sink_name.split("#")[0], attempts=attempts, detail=error,
+                      sink=_shown(sink_name), attempts=attempts, detail=error,
                       retry_in=round(delay, 3))
         store.record_delivery(outbox_id, sink_name, ok=False, attempts=attempts,
                               next_at=next_at, error=error, sinks=names)

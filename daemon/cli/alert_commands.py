@@ -2,7 +2,6 @@
 from __future__ import annotations
 
 import contextlib
-import datetime as _dt
 import json
 import sys
 import tempfile
@@ -20,46 +19,11 @@ from shoal.daemon.files.layout import StateLock, open_store, prepare_folders
 from shoal.daemon.runtime.logs import setup_logging
 from shoal.daemon.ingest.pipeline import Pipeline
 from shoal.daemon.runtime.progress import progress
+from shoal.daemon.views.alert_text import format_alert
 from shoal.daemon.views.report import parse_since
 
 __all__ = ["add_alert_commands", "alert_delivery", "deliver_alerts", "format_alert", "replay",
            "replay_counts"]
-
-def _n(x) -> str:
-    return "-" if x is None else f"{x:.4g}" if isinstance(x, float) else str(x)
-
-
-def format_alert(payload: dict, created: float | None = None, prefix: str = "") -> str:
-    """Two or three lines: what was raised, where in the stream, and the explanation."""
-    p = payload
-    when = "" if created is None else _dt.datetime.fromtimestamp(
-        created, _dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%S ")
-    seg = "whole model" if p.get("segment") == "all" else f"segment {p.get('segment')}"
-    if p.get("segment_name"):
-        seg += f" ({p['segment_name']})"
-    head = (f"{prefix}{when}{p.get('status', '?').upper():8s} {p.get('severity', ''):8s} "
-            f"{seg}  {p.get('statistic')} {_n(p.get('value'))} (bound {_n(p.get('bound'))}, "
-            f"noise {_n(p.get('noise'))}; {p.get('unit', '')})  id {p.get('id')}")
-    if p.get("kind") == "lifecycle":     # born, retired, merged: an event, not a bound
-        head = (f"{prefix}{when}{p.get('status', '?').upper():8s} {p.get('severity', ''):8s} "
-                f"{seg}  id {p.get('id')}")
-    rows, mv = p.get("rows") or {}, p.get("model_version") or {}
-    where = (f"{prefix}    rows {_n(rows.get('first'))}-{_n(rows.get('last'))}, model versions "
-             f"{_n(mv.get('first'))}-{_n(mv.get('last'))}")
-    if p.get("time"):
-        where += f", time {p['time']['first']} .. {p['time']['last']}"
-    if p.get("inputs"):
-        files = p["inputs"]
-        where += f", inputs {', '.join(files[:4])}" + (f" (+{len(files) - 4})" if len(files) > 4
-                                                       else "")
-    if p.get("cleared_by"):
-        where += f", cleared by {p['cleared_by']}: {p.get('note')!r}"
-    lines = [head, where]
-    summary = (p.get("explanation") or {}).get("summary")
-    if summary:
-        lines.append(f"{prefix}    {summary}")
-    return "\n".join(lines)
-
 
 # ------------------------------------------------------------------------------ alerts
 

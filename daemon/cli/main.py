@@ -25,15 +25,14 @@ from shoal.daemon.runtime.allocator import ARROW_PURGE_DELAY, tune_allocator
 # One BLAS thread unless the environment says otherwise, set before numpy is loaded:
 # the model's matrices are narrow (K*D by D+1), where a second BLAS thread gains
 # little, and on a small machine it would fight the reader thread (and the core's own
-# workers) for a core. Measured on 2 cores with other work running (K=8, D=16, full):
-# core E+M 480,000 rows/s with one BLAS thread, 110,000-140,000 with two.
+# workers) for a core, which makes both slower.
 for _var in ("OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 # Arrow's allocator (mimalloc) keeps the memory it frees instead of handing it back to
-# the kernel 10 ms later, set before pyarrow first allocates: each frame's buffers are
-# freed and made again every ~50 ms, and memory handed back comes back as fresh pages
-# the kernel must zero. Page faults of the reader thread over two 1M-row Parquet
-# inputs: 11,700 -> 2,300; its kernel time 0.33 -> 0.20 s. See shoal.daemon.runtime.allocator.
+# the kernel soon after, set before pyarrow first allocates: each frame's buffers are
+# freed and made again many times a second, and memory handed back comes back as fresh
+# pages the kernel must zero (page faults and kernel time of the reader thread). See
+# shoal.daemon.runtime.allocator.
 os.environ.setdefault(ARROW_PURGE_DELAY[0], ARROW_PURGE_DELAY[1])
 
 from shoal.config import ConfigError, Settings, dump_settings, load_config  # noqa: E402
@@ -329,9 +328,9 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)  # usage errors: argparse prints and exits 2
     apply_environment()   # SHOAL_COMPILED=0: core's numpy path (shoal.daemon.runtime.compiled_switch)
     tune_allocator()   # frames' buffers reused, not fresh pages each (shoal.daemon.runtime.allocator)
-    # The ~50,000 objects of the imports (modules, functions, classes) live as long as the
-    # process: moved out of the cyclic collector's view, a full collection no longer
-    # walks them (~30 ms holding the interpreter lock, so every thread of an input's
+    # The tens of thousands of objects of the imports (modules, functions, classes) live as
+    # long as the process: moved out of the cyclic collector's view, a full collection no
+    # longer walks them (a pause holding the interpreter lock, so every thread of an input's
     # pipeline waits meanwhile). Objects made later are collected as usual. Once a
     # process (main is called many times over in the tests).
     if not gc.get_freeze_count():

@@ -62,7 +62,8 @@ def _cmd_report(args) -> int:
 
 
 def _cmd_status(args) -> int:
-    from shoal.daemon.state.readout import format_status, state_snapshot
+    from shoal.daemon.state.readout import state_snapshot
+    from shoal.daemon.views.status_text import format_status
 
     settings = _settings(args)
     layout, reader = _reader(settings)

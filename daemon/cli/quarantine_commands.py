@@ -13,7 +13,8 @@ name with its sidecar ``<name>.json`` (:mod:`shoal.daemon.files.quarantine`). He
 - ``drop NAME...``: the input and its sidecar are deleted.
 
 Each works beside a running service: the ledger note is one short write to the
-state store. Sidecars are read through :func:`read_sidecar` alone.
+state store. Sidecars are read through
+:func:`~shoal.daemon.files.quarantine.read_sidecar` alone (re-exported here).
 """
 from __future__ import annotations
 
@@ -28,74 +29,13 @@ from typing import Any
 
 from shoal.daemon.errors import UsageError
 from shoal.daemon.files.layout import Layout
+from shoal.daemon.files.quarantine import quarantine_summary, quarantined, read_sidecar
 from shoal.daemon.files.writer import atomic_file, fsync_dir
 
 __all__ = ["read_sidecar", "quarantined", "quarantine_summary", "retry", "drop",
            "RETRIED_FOLDER", "add_quarantine_commands"]
 
 RETRIED_FOLDER = "retried"
-
-
-def read_sidecar(path: Path) -> dict[str, Any] | None:
-    """One sidecar as a flat record: ``name`` (the file in the quarantine folder),
-    ``input`` (its original name), ``reason``, ``detail``, ``time`` (epoch seconds),
-    ``size`` (bytes, None when the input was not moved here), ``file``, ``sidecar``,
-    and every other field of the sidecar as it is. None if it cannot be read."""
-    try:
-        record = json.loads(Path(path).read_text("utf-8"))
-    except (OSError, ValueError):
-        return None
-    if not isinstance(record, dict):
-        return None
-    name = Path(path).name[:-len(".json")]
-    data = Path(path).with_name(name)
-    try:
-        size = data.stat().st_size if data.is_file() else None
-    except OSError:
-        size = None
-    try:
-        stamp = _dt.datetime.fromisoformat(str(record.get("time"))).timestamp()
-    except ValueError:
-        try:
-            stamp = Path(path).stat().st_mtime
-        except OSError:
-            return None
-    original = str(record.get("input") or name)
-    if "/" in original or original.startswith(".") or original in ("", ".."):
-        original = name        # a name to put back into the inbox must be a plain one
-    return {**record, "name": name, "input": original,
-            "reason": record.get("reason", "unknown"), "detail": record.get("detail", ""),
-            "time": stamp, "size": size, "file": data if size is not None else None,
-            "sidecar": Path(path)}
-
-
-def quarantined(layout: Layout) -> list[dict[str, Any]]:
-    """Every input in quarantine (its sidecar readable), oldest first."""
-    out = []
-    try:
-        names = sorted(os.listdir(layout.quarantine))
-    except FileNotFoundError:
-        return []
-    for n in names:
-        if n.endswith(".json") and not n.startswith("."):
-            record = read_sidecar(layout.quarantine / n)
-            if record is not None:
-                out.append(record)
-    out.sort(key=lambda r: (r["time"], r["name"]))
-    return out
-
-
-def quarantine_summary(layout: Layout) -> dict[str, Any]:
-    """For status: how many inputs are in quarantine, by reason, and the latest."""
-    entries = quarantined(layout)
-    by_reason: dict[str, int] = {}
-    for e in entries:
-        by_reason[e["reason"]] = by_reason.get(e["reason"], 0) + 1
-    latest = entries[-1] if entries else None
-    return {"count": len(entries), "by_reason": by_reason,
-            "latest": None if latest is None else {
-                "name": latest["name"], "reason": latest["reason"],
-                "detail": latest["detail"], "time": latest["time"]}}
 
 
 def _entry(layout: Layout, name: str) -> dict[str, Any]:

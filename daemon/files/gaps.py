@@ -19,7 +19,7 @@ from __future__ import annotations
 import numpy as np
 
 from shoal.core import fused
-from shoal.daemon.files.readers import FEATURE_BOUND, Frame
+from shoal.daemon.files.frame import FEATURE_BOUND, Frame
 
 __all__ = ["admit", "observed_counts", "frame_observed", "Unusual", "complete_rows"]
 

@@ -1,4 +1,11 @@
-"""The service's folders, their permissions, and the lock on the state folder."""
+"""The service's folders, their permissions, and the lock on the state folder.
+
+:class:`Layout` names every folder and file of a configured service (inbox, outbox,
+state, quarantine, processed, the store and its lock) in one place, so no other
+module builds those paths itself. :func:`prepare_folders` makes or checks them with
+clear errors, :class:`StateLock` keeps a second service off the same state, and
+:func:`open_store` opens the store with what shows the folder was used before.
+"""
 from __future__ import annotations
 
 import errno
@@ -19,6 +26,7 @@ STATE_MODE = 0o700
 
 @dataclass(frozen=True)
 class Layout:
+    """The paths of one service's folders and state files, derived from its settings."""
     inbox: Path
     outbox: Path
     state: Path

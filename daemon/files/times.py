@@ -25,7 +25,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-__all__ = ["RowTimes", "row_times", "TIME_UNITS", "iso_utc"]
+__all__ = ["RowTimes", "row_times", "TIME_UNITS", "iso_utc", "date_as_timestamp"]
 
 TIME_UNITS = ("s", "ms", "us", "ns")
 _US_PER = {"s": 1_000_000, "ms": 1_000, "us": 1, "ns": 1}   # ns: divided, below
@@ -50,6 +50,11 @@ def iso_utc(value: np.datetime64) -> str:
     return str(np.datetime_as_string(value, unit="ms")) + "Z"
 
 
+def date_as_timestamp(column):
+    """A date column as millisecond timestamps at each day's midnight UTC."""
+    return pc.cast(pc.cast(column, pa.date64()), pa.timestamp("ms"))
+
+
 def row_times(column: pa.Array | pa.ChunkedArray, unit: str | None = None,
               fmt: str | None = None) -> RowTimes:
     """The instants of ``column`` (see the module's description)."""
@@ -64,8 +69,7 @@ def row_times(column: pa.Array | pa.ChunkedArray, unit: str | None = None,
                             pa.scalar(None, t), column)
         present = len(column) - column.null_count
     if pa.types.is_date(t):
-        column, t = pc.cast(pc.cast(column, pa.date64()), pa.timestamp("ms")), \
-            pa.timestamp("ms")
+        column, t = date_as_timestamp(column), pa.timestamp("ms")
     if pa.types.is_timestamp(t):
         return _finish(_from_epoch_ints(column.cast(pa.int64()), t.unit), present)
     if pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t):

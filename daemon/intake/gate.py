@@ -44,6 +44,7 @@ def input_kind(name: str) -> str | None:
 
 
 class Verdict(enum.Enum):
+    """What the gate says of a path: read it now, wait, skip it, refuse it, or it is gone."""
     READY = "ready"
     WAIT = "wait"
     IGNORE = "ignore"
@@ -53,6 +54,8 @@ class Verdict(enum.Enum):
 
 @dataclass(frozen=True)
 class Decision:
+    """A verdict on one path, with its reason, when to look again (for WAIT), and the
+    modification time and size it was judged at."""
     verdict: Verdict
     reason: str = ""
     recheck_at: float | None = None  # monotonic time for WAIT

@@ -6,9 +6,8 @@ frees them, and the labels thread does the same with the labels columns. glibc's
 serves blocks from 128 KiB up with their own ``mmap`` at first, and returns freed memory
 at the top of an arena to the kernel once more than 128 KiB is free there. Either way
 the next frame's arrays are fresh pages, which the kernel must zero and map again (and
-unmapping them interrupts the other threads to flush their TLBs). On the development
-machine (2 cores, a virtual machine) that was 0.15-0.25 CPU-s of kernel time for a
-1,000,000-row Parquet input, about a tenth of its CPU.
+unmapping them interrupts the other threads to flush their TLBs): kernel time that
+grows with the input, a noticeable share of its CPU on a small machine.
 
 :func:`tune_allocator` keeps blocks up to 32 MiB inside the arenas and keeps up to
 128 MiB free at an arena's top, so the frames reuse the same memory. The peak resident
@@ -16,7 +15,7 @@ memory does not grow (the same blocks are reused), but up to that much may stay
 resident between inputs.
 
 Arrow's own allocator (mimalloc) does the same by default: memory it frees goes back to
-the kernel 10 ms later. ``ARROW_PURGE_DELAY`` (an environment variable and its value,
+the kernel shortly after. ``ARROW_PURGE_DELAY`` (an environment variable and its value,
 which the command line sets unless it is set already, before pyarrow first allocates)
 makes it keep that memory for reuse.
 """

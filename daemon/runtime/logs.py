@@ -20,6 +20,9 @@ _log = logging.getLogger(LOGGER_NAME)
 
 
 class JsonLineFormatter(logging.Formatter):
+    """A log record as one JSON object: ``time`` (UTC, milliseconds), ``level``, ``event``
+    and the record's fields, so log lines can be filtered by machine."""
+
     def format(self, record: logging.LogRecord) -> str:
         out: dict[str, Any] = {
             "time": _dt.datetime.fromtimestamp(record.created, _dt.timezone.utc)

@@ -7,7 +7,8 @@ the segments and the alerts are read from the state at scrape time; the queue
 depth and health come from the live service through callables.
 
 Names follow the Prometheus conventions: ``shoal_`` prefix, base units
-(seconds, rows), ``_total`` on counters; no file names as labels.
+(seconds, rows), ``_total`` on counters; no file names as labels. The state is read
+through :mod:`shoal.daemon.state.readout`; this module only shapes it into families.
 """
 from __future__ import annotations
 
@@ -24,8 +25,17 @@ from prometheus_client.core import (
 )
 from prometheus_client.registry import Collector
 
-from shoal.daemon.state.readout import StateReader, open_alerts, read_alerts
-from shoal.daemon.cli.quarantine_commands import quarantine_summary
+from shoal.daemon.state.readout import (
+    StateReader,
+    latest_history_version,
+    ledger_rows_after,
+    notification_counts,
+    open_alerts,
+    read_alerts,
+    segment_rows_at,
+    undelivered_count,
+)
+from shoal.daemon.files.quarantine import quarantine_summary
 from shoal.daemon.state.compacted import compacted_notifications, compacted_totals
 
 __all__ = ["LedgerCollector", "build_registry", "render_metrics", "PROCESSING_BUCKETS"]
@@ -65,9 +75,7 @@ class LedgerCollector(Collector):
         self._last_commit = None
 
     def _follow_ledger(self) -> None:
-        rows = self.reader.db.execute(
-            "SELECT id, outcome, rows, rows_invalid, seen_at, finished_at FROM ledger "
-            "WHERE id > ? ORDER BY id", (self._last_id,)).fetchall()
+        rows = ledger_rows_after(self.reader, self._last_id)
         for id_, outcome, n, bad, seen, finished in rows:
             self._last_id = id_
             self._inputs[outcome] = self._inputs.get(outcome, 0) + 1
@@ -117,16 +125,14 @@ class LedgerCollector(Collector):
     def _state_families(self):
         yield GaugeMetricFamily("shoal_model_version", "Model version (one per learned input)",
                                 value=self.reader.model_version)
-        row = self.reader.db.execute("SELECT MAX(version) FROM segment_history").fetchone()
+        latest = latest_history_version(self.reader)
         weight = GaugeMetricFamily("shoal_segment_weight", "Share of rows of each segment",
                                    labels=["segment"])
         drift = GaugeMetricFamily("shoal_segment_drift",
                                   "Drift statistics of each segment against its baseline",
                                   labels=["segment", "statistic"])
-        if row[0] is not None:
-            for segment, w, stats in self.reader.db.execute(
-                    "SELECT segment, weight, drift FROM segment_history WHERE version = ? "
-                    "ORDER BY segment", (row[0],)):
+        if latest is not None:
+            for segment, w, stats in segment_rows_at(self.reader, latest):
                 weight.add_metric([str(segment)], w)
                 for name, value in _numbers(stats):
                     drift.add_metric([str(segment), name], value)
@@ -140,9 +146,8 @@ class LedgerCollector(Collector):
             status, severity = key.split("/", 1)
             counts[(status, severity)] = n
         alerts = read_alerts(self.reader)
-        for a in alerts:
-            key = (str(a.get("status")), str(a.get("severity")))
-            counts[key] = counts.get(key, 0) + 1
+        for key, n in notification_counts(alerts).items():
+            counts[key] = counts.get(key, 0) + n
         for key, n in sorted(counts.items()):
             notes.add_metric(list(key), n)
         yield notes
@@ -155,8 +160,7 @@ class LedgerCollector(Collector):
         for sev, n in sorted(by_severity.items()):
             raised.add_metric([sev], n)
         yield raised
-        pending = self.reader.db.execute(
-            "SELECT COUNT(*) FROM alert_outbox WHERE delivered_at IS NULL").fetchone()[0]
+        pending = undelivered_count(self.reader)
         yield GaugeMetricFamily("shoal_alerts_undelivered", "Alerts in the outbox not yet "
                                 "delivered to every sink", value=pending)
         if self.layout is not None:

@@ -6,14 +6,16 @@ and off unless ``http.port`` is set. GET and HEAD only: every other method is
 answered 405. Connections are bounded (``http.max_connections``: past it a new one closes
 the oldest that has not sent a complete request) and one that sends nothing for
 ``http.idle_seconds`` is closed, so idle or half-open connections cannot use up the
-process's file descriptors (which the inputs need too) or its threads. The state is read through its own read-only connection
-(:class:`~shoal.daemon.state.readout.StateReader`), never the worker's. The page's
-plots are drawn once per model version and kept.
+process's file descriptors (which the inputs need too) or its threads. The state is
+read through its own read-only connection
+(:class:`~shoal.daemon.state.readout.StateReader`), never the worker's. This module
+serves; what it serves is read by :mod:`shoal.daemon.state.readout` and drawn by the
+views (:mod:`shoal.daemon.views.status_page`, the report's plots, which are drawn once
+per model version and kept).
 """
 from __future__ import annotations
 
 import contextlib
-import html
 import json
 import logging
 import socket
@@ -29,16 +31,16 @@ from shoal.config import ConfigError, Settings
 from shoal.daemon.files.layout import Layout
 from shoal.daemon.runtime.logs import log_event
 from shoal.daemon.runtime.metrics import build_registry, render_metrics
-from shoal.daemon.state.readout import StateReader, format_service, state_snapshot
+from shoal.daemon.state.readout import StateReader, state_snapshot
 
 __all__ = ["Health", "StatusServer"]
 
-PAGE_PLOTS = ("weights", "drift", "fit", "pca")  # of report.REPORT_PLOTS: the key ones for the page
-_REFRESH_SECONDS = 30
 
 
 @dataclass(frozen=True)
 class Health:
+    """A health or readiness answer: ok or not, and the checks behind it (``/healthz``,
+    ``/readyz`` and the status page show it)."""
     ok: bool
     checks: dict[str, Any] = field(default_factory=dict)
 
@@ -115,7 +117,9 @@ class StatusServer:
 
     def page_plots(self, snap: dict) -> dict[str, bytes]:
         """The page's plots, drawn again only when the model or the alerts changed."""
-        from shoal.daemon.views.report import render_plots, report_data
+        from shoal.daemon.views.report import render_plots
+        from shoal.daemon.views.report_data import report_data
+        from shoal.daemon.views.status_page import PAGE_PLOTS
 
         key = (snap["model_version"], len(snap["recent_alerts"]),
                snap["recent_alerts"][0].get("id") if snap["recent_alerts"] else None)
@@ -129,55 +133,12 @@ class StatusServer:
         return pngs
 
     def page(self) -> str:
-        from shoal.daemon.views.report import (
-            REPORT_PLOTS,
-            alerts_table,
-            feature_units,
-            figure_html,
-            page_html,
-            segments_table,
-        )
+        """The HTML status page (drawn by :mod:`shoal.daemon.views.status_page`)."""
+        from shoal.daemon.views.report_data import feature_units
+        from shoal.daemon.views.status_page import status_page_html
 
         snap = self.status()
-        now = snap["time"]
-        h, r = snap["health"], snap["ready"]
-        last = snap["last_input"]
-        lag = snap["backlog"]["lag_seconds"]
-        facts = [
-            ("service", format_service(snap.get("service"), now).split(": ", 1)[1]),
-            ("health", h["status"]),
-            ("ready", r["status"]),
-            ("model version", snap["model_version"]),
-            ("last input", "none yet" if last is None else
-             f"{last['name']} ({last['outcome']}, {now - last['time']:.0f} s ago)"),
-            ("waiting in the inbox", snap["backlog"]["files"]),
-            ("lag", "-" if lag is None else f"{lag:.1f} s"),
-            ("queue depth", snap["live"].get("queue_depth", "-")),
-            ("quarantine", _quarantine_fact(snap.get("quarantine") or {})),
-            ("last error", "none" if snap["last_error"] is None else
-             f"{snap['last_error']['name']}: {snap['last_error']['reason']}"),
-        ]
-        rows = "".join(f'<tr><th class="l">{html.escape(k)}</th><td class="l">'
-                       f"{html.escape(str(v))}</td></tr>" for k, v in facts)
-        pngs = self.page_plots(snap)
-        body = ("<h1>shoal status</h1>"
-                f'<p class="meta">Refreshes every {_REFRESH_SECONDS} s · '
-                '<a href="/status">JSON</a> · <a href="/metrics">metrics</a></p>'
-                f'<table id="facts">{rows}</table>'
-                "<h2>Current segments</h2>"
-                + segments_table(snap, feature_units(self.settings))
-                + "<h2>Recent alerts</h2>" + alerts_table(snap["recent_alerts"])
-                + "".join(f"<h2>{html.escape(REPORT_PLOTS[k])}</h2>"
-                          + figure_html(k, pngs[k], REPORT_PLOTS[k]) for k in PAGE_PLOTS))
-        return page_html("shoal status", body, refresh_seconds=_REFRESH_SECONDS)
-
-
-def _quarantine_fact(q: dict) -> str:
-    latest = q.get("latest")
-    text = f"{q.get('count', 0)} input(s)"
-    if latest:
-        text += f"; latest {latest['name']}: {latest['reason']} ({latest['detail']})"
-    return text
+        return status_page_html(snap, self.page_plots(snap), feature_units(self.settings))
 
 
 class _BoundedServer(ThreadingHTTPServer):

@@ -74,6 +74,10 @@ class BeatingEvent(threading.Event):
 
 
 class Supervisor:
+    """Runs ``shoal watch``: the worker thread that owns the model, and on the main thread
+    the service manager's notifications, health, the HTTP endpoint, reloads, retention
+    and an orderly stop."""
+
     def __init__(self, settings: Settings, layout: Layout, pipeline: Pipeline, *,
                  config_path: Path | None = None, notifier: Notifier | None = None,
                  observer_factory: Callable[[], object] | None = None,

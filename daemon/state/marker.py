@@ -37,6 +37,9 @@ _MAX_BYTES = 4096
 
 @dataclass(frozen=True)
 class Marker:
+    """A marker as read: the store id it vouches for and the counters it last recorded
+    (None where damaged or unreadable, which weakens the check but still says the folder
+    was used)."""
     path: Path
     store_id: str | None          # None: the marker is damaged
     ledger_rows: int | None       # None: counters unreadable (the check is skipped)

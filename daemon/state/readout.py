@@ -1,11 +1,13 @@
-"""Read the state without touching it: the data behind ``shoal status``, the status
-page, ``/status``, ``/metrics`` and ``shoal report``.
+"""Read the state without touching it: the data behind ``shoal status``, ``shoal
+segments``, the status page, ``/status``, ``/metrics`` and ``shoal report``.
 
 :class:`StateReader` is a :class:`~shoal.daemon.state.store.StateStore` opened
 read-only (``mode=ro``, ``query_only``), so a report or a scrape can run beside
 a live service without taking its lock and can never write. Alerts are read
 from whichever alert table the store has; a store without alerts yet gives an
-empty list.
+empty list. This module reads and returns plain data; the views
+(:mod:`shoal.daemon.views`) and the HTTP and metrics endpoints
+(:mod:`shoal.daemon.runtime`) draw it and compute nothing from the state again.
 """
 from __future__ import annotations
 
@@ -17,22 +19,27 @@ from pathlib import Path
 from typing import Any
 
 from shoal.config import Settings
+from shoal.core import Mixture
 from shoal.daemon.errors import StateError
 from shoal.daemon.intake.gate import ReadinessGate
 from shoal.daemon.files.layout import Layout
+from shoal.daemon.model.contract import settings_of_model
+from shoal.daemon.model.transforming import feature_centres, from_meta
 from shoal.daemon.runtime.liveness import service_state
-from shoal.daemon.cli.quarantine_commands import quarantine_summary
-from shoal.daemon.state.compacted import compacted_totals
+from shoal.daemon.files.quarantine import quarantine_summary
+from shoal.daemon.state.compacted import add_ledger_totals, compacted_totals
 from shoal.daemon.state.store import Checkpoint, StateStore
+from shoal.daemon.segments.segment_names import segment_names
 from shoal.daemon.state.store_words import (
     extra_in_current_words,
     notification_in_current_words,
     payload_in_current_words,
 )
-from shoal.daemon.views.summary import format_differences, segment_summary
 
 __all__ = ["StateReader", "open_reader", "read_alerts", "open_alerts", "inbox_backlog", "state_snapshot",
-           "format_status", "format_service", "ledger_totals"]
+           "ledger_totals", "notification_counts", "segment_summary", "ledger_rows_after",
+           "latest_history_version", "segment_rows_at", "undelivered_count",
+           "checkpoint_extras"]
 
 _ALERT_TABLES = ("alert_history", "alerts", "alert_outbox")
 
@@ -103,13 +110,9 @@ def open_reader(layout: Layout) -> StateReader:
 def ledger_totals(reader: StateStore) -> dict[str, Any]:
     """Inputs and rows per ledger outcome, the last commit time and the last input."""
     by = {k: dict(v) for k, v in compacted_totals(reader.db).items()}  # rows pruned away
-    for outcome, n, rows, bad in reader.db.execute(
-            "SELECT outcome, COUNT(*), COALESCE(SUM(rows), 0), COALESCE(SUM(rows_invalid), 0) "
-            "FROM ledger GROUP BY outcome"):
-        t = by.setdefault(outcome, {"inputs": 0, "rows": 0, "rows_invalid": 0})
-        t["inputs"] += n
-        t["rows"] += rows
-        t["rows_invalid"] += bad
+    add_ledger_totals(by, reader.db.execute(
+        "SELECT outcome, COUNT(*), COALESCE(SUM(rows), 0), COALESCE(SUM(rows_invalid), 0) "
+        "FROM ledger GROUP BY outcome"))
     last_commit = reader.db.execute(
         "SELECT MAX(finished_at) FROM ledger WHERE outcome = 'committed'").fetchone()[0]
     last = reader.db.execute("SELECT name, outcome, rows, finished_at, model_version FROM ledger "
@@ -184,6 +187,124 @@ def open_alerts(alerts: list[dict]) -> list[dict]:
                               reverse=True) if a.get("status") == "raised"]
 
 
+def segment_summary(store: StateStore, settings: Settings, now: float | None = None,
+                    include_gone: bool = False) -> dict:
+    """Model version, warm-up progress and one record per current segment; with
+    ``include_gone``, also the segments that retired or merged away (``gone``). The
+    segments are shown under the stored model's feature names; ``config_differs`` lists
+    the keys where the config differs from the stored model's contract."""
+    now = time.time() if now is None else now
+    settings, differs = settings_of_model(store, settings)
+    cp = store.latest_checkpoint()
+    out: dict[str, Any] = {"model_version": store.model_version,
+                           "features": list(settings.features), "segments": [],
+                           "config_differs": differs}
+    if cp is None:   # no model yet: the inputs taken so far only fill the warm-up
+        buffered = store.warmup_rows()
+        out["warmup"] = {"rows": 0 if buffered is None else int(len(buffered)),
+                         "needed": settings.warmup_rows, "inputs": store.model_version}
+        out["model_version"] = None
+        return out
+    m = Mixture.from_state(cp.arrays, cp.meta)
+    names = segment_names(store.db)
+    means, stds = m.data_means(), m.data_stds()
+    transforms = from_meta(cp.meta, m.n_features)
+    rows = cp.extra.get("segment_rows", {})
+    born = cp.extra.get("segment_born", {})
+    out["checkpoint_version"] = cp.version
+    out["rows_learned"] = int(m.n_rows)
+    for k, sid in enumerate(m.ids.tolist()):
+        b = born.get(str(sid), {})
+        record = {
+            "id": int(sid),
+            "name": names.get(int(sid)),
+            "weight": float(m.weights[k]),
+            "rows": int(rows.get(str(sid), 0)),
+            "mean": {f: float(v) for f, v in zip(settings.features, means[k])},
+            "spread": {f: float(v) for f, v in zip(settings.features, stds[k])},
+            "born_version": b.get("version"),
+            "age_versions": None if b.get("version") is None else cp.version - b["version"],
+            "age_seconds": None if b.get("time") is None else round(now - b["time"], 1),
+        }
+        _in_data_units(record, feature_centres(transforms, settings.features, means[k],
+                                                stds[k]))
+        out["segments"].append(record)
+    if include_gone:
+        out["gone"] = _gone_segments(store, settings, set(m.ids.tolist()), born)
+        for g in out["gone"]:
+            g["name"] = names.get(g["id"])
+    return out
+
+
+def _in_data_units(record: dict, centres: dict) -> None:
+    """A transformed feature's ``mean`` is its median in the data's units (``median``),
+    its ``spread`` None and ``interval`` the central 68% interval (a segment is
+    Gaussian in the model's units, not in the data's)."""
+    if not centres:
+        return
+    record["median"] = {f: c["median"] for f, c in centres.items()}
+    record["interval"] = {f: c["interval"] for f, c in centres.items()}
+    for f, c in centres.items():
+        record["mean"][f] = c["median"]
+        record["spread"][f] = None
+
+
+def _gone_segments(store: StateStore, settings: Settings, current: set, born: dict) -> list:
+    """Segments that left the model: when, how, and their last mean and spread."""
+    gone = {}
+    for h in store.segment_events():
+        if h["segment"] in current or not h["event"].startswith(("retired", "merged into")):
+            continue
+        gone[h["segment"]] = {
+            "id": int(h["segment"]), "ended": h["event"], "ended_version": h["version"],
+            "born_version": born.get(str(h["segment"]), {}).get("version"),
+            "mean": {f: float(v) for f, v in zip(settings.features, h["mean"])},
+            "spread": {f: float(v) for f, v in zip(settings.features, h["spread"])}}
+    return [gone[k] for k in sorted(gone)]
+
+
+def ledger_rows_after(reader: StateStore, last_id: int) -> list[tuple]:
+    """Ledger rows written after row ``last_id``, oldest first, as (id, outcome, rows,
+    rows_invalid, seen_at, finished_at): what a scrape adds to the counters it keeps."""
+    return reader.db.execute(
+        "SELECT id, outcome, rows, rows_invalid, seen_at, finished_at FROM ledger "
+        "WHERE id > ? ORDER BY id", (last_id,)).fetchall()
+
+
+def latest_history_version(reader: StateStore) -> int | None:
+    """The newest model version with segment history rows, or None."""
+    return reader.db.execute("SELECT MAX(version) FROM segment_history").fetchone()[0]
+
+
+def segment_rows_at(reader: StateStore, version: int) -> list[tuple]:
+    """The segment history rows of model ``version`` by segment, as (segment, weight,
+    drift JSON text or None)."""
+    return reader.db.execute("SELECT segment, weight, drift FROM segment_history "
+                             "WHERE version = ? ORDER BY segment", (version,)).fetchall()
+
+
+def undelivered_count(reader: StateStore) -> int:
+    """Notifications in the outbox not yet delivered to every sink."""
+    return reader.db.execute(
+        "SELECT COUNT(*) FROM alert_outbox WHERE delivered_at IS NULL").fetchone()[0]
+
+
+def checkpoint_extras(reader: StateStore) -> list[dict]:
+    """The extra data (drift and lifecycle state) of every kept checkpoint, oldest first."""
+    return [json.loads(extra) for (extra,) in
+            reader.db.execute("SELECT extra FROM checkpoints ORDER BY version")]
+
+
+def notification_counts(alerts: list[dict]) -> dict[tuple[str, str], int]:
+    """How many notifications of ``alerts`` there are by (status, severity), in the order
+    each pair first appears."""
+    counts: dict[tuple[str, str], int] = {}
+    for a in alerts:
+        key = (str(a.get("status")), str(a.get("severity")))
+        counts[key] = counts.get(key, 0) + 1
+    return counts
+
+
 def inbox_backlog(settings: Settings, layout: Layout, done_names: set[str] | None = None,
                   now: float | None = None) -> dict[str, Any]:
     """Files waiting in the inbox and the age of the oldest (the lag), in seconds."""
@@ -213,17 +334,14 @@ def state_snapshot(reader: StateReader, settings: Settings, layout: Layout,
     totals = ledger_totals(reader)
     latest_drift = {}
     if summary.get("checkpoint_version") is not None:
-        for r in reader.db.execute("SELECT segment, drift FROM segment_history WHERE version = ?",
-                                   (summary["checkpoint_version"],)):
-            if r[1]:
-                latest_drift[int(r[0])] = json.loads(r[1])
+        for segment, _, drift in segment_rows_at(reader, summary["checkpoint_version"]):
+            if drift:
+                latest_drift[int(segment)] = json.loads(drift)
     for seg in summary["segments"]:
         seg["drift"] = latest_drift.get(seg["id"])
     alerts = read_alerts(reader)
-    counts: dict[str, int] = {}
-    for a in alerts:
-        key = f"{a.get('status')}/{a.get('severity')}"
-        counts[key] = counts.get(key, 0) + 1
+    counts = {f"{status}/{severity}": n
+              for (status, severity), n in notification_counts(alerts).items()}
     raised = open_alerts(alerts)
     done = None
     if settings.output.keep_inputs:
@@ -248,106 +366,3 @@ def state_snapshot(reader: StateReader, settings: Settings, layout: Layout,
         "recent_alerts": alerts[:recent_alerts],
         "backlog": inbox_backlog(settings, layout, done, now),
     }
-
-
-def _ago(seconds: float | None) -> str:
-    if seconds is None:
-        return "-"
-    seconds = max(0.0, seconds)
-    for unit, size in (("d", 86400), ("h", 3600), ("min", 60)):
-        if seconds >= size:
-            return f"{seconds / size:.1f} {unit}"
-    return f"{seconds:.1f} s"
-
-
-def _num(v) -> str:
-    return f"{v:.4g}" if isinstance(v, float) else "-" if v is None else str(v)
-
-
-def format_status(snap: dict, width: int = 100) -> str:
-    """One terminal screen: model, inputs, lag, segments, alerts, last error."""
-    now = snap["time"]
-    lines = [format_service(snap.get("service"), now)]
-    inputs = snap["inputs"]
-    n = {k: v["inputs"] for k, v in inputs.items()}
-    lines.append(f"model version {snap['model_version']}"
-                 + (f", {snap['rows_learned']} rows learned" if snap.get("rows_learned") else ""))
-    lines += format_differences(snap.get("config_differs", []))
-    lines.append("inputs: " + (", ".join(f"{v} {k}" for k, v in sorted(n.items())) or "none yet"))
-    last = snap["last_input"]
-    if last:
-        lines.append(f"last input: {last['name']} ({last['outcome']}, "
-                     f"{_ago(now - last['time'])} ago)")
-    b = snap["backlog"]
-    lines.append(f"waiting in the inbox: {b['files'] if b['files'] is not None else '?'} "
-                 f"file(s); lag {_ago(b['lag_seconds'])}; last commit "
-                 + (f"{_ago(now - snap['last_commit_time'])} ago" if snap["last_commit_time"]
-                    else "never"))
-    if snap.get("warmup"):
-        w = snap["warmup"]
-        lines.append(f"warming up: {w['rows']} of {w['needed']} rows buffered")
-    if snap["segments"]:
-        lines.append("")
-        feats = list(snap["features"])
-        median = snap["segments"][0].get("median", {})   # transformed features
-        named = any(s.get("name") for s in snap["segments"])
-        fixed = 4 if named else 3
-        head = ["segment"] + (["name"] if named else []) + ["weight", "rows"] + \
-            [f"{f} median" if f in median else f"{f} mean" for f in feats]
-        table = [head] + [[str(s["id"])] + ([s.get("name") or "-"] if named else [])
-                          + [f"{s['weight']:.3f}", str(s["rows"])]
-                          + [f"{s['mean'][f]:.4g}" for f in feats] for s in snap["segments"]]
-        widths = [max(len(r[i]) for r in table) for i in range(len(head))]
-        shown = len(head)   # whole columns only, as many as fit the screen
-        while shown > fixed and sum(widths[:shown]) + 2 * (shown - 1) > width:
-            shown -= 1
-        for r in table:
-            lines.append("  ".join(c.ljust(w) if named and i == 1 else c.rjust(w)
-                                   for i, (c, w) in enumerate(zip(r[:shown], widths))))
-        if shown < len(head):
-            lines.append(f"(+{len(head) - shown} more features: shoal segments -c CONFIG)")
-    lines.append("")
-    counts = snap["alert_counts"]
-    lines.append(f"alerts: {snap.get('alerts_active', 0)} active now; notifications: "
-                 + (", ".join(f"{v} {k}" for k, v in sorted(counts.items())) or "none"))
-    names = {s["id"]: s.get("name") for s in snap["segments"] if s.get("name")}
-    for a in snap["recent_alerts"][:5]:
-        seg = a.get("segment", "-")
-        name = a.get("segment_name") or names.get(seg)
-        lines.append(f"  {a.get('status', '?'):9s} {a.get('severity', '?'):8s} segment "
-                     f"{seg}{f' ({name})' if name else ''} {a.get('statistic', '-')} "
-                     f"value {_num(a.get('value'))} bound {_num(a.get('bound'))}"[:width])
-    q = snap.get("quarantine") or {}
-    latest = q.get("latest")
-    lines.append(f"quarantine: {q.get('count', 0)} input(s)" + (
-        f"; latest {latest['name']}: {latest['reason']} ({_ago(now - latest['time'])} ago)"
-        if latest else "")[:width])
-    err = snap["last_error"]
-    lines.append("last error: " + ("none" if err is None else
-                                   f"{err['name']}: {err['reason']} "
-                                   f"({_ago(now - err['time'])} ago)"[:width]))
-    failure = (snap.get("service") or {}).get("last_failure")
-    if failure:
-        lines.append(f"last worker failure: {failure.get('detail')} (pid {failure.get('pid')}, "
-                     f"{_ago(now - failure['time'])} ago)"[:width])
-    return "\n".join(lines)
-
-
-def format_service(service: dict | None, now: float) -> str:
-    """'service: running, pid N, last progress 1.2 s ago' or 'service: not running ...'."""
-    if not service:
-        return "service: unknown"
-    if service["running"]:
-        text = f"service: running, pid {service['pid'] or '?'}"
-        if service.get("last_progress") is not None:
-            text += f", last progress {_ago(now - service['last_progress'])} ago"
-        if service.get("worker_alive") is False:
-            text += " (its worker has stopped)"
-        return text
-    text = "service: not running"
-    last = service.get("last_run")
-    if last and last.get("pid"):
-        when = last.get("stopped") or last.get("last_progress")
-        text += (f" (last run pid {last['pid']}"
-                 + (f", ended {_ago(now - when)} ago" if when else "") + ")")
-    return text

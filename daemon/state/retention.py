@@ -39,6 +39,7 @@ from shoal.config import Settings
 from shoal.daemon.state.compacted import (
     COMPACTED_KEY,
     COMPACTED_NOTIFICATIONS_KEY,
+    add_ledger_totals,
     compacted_notifications,
     compacted_totals,
 )
@@ -283,18 +284,14 @@ def apply_plan(plan: Plan, store) -> list[str]:
 
 def _remove_rows(plan: Plan, store) -> None:
     db = store.db
-    with store._transaction():
+    with store.transaction():
         totals = compacted_totals(db)
         for chunk in _chunks(plan.ledger_ids):
             marks = ",".join("?" * len(chunk))
-            for outcome, n, rows, bad in db.execute(
-                    f"SELECT outcome, COUNT(*), COALESCE(SUM(rows), 0), "  # noqa: S608
-                    f"COALESCE(SUM(rows_invalid), 0) FROM ledger WHERE id IN ({marks}) "
-                    "GROUP BY outcome", chunk).fetchall():
-                t = totals.setdefault(outcome, {"inputs": 0, "rows": 0, "rows_invalid": 0})
-                t["inputs"] += n
-                t["rows"] += rows
-                t["rows_invalid"] += bad
+            add_ledger_totals(totals, db.execute(
+                f"SELECT outcome, COUNT(*), COALESCE(SUM(rows), 0), "  # noqa: S608
+                f"COALESCE(SUM(rows_invalid), 0) FROM ledger WHERE id IN ({marks}) "
+                "GROUP BY outcome", chunk).fetchall())
             db.execute(f"DELETE FROM ledger WHERE id IN ({marks})", chunk)  # noqa: S608
         for chunk in _chunks(plan.history_versions):
             marks = ",".join("?" * len(chunk))

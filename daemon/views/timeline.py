@@ -37,7 +37,7 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
 from shoal.daemon.errors import UsageError
-from shoal.daemon.files.times import row_times
+from shoal.daemon.files.times import date_as_timestamp, row_times
 
 __all__ = ["Axis", "InputFacts", "input_facts", "build_axis", "parse_bound", "event_kind",
            "EVENT_KINDS", "axis_events"]
@@ -67,8 +67,7 @@ def _to_seconds(column: pa.ChunkedArray | pa.Array) -> tuple[np.ndarray, bool]:
     as CSV passes it through); NaN where there is no time. Also: whether numeric."""
     t = column.type
     if pa.types.is_date(t):
-        column, t = pc.cast(pc.cast(column, pa.date64()), pa.timestamp("ms")), \
-            pa.timestamp("ms")
+        column, t = date_as_timestamp(column), pa.timestamp("ms")
     if pa.types.is_timestamp(t):
         ms = pc.cast(column, pa.timestamp("ms", tz=t.tz))
         values = ms.cast(pa.int64()).to_numpy(zero_copy_only=False)

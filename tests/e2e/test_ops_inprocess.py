@@ -156,7 +156,8 @@ def test_progress_bar_only_on_a_terminal():
 
 def test_status_and_metrics_read_alerts_written_through_the_store(tmp_path):
     from shoal.daemon.runtime.metrics import build_registry, render_metrics
-    from shoal.daemon.state.readout import StateReader, format_status, state_snapshot
+    from shoal.daemon.state.readout import StateReader, state_snapshot
+    from shoal.daemon.views.status_text import format_status
 
     settings = load_config(write_config(tmp_path))
     layout = prepare_folders(settings)

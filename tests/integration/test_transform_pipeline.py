@@ -163,7 +163,8 @@ def test_a_changed_transform_is_refused_naming_feature_and_values(stream, tmp_pa
 
 
 def test_status_and_report_show_medians_of_a_transformed_feature(stream):
-    from shoal.daemon.state.readout import format_status, open_reader, state_snapshot
+    from shoal.daemon.state.readout import open_reader, state_snapshot
+    from shoal.daemon.views.status_text import format_status
     from shoal.daemon.views.report import report_data, segments_table, write_report
 
     rng = np.random.default_rng(SEED + 4)

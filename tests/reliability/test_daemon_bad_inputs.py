@@ -188,7 +188,7 @@ def test_a_dictionary_index_past_its_dictionary_is_a_bad_parquet():
     # column whose index points past the dictionary, and counting its decoded bytes
     # raised ArrowIndexError out of the pipeline.
     from shoal.daemon.errors import InputRejected
-    from shoal.daemon.files.readers import _decoded_bytes
+    from shoal.daemon.files.frame import decoded_bytes as _decoded_bytes
 
     damaged = pa.DictionaryArray.from_arrays(pa.array([0, 21], pa.int32()),
                                              pa.array(["a", "b"]), safe=False)

@@ -182,7 +182,8 @@ def test_status_and_report_readers_show_an_unmigrated_store_in_the_new_words(tmp
     # shoal status, the status page and shoal report open the store read-only, so they
     # may see a store no writer has migrated yet: they read it in the new words.
     from shoal.daemon.files.layout import prepare_folders
-    from shoal.daemon.state.readout import StateReader, format_status, read_alerts, state_snapshot
+    from shoal.daemon.state.readout import StateReader, read_alerts, state_snapshot
+    from shoal.daemon.views.status_text import format_status
 
     cfg = tmp_path / "shoal.yaml"
     cfg.write_text(yaml.safe_dump(OLD_CONFIG))
