@@ -67,13 +67,10 @@ from shoal.daemon.intake.gate import input_kind
 from shoal.daemon.model.contract import open_model_store
 from shoal.daemon.files.layout import Layout, StateLock, prepare_folders, remove_stale_temps
 from shoal.daemon.runtime.logs import log_event
-from shoal.daemon.ingest.pipeline import (
-    UNUSUAL_MEMORY_ROWS,
-    Pipeline,
-    history_rows,
-    labels_metadata,
-    open_input,
-)
+from shoal.daemon.ingest.claim import open_input
+from shoal.daemon.ingest.endings import labels_metadata
+from shoal.daemon.ingest.learning import UNUSUAL_MEMORY_ROWS, history_rows, warm_up
+from shoal.daemon.ingest.pipeline import Pipeline
 from shoal.daemon.runtime.progress import progress
 from shoal.daemon.files.quarantine import quarantine
 from shoal.daemon.files.labels_schema import conform, first_schema, schema_from_text, schema_text
@@ -460,16 +457,16 @@ def backfill(settings: Settings, sources, *, client=None, scheduler: str | None 
         try:
             pipeline = Pipeline(settings, layout, store, stop=stop, wall=wall)
             if client is not None:
-                return _Run(settings, layout, store, pipeline, client, stop, wall).run(
+                return BackfillRun(settings, layout, store, pipeline, client, stop, wall).run(
                     paths, round_rows, labels, passes)
             with cluster_client(scheduler, local_workers, connect_timeout) as made:
-                return _Run(settings, layout, store, pipeline, made, stop, wall).run(
+                return BackfillRun(settings, layout, store, pipeline, made, stop, wall).run(
                     paths, round_rows, labels, passes)
         finally:
             store.close()
 
 
-class _Run:
+class BackfillRun:
     def __init__(self, settings, layout: Layout, store: StateStore, pipeline: Pipeline,
                  client, stop: threading.Event, wall):
         self.settings, self.layout, self.store = settings, layout, store
@@ -481,6 +478,10 @@ class _Run:
     def _check_stop(self) -> None:
         if self.stop.is_set():
             raise Interrupted("stop requested; nothing was committed")
+
+    def _check_stop_warm_up(self) -> None:
+        if self.stop.is_set():   # as the service's warm-up says it
+            raise Interrupted("stop requested")
 
     def _gather(self, futures: list) -> list:
         from distributed.scheduler import KilledWorker
@@ -600,7 +601,8 @@ class _Run:
         if len(head) < need:
             raise BackfillError(f"the history holds {buffered + len(head)} valid rows; the "
                                 f"warm-up needs warmup_rows={self.settings.warmup_rows}")
-        mixture, scores, _, init_extra = self.pipeline._warm_up(head)
+        mixture, scores, _, init_extra = warm_up(self.settings, head, st.warmup,
+                                                 self._check_stop_warm_up)
         if mixture is None:
             raise BackfillError("the warm-up rows could not start a model (see the "
                                 "warmup_not_enough_data log line)")

@@ -12,7 +12,9 @@ import base64
 import contextlib
 import hashlib
 import os
+import queue
 import re
+import threading
 import unicodedata
 from pathlib import Path
 from typing import BinaryIO, Callable, Iterable, Iterator
@@ -25,7 +27,8 @@ import pyarrow.parquet as pq
 from shoal.daemon.files.readers import prefetch
 
 __all__ = ["labels_name", "safe_stem", "display_name", "labels_table", "atomic_file", "write_labels",
-           "write_labels_stream", "relabel_file", "fsync_dir", "OUTPUT_MODE", "LABELS_COLUMNS"]
+           "write_labels_stream", "LabelsFile", "relabel_file", "fsync_dir", "OUTPUT_MODE",
+           "LABELS_COLUMNS"]
 
 OUTPUT_MODE = 0o640
 _UNSAFE = re.compile(r"[^A-Za-z0-9._-]+")
@@ -362,3 +365,129 @@ def _late_metadata(writer: pq.ParquetWriter, meta: dict) -> None:
     kv = dict(schema.metadata)
     kv[b"ARROW:schema"] = base64.b64encode(schema.serialize().to_pybytes())
     writer.add_key_value_metadata(kv)
+
+
+class LabelsFile:
+    """A labels file written table by table under a temporary name, then named at the end.
+
+    The caller's thread hands over finished tables (:meth:`write_all`) and, once the
+    input is decided, the ``shoal.*`` metadata and the final name (:meth:`keep`); a file
+    not kept (the input turned out to be a duplicate, or an error ended it) is removed
+    when the ``with`` block is left. The writer knows nothing of where the tables come
+    from: it never calls back. With ``threaded``, a thread of its own encodes and
+    writes the tables (pyarrow releases the interpreter lock) while the caller makes
+    the next ones, at most a few tables behind; without, the caller's thread writes
+    them. A Parquet file gets its metadata as the writer closes (:func:`_late_metadata`:
+    the same bytes as a file opened with it), a row group per table, zstd-compressed,
+    the encodings of :func:`write_labels_stream`.
+    """
+
+    def __init__(self, target: Path, fmt: str, sync_folder: bool = True,
+                 threaded: bool = True):
+        self.target = Path(target)
+        self.fmt = fmt
+        self.sync_folder = sync_folder
+        self._tmp = self.target.with_name(f".{self.target.name}.{os.getpid()}.tmp")
+        self._file: BinaryIO | None = None
+        self._writer = None
+        self._queue: queue.Queue | None = queue.Queue(maxsize=_TABLES_AHEAD) \
+            if threaded else None
+        self._thread: threading.Thread | None = None
+        self._error: BaseException | None = None
+        self._kept: Path | None = None
+
+    def __enter__(self) -> "LabelsFile":
+        fd = os.open(self._tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_NOFOLLOW
+                     | os.O_CLOEXEC, OUTPUT_MODE)
+        try:
+            os.fchmod(fd, OUTPUT_MODE)
+            self._file = os.fdopen(fd, "wb")
+        except BaseException:
+            os.close(fd)
+            self._discard()
+            raise
+        if self._queue is not None:
+            self._thread = threading.Thread(target=self._drain, name="shoal-labels",
+                                            daemon=True)
+            self._thread.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._stop_thread()
+        if self._kept is None:
+            with contextlib.suppress(Exception):
+                if self._writer is not None:
+                    self._writer.close()
+            with contextlib.suppress(OSError):
+                self._file.close()
+            self._discard()
+
+    def write_all(self, tables: Iterable[pa.Table]) -> None:
+        """Write ``tables`` (all of one schema) in order; an error of the writing
+        thread is raised here, at the latest by :meth:`keep`."""
+        for table in tables:
+            if self._queue is None:
+                self._write(table)
+                continue
+            while True:
+                if self._error is not None:
+                    raise self._error
+                try:
+                    self._queue.put(table, timeout=0.05)
+                    break
+                except queue.Full:
+                    continue
+
+    def keep(self, metadata: dict, final: Path | None = None) -> Path:
+        """Finish the file with ``metadata`` (Parquet schema metadata) and rename it to
+        ``final`` (in the same folder; default ``target``) atomically; returns it."""
+        self._stop_thread()
+        if self._error is not None:
+            raise self._error
+        if self._writer is not None:
+            if self.fmt == "parquet":
+                _late_metadata(self._writer, metadata)
+            self._writer.close()
+        self._file.flush()
+        os.fsync(self._file.fileno())
+        self._file.close()
+        final = self.target if final is None else Path(final)
+        os.replace(self._tmp, final)
+        self._kept = final
+        if self.sync_folder:
+            fsync_dir(final.parent)
+        return final
+
+    def _write(self, table: pa.Table) -> None:
+        if self._writer is None:
+            self._writer = _open_writer(self._file, table.schema, self.fmt, None)
+        self._writer.write_table(table)
+
+    def _drain(self) -> None:
+        while True:
+            table = self._queue.get()
+            if table is None:
+                return
+            if self._error is not None:
+                continue   # taken to unblock the caller; it sees the error
+            try:
+                self._write(table)
+            except BaseException as exc:   # raised in the caller's thread
+                self._error = exc
+
+    def _stop_thread(self) -> None:
+        if self._thread is None:
+            return
+        while True:
+            try:
+                self._queue.put(None, timeout=0.05)
+                break
+            except queue.Full:
+                if not self._thread.is_alive():
+                    break
+        self._thread.join()
+        self._thread = None
+
+    def _discard(self) -> None:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(self._tmp)

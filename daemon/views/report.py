@@ -31,7 +31,7 @@ from shoal.daemon.model.contract import settings_of_model
 from shoal.daemon.errors import InputRejected, UsageError
 from shoal.daemon.intake.gate import input_kind
 from shoal.daemon.files.layout import Layout
-from shoal.daemon.ingest.pipeline import open_input
+from shoal.daemon.ingest.claim import open_input
 from shoal.daemon.runtime.progress import progress
 from shoal.daemon.files.readers import read_input
 from shoal.daemon.state.readout import StateReader, read_alerts, state_snapshot

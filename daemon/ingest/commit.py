@@ -1,0 +1,117 @@
+"""Commit: inputs made durable in ONE state-store transaction, then moved out.
+
+An input's :class:`InputCommit` (ledger row, checkpoint, segment history, alerts)
+is committed alone or with the other inputs of its group (:class:`Group`: one
+transaction, one fsync of the outbox folder covering every labels file's rename,
+only the last checkpoint stored). What follows a commit (log lines, waking the
+alert sender, :func:`move_to_processed`) runs only once the commit is durable.
+"""
+from __future__ import annotations
+
+import contextlib
+import logging
+import os
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Callable
+
+from shoal.config import Settings
+from shoal.daemon.errors import StateError
+from shoal.daemon.files.layout import Layout
+from shoal.daemon.files.quarantine import move_out
+from shoal.daemon.files.writer import display_name, fsync_dir
+from shoal.daemon.ingest.results import Result, log_result
+from shoal.daemon.runtime.logs import log_event
+from shoal.daemon.state.store import InputCommit, LedgerEntry, StateStore
+
+__all__ = ["Pending", "Group", "commit_one", "move_to_processed"]
+
+
+@dataclass
+class Pending:
+    """An input of the open group: processed, its labels written, its commit not yet made."""
+
+    commit: InputCommit
+    result: Result
+    version: int                        # the model version after it
+    duration: float                     # seconds its processing took
+    after: list[Callable[[], None]] = field(default_factory=list)  # once committed
+
+
+class Group:
+    """The inputs processed since the group was opened whose commits wait for its end:
+    committed together by :meth:`flush`, in the order they were taken."""
+
+    def __init__(self):
+        self.pending: list[Pending] = []
+
+    def __bool__(self) -> bool:
+        return bool(self.pending)
+
+    def entries(self, digest: str | None = None) -> list[LedgerEntry]:
+        """The ledger rows of the pending inputs (with this content digest)."""
+        return [p.commit.entry for p in self.pending
+                if digest is None or p.commit.entry.digest == digest]
+
+    def applies(self, rebaseline: int) -> bool:
+        """Whether a pending input applies this re-baseline request."""
+        return any(p.commit.rebaseline == rebaseline for p in self.pending)
+
+    def add(self, pending: Pending) -> None:
+        """Queue ``pending``; a checkpoint it carries makes those before it needless."""
+        if pending.commit.checkpoint is not None:
+            for p in self.pending:
+                if p.commit.checkpoint is not None:
+                    p.commit = replace(p.commit, checkpoint=None)
+        self.pending.append(pending)
+
+    def flush(self, store: StateStore, outbox: Path) -> None:
+        """Commit the pending inputs in ONE transaction, then finish each."""
+        pending, self.pending = self.pending, []
+        if not pending:
+            return
+        if any(p.result.labels is not None for p in pending):
+            fsync_dir(outbox)  # the labels files' renames, before the commit
+        versions = store.commit_inputs([p.commit for p in pending])
+        if versions != [p.version for p in pending]:
+            raise StateError(f"the state store's model versions {versions} are not the "
+                             f"ones the group was learned as {[p.version for p in pending]}")
+        for p in pending:
+            log_result(p.result, p.duration)
+            for step in p.after:
+                step()
+
+
+def commit_one(store: StateStore, commit: InputCommit, version: int,
+               after: list[Callable[[], None]]) -> None:
+    """Commit one input now; ``after`` runs once the commit is durable."""
+    committed = store.commit_inputs([commit])[0]
+    if committed != version:
+        raise StateError(f"the state store's model version {committed} is not the "
+                         f"version {version} the input was learned as")
+    for step in after:
+        step()
+
+
+def move_to_processed(settings: Settings, layout: Layout, path: Path, in_inbox: bool,
+                      pin: os.stat_result) -> None:
+    """Move the committed input read (``pin``: by device and inode, not by name) from
+    the inbox to ``processed/``; a file renamed over it meanwhile is a new input and
+    stays."""
+    if not in_inbox or settings.output.keep_inputs:
+        return
+    with contextlib.suppress(OSError):
+        now = os.lstat(path)
+        if (now.st_dev, now.st_ino) == (pin.st_dev, pin.st_ino) and \
+                (now.st_size, now.st_mtime_ns) != (pin.st_size, pin.st_mtime_ns):
+            # written to between the check before its commit and now: what was read
+            # is committed, what was added since is not labelled; said, not silent
+            log_event("input_changed_after_commit", logging.WARNING,
+                      file=display_name(path.name), size_read=pin.st_size,
+                      size_now=now.st_size, detail="the bytes past size_read are not "
+                      "labelled; write inputs elsewhere and rename them in")
+    if move_out(path, layout.processed, identity=(pin.st_dev, pin.st_ino)) is None \
+            and os.path.lexists(path):
+        log_event("input_replaced", logging.INFO, file=display_name(path.name),
+                  detail="another file took its name while it was processed; that file "
+                         "is a new input")
