@@ -18,12 +18,13 @@ import stat as stat_mod
 from pathlib import Path
 from typing import BinaryIO
 
+from shoal.config import Settings
 from shoal.daemon.errors import InputChanged, InputRefused, InputVanished
 from shoal.daemon.files.readers import file_digest
 from shoal.daemon.files.writer import display_name
 from shoal.daemon.state.store import LedgerEntry, StateStore
 
-__all__ = ["open_input", "attempt_key", "check_unchanged", "Claim", "NEW", "DUPLICATE",
+__all__ = ["open_input", "input_name", "attempt_key", "check_unchanged", "Claim", "NEW", "DUPLICATE",
            "ALREADY_DONE"]
 
 NEW, DUPLICATE, ALREADY_DONE = "new", "duplicate", "already_done"
@@ -52,6 +53,19 @@ def open_input(path: Path) -> BinaryIO:
         raise InputRefused(f"{path.name} is not a regular file")
     os.set_blocking(fd, True)
     return os.fdopen(fd, "rb")
+
+
+def input_name(settings: Settings, inbox: Path, path: Path) -> str:
+    """An input's name in the ledger, logs and labels: its file name, or with
+    ``watch.recursive`` its path relative to the inbox (``2025/05/a.csv``)."""
+    if settings.watch.recursive:
+        try:
+            rel = path.relative_to(inbox)
+        except ValueError:
+            rel = None
+        if rel is not None and len(rel.parts) > 1:
+            return display_name(rel.as_posix())
+    return display_name(path.name)
 
 
 def attempt_key(path: Path) -> str | None:

@@ -4,7 +4,9 @@ An input's :class:`InputCommit` (ledger row, checkpoint, segment history, alerts
 is committed alone or with the other inputs of its group (:class:`Group`: one
 transaction, one fsync of the outbox folder covering every labels file's rename,
 only the last checkpoint stored). What follows a commit (log lines, waking the
-alert sender, :func:`move_to_processed`) runs only once the commit is durable.
+alert sender, :func:`move_to_processed`) runs only once the commit is durable. A
+re-baseline request with no input to carry it is committed on its own
+(:func:`rebaseline_committed`).
 """
 from __future__ import annotations
 
@@ -13,18 +15,22 @@ import logging
 import os
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Callable
+from typing import TYPE_CHECKING, Callable
 
 from shoal.config import Settings
 from shoal.daemon.errors import StateError
 from shoal.daemon.files.layout import Layout
 from shoal.daemon.files.quarantine import move_out
 from shoal.daemon.files.writer import display_name, fsync_dir
-from shoal.daemon.ingest.results import Result, log_result
+from shoal.daemon.ingest.results import ModelState, Result, log_result
 from shoal.daemon.runtime.logs import log_event
+from shoal.daemon.segments.segment_names import name_alerts, segment_names
 from shoal.daemon.state.store import InputCommit, LedgerEntry, StateStore
 
-__all__ = ["Pending", "Group", "commit_one", "move_to_processed"]
+if TYPE_CHECKING:
+    from shoal.daemon.segments.monitor import DriftMonitor
+
+__all__ = ["Pending", "Group", "commit_one", "move_to_processed", "rebaseline_committed"]
 
 
 @dataclass
@@ -115,3 +121,31 @@ def move_to_processed(settings: Settings, layout: Layout, path: Path, in_inbox: 
         log_event("input_replaced", logging.INFO, file=display_name(path.name),
                   detail="another file took its name while it was processed; that file "
                          "is a new input")
+
+
+def rebaseline_committed(monitor: DriftMonitor, store: StateStore, state: ModelState,
+                         request_id: int, note: str, listeners: list
+                         ) -> tuple[ModelState, list[tuple[str, dict]]]:
+    """Apply re-baseline request ``request_id`` to the latest checkpoint (``state``) and
+    commit it; returns the state after it and the alerts it raised (``listeners`` hear
+    of them once committed)."""
+    st = state
+    if st.mixture is None:
+        raise StateError("no model yet: the warm-up has not finished, so there is "
+                         "nothing to take as the baseline")
+    watch = monitor.begin(st.extra.get("drift"), version=st.version, file="",
+                          unusual_below=st.extra.get("unusual_below"))
+    if watch is None:
+        raise StateError("drift watching is off (drift.enabled: false)")
+    watch.transforms = st.transforms
+    watch.rebaseline(st.mixture, note)
+    extra = dict(st.extra, drift=watch.state)
+    store.apply_rebaseline(request_id, st.version, extra,
+                           name_alerts(watch.alerts, segment_names(store.db)))
+    after = replace(st, extra=extra)
+    log_event("drift_rebaselined", model_version=st.version, note=note)
+    watch.log_alerts(st.version)
+    if watch.alerts:
+        for listener in listeners:
+            listener(st.version)
+    return after, watch.alerts

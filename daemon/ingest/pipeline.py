@@ -44,19 +44,32 @@ from shoal.daemon.errors import (
     InputVanished,
     Interrupted,
     ServiceError,
-    StateError,
 )
-from shoal.daemon.files.digest import digest_file
 from shoal.daemon.files.gaps import Unusual
 from shoal.daemon.files.labels_schema import Conformer, schema_from_text, schema_text
 from shoal.daemon.files.layout import Layout
 from shoal.daemon.files.readers import file_digest, prefetch
-from shoal.daemon.files.writer import LabelsFile, display_name, labels_name
+from shoal.daemon.files.writer import LabelsFile, labels_name
 from shoal.daemon.ingest.attempts import Attempts, attempt_runs
-from shoal.daemon.ingest.claim import ALREADY_DONE, NEW, Claim, check_unchanged, open_input
-from shoal.daemon.ingest.commit import Group, Pending, commit_one, move_to_processed
+from shoal.daemon.ingest.claim import (
+    ALREADY_DONE,
+    NEW,
+    Claim,
+    check_unchanged,
+    input_name,
+    open_input,
+)
+from shoal.daemon.ingest.commit import (
+    Group,
+    Pending,
+    commit_one,
+    move_to_processed,
+    rebaseline_committed,
+)
 from shoal.daemon.ingest.endings import labels_metadata, note_skipped, quarantine_input
-from shoal.daemon.ingest.learning import count_rows, history_rows, observed_floor, with_born
+from shoal.daemon.ingest.label_only import label_with_model
+from shoal.daemon.ingest.learned import learned_commit
+from shoal.daemon.ingest.learning import observed_floor
 from shoal.daemon.ingest.results import ModelState, Result, load_model_state, log_result
 from shoal.daemon.ingest.rows import RowCount, keep_rows
 from shoal.daemon.ingest.stages import (
@@ -67,12 +80,10 @@ from shoal.daemon.ingest.stages import (
     stop_checked,
     until_claimed,
 )
-from shoal.daemon.ingest.warmup_labels import label_warmup_inputs
 from shoal.daemon.intake.gate import input_kind
-from shoal.daemon.model import transforming
 from shoal.daemon.runtime.logs import log_event
-from shoal.daemon.segments.segment_names import name_alerts, segment_names, with_segment_names
-from shoal.daemon.state.store import Checkpoint, InputCommit, LedgerEntry, StateStore, WarmupInput
+from shoal.daemon.segments.segment_names import segment_names, with_segment_names
+from shoal.daemon.state.store import InputCommit, LedgerEntry, StateStore, WarmupInput
 
 if TYPE_CHECKING:
     from shoal.daemon.segments.monitor import DriftMonitor
@@ -137,16 +148,7 @@ class Pipeline:
         return load_model_state(self.settings, self.store)
 
     def _input_name(self, path: Path) -> str:
-        """An input's name in the ledger, logs and labels: its file name, or with
-        ``watch.recursive`` its path relative to the inbox (``2025/05/a.csv``)."""
-        if self.settings.watch.recursive:
-            try:
-                rel = path.relative_to(self.layout.inbox)
-            except ValueError:
-                rel = None
-            if rel is not None and len(rel.parts) > 1:
-                return display_name(rel.as_posix())
-        return display_name(path.name)
+        return input_name(self.settings, self.layout.inbox, path)
 
     def _check_stop(self) -> None:
         if self.stop.is_set():
@@ -449,76 +451,17 @@ class Pipeline:
                 return None
             labels = self._keep_labels(out, f, pin, entry.name, claim.digest,
                                        run.labels_version)
-        return self._learned(entry, claim.digest, labels, run, watch, life, rebaseline)
-
-    def _learned(self, entry: LedgerEntry, digest: str, labels: Path, run: InputLearning,
-                 watch, life, rebaseline) -> Result:
-        """The commit of a learned input (queued), and the model state after it."""
-        st = self.state
-        version = run.version
-        mixture, extra = run.mixture, run.extra
-        warmup_keep, clear_warmup = run.warmup_keep, run.clear_warmup
-        if mixture is not None and st.mixture is None:
-            # the inputs before this one wait with null segments: the first model labels
-            # them, and their rows count in the segments' row counts (as in backfill)
-            extra = count_rows(extra, label_warmup_inputs(
-                st.warmup_inputs, self.layout.outbox, self.settings.output.format, mixture,
-                run.transforms, run.first_unusual, version, self._named,
-                self._labels_schema))
-        if mixture is not None:
-            extra = with_born(extra, mixture, version, self.wall)
-        if watch is not None and watch.state is not None:
-            extra["drift"] = watch.state
-        if life is not None and mixture is not None:
-            extra["lifecycle"] = life.final_state()
-        checkpoint = history = None
-        if mixture is not None:
-            arrays, meta = mixture.to_state()
-            meta = transforming.to_meta(meta, run.transforms)
-            checkpoint = Checkpoint(version, arrays, meta, extra)
-            history = history_rows(mixture, extra,
-                                   watch.segment_drift() if watch is not None else None,
-                                   run.transforms)
-            if life is not None:
-                history = life.history(history)
-        count = run.count
-        entry = replace(entry, digest=digest, labels=labels.name, rows=count.rows,
-                        rows_invalid=count.invalid)
-        self._check_stop()
-        alerts = name_alerts((watch.alerts if watch is not None else []) +
-                             (life.alerts if life is not None else []),
-                             segment_names(self.store.db))
-        applied = rebaseline is not None and watch.rebaselined
-        commit = InputCommit(entry, learned=True, checkpoint=checkpoint,
-                             labels_schema=self._fixed_schema(),
-                             warmup_rows=warmup_keep, warmup_valid=run.warmup_valid,
-                             clear_warmup=clear_warmup,
-                             history=history or (), alerts=alerts,
-                             rebaseline=rebaseline[0] if applied else None)
-
-        def announce() -> None:
-            if applied:
-                log_event("drift_rebaselined", model_version=version, note=rebaseline[1])
-            if watch is not None:
-                watch.log_alerts(version)
-            if life is not None:
-                life.log_events(version)
-            if alerts:
-                for listener in self.alert_listeners:
-                    listener(version)
-
-        result = Result("committed", entry.name, count.rows, count.invalid, labels,
-                        model_version=version, rows_outside_domain=count.outside)
-        self._commit(commit, version, result, announce)
-        buffered, waiting = None, []
-        if mixture is None:
-            parts = [a for a in (st.warmup, warmup_keep) if a is not None and len(a)]
-            buffered = np.concatenate(parts) if parts else None
-            waiting = st.warmup_inputs + ([WarmupInput(labels.name, warmup_keep,
-                                                       run.warmup_valid)]
-                                          if warmup_keep is not None else [])
-        self.state = ModelState(version, mixture, extra, buffered, run.transforms, waiting)
-        return result
+        fixed = self._conformer.fixed
+        learned = learned_commit(
+            self.settings, self.layout, self.store, st, run, entry, claim.digest, labels,
+            watch, life, rebaseline, fixed_schema=fixed, stream_schema=self._labels_schema,
+            named=self._named, wall=self.wall, listeners=self.alert_listeners,
+            check_stop=self._check_stop)
+        if fixed is not None:
+            self._labels_schema = fixed   # as the commit keeps it
+        self._commit(learned.commit, version, learned.result, learned.announce)
+        self.state = learned.state
+        return learned.result
 
     def _life(self, state: dict | None, version: int, file: str) -> LifeWatch | None:
         """Births, retirements and merges for one input (None when switched off)."""
@@ -530,26 +473,9 @@ class Pipeline:
 
     def rebaseline_now(self, request_id: int, note: str) -> list[tuple[str, dict]]:
         """Apply a re-baseline request to the latest checkpoint (no input needed)."""
-        st = self.state
-        if st.mixture is None:
-            raise StateError("no model yet: the warm-up has not finished, so there is "
-                             "nothing to take as the baseline")
-        watch = self.monitor.begin(st.extra.get("drift"), version=st.version, file="",
-                                   unusual_below=st.extra.get("unusual_below"))
-        if watch is None:
-            raise StateError("drift watching is off (drift.enabled: false)")
-        watch.transforms = st.transforms
-        watch.rebaseline(st.mixture, note)
-        extra = dict(st.extra, drift=watch.state)
-        self.store.apply_rebaseline(request_id, st.version, extra,
-                                    name_alerts(watch.alerts, segment_names(self.store.db)))
-        self.state = replace(st, extra=extra)
-        log_event("drift_rebaselined", model_version=st.version, note=note)
-        watch.log_alerts(st.version)
-        if watch.alerts:
-            for listener in self.alert_listeners:
-                listener(st.version)
-        return watch.alerts
+        self.state, alerts = rebaseline_committed(self.monitor, self.store, self.state,
+                                                  request_id, note, self.alert_listeners)
+        return alerts
 
     # -- endings -------------------------------------------------------------------
     def _quarantine(self, path: Path, name: str, in_inbox: bool, exc: InputRejected,
@@ -570,29 +496,5 @@ class Pipeline:
     def label_only(self, path: Path, out: Path) -> Result:
         """Label ``path`` with the current model into ``out``; no learning, no commit. The
         labels file's metadata gives the input's digest in the store's algorithm."""
-        st = self.state
-        if st.mixture is None:
-            raise StateError("no model yet: the warm-up has not finished "
-                             f"({0 if st.warmup is None else len(st.warmup)} of "
-                             f"{self.settings.warmup_rows} rows buffered)")
-        kind = input_kind(path.name)
-        if kind is None:
-            raise InputRejected("unsupported_type", "expected a name ending in .csv, .csv.gz, "
-                                ".tsv, .tsv.gz, .parquet or .pq")
-        fmt = "csv" if out.name.lower().endswith(".csv") else "parquet"
-        count = RowCount()
-        algorithm = self.store.digest_algorithm
-        with open_input(path) as f:
-            digest = digest_file(f, algorithm)
-            with self._read(f, kind, os.fstat(f.fileno()).st_size >= THREADED_BYTES) \
-                    as frames:
-                tables = self._named(scored_tables(
-                    count.counted(frames, st.mixture, observed_floor(self.settings)),
-                    st.mixture, Unusual.from_extra(st.extra), st.version))
-                meta = labels_metadata(digest, algorithm, display_name(path.name),
-                                       st.version)
-                with LabelsFile(out, fmt, threaded=frames.threaded) as written:
-                    written.write_all(tables)
-                    written.keep(meta)
-        return Result("labelled", display_name(path.name), count.rows, count.invalid, out,
-                      model_version=st.version, rows_outside_domain=count.outside)
+        return label_with_model(self.settings, self.store, self.state, self._labels_schema,
+                                path, out, self.stop, THREADED_BYTES, self._named)
