@@ -70,6 +70,10 @@ class Piece:
 
 @dataclass(frozen=True)
 class Round:
+    """Global stream rows ``start+1 .. stop`` learned from one parameter snapshot, as
+    ``pieces`` (one per file they touch, in stream order); ``refresh``: the round ends
+    on a multiple of the round size, where the parameters are refreshed."""
+
     start: int
     stop: int
     pieces: tuple[Piece, ...]

@@ -89,6 +89,10 @@ def head_rows(files: list[FileFacts], settings: Settings, n_rows: int) -> np.nda
 
 @dataclass(frozen=True)
 class PieceResult:
+    """What one piece's task returns: its weighted statistics under the round's
+    snapshot, its rows per most responsible component, and the quantile of its rows'
+    log-densities that moves the unusual-row threshold."""
+
     stats: object                    # PartitionStatistics
     counts: np.ndarray               # (n_components,) rows per most responsible component
     log_density_quantile: float      # at output.unusual_quantile, under the snapshot
