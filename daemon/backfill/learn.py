@@ -187,10 +187,6 @@ class BackfillRun:
         if self.stop.is_set():
             raise Interrupted("stop requested; nothing was committed")
 
-    def _check_stop_warm_up(self) -> None:
-        if self.stop.is_set():   # as the service's warm-up says it
-            raise Interrupted("stop requested")
-
     def _gather(self, futures: list) -> list:
         from distributed.scheduler import KilledWorker
 
@@ -310,7 +306,7 @@ class BackfillRun:
             raise BackfillError(f"the history holds {buffered + len(head)} valid rows; the "
                                 f"warm-up needs warmup_rows={self.settings.warmup_rows}")
         mixture, scores, _, init_extra = warm_up(self.settings, head, st.warmup,
-                                                 self._check_stop_warm_up)
+                                                 self.stop)
         if mixture is None:
             raise BackfillError("the warm-up rows could not start a model (see the "
                                 "warmup_not_enough_data log line)")

@@ -54,7 +54,7 @@ def label_with_model(settings: Settings, store: StateStore, state: ModelState,
     with open_input(path) as f:
         digest = digest_file(f, algorithm)
         conformer = Conformer(stream_schema, kind, dict(settings.passthrough_types))
-        with read_frames(f, kind, settings, st, conformer, [], stop.is_set,
+        with read_frames(f, kind, settings, st, conformer, [], stop,
                          os.fstat(f.fileno()).st_size >= threaded_bytes) as frames:
             tables = named(scored_tables(
                 count.counted(frames, st.mixture, observed_floor(settings)),

@@ -9,6 +9,7 @@ alert sender woken) is :attr:`LearnedInput.announce`.
 """
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Callable, Iterable
@@ -19,7 +20,7 @@ import pyarrow as pa
 from shoal.config import Settings
 from shoal.daemon.files.labels_schema import schema_text
 from shoal.daemon.files.layout import Layout
-from shoal.daemon.ingest.learning import count_rows, history_rows, with_born
+from shoal.daemon.ingest.learning import count_rows, history_rows, raise_if_stopped, with_born
 from shoal.daemon.ingest.results import ModelState, Result
 from shoal.daemon.ingest.stages import InputLearning
 from shoal.daemon.ingest.warmup_labels import label_warmup_inputs
@@ -48,7 +49,7 @@ def learned_commit(settings: Settings, layout: Layout, store: StateStore, state:
                    fixed_schema: pa.Schema | None, stream_schema: pa.Schema | None,
                    named: Callable[[Iterable[pa.Table]], Iterable[pa.Table]],
                    wall: Callable[[], float], listeners: list,
-                   check_stop: Callable[[], None]) -> LearnedInput:
+                   stop: threading.Event) -> LearnedInput:
     """The commit of the input ``run`` learned from ``state`` (labels in ``labels``,
     content ``digest``); ``fixed_schema`` is the stream's pass-through types it fixed
     (None if fixed before), ``stream_schema`` the stream's before it (to read labels
@@ -81,7 +82,7 @@ def learned_commit(settings: Settings, layout: Layout, store: StateStore, state:
     count = run.count
     entry = replace(entry, digest=digest, labels=labels.name, rows=count.rows,
                     rows_invalid=count.invalid)
-    check_stop()
+    raise_if_stopped(stop)
     alerts = name_alerts((watch.alerts if watch is not None else []) +
                          (life.alerts if life is not None else []),
                          segment_names(store.db))

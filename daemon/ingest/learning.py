@@ -11,6 +11,7 @@ functions of the settings and the rows: the thread that calls them owns the mode
 from __future__ import annotations
 
 import logging
+import threading
 from typing import TYPE_CHECKING, Callable
 
 import numpy as np
@@ -26,7 +27,7 @@ from shoal.core import (
     select_n_components,
 )
 from shoal.core.quantile import linear_quantile
-from shoal.daemon.errors import InputRejected
+from shoal.daemon.errors import InputRejected, Interrupted
 from shoal.daemon.files.gaps import Unusual, complete_rows, observed_counts
 from shoal.daemon.ingest.rows import complete_only, concat_scores
 from shoal.daemon.model import transforming
@@ -37,7 +38,7 @@ if TYPE_CHECKING:
     from shoal.daemon.segments.monitor import InputWatch
     from shoal.daemon.segments.segment_life import LifeWatch
 
-__all__ = ["UNUSUAL_MEMORY_ROWS", "step_schedule", "observed_floor", "warm_up",
+__all__ = ["UNUSUAL_MEMORY_ROWS", "raise_if_stopped", "step_schedule", "observed_floor", "warm_up",
            "learn_chunks", "after_scoring", "count_rows", "with_born", "history_rows"]
 
 # A learned input moves the unusual-row threshold this far towards its own quantile:
@@ -46,8 +47,11 @@ __all__ = ["UNUSUAL_MEMORY_ROWS", "step_schedule", "observed_floor", "warm_up",
 UNUSUAL_MEMORY_ROWS = 50_000
 
 
-def _no_stop() -> None:
-    return None
+def raise_if_stopped(stop: threading.Event | None) -> None:
+    """Raise :class:`Interrupted` if ``stop`` is set (the input is abandoned
+    uncommitted)."""
+    if stop is not None and stop.is_set():
+        raise Interrupted("stop requested")
 
 
 def step_schedule(settings: Settings) -> StepSchedule:
@@ -62,11 +66,12 @@ def observed_floor(settings: Settings) -> int:
 
 
 def warm_up(settings: Settings, X: np.ndarray, buffered: np.ndarray | None,
-            check_stop: Callable[[], None] = _no_stop, watch: InputWatch | None = None,
+            stop: threading.Event | None = None, watch: InputWatch | None = None,
             life: LifeWatch | None = None):
     """Buffer rows until ``warmup_rows``; then fit the first model.
 
-    ``buffered`` holds the rows buffered before ``X`` (transformed). Returns
+    ``buffered`` holds the rows buffered before ``X`` (transformed); a set ``stop``
+    abandons the work (:func:`raise_if_stopped`). Returns
     ``(mixture or None, scores or None, rows to add to the buffer, checkpoint extras of
     the new model)``: with a model, the scores are those of every row of ``X`` (the
     rows after the first ``warmup_rows`` complete ones learned, shown to ``watch`` and
@@ -83,7 +88,7 @@ def warm_up(settings: Settings, X: np.ndarray, buffered: np.ndarray | None,
     need = int(np.searchsorted(complete_x, s.warmup_rows - have) + 1) \
         if have < s.warmup_rows else 0
     Xw = complete_rows(np.concatenate([buffered, X[:need]]))
-    check_stop()
+    raise_if_stopped(stop)
     try:
         if s.segments.fixed:
             mixture = initialise(Xw, n_components=s.segments.min, covariance=s.covariance,
@@ -114,13 +119,13 @@ def warm_up(settings: Settings, X: np.ndarray, buffered: np.ndarray | None,
             watch.times = watch.times[need:]
     if life is not None:
         life.start(stream_offset=len(buffered) + need)
-    mixture, tail = learn_chunks(settings, mixture, X[need:], watch, life, check_stop)
+    mixture, tail = learn_chunks(settings, mixture, X[need:], watch, life, stop)
     return mixture, concat_scores(head, tail), None, extra
 
 
 def learn_chunks(settings: Settings, mixture: Mixture, X: np.ndarray,
                  watch: InputWatch | None = None, life: LifeWatch | None = None,
-                 check_stop: Callable[[], None] = _no_stop):
+                 stop: threading.Event | None = None):
     """Learn ``X`` in pieces of at most ``chunk_rows`` that never cross a drift window
     boundary (learning does not depend on the cut), showing each piece to ``watch``;
     ``life`` takes its lifecycle decisions at its own fixed points between pieces.
@@ -130,7 +135,7 @@ def learn_chunks(settings: Settings, mixture: Mixture, X: np.ndarray,
     start = 0
     try:
         while start < len(X):
-            check_stop()
+            raise_if_stopped(stop)
             take = min(step, len(X) - start)
             if watch is not None:
                 take = min(take, watch.rows_to_boundary(mixture.n_rows))

@@ -347,12 +347,12 @@ class Pipeline:
                                     dict(self.settings.passthrough_types))
         self._skipped = []
         return read_frames(f, kind, self.settings, self.state, self._conformer,
-                           self._skipped, self.stop.is_set, threaded)
+                           self._skipped, self.stop, threaded)
 
     def _labels_out(self, tables: Iterable) -> Iterable:
         """The labels tables as written: segment names added (``output.segment_names``),
         a stop request checked before each."""
-        return stop_checked(self._named(tables), self._check_stop)
+        return stop_checked(self._named(tables), self.stop)
 
     def _labels_file(self, name: str, digest: str, threaded: bool) -> LabelsFile:
         """The labels file of input ``name``, under a temporary name until kept."""
@@ -371,15 +371,6 @@ class Pipeline:
             self.rows_skipped += note_skipped(labels, name, self._skipped,
                                               sync_folder=self._group is None)
         return labels
-
-    def _fixed_schema(self) -> str | None:
-        """The pass-through types the input just read fixed for the stream (its first),
-        as the commit keeps them; None when they were fixed before."""
-        fixed = self._conformer.fixed if self._conformer is not None else None
-        if fixed is None:
-            return None
-        self._labels_schema = fixed
-        return schema_text(fixed)
 
     def _named(self, tables):
         """Labels tables with the ``segment_name`` column when ``output.segment_names``."""
@@ -409,10 +400,13 @@ class Pipeline:
         if kept:
             waiting = WarmupInput(labels.name, np.concatenate([r for r, _ in kept]),
                                   np.concatenate([v for _, v in kept]), learned=False)
-        self._commit(InputCommit(entry, learned=False, labels_schema=self._fixed_schema(),
-                                 duplicate_rows=None if waiting is None
-                                 else (waiting.rows, waiting.valid)),
-                     st.version, result)
+        fixed = self._conformer.fixed   # the stream's types, if this input fixed them
+        commit = InputCommit(entry, learned=False, duplicate_rows=None if waiting is None
+                             else (waiting.rows, waiting.valid),
+                             labels_schema=None if fixed is None else schema_text(fixed))
+        if fixed is not None:
+            self._labels_schema = fixed
+        self._commit(commit, st.version, result)
         if waiting is not None and len(waiting.rows):
             self.state = replace(self.state,
                                  warmup_inputs=self.state.warmup_inputs + [waiting])
@@ -442,7 +436,7 @@ class Pipeline:
             if rebaseline is not None:
                 watch.rebaseline(st.mixture, rebaseline[1])
         run = InputLearning(self.settings, st, extra, version, watch, life, self._clock,
-                            self._check_stop)
+                            self.stop)
         with self._read(f, kind, threaded) as frames, \
                 self._labels_file(entry.name, "", frames.threaded) as out:
             out.write_all(self._labels_out(run.labelled(run.learned(run.checked(
@@ -456,7 +450,7 @@ class Pipeline:
             self.settings, self.layout, self.store, st, run, entry, claim.digest, labels,
             watch, life, rebaseline, fixed_schema=fixed, stream_schema=self._labels_schema,
             named=self._named, wall=self.wall, listeners=self.alert_listeners,
-            check_stop=self._check_stop)
+            stop=self.stop)
         if fixed is not None:
             self._labels_schema = fixed   # as the commit keeps it
         self._commit(learned.commit, version, learned.result, learned.announce)

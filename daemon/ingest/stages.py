@@ -11,8 +11,9 @@ nothing downstream calls back upstream.
 from __future__ import annotations
 
 import logging
+import threading
 from dataclasses import replace
-from typing import TYPE_CHECKING, BinaryIO, Callable, Iterable, Iterator
+from typing import TYPE_CHECKING, BinaryIO, Iterable, Iterator
 
 import numpy as np
 import pyarrow as pa
@@ -25,7 +26,13 @@ from shoal.daemon.files.readers import Frame, iter_frames, prefetch
 from shoal.daemon.files.times import RowTimes, row_times
 from shoal.daemon.files.writer import labels_table
 from shoal.daemon.ingest.claim import Claim
-from shoal.daemon.ingest.learning import after_scoring, learn_chunks, observed_floor, warm_up
+from shoal.daemon.ingest.learning import (
+    after_scoring,
+    learn_chunks,
+    observed_floor,
+    raise_if_stopped,
+    warm_up,
+)
 from shoal.daemon.ingest.results import ModelState
 from shoal.daemon.ingest.rows import (
     RowCount,
@@ -47,13 +54,14 @@ __all__ = ["read_frames", "until_claimed", "stop_checked", "InputLearning", "Tim
 
 
 def read_frames(f: BinaryIO, kind: str, settings: Settings, state: ModelState,
-                conformer: Conformer, skipped: list[int], should_stop: Callable[[], bool],
+                conformer: Conformer, skipped: list[int], stop: threading.Event,
                 threaded: bool) -> prefetch:
     """The input's frames, read in a thread a few frames ahead of the model; with a
     model, checked against its range as they are read (:func:`mark_beyond_model`);
     their pass-through columns in the stream's types (``conformer``); the lines of CSV
-    rows skipped added to ``skipped``."""
+    rows skipped added to ``skipped``; a set ``stop`` ends the reading."""
     mixture, transforms = state.mixture, state.transforms
+    should_stop = stop.is_set
     if transforms is not None and not transforms.identity:
         # the features go to the model's units in the reader thread (before the
         # first model only checked: the warm-up rows stay in the data's units); the
@@ -77,10 +85,10 @@ def until_claimed(frames: Iterable[Frame], claim: Claim) -> Iterator[Frame]:
         yield frame
 
 
-def stop_checked(tables: Iterable, check_stop: Callable[[], None]) -> Iterator:
+def stop_checked(tables: Iterable, stop: threading.Event) -> Iterator:
     """The items, a stop request checked before each is passed on."""
     for table in tables:
-        check_stop()
+        raise_if_stopped(stop)
         yield table
 
 
@@ -143,7 +151,7 @@ class InputLearning:
 
     def __init__(self, settings: Settings, state: ModelState, extra: dict, version: int,
                  watch: InputWatch | None, life: LifeWatch | None, clock: TimeColumn,
-                 check_stop: Callable[[], None]):
+                 stop: threading.Event):
         self.settings = settings
         self.state = state
         self.mixture = state.mixture
@@ -151,7 +159,7 @@ class InputLearning:
         self.version = version
         self.watch, self.life = watch, life
         self.clock = clock
-        self.check_stop = check_stop
+        self.stop = stop
         self.transforms = state.transforms
         self.mapped_here = False       # transforms fixed in this input's warm-up
         self.count = RowCount()
@@ -233,7 +241,7 @@ class InputLearning:
         X = valid_rows(frame)
         self._times([frame])
         self.mixture, scores = learn_chunks(self.settings, self.mixture, X, self.watch,
-                                            self.life, self.check_stop)
+                                            self.life, self.stop)
         self.held_scores.append(scores)
         self._scored(scores, frame_observed(frame)[frame.valid])
 
@@ -272,7 +280,7 @@ class InputLearning:
             stored = st.warmup if st.warmup is not None else X[:0]
             fitted, buffered, X = transforming.fit_at_warm_up(
                 fitted, stored, X, s.warmup_rows)
-        mixture, scores, _, init_extra = warm_up(s, X, buffered, self.check_stop,
+        mixture, scores, _, init_extra = warm_up(s, X, buffered, self.stop,
                                                  self.watch, self.life)
         if mixture is None:
             return
