@@ -27,7 +27,7 @@ import pyarrow.parquet as pq
 from shoal.daemon.files.readers import prefetch
 
 __all__ = ["labels_name", "safe_stem", "display_name", "labels_table", "atomic_file", "write_labels",
-           "write_labels_stream", "LabelsFile", "relabel_file", "fsync_dir", "OUTPUT_MODE",
+           "write_labels_stream", "LabelsFile", "relabelled_table", "fsync_dir", "OUTPUT_MODE",
            "LABELS_COLUMNS"]
 
 OUTPUT_MODE = 0o640
@@ -147,17 +147,17 @@ LABELS_COLUMNS = ("segment", "confidence", "log_density", "unusual", "model_vers
                   "observed", "segment_name")
 
 
-def relabel_file(path: Path, fmt: str, valid: np.ndarray | None, scores,
-                 unusual_below: float, model_version: int,
-                 log_jacobian: np.ndarray | None = None,
-                 named: Callable[[Iterable[pa.Table]], Iterable[pa.Table]] = lambda t: t,
-                 passthrough: pa.Schema | None = None) -> None:
-    """Replace the labels columns of the labels file ``path`` (written without a model)
-    by ``scores`` of its ``valid`` rows, atomically; the pass-through columns and the
-    other ``shoal.*`` metadata stay. ``valid`` None: every row (the count must agree).
-    ``named`` adds the segment names where configured; ``passthrough``, the stream's
-    pass-through types, reads a CSV file's columns back as they were written. Raises
-    ValueError when the rows do not match the scores."""
+def relabelled_table(path: Path, fmt: str, valid: np.ndarray | None, scores,
+                     unusual_below: float, model_version: int,
+                     log_jacobian: np.ndarray | None = None,
+                     passthrough: pa.Schema | None = None) -> tuple[pa.Table, dict]:
+    """The labels file ``path`` (written without a model) with its labels columns
+    replaced by ``scores`` of its ``valid`` rows, and its ``shoal.*`` metadata with the
+    new model version (the caller writes them back, e.g. with :class:`LabelsFile`); the
+    pass-through columns and the other metadata stay. ``valid`` None: every row (the
+    count must agree). ``passthrough``, the stream's pass-through types, reads a CSV
+    file's columns back as they were written. Raises ValueError when the rows do not
+    match the scores."""
     if fmt == "parquet":
         table = pq.read_table(path)
     else:
@@ -185,7 +185,7 @@ def relabel_file(path: Path, fmt: str, valid: np.ndarray | None, scores,
     new = labels_table(passthrough, valid, scores.segment, scores.confidence,
                        scores.log_density, unusual_below, model_version, log_jacobian,
                        observed=observed)
-    write_labels_stream(list(named([new])), path, fmt, lambda: meta, threaded=False)
+    return new, meta
 
 
 def fsync_dir(path: Path) -> None:

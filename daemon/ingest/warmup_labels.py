@@ -17,7 +17,7 @@ import pyarrow as pa
 
 from shoal.core import FeatureTransforms, Mixture
 from shoal.daemon.files.gaps import Unusual, observed_counts
-from shoal.daemon.files.writer import relabel_file
+from shoal.daemon.files.writer import LabelsFile, relabelled_table
 from shoal.daemon.runtime.logs import log_event
 from shoal.daemon.state.store import WarmupInput
 
@@ -53,8 +53,11 @@ def label_warmup_inputs(waiting_inputs: list[WarmupInput], outbox: Path, fmt: st
         if waiting.learned:   # a duplicate's rows are labelled, not counted
             given.append(scores.segment)
         try:
-            relabel_file(path, fmt, valid, scores, below, version, jacobian, named,
-                         passthrough)
+            table, meta = relabelled_table(path, fmt, valid, scores, below, version,
+                                           jacobian, passthrough)
+            with LabelsFile(path, fmt, threaded=False) as out:   # replaced atomically
+                out.write_all(named([table]))
+                out.keep(meta)
         except FileNotFoundError:
             log_event("warmup_labels_missing", logging.WARNING, labels=waiting.labels)
         except ValueError as exc:
