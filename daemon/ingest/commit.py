@@ -13,7 +13,7 @@ from __future__ import annotations
 import contextlib
 import logging
 import os
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Callable
 
@@ -30,7 +30,18 @@ from shoal.daemon.state.store import InputCommit, LedgerEntry, StateStore
 if TYPE_CHECKING:
     from shoal.daemon.segments.monitor import DriftMonitor
 
-__all__ = ["Pending", "Group", "commit_one", "move_to_processed", "rebaseline_committed"]
+__all__ = ["MoveOut", "Pending", "Group", "commit_one", "move_to_processed",
+           "rebaseline_committed"]
+
+
+@dataclass(frozen=True)
+class MoveOut:
+    """The input to move to ``processed/`` once committed: its path, whether it is in
+    the inbox (else it stays where it is), and the file as it was read (``pin``)."""
+
+    path: Path
+    in_inbox: bool
+    pin: os.stat_result
 
 
 @dataclass
@@ -41,7 +52,8 @@ class Pending:
     result: Result
     version: int                        # the model version after it
     duration: float                     # seconds its processing took
-    after: list[Callable[[], None]] = field(default_factory=list)  # once committed
+    announce: Callable[[], None] | None = None   # its alerts and events, once committed
+    move: MoveOut | None = None
 
 
 class Group:
@@ -71,40 +83,50 @@ class Group:
                     p.commit = replace(p.commit, checkpoint=None)
         self.pending.append(pending)
 
-    def flush(self, store: StateStore, outbox: Path) -> None:
-        """Commit the pending inputs in ONE transaction, then finish each."""
+    def flush(self, store: StateStore, settings: Settings, layout: Layout) -> None:
+        """Commit the pending inputs in ONE transaction, then finish each: its result
+        logged, its alerts announced, the input moved to ``processed/``."""
         pending, self.pending = self.pending, []
         if not pending:
             return
         if any(p.result.labels is not None for p in pending):
-            fsync_dir(outbox)  # the labels files' renames, before the commit
+            fsync_dir(layout.outbox)  # the labels files' renames, before the commit
         versions = store.commit_inputs([p.commit for p in pending])
         if versions != [p.version for p in pending]:
             raise StateError(f"the state store's model versions {versions} are not the "
                              f"ones the group was learned as {[p.version for p in pending]}")
         for p in pending:
             log_result(p.result, p.duration)
-            for step in p.after:
-                step()
+            finish(settings, layout, p.announce, p.move)
 
 
-def commit_one(store: StateStore, commit: InputCommit, version: int,
-               after: list[Callable[[], None]]) -> None:
-    """Commit one input now; ``after`` runs once the commit is durable."""
+def commit_one(store: StateStore, settings: Settings, layout: Layout, commit: InputCommit,
+               version: int, announce: Callable[[], None] | None,
+               move: MoveOut | None) -> None:
+    """Commit one input now, then finish it (:func:`finish`)."""
     committed = store.commit_inputs([commit])[0]
     if committed != version:
         raise StateError(f"the state store's model version {committed} is not the "
                          f"version {version} the input was learned as")
-    for step in after:
-        step()
+    finish(settings, layout, announce, move)
 
 
-def move_to_processed(settings: Settings, layout: Layout, path: Path, in_inbox: bool,
-                      pin: os.stat_result) -> None:
+def finish(settings: Settings, layout: Layout, announce: Callable[[], None] | None,
+           move: MoveOut | None) -> None:
+    """After an input's commit is durable: its alerts and events said, then the input
+    moved to ``processed/``."""
+    if announce is not None:
+        announce()
+    if move is not None:
+        move_to_processed(settings, layout, move)
+
+
+def move_to_processed(settings: Settings, layout: Layout, move: MoveOut) -> None:
     """Move the committed input read (``pin``: by device and inode, not by name) from
     the inbox to ``processed/``; a file renamed over it meanwhile is a new input and
     stays."""
-    if not in_inbox or settings.output.keep_inputs:
+    path, pin = move.path, move.pin
+    if not move.in_inbox or settings.output.keep_inputs:
         return
     with contextlib.suppress(OSError):
         now = os.lstat(path)

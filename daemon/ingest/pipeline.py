@@ -61,6 +61,7 @@ from shoal.daemon.ingest.claim import (
 )
 from shoal.daemon.ingest.commit import (
     Group,
+    MoveOut,
     Pending,
     commit_one,
     move_to_processed,
@@ -265,17 +266,18 @@ class Pipeline:
 
     def _flush(self) -> None:
         """Commit the open group's inputs in ONE transaction, then finish each."""
-        self._group.flush(self.store, self.layout.outbox)
+        self._group.flush(self.store, self.settings, self.layout)
 
-    def _commit(self, commit: InputCommit, version: int, result: Result,
-                *after: Callable[[], None]) -> None:
-        """Commit one input now, or (inside a group) when the group is committed;
-        ``after`` runs once the commit is durable."""
+    def _commit(self, commit: InputCommit, version: int, result: Result, move: MoveOut,
+                announce: Callable[[], None] | None = None) -> None:
+        """Commit one input now, or (inside a group) when the group is committed; then
+        ``announce()`` and the input moved out (``move``)."""
         commit = replace(commit, attempt=self._attempts.current)
         if self._group is not None:
-            self._group.add(Pending(commit, result, version, 0.0, list(after)))
+            self._group.add(Pending(commit, result, version, 0.0, announce, move))
         else:
-            commit_one(self.store, commit, version, list(after))
+            commit_one(self.store, self.settings, self.layout, commit, version, announce,
+                       move)
 
     def _process(self, path: Path, name: str, in_inbox: bool, seen_at: float) -> Result:
         kind = input_kind(name)
@@ -299,6 +301,7 @@ class Pipeline:
             # has is dropped as soon as it is known (nothing of it was kept) and taken
             # as below.
             threaded = size >= THREADED_BYTES
+            move = MoveOut(path, in_inbox, pin)
             algorithm = self.store.digest_algorithm
             with file_digest(f, algorithm, threaded) as hashing:
                 claim = Claim(name, hashing, self.store,
@@ -307,18 +310,17 @@ class Pipeline:
                     try:
                         result = None
                         if claim.poll() in (None, NEW):
-                            result = self._learn(f, kind, threaded, entry, claim, pin)
+                            result = self._learn(f, kind, threaded, entry, claim, move)
                         if result is None:   # the ledger has this content
                             if claim.decide() == ALREADY_DONE:
                                 if self._group:
                                     self._flush()  # moved once its ledger row is committed
-                                move_to_processed(self.settings, self.layout, path, in_inbox,
-                                                  pin)
+                                move_to_processed(self.settings, self.layout, move)
                                 return Result("already_done", name,
                                               model_version=self.state.version)
                             f.seek(0)
                             result = self._duplicate(f, kind, threaded,
-                                                     replace(entry, digest=claim.digest), pin)
+                                                     replace(entry, digest=claim.digest), move)
                     except (OSError, sqlite3.Error, ServiceError):
                         raise   # a fault to retry, a stop, or a reason already given
                     except Exception as exc:   # a failure that belongs to this input alone
@@ -332,11 +334,6 @@ class Pipeline:
                         pass
                     exc.facts.setdefault("size", size)
                     raise
-        if self._group:   # moved after the group's commit
-            self._group.pending[-1].after.append(
-                lambda: move_to_processed(self.settings, self.layout, path, in_inbox, pin))
-        else:
-            move_to_processed(self.settings, self.layout, path, in_inbox, pin)
         return result
 
     # -- the stages ----------------------------------------------------------------
@@ -379,7 +376,7 @@ class Pipeline:
         return with_segment_names(tables, segment_names(self.store.db))
 
     def _duplicate(self, f: BinaryIO, kind: str, threaded: bool, entry: LedgerEntry,
-                   pin: os.stat_result) -> Result:
+                   move: MoveOut) -> Result:
         """Same content under another name: labels written, the model not updated."""
         st = self.state
         count = RowCount()
@@ -391,7 +388,8 @@ class Pipeline:
                 frames = keep_rows(frames, kept)
             out.write_all(self._labels_out(scored_tables(
                 frames, st.mixture, Unusual.from_extra(st.extra), st.version)))
-            labels = self._keep_labels(out, f, pin, entry.name, entry.digest, st.version)
+            labels = self._keep_labels(out, f, move.pin, entry.name, entry.digest,
+                                       st.version)
         entry = replace(entry, outcome="duplicate", labels=labels.name, rows=count.rows,
                         rows_invalid=count.invalid)
         result = Result("duplicate", entry.name, count.rows, count.invalid, labels,
@@ -406,14 +404,14 @@ class Pipeline:
                              labels_schema=None if fixed is None else schema_text(fixed))
         if fixed is not None:
             self._labels_schema = fixed
-        self._commit(commit, st.version, result)
+        self._commit(commit, st.version, result, move)
         if waiting is not None and len(waiting.rows):
             self.state = replace(self.state,
                                  warmup_inputs=self.state.warmup_inputs + [waiting])
         return result
 
     def _learn(self, f: BinaryIO, kind: str, threaded: bool, entry: LedgerEntry,
-               claim: Claim, pin: os.stat_result) -> Result | None:
+               claim: Claim, move: MoveOut) -> Result | None:
         """Learn a new input and queue its commit; None if the claim finds, as the
         digest becomes known, that its content is not new (nothing of it kept)."""
         st = self.state
@@ -443,7 +441,7 @@ class Pipeline:
                 until_claimed(frames, claim))))))
             if claim.decide() != NEW:
                 return None
-            labels = self._keep_labels(out, f, pin, entry.name, claim.digest,
+            labels = self._keep_labels(out, f, move.pin, entry.name, claim.digest,
                                        run.labels_version)
         fixed = self._conformer.fixed
         learned = learned_commit(
@@ -453,7 +451,7 @@ class Pipeline:
             stop=self.stop)
         if fixed is not None:
             self._labels_schema = fixed   # as the commit keeps it
-        self._commit(learned.commit, version, learned.result, learned.announce)
+        self._commit(learned.commit, version, learned.result, move, learned.announce)
         self.state = learned.state
         return learned.result
 
