@@ -263,11 +263,10 @@ def write_labels_stream(tables: Iterable[pa.Table], target: Path, fmt: str,
     exactly once whatever the format, and only if a table arrives: as the first table
     is written when ``ready()`` says it can answer without waiting (no ``ready``:
     always), else after the first later table for which it can, else once the last
-    table is written. So a caller whose metadata waits for something slow (the input's
-    content hash) never holds up the tables, and may still refuse the write early (an
-    error raised by ``metadata()`` is raised here and the temp file removed). A Parquet
-    file is the same, byte for byte, whenever the metadata was asked
-    (:func:`_late_metadata`).
+    table is written; an error raised by ``metadata()`` is raised here and the temp file
+    removed. A Parquet file is the same, byte for byte, whenever the metadata was asked
+    (:func:`_late_metadata`). Ingest writes with :class:`LabelsFile` instead, which is
+    handed the tables and, at the end, the metadata.
 
     The tables are made in a worker thread (:class:`~shoal.daemon.files.readers.prefetch`)
     while this thread encodes and writes the ones made before (pyarrow releases the
@@ -395,6 +394,7 @@ class LabelsFile:
         self._thread: threading.Thread | None = None
         self._error: BaseException | None = None
         self._kept: Path | None = None
+        self._abandoned = False   # left without keep(): tables still queued are dropped
 
     def __enter__(self) -> "LabelsFile":
         fd = os.open(self._tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_NOFOLLOW
@@ -413,6 +413,7 @@ class LabelsFile:
         return self
 
     def __exit__(self, *exc) -> None:
+        self._abandoned = self._kept is None
         self._stop_thread()
         if self._kept is None:
             with contextlib.suppress(Exception):
@@ -468,8 +469,8 @@ class LabelsFile:
             table = self._queue.get()
             if table is None:
                 return
-            if self._error is not None:
-                continue   # taken to unblock the caller; it sees the error
+            if self._error is not None or self._abandoned:
+                continue   # taken to unblock the caller (who sees the error), not written
             try:
                 self._write(table)
             except BaseException as exc:   # raised in the caller's thread
