@@ -344,7 +344,8 @@ def memory_table(tmp: Path, warm: Path, small: Path, rows: int, big_rows: int) -
 
 # -- CPU seconds per stage ---------------------------------------------------------
 # (stage, module, owner, attribute): the time of the calls is charged to the stage, in
-# the thread that made them; nested calls of timed functions count once.
+# the thread that made them; nested calls of timed functions count once. A module is
+# patched before the modules that import names from it (learning before stages).
 STAGES = [
     ("hash (BLAKE3 of the file)", "shoal.daemon.files.readers", "file_digest", "_run"),
     ("frame build (float64 rows, checks)", "shoal.daemon.files.readers", None, "build_frame"),
@@ -352,11 +353,11 @@ STAGES = [
     ("drift (window sums, evaluation)", "shoal.daemon.segments.monitor", "InputWatch", "observe"),
     ("lifecycle decision points", "shoal.daemon.segments.segment_life", "LifeWatch", "at_boundary"),
     ("lifecycle unexplained rows", "shoal.daemon.segments.segment_life", "LifeWatch", "observe"),
-    ("far-row bound (model thread)", "shoal.daemon.ingest.pipeline", None, "_mark_beyond_model"),
-    ("labels tables", "shoal.daemon.ingest.pipeline", None, "_labels"),
+    ("far-row bound (model thread)", "shoal.daemon.ingest.rows", None, "mark_beyond_model"),
+    ("unusual threshold, counts", "shoal.daemon.ingest.learning", None, "after_scoring"),
+    ("labels tables", "shoal.daemon.ingest.stages", None, "frame_labels"),
     ("labels encode + write", "pyarrow.parquet", "ParquetWriter", "write_table"),
     ("labels encode + write", "pyarrow.parquet", "ParquetWriter", "close"),
-    ("unusual threshold, counts", "shoal.daemon.ingest.pipeline", "Pipeline", "_after_scoring"),
     ("commit (one transaction)", "shoal.daemon.state.store", "StateStore", "commit_inputs"),
 ]
 
@@ -390,8 +391,8 @@ def _stage_child(cfg: str, drop: str) -> int:
         target = importlib.import_module(module)
         target = getattr(target, owner) if owner else target
         setattr(target, attr, timed(getattr(target, attr), stage))
-    from shoal.daemon.ingest import pipeline
-    frames = pipeline.iter_frames
+    from shoal.daemon.ingest import stages
+    frames = stages.iter_frames
 
     def reading(*a, **k):   # the reader thread's time outside the frame build
         it, total = frames(*a, **k), 0.0
@@ -405,7 +406,7 @@ def _stage_child(cfg: str, drop: str) -> int:
             finally:
                 total += time.thread_time() - t
             yield item
-    pipeline.iter_frames = reading
+    stages.iter_frames = reading
     from shoal.daemon.cli.main import main as shoal_main
 
     before = resource.getrusage(resource.RUSAGE_SELF)

@@ -33,374 +33,69 @@ The coordinator (this process) owns the model; workers own the rows.
    and its segment history. ``shoal watch`` on the same state continues from there and
    never takes those files again.
 
-Dask's ``distributed`` is imported only here (``pip install 'shoal[cluster]'``).
+The plan (:mod:`.plan`), the workers' tasks (:mod:`.tasks`), the cluster
+(:mod:`.cluster`) and the command line (:mod:`.command`) are modules of their own;
+Dask's ``distributed`` is imported only in :mod:`.cluster`.
 """
 from __future__ import annotations
 
-import contextlib
 import logging
-import os
 import shutil
 import threading
 import time
 import uuid
 from concurrent.futures import CancelledError
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Iterator
 
 import numpy as np
 
 from shoal.config import Settings
-from shoal.core.distributed import apply_round, partition_statistics, round_weights
-from shoal.daemon.files.digest import digest_file
-from shoal.daemon.errors import (
-    InputRefused,
-    InputRejected,
-    InputVanished,
-    Interrupted,
-    ServiceError,
-    UsageError,
+from shoal.core import kernel_check
+from shoal.core.distributed import apply_round
+from shoal.daemon.backfill.cluster import cluster_client
+from shoal.daemon.backfill.commit import commit_history
+from shoal.daemon.backfill.plan import (
+    DEFAULT_ROUND_ROWS,
+    LABEL_MODES,
+    BackfillError,
+    ClusterUnavailable,
+    FileFacts,
+    Round,
+    list_sources,
+    plan_rounds,
+    round_size,
 )
-from shoal.daemon.files.gaps import observed_counts
-from shoal.daemon.intake.gate import input_kind
-from shoal.daemon.model.contract import open_model_store
+from shoal.daemon.backfill.tasks import (
+    LabelsTo,
+    PieceResult,
+    ScoreSlice,
+    assemble_labels,
+    head_rows,
+    label_file,
+    piece_statistics,
+    save_scores,
+    survey_file,
+)
+from shoal.daemon.errors import Interrupted, UsageError
 from shoal.daemon.files.layout import Layout, StateLock, prepare_folders, remove_stale_temps
+from shoal.daemon.files.writer import labels_name
+from shoal.daemon.ingest.learning import UNUSUAL_MEMORY_ROWS, warm_up
+from shoal.daemon.ingest.results import ModelState, load_model_state
+from shoal.daemon.model.contract import open_model_store
 from shoal.daemon.runtime.logs import log_event
-from shoal.daemon.ingest.pipeline import (
-    UNUSUAL_MEMORY_ROWS,
-    Pipeline,
-    history_rows,
-    labels_metadata,
-    open_input,
-)
 from shoal.daemon.runtime.progress import progress
-from shoal.daemon.files.quarantine import quarantine
-from shoal.daemon.files.labels_schema import conform, first_schema, schema_from_text, schema_text
-from shoal.daemon.files.readers import Frame, read_input
-from shoal.daemon.segments.segment_names import segment_names, with_segment_names
-from shoal.daemon.state.store import Checkpoint, HistoryRow, LedgerEntry, StateStore
-from shoal.daemon.files.writer import atomic_file, labels_name, labels_table, write_labels
+from shoal.daemon.segments.segment_names import segment_names
+from shoal.daemon.state.store import StateStore
 
-__all__ = ["backfill", "BackfillReport", "BackfillError", "ClusterUnavailable", "FileFacts",
-           "Piece", "Round", "plan_rounds", "list_sources", "round_size",
-           "add_backfill_command", "DEFAULT_ROUND_ROWS"]
+__all__ = ["backfill", "BackfillReport", "BackfillRun", "BackfillError", "ClusterUnavailable",
+           "plan_rounds", "DEFAULT_ROUND_ROWS"]
 
-DEFAULT_ROUND_ROWS = 1 << 20
-LABEL_MODES = ("round", "final")
 _ATTEMPTS = 3               # broadcasts of one snapshot before a round gives up
 _STAGE = ".shoal-backfill"   # in the outbox: the rounds' scores until the labels are written
-INSTALL_HINT = "pip install 'shoal[cluster]'"
 
 
-class BackfillError(ServiceError):
-    """The backfill cannot go on (too little history, a file changed under it...)."""
-
-    exit_code = 1
-
-
-class ClusterUnavailable(ServiceError):
-    """The Dask scheduler cannot be reached, or Dask is not installed."""
-
-    exit_code = 4
-
-
-# -- plan --------------------------------------------------------------------------
-@dataclass(frozen=True)
-class FileFacts:
-    """What a worker found in one input: nothing row-sized."""
-
-    index: int
-    path: str
-    name: str
-    size: int = 0
-    mtime_ns: int = 0
-    digest: str | None = None           # of the content, in ``digest_algorithm``
-    digest_algorithm: str | None = None
-    rows: int = 0
-    rows_invalid: int = 0
-    reason: str | None = None       # set when the file is refused (quarantined)
-    detail: str | None = None
-    labels_schema: str | None = None   # the pass-through types it would fix as a first input
-
-    @property
-    def valid_rows(self) -> int:
-        return self.rows - self.rows_invalid
-
-
-@dataclass(frozen=True)
-class Piece:
-    """Valid rows ``lo .. hi-1`` of one file, at global stream rows ``at+1 .. at+hi-lo``,
-    in pass ``pass_no`` over the history."""
-
-    file: int
-    lo: int
-    hi: int
-    at: int
-    pass_no: int = 0
-
-
-@dataclass(frozen=True)
-class Round:
-    start: int
-    stop: int
-    pieces: tuple[Piece, ...]
-    refresh: bool                   # ends on a multiple of the round size
-
-
-def round_size(round_rows: int, refresh_rows: int) -> int:
-    """``round_rows`` rounded up to a whole number of the model's refresh intervals."""
-    if round_rows < 1:
-        raise UsageError(f"--round-rows should be at least 1, got {round_rows}")
-    return -(-round_rows // refresh_rows) * refresh_rows
-
-
-def plan_rounds(valid_rows: list[tuple[int, int]], skip: int, n0: int,
-                size: int, passes: int = 1) -> list[Round]:
-    """Cut the learned stream into rounds ending at global multiples of ``size``.
-
-    ``valid_rows`` lists (file index, valid rows) in stream order; the first ``skip``
-    rows went to the warm-up; the model has learned ``n0`` rows before the first round.
-    With ``passes`` > 1 the stream is the history again, every row of it, after the first.
-    """
-    spans = []                      # (file, lo, hi, global start, pass)
-    at = n0
-    for pass_no in range(passes):
-        for index, n in valid_rows:
-            lo = min(skip, n)
-            skip -= lo
-            if n > lo:
-                spans.append((index, lo, n, at, pass_no))
-                at += n - lo
-    end = at
-    rounds, start, k = [], n0, 0
-    while start < end:
-        stop = min((start // size + 1) * size, end)
-        pieces = []
-        while k < len(spans):
-            index, lo, hi, g, pass_no = spans[k]
-            a, b = max(start, g), min(stop, g + hi - lo)
-            if a < b:
-                pieces.append(Piece(index, lo + a - g, lo + b - g, a, pass_no))
-            if g + hi - lo > stop:
-                break
-            k += 1
-        rounds.append(Round(start, stop, tuple(pieces), stop % size == 0))
-        start = stop
-    return rounds
-
-
-def list_sources(sources) -> list[Path]:
-    """Files named, and the Parquet/CSV files inside folders named (sorted by name, hidden
-    files skipped), in the order given; each file once."""
-    out, seen = [], set()
-    for source in sources:
-        path = Path(source)
-        if path.is_dir():
-            found = sorted(p for p in path.iterdir() if p.is_file()
-                           and not p.name.startswith(".") and input_kind(p.name) is not None)
-        elif path.is_file():
-            if input_kind(path.name) is None:
-                raise UsageError(f"{path}: expected a name ending in .csv, .csv.gz, .parquet "
-                                 "or .pq")
-            found = [path]
-        else:
-            raise UsageError(f"no such file or folder: {path}")
-        for p in found:
-            key = p.resolve()
-            if key not in seen:
-                seen.add(key)
-                out.append(p)
-    return out
-
-
-# -- worker tasks (module-level functions: Dask sends them by reference) ------------------
-def survey_file(index: int, path: str, settings: Settings,
-                algorithm: str) -> FileFacts:
-    """Hash (with ``algorithm``, the state store's), read and validate one input (on a
-    worker)."""
-    p = Path(path)
-    facts = FileFacts(index=index, path=str(p), name=p.name, digest_algorithm=algorithm)
-    try:
-        with open_input(p) as f:
-            st = os.fstat(f.fileno())
-            facts = replace(facts, size=st.st_size, mtime_ns=st.st_mtime_ns)
-            if st.st_size == 0:
-                raise InputRejected("empty", "the input is empty (0 bytes)")
-            if st.st_size > settings.limits.max_file_bytes:
-                raise InputRejected("too_large", f"{st.st_size} bytes, more than "
-                                    f"limits.max_file_bytes={settings.limits.max_file_bytes}")
-            facts = replace(facts, digest=digest_file(f, algorithm))
-            kind = input_kind(p.name)
-            # rows skipped under input.bad_rows: skip are left out of every read alike
-            frame = read_input(f, kind, settings, skipped=[])
-            schema = schema_text(first_schema(frame.passthrough, kind != "parquet",
-                                              dict(settings.passthrough_types)))
-    except InputRejected as exc:
-        return replace(facts, reason=exc.reason, detail=exc.detail)
-    except (InputVanished, InputRefused) as exc:
-        return replace(facts, reason="unreadable", detail=str(exc))
-    return replace(facts, rows=frame.n_rows, rows_invalid=frame.n_invalid,
-                   labels_schema=schema)
-
-
-def _read_again(facts: FileFacts, settings: Settings) -> Frame:
-    """Read a surveyed file again; refuse it if it changed since the survey."""
-    with open_input(Path(facts.path)) as f:
-        st = os.fstat(f.fileno())
-        if (st.st_size, st.st_mtime_ns) != (facts.size, facts.mtime_ns):
-            raise BackfillError(f"{facts.path} changed during the backfill (size or "
-                                "modification time differs from the survey); run the "
-                                "backfill again on files that are no longer written")
-        return read_input(f, input_kind(facts.name), settings, skipped=[])
-
-
-def head_rows(files: list[FileFacts], settings: Settings, n_rows: int) -> np.ndarray:
-    """The first ``n_rows`` valid rows of ``files`` in order (the warm-up buffer)."""
-    parts, have = [], 0
-    for facts in files:
-        if have >= n_rows:
-            break
-        frame = _read_again(facts, settings)
-        X = frame.features[frame.valid][: n_rows - have]
-        parts.append(X)
-        have += len(X)
-    return np.concatenate(parts) if parts else np.empty((0, len(settings.features)))
-
-
-@dataclass(frozen=True)
-class PieceResult:
-    stats: object                    # PartitionStatistics
-    counts: np.ndarray               # (n_components,) rows per most responsible component
-    log_density_quantile: float      # at output.unusual_quantile, under the snapshot
-
-
-@dataclass(frozen=True)
-class LabelsTo:
-    """How a file's labels are written: its model version, the unusual-row threshold, the
-    outbox, and the folder where pieces of a file split between rounds keep their scores."""
-
-    version: int
-    unusual_below: float
-    outbox: str
-    stage: str
-    names: tuple = ()      # (segment id, name) pairs for a segment_name column; () for none
-    schema: str | None = None   # the stream's pass-through types (labels_schema)
-
-
-def piece_statistics(facts: FileFacts, piece: Piece, stop: int, snapshot,
-                     settings: Settings, labels: LabelsTo | None = None) -> PieceResult:
-    """The statistics of one piece of a round under the round's snapshot (on a worker).
-
-    With ``labels``, the rows' scores become labels: the labels file at once when the
-    piece is the whole file, else kept in ``labels.stage`` until the file is complete.
-    """
-    frame = _read_again(facts, settings)
-    X = frame.features[frame.valid][piece.lo:piece.hi]
-    weights = round_weights(snapshot.schedule, piece.at, piece.at + len(X), stop)
-    stats, scores = partition_statistics(snapshot, X, weights)
-    if labels is not None and piece.lo == 0 and len(X) == facts.valid_rows:
-        _write_labels(facts, settings, frame, scores.segment, scores.confidence,
-                      scores.log_density, labels.unusual_below, labels.version,
-                      labels.outbox, labels.names, labels.schema)
-    elif labels is not None:
-        save_scores(Path(labels.stage), facts.index, piece.lo, scores)
-    counts = np.bincount(scores.component, minlength=snapshot.n_components)
-    q = float(np.quantile(scores.log_density, settings.output.unusual_quantile))
-    return PieceResult(stats, counts, q)
-
-
-def save_scores(stage: Path, index: int, lo: int, scores) -> Path:
-    """Scores of valid rows ``lo..`` of file ``index``, atomically (a retried task writes
-    the same bytes again)."""
-    target = stage / f"{index:06d}.{lo:012d}.npz"
-    with atomic_file(target) as f:
-        np.savez(f, segment=scores.segment, confidence=scores.confidence,
-                 log_density=scores.log_density)
-    return target
-
-
-def _write_labels(facts: FileFacts, settings: Settings, frame: Frame, segment, confidence,
-                  log_density, unusual_below: float, version: int, outbox: str,
-                  names: tuple = (), schema: str | None = None) -> str:
-    fmt = settings.output.format
-    passthrough = frame.passthrough
-    if schema is not None:   # the stream's pass-through types, as the service writes them
-        from_text = input_kind(facts.name) != "parquet"
-        try:
-            passthrough = conform(passthrough, schema_from_text(schema), from_text,
-                                  2 if from_text else 1)
-        except InputRejected as exc:
-            raise BackfillError(f"{facts.name}: {exc.detail}") from exc
-    table = labels_table(passthrough, frame.valid, segment, confidence, log_density,
-                         unusual_below, version, observed=observed_counts(frame.features))
-    if settings.output.segment_names:
-        (table,) = with_segment_names([table], dict(names))
-    target = Path(outbox) / labels_name(facts.name, facts.digest, fmt)
-    write_labels(table, target, fmt, labels_metadata(facts.digest, facts.digest_algorithm,
-                                                      facts.name, version))
-    return target.name
-
-
-def label_file(facts: FileFacts, settings: Settings, model, version: int,
-               unusual_below: float, outbox: str, names: tuple = (),
-               schema: str | None = None) -> str:
-    """Label every row of one input with ``model``; write the labels file atomically."""
-    frame = _read_again(facts, settings)
-    scores = model.score(frame.features[frame.valid])
-    return _write_labels(facts, settings, frame, scores.segment, scores.confidence,
-                         scores.log_density, unusual_below, version, outbox, names, schema)
-
-
-def assemble_labels(facts: FileFacts, settings: Settings, labels: LabelsTo) -> str:
-    """The labels file of one input from the scores its pieces kept in ``labels.stage``."""
-    frame = _read_again(facts, settings)
-    parts = [np.load(p, allow_pickle=False)
-             for p in sorted(Path(labels.stage).glob(f"{facts.index:06d}.*.npz"))]
-    cols = {name: np.concatenate([p[name] for p in parts]) if parts else np.empty(0)
-            for name in ("segment", "confidence", "log_density")}
-    if len(cols["segment"]) != facts.valid_rows:
-        raise BackfillError(f"{facts.name}: the rounds scored {len(cols['segment'])} of its "
-                            f"{facts.valid_rows} valid rows")
-    return _write_labels(facts, settings, frame, cols["segment"], cols["confidence"],
-                         cols["log_density"], labels.unusual_below, labels.version,
-                         labels.outbox, labels.names, labels.schema)
-
-
-# -- the cluster -------------------------------------------------------------------
-def _distributed():
-    try:
-        import distributed
-    except ImportError as exc:
-        raise ClusterUnavailable(f"shoal backfill needs Dask's distributed scheduler, which "
-                                 f"is not installed: {INSTALL_HINT}") from exc
-    return distributed
-
-
-@contextlib.contextmanager
-def cluster_client(scheduler: str | None = None, local_workers: int | None = None,
-                   connect_timeout: float = 10.0) -> Iterator:
-    """A Dask client: connected to ``scheduler``, or to a local cluster of worker processes."""
-    distributed = _distributed()
-    if scheduler is not None:
-        try:
-            client = distributed.Client(scheduler, timeout=connect_timeout,
-                                        set_as_default=False)
-        except (OSError, TimeoutError, ValueError) as exc:
-            raise ClusterUnavailable(f"the Dask scheduler at {scheduler} cannot be reached "
-                                     f"within {connect_timeout:g} s: {exc}") from exc
-        with contextlib.closing(client):
-            yield client
-        return
-    workers = local_workers or os.cpu_count() or 1
-    with distributed.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                                  dashboard_address=None) as cluster:
-        with distributed.Client(cluster, set_as_default=False) as client:
-            yield client
-
-
-# -- the run -----------------------------------------------------------------------
-def _first_model_version(learned: list[FileFacts], warmup_rows: int,
+def first_model_version(learned: list[FileFacts], warmup_rows: int,
                          versions: dict[int, int]) -> int | None:
     """The model version of the file whose rows complete the warm-up (its model is the
     first); None if no file does."""
@@ -414,6 +109,11 @@ def _first_model_version(learned: list[FileFacts], warmup_rows: int,
 
 @dataclass
 class BackfillReport:
+    """What a backfill did: files taken, learned, duplicated, skipped (already done) and
+    quarantined; the rows learned in rounds and at the warm-up, the rounds and their
+    size, snapshots broadcast again, the model version committed, the labels files
+    written and the seconds it took."""
+
     files: int = 0
     learned: int = 0
     duplicates: int = 0
@@ -458,22 +158,27 @@ def backfill(settings: Settings, sources, *, client=None, scheduler: str | None 
         remove_stale_temps(layout)
         store = open_model_store(layout, settings, write=True)
         try:
-            pipeline = Pipeline(settings, layout, store, stop=stop, wall=wall)
+            state = load_model_state(settings, store)
+            kernel_check.warm()   # the compiled kernels checked before any work is sent
             if client is not None:
-                return _Run(settings, layout, store, pipeline, client, stop, wall).run(
+                return BackfillRun(settings, layout, store, state, client, stop, wall).run(
                     paths, round_rows, labels, passes)
             with cluster_client(scheduler, local_workers, connect_timeout) as made:
-                return _Run(settings, layout, store, pipeline, made, stop, wall).run(
+                return BackfillRun(settings, layout, store, state, made, stop, wall).run(
                     paths, round_rows, labels, passes)
         finally:
             store.close()
 
 
-class _Run:
-    def __init__(self, settings, layout: Layout, store: StateStore, pipeline: Pipeline,
+class BackfillRun:
+    """One backfill on one cluster, from the model ``state`` the store holds: the survey,
+    the warm-up, the rounds, the labels and the ONE commit (:meth:`run`). The
+    coordinator owns the model; workers read the files."""
+
+    def __init__(self, settings, layout: Layout, store: StateStore, state: ModelState,
                  client, stop: threading.Event, wall):
         self.settings, self.layout, self.store = settings, layout, store
-        self.pipeline, self.client, self.stop, self.wall = pipeline, client, stop, wall
+        self.state, self.client, self.stop, self.wall = state, client, stop, wall
         self.tag = uuid.uuid4().hex[:12]   # task keys of this run
         self.schema: str | None = None     # the stream's pass-through types (labels_schema)
         self.broadcasts_again = 0
@@ -505,7 +210,7 @@ class _Run:
             (f.labels_schema for f in learned + duplicates), None)
         report.learned, report.duplicates = len(learned), len(duplicates)
         report.skipped, report.quarantined = len(skipped), len(refused)
-        st = self.pipeline.state
+        st = self.state
         mixture, extra, skip = st.mixture, dict(st.extra), 0
         clear_warmup = False
         stage = None
@@ -530,7 +235,7 @@ class _Run:
                 touched = {p.file for r in rounds for p in r.pieces
                            if p.pass_no == passes - 1}
                 # labelled by the first model, under its version (as the service does)
-                first = _first_model_version(learned, skip, versions) if clear_warmup \
+                first = first_model_version(learned, skip, versions) if clear_warmup \
                     else None
                 for f in learned:
                     if f.index not in touched:
@@ -591,7 +296,7 @@ class _Run:
         return learned, duplicates, skipped, refused
 
     def _warm_up(self, learned: list[FileFacts], stage: Path | None):
-        st = self.pipeline.state
+        st = self.state
         buffered = 0 if st.warmup is None else len(st.warmup)
         need = max(self.settings.warmup_rows - buffered, 0)
         fut = self.client.submit(head_rows, learned, self.settings, need,
@@ -600,11 +305,12 @@ class _Run:
         if len(head) < need:
             raise BackfillError(f"the history holds {buffered + len(head)} valid rows; the "
                                 f"warm-up needs warmup_rows={self.settings.warmup_rows}")
-        mixture, scores, _, init_extra = self.pipeline._warm_up(head)
+        mixture, scores, _, init_extra = warm_up(self.settings, head, st.warmup,
+                                                 self.stop)
         if mixture is None:
             raise BackfillError("the warm-up rows could not start a model (see the "
                                 "warmup_not_enough_data log line)")
-        extra = dict(self.pipeline.state.extra)
+        extra = dict(self.state.extra)
         extra.update(init_extra)
         extra = self._count(extra, mixture, scores.component)
         if stage is not None:   # the warm-up rows are labelled by the first model
@@ -613,7 +319,7 @@ class _Run:
                 take = min(f.valid_rows, need - at)
                 if take <= 0:
                     break
-                save_scores(stage, f.index, 0, _Slice(scores, at, at + take))
+                save_scores(stage, f.index, 0, ScoreSlice(scores, at, at + take))
                 at += take
         return mixture, extra, need
 
@@ -734,135 +440,6 @@ class _Run:
 
     def _commit(self, facts, learned, duplicates, refused, mixture, extra, version,
                 clear_warmup, seen_at, labelled: bool) -> int:
-        now = self.wall()
-        outcome = {f.index: "committed" for f in learned}
-        outcome.update({f.index: "duplicate" for f in duplicates})
-        for f in refused:
-            quarantine(Path(f.path), self.layout.quarantine, f.reason, f.detail, move=False,
-                       now=now, facts={"digest": f.digest, "size": f.size,
-                                       "digest_algorithm": f.digest_algorithm if f.digest
-                                       else None})
-            log_event("input_quarantined", logging.WARNING, file=f.name, reason=f.reason,
-                      detail=f.detail)
-        fmt = self.settings.output.format
-        entries = []
-        for f in facts:
-            if f.reason is not None:
-                entries.append((LedgerEntry(digest=f.digest, name=f.name, size=f.size,
-                                            outcome="quarantined",
-                                            reason=f"{f.reason}: {f.detail}",
-                                            seen_at=seen_at, finished_at=now), False))
-            elif f.index in outcome:
-                entries.append((LedgerEntry(digest=f.digest, name=f.name, size=f.size,
-                                            outcome=outcome[f.index], rows=f.rows,
-                                            rows_invalid=f.rows_invalid,
-                                            labels=labels_name(f.name, f.digest, fmt)
-                                            if labelled else None,
-                                            seen_at=seen_at, finished_at=now),
-                                outcome[f.index] == "committed"))
-        checkpoint = history = None
-        if learned and mixture is not None:
-            born = dict(extra.get("segment_born", {}))
-            for sid in mixture.ids.tolist():
-                born.setdefault(str(sid), {"version": version, "time": now})
-            extra = dict(extra, segment_born=born)
-            arrays, meta = mixture.to_state()
-            checkpoint = Checkpoint(version, arrays, meta, extra)
-            history = history_rows(mixture, extra)
-        return _commit_all(self.store, entries, checkpoint, history or [], clear_warmup,
-                           self.schema)
-
-
-class _Slice:
-    """Rows ``a..b`` of some scores (what :func:`save_scores` reads)."""
-
-    def __init__(self, scores, a: int, b: int):
-        self.segment = scores.segment[a:b]
-        self.confidence = scores.confidence[a:b]
-        self.log_density = scores.log_density[a:b]
-
-
-def _commit_all(store: StateStore, entries: list[tuple[LedgerEntry, bool]],
-                checkpoint: Checkpoint | None, history: list[HistoryRow],
-                clear_warmup: bool, labels_schema: str | None = None) -> int:
-    """Every ledger row, the checkpoint and its history in ONE transaction.
-
-    The store has no public call for many inputs at once (``commit_input`` is one input
-    per transaction), so this uses its row writers inside one of its transactions.
-    """
-
-    now = store.clock()
-    with store._transaction():
-        version = store.model_version
-        for entry, learned in entries:
-            if entry.outcome == "quarantined":
-                store._insert_entry(entry)
-                continue
-            version += 1 if learned else 0
-            store._insert_entry(entry, model_version=version)
-        if checkpoint is not None and checkpoint.version != version:
-            raise BackfillError(f"checkpoint version {checkpoint.version} does not match "
-                                f"the ledger's {version}")
-        store._set_meta("model_version", str(version))
-        if clear_warmup:
-            store.db.execute("DELETE FROM warmup")
-            store.db.execute("DELETE FROM warmup_valid")
-            store.db.execute("DELETE FROM warmup_duplicates")
-        if checkpoint is not None:
-            store._insert_checkpoint(checkpoint, now)
-        store._insert_history(history, version, now)
-        if labels_schema is not None:
-            store.db.execute("INSERT OR IGNORE INTO meta (key, value) VALUES "
-                             "('labels_schema', ?)", (labels_schema,))
-    return version
-
-
-# -- the command -------------------------------------------------------------------
-def add_backfill_command(cmd, with_config, stop_on_signals) -> None:
-    """Add ``backfill`` with the CLI's own ``cmd``/``with_config`` helpers."""
-    sp = with_config(cmd("backfill", "learn a history of Parquet/CSV files on a Dask cluster "
-                                     "into the state folder, labelling every row",
-                         lambda args: _cmd_backfill(args, stop_on_signals)))
-    sp.add_argument("sources", nargs="+", metavar="SOURCE",
-                    help="files, or folders whose Parquet/CSV files are taken in name order")
-    where = sp.add_mutually_exclusive_group()
-    where.add_argument("--scheduler", metavar="ADDRESS",
-                       help="address of a running Dask scheduler, e.g. tcp://host:8786")
-    where.add_argument("--local-workers", type=int, metavar="N",
-                       help="start N local worker processes (default: one per core)")
-    sp.add_argument("--round-rows", type=int, default=DEFAULT_ROUND_ROWS, metavar="ROWS",
-                    help="rows per round: one parameter snapshot per round, rounded up to "
-                         f"whole refresh intervals (default {DEFAULT_ROUND_ROWS:,})")
-    sp.add_argument("--labels", choices=LABEL_MODES, default="round",
-                    help="round: each row labelled by the snapshot that scored it while "
-                         "learning (one pass, as the service labels); final: every row "
-                         "labelled again by the final model (a second pass)")
-    sp.add_argument("--passes", type=int, default=1, metavar="N",
-                    help="learn the history N times over (default 1); labels come from the "
-                         "last pass")
-    sp.add_argument("--connect-timeout", type=float, default=10.0, metavar="SECONDS",
-                    help="give up on the scheduler after this long (default 10)")
-
-
-def _cmd_backfill(args, stop_on_signals) -> int:
-    from shoal.config import load_config
-    from shoal.daemon.runtime.logs import setup_logging
-
-    settings = load_config(args.config)
-    setup_logging(settings.log_level)
-    if args.local_workers is not None and args.local_workers < 1:
-        raise UsageError(f"--local-workers should be at least 1, got {args.local_workers}")
-    stop = threading.Event()
-    with stop_on_signals(stop):
-        r = backfill(settings, args.sources, scheduler=args.scheduler,
-                     local_workers=args.local_workers, round_rows=args.round_rows,
-                     labels=args.labels, passes=args.passes,
-                     connect_timeout=args.connect_timeout, stop=stop)
-    learned = f"{r.learned} files learned"
-    if r.learned:
-        learned += (f" ({r.warmup_rows:,} warm-up rows, {r.rows:,} rows in {r.rounds} rounds "
-                    f"of {r.round_rows:,})")
-    print(f"{learned}, {r.duplicates} duplicates, {r.skipped} already done, {r.quarantined} "
-          f"quarantined; {len(r.labels)} labels files; model version {r.model_version}; "
-          f"{r.seconds:.1f} s")
-    return 1 if r.quarantined else 0
+        return commit_history(self.settings, self.layout, self.store, facts, learned,
+                              duplicates, refused, mixture, extra, version, clear_warmup,
+                              seen_at, self.wall(), labelled, self.schema)

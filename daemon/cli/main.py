@@ -38,7 +38,7 @@ os.environ.setdefault(ARROW_PURGE_DELAY[0], ARROW_PURGE_DELAY[1])
 from shoal.config import ConfigError, Settings, dump_settings, load_config  # noqa: E402
 from shoal.core import ShoalError  # noqa: E402
 from shoal.daemon.cli.alert_commands import add_alert_commands, alert_delivery  # noqa: E402
-from shoal.daemon.backfill.learn import add_backfill_command  # noqa: E402
+from shoal.daemon.backfill.command import add_backfill_command  # noqa: E402
 from shoal.daemon.runtime.compiled_switch import apply_environment  # noqa: E402
 from shoal.daemon.errors import InputRejected, ServiceError, UsageError  # noqa: E402
 from shoal.daemon.model.contract import check_model_contract, open_model_store  # noqa: E402

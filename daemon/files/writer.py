@@ -12,7 +12,9 @@ import base64
 import contextlib
 import hashlib
 import os
+import queue
 import re
+import threading
 import unicodedata
 from pathlib import Path
 from typing import BinaryIO, Callable, Iterable, Iterator
@@ -25,7 +27,8 @@ import pyarrow.parquet as pq
 from shoal.daemon.files.readers import prefetch
 
 __all__ = ["labels_name", "safe_stem", "display_name", "labels_table", "atomic_file", "write_labels",
-           "write_labels_stream", "relabel_file", "fsync_dir", "OUTPUT_MODE", "LABELS_COLUMNS"]
+           "write_labels_stream", "LabelsFile", "relabelled_table", "fsync_dir", "OUTPUT_MODE",
+           "LABELS_COLUMNS"]
 
 OUTPUT_MODE = 0o640
 _UNSAFE = re.compile(r"[^A-Za-z0-9._-]+")
@@ -144,17 +147,17 @@ LABELS_COLUMNS = ("segment", "confidence", "log_density", "unusual", "model_vers
                   "observed", "segment_name")
 
 
-def relabel_file(path: Path, fmt: str, valid: np.ndarray | None, scores,
-                 unusual_below: float, model_version: int,
-                 log_jacobian: np.ndarray | None = None,
-                 named: Callable[[Iterable[pa.Table]], Iterable[pa.Table]] = lambda t: t,
-                 passthrough: pa.Schema | None = None) -> None:
-    """Replace the labels columns of the labels file ``path`` (written without a model)
-    by ``scores`` of its ``valid`` rows, atomically; the pass-through columns and the
-    other ``shoal.*`` metadata stay. ``valid`` None: every row (the count must agree).
-    ``named`` adds the segment names where configured; ``passthrough``, the stream's
-    pass-through types, reads a CSV file's columns back as they were written. Raises
-    ValueError when the rows do not match the scores."""
+def relabelled_table(path: Path, fmt: str, valid: np.ndarray | None, scores,
+                     unusual_below: float, model_version: int,
+                     log_jacobian: np.ndarray | None = None,
+                     passthrough: pa.Schema | None = None) -> tuple[pa.Table, dict]:
+    """The labels file ``path`` (written without a model) with its labels columns
+    replaced by ``scores`` of its ``valid`` rows, and its ``shoal.*`` metadata with the
+    new model version (the caller writes them back, e.g. with :class:`LabelsFile`); the
+    pass-through columns and the other metadata stay. ``valid`` None: every row (the
+    count must agree). ``passthrough``, the stream's pass-through types, reads a CSV
+    file's columns back as they were written. Raises ValueError when the rows do not
+    match the scores."""
     if fmt == "parquet":
         table = pq.read_table(path)
     else:
@@ -182,7 +185,7 @@ def relabel_file(path: Path, fmt: str, valid: np.ndarray | None, scores,
     new = labels_table(passthrough, valid, scores.segment, scores.confidence,
                        scores.log_density, unusual_below, model_version, log_jacobian,
                        observed=observed)
-    write_labels_stream(list(named([new])), path, fmt, lambda: meta, threaded=False)
+    return new, meta
 
 
 def fsync_dir(path: Path) -> None:
@@ -260,11 +263,10 @@ def write_labels_stream(tables: Iterable[pa.Table], target: Path, fmt: str,
     exactly once whatever the format, and only if a table arrives: as the first table
     is written when ``ready()`` says it can answer without waiting (no ``ready``:
     always), else after the first later table for which it can, else once the last
-    table is written. So a caller whose metadata waits for something slow (the input's
-    content hash) never holds up the tables, and may still refuse the write early (an
-    error raised by ``metadata()`` is raised here and the temp file removed). A Parquet
-    file is the same, byte for byte, whenever the metadata was asked
-    (:func:`_late_metadata`).
+    table is written; an error raised by ``metadata()`` is raised here and the temp file
+    removed. A Parquet file is the same, byte for byte, whenever the metadata was asked
+    (:func:`_late_metadata`). Ingest writes with :class:`LabelsFile` instead, which is
+    handed the tables and, at the end, the metadata.
 
     The tables are made in a worker thread (:class:`~shoal.daemon.files.readers.prefetch`)
     while this thread encodes and writes the ones made before (pyarrow releases the
@@ -362,3 +364,131 @@ def _late_metadata(writer: pq.ParquetWriter, meta: dict) -> None:
     kv = dict(schema.metadata)
     kv[b"ARROW:schema"] = base64.b64encode(schema.serialize().to_pybytes())
     writer.add_key_value_metadata(kv)
+
+
+class LabelsFile:
+    """A labels file written table by table under a temporary name, then named at the end.
+
+    The caller's thread hands over finished tables (:meth:`write_all`) and, once the
+    input is decided, the ``shoal.*`` metadata and the final name (:meth:`keep`); a file
+    not kept (the input turned out to be a duplicate, or an error ended it) is removed
+    when the ``with`` block is left. The writer knows nothing of where the tables come
+    from: it never calls back. With ``threaded``, a thread of its own encodes and
+    writes the tables (pyarrow releases the interpreter lock) while the caller makes
+    the next ones, at most a few tables behind; without, the caller's thread writes
+    them. A Parquet file gets its metadata as the writer closes (:func:`_late_metadata`:
+    the same bytes as a file opened with it), a row group per table, zstd-compressed,
+    the encodings of :func:`write_labels_stream`.
+    """
+
+    def __init__(self, target: Path, fmt: str, sync_folder: bool = True,
+                 threaded: bool = True):
+        self.target = Path(target)
+        self.fmt = fmt
+        self.sync_folder = sync_folder
+        self._tmp = self.target.with_name(f".{self.target.name}.{os.getpid()}.tmp")
+        self._file: BinaryIO | None = None
+        self._writer = None
+        self._queue: queue.Queue | None = queue.Queue(maxsize=_TABLES_AHEAD) \
+            if threaded else None
+        self._thread: threading.Thread | None = None
+        self._error: BaseException | None = None
+        self._kept: Path | None = None
+        self._abandoned = False   # left without keep(): tables still queued are dropped
+
+    def __enter__(self) -> "LabelsFile":
+        fd = os.open(self._tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_NOFOLLOW
+                     | os.O_CLOEXEC, OUTPUT_MODE)
+        try:
+            os.fchmod(fd, OUTPUT_MODE)
+            self._file = os.fdopen(fd, "wb")
+        except BaseException:
+            os.close(fd)
+            self._discard()
+            raise
+        if self._queue is not None:
+            self._thread = threading.Thread(target=self._drain, name="shoal-labels",
+                                            daemon=True)
+            self._thread.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._abandoned = self._kept is None
+        self._stop_thread()
+        if self._kept is None:
+            with contextlib.suppress(Exception):
+                if self._writer is not None:
+                    self._writer.close()
+            with contextlib.suppress(OSError):
+                self._file.close()
+            self._discard()
+
+    def write_all(self, tables: Iterable[pa.Table]) -> None:
+        """Write ``tables`` (all of one schema) in order; an error of the writing
+        thread is raised here, at the latest by :meth:`keep`."""
+        for table in tables:
+            if self._queue is None:
+                self._write(table)
+                continue
+            while True:
+                if self._error is not None:
+                    raise self._error
+                try:
+                    self._queue.put(table, timeout=0.05)
+                    break
+                except queue.Full:
+                    continue
+
+    def keep(self, metadata: dict, final: Path | None = None) -> Path:
+        """Finish the file with ``metadata`` (Parquet schema metadata) and rename it to
+        ``final`` (in the same folder; default ``target``) atomically; returns it."""
+        self._stop_thread()
+        if self._error is not None:
+            raise self._error
+        if self._writer is not None:
+            if self.fmt == "parquet":
+                _late_metadata(self._writer, metadata)
+            self._writer.close()
+        self._file.flush()
+        os.fsync(self._file.fileno())
+        self._file.close()
+        final = self.target if final is None else Path(final)
+        os.replace(self._tmp, final)
+        self._kept = final
+        if self.sync_folder:
+            fsync_dir(final.parent)
+        return final
+
+    def _write(self, table: pa.Table) -> None:
+        if self._writer is None:
+            self._writer = _open_writer(self._file, table.schema, self.fmt, None)
+        self._writer.write_table(table)
+
+    def _drain(self) -> None:
+        while True:
+            table = self._queue.get()
+            if table is None:
+                return
+            if self._error is not None or self._abandoned:
+                continue   # taken to unblock the caller (who sees the error), not written
+            try:
+                self._write(table)
+            except BaseException as exc:   # raised in the caller's thread
+                self._error = exc
+
+    def _stop_thread(self) -> None:
+        if self._thread is None:
+            return
+        while True:
+            try:
+                self._queue.put(None, timeout=0.05)
+                break
+            except queue.Full:
+                if not self._thread.is_alive():
+                    break
+        self._thread.join()
+        self._thread = None
+
+    def _discard(self) -> None:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(self._tmp)

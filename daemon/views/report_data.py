@@ -26,7 +26,7 @@ from shoal.core import Mixture
 from shoal.daemon.errors import InputRejected, UsageError
 from shoal.daemon.files.layout import Layout
 from shoal.daemon.files.readers import read_input
-from shoal.daemon.ingest.pipeline import open_input
+from shoal.daemon.files.opening import open_input
 from shoal.daemon.intake.gate import input_kind
 from shoal.daemon.model.contract import settings_of_model
 from shoal.daemon.model.transforming import centres, from_meta

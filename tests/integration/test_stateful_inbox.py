@@ -26,7 +26,8 @@ from hypothesis import HealthCheck, settings
 from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, invariant, precondition, rule
 
-import shoal.daemon.ingest.pipeline as pipeline_module
+import shoal.daemon.ingest.commit as commit_module
+from shoal.daemon.files.writer import LabelsFile
 from drills import MTIME_BASE, synthetic_table, write_config
 
 DEEP = os.environ.get("SHOAL_DEEP") == "1"
@@ -120,8 +121,8 @@ class Inbox(RuleBasedStateMachine):
 
     def _arm(self, point: str):
         """Make the next input crash at ``point``; return the undo."""
-        pm, store = pipeline_module, self.store
-        saved = {"write_labels": pm.write_labels_stream, "move_out": pm.move_out,
+        cm, store = commit_module, self.store
+        saved = {"write_labels": LabelsFile.keep, "move_out": cm.move_out,
                  "commit_input": store.commit_input}
 
         def write_labels(*a, **k):
@@ -143,11 +144,11 @@ class Inbox(RuleBasedStateMachine):
                 raise Crash(point)
             return saved["move_out"](*a, **k)
 
-        pm.write_labels_stream, pm.move_out, store.commit_input = write_labels, move_out, \
+        LabelsFile.keep, cm.move_out, store.commit_input = write_labels, move_out, \
             commit_input
 
         def restore():
-            pm.write_labels_stream, pm.move_out = saved["write_labels"], saved["move_out"]
+            LabelsFile.keep, cm.move_out = saved["write_labels"], saved["move_out"]
             store.__dict__.pop("commit_input", None)
         return restore
 

@@ -12,6 +12,8 @@ import pytest
 
 from shoal.config import load_config
 from shoal.daemon.ingest import pipeline as pipeline_module
+from shoal.daemon.ingest import rows as rows_module
+from shoal.daemon.ingest import stages as stages_module
 from shoal.daemon.files import readers
 from shoal.daemon.cli.main import open_service_parts
 from drills import synthetic_table, write_config
@@ -23,7 +25,7 @@ SEED = 9
 @pytest.fixture(params=[True, False], ids=["threads", "inline"])
 def threaded(request, monkeypatch):
     """Inputs taken by overlapping threads (as large inputs are) or in one thread."""
-    monkeypatch.setattr(pipeline_module, "_THREADED_BYTES", 0 if request.param else 1 << 40)
+    monkeypatch.setattr(pipeline_module, "THREADED_BYTES", 0 if request.param else 1 << 40)
     return request.param
 
 
@@ -81,12 +83,12 @@ def test_frames_checked_against_a_model_range_refuse_the_rows_the_model_would(tm
         table = table.set_column(table.schema.get_field_index(name), name, pa.array(X[:, j]))
     pq.write_table(table, tmp_path / "many.parquet", row_group_size=333)
     settings = load_config(write_config(tmp_path))
-    sds = pipeline_module.MODEL_RANGE_SDS
+    sds = rows_module.MODEL_RANGE_SDS
     for center, scale, n_beyond in (
             (np.array([0.5, -1.0, 2.0]), np.full(3, 1e3 / sds), 3),
             (np.zeros(3), np.array([1e3, 0.6 * FEATURE_BOUND, 1e3]) / sds, 2)):
         mixture = type("Model", (), {"center": center, "scale": scale})
-        limit = pipeline_module._model_range(mixture)[1]
+        limit = rows_module.model_range(mixture)[1]
         with open(tmp_path / "many.parquet", "rb") as f:
             checked = list(iter_frames(f, "parquet", settings, rows=1024,
                                        model_range=(center, limit)))
@@ -100,7 +102,7 @@ def test_frames_checked_against_a_model_range_refuse_the_rows_the_model_would(tm
             assert a.beyond_range == int(far.sum())
             # the pipeline's own check of a frame read without the range agrees
             again = Frame(b.features, b.passthrough, b.valid.copy())
-            pipeline_module._mark_beyond_model(again, mixture)
+            rows_module.mark_beyond_model(again, mixture)
             np.testing.assert_array_equal(again.valid, a.valid)
         assert sum(fr.beyond_range for fr in checked) == n_beyond
 
@@ -108,7 +110,7 @@ def test_frames_checked_against_a_model_range_refuse_the_rows_the_model_would(tm
 def _learn_two_inputs(folder, monkeypatch, frame_rows, row_group_rows=None):
     """Two inputs (the first one ends the warm-up part-way) learned in frames of
     ``frame_rows``; returns the model's state arrays and the labels tables."""
-    monkeypatch.setattr(pipeline_module, "iter_frames",
+    monkeypatch.setattr(stages_module, "iter_frames",
                         functools.partial(readers.iter_frames, rows=frame_rows))
     settings = load_config(write_config(folder, warmup_rows=600))
     drops = []
@@ -152,7 +154,7 @@ def test_model_and_labels_hardly_depend_on_the_frame_size(tmp_path, monkeypatch)
 
 
 def test_a_reader_error_part_way_is_a_quarantine(tmp_path, monkeypatch, threaded):
-    monkeypatch.setattr(pipeline_module, "iter_frames",
+    monkeypatch.setattr(stages_module, "iter_frames",
                         functools.partial(readers.iter_frames, rows=500))
     settings = load_config(write_config(tmp_path, warmup_rows=600))
     good = tmp_path / "good.parquet"
@@ -246,7 +248,7 @@ def test_an_input_seen_before_is_learned_once_whatever_was_done_before_its_hash(
 def _huge_rows_then_normal(folder, monkeypatch, limit_sds):
     """Warm up, then an input with one finite row at ~1e40 among normal ones, then
     normal inputs across several refresh points; returns the inputs' results."""
-    monkeypatch.setattr(pipeline_module, "MODEL_RANGE_SDS", limit_sds)
+    monkeypatch.setattr(rows_module, "MODEL_RANGE_SDS", limit_sds)
     settings = load_config(write_config(folder, warmup_rows=600))
     tables = [synthetic_table(i, 3000, SEED) for i in range(5)]
     # One row far out in every feature: its outer product (rank one, ~1e80) drowns the

@@ -27,7 +27,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from shoal.daemon.ingest import pipeline as pipeline_module
+from shoal.daemon.ingest import rows as rows_module
 from drills import synthetic_table, write_config
 
 DEEP = os.environ.get("SHOAL_DEEP") == "1"
@@ -106,7 +106,7 @@ class Harness:
         # Once a model exists, rows beyond MODEL_RANGE_SDS warm-up standard deviations
         # of its pivot are invalid too (README, "Running the service").
         mixture = self.pipeline.state.mixture
-        reach = pipeline_module.MODEL_RANGE_SDS * mixture.scale
+        reach = rows_module.MODEL_RANGE_SDS * mixture.scale
         expected = [v is not None
                     and bool(np.all((np.abs(np.array(v) - mixture.center) <= reach)
                                     | np.isnan(np.array(v))))

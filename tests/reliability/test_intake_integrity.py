@@ -16,7 +16,7 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import pytest
 
-from shoal.daemon.ingest import pipeline as pipeline_module
+from shoal.daemon.ingest import stages as stages_module
 from shoal.daemon.files import readers
 from drills import InProcessService, synthetic_table, wait_until, write_config
 
@@ -43,7 +43,7 @@ def _csv_bytes(table: pa.Table) -> bytes:
 
 def _when_read(monkeypatch, name: str, action):
     """Run ``action()`` once the input called ``name`` has yielded its first frame."""
-    real = pipeline_module.iter_frames
+    real = stages_module.iter_frames
 
     def frames(f, *args, **kw):
         path = os.readlink(f"/proc/self/fd/{f.fileno()}")
@@ -54,7 +54,7 @@ def _when_read(monkeypatch, name: str, action):
                 first = False
                 action()
 
-    monkeypatch.setattr(pipeline_module, "iter_frames", frames)
+    monkeypatch.setattr(stages_module, "iter_frames", frames)
 
 
 def _ledger(store):
@@ -155,7 +155,7 @@ def test_an_unforeseen_failure_quarantines_that_input_and_commits_the_rest_of_it
     for i, name in enumerate(names):
         pacsv.write_csv(synthetic_table(i, 500, SEED), layout.inbox / name)
     real_frames = getattr(readers, "_iter_frames", None)
-    real_learn = pipeline_module.Pipeline._learn_chunks
+    real_learn = stages_module.learn_chunks
 
     def frames(f, *args, **kw):   # inside the reader, as a parser's own error would be
         bad = os.readlink(f"/proc/self/fd/{f.fileno()}").endswith("b.csv")
@@ -164,14 +164,14 @@ def test_an_unforeseen_failure_quarantines_that_input_and_commits_the_rest_of_it
                 raise KeyError("a parser's own error")
             yield frame
 
-    def learn(self, mixture, X, *args, **kw):
-        if where == "learn" and getattr(self, "_poisoned", False):
+    def learn(settings, mixture, X, *args, **kw):
+        if where == "learn" and getattr(pipeline, "_poisoned", False):
             raise TypeError("'<' not supported between instances of 'str' and 'float'")
-        return real_learn(self, mixture, X, *args, **kw)
+        return real_learn(settings, mixture, X, *args, **kw)
 
     if where == "read":
         monkeypatch.setattr(readers, "_iter_frames", frames)
-    monkeypatch.setattr(pipeline_module.Pipeline, "_learn_chunks", learn)
+    monkeypatch.setattr(stages_module, "learn_chunks", learn)
     real_one = pipeline._process_one
 
     def one(path, in_inbox):

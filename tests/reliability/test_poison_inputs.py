@@ -133,13 +133,13 @@ def test_poison_inputs_are_read_or_quarantined_and_watch_goes_on(tmp_path):
 # compiled library would): os._exit once reading it begins.
 _CRASHING = """
 import os, sys
-from shoal.daemon.ingest import pipeline
-real = pipeline.iter_frames
+from shoal.daemon.ingest import stages
+real = stages.iter_frames
 def frames(f, *args, **kw):
     if os.readlink(f"/proc/self/fd/{f.fileno()}").endswith("crash.csv"):
         os._exit(9)
     return real(f, *args, **kw)
-pipeline.iter_frames = frames
+stages.iter_frames = frames
 from shoal.daemon.cli.main import main
 sys.exit(main(sys.argv[1:]))
 """

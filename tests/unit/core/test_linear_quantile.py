@@ -2,7 +2,7 @@
 import numpy as np
 import pytest
 
-from shoal.daemon.ingest.pipeline import linear_quantile
+from shoal.core.quantile import linear_quantile
 
 
 @pytest.mark.parametrize("n", [1, 2, 3, 7, 100, 1001, 65_536])

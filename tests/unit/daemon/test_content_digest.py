@@ -33,7 +33,7 @@ SEED = 5
 @pytest.fixture(params=[True, False], ids=["threads", "inline"])
 def threaded(request, monkeypatch):
     """Inputs hashed in a thread beside the model (as large inputs are) or inline."""
-    monkeypatch.setattr(pipeline_module, "_THREADED_BYTES", 0 if request.param else 1 << 40)
+    monkeypatch.setattr(pipeline_module, "THREADED_BYTES", 0 if request.param else 1 << 40)
     return request.param
 
 

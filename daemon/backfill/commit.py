@@ -1,0 +1,102 @@
+"""The backfill's commit: every file's ledger row, the final checkpoint and its segment
+history in ONE state-store transaction.
+
+Refused files get their quarantine sidecar (the file stays where it is) and a
+ledger row; learned files advance the model version by one each, as the service
+counts them; duplicates are labelled, not learned. ``shoal watch`` on the same state
+continues from there and never takes those files again.
+"""
+from __future__ import annotations
+
+import logging
+from pathlib import Path
+
+from shoal.config import Settings
+from shoal.daemon.backfill.plan import BackfillError, FileFacts
+from shoal.daemon.files.layout import Layout
+from shoal.daemon.files.quarantine import quarantine
+from shoal.daemon.files.writer import labels_name
+from shoal.daemon.ingest.learning import history_rows
+from shoal.daemon.runtime.logs import log_event
+from shoal.daemon.state.store import Checkpoint, HistoryRow, LedgerEntry, StateStore
+
+__all__ = ["commit_history", "commit_all"]
+
+
+def commit_history(settings: Settings, layout: Layout, store: StateStore,
+                   facts: list[FileFacts], learned: list[FileFacts],
+                   duplicates: list[FileFacts], refused: list[FileFacts], mixture,
+                   extra: dict, version: int, clear_warmup: bool, seen_at: float,
+                   now: float, labelled: bool, schema: str | None) -> int:
+    """Quarantine ``refused`` (sidecars only) and commit every file of ``facts`` with the
+    model ``mixture`` at ``version``; returns the model version committed."""
+    outcome = {f.index: "committed" for f in learned}
+    outcome.update({f.index: "duplicate" for f in duplicates})
+    for f in refused:
+        quarantine(Path(f.path), layout.quarantine, f.reason, f.detail, move=False,
+                   now=now, facts={"digest": f.digest, "size": f.size,
+                                   "digest_algorithm": f.digest_algorithm if f.digest
+                                   else None})
+        log_event("input_quarantined", logging.WARNING, file=f.name, reason=f.reason,
+                  detail=f.detail)
+    fmt = settings.output.format
+    entries = []
+    for f in facts:
+        if f.reason is not None:
+            entries.append((LedgerEntry(digest=f.digest, name=f.name, size=f.size,
+                                        outcome="quarantined",
+                                        reason=f"{f.reason}: {f.detail}",
+                                        seen_at=seen_at, finished_at=now), False))
+        elif f.index in outcome:
+            entries.append((LedgerEntry(digest=f.digest, name=f.name, size=f.size,
+                                        outcome=outcome[f.index], rows=f.rows,
+                                        rows_invalid=f.rows_invalid,
+                                        labels=labels_name(f.name, f.digest, fmt)
+                                        if labelled else None,
+                                        seen_at=seen_at, finished_at=now),
+                            outcome[f.index] == "committed"))
+    checkpoint = history = None
+    if learned and mixture is not None:
+        born = dict(extra.get("segment_born", {}))
+        for sid in mixture.ids.tolist():
+            born.setdefault(str(sid), {"version": version, "time": now})
+        extra = dict(extra, segment_born=born)
+        arrays, meta = mixture.to_state()
+        checkpoint = Checkpoint(version, arrays, meta, extra)
+        history = history_rows(mixture, extra)
+    return commit_all(store, entries, checkpoint, history or [], clear_warmup, schema)
+
+
+def commit_all(store: StateStore, entries: list[tuple[LedgerEntry, bool]],
+               checkpoint: Checkpoint | None, history: list[HistoryRow],
+               clear_warmup: bool, labels_schema: str | None = None) -> int:
+    """Every ledger row, the checkpoint and its history in ONE transaction.
+
+    The store has no public call for many inputs at once (``commit_input`` is one input
+    per transaction), so this uses its row writers inside one of its transactions.
+    """
+
+    now = store.clock()
+    with store._transaction():
+        version = store.model_version
+        for entry, learned in entries:
+            if entry.outcome == "quarantined":
+                store._insert_entry(entry)
+                continue
+            version += 1 if learned else 0
+            store._insert_entry(entry, model_version=version)
+        if checkpoint is not None and checkpoint.version != version:
+            raise BackfillError(f"checkpoint version {checkpoint.version} does not match "
+                                f"the ledger's {version}")
+        store._set_meta("model_version", str(version))
+        if clear_warmup:
+            store.db.execute("DELETE FROM warmup")
+            store.db.execute("DELETE FROM warmup_valid")
+            store.db.execute("DELETE FROM warmup_duplicates")
+        if checkpoint is not None:
+            store._insert_checkpoint(checkpoint, now)
+        store._insert_history(history, version, now)
+        if labels_schema is not None:
+            store.db.execute("INSERT OR IGNORE INTO meta (key, value) VALUES "
+                             "('labels_schema', ?)", (labels_schema,))
+    return version
