@@ -12,7 +12,7 @@ import logging
 from pathlib import Path
 
 from shoal.config import Settings
-from shoal.daemon.backfill.plan import BackfillError, FileFacts
+from shoal.daemon.backfill.plan import FileFacts
 from shoal.daemon.files.layout import Layout
 from shoal.daemon.files.quarantine import quarantine
 from shoal.daemon.files.writer import labels_name
@@ -70,33 +70,6 @@ def commit_history(settings: Settings, layout: Layout, store: StateStore,
 def commit_all(store: StateStore, entries: list[tuple[LedgerEntry, bool]],
                checkpoint: Checkpoint | None, history: list[HistoryRow],
                clear_warmup: bool, labels_schema: str | None = None) -> int:
-    """Every ledger row, the checkpoint and its history in ONE transaction.
-
-    The store has no public call for many inputs at once (``commit_input`` is one input
-    per transaction), so this uses its row writers inside one of its transactions.
-    """
-
-    now = store.clock()
-    with store._transaction():
-        version = store.model_version
-        for entry, learned in entries:
-            if entry.outcome == "quarantined":
-                store._insert_entry(entry)
-                continue
-            version += 1 if learned else 0
-            store._insert_entry(entry, model_version=version)
-        if checkpoint is not None and checkpoint.version != version:
-            raise BackfillError(f"checkpoint version {checkpoint.version} does not match "
-                                f"the ledger's {version}")
-        store._set_meta("model_version", str(version))
-        if clear_warmup:
-            store.db.execute("DELETE FROM warmup")
-            store.db.execute("DELETE FROM warmup_valid")
-            store.db.execute("DELETE FROM warmup_duplicates")
-        if checkpoint is not None:
-            store._insert_checkpoint(checkpoint, now)
-        store._insert_history(history, version, now)
-        if labels_schema is not None:
-            store.db.execute("INSERT OR IGNORE INTO meta (key, value) VALUES "
-                             "('labels_schema', ?)", (labels_schema,))
-    return version
+    """Every ledger row, the checkpoint and its history in ONE transaction
+    (:meth:`StateStore.commit_many`)."""
+    return store.commit_many(entries, checkpoint, history, clear_warmup, labels_schema)

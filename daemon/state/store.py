@@ -409,6 +409,39 @@ class StateStore:
             clear_warmup=clear_warmup, history=history, alerts=alerts,
             rebaseline=rebaseline)])[0]
 
+    def commit_many(self, entries: Iterable[tuple[LedgerEntry, bool]],
+                    checkpoint: Checkpoint | None, history: Iterable[HistoryRow],
+                    clear_warmup: bool, labels_schema: str | None = None) -> int:
+        """Commit a history of inputs learned elsewhere (``shoal backfill``) in ONE
+        transaction: every ledger row (``(entry, learned)``; a learned input advances the
+        model version by one, a quarantined one records no version), one checkpoint at
+        the version reached, its segment history, and the stream's labels schema if none
+        is recorded yet. Returns the model version committed; a checkpoint whose version
+        is not the one reached is refused (:class:`StateError`) and nothing is written."""
+        now = self.clock()
+        with self._transaction():
+            version = self.model_version
+            for entry, learned in entries:
+                if entry.outcome == "quarantined":
+                    self._insert_entry(entry)
+                    continue
+                version += 1 if learned else 0
+                self._insert_entry(entry, model_version=version)
+            if checkpoint is not None and checkpoint.version != version:
+                raise StateError(f"checkpoint version {checkpoint.version} does not match "
+                                 f"the ledger's {version}")
+            self._set_meta("model_version", str(version))
+            if clear_warmup:
+                for table in ("warmup", "warmup_valid", "warmup_duplicates"):
+                    self.db.execute(f"DELETE FROM {table}")
+            if checkpoint is not None:
+                self._insert_checkpoint(checkpoint, now)
+            self._insert_history(list(history), version, now)
+            if labels_schema is not None:
+                self.db.execute("INSERT OR IGNORE INTO meta (key, value) VALUES "
+                                "('labels_schema', ?)", (labels_schema,))
+        return version
+
     def commit_inputs(self, commits: Iterable[InputCommit]) -> list[int]:
         """Commit several inputs, in order, in ONE transaction: all of them or none.
 
