@@ -44,27 +44,30 @@ import numpy as np
 from shoal.config import Settings
 from shoal.core import Mixture
 from shoal.core.distances import GaussianSet, hotelling_t2_pvalue
-from shoal.core.drift import (
-    WHOLE_MODEL,
-    Baseline,
+from shoal.core.baseline import baseline_from_sums
+from shoal.core.drift import WHOLE_MODEL, Baseline, evaluate_bounds, explain
+from shoal.core.window_statistics import (
+    NEGLIGIBLE,
+    WindowSums,
     add_segment_scatter,
-    evaluate_bounds,
-    explain,
-    mean_shift_noise,
-    spread_noise,
-    weight_noise,
+    piece_sums,
+    segment_statistics,
 )
 from shoal.daemon.runtime.logs import log_event
-from shoal.daemon.files.times import iso_utc
 from shoal.daemon.model.transforming import moves_in_data_units
-from shoal.daemon.segments.missing_drift import (
-    add_gap_sums,
-    gap_piece,
-    merge_gap_sums,
-    missing_note,
-    missing_share_statistics,
-    observed_feature_means,
-    window_shares,
+from shoal.daemon.segments.missing_drift import add_gap_sums, gap_piece, missing_note, window_shares
+from shoal.daemon.segments.window_sums import (
+    add_lists,
+    add_piece_sums,
+    aligned_sums,
+    baseline_missing_shares,
+    empty_window,
+    files_of,
+    merge_window_sums,
+    span,
+    time_kind,
+    time_range,
+    widen,
 )
 
 __all__ = ["DriftMonitor", "InputWatch", "alert_id", "STATISTIC_UNITS", "SEGMENT_STATISTICS",
@@ -108,83 +111,6 @@ def _num(x) -> float | None:
 
 def _fmt(x: float) -> str:
     return f"{x:.4g}"
-
-
-# ------------------------------------------------------------------------- window sums
-
-
-_NEGLIGIBLE = 1e-12   # responsibilities below this are left out of a window's second moments
-
-
-def _positive_definite(mats: np.ndarray) -> np.ndarray:
-    """Which of a stack of symmetric matrices are positive definite: one batched Cholesky
-    when all are (the usual case), eigenvalues only when one is not."""
-    try:
-        np.linalg.cholesky(mats)
-        return np.ones(mats.shape[0], dtype=bool)
-    except np.linalg.LinAlgError:
-        return np.all(np.linalg.eigvalsh(mats) > 0, axis=1)
-
-
-def _empty_window(index: int) -> dict:
-    return {"index": index, "n": 0, "ld": 0.0, "ld2": 0.0, "segments": {},
-            "unusual": {"n": 0, "sum": None, "by_segment": {}},
-            "files": [], "versions": [None, None], "time": [None, None]}
-
-
-def _add(old, new):
-    return (np.asarray(old) + new).tolist() if old is not None else np.asarray(new).tolist()
-
-
-def _add_arrays(old, new):
-    return np.asarray(old) + new if old is not None else new
-
-
-def _add_sums(segments: dict, sums: dict, add) -> None:
-    """Add a piece accumulator's per-segment sums (arrays by segment position) into
-    ``segments`` (by segment id), combining matrices with ``add``."""
-    for k, sid in enumerate(sums["ids"]):
-        if sums["T"][k] <= 0.0:
-            continue
-        acc = segments.setdefault(str(sid), {"T": 0.0, "Q": 0.0, "M": None, "S": None})
-        acc["T"] += float(sums["T"][k])
-        acc["Q"] += float(sums["Q"][k])
-        acc["M"] = add(acc["M"], sums["M"][k])
-        acc["S"] = add(acc["S"], sums["S"][k])
-        merge_gap_sums(acc, sums, k, add)
-
-
-def _widen(pair, lo, hi):
-    a, b = pair
-    return [lo if a is None or lo < a else a, hi if b is None or hi > b else b]
-
-
-def _time_range(times):
-    """(first, last) of a piece's times as JSON-able values, or None."""
-    if times is None or len(times) == 0:
-        return None
-    t = np.asarray(times)
-    if t.dtype == object or t.dtype.kind == "U":
-        # text (CSV): numbers if they all parse as numbers (as the same column read from
-        # Parquet gives), else ISO times if they parse
-        values = [str(v) for v in t.tolist() if v is not None]
-        try:
-            t = np.array([float(v) for v in values])
-        except ValueError:
-            try:
-                t = np.array([v.rstrip("Z") for v in values], dtype="datetime64[ms]")
-            except ValueError:
-                pass
-    if np.issubdtype(t.dtype, np.datetime64):
-        t = t[~np.isnat(t)]
-        if not t.size:
-            return None
-        return iso_utc(t.min()), iso_utc(t.max())
-    if np.issubdtype(t.dtype, np.number):
-        t = t[np.isfinite(t.astype(np.float64))]
-        return (float(t.min()), float(t.max())) if t.size else None
-    values = [str(v) for v in t.tolist() if v is not None]
-    return (min(values), max(values)) if values else None
 
 
 # ----------------------------------------------------------------------------- monitor
@@ -260,7 +186,7 @@ class InputWatch:
         if state is not None and state.get("format") != STATE_FORMAT:
             raise ValueError(f"drift state has format {state.get('format')!r}")
         self._state = json.loads(json.dumps(state)) if state is not None else None
-        self.last_values: dict[str, dict[str, float]] = {}
+        self._last = None   # the last window's (values, noise, bounds)
         self._ref_cache = None   # (baseline dict, Baseline, GaussianSet)
         # the open window's per-segment sums of the pieces since the last flush, as arrays
         # (adding each piece to the state's JSON lists cost more than computing it)
@@ -315,7 +241,7 @@ class InputWatch:
         win = st["window"]
         if win is None or win["index"] != index:
             self._flush()
-            win = st["window"] = _empty_window(index)
+            win = st["window"] = empty_window(index)
         times = None if self.times is None else self.times[start:start + len(X)]
         self._accumulate(win, mixture, X, scores, times)
         if end_row % w == 0:
@@ -343,13 +269,11 @@ class InputWatch:
             sums = self._pending = {"window": win, "ids": ids, "T": np.zeros(K),
                                     "Q": np.zeros(K), "M": np.zeros((K, D)),
                                     "S": np.zeros((K, D, D))}
-        sums["T"] += resp_kn.sum(axis=1)
-        sums["Q"] += np.einsum("kn,kn->k", resp_kn, resp_kn)
-        sums["M"] += resp_kn @ Xc
-        # Second moments from the rows that carry weight for each segment: rows under
-        # _NEGLIGIBLE add less than that share of a row each, far below the statistics'
-        # noise, and on separated segments most rows are skipped.
-        add_segment_scatter(sums["S"], Xc, resp_kn if gaps is None else gaps.resp, _NEGLIGIBLE)
+        T, Q, M = piece_sums(resp_kn, Xc)
+        sums["T"] += T
+        sums["Q"] += Q
+        sums["M"] += M
+        add_segment_scatter(sums["S"], Xc, resp_kn if gaps is None else gaps.resp, NEGLIGIBLE)
         if gaps is not None:
             add_gap_sums(sums, gaps)
         limit = self._state.get("baseline_info", {}) or {}
@@ -359,17 +283,17 @@ class InputWatch:
             if mask.any():
                 u = win["unusual"]
                 u["n"] += int(mask.sum())
-                u["sum"] = _add(u["sum"], Xc[mask].sum(axis=0))
+                u["sum"] = add_lists(u["sum"], Xc[mask].sum(axis=0))
                 segs, counts = np.unique(scores.segment[mask], return_counts=True)
                 for sid, c in zip(segs.tolist(), counts.tolist()):
                     u["by_segment"][str(sid)] = u["by_segment"].get(str(sid), 0) + int(c)
         if self.file not in win["files"]:
             win["files"].append(self.file)
-        win["versions"] = _widen(win["versions"], self.version, self.version)
-        span = _time_range(times)
+        win["versions"] = widen(win["versions"], self.version, self.version)
+        span = time_range(times)
         if span is not None:
-            if win["time"][0] is None or _time_kind(win["time"][0]) == _time_kind(span[0]):
-                win["time"] = _widen(win["time"], *span)
+            if win["time"][0] is None or time_kind(win["time"][0]) == time_kind(span[0]):
+                win["time"] = widen(win["time"], *span)
             else:   # numbers after times or text, or the other way: not comparable
                 win["times_dropped"] = win.get("times_dropped", 0) + len(X)
                 self._times_dropped += len(X)
@@ -393,19 +317,17 @@ class InputWatch:
         """Add the pending per-segment sums to their window's JSON-able sums."""
         sums, self._pending = self._pending, None
         if sums is not None:
-            _add_sums(sums["window"]["segments"], sums, _add)
+            add_piece_sums(sums["window"]["segments"], sums)
 
-    def _window_segments(self, win) -> dict:
-        """A closing window's per-segment sums: those of earlier inputs (JSON lists) and
-        the pending ones of this input added, as arrays, without putting them into the
-        state (a closed window is not kept): values as after :meth:`_flush`."""
+    def _window_sums(self, win, ids) -> WindowSums:
+        """A closing window's sums as arrays in the order of ``ids``: those of earlier
+        inputs (JSON lists) and the pending ones of this input added, without putting
+        them into the state (a closed window is not kept): values as after
+        :meth:`_flush`."""
         if self._pending is not None and self._pending["window"] is not win:
             self._flush()
-        sums, self._pending = self._pending, None
-        segments = {sid: dict(acc) for sid, acc in win["segments"].items()}
-        if sums is not None:
-            _add_sums(segments, sums, _add_arrays)
-        return segments
+        pending, self._pending = self._pending, None
+        return aligned_sums(win["segments"], pending, ids, len(self.monitor.features))
 
     # -- windows ---------------------------------------------------------------------
     def _window_info(self, win, first_window_row) -> dict:
@@ -419,9 +341,6 @@ class InputWatch:
         st = self._state
         if st.get("rebase") is not None or st["baseline"] is None:
             self._flush()    # sums kept for the re-baseline (or not needed)
-            segments = None
-        else:
-            segments = self._window_segments(win)
         info = self._window_info(win, first_window_row)
         keep = max(self.drift.persist, self.drift.resolve_persist)
         st["recent"] = (st["recent"] + [info])[-keep:]
@@ -434,7 +353,7 @@ class InputWatch:
                 self._take_baseline(mixture, st["last_ld"], info)
                 st["baseline_info"]["missing_share"] = window_shares(win["segments"])
             return
-        self._evaluate(win, info, segments)
+        self._evaluate(win, info)
 
     def _take_baseline(self, mixture: Mixture, log_density, info, ref=None) -> None:
         st = self.state
@@ -477,19 +396,22 @@ class InputWatch:
         """Add a window to the re-baseline sums; take the baseline once there are enough."""
         st = self.state
         rebase = st["rebase"]
-        sums = rebase["sums"] = _merge_sums(rebase["sums"], win)
+        sums = rebase["sums"] = merge_window_sums(rebase["sums"], win)
         if sums["n"] < max(self.drift.settle_rows, self.window_rows):
             return
-        ref = _baseline_from_sums(sums, mixture)
+        ref = baseline_from_sums(mixture, aligned_sums(sums["segments"], None, mixture.ids.tolist(),
+                                                        mixture.n_features),
+                                 sums["n"], sums["ld"], np.asarray(sums["center"]))
         st["rebase"] = None
         self._take_baseline(mixture, ref.log_density, info, ref=ref)
         st["baseline_info"]["note"] = rebase["note"]
         st["baseline_info"]["missing_share"] = window_shares(sums["segments"])
 
-    def _evaluate(self, win, info, segments: dict | None = None) -> None:
-        st = self.state
+    def _evaluate(self, win, info) -> None:
         ref, factors = self._baseline()
-        values, noise, detail = self._statistics(win, ref, factors, segments)
+        values, noise, detail = self._statistics(win, ref, factors,
+                                                 self._window_sums(win, ref.ids.tolist()))
+        st = self._state
         at = win["index"]
         for key in list(st["cool"]):
             if st["cool"][key] < at:
@@ -503,12 +425,7 @@ class InputWatch:
             values, noise, bounds, st["bounds"], noise_multiple=d.noise_multiple,
             persist=d.persist, resolve_fraction=d.resolve_fraction,
             resolve_persist=d.resolve_persist, at=at)
-        self.last_values = {}
-        for (seg, stat), v in values.items():
-            bound = bounds.get((seg, stat), bounds.get(stat))
-            self.last_values.setdefault(str(seg), {})[stat] = {
-                "value": _num(_shown(stat, v)), "noise": _num(_shown_noise(stat, noise[(seg, stat)])),
-                "bound": None if bound is None else _num(_shown(stat, bound))}
+        self._last = (values, noise, bounds)
         for e in events:
             self._event(e, detail, ref, info)
 
@@ -520,84 +437,34 @@ class InputWatch:
             self._ref_cache = (doc, ref, GaussianSet(ref.means, ref.covariances))
         return self._ref_cache[1], self._ref_cache[2]
 
-    def _statistics(self, win, ref: Baseline, factors: GaussianSet,
-                    segments: dict | None = None):
-        """(values, noise, detail) of one window (its per-segment sums ``segments``, or
-        ``win["segments"]``); the core's kernels are called once per window on all
-        segments together."""
-        if segments is None:
-            segments = win["segments"]
-        d = len(ref.means[0])
-        n = win["n"]
-        center = np.asarray(win["center"])
+    def _statistics(self, win, ref: Baseline, factors: GaussianSet, sums: WindowSums):
+        """(values, noise, detail) of one window from its sums (rows in the baseline's
+        order); the core computes every segment's statistics together."""
+        ids = ref.ids.tolist()
         features = self.monitor.features
-        cov_type = ref.covariance
-        values, noise, detail = {}, {}, {}
-        w_noise = np.atleast_1d(weight_noise(ref.weights, float(n), ref.total_n_eff))
-        seen, n_effs, means, covs = [], [], [], []
-        for k, sid in enumerate(ref.ids.tolist()):
-            acc = segments.get(str(sid))
-            w_ref = float(ref.weights[k])
-            share = (acc["T"] / n) if acc else 0.0
-            values[(sid, "weight_change")] = abs(share - w_ref)
-            noise[(sid, "weight_change")] = float(w_noise[k])
-            detail[sid] = {"share": share, "baseline_weight": w_ref, "n_eff": 0.0}
-            if share < _SHAPE_MIN_SHARE * w_ref:
-                # a segment that lost most of its rows: what is left is mostly the
-                # neighbours' tails, whose mean and spread say nothing about it
-                for stat in self._shape_statistics():
+        wants_features = self.monitor.wants_feature_shift()
+        stats = segment_statistics(
+            ref, factors, win["n"], sums, win["center"], min_share=_SHAPE_MIN_SHARE,
+            baseline_missing=baseline_missing_shares(
+                (self._state.get("baseline_info") or {}).get("missing_share"), ids,
+                len(features)),
+            feature_shift=wants_features)
+        values, noise = {}, {}
+        shape = self._shape_statistics()
+        for k, sid in enumerate(ids):
+            values[(sid, "weight_change")] = float(stats.weight_change[k])
+            noise[(sid, "weight_change")] = float(stats.weight_noise[k])
+            if stats.low[k]:
+                for stat in shape:
                     values[(sid, stat)], noise[(sid, stat)] = 0.0, 0.0
-                continue
-            if not acc or acc["T"] <= 0.0 or acc["Q"] <= 0.0:
-                continue
-            dev = np.asarray(acc["M"]) / acc["T"]
-            seen.append(k)
-            n_effs.append(acc["T"] * acc["T"] / acc["Q"])
-            means.append(center + dev)
-            covs.append(np.asarray(acc["S"]) / acc["T"] - np.outer(dev, dev))
-        missing_share_statistics(segments, ref.ids.tolist(), ref.n_eff,
-                                 (self._state.get("baseline_info") or {}).get("missing_share"),
-                                 d, values, noise, detail)
-        if not seen:
-            return self._fit_statistics(win, ref, values, noise, detail)
-        at = np.array(seen)
-        ids = ref.ids[at].tolist()
-        n_effs, means, covs = np.array(n_effs), np.array(means), np.array(covs)
-        ref_n = ref.n_eff[at]
-        shifts = factors.mahalanobis(means, at)
-        shift_noise = np.atleast_1d(mean_shift_noise(n_effs, d, ref_n))
-        for i, sid in enumerate(ids):
-            values[(sid, "mean_shift")] = float(shifts[i])
-            noise[(sid, "mean_shift")] = float(shift_noise[i])
-            detail[sid].update(n_eff=float(n_effs[i]), mean=means[i], cov=covs[i],
-                               t2=float(n_effs[i] * shifts[i] ** 2))
-        diag = np.diagonal(covs, axis1=1, axis2=2)
-        if cov_type == "diag":
-            compared = diag[:, :, None] * np.eye(d)
-        elif cov_type == "spherical":
-            compared = diag.mean(axis=1)[:, None, None] * np.eye(d)
-        else:
-            compared = covs
-        usable = (n_effs > d + 1) & np.all(diag > 0, axis=1) & _positive_definite(compared)
-        if usable.any():
-            log_ratio = factors.log_variance_ratio(compared[usable], at[usable])
-            spread = np.atleast_1d(spread_noise(n_effs[usable], d, cov_type, ref_n[usable]))
-            for i, sid in enumerate(np.asarray(ids)[usable].tolist()):
-                values[(sid, "spread_ratio")] = abs(float(log_ratio[i])) / (2 * d)
-                noise[(sid, "spread_ratio")] = float(spread[i]) / (2 * d)
-        if self.monitor.wants_feature_shift():
-            ref_sd = np.sqrt(np.diagonal(ref.covariances[at], axis1=1, axis2=2))
-            # each feature over the rows that observed it (missing_drift)
-            f_means, f_neff = observed_feature_means(segments, ids, center, means, n_effs)
-            z = np.abs(f_means - ref.means[at]) / ref_sd
-            inv_ref = np.where(np.isinf(ref_n), 0.0, 1.0 / ref_n)
-            with np.errstate(divide="ignore"):
-                f_noise = np.sqrt(1.0 / f_neff + inv_ref[:, None])
-            for i, sid in enumerate(ids):
-                for j, f in enumerate(features):
-                    if f_neff[i, j] > 0.0:
-                        values[(sid, _feature_stat(f))] = float(z[i, j])
-                        noise[(sid, _feature_stat(f))] = float(f_noise[i, j])
+        _put(values, noise, ids, "missing_share", stats.missing_share, stats.missing_noise)
+        _put(values, noise, ids, "mean_shift", stats.mean_shift, stats.mean_shift_noise)
+        _put(values, noise, ids, "spread_ratio", stats.spread, stats.spread_noise)
+        if wants_features:
+            for j, f in enumerate(features):
+                _put(values, noise, ids, _feature_stat(f), stats.feature_shift[:, j],
+                     stats.feature_noise[:, j])
+        detail = _Details(ids, ref.weights, stats)
         return self._fit_statistics(win, ref, values, noise, detail)
 
     def _shape_statistics(self) -> list[str]:
@@ -643,8 +510,8 @@ class InputWatch:
                 "model_version": {"first": min(w["versions"][0] for w in windows),
                                   "last": self.version},
                 "rows": {"first": windows[0]["rows"][0], "last": info["rows"][1]},
-                "time": _span([w["time"] for w in windows]),
-                "inputs": _files(windows),
+                "time": span([w["time"] for w in windows]),
+                "inputs": files_of(windows),
                 "windows": {"first": e["first_at"], "last": e["at"],
                             "rows_each": self.window_rows},
                 "baseline": {k: v for k, v in (st["baseline_info"] or {}).items()
@@ -672,9 +539,9 @@ class InputWatch:
                 "peak": _num(_shown(stat, e["peak"])),
                 "model_version": {"first": base["model_version"]["first"], "last": self.version},
                 "rows": {"first": base["rows"]["first"], "last": info["rows"][1]},
-                "time": _span(([[base["time"]["first"], base["time"]["last"]]]
+                "time": span(([[base["time"]["first"], base["time"]["last"]]]
                                if base.get("time") else []) + [w["time"] for w in windows]),
-                "inputs": _files(windows),
+                "inputs": files_of(windows),
                 "explanation": self._explain(seg, stat, detail, ref),
             })
             st["cool"][key] = e["at"] + self.drift.cool_down_windows
@@ -786,53 +653,18 @@ class InputWatch:
 
     # -- outputs ---------------------------------------------------------------------
     def segment_drift(self) -> dict[str, dict]:
-        """Per segment id (str): the last window's statistics, noise and bounds."""
-        return self.last_values
-
-
-def _merge_sums(into: dict | None, win: dict) -> dict:
-    if into is None:
-        into = {"n": 0, "ld": 0.0, "segments": {}, "center": win["center"]}
-    into["n"] += win["n"]
-    into["ld"] += win["ld"]
-    for sid, acc in win["segments"].items():
-        old = into["segments"].setdefault(sid, {"T": 0.0, "Q": 0.0, "M": None, "S": None})
-        old["T"] += acc["T"]
-        old["Q"] += acc["Q"]
-        old["M"] = _add(old["M"], acc["M"])
-        old["S"] = _add(old["S"], acc["S"])
-        for key in ("miss", "miss2", "imputed"):
-            if acc.get(key) is not None:
-                old[key] = _add(old.get(key), acc[key])
-    return into
-
-
-def _baseline_from_sums(sums: dict, mixture: Mixture) -> Baseline:
-    """A baseline from the rows themselves; a segment with too few rows for a covariance
-    keeps the model's mean and covariance."""
-    model = Baseline.from_mixture(mixture)
-    d = mixture.n_features
-    center = np.asarray(sums["center"])
-    n = sums["n"]
-    weights, means = model.weights.copy(), model.means.copy()
-    covs, n_eff = model.covariances.copy(), model.n_eff.copy()
-    for k, sid in enumerate(model.ids.tolist()):
-        acc = sums["segments"].get(str(sid))
-        weights[k] = acc["T"] / n if acc else 0.0
-        if not acc or acc["Q"] <= 0 or acc["T"] ** 2 / acc["Q"] <= d + 1:
-            continue
-        dev = np.asarray(acc["M"]) / acc["T"]
-        cov = np.asarray(acc["S"]) / acc["T"] - np.outer(dev, dev)
-        if mixture.covariance == "diag":
-            cov = np.diag(np.diag(cov))
-        elif mixture.covariance == "spherical":
-            cov = np.eye(d) * np.diag(cov).mean()
-        if np.all(np.linalg.eigvalsh(cov) > 0):
-            means[k], covs[k] = center + dev, cov
-            n_eff[k] = acc["T"] ** 2 / acc["Q"]
-    return Baseline(ids=model.ids, weights=weights, means=means, covariances=covs,
-                     n_eff=n_eff, total_n_eff=float(n), log_density=sums["ld"] / n,
-                     covariance=mixture.covariance)
+        """Per segment id (str): the last window's statistics, noise and bounds (built
+        when asked, once per input, not at every window)."""
+        out: dict[str, dict] = {}
+        if self._last is None:
+            return out
+        values, noise, bounds = self._last
+        for (seg, stat), v in values.items():
+            bound = bounds.get((seg, stat), bounds.get(stat))
+            out.setdefault(str(seg), {})[stat] = {
+                "value": _num(_shown(stat, v)), "noise": _num(_shown_noise(stat, noise[(seg, stat)])),
+                "bound": None if bound is None else _num(_shown(stat, bound))}
+        return out
 
 
 def _moves(moved) -> str:
@@ -853,25 +685,38 @@ def _shown_noise(stat, v):
     return math.exp(v) if stat == "spread_ratio" and v is not None else v
 
 
-def _files(windows) -> list[str]:
-    out: list[str] = []
-    for w in windows:
-        for f in w["files"]:
-            if f not in out:
-                out.append(f)
-    return out
+def _put(values: dict, noise: dict, ids, stat: str, value: np.ndarray,
+         level: np.ndarray) -> None:
+    """``values``/``noise`` of ``stat`` for the segments where it was measured."""
+    for k in np.flatnonzero(~np.isnan(value)).tolist():
+        values[(ids[k], stat)] = float(value[k])
+        noise[(ids[k], stat)] = float(level[k])
 
 
-def _time_kind(value) -> str:
-    """Times in a window's range are numbers or text (ISO times); never both."""
-    return "number" if isinstance(value, (int, float)) and not isinstance(value, bool) \
-        else "text"
+class _Details(dict):
+    """Per segment id: what the explanations need of a window (share, effective rows,
+    mean, covariance, Hotelling's T^2, missing shares), built only for the segments an
+    alert is about."""
 
+    def __init__(self, ids, weights, stats):
+        super().__init__()
+        self._at = {sid: k for k, sid in enumerate(ids)}
+        self._weights = weights
+        self._stats = stats
 
-def _span(pairs):
-    pairs = [p for p in pairs if p]
-    if not pairs:
-        return None
-    kind = _time_kind(pairs[-1][0])   # the latest kind, if the column changed kind
-    pairs = [p for p in pairs if _time_kind(p[0]) == kind]
-    return {"first": min(p[0] for p in pairs), "last": max(p[1] for p in pairs)}
+    def get(self, seg, default=None):
+        if seg in self or seg not in self._at:
+            return super().get(seg, default)
+        k, s = self._at[seg], self._stats
+        info = {"share": float(s.share[k]), "baseline_weight": float(self._weights[k]),
+                "n_eff": 0.0}
+        if s.seen[k]:
+            info.update(n_eff=float(s.n_eff[k]), mean=s.means[k], cov=s.covs[k],
+                        t2=float(s.t2[k]))
+        if s.missing[k]:
+            j = int(s.missing_feature[k])
+            info["missing"] = {"feature": j, "share": float(s.missing_shares[k, j]),
+                               "baseline_share": float(s.missing_baseline[k, j]),
+                               "shares": s.missing_shares[k].tolist()}
+        self[seg] = info
+        return info
