@@ -16,6 +16,7 @@ Sums are additive, so a window may span inputs and be checkpointed between them.
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -25,7 +26,7 @@ from .drift_noise import mean_shift_noise, spread_noise, weight_noise
 
 __all__ = ["NEGLIGIBLE", "WindowSums", "SegmentStatistics", "add_segment_scatter",
            "piece_sums", "positive_definite", "projected_covariances",
-           "segment_statistics"]
+           "segment_statistics", "fit_statistics"]
 
 NEGLIGIBLE = 1e-12
 """Responsibilities at or below this are left out of a window's second moments: such
@@ -321,3 +322,30 @@ def segment_statistics(ref, factors, n_rows: int, sums: WindowSums, center, *,
         spread_noise=spread_n, missing=missing, missing_share=m_value,
         missing_noise=m_noise, missing_feature=m_feature, missing_shares=m_shares,
         missing_baseline=baseline_missing, feature_shift=f_shift, feature_noise=f_noise)
+
+
+def fit_statistics(ref_log_density: float, n_rows: int, ld_sum: float, ld2_sum: float):
+    """``fit_drop`` of a window from its log-density sums, with its standard error.
+
+    Parameters
+    ----------
+    ref_log_density : float
+        The baseline's mean log-density per row.
+    n_rows : int
+        Rows of the window.
+    ld_sum, ld2_sum : float
+        Sums of the rows' log-densities and of their squares.
+
+    Returns
+    -------
+    (value, noise, mean) : tuple of float, or None
+        ``ref_log_density - mean`` (nats per row; positive when the rows fit worse),
+        ``sd / sqrt(n_rows)`` with the sample sd (``n - 1``), and the window's mean;
+        None below 2 rows or without a baseline level.
+    """
+    n = n_rows
+    if n < 2 or not math.isfinite(ref_log_density):
+        return None
+    mean_ld = ld_sum / n
+    var = max(ld2_sum / n - mean_ld * mean_ld, 0.0) * n / (n - 1)
+    return ref_log_density - mean_ld, math.sqrt(var / n), mean_ld

@@ -33,7 +33,6 @@ explanation in the data's own units.
 """
 from __future__ import annotations
 
-import hashlib
 import json
 import logging
 import math
@@ -43,76 +42,43 @@ import numpy as np
 
 from shoal.config import Settings
 from shoal.core import Mixture
-from shoal.core.distances import GaussianSet, hotelling_t2_pvalue
+from shoal.core.distances import GaussianSet
 from shoal.core.baseline import baseline_from_sums
-from shoal.core.drift import WHOLE_MODEL, Baseline, evaluate_bounds, explain
+from shoal.core.drift import Baseline, evaluate_bounds
 from shoal.core.window_statistics import (
     NEGLIGIBLE,
     WindowSums,
     add_segment_scatter,
     piece_sums,
-    segment_statistics,
 )
 from shoal.daemon.runtime.logs import log_event
-from shoal.daemon.model.transforming import moves_in_data_units
-from shoal.daemon.segments.missing_drift import add_gap_sums, gap_piece, missing_note, window_shares
+from shoal.daemon.segments.drift_alerts import (
+    PAYLOAD_SCHEMA_VERSION,
+    STATISTIC_UNITS,
+    alert_id,
+    drift_event_alert,
+    finite_or_none,
+    shown,
+    shown_noise,
+)
+from shoal.daemon.segments.missing_drift import add_gap_sums, gap_piece, window_shares
 from shoal.daemon.segments.window_sums import (
     add_lists,
     add_piece_sums,
     aligned_sums,
-    baseline_missing_shares,
     empty_window,
-    files_of,
     merge_window_sums,
-    span,
     time_kind,
     time_range,
     widen,
 )
+from shoal.daemon.segments.window_values import feature_stat, window_values
 
 __all__ = ["DriftMonitor", "InputWatch", "alert_id", "STATISTIC_UNITS", "SEGMENT_STATISTICS",
            "PAYLOAD_SCHEMA_VERSION"]
 
 STATE_FORMAT = 1
-# Version of the alert payload's fields (README, "Alert payload"); a change to a field's
-# name or meaning bumps it, so a receiver can tell which fields to expect.
-PAYLOAD_SCHEMA_VERSION = 1
 SEGMENT_STATISTICS = ("mean_shift", "spread_ratio", "weight_change", "missing_share")
-STATISTIC_UNITS = {
-    "missing_share": "share of rows",
-    "mean_shift": "baseline sds",
-    "spread_ratio": "ratio of sds",
-    "weight_change": "share of rows",
-    "fit_drop": "nats per row",
-    "feature_shift": "baseline sds",
-}
-_TOP_FEATURES = 3
-_SHAPE_MIN_SHARE = 0.25
-"""A segment whose share of a window's rows is under this fraction of its baseline
-weight is not measured for mean, spread or feature shifts in that window (it counts
-as not crossing): the few rows it still takes are mostly its neighbours' tails. Its
-``weight_change`` says what happened."""
-
-
-def alert_id(baseline_number: int, segment, statistic: str, first_window: int) -> str:
-    """The same cause (baseline, segment, statistic, first crossing window) -> the same id."""
-    cause = json.dumps([int(baseline_number), str(segment), statistic, int(first_window)])
-    return "drift-" + hashlib.sha256(cause.encode()).hexdigest()[:20]
-
-
-def _feature_stat(name: str) -> str:
-    return f"feature_shift[{name}]"
-
-
-def _num(x) -> float | None:
-    x = float(x)
-    return x if math.isfinite(x) else None
-
-
-def _fmt(x: float) -> str:
-    return f"{x:.4g}"
-
-
 # ----------------------------------------------------------------------------- monitor
 
 
@@ -145,10 +111,10 @@ class DriftMonitor:
         for stat in SEGMENT_STATISTICS + ("fit_drop",):
             put(stat, stat, getattr(b, stat))
         for f in self.features:
-            put(_feature_stat(f), "feature_shift", b.feature_shift)
+            put(feature_stat(f), "feature_shift", b.feature_shift)
         for o in self.drift.overrides:       # feature-wide first, then segment-specific
             if o.segment is None and o.feature is not None:
-                put(_feature_stat(o.feature), "feature_shift", o.feature_shift)
+                put(feature_stat(o.feature), "feature_shift", o.feature_shift)
         for o in self.drift.overrides:
             if o.segment is None or o.segment not in segment_ids:
                 continue
@@ -156,7 +122,7 @@ class DriftMonitor:
                 put((o.segment, stat), stat, getattr(o, stat))
             feats = [o.feature] if o.feature is not None else self.features
             for f in feats:
-                put((o.segment, _feature_stat(f)), "feature_shift", o.feature_shift)
+                put((o.segment, feature_stat(f)), "feature_shift", o.feature_shift)
         return out
 
     def wants_feature_shift(self) -> bool:
@@ -331,7 +297,7 @@ class InputWatch:
 
     # -- windows ---------------------------------------------------------------------
     def _window_info(self, win, first_window_row) -> dict:
-        off = self.state["offset"]
+        off = self._state["offset"]
         return {"index": win["index"],
                 "rows": [off + first_window_row, off + first_window_row + win["n"] - 1],
                 "versions": win["versions"], "files": win["files"],
@@ -382,7 +348,7 @@ class InputWatch:
                            cleared_by="rebaseline", note=note)
             payload["model_version"] = {"first": alert["payload"]["model_version"]["first"],
                                         "last": self.version}
-            self._emit(payload)
+            self.emit(payload)
         if st["baseline"] is not None:
             st["baseline_number"] += 1
         st["baseline"], st["bounds"], st["cool"], st["open"] = None, None, {}, {}
@@ -409,8 +375,10 @@ class InputWatch:
 
     def _evaluate(self, win, info) -> None:
         ref, factors = self._baseline()
-        values, noise, detail = self._statistics(win, ref, factors,
-                                                 self._window_sums(win, ref.ids.tolist()))
+        values, noise, detail = window_values(
+            win, ref, factors, self._window_sums(win, ref.ids.tolist()),
+            self.monitor.features, feature_shift=self.monitor.wants_feature_shift(),
+            missing_share=(self._state.get("baseline_info") or {}).get("missing_share"))
         st = self._state
         at = win["index"]
         for key in list(st["cool"]):
@@ -427,127 +395,19 @@ class InputWatch:
             resolve_persist=d.resolve_persist, at=at)
         self._last = (values, noise, bounds)
         for e in events:
-            self._event(e, detail, ref, info)
+            drift_event_alert(self, e, detail, ref, info)
 
     def _baseline(self) -> tuple[Baseline, GaussianSet]:
         """The baseline in force and its factorised Gaussians, parsed once per baseline."""
-        doc = self.state["baseline"]
+        doc = self._state["baseline"]
         if self._ref_cache is None or self._ref_cache[0] is not doc:
             ref = Baseline.from_dict(doc)
             self._ref_cache = (doc, ref, GaussianSet(ref.means, ref.covariances))
         return self._ref_cache[1], self._ref_cache[2]
 
-    def _statistics(self, win, ref: Baseline, factors: GaussianSet, sums: WindowSums):
-        """(values, noise, detail) of one window from its sums (rows in the baseline's
-        order); the core computes every segment's statistics together."""
-        ids = ref.ids.tolist()
-        features = self.monitor.features
-        wants_features = self.monitor.wants_feature_shift()
-        stats = segment_statistics(
-            ref, factors, win["n"], sums, win["center"], min_share=_SHAPE_MIN_SHARE,
-            baseline_missing=baseline_missing_shares(
-                (self._state.get("baseline_info") or {}).get("missing_share"), ids,
-                len(features)),
-            feature_shift=wants_features)
-        values, noise = {}, {}
-        shape = self._shape_statistics()
-        for k, sid in enumerate(ids):
-            values[(sid, "weight_change")] = float(stats.weight_change[k])
-            noise[(sid, "weight_change")] = float(stats.weight_noise[k])
-            if stats.low[k]:
-                for stat in shape:
-                    values[(sid, stat)], noise[(sid, stat)] = 0.0, 0.0
-        _put(values, noise, ids, "missing_share", stats.missing_share, stats.missing_noise)
-        _put(values, noise, ids, "mean_shift", stats.mean_shift, stats.mean_shift_noise)
-        _put(values, noise, ids, "spread_ratio", stats.spread, stats.spread_noise)
-        if wants_features:
-            for j, f in enumerate(features):
-                _put(values, noise, ids, _feature_stat(f), stats.feature_shift[:, j],
-                     stats.feature_noise[:, j])
-        detail = _Details(ids, ref.weights, stats)
-        return self._fit_statistics(win, ref, values, noise, detail)
-
-    def _shape_statistics(self) -> list[str]:
-        stats = ["mean_shift", "spread_ratio"]
-        if self.monitor.wants_feature_shift():
-            stats += [_feature_stat(f) for f in self.monitor.features]
-        return stats
-
-    def _fit_statistics(self, win, ref: Baseline, values, noise, detail):
-        n = win["n"]
-        center = np.asarray(win["center"])
-        if n >= 2 and math.isfinite(ref.log_density):
-            mean_ld = win["ld"] / n
-            var = max(win["ld2"] / n - mean_ld * mean_ld, 0.0) * n / (n - 1)
-            values[(WHOLE_MODEL, "fit_drop")] = ref.log_density - mean_ld
-            noise[(WHOLE_MODEL, "fit_drop")] = math.sqrt(var / n)
-            u = win["unusual"]
-            detail[WHOLE_MODEL] = {"mean_log_density": mean_ld, "n": n, "unusual": u["n"],
-                                   "unusual_mean": None if not u["n"] else
-                                   center + np.asarray(u["sum"]) / u["n"],
-                                   "unusual_by_segment": u["by_segment"]}
-        return values, noise, detail
-
     # -- events -> alerts ------------------------------------------------------------
-    def _event(self, e: dict, detail: dict, ref: Baseline, info: dict) -> None:
-        st = self.state
-        seg, stat = e["segment"], e["statistic"]
-        key = f"{seg}|{stat}"
-        if e["status"] == "raised":
-            windows = [w for w in st["recent"] if w["index"] >= e["first_at"]]
-            payload = {
-                "schema_version": PAYLOAD_SCHEMA_VERSION,
-                "id": alert_id(st["baseline_number"], seg, stat, e["first_at"]),
-                "kind": "drift",
-                "status": "raised",
-                "severity": self._severity(stat, e["value"], e["bound"]),
-                "segment": seg if seg == WHOLE_MODEL else int(seg),
-                "statistic": stat,
-                "unit": STATISTIC_UNITS[stat.split("[")[0]],
-                "value": _num(_shown(stat, e["value"])),
-                "bound": _num(_shown(stat, e["bound"])),
-                "noise": _num(_shown_noise(stat, e["noise"])),
-                "model_version": {"first": min(w["versions"][0] for w in windows),
-                                  "last": self.version},
-                "rows": {"first": windows[0]["rows"][0], "last": info["rows"][1]},
-                "time": span([w["time"] for w in windows]),
-                "inputs": files_of(windows),
-                "windows": {"first": e["first_at"], "last": e["at"],
-                            "rows_each": self.window_rows},
-                "baseline": {k: v for k, v in (st["baseline_info"] or {}).items()
-                              if k in ("number", "model_version", "row")},
-                "explanation": self._explain(seg, stat, detail, ref),
-            }
-            st["open"][key] = {"payload": payload}
-            self._emit(payload)
-        else:
-            opened = st["open"].pop(key, None)
-            base = opened["payload"] if opened else {
-                "schema_version": PAYLOAD_SCHEMA_VERSION,
-                "id": alert_id(st["baseline_number"], seg, stat, e["first_at"] or e["at"]),
-                "kind": "drift", "segment": seg, "statistic": stat,
-                "unit": STATISTIC_UNITS[stat.split("[")[0]],
-                "model_version": {"first": self.version}, "rows": {"first": info["rows"][0]},
-                "severity": "major", "baseline": None}
-            windows = st["recent"][-self.drift.resolve_persist:]
-            payload = dict(base)
-            payload.update({
-                "status": "cleared",
-                "value": _num(_shown(stat, e["value"])),
-                "bound": _num(_shown(stat, e["bound"])),
-                "noise": _num(_shown_noise(stat, e["noise"])),
-                "peak": _num(_shown(stat, e["peak"])),
-                "model_version": {"first": base["model_version"]["first"], "last": self.version},
-                "rows": {"first": base["rows"]["first"], "last": info["rows"][1]},
-                "time": span(([[base["time"]["first"], base["time"]["last"]]]
-                               if base.get("time") else []) + [w["time"] for w in windows]),
-                "inputs": files_of(windows),
-                "explanation": self._explain(seg, stat, detail, ref),
-            })
-            st["cool"][key] = e["at"] + self.drift.cool_down_windows
-            self._emit(payload)
-
-    def _emit(self, payload: dict) -> None:
+    def emit(self, payload: dict) -> None:
+        """Add an alert payload to this input's alerts."""
         self.alerts.append((f"{payload['id']}.{payload['status']}", payload))
 
     def log_alerts(self, model_version: int) -> None:
@@ -561,96 +421,6 @@ class InputWatch:
                       value=payload.get("value"), bound=payload.get("bound"),
                       summary=(payload.get("explanation") or {}).get("summary"))
 
-    def _severity(self, stat, value, bound) -> str:
-        """X.733 perceived severity: ``critical`` at ``critical_multiple`` times the bound,
-        ``major`` past the bound (segment events are ``warning``)."""
-        return "critical" if value >= self.drift.critical_multiple * bound else "major"
-
-    def _explain(self, seg, stat, detail, ref: Baseline) -> dict:
-        names = self.monitor.features
-        if seg == WHOLE_MODEL:
-            return self._explain_fit(detail.get(WHOLE_MODEL), ref)
-        info = detail.get(seg, {})
-        if stat == "missing_share":
-            return self._explain_missing(seg, info)
-        if "mean" not in info:
-            share = info.get("share", 0.0)
-            return {"summary": f"segment {seg} took {share:.1%} of the window's rows "
-                               f"(baseline weight {info.get('baseline_weight', 0.0):.1%}) "
-                               "and had no rows to compare",
-                    "share": share, "baseline_weight": info.get("baseline_weight")}
-        moved = moves_in_data_units(explain(ref, seg, info["mean"], feature_names=names),
-                                    self.transforms)
-        out = {"features": moved, "share": info["share"],
-               "baseline_weight": info["baseline_weight"], "effective_rows": info["n_eff"]}
-        if stat == "mean_shift":   # T^2 = n_eff d^2 against chi-square(D) (scipy.stats.chi2)
-            out["hotelling_t2"] = info["t2"]
-            out["p_value"] = float(hotelling_t2_pvalue(info["t2"], len(names)))
-        if stat == "spread_ratio":
-            k = ref.index_of(seg)
-            ratio = np.sqrt(np.maximum(np.diag(info["cov"]), 0.0) /
-                            np.diag(ref.covariances[k]))
-            order = sorted(range(len(names)), key=lambda j: (-abs(math.log(max(ratio[j], 1e-300))), j))
-            out["spreads"] = [{"feature": names[j],
-                               "baseline_sd": float(math.sqrt(ref.covariances[k][j, j])),
-                               "window_sd": float(math.sqrt(max(info["cov"][j, j], 0.0))),
-                               "ratio": float(ratio[j])} for j in order]
-            top = ", ".join(f"{s['feature']} sd {_fmt(s['baseline_sd'])} -> "
-                            f"{_fmt(s['window_sd'])} (x{s['ratio']:.2f})"
-                            for s in out["spreads"][:_TOP_FEATURES])
-            out["summary"] = f"segment {seg} spread changed: {top}"
-        elif stat == "weight_change":
-            out["summary"] = (f"segment {seg} took {info['share']:.1%} of the rows against a "
-                              f"baseline weight of {info['baseline_weight']:.1%}; "
-                              + _moves(moved))
-        else:
-            out["summary"] = f"segment {seg} moved: " + _moves(moved)
-        note = missing_note(info, names)
-        if note:
-            out["summary"] += f"; {note}"
-        return out
-
-    def _explain_missing(self, seg, info) -> dict:
-        names = self.monitor.features
-        m = info.get("missing") or {}
-        if not m:
-            return {"summary": f"segment {seg} had no rows to compare"}
-        f = names[m["feature"]]
-        if m["share"] == m["baseline_share"]:
-            summary = (f"segment {seg}: no feature missing from a share of its rows other "
-                       "than the baseline's")
-        else:
-            summary = (f"feature {f} missing from {m['share']:.1%} of segment {seg}'s rows "
-                       f"(baseline {m['baseline_share']:.1%})")
-        return {"summary": summary,
-                "feature": f, "share": m["share"], "baseline_share": m["baseline_share"],
-                "shares": {names[j]: s for j, s in enumerate(m["shares"])},
-                "effective_rows": info.get("n_eff")}
-
-    def _explain_fit(self, info, ref: Baseline) -> dict:
-        if not info:
-            return {"summary": "no rows"}
-        out = {"mean_log_density": info["mean_log_density"],
-               "baseline_log_density": float(ref.log_density),
-               "unusual_rows": info["unusual"], "rows": info["n"],
-               "expected_unusual_share": self.monitor.settings.output.unusual_quantile}
-        head = (f"mean log-density {_fmt(info['mean_log_density'])} against "
-                f"{_fmt(ref.log_density)} nats/row at the baseline; "
-                f"{info['unusual'] / info['n']:.1%} of rows unusual (expected "
-                f"{self.monitor.settings.output.unusual_quantile:.1%})")
-        by_seg = info["unusual_by_segment"]
-        if info["unusual"] and by_seg:
-            near = max(by_seg, key=lambda s: (by_seg[s], -int(s)))
-            if int(near) in set(ref.ids.tolist()):
-                moved = moves_in_data_units(explain(ref, int(near), info["unusual_mean"],
-                                                    feature_names=self.monitor.features),
-                                            self.transforms)
-                out.update(nearest_segment=int(near), features=moved)
-                head += (f"; most are labelled segment {near}, from whose baseline they "
-                         f"differ: " + _moves(moved))
-        out["summary"] = head
-        return out
-
     # -- outputs ---------------------------------------------------------------------
     def segment_drift(self) -> dict[str, dict]:
         """Per segment id (str): the last window's statistics, noise and bounds (built
@@ -662,61 +432,6 @@ class InputWatch:
         for (seg, stat), v in values.items():
             bound = bounds.get((seg, stat), bounds.get(stat))
             out.setdefault(str(seg), {})[stat] = {
-                "value": _num(_shown(stat, v)), "noise": _num(_shown_noise(stat, noise[(seg, stat)])),
-                "bound": None if bound is None else _num(_shown(stat, bound))}
+                "value": finite_or_none(shown(stat, v)), "noise": finite_or_none(shown_noise(stat, noise[(seg, stat)])),
+                "bound": None if bound is None else finite_or_none(shown(stat, bound))}
         return out
-
-
-def _moves(moved) -> str:
-    return ", ".join(f"{m['feature']} {_fmt(m['baseline_mean'])} -> {_fmt(m['window_mean'])} "
-                     + (f"(median, {m['shift_sd']:+.2f} sd of {m['transform']})"
-                        if m.get("centre") == "median" else f"({m['shift_sd']:+.2f} sd)")
-                     for m in moved[:_TOP_FEATURES])
-
-
-def _shown(stat, v):
-    """A statistic as users read it (spread_ratio is evaluated on its log)."""
-    if v is None:
-        return math.nan
-    return math.exp(v) if stat == "spread_ratio" else v
-
-
-def _shown_noise(stat, v):
-    return math.exp(v) if stat == "spread_ratio" and v is not None else v
-
-
-def _put(values: dict, noise: dict, ids, stat: str, value: np.ndarray,
-         level: np.ndarray) -> None:
-    """``values``/``noise`` of ``stat`` for the segments where it was measured."""
-    for k in np.flatnonzero(~np.isnan(value)).tolist():
-        values[(ids[k], stat)] = float(value[k])
-        noise[(ids[k], stat)] = float(level[k])
-
-
-class _Details(dict):
-    """Per segment id: what the explanations need of a window (share, effective rows,
-    mean, covariance, Hotelling's T^2, missing shares), built only for the segments an
-    alert is about."""
-
-    def __init__(self, ids, weights, stats):
-        super().__init__()
-        self._at = {sid: k for k, sid in enumerate(ids)}
-        self._weights = weights
-        self._stats = stats
-
-    def get(self, seg, default=None):
-        if seg in self or seg not in self._at:
-            return super().get(seg, default)
-        k, s = self._at[seg], self._stats
-        info = {"share": float(s.share[k]), "baseline_weight": float(self._weights[k]),
-                "n_eff": 0.0}
-        if s.seen[k]:
-            info.update(n_eff=float(s.n_eff[k]), mean=s.means[k], cov=s.covs[k],
-                        t2=float(s.t2[k]))
-        if s.missing[k]:
-            j = int(s.missing_feature[k])
-            info["missing"] = {"feature": j, "share": float(s.missing_shares[k, j]),
-                               "baseline_share": float(s.missing_baseline[k, j]),
-                               "shares": s.missing_shares[k].tolist()}
-        self[seg] = info
-        return info

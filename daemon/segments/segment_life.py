@@ -65,7 +65,7 @@ from shoal.core.lifecycle import (
     widening_explains,
 )
 from shoal.daemon.runtime.logs import log_event
-from shoal.daemon.segments.monitor import PAYLOAD_SCHEMA_VERSION
+from shoal.daemon.segments.drift_alerts import PAYLOAD_SCHEMA_VERSION
 from shoal.daemon.state.store import HistoryRow
 from shoal.daemon.model.transforming import feature_centres, history_units
 
