@@ -421,6 +421,41 @@ class InputWatch:
                       value=payload.get("value"), bound=payload.get("bound"),
                       summary=(payload.get("explanation") or {}).get("summary"))
 
+    # -- segments that came or left (lifecycle) -------------------------------------
+    def adopt_segments(self, mixture: Mixture, ids) -> list[int]:
+        """Settled segments of ``ids`` present in ``mixture`` join the baseline, with their
+        present state; returns those taken in (none without a baseline: a baseline
+        taken later includes them)."""
+        st = self.state
+        present = [sid for sid in ids if sid in set(mixture.ids.tolist())]
+        if st is None or st.get("baseline") is None or not present:
+            return []
+        st["baseline"] = Baseline.from_dict(st["baseline"]).adopt(mixture, present).to_dict()
+        return present
+
+    def drop_segments(self, ids, why: str) -> None:
+        """Segments that left (retired, merged away, split): out of the baseline, their
+        raised alerts cleared (``cleared_by`` ``why``), their part-way crossings
+        forgotten."""
+        st = self.state
+        if st is None:
+            return
+        if st.get("baseline") is not None:
+            st["baseline"] = Baseline.from_dict(st["baseline"]).without(ids).to_dict()
+        gone = {str(int(i)) for i in ids}
+        for key in sorted(st.get("open", {})):
+            if key.split("|")[0] not in gone:
+                continue
+            alert = st["open"].pop(key)
+            payload = dict(alert["payload"], status="cleared", value=None, cleared_by=why,
+                           note=f"segment {key.split('|')[0]} {why}")
+            payload["model_version"] = {"first": alert["payload"]["model_version"]["first"],
+                                        "last": self.version}
+            self.alerts.append((f"{payload['id']}.cleared", payload))
+        if st.get("bounds"):
+            for sid in gone:
+                st["bounds"]["entries"].pop(sid, None)
+
     # -- outputs ---------------------------------------------------------------------
     def segment_drift(self) -> dict[str, dict]:
         """Per segment id (str): the last window's statistics, noise and bounds (built
