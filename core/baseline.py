@@ -62,6 +62,7 @@ class Baseline:
 
     @property
     def n_features(self) -> int:
+        """Number of features of the means and covariances."""
         return int(self.means.shape[1])
 
     @classmethod
@@ -73,6 +74,11 @@ class Baseline:
         mixture : Mixture
         log_density : float, optional
             Mean log-density per row of recent data under ``mixture`` (data units).
+
+        Returns
+        -------
+        Baseline
+            Each segment's ``n_eff`` is ``weight * mixture.n_eff``.
         """
         return cls(
             ids=np.array(mixture.ids, dtype=np.int64),
@@ -86,7 +92,17 @@ class Baseline:
         )
 
     def index_of(self, segment_id) -> int:
-        """Position of a segment id in the baseline (a clear error if it has none)."""
+        """Position of a segment id in the baseline.
+
+        Parameters
+        ----------
+        segment_id : int
+
+        Returns
+        -------
+        int
+            Its row in the arrays; :class:`ModelError` if the baseline has it not once.
+        """
         return segment_index(self.ids, segment_id, "the baseline")
 
     def adopt(self, mixture: Mixture, ids) -> "Baseline":
@@ -94,6 +110,16 @@ class Baseline:
 
         For a segment born after the snapshot, once it has settled. Other segments
         keep their baseline; ``total_n_eff`` and ``log_density`` are unchanged.
+
+        Parameters
+        ----------
+        mixture : Mixture
+        ids : sequence of int
+            Segments of ``mixture``.
+
+        Returns
+        -------
+        Baseline
         """
         fresh = Baseline.from_mixture(mixture)
         keep = self.without(ids)
@@ -108,7 +134,16 @@ class Baseline:
         )
 
     def without(self, ids) -> "Baseline":
-        """A copy without the given segments (for example retired ones)."""
+        """A copy without the given segments (for example retired ones).
+
+        Parameters
+        ----------
+        ids : iterable of int
+
+        Returns
+        -------
+        Baseline
+        """
         keep = ~np.isin(self.ids, np.asarray(list(ids), dtype=np.int64))
         return replace(
             self, ids=self.ids[keep], weights=self.weights[keep], means=self.means[keep],
@@ -116,7 +151,13 @@ class Baseline:
         )
 
     def to_dict(self) -> dict:
-        """Plain lists and numbers (``inf`` and ``nan`` stored as ``None``)."""
+        """The baseline as plain lists and numbers, for the checkpoint's JSON.
+
+        Returns
+        -------
+        dict
+            With ``format``; ``inf`` and ``nan`` stored as ``None``.
+        """
 
         def num(x):
             return float(x) if math.isfinite(x) else None
@@ -135,7 +176,17 @@ class Baseline:
 
     @classmethod
     def from_dict(cls, data: Mapping) -> "Baseline":
-        """Rebuild a baseline saved by :meth:`to_dict`."""
+        """Rebuild a baseline saved by :meth:`to_dict`.
+
+        Parameters
+        ----------
+        data : mapping
+
+        Returns
+        -------
+        Baseline
+            :class:`ModelError` on another format or a missing field.
+        """
         if data.get("format") != STATE_FORMAT:
             raise ModelError(
                 f"baseline has format {data.get('format')!r}; this shoal reads {STATE_FORMAT}"

@@ -79,6 +79,11 @@ class SegmentDrift:
         """``(values, noise)`` keyed by ``(segment, statistic)`` for :func:`evaluate_bounds`.
 
         ``spread_change`` enters as its magnitude.
+
+        Returns
+        -------
+        values, noise : dict
+            Keyed by ``(segment, statistic)``.
         """
         values = dict(self.values, spread_change=np.abs(self.values["spread_change"]))
         return _keyed(self.ids, values), _keyed(self.ids, self.noise)
@@ -167,7 +172,13 @@ class BatchDrift:
     noise: dict
 
     def bound_inputs(self) -> tuple[dict, dict]:
-        """``(values, noise)`` keyed by ``(segment, statistic)`` for :func:`evaluate_bounds`."""
+        """The statistics for :func:`~shoal.core.drift_bounds.evaluate_bounds`.
+
+        Returns
+        -------
+        values, noise : dict
+            Keyed by ``(segment, statistic)``.
+        """
         return _keyed(self.ids, self.values), _keyed(self.ids, self.noise)
 
 
@@ -233,14 +244,29 @@ def batch_drift(baseline: Baseline, X, resp, ids) -> BatchDrift:
 
 
 class FitDrop(NamedTuple):
-    """How much worse a batch fits than the baseline level (nats per row)."""
+    """How much worse a batch fits than the baseline level.
+
+    Attributes
+    ----------
+    value : float
+        Baseline mean log-density per row minus the batch's (nats per row).
+    noise : float
+        Its standard error.
+    n_rows : int
+    """
 
     value: float
     noise: float
     n_rows: int
 
     def bound_inputs(self) -> tuple[dict, dict]:
-        """``(values, noise)`` keyed ``(WHOLE_MODEL, "fit_drop")`` for :func:`evaluate_bounds`."""
+        """The statistic for :func:`~shoal.core.drift_bounds.evaluate_bounds`.
+
+        Returns
+        -------
+        values, noise : dict
+            Keyed ``(WHOLE_MODEL, "fit_drop")``.
+        """
         key = (WHOLE_MODEL, "fit_drop")
         return {key: self.value}, {key: self.noise}
 
@@ -254,6 +280,10 @@ def fit_drop(baseline: Baseline, log_density) -> FitDrop:
         Its ``log_density`` must be known.
     log_density : array_like of shape (n_samples,)
         ``Scores.log_density`` of the batch (data units).
+
+    Returns
+    -------
+    FitDrop
     """
     if not math.isfinite(baseline.log_density):
         raise ModelError("the baseline has no log-density level; take it with log_density=")

@@ -123,6 +123,20 @@ def spread_noise(n_eff, n_features, covariance="full", ref_n_eff=math.inf):
     ``D^2 psi1(D (n - 1) / 2)`` (spherical), each about ``2 D / n``; the baseline's
     variance is added. ``inf`` when there are too few rows for a covariance
     (``n <= D`` full, ``n <= 1`` otherwise).
+
+    Parameters
+    ----------
+    n_eff : float or array_like
+        Effective rows behind the current estimate.
+    n_features : int
+    covariance : {"full", "diag", "spherical"}, default "full"
+    ref_n_eff : float or array_like, default inf
+        Effective rows behind the baseline (``inf``: exact).
+
+    Returns
+    -------
+    noise : float or ndarray
+        The standard deviation of ``log |S| - log |S_ref|``.
     """
     _check_covariance_type(covariance)
     variance, min_rows = _LOG_GV_VARIANCE[covariance]
@@ -134,6 +148,19 @@ def hellinger_noise(n_eff, n_features, covariance="full", ref_n_eff=math.inf):
 
     ``q`` is the number of covariance parameters (``D (D + 1) / 2`` full, ``D`` diag,
     ``1`` spherical). Capped at 1, the largest Hellinger distance.
+
+    Parameters
+    ----------
+    n_eff : float or array_like
+        Effective rows behind the current estimate.
+    n_features : int
+    covariance : {"full", "diag", "spherical"}, default "full"
+    ref_n_eff : float or array_like, default inf
+        Effective rows behind the baseline (``inf``: exact).
+
+    Returns
+    -------
+    noise : float or ndarray
     """
     _check_covariance_type(covariance)
     size = n_features + _COVARIANCE_PARAMETERS[covariance](n_features)
@@ -152,6 +179,11 @@ def weight_noise(weight, total_n_eff, ref_total_n_eff=math.inf):
         Effective rows behind the current weights (for a batch, its row count).
     ref_total_n_eff : float, default inf
         Effective rows behind the baseline weights.
+
+    Returns
+    -------
+    noise : float or ndarray
+        ``sqrt(w (1 - w) (1 / N + 1 / N_ref))``.
     """
     share = np.asarray(weight, dtype=np.float64)
     spread = share * (1.0 - share)
@@ -164,6 +196,11 @@ def fit_noise(log_density) -> float:
     Parameters
     ----------
     log_density : array_like of shape (n_samples,)
+
+    Returns
+    -------
+    noise : float
+        ``std(log_density, ddof=1) / sqrt(n_rows)``.
     """
     values = np.asarray(log_density, dtype=np.float64)
     if values.size < 2:

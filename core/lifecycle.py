@@ -70,7 +70,20 @@ _AVG_STATS = ("avg_s0", "avg_s1", "avg_s2")
 
 # --------------------------------------------------------------------------- helpers
 def segment_index(ids, segment_id, where="the mixture") -> int:
-    """Position of a stable segment id in ``ids``; a clear error if it is not there once."""
+    """Position of a stable segment id in ``ids``.
+
+    Parameters
+    ----------
+    ids : array_like of int
+    segment_id : int
+    where : str
+        Named in the error.
+
+    Returns
+    -------
+    int
+        :class:`ModelError` if the id is not there exactly once.
+    """
     hits = np.flatnonzero(np.asarray(ids) == segment_id)
     if hits.size != 1:
         raise ModelError(
@@ -296,6 +309,12 @@ def overlapping_pairs(mixture: Mixture, max_distance: float, measure: str = "hel
 
     Only the pairs that a lower bound from means and traces does not already put at
     ``max_distance`` or more are factorised (on separated segments, none).
+
+    Parameters
+    ----------
+    mixture : Mixture
+    max_distance : float
+    measure : {"hellinger", "bhattacharyya"}, default "hellinger"
 
     Returns
     -------

@@ -26,9 +26,20 @@ def _chi2_quantile(probability: float, dof: int) -> float:
 
 
 def chi2_quantile(probability, dof) -> float:
-    """The chi-square(``dof``) quantile at ``probability`` (as ``scipy.stats.chi2.ppf``,
-    which computes ``2 gammaincinv(dof / 2, p)``; cached, and without importing
-    scipy.stats, which costs seconds at start-up)."""
+    """The chi-square(``dof``) quantile at ``probability``.
+
+    As ``scipy.stats.chi2.ppf``, which computes ``2 gammaincinv(dof / 2, p)``; cached,
+    and without importing scipy.stats, which costs seconds at start-up.
+
+    Parameters
+    ----------
+    probability : float in (0, 1)
+    dof : int
+
+    Returns
+    -------
+    float
+    """
     return _chi2_quantile(float(probability), int(dof))
 
 
@@ -86,6 +97,11 @@ def unexplained_below(mixture: Mixture, threshold: float = 0.999) -> float:
     (``b`` the chi-square quantile), so its log-density under the mixture is below
     ``logsumexp_k(log w_k - (D log 2 pi + b) / 2 + log det U_k) - sum(log scale)``.
     Only rows under this bound need the exact test of :func:`unexplained`.
+
+    Parameters
+    ----------
+    mixture : Mixture
+    threshold : float in (0, 1), default 0.999
 
     Returns
     -------

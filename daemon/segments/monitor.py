@@ -26,10 +26,12 @@ not measured for the shape statistics (mean, spread, feature): the rows it still
 are mostly its neighbours' tails, and ``weight_change`` tells the story.
 
 Each comes with its estimation noise at Kish's effective rows of the window and of
-the baseline (:mod:`shoal.core.drift`). :func:`shoal.core.drift.evaluate_bounds`
-turns them into raised and cleared events (bound and noise, persistence,
-hysteresis); here they become alert payloads with deterministic ids and an
-explanation in the data's own units.
+the baseline. The numbers are the core's, over arrays of all segments at once
+(:mod:`shoal.core.window_statistics`, :mod:`shoal.core.drift_noise`);
+:func:`shoal.core.drift.evaluate_bounds` turns them into raised and cleared events
+(bound and noise, persistence, hysteresis). This module keeps the bookkeeping: the
+window records and piece sums (:mod:`.window_sums`), the values keyed for the bounds
+(:mod:`.window_values`), and the alert payloads (:mod:`.drift_alerts`).
 """
 from __future__ import annotations
 
@@ -83,7 +85,10 @@ SEGMENT_STATISTICS = ("mean_shift", "spread_ratio", "weight_change", "missing_sh
 
 
 class DriftMonitor:
-    """Settings-bound factory of :class:`InputWatch` objects, and re-baselining."""
+    """The drift settings of a running service: it starts an :class:`InputWatch` for each
+    input (none when drift is off), gives the bound of every (segment, statistic) pair
+    from ``drift.bounds`` and the per-segment and per-feature overrides (spread_ratio on
+    its log scale, as it is evaluated), and says whether feature shifts are wanted."""
 
     def __init__(self, settings: Settings):
         self.settings = settings
@@ -131,7 +136,12 @@ class DriftMonitor:
 
 
 class InputWatch:
-    """Drift evaluation for the rows of one input; ``state`` and ``alerts`` go to the commit."""
+    """Drift evaluation for the rows of one input: it adds each learned piece to its
+    window's sums, and at each window's end takes the baseline, collects a re-baseline
+    or evaluates the window against the baseline, turning crossings into alerts. Its
+    ``state`` (the checkpoint's ``extra["drift"]``) and ``alerts`` go to the commit
+    with the model; segments born or gone reach the baseline through
+    :meth:`adopt_segments` and :meth:`drop_segments`."""
 
     # the model's FeatureTransforms (set by the pipeline): explanations give a
     # transformed feature's medians in the data's units

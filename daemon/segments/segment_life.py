@@ -120,8 +120,12 @@ def _recent_share(rows: np.ndarray, n: int, trim: float = 0.1) -> float:
 
 
 class LifeWatch:
-    """Lifecycle decisions for the rows of one input; ``state``, ``events`` and ``alerts``
-    go to the commit."""
+    """Lifecycle decisions for the rows of one input: it pools the rows no segment
+    explains and samples every segment's rows as pieces are learned, and at each
+    decision point retires, merges, gives birth and splits, telling the drift watch
+    of the input which segments came and went. Its ``state`` (the checkpoint's
+    ``extra["lifecycle"]``), ``events`` (segment history) and ``alerts`` go to the
+    commit with the model."""
 
     # the model's FeatureTransforms (set by the pipeline): summaries give a transformed
     # feature's median and central 68% interval in the data's units
