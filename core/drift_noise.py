@@ -34,7 +34,8 @@ from scipy import special
 
 from .errors import ModelError
 
-__all__ = ["mean_shift_noise", "spread_noise", "hellinger_noise", "weight_noise", "fit_noise"]
+__all__ = ["mean_shift_noise", "spread_noise", "spread_variance", "hellinger_noise",
+           "weight_noise", "fit_noise"]
 
 # ------------------------------------------------------------------------ noise levels
 
@@ -141,6 +142,28 @@ def spread_noise(n_eff, n_features, covariance="full", ref_n_eff=math.inf):
     _check_covariance_type(covariance)
     variance, min_rows = _LOG_GV_VARIANCE[covariance]
     return _combined(n_eff, ref_n_eff, lambda n: variance(n, n_features), min_rows(n_features))
+
+
+def spread_variance(n_eff, n_features, covariance="full"):
+    """Variance of ``log |S|`` from one estimate's ``n_eff`` rows (the terms of
+    :func:`spread_noise`, for a side that is compared many times, such as a baseline).
+
+    Parameters
+    ----------
+    n_eff : float or array_like
+    n_features : int
+    covariance : {"full", "diag", "spherical"}, default "full"
+
+    Returns
+    -------
+    variance : float or ndarray
+        0 for an exact estimate (``inf`` rows), ``inf`` with too few rows for a
+        covariance; ``spread_noise(n, D, c, n_ref) = sqrt(spread_variance(n) +
+        spread_variance(n_ref))``.
+    """
+    _check_covariance_type(covariance)
+    variance, min_rows = _LOG_GV_VARIANCE[covariance]
+    return _per_estimate(n_eff, lambda n: variance(n, n_features), min_rows(n_features))
 
 
 def hellinger_noise(n_eff, n_features, covariance="full", ref_n_eff=math.inf):

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import fused
-from .drift_noise import mean_shift_noise, spread_noise, weight_noise
+from .drift_noise import mean_shift_noise, spread_noise, spread_variance, weight_noise
 
 __all__ = ["NEGLIGIBLE", "WindowSums", "SegmentStatistics", "add_segment_scatter",
            "piece_sums", "positive_definite", "projected_covariances",
@@ -239,7 +239,8 @@ def _observed_means(sums: WindowSums, at, center, means, n_effs):
 
 def segment_statistics(ref, factors, n_rows: int, sums: WindowSums, center, *,
                        min_share: float, baseline_missing=None,
-                       feature_shift: bool = False) -> SegmentStatistics:
+                       feature_shift: bool = False,
+                       ref_spread_variance=None) -> SegmentStatistics:
     """Compare one window with the baseline, all segments at once.
 
     Parameters
@@ -261,6 +262,9 @@ def segment_statistics(ref, factors, n_rows: int, sums: WindowSums, center, *,
         The baseline's share of each segment's rows that missed each feature (zeros).
     feature_shift : bool, default False
         Also each feature's mean shift.
+    ref_spread_variance : ndarray of shape (K,), optional
+        ``spread_variance(ref.n_eff, D, ref.covariance)``, when the caller keeps it
+        for the baseline's life (it is the same for every window).
 
     Returns
     -------
@@ -297,8 +301,12 @@ def segment_statistics(ref, factors, n_rows: int, sums: WindowSums, center, *,
         usable = (n_eff[at] > d + 1) & np.all(diag > 0, axis=1) & positive_definite(compared)
         if usable.any():
             log_ratio = factors.log_variance_ratio(compared[usable], at[usable])
-            noise = np.atleast_1d(spread_noise(n_eff[at][usable], d, ref.covariance,
-                                               ref_n[usable]))
+            if ref_spread_variance is None:
+                noise = np.atleast_1d(spread_noise(n_eff[at][usable], d, ref.covariance,
+                                                   ref_n[usable]))
+            else:
+                noise = np.sqrt(spread_variance(n_eff[at][usable], d, ref.covariance)
+                                + ref_spread_variance[at[usable]])
             spread[at[usable]] = np.abs(log_ratio) / (2 * d)
             spread_n[at[usable]] = noise / (2 * d)
         if feature_shift:

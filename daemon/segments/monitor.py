@@ -47,6 +47,7 @@ from shoal.core import Mixture
 from shoal.core.distances import GaussianSet
 from shoal.core.baseline import baseline_from_sums
 from shoal.core.drift import Baseline, evaluate_bounds
+from shoal.core.drift_noise import spread_variance
 from shoal.core.window_statistics import (
     NEGLIGIBLE,
     WindowSums,
@@ -94,6 +95,7 @@ class DriftMonitor:
         self.settings = settings
         self.drift = settings.drift
         self.features = list(settings.features)
+        self._bounds: dict[frozenset, dict] = {}   # by the baseline's segment ids
 
     def begin(self, state: dict | None, *, version: int, file: str, times=None,
               unusual_below: float | None = None) -> "InputWatch | None":
@@ -105,6 +107,14 @@ class DriftMonitor:
     # bounds from settings: statistic -> bound, (segment, statistic) -> bound (log scale for
     # spread_ratio)
     def bounds(self, segment_ids) -> dict:
+        """The bound of every statistic (keys ``statistic``) and of every overridden
+        (segment, statistic) pair of ``segment_ids`` (read-only; kept per id set)."""
+        key = frozenset(segment_ids)
+        if key not in self._bounds:
+            self._bounds[key] = self._bounds_of(key)
+        return self._bounds[key]
+
+    def _bounds_of(self, segment_ids) -> dict:
         b = self.drift.bounds
         out: dict[Any, float] = {}
 
@@ -163,7 +173,7 @@ class InputWatch:
             raise ValueError(f"drift state has format {state.get('format')!r}")
         self._state = json.loads(json.dumps(state)) if state is not None else None
         self._last = None   # the last window's (values, noise, bounds)
-        self._ref_cache = None   # (baseline dict, Baseline, GaussianSet)
+        self._ref_cache = None   # (baseline dict, Baseline, GaussianSet, spread variance)
         # the open window's per-segment sums of the pieces since the last flush, as arrays
         # (adding each piece to the state's JSON lists cost more than computing it)
         self._pending: dict | None = None
@@ -384,11 +394,12 @@ class InputWatch:
         st["baseline_info"]["missing_share"] = window_shares(sums["segments"])
 
     def _evaluate(self, win, info) -> None:
-        ref, factors = self._baseline()
+        ref, factors, ref_spread = self._baseline()
         values, noise, detail = window_values(
             win, ref, factors, self._window_sums(win, ref.ids.tolist()),
             self.monitor.features, feature_shift=self.monitor.wants_feature_shift(),
-            missing_share=(self._state.get("baseline_info") or {}).get("missing_share"))
+            missing_share=(self._state.get("baseline_info") or {}).get("missing_share"),
+            ref_spread_variance=ref_spread)
         st = self._state
         at = win["index"]
         for key in list(st["cool"]):
@@ -407,13 +418,16 @@ class InputWatch:
         for e in events:
             drift_event_alert(self, e, detail, ref, info)
 
-    def _baseline(self) -> tuple[Baseline, GaussianSet]:
-        """The baseline in force and its factorised Gaussians, parsed once per baseline."""
+    def _baseline(self):
+        """The baseline in force, its factorised Gaussians and the variance of its
+        segments' log generalised variances, worked out once per baseline."""
         doc = self._state["baseline"]
         if self._ref_cache is None or self._ref_cache[0] is not doc:
             ref = Baseline.from_dict(doc)
-            self._ref_cache = (doc, ref, GaussianSet(ref.means, ref.covariances))
-        return self._ref_cache[1], self._ref_cache[2]
+            self._ref_cache = (doc, ref, GaussianSet(ref.means, ref.covariances),
+                               np.atleast_1d(spread_variance(ref.n_eff, ref.n_features,
+                                                             ref.covariance)))
+        return self._ref_cache[1:]
 
     # -- events -> alerts ------------------------------------------------------------
     def emit(self, payload: dict) -> None:

@@ -217,12 +217,16 @@ class LifeWatch:
             return
         cap = self._sample_cap()
         labels = scores.segment[picked]
-        for sid in np.unique(labels).tolist():
-            # rounded as the checkpoint keeps them, so a restart sees the same rows
-            rows = X[picked[labels == sid]].astype(np.float32).astype(np.float64)
+        # rounded as the checkpoint keeps them, so a restart sees the same rows; grouped
+        # by segment in stream order (a stable sort)
+        rows = X[picked].astype(np.float32).astype(np.float64)
+        order = np.argsort(labels, kind="stable")
+        sids, starts, counts = np.unique(labels[order], return_index=True, return_counts=True)
+        for sid, a, c in zip(sids.tolist(), starts.tolist(), counts.tolist()):
             key = str(sid)
-            self._samples[key] = np.concatenate([self._sampled(key), rows])[-cap:]
-            fresh[key] = fresh.get(key, 0) + len(rows)
+            self._samples[key] = np.concatenate([self._sampled(key),
+                                                 rows[order[a:a + c]]])[-cap:]
+            fresh[key] = fresh.get(key, 0) + c
 
     def _sampled(self, key: str) -> np.ndarray:
         """The rows of a segment's sample, shape (n, n_features)."""

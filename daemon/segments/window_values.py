@@ -31,17 +31,19 @@ def feature_stat(name: str) -> str:
 
 
 def window_values(win: dict, ref, factors, sums: WindowSums, features, *,
-                  feature_shift: bool, missing_share: dict | None):
+                  feature_shift: bool, missing_share: dict | None,
+                  ref_spread_variance=None):
     """``(values, noise, detail)`` of one closing window.
 
     ``win`` is the window's record, ``ref`` the baseline and ``factors`` its Gaussians
     factorised, ``sums`` the window's sums in the baseline's order of segment ids,
-    ``missing_share`` the baseline's missing shares by segment id."""
+    ``missing_share`` the baseline's missing shares by segment id (and
+    ``ref_spread_variance`` the baseline's part of the spread noise, if kept)."""
     ids = ref.ids.tolist()
     stats = segment_statistics(
         ref, factors, win["n"], sums, win["center"], min_share=SHAPE_MIN_SHARE,
         baseline_missing=baseline_missing_shares(missing_share, ids, len(features)),
-        feature_shift=feature_shift)
+        feature_shift=feature_shift, ref_spread_variance=ref_spread_variance)
     values, noise = {}, {}
     shape = ["mean_shift", "spread_ratio"]
     if feature_shift:
