@@ -25,6 +25,7 @@ from . import fused
 from .drift_noise import mean_shift_noise, spread_noise, spread_variance, weight_noise
 
 __all__ = ["NEGLIGIBLE", "WindowSums", "SegmentStatistics", "add_segment_scatter",
+           "add_segment_variances",
            "piece_sums", "positive_definite", "projected_covariances",
            "segment_statistics", "fit_statistics"]
 
@@ -60,6 +61,24 @@ def add_segment_scatter(S: np.ndarray, X: np.ndarray, resp_kn: np.ndarray,
         if rows.size:
             Xk = X[rows]
             S[k] += (Xk * resp_kn[k, rows, None]).T @ Xk
+
+
+def add_segment_variances(S: np.ndarray, X: np.ndarray, resp_kn: np.ndarray) -> None:
+    """Add each segment's weighted sums of squares of ``X`` to the diagonals of ``S``,
+    in place: ``S[k, j, j] += sum_i resp_kn[k, i] x_ij^2``, one matrix product.
+
+    What a diag or spherical model's window statistics read of the second moments
+    (the off-diagonal entries are left as they are: those types compare variances).
+
+    Parameters
+    ----------
+    S : ndarray of shape (n_components, n_features, n_features)
+    X : ndarray of shape (n_samples, n_features)
+    resp_kn : ndarray of shape (n_components, n_samples)
+    """
+    d = X.shape[1]
+    at = np.arange(d)
+    S[:, at, at] += resp_kn @ (X * X)
 
 
 def piece_sums(resp_kn: np.ndarray, Xc: np.ndarray):

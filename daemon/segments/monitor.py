@@ -52,6 +52,7 @@ from shoal.core.window_statistics import (
     NEGLIGIBLE,
     WindowSums,
     add_segment_scatter,
+    add_segment_variances,
     piece_sums,
 )
 from shoal.daemon.runtime.logs import log_event
@@ -259,7 +260,11 @@ class InputWatch:
         sums["T"] += T
         sums["Q"] += Q
         sums["M"] += M
-        add_segment_scatter(sums["S"], Xc, resp_kn if gaps is None else gaps.resp, NEGLIGIBLE)
+        weights = resp_kn if gaps is None else gaps.resp
+        if mixture.covariance == "full":
+            add_segment_scatter(sums["S"], Xc, weights, NEGLIGIBLE)
+        else:   # diag and spherical compare variances only
+            add_segment_variances(sums["S"], Xc, weights)
         if gaps is not None:
             add_gap_sums(sums, gaps)
         limit = self._state.get("baseline_info", {}) or {}
