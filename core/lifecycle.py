@@ -37,7 +37,7 @@ from .distances import (
 )
 from .errors import ModelError
 from .mixture import Mixture
-from .segment_groups import compact_group, split_test, widening_explains
+from .segment_groups import compact_group, recent_share, split_test, widening_explains
 from .unexplained import chi2_quantile, squared_mahalanobis, unexplained, unexplained_below
 
 __all__ = [
@@ -50,6 +50,7 @@ __all__ = [
     "merge",
     "overlap",
     "overlapping_pairs",
+    "recent_share",
     "retire",
     "segment_index",
     "chi2_quantile",

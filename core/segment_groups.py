@@ -18,7 +18,7 @@ from .mixture import Mixture
 from .split_screen import hard_split_gain
 from .unexplained import chi2_quantile, squared_mahalanobis
 
-__all__ = ["compact_group", "widening_explains", "split_test"]
+__all__ = ["compact_group", "widening_explains", "split_test", "recent_share"]
 
 _LOG_2PI = float(np.log(2.0 * np.pi))
 
@@ -227,3 +227,33 @@ def split_test(X, *, covariance="full", min_share=0.1, min_gain=0.5, seed=0, n_i
     if np.any(newer < 0.5 * two.weights):
         return None
     return two.weights.copy(), two.data_means(), two.data_covariance_matrices(), float(gain)
+
+
+def recent_share(rows, n: int, trim: float = 0.1) -> float:
+    """The share of the stream's rows that a group born at row ``n`` takes, from the
+    stream positions ``rows`` of its members in the pool.
+
+    A new group's rows arrive at a steady rate since it appeared, while a few older
+    scattered rows may sit in the pool with them. The oldest ``trim`` share of the
+    members is set aside: with ``c`` members sorted by row, ``r_j`` the first kept
+    (``j = ceil(trim c)``), the share is ``(c - j + 1) / (n - r_j)``. For rows at a
+    steady rate since row ``s`` this is ``c / (n - s)`` up to sampling, whatever
+    ``trim``; the group's first rows alone would let one old stray row stretch the
+    span (and shrink the share) as far back as the pool reaches.
+
+    Parameters
+    ----------
+    rows : array_like of int
+        Stream positions of the group's members (at least one).
+    n : int
+        The stream position now.
+    trim : float, default 0.1
+
+    Returns
+    -------
+    float
+    """
+    rows = np.sort(np.asarray(rows, dtype=np.int64))
+    c = rows.size
+    j = max(int(np.ceil(trim * c)), 1)
+    return (c - j + 1) / max(n - int(rows[j - 1]), c - j + 1)

@@ -123,3 +123,12 @@ def test_baseline_from_sums_takes_the_rows_weighted_moments():
                            np.cov(X, rowvar=False, aweights=w, bias=True), rtol=1e-8)
     assert got.log_density == pytest.approx(-7.0)
     assert got.total_n_eff == N
+
+
+def test_recent_share_of_a_group_is_its_steady_rate_despite_an_old_stray_row():
+    from shoal.core.segment_groups import recent_share
+
+    steady = np.arange(1000, 2000, 10)            # one row in ten since row 1000
+    assert recent_share(steady, 2000) == pytest.approx(0.1)
+    assert recent_share(np.concatenate([[0], steady]), 2000) == pytest.approx(0.1)
+    assert recent_share(steady[::-1], 2000) == pytest.approx(0.1)   # order does not matter

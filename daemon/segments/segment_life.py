@@ -53,6 +53,7 @@ from shoal.core.lifecycle import (
     compact_group,
     merge,
     overlapping_pairs,
+    recent_share,
     retire,
     split,
     split_test,
@@ -99,24 +100,6 @@ def _unpack(packed: str | None, n_features: int) -> np.ndarray:
         return np.empty((0, n_features))
     rows = np.frombuffer(base64.b64decode(packed), dtype="<f4").reshape(-1, n_features)
     return rows.astype(np.float64)
-
-
-def _recent_share(rows: np.ndarray, n: int, trim: float = 0.1) -> float:
-    """The share of the stream's rows that a group born at row ``n`` takes, from the
-    stream positions ``rows`` of its members in the pool.
-
-    A new group's rows arrive at a steady rate since it appeared, while a few older
-    scattered rows may sit in the pool with them. The oldest ``trim`` share of the
-    members is set aside: with ``c`` members sorted by row, ``r_j`` the first kept
-    (``j = ceil(trim c)``), the share is ``(c - j + 1) / (n - r_j)``. For rows at a
-    steady rate since row ``s`` this is ``c / (n - s)`` up to sampling, whatever
-    ``trim``; the group's first rows alone would let one old stray row stretch the
-    span (and shrink the share) as far back as the pool reaches.
-    """
-    rows = np.sort(np.asarray(rows, dtype=np.int64))
-    c = rows.size
-    j = max(int(np.ceil(trim * c)), 1)
-    return (c - j + 1) / max(n - int(rows[j - 1]), c - j + 1)
 
 
 class LifeWatch:
@@ -211,15 +194,17 @@ class LifeWatch:
         fresh = st.setdefault("fresh", {})
         first = (-int(before.n_rows)) % _SAMPLE_STRIDE
         picked = np.arange(first, len(X), _SAMPLE_STRIDE)
+        rows = X[picked]
         # rows with missing features (NaN) have no place in a split test's sample
-        picked = picked[~np.isnan(X[picked]).any(axis=1)]
+        complete = ~np.isnan(rows).any(axis=1)
+        picked, rows = picked[complete], rows[complete]
         if picked.size == 0:
             return
         cap = self._sample_cap()
         labels = scores.segment[picked]
         # rounded as the checkpoint keeps them, so a restart sees the same rows; grouped
         # by segment in stream order (a stable sort)
-        rows = X[picked].astype(np.float32).astype(np.float64)
+        rows = rows.astype(np.float32).astype(np.float64)
         order = np.argsort(labels, kind="stable")
         sids, starts, counts = np.unique(labels[order], return_index=True, return_counts=True)
         for sid, a, c in zip(sids.tolist(), starts.tolist(), counts.tolist()):
@@ -424,7 +409,7 @@ class LifeWatch:
                       detail=f"segment {widened} widened explains the group as well "
                              f"(BIC gain of a new group {gain:.1f}; nan: centred on it)")
             return mixture
-        weight = float(np.clip(_recent_share(self._pool_rows[members], n),
+        weight = float(np.clip(recent_share(self._pool_rows[members], n),
                                _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT))
         try:
             mixture = add_component(mixture, weight, mean, cov)
