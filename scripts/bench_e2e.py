@@ -405,6 +405,16 @@ STAGES = [
 ]
 
 
+def _one_blas_thread() -> dict:
+    """The environment with one BLAS thread unless it says otherwise, as the shoal command
+    sets it: in the child's environment, since it must hold before numpy is loaded (this
+    module loads numpy before it could set it)."""
+    env = dict(os.environ)
+    for var in ("OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+        env.setdefault(var, "1")
+    return env
+
+
 def _stage_child(cfg: str, drop: str) -> int:
     """Run `shoal ingest` in this process with the stages timed; print them as JSON."""
     import functools
@@ -412,8 +422,6 @@ def _stage_child(cfg: str, drop: str) -> int:
     import resource
     import threading
 
-    for var in ("OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):   # as the shoal command does
-        os.environ.setdefault(var, "1")
     cpu: dict[str, float] = {}
     local = threading.local()
 
@@ -481,7 +489,8 @@ def stages_table(rows: int = 1_000_000, workdir: Path | None = None) -> dict:
                 cfg = _fresh_state(folder, folder.with_name(folder.name + "-run"))
                 out = subprocess.run([sys.executable, "-m", "scripts.bench_e2e", "--stage-child",
                                       str(cfg), str(drop)], capture_output=True, text=True,
-                                     cwd=Path(__file__).resolve().parent.parent)
+                                     cwd=Path(__file__).resolve().parent.parent,
+                                     env=_one_blas_thread())
                 if out.returncode != 0 or not out.stdout.strip():
                     raise RuntimeError(f"shoal ingest {drop.name} (stages) exited "
                                        f"{out.returncode}: {out.stderr[-2000:]}")
