@@ -28,8 +28,8 @@ from shoal.core import Mixture
 from shoal.core.missing import expected_scatter
 from shoal.daemon.files.gaps import observed_counts
 
-__all__ = ["GapPiece", "gap_piece", "add_gap_sums", "merge_gap_sums", "window_shares", "missing_note",
-           "GAP_KEYS"]
+__all__ = ["GapPiece", "gap_piece", "add_gap_sums", "merge_gap_sums", "window_shares",
+           "missing_note", "GAP_KEYS"]
 
 GAP_KEYS = ("miss", "miss2", "imputed")
 MOSTLY_MISSING = 0.5    # explanations name a feature missing from more of a segment's rows

@@ -56,15 +56,9 @@ from shoal.core.window_statistics import (
     piece_sums,
 )
 from shoal.daemon.runtime.logs import log_event
-from shoal.daemon.segments.drift_alerts import (
-    PAYLOAD_SCHEMA_VERSION,
-    STATISTIC_UNITS,
-    alert_id,
-    drift_event_alert,
-    finite_or_none,
-    shown,
-    shown_noise,
-)
+from shoal.daemon.segments.drift_alerts import (PAYLOAD_SCHEMA_VERSION, STATISTIC_UNITS, alert_id,
+                                                drift_event_alert, finite_or_none, shown,
+                                                shown_noise)
 from shoal.daemon.segments.missing_drift import add_gap_sums, gap_piece, window_shares
 from shoal.daemon.segments.window_sums import (
     add_lists,
@@ -496,6 +490,7 @@ class InputWatch:
         for (seg, stat), v in values.items():
             bound = bounds.get((seg, stat), bounds.get(stat))
             out.setdefault(str(seg), {})[stat] = {
-                "value": finite_or_none(shown(stat, v)), "noise": finite_or_none(shown_noise(stat, noise[(seg, stat)])),
+                "value": finite_or_none(shown(stat, v)),
+                "noise": finite_or_none(shown_noise(stat, noise[(seg, stat)])),
                 "bound": None if bound is None else finite_or_none(shown(stat, bound))}
         return out
