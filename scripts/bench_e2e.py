@@ -4,6 +4,8 @@ against anchors measured in the same run on the same files: pyarrow's own stream
 rate and the core-only E+M rate (Mixture.learn on the same rows in batches of 65,536, on
 one BLAS thread as `shoal ingest` runs; one anchor pass before each ingest, best of the
 same number of runs, so that a quiet or busy moment of a shared machine touches both).
+Then the cost of drift and lifecycle (`watch_cost_table`, also alone with `--cost`): the
+same Parquet ingest with them off and on, interleaved, the median of the on/off ratios.
 Then peak RSS of `shoal ingest` for a 1,000,000-row and a 10,000,000-row Parquet file.
 
 Each `shoal ingest` takes two drops of the same size and format: a lead drop (other rows
@@ -321,8 +323,50 @@ def e2e_table(rows: int = 1_000_000, big_rows: int = 10_000_000, repeats: int = 
                           f"{r['rss_mb']:>6.0f} MB")
         print("targets: Parquet full e2e >= 0.60 x core; CSV e2e >= 0.50 x read")
         del X
+        cost = watch_cost_table(rows, repeats, covariances=covariances,
+                                drops={"warm": warm, "drop": drops["parquet"],
+                                       "lead": leads["parquet"]}, workdir=tmp)
         peaks = memory_table(tmp, warm, drops["parquet"], rows, big_rows) if memory else None
-    return {"rates": results, "memory": peaks}
+    return {"rates": results, "cost": cost, "memory": peaks}
+
+
+def watch_cost_table(rows: int = 1_000_000, repeats: int = 3, workdir: Path | None = None,
+                     covariances=("full", "diag"), drops: dict | None = None) -> dict:
+    """What drift and lifecycle cost end to end: Parquet `shoal ingest` (lead drop, then the
+    measured one) with them off and on, interleaved ``repeats`` times (off, on, off, on,
+    ...) so both see the same moments of a shared machine; the on/off ratio of each pair
+    and their median, per covariance type."""
+    with tempfile.TemporaryDirectory(prefix="shoal-cost-", dir=workdir) as tmp:
+        tmp = Path(tmp)
+        if drops is None:
+            (tmp / "data").mkdir()
+            drops = {"warm": write_drop(tmp / "data" / "warm.parquet", WARM_ROWS, seed=1),
+                     "drop": write_drop(tmp / "data" / "drop.parquet", rows),
+                     "lead": write_drop(tmp / "data" / "lead.parquet", rows, seed=3)}
+        print(f"\nCost of drift and lifecycle: `shoal ingest` of a {rows:,}-row Parquet drop "
+              f"(after a lead drop), D={N_FEATURES}, K={N_COMPONENTS}; off and on interleaved "
+              f"{repeats} times; ratio = e2e rate on / off of each pair, and the median")
+        print(f"{'cov':>5} {'run':>4} | {'off rows/s':>11} {'on rows/s':>11} {'on/off':>7}")
+        out = {}
+        for cov in covariances:
+            folders = {on: _warmed(tmp / f"cost-{cov}-{int(on)}", cov, on, drops["warm"])
+                       for on in (False, True)}
+            ratios, rates = [], {False: [], True: []}
+            for i in range(repeats):
+                for on in (False, True):
+                    run = _fresh_state(folders[on], folders[on].with_name(
+                        folders[on].name + "-run"))
+                    rates[on].append(rows / _ingest(run, drops["drop"], drops["lead"])["input"])
+                ratios.append(rates[True][-1] / rates[False][-1])
+                print(f"{cov:>5} {i + 1:>4} | {rates[False][-1]:>11,.0f} "
+                      f"{rates[True][-1]:>11,.0f} {ratios[-1]:>7.2f}")
+            med = float(np.median(ratios))
+            out[cov] = {"ratio": med, "off": float(np.median(rates[False])),
+                        "on": float(np.median(rates[True]))}
+            print(f"{cov:>5} {'med':>4} | {out[cov]['off']:>11,.0f} {out[cov]['on']:>11,.0f} "
+                  f"{med:>7.2f}")
+        print("targets: on/off >= 0.75 (full), >= 0.60 (diag)")
+    return out
 
 
 def memory_table(tmp: Path, warm: Path, small: Path, rows: int, big_rows: int) -> dict:
@@ -362,6 +406,16 @@ STAGES = [
 ]
 
 
+def _one_blas_thread() -> dict:
+    """The environment with one BLAS thread unless it says otherwise, as the shoal command
+    sets it: in the child's environment, since it must hold before numpy is loaded (this
+    module loads numpy before it could set it)."""
+    env = dict(os.environ)
+    for var in ("OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+        env.setdefault(var, "1")
+    return env
+
+
 def _stage_child(cfg: str, drop: str) -> int:
     """Run `shoal ingest` in this process with the stages timed; print them as JSON."""
     import functools
@@ -369,8 +423,6 @@ def _stage_child(cfg: str, drop: str) -> int:
     import resource
     import threading
 
-    for var in ("OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):   # as the shoal command does
-        os.environ.setdefault(var, "1")
     cpu: dict[str, float] = {}
     local = threading.local()
 
@@ -436,8 +488,10 @@ def stages_table(rows: int = 1_000_000, workdir: Path | None = None) -> dict:
             folder = _warmed(tmp / f"state-{int(watch_drift)}", "full", watch_drift, warm)
             for fmt, drop in drops.items():
                 cfg = _fresh_state(folder, folder.with_name(folder.name + "-run"))
-                out = subprocess.run([sys.executable, __file__, "--stage-child", str(cfg),
-                                      str(drop)], capture_output=True, text=True)
+                out = subprocess.run([sys.executable, "-m", "scripts.bench_e2e", "--stage-child",
+                                      str(cfg), str(drop)], capture_output=True, text=True,
+                                     cwd=Path(__file__).resolve().parent.parent,
+                                     env=_one_blas_thread())
                 if out.returncode != 0 or not out.stdout.strip():
                     raise RuntimeError(f"shoal ingest {drop.name} (stages) exited "
                                        f"{out.returncode}: {out.stderr[-2000:]}")
@@ -471,9 +525,14 @@ def main() -> int:
     p.add_argument("--no-memory", action="store_true", help="skip the peak RSS table")
     p.add_argument("--stages", action="store_true",
                    help="CPU seconds per stage instead of the rate and memory tables")
+    p.add_argument("--cost", action="store_true",
+                   help="only the cost of drift and lifecycle (on/off, interleaved)")
     a = p.parse_args()
     if a.stages:
         stages_table(a.rows)
+        return 0
+    if a.cost:
+        watch_cost_table(a.rows, a.repeats, covariances=tuple(a.covariance or ("full", "diag")))
         return 0
     e2e_table(a.rows, a.big_rows, a.repeats, memory=not a.no_memory,
               covariances=tuple(a.covariance or ("full", "diag")))

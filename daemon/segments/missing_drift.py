@@ -9,7 +9,8 @@ mass of its rows that missed the feature (``miss``, and its squares ``miss2``) a
 part of the first moments that was imputed (``imputed``), so that
 
 * a feature's own mean in the window uses only the rows where it was observed, with
-  Kish's effective rows of those rows (``feature_shift`` and the explanations);
+  Kish's effective rows of those rows (``feature_shift`` and the explanations;
+  :mod:`shoal.core.window_statistics` computes both statistics);
 * ``missing_share`` is the share of a segment's rows that missed a feature against the
   baseline's share, the largest over the features; a probe that stops reporting is
   itself news. Its noise is the binomial sd at the effective rows of the window and
@@ -20,7 +21,6 @@ Complete streams never add these keys, so their state is as before.
 
 from __future__ import annotations
 
-import math
 
 import numpy as np
 
@@ -29,7 +29,7 @@ from shoal.core.missing import expected_scatter
 from shoal.daemon.files.gaps import observed_counts
 
 __all__ = ["GapPiece", "gap_piece", "add_gap_sums", "merge_gap_sums", "window_shares",
-           "missing_share_statistics", "observed_feature_means", "missing_note", "GAP_KEYS"]
+           "missing_note", "GAP_KEYS"]
 
 GAP_KEYS = ("miss", "miss2", "imputed")
 MOSTLY_MISSING = 0.5    # explanations name a feature missing from more of a segment's rows
@@ -94,48 +94,6 @@ def window_shares(segments: dict) -> dict:
         if acc.get("T", 0.0) > 0.0 and acc.get("miss") is not None:
             out[sid] = (np.asarray(acc["miss"]) / acc["T"]).tolist()
     return out
-
-
-def missing_share_statistics(segments: dict, ids, ref_n_eff, baseline: dict | None,
-                             n_features: int, values: dict, noise: dict, detail: dict) -> None:
-    """``missing_share`` per segment into ``values``/``noise``; its detail into ``detail``."""
-    baseline = baseline or {}
-    for k, sid in enumerate(ids):
-        acc = segments.get(str(sid))
-        if not acc or acc["T"] <= 0.0 or acc["Q"] <= 0.0:
-            continue
-        share = np.asarray(acc["miss"]) / acc["T"] if acc.get("miss") is not None \
-            else np.zeros(n_features)
-        ref = np.asarray(baseline.get(str(sid), np.zeros(n_features)))
-        diff = np.abs(share - ref)
-        j = int(np.argmax(diff))
-        n_eff = acc["T"] * acc["T"] / acc["Q"]
-        p = 0.5 * (share[j] + ref[j])
-        inv_ref = 0.0 if not math.isfinite(ref_n_eff[k]) else 1.0 / ref_n_eff[k]
-        values[(sid, "missing_share")] = float(diff[j])
-        noise[(sid, "missing_share")] = math.sqrt(max(p * (1.0 - p), 0.0) * (1.0 / n_eff + inv_ref))
-        detail.setdefault(sid, {})["missing"] = {"feature": j, "share": float(share[j]),
-                                                 "baseline_share": float(ref[j]),
-                                                 "shares": share.tolist()}
-
-
-def observed_feature_means(segments: dict, ids, center, means, n_effs):
-    """Each feature's window mean over the rows that observed it, and those rows' Kish
-    effective count, shape (len(ids), D) both; segments without gaps keep ``means`` and
-    ``n_effs``."""
-    fmeans = np.array(means, dtype=np.float64)
-    f_neff = np.repeat(np.asarray(n_effs, dtype=np.float64)[:, None], fmeans.shape[1], axis=1)
-    for i, sid in enumerate(ids):
-        acc = segments.get(str(sid))
-        if not acc or acc.get("miss") is None:
-            continue
-        T = acc["T"] - np.asarray(acc["miss"])
-        Q = acc["Q"] - np.asarray(acc["miss2"])
-        seen = T > 0.0
-        M = np.asarray(acc["M"]) - np.asarray(acc["imputed"])
-        fmeans[i, seen] = center[seen] + M[seen] / T[seen]
-        f_neff[i] = np.where(seen & (Q > 0.0), T * T / np.where(Q > 0.0, Q, 1.0), 0.0)
-    return fmeans, f_neff
 
 
 def missing_note(info: dict, names) -> str | None:

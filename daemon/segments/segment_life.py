@@ -40,22 +40,20 @@ and takes a born segment in once it has settled (``lifecycle.settle_rows`` rows)
 from __future__ import annotations
 
 import base64
-import hashlib
 import json
 import logging
-from dataclasses import replace
 
 import numpy as np
 
 from shoal.config import Settings
 from shoal.core import Mixture, ModelError
-from shoal.core.drift import Baseline
 from shoal.core.lifecycle import (
     add_component,
     OVERLAP_MEASURES,
     compact_group,
     merge,
     overlapping_pairs,
+    recent_share,
     retire,
     split,
     split_test,
@@ -65,9 +63,14 @@ from shoal.core.lifecycle import (
     widening_explains,
 )
 from shoal.daemon.runtime.logs import log_event
-from shoal.daemon.segments.monitor import PAYLOAD_SCHEMA_VERSION
+from shoal.daemon.segments.life_events import (
+    describe,
+    history_with_events,
+    lifecycle_alert_id,
+    lifecycle_event,
+    log_lifecycle_alerts,
+)
 from shoal.daemon.state.store import HistoryRow
-from shoal.daemon.model.transforming import feature_centres, history_units
 
 __all__ = ["LifeWatch", "lifecycle_alert_id", "STATE_FORMAT"]
 
@@ -99,37 +102,13 @@ def _unpack(packed: str | None, n_features: int) -> np.ndarray:
     return rows.astype(np.float64)
 
 
-def _recent_share(rows: np.ndarray, n: int, trim: float = 0.1) -> float:
-    """The share of the stream's rows that a group born at row ``n`` takes, from the
-    stream positions ``rows`` of its members in the pool.
-
-    A new group's rows arrive at a steady rate since it appeared, while a few older
-    scattered rows may sit in the pool with them. The oldest ``trim`` share of the
-    members is set aside: with ``c`` members sorted by row, ``r_j`` the first kept
-    (``j = ceil(trim c)``), the share is ``(c - j + 1) / (n - r_j)``. For rows at a
-    steady rate since row ``s`` this is ``c / (n - s)`` up to sampling, whatever
-    ``trim``; the group's first rows alone would let one old stray row stretch the
-    span (and shrink the share) as far back as the pool reaches.
-    """
-    rows = np.sort(np.asarray(rows, dtype=np.int64))
-    c = rows.size
-    j = max(int(np.ceil(trim * c)), 1)
-    return (c - j + 1) / max(n - int(rows[j - 1]), c - j + 1)
-
-
-def lifecycle_alert_id(event: str, segment: int) -> str:
-    """Ids are never reused, so an event and a segment id name one cause."""
-    cause = json.dumps([event, int(segment)])
-    return "segment-" + hashlib.sha256(cause.encode()).hexdigest()[:20]
-
-
-def _fmt(x: float) -> str:
-    return f"{x:.4g}"
-
-
 class LifeWatch:
-    """Lifecycle decisions for the rows of one input; ``state``, ``events`` and ``alerts``
-    go to the commit."""
+    """Lifecycle decisions for the rows of one input: it pools the rows no segment
+    explains and samples every segment's rows as pieces are learned, and at each
+    decision point retires, merges, gives birth and splits, telling the drift watch
+    of the input which segments came and went. Its ``state`` (the checkpoint's
+    ``extra["lifecycle"]``), ``events`` (segment history) and ``alerts`` go to the
+    commit with the model."""
 
     # the model's FeatureTransforms (set by the pipeline): summaries give a transformed
     # feature's median and central 68% interval in the data's units
@@ -215,18 +194,24 @@ class LifeWatch:
         fresh = st.setdefault("fresh", {})
         first = (-int(before.n_rows)) % _SAMPLE_STRIDE
         picked = np.arange(first, len(X), _SAMPLE_STRIDE)
+        rows = X[picked]
         # rows with missing features (NaN) have no place in a split test's sample
-        picked = picked[~np.isnan(X[picked]).any(axis=1)]
+        complete = ~np.isnan(rows).any(axis=1)
+        picked, rows = picked[complete], rows[complete]
         if picked.size == 0:
             return
         cap = self._sample_cap()
         labels = scores.segment[picked]
-        for sid in np.unique(labels).tolist():
-            # rounded as the checkpoint keeps them, so a restart sees the same rows
-            rows = X[picked[labels == sid]].astype(np.float32).astype(np.float64)
+        # rounded as the checkpoint keeps them, so a restart sees the same rows; grouped
+        # by segment in stream order (a stable sort)
+        rows = rows.astype(np.float32).astype(np.float64)
+        order = np.argsort(labels, kind="stable")
+        sids, starts, counts = np.unique(labels[order], return_index=True, return_counts=True)
+        for sid, a, c in zip(sids.tolist(), starts.tolist(), counts.tolist()):
             key = str(sid)
-            self._samples[key] = np.concatenate([self._sampled(key), rows])[-cap:]
-            fresh[key] = fresh.get(key, 0) + len(rows)
+            self._samples[key] = np.concatenate([self._sampled(key),
+                                                 rows[order[a:a + c]]])[-cap:]
+            fresh[key] = fresh.get(key, 0) + c
 
     def _sampled(self, key: str) -> np.ndarray:
         """The rows of a segment's sample, shape (n, n_features)."""
@@ -424,7 +409,7 @@ class LifeWatch:
                       detail=f"segment {widened} widened explains the group as well "
                              f"(BIC gain of a new group {gain:.1f}; nan: centred on it)")
             return mixture
-        weight = float(np.clip(_recent_share(self._pool_rows[members], n),
+        weight = float(np.clip(recent_share(self._pool_rows[members], n),
                                _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT))
         try:
             mixture = add_component(mixture, weight, mean, cov)
@@ -469,105 +454,27 @@ class LifeWatch:
             return
         for sid in ready:
             del unsettled[str(sid)]
-        st = getattr(watch, "state", None)
-        present = [sid for sid in ready if sid in set(mixture.ids.tolist())]
-        if st is None or st.get("baseline") is None or not present:
-            return   # a baseline taken later includes them
-        ref = Baseline.from_dict(st["baseline"]).adopt(mixture, present)
-        st["baseline"] = ref.to_dict()
-        log_event("drift_baseline_adopted", segments=present, model_version=self.version)
+        present = watch.adopt_segments(mixture, ready) if watch is not None else []
+        if present:
+            log_event("drift_baseline_adopted", segments=present, model_version=self.version)
 
     def _drop_baseline(self, watch, ids, why: str) -> None:
-        """A segment that left: out of the drift baseline, its raised drift alerts
-        cleared (``cleared_by`` the event), its part-way crossings forgotten."""
-        st = getattr(watch, "state", None)
-        if st is None:
-            return
-        if st.get("baseline") is not None:
-            st["baseline"] = Baseline.from_dict(st["baseline"]).without(ids).to_dict()
-        gone = {str(int(i)) for i in ids}
-        for key in sorted(st.get("open", {})):
-            if key.split("|")[0] not in gone:
-                continue
-            alert = st["open"].pop(key)
-            payload = dict(alert["payload"], status="cleared", value=None, cleared_by=why,
-                           note=f"segment {key.split('|')[0]} {why}")
-            payload["model_version"] = {"first": alert["payload"]["model_version"]["first"],
-                                        "last": self.version}
-            watch.alerts.append((f"{payload['id']}.cleared", payload))
-        if st.get("bounds"):
-            for sid in gone:
-                st["bounds"]["entries"].pop(sid, None)
+        """A segment that left: out of the drift baseline and its drift alerts cleared."""
+        if watch is not None:
+            watch.drop_segments(ids, why)
 
     # -- events ----------------------------------------------------------------------
     def _describe(self, mean, sd) -> str:
-        t = self.transforms
-        back = {} if t is None or t.identity else feature_centres(t, self.features, mean, sd)
-        return ", ".join(
-            f"{f} {_fmt(back[f]['median'])} [{_fmt(back[f]['interval'][0])}, "
-            f"{_fmt(back[f]['interval'][1])}]" if f in back else f"{f} {_fmt(m)}±{_fmt(s)}"
-            for f, m, s in zip(self.features, mean, sd))
+        return describe(self.features, self.transforms, mean, sd)
 
-    def _event(self, kind: str, sid: int, n: int, *, weight, mean, spread, summary, **more):
-        row = self.state["offset"] + n
-        mean, spread = history_units(self.transforms, mean, spread)   # the data's units
-        event = {"event": kind, "segment": int(sid), "row": int(row),
-                 "weight": float(weight), "mean": np.asarray(mean).tolist(),
-                 "spread": np.asarray(spread).tolist(), **more}
-        self.events.append(event)
-        payload = {
-            "schema_version": PAYLOAD_SCHEMA_VERSION,
-            "id": lifecycle_alert_id(kind, sid),
-            "kind": "lifecycle",
-            "status": kind,
-            "severity": "warning",
-            "segment": int(sid),
-            "statistic": "segments",
-            "model_version": {"first": self.version, "last": self.version},
-            "rows": {"first": int(row), "last": int(row)},
-            "inputs": [self.file] if self.file else [],
-            "explanation": {"summary": summary,
-                            "mean": dict(zip(self.features, event["mean"])),
-                            "spread": dict(zip(self.features, event["spread"])),
-                            "weight": event["weight"],
-                            **{k: v for k, v in more.items()}},
-        }
-        self.alerts.append((f"{payload['id']}.{kind}", payload))
+    def _event(self, kind: str, sid: int, n: int, **fields) -> None:
+        lifecycle_event(self, kind, sid, n, **fields)
 
     def history(self, rows: list[HistoryRow]) -> list[HistoryRow]:
         """The segment history of this version with the events marked; a segment that
         left gets a row of its own (weight 0, its last mean and spread)."""
-        notes: dict[int, list[str]] = {}
-        last: dict[int, dict] = {}
-        for e in self.events:
-            text = {"born": "born", "retired": "retired",
-                    "merged": f"merged into {e.get('into')}",
-                    "split": f"split, part {e.get('new')} new"}[e["event"]]
-            notes.setdefault(e["segment"], []).append(f"{text} at row {e['row']}")
-            if e["event"] == "merged":
-                notes.setdefault(e["into"], []).append(
-                    f"absorbed {e['segment']} at row {e['row']}")
-            if e["event"] == "split":
-                notes.setdefault(e["new"], []).append(
-                    f"split from {e['segment']} at row {e['row']}")
-            last[e["segment"]] = e
-        out = []
-        for r in rows:
-            if r.segment in notes:
-                r = replace(r, event="; ".join(notes.pop(r.segment)))
-            out.append(r)
-        for sid in sorted(notes):
-            e = last.get(sid)
-            if e is None:
-                continue
-            out.append(HistoryRow(segment=sid, weight=0.0, rows=0, mean=e["mean"],
-                                  spread=e["spread"], event="; ".join(notes[sid])))
-        return out
+        return history_with_events(self.events, rows)
 
     def log_events(self, model_version: int) -> None:
         """One log line per event; called once they are committed."""
-        for _, payload in self.alerts:
-            log_event(f"segment_{payload['status']}", logging.INFO, id=payload["id"],
-                      segment=payload["segment"], model_version=model_version,
-                      row=payload["rows"]["first"],
-                      summary=payload["explanation"]["summary"])
+        log_lifecycle_alerts(self.alerts, model_version)

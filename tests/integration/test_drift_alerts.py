@@ -121,6 +121,27 @@ def test_doubling_of_a_segments_spread_is_alerted(stream):
           f"ratio {alert['value']:.2f}")
 
 
+def test_diag_model_windows_sum_variances_only_and_still_see_a_spread_doubling(stream):
+    # a diag model's windows keep each segment's sums of squares, not its scatter
+    # matrices: their off-diagonal entries stay zero, and the spread change is found
+    weights, means, covs = _truth()
+    comp = 1
+    rng = np.random.default_rng(9)
+    s = stream(covariance="diag")
+    s.feed(_rows(rng, CHANGE_ROW, weights, means, covs), 10_000)
+    segment = s.segment_of(means[comp])
+    s.feed(_rows(rng, AFTER, weights, means, covs, spread=(comp, 2.0)), 10_000)
+    window = s.drift_state()["window"]
+    assert window is not None and window["segments"]
+    for acc in window["segments"].values():
+        S = np.asarray(acc["S"])
+        assert np.all(np.diag(S) > 0)
+        assert np.all(S[~np.eye(D, dtype=bool)] == 0.0)
+    alert = _first_raised(s.alerts(), "spread_ratio", segment)
+    assert alert is not None, s.alerts()
+    assert alert["value"] > 1.5
+
+
 def test_alerts_do_not_depend_on_how_the_stream_is_cut(stream):
     # Windows are counted along the stream, so other drop sizes give the same alerts
     # (same ids and rows; values equal up to the order of floating-point sums); only

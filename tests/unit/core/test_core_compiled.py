@@ -379,9 +379,9 @@ def test_tiled_gather_syrk_equals_the_weighted_outer_products(W, m, tile_isa):
 
 
 def test_segment_scatter_is_the_same_on_both_paths(numpy_then_compiled):
-    # drift windows' second moments (shoal.core.drift.add_segment_scatter): rows at or
+    # drift windows' second moments (shoal.core.window_statistics.add_segment_scatter): rows at or
     # under the floor are left out on both paths, the rest weighted by responsibility
-    from shoal.core.drift import add_segment_scatter
+    from shoal.core.window_statistics import add_segment_scatter
     rng = np.random.default_rng(76)
     X = rng.normal(size=(700, 6))
     R = rng.dirichlet(np.ones(4), size=700).T.copy()

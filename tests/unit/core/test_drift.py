@@ -384,7 +384,7 @@ def test_trigamma_is_scipys_polygamma_of_order_one():
     over the arguments it meets (half effective rows, from just above 0 to 10^7)."""
     from scipy import special
 
-    from shoal.core.drift import _trigamma
+    from shoal.core.drift_noise import _trigamma
 
     x = np.concatenate([np.linspace(0.01, 10, 500), np.geomspace(10, 1e7, 500)])
     np.testing.assert_array_equal(_trigamma(x), special.polygamma(1, x))

@@ -1,0 +1,233 @@
+"""Noise levels of the drift statistics: the size each reaches from estimation noise alone.
+
+Each statistic comes with the root-mean-square size it reaches from
+estimation noise alone when nothing has changed, at the effective sample size of the
+estimates. For Gaussian rows, an estimate from ``n`` effective rows in ``D``
+features, and a covariance type with ``q`` free parameters per component
+(``D (D + 1) / 2`` full, ``D`` diag, ``1`` spherical):
+
+* mean shift: ``n d^2 ~ chi2(D)``, so ``rms = sqrt(D / n)``;
+* spread change: ``n S ~ Wishart(n - 1, Sigma)`` gives
+  ``var log|S| = sum_{i=1..D} psi1((n - i) / 2)`` (full; ``psi1`` the trigamma
+  function), ``D psi1((n - 1) / 2)`` (diag, D independent chi-squares) and
+  ``D^2 psi1(D (n - 1) / 2)`` (spherical, one pooled chi-square); all ``~ 2D / n``;
+* Hellinger: to second order ``D_B = |delta|^2 / 8 + ||E||_F^2 / 16`` for a whitened
+  mean error ``delta`` and covariance error ``E``; ``E|delta|^2 = D / n`` and
+  ``E||E||_F^2 = 2 q / n``, and ``H^2 = 1 - exp(-D_B) ~ D_B``, so
+  ``rms H = sqrt((D + q) / (8 n))``;
+* weight: a share of ``N`` effective rows is binomial, ``sd = sqrt(w (1 - w) / N)``;
+* fit: the standard error of a batch mean, ``sd(log-density) / sqrt(n_rows)``.
+
+When the baseline is itself an estimate (from ``n_ref`` effective rows), the two
+errors add: the variance is ``v(n) + v(n_ref)``. This is exact for independent
+estimates and errs on the large (quiet) side when the two share rows. A segment's
+effective rows in a mixture are taken as ``weight * n_eff`` of the mixture (Kish's
+``n_eff = 1 / sum w_i^2`` over the rows' step weights); that is exact for hard
+assignments that fall at random among the rows.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from scipy import special
+
+from .errors import ModelError
+
+__all__ = ["mean_shift_noise", "spread_noise", "spread_variance", "hellinger_noise",
+           "weight_noise", "fit_noise"]
+
+# ------------------------------------------------------------------------ noise levels
+
+
+def _per_estimate(n_eff, variance, min_n):
+    """``variance(n)`` where ``n > min_n``; ``inf`` at or below it; 0 for exact (``inf``) n."""
+    n = np.asarray(n_eff, dtype=np.float64)
+    exact = np.isposinf(n)
+    usable = (n > min_n) & ~exact
+    if usable.all():   # the usual case, once per drift window: no masking needed
+        return variance(n)
+    safe = np.where(usable, n, min_n + 1.0)
+    return np.where(usable, variance(safe), np.where(exact, 0.0, np.inf))
+
+
+def _combined(n_eff, ref_n_eff, variance, min_n):
+    total = _per_estimate(n_eff, variance, min_n) + _per_estimate(ref_n_eff, variance, min_n)
+    out = np.sqrt(total)
+    return float(out) if out.ndim == 0 else out
+
+
+def _trigamma(x):
+    """``polygamma(1, x)`` as the Hurwitz zeta ``zeta(2, x)``, which scipy's polygamma
+    computes it from (times ``(-1)**2 * gamma(2) = 1``: the same values) with less
+    overhead (it is called once per drift window)."""
+    return special.zeta(2.0, x)
+
+
+def _full_log_gv_variance(n, n_features):
+    i = np.arange(1, n_features + 1)
+    return np.sum(_trigamma((n[..., None] - i) / 2.0), axis=-1)
+
+
+def _diag_log_gv_variance(n, n_features):
+    return n_features * _trigamma((n - 1.0) / 2.0)
+
+
+def _spherical_log_gv_variance(n, n_features):
+    return n_features**2 * _trigamma(n_features * (n - 1.0) / 2.0)
+
+
+# variance of log|S| from n rows, and the fewest rows that give a finite one
+_LOG_GV_VARIANCE = {
+    "full": (_full_log_gv_variance, lambda d: float(d)),
+    "diag": (_diag_log_gv_variance, lambda d: 1.0),
+    "spherical": (_spherical_log_gv_variance, lambda d: 1.0),
+}
+
+_COVARIANCE_PARAMETERS = {
+    "full": lambda d: d * (d + 1) // 2,
+    "diag": lambda d: d,
+    "spherical": lambda d: 1,
+}
+
+
+def _check_covariance_type(covariance):
+    if covariance not in _LOG_GV_VARIANCE:
+        raise ModelError(
+            f"covariance should be one of {sorted(_LOG_GV_VARIANCE)}, got {covariance!r}"
+        )
+
+
+def mean_shift_noise(n_eff, n_features, ref_n_eff=math.inf):
+    """RMS mean shift (baseline sds) from estimation noise alone: ``sqrt(D / n)``.
+
+    Parameters
+    ----------
+    n_eff : float or array_like
+        Effective rows behind the current mean.
+    n_features : int
+    ref_n_eff : float or array_like, default inf
+        Effective rows behind the baseline mean (``inf``: the baseline is exact).
+
+    Returns
+    -------
+    noise : float or ndarray
+        ``sqrt(D / n_eff + D / ref_n_eff)``; ``inf`` where ``n_eff <= 0``.
+    """
+    return _combined(n_eff, ref_n_eff, lambda n: n_features / n, 0.0)
+
+
+def spread_noise(n_eff, n_features, covariance="full", ref_n_eff=math.inf):
+    """Standard deviation of ``log |S|`` estimated from ``n_eff`` Gaussian rows.
+
+    ``sum_{i=1..D} psi1((n - i) / 2)`` (full), ``D psi1((n - 1) / 2)`` (diag),
+    ``D^2 psi1(D (n - 1) / 2)`` (spherical), each about ``2 D / n``; the baseline's
+    variance is added. ``inf`` when there are too few rows for a covariance
+    (``n <= D`` full, ``n <= 1`` otherwise).
+
+    Parameters
+    ----------
+    n_eff : float or array_like
+        Effective rows behind the current estimate.
+    n_features : int
+    covariance : {"full", "diag", "spherical"}, default "full"
+    ref_n_eff : float or array_like, default inf
+        Effective rows behind the baseline (``inf``: exact).
+
+    Returns
+    -------
+    noise : float or ndarray
+        The standard deviation of ``log |S| - log |S_ref|``.
+    """
+    _check_covariance_type(covariance)
+    variance, min_rows = _LOG_GV_VARIANCE[covariance]
+    return _combined(n_eff, ref_n_eff, lambda n: variance(n, n_features), min_rows(n_features))
+
+
+def spread_variance(n_eff, n_features, covariance="full"):
+    """Variance of ``log |S|`` from one estimate's ``n_eff`` rows (the terms of
+    :func:`spread_noise`, for a side that is compared many times, such as a baseline).
+
+    Parameters
+    ----------
+    n_eff : float or array_like
+    n_features : int
+    covariance : {"full", "diag", "spherical"}, default "full"
+
+    Returns
+    -------
+    variance : float or ndarray
+        0 for an exact estimate (``inf`` rows), ``inf`` with too few rows for a
+        covariance; ``spread_noise(n, D, c, n_ref) = sqrt(spread_variance(n) +
+        spread_variance(n_ref))``.
+    """
+    _check_covariance_type(covariance)
+    variance, min_rows = _LOG_GV_VARIANCE[covariance]
+    return _per_estimate(n_eff, lambda n: variance(n, n_features), min_rows(n_features))
+
+
+def hellinger_noise(n_eff, n_features, covariance="full", ref_n_eff=math.inf):
+    """RMS Hellinger distance of an estimated Gaussian from the truth: ``sqrt((D + q) / (8 n))``.
+
+    ``q`` is the number of covariance parameters (``D (D + 1) / 2`` full, ``D`` diag,
+    ``1`` spherical). Capped at 1, the largest Hellinger distance.
+
+    Parameters
+    ----------
+    n_eff : float or array_like
+        Effective rows behind the current estimate.
+    n_features : int
+    covariance : {"full", "diag", "spherical"}, default "full"
+    ref_n_eff : float or array_like, default inf
+        Effective rows behind the baseline (``inf``: exact).
+
+    Returns
+    -------
+    noise : float or ndarray
+    """
+    _check_covariance_type(covariance)
+    size = n_features + _COVARIANCE_PARAMETERS[covariance](n_features)
+    noise = _combined(n_eff, ref_n_eff, lambda n: size / (8.0 * n), 0.0)
+    return float(min(noise, 1.0)) if np.ndim(noise) == 0 else np.minimum(noise, 1.0)
+
+
+def weight_noise(weight, total_n_eff, ref_total_n_eff=math.inf):
+    """Standard deviation of a segment's weight: ``sqrt(w (1 - w) / N)`` (binomial share).
+
+    Parameters
+    ----------
+    weight : float or array_like
+        The weight under "no change" (the baseline weight).
+    total_n_eff : float
+        Effective rows behind the current weights (for a batch, its row count).
+    ref_total_n_eff : float, default inf
+        Effective rows behind the baseline weights.
+
+    Returns
+    -------
+    noise : float or ndarray
+        ``sqrt(w (1 - w) (1 / N + 1 / N_ref))``.
+    """
+    share = np.asarray(weight, dtype=np.float64)
+    spread = share * (1.0 - share)
+    return _combined(total_n_eff, ref_total_n_eff, lambda n: spread / n, 0.0)
+
+
+def fit_noise(log_density) -> float:
+    """Standard error of a batch's mean log-density: ``sd / sqrt(n_rows)`` (``inf`` below 2 rows).
+
+    Parameters
+    ----------
+    log_density : array_like of shape (n_samples,)
+
+    Returns
+    -------
+    noise : float
+        ``std(log_density, ddof=1) / sqrt(n_rows)``.
+    """
+    values = np.asarray(log_density, dtype=np.float64)
+    if values.size < 2:
+        return math.inf
+    return float(np.std(values, ddof=1) / math.sqrt(values.size))
+
+

@@ -1,0 +1,115 @@
+"""Rows that no segment explains: squared Mahalanobis distances and chi-square bounds.
+
+A row a component generated has a squared Mahalanobis distance to it distributed as
+chi-square with ``n_features`` degrees of freedom; a row beyond the ``threshold``
+quantile of every component is unexplained. The pool of such rows is where new
+segments are born from.
+"""
+from __future__ import annotations
+
+import functools
+
+import numpy as np
+from scipy import special
+
+from .errors import ModelError
+from .mixture import Mixture
+
+__all__ = ["chi2_quantile", "squared_mahalanobis", "unexplained", "unexplained_below"]
+
+_LOG_2PI = float(np.log(2.0 * np.pi))
+
+
+@functools.lru_cache(maxsize=64)
+def _chi2_quantile(probability: float, dof: int) -> float:
+    return float(2.0 * special.gammaincinv(0.5 * dof, probability))
+
+
+def chi2_quantile(probability, dof) -> float:
+    """The chi-square(``dof``) quantile at ``probability``.
+
+    As ``scipy.stats.chi2.ppf``, which computes ``2 gammaincinv(dof / 2, p)``; cached,
+    and without importing scipy.stats, which costs seconds at start-up.
+
+    Parameters
+    ----------
+    probability : float in (0, 1)
+    dof : int
+
+    Returns
+    -------
+    float
+    """
+    return _chi2_quantile(float(probability), int(dof))
+
+
+def squared_mahalanobis(mixture: Mixture, X) -> np.ndarray:
+    """Squared Mahalanobis distance of every row to every component.
+
+    Parameters
+    ----------
+    X : array_like of shape (n_samples, n_features)
+        Finite rows in the data's own units.
+
+    Returns
+    -------
+    d2 : ndarray of shape (n_samples, n_components)
+        ``(x - mu_k)' Sigma_k^-1 (x - mu_k)``; the same in data and standardised units.
+    """
+    # log N(z | k) = -0.5 (D log 2 pi + d2) + log det U_k, and data-unit densities
+    # differ from standardised ones by -sum(log scale).
+    log_gauss = mixture.component_log_density(X) + np.sum(np.log(mixture.scale))
+    d2 = -2.0 * (log_gauss - mixture.log_det) - mixture.n_features * _LOG_2PI
+    return np.maximum(d2, 0.0)
+
+
+def unexplained(mixture: Mixture, X, threshold: float = 0.999) -> np.ndarray:
+    """Rows that no segment explains: too far from every component.
+
+    A row is unexplained when its squared Mahalanobis distance to every component
+    exceeds the ``threshold`` quantile of the chi-square distribution with
+    ``n_features`` degrees of freedom (the distribution of that distance for a row
+    the component did generate), from :func:`chi2_quantile`.
+
+    Parameters
+    ----------
+    mixture : Mixture
+    X : array_like of shape (n_samples, n_features)
+    threshold : float in (0, 1), default 0.999
+        With it, a row of a segment is unexplained by that segment with probability
+        ``1 - threshold``.
+
+    Returns
+    -------
+    mask : ndarray of bool, shape (n_samples,)
+    """
+    threshold = float(threshold)
+    if not 0.0 < threshold < 1.0:
+        raise ModelError(f"threshold should be a probability in (0, 1), got {threshold!r}")
+    bound = chi2_quantile(threshold, mixture.n_features)
+    return np.all(squared_mahalanobis(mixture, X) > bound, axis=1)
+
+
+def unexplained_below(mixture: Mixture, threshold: float = 0.999) -> float:
+    """A log-density above which no row can be unexplained (a cheap first filter).
+
+    A row that every component leaves unexplained has ``d2_k > b`` for all ``k``
+    (``b`` the chi-square quantile), so its log-density under the mixture is below
+    ``logsumexp_k(log w_k - (D log 2 pi + b) / 2 + log det U_k) - sum(log scale)``.
+    Only rows under this bound need the exact test of :func:`unexplained`.
+
+    Parameters
+    ----------
+    mixture : Mixture
+    threshold : float in (0, 1), default 0.999
+
+    Returns
+    -------
+    bound : float
+        In the data's own units, as ``Scores.log_density``.
+    """
+    bound = chi2_quantile(threshold, mixture.n_features)
+    terms = (np.log(mixture.weights) - 0.5 * (mixture.n_features * _LOG_2PI + bound)
+             + mixture.log_det)
+    top = float(np.max(terms))
+    return top + float(np.log(np.sum(np.exp(terms - top)))) - float(np.sum(np.log(mixture.scale)))

@@ -1,0 +1,176 @@
+"""A drift window's bookkeeping: its JSON-able record and the per-segment sums in it.
+
+A window is a plain dict committed in the checkpoint's ``extra["drift"]`` (rows,
+log-density sums, unusual rows, inputs, model versions, time range, and per segment id
+the additive sums ``T``, ``Q``, ``M``, ``S`` and, with missing features, ``miss``,
+``miss2``, ``imputed``). During an input the sums of its pieces stay arrays (one row
+per segment of the model) and are added into the record when it is saved; a closing
+window's sums are laid out as arrays in the baseline's order of segment ids for
+:func:`shoal.core.window_statistics.segment_statistics`.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from shoal.core.window_statistics import WindowSums
+from shoal.daemon.files.times import iso_utc
+from shoal.daemon.segments.missing_drift import GAP_KEYS, merge_gap_sums
+
+__all__ = ["empty_window", "add_lists", "add_piece_sums", "merge_window_sums",
+           "aligned_sums", "baseline_missing_shares", "widen", "time_range", "time_kind",
+           "span", "files_of"]
+
+
+def empty_window(index: int) -> dict:
+    """The record of window ``index`` before its first row."""
+    return {"index": index, "n": 0, "ld": 0.0, "ld2": 0.0, "segments": {},
+            "unusual": {"n": 0, "sum": None, "by_segment": {}},
+            "files": [], "versions": [None, None], "time": [None, None]}
+
+
+def add_lists(old, new):
+    """``old + new`` as JSON lists (``old`` None: ``new``)."""
+    return (np.asarray(old) + new).tolist() if old is not None else np.asarray(new).tolist()
+
+
+def add_piece_sums(segments: dict, sums: dict) -> None:
+    """Add a piece accumulator's per-segment sums (arrays by segment position, ids in
+    ``sums["ids"]``) into a window record's ``segments`` (by segment id)."""
+    for k, sid in enumerate(sums["ids"]):
+        if sums["T"][k] <= 0.0:
+            continue
+        acc = segments.setdefault(str(sid), {"T": 0.0, "Q": 0.0, "M": None, "S": None})
+        acc["T"] += float(sums["T"][k])
+        acc["Q"] += float(sums["Q"][k])
+        acc["M"] = add_lists(acc["M"], sums["M"][k])
+        acc["S"] = add_lists(acc["S"], sums["S"][k])
+        merge_gap_sums(acc, sums, k, add_lists)
+
+
+def merge_window_sums(into: dict | None, win: dict) -> dict:
+    """Add a closed window's rows and sums to a re-baseline's (``None``: start)."""
+    if into is None:
+        into = {"n": 0, "ld": 0.0, "segments": {}, "center": win["center"]}
+    into["n"] += win["n"]
+    into["ld"] += win["ld"]
+    for sid, acc in win["segments"].items():
+        old = into["segments"].setdefault(sid, {"T": 0.0, "Q": 0.0, "M": None, "S": None})
+        old["T"] += acc["T"]
+        old["Q"] += acc["Q"]
+        old["M"] = add_lists(old["M"], acc["M"])
+        old["S"] = add_lists(old["S"], acc["S"])
+        for key in GAP_KEYS:
+            if acc.get(key) is not None:
+                old[key] = add_lists(old.get(key), acc[key])
+    return into
+
+
+def aligned_sums(segments: dict, pending: dict | None, ids, n_features: int) -> WindowSums:
+    """A window's sums as arrays, one row per segment of ``ids`` (zeros for a segment
+    without rows): the record's ``segments`` plus a piece accumulator's ``pending``
+    sums, added as :func:`add_piece_sums` would add them."""
+    K, d = len(ids), n_features
+    at = {int(sid): k for k, sid in enumerate(ids)}
+    T, Q = np.zeros(K), np.zeros(K)
+    M, S = np.zeros((K, d)), np.zeros((K, d, d))
+    gaps: dict[str, np.ndarray] = {}
+
+    def gap(key):
+        if key not in gaps:
+            gaps[key] = np.zeros((K, d))
+        return gaps[key]
+
+    for sid, acc in segments.items():
+        k = at.get(int(sid))
+        if k is None:
+            continue
+        T[k], Q[k] = acc["T"], acc["Q"]
+        M[k], S[k] = acc["M"], acc["S"]
+        for key in GAP_KEYS:
+            if acc.get(key) is not None:
+                gap(key)[k] = acc[key]
+    if pending is not None:
+        pairs = [(at[sid], j) for j, sid in enumerate(pending["ids"])
+                 if sid in at and pending["T"][j] > 0.0]
+        if pairs:
+            rows, cols = (np.array(v, dtype=np.intp) for v in zip(*pairs))
+            T[rows] += pending["T"][cols]
+            Q[rows] += pending["Q"][cols]
+            M[rows] += pending["M"][cols]
+            S[rows] += pending["S"][cols]
+            for key in GAP_KEYS:
+                if key in pending:
+                    gap(key)[rows] += pending[key][cols]
+    return WindowSums(T=T, Q=Q, M=M, S=S, miss=gaps.get("miss"), miss2=gaps.get("miss2"),
+                      imputed=gaps.get("imputed"))
+
+
+def baseline_missing_shares(shares: dict | None, ids, n_features: int) -> np.ndarray:
+    """The baseline's share of each segment's rows that missed each feature, shape
+    ``(len(ids), n_features)`` (zeros where it has none)."""
+    out = np.zeros((len(ids), n_features))
+    for k, sid in enumerate(ids):
+        row = (shares or {}).get(str(sid))
+        if row is not None:
+            out[k] = row
+    return out
+
+
+def widen(pair, lo, hi):
+    """The range ``pair`` (ends may be None) widened to take in ``lo..hi``."""
+    a, b = pair
+    return [lo if a is None or lo < a else a, hi if b is None or hi > b else b]
+
+
+def time_range(times):
+    """(first, last) of a piece's times as JSON-able values, or None."""
+    if times is None or len(times) == 0:
+        return None
+    t = np.asarray(times)
+    if t.dtype == object or t.dtype.kind == "U":
+        # text (CSV): numbers if they all parse as numbers (as the same column read from
+        # Parquet gives), else ISO times if they parse
+        values = [str(v) for v in t.tolist() if v is not None]
+        try:
+            t = np.array([float(v) for v in values])
+        except ValueError:
+            try:
+                t = np.array([v.rstrip("Z") for v in values], dtype="datetime64[ms]")
+            except ValueError:
+                pass
+    if np.issubdtype(t.dtype, np.datetime64):
+        t = t[~np.isnat(t)]
+        if not t.size:
+            return None
+        return iso_utc(t.min()), iso_utc(t.max())
+    if np.issubdtype(t.dtype, np.number):
+        t = t[np.isfinite(t.astype(np.float64))]
+        return (float(t.min()), float(t.max())) if t.size else None
+    values = [str(v) for v in t.tolist() if v is not None]
+    return (min(values), max(values)) if values else None
+
+
+def files_of(windows) -> list[str]:
+    """The inputs of ``windows``, each once, in order."""
+    out: list[str] = []
+    for w in windows:
+        for f in w["files"]:
+            if f not in out:
+                out.append(f)
+    return out
+
+
+def time_kind(value) -> str:
+    """Times in a window's range are numbers or text (ISO times); never both."""
+    return "number" if isinstance(value, (int, float)) and not isinstance(value, bool) \
+        else "text"
+
+
+def span(pairs):
+    """``{"first", "last"}`` over time ranges (None: no times), of the latest kind."""
+    pairs = [p for p in pairs if p]
+    if not pairs:
+        return None
+    kind = time_kind(pairs[-1][0])   # the latest kind, if the column changed kind
+    pairs = [p for p in pairs if time_kind(p[0]) == kind]
+    return {"first": min(p[0] for p in pairs), "last": max(p[1] for p in pairs)}
