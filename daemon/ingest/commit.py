@@ -20,7 +20,7 @@ from typing import TYPE_CHECKING, Callable
 from shoal.config import Settings
 from shoal.daemon.errors import StateError
 from shoal.daemon.files.layout import Layout
-from shoal.daemon.files.quarantine import move_out
+from shoal.daemon.files.moving import move_out
 from shoal.daemon.files.writer import display_name, fsync_dir
 from shoal.daemon.ingest.results import ModelState, Result, log_result
 from shoal.daemon.runtime.logs import log_event
