@@ -40,7 +40,8 @@ import numpy as np
 from .covariance import LOG_2PI
 from .errors import ModelError
 
-__all__ = ["Gaps", "find", "fill", "gap_log_joint", "gap_moments", "pack", "Packed", "Bound"]
+__all__ = ["Gaps", "find", "fill", "gap_log_joint", "gap_correction", "gap_moments",
+           "completion_moments", "expected_scatter", "pack", "Packed", "Bound"]
 
 BLOCK_ROWS = 2048   # incomplete rows handled at once: (K, rows, D) arrays stay small
 _INFINITE = ("X contains infinite values; drop or mark those rows first (NaN marks a "
@@ -103,7 +104,8 @@ def find(X, kern=None) -> Gaps | None:
             return None
         return Gaps(rows[:count], off=off[: count + 1], cols=cols[: off[count]],
                     n_features=D)
-    suspect = np.flatnonzero(~np.isfinite(np.add.reduce(X, axis=1)))
+    # a product with ones sums each row in one BLAS pass (NaN and infinities carry)
+    suspect = np.flatnonzero(~np.isfinite(X @ np.ones(X.shape[1])))
     if suspect.size == 0:
         return None
     sub = X[suspect]
@@ -135,10 +137,16 @@ def _groups(mask):
     """Rows grouped by how many features they miss: ``(r, rows, cols)`` with ``cols`` of
     shape (len(rows), r) listing each row's missing features in increasing order."""
     count = np.count_nonzero(mask, axis=1)
+    order = np.argsort(count, kind="stable")
+    ends = np.cumsum(np.bincount(count))
+    cols_all = np.nonzero(mask[order])[1]
+    at = 0
     for r in np.flatnonzero(np.bincount(count)):
-        rows = np.flatnonzero(count == r)
-        cols = np.nonzero(mask[rows])[1].reshape(rows.size, r)
-        yield int(r), rows, cols
+        start = ends[r - 1] if r else 0
+        rows = order[start : ends[r]]
+        size = rows.size * int(r)
+        yield int(r), rows, cols_all[at : at + size].reshape(rows.size, r)
+        at += size
 
 
 def _solve_small(H, g):
@@ -162,45 +170,76 @@ def _solve_small(H, g):
 
 
 def _full_gaps(model, Z, mask, learn):
-    """Correction (K, n) to the filled rows' log-joint and, with ``learn``, the completed
-    rows (K, n, D) and the conditional covariances by group."""
+    """Correction (K, n) to the filled rows' log-joint and, with ``learn``, per group of
+    rows missing as many features: ``(rows, cols, step, inv)`` with ``step = H^-1 g``
+    (K, len(rows), r) and ``inv = H^-1`` (K, len(rows), r, r)."""
     lam, lam_mu = _precision(model)
     K, n, D = model.n_components, Z.shape[0], Z.shape[1]
     corr = np.empty((K, n))
-    zhat = np.broadcast_to(Z, (K, n, D)).copy() if learn else None
-    conds = []
+    pieces = []
     # Lam_k z for every row in one product; each row then takes its missing entries
     lam_z = (lam.reshape(K * D, D) @ Z.T).reshape(K, D, n)
     for r, rows, cols in _groups(mask):
+        if r == 1:
+            # one missing feature (most rows): H is the precision's diagonal entry
+            c = cols[:, 0]
+            g = np.take(lam_z.reshape(K, D * n), c * n + rows, axis=1) - lam_mu[:, c]
+            h = np.take(np.diagonal(lam, axis1=1, axis2=2), c, axis=1)
+            step = g / h
+            corr[:, rows] = 0.5 * (LOG_2PI - np.log(h) + g * step)
+            if learn:
+                pieces.append((rows, cols, step[:, :, None], (1.0 / h)[:, :, None, None]))
+            continue
         g = lam_z[:, cols, rows[:, None]] - lam_mu[:, cols]
         H = lam[:, cols[:, :, None], cols[:, None, :]]
         step, inv, log_det = _solve_small(H, g)
         corr[:, rows] = 0.5 * (r * LOG_2PI - log_det + np.sum(g * step, axis=-1))
         if learn:
-            # E[z_m | z_o, k] = z_m - H^-1 g, written into each row's missing slots
-            flat = (rows[:, None] * D + cols).ravel()
-            zhat.reshape(K, n * D)[:, flat] -= step.reshape(K, -1)
-            conds.append((rows, cols, inv))
-    return corr, zhat, conds
+            pieces.append((rows, cols, step, inv))
+    return corr, (Z, pieces) if learn else None
 
 
-def _full_second(W, zhat, conds, D):
-    # per component over the rows with weight for it (the responsibility floor leaves
-    # most rows to one or two components): a fraction of one dense batched product
-    K = W.shape[0]
-    s2 = np.zeros((K, D, D))
-    for k in range(K):
-        on = np.flatnonzero(W[k])
-        if on.size:
-            zk = zhat[k, on]
-            s2[k] = (zk * W[k, on, None]).T @ zk
-    for rows, cols, inv in conds:
-        # sum_i W_ki Cov_ki at (m_i, m_i): one bincount over (component, entry) indices
-        at = (cols[:, :, None] * D + cols[:, None, :]).reshape(rows.size, -1)
-        at = (np.arange(K)[:, None, None] * (D * D) + at[None]).ravel()
-        wk = (W[:, rows, None] * inv.reshape(K, rows.size, -1)).ravel()
-        s2 += np.bincount(at, weights=wk, minlength=K * D * D).reshape(K, D, D)
-    return s2
+def _full_correction(W, aux):
+    """What completing the rows adds to the moments of the filled rows, weights ``W``
+    (K, n): ``(s1, s2)`` of shapes (K, D) and (K, D, D).
+
+    A row completes to ``zhat = z + delta`` with ``delta = -H^-1 g`` on its missing
+    features (``z`` is zero there), so ``zhat zhat^T + Cov = z z^T + z delta^T +
+    delta z^T + delta delta^T + Cov``: the first term is the filled row's, the cross
+    terms fill the missing columns, the last two the missing-by-missing block."""
+    Z, pieces = aux
+    K, D = W.shape[0], Z.shape[1]
+    comp = np.arange(K)[:, None, None]
+    s1 = np.zeros(K * D)
+    s2 = np.zeros(K * D * D)
+    pair_rows, pair_cols, pair_w = [], [], []
+    for rows, cols, step, inv in pieces:
+        n, r = cols.shape
+        ws = W[:, rows, None] * step                      # -W delta, (K, n, r)
+        s1 -= np.bincount((comp * D + cols[None]).ravel(), weights=ws.ravel(),
+                          minlength=K * D)
+        block = step[..., :, None] * step[..., None, :] + inv
+        at = (cols[:, :, None] * D + cols[:, None, :]).reshape(n, r * r)
+        s2 += np.bincount((comp * (D * D) + at[None]).ravel(),
+                          weights=(W[:, rows, None] * block.reshape(K, n, r * r)).ravel(),
+                          minlength=K * D * D)
+        pair_rows.append(np.repeat(rows, r))
+        pair_cols.append(cols.ravel())
+        pair_w.append(ws.reshape(K, n * r))
+    s2 = s2.reshape(K, D, D)
+    # cross terms, one missing column at a time: sum_i -W_ki delta_kic z_i
+    pair_cols = np.concatenate(pair_cols)
+    order = np.argsort(pair_cols, kind="stable")
+    Zp = Z[np.concatenate(pair_rows)[order]]
+    V = np.concatenate(pair_w, axis=1)[:, order]
+    ends = np.cumsum(np.bincount(pair_cols, minlength=D))
+    cross = np.zeros((K, D, D))
+    for c in np.flatnonzero(np.diff(ends, prepend=0)):
+        lo = ends[c - 1] if c else 0
+        cross[:, c, :] = V[:, lo : ends[c]] @ Zp[lo : ends[c]]
+    s2 -= cross
+    s2 -= np.swapaxes(cross, 1, 2)
+    return s1.reshape(K, D), s2
 
 
 # ------------------------------------------------------- diag and spherical types
@@ -215,14 +254,15 @@ def _diag_gaps(model, Z, mask, learn):
     M = mask.astype(np.float64)
     term = 0.5 * (LOG_2PI - np.log(prec) + prec * model.means**2)
     corr = term @ M.T
-    return corr, ((Z, M, model.means, 1.0 / prec) if learn else None), None
+    return corr, ((Z, M, model.means, 1.0 / prec) if learn else None)
 
 
-def _diag_moments(W, aux):
-    """``(s1, diagonal of s2)`` of rows completed by their components' means."""
+def _diag_correction(W, aux):
+    """What completing the rows adds to the moments of the filled rows: ``(s1, diagonal
+    of s2)``; a missing coordinate completes to the component's mean, with its variance."""
     Z, M, means, var = aux
     WM = W @ M
-    return W @ Z + means * WM, W @ (Z * Z) + (means * means + var) * WM
+    return means * WM, (means * means + var) * WM
 
 
 def _diag_completed(aux):
@@ -265,27 +305,88 @@ def gap_log_joint(model, Zf, mask, learn=False):
     """
     family = model.family
     base = family.log_joint(family.design(Zf), model._scoring_operator)
-    corr, first, second = _GAPS[model.covariance](model, Zf, mask, learn)
+    corr, aux = gap_correction(model, Zf, mask, learn)
     base += corr
-    base += _scale_term(model, mask)
-    if not learn:
-        return base, None
-    return base, ((first, second) if model.covariance == "full" else first)
+    return base, aux
+
+
+def gap_correction(model, Zf, mask, learn=False):
+    """What turns the log-joint of rows filled at zero into their marginal log-joint.
+
+    Parameters
+    ----------
+    model : Mixture
+    Zf : ndarray of shape (n_samples, n_features)
+        Standardised rows with the missing features filled by zero.
+    mask : ndarray of shape (n_samples, n_features)
+        True where a feature is missing.
+    learn : bool
+        Also return what the E-step needs.
+
+    Returns
+    -------
+    correction : ndarray of shape (n_components, n_samples)
+        To add to ``log w_k + log N(z | mu_k, Sigma_k)`` of the filled rows: the result
+        is :func:`gap_log_joint`'s.
+    aux : tuple or None
+        With ``learn``: the completed rows and the conditional covariances, for
+        :func:`gap_moments`.
+    """
+    corr, aux = _GAPS[model.covariance](model, Zf, mask, learn)
+    corr += _scale_term(model, mask)
+    return corr, (aux if learn else None)
 
 
 def gap_moments(model, W, aux):
-    """Statistics ``(s0, s1, s2)`` of rows with gaps for the E-step weights ``W``
-    (n_components, n_samples): the completed rows' moments plus the conditional
-    covariances in the second moment."""
-    D = model.n_features
-    s0 = W.sum(axis=1)
+    """Statistics ``(s0, s1, s2)`` of rows with gaps for the E-step weights ``W``.
+
+    Parameters
+    ----------
+    model : Mixture
+    W : ndarray of shape (n_components, n_samples)
+        The rows' E-step weights.
+    aux : tuple
+        From :func:`gap_correction` (or :func:`gap_log_joint`) with ``learn``.
+
+    Returns
+    -------
+    s0 : ndarray of shape (n_components,)
+    s1 : ndarray of shape (n_components, n_features)
+    s2 : ndarray of shape (n_components, n_features, n_features), (n_components,
+        n_features) or (n_components,), as the mixture's covariance type keeps it
+        The completed rows' moments plus the conditional covariances.
+    """
+    family = model.family
+    s0, s1, s2 = family.moments(family.design(aux[0]), W)
+    c1, c2 = completion_moments(model, W, aux)
+    return s0, s1 + c1, s2 + c2
+
+
+def completion_moments(model, W, aux):
+    """What completing rows with gaps adds to the moments of the rows filled at zero.
+
+    Parameters
+    ----------
+    model : Mixture
+    W : ndarray of shape (n_components, n_samples)
+        The rows' E-step weights.
+    aux : tuple
+        From :func:`gap_correction` with ``learn``.
+
+    Returns
+    -------
+    s1 : ndarray of shape (n_components, n_features)
+    s2 : ndarray of shape (n_components, n_features, n_features), (n_components,
+        n_features) or (n_components,), as the mixture's covariance type keeps it
+        Added to the filled rows' statistics with weights ``W`` they give those of
+        :func:`gap_moments`.
+    """
     if model.covariance == "full":
-        zhat, cond = aux
-        return s0, np.einsum("kn,knd->kd", W, zhat), _full_second(W, zhat, cond, D)
-    s1, s2 = _diag_moments(W, aux)
+        return _full_correction(W, aux)
+    s1, s2 = _diag_correction(W, aux)
     if model.covariance == "spherical":
-        s2 = s2.sum(axis=1) / D
-    return s0, s1, s2
+        s2 = s2.sum(axis=1) / model.n_features
+    return s1, s2
 
 
 # ------------------------------------------------------------------ compiled path
@@ -405,11 +506,14 @@ def expected_scatter(model, Zf, mask, resp):
     scatter : ndarray of shape (n_components, n_features, n_features)
         ``sum_i resp_ki E[z_i z_i^T | z_io, k]`` as a full matrix whatever the type.
     """
-    _, aux = gap_log_joint(model, Zf, mask, learn=True)
+    _, aux = gap_correction(model, Zf, mask, learn=True)
     D = Zf.shape[1]
     if model.covariance == "full":
-        zhat, cond = aux
-        return np.einsum("kn,knd->kd", resp, zhat), _full_second(resp, zhat, cond, D)
+        s1, scatter = _full_correction(resp, aux)
+        s1 += resp @ Zf
+        for k in range(resp.shape[0]):
+            scatter[k] += (Zf * resp[k][:, None]).T @ Zf
+        return s1, scatter
     zhat, cond = _diag_completed(aux)
     s1 = np.einsum("kn,knd->kd", resp, zhat)
     scatter = np.matmul(np.swapaxes(zhat * resp[:, :, None], 1, 2), zhat)

@@ -61,9 +61,9 @@ def _not_finite(X) -> ModelError:
 
 def _gap_aware(always_fill=False):
     """Run the method on complete rows as it is (no extra pass over them); if a row has
-    a missing feature, run it again with ``_gaps`` saying where. The compiled kernels
-    read the NaN and mend the rows' design themselves; the numpy path (and, with
-    ``always_fill``, the method on either path) gets a copy filled at the centre."""
+    a missing feature, run it again with ``_gaps`` saying where. Both paths read the
+    NaN and mend the rows' design themselves, block by block; with ``always_fill`` the
+    method gets a copy filled at the centre."""
     def decorate(method):
         @wraps(method)
         def wrapper(self, X, *args, _gaps=None, **kwargs):
@@ -76,7 +76,7 @@ def _gap_aware(always_fill=False):
                 gaps = missing.find(X, fused.kernels() if fused.enabled() else None)
                 if gaps is None:        # nothing missing: only overflowing sums
                     raise ModelError(_NOT_FINITE) from None
-                if always_fill or not fused.enabled():
+                if always_fill:
                     X = missing.fill(X, self.center, gaps)
                 return method(self, X, *args, _gaps=gaps, **kwargs)
         return wrapper
@@ -470,19 +470,20 @@ class Mixture:
             Rows in the data's own units; NaN marks a missing feature (the row is
             scored by the marginal over its observed features).
         """
-        X = self._rows(X, check=not fused.enabled())
+        X = self._rows(X, check=not fused.enabled() and _gaps is None)
         out = ScoreBuffer(X.shape[0], self.n_components)
         if fused.enabled():
             packed = None if _gaps is None else missing.pack(_gaps, self.covariance,
                                                               self.n_components)
             self._fused_span(X, 0, X.shape[0], out, gaps=packed)
         else:
+            if _gaps is not None:
+                self._score_gaps(X, _gaps, out)
+                return out.scores(self.ids)
             operator = self._scoring_operator
             rows = _Standardiser(self.center, self.scale)
             for lo in range(0, X.shape[0], SPAN_ROWS):
                 self._score_span(X, lo, min(lo + SPAN_ROWS, X.shape[0]), out, operator, rows)
-            if _gaps is not None:
-                self._score_gaps(X, _gaps, out)
         return out.scores(self.ids)
 
     def _score_z(self, Z, moments_weight=None):
@@ -630,10 +631,10 @@ class Mixture:
         scores : Scores
             The scores of every row, as labelled during learning.
         """
-        X = self._rows(X, check=not fused.enabled())
+        jit = fused.enabled()
+        X = self._rows(X, check=not jit and _gaps is None)
         n = X.shape[0]
         out = ScoreBuffer(n, self.n_components)
-        jit = fused.enabled()
         rows = None if jit else _Standardiser(self.center, self.scale)
         model = self  # the parameters in force; replaced at refresh points only
         s0, s1, s2, sumsq = self.s0, self.s1, self.s2, self.sumsq
@@ -705,39 +706,57 @@ class Mixture:
         out.put(rows, sub)
         return sub.resp_kn, aux
 
+    def _score_span_gaps(self, X, lo, hi, part, out, rows, learn):
+        """:meth:`_score_span` for a span whose rows ``lo + part.rows`` were filled at the
+        centre: every row through the ordinary log-joint, the filled ones corrected to
+        their marginals before the responsibilities are taken. Returns the span's design
+        matrix and, with ``learn``, the E-step pieces of the filled rows."""
+        family = self.family
+        operator = self._scoring_operator
+        A = np.empty((hi - lo, family.width(self.n_features)))
+        for a in range(lo, hi, BLOCK_ROWS):
+            b = min(a + BLOCK_ROWS, hi)
+            Zb = X[a:b] if rows is None else rows(X[a:b])
+            if rows is not None:
+                Zb[np.isnan(Zb)] = 0.0      # the missing values at the centre
+            Ab = family.design(Zb, out=A[a - lo : b - lo])
+            family.log_joint(Ab, operator, out=out.resp_kn[:, a:b])
+        at = lo + part.rows
+        if rows is None:
+            Zf = X[at]
+        else:
+            Zf = (X[at] - self.center) / self.scale
+            Zf[part.mask] = 0.0
+        corr, aux = missing.gap_correction(self, Zf, part.mask, learn)
+        out.resp_kn[:, at] += corr
+        for a in range(lo, hi, BLOCK_ROWS):
+            b = min(a + BLOCK_ROWS, hi)
+            self._normalise(out.resp_kn[:, a:b], out, a, b)
+        return A, aux
+
     def _score_gaps(self, X, gaps, out):
-        """Overwrite the scores of the rows with gaps (scored filled) by their marginals."""
-        for a in range(0, len(gaps), missing.BLOCK_ROWS):
-            part = Gaps(gaps.rows[a : a + missing.BLOCK_ROWS],
-                        gaps.mask[a : a + missing.BLOCK_ROWS])
-            self._gap_block(X, part, out, 0, learn=False)
+        """Score the filled rows ``X`` whose rows ``gaps.rows`` have gaps, into ``out``."""
+        rows = _Standardiser(self.center, self.scale)
+        for lo in range(0, X.shape[0], SPAN_ROWS):
+            hi = min(lo + SPAN_ROWS, X.shape[0])
+            self._score_span_gaps(X, lo, hi, gaps.within(lo, hi), out, rows, learn=False)
 
     def _learn_span_gaps(self, X, lo, hi, gaps, row_w, out, rows):
         """The numpy path's statistics of rows ``lo:hi`` of the filled rows ``X`` (weights
-        ``row_w``), scores into ``out``: the complete rows gathered through the ordinary
-        kernels, then the rows with gaps by EM with missing data."""
+        ``row_w``), scores into ``out``: every row's moments through the ordinary kernels,
+        then what completing the filled rows adds (EM with missing data)."""
         part = gaps.within(lo, hi)
         if not len(part):
             A = self._score_span(X, lo, hi, out, self._scoring_operator, rows)
             return self._accumulate(A, out.resp_kn[:, lo:hi], row_w)
-        keep = np.ones(hi - lo, dtype=bool)
-        keep[part.rows] = False
-        at = np.flatnonzero(keep)
-        sub = ScoreBuffer(at.size, self.n_components)
-        A = self._score_span(X[lo + at], 0, at.size, sub, self._scoring_operator, rows)
-        stats = self._accumulate(A, sub.resp_kn, row_w[at])
-        out.put(lo + at, sub)
-        return self._learn_gaps(X, lo, part, row_w, out, stats)
-
-    def _learn_gaps(self, X, lo, part, row_w, out, stats):
-        """Add the E-step statistics of the rows ``lo + part.rows`` (weights ``row_w``
-        from row ``lo``) to ``stats``; their scores go into ``out``."""
-        resp, aux = self._gap_block(X, part, out, lo, learn=True)
+        A, aux = self._score_span_gaps(X, lo, hi, part, out, rows, learn=True)
+        s0, s1, s2 = self._accumulate(A, out.resp_kn[:, lo:hi], row_w)
+        resp = out.resp_kn[:, lo + part.rows]
         W = resp * row_w[part.rows]
         if self.resp_floor > 0.0:
             W[resp < self.resp_floor] = 0.0
-        extra = missing.gap_moments(self, W, aux)
-        return tuple(a + b for a, b in zip(stats, extra))
+        c1, c2 = missing.completion_moments(self, W, aux)
+        return s0, s1 + c1, s2 + c2
 
     def _em_step_gaps(self, Z, gaps):
         """:meth:`_em_step` on standardised rows with gaps (filled at zero): the complete
