@@ -33,19 +33,30 @@ the rows with a gap, filled, through these kernels.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 
 from .covariance import LOG_2PI
 from .errors import ModelError
 
-__all__ = ["Gaps", "find", "fill", "gap_log_joint", "gap_correction", "gap_moments",
-           "completion_moments", "expected_scatter", "pack", "Packed", "Bound"]
+__all__ = ["Gaps", "MissingValues", "not_finite", "find", "fill", "gap_log_joint",
+           "gap_correction", "gap_moments", "completion_moments", "expected_scatter",
+           "precision_matrices"]
 
 BLOCK_ROWS = 2048   # incomplete rows handled at once: (K, rows, D) arrays stay small
 _INFINITE = ("X contains infinite values; drop or mark those rows first (NaN marks a "
              "missing feature)")
+_NOT_FINITE = "X contains NaN or infinite values; drop or mark those rows first"
+
+
+class MissingValues(ModelError):
+    """Raised by the complete-row paths when a row holds NaN or an infinity; the
+    mixture's public methods catch it and start again with the rows' gaps marked. A
+    :class:`ModelError`, so that a path that does not handle gaps refuses them."""
+
+
+def not_finite() -> ModelError:
+    """The error for rows with a non-finite value (:class:`MissingValues`)."""
+    return MissingValues(_NOT_FINITE)
 
 
 class Gaps:
@@ -126,8 +137,19 @@ def fill(X, center, gaps: Gaps) -> np.ndarray:
 
 
 # ------------------------------------------------------------------- full type
-def _precision(model):
-    """``Lam_k = U_k U_k^T`` and ``Lam_k mu_k``, shapes (K, D, D) and (K, D)."""
+def precision_matrices(model):
+    """The full type's precisions ``Lam_k = U_k U_k^T`` and ``Lam_k mu_k``.
+
+    Parameters
+    ----------
+    model : Mixture
+        A full-covariance mixture.
+
+    Returns
+    -------
+    lam : ndarray of shape (n_components, n_features, n_features)
+    lam_mu : ndarray of shape (n_components, n_features)
+    """
     U = model.prec_chol
     lam = U @ np.swapaxes(U, 1, 2)
     return lam, np.einsum("kde,ke->kd", lam, model.means)
@@ -173,7 +195,7 @@ def _full_gaps(model, Z, mask, learn):
     """Correction (K, n) to the filled rows' log-joint and, with ``learn``, per group of
     rows missing as many features: ``(rows, cols, step, inv)`` with ``step = H^-1 g``
     (K, len(rows), r) and ``inv = H^-1`` (K, len(rows), r, r)."""
-    lam, lam_mu = _precision(model)
+    lam, lam_mu = precision_matrices(model)
     K, n, D = model.n_components, Z.shape[0], Z.shape[1]
     corr = np.empty((K, n))
     pieces = []
@@ -304,7 +326,7 @@ def gap_log_joint(model, Zf, mask, learn=False):
         With ``learn``: the completed rows and the conditional covariances.
     """
     family = model.family
-    base = family.log_joint(family.design(Zf), model._scoring_operator)
+    base = family.log_joint(family.design(Zf), model.scoring_operator)
     corr, aux = gap_correction(model, Zf, mask, learn)
     base += corr
     return base, aux
@@ -387,102 +409,6 @@ def completion_moments(model, W, aux):
     if model.covariance == "spherical":
         s2 = s2.sum(axis=1) / model.n_features
     return s1, s2
-
-
-# ------------------------------------------------------------------ compiled path
-_KIND = {"full": 0, "diag": 1, "spherical": 2}
-
-
-@dataclass(frozen=True)
-class Packed:
-    """Gaps laid out for the compiled kernels (``gap_log_joint``, ``gap_moments`` in
-    core/_kernels_gaps.h): the rows, their missing features by offsets, and room for the
-    E-step's steps and conditional covariances."""
-
-    rows: np.ndarray     # (n_gappy,) int64, increasing
-    off: np.ndarray      # (n_gappy + 1,) int64: row g misses cols[off[g]:off[g+1]]
-    cols: np.ndarray     # (off[-1],) int64
-    hoff: np.ndarray     # (n_gappy + 1,) int64: offsets of each row's H^-1 / K
-    step: np.ndarray     # (K * off[-1],)
-    hinv: np.ndarray     # (K * hoff[-1],)
-
-
-def pack(gaps: Gaps, covariance: str, n_components: int) -> Packed:
-    """:class:`Packed` for ``gaps`` of a mixture of that type and size."""
-    if gaps.off is not None:
-        off, cols = gaps.off, gaps.cols
-        count = np.diff(off)
-    else:
-        count = gaps.mask.sum(axis=1).astype(np.int64)
-        off = np.zeros(len(gaps) + 1, dtype=np.int64)
-        np.cumsum(count, out=off[1:])
-        cols = np.nonzero(gaps.mask)[1].astype(np.int64)
-    hoff = off
-    if covariance == "full":
-        hoff = np.zeros_like(off)
-        np.cumsum(count * count, out=hoff[1:])
-    return Packed(gaps.rows.astype(np.int64), off, cols, hoff,
-                  np.empty(n_components * int(off[-1])), np.empty(n_components * int(hoff[-1])))
-
-
-class Bound:
-    """:class:`Packed` gaps with one parameter set's precision, for one span of rows."""
-
-    __slots__ = ("packed", "kind", "lam", "lam_mu", "half_const", "log_scale", "kern",
-                 "_block")
-
-    def __init__(self, packed: Packed, model, data_units: bool, kern):
-        self.packed, self.kern = packed, kern
-        self.kind = _KIND[model.covariance]
-        D = model.n_features
-        if model.covariance == "full":
-            self.lam, self.lam_mu = (np.ascontiguousarray(a) for a in _precision(model))
-        else:
-            prec = model.prec_chol ** 2
-            self.lam = np.ascontiguousarray(np.broadcast_to(
-                prec[:, None] if prec.ndim == 1 else prec, (model.n_components, D)))
-            self.lam_mu = np.ascontiguousarray(model.means)
-        diag = self.lam if self.lam.ndim == 2 else np.diagonal(self.lam, axis1=1, axis2=2)
-        # a feature missing alone: 0.5 (log 2 pi - log Lam_jj) of the correction
-        self.half_const = 0.5 * (LOG_2PI - np.log(diag))
-        self.log_scale = np.log(model.scale) if data_units else np.zeros(D)
-        self._block = (None, 0, 0)
-
-    def _range(self, lo, hi):
-        """The gappy rows of block ``lo:hi`` (found once per block)."""
-        if self._block[0] != (lo, hi):
-            a, b = np.searchsorted(self.packed.rows, [lo, hi])
-            self._block = ((lo, hi), int(a), int(b))
-        return self._block[1], self._block[2]
-
-    def fix(self, A, lo):
-        """Design rows ``A`` from row ``lo`` as if the missing values were at the centre
-        (the design kernel wrote NaN there)."""
-        ga, gb = self._range(lo, lo + A.shape[0])
-        if ga < gb:
-            p = self.packed
-            self.kern.gap_fix(A, lo, p.rows, p.off, p.cols, ga, gb, self.kind)
-
-    def log_joint(self, A, lo, L):
-        """Correct the log-joint ``L`` of the block of design rows ``A`` from row ``lo``."""
-        ga, gb = self._range(lo, lo + A.shape[0])
-        if ga == gb:
-            return
-        p = self.packed
-        if not self.kern.gap_log_joint(A, lo, L, p.rows, p.off, p.cols, p.hoff, ga, gb,
-                                       self.lam, self.lam_mu, self.half_const,
-                                       self.log_scale, self.kind, p.step, p.hinv):
-            raise ModelError("a component's precision is not positive definite on the "
-                             "missing features; raise reg_covar")
-
-    def moments(self, A, lo, R, row_w, floor, P):
-        """Add the block's gappy rows' M-step corrections to the design products ``P``."""
-        ga, gb = self._range(lo, lo + A.shape[0])
-        if ga == gb:
-            return
-        p = self.packed
-        self.kern.gap_moments(A, lo, R, row_w, floor, p.rows, p.off, p.cols, p.hoff, ga, gb,
-                              p.step, p.hinv, self.kind, P)
 
 
 # ---------------------------------------------------------------- drift windows

@@ -13,8 +13,11 @@ import numpy as np
 
 from .covariance import COVARIANCE_TYPES, FAMILIES
 from .errors import ModelError, NotEnoughDataError
+from .learning import em_step_standardised
 from .mixture import Mixture
+from .parameters import derive
 from .schedule import StepSchedule
+from .scoring import score_standardised
 from .split_screen import hard_split_gain
 
 __all__ = ["kmeans_plus_plus", "batch_em", "initialise", "select_n_components", "bic"]
@@ -102,7 +105,7 @@ def _from_hard_labels(template: Mixture, Z, labels) -> Mixture:
     s0, s1, s2 = template.family.moments(template.family.design(Z), resp.T / n)
     sumsq = 1.0 / n
     return replace(template, s0=s0, s1=s1, s2=s2, sumsq=sumsq,
-                   **template._derive(s0, s1, s2, sumsq))
+                   **derive(template, s0, s1, s2, sumsq))
 
 
 def batch_em(X, mixture: Mixture, *, max_iter=300, tol=1e-7):
@@ -131,11 +134,11 @@ def batch_em(X, mixture: Mixture, *, max_iter=300, tol=1e-7):
 def _batch_em(Z, mixture, *, max_iter, tol):
     history = []
     for _ in range(max_iter):
-        mixture, before = mixture._em_step(Z)
+        mixture, before = em_step_standardised(mixture, Z)
         history.append(before)
         if len(history) >= 2 and history[-1] - history[-2] < tol:
             break
-    history.append(float(np.mean(mixture._score_z(Z).log_density)))
+    history.append(float(np.mean(score_standardised(mixture, Z).log_density)))
     return mixture, np.asarray(history)
 
 
