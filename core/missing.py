@@ -155,20 +155,37 @@ def precision_matrices(model):
     return lam, np.einsum("kde,ke->kd", lam, model.means)
 
 
-def _groups(mask):
-    """Rows grouped by how many features they miss: ``(r, rows, cols)`` with ``cols`` of
-    shape (len(rows), r) listing each row's missing features in increasing order."""
-    count = np.count_nonzero(mask, axis=1)
-    order = np.argsort(count, kind="stable")
-    ends = np.cumsum(np.bincount(count))
-    cols_all = np.nonzero(mask[order])[1]
-    at = 0
-    for r in np.flatnonzero(np.bincount(count)):
-        start = ends[r - 1] if r else 0
-        rows = order[start : ends[r]]
-        size = rows.size * int(r)
-        yield int(r), rows, cols_all[at : at + size].reshape(rows.size, r)
-        at += size
+class _Pairs:
+    """The (row, missing feature) pairs of a block of rows with gaps.
+
+    ``row``, ``col``: the pairs in row order (each row's features increasing);
+    ``start[i]``: where row ``i``'s pairs begin; ``count[i]``: how many it has;
+    ``by_col``: the pairs ordered by feature, ``ends[c]``: where feature ``c``'s end.
+    """
+
+    __slots__ = ("row", "col", "start", "count", "by_col", "ends")
+
+    def __init__(self, mask):
+        self.row, self.col = np.nonzero(mask)
+        self.count = np.count_nonzero(mask, axis=1)
+        self.start = np.cumsum(self.count) - self.count
+        self.by_col = np.argsort(self.col, kind="stable")
+        self.ends = np.cumsum(np.bincount(self.col, minlength=mask.shape[1]))
+
+    def columns(self):
+        """``(c, lo, hi)``: feature ``c`` is missing in pairs ``by_col[lo:hi]``."""
+        lo = 0
+        for c, hi in enumerate(self.ends.tolist()):
+            if hi > lo:
+                yield c, lo, hi
+            lo = hi
+
+    def groups(self):
+        """``(r, rows, at)``: the rows missing ``r`` features and their pairs' indices
+        (len(rows), r)."""
+        for r in np.flatnonzero(np.bincount(self.count)):
+            rows = np.flatnonzero(self.count == r)
+            yield int(r), rows, self.start[rows][:, None] + np.arange(r)
 
 
 def _solve_small(H, g):
@@ -193,32 +210,39 @@ def _solve_small(H, g):
 
 def _full_gaps(model, Z, mask, learn):
     """Correction (K, n) to the filled rows' log-joint and, with ``learn``, per group of
-    rows missing as many features: ``(rows, cols, step, inv)`` with ``step = H^-1 g``
+    rows missing as many features: ``(rows, at, step, inv)`` with ``step = H^-1 g``
     (K, len(rows), r) and ``inv = H^-1`` (K, len(rows), r, r)."""
     lam, lam_mu = precision_matrices(model)
     K, n, D = model.n_components, Z.shape[0], Z.shape[1]
+    pairs = _Pairs(mask)
+    # g = (Lam (z - mu))_m for every (row, missing feature) pair: one small product
+    # per feature over the rows that miss it (a D-th of the product over all of Lam)
+    Zp = Z[pairs.row[pairs.by_col]]
+    gp = np.empty((K, pairs.row.size))
+    for c, lo, hi in pairs.columns():
+        gp[:, pairs.by_col[lo:hi]] = lam[:, c, :] @ Zp[lo:hi].T
+    gp -= lam_mu[:, pairs.col]
     corr = np.empty((K, n))
     pieces = []
-    # Lam_k z for every row in one product; each row then takes its missing entries
-    lam_z = (lam.reshape(K * D, D) @ Z.T).reshape(K, D, n)
-    for r, rows, cols in _groups(mask):
+    diag = np.diagonal(lam, axis1=1, axis2=2)
+    for r, rows, at in pairs.groups():
+        cols = pairs.col[at]
         if r == 1:
             # one missing feature (most rows): H is the precision's diagonal entry
-            c = cols[:, 0]
-            g = np.take(lam_z.reshape(K, D * n), c * n + rows, axis=1) - lam_mu[:, c]
-            h = np.take(np.diagonal(lam, axis1=1, axis2=2), c, axis=1)
+            g = gp[:, at[:, 0]]
+            h = diag[:, cols[:, 0]]
             step = g / h
             corr[:, rows] = 0.5 * (LOG_2PI - np.log(h) + g * step)
             if learn:
-                pieces.append((rows, cols, step[:, :, None], (1.0 / h)[:, :, None, None]))
+                pieces.append((rows, at, step[:, :, None], (1.0 / h)[:, :, None, None]))
             continue
-        g = lam_z[:, cols, rows[:, None]] - lam_mu[:, cols]
+        g = gp[:, at]
         H = lam[:, cols[:, :, None], cols[:, None, :]]
         step, inv, log_det = _solve_small(H, g)
         corr[:, rows] = 0.5 * (r * LOG_2PI - log_det + np.sum(g * step, axis=-1))
         if learn:
-            pieces.append((rows, cols, step, inv))
-    return corr, (Z, pieces) if learn else None
+            pieces.append((rows, at, step, inv))
+    return corr, (Z, pairs, Zp, pieces) if learn else None
 
 
 def _full_correction(W, aux):
@@ -229,36 +253,28 @@ def _full_correction(W, aux):
     features (``z`` is zero there), so ``zhat zhat^T + Cov = z z^T + z delta^T +
     delta z^T + delta delta^T + Cov``: the first term is the filled row's, the cross
     terms fill the missing columns, the last two the missing-by-missing block."""
-    Z, pieces = aux
+    Z, pairs, Zp, pieces = aux
     K, D = W.shape[0], Z.shape[1]
-    comp = np.arange(K)[:, None, None]
-    s1 = np.zeros(K * D)
+    comp = np.arange(K)[:, None]
+    V = np.empty((K, pairs.row.size))        # W * H^-1 g = -W delta, per pair
     s2 = np.zeros(K * D * D)
-    pair_rows, pair_cols, pair_w = [], [], []
-    for rows, cols, step, inv in pieces:
-        n, r = cols.shape
-        ws = W[:, rows, None] * step                      # -W delta, (K, n, r)
-        s1 -= np.bincount((comp * D + cols[None]).ravel(), weights=ws.ravel(),
-                          minlength=K * D)
+    for rows, at, step, inv in pieces:
+        n, r = at.shape
+        ws = W[:, rows, None] * step
+        V[:, at.ravel()] = ws.reshape(K, n * r)
+        cols = pairs.col[at]
         block = step[..., :, None] * step[..., None, :] + inv
-        at = (cols[:, :, None] * D + cols[:, None, :]).reshape(n, r * r)
-        s2 += np.bincount((comp * (D * D) + at[None]).ravel(),
+        cell = (cols[:, :, None] * D + cols[:, None, :]).reshape(n * r * r)
+        s2 += np.bincount((comp * (D * D) + cell).ravel(),
                           weights=(W[:, rows, None] * block.reshape(K, n, r * r)).ravel(),
                           minlength=K * D * D)
-        pair_rows.append(np.repeat(rows, r))
-        pair_cols.append(cols.ravel())
-        pair_w.append(ws.reshape(K, n * r))
+    s1 = -np.bincount((comp * D + pairs.col).ravel(), weights=V.ravel(), minlength=K * D)
     s2 = s2.reshape(K, D, D)
-    # cross terms, one missing column at a time: sum_i -W_ki delta_kic z_i
-    pair_cols = np.concatenate(pair_cols)
-    order = np.argsort(pair_cols, kind="stable")
-    Zp = Z[np.concatenate(pair_rows)[order]]
-    V = np.concatenate(pair_w, axis=1)[:, order]
-    ends = np.cumsum(np.bincount(pair_cols, minlength=D))
+    # cross terms, one missing feature at a time: sum_i -W_ki delta_kic z_i
+    Vc = V[:, pairs.by_col]
     cross = np.zeros((K, D, D))
-    for c in np.flatnonzero(np.diff(ends, prepend=0)):
-        lo = ends[c - 1] if c else 0
-        cross[:, c, :] = V[:, lo : ends[c]] @ Zp[lo : ends[c]]
+    for c, lo, hi in pairs.columns():
+        cross[:, c, :] = Vc[:, lo:hi] @ Zp[lo:hi]
     s2 -= cross
     s2 -= np.swapaxes(cross, 1, 2)
     return s1.reshape(K, D), s2
