@@ -56,8 +56,18 @@ class PartitionStatistics:
 
 
 def keep_between(schedule: StepSchedule, start: int, stop: int) -> float:
-    """``prod (1 - eta_j)`` over rows ``start+1 .. stop``: what those rows leave of older
-    statistics."""
+    """What rows ``start+1 .. stop`` leave of older statistics.
+
+    Parameters
+    ----------
+    schedule : StepSchedule
+    start, stop : int
+
+    Returns
+    -------
+    keep : float
+        ``prod (1 - eta_j)`` over those rows.
+    """
     if stop <= start:
         return 1.0
     return float(np.exp(np.sum(np.log1p(-schedule.steps(start, stop - start)))))
@@ -65,6 +75,12 @@ def keep_between(schedule: StepSchedule, start: int, stop: int) -> float:
 
 def round_weights(schedule: StepSchedule, lo: int, hi: int, stop: int) -> np.ndarray:
     """Weights of rows ``lo+1 .. hi`` in the statistics of a round that ends at row ``stop``.
+
+    Parameters
+    ----------
+    schedule : StepSchedule
+    lo, hi, stop : int
+        ``lo <= hi <= stop``.
 
     Returns
     -------
@@ -122,6 +138,18 @@ def apply_round(mixture: Mixture, parts, start: int, stop: int, *, refresh: bool
     ``mixture.n_rows`` must equal ``start``. With ``refresh``, the parameters are derived
     from the new statistics (as :meth:`Mixture.learn` does at a refresh point); without
     it they stay those in force.
+
+    Parameters
+    ----------
+    mixture : Mixture
+        The model before the round.
+    parts : iterable of PartitionStatistics
+    start, stop : int
+    refresh : bool
+
+    Returns
+    -------
+    mixture : Mixture
     """
     if mixture.n_rows != start:
         raise ModelError(f"the mixture has learned {mixture.n_rows} rows but the round "

@@ -46,7 +46,13 @@ _STATE: dict = {}
 
 
 def enabled() -> bool:
-    """Whether the compiled kernels are in use (the extension built, not switched off)."""
+    """Whether the compiled kernels are in use.
+
+    Returns
+    -------
+    on : bool
+        The extension is built and not switched off.
+    """
     on = _STATE.get("on")
     if on is None:
         try:
@@ -59,14 +65,26 @@ def enabled() -> bool:
 
 
 def set_enabled(on: bool) -> None:
-    """Switch the compiled kernels on or off in this process (tests compare both paths)."""
+    """Switch the compiled kernels on or off in this process (tests compare both paths).
+
+    Parameters
+    ----------
+    on : bool
+        True raises ImportError when the extension is not built.
+    """
     if on:
         kernels()   # raises ImportError without the extension
     _STATE["on"] = bool(on)
 
 
 def kernels():
-    """The compiled kernels: the extension module ``shoal.core._kernels``."""
+    """The compiled kernels.
+
+    Returns
+    -------
+    kernels : module
+        The extension module ``shoal.core._kernels``.
+    """
     k = _STATE.get("kernels")
     if k is None:
         from . import _kernels as k
@@ -75,21 +93,46 @@ def kernels():
 
 
 def tiled() -> bool:
-    """Whether the log-joint runs in the extension's row-tiled kernels (AVX-512 or AVX2
-    with FMA, picked by the CPU) instead of a BLAS GEMM; see ``_kernels.tile_isa``."""
+    """Whether the log-joint runs in the extension's row-tiled kernels.
+
+    Returns
+    -------
+    tiled : bool
+        AVX-512 or AVX2 with FMA, picked by the CPU (``_kernels.tile_isa``); False
+        means a BLAS GEMM.
+    """
     return kernels().tile_isa() != "none"
 
 
 def packed_full_len(n_components: int, n_features: int) -> int:
-    """Length of the full type's operator packed for the tiled kernel (``pack_full``;
-    the layout is the extension's own: per component and per block of 4 whitened
-    coordinates, four offsets and four weights for each feature below the block's end)."""
+    """Length of the full type's operator packed for the tiled kernel (``pack_full``).
+
+    The layout is the extension's own: per component and per block of 4 whitened
+    coordinates, four offsets and four weights for each feature below the block's end.
+
+    Parameters
+    ----------
+    n_components, n_features : int
+
+    Returns
+    -------
+    length : int
+    """
     return n_components * kernels().packed_len(n_features)
 
 
 
 def as_c64(a) -> np.ndarray:
-    """``a`` as a C-contiguous float64 array (the compiled kernels take no other)."""
+    """``a`` as a C-contiguous float64 array (the compiled kernels take no other).
+
+    Parameters
+    ----------
+    a : array-like
+
+    Returns
+    -------
+    array : ndarray of the same shape
+    """
     return np.ascontiguousarray(a, dtype=np.float64)
 
 
@@ -161,6 +204,10 @@ def derive(mixture, s0, s1, s2, sumsq, tiny) -> dict:
 def scoring_operator(mixture):
     """The mixture's parameters packed for the compiled scoring kernels.
 
+    Parameters
+    ----------
+    mixture : Mixture
+
     Returns
     -------
     operator : tuple or ndarray
@@ -185,6 +232,10 @@ def scoring_operator(mixture):
 
 def packed_operator(mixture) -> np.ndarray:
     """The full type's whitening operator packed for the tiled log-joint kernel.
+
+    Parameters
+    ----------
+    mixture : Mixture
 
     Returns
     -------
@@ -326,7 +377,21 @@ def compiled_span(mixture, X, lo, hi, out, data_units=True, row_w=None, floor=0.
 class Packed:
     """Gaps laid out for the compiled kernels (``gap_log_joint``, ``gap_moments`` in
     core/_kernels_gaps.h): the rows, their missing features by offsets, and room for the
-    E-step's steps and conditional covariances."""
+    E-step's steps and conditional covariances.
+
+    Attributes
+    ----------
+    rows : ndarray of shape (n_gappy,)
+        int64, increasing.
+    off : ndarray of shape (n_gappy + 1,)
+        int64: row ``g`` misses ``cols[off[g]:off[g+1]]``.
+    cols : ndarray of shape (off[-1],)
+        int64.
+    hoff : ndarray of shape (n_gappy + 1,)
+        int64: offsets of each row's ``H^-1`` (per component).
+    step : ndarray of shape (n_components * off[-1],)
+    hinv : ndarray of shape (n_components * hoff[-1],)
+    """
 
     rows: np.ndarray     # (n_gappy,) int64, increasing
     off: np.ndarray      # (n_gappy + 1,) int64: row g misses cols[off[g]:off[g+1]]
@@ -337,8 +402,20 @@ class Packed:
 
 
 def pack(gaps, covariance: str, n_components: int) -> Packed:
-    """:class:`Packed` for ``gaps`` (:class:`shoal.core.missing.Gaps`) of a mixture of
-    that covariance type and number of components."""
+    """The gaps laid out for the compiled kernels.
+
+    Parameters
+    ----------
+    gaps : Gaps
+        Where the rows have missing values (:class:`shoal.core.missing.Gaps`).
+    covariance : str
+        The mixture's covariance type.
+    n_components : int
+
+    Returns
+    -------
+    packed : Packed
+    """
     if gaps.off is not None:
         off, cols = gaps.off, gaps.cols
         count = np.diff(off)
@@ -397,15 +474,31 @@ class Bound:
         return self._block[1], self._block[2]
 
     def fix(self, A, lo):
-        """Design rows ``A`` from row ``lo`` as if the missing values were at the centre
-        (the design kernel wrote NaN there)."""
+        """Mend the design rows as if the missing values were at the centre (the design
+        kernel wrote NaN there).
+
+        Parameters
+        ----------
+        A : ndarray of shape (n_rows, width)
+            Design rows of the span's rows ``lo .. lo + n_rows``; changed in place.
+        lo : int
+        """
         ga, gb = self._range(lo, lo + A.shape[0])
         if ga < gb:
             p = self.packed
             self.kern.gap_fix(A, lo, p.rows, p.off, p.cols, ga, gb, self.kind)
 
     def log_joint(self, A, lo, L):
-        """Correct the log-joint ``L`` of the block of design rows ``A`` from row ``lo``."""
+        """Correct the log-joint of a block's rows with gaps to their marginals.
+
+        Parameters
+        ----------
+        A : ndarray of shape (n_rows, width)
+            The block's design rows, from row ``lo``.
+        lo : int
+        L : ndarray of shape (n_components, n_samples)
+            The log-joint of all the span's rows; changed in place.
+        """
         ga, gb = self._range(lo, lo + A.shape[0])
         if ga == gb:
             return
@@ -417,7 +510,22 @@ class Bound:
                              "missing features; raise reg_covar")
 
     def moments(self, A, lo, R, row_w, floor, P):
-        """Add the block's gappy rows' M-step corrections to the design products ``P``."""
+        """Add what completing the block's rows with gaps adds to the design products.
+
+        Parameters
+        ----------
+        A : ndarray of shape (n_rows, width)
+            The block's design rows, from row ``lo``.
+        lo : int
+        R : ndarray of shape (n_components, n_samples)
+            Responsibilities.
+        row_w : ndarray of shape (n_rows,)
+            The block's row weights.
+        floor : float
+            Responsibilities under it count as zero.
+        P : ndarray of shape (n_components, width, width) or (n_components, width)
+            The products of weights and design; changed in place.
+        """
         ga, gb = self._range(lo, lo + A.shape[0])
         if ga == gb:
             return

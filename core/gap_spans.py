@@ -81,8 +81,17 @@ def score_span_gaps(mixture, X, lo, hi, part, out, rows, learn):
 
 
 def score_gaps(mixture, X, gaps, out) -> None:
-    """Score the data-unit rows ``X`` (n_samples, n_features), whose rows ``gaps.rows``
-    have missing values (NaN), into ``out`` (:class:`ScoreBuffer`)."""
+    """Score data-unit rows, some with missing values, into ``out``.
+
+    Parameters
+    ----------
+    mixture : Mixture
+    X : ndarray of shape (n_samples, n_features)
+        NaN where a value is missing.
+    gaps : Gaps
+        Where.
+    out : ScoreBuffer
+    """
     rows = Standardiser(mixture.center, mixture.scale)
     for lo in range(0, X.shape[0], SPAN_ROWS):
         hi = min(lo + SPAN_ROWS, X.shape[0])

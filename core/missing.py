@@ -55,7 +55,12 @@ class MissingValues(ModelError):
 
 
 def not_finite() -> ModelError:
-    """The error for rows with a non-finite value (:class:`MissingValues`)."""
+    """The error for rows with a non-finite value.
+
+    Returns
+    -------
+    error : MissingValues
+    """
     return MissingValues(_NOT_FINITE)
 
 
@@ -79,6 +84,7 @@ class Gaps:
 
     @property
     def mask(self) -> np.ndarray:
+        """ndarray of shape (n_gappy, n_features): True where a feature is missing."""
         if self._mask is None:
             mask = np.zeros((len(self), self.n_features), dtype=bool)
             mask[np.repeat(np.arange(len(self)), np.diff(self.off)), self.cols] = True
@@ -86,7 +92,16 @@ class Gaps:
         return self._mask
 
     def within(self, lo: int, hi: int) -> "Gaps":
-        """The gaps of rows ``lo:hi``, indexed from ``lo``."""
+        """The gaps of rows ``lo:hi``, indexed from ``lo``.
+
+        Parameters
+        ----------
+        lo, hi : int
+
+        Returns
+        -------
+        gaps : Gaps
+        """
         a, b = np.searchsorted(self.rows, [lo, hi])
         if self._mask is not None:
             return Gaps(self.rows[a:b] - lo, self._mask[a:b])
@@ -98,11 +113,23 @@ class Gaps:
 
 
 def find(X, kern=None) -> Gaps | None:
-    """Where ``X`` (float64, shape (n_samples, n_features)) has NaN; None if nowhere.
+    """Where ``X`` has NaN.
 
     One pass finds the rows to look at: the compiled ``kern.gap_index`` if given,
-    else numpy's row sums (a NaN or an infinity makes the sum non-finite). Infinite
+    else the row sums (a NaN or an infinity makes the sum non-finite). Infinite
     values are not missing: they raise :class:`ModelError`.
+
+    Parameters
+    ----------
+    X : ndarray of shape (n_samples, n_features)
+        float64 rows.
+    kern : module or None
+        The compiled kernels.
+
+    Returns
+    -------
+    gaps : Gaps or None
+        None if no value is missing.
     """
     if kern is not None and X.flags.c_contiguous:
         n, D = X.shape
@@ -130,7 +157,19 @@ def find(X, kern=None) -> Gaps | None:
 
 
 def fill(X, center, gaps: Gaps) -> np.ndarray:
-    """A copy of ``X`` with its missing values at the feature's ``center``."""
+    """A copy of ``X`` with its missing values at the feature's ``center``.
+
+    Parameters
+    ----------
+    X : ndarray of shape (n_samples, n_features)
+    center : ndarray of shape (n_features,)
+    gaps : Gaps
+        Where ``X`` has NaN.
+
+    Returns
+    -------
+    filled : ndarray of shape (n_samples, n_features)
+    """
     filled = X.copy()
     filled[gaps.rows] = np.where(gaps.mask, center, X[gaps.rows])
     return filled

@@ -43,6 +43,46 @@ class Mixture:
 
     Build one with :func:`shoal.core.initialise` or :meth:`from_parameters`; restore one
     with :meth:`from_state`.
+
+    Attributes
+    ----------
+    covariance : {"full", "diag", "spherical"}
+    center, scale : ndarray of shape (n_features,)
+        The standardisation frozen at warm-up: ``z = (x - center) / scale``.
+    s0 : ndarray of shape (n_components,)
+    s1 : ndarray of shape (n_components, n_features)
+    s2 : ndarray of shape (n_components, n_features, n_features), (n_components,
+        n_features) or (n_components,)
+        The running statistics (standardised units), second moments as the
+        covariance type keeps them.
+    weights : ndarray of shape (n_components,)
+    means : ndarray of shape (n_components, n_features)
+        Standardised units.
+    covariances : ndarray, the shape of ``s2``
+        Standardised units.
+    ids : ndarray of shape (n_components,)
+        Stable segment ids (int64); ``next_id`` is the next one to give.
+    schedule : StepSchedule
+    n_rows : int
+        Rows learned since warm-up.
+    sumsq : float
+        Sum of squared row weights: ``1 / n_eff``.
+    reg_covar, prior_weight : float
+        Added to the covariance diagonals; rows' worth of the identity prior.
+    resp_floor : float
+        Responsibilities under it count as zero when learning.
+    refresh_rows : int
+        Parameters are derived at every global multiple of this many learned rows.
+    mass_floor : float
+        Weight under which :meth:`low_mass` lists a component.
+    averaging : bool
+        Polyak-Ruppert averaging of the statistics at refresh points (``avg_s0``,
+        ``avg_s1``, ``avg_s2`` over ``avg_count`` refreshes).
+    prec_chol : ndarray
+        Precision Cholesky factors (full: (n_components, n_features, n_features)) or
+        ``1 / sqrt(variances)``.
+    log_det : ndarray of shape (n_components,)
+        ``log det`` of ``prec_chol``.
     """
 
     covariance: str
@@ -92,14 +132,17 @@ class Mixture:
     # ------------------------------------------------------------------ shape
     @property
     def n_components(self) -> int:
+        """Number of components ``K``."""
         return int(self.s0.shape[0])
 
     @property
     def n_features(self) -> int:
+        """Number of features ``D``."""
         return int(self.center.shape[0])
 
     @property
     def family(self):
+        """The covariance type's kernels (:data:`shoal.core.covariance.FAMILIES`)."""
         return FAMILIES[self.covariance]
 
     @property
@@ -215,7 +258,18 @@ class Mixture:
 
     # ------------------------------------------------------------ rows
     def standardise(self, X) -> np.ndarray:
-        """``(X - center) / scale`` for validated rows, shape (n_samples, n_features)."""
+        """Rows in standardised units.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+            Finite rows in the data's own units.
+
+        Returns
+        -------
+        Z : ndarray of shape (n_samples, n_features)
+            ``(X - center) / scale``.
+        """
         return (checked_rows(self, X) - self.center) / self.scale
 
     @learning.retry_with_gaps()
@@ -238,11 +292,32 @@ class Mixture:
         return learning.score_rows(self, X, _gaps)
 
     def log_density(self, X) -> np.ndarray:
-        """``log p(x)`` per row, shape (n_samples,), in the data's own units."""
+        """``log p(x)`` per row, in the data's own units.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+            NaN marks a missing feature.
+
+        Returns
+        -------
+        log_density : ndarray of shape (n_samples,)
+        """
         return self.score(X).log_density
 
     def component_log_density(self, X) -> np.ndarray:
-        """``log N(x | mu_k, Sigma_k)`` in data units, shape (n_samples, n_components)."""
+        """Each component's log-density of each row, data units.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+            Finite rows.
+
+        Returns
+        -------
+        log_density : ndarray of shape (n_samples, n_components)
+            ``log N(x | mu_k, Sigma_k)``.
+        """
         A = self.family.design(self.standardise(X))
         operator = self.family.scoring_operator(
             self.means, self.prec_chol, np.zeros(self.n_components)
@@ -291,7 +366,18 @@ class Mixture:
         return learning.em_step_rows(self, X, _gaps)
 
     def derive(self, s0, s1, s2, sumsq) -> dict:
-        """Parameters from statistics: :func:`shoal.core.parameters.derive`."""
+        """Parameters from statistics (standardised units).
+
+        Parameters
+        ----------
+        s0, s1, s2, sumsq
+            As for :func:`shoal.core.parameters.derive`.
+
+        Returns
+        -------
+        params : dict
+            As :func:`shoal.core.parameters.derive` returns them.
+        """
         return parameters.derive(self, s0, s1, s2, sumsq)
 
     # the names the tests and older callers use
@@ -303,43 +389,95 @@ class Mixture:
 
     # ------------------------------------------------------------- reporting
     def data_means(self) -> np.ndarray:
-        """Component means in data units, shape (n_components, n_features)."""
+        """Component means in data units.
+
+        Returns
+        -------
+        means : ndarray of shape (n_components, n_features)
+        """
         return self.center + self.means * self.scale
 
     def data_covariance_matrices(self) -> np.ndarray:
-        """Full covariance matrices in data units, shape (n_components, D, D)."""
+        """Full covariance matrices in data units, whatever the covariance type.
+
+        Returns
+        -------
+        covariances : ndarray of shape (n_components, n_features, n_features)
+        """
         mats = self.family.matrices(self.covariances, self.n_features)
         return mats * np.outer(self.scale, self.scale)
 
     def data_covariances(self) -> np.ndarray:
-        """Covariances in data units: (K, D, D) for full, else per-feature variances (K, D)."""
+        """Covariances in data units as the covariance type keeps them.
+
+        Returns
+        -------
+        covariances : ndarray of shape (n_components, n_features, n_features) or (n_components, n_features)
+            Matrices for full, per-feature variances for diag and spherical.
+        """
         if self.covariance == "full":
             return self.data_covariance_matrices()
         var = self.covariances if self.covariance == "diag" else self.covariances[:, None]
         return var * self.scale**2
 
     def data_stds(self) -> np.ndarray:
-        """Per-feature standard deviations of each component, data units, shape (K, D)."""
+        """Per-feature standard deviations of each component, data units.
+
+        Returns
+        -------
+        stds : ndarray of shape (n_components, n_features)
+        """
         mats = self.data_covariance_matrices()
         return np.sqrt(np.diagonal(mats, axis1=1, axis2=2))
 
     def low_mass(self, min_weight: float | None = None) -> np.ndarray:
-        """Stable ids of components whose weight is below ``min_weight`` (default mass_floor)."""
+        """Stable ids of the components whose weight is below ``min_weight``.
+
+        Parameters
+        ----------
+        min_weight : float, optional
+            Default: the mixture's ``mass_floor``.
+
+        Returns
+        -------
+        ids : ndarray of shape (n_low,)
+        """
         floor = self.mass_floor if min_weight is None else float(min_weight)
         return self.ids[self.weights < floor]
 
     def n_parameters(self) -> int:
-        """Free parameters (for BIC)."""
+        """Free parameters of the mixture (for BIC).
+
+        Returns
+        -------
+        n_parameters : int
+        """
         k, d = self.n_components, self.n_features
         return (k - 1) + k * d + self.family.n_parameters(k, d)
 
     # --------------------------------------------------------- serialisation
     def to_state(self) -> tuple[dict, dict]:
-        """A flat mapping of numeric arrays and a JSON-able metadata dict (no pickle);
-        see :func:`shoal.core.state.write_state`."""
+        """A flat mapping of numeric arrays and a JSON-able metadata dict (no pickle).
+
+        Returns
+        -------
+        arrays : dict of str to ndarray
+        meta : dict
+            See :func:`shoal.core.state.write_state`.
+        """
         return state.write_state(self)
 
     @classmethod
     def from_state(cls, arrays: dict, meta: dict) -> "Mixture":
-        """Rebuild a mixture saved by :meth:`to_state`; the round trip is exact."""
+        """Rebuild a mixture saved by :meth:`to_state`; the round trip is exact.
+
+        Parameters
+        ----------
+        arrays, meta
+            As for :func:`shoal.core.state.read_state`.
+
+        Returns
+        -------
+        mixture : Mixture
+        """
         return cls(**state.read_state(arrays, meta))

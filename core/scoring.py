@@ -82,15 +82,31 @@ class ScoreBuffer:
         self.confidence = np.empty(n_samples)
 
     def put(self, rows, sub: "ScoreBuffer") -> None:
-        """The scores of ``sub`` into ``rows`` (ndarray of shape (len(sub),))."""
+        """Copy the scores of ``sub`` into some of this buffer's rows.
+
+        Parameters
+        ----------
+        rows : ndarray of shape (n_sub,)
+        sub : ScoreBuffer
+            Of ``n_sub`` rows.
+        """
         self.resp_kn[:, rows] = sub.resp_kn
         self.log_density[rows] = sub.log_density
         self.component[rows] = sub.component
         self.confidence[rows] = sub.confidence
 
     def scores(self, ids) -> Scores:
-        """The buffer as :class:`Scores`; ``ids`` (ndarray of shape (n_components,))
-        names each component's segment."""
+        """The buffer as :class:`Scores`.
+
+        Parameters
+        ----------
+        ids : ndarray of shape (n_components,)
+            Each component's segment id.
+
+        Returns
+        -------
+        scores : Scores
+        """
         return Scores(
             log_density=self.log_density,
             resp=self.resp_kn.T,
@@ -188,8 +204,18 @@ def normalise(resp, out, lo, hi, log_scale_sum) -> None:
 
 
 def score_design(mixture, A, out, lo, operator) -> None:
-    """Score the rows of design matrix ``A`` (n_rows, width) into ``out`` at ``lo``,
-    with ``operator`` (the family's scoring operator)."""
+    """Score the rows of a design matrix into ``out``.
+
+    Parameters
+    ----------
+    mixture : Mixture
+    A : ndarray of shape (n_rows, width)
+    out : ScoreBuffer
+        Gets the scores at rows ``lo .. lo + n_rows``.
+    lo : int
+    operator : object
+        The family's scoring operator.
+    """
     hi = lo + A.shape[0]
     resp = out.resp_kn[:, lo:hi]
     mixture.family.log_joint(A, operator, out=resp)
@@ -197,8 +223,15 @@ def score_design(mixture, A, out, lo, operator) -> None:
 
 
 def score_block(mixture, Zb, out, lo) -> np.ndarray:
-    """Score a block of standardised rows ``Zb`` (n_rows, n_features) into ``out`` at
-    ``lo``.
+    """Score a block of standardised rows into ``out``.
+
+    Parameters
+    ----------
+    mixture : Mixture
+    Zb : ndarray of shape (n_rows, n_features)
+    out : ScoreBuffer
+        Gets the scores at rows ``lo .. lo + n_rows``.
+    lo : int
 
     Returns
     -------

@@ -300,7 +300,17 @@ def _split_merge_check(Z, template, best, best_ll, rng, *, max_iter, tol,
 
 
 def bic(mixture: Mixture, X) -> float:
-    """Schwarz's Bayesian information criterion, ``-2 log L + p log n`` (data units)."""
+    """Schwarz's Bayesian information criterion, ``-2 log L + p log n`` (data units).
+
+    Parameters
+    ----------
+    mixture : Mixture
+    X : array-like of shape (n_samples, n_features)
+
+    Returns
+    -------
+    bic : float
+    """
     X = np.asarray(X, dtype=np.float64)
     total = float(np.sum(mixture.log_density(X)))
     return -2.0 * total + mixture.n_parameters() * np.log(X.shape[0])
@@ -308,6 +318,16 @@ def bic(mixture: Mixture, X) -> float:
 
 def select_n_components(X, k_min, k_max, covariance="full", **kwargs):
     """Fit K = k_min .. k_max on the warm-up buffer and keep the lowest BIC (Schwarz 1978).
+
+    Parameters
+    ----------
+    X : array-like of shape (n_samples, n_features)
+        The warm-up rows.
+    k_min, k_max : int
+        The range of K tried; a K that the rows cannot seed ends the search.
+    covariance : {"full", "diag", "spherical"}
+    **kwargs
+        Passed to :func:`initialise`.
 
     Returns
     -------
