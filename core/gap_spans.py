@@ -59,19 +59,20 @@ def score_span_gaps(mixture, X, lo, hi, part, out, rows, learn):
     family = mixture.family
     operator = mixture.scoring_operator
     A = np.empty((hi - lo, family.width(mixture.n_features)))
-    for a in range(lo, hi, BLOCK_ROWS):
-        b = min(a + BLOCK_ROWS, hi)
-        Zb = X[a:b] if rows is None else rows(X[a:b])
-        if rows is not None:
-            Zb[np.isnan(Zb)] = 0.0      # the missing values at the centre
-        Ab = family.design(Zb, out=A[a - lo : b - lo])
-        family.log_joint(Ab, operator, out=out.resp_kn[:, a:b])
     at = lo + part.rows
     if rows is None:
         Zf = X[at]
     else:
         Zf = (X[at] - mixture.center) / mixture.scale
-        Zf[part.mask] = 0.0
+        Zf[part.mask] = 0.0             # the missing values at the centre
+    cut = np.searchsorted(part.rows, np.arange(0, hi - lo, BLOCK_ROWS)).tolist() + [len(part)]
+    for i, a in enumerate(range(lo, hi, BLOCK_ROWS)):
+        b = min(a + BLOCK_ROWS, hi)
+        Zb = X[a:b] if rows is None else rows(X[a:b])
+        if rows is not None and cut[i] < cut[i + 1]:
+            Zb[part.rows[cut[i] : cut[i + 1]] - (a - lo)] = Zf[cut[i] : cut[i + 1]]
+        Ab = family.design(Zb, out=A[a - lo : b - lo])
+        family.log_joint(Ab, operator, out=out.resp_kn[:, a:b])
     corr, aux = missing.gap_correction(mixture, Zf, part.mask, learn)
     out.resp_kn[:, at] += corr
     for a in range(lo, hi, BLOCK_ROWS):

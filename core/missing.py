@@ -241,9 +241,10 @@ def _solve_small(H, g):
         inv[..., 0, 0], inv[..., 1, 1] = c / det, a / det
         inv[..., 0, 1] = inv[..., 1, 0] = -b / det
         return np.einsum("...rs,...s->...r", inv, g), inv, np.log(det)
-    chol = np.linalg.cholesky(H)
+    sign, log_det = np.linalg.slogdet(H)
+    if np.any(sign <= 0):
+        raise np.linalg.LinAlgError("a precision block is not positive definite")
     inv = np.linalg.inv(H)
-    log_det = 2.0 * np.sum(np.log(np.diagonal(chol, axis1=-2, axis2=-1)), axis=-1)
     return np.einsum("...rs,...s->...r", inv, g), inv, log_det
 
 
@@ -257,25 +258,29 @@ def _full_gaps(model, Z, mask, learn):
     # g = (Lam (z - mu))_m for every (row, missing feature) pair: one small product
     # per feature over the rows that miss it (a D-th of the product over all of Lam)
     Zp = Z[pairs.row[pairs.by_col]]
-    gp = np.empty((K, pairs.row.size))
+    gp = np.empty((K, pairs.row.size))     # pairs ordered by feature
     for c, lo, hi in pairs.columns():
-        gp[:, pairs.by_col[lo:hi]] = lam[:, c, :] @ Zp[lo:hi].T
-    gp -= lam_mu[:, pairs.col]
+        np.matmul(lam[:, c, :], Zp[lo:hi].T, out=gp[:, lo:hi])
+    gp -= lam_mu[:, pairs.col[pairs.by_col]]
+    place = np.empty_like(pairs.by_col)    # pair (row order) -> its place in gp
+    place[pairs.by_col] = np.arange(place.size)
     corr = np.empty((K, n))
     pieces = []
     diag = np.diagonal(lam, axis1=1, axis2=2)
+    half_const = 0.5 * (LOG_2PI - np.log(diag))
     for r, rows, at in pairs.groups():
         cols = pairs.col[at]
         if r == 1:
             # one missing feature (most rows): H is the precision's diagonal entry
-            g = gp[:, at[:, 0]]
-            h = diag[:, cols[:, 0]]
+            c = cols[:, 0]
+            g = gp[:, place[at[:, 0]]]
+            h = diag[:, c]
             step = g / h
-            corr[:, rows] = 0.5 * (LOG_2PI - np.log(h) + g * step)
+            corr[:, rows] = half_const[:, c] + 0.5 * g * step
             if learn:
                 pieces.append((rows, at, step[:, :, None], (1.0 / h)[:, :, None, None]))
             continue
-        g = gp[:, at]
+        g = gp[:, place[at]]
         H = lam[:, cols[:, :, None], cols[:, None, :]]
         step, inv, log_det = _solve_small(H, g)
         corr[:, rows] = 0.5 * (r * LOG_2PI - log_det + np.sum(g * step, axis=-1))
