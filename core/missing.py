@@ -199,10 +199,11 @@ class _Pairs:
 
     ``row``, ``col``: the pairs in row order (each row's features increasing);
     ``start[i]``: where row ``i``'s pairs begin; ``count[i]``: how many it has;
-    ``by_col``: the pairs ordered by feature, ``ends[c]``: where feature ``c``'s end.
+    ``by_col``: the pairs ordered by feature, ``ends[c]``: where feature ``c``'s end;
+    ``place[p]``: where pair ``p`` sits in that order.
     """
 
-    __slots__ = ("row", "col", "start", "count", "by_col", "ends")
+    __slots__ = ("row", "col", "start", "count", "by_col", "ends", "place")
 
     def __init__(self, mask):
         self.row, self.col = np.nonzero(mask)
@@ -210,6 +211,8 @@ class _Pairs:
         self.start = np.cumsum(self.count) - self.count
         self.by_col = np.argsort(self.col, kind="stable")
         self.ends = np.cumsum(np.bincount(self.col, minlength=mask.shape[1]))
+        self.place = np.empty_like(self.by_col)
+        self.place[self.by_col] = np.arange(self.place.size)
 
     def columns(self):
         """``(c, lo, hi)``: feature ``c`` is missing in pairs ``by_col[lo:hi]``."""
@@ -219,17 +222,27 @@ class _Pairs:
                 yield c, lo, hi
             lo = hi
 
-    def groups(self):
-        """``(r, rows, at)``: the rows missing ``r`` features and their pairs' indices
+    def exactly(self, r):
+        """``(rows, at)``: the rows missing ``r`` features and their pairs' indices
         (len(rows), r)."""
-        for r in np.flatnonzero(np.bincount(self.count)):
-            rows = np.flatnonzero(self.count == r)
-            yield int(r), rows, self.start[rows][:, None] + np.arange(r)
+        rows = np.flatnonzero(self.count == r)
+        return rows, self.start[rows][:, None] + np.arange(r)
+
+    def several(self, least):
+        """``(rows, at, valid)``: the rows missing ``least`` features or more, their
+        pairs' indices (len(rows), r) padded to the largest count ``r`` with the index
+        one past the last pair, and where the indices are real (len(rows), r)."""
+        rows = np.flatnonzero(self.count >= least)
+        r = int(self.count[rows].max()) if rows.size else 0
+        valid = np.arange(r) < self.count[rows][:, None]
+        at = np.where(valid, self.start[rows][:, None] + np.arange(r), self.row.size)
+        return rows, at, valid
 
 
 def _solve_small(H, g):
     """``H^-1 g``, ``H^-1`` and ``log det H`` for stacks of small positive-definite ``H``
-    of shape (..., r, r), ``g`` (..., r); closed forms for r = 1 and 2."""
+    of shape (..., r, r), ``g`` (..., r); closed forms for r = 1 and 2, where LAPACK's
+    cost per matrix would dominate."""
     r = H.shape[-1]
     if r == 1:
         inv = 1.0 / H
@@ -262,28 +275,42 @@ def _full_gaps(model, Z, mask, learn):
     for c, lo, hi in pairs.columns():
         np.matmul(lam[:, c, :], Zp[lo:hi].T, out=gp[:, lo:hi])
     gp -= lam_mu[:, pairs.col[pairs.by_col]]
-    place = np.empty_like(pairs.by_col)    # pair (row order) -> its place in gp
-    place[pairs.by_col] = np.arange(place.size)
     corr = np.empty((K, n))
     pieces = []
     diag = np.diagonal(lam, axis1=1, axis2=2)
-    half_const = 0.5 * (LOG_2PI - np.log(diag))
-    for r, rows, at in pairs.groups():
+    # one missing feature (most rows): H is the precision's diagonal entry
+    rows, at = pairs.exactly(1)
+    if rows.size:
+        c = pairs.col[at[:, 0]]
+        g = gp[:, pairs.place[at[:, 0]]]
+        h = diag[:, c]
+        step = g / h
+        corr[:, rows] = 0.5 * (LOG_2PI - np.log(h) + g * step)
+        if learn:
+            pieces.append((rows, at, step[:, :, None], (1.0 / h)[:, :, None, None]))
+    # two: in closed form
+    rows, at = pairs.exactly(2)
+    if rows.size:
         cols = pairs.col[at]
-        if r == 1:
-            # one missing feature (most rows): H is the precision's diagonal entry
-            c = cols[:, 0]
-            g = gp[:, place[at[:, 0]]]
-            h = diag[:, c]
-            step = g / h
-            corr[:, rows] = half_const[:, c] + 0.5 * g * step
-            if learn:
-                pieces.append((rows, at, step[:, :, None], (1.0 / h)[:, :, None, None]))
-            continue
-        g = gp[:, place[at]]
+        g = gp[:, pairs.place[at]]
         H = lam[:, cols[:, :, None], cols[:, None, :]]
         step, inv, log_det = _solve_small(H, g)
-        corr[:, rows] = 0.5 * (r * LOG_2PI - log_det + np.sum(g * step, axis=-1))
+        corr[:, rows] = 0.5 * (2 * LOG_2PI - log_det + np.sum(g * step, axis=-1))
+        if learn:
+            pieces.append((rows, at, step, inv))
+    # more (few rows): one batch, each H padded to the largest with an identity block
+    # (inverse and determinant of the real block unchanged; g is zero in the padding)
+    rows, at, valid = pairs.several(3)
+    if rows.size:
+        r = at.shape[1]
+        cols = np.append(pairs.col, 0)[at]
+        g = np.append(gp, np.zeros((K, 1)), axis=1)[:, np.append(pairs.place, -1)[at]]
+        real = valid[:, :, None] & valid[:, None, :]
+        H = np.where(real, lam[:, cols[:, :, None], cols[:, None, :]], np.eye(r))
+        step, inv, log_det = _solve_small(H, g)
+        inv *= real
+        count = pairs.count[rows]
+        corr[:, rows] = 0.5 * (count * LOG_2PI - log_det + np.sum(g * step, axis=-1))
         if learn:
             pieces.append((rows, at, step, inv))
     return corr, (Z, pairs, Zp, pieces) if learn else None
@@ -300,18 +327,19 @@ def _full_correction(W, aux):
     Z, pairs, Zp, pieces = aux
     K, D = W.shape[0], Z.shape[1]
     comp = np.arange(K)[:, None]
-    V = np.empty((K, pairs.row.size))        # W * H^-1 g = -W delta, per pair
+    V = np.empty((K, pairs.row.size + 1))    # W * H^-1 g = -W delta, per pair (+ padding)
     s2 = np.zeros(K * D * D)
     for rows, at, step, inv in pieces:
         n, r = at.shape
         ws = W[:, rows, None] * step
         V[:, at.ravel()] = ws.reshape(K, n * r)
-        cols = pairs.col[at]
+        cols = np.append(pairs.col, 0)[at]       # the padding weighs nothing
         block = step[..., :, None] * step[..., None, :] + inv
         cell = (cols[:, :, None] * D + cols[:, None, :]).reshape(n * r * r)
         s2 += np.bincount((comp * (D * D) + cell).ravel(),
                           weights=(W[:, rows, None] * block.reshape(K, n, r * r)).ravel(),
                           minlength=K * D * D)
+    V = V[:, :-1]
     s1 = -np.bincount((comp * D + pairs.col).ravel(), weights=V.ravel(), minlength=K * D)
     s2 = s2.reshape(K, D, D)
     # cross terms, one missing feature at a time: sum_i -W_ki delta_kic z_i
