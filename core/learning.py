@@ -14,9 +14,10 @@ from functools import wraps
 
 import numpy as np
 
-from . import fused, missing
+from . import fused, missing, packed_gaps
 from .errors import ModelError
 from .gap_spans import em_step_gaps, learn_span_gaps, score_gaps
+from .gaps import NOT_FINITE
 from .parameters import derive, evolve, refresh
 from .scoring import (
     SPAN_ROWS,
@@ -30,9 +31,6 @@ from .scoring import (
 
 __all__ = ["retry_with_gaps", "score_rows", "learn_rows", "em_step_rows",
            "em_step_standardised"]
-
-_NOT_FINITE = "X contains NaN or infinite values; drop or mark those rows first"
-
 
 def retry_with_gaps(always_fill=False):
     """Decorate a method ``f(mixture, X, *, _gaps=None)`` that refuses NaN.
@@ -62,7 +60,7 @@ def retry_with_gaps(always_fill=False):
                 X = checked_rows(mixture, X, check=False)
                 gaps = missing.find(X, fused.kernels() if fused.enabled() else None)
                 if gaps is None:        # nothing missing: only overflowing sums
-                    raise ModelError(_NOT_FINITE) from None
+                    raise ModelError(NOT_FINITE) from None
                 if always_fill:
                     X = missing.fill(X, mixture.center, gaps)
                 return method(mixture, X, *args, _gaps=gaps, **kwargs)
@@ -88,7 +86,7 @@ def score_rows(mixture, X, gaps=None):
     X = checked_rows(mixture, X, check=not fused.enabled() and gaps is None)
     out = ScoreBuffer(X.shape[0], mixture.n_components)
     if fused.enabled():
-        packed = None if gaps is None else fused.pack(gaps, mixture.covariance,
+        packed = None if gaps is None else packed_gaps.pack(gaps, mixture.covariance,
                                                       mixture.n_components)
         fused.compiled_span(mixture, X, 0, X.shape[0], out, gaps=packed)
     elif gaps is not None:
@@ -127,7 +125,7 @@ def learn_rows(mixture, X, gaps=None):
     pos = 0
     every = mixture.refresh_rows
     # rows with gaps: in the compiled kernels on that path, else by core/gap_spans.py
-    packed = None if gaps is None or not jit else fused.pack(
+    packed = None if gaps is None or not jit else packed_gaps.pack(
         gaps, mixture.covariance, mixture.n_components)
     gap_rows = None if jit else gaps
     while pos < n:

@@ -20,7 +20,7 @@ import numpy as np
 
 from . import fused
 from .errors import ModelError
-from .missing import not_finite
+from .gaps import not_finite
 
 __all__ = ["Scores", "ScoreBuffer", "Standardiser", "BLOCK_ROWS", "SPAN_ROWS", "checked_rows",
            "normalise", "score_design", "score_block", "score_span", "score_standardised",
