@@ -23,9 +23,10 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
+from . import fused, parameters
 from .errors import ModelError
-from . import fused
-from .mixture import BLOCK_ROWS, Mixture, Scores, ScoreBuffer
+from .mixture import Mixture
+from .scoring import BLOCK_ROWS, ScoreBuffer, Scores, accumulate, checked_rows, score_block
 from .schedule import StepSchedule
 
 __all__ = ["PartitionStatistics", "keep_between", "round_weights", "partition_statistics",
@@ -55,8 +56,18 @@ class PartitionStatistics:
 
 
 def keep_between(schedule: StepSchedule, start: int, stop: int) -> float:
-    """``prod (1 - eta_j)`` over rows ``start+1 .. stop``: what those rows leave of older
-    statistics."""
+    """What rows ``start+1 .. stop`` leave of older statistics.
+
+    Parameters
+    ----------
+    schedule : StepSchedule
+    start, stop : int
+
+    Returns
+    -------
+    keep : float
+        ``prod (1 - eta_j)`` over those rows.
+    """
     if stop <= start:
         return 1.0
     return float(np.exp(np.sum(np.log1p(-schedule.steps(start, stop - start)))))
@@ -64,6 +75,12 @@ def keep_between(schedule: StepSchedule, start: int, stop: int) -> float:
 
 def round_weights(schedule: StepSchedule, lo: int, hi: int, stop: int) -> np.ndarray:
     """Weights of rows ``lo+1 .. hi`` in the statistics of a round that ends at row ``stop``.
+
+    Parameters
+    ----------
+    schedule : StepSchedule
+    lo, hi, stop : int
+        ``lo <= hi <= stop``.
 
     Returns
     -------
@@ -93,21 +110,21 @@ def partition_statistics(mixture: Mixture, X, weights) -> tuple[PartitionStatist
     scores : Scores
         The rows' scores under the snapshot.
     """
-    X = mixture._rows(X, check=not fused.enabled())
+    X = checked_rows(mixture, X, check=not fused.enabled())
     weights = np.asarray(weights, dtype=np.float64)
     if weights.shape != (X.shape[0],):
         raise ModelError(f"weights should have shape ({X.shape[0]},), got {weights.shape}")
     n = X.shape[0]
     out = ScoreBuffer(n, mixture.n_components)
     if n and fused.enabled():
-        total = mixture._fused_span(X, 0, n, out, True, weights, mixture.resp_floor)
+        total = fused.compiled_span(mixture, X, 0, n, out, True, weights, mixture.resp_floor)
     else:
         total = (np.zeros_like(mixture.s0), np.zeros_like(mixture.s1), np.zeros_like(mixture.s2))
         for lo in range(0, n, BLOCK_ROWS):
             Zb = (X[lo:lo + BLOCK_ROWS] - mixture.center) / mixture.scale
-            A = mixture._score_block(Zb, out, lo)
+            A = score_block(mixture, Zb, out, lo)
             hi = lo + Zb.shape[0]
-            part = mixture._accumulate(A, out.resp_kn[:, lo:hi], weights[lo:hi])
+            part = accumulate(mixture, A, out.resp_kn[:, lo:hi], weights[lo:hi])
             total = tuple(a + b for a, b in zip(total, part))
     stats = PartitionStatistics(s0=total[0], s1=total[1], s2=total[2],
                                 sumsq=float(np.dot(weights, weights)), n_rows=int(n))
@@ -121,6 +138,18 @@ def apply_round(mixture: Mixture, parts, start: int, stop: int, *, refresh: bool
     ``mixture.n_rows`` must equal ``start``. With ``refresh``, the parameters are derived
     from the new statistics (as :meth:`Mixture.learn` does at a refresh point); without
     it they stay those in force.
+
+    Parameters
+    ----------
+    mixture : Mixture
+        The model before the round.
+    parts : iterable of PartitionStatistics
+    start, stop : int
+    refresh : bool
+
+    Returns
+    -------
+    mixture : Mixture
     """
     if mixture.n_rows != start:
         raise ModelError(f"the mixture has learned {mixture.n_rows} rows but the round "
@@ -137,5 +166,5 @@ def apply_round(mixture: Mixture, parts, start: int, stop: int, *, refresh: bool
         sumsq += p.sumsq
     model = mixture
     if refresh:
-        model = replace(model, **model._refresh(s0, s1, s2, sumsq))
+        model = replace(model, **parameters.refresh(model, s0, s1, s2, sumsq))
     return replace(model, s0=s0, s1=s1, s2=s2, sumsq=sumsq, n_rows=stop)

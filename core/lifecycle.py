@@ -97,7 +97,7 @@ def _rebuilt(mixture: Mixture, ids, next_id, stat_arrays: dict) -> Mixture:
     """A copy with new statistics and ids, parameters derived once from the statistics."""
     averaged = mixture.averaging and mixture.avg_count > 0
     source = _AVG_STATS if averaged else _STATS
-    params = mixture._derive(*(stat_arrays[name] for name in source), mixture.sumsq)
+    params = mixture.derive(*(stat_arrays[name] for name in source), mixture.sumsq)
     return replace(
         mixture, ids=np.asarray(ids, dtype=np.int64), next_id=int(next_id),
         **stat_arrays, **params,

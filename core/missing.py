@@ -33,117 +33,86 @@ the rows with a gap, filled, through these kernels.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 
 from .covariance import LOG_2PI
-from .errors import ModelError
+from .gaps import Gaps, MissingValues, fill, find, not_finite
 
-__all__ = ["Gaps", "find", "fill", "gap_log_joint", "gap_moments", "pack", "Packed", "Bound"]
+__all__ = ["Gaps", "MissingValues", "not_finite", "find", "fill", "gap_log_joint",
+           "gap_correction", "gap_moments", "completion_moments", "expected_scatter",
+           "precision_matrices"]
 
 BLOCK_ROWS = 2048   # incomplete rows handled at once: (K, rows, D) arrays stay small
-_INFINITE = ("X contains infinite values; drop or mark those rows first (NaN marks a "
-             "missing feature)")
-
-
-class Gaps:
-    """Where a block of rows has missing features.
-
-    Attributes
-    ----------
-    rows : ndarray of shape (n_gappy,)
-        Increasing indices of the rows with at least one missing feature.
-    mask : ndarray of shape (n_gappy, n_features)
-        True where that row's feature is missing (made on first use when the gaps were
-        given as ``off`` and ``cols``: row ``g`` misses ``cols[off[g]:off[g+1]]``).
-    """
-
-    __slots__ = ("rows", "_mask", "off", "cols", "n_features")
-
-    def __init__(self, rows, mask=None, *, off=None, cols=None, n_features=None):
-        self.rows, self._mask = rows, mask
-        self.off, self.cols, self.n_features = off, cols, n_features
-
-    @property
-    def mask(self) -> np.ndarray:
-        if self._mask is None:
-            mask = np.zeros((len(self), self.n_features), dtype=bool)
-            mask[np.repeat(np.arange(len(self)), np.diff(self.off)), self.cols] = True
-            self._mask = mask
-        return self._mask
-
-    def within(self, lo: int, hi: int) -> "Gaps":
-        """The gaps of rows ``lo:hi``, indexed from ``lo``."""
-        a, b = np.searchsorted(self.rows, [lo, hi])
-        if self._mask is not None:
-            return Gaps(self.rows[a:b] - lo, self._mask[a:b])
-        return Gaps(self.rows[a:b] - lo, off=self.off[a:b + 1] - self.off[a],
-                    cols=self.cols[self.off[a]:self.off[b]], n_features=self.n_features)
-
-    def __len__(self) -> int:
-        return int(self.rows.shape[0])
-
-
-def find(X, kern=None) -> Gaps | None:
-    """Where ``X`` (float64, shape (n_samples, n_features)) has NaN; None if nowhere.
-
-    One pass finds the rows to look at: the compiled ``kern.gap_index`` if given,
-    else numpy's row sums (a NaN or an infinity makes the sum non-finite). Infinite
-    values are not missing: they raise :class:`ModelError`.
-    """
-    if kern is not None and X.flags.c_contiguous:
-        n, D = X.shape
-        rows, off = np.empty(n, dtype=np.int64), np.empty(n + 1, dtype=np.int64)
-        cols = np.empty(n * D, dtype=np.int64)
-        count = kern.gap_index(X, rows, off, cols)
-        if count < 0:
-            raise ModelError(_INFINITE)
-        if count == 0:
-            return None
-        return Gaps(rows[:count], off=off[: count + 1], cols=cols[: off[count]],
-                    n_features=D)
-    suspect = np.flatnonzero(~np.isfinite(np.add.reduce(X, axis=1)))
-    if suspect.size == 0:
-        return None
-    sub = X[suspect]
-    if np.isinf(sub).any():
-        raise ModelError(_INFINITE)
-    nan = np.isnan(sub)
-    keep = nan.any(axis=1)     # the others only overflowed their sum: finite rows
-    if not keep.any():
-        return None
-    return Gaps(suspect[keep], nan[keep])
-
-
-def fill(X, center, gaps: Gaps) -> np.ndarray:
-    """A copy of ``X`` with its missing values at the feature's ``center``."""
-    filled = X.copy()
-    filled[gaps.rows] = np.where(gaps.mask, center, X[gaps.rows])
-    return filled
 
 
 # ------------------------------------------------------------------- full type
-def _precision(model):
-    """``Lam_k = U_k U_k^T`` and ``Lam_k mu_k``, shapes (K, D, D) and (K, D)."""
+def precision_matrices(model):
+    """The full type's precisions ``Lam_k = U_k U_k^T`` and ``Lam_k mu_k``.
+
+    Parameters
+    ----------
+    model : Mixture
+        A full-covariance mixture.
+
+    Returns
+    -------
+    lam : ndarray of shape (n_components, n_features, n_features)
+    lam_mu : ndarray of shape (n_components, n_features)
+    """
     U = model.prec_chol
     lam = U @ np.swapaxes(U, 1, 2)
     return lam, np.einsum("kde,ke->kd", lam, model.means)
 
 
-def _groups(mask):
-    """Rows grouped by how many features they miss: ``(r, rows, cols)`` with ``cols`` of
-    shape (len(rows), r) listing each row's missing features in increasing order."""
-    count = np.count_nonzero(mask, axis=1)
-    for r in np.flatnonzero(np.bincount(count)):
-        rows = np.flatnonzero(count == r)
-        cols = np.nonzero(mask[rows])[1].reshape(rows.size, r)
-        yield int(r), rows, cols
+class _Pairs:
+    """The (row, missing feature) pairs of a block of rows with gaps.
+
+    ``row``, ``col``: the pairs in row order (each row's features increasing);
+    ``start[i]``: where row ``i``'s pairs begin; ``count[i]``: how many it has;
+    ``by_col``: the pairs ordered by feature, ``ends[c]``: where feature ``c``'s end;
+    ``place[p]``: where pair ``p`` sits in that order.
+    """
+
+    __slots__ = ("row", "col", "start", "count", "by_col", "ends", "place")
+
+    def __init__(self, mask):
+        self.row, self.col = np.nonzero(mask)
+        self.count = np.count_nonzero(mask, axis=1)
+        self.start = np.cumsum(self.count) - self.count
+        self.by_col = np.argsort(self.col, kind="stable")
+        self.ends = np.cumsum(np.bincount(self.col, minlength=mask.shape[1]))
+        self.place = np.empty_like(self.by_col)
+        self.place[self.by_col] = np.arange(self.place.size)
+
+    def columns(self):
+        """``(c, lo, hi)``: feature ``c`` is missing in pairs ``by_col[lo:hi]``."""
+        lo = 0
+        for c, hi in enumerate(self.ends.tolist()):
+            if hi > lo:
+                yield c, lo, hi
+            lo = hi
+
+    def exactly(self, r):
+        """``(rows, at)``: the rows missing ``r`` features and their pairs' indices
+        (len(rows), r)."""
+        rows = np.flatnonzero(self.count == r)
+        return rows, self.start[rows][:, None] + np.arange(r)
+
+    def several(self, least):
+        """``(rows, at, valid)``: the rows missing ``least`` features or more, their
+        pairs' indices (len(rows), r) padded to the largest count ``r`` with the index
+        one past the last pair, and where the indices are real (len(rows), r)."""
+        rows = np.flatnonzero(self.count >= least)
+        r = int(self.count[rows].max()) if rows.size else 0
+        valid = np.arange(r) < self.count[rows][:, None]
+        at = np.where(valid, self.start[rows][:, None] + np.arange(r), self.row.size)
+        return rows, at, valid
 
 
 def _solve_small(H, g):
     """``H^-1 g``, ``H^-1`` and ``log det H`` for stacks of small positive-definite ``H``
-    of shape (..., r, r), ``g`` (..., r); closed forms for r = 1 and 2."""
+    of shape (..., r, r), ``g`` (..., r); closed forms for r = 1 and 2, where LAPACK's
+    cost per matrix would dominate."""
     r = H.shape[-1]
     if r == 1:
         inv = 1.0 / H
@@ -155,52 +124,102 @@ def _solve_small(H, g):
         inv[..., 0, 0], inv[..., 1, 1] = c / det, a / det
         inv[..., 0, 1] = inv[..., 1, 0] = -b / det
         return np.einsum("...rs,...s->...r", inv, g), inv, np.log(det)
-    chol = np.linalg.cholesky(H)
+    sign, log_det = np.linalg.slogdet(H)
+    if np.any(sign <= 0):
+        raise np.linalg.LinAlgError("a precision block is not positive definite")
     inv = np.linalg.inv(H)
-    log_det = 2.0 * np.sum(np.log(np.diagonal(chol, axis1=-2, axis2=-1)), axis=-1)
     return np.einsum("...rs,...s->...r", inv, g), inv, log_det
 
 
 def _full_gaps(model, Z, mask, learn):
-    """Correction (K, n) to the filled rows' log-joint and, with ``learn``, the completed
-    rows (K, n, D) and the conditional covariances by group."""
-    lam, lam_mu = _precision(model)
+    """Correction (K, n) to the filled rows' log-joint and, with ``learn``, per group of
+    rows missing as many features: ``(rows, at, step, inv)`` with ``step = H^-1 g``
+    (K, len(rows), r) and ``inv = H^-1`` (K, len(rows), r, r)."""
+    lam, lam_mu = precision_matrices(model)
     K, n, D = model.n_components, Z.shape[0], Z.shape[1]
+    pairs = _Pairs(mask)
+    # g = (Lam (z - mu))_m for every (row, missing feature) pair: one small product
+    # per feature over the rows that miss it (a D-th of the product over all of Lam)
+    Zp = Z[pairs.row[pairs.by_col]]
+    gp = np.empty((K, pairs.row.size))     # pairs ordered by feature
+    for c, lo, hi in pairs.columns():
+        np.matmul(lam[:, c, :], Zp[lo:hi].T, out=gp[:, lo:hi])
+    gp -= lam_mu[:, pairs.col[pairs.by_col]]
     corr = np.empty((K, n))
-    zhat = np.broadcast_to(Z, (K, n, D)).copy() if learn else None
-    conds = []
-    # Lam_k z for every row in one product; each row then takes its missing entries
-    lam_z = (lam.reshape(K * D, D) @ Z.T).reshape(K, D, n)
-    for r, rows, cols in _groups(mask):
-        g = lam_z[:, cols, rows[:, None]] - lam_mu[:, cols]
+    pieces = []
+    diag = np.diagonal(lam, axis1=1, axis2=2)
+    # one missing feature (most rows): H is the precision's diagonal entry
+    rows, at = pairs.exactly(1)
+    if rows.size:
+        c = pairs.col[at[:, 0]]
+        g = gp[:, pairs.place[at[:, 0]]]
+        h = diag[:, c]
+        step = g / h
+        corr[:, rows] = 0.5 * (LOG_2PI - np.log(h) + g * step)
+        if learn:
+            pieces.append((rows, at, step[:, :, None], (1.0 / h)[:, :, None, None]))
+    # two: in closed form
+    rows, at = pairs.exactly(2)
+    if rows.size:
+        cols = pairs.col[at]
+        g = gp[:, pairs.place[at]]
         H = lam[:, cols[:, :, None], cols[:, None, :]]
         step, inv, log_det = _solve_small(H, g)
-        corr[:, rows] = 0.5 * (r * LOG_2PI - log_det + np.sum(g * step, axis=-1))
+        corr[:, rows] = 0.5 * (2 * LOG_2PI - log_det + np.sum(g * step, axis=-1))
         if learn:
-            # E[z_m | z_o, k] = z_m - H^-1 g, written into each row's missing slots
-            flat = (rows[:, None] * D + cols).ravel()
-            zhat.reshape(K, n * D)[:, flat] -= step.reshape(K, -1)
-            conds.append((rows, cols, inv))
-    return corr, zhat, conds
+            pieces.append((rows, at, step, inv))
+    # more (few rows): one batch, each H padded to the largest with an identity block
+    # (inverse and determinant of the real block unchanged; g is zero in the padding)
+    rows, at, valid = pairs.several(3)
+    if rows.size:
+        r = at.shape[1]
+        cols = np.append(pairs.col, 0)[at]
+        g = np.append(gp, np.zeros((K, 1)), axis=1)[:, np.append(pairs.place, -1)[at]]
+        real = valid[:, :, None] & valid[:, None, :]
+        H = np.where(real, lam[:, cols[:, :, None], cols[:, None, :]], np.eye(r))
+        step, inv, log_det = _solve_small(H, g)
+        inv *= real
+        count = pairs.count[rows]
+        corr[:, rows] = 0.5 * (count * LOG_2PI - log_det + np.sum(g * step, axis=-1))
+        if learn:
+            pieces.append((rows, at, step, inv))
+    return corr, (Z, pairs, Zp, pieces) if learn else None
 
 
-def _full_second(W, zhat, conds, D):
-    # per component over the rows with weight for it (the responsibility floor leaves
-    # most rows to one or two components): a fraction of one dense batched product
-    K = W.shape[0]
-    s2 = np.zeros((K, D, D))
-    for k in range(K):
-        on = np.flatnonzero(W[k])
-        if on.size:
-            zk = zhat[k, on]
-            s2[k] = (zk * W[k, on, None]).T @ zk
-    for rows, cols, inv in conds:
-        # sum_i W_ki Cov_ki at (m_i, m_i): one bincount over (component, entry) indices
-        at = (cols[:, :, None] * D + cols[:, None, :]).reshape(rows.size, -1)
-        at = (np.arange(K)[:, None, None] * (D * D) + at[None]).ravel()
-        wk = (W[:, rows, None] * inv.reshape(K, rows.size, -1)).ravel()
-        s2 += np.bincount(at, weights=wk, minlength=K * D * D).reshape(K, D, D)
-    return s2
+def _full_correction(W, aux):
+    """What completing the rows adds to the moments of the filled rows, weights ``W``
+    (K, n): ``(s1, s2)`` of shapes (K, D) and (K, D, D).
+
+    A row completes to ``zhat = z + delta`` with ``delta = -H^-1 g`` on its missing
+    features (``z`` is zero there), so ``zhat zhat^T + Cov = z z^T + z delta^T +
+    delta z^T + delta delta^T + Cov``: the first term is the filled row's, the cross
+    terms fill the missing columns, the last two the missing-by-missing block."""
+    Z, pairs, Zp, pieces = aux
+    K, D = W.shape[0], Z.shape[1]
+    comp = np.arange(K)[:, None]
+    V = np.empty((K, pairs.row.size + 1))    # W * H^-1 g = -W delta, per pair (+ padding)
+    s2 = np.zeros(K * D * D)
+    for rows, at, step, inv in pieces:
+        n, r = at.shape
+        ws = W[:, rows, None] * step
+        V[:, at.ravel()] = ws.reshape(K, n * r)
+        cols = np.append(pairs.col, 0)[at]       # the padding weighs nothing
+        block = step[..., :, None] * step[..., None, :] + inv
+        cell = (cols[:, :, None] * D + cols[:, None, :]).reshape(n * r * r)
+        s2 += np.bincount((comp * (D * D) + cell).ravel(),
+                          weights=(W[:, rows, None] * block.reshape(K, n, r * r)).ravel(),
+                          minlength=K * D * D)
+    V = V[:, :-1]
+    s1 = -np.bincount((comp * D + pairs.col).ravel(), weights=V.ravel(), minlength=K * D)
+    s2 = s2.reshape(K, D, D)
+    # cross terms, one missing feature at a time: sum_i -W_ki delta_kic z_i
+    Vc = V[:, pairs.by_col]
+    cross = np.zeros((K, D, D))
+    for c, lo, hi in pairs.columns():
+        cross[:, c, :] = Vc[:, lo:hi] @ Zp[lo:hi]
+    s2 -= cross
+    s2 -= np.swapaxes(cross, 1, 2)
+    return s1.reshape(K, D), s2
 
 
 # ------------------------------------------------------- diag and spherical types
@@ -215,14 +234,15 @@ def _diag_gaps(model, Z, mask, learn):
     M = mask.astype(np.float64)
     term = 0.5 * (LOG_2PI - np.log(prec) + prec * model.means**2)
     corr = term @ M.T
-    return corr, ((Z, M, model.means, 1.0 / prec) if learn else None), None
+    return corr, ((Z, M, model.means, 1.0 / prec) if learn else None)
 
 
-def _diag_moments(W, aux):
-    """``(s1, diagonal of s2)`` of rows completed by their components' means."""
+def _diag_correction(W, aux):
+    """What completing the rows adds to the moments of the filled rows: ``(s1, diagonal
+    of s2)``; a missing coordinate completes to the component's mean, with its variance."""
     Z, M, means, var = aux
     WM = W @ M
-    return W @ Z + means * WM, W @ (Z * Z) + (means * means + var) * WM
+    return means * WM, (means * means + var) * WM
 
 
 def _diag_completed(aux):
@@ -264,124 +284,89 @@ def gap_log_joint(model, Zf, mask, learn=False):
         With ``learn``: the completed rows and the conditional covariances.
     """
     family = model.family
-    base = family.log_joint(family.design(Zf), model._scoring_operator)
-    corr, first, second = _GAPS[model.covariance](model, Zf, mask, learn)
+    base = family.log_joint(family.design(Zf), model.scoring_operator)
+    corr, aux = gap_correction(model, Zf, mask, learn)
     base += corr
-    base += _scale_term(model, mask)
-    if not learn:
-        return base, None
-    return base, ((first, second) if model.covariance == "full" else first)
+    return base, aux
+
+
+def gap_correction(model, Zf, mask, learn=False):
+    """What turns the log-joint of rows filled at zero into their marginal log-joint.
+
+    Parameters
+    ----------
+    model : Mixture
+    Zf : ndarray of shape (n_samples, n_features)
+        Standardised rows with the missing features filled by zero.
+    mask : ndarray of shape (n_samples, n_features)
+        True where a feature is missing.
+    learn : bool
+        Also return what the E-step needs.
+
+    Returns
+    -------
+    correction : ndarray of shape (n_components, n_samples)
+        To add to ``log w_k + log N(z | mu_k, Sigma_k)`` of the filled rows: the result
+        is :func:`gap_log_joint`'s.
+    aux : tuple or None
+        With ``learn``: the completed rows and the conditional covariances, for
+        :func:`gap_moments`.
+    """
+    corr, aux = _GAPS[model.covariance](model, Zf, mask, learn)
+    corr += _scale_term(model, mask)
+    return corr, (aux if learn else None)
 
 
 def gap_moments(model, W, aux):
-    """Statistics ``(s0, s1, s2)`` of rows with gaps for the E-step weights ``W``
-    (n_components, n_samples): the completed rows' moments plus the conditional
-    covariances in the second moment."""
-    D = model.n_features
-    s0 = W.sum(axis=1)
+    """Statistics ``(s0, s1, s2)`` of rows with gaps for the E-step weights ``W``.
+
+    Parameters
+    ----------
+    model : Mixture
+    W : ndarray of shape (n_components, n_samples)
+        The rows' E-step weights.
+    aux : tuple
+        From :func:`gap_correction` (or :func:`gap_log_joint`) with ``learn``.
+
+    Returns
+    -------
+    s0 : ndarray of shape (n_components,)
+    s1 : ndarray of shape (n_components, n_features)
+    s2 : ndarray of shape (n_components, n_features, n_features), (n_components,
+        n_features) or (n_components,), as the mixture's covariance type keeps it
+        The completed rows' moments plus the conditional covariances.
+    """
+    family = model.family
+    s0, s1, s2 = family.moments(family.design(aux[0]), W)
+    c1, c2 = completion_moments(model, W, aux)
+    return s0, s1 + c1, s2 + c2
+
+
+def completion_moments(model, W, aux):
+    """What completing rows with gaps adds to the moments of the rows filled at zero.
+
+    Parameters
+    ----------
+    model : Mixture
+    W : ndarray of shape (n_components, n_samples)
+        The rows' E-step weights.
+    aux : tuple
+        From :func:`gap_correction` with ``learn``.
+
+    Returns
+    -------
+    s1 : ndarray of shape (n_components, n_features)
+    s2 : ndarray of shape (n_components, n_features, n_features), (n_components,
+        n_features) or (n_components,), as the mixture's covariance type keeps it
+        Added to the filled rows' statistics with weights ``W`` they give those of
+        :func:`gap_moments`.
+    """
     if model.covariance == "full":
-        zhat, cond = aux
-        return s0, np.einsum("kn,knd->kd", W, zhat), _full_second(W, zhat, cond, D)
-    s1, s2 = _diag_moments(W, aux)
+        return _full_correction(W, aux)
+    s1, s2 = _diag_correction(W, aux)
     if model.covariance == "spherical":
-        s2 = s2.sum(axis=1) / D
-    return s0, s1, s2
-
-
-# ------------------------------------------------------------------ compiled path
-_KIND = {"full": 0, "diag": 1, "spherical": 2}
-
-
-@dataclass(frozen=True)
-class Packed:
-    """Gaps laid out for the compiled kernels (``gap_log_joint``, ``gap_moments`` in
-    core/_kernels_gaps.h): the rows, their missing features by offsets, and room for the
-    E-step's steps and conditional covariances."""
-
-    rows: np.ndarray     # (n_gappy,) int64, increasing
-    off: np.ndarray      # (n_gappy + 1,) int64: row g misses cols[off[g]:off[g+1]]
-    cols: np.ndarray     # (off[-1],) int64
-    hoff: np.ndarray     # (n_gappy + 1,) int64: offsets of each row's H^-1 / K
-    step: np.ndarray     # (K * off[-1],)
-    hinv: np.ndarray     # (K * hoff[-1],)
-
-
-def pack(gaps: Gaps, covariance: str, n_components: int) -> Packed:
-    """:class:`Packed` for ``gaps`` of a mixture of that type and size."""
-    if gaps.off is not None:
-        off, cols = gaps.off, gaps.cols
-        count = np.diff(off)
-    else:
-        count = gaps.mask.sum(axis=1).astype(np.int64)
-        off = np.zeros(len(gaps) + 1, dtype=np.int64)
-        np.cumsum(count, out=off[1:])
-        cols = np.nonzero(gaps.mask)[1].astype(np.int64)
-    hoff = off
-    if covariance == "full":
-        hoff = np.zeros_like(off)
-        np.cumsum(count * count, out=hoff[1:])
-    return Packed(gaps.rows.astype(np.int64), off, cols, hoff,
-                  np.empty(n_components * int(off[-1])), np.empty(n_components * int(hoff[-1])))
-
-
-class Bound:
-    """:class:`Packed` gaps with one parameter set's precision, for one span of rows."""
-
-    __slots__ = ("packed", "kind", "lam", "lam_mu", "half_const", "log_scale", "kern",
-                 "_block")
-
-    def __init__(self, packed: Packed, model, data_units: bool, kern):
-        self.packed, self.kern = packed, kern
-        self.kind = _KIND[model.covariance]
-        D = model.n_features
-        if model.covariance == "full":
-            self.lam, self.lam_mu = (np.ascontiguousarray(a) for a in _precision(model))
-        else:
-            prec = model.prec_chol ** 2
-            self.lam = np.ascontiguousarray(np.broadcast_to(
-                prec[:, None] if prec.ndim == 1 else prec, (model.n_components, D)))
-            self.lam_mu = np.ascontiguousarray(model.means)
-        diag = self.lam if self.lam.ndim == 2 else np.diagonal(self.lam, axis1=1, axis2=2)
-        # a feature missing alone: 0.5 (log 2 pi - log Lam_jj) of the correction
-        self.half_const = 0.5 * (LOG_2PI - np.log(diag))
-        self.log_scale = np.log(model.scale) if data_units else np.zeros(D)
-        self._block = (None, 0, 0)
-
-    def _range(self, lo, hi):
-        """The gappy rows of block ``lo:hi`` (found once per block)."""
-        if self._block[0] != (lo, hi):
-            a, b = np.searchsorted(self.packed.rows, [lo, hi])
-            self._block = ((lo, hi), int(a), int(b))
-        return self._block[1], self._block[2]
-
-    def fix(self, A, lo):
-        """Design rows ``A`` from row ``lo`` as if the missing values were at the centre
-        (the design kernel wrote NaN there)."""
-        ga, gb = self._range(lo, lo + A.shape[0])
-        if ga < gb:
-            p = self.packed
-            self.kern.gap_fix(A, lo, p.rows, p.off, p.cols, ga, gb, self.kind)
-
-    def log_joint(self, A, lo, L):
-        """Correct the log-joint ``L`` of the block of design rows ``A`` from row ``lo``."""
-        ga, gb = self._range(lo, lo + A.shape[0])
-        if ga == gb:
-            return
-        p = self.packed
-        if not self.kern.gap_log_joint(A, lo, L, p.rows, p.off, p.cols, p.hoff, ga, gb,
-                                       self.lam, self.lam_mu, self.half_const,
-                                       self.log_scale, self.kind, p.step, p.hinv):
-            raise ModelError("a component's precision is not positive definite on the "
-                             "missing features; raise reg_covar")
-
-    def moments(self, A, lo, R, row_w, floor, P):
-        """Add the block's gappy rows' M-step corrections to the design products ``P``."""
-        ga, gb = self._range(lo, lo + A.shape[0])
-        if ga == gb:
-            return
-        p = self.packed
-        self.kern.gap_moments(A, lo, R, row_w, floor, p.rows, p.off, p.cols, p.hoff, ga, gb,
-                              p.step, p.hinv, self.kind, P)
+        s2 = s2.sum(axis=1) / model.n_features
+    return s1, s2
 
 
 # ---------------------------------------------------------------- drift windows
@@ -405,11 +390,14 @@ def expected_scatter(model, Zf, mask, resp):
     scatter : ndarray of shape (n_components, n_features, n_features)
         ``sum_i resp_ki E[z_i z_i^T | z_io, k]`` as a full matrix whatever the type.
     """
-    _, aux = gap_log_joint(model, Zf, mask, learn=True)
+    _, aux = gap_correction(model, Zf, mask, learn=True)
     D = Zf.shape[1]
     if model.covariance == "full":
-        zhat, cond = aux
-        return np.einsum("kn,knd->kd", resp, zhat), _full_second(resp, zhat, cond, D)
+        s1, scatter = _full_correction(resp, aux)
+        s1 += resp @ Zf
+        for k in range(resp.shape[0]):
+            scatter[k] += (Zf * resp[k][:, None]).T @ Zf
+        return s1, scatter
     zhat, cond = _diag_completed(aux)
     s1 = np.einsum("kn,knd->kd", resp, zhat)
     scatter = np.matmul(np.swapaxes(zhat * resp[:, :, None], 1, 2), zhat)

@@ -13,99 +13,28 @@ precision Cholesky factors) are derived from the statistics at every global mult
 of ``refresh_rows`` learned rows. Rows between two refreshes are scored with the same
 parameters whatever the file boundaries, so the same stream cut into different files
 ends in the same model.
+
+:class:`Mixture` holds the state; its methods are one-line calls into the kernels of
+:mod:`~shoal.core.learning` (score, learn, batch EM step), :mod:`~shoal.core.parameters`
+(statistics to parameters) and :mod:`~shoal.core.state` (save and restore).
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
-from functools import cached_property, wraps
+from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 
-from . import fused, missing
-from .missing import Gaps
-from .covariance import (
-    COVARIANCE_TYPES,
-    FAMILIES,
-    LOG_2PI,
-    non_positive_variance,
-    not_positive_definite,
-)
+from . import fused, learning, parameters, state
+from .covariance import COVARIANCE_TYPES, FAMILIES
 from .errors import ModelError
 from .schedule import StepSchedule
+from .scoring import Scores, checked_rows
 
 __all__ = ["Mixture", "Scores", "FORMAT_VERSION"]
 
-FORMAT_VERSION = 1
-BLOCK_ROWS = 2048  # rows scored at once: the (K*D, rows) intermediate stays in cache
-FUSED_ROWS = 1024  # rows per block on the compiled path: its (K*D, rows) whitened block stays in L2
-LINEAR_ROWS = 4096  # the same for diag and spherical (no whitened block: fewer, longer calls)
-SPAN_ROWS = 8192   # rows whose design matrix is kept for the moments (score-only paths)
-_TINY = 10.0 * np.finfo(np.float64).eps
-_DESIGN_KIND = {"full": 0, "diag": 1, "spherical": 2}   # core/_kernels.c design()
-_PARAMETERS = frozenset({"weights", "means", "covariances", "prec_chol", "log_det"})
-_NOT_FINITE = "X contains NaN or infinite values; drop or mark those rows first"
-
-
-# ------------------------------------------------------ rows with missing features
-class _MissingValues(ModelError):
-    """Raised inside the complete-row paths when a row holds NaN; the public methods
-    catch it and start again with the rows' gaps filled and marked (:func:`_gap_aware`).
-    A ModelError, so that a path that does not handle gaps refuses them as before."""
-
-
-def _not_finite(X) -> ModelError:
-    """The error for rows with a non-finite value: :func:`_gap_aware` looks for NaN."""
-    return _MissingValues(_NOT_FINITE)
-
-
-def _gap_aware(always_fill=False):
-    """Run the method on complete rows as it is (no extra pass over them); if a row has
-    a missing feature, run it again with ``_gaps`` saying where. The compiled kernels
-    read the NaN and mend the rows' design themselves; the numpy path (and, with
-    ``always_fill``, the method on either path) gets a copy filled at the centre."""
-    def decorate(method):
-        @wraps(method)
-        def wrapper(self, X, *args, _gaps=None, **kwargs):
-            if _gaps is not None:
-                return method(self, X, *args, _gaps=_gaps, **kwargs)
-            try:
-                return method(self, X, *args, **kwargs)
-            except _MissingValues:
-                X = self._rows(X, check=False)
-                gaps = missing.find(X, fused.kernels() if fused.enabled() else None)
-                if gaps is None:        # nothing missing: only overflowing sums
-                    raise ModelError(_NOT_FINITE) from None
-                if always_fill or not fused.enabled():
-                    X = missing.fill(X, self.center, gaps)
-                return method(self, X, *args, _gaps=gaps, **kwargs)
-        return wrapper
-    return decorate
-
-
-@dataclass(frozen=True)
-class Scores:
-    """What scoring says about each row.
-
-    Attributes
-    ----------
-    log_density : ndarray of shape (n_samples,)
-        ``log p(x)`` under the mixture, in the data's own units.
-    resp : ndarray of shape (n_samples, n_components)
-        Responsibilities.
-    component : ndarray of shape (n_samples,)
-        Index of the most responsible component.
-    segment : ndarray of shape (n_samples,)
-        Stable segment id of that component.
-    confidence : ndarray of shape (n_samples,)
-        The largest responsibility.
-    """
-
-    log_density: np.ndarray
-    resp: np.ndarray
-    component: np.ndarray
-    segment: np.ndarray
-    confidence: np.ndarray
+FORMAT_VERSION = state.FORMAT_VERSION
 
 
 @dataclass(frozen=True, eq=False)
@@ -114,6 +43,46 @@ class Mixture:
 
     Build one with :func:`shoal.core.initialise` or :meth:`from_parameters`; restore one
     with :meth:`from_state`.
+
+    Attributes
+    ----------
+    covariance : {"full", "diag", "spherical"}
+    center, scale : ndarray of shape (n_features,)
+        The standardisation frozen at warm-up: ``z = (x - center) / scale``.
+    s0 : ndarray of shape (n_components,)
+    s1 : ndarray of shape (n_components, n_features)
+    s2 : ndarray of shape (n_components, n_features, n_features), (n_components,
+        n_features) or (n_components,)
+        The running statistics (standardised units), second moments as the
+        covariance type keeps them.
+    weights : ndarray of shape (n_components,)
+    means : ndarray of shape (n_components, n_features)
+        Standardised units.
+    covariances : ndarray, the shape of ``s2``
+        Standardised units.
+    ids : ndarray of shape (n_components,)
+        Stable segment ids (int64); ``next_id`` is the next one to give.
+    schedule : StepSchedule
+    n_rows : int
+        Rows learned since warm-up.
+    sumsq : float
+        Sum of squared row weights: ``1 / n_eff``.
+    reg_covar, prior_weight : float
+        Added to the covariance diagonals; rows' worth of the identity prior.
+    resp_floor : float
+        Responsibilities under it count as zero when learning.
+    refresh_rows : int
+        Parameters are derived at every global multiple of this many learned rows.
+    mass_floor : float
+        Weight under which :meth:`low_mass` lists a component.
+    averaging : bool
+        Polyak-Ruppert averaging of the statistics at refresh points (``avg_s0``,
+        ``avg_s1``, ``avg_s2`` over ``avg_count`` refreshes).
+    prec_chol : ndarray
+        Precision Cholesky factors (full: (n_components, n_features, n_features)) or
+        ``1 / sqrt(variances)``.
+    log_det : ndarray of shape (n_components,)
+        ``log det`` of ``prec_chol``.
     """
 
     covariance: str
@@ -152,7 +121,7 @@ class Mixture:
             if self.covariance == "full" and fused.enabled():
                 # the factor as the compiled refresh computes it, so that a restored
                 # mixture scores exactly as the one that was saved
-                prec_chol, log_det = _factor_compiled(self.covariances)
+                prec_chol, log_det = fused.factor(self.covariances)
             else:
                 family = FAMILIES[self.covariance]
                 prec_chol = family.precision_cholesky(self.covariances)
@@ -163,20 +132,40 @@ class Mixture:
     # ------------------------------------------------------------------ shape
     @property
     def n_components(self) -> int:
+        """Number of components ``K``."""
         return int(self.s0.shape[0])
 
     @property
     def n_features(self) -> int:
+        """Number of features ``D``."""
         return int(self.center.shape[0])
 
     @property
     def family(self):
+        """The covariance type's kernels (:data:`shoal.core.covariance.FAMILIES`)."""
         return FAMILIES[self.covariance]
 
     @property
     def n_eff(self) -> float:
         """Kish's effective number of rows behind the statistics."""
         return 1.0 / self.sumsq
+
+    @property
+    def log_scale_sum(self) -> float:
+        """``sum(log scale)``: what turns a standardised log-density into data units."""
+        return float(np.sum(np.log(self.scale)))
+
+    @cached_property
+    def scoring_operator(self):
+        """Parameters packed for scoring (computed once per parameter set)."""
+        if fused.enabled():
+            return fused.scoring_operator(self)
+        return self.family.scoring_operator(self.means, self.prec_chol, np.log(self.weights))
+
+    @cached_property
+    def packed_operator(self) -> np.ndarray:
+        """The full type's whitening operator packed for the compiled tiled kernel."""
+        return fused.packed_operator(self)
 
     # ------------------------------------------------------------- build
     @classmethod
@@ -200,8 +189,26 @@ class Mixture:
     ) -> "Mixture":
         """A mixture with the given parameters in data units, statistics to match.
 
-        ``covariances`` has shape (K, D, D), (K, D) or (K,) for full, diag and
-        spherical. A spherical mixture needs equal ``scale`` in every feature.
+        Parameters
+        ----------
+        weights : array-like of shape (n_components,)
+        means : array-like of shape (n_components, n_features)
+        covariances : array-like of shape (n_components, n_features, n_features),
+            (n_components, n_features) or (n_components,)
+            For full, diag and spherical.
+        covariance : {"full", "diag", "spherical"}
+        center, scale : array-like of shape (n_features,), optional
+            The standardisation (default: none). A spherical mixture needs equal
+            ``scale`` in every feature.
+        n_eff : float
+            Effective rows the statistics stand for.
+        schedule : StepSchedule, optional
+        reg_covar, prior_weight, resp_floor, refresh_rows, mass_floor, ids
+            As the fields of the same names.
+
+        Returns
+        -------
+        mixture : Mixture
         """
         if covariance not in FAMILIES:
             raise ModelError(
@@ -249,215 +256,23 @@ class Mixture:
             resp_floor=resp_floor, refresh_rows=refresh_rows, mass_floor=mass_floor,
         )
 
-    # ---------------------------------------------------------- validation
-    def _rows(self, X, check: bool = True) -> np.ndarray:
-        """``X`` as float64 rows of the right width; with ``check``, also finite.
-
-        The compiled path passes ``check=False``: its design kernel checks every value it
-        reads and :meth:`_fused_span` raises the same error.
-        """
-        X = np.asarray(X, dtype=np.float64)
-        if X.ndim != 2 or X.shape[1] != self.n_features:
-            raise ModelError(
-                f"X should have shape (n_samples, {self.n_features}), got {X.shape}"
-            )
-        # a finite sum means finite rows (one pass, no temporary); if the sum is not
-        # finite, look row by row (a sum of huge finite values can overflow)
-        if check and not np.isfinite(np.sum(X)) and not np.all(np.isfinite(X)):
-            raise _not_finite(X)
-        return X
-
+    # ------------------------------------------------------------ rows
     def standardise(self, X) -> np.ndarray:
-        """``(X - center) / scale`` for validated rows, shape (n_samples, n_features)."""
-        return (self._rows(X) - self.center) / self.scale
+        """Rows in standardised units.
 
-    # --------------------------------------------------------------- scoring
-    def _score_design(self, A, out, lo, operator):
-        """Score the rows of design matrix ``A`` into the preallocated ``out`` at ``lo``."""
-        hi = lo + A.shape[0]
-        # (K, n) layout: every reduction over components runs along contiguous rows.
-        resp = out.resp_kn[:, lo:hi]
-        self.family.log_joint(A, operator, out=resp)
-        self._normalise(resp, out, lo, hi)
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+            Finite rows in the data's own units.
 
-    def _normalise(self, resp, out, lo, hi):
-        """Log-joint ``resp`` (K, hi - lo) -> responsibilities in place; the other scores
-        of rows ``lo:hi`` into ``out``."""
-        top = np.max(resp, axis=0)
-        resp -= top
-        # The most responsible component now sits at exactly 0 (first one on ties).
-        rank = (resp == 0.0) * self._rank_weights[:, None]
-        out.component[lo:hi] = self.n_components - 1 - np.max(rank, axis=0)
-        # Clamp at e^-230 (1e-100): as subnormal numbers, far smaller
-        # responsibilities would slow every later GEMM a hundredfold.
-        np.maximum(resp, -230.0, out=resp)
-        np.exp(resp, out=resp)
-        total = np.sum(resp, axis=0)
-        resp /= total
-        out.log_density[lo:hi] = np.log(total) + top - self._log_scale_sum
-        np.divide(1.0, total, out=out.confidence[lo:hi])
-
-    def _score_block(self, Zb, out, lo):
-        """Score a block of standardised rows into ``out`` at ``lo``; return its design."""
-        A = self.family.design(Zb)
-        self._score_design(A, out, lo, self._scoring_operator)
-        return A
-
-    def _score_span(self, X, lo, hi, out, operator, rows=None):
-        """Score rows ``lo:hi`` of ``X`` block by block; return their design matrix.
-
-        ``rows`` standardises data-unit rows (a :class:`_Standardiser`); without it
-        ``X`` holds standardised rows already.
+        Returns
+        -------
+        Z : ndarray of shape (n_samples, n_features)
+            ``(X - center) / scale``.
         """
-        family = self.family
-        A = np.empty((hi - lo, family.width(self.n_features)))
-        for a in range(lo, hi, BLOCK_ROWS):
-            b = min(a + BLOCK_ROWS, hi)
-            Zb = X[a:b] if rows is None else rows(X[a:b])
-            Ab = family.design(Zb, out=A[a - lo : b - lo])
-            self._score_design(Ab, out, a, operator)
-        return A
+        return (checked_rows(self, X) - self.center) / self.scale
 
-    def _fused_span(self, X, lo, hi, out, data_units=True, row_w=None, floor=0.0, gaps=None):
-        """Score rows ``lo:hi`` with the compiled kernels; with ``row_w`` also learn.
-
-        ``X`` holds rows in the data's own units (standardised here with the
-        mixture's centre and scale) or, with ``data_units=False``, standardised rows.
-        Returns the statistics ``(s0, s1, s2)`` of the span weighted by
-        ``resp * row_w`` (responsibilities under ``floor`` count as zero), or None
-        when ``row_w`` is None. Same results as :meth:`_score_span` and
-        :meth:`_accumulate` up to rounding. ``gaps`` (:class:`missing.Packed`) lists the
-        rows filled at the centre: they are scored by their marginals and learned from by
-        EM with missing data.
-        """
-        kern = fused.kernels()
-        family = self.family
-        K, D = self.n_components, self.n_features
-        W = family.width(D)
-        learn = row_w is not None
-        if learn:
-            row_w = _c64(row_w)
-        if hi <= lo:
-            return (np.zeros_like(self.s0), np.zeros_like(self.s1),
-                    np.zeros_like(self.s2)) if learn else None
-        full = self.covariance == "full"
-        nb = min(FUSED_ROWS if full else LINEAR_ROWS, hi - lo)
-        A = np.empty((nb, W))
-        R = out.resp_kn
-        tiled = fused.tiled()
-        if not tiled:
-            top, total = np.empty(nb), np.empty(nb)
-        if full:
-            WT, const = self._scoring_operator
-            const = const[:, 0].copy()
-            if tiled:
-                packed = self._packed_operator
-            else:
-                Y = np.empty((K * D, nb))
-            if learn:
-                P = np.zeros((K, W, W))
-                if not tiled:
-                    G = np.empty((K, nb, W))
-                    counts = np.empty(K, dtype=np.intp)
-        else:
-            BT = self._scoring_operator
-            if learn:
-                P = np.zeros((K, W))
-        lss = self._log_scale_sum
-        kind = _DESIGN_KIND[self.covariance]
-        if data_units:
-            center, scale = _c64(self.center), _c64(self.scale)
-        else:
-            center, scale = np.zeros(D), np.ones(D)
-        first = 0           # row of X that row `lo` of the span is
-        if gaps is not None:
-            gaps = missing.Bound(gaps, self, data_units, kern)
-        if not X.flags.c_contiguous:
-            X, first = np.ascontiguousarray(X[lo:hi]), lo
-        for a in range(lo, hi, nb):
-            b = min(a + nb, hi)
-            m = b - a
-            if not kern.design(X, a - first, m, center, scale, kind, A) and gaps is None:
-                raise _not_finite(X)
-            Ab = A[:m]
-            if gaps is not None:
-                gaps.fix(Ab, a)     # the rows' NaN (the only non-finite values) to zero
-            if tiled:
-                kern.log_joint(Ab, packed if full else BT, const if full else None, D, R, a)
-            elif full:
-                Yb = Y if m == nb else np.empty((K * D, m))
-                np.matmul(WT, Ab.T, out=Yb)
-                kern.full_log_joint(Yb, const, D, R, a)
-            else:
-                np.matmul(BT, Ab.T, out=R[:, a:b])
-            if gaps is not None:
-                gaps.log_joint(Ab, a, R)
-            if tiled:
-                kern.softmax(R, a, m, lss, out.component, out.log_density, out.confidence)
-            else:
-                kern.shift(R, a, m, top, out.component)
-                Rb = R[:, a:b]
-                np.exp(Rb, out=Rb)
-                kern.normalise(R, a, m, total)
-                ld = out.log_density[a:b]
-                np.log(total[:m], out=ld)
-                ld += top[:m]
-                ld -= lss
-                np.divide(1.0, total[:m], out=out.confidence[a:b])
-            if learn:
-                wb = row_w[a - lo : b - lo]
-                if full and tiled:
-                    kern.gather_syrk(Ab, R, a, wb, floor, P)
-                elif full:
-                    kern.gather_rows(Ab, R, a, wb, floor, G, counts)
-                    for k in range(K):
-                        c = counts[k]
-                        if c:
-                            Gk = G[k, :c]
-                            P[k] += Gk.T @ Gk     # numpy runs A^T A as one SYRK
-                else:
-                    kern.accumulate_rows(Ab, R, a, wb, floor, P)
-                if gaps is not None:
-                    gaps.moments(Ab, a, R, wb, floor, P)
-        return family.split_moments(P, D) if learn else None
-
-    @property
-    def _rank_weights(self):
-        return np.arange(self.n_components - 1, -1, -1, dtype=np.int16)
-
-    @cached_property
-    def _scoring_operator(self):
-        """Parameters packed for scoring (computed once per parameter set)."""
-        if self.covariance == "full" and fused.enabled():
-            K, D = self.means.shape
-            WT = np.empty((K * D, D + 1))
-            fused.kernels().full_operator(_c64(self.means), _c64(self.prec_chol),
-                                          _c64(self.log_det), WT)
-            const = np.log(self.weights) + self.log_det - 0.5 * D * LOG_2PI
-            return WT, const[:, None]
-        if fused.enabled():
-            K, D = self.means.shape
-            BT = np.empty((K, self.family.width(D)))
-            log_const = np.log(self.weights) + self.log_det - 0.5 * D * LOG_2PI
-            kern = fused.kernels()
-            build = kern.diag_operator if self.covariance == "diag" else kern.spherical_operator
-            build(_c64(self.means), _c64(self.prec_chol**2), _c64(log_const), BT)
-            return BT
-        return self.family.scoring_operator(self.means, self.prec_chol, np.log(self.weights))
-
-    @cached_property
-    def _packed_operator(self):
-        """The full type's whitening operator packed for the tiled log-joint kernel."""
-        WT = _c64(self._scoring_operator[0])
-        packed = np.empty(fused.packed_full_len(*self.means.shape))
-        fused.kernels().pack_full(WT, packed)
-        return packed
-
-    @property
-    def _log_scale_sum(self):
-        return float(np.sum(np.log(self.scale)))
-
-    @_gap_aware()
+    @learning.retry_with_gaps()
     def score(self, X, *, _gaps=None) -> Scores:
         """Score rows without learning from them.
 
@@ -469,147 +284,47 @@ class Mixture:
         X : array-like of shape (n_samples, n_features)
             Rows in the data's own units; NaN marks a missing feature (the row is
             scored by the marginal over its observed features).
-        """
-        X = self._rows(X, check=not fused.enabled())
-        out = ScoreBuffer(X.shape[0], self.n_components)
-        if fused.enabled():
-            packed = None if _gaps is None else missing.pack(_gaps, self.covariance,
-                                                              self.n_components)
-            self._fused_span(X, 0, X.shape[0], out, gaps=packed)
-        else:
-            operator = self._scoring_operator
-            rows = _Standardiser(self.center, self.scale)
-            for lo in range(0, X.shape[0], SPAN_ROWS):
-                self._score_span(X, lo, min(lo + SPAN_ROWS, X.shape[0]), out, operator, rows)
-            if _gaps is not None:
-                self._score_gaps(X, _gaps, out)
-        return out.scores(self.ids)
 
-    def _score_z(self, Z, moments_weight=None):
-        """Score standardised rows.
-
-        With ``moments_weight`` (a float), also return the moments of the rows with
-        that weight each, i.e. the batch E-step's statistics.
+        Returns
+        -------
+        scores : Scores
         """
-        n = Z.shape[0]
-        out = ScoreBuffer(n, self.n_components)
-        if fused.enabled():
-            if moments_weight is None:
-                self._fused_span(Z, 0, n, out, data_units=False)
-                return out
-            return out, self._fused_span(Z, 0, n, out, data_units=False,
-                                         row_w=np.full(n, moments_weight))
-        operator = self._scoring_operator
-        total = None
-        for lo in range(0, n, SPAN_ROWS):
-            hi = min(lo + SPAN_ROWS, n)
-            A = self._score_span(Z, lo, hi, out, operator)
-            if moments_weight is not None:
-                part = self.family.moments(A, out.resp_kn[:, lo:hi] * moments_weight)
-                total = part if total is None else tuple(a + b for a, b in zip(total, part))
-        if moments_weight is None:
-            return out
-        return out, total
+        return learning.score_rows(self, X, _gaps)
 
     def log_density(self, X) -> np.ndarray:
-        """``log p(x)`` per row, shape (n_samples,), in the data's own units."""
+        """``log p(x)`` per row, in the data's own units.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+            NaN marks a missing feature.
+
+        Returns
+        -------
+        log_density : ndarray of shape (n_samples,)
+        """
         return self.score(X).log_density
 
     def component_log_density(self, X) -> np.ndarray:
-        """``log N(x | mu_k, Sigma_k)`` in data units, shape (n_samples, n_components)."""
+        """Each component's log-density of each row, data units.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+            Finite rows.
+
+        Returns
+        -------
+        log_density : ndarray of shape (n_samples, n_components)
+            ``log N(x | mu_k, Sigma_k)``.
+        """
         A = self.family.design(self.standardise(X))
         operator = self.family.scoring_operator(
             self.means, self.prec_chol, np.zeros(self.n_components)
         )
-        return self.family.log_joint(A, operator).T - self._log_scale_sum
+        return self.family.log_joint(A, operator).T - self.log_scale_sum
 
-    # -------------------------------------------------------------- learning
-    def _accumulate(self, A, resp_kn, row_w):
-        """Weighted statistics ``(s0, s1, s2)`` of a block with design matrix ``A``.
-
-        ``resp_kn`` has shape (n_components, n_samples), ``row_w`` (n_samples,).
-        Responsibilities below ``resp_floor`` count as zero.
-        """
-        return self.family.weighted_moments(A, resp_kn, row_w, self.resp_floor)
-
-    def _derive(self, s0, s1, s2, sumsq) -> dict:
-        """Parameters from statistics (standardised units)."""
-        if fused.enabled():
-            return self._derive_compiled(s0, s1, s2, sumsq)
-        s0_safe = s0 + _TINY
-        cov = self.family.covariance(
-            s0_safe, s1, s2, 1.0 / sumsq, self.reg_covar, self.prior_weight
-        )
-        weights = s0_safe / s0_safe.sum()
-        prec_chol = self.family.precision_cholesky(cov)
-        return dict(
-            weights=weights,
-            means=s1 / s0_safe[:, None],
-            covariances=cov,
-            prec_chol=prec_chol,
-            log_det=self.family.log_det(prec_chol, self.n_features),
-        )
-
-    def _derive_compiled(self, s0, s1, s2, sumsq) -> dict:
-        """:meth:`_derive` by the compiled kernels (a full-type refresh costs ~0.9 ms
-        through numpy and LAPACK at K=8, D=16, a quarter of the E+M time; a diag one
-        ~0.2 ms, mostly numpy's overhead on small arrays)."""
-        K, D = s1.shape
-        weights, means = np.empty(K), np.empty((K, D))
-        if self.covariance != "full":
-            var = np.empty((K, D) if self.covariance == "diag" else K)   # K from the statistics
-            kern = fused.kernels()
-            derive = kern.diag_derive if self.covariance == "diag" else kern.spherical_derive
-            if not derive(_c64(s0), _c64(s1), _c64(s2), 1.0 / sumsq,
-                          float(self.reg_covar), float(self.prior_weight), _TINY,
-                          weights, means, var):
-                raise non_positive_variance()
-            prec_chol = 1.0 / np.sqrt(var)
-            return dict(weights=weights, means=means, covariances=var, prec_chol=prec_chol,
-                        log_det=self.family.log_det(prec_chol, D))
-        cov, prec_chol = np.empty((K, D, D)), np.zeros((K, D, D))
-        log_det, bad = np.empty(K), np.zeros(K, dtype=np.bool_)
-        fused.kernels().full_derive(
-            _c64(s0), _c64(s1), _c64(s2), 1.0 / sumsq, float(self.reg_covar),
-            float(self.prior_weight), _TINY, weights, means, cov, prec_chol, log_det, bad)
-        if bad.any():
-            raise not_positive_definite(np.flatnonzero(bad).tolist())
-        return dict(weights=weights, means=means, covariances=cov, prec_chol=prec_chol,
-                    log_det=log_det)
-
-    def _evolve(self, **changes) -> "Mixture":
-        """``dataclasses.replace`` without re-running ``__init__`` (a tenth of the cost,
-        which matters at every refresh). The scoring operators are dropped when the
-        parameters change and kept otherwise."""
-        new = object.__new__(type(self))
-        state = dict(self.__dict__)
-        if _PARAMETERS.intersection(changes):
-            state.pop("_scoring_operator", None)
-            state.pop("_packed_operator", None)
-        state.update(changes)
-        new.__dict__.update(state)
-        return new
-
-    def _refresh(self, s0, s1, s2, sumsq) -> dict:
-        """New parameters at a refresh point, with Polyak-Ruppert averaging if enabled.
-
-        With averaging, the running mean of the statistics taken at every refresh point
-        since warm-up gives the parameters (Cappé & Moulines 2009, section 3: averaging
-        the iterates of a slowly decreasing step recovers the efficiency of the
-        maximum-likelihood estimate); the stepwise recursion itself goes on unchanged.
-        """
-        if not self.averaging:
-            return self._derive(s0, s1, s2, sumsq)
-        count = self.avg_count + 1
-        share = 1.0 / count
-        avg0 = self.avg_s0 + share * (s0 - self.avg_s0)
-        avg1 = self.avg_s1 + share * (s1 - self.avg_s1)
-        avg2 = self.avg_s2 + share * (s2 - self.avg_s2)
-        out = self._derive(avg0, avg1, avg2, sumsq)
-        out.update(avg_s0=avg0, avg_s1=avg1, avg_s2=avg2, avg_count=count)
-        return out
-
-    @_gap_aware()
+    @learning.retry_with_gaps()
     def learn(self, X, *, _gaps=None) -> tuple["Mixture", Scores]:
         """Score rows, then learn from them with stepwise EM.
 
@@ -630,297 +345,139 @@ class Mixture:
         scores : Scores
             The scores of every row, as labelled during learning.
         """
-        X = self._rows(X, check=not fused.enabled())
-        n = X.shape[0]
-        out = ScoreBuffer(n, self.n_components)
-        jit = fused.enabled()
-        rows = None if jit else _Standardiser(self.center, self.scale)
-        model = self  # the parameters in force; replaced at refresh points only
-        s0, s1, s2, sumsq = self.s0, self.s1, self.s2, self.sumsq
-        at = self.n_rows
-        pos = 0
-        # rows with gaps: in the compiled kernels on that path, else by core/missing.py
-        packed = None if _gaps is None or not jit else missing.pack(
-            _gaps, self.covariance, self.n_components)
-        gap_rows = None if jit else _gaps
-        while pos < n:
-            # pieces end at refresh points, which sit at fixed places in the stream;
-            # they are scored in cache-sized blocks, then learned from in one go
-            take = min(n - pos, self.refresh_rows - at % self.refresh_rows)
-            row_w, keep = self.schedule.row_weights(at, take)
-            if jit:
-                b0, b1, b2 = model._fused_span(X, pos, pos + take, out, True, row_w,
-                                               self.resp_floor, packed)
-            elif gap_rows is not None:
-                b0, b1, b2 = model._learn_span_gaps(X, pos, pos + take, gap_rows, row_w, out,
-                                                    rows)
-            else:
-                A = model._score_span(X, pos, pos + take, out, model._scoring_operator, rows)
-                b0, b1, b2 = model._accumulate(A, out.resp_kn[:, pos : pos + take], row_w)
-            s0 = keep * s0 + b0
-            s1 = keep * s1 + b1
-            s2 = keep * s2 + b2
-            sumsq = keep * keep * sumsq + float(np.dot(row_w, row_w))
-            pos += take
-            at += take
-            if at % self.refresh_rows == 0:
-                model = model._evolve(**model._refresh(s0, s1, s2, sumsq))
-        model = model._evolve(s0=s0, s1=s1, s2=s2, sumsq=sumsq, n_rows=at)
-        return model, out.scores(self.ids)
+        return learning.learn_rows(self, X, _gaps)
 
-    @_gap_aware(always_fill=True)
+    @learning.retry_with_gaps(always_fill=True)
     def em_step(self, X, *, _gaps=None) -> tuple["Mixture", float]:
         """One full-batch EM iteration (step size 1) on ``X``.
 
-        Returns the mixture whose statistics are the batch averages and whose
-        parameters are derived from them, and the mean log-density per row of ``X``
-        under the parameters *before* the step (data units). NaN marks a missing
-        feature (EM with missing data).
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+            NaN marks a missing feature (EM with missing data).
+
+        Returns
+        -------
+        mixture : Mixture
+            Statistics the batch averages, parameters derived from them.
+        mean_log_density : float
+            Per row of ``X`` under the parameters *before* the step (data units).
         """
-        Z = self.standardise(X)
-        if _gaps is not None:
-            return self._em_step_gaps(Z, _gaps)
-        return self._em_step(Z)
+        return learning.em_step_rows(self, X, _gaps)
 
-    def _em_step(self, Z):
-        n = Z.shape[0]
-        # Batch EM stays exact: the sparse floor is for the stepwise path only.
-        out, (s0, s1, s2) = self._score_z(Z, moments_weight=1.0 / n)
-        scores = out.scores(self.ids)
-        sumsq = 1.0 / n
-        params = self._derive(s0, s1, s2, sumsq)
-        new = replace(self, s0=s0, s1=s1, s2=s2, sumsq=sumsq, **params)
-        return new, float(np.mean(scores.log_density))
+    def derive(self, s0, s1, s2, sumsq) -> dict:
+        """Parameters from statistics (standardised units).
 
-    # ---------------------------------------------- rows with missing features
-    def _gap_block(self, X, gaps, out, lo, learn):
-        """Score the rows ``lo + gaps.rows`` of the filled data-unit rows ``X`` by their
-        marginals, into ``out``; with ``learn``, also return their E-step pieces."""
-        rows = lo + gaps.rows
-        Zf = (X[rows] - self.center) / self.scale
-        L, aux = missing.gap_log_joint(self, Zf, gaps.mask, learn)
-        sub = ScoreBuffer(rows.size, self.n_components)
-        sub.resp_kn[:] = L
-        self._normalise(sub.resp_kn, sub, 0, rows.size)
-        out.put(rows, sub)
-        return sub.resp_kn, aux
+        Parameters
+        ----------
+        s0, s1, s2, sumsq
+            As for :func:`shoal.core.parameters.derive`.
 
-    def _score_gaps(self, X, gaps, out):
-        """Overwrite the scores of the rows with gaps (scored filled) by their marginals."""
-        for a in range(0, len(gaps), missing.BLOCK_ROWS):
-            part = Gaps(gaps.rows[a : a + missing.BLOCK_ROWS],
-                        gaps.mask[a : a + missing.BLOCK_ROWS])
-            self._gap_block(X, part, out, 0, learn=False)
+        Returns
+        -------
+        params : dict
+            As :func:`shoal.core.parameters.derive` returns them.
+        """
+        return parameters.derive(self, s0, s1, s2, sumsq)
 
-    def _learn_span_gaps(self, X, lo, hi, gaps, row_w, out, rows):
-        """The numpy path's statistics of rows ``lo:hi`` of the filled rows ``X`` (weights
-        ``row_w``), scores into ``out``: the complete rows gathered through the ordinary
-        kernels, then the rows with gaps by EM with missing data."""
-        part = gaps.within(lo, hi)
-        if not len(part):
-            A = self._score_span(X, lo, hi, out, self._scoring_operator, rows)
-            return self._accumulate(A, out.resp_kn[:, lo:hi], row_w)
-        keep = np.ones(hi - lo, dtype=bool)
-        keep[part.rows] = False
-        at = np.flatnonzero(keep)
-        sub = ScoreBuffer(at.size, self.n_components)
-        A = self._score_span(X[lo + at], 0, at.size, sub, self._scoring_operator, rows)
-        stats = self._accumulate(A, sub.resp_kn, row_w[at])
-        out.put(lo + at, sub)
-        return self._learn_gaps(X, lo, part, row_w, out, stats)
+    # the names the tests and older callers use
+    _derive = derive
 
-    def _learn_gaps(self, X, lo, part, row_w, out, stats):
-        """Add the E-step statistics of the rows ``lo + part.rows`` (weights ``row_w``
-        from row ``lo``) to ``stats``; their scores go into ``out``."""
-        resp, aux = self._gap_block(X, part, out, lo, learn=True)
-        W = resp * row_w[part.rows]
-        if self.resp_floor > 0.0:
-            W[resp < self.resp_floor] = 0.0
-        extra = missing.gap_moments(self, W, aux)
-        return tuple(a + b for a, b in zip(stats, extra))
-
-    def _em_step_gaps(self, Z, gaps):
-        """:meth:`_em_step` on standardised rows with gaps (filled at zero): the complete
-        rows through the ordinary batch E-step, the others by EM with missing data."""
-        n = Z.shape[0]
-        complete = np.ones(n, dtype=bool)
-        complete[gaps.rows] = False
-        log_density = np.empty(n)
-        if complete.any():
-            out, stats = self._score_z(np.ascontiguousarray(Z[complete]), moments_weight=1.0 / n)
-            log_density[complete] = out.log_density
-        else:
-            stats = (np.zeros_like(self.s0), np.zeros_like(self.s1), np.zeros_like(self.s2))
-        out = ScoreBuffer(n, self.n_components)
-        # in standardised units: the gap kernels add back log-scale terms of the missing
-        # features that standardised rows do not carry
-        unit = self._evolve(center=np.zeros_like(self.center), scale=np.ones_like(self.scale))
-        for a in range(0, len(gaps), missing.BLOCK_ROWS):
-            part = Gaps(gaps.rows[a : a + missing.BLOCK_ROWS],
-                        gaps.mask[a : a + missing.BLOCK_ROWS])
-            resp, aux = unit._gap_block(Z, part, out, 0, learn=True)
-            stats = tuple(x + y for x, y in zip(stats, missing.gap_moments(self, resp / n, aux)))
-        log_density[gaps.rows] = (out.log_density[gaps.rows] - self._log_scale_sum
-                                  + gaps.mask @ np.log(self.scale))
-        s0, s1, s2 = stats
-        params = self._derive(s0, s1, s2, 1.0 / n)
-        new = replace(self, s0=s0, s1=s1, s2=s2, sumsq=1.0 / n, **params)
-        return new, float(np.mean(log_density))
+    def _evolve(self, **changes) -> "Mixture":
+        """:func:`shoal.core.parameters.evolve`."""
+        return parameters.evolve(self, **changes)
 
     # ------------------------------------------------------------- reporting
     def data_means(self) -> np.ndarray:
-        """Component means in data units, shape (n_components, n_features)."""
+        """Component means in data units.
+
+        Returns
+        -------
+        means : ndarray of shape (n_components, n_features)
+        """
         return self.center + self.means * self.scale
 
     def data_covariance_matrices(self) -> np.ndarray:
-        """Full covariance matrices in data units, shape (n_components, D, D)."""
+        """Full covariance matrices in data units, whatever the covariance type.
+
+        Returns
+        -------
+        covariances : ndarray of shape (n_components, n_features, n_features)
+        """
         mats = self.family.matrices(self.covariances, self.n_features)
         return mats * np.outer(self.scale, self.scale)
 
     def data_covariances(self) -> np.ndarray:
-        """Covariances in data units: (K, D, D) for full, else per-feature variances (K, D)."""
+        """Covariances in data units as the covariance type keeps them.
+
+        Returns
+        -------
+        covariances : ndarray of shape (n_components, n_features, n_features) or (n_components, n_features)
+            Matrices for full, per-feature variances for diag and spherical.
+        """
         if self.covariance == "full":
             return self.data_covariance_matrices()
         var = self.covariances if self.covariance == "diag" else self.covariances[:, None]
         return var * self.scale**2
 
     def data_stds(self) -> np.ndarray:
-        """Per-feature standard deviations of each component, data units, shape (K, D)."""
+        """Per-feature standard deviations of each component, data units.
+
+        Returns
+        -------
+        stds : ndarray of shape (n_components, n_features)
+        """
         mats = self.data_covariance_matrices()
         return np.sqrt(np.diagonal(mats, axis1=1, axis2=2))
 
     def low_mass(self, min_weight: float | None = None) -> np.ndarray:
-        """Stable ids of components whose weight is below ``min_weight`` (default mass_floor)."""
+        """Stable ids of the components whose weight is below ``min_weight``.
+
+        Parameters
+        ----------
+        min_weight : float, optional
+            Default: the mixture's ``mass_floor``.
+
+        Returns
+        -------
+        ids : ndarray of shape (n_low,)
+        """
         floor = self.mass_floor if min_weight is None else float(min_weight)
         return self.ids[self.weights < floor]
 
     def n_parameters(self) -> int:
-        """Free parameters (for BIC)."""
+        """Free parameters of the mixture (for BIC).
+
+        Returns
+        -------
+        n_parameters : int
+        """
         k, d = self.n_components, self.n_features
         return (k - 1) + k * d + self.family.n_parameters(k, d)
 
     # --------------------------------------------------------- serialisation
-    _ARRAYS = ("center", "scale", "s0", "s1", "s2", "weights", "means", "covariances", "ids",
-               "avg_s0", "avg_s1", "avg_s2")
-
     def to_state(self) -> tuple[dict, dict]:
-        """A flat mapping of numeric arrays and a JSON-able metadata dict (no pickle)."""
-        arrays = {name: np.array(getattr(self, name)) for name in self._ARRAYS}
-        meta = {
-            "format_version": FORMAT_VERSION,
-            "covariance": self.covariance,
-            "next_id": int(self.next_id),
-            "n_rows": int(self.n_rows),
-            "sumsq": float(self.sumsq),
-            "schedule": self.schedule.to_dict(),
-            "reg_covar": float(self.reg_covar),
-            "prior_weight": float(self.prior_weight),
-            "resp_floor": float(self.resp_floor),
-            "refresh_rows": int(self.refresh_rows),
-            "mass_floor": float(self.mass_floor),
-            "averaging": bool(self.averaging),
-            "avg_count": int(self.avg_count),
-        }
-        return arrays, meta
+        """A flat mapping of numeric arrays and a JSON-able metadata dict (no pickle).
+
+        Returns
+        -------
+        arrays : dict of str to ndarray
+        meta : dict
+            See :func:`shoal.core.state.write_state`.
+        """
+        return state.write_state(self)
 
     @classmethod
     def from_state(cls, arrays: dict, meta: dict) -> "Mixture":
-        """Rebuild a mixture saved by :meth:`to_state`; the round trip is exact."""
-        version = meta.get("format_version")
-        if version != FORMAT_VERSION:
-            raise ModelError(
-                f"model state has format_version {version!r}; this shoal reads {FORMAT_VERSION}"
-            )
-        missing = [name for name in cls._ARRAYS if name not in arrays]
-        if missing:
-            raise ModelError(f"model state lacks arrays {missing}")
-        if meta.get("covariance") not in FAMILIES:
-            raise ModelError(f"model state has unknown covariance {meta.get('covariance')!r}")
-        data = {name: np.array(arrays[name]) for name in cls._ARRAYS}
-        data["ids"] = data["ids"].astype(np.int64)
-        return cls(
-            covariance=meta["covariance"],
-            next_id=int(meta["next_id"]),
-            n_rows=int(meta["n_rows"]),
-            sumsq=float(meta["sumsq"]),
-            schedule=StepSchedule.from_dict(meta["schedule"]),
-            reg_covar=float(meta["reg_covar"]),
-            prior_weight=float(meta["prior_weight"]),
-            resp_floor=float(meta["resp_floor"]),
-            refresh_rows=int(meta["refresh_rows"]),
-            mass_floor=float(meta["mass_floor"]),
-            averaging=bool(meta["averaging"]),
-            avg_count=int(meta["avg_count"]),
-            **data,
-        )
+        """Rebuild a mixture saved by :meth:`to_state`; the round trip is exact.
 
+        Parameters
+        ----------
+        arrays, meta
+            As for :func:`shoal.core.state.read_state`.
 
-def _c64(a) -> np.ndarray:
-    """``a`` as a C-contiguous float64 array (the compiled kernels take no other)."""
-    return np.ascontiguousarray(a, dtype=np.float64)
-
-
-def _factor_compiled(cov):
-    """Precision Cholesky factors and their log-determinants by the compiled kernel."""
-    cov = _c64(cov)
-    K = cov.shape[0]
-    prec_chol, log_det, bad = np.zeros_like(cov), np.empty(K), np.zeros(K, dtype=np.bool_)
-    fused.kernels().full_factor(cov, prec_chol, log_det, bad)
-    if bad.any():
-        raise not_positive_definite(np.flatnonzero(bad).tolist())
-    return prec_chol, log_det
-
-
-class _Standardiser:
-    """``(X - center) / scale`` for blocks of up to BLOCK_ROWS rows, into one reused buffer.
-
-    On C-ordered rows the arithmetic runs over the flattened block against center and
-    scale tiled to the block's length: one long vector loop instead of a short loop per
-    row, with the same values as the broadcast expression. The result is a view of
-    the buffer, valid until the next call.
-    """
-
-    __slots__ = ("center", "scale", "_center", "_scale", "_buffer")
-
-    def __init__(self, center, scale):
-        self.center, self.scale = center, scale
-        self._center = np.tile(center, BLOCK_ROWS)
-        self._scale = np.tile(scale, BLOCK_ROWS)
-        self._buffer = np.empty(BLOCK_ROWS * center.shape[0])
-
-    def __call__(self, X):
-        size = X.size
-        if size > self._buffer.size or not X.flags.c_contiguous:
-            return (X - self.center) / self.scale
-        z = self._buffer[:size]
-        np.subtract(X.reshape(-1), self._center[:size], out=z)
-        np.divide(z, self._scale[:size], out=z)
-        return z.reshape(X.shape)
-
-
-class ScoreBuffer:
-    """Preallocated outputs that blocks of rows are scored into."""
-
-    __slots__ = ("resp_kn", "log_density", "component", "confidence")
-
-    def __init__(self, n_samples, n_components):
-        self.resp_kn = np.empty((n_components, n_samples))
-        self.log_density = np.empty(n_samples)
-        self.component = np.empty(n_samples, dtype=np.intp)
-        self.confidence = np.empty(n_samples)
-
-    def put(self, rows, sub: "ScoreBuffer") -> None:
-        """The scores of ``sub`` into ``rows``."""
-        self.resp_kn[:, rows] = sub.resp_kn
-        self.log_density[rows] = sub.log_density
-        self.component[rows] = sub.component
-        self.confidence[rows] = sub.confidence
-
-    def scores(self, ids) -> Scores:
-        return Scores(
-            log_density=self.log_density,
-            resp=self.resp_kn.T,
-            component=self.component,
-            segment=ids[self.component],
-            confidence=self.confidence,
-        )
+        Returns
+        -------
+        mixture : Mixture
+        """
+        return cls(**state.read_state(arrays, meta))

@@ -72,7 +72,15 @@ __all__ = ["StepSchedule", "floor_from_half_life"]
 def floor_from_half_life(half_life_rows: float) -> float:
     """The constant step whose geometric forgetting halves a row's weight in ``half_life_rows``.
 
-    ``(1 - floor) ** half_life_rows == 0.5``.
+    Parameters
+    ----------
+    half_life_rows : float
+        Rows after which a row's weight is halved.
+
+    Returns
+    -------
+    floor : float
+        The step, with ``(1 - floor) ** half_life_rows == 0.5``.
     """
     return float(-np.expm1(np.log(0.5) / half_life_rows))
 
@@ -120,13 +128,34 @@ class StepSchedule:
         return floor_from_half_life(float(self.half_life_rows))
 
     def resolved(self, n_warmup: int) -> "StepSchedule":
-        """A copy with ``i0`` fixed from the warm-up size when it was left open."""
+        """A copy with ``i0`` fixed from the warm-up size when it was left open.
+
+        Parameters
+        ----------
+        n_warmup : int
+            Rows the warm-up fit stands for.
+
+        Returns
+        -------
+        schedule : StepSchedule
+        """
         if self.i0 is not None:
             return self
         return replace(self, i0=float(max(n_warmup, 1)) ** (1.0 / self.alpha))
 
     def steps(self, start: int, n_rows: int) -> np.ndarray:
-        """``eta`` of rows ``start+1 .. start+n_rows``, shape ``(n_rows,)``."""
+        """The steps of the stream's rows ``start+1 .. start+n_rows``.
+
+        Parameters
+        ----------
+        start : int
+            Rows learned before (after warm-up).
+        n_rows : int
+
+        Returns
+        -------
+        eta : ndarray of shape (n_rows,)
+        """
         if self.half_life_rows is not None:
             return np.full(n_rows, self.floor)
         if self.i0 is None:
@@ -139,6 +168,13 @@ class StepSchedule:
 
     def row_weights(self, start: int, n_rows: int) -> tuple[np.ndarray, float]:
         """Weights of a batch's rows in the statistics, and what the old statistics keep.
+
+        Parameters
+        ----------
+        start : int
+            Rows learned before the batch (after warm-up).
+        n_rows : int
+            Rows in the batch.
 
         Returns
         -------
@@ -172,6 +208,11 @@ class StepSchedule:
         With ``S_i = c_i S_0 + sum_{j<=i} eta_j prod_{j<l<=i} (1 - eta_l) s_j``, the sum of the
         iterates over the batch is ``(sum_i c_i) S_0 + sum_j v_j s_j``.
 
+        Parameters
+        ----------
+        start, n_rows : int
+            As for :meth:`row_weights`.
+
         Returns
         -------
         weights : ndarray of shape (n_rows,)
@@ -188,8 +229,25 @@ class StepSchedule:
         return weights, keep_sum
 
     def to_dict(self) -> dict:
+        """The schedule as a JSON-able dict.
+
+        Returns
+        -------
+        data : dict
+            ``alpha``, ``i0`` and ``half_life_rows``.
+        """
         return {"alpha": self.alpha, "i0": self.i0, "half_life_rows": self.half_life_rows}
 
     @classmethod
     def from_dict(cls, data: dict) -> "StepSchedule":
+        """The schedule saved by :meth:`to_dict`.
+
+        Parameters
+        ----------
+        data : dict
+
+        Returns
+        -------
+        schedule : StepSchedule
+        """
         return cls(alpha=data["alpha"], i0=data["i0"], half_life_rows=data["half_life_rows"])

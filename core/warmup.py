@@ -13,8 +13,11 @@ import numpy as np
 
 from .covariance import COVARIANCE_TYPES, FAMILIES
 from .errors import ModelError, NotEnoughDataError
+from .learning import em_step_standardised
 from .mixture import Mixture
+from .parameters import derive
 from .schedule import StepSchedule
+from .scoring import score_standardised
 from .split_screen import hard_split_gain
 
 __all__ = ["kmeans_plus_plus", "batch_em", "initialise", "select_n_components", "bic"]
@@ -102,7 +105,7 @@ def _from_hard_labels(template: Mixture, Z, labels) -> Mixture:
     s0, s1, s2 = template.family.moments(template.family.design(Z), resp.T / n)
     sumsq = 1.0 / n
     return replace(template, s0=s0, s1=s1, s2=s2, sumsq=sumsq,
-                   **template._derive(s0, s1, s2, sumsq))
+                   **derive(template, s0, s1, s2, sumsq))
 
 
 def batch_em(X, mixture: Mixture, *, max_iter=300, tol=1e-7):
@@ -131,11 +134,11 @@ def batch_em(X, mixture: Mixture, *, max_iter=300, tol=1e-7):
 def _batch_em(Z, mixture, *, max_iter, tol):
     history = []
     for _ in range(max_iter):
-        mixture, before = mixture._em_step(Z)
+        mixture, before = em_step_standardised(mixture, Z)
         history.append(before)
         if len(history) >= 2 and history[-1] - history[-2] < tol:
             break
-    history.append(float(np.mean(mixture._score_z(Z).log_density)))
+    history.append(float(np.mean(score_standardised(mixture, Z).log_density)))
     return mixture, np.asarray(history)
 
 
@@ -297,7 +300,17 @@ def _split_merge_check(Z, template, best, best_ll, rng, *, max_iter, tol,
 
 
 def bic(mixture: Mixture, X) -> float:
-    """Schwarz's Bayesian information criterion, ``-2 log L + p log n`` (data units)."""
+    """Schwarz's Bayesian information criterion, ``-2 log L + p log n`` (data units).
+
+    Parameters
+    ----------
+    mixture : Mixture
+    X : array-like of shape (n_samples, n_features)
+
+    Returns
+    -------
+    bic : float
+    """
     X = np.asarray(X, dtype=np.float64)
     total = float(np.sum(mixture.log_density(X)))
     return -2.0 * total + mixture.n_parameters() * np.log(X.shape[0])
@@ -305,6 +318,16 @@ def bic(mixture: Mixture, X) -> float:
 
 def select_n_components(X, k_min, k_max, covariance="full", **kwargs):
     """Fit K = k_min .. k_max on the warm-up buffer and keep the lowest BIC (Schwarz 1978).
+
+    Parameters
+    ----------
+    X : array-like of shape (n_samples, n_features)
+        The warm-up rows.
+    k_min, k_max : int
+        The range of K tried; a K that the rows cannot seed ends the search.
+    covariance : {"full", "diag", "spherical"}
+    **kwargs
+        Passed to :func:`initialise`.
 
     Returns
     -------
