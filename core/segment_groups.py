@@ -43,6 +43,15 @@ def compact_group(X, *, min_rows, max_sd=np.inf, threshold=0.999, max_groups=3, 
     max_sd : float
         ... and the geometric mean of its standard deviations, ``det(cov)^(1/2D)``,
         must not exceed this (data units).
+    threshold : float
+        Chi-square quantile of the squared Mahalanobis distance within which a row is
+        explained by the group.
+    max_groups : int
+        The most components the small fit may have.
+    seed, n_init : int
+        Seed and number of k-means++ restarts of the small fit.
+    reg_covar : float
+        Added to the diagonal of the small fit's covariances.
 
     Returns
     -------
@@ -135,10 +144,15 @@ def widening_explains(mixture: Mixture, X, mean, covariance, threshold: float = 
 
     Parameters
     ----------
+    mixture : Mixture
+        The model whose segments may be widened.
     X : array_like of shape (n_samples, n_features)
         The group's rows, data units.
     mean, covariance : array_like of shapes (n_features,), (n_features, n_features)
         The group's Gaussian, data units.
+    threshold : float
+        Chi-square quantile of the squared Mahalanobis distance within which a
+        segment's mean counts as inside the group (the group surrounds it).
 
     Returns
     -------
@@ -198,6 +212,10 @@ def split_test(X, *, covariance="full", min_share=0.1, min_gain=0.5, seed=0, n_i
         nat per row). Two groups apart enough to be segments gain 1.1-3.0 per row on
         the seeded lumped scenarios; a sliver cut from a population on the move
         gains a fraction of that (0.17 measured).
+    seed, n_init : int
+        Seed and number of k-means++ restarts of the two-component fit.
+    reg_covar : float
+        Added to the diagonal of the fits' covariances.
 
     Returns
     -------

@@ -48,6 +48,8 @@ def squared_mahalanobis(mixture: Mixture, X) -> np.ndarray:
 
     Parameters
     ----------
+    mixture : Mixture
+        The model whose components are measured.
     X : array_like of shape (n_samples, n_features)
         Finite rows in the data's own units.
 

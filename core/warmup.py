@@ -172,6 +172,9 @@ def initialise(
         Seeds the k-means++ restarts; the result is a deterministic function of X and seed.
     n_init : int
         Number of k-means++ restarts.
+    max_iter, tol : int, float
+        Batch EM of each restart stops after ``max_iter`` iterations or when the
+        average log-likelihood gains less than ``tol`` per row.
     schedule : StepSchedule, optional
         The stepwise schedule for later learning; ``i0`` is resolved from ``len(X)``.
     reg_covar, prior_weight : float
@@ -185,6 +188,9 @@ def initialise(
     refresh_rows : int
         The parameters are derived from the statistics at every multiple of this many
         learned rows (fewer for a slow stream, so that it learns between inputs).
+    mass_floor : float
+        Weight under which the fitted mixture's :meth:`Mixture.low_mass` lists a
+        component.
     averaging : bool or None
         Derive parameters from the running average of the statistics at refresh
         points (Polyak-Ruppert). ``None``: on when the schedule has no floor (the

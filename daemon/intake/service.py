@@ -45,6 +45,12 @@ _GROUP_BYTES = 4 << 20
 
 
 class Service:
+    """The service loop: the inbox watcher's paths through the readiness gate into a
+    queue ordered oldest first (modification time, then name), taken in groups by the
+    pipeline on this thread; failures that belong to the machine (a full disk, an
+    unwritable outbox) pause the intake and retry in order, and a periodic rescan finds
+    what events missed. ``run`` returns when the stop event is set."""
+
     def __init__(self, settings: Settings, layout: Layout, pipeline: Pipeline, *,
                  observer_factory: Callable[[], object] | None = None,
                  clock: Callable[[], float] = time.monotonic,
@@ -73,6 +79,10 @@ class Service:
         self._retry_at: dict[str, float] = {}       # path -> monotonic time of its retry
 
     # -- control ---------------------------------------------------------------------
+    def queued(self) -> int:
+        """Paths known and not yet taken: ready, or waiting for the gate to look again."""
+        return len(self._ready) + len(self._waiting)
+
     def request_stop(self) -> None:
         self.stop_event.set()
         try:

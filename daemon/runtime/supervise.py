@@ -149,7 +149,7 @@ class Supervisor:
 
     def live(self) -> dict:
         s = self.service
-        depth = len(s._ready) + len(s._waiting) + s.watcher.events.qsize()
+        depth = s.queued() + s.watcher.events.qsize()
         age = self.heartbeat.age()
         counts = dict(s.counts)
         return {"queue_depth": depth, "worker_healthy": self.health().ok,
