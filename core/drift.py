@@ -2,34 +2,12 @@
 
 A :class:`Baseline` keeps, per stable segment id, the weight, mean and covariance
 matrix in the data's own units and how many effective rows stood behind them, plus
-the mean log-density per row of the data around the snapshot. Statistics compare a
-current :class:`~shoal.core.mixture.Mixture`, or one batch of scored rows, with it,
-segment by segment, matched by id:
-
-``mean_shift``
-    Mahalanobis distance of the current mean from the baseline mean under the
-    baseline covariance: how many baseline standard deviations the mean moved.
-``spread_change``
-    ``log |S_now| - log |S_ref|``, the log ratio of generalised variances (signed;
-    bounds compare its magnitude).
-``hellinger``
-    Hellinger distance between the baseline and the current Gaussian, in [0, 1].
-``weight_change``
-    ``|w_now - w_ref|``.
-``batch_mean_shift``
-    The responsibility-weighted mean of one batch's rows, in baseline sds, with
-    Hotelling's ``T^2 = n_eff d^2`` and its chi-square p-value, ``n_eff`` being
-    Kish's effective sample size of the segment's responsibilities.
-``batch_weight_change``
-    ``|share of the batch's responsibility - w_ref|``.
-``fit_drop``
-    Baseline mean log-density per row minus the batch's (nats per row; positive
-    when the data fit the model worse than they did).
-
-The statistics' noise levels are in :mod:`shoal.core.drift_noise`, the raised and
-cleared decisions in :mod:`shoal.core.drift_bounds`, one window's statistics of every
-segment from its sums in :mod:`shoal.core.window_statistics`; this module names them
-all for its callers.
+the mean log-density per row of the data around the snapshot. One window's statistics
+of every segment against it (mean shift in baseline sds, spread change, weight change,
+fit drop, missing share) are computed from the window's sums in
+:mod:`shoal.core.window_statistics`, their noise levels in :mod:`shoal.core.drift_noise`,
+the raised and cleared decisions in :mod:`shoal.core.drift_bounds`; :func:`explain`
+says which features of a segment moved. This module names them all for its callers.
 """
 
 from __future__ import annotations
@@ -38,32 +16,16 @@ import numpy as np
 
 from .baseline import WHOLE_MODEL, Baseline
 from .drift_bounds import evaluate_bounds
-from .drift_compare import (
-    BatchDrift,
-    FitDrop,
-    SegmentDrift,
-    batch_drift,
-    fit_drop,
-    segment_drift,
-)
-from .drift_noise import fit_noise, hellinger_noise, mean_shift_noise, spread_noise, weight_noise
+from .drift_noise import mean_shift_noise, spread_noise, weight_noise
 from .errors import ModelError
 from .window_statistics import add_segment_scatter
 
 __all__ = [
-    "BatchDrift",
-    "FitDrop",
     "Baseline",
-    "SegmentDrift",
     "WHOLE_MODEL",
-    "batch_drift",
     "evaluate_bounds",
     "explain",
-    "fit_drop",
-    "fit_noise",
-    "hellinger_noise",
     "mean_shift_noise",
-    "segment_drift",
     "spread_noise",
     "weight_noise",
     "add_segment_scatter",

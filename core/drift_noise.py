@@ -3,18 +3,13 @@
 Each statistic comes with the root-mean-square size it reaches from
 estimation noise alone when nothing has changed, at the effective sample size of the
 estimates. For Gaussian rows, an estimate from ``n`` effective rows in ``D``
-features, and a covariance type with ``q`` free parameters per component
-(``D (D + 1) / 2`` full, ``D`` diag, ``1`` spherical):
+features:
 
 * mean shift: ``n d^2 ~ chi2(D)``, so ``rms = sqrt(D / n)``;
 * spread change: ``n S ~ Wishart(n - 1, Sigma)`` gives
   ``var log|S| = sum_{i=1..D} psi1((n - i) / 2)`` (full; ``psi1`` the trigamma
   function), ``D psi1((n - 1) / 2)`` (diag, D independent chi-squares) and
   ``D^2 psi1(D (n - 1) / 2)`` (spherical, one pooled chi-square); all ``~ 2D / n``;
-* Hellinger: to second order ``D_B = |delta|^2 / 8 + ||E||_F^2 / 16`` for a whitened
-  mean error ``delta`` and covariance error ``E``; ``E|delta|^2 = D / n`` and
-  ``E||E||_F^2 = 2 q / n``, and ``H^2 = 1 - exp(-D_B) ~ D_B``, so
-  ``rms H = sqrt((D + q) / (8 n))``;
 * weight: a share of ``N`` effective rows is binomial, ``sd = sqrt(w (1 - w) / N)``;
 * fit: the standard error of a batch mean, ``sd(log-density) / sqrt(n_rows)``.
 
@@ -34,8 +29,7 @@ from scipy import special
 
 from .errors import ModelError
 
-__all__ = ["mean_shift_noise", "spread_noise", "spread_variance", "hellinger_noise",
-           "weight_noise", "fit_noise"]
+__all__ = ["mean_shift_noise", "spread_noise", "spread_variance", "weight_noise"]
 
 # ------------------------------------------------------------------------ noise levels
 
@@ -83,13 +77,6 @@ _LOG_GV_VARIANCE = {
     "diag": (_diag_log_gv_variance, lambda d: 1.0),
     "spherical": (_spherical_log_gv_variance, lambda d: 1.0),
 }
-
-_COVARIANCE_PARAMETERS = {
-    "full": lambda d: d * (d + 1) // 2,
-    "diag": lambda d: d,
-    "spherical": lambda d: 1,
-}
-
 
 def _check_covariance_type(covariance):
     if covariance not in _LOG_GV_VARIANCE:
@@ -166,31 +153,6 @@ def spread_variance(n_eff, n_features, covariance="full"):
     return _per_estimate(n_eff, lambda n: variance(n, n_features), min_rows(n_features))
 
 
-def hellinger_noise(n_eff, n_features, covariance="full", ref_n_eff=math.inf):
-    """RMS Hellinger distance of an estimated Gaussian from the truth: ``sqrt((D + q) / (8 n))``.
-
-    ``q`` is the number of covariance parameters (``D (D + 1) / 2`` full, ``D`` diag,
-    ``1`` spherical). Capped at 1, the largest Hellinger distance.
-
-    Parameters
-    ----------
-    n_eff : float or array_like
-        Effective rows behind the current estimate.
-    n_features : int
-    covariance : {"full", "diag", "spherical"}, default "full"
-    ref_n_eff : float or array_like, default inf
-        Effective rows behind the baseline (``inf``: exact).
-
-    Returns
-    -------
-    noise : float or ndarray
-    """
-    _check_covariance_type(covariance)
-    size = n_features + _COVARIANCE_PARAMETERS[covariance](n_features)
-    noise = _combined(n_eff, ref_n_eff, lambda n: size / (8.0 * n), 0.0)
-    return float(min(noise, 1.0)) if np.ndim(noise) == 0 else np.minimum(noise, 1.0)
-
-
 def weight_noise(weight, total_n_eff, ref_total_n_eff=math.inf):
     """Standard deviation of a segment's weight: ``sqrt(w (1 - w) / N)`` (binomial share).
 
@@ -211,23 +173,3 @@ def weight_noise(weight, total_n_eff, ref_total_n_eff=math.inf):
     share = np.asarray(weight, dtype=np.float64)
     spread = share * (1.0 - share)
     return _combined(total_n_eff, ref_total_n_eff, lambda n: spread / n, 0.0)
-
-
-def fit_noise(log_density) -> float:
-    """Standard error of a batch's mean log-density: ``sd / sqrt(n_rows)`` (``inf`` below 2 rows).
-
-    Parameters
-    ----------
-    log_density : array_like of shape (n_samples,)
-
-    Returns
-    -------
-    noise : float
-        ``std(log_density, ddof=1) / sqrt(n_rows)``.
-    """
-    values = np.asarray(log_density, dtype=np.float64)
-    if values.size < 2:
-        return math.inf
-    return float(np.std(values, ddof=1) / math.sqrt(values.size))
-
-

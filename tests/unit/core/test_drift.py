@@ -2,24 +2,17 @@
 
 import json
 import math
-from dataclasses import replace
 
 import numpy as np
 import pytest
 
-from shoal.core import Mixture, ModelError, StepSchedule
-from shoal.core.distances import hellinger_distance
+from shoal.core import Mixture, ModelError
 from shoal.core.drift import (
     WHOLE_MODEL,
     Baseline,
-    batch_drift,
     evaluate_bounds,
     explain,
-    fit_drop,
-    fit_noise,
-    hellinger_noise,
     mean_shift_noise,
-    segment_drift,
     spread_noise,
     weight_noise,
 )
@@ -80,44 +73,6 @@ def test_reference_adopts_a_born_segment_and_drops_a_retired_one():
 # ------------------------------------------------------------ statistics, direct values
 
 
-def test_segment_drift_values_match_direct_computations():
-    shift = np.array([4.0, -1.0, 0.01])
-    means, covs = MEANS.copy(), COVS.copy()
-    means[1] += shift
-    covs[0] = 1.5 * COVS[0]
-    ref = Baseline.from_mixture(_mixture())
-    # the current model lists its segments in another order: matching is by id
-    order = [2, 0, 1]
-    now = _mixture(weights=[0.15, 0.55, 0.3], means=means[order], covs=covs[order],
-                   ids=order)
-    drift = segment_drift(ref, now)
-    assert drift.ids.tolist() == [0, 1, 2]
-    # Mahalanobis under the baseline covariance, computed with a dense solve here
-    expected_shift = np.sqrt(shift @ np.linalg.solve(COVS[1], shift))
-    np.testing.assert_allclose(drift.values["mean_shift"], [0.0, expected_shift, 0.0],
-                               atol=1e-9)
-    # scaling a 3-D covariance by 1.5 multiplies its determinant by 1.5^3
-    np.testing.assert_allclose(drift.values["spread_change"], [3 * np.log(1.5), 0, 0],
-                               atol=1e-9)
-    np.testing.assert_allclose(drift.values["hellinger"][0],
-                               hellinger_distance(MEANS[0], COVS[0], MEANS[0], covs[0]))
-    np.testing.assert_allclose(drift.values["weight_change"], [0.05, 0.0, 0.05], atol=1e-12)
-    np.testing.assert_allclose(drift.n_eff, [0.55e4, 0.3e4, 0.15e4])
-    np.testing.assert_allclose(drift.means[1], means[1])
-    values, noise = drift.bound_inputs()
-    assert values[(1, "mean_shift")] == pytest.approx(expected_shift)
-    assert noise[(0, "mean_shift")] == pytest.approx(
-        math.sqrt(3 / 0.55e4 + 3 / 0.5e4))
-
-
-def test_segment_drift_reports_new_and_missing_segments():
-    ref = Baseline.from_mixture(_mixture())
-    now = _mixture(weights=[0.6, 0.4], means=MEANS[[0, 2]], covs=COVS[[0, 2]], ids=[0, 7])
-    drift = segment_drift(ref, now)
-    assert drift.ids.tolist() == [0]
-    assert drift.new_ids.tolist() == [7] and drift.missing_ids.tolist() == [1, 2]
-
-
 # ------------------------------------------------------------- noise levels, simulated
 #
 # Each formula (module notes of shoal.core.drift) is checked against the spread of the
@@ -171,19 +126,6 @@ def test_spread_noise_is_the_sd_of_the_log_generalised_variance(covariance):
     assert spread_noise(n, 4, covariance) == pytest.approx(np.sqrt(8 / n), rel=0.3)
 
 
-@pytest.mark.parametrize("covariance", ["full", "diag"])
-def test_hellinger_noise_is_the_rms_distance_of_an_estimated_gaussian(covariance):
-    # second-order expansion: error O(1/n) relative, about 2% at n = 400; the rms of
-    # 600 draws is within ~2% of the truth. 10% allows both, with room.
-    n, cov = 400, SIGMA if covariance == "full" else np.diag(np.diag(SIGMA))
-    X = _samples(seed=4, reps=600, n=n, cov=cov)
-    S = _ml_covariances(X)
-    if covariance == "diag":
-        S = S * np.eye(4)
-    h = hellinger_distance(np.zeros(4), cov, X.mean(axis=1), S)
-    assert np.sqrt(np.mean(h**2)) == pytest.approx(hellinger_noise(n, 4, covariance), rel=0.10)
-
-
 def test_weight_noise_is_the_binomial_sd_of_a_share():
     rng = np.random.default_rng(5)
     shares = rng.binomial(800, 0.2, size=5000) / 800
@@ -191,77 +133,7 @@ def test_weight_noise_is_the_binomial_sd_of_a_share():
     assert np.sqrt(np.mean((shares - 0.2) ** 2)) == pytest.approx(weight_noise(0.2, 800), rel=0.04)
 
 
-def test_fit_noise_is_the_standard_error_of_the_mean_log_density():
-    mixture = _mixture()
-    rng = np.random.default_rng(6)
-    batches = [mixture.log_density(_rows(rng, 300)) for _ in range(400)]
-    spread = np.std([b.mean() for b in batches])
-    # sd of 400 batch means is within ~3.5% of the truth; 12% allowed
-    assert spread == pytest.approx(np.median([fit_noise(b) for b in batches]), rel=0.12)
-
-
-def test_batch_statistics_under_no_change_follow_their_null_distributions():
-    # Batches drawn from the baseline model itself and scored by it: T^2 with Kish's
-    # n_eff of the (soft) responsibilities should follow chi2(3), so its mean is 3 and
-    # about 5% of p-values fall under 0.05; the batch mean shift's rms is its noise.
-    mixture = _mixture()
-    ref = Baseline.from_mixture(mixture)
-    rng = np.random.default_rng(7)
-    t2, shift, noise, p = [], [], [], []
-    for _ in range(300):
-        X = _rows(rng, 1000)
-        drift = batch_drift(ref, X, mixture.score(X).resp, mixture.ids)
-        t2.append(drift.t2)
-        p.append(drift.p_value)
-        shift.append(drift.values["batch_mean_shift"])
-        noise.append(drift.noise["batch_mean_shift"])
-    t2, p = np.array(t2), np.array(p)
-    # mean of 300 chi2(3) draws: sd sqrt(6/300) = 0.14; allow 4 sd
-    np.testing.assert_allclose(t2.mean(axis=0), 3.0, atol=0.6)
-    # rejection rate per segment: binomial sd at 300 batches is 0.013; allow ~3 sd
-    assert np.all(np.abs((p < 0.05).mean(axis=0) - 0.05) < 0.04)
-    ratio = np.sqrt(np.mean(np.square(shift), axis=0)) / np.mean(noise, axis=0)
-    np.testing.assert_allclose(ratio, 1.0, atol=0.12)
-
-
-def test_mean_shift_of_a_stepwise_model_is_within_its_noise_level():
-    # The whole chain: a model learned stepwise on stationary rows, with a step floor,
-    # differs from the truth by about mean_shift_noise(weight * n_eff) -- the row
-    # weights' Kish n_eff applied to each segment's share.
-    ratios = []
-    for seed in range(16):
-        rng = np.random.default_rng(100 + seed)
-        means = np.array([[0.0, 0.0], [8.0, 0.0]])
-        truth = Mixture.from_parameters([0.4, 0.6], means, [np.eye(2)] * 2, n_eff=100,
-                                        schedule=StepSchedule(half_life_rows=1500),
-                                        refresh_rows=1024)
-        labels = rng.choice(2, size=10 * 1024, p=[0.4, 0.6])
-        learned, _ = truth.learn(means[labels] + rng.normal(size=(labels.size, 2)))
-        exact = replace(Baseline.from_mixture(truth), n_eff=np.full(2, np.inf))
-        drift = segment_drift(exact, learned)
-        ratios.append(drift.values["mean_shift"] / drift.noise["mean_shift"])
-    # mean of 32 chi2(2)/2 draws: sd 0.18; allow about 2.5 sd either side
-    assert 0.55 < np.mean(np.square(ratios)) < 1.45
-
-
 # ------------------------------------------------------------------- detection, explain
-
-
-def test_batch_drift_detects_a_one_sd_shift_and_explain_names_the_feature():
-    mixture = _mixture()
-    ref = Baseline.from_mixture(mixture)
-    rng = np.random.default_rng(8)
-    means = MEANS.copy()
-    means[1, 2] += np.sqrt(COVS[1, 2, 2])          # feature 2 of segment 1 moves by 1 sd
-    X = _rows(rng, 2000, means=means)
-    drift = batch_drift(ref, X, mixture.score(X).resp, mixture.ids)
-    assert drift.p_value[1] < 1e-10 and drift.p_value[0] > 1e-4 and drift.p_value[2] > 1e-4
-    assert drift.values["batch_mean_shift"][1] > 3 * drift.noise["batch_mean_shift"][1]
-    top = explain(ref, 1, drift.means[1], feature_names=["temp", "pressure", "humidity"])
-    assert top[0]["feature"] == "humidity" and top[0]["index"] == 2
-    assert top[0]["shift_sd"] == pytest.approx(1.0, abs=0.15)
-    assert top[0]["baseline_mean"] == pytest.approx(0.0)
-    assert top[0]["window_mean"] == pytest.approx(means[1, 2], abs=0.002)
 
 
 def test_explain_ranks_by_shift_in_reference_sds_not_data_units():
@@ -273,21 +145,6 @@ def test_explain_ranks_by_shift_in_reference_sds_not_data_units():
     assert [r["feature"] for r in explain(ref, 0, moved, top=1)] == ["x2"]
     with pytest.raises(ModelError, match="segment 9 is not in the baseline"):
         explain(ref, 9, moved)
-
-
-def test_fit_drop_is_the_fall_in_mean_log_density():
-    mixture = _mixture()
-    rng = np.random.default_rng(9)
-    level = float(np.mean(mixture.log_density(_rows(rng, 20_000))))
-    ref = Baseline.from_mixture(mixture, log_density=level)
-    same = fit_drop(ref, mixture.log_density(_rows(rng, 2000)))
-    assert abs(same.value) < 4 * same.noise
-    worse = fit_drop(ref, mixture.log_density(_rows(rng, 2000, covs=4.0 * COVS)))
-    assert worse.value > 1.0 and worse.value > 10 * worse.noise
-    values, _ = worse.bound_inputs()
-    assert values == {(WHOLE_MODEL, "fit_drop"): worse.value}
-    with pytest.raises(ModelError, match="no log-density level"):
-        fit_drop(Baseline.from_mixture(mixture), [0.0, 1.0])
 
 
 # ------------------------------------------------------------------------------ bounds
@@ -359,24 +216,6 @@ def test_bounds_are_deterministic_and_leave_the_input_state_alone():
     assert all(ranks == sorted(ranks) for ranks in by_time.values())
     with pytest.raises(ModelError, match="persist should be a positive integer"):
         evaluate_bounds({}, {}, {}, None, persist=0)
-
-
-def test_stationary_batches_stay_quiet_and_a_shifted_segment_fires():
-    mixture = _mixture()
-    ref = Baseline.from_mixture(mixture)
-    bounds = {"batch_mean_shift": 0.25, "batch_weight_change": 0.05}
-    rng = np.random.default_rng(11)
-    state, raised = None, []
-    means = MEANS.copy()
-    for at in range(40):
-        if at == 25:
-            means[2] += 0.5 * np.sqrt(np.diag(COVS[2]))   # 0.5 sd in every feature
-        X = _rows(rng, 2000, means=means)
-        values, noise = batch_drift(ref, X, mixture.score(X).resp, mixture.ids).bound_inputs()
-        state, events = evaluate_bounds(values, noise, bounds, state, at=at)
-        raised.extend((e["at"], e["segment"], e["statistic"]) for e in events)
-    assert raised and raised[0] == (27, 2, "batch_mean_shift")
-    assert all(seg == 2 for _, seg, _ in raised)
 
 
 def test_trigamma_is_scipys_polygamma_of_order_one():
