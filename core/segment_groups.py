@@ -209,9 +209,9 @@ def split_test(X, *, covariance="full", min_share=0.1, min_gain=0.5, seed=0, n_i
         Each part must hold at least this share of the rows.
     min_gain : float
         ... and the BIC must fall by at least this much per row (0.5: a quarter of a
-        nat per row). Two groups apart enough to be segments gain 1.1-3.0 per row on
-        the seeded lumped scenarios; a sliver cut from a population on the move
-        gains a fraction of that (0.17 measured).
+        nat per row): two groups apart enough to be segments gain several times that
+        on the seeded lumped scenarios (``tests/support/_scenarios.py``), a sliver cut
+        from a population on the move a fraction of it.
     seed, n_init : int
         Seed and number of k-means++ restarts of the two-component fit.
     reg_covar : float

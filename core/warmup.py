@@ -182,9 +182,9 @@ def initialise(
     resp_floor : float
         Responsibilities below this are left out of stepwise updates: the sparse
         variant of EM of Neal & Hinton (1998), which skips most of the second-moment
-        work on separated data. Batch EM (warm-up) is always exact. Measured on
-        seeded 8-component streams (tests/test_core_stepwise.py): 1e-3 costs under
-        1e-4 nats/row of average log-likelihood. 0 keeps every responsibility.
+        work on separated data. Batch EM (warm-up) is always exact; what the floor
+        costs in average log-likelihood is bounded by
+        ``tests/unit/core/test_core_stepwise.py``. 0 keeps every responsibility.
     refresh_rows : int
         The parameters are derived from the statistics at every multiple of this many
         learned rows (fewer for a slow stream, so that it learns between inputs).
