@@ -48,17 +48,7 @@ class Stream(drift_alerts.Stream):
         return r, pq.read_table(r.labels)
 
 
-@pytest.fixture
-def stream(tmp_path):
-    made = []
-
-    def make(**overrides):
-        s = Stream(tmp_path / f"s{len(made)}", **overrides)
-        made.append(s)
-        return s
-    yield make
-    for s in made:
-        s.close()
+stream = drift_alerts.stream_fixture(Stream)
 
 
 def test_zeros_under_log_are_invalid_and_counted_under_log1p_fine(stream):

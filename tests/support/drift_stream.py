@@ -85,18 +85,27 @@ class Stream:
         self.store.close()
 
 
-@pytest.fixture
-def stream(tmp_path):
-    made = []
+def stream_fixture(kind):
+    """A pytest fixture that makes streams of class ``kind`` in the test's temporary
+    folder (``make(**overrides)``) and closes every one it made."""
 
-    def make(**overrides):
-        s = Stream(tmp_path / f"s{len(made)}", **overrides)
-        made.append(s)
-        return s
+    @pytest.fixture
+    def stream(tmp_path):
+        made = []
 
-    yield make
-    for s in made:
-        s.close()
+        def make(**overrides):
+            s = kind(tmp_path / f"s{len(made)}", **overrides)
+            made.append(s)
+            return s
+
+        yield make
+        for s in made:
+            s.close()
+
+    return stream
+
+
+stream = stream_fixture(Stream)
 
 
 def first_raised(alerts, statistic, segment=None):
