@@ -124,10 +124,23 @@ def _solve_small(H, g):
         inv[..., 0, 0], inv[..., 1, 1] = c / det, a / det
         inv[..., 0, 1] = inv[..., 1, 0] = -b / det
         return np.einsum("...rs,...s->...r", inv, g), inv, np.log(det)
-    sign, log_det = np.linalg.slogdet(H)
-    if np.any(sign <= 0):
-        raise np.linalg.LinAlgError("a precision block is not positive definite")
-    inv = np.linalg.inv(H)
+    # Gauss-Jordan elimination over the whole stack at once, no pivoting: a positive
+    # definite matrix keeps positive pivots (they are the squares of its Cholesky
+    # diagonal), and one vectorised pass costs less than LAPACK's per-matrix calls
+    A = np.array(H, dtype=np.float64)
+    inv = np.broadcast_to(np.eye(r), H.shape).copy()
+    log_det = np.zeros(H.shape[:-2])
+    for j in range(r):
+        pivot = A[..., j, j].copy()
+        if not np.all(pivot > 0.0):
+            raise np.linalg.LinAlgError("a precision block is not positive definite")
+        log_det += np.log(pivot)
+        A[..., j, :] /= pivot[..., None]
+        inv[..., j, :] /= pivot[..., None]
+        factor = A[..., :, j].copy()
+        factor[..., j] = 0.0
+        A -= factor[..., :, None] * A[..., None, j, :]
+        inv -= factor[..., :, None] * inv[..., None, j, :]
     return np.einsum("...rs,...s->...r", inv, g), inv, log_det
 
 
