@@ -31,6 +31,7 @@ from shoal.daemon.errors import UsageError
 from shoal.daemon.files.layout import Layout
 from shoal.daemon.files.quarantine import quarantine_summary, quarantined, read_sidecar
 from shoal.daemon.files.writer import atomic_file, fsync_dir
+from shoal.daemon.state.ledger import note_quarantined
 
 __all__ = ["read_sidecar", "quarantined", "quarantine_summary", "retry", "drop",
            "RETRIED_FOLDER", "add_quarantine_commands"]
@@ -56,11 +57,7 @@ def _note_in_ledger(layout: Layout, record: dict, note: str) -> bool:
     db = sqlite3.connect(layout.db, timeout=30.0)
     try:
         with db:
-            cur = db.execute(
-                "UPDATE ledger SET reason = COALESCE(reason, '') || ? WHERE id = (SELECT MAX(id) "
-                "FROM ledger WHERE outcome = 'quarantined' AND name = ?)",
-                (f" · {note}", record["input"]))
-            return cur.rowcount == 1
+            return note_quarantined(db, record["input"], note)
     finally:
         db.close()
 

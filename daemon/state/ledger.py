@@ -15,7 +15,7 @@ from typing import Callable, Iterable
 from shoal.daemon.state.records import LedgerEntry
 
 __all__ = ["insert_entry", "find_done", "ledger_entries", "ledger_rows", "add_attempts",
-           "attempt_counts", "clear_attempt", "ATTEMPTS_KEPT_SECONDS"]
+           "attempt_counts", "clear_attempt", "ATTEMPTS_KEPT_SECONDS", "note_quarantined"]
 
 # Attempt rows of inputs that never finished here (gone from the inbox meanwhile) are
 # dropped after this long.
@@ -92,3 +92,12 @@ def attempt_counts(db: sqlite3.Connection, keys: Iterable[str]) -> dict[str, int
 def clear_attempt(db: sqlite3.Connection, key: str) -> None:
     """Forget an input's attempts: it is finished (committed or quarantined)."""
     db.execute("DELETE FROM attempts WHERE input = ?", (key,))
+
+
+def note_quarantined(db: sqlite3.Connection, name: str, note: str) -> bool:
+    """Append ``note`` to the reason of the input ``name``'s latest quarantined ledger row
+    (``shoal quarantine retry | drop`` say what became of it); False if it has none."""
+    cur = db.execute(
+        "UPDATE ledger SET reason = COALESCE(reason, '') || ? WHERE id = (SELECT MAX(id) "
+        "FROM ledger WHERE outcome = 'quarantined' AND name = ?)", (f" · {note}", name))
+    return cur.rowcount == 1
