@@ -237,8 +237,9 @@ def baseline_from_sums(mixture: Mixture, sums, n_rows: int, log_density_sum: flo
     Returns
     -------
     Baseline
-        Weights ``T / n_rows``; means ``center + M / T``; covariances
-        ``S / T - (M / T)(M / T)^T`` projected to the covariance type; ``total_n_eff``
+        Weights ``T / n_rows``; means ``center + M / B``; covariances
+        ``S / B - (M / B)(M / B)^T`` (``B`` the sums' ``mass``, :class:`WindowSums`)
+        projected to the covariance type; ``total_n_eff``
         ``n_rows`` and ``log_density`` the mean per row.
     """
     model = Baseline.from_mixture(mixture)
@@ -248,9 +249,10 @@ def baseline_from_sums(mixture: Mixture, sums, n_rows: int, log_density_sum: flo
     covs, n_eff = model.covariances.copy(), model.n_eff.copy()
     with np.errstate(divide="ignore", invalid="ignore"):
         kish = np.where(Q > 0, T * T / np.where(Q > 0, Q, 1.0), 0.0)
-    for k in np.flatnonzero((Q > 0) & (kish > d + 1)).tolist():
-        dev = sums.M[k] / T[k]
-        cov = sums.S[k] / T[k] - np.outer(dev, dev)
+    mass = sums.mass
+    for k in np.flatnonzero((Q > 0) & (kish > d + 1) & (mass > 0)).tolist():
+        dev = sums.M[k] / mass[k]
+        cov = sums.S[k] / mass[k] - np.outer(dev, dev)
         if mixture.covariance == "diag":
             cov = np.diag(np.diag(cov))
         elif mixture.covariance == "spherical":

@@ -19,6 +19,7 @@ from .errors import ModelError
 from .gap_spans import em_step_gaps, learn_span_gaps, score_gaps
 from .gaps import NOT_FINITE
 from .parameters import derive, evolve, refresh
+from .piece_moments import PieceMoments
 from .scoring import (
     SPAN_ROWS,
     ScoreBuffer,
@@ -99,13 +100,17 @@ def score_rows(mixture, X, gaps=None):
     return out.scores(mixture.ids)
 
 
-def learn_rows(mixture, X, gaps=None):
+def learn_rows(mixture, X, gaps=None, moments=False):
     """Score rows, then learn from them with stepwise EM (see :meth:`Mixture.learn`).
 
     Parameters
     ----------
     mixture, X, gaps
         As for :func:`score_rows`.
+    moments : bool, default False
+        Also give the rows' per-segment moments (``scores.moments``,
+        :class:`shoal.core.piece_moments.PieceMoments`) from the M-step's statistics,
+        for complete rows and the full and diag types (None otherwise).
 
     Returns
     -------
@@ -128,6 +133,9 @@ def learn_rows(mixture, X, gaps=None):
     packed = None if gaps is None or not jit else packed_gaps.pack(
         gaps, mixture.covariance, mixture.n_components)
     gap_rows = None if jit else gaps
+    piece = None
+    if moments and gaps is None and mixture.covariance in ("full", "diag"):
+        piece = PieceMoments.empty(mixture.n_components, mixture.n_features)
     while pos < n:
         # pieces end at refresh points, which sit at fixed places in the stream;
         # they are scored in cache-sized blocks, then learned from in one go
@@ -142,6 +150,9 @@ def learn_rows(mixture, X, gaps=None):
         else:
             A = score_span(model, X, pos, pos + take, out, model.scoring_operator, rows)
             b0, b1, b2 = accumulate(model, A, out.resp_kn[:, pos : pos + take], row_w)
+        if piece is not None:
+            unit = mixture.schedule.cell_unit(at - at % every, at + take)
+            piece.add_span(out.resp_kn[:, pos:pos + take], b0, b1, b2, mixture.scale, unit)
         s0 = keep * s0 + b0
         s1 = keep * s1 + b1
         s2 = keep * s2 + b2
@@ -151,7 +162,8 @@ def learn_rows(mixture, X, gaps=None):
         if at % every == 0:
             model = evolve(model, **refresh(model, s0, s1, s2, sumsq))
     model = evolve(model, s0=s0, s1=s1, s2=s2, sumsq=sumsq, n_rows=at)
-    return model, out.scores(mixture.ids)
+    scores = out.scores(mixture.ids)
+    return model, (scores if piece is None else replace(scores, moments=piece))
 
 
 def em_step_rows(mixture, X, gaps=None):

@@ -325,7 +325,7 @@ class Mixture:
         return self.family.log_joint(A, operator).T - self.log_scale_sum
 
     @learning.retry_with_gaps()
-    def learn(self, X, *, _gaps=None) -> tuple["Mixture", Scores]:
+    def learn(self, X, *, moments=False, _gaps=None) -> tuple["Mixture", Scores]:
         """Score rows, then learn from them with stepwise EM.
 
         Rows are taken in order. Each row is scored with the parameters in force at
@@ -337,6 +337,10 @@ class Mixture:
         X : array-like of shape (n_samples, n_features)
             NaN marks a missing feature: the row is scored by the marginal over its
             observed features and learned from by EM with missing data.
+        moments : bool, default False
+            Also give the rows' per-segment moments in ``scores.moments``
+            (:class:`shoal.core.piece_moments.PieceMoments`; complete rows, full and
+            diag types), taken from the M-step's statistics for the drift watch.
 
         Returns
         -------
@@ -345,7 +349,7 @@ class Mixture:
         scores : Scores
             The scores of every row, as labelled during learning.
         """
-        return learning.learn_rows(self, X, _gaps)
+        return learning.learn_rows(self, X, _gaps, moments)
 
     @learning.retry_with_gaps(always_fill=True)
     def em_step(self, X, *, _gaps=None) -> tuple["Mixture", float]:

@@ -202,6 +202,29 @@ class StepSchedule:
         weights *= eta
         return weights, keep
 
+    def cell_unit(self, anchor: int, end: int) -> float:
+        """``eta_{anchor+1} * prod_{l=anchor+1}^{end} (1 - eta_l)``.
+
+        Dividing the weights :meth:`row_weights` gives the rows of a batch ending at row
+        ``end`` by this leaves ``eta_i / (eta_{anchor+1} prod_{anchor<l<=i} (1 - eta_l))``
+        for row ``i``: a weight that depends only on the row's place after ``anchor``
+        (1 at ``anchor + 1``, slowly growing), whatever the batch.
+
+        Parameters
+        ----------
+        anchor, end : int
+            Rows learned before the first row counted, and up to the last.
+
+        Returns
+        -------
+        float
+        """
+        n = end - anchor
+        if self.half_life_rows is not None:
+            return float(self.floor * np.exp(n * np.log1p(-self.floor)))
+        eta = self.steps(anchor, n)
+        return float(eta[0] * np.exp(np.sum(np.log1p(-eta))))
+
     def average_weights(self, start: int, n_rows: int) -> tuple[np.ndarray, float]:
         """Weights for adding up the batch's iterates ``S_1 .. S_n`` (Polyak-Ruppert averaging).
 

@@ -46,6 +46,9 @@ class Scores:
         Stable segment id of that component.
     confidence : ndarray of shape (n_samples,)
         The largest responsibility.
+    moments : PieceMoments or None
+        The rows' per-segment moments, when learning was asked for them
+        (:func:`shoal.core.learning.learn_rows`).
     """
 
     log_density: np.ndarray
@@ -53,6 +56,7 @@ class Scores:
     component: np.ndarray
     segment: np.ndarray
     confidence: np.ndarray
+    moments: object = None
 
 
 class ScoreBuffer:

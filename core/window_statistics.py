@@ -17,7 +17,7 @@ Sums are additive, so a window may span inputs and be checkpointed between them.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 
 import numpy as np
 
@@ -27,7 +27,7 @@ from .drift_noise import mean_shift_noise, spread_noise, spread_variance, weight
 __all__ = ["NEGLIGIBLE", "WindowSums", "SegmentStatistics", "add_segment_scatter",
            "add_segment_variances",
            "piece_sums", "positive_definite", "projected_covariances",
-           "segment_statistics", "fit_statistics"]
+           "segment_statistics", "stack_sums", "window_statistics", "fit_statistics"]
 
 NEGLIGIBLE = 1e-12
 """Responsibilities at or below this are left out of a window's second moments: such
@@ -155,6 +155,9 @@ class WindowSums:
     S : ndarray of shape (n_components, n_features, n_features)
     miss, miss2, imputed : ndarray of shape (n_components, n_features) or None
         Only when some row of the window missed a feature.
+    B : ndarray of shape (n_components,) or None
+        What ``M`` and ``S`` divide by when their rows were weighted
+        (:mod:`shoal.core.piece_moments`); None: ``T``.
     """
 
     T: np.ndarray
@@ -164,6 +167,12 @@ class WindowSums:
     miss: np.ndarray | None = None
     miss2: np.ndarray | None = None
     imputed: np.ndarray | None = None
+    B: np.ndarray | None = None
+
+    @property
+    def mass(self) -> np.ndarray:
+        """The totals the moments ``M`` and ``S`` divide by (``B``, else ``T``)."""
+        return self.T if self.B is None else self.B
 
 
 @dataclass
@@ -225,6 +234,21 @@ class SegmentStatistics:
     feature_shift: np.ndarray | None = None
     feature_noise: np.ndarray | None = None
 
+    def rows(self, lo: int, hi: int) -> "SegmentStatistics":
+        """The statistics of rows ``lo:hi`` (one window of :func:`window_statistics`).
+
+        Parameters
+        ----------
+        lo, hi : int
+
+        Returns
+        -------
+        SegmentStatistics
+        """
+        return SegmentStatistics(**{f.name: (None if getattr(self, f.name) is None
+                                             else getattr(self, f.name)[lo:hi])
+                                    for f in fields(self)})
+
 
 def _missing(sums: WindowSums, ref_n_eff, baseline_shares):
     T, Q = sums.T, sums.Q
@@ -249,9 +273,11 @@ def _observed_means(sums: WindowSums, at, center, means, n_effs):
         return means, np.repeat(n_effs[:, None], means.shape[1], axis=1)
     T = sums.T[at, None] - sums.miss[at]
     Q = sums.Q[at, None] - sums.miss2[at]
-    seen = T > 0.0
+    # rows with gaps enter unweighted (1 per unit of responsibility), as B counts them
+    B = sums.mass[at, None] - sums.miss[at]
+    seen = (T > 0.0) & (B > 0.0)
     M = sums.M[at] - sums.imputed[at]
-    fmeans = np.where(seen, center + M / np.where(seen, T, 1.0), means)
+    fmeans = np.where(seen, center + M / np.where(seen, B, 1.0), means)
     f_neff = np.where(seen & (Q > 0.0), T * T / np.where(Q > 0.0, Q, 1.0), 0.0)
     return fmeans, f_neff
 
@@ -289,66 +315,127 @@ def segment_statistics(ref, factors, n_rows: int, sums: WindowSums, center, *,
     -------
     SegmentStatistics
     """
+    return window_statistics(ref, factors, [n_rows], sums, np.asarray(center)[None],
+                             min_share=min_share, baseline_missing=baseline_missing,
+                             feature_shift=feature_shift,
+                             ref_spread_variance=ref_spread_variance)
+
+
+def stack_sums(windows) -> WindowSums:
+    """Several windows' sums (each in the baseline's order of segment ids) as one
+    :class:`WindowSums` of ``len(windows) * K`` rows, window after window.
+
+    Parameters
+    ----------
+    windows : sequence of WindowSums
+
+    Returns
+    -------
+    WindowSums
+    """
+    def cat(name):
+        parts = [getattr(w, name) for w in windows]
+        if all(p is None for p in parts):
+            return None
+        like = next(p for p in parts if p is not None)
+        return np.concatenate([np.zeros_like(like) if p is None else p for p in parts])
+    out = WindowSums(**{name: cat(name) for name in
+                        ("T", "Q", "M", "S", "miss", "miss2", "imputed")})
+    if any(w.B is not None for w in windows):
+        out.B = np.concatenate([w.mass for w in windows])
+    return out
+
+
+def window_statistics(ref, factors, n_rows, sums: WindowSums, centers, *,
+                      min_share: float, baseline_missing=None,
+                      feature_shift: bool = False,
+                      ref_spread_variance=None) -> SegmentStatistics:
+    """Compare several windows with the baseline, every segment of every window at once.
+
+    Parameters
+    ----------
+    ref, factors, min_share, feature_shift, ref_spread_variance
+        As for :func:`segment_statistics`.
+    n_rows : sequence of int, length W
+        Rows of each window.
+    sums : WindowSums
+        The windows' sums, ``W * K`` rows (:func:`stack_sums`).
+    centers : ndarray of shape (W, n_features)
+        The centre each window's rows were taken from.
+    baseline_missing : ndarray of shape (K, n_features), optional
+        As for :func:`segment_statistics` (the same for every window).
+
+    Returns
+    -------
+    SegmentStatistics
+        Fields of ``W * K`` rows, window after window (:meth:`SegmentStatistics.rows`
+        gives one window's).
+    """
     d = ref.means.shape[1]
     K = ref.ids.shape[0]
-    center = np.asarray(center, dtype=np.float64)
-    T, Q = sums.T, sums.Q
+    W = len(n_rows)
+    kk = np.tile(np.arange(K), W)            # the baseline segment of each row
+    n_rows = np.repeat(np.asarray(n_rows, dtype=np.float64), K)
+    center = np.repeat(np.asarray(centers, dtype=np.float64), K, axis=0)
+    T, Q, B = sums.T, sums.Q, sums.mass
     share = T / n_rows
-    w_ref = ref.weights
-    w_noise = np.atleast_1d(weight_noise(w_ref, float(n_rows), ref.total_n_eff))
+    w_ref = ref.weights[kk]
+    w_noise = np.atleast_1d(weight_noise(w_ref, n_rows, ref.total_n_eff))
     low = share < min_share * w_ref
-    seen = ~low & (T > 0.0) & (Q > 0.0)
+    seen = ~low & (T > 0.0) & (Q > 0.0) & (B > 0.0)
     at = np.flatnonzero(seen)
-    n_eff = np.zeros(K)
-    means = np.full((K, d), np.nan)
-    covs = np.full((K, d, d), np.nan)
-    dev = sums.M[at] / T[at, None]
+    n = W * K
+    n_eff = np.zeros(n)
+    means = np.full((n, d), np.nan)
+    covs = np.full((n, d, d), np.nan)
+    dev = sums.M[at] / B[at, None]
     n_eff[at] = T[at] * T[at] / Q[at]
-    means[at] = center + dev
-    covs[at] = sums.S[at] / T[at, None, None] - dev[:, :, None] * dev[:, None, :]
-    shift = np.full(K, np.nan)
-    shift_noise = np.full(K, np.nan)
-    spread = np.full(K, np.nan)
-    spread_n = np.full(K, np.nan)
+    means[at] = center[at] + dev
+    covs[at] = sums.S[at] / B[at, None, None] - dev[:, :, None] * dev[:, None, :]
+    shift = np.full(n, np.nan)
+    shift_noise = np.full(n, np.nan)
+    spread = np.full(n, np.nan)
+    spread_n = np.full(n, np.nan)
     f_shift = f_noise = None
     if at.size:
-        ref_n = ref.n_eff[at]
-        shift[at] = factors.mahalanobis(means[at], at)
+        member = kk[at]
+        ref_n = ref.n_eff[member]
+        shift[at] = factors.mahalanobis(means[at], member)
         shift_noise[at] = np.atleast_1d(mean_shift_noise(n_eff[at], d, ref_n))
         diag = np.diagonal(covs[at], axis1=1, axis2=2)
         compared = projected_covariances(covs[at], ref.covariance)
         usable = (n_eff[at] > d + 1) & np.all(diag > 0, axis=1) & positive_definite(compared)
         if usable.any():
-            log_ratio = factors.log_variance_ratio(compared[usable], at[usable])
+            log_ratio = factors.log_variance_ratio(compared[usable], member[usable])
             if ref_spread_variance is None:
                 noise = np.atleast_1d(spread_noise(n_eff[at][usable], d, ref.covariance,
                                                    ref_n[usable]))
             else:
                 noise = np.sqrt(spread_variance(n_eff[at][usable], d, ref.covariance)
-                                + ref_spread_variance[at[usable]])
+                                + ref_spread_variance[member[usable]])
             spread[at[usable]] = np.abs(log_ratio) / (2 * d)
             spread_n[at[usable]] = noise / (2 * d)
         if feature_shift:
-            ref_sd = np.sqrt(np.diagonal(ref.covariances[at], axis1=1, axis2=2))
-            fmeans, f_neff = _observed_means(sums, at, center, means[at], n_eff[at])
-            z = np.abs(fmeans - ref.means[at]) / ref_sd
+            ref_sd = np.sqrt(np.diagonal(ref.covariances[member], axis1=1, axis2=2))
+            fmeans, f_neff = _observed_means(sums, at, center[at], means[at], n_eff[at])
+            z = np.abs(fmeans - ref.means[member]) / ref_sd
             inv_ref = np.where(np.isinf(ref_n), 0.0, 1.0 / ref_n)
             with np.errstate(divide="ignore"):
                 fn = np.sqrt(1.0 / f_neff + inv_ref[:, None])
-            f_shift = np.full((K, d), np.nan)
-            f_noise = np.full((K, d), np.nan)
+            f_shift = np.full((n, d), np.nan)
+            f_noise = np.full((n, d), np.nan)
             f_shift[at] = np.where(f_neff > 0.0, z, np.nan)
             f_noise[at] = np.where(f_neff > 0.0, fn, np.nan)
     baseline_missing = np.zeros((K, d)) if baseline_missing is None else baseline_missing
-    missing, m_value, m_noise, m_feature, m_shares = _missing(sums, ref.n_eff,
-                                                              baseline_missing)
+    missing, m_value, m_noise, m_feature, m_shares = _missing(sums, ref.n_eff[kk],
+                                                              baseline_missing[kk])
     return SegmentStatistics(
         share=share, weight_change=np.abs(share - w_ref), weight_noise=w_noise, low=low,
         seen=seen, n_eff=n_eff, means=means, covs=covs, mean_shift=shift,
         mean_shift_noise=shift_noise, t2=n_eff * shift ** 2, spread=spread,
         spread_noise=spread_n, missing=missing, missing_share=m_value,
         missing_noise=m_noise, missing_feature=m_feature, missing_shares=m_shares,
-        missing_baseline=baseline_missing, feature_shift=f_shift, feature_noise=f_noise)
+        missing_baseline=baseline_missing[kk], feature_shift=f_shift, feature_noise=f_noise)
 
 
 def fit_statistics(ref_log_density: float, n_rows: int, ld_sum: float, ld2_sum: float):

@@ -395,6 +395,8 @@ STAGES = [
     ("frame build (float64 rows, checks)", "shoal.daemon.files.readers", None, "build_frame"),
     ("model E+M (Mixture.learn)", "shoal.core.mixture", "Mixture", "learn"),
     ("drift (window sums, evaluation)", "shoal.daemon.segments.monitor", "InputWatch", "observe"),
+    ("drift (window sums, evaluation)", "shoal.daemon.segments.monitor", "InputWatch",
+     "_evaluate_waiting"),
     ("lifecycle decision points", "shoal.daemon.segments.segment_life", "LifeWatch", "at_boundary"),
     ("lifecycle unexplained rows", "shoal.daemon.segments.segment_life", "LifeWatch", "observe"),
     ("far-row bound (model thread)", "shoal.daemon.ingest.rows", None, "mark_beyond_model"),

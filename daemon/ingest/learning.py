@@ -144,7 +144,7 @@ def learn_chunks(settings: Settings, mixture: Mixture, X: np.ndarray,
                 take = min(take, life.rows_to_boundary(mixture))
             piece = X[start:start + take]
             before = mixture
-            mixture, scores = mixture.learn(piece)
+            mixture, scores = mixture.learn(piece, moments=watch is not None)
             if watch is not None:
                 watch.observe(mixture, piece, scores, start)
             if life is not None:

@@ -109,10 +109,13 @@ def complete_only(X: np.ndarray, scores):
     return replace(scores, log_density=np.where(gappy, np.inf, scores.log_density))
 
 
+# the fields of Scores with one entry per row (a piece's moments are not cut or joined)
+_ROW_FIELDS = ("log_density", "resp", "component", "segment", "confidence")
+
+
 def rows_of(scores, start: int, stop: int):
     """Rows ``start:stop`` of ``scores``."""
-    return type(scores)(**{name: getattr(scores, name)[start:stop]
-                           for name in scores.__dataclass_fields__})
+    return type(scores)(**{name: getattr(scores, name)[start:stop] for name in _ROW_FIELDS})
 
 
 def concat_scores(*parts):
@@ -125,4 +128,4 @@ def concat_scores(*parts):
     if len({p.resp.shape[1] for p in parts}) > 1:   # segments born, retired or merged:
         parts = [replace(p, resp=p.resp[:, :0]) for p in parts]   # columns mean nothing
     return type(first)(**{name: np.concatenate([getattr(p, name) for p in parts])
-                          for name in first.__dataclass_fields__})
+                          for name in _ROW_FIELDS})

@@ -76,14 +76,16 @@ def shown_noise(stat, v):
     return math.exp(v) if stat == "spread_ratio" and v is not None else v
 
 
-def drift_event_alert(watch, e: dict, detail: dict, ref: Baseline, info: dict) -> None:
+def drift_event_alert(watch, e: dict, detail: dict, ref: Baseline, info: dict,
+                      recent: list) -> None:
     """Turn a raised or cleared event of ``watch`` (an InputWatch) into its alert payload,
-    kept open or closed in the watch's state."""
+    kept open or closed in the watch's state; ``recent`` are the records of the windows
+    up to the evaluated one (``info``'s)."""
     st = watch.state
     seg, stat = e["segment"], e["statistic"]
     key = f"{seg}|{stat}"
     if e["status"] == "raised":
-        windows = [w for w in st["recent"] if w["index"] >= e["first_at"]]
+        windows = [w for w in recent if w["index"] >= e["first_at"]]
         payload = {
             "schema_version": PAYLOAD_SCHEMA_VERSION,
             "id": alert_id(st["baseline_number"], seg, stat, e["first_at"]),
@@ -118,7 +120,7 @@ def drift_event_alert(watch, e: dict, detail: dict, ref: Baseline, info: dict) -
             "unit": STATISTIC_UNITS[stat.split("[")[0]],
             "model_version": {"first": watch.version}, "rows": {"first": info["rows"][0]},
             "severity": "major", "baseline": None}
-        windows = st["recent"][-watch.drift.resolve_persist:]
+        windows = recent[-watch.drift.resolve_persist:]
         payload = dict(base)
         payload.update({
             "status": "cleared",

@@ -2,8 +2,9 @@
 
 A window is a plain dict committed in the checkpoint's ``extra["drift"]`` (rows,
 log-density sums, unusual rows, inputs, model versions, time range, and per segment id
-the additive sums ``T``, ``Q``, ``M``, ``S`` and, with missing features, ``miss``,
-``miss2``, ``imputed``). During an input the sums of its pieces stay arrays (one row
+the additive sums ``T``, ``Q``, ``B``, ``M``, ``S`` and, with missing features, ``miss``,
+``miss2``, ``imputed``; ``B`` is what ``M`` and ``S`` divide by, and a record written
+before it was kept has ``B = T``). During an input the sums of its pieces stay arrays (one row
 per segment of the model) and are added into the record when it is saved; a closing
 window's sums are laid out as arrays in the baseline's order of segment ids for
 :func:`shoal.core.window_statistics.segment_statistics`.
@@ -12,11 +13,18 @@ from __future__ import annotations
 
 import numpy as np
 
-from shoal.core.window_statistics import WindowSums
+from shoal.core.window_statistics import (
+    NEGLIGIBLE,
+    WindowSums,
+    add_segment_scatter,
+    add_segment_variances,
+    piece_sums,
+)
 from shoal.daemon.files.times import iso_utc
-from shoal.daemon.segments.missing_drift import GAP_KEYS, merge_gap_sums
+from shoal.daemon.segments.missing_drift import GAP_KEYS, add_gap_sums, gap_piece, merge_gap_sums
 
-__all__ = ["empty_window", "add_lists", "add_piece_sums", "merge_window_sums",
+__all__ = ["empty_window", "empty_piece_sums", "add_lists", "add_row_sums", "add_unusual", "add_piece_sums",
+           "merge_window_sums",
            "aligned_sums", "baseline_missing_shares", "widen", "time_range", "time_kind",
            "span", "files_of"]
 
@@ -28,9 +36,57 @@ def empty_window(index: int) -> dict:
             "files": [], "versions": [None, None], "time": [None, None]}
 
 
+def empty_piece_sums(win: dict, ids: list, n_features: int) -> dict:
+    """An accumulator of a window's pieces' sums, arrays by segment position of ``ids``."""
+    K, D = len(ids), n_features
+    return {"window": win, "ids": ids, "T": np.zeros(K), "Q": np.zeros(K), "B": np.zeros(K),
+            "M": np.zeros((K, D)), "S": np.zeros((K, D, D))}
+
+
 def add_lists(old, new):
     """``old + new`` as JSON lists (``old`` None: ``new``)."""
     return (np.asarray(old) + new).tolist() if old is not None else np.asarray(new).tolist()
+
+
+def add_row_sums(sums: dict, mixture, X: np.ndarray, Xc: np.ndarray, scores) -> None:
+    """Add a piece's per-segment sums, from its rows ``X`` (centred ``Xc``; NaN where a
+    value is missing, filled in place), to an accumulator of arrays by segment
+    position: for rows with missing features and spherical models (the others take
+    the M-step's own moments, :mod:`shoal.core.piece_moments`)."""
+    resp_kn = np.ascontiguousarray(scores.resp.T)   # (K, n): the core's own layout
+    gaps = gap_piece(mixture, X, Xc, resp_kn)
+    T, Q, M = piece_sums(resp_kn, Xc)
+    sums["T"] += T
+    sums["B"] += T     # unweighted rows: one per unit of responsibility
+    sums["Q"] += Q
+    sums["M"] += M
+    weights = resp_kn if gaps is None else gaps.resp
+    if mixture.covariance == "full":
+        add_segment_scatter(sums["S"], Xc, weights, NEGLIGIBLE)
+    else:   # diag and spherical compare variances only
+        add_segment_variances(sums["S"], Xc, weights)
+    if gaps is not None:
+        add_gap_sums(sums, gaps)
+
+
+def add_unusual(unusual: dict, mixture, X: np.ndarray, Xc, scores, below: float) -> None:
+    """Count a piece's unusual rows (log-density under ``below``) into a window's
+    ``unusual`` record: how many, the sum of their centred rows (``Xc`` if at hand,
+    filled), and how many per segment id."""
+    mask = scores.log_density < below
+    count = int(np.count_nonzero(mask))
+    if not count:
+        return
+    unusual["n"] += count
+    total = (Xc[mask].sum(axis=0) if Xc is not None
+             else X[mask].sum(axis=0) - count * mixture.center)
+    unusual["sum"] = add_lists(unusual["sum"], total)
+    ids = mixture.ids.tolist()
+    counts = np.bincount(scores.component[mask], minlength=len(ids))
+    by_segment = unusual["by_segment"]
+    for k in np.flatnonzero(counts).tolist():
+        key = str(ids[k])
+        by_segment[key] = by_segment.get(key, 0) + int(counts[k])
 
 
 def add_piece_sums(segments: dict, sums: dict) -> None:
@@ -39,7 +95,9 @@ def add_piece_sums(segments: dict, sums: dict) -> None:
     for k, sid in enumerate(sums["ids"]):
         if sums["T"][k] <= 0.0:
             continue
-        acc = segments.setdefault(str(sid), {"T": 0.0, "Q": 0.0, "M": None, "S": None})
+        acc = segments.setdefault(str(sid), {"T": 0.0, "Q": 0.0, "B": 0.0, "M": None,
+                                             "S": None})
+        acc["B"] = acc.get("B", acc["T"]) + float(sums["B"][k])
         acc["T"] += float(sums["T"][k])
         acc["Q"] += float(sums["Q"][k])
         acc["M"] = add_lists(acc["M"], sums["M"][k])
@@ -54,7 +112,9 @@ def merge_window_sums(into: dict | None, win: dict) -> dict:
     into["n"] += win["n"]
     into["ld"] += win["ld"]
     for sid, acc in win["segments"].items():
-        old = into["segments"].setdefault(sid, {"T": 0.0, "Q": 0.0, "M": None, "S": None})
+        old = into["segments"].setdefault(sid, {"T": 0.0, "Q": 0.0, "B": 0.0, "M": None,
+                                                "S": None})
+        old["B"] = old.get("B", old["T"]) + acc.get("B", acc["T"])
         old["T"] += acc["T"]
         old["Q"] += acc["Q"]
         old["M"] = add_lists(old["M"], acc["M"])
@@ -71,7 +131,7 @@ def aligned_sums(segments: dict, pending: dict | None, ids, n_features: int) -> 
     sums, added as :func:`add_piece_sums` would add them."""
     K, d = len(ids), n_features
     at = {int(sid): k for k, sid in enumerate(ids)}
-    T, Q = np.zeros(K), np.zeros(K)
+    T, Q, B = np.zeros(K), np.zeros(K), np.zeros(K)
     M, S = np.zeros((K, d)), np.zeros((K, d, d))
     gaps: dict[str, np.ndarray] = {}
 
@@ -84,7 +144,7 @@ def aligned_sums(segments: dict, pending: dict | None, ids, n_features: int) -> 
         k = at.get(int(sid))
         if k is None:
             continue
-        T[k], Q[k] = acc["T"], acc["Q"]
+        T[k], Q[k], B[k] = acc["T"], acc["Q"], acc.get("B", acc["T"])
         M[k], S[k] = acc["M"], acc["S"]
         for key in GAP_KEYS:
             if acc.get(key) is not None:
@@ -96,13 +156,14 @@ def aligned_sums(segments: dict, pending: dict | None, ids, n_features: int) -> 
             rows, cols = (np.array(v, dtype=np.intp) for v in zip(*pairs))
             T[rows] += pending["T"][cols]
             Q[rows] += pending["Q"][cols]
+            B[rows] += pending["B"][cols]
             M[rows] += pending["M"][cols]
             S[rows] += pending["S"][cols]
             for key in GAP_KEYS:
                 if key in pending:
                     gap(key)[rows] += pending[key][cols]
     return WindowSums(T=T, Q=Q, M=M, S=S, miss=gaps.get("miss"), miss2=gaps.get("miss2"),
-                      imputed=gaps.get("imputed"))
+                      imputed=gaps.get("imputed"), B=B)
 
 
 def baseline_missing_shares(shares: dict | None, ids, n_features: int) -> np.ndarray:

@@ -6,17 +6,24 @@
 :func:`shoal.core.drift.evaluate_bounds` takes them: a statistic that was not measured
 has no key (no evidence either way), and a segment that lost most of its rows has its
 shape statistics at 0 (not crossing). The per-segment details an explanation needs
-are built only for the segments an alert is about.
+are built only for the segments an alert is about. :func:`quiet_windows` tells, for
+several windows at once, which have no statistic past its bound (their keying is
+skipped: on a stream without drift, nearly every window).
 """
 from __future__ import annotations
+
+import math
+from typing import Any
 
 import numpy as np
 
 from shoal.core.drift import WHOLE_MODEL
-from shoal.core.window_statistics import WindowSums, fit_statistics, segment_statistics
-from shoal.daemon.segments.window_sums import baseline_missing_shares
+from shoal.core.window_statistics import SegmentStatistics, fit_statistics
 
-__all__ = ["SHAPE_MIN_SHARE", "feature_stat", "window_values"]
+__all__ = ["SEGMENT_STATISTICS", "SHAPE_MIN_SHARE", "feature_stat", "settings_bounds",
+           "window_values", "window_fit", "quiet_windows"]
+
+SEGMENT_STATISTICS = ("mean_shift", "spread_ratio", "weight_change", "missing_share")
 
 SHAPE_MIN_SHARE = 0.25
 """A segment whose share of a window's rows is under this fraction of its baseline
@@ -30,20 +37,87 @@ def feature_stat(name: str) -> str:
     return f"feature_shift[{name}]"
 
 
-def window_values(win: dict, ref, factors, sums: WindowSums, features, *,
-                  feature_shift: bool, missing_share: dict | None,
-                  ref_spread_variance=None):
+def settings_bounds(drift, features, segment_ids) -> dict:
+    """The bound of every statistic (keys ``statistic``) and of every overridden
+    (segment, statistic) pair of ``segment_ids``, from the ``drift`` settings'
+    ``bounds`` and ``overrides`` (spread_ratio on its log scale, as it is evaluated)."""
+    b = drift.bounds
+    out: dict[Any, float] = {}
+
+    def put(key, stat, value):
+        if value is None:
+            return
+        out[key] = math.log(value) if stat == "spread_ratio" else float(value)
+
+    for stat in SEGMENT_STATISTICS + ("fit_drop",):
+        put(stat, stat, getattr(b, stat))
+    for f in features:
+        put(feature_stat(f), "feature_shift", b.feature_shift)
+    for o in drift.overrides:       # feature-wide first, then segment-specific
+        if o.segment is None and o.feature is not None:
+            put(feature_stat(o.feature), "feature_shift", o.feature_shift)
+    for o in drift.overrides:
+        if o.segment is None or o.segment not in segment_ids:
+            continue
+        for stat in SEGMENT_STATISTICS:
+            put((o.segment, stat), stat, getattr(o, stat))
+        feats = [o.feature] if o.feature is not None else features
+        for f in feats:
+            put((o.segment, feature_stat(f)), "feature_shift", o.feature_shift)
+    return out
+
+
+def window_fit(ref, win: dict):
+    """``fit_drop``, its noise and the window's mean log-density (or None)."""
+    return fit_statistics(ref.log_density, win["n"], win["ld"], win["ld2"])
+
+
+def quiet_windows(stats: SegmentStatistics, fits, bounds: dict, ids, features, *,
+                  feature_shift: bool, noise_multiple: float) -> np.ndarray:
+    """Which of ``W`` windows have no statistic that crosses its bound (a value past it
+    and past ``noise_multiple`` times its noise), from their statistics (``W * K``
+    rows, :func:`shoal.core.window_statistics.window_statistics`), their
+    :func:`window_fit` and the bounds (keyed as :meth:`DriftMonitor.bounds`). A
+    quiet window changes no bound state that holds no entry."""
+    K = len(ids)
+    W = len(fits)
+
+    def bound_of(stat):
+        return np.array([np.nan if b is None else b for b in
+                         (bounds.get((sid, stat), bounds.get(stat)) for sid in ids)])
+
+    def crossing(value, level, bound):
+        with np.errstate(invalid="ignore"):
+            return (value > bound) & (value > noise_multiple * level)
+
+    loud = np.zeros((W, K), dtype=bool)
+    for stat, value, level in (("weight_change", stats.weight_change, stats.weight_noise),
+                               ("missing_share", stats.missing_share, stats.missing_noise),
+                               ("mean_shift", stats.mean_shift, stats.mean_shift_noise),
+                               ("spread_ratio", stats.spread, stats.spread_noise)):
+        loud |= crossing(value.reshape(W, K), level.reshape(W, K), bound_of(stat))
+    if feature_shift and stats.feature_shift is not None:
+        d = len(features)
+        fb = np.stack([bound_of(feature_stat(f)) for f in features], axis=1)
+        loud |= crossing(stats.feature_shift.reshape(W, K, d),
+                         stats.feature_noise.reshape(W, K, d), fb).any(axis=2)
+    quiet = ~loud.any(axis=1)
+    fit_bound = bounds.get((WHOLE_MODEL, "fit_drop"), bounds.get("fit_drop"))
+    if fit_bound is not None:
+        for w, fit in enumerate(fits):
+            if fit is not None and fit[0] > fit_bound and fit[0] > noise_multiple * fit[1]:
+                quiet[w] = False
+    return quiet
+
+
+def window_values(win: dict, ref, stats: SegmentStatistics, fit, features, *,
+                  feature_shift: bool):
     """``(values, noise, detail)`` of one closing window.
 
-    ``win`` is the window's record, ``ref`` the baseline and ``factors`` its Gaussians
-    factorised, ``sums`` the window's sums in the baseline's order of segment ids,
-    ``missing_share`` the baseline's missing shares by segment id (and
-    ``ref_spread_variance`` the baseline's part of the spread noise, if kept)."""
+    ``win`` is the window's record, ``ref`` the baseline, ``stats`` the window's
+    statistics (rows in the baseline's order of segment ids) and ``fit`` its
+    :func:`window_fit`."""
     ids = ref.ids.tolist()
-    stats = segment_statistics(
-        ref, factors, win["n"], sums, win["center"], min_share=SHAPE_MIN_SHARE,
-        baseline_missing=baseline_missing_shares(missing_share, ids, len(features)),
-        feature_shift=feature_shift, ref_spread_variance=ref_spread_variance)
     values, noise = {}, {}
     shape = ["mean_shift", "spread_ratio"]
     if feature_shift:
@@ -62,7 +136,6 @@ def window_values(win: dict, ref, factors, sums: WindowSums, features, *,
             _put(values, noise, ids, feature_stat(f), stats.feature_shift[:, j],
                  stats.feature_noise[:, j])
     detail = _Details(ids, ref.weights, stats)
-    fit = fit_statistics(ref.log_density, win["n"], win["ld"], win["ld2"])
     if fit is not None:
         values[(WHOLE_MODEL, "fit_drop")], noise[(WHOLE_MODEL, "fit_drop")], mean_ld = fit
         u = win["unusual"]

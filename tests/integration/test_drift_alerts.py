@@ -238,3 +238,36 @@ def test_rebaseline_accepts_the_present_and_clears_raised_alerts(stream):
     sd = np.sqrt(covs[2][0, 0])
     assert abs(ref["means"][at][0] - shifted[2, 0]) < 0.1 * sd    # the data, not the model
     assert s.alerts()[n_alerts:] == []
+
+
+def test_windows_evaluated_together_decide_as_one_at_a_time(stream, monkeypatch):
+    # Closed windows wait and are evaluated together (at the end of an input); reading
+    # the watch's state after every piece evaluates each window as it closes. Both
+    # must raise and clear the same alerts with the same payloads and leave the same
+    # bound state. A mean shift and its return make both kinds of event.
+    from shoal.daemon.segments.monitor import InputWatch
+    weights, means, covs = _truth()
+    rng = np.random.default_rng(12)
+    X = np.concatenate([_rows(rng, 30_000, weights, means, covs),
+                        _rows(rng, 20_000, weights, means, covs, shift=(2, 0, 2.0)),
+                        _rows(rng, 30_000, weights, means, covs)])
+    runs = []
+    for one_at_a_time in (False, True):
+        if one_at_a_time:
+            observe = InputWatch.observe
+
+            def eager(self, *a, **k):
+                observe(self, *a, **k)
+                self.state   # evaluates the windows closed so far
+            monkeypatch.setattr(InputWatch, "observe", eager)
+        s = stream(drift={"settle_rows": 8000, "window_rows": 2000})
+        s.feed(X, 20_000)
+        runs.append((s.alerts(), s.drift_state()["bounds"]))
+    (together, bounds_t), (single, bounds_s) = runs
+    assert {a["status"] for a in together} == {"raised", "cleared"}
+    assert len(together) == len(single)
+    for a, b in zip(together, single):
+        assert {k: v for k, v in a.items() if k not in ("value", "noise", "peak", "explanation")} \
+            == {k: v for k, v in b.items() if k not in ("value", "noise", "peak", "explanation")}
+        assert a["value"] == pytest.approx(b["value"], rel=1e-9)
+    assert bounds_t == bounds_s

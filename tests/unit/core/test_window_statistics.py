@@ -16,6 +16,8 @@ from shoal.core.window_statistics import (
     fit_statistics,
     piece_sums,
     segment_statistics,
+    stack_sums,
+    window_statistics,
 )
 
 K, D, N = 3, 4, 3000
@@ -75,6 +77,39 @@ def test_segment_statistics_match_weighted_moments_and_scipy_mahalanobis():
         log_ratio = np.linalg.slogdet(cov)[1] - np.linalg.slogdet(ref.covariances[k])[1]
         assert got.spread[k] == pytest.approx(abs(log_ratio) / (2 * D), rel=1e-8)
     assert np.all(got.missing_share == 0.0)
+
+
+def test_windows_stacked_give_each_window_its_own_statistics():
+    # several windows at once (different centres, row counts, one with a weighted mass
+    # B and one where a segment is all but gone) against one call per window
+    ref = _baseline()
+    factors = GaussianSet(ref.means, ref.covariances)
+    windows, centers, n_rows = [], [], []
+    for seed in range(3):
+        X, resp, center, sums = _window(seed)
+        if seed == 1:
+            sums.B = sums.T * 0.97
+        if seed == 2:
+            sums.T[0] *= 1e-3
+        windows.append(sums)
+        centers.append(center + seed)
+        n_rows.append(N + 10 * seed)
+    together = window_statistics(ref, factors, n_rows, stack_sums(windows), np.array(centers),
+                                 min_share=0.25, feature_shift=True)
+    for w, sums in enumerate(windows):
+        one = segment_statistics(ref, factors, n_rows[w], sums, centers[w], min_share=0.25,
+                                 feature_shift=True)
+        part = together.rows(w * K, (w + 1) * K)
+        for name in ("share", "low", "seen", "n_eff", "means", "covs", "mean_shift",
+                     "spread", "spread_noise", "weight_noise", "missing_share",
+                     "feature_shift", "feature_noise"):
+            assert np.allclose(getattr(part, name), getattr(one, name), rtol=1e-12,
+                               equal_nan=True), name
+    assert together.low[2 * K] and not together.low[:2 * K].any()
+    # weighted sums are means over their mass B, not over the counts T
+    part = together.rows(K, 2 * K)
+    assert np.allclose(part.means, centers[1] + windows[1].M / windows[1].B[:, None],
+                       rtol=1e-12)
 
 
 def test_spread_noise_from_a_kept_baseline_variance_is_the_same():
