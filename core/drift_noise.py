@@ -59,8 +59,17 @@ def _trigamma(x):
 
 
 def _full_log_gv_variance(n, n_features):
-    i = np.arange(1, n_features + 1)
-    return np.sum(_trigamma((n[..., None] - i) / 2.0), axis=-1)
+    """``sum_{i=1}^{D} trigamma((n - i) / 2)``, by parity of ``i``: each half is
+    ``sum_{m<L} trigamma(a - m) = L trigamma(a) + sum_{0<j<L} (L - j) / (a - j)^2``
+    (from ``trigamma(x) = trigamma(x + 1) + 1 / x^2``), two special-function calls per
+    estimate instead of D."""
+    n = np.asarray(n, dtype=np.float64)
+    total = np.zeros(n.shape)
+    for a, L in (((n - 1.0) / 2.0, (n_features + 1) // 2), ((n - 2.0) / 2.0, n_features // 2)):
+        if L:
+            j = np.arange(1, L)
+            total = total + L * _trigamma(a) + np.sum((L - j) / (a[..., None] - j) ** 2, axis=-1)
+    return total
 
 
 def _diag_log_gv_variance(n, n_features):

@@ -26,7 +26,7 @@ from .drift_noise import mean_shift_noise, spread_noise, spread_variance, weight
 
 __all__ = ["NEGLIGIBLE", "WindowSums", "SegmentStatistics", "add_segment_scatter",
            "add_segment_variances",
-           "piece_sums", "positive_definite", "projected_covariances",
+           "piece_sums", "projected_covariances",
            "segment_statistics", "stack_sums", "window_statistics", "fit_statistics"]
 
 NEGLIGIBLE = 1e-12
@@ -101,24 +101,22 @@ def piece_sums(resp_kn: np.ndarray, Xc: np.ndarray):
     return (resp_kn.sum(axis=1), np.einsum("kn,kn->k", resp_kn, resp_kn), resp_kn @ Xc)
 
 
-def positive_definite(mats: np.ndarray) -> np.ndarray:
-    """Which of a stack of symmetric matrices are positive definite.
-
-    One batched Cholesky when all are (the usual case), eigenvalues only when one is not.
-
-    Parameters
-    ----------
-    mats : ndarray of shape (n, d, d)
-
-    Returns
-    -------
-    ndarray of bool, shape (n,)
-    """
+def _log_determinants(mats: np.ndarray):
+    """Which of a stack of covariances are positive definite, and their log
+    determinants (symmetrised; ``nan`` where not), from one batched Cholesky when all
+    are (the usual case)."""
+    sym = 0.5 * (mats + np.swapaxes(mats, 1, 2))
     try:
-        np.linalg.cholesky(mats)
-        return np.ones(mats.shape[0], dtype=bool)
+        chol = np.linalg.cholesky(sym)
+        positive = np.ones(len(mats), dtype=bool)
     except np.linalg.LinAlgError:
-        return np.all(np.linalg.eigvalsh(mats) > 0, axis=1)
+        positive = np.all(np.linalg.eigvalsh(sym) > 0, axis=1)
+        chol = np.full_like(sym, np.nan)
+        if positive.any():
+            chol[positive] = np.linalg.cholesky(sym[positive])
+    diag = np.diagonal(chol, axis1=1, axis2=2)
+    with np.errstate(invalid="ignore"):
+        return positive, 2.0 * np.sum(np.log(diag), axis=1)
 
 
 def projected_covariances(covs: np.ndarray, covariance: str) -> np.ndarray:
@@ -388,10 +386,15 @@ def window_statistics(ref, factors, n_rows, sums: WindowSums, centers, *,
     n_eff = np.zeros(n)
     means = np.full((n, d), np.nan)
     covs = np.full((n, d, d), np.nan)
-    dev = sums.M[at] / B[at, None]
-    n_eff[at] = T[at] * T[at] / Q[at]
-    means[at] = center[at] + dev
-    covs[at] = sums.S[at] / B[at, None, None] - dev[:, :, None] * dev[:, None, :]
+    every = at.size == n          # the usual case: slices, no gathers
+    pick = slice(None) if every else at
+    M_at, B_at, T_at = sums.M[pick], B[pick], T[pick]
+    dev = M_at / B_at[:, None]
+    n_eff[pick] = T_at * T_at / Q[pick]
+    means[pick] = center[pick] + dev
+    cov_at = sums.S[pick] / B_at[:, None, None]
+    cov_at -= dev[:, :, None] * dev[:, None, :]
+    covs[pick] = cov_at
     shift = np.full(n, np.nan)
     shift_noise = np.full(n, np.nan)
     spread = np.full(n, np.nan)
@@ -400,13 +403,14 @@ def window_statistics(ref, factors, n_rows, sums: WindowSums, centers, *,
     if at.size:
         member = kk[at]
         ref_n = ref.n_eff[member]
-        shift[at] = factors.mahalanobis(means[at], member)
+        shift[at] = factors.mahalanobis(means[pick], member)
         shift_noise[at] = np.atleast_1d(mean_shift_noise(n_eff[at], d, ref_n))
-        diag = np.diagonal(covs[at], axis1=1, axis2=2)
-        compared = projected_covariances(covs[at], ref.covariance)
-        usable = (n_eff[at] > d + 1) & np.all(diag > 0, axis=1) & positive_definite(compared)
+        diag = np.diagonal(cov_at, axis1=1, axis2=2)
+        compared = projected_covariances(cov_at, ref.covariance)
+        positive, log_det = _log_determinants(compared)
+        usable = (n_eff[at] > d + 1) & np.all(diag > 0, axis=1) & positive
         if usable.any():
-            log_ratio = factors.log_variance_ratio(compared[usable], member[usable])
+            log_ratio = log_det[usable] - factors.log_det[member[usable]]
             if ref_spread_variance is None:
                 noise = np.atleast_1d(spread_noise(n_eff[at][usable], d, ref.covariance,
                                                    ref_n[usable]))

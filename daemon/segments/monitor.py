@@ -386,14 +386,14 @@ class InputWatch:
         if st["bounds"] is None:    # a fresh bound state, as the bounds' first call leaves
             st["bounds"], _ = evaluate_bounds({}, {}, {})
         for i, (win, info, _, recent) in enumerate(waiting):
-            one = stats.rows(i * K, (i + 1) * K)
+            one = functools.partial(stats.rows, i * K, (i + 1) * K)
             for key in [key for key, until in st["cool"].items() if until < win["index"]]:
                 del st["cool"][key]
             if quiet[i] and not st["bounds"]["entries"]:
                 self._last = functools.partial(self._last_values, win, ref, one, fits[i],
                                                dict(st["cool"]), bounds)
                 continue
-            values, noise, detail = self._keyed(win, ref, one, fits[i], st["cool"], bounds)
+            values, noise, detail = self._keyed(win, ref, one(), fits[i], st["cool"], bounds)
             d = self.drift
             st["bounds"], events = evaluate_bounds(
                 values, noise, bounds, st["bounds"], noise_multiple=d.noise_multiple,
@@ -404,7 +404,7 @@ class InputWatch:
                 drift_event_alert(self, e, detail, ref, info, recent)
 
     def _last_values(self, win, ref, stats, fit, cool, bounds):
-        values, noise, _ = self._keyed(win, ref, stats, fit, cool, bounds)
+        values, noise, _ = self._keyed(win, ref, stats(), fit, cool, bounds)
         return values, noise, bounds
 
     def _keyed(self, win, ref, stats, fit, cool, bounds):

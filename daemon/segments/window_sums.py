@@ -128,7 +128,13 @@ def merge_window_sums(into: dict | None, win: dict) -> dict:
 def aligned_sums(segments: dict, pending: dict | None, ids, n_features: int) -> WindowSums:
     """A window's sums as arrays, one row per segment of ``ids`` (zeros for a segment
     without rows): the record's ``segments`` plus a piece accumulator's ``pending``
-    sums, added as :func:`add_piece_sums` would add them."""
+    sums, added as :func:`add_piece_sums` would add them (the arrays of ``pending``
+    themselves when the record has none and their ids are ``ids``)."""
+    if not segments and pending is not None and pending["ids"] == list(ids):
+        # a window within one input, on the model it closed with (the usual case)
+        return WindowSums(T=pending["T"], Q=pending["Q"], M=pending["M"], S=pending["S"],
+                          miss=pending.get("miss"), miss2=pending.get("miss2"),
+                          imputed=pending.get("imputed"), B=pending["B"])
     K, d = len(ids), n_features
     at = {int(sid): k for k, sid in enumerate(ids)}
     T, Q, B = np.zeros(K), np.zeros(K), np.zeros(K)

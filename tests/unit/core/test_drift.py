@@ -7,6 +7,7 @@ import numpy as np
 import pytest
 
 from shoal.core import Mixture, ModelError
+from shoal.core.drift_noise import spread_variance
 from shoal.core.drift import (
     WHOLE_MODEL,
     Baseline,
@@ -124,6 +125,19 @@ def test_spread_noise_is_the_sd_of_the_log_generalised_variance(covariance):
     assert np.std(log_gv) == pytest.approx(spread_noise(n, 4, covariance), rel=0.06)
     # the leading term 2D/n is a fair summary of it
     assert spread_noise(n, 4, covariance) == pytest.approx(np.sqrt(8 / n), rel=0.3)
+
+
+@pytest.mark.parametrize("d", [1, 2, 5, 16])
+def test_full_spread_variance_is_the_wishart_sum_of_trigammas(d):
+    # Var log|S| of a Wishart estimate from n rows is sum_{i=1}^{D} trigamma((n - i) / 2)
+    # (the log-determinant is a sum of independent log chi-squares; Anderson,
+    # An Introduction to Multivariate Statistical Analysis, the Bartlett decomposition,
+    # from memory); scipy's polygamma(1, x) term by term is the reference.
+    from scipy import special
+    n = np.array([d + 0.5, d + 3.0, 57.25, 4096.0, 2.5e6])
+    ref = np.array([sum(special.polygamma(1, (x - i) / 2.0) for i in range(1, d + 1))
+                    for x in n])
+    assert np.allclose(spread_variance(n, d, "full"), ref, rtol=1e-12)
 
 
 def test_weight_noise_is_the_binomial_sd_of_a_share():
