@@ -11,10 +11,12 @@ Formulas (``d`` features, ``dm = m1 - m0``):
 * Bhattacharyya, with ``S = (S0 + S1) / 2``:
   ``D_B = dm' S^-1 dm / 8 + 0.5 log(|S| / sqrt(|S0| |S1|))``; coefficient
   ``BC = exp(-D_B)``; Hellinger ``H = sqrt(1 - BC)`` (so ``0 <= H <= 1``).
-* Mahalanobis distance of a mean under a reference covariance, and Hotelling's
-  ``T^2 = n_eff * dm' S^-1 dm`` with Kish's effective sample size
-  ``n_eff = (sum w)^2 / sum w^2``, whose upper tail :func:`hotelling_t2_pvalue` gives.
-* Log generalised variance ratio ``log |S1| - log |S0|``.
+* Mahalanobis distance of a mean under a reference covariance
+  (:class:`GaussianSet`), and Hotelling's ``T^2 = n_eff * dm' S^-1 dm`` with Kish's
+  effective sample size ``n_eff = (sum w)^2 / sum w^2``, whose upper tail
+  :func:`hotelling_t2_pvalue` gives.
+* Log-determinants ``log |S|`` (:class:`GaussianSet`), for log generalised variance
+  ratios ``log |S1| - log |S0|``.
 """
 
 from __future__ import annotations
@@ -34,9 +36,6 @@ __all__ = [
     "pairwise_bhattacharyya",
     "bhattacharyya_lower_bound",
     "hotelling_t2_pvalue",
-    "kish_effective_sample_size",
-    "log_generalised_variance_ratio",
-    "mahalanobis_distance",
     "pair_indices",
 ]
 
@@ -304,33 +303,12 @@ def hellinger_from_bhattacharyya(distance):
     return np.sqrt(-np.expm1(-np.asarray(distance, dtype=np.float64)))
 
 
-def mahalanobis_distance(mean, ref_mean, ref_cov):
-    """Distance of ``mean`` from ``ref_mean`` in reference standard deviations.
-
-    Parameters
-    ----------
-    mean, ref_mean : array_like of shape (..., n_features)
-    ref_cov : array_like of shape (..., n_features, n_features)
-
-    Returns
-    -------
-    distance : float or ndarray of shape (...)
-        ``sqrt((mean - ref_mean)' ref_cov^-1 (mean - ref_mean))``.
-    """
-    mean, ref_cov, ref_mean, _ = _check_pair(
-        mean, ref_cov, ref_mean, ref_cov, names=("mean", "ref_cov", "ref_mean", "ref_cov")
-    )
-    chol = _cholesky(ref_cov, "ref_cov")
-    return _scalar_or_array(np.sqrt(_squared_mahalanobis_chol(mean - ref_mean, chol)))
-
-
 class GaussianSet:
     """A fixed set of Gaussians, factorised once, to compare many others against.
 
-    ``mahalanobis`` and ``log_variance_ratio`` give what :func:`mahalanobis_distance` and
-    :func:`log_generalised_variance_ratio` give against member ``index``, without
-    re-validating and re-factorising the set on every call (a drift baseline is
-    compared with every window of the stream).
+    ``mahalanobis`` measures means against member ``index`` and ``log_det`` holds each
+    member's log-determinant, without re-validating and re-factorising the set on
+    every call (a drift baseline is compared with every window of the stream).
 
     Parameters
     ----------
@@ -378,83 +356,12 @@ class GaussianSet:
         white = np.einsum("nij,nj->ni", self.inv_chol[index], diff)
         return np.sqrt(np.einsum("ni,ni->n", white, white))
 
-    def log_variance_ratio(self, covs, index) -> np.ndarray:
-        """Log generalised variance ratio of each covariance against a member's.
-
-        Parameters
-        ----------
-        covs : array_like of shape (n, n_features, n_features)
-            Positive definite; symmetrised before it is factorised.
-        index : ndarray of shape (n,), int
-            The member each covariance is compared with.
-
-        Returns
-        -------
-        log_ratio : ndarray of shape (n,)
-            ``log |S| - log |S_i|``.
-        """
-        covs = np.asarray(covs, dtype=np.float64)
-        covs = 0.5 * (covs + np.swapaxes(covs, -1, -2))
-        return _log_det_chol(_cholesky(covs, "cov")) - self.log_det[index]
-
-
-def log_generalised_variance_ratio(cov, ref_cov):
-    """``log |cov| - log |ref_cov|``: how much the spread's volume has changed.
-
-    Parameters
-    ----------
-    cov, ref_cov : array_like of shape (..., n_features, n_features)
-        Symmetric positive definite; leading dimensions broadcast.
-
-    Returns
-    -------
-    log_ratio : float or ndarray of shape (...)
-        Zero for an unchanged spread; ``n_features * log(c)`` when every variance is
-        multiplied by ``c``.
-    """
-    cov = np.asarray(cov, dtype=np.float64)
-    if cov.ndim < 2:
-        raise ModelError(f"cov should have shape (..., n_features, n_features), got {cov.shape}")
-    n_features = cov.shape[-1]
-    cov = _as_covs(cov, "cov", n_features)
-    ref_cov = _as_covs(ref_cov, "ref_cov", n_features)
-    ratio = _log_det_chol(_cholesky(cov, "cov")) - _log_det_chol(_cholesky(ref_cov, "ref_cov"))
-    return _scalar_or_array(ratio)
-
-
-def kish_effective_sample_size(weights, axis=0):
-    """Kish's effective sample size ``(sum w)^2 / sum w^2`` of non-negative weights.
-
-    Parameters
-    ----------
-    weights : array_like of shape (n_samples, ...) when ``axis=0``
-        For a segment, its responsibilities for the rows of a batch.
-    axis : int, default 0
-        The axis that runs over samples.
-
-    Returns
-    -------
-    n_eff : float or ndarray
-        Between 1 and the number of non-zero weights; 0 where all weights are zero.
-    """
-    weights = np.asarray(weights, dtype=np.float64)
-    if weights.ndim == 0:
-        raise ModelError("weights should be an array of per-row weights, got a scalar")
-    if np.any(weights < 0) or not np.all(np.isfinite(weights)):
-        raise ModelError("weights should be finite and non-negative")
-    total = np.sum(weights, axis=axis)
-    square = np.sum(weights * weights, axis=axis)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        n_eff = np.where(square > 0, total * total / np.where(square > 0, square, 1.0), 0.0)
-    return _scalar_or_array(n_eff)
-
-
 def hotelling_t2_pvalue(t2, n_features):
     """Upper-tail p-value of a Hotelling ``T^2`` statistic against a known covariance.
 
     For a weighted batch mean ``sum w x / sum w`` of independent rows with covariance
     ``ref_cov``, the mean's covariance is ``ref_cov / n_eff`` with Kish's ``n_eff``
-    (:func:`kish_effective_sample_size`), so under "no change"
+    (``(sum w)^2 / sum w^2``), so under "no change"
     ``T^2 = n_eff (mean - ref_mean)' ref_cov^-1 (mean - ref_mean)`` follows a
     chi-square distribution with ``n_features`` degrees of freedom. The reference
     covariance counts as known: a baseline is fitted on far more rows than a batch

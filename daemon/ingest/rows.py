@@ -103,6 +103,8 @@ def keep_rows(frames: Iterable[Frame], into: list[tuple]):
 def complete_only(X: np.ndarray, scores):
     """``scores`` with the rows of ``X`` that miss a feature at log-density +inf: their
     marginal densities are over fewer features, not comparable (never unexplained)."""
+    if scores.moments is not None:   # learning gives moments for complete rows only
+        return scores
     gappy = observed_counts(X) < X.shape[1]
     if not gappy.any():
         return scores
@@ -119,13 +121,13 @@ def rows_of(scores, start: int, stop: int):
 
 
 def concat_scores(*parts):
-    """Scores of consecutive rows joined (None parts left out); their responsibilities
-    dropped when segments were born, retired or merged between them."""
+    """Scores of consecutive rows joined (None parts left out), without their
+    responsibilities: nothing after learning reads them, and joined they would be the
+    largest array of an input (``rows * K`` doubles; segments born, retired or merged
+    between the parts would make their columns mean nothing anyway)."""
     parts = [p for p in parts if p is not None]
     if len(parts) == 1:
         return parts[0]
-    first = parts[0]
-    if len({p.resp.shape[1] for p in parts}) > 1:   # segments born, retired or merged:
-        parts = [replace(p, resp=p.resp[:, :0]) for p in parts]   # columns mean nothing
-    return type(first)(**{name: np.concatenate([getattr(p, name) for p in parts])
-                          for name in _ROW_FIELDS})
+    joined = {name: np.concatenate([getattr(p, name) for p in parts])
+              for name in _ROW_FIELDS if name != "resp"}
+    return type(parts[0])(resp=np.empty((len(joined["segment"]), 0)), **joined)
