@@ -29,7 +29,7 @@ from shoal.core import (
 from shoal.core.quantile import linear_quantile
 from shoal.daemon.errors import InputRejected, Interrupted
 from shoal.daemon.files.gaps import Unusual, complete_rows, observed_counts
-from shoal.daemon.ingest.rows import complete_only, concat_scores
+from shoal.daemon.ingest.rows import ScoresInto, complete_only, concat_scores
 from shoal.daemon.model import transforming
 from shoal.daemon.runtime.logs import log_event
 from shoal.daemon.state.store import HistoryRow
@@ -130,7 +130,7 @@ def learn_chunks(settings: Settings, mixture: Mixture, X: np.ndarray,
     boundary (learning does not depend on the cut), showing each piece to ``watch``;
     ``life`` takes its lifecycle decisions at its own fixed points between pieces.
     Returns the mixture after ``X`` and the scores of its rows (None without rows)."""
-    parts = []
+    joined = ScoresInto(len(X))
     step = settings.learning.chunk_rows
     start = 0
     try:
@@ -149,12 +149,12 @@ def learn_chunks(settings: Settings, mixture: Mixture, X: np.ndarray,
                 watch.observe(mixture, piece, scores, start)
             if life is not None:
                 life.observe(before, piece, complete_only(piece, scores))
-            parts.append(scores)
+            joined.put(start, scores)
             start += take
     except (ModelError, np.linalg.LinAlgError) as exc:
         raise InputRejected("model_update_failed", f"the model could not learn from this "
                             f"input: {exc}") from exc
-    return mixture, (concat_scores(*parts) if parts else None)
+    return mixture, joined.scores()
 
 
 def count_rows(extra: dict, segments: list[np.ndarray]) -> dict:

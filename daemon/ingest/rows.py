@@ -20,6 +20,7 @@ from shoal.daemon.files.readers import Frame
 from shoal.daemon.runtime.logs import log_event
 
 __all__ = ["MODEL_RANGE_SDS", "model_range", "mark_beyond_model", "admit_rows", "RowCount",
+           "ScoresInto",
            "valid_rows", "keep_rows", "complete_only", "rows_of", "concat_scores"]
 
 MODEL_RANGE_SDS = 1e6
@@ -131,3 +132,29 @@ def concat_scores(*parts):
     joined = {name: np.concatenate([getattr(p, name) for p in parts])
               for name in _ROW_FIELDS if name != "resp"}
     return type(parts[0])(resp=np.empty((len(joined["segment"]), 0)), **joined)
+
+
+class ScoresInto:
+    """The scores of ``n_rows`` consecutive rows, written piece by piece into arrays
+    made once (joining hundreds of pieces' arrays at the end cost as much again), without
+    responsibilities (as :func:`concat_scores`)."""
+
+    def __init__(self, n_rows: int):
+        self.n_rows = n_rows
+        self.arrays: dict | None = None
+        self.first = None
+
+    def put(self, at: int, scores) -> None:
+        """Rows ``at..`` get ``scores``."""
+        if self.arrays is None:
+            self.first = scores
+            self.arrays = {name: np.empty(self.n_rows, dtype=getattr(scores, name).dtype)
+                           for name in _ROW_FIELDS if name != "resp"}
+        for name, out in self.arrays.items():
+            out[at:at + len(scores.segment)] = getattr(scores, name)
+
+    def scores(self):
+        """The joined scores (None if no piece was put)."""
+        if self.arrays is None:
+            return None
+        return type(self.first)(resp=np.empty((self.n_rows, 0)), **self.arrays)
