@@ -103,9 +103,10 @@ def piece_sums(resp_kn: np.ndarray, Xc: np.ndarray):
 
 def _log_determinants(mats: np.ndarray):
     """Which of a stack of covariances are positive definite, and their log
-    determinants (symmetrised; ``nan`` where not), from one batched Cholesky when all
-    are (the usual case)."""
-    sym = 0.5 * (mats + np.swapaxes(mats, 1, 2))
+    determinants (``nan`` where not), from one batched Cholesky when all are (the
+    usual case). The factorisation reads the lower triangles: the sums' moments are
+    symmetric by construction."""
+    sym = mats
     try:
         chol = np.linalg.cholesky(sym)
         positive = np.ones(len(mats), dtype=bool)
@@ -385,7 +386,6 @@ def window_statistics(ref, factors, n_rows, sums: WindowSums, centers, *,
     n = W * K
     n_eff = np.zeros(n)
     means = np.full((n, d), np.nan)
-    covs = np.full((n, d, d), np.nan)
     every = at.size == n          # the usual case: slices, no gathers
     pick = slice(None) if every else at
     M_at, B_at, T_at = sums.M[pick], B[pick], T[pick]
@@ -394,7 +394,11 @@ def window_statistics(ref, factors, n_rows, sums: WindowSums, centers, *,
     means[pick] = center[pick] + dev
     cov_at = sums.S[pick] / B_at[:, None, None]
     cov_at -= dev[:, :, None] * dev[:, None, :]
-    covs[pick] = cov_at
+    if every:
+        covs = cov_at
+    else:
+        covs = np.full((n, d, d), np.nan)
+        covs[pick] = cov_at
     shift = np.full(n, np.nan)
     shift_noise = np.full(n, np.nan)
     spread = np.full(n, np.nan)
