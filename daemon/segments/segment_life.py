@@ -58,8 +58,7 @@ from shoal.core.lifecycle import (
     split,
     split_test,
     squared_mahalanobis,
-    unexplained,
-    unexplained_below,
+    unexplained_scored,
     widening_explains,
 )
 from shoal.daemon.runtime.logs import log_event
@@ -80,7 +79,18 @@ _SAMPLE_STRIDE = 4
 _SAMPLE_MIN, _SAMPLE_PER_FEATURE, _SAMPLE_MAX = 200, 50, 500
 """Every fourth row of the stream goes to its segment's sample (the newest 50 per
 feature, 200 to 500 rows), on which the split test runs each time twice its size has
-come in since the last test."""
+come in since the last test, or more for a segment that kept passing
+(:data:`_SPLIT_BACK_OFF`)."""
+_SPLIT_BACK_OFF = 2
+"""A segment's split test waits for twice its sample's size of new rows, doubled for
+each test it passed in a row (up to this many doublings: 8 times the size): a split is
+a slow structural change, and a segment tested many times over and found one
+Gaussian is the likeliest to stay one. A new segment, the parts of a split and the
+survivor of a merge start at twice again, so a model that lumps two groups, or a
+segment that just changed, is tested as soon as its sample has renewed."""
+_PENDING_VALUES = 1 << 20
+"""Sampled rows wait to be sorted into their segments' samples until a split test is
+due or the input ends, at most this many values (4 MiB as float32)."""
 _BIRTH_ROWS_PER_FEATURE = 20
 """A group is born only from at least this many rows per feature (besides
 ``birth_rows``): its mean is then known to about ``sqrt(D / n) = 0.22`` of its sds
@@ -119,6 +129,14 @@ class LifeWatch:
         self.cfg = settings.lifecycle
         self.features = list(settings.features)
         self._samples: dict[str, np.ndarray] = {}   # unpacked samples, packed at the end
+        # numbered pieces of sampled rows (float32), their segments and which of them
+        # count (None: all), not yet in the samples; the piece from which each segment has still to
+        # take its rows; the segment ids of the model that saw the last piece
+        self._pending: list[tuple[int, np.ndarray, np.ndarray, np.ndarray]] = []
+        self._pieces = self._pending_values = 0
+        self._taken: dict[int, int] = {}
+        self._live: list[int] | None = None
+        self._known: list[int] | None = None   # the ids the samples were last pruned to
         self.version = version
         self.file = file
         if state is not None and state.get("format") != STATE_FORMAT:
@@ -136,7 +154,7 @@ class LifeWatch:
         self.state = {"format": STATE_FORMAT, "offset": int(stream_offset), "done_at": 0,
                       "low_since": {}, "unsettled": {}, "pool": {"X": [], "rows": []},
                       "recent": {"rows": 0, "mass": {}}, "sample": {}, "fresh": {},
-                      "cool": {}}
+                      "passed": {}, "cool": {}}
         self._load_pool()
 
     def _ensure(self) -> dict:
@@ -153,6 +171,7 @@ class LifeWatch:
     def final_state(self) -> dict:
         st = self._ensure()
         st["pool"] = {"X": self._pool_X.tolist(), "rows": self._pool_rows.tolist()}
+        self._take_all(self._live)
         sample = st.setdefault("sample", {})
         for key, rows in self._samples.items():
             sample[key] = _pack(rows)
@@ -167,51 +186,83 @@ class LifeWatch:
         return min(c - n % c, r - n % r)
 
     def observe(self, before: Mixture, X: np.ndarray, scores) -> None:
-        """Pool the rows of a learned piece that no segment explains; ``before`` is the
-        model that scored them (its ``n_rows`` is the piece's first learned row)."""
+        """Pool the rows of a learned piece that no segment explains and sample the piece;
+        ``before`` is the model that scored them (its ``n_rows`` is the piece's first
+        learned row), ``scores`` its scores with rows that miss a feature at log-density
+        ``+inf`` (``complete_only``): those are neither pooled nor sampled."""
         st = self._ensure()
+        ids = before.ids.tolist()
+        self._live = ids
+        first = (-int(before.n_rows)) % _SAMPLE_STRIDE
+        log_density = scores.log_density
+        counted = log_density[first::_SAMPLE_STRIDE] != np.inf
+        picked = scores.component[first::_SAMPLE_STRIDE]
+        if counted.all():
+            counted = None   # every sampled row counts (the usual case)
+        fresh = np.bincount(picked if counted is None else picked[counted],
+                            minlength=len(ids)).tolist()
+        mass = scores.resp.sum(axis=0).tolist()
         recent = st.setdefault("recent", {"rows": 0, "mass": {}})
         recent["rows"] += len(X)
-        mass = scores.resp.sum(axis=0)
-        for sid, m in zip(before.ids.tolist(), mass.tolist()):
-            recent["mass"][str(sid)] = recent["mass"].get(str(sid), 0.0) + m
-        self._sample(before, X, scores)
-        q = self.cfg.unexplained_quantile
-        near = np.flatnonzero(scores.log_density < unexplained_below(before, q) + 1e-9)
-        if near.size == 0:
-            return
-        far = near[unexplained(before, X[near], q)]
+        by_id, sampled = recent["mass"], st.setdefault("fresh", {})
+        for sid, m, c in zip(ids, mass, fresh):
+            key = str(sid)
+            by_id[key] = by_id.get(key, 0.0) + m
+            if c:
+                sampled[key] = sampled.get(key, 0) + c
+        self._defer_sample(X[first::_SAMPLE_STRIDE], scores.segment[first::_SAMPLE_STRIDE],
+                           counted)
+        far = unexplained_scored(before, scores.resp, log_density,
+                                 self.cfg.unexplained_quantile)
         if far.size == 0:
             return
         keep = self.cfg.pool_rows
         self._pool_X = np.concatenate([self._pool_X, X[far]])[-keep:]
         self._pool_rows = np.concatenate([self._pool_rows, before.n_rows + far])[-keep:]
 
-    def _sample(self, before: Mixture, X: np.ndarray, scores) -> None:
-        """Keep every ``_SAMPLE_STRIDE``-th row of the stream (by position, so the same
-        rows whatever the cut) in its segment's sample, the newest ``_sample_cap``."""
-        st = self.state
-        fresh = st.setdefault("fresh", {})
-        first = (-int(before.n_rows)) % _SAMPLE_STRIDE
-        picked = np.arange(first, len(X), _SAMPLE_STRIDE)
-        rows = X[picked]
-        # rows with missing features (NaN) have no place in a split test's sample
-        complete = ~np.isnan(rows).any(axis=1)
-        picked, rows = picked[complete], rows[complete]
-        if picked.size == 0:
+    def _defer_sample(self, rows: np.ndarray, labels: np.ndarray, counted) -> None:
+        """Every ``_SAMPLE_STRIDE``-th row of the stream (by position, so the same rows
+        whatever the cut), rounded to float32 as the checkpoint keeps samples, waits with
+        its segment to go to that segment's sample (:meth:`_take`), which keeps its
+        newest ``_sample_cap`` rows. Taking them when a test needs them, or at the end
+        of the input, leaves exactly the samples that sorting each piece at once would,
+        for a fraction of the work: a segment's test reads only its newest rows."""
+        if rows.shape[0] == 0:
             return
-        cap = self._sample_cap()
-        labels = scores.segment[picked]
-        # rounded as the checkpoint keeps them, so a restart sees the same rows; grouped
-        # by segment in stream order (a stable sort)
-        rows = rows.astype(np.float32).astype(np.float64)
-        order = np.argsort(labels, kind="stable")
-        sids, starts, counts = np.unique(labels[order], return_index=True, return_counts=True)
-        for sid, a, c in zip(sids.tolist(), starts.tolist(), counts.tolist()):
-            key = str(sid)
-            self._samples[key] = np.concatenate([self._sampled(key),
-                                                 rows[order[a:a + c]]])[-cap:]
-            fresh[key] = fresh.get(key, 0) + c
+        self._pending.append((self._pieces, rows.astype(np.float32), labels, counted))
+        self._pieces += 1
+        self._pending_values += rows.size
+        if self._pending_values > _PENDING_VALUES:
+            self._take_all(self._live)
+
+    def _take(self, sid: int) -> np.ndarray:
+        """Segment ``sid``'s sample with its waiting rows taken in (newest first, until
+        its cap is reached, from the pieces it has not taken from yet)."""
+        key, cap = str(sid), self._sample_cap()
+        since = self._taken.get(sid, -1)
+        found, count = [], 0
+        for piece, rows, labels, counted in reversed(self._pending):
+            if piece < since or count >= cap:
+                break
+            mine = rows[labels == sid if counted is None else (labels == sid) & counted]
+            if mine.shape[0]:
+                found.append(mine)
+                count += mine.shape[0]
+        self._taken[sid] = self._pieces
+        if found:
+            rows = np.concatenate(found[::-1]).astype(np.float64)
+            # rows with missing features (NaN) have no place in a split test's sample
+            rows = rows[~np.isnan(rows).any(axis=1)]
+            self._samples[key] = np.concatenate([self._sampled(key), rows])[-cap:]
+        return self._sampled(key)
+
+    def _take_all(self, live) -> None:
+        """Every waiting row into the samples of the segments in ``live`` (ids); rows of
+        segments that left since are dropped with their samples."""
+        if live is not None:
+            for sid in live:
+                self._take(sid)
+        self._pending, self._pending_values, self._taken = [], 0, {}
 
     def _sampled(self, key: str) -> np.ndarray:
         """The rows of a segment's sample, shape (n, n_features)."""
@@ -232,19 +283,22 @@ class LifeWatch:
         if n == 0 or n % self.cfg.check_rows or st["done_at"] == n:
             return mixture
         st["done_at"] = n
-        old = self._pool_rows >= n - self.cfg.pool_span_rows
-        self._pool_X, self._pool_rows = self._pool_X[old], self._pool_rows[old]
+        since = n - self.cfg.pool_span_rows
+        if self._pool_rows.size and self._pool_rows.min() < since:
+            old = self._pool_rows >= since
+            self._pool_X, self._pool_rows = self._pool_X[old], self._pool_rows[old]
         mixture = self._retire(mixture, n, watch)
         mixture = self._merge(mixture, n, watch)
         mixture = self._birth(mixture, n)
         mixture = self._split(mixture, n, watch)
         self._settle(mixture, n, watch)
+        self._live = mixture.ids.tolist()
         return mixture
 
     def _retire(self, mixture: Mixture, n: int, watch) -> Mixture:
         st = self.state
-        low = {sid: at for sid, at in st["low_since"].items()
-               if int(sid) in set(mixture.ids.tolist())}
+        live = {str(sid) for sid in mixture.ids.tolist()}
+        low = {sid: at for sid, at in st["low_since"].items() if sid in live}
         recent = st.get("recent") or {"rows": 0, "mass": {}}
         st["recent"] = {"rows": 0, "mass": {}}
         share = {}
@@ -290,6 +344,7 @@ class LifeWatch:
             return mixture
         keep, drop, distance = pairs[0]
         cool[str(keep)] = n + self.cfg.cool_down_rows   # no split of the merged segment
+        self.state.setdefault("passed", {}).pop(str(keep), None)
         means, sds = mixture.data_means(), mixture.data_stds()
         ka, kb = (int(np.flatnonzero(mixture.ids == i)[0]) for i in (keep, drop))
         before = {str(sid): {"weight": float(mixture.weights[k]), "mean": means[k].tolist(),
@@ -320,26 +375,40 @@ class LifeWatch:
         Gaussians explain better than one (by BIC), if the two parts would not merge
         back; one split per decision point."""
         st = self.state
-        live = {str(sid) for sid in mixture.ids.tolist()}
-        for name in ("sample", "fresh"):   # segments that left take their samples along
-            st[name] = {key: v for key, v in st.setdefault(name, {}).items() if key in live}
-        self._samples = {key: v for key, v in self._samples.items() if key in live}
+        ids = mixture.ids.tolist()
+        if ids != self._known:   # segments that left take their samples along
+            live = {str(sid) for sid in ids}
+            for name in ("sample", "fresh", "passed"):
+                st[name] = {key: v for key, v in st.setdefault(name, {}).items() if key in live}
+            self._samples = {key: v for key, v in self._samples.items() if key in live}
+            self._known = ids
         cap = self._sample_cap()
         cool = self._cooling(n)
+        fresh, passed = st["fresh"], st["passed"]
+        # a test is due once twice the sample's size came in, doubled for each test
+        # passed in a row (_SPLIT_BACK_OFF)
+        due = [sid for sid in ids
+               if fresh.get(str(sid), 0) >= (2 * cap) << min(passed.get(str(sid), 0),
+                                                              _SPLIT_BACK_OFF)
+               and str(sid) not in cool]
+        if not due or mixture.n_components >= self.cfg.max_segments:
+            return mixture
         bound = self.cfg.merge_distance
-        for sid in mixture.ids.tolist():
+        q = self.cfg.unexplained_quantile
+        for sid in due:
             key = str(sid)
-            rows = self._sampled(key)
-            if len(rows) < cap or st["fresh"].get(key, 0) < 2 * cap or key in cool:
+            rows = self._take(sid)
+            if len(rows) < cap:
                 continue
-            if mixture.n_components >= self.cfg.max_segments:
-                break
-            st["fresh"][key] = 0
+            fresh[key] = 0
+            passed[key] = passed.get(key, 0) + 1
             # the rows the segment still holds (a birth or merge since may have
             # taken some elsewhere) and explains: rows far from every segment are
             # the pool's, for a birth
-            rows = rows[(mixture.score(rows).segment == sid)
-                        & ~unexplained(mixture, rows, self.cfg.unexplained_quantile)]
+            scores = mixture.score(rows)
+            held = np.flatnonzero(scores.segment == sid)
+            far = unexplained_scored(mixture, scores.resp[held], scores.log_density[held], q)
+            rows = rows[np.delete(held, far)]
             if len(rows) < cap // 2:
                 continue
             parts = split_test(rows, covariance=mixture.covariance,
@@ -364,9 +433,12 @@ class LifeWatch:
                 continue
             new = int(mixture.ids[-1])
             cool[f"{sid}|{new}"] = n + self.cfg.cool_down_rows
+            for part in (sid, new):   # rows that waited were the whole segment's
+                self._taken[part] = self._pieces
             for part in (key, str(new)):
                 self._samples[part] = np.empty((0, mixture.n_features))
-                st["fresh"][part] = 0
+                fresh[part] = 0
+                passed.pop(part, None)
                 st["unsettled"][part] = n
             self._drop_baseline(watch, [sid], "split")
             ka = int(np.flatnonzero(mixture.ids == sid)[0])
@@ -386,7 +458,10 @@ class LifeWatch:
 
     def _birth(self, mixture: Mixture, n: int) -> Mixture:
         cfg = self.cfg
-        if len(self._pool_X) < cfg.birth_rows or mixture.n_components >= cfg.max_segments:
+        d = len(self.features)
+        # fewer rows than compact_group needs: no group (and no widths to measure)
+        if len(self._pool_X) < max(cfg.birth_rows, _BIRTH_ROWS_PER_FEATURE * d, d + 2) \
+                or mixture.n_components >= cfg.max_segments:
             return mixture
         covs = mixture.data_covariance_matrices()
         widest = max(float(np.exp(0.5 * np.linalg.slogdet(c)[1] / mixture.n_features))
