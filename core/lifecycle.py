@@ -23,6 +23,7 @@ of segment pairs for merges.
 
 from __future__ import annotations
 
+import math
 from dataclasses import replace
 
 import numpy as np
@@ -270,6 +271,34 @@ def add_component(mixture: Mixture, weight, mean, covariance) -> Mixture:
 # --------------------------------------------------------------------------- tests
 
 
+def _bhattacharyya_limit(measure: str, below: float) -> float:
+    """The Bhattacharyya distance under which a pair may be closer than ``below`` in
+    ``measure``, with a relative margin far above rounding (so no such pair is missed)."""
+    limit = float(below)
+    if measure == "hellinger":
+        limit = -math.log1p(-below * below) if below < 1.0 else math.inf
+    return limit * (1.0 + 1e-6)
+
+
+def _all_apart(mixture: Mixture, measure: str, below: float) -> bool:
+    """Whether :func:`~shoal.core.distances.bhattacharyya_lower_bound` puts every pair at
+    ``below`` or more, in a few whole-matrix steps (the lifecycle asks at every
+    decision point, where segments are usually far apart): ``|d|^2 >= 4 limit (tr S_i +
+    tr S_j)`` for every pair."""
+    if measure not in OVERLAP_MEASURES:
+        raise ModelError(f"measure should be one of {sorted(OVERLAP_MEASURES)}, got {measure!r}")
+    cov, n = mixture.covariances, mixture.n_components
+    if n < 2:
+        return True
+    traces = (np.trace(cov, axis1=1, axis2=2) if cov.ndim == 3 else
+              cov.sum(axis=1) if cov.ndim == 2 else cov * mixture.n_features)
+    apart = mixture.means[:, None, :] - mixture.means[None, :, :]
+    gap = np.einsum("ijd,ijd->ij", apart, apart)
+    gap.flat[::n + 1] = np.inf   # a component and itself
+    reach = (4.0 * _bhattacharyya_limit(measure, below)) * (traces[:, None] + traces[None, :])
+    return not (gap < reach).any()
+
+
 def _candidates(mixture: Mixture, measure: str, below: float | None):
     """The components' covariance matrices (standardised units) and which pairs of
     :func:`~shoal.core.distances.pair_indices` may lie under ``below`` (all: None)."""
@@ -278,11 +307,8 @@ def _candidates(mixture: Mixture, measure: str, below: float | None):
     covs = mixture.family.matrices(mixture.covariances, mixture.n_features)
     if below is None:
         return covs, None
-    limit = float(below)   # the same bound on the Bhattacharyya distance
-    if measure == "hellinger":
-        limit = -np.log1p(-below * below) if below < 1.0 else np.inf
-    # a relative margin far above rounding, so no pair under the bound is skipped
-    return covs, bhattacharyya_lower_bound(mixture.means, covs) < limit * (1.0 + 1e-6)
+    return covs, bhattacharyya_lower_bound(mixture.means, covs) < _bhattacharyya_limit(
+        measure, below)
 
 
 def overlap(mixture: Mixture, measure: str = "hellinger",
@@ -331,6 +357,8 @@ def overlapping_pairs(mixture: Mixture, max_distance: float, measure: str = "hel
     pairs : list of (int, int, float)
         ``(older id, newer id, distance)``, sorted by distance, then by ids.
     """
+    if _all_apart(mixture, measure, max_distance):
+        return []
     covs, close = _candidates(mixture, measure, max_distance)
     if not close.any():
         return []

@@ -107,12 +107,6 @@ def _joint_bounds(mixture: Mixture, threshold: float) -> np.ndarray:
         0.5 * (mixture.n_features * _LOG_2PI + bound) + mixture.log_scale_sum))
 
 
-def _log_sum_exp(terms: np.ndarray) -> float:
-    values = terms.tolist()   # a handful: Python floats are quicker than numpy calls
-    top = max(values)
-    return top + math.log(sum(math.exp(v - top) for v in values))
-
-
 def unexplained_below(mixture: Mixture, threshold: float = 0.999) -> float:
     """A log-density above which no row can be unexplained (a cheap first filter).
 
@@ -131,7 +125,15 @@ def unexplained_below(mixture: Mixture, threshold: float = 0.999) -> float:
     bound : float
         In the data's own units, as ``Scores.log_density``.
     """
-    return _log_sum_exp(_joint_bounds(mixture, threshold))
+    bound = chi2_quantile(_probability(threshold), mixture.n_features)
+    shift = 0.5 * (mixture.n_features * _LOG_2PI + bound) + mixture.log_scale_sum
+    # a handful of components: Python floats are quicker than numpy calls here
+    terms = [math.log(w) + d - shift if w > 0.0 else -math.inf
+             for w, d in zip(mixture.weights.tolist(), mixture.log_det.tolist())]
+    top = max(terms)
+    if top == -math.inf:
+        return top
+    return top + math.log(sum(math.exp(t - top) for t in terms))
 
 
 def unexplained_scored(mixture: Mixture, resp, log_density, threshold: float = 0.999):
@@ -161,12 +163,11 @@ def unexplained_scored(mixture: Mixture, resp, log_density, threshold: float = 0
     rows : ndarray of int
         The positions of the unexplained rows, ascending.
     """
-    terms = _joint_bounds(mixture, threshold)
     log_density = np.asarray(log_density)
     # the 1e-9 margin, far above rounding, keeps every unexplained row in the filter
-    near = np.flatnonzero(log_density < _log_sum_exp(terms) + 1e-9)
+    near = np.flatnonzero(log_density < unexplained_below(mixture, threshold) + 1e-9)
     if near.size == 0:
         return near
     with np.errstate(divide="ignore", invalid="ignore"):
         joint = np.log(resp[near]) + log_density[near, None]
-    return near[(joint < terms).all(axis=1)]
+    return near[(joint < _joint_bounds(mixture, threshold)).all(axis=1)]

@@ -40,6 +40,7 @@ and takes a born segment in once it has settled (``lifecycle.settle_rows`` rows)
 from __future__ import annotations
 
 import base64
+import functools
 import json
 import logging
 
@@ -58,6 +59,7 @@ from shoal.core.lifecycle import (
     split,
     split_test,
     squared_mahalanobis,
+    unexplained_below,
     unexplained_scored,
     widening_explains,
 )
@@ -80,21 +82,41 @@ _SAMPLE_MIN, _SAMPLE_PER_FEATURE, _SAMPLE_MAX = 200, 50, 500
 """Every fourth row of the stream goes to its segment's sample (the newest 50 per
 feature, 200 to 500 rows), on which the split test runs each time twice its size has
 come in since the last test, or more for a segment that kept passing
-(:data:`_SPLIT_BACK_OFF`)."""
-_SPLIT_BACK_OFF = 2
-"""A segment's split test waits for twice its sample's size of new rows, doubled for
-each test it passed in a row (up to this many doublings: 8 times the size): a split is
-a slow structural change, and a segment tested many times over and found one
-Gaussian is the likeliest to stay one. A new segment, the parts of a split and the
-survivor of a merge start at twice again, so a model that lumps two groups, or a
-segment that just changed, is tested as soon as its sample has renewed."""
+(:data:`_SPLIT_WAITS`)."""
+_SPLIT_WAITS = (2, 8, 32)
+"""A segment's split test waits for this many times its sample's size of new rows: twice
+at first, then four times longer after each test it passed, up to 32 times (at D=16,
+64,000 rows of the segment). A split is a slow structural change, and a segment found
+one Gaussian test after test is the likeliest to stay one. A new segment, the parts of
+a split and the survivor of a merge start again at twice, so a model that lumps two
+groups, or a segment that just changed, is tested as soon as its sample has renewed."""
 _PENDING_VALUES = 1 << 20
 """Sampled rows wait to be sorted into their segments' samples until a split test is
 due or the input ends, at most this many values (4 MiB as float32)."""
+_NEAR_PIECES = 32
+"""Rows under the unexplained bound wait for their exact test until a birth could use
+them, they are too old for the pool, or the input ends; the rows of at most this many
+pieces (each piece's responsibilities wait with them)."""
 _BIRTH_ROWS_PER_FEATURE = 20
 """A group is born only from at least this many rows per feature (besides
 ``birth_rows``): its mean is then known to about ``sqrt(D / n) = 0.22`` of its sds
 (Mahalanobis), the rms error of a mean from ``n`` rows."""
+
+
+@functools.lru_cache(maxsize=8)
+def _ones(n: int) -> np.ndarray:
+    """``n`` ones (read-only): a piece's responsibilities summed by one product."""
+    ones = np.ones(n)
+    ones.flags.writeable = False
+    return ones
+
+
+@functools.lru_cache(maxsize=16)
+def _strided(first: int, n: int) -> np.ndarray:
+    """Positions ``first, first + _SAMPLE_STRIDE, ...`` below ``n`` (read-only)."""
+    picked = np.arange(first, n, _SAMPLE_STRIDE)
+    picked.flags.writeable = False
+    return picked
 
 
 def _pack(rows: np.ndarray) -> str:
@@ -145,6 +167,10 @@ class LifeWatch:
         self.events: list[dict] = []
         self.alerts: list[tuple[str, dict]] = []
         self._pool_X = self._pool_rows = None
+        # pieces' rows under the unexplained bound, not yet tested: (model that scored
+        # them, their rows, the piece's responsibilities and log-densities, positions)
+        self._near: list[tuple] = []
+        self._near_count = 0
         if self.state is not None:
             self._load_pool()
 
@@ -167,9 +193,13 @@ class LifeWatch:
         d = len(self.features)
         self._pool_X = np.array(pool["X"], dtype=np.float64).reshape(-1, d)
         self._pool_rows = np.array(pool["rows"], dtype=np.int64)
+        order = np.argsort(self._pool_rows, kind="stable")   # kept in stream order
+        if np.any(order != np.arange(order.size)):
+            self._pool_X, self._pool_rows = self._pool_X[order], self._pool_rows[order]
 
     def final_state(self) -> dict:
         st = self._ensure()
+        self._pool_waiting()
         st["pool"] = {"X": self._pool_X.tolist(), "rows": self._pool_rows.tolist()}
         self._take_all(self._live)
         sample = st.setdefault("sample", {})
@@ -195,13 +225,13 @@ class LifeWatch:
         self._live = ids
         first = (-int(before.n_rows)) % _SAMPLE_STRIDE
         log_density = scores.log_density
-        counted = log_density[first::_SAMPLE_STRIDE] != np.inf
+        counted = log_density[first::_SAMPLE_STRIDE]
         picked = scores.component[first::_SAMPLE_STRIDE]
-        if counted.all():
-            counted = None   # every sampled row counts (the usual case)
+        # rows that miss a feature (+inf) do not count; usually there are none
+        counted = None if not counted.size or counted.max() < np.inf else counted != np.inf
         fresh = np.bincount(picked if counted is None else picked[counted],
                             minlength=len(ids)).tolist()
-        mass = scores.resp.sum(axis=0).tolist()
+        mass = (scores.resp.T @ _ones(len(X))).tolist()
         recent = st.setdefault("recent", {"rows": 0, "mass": {}})
         recent["rows"] += len(X)
         by_id, sampled = recent["mass"], st.setdefault("fresh", {})
@@ -210,26 +240,47 @@ class LifeWatch:
             by_id[key] = by_id.get(key, 0.0) + m
             if c:
                 sampled[key] = sampled.get(key, 0) + c
-        self._defer_sample(X[first::_SAMPLE_STRIDE], scores.segment[first::_SAMPLE_STRIDE],
-                           counted)
-        far = unexplained_scored(before, scores.resp, log_density,
-                                 self.cfg.unexplained_quantile)
-        if far.size == 0:
+        self._defer_sample(X.take(_strided(first, len(X)), axis=0),
+                           scores.segment[first::_SAMPLE_STRIDE], counted)
+        # only rows under the bound can be unexplained; the exact test waits until a
+        # birth could use them (_pool_waiting)
+        near = np.flatnonzero(log_density < unexplained_below(
+            before, self.cfg.unexplained_quantile) + 1e-9)
+        if near.size:
+            self._near.append((before, X[near], scores.resp, log_density, near))
+            self._near_count += near.size
+            if len(self._near) > _NEAR_PIECES:
+                self._pool_waiting()
+
+    def _pool_waiting(self) -> None:
+        """The rows waiting under the bound, tested (with the model that scored each) and
+        the unexplained ones pooled, the newest ``pool_rows`` kept: the pool that testing
+        every piece at once would hold (rows leave it only by age, which
+        :meth:`at_boundary` applies to both, or by a birth, which uses this pool)."""
+        if not self._near:
             return
+        waiting, self._near, self._near_count = self._near, [], 0
+        pool_X, pool_rows = [self._pool_X], [self._pool_rows]
+        for before, X_near, resp, log_density, near in waiting:
+            far = unexplained_scored(before, resp[near], log_density[near],
+                                     self.cfg.unexplained_quantile)
+            if far.size:
+                pool_X.append(X_near[far])
+                pool_rows.append(before.n_rows + near[far])
         keep = self.cfg.pool_rows
-        self._pool_X = np.concatenate([self._pool_X, X[far]])[-keep:]
-        self._pool_rows = np.concatenate([self._pool_rows, before.n_rows + far])[-keep:]
+        self._pool_X = np.concatenate(pool_X)[-keep:]
+        self._pool_rows = np.concatenate(pool_rows)[-keep:]
 
     def _defer_sample(self, rows: np.ndarray, labels: np.ndarray, counted) -> None:
         """Every ``_SAMPLE_STRIDE``-th row of the stream (by position, so the same rows
-        whatever the cut), rounded to float32 as the checkpoint keeps samples, waits with
-        its segment to go to that segment's sample (:meth:`_take`), which keeps its
-        newest ``_sample_cap`` rows. Taking them when a test needs them, or at the end
-        of the input, leaves exactly the samples that sorting each piece at once would,
-        for a fraction of the work: a segment's test reads only its newest rows."""
+        whatever the cut) waits with its segment to go to that segment's sample
+        (:meth:`_take`), which keeps its newest ``_sample_cap`` rows. Taking them when a
+        test needs them, or at the end of the input, leaves exactly the samples that
+        sorting each piece at once would, for a fraction of the work: a segment's test
+        reads only its newest rows."""
         if rows.shape[0] == 0:
             return
-        self._pending.append((self._pieces, rows.astype(np.float32), labels, counted))
+        self._pending.append((self._pieces, rows, labels, counted))
         self._pieces += 1
         self._pending_values += rows.size
         if self._pending_values > _PENDING_VALUES:
@@ -237,7 +288,9 @@ class LifeWatch:
 
     def _take(self, sid: int) -> np.ndarray:
         """Segment ``sid``'s sample with its waiting rows taken in (newest first, until
-        its cap is reached, from the pieces it has not taken from yet)."""
+        its cap is reached, from the pieces it has not taken from yet). The rows that
+        count are those scored at a finite log-density: rows with missing features
+        (``complete_only``) have no place in a split test's sample."""
         key, cap = str(sid), self._sample_cap()
         since = self._taken.get(sid, -1)
         found, count = [], 0
@@ -250,10 +303,10 @@ class LifeWatch:
                 count += mine.shape[0]
         self._taken[sid] = self._pieces
         if found:
-            rows = np.concatenate(found[::-1]).astype(np.float64)
-            # rows with missing features (NaN) have no place in a split test's sample
-            rows = rows[~np.isnan(rows).any(axis=1)]
-            self._samples[key] = np.concatenate([self._sampled(key), rows])[-cap:]
+            found.append(self._sampled(key))
+            # rounded as the checkpoint keeps them (float32), so a restart sees the same
+            rows = np.concatenate(found[::-1])[-cap:].astype(np.float32).astype(np.float64)
+            self._samples[key] = rows
         return self._sampled(key)
 
     def _take_all(self, live) -> None:
@@ -284,9 +337,11 @@ class LifeWatch:
             return mixture
         st["done_at"] = n
         since = n - self.cfg.pool_span_rows
-        if self._pool_rows.size and self._pool_rows.min() < since:
-            old = self._pool_rows >= since
-            self._pool_X, self._pool_rows = self._pool_X[old], self._pool_rows[old]
+        if self._pool_rows.size and self._pool_rows[0] < since:   # rows in stream order
+            cut = int(np.searchsorted(self._pool_rows, since))
+            self._pool_X, self._pool_rows = self._pool_X[cut:], self._pool_rows[cut:]
+        while self._near and self._near[0][0].n_rows + int(self._near[0][4][-1]) < since:
+            self._near_count -= self._near.pop(0)[4].size   # all its rows too old
         mixture = self._retire(mixture, n, watch)
         mixture = self._merge(mixture, n, watch)
         mixture = self._birth(mixture, n)
@@ -297,10 +352,14 @@ class LifeWatch:
 
     def _retire(self, mixture: Mixture, n: int, watch) -> Mixture:
         st = self.state
-        live = {str(sid) for sid in mixture.ids.tolist()}
-        low = {sid: at for sid, at in st["low_since"].items() if sid in live}
         recent = st.get("recent") or {"rows": 0, "mass": {}}
         st["recent"] = {"rows": 0, "mass": {}}
+        rows, floor = recent["rows"], self.cfg.retire_weight
+        if not st["low_since"] and rows > 0 and all(
+                recent["mass"].get(str(sid), 0.0) / rows >= floor for sid in mixture.ids.tolist()):
+            return mixture   # no segment under the floor, now or before: nothing to follow
+        live = {str(sid) for sid in mixture.ids.tolist()}
+        low = {sid: at for sid, at in st["low_since"].items() if sid in live}
         share = {}
         if recent["rows"] > 0:
             start = n - recent["rows"]
@@ -385,11 +444,10 @@ class LifeWatch:
         cap = self._sample_cap()
         cool = self._cooling(n)
         fresh, passed = st["fresh"], st["passed"]
-        # a test is due once twice the sample's size came in, doubled for each test
-        # passed in a row (_SPLIT_BACK_OFF)
+        # a test is due once the sample's size times the wait (_SPLIT_WAITS) came in
+        last = len(_SPLIT_WAITS) - 1
         due = [sid for sid in ids
-               if fresh.get(str(sid), 0) >= (2 * cap) << min(passed.get(str(sid), 0),
-                                                              _SPLIT_BACK_OFF)
+               if fresh.get(str(sid), 0) >= cap * _SPLIT_WAITS[min(passed.get(str(sid), 0), last)]
                and str(sid) not in cool]
         if not due or mixture.n_components >= self.cfg.max_segments:
             return mixture
@@ -408,7 +466,9 @@ class LifeWatch:
             scores = mixture.score(rows)
             held = np.flatnonzero(scores.segment == sid)
             far = unexplained_scored(mixture, scores.resp[held], scores.log_density[held], q)
-            rows = rows[np.delete(held, far)]
+            if far.size:
+                held = np.delete(held, far)
+            rows = rows[held]
             if len(rows) < cap // 2:
                 continue
             parts = split_test(rows, covariance=mixture.covariance,
@@ -459,9 +519,18 @@ class LifeWatch:
     def _birth(self, mixture: Mixture, n: int) -> Mixture:
         cfg = self.cfg
         d = len(self.features)
-        # fewer rows than compact_group needs: no group (and no widths to measure)
-        if len(self._pool_X) < max(cfg.birth_rows, _BIRTH_ROWS_PER_FEATURE * d, d + 2) \
+        # fewer rows than compact_group needs, even if every waiting row were
+        # unexplained: no group (and no widths to measure)
+        need = max(cfg.birth_rows, _BIRTH_ROWS_PER_FEATURE * d, d + 2)
+        if len(self._pool_X) + self._near_count < need \
                 or mixture.n_components >= cfg.max_segments:
+            return mixture
+        self._pool_waiting()
+        since = n - cfg.pool_span_rows   # rows the waiting pieces held that are too old
+        if self._pool_rows.size and self._pool_rows[0] < since:
+            cut = int(np.searchsorted(self._pool_rows, since))
+            self._pool_X, self._pool_rows = self._pool_X[cut:], self._pool_rows[cut:]
+        if len(self._pool_X) < need:
             return mixture
         covs = mixture.data_covariance_matrices()
         widest = max(float(np.exp(0.5 * np.linalg.slogdet(c)[1] / mixture.n_features))
