@@ -52,6 +52,7 @@ __all__ = [
     "merge",
     "overlap",
     "overlapping_pairs",
+    "pairs_apart",
     "recent_share",
     "retire",
     "segment_index",
@@ -280,22 +281,40 @@ def _bhattacharyya_limit(measure: str, below: float) -> float:
     return limit * (1.0 + 1e-6)
 
 
-def _all_apart(mixture: Mixture, measure: str, below: float) -> bool:
-    """Whether :func:`~shoal.core.distances.bhattacharyya_lower_bound` puts every pair at
-    ``below`` or more, in a few whole-matrix steps (the lifecycle asks at every
-    decision point, where segments are usually far apart): ``|d|^2 >= 4 limit (tr S_i +
-    tr S_j)`` for every pair."""
+def pairs_apart(mixture: Mixture, distance: float, measure: str = "hellinger",
+                margin: float = 1.0) -> bool:
+    """Whether no pair of segments can be closer than ``distance``, from means and traces.
+
+    The lower bound of :func:`~shoal.core.distances.bhattacharyya_lower_bound`,
+    ``|d|^2 / (4 (tr S_i + tr S_j))``, checked for every pair at once in a few
+    whole-matrix steps (the lifecycle asks at every decision point, where segments
+    are usually far apart). True means every pair's Bhattacharyya distance is at least
+    ``margin`` times the one that ``distance`` corresponds to in ``measure``; False
+    means some pair may be closer (its exact distance decides).
+
+    Parameters
+    ----------
+    mixture : Mixture
+    distance : float
+    measure : {"hellinger", "bhattacharyya"}, default "hellinger"
+    margin : float, default 1.0
+
+    Returns
+    -------
+    bool
+    """
     if measure not in OVERLAP_MEASURES:
         raise ModelError(f"measure should be one of {sorted(OVERLAP_MEASURES)}, got {measure!r}")
     cov, n = mixture.covariances, mixture.n_components
     if n < 2:
         return True
-    traces = (np.trace(cov, axis1=1, axis2=2) if cov.ndim == 3 else
+    traces = (cov.trace(axis1=1, axis2=2) if cov.ndim == 3 else
               cov.sum(axis=1) if cov.ndim == 2 else cov * mixture.n_features)
     apart = mixture.means[:, None, :] - mixture.means[None, :, :]
     gap = np.einsum("ijd,ijd->ij", apart, apart)
     gap.flat[::n + 1] = np.inf   # a component and itself
-    reach = (4.0 * _bhattacharyya_limit(measure, below)) * (traces[:, None] + traces[None, :])
+    reach = (4.0 * margin * _bhattacharyya_limit(measure, distance)) * (
+        traces[:, None] + traces[None, :])
     return not (gap < reach).any()
 
 
@@ -357,7 +376,7 @@ def overlapping_pairs(mixture: Mixture, max_distance: float, measure: str = "hel
     pairs : list of (int, int, float)
         ``(older id, newer id, distance)``, sorted by distance, then by ids.
     """
-    if _all_apart(mixture, measure, max_distance):
+    if pairs_apart(mixture, max_distance, measure):
         return []
     covs, close = _candidates(mixture, measure, max_distance)
     if not close.any():

@@ -61,23 +61,24 @@ def hard_split_gain(X, rng=None) -> float:
     # that leave at least `least` rows on either side are the columns lo .. hi - 1
     y = np.sort((centred @ vectors[:, -min(2, d):]).T, axis=1)
     c1, c2 = np.cumsum(y, axis=1), np.cumsum(y * y, axis=1)
-    s1, s2 = c1[:, -1:], c2[:, -1:]
+    s2 = c2[:, -1:]
     lo, hi = least - 1, n - least
     c1, c2 = c1[:, lo:hi], c2[:, lo:hi]
     left, right, const = _cuts(n, least)
-    # each part's sum of squared deviations; with a part's variance v = ss / l, twice the
-    # classification log-likelihood of a cut is const - (l log ss_l + r log ss_r)
-    ss_l = c2 - c1 * c1 / left
-    r1 = s1 - c1
-    ss_r = (s2 - c2) - r1 * r1 / right
+    # each part's sum of squared deviations (the projections sum to zero, so the right
+    # part's sum is -c1); with a part's variance v = ss / l, twice the classification
+    # log-likelihood of a cut is const - (l log ss_l + r log ss_r)
+    square = c1 * c1
+    ss_l = c2 - square / left
+    ss_r = (s2 - c2) - square / right
     with np.errstate(divide="ignore", invalid="ignore"):
         twice = const - (left * np.log(ss_l) + right * np.log(ss_r))
-        best = twice.max(axis=1)
-        if not np.isfinite(best).all():   # a part of equal values: no variance, no cut
+        best = twice.max(axis=1).tolist()
+        if not all(map(math.isfinite, best)):   # a part of equal values: no cut there
             twice[~((ss_l > 0) & (ss_r > 0))] = -np.inf
-            best = twice.max(axis=1)
+            best = twice.max(axis=1).tolist()
     # one Gaussian along the axis: its variance is the axis's eigenvalue (over n)
-    total = values[-min(2, d):] / n
-    gains = [0.5 * (b + n * math.log(t)) for b, t in zip(best.tolist(), total.tolist())
+    total = (values[-min(2, d):] / n).tolist()
+    gains = [0.5 * (b + n * math.log(t)) for b, t in zip(best, total)
              if t > 0 and b > -math.inf]
     return (max(gains) if gains else -math.inf) - 1.5 * math.log(n)

@@ -54,6 +54,7 @@ from shoal.core.lifecycle import (
     compact_group,
     merge,
     overlapping_pairs,
+    pairs_apart,
     recent_share,
     retire,
     split,
@@ -90,9 +91,16 @@ at first, then four times longer after each test it passed, up to 32 times (at D
 one Gaussian test after test is the likeliest to stay one. A new segment, the parts of
 a split and the survivor of a merge start again at twice, so a model that lumps two
 groups, or a segment that just changed, is tested as soon as its sample has renewed."""
-_PENDING_VALUES = 1 << 20
-"""Sampled rows wait to be sorted into their segments' samples until a split test is
-due or the input ends, at most this many values (4 MiB as float32)."""
+_PENDING_VALUES = 1 << 21
+"""Sampled rows wait to go to their segments' samples until a split test is due or the
+input ends, at most this many values (16 MiB)."""
+_APART_MARGIN, _APART_POINTS = 4.0, 4
+"""When the means-and-traces lower bound puts every pair of segments at 4 times the
+merge distance or more (Bhattacharyya), pairs are looked at again only at the 4th
+decision point from there (16,384 rows at the default ``check_rows``) rather than at
+each: the model's segments move gradually, to drop the bound fourfold two means must
+come halfway together (or spreads grow four times), and a look costs a few
+whole-matrix steps. After any lifecycle event pairs are looked at the next point."""
 _NEAR_PIECES = 32
 """Rows under the unexplained bound wait for their exact test until a birth could use
 them, they are too old for the pool, or the input ends; the rows of at most this many
@@ -158,6 +166,7 @@ class LifeWatch:
         self._pieces = self._pending_values = 0
         self._taken: dict[int, int] = {}
         self._live: list[int] | None = None
+        self._keyed: tuple[list[int] | None, list[str]] = (None, [])
         self._known: list[int] | None = None   # the ids the samples were last pruned to
         self.version = version
         self.file = file
@@ -235,13 +244,15 @@ class LifeWatch:
         recent = st.setdefault("recent", {"rows": 0, "mass": {}})
         recent["rows"] += len(X)
         by_id, sampled = recent["mass"], st.setdefault("fresh", {})
-        for sid, m, c in zip(ids, mass, fresh):
-            key = str(sid)
+        counts = {}
+        for sid, key, m, c in zip(ids, self._keys(ids), mass, fresh):
             by_id[key] = by_id.get(key, 0.0) + m
             if c:
                 sampled[key] = sampled.get(key, 0) + c
-        self._defer_sample(X.take(_strided(first, len(X)), axis=0),
-                           scores.segment[first::_SAMPLE_STRIDE], counted)
+                counts[sid] = c
+        if counts:
+            self._defer_sample(X.take(_strided(first, len(X)), axis=0),
+                               scores.segment[first::_SAMPLE_STRIDE], counted, counts)
         # only rows under the bound can be unexplained; the exact test waits until a
         # birth could use them (_pool_waiting)
         near = np.flatnonzero(log_density < unexplained_below(
@@ -271,16 +282,20 @@ class LifeWatch:
         self._pool_X = np.concatenate(pool_X)[-keep:]
         self._pool_rows = np.concatenate(pool_rows)[-keep:]
 
-    def _defer_sample(self, rows: np.ndarray, labels: np.ndarray, counted) -> None:
+    def _keys(self, ids: list[int]) -> list[str]:
+        """The state's keys (``str``) of segment ids, kept while the ids stay the same."""
+        if ids != self._keyed[0]:
+            self._keyed = (ids, [str(sid) for sid in ids])
+        return self._keyed[1]
+
+    def _defer_sample(self, rows: np.ndarray, labels: np.ndarray, counted, counts) -> None:
         """Every ``_SAMPLE_STRIDE``-th row of the stream (by position, so the same rows
         whatever the cut) waits with its segment to go to that segment's sample
         (:meth:`_take`), which keeps its newest ``_sample_cap`` rows. Taking them when a
         test needs them, or at the end of the input, leaves exactly the samples that
         sorting each piece at once would, for a fraction of the work: a segment's test
-        reads only its newest rows."""
-        if rows.shape[0] == 0:
-            return
-        self._pending.append((self._pieces, rows, labels, counted))
+        reads only its newest rows. ``counts`` holds how many rows count per segment."""
+        self._pending.append((self._pieces, rows, labels, counted, counts))
         self._pieces += 1
         self._pending_values += rows.size
         if self._pending_values > _PENDING_VALUES:
@@ -294,13 +309,13 @@ class LifeWatch:
         key, cap = str(sid), self._sample_cap()
         since = self._taken.get(sid, -1)
         found, count = [], 0
-        for piece, rows, labels, counted in reversed(self._pending):
+        for piece, rows, labels, counted, counts in reversed(self._pending):
             if piece < since or count >= cap:
                 break
-            mine = rows[labels == sid if counted is None else (labels == sid) & counted]
-            if mine.shape[0]:
-                found.append(mine)
-                count += mine.shape[0]
+            if sid in counts:
+                found.append(rows[labels == sid if counted is None
+                                  else (labels == sid) & counted])
+                count += counts[sid]
         self._taken[sid] = self._pieces
         if found:
             found.append(self._sampled(key))
@@ -394,7 +409,12 @@ class LifeWatch:
 
     def _merge(self, mixture: Mixture, n: int, watch) -> Mixture:
         bound = self.cfg.merge_distance
-        if bound is None or mixture.n_components < 2:
+        if bound is None or mixture.n_components < 2 or n < self.state.get("apart_until", 0):
+            return mixture
+        if pairs_apart(mixture, bound, self.cfg.merge_measure, _APART_MARGIN):
+            # far apart: the model moves a little per decision point, so look again
+            # only at the _APART_POINTS-th point from here
+            self.state["apart_until"] = n + _APART_POINTS * self.cfg.check_rows
             return mixture
         cool = self._cooling(n)
         pairs = [p for p in overlapping_pairs(mixture, bound, self.cfg.merge_measure)
@@ -464,10 +484,8 @@ class LifeWatch:
             # taken some elsewhere) and explains: rows far from every segment are
             # the pool's, for a birth
             scores = mixture.score(rows)
-            held = np.flatnonzero(scores.segment == sid)
-            far = unexplained_scored(mixture, scores.resp[held], scores.log_density[held], q)
-            if far.size:
-                held = np.delete(held, far)
+            held = scores.segment == sid
+            held[unexplained_scored(mixture, scores.resp, scores.log_density, q)] = False
             rows = rows[held]
             if len(rows) < cap // 2:
                 continue
@@ -612,6 +630,7 @@ class LifeWatch:
         return describe(self.features, self.transforms, mean, sd)
 
     def _event(self, kind: str, sid: int, n: int, **fields) -> None:
+        self.state.pop("apart_until", None)   # segments changed: look at pairs next time
         lifecycle_event(self, kind, sid, n, **fields)
 
     def history(self, rows: list[HistoryRow]) -> list[HistoryRow]:
