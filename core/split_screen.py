@@ -6,8 +6,21 @@ import functools
 import math
 
 import numpy as np
+from scipy.linalg import lapack
 
 __all__ = ["hard_split_gain"]
+
+
+def _main_axes(scatter, k: int):
+    """The ``k`` largest eigenvalues (ascending) of a symmetric matrix and their
+    eigenvectors (columns): LAPACK's ``dsyevr`` computes those alone (``eigh`` all of
+    them, if it fails)."""
+    d = scatter.shape[0]
+    values, vectors, found, _, info = lapack.dsyevr(scatter, range="I", il=d - k + 1, iu=d)
+    if info == 0 and found == k:
+        return values[:k], vectors[:, :k]
+    values, vectors = np.linalg.eigh(scatter)
+    return values[-k:], vectors[:, -k:]
 
 
 @functools.lru_cache(maxsize=16)
@@ -56,10 +69,10 @@ def hard_split_gain(X, rng=None) -> float:
     if n < 12 or n < 2 * least:
         return -np.inf
     centred = X - np.ones(n) @ X / n
-    values, vectors = np.linalg.eigh(centred.T @ centred)
+    values, vectors = _main_axes(centred.T @ centred, min(2, d))
     # both axes at once: row a of y holds the sorted projections on axis a; the cuts
     # that leave at least `least` rows on either side are the columns lo .. hi - 1
-    y = np.sort((centred @ vectors[:, -min(2, d):]).T, axis=1)
+    y = np.sort((centred @ vectors).T, axis=1)
     c1, c2 = np.cumsum(y, axis=1), np.cumsum(y * y, axis=1)
     s2 = c2[:, -1:]
     lo, hi = least - 1, n - least
@@ -78,7 +91,7 @@ def hard_split_gain(X, rng=None) -> float:
             twice[~((ss_l > 0) & (ss_r > 0))] = -np.inf
             best = twice.max(axis=1).tolist()
     # one Gaussian along the axis: its variance is the axis's eigenvalue (over n)
-    total = (values[-min(2, d):] / n).tolist()
+    total = (values / n).tolist()
     gains = [0.5 * (b + n * math.log(t)) for b, t in zip(best, total)
              if t > 0 and b > -math.inf]
     return (max(gains) if gains else -math.inf) - 1.5 * math.log(n)

@@ -102,9 +102,8 @@ def _joint_bounds(mixture: Mixture, threshold: float) -> np.ndarray:
     """Per component, ``log w_k + log N(x | k)`` of a row at squared Mahalanobis distance
     ``b`` (the chi-square quantile) from it, in the data's units: a row is beyond ``b``
     from component ``k`` exactly when its ``log w_k + log N(x | k)`` is below this."""
-    bound = chi2_quantile(_probability(threshold), mixture.n_features)
-    return np.log(mixture.weights) + (mixture.log_det - (
-        0.5 * (mixture.n_features * _LOG_2PI + bound) + mixture.log_scale_sum))
+    shift = _half_bound(_probability(threshold), mixture.n_features) + mixture.log_scale_sum
+    return np.log(mixture.weights) + (mixture.log_det - shift)
 
 
 def unexplained_below(mixture: Mixture, threshold: float = 0.999) -> float:
@@ -125,15 +124,20 @@ def unexplained_below(mixture: Mixture, threshold: float = 0.999) -> float:
     bound : float
         In the data's own units, as ``Scores.log_density``.
     """
-    bound = chi2_quantile(_probability(threshold), mixture.n_features)
-    shift = 0.5 * (mixture.n_features * _LOG_2PI + bound) + mixture.log_scale_sum
-    # a handful of components: Python floats are quicker than numpy calls here
-    terms = [math.log(w) + d - shift if w > 0.0 else -math.inf
-             for w, d in zip(mixture.weights.tolist(), mixture.log_det.tolist())]
-    top = max(terms)
-    if top == -math.inf:
-        return top
-    return top + math.log(sum(math.exp(t - top) for t in terms))
+    n_features = mixture.n_features
+    shift = _half_bound(_probability(threshold), n_features) + mixture.log_scale_sum
+    # log sum_k w_k exp(log det U_k) in Python floats (a handful of components: quicker
+    # than numpy calls), about the largest log det so that nothing overflows
+    log_det = mixture.log_det.tolist()
+    top = max(log_det)
+    total = sum([w * math.exp(d - top) for w, d in zip(mixture.weights.tolist(), log_det)])
+    return top + math.log(total) - shift if total > 0.0 else -math.inf
+
+
+@functools.lru_cache(maxsize=64)
+def _half_bound(threshold: float, n_features: int) -> float:
+    """``(D log 2 pi + b) / 2``, ``b`` the chi-square quantile at ``threshold``."""
+    return 0.5 * (n_features * _LOG_2PI + chi2_quantile(threshold, n_features))
 
 
 def unexplained_scored(mixture: Mixture, resp, log_density, threshold: float = 0.999):

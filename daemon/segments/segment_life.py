@@ -158,11 +158,14 @@ class LifeWatch:
         self.settings = settings
         self.cfg = settings.lifecycle
         self.features = list(settings.features)
+        self._cap = int(min(max(_SAMPLE_MIN, _SAMPLE_PER_FEATURE * len(self.features)),
+                            _SAMPLE_MAX))
+        self._waits = [self._cap * wait for wait in _SPLIT_WAITS]   # fresh rows a test needs
         self._samples: dict[str, np.ndarray] = {}   # unpacked samples, packed at the end
-        # numbered pieces of sampled rows (float32), their segments and which of them
-        # count (None: all), not yet in the samples; the piece from which each segment has still to
+        # numbered pieces of sampled rows, their segments, log-densities and rows per
+        # segment, not yet in the samples; the piece from which each segment has still to
         # take its rows; the segment ids of the model that saw the last piece
-        self._pending: list[tuple[int, np.ndarray, np.ndarray, np.ndarray]] = []
+        self._pending: list[tuple] = []
         self._pieces = self._pending_values = 0
         self._taken: dict[int, int] = {}
         self._live: list[int] | None = None
@@ -234,13 +237,11 @@ class LifeWatch:
         self._live = ids
         first = (-int(before.n_rows)) % _SAMPLE_STRIDE
         log_density = scores.log_density
-        counted = log_density[first::_SAMPLE_STRIDE]
         picked = scores.component[first::_SAMPLE_STRIDE]
-        # rows that miss a feature (+inf) do not count; usually there are none
-        counted = None if not counted.size or counted.max() < np.inf else counted != np.inf
-        fresh = np.bincount(picked if counted is None else picked[counted],
-                            minlength=len(ids)).tolist()
-        mass = (scores.resp.T @ _ones(len(X))).tolist()
+        # sampled rows, those that miss a feature too (they wait with the others, but
+        # do not go into a sample: _take)
+        fresh = np.bincount(picked, minlength=len(ids)).tolist()
+        mass = scores.resp.T.sum(axis=1).tolist()
         recent = st.setdefault("recent", {"rows": 0, "mass": {}})
         recent["rows"] += len(X)
         by_id, sampled = recent["mass"], st.setdefault("fresh", {})
@@ -250,9 +251,14 @@ class LifeWatch:
             if c:
                 sampled[key] = sampled.get(key, 0) + c
                 counts[sid] = c
-        if counts:
-            self._defer_sample(X.take(_strided(first, len(X)), axis=0),
-                               scores.segment[first::_SAMPLE_STRIDE], counted, counts)
+        if counts:   # the sampled rows wait for their segments' samples (_take)
+            self._pending.append((self._pieces, X.take(_strided(first, len(X)), axis=0),
+                                  scores.segment[first::_SAMPLE_STRIDE],
+                                  log_density[first::_SAMPLE_STRIDE], counts))
+            self._pieces += 1
+            self._pending_values += len(picked) * X.shape[1]
+            if self._pending_values > _PENDING_VALUES:
+                self._take_all(self._live)
         # only rows under the bound can be unexplained; the exact test waits until a
         # birth could use them (_pool_waiting)
         near = np.flatnonzero(log_density < unexplained_below(
@@ -288,34 +294,27 @@ class LifeWatch:
             self._keyed = (ids, [str(sid) for sid in ids])
         return self._keyed[1]
 
-    def _defer_sample(self, rows: np.ndarray, labels: np.ndarray, counted, counts) -> None:
-        """Every ``_SAMPLE_STRIDE``-th row of the stream (by position, so the same rows
-        whatever the cut) waits with its segment to go to that segment's sample
-        (:meth:`_take`), which keeps its newest ``_sample_cap`` rows. Taking them when a
-        test needs them, or at the end of the input, leaves exactly the samples that
-        sorting each piece at once would, for a fraction of the work: a segment's test
-        reads only its newest rows. ``counts`` holds how many rows count per segment."""
-        self._pending.append((self._pieces, rows, labels, counted, counts))
-        self._pieces += 1
-        self._pending_values += rows.size
-        if self._pending_values > _PENDING_VALUES:
-            self._take_all(self._live)
-
     def _take(self, sid: int) -> np.ndarray:
         """Segment ``sid``'s sample with its waiting rows taken in (newest first, until
-        its cap is reached, from the pieces it has not taken from yet). The rows that
-        count are those scored at a finite log-density: rows with missing features
-        (``complete_only``) have no place in a split test's sample."""
+        its cap is reached, from the pieces it has not taken from yet).
+
+        Every ``_SAMPLE_STRIDE``-th row of the stream (by position, so the same rows
+        whatever the cut) goes to its segment's sample, which keeps the newest
+        ``_sample_cap`` rows. The rows of each piece wait, with their segments and
+        per-segment counts, until a segment's split test needs its sample or the input
+        ends: taking them then leaves exactly the samples that sorting each piece at
+        once would, for a fraction of the work (a test reads only its segment's newest
+        rows). Rows scored at log-density ``+inf``, those with missing features
+        (``complete_only``), have no place in a split test's sample."""
         key, cap = str(sid), self._sample_cap()
         since = self._taken.get(sid, -1)
         found, count = [], 0
-        for piece, rows, labels, counted, counts in reversed(self._pending):
+        for piece, rows, labels, log_density, counts in reversed(self._pending):
             if piece < since or count >= cap:
                 break
             if sid in counts:
-                found.append(rows[labels == sid if counted is None
-                                  else (labels == sid) & counted])
-                count += counts[sid]
+                found.append(rows[(labels == sid) & (log_density != np.inf)])
+                count += found[-1].shape[0]
         self._taken[sid] = self._pieces
         if found:
             found.append(self._sampled(key))
@@ -340,7 +339,7 @@ class LifeWatch:
         return self._samples[key]
 
     def _sample_cap(self) -> int:
-        return int(min(max(_SAMPLE_MIN, _SAMPLE_PER_FEATURE * len(self.features)), _SAMPLE_MAX))
+        return self._cap
 
     # -- decision points -------------------------------------------------------------
     def at_boundary(self, mixture: Mixture, watch=None) -> Mixture:
@@ -371,7 +370,8 @@ class LifeWatch:
         st["recent"] = {"rows": 0, "mass": {}}
         rows, floor = recent["rows"], self.cfg.retire_weight
         if not st["low_since"] and rows > 0 and all(
-                recent["mass"].get(str(sid), 0.0) / rows >= floor for sid in mixture.ids.tolist()):
+                recent["mass"].get(key, 0.0) / rows >= floor
+                for key in self._keys(mixture.ids.tolist())):
             return mixture   # no segment under the floor, now or before: nothing to follow
         live = {str(sid) for sid in mixture.ids.tolist()}
         low = {sid: at for sid, at in st["low_since"].items() if sid in live}
@@ -446,8 +446,10 @@ class LifeWatch:
     def _cooling(self, n: int) -> dict:
         """Pairs ("a|b", no merge) and segments ("a", no split) still cooling down."""
         st = self.state
-        st["cool"] = {k: until for k, until in st.get("cool", {}).items() if until > n}
-        return st["cool"]
+        cool = st.setdefault("cool", {})
+        if cool:
+            st["cool"] = cool = {k: until for k, until in cool.items() if until > n}
+        return cool
 
     def _split(self, mixture: Mixture, n: int, watch) -> Mixture:
         """Split the first segment whose renewed sample (the rows it still holds) two
@@ -465,10 +467,10 @@ class LifeWatch:
         cool = self._cooling(n)
         fresh, passed = st["fresh"], st["passed"]
         # a test is due once the sample's size times the wait (_SPLIT_WAITS) came in
-        last = len(_SPLIT_WAITS) - 1
-        due = [sid for sid in ids
-               if fresh.get(str(sid), 0) >= cap * _SPLIT_WAITS[min(passed.get(str(sid), 0), last)]
-               and str(sid) not in cool]
+        waits, last = self._waits, len(self._waits) - 1
+        due = [sid for sid, key in zip(ids, self._keys(ids))
+               if fresh.get(key, 0) >= waits[min(passed.get(key, 0), last)]
+               and key not in cool]
         if not due or mixture.n_components >= self.cfg.max_segments:
             return mixture
         bound = self.cfg.merge_distance
@@ -610,6 +612,8 @@ class LifeWatch:
     def _settle(self, mixture: Mixture, n: int, watch) -> None:
         """Born segments that have settled join the drift baseline."""
         unsettled = self.state["unsettled"]
+        if not unsettled:
+            return
         ready = sorted(int(sid) for sid, at in unsettled.items()
                        if n - at >= self.cfg.settle_rows)
         if not ready:
