@@ -39,8 +39,6 @@ and takes a born segment in once it has settled (``lifecycle.settle_rows`` rows)
 """
 from __future__ import annotations
 
-import base64
-import functools
 import json
 import logging
 
@@ -60,11 +58,11 @@ from shoal.core.lifecycle import (
     split,
     split_test,
     squared_mahalanobis,
-    unexplained_below,
     unexplained_scored,
     widening_explains,
 )
 from shoal.daemon.runtime.logs import log_event
+from shoal.daemon.segments.life_rows import SAMPLE_STRIDE, Samples, UnexplainedPool
 from shoal.daemon.segments.life_events import (
     describe,
     history_with_events,
@@ -78,22 +76,14 @@ __all__ = ["LifeWatch", "lifecycle_alert_id", "STATE_FORMAT"]
 
 STATE_FORMAT = 1
 _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT = 1e-3, 0.5
-_SAMPLE_STRIDE = 4
-_SAMPLE_MIN, _SAMPLE_PER_FEATURE, _SAMPLE_MAX = 200, 50, 500
-"""Every fourth row of the stream goes to its segment's sample (the newest 50 per
-feature, 200 to 500 rows), on which the split test runs each time twice its size has
-come in since the last test, or more for a segment that kept passing
-(:data:`_SPLIT_WAITS`)."""
 _SPLIT_WAITS = (2, 8, 32)
-"""A segment's split test waits for this many times its sample's size of new rows: twice
-at first, then four times longer after each test it passed, up to 32 times (at D=16,
-64,000 rows of the segment). A split is a slow structural change, and a segment found
-one Gaussian test after test is the likeliest to stay one. A new segment, the parts of
-a split and the survivor of a merge start again at twice, so a model that lumps two
-groups, or a segment that just changed, is tested as soon as its sample has renewed."""
-_PENDING_VALUES = 1 << 21
-"""Sampled rows wait to go to their segments' samples until a split test is due or the
-input ends, at most this many values (16 MiB)."""
+"""A segment's split test waits for this many times its sample's size of new sampled
+rows: twice at first, then four times longer after each test it passed, up to 32 times
+(at D=16, 64,000 rows of the segment). A split is a slow structural change, and a
+segment found one Gaussian test after test is the likeliest to stay one. A new segment,
+the parts of a split and the survivor of a merge start again at twice, so a model that
+lumps two groups, or a segment that just changed, is tested as soon as its sample has
+renewed."""
 _APART_MARGIN, _APART_POINTS = 4.0, 4
 """When the means-and-traces lower bound puts every pair of segments at 4 times the
 merge distance or more (Bhattacharyya), pairs are looked at again only at the 4th
@@ -101,45 +91,10 @@ decision point from there (16,384 rows at the default ``check_rows``) rather tha
 each: the model's segments move gradually, to drop the bound fourfold two means must
 come halfway together (or spreads grow four times), and a look costs a few
 whole-matrix steps. After any lifecycle event pairs are looked at the next point."""
-_NEAR_PIECES = 32
-"""Rows under the unexplained bound wait for their exact test until a birth could use
-them, they are too old for the pool, or the input ends; the rows of at most this many
-pieces (each piece's responsibilities wait with them)."""
 _BIRTH_ROWS_PER_FEATURE = 20
 """A group is born only from at least this many rows per feature (besides
 ``birth_rows``): its mean is then known to about ``sqrt(D / n) = 0.22`` of its sds
 (Mahalanobis), the rms error of a mean from ``n`` rows."""
-
-
-@functools.lru_cache(maxsize=8)
-def _ones(n: int) -> np.ndarray:
-    """``n`` ones (read-only): a piece's responsibilities summed by one product."""
-    ones = np.ones(n)
-    ones.flags.writeable = False
-    return ones
-
-
-@functools.lru_cache(maxsize=16)
-def _strided(first: int, n: int) -> np.ndarray:
-    """Positions ``first, first + _SAMPLE_STRIDE, ...`` below ``n`` (read-only)."""
-    picked = np.arange(first, n, _SAMPLE_STRIDE)
-    picked.flags.writeable = False
-    return picked
-
-
-def _pack(rows: np.ndarray) -> str:
-    """Rows as base64 of their float32 bytes: the checkpoint's JSON carries a sample of
-    hundreds of rows as one string, which encodes and decodes far faster than lists.
-    Seven digits are plenty for a split test, and every input reads the sample back
-    from this form, so a restart sees exactly what an uninterrupted run does."""
-    return base64.b64encode(np.ascontiguousarray(rows, dtype="<f4").tobytes()).decode("ascii")
-
-
-def _unpack(packed: str | None, n_features: int) -> np.ndarray:
-    if not packed:
-        return np.empty((0, n_features))
-    rows = np.frombuffer(base64.b64decode(packed), dtype="<f4").reshape(-1, n_features)
-    return rows.astype(np.float64)
 
 
 class LifeWatch:
@@ -158,19 +113,6 @@ class LifeWatch:
         self.settings = settings
         self.cfg = settings.lifecycle
         self.features = list(settings.features)
-        self._cap = int(min(max(_SAMPLE_MIN, _SAMPLE_PER_FEATURE * len(self.features)),
-                            _SAMPLE_MAX))
-        self._waits = [self._cap * wait for wait in _SPLIT_WAITS]   # fresh rows a test needs
-        self._samples: dict[str, np.ndarray] = {}   # unpacked samples, packed at the end
-        # numbered pieces of sampled rows, their segments, log-densities and rows per
-        # segment, not yet in the samples; the piece from which each segment has still to
-        # take its rows; the segment ids of the model that saw the last piece
-        self._pending: list[tuple] = []
-        self._pieces = self._pending_values = 0
-        self._taken: dict[int, int] = {}
-        self._live: list[int] | None = None
-        self._keyed: tuple[list[int] | None, list[str]] = (None, [])
-        self._known: list[int] | None = None   # the ids the samples were last pruned to
         self.version = version
         self.file = file
         if state is not None and state.get("format") != STATE_FORMAT:
@@ -178,13 +120,16 @@ class LifeWatch:
         self.state = json.loads(json.dumps(state)) if state is not None else None
         self.events: list[dict] = []
         self.alerts: list[tuple[str, dict]] = []
-        self._pool_X = self._pool_rows = None
-        # pieces' rows under the unexplained bound, not yet tested: (model that scored
-        # them, their rows, the piece's responsibilities and log-densities, positions)
-        self._near: list[tuple] = []
-        self._near_count = 0
+        self._samples: Samples | None = None
+        self._pool: UnexplainedPool | None = None
+        self._waits: list[int] = []   # fresh sampled rows each split test needs
+        # the segment ids of the model that saw the last piece, their keys (str), and
+        # the ids the samples were last pruned to
+        self._live: list[int] | None = None
+        self._keyed: tuple[list[int] | None, list[str]] = (None, [])
+        self._known: list[int] | None = None
         if self.state is not None:
-            self._load_pool()
+            self._load()
 
     # -- state -----------------------------------------------------------------------
     def start(self, stream_offset: int) -> None:
@@ -193,30 +138,24 @@ class LifeWatch:
                       "low_since": {}, "unsettled": {}, "pool": {"X": [], "rows": []},
                       "recent": {"rows": 0, "mass": {}}, "sample": {}, "fresh": {},
                       "passed": {}, "cool": {}}
-        self._load_pool()
+        self._load()
 
     def _ensure(self) -> dict:
         if self.state is None:   # a model made before lifecycle watching: count from here
             self.start(self.settings.warmup_rows)
         return self.state
 
-    def _load_pool(self) -> None:
-        pool = self.state["pool"]
+    def _load(self) -> None:
         d = len(self.features)
-        self._pool_X = np.array(pool["X"], dtype=np.float64).reshape(-1, d)
-        self._pool_rows = np.array(pool["rows"], dtype=np.int64)
-        order = np.argsort(self._pool_rows, kind="stable")   # kept in stream order
-        if np.any(order != np.arange(order.size)):
-            self._pool_X, self._pool_rows = self._pool_X[order], self._pool_rows[order]
+        self._samples = Samples(self.state, d)
+        self._waits = [self._samples.cap * wait for wait in _SPLIT_WAITS]
+        self._pool = UnexplainedPool(self.state["pool"], d, self.cfg.unexplained_quantile,
+                                     self.cfg.pool_rows)
 
     def final_state(self) -> dict:
         st = self._ensure()
-        self._pool_waiting()
-        st["pool"] = {"X": self._pool_X.tolist(), "rows": self._pool_rows.tolist()}
-        self._take_all(self._live)
-        sample = st.setdefault("sample", {})
-        for key, rows in self._samples.items():
-            sample[key] = _pack(rows)
+        st["pool"] = self._pool.to_state()
+        self._samples.pack(self._live)
         return st
 
     # -- pieces ----------------------------------------------------------------------
@@ -228,18 +167,18 @@ class LifeWatch:
         return min(c - n % c, r - n % r)
 
     def observe(self, before: Mixture, X: np.ndarray, scores) -> None:
-        """Pool the rows of a learned piece that no segment explains and sample the piece;
-        ``before`` is the model that scored them (its ``n_rows`` is the piece's first
-        learned row), ``scores`` its scores with rows that miss a feature at log-density
-        ``+inf`` (``complete_only``): those are neither pooled nor sampled."""
+        """Sample a learned piece and pool its rows that no segment explains (both wait
+        until a decision needs them: :mod:`~shoal.daemon.segments.life_rows`); ``before``
+        is the model that scored them (its ``n_rows`` is the piece's first learned row),
+        ``scores`` its scores with rows that miss a feature at log-density ``+inf``
+        (``complete_only``): those are neither pooled nor sampled."""
         st = self._ensure()
         ids = before.ids.tolist()
         self._live = ids
-        first = (-int(before.n_rows)) % _SAMPLE_STRIDE
-        log_density = scores.log_density
-        picked = scores.component[first::_SAMPLE_STRIDE]
-        # sampled rows, those that miss a feature too (they wait with the others, but
-        # do not go into a sample: _take)
+        first = (-int(before.n_rows)) % SAMPLE_STRIDE
+        picked = scores.component[first::SAMPLE_STRIDE]
+        # sampled rows of each segment, those that miss a feature too (they count
+        # towards a split test's wait, but do not go into a sample)
         fresh = np.bincount(picked, minlength=len(ids)).tolist()
         mass = scores.resp.T.sum(axis=1).tolist()
         recent = st.setdefault("recent", {"rows": 0, "mass": {}})
@@ -251,95 +190,16 @@ class LifeWatch:
             if c:
                 sampled[key] = sampled.get(key, 0) + c
                 counts[sid] = c
-        if counts:   # the sampled rows wait for their segments' samples (_take)
-            self._pending.append((self._pieces, X.take(_strided(first, len(X)), axis=0),
-                                  scores.segment[first::_SAMPLE_STRIDE],
-                                  log_density[first::_SAMPLE_STRIDE], counts))
-            self._pieces += 1
-            self._pending_values += len(picked) * X.shape[1]
-            if self._pending_values > _PENDING_VALUES:
-                self._take_all(self._live)
-        # only rows under the bound can be unexplained; the exact test waits until a
-        # birth could use them (_pool_waiting)
-        near = np.flatnonzero(log_density < unexplained_below(
-            before, self.cfg.unexplained_quantile) + 1e-9)
-        if near.size:
-            self._near.append((before, X[near], scores.resp, log_density, near))
-            self._near_count += near.size
-            if len(self._near) > _NEAR_PIECES:
-                self._pool_waiting()
-
-    def _pool_waiting(self) -> None:
-        """The rows waiting under the bound, tested (with the model that scored each) and
-        the unexplained ones pooled, the newest ``pool_rows`` kept: the pool that testing
-        every piece at once would hold (rows leave it only by age, which
-        :meth:`at_boundary` applies to both, or by a birth, which uses this pool)."""
-        if not self._near:
-            return
-        waiting, self._near, self._near_count = self._near, [], 0
-        pool_X, pool_rows = [self._pool_X], [self._pool_rows]
-        for before, X_near, resp, log_density, near in waiting:
-            far = unexplained_scored(before, resp[near], log_density[near],
-                                     self.cfg.unexplained_quantile)
-            if far.size:
-                pool_X.append(X_near[far])
-                pool_rows.append(before.n_rows + near[far])
-        keep = self.cfg.pool_rows
-        self._pool_X = np.concatenate(pool_X)[-keep:]
-        self._pool_rows = np.concatenate(pool_rows)[-keep:]
+        if counts:
+            self._samples.add(X, first, scores.segment[first::SAMPLE_STRIDE],
+                              scores.log_density[first::SAMPLE_STRIDE], counts, ids)
+        self._pool.add(before, X, scores)
 
     def _keys(self, ids: list[int]) -> list[str]:
         """The state's keys (``str``) of segment ids, kept while the ids stay the same."""
         if ids != self._keyed[0]:
             self._keyed = (ids, [str(sid) for sid in ids])
         return self._keyed[1]
-
-    def _take(self, sid: int) -> np.ndarray:
-        """Segment ``sid``'s sample with its waiting rows taken in (newest first, until
-        its cap is reached, from the pieces it has not taken from yet).
-
-        Every ``_SAMPLE_STRIDE``-th row of the stream (by position, so the same rows
-        whatever the cut) goes to its segment's sample, which keeps the newest
-        ``_sample_cap`` rows. The rows of each piece wait, with their segments and
-        per-segment counts, until a segment's split test needs its sample or the input
-        ends: taking them then leaves exactly the samples that sorting each piece at
-        once would, for a fraction of the work (a test reads only its segment's newest
-        rows). Rows scored at log-density ``+inf``, those with missing features
-        (``complete_only``), have no place in a split test's sample."""
-        key, cap = str(sid), self._sample_cap()
-        since = self._taken.get(sid, -1)
-        found, count = [], 0
-        for piece, rows, labels, log_density, counts in reversed(self._pending):
-            if piece < since or count >= cap:
-                break
-            if sid in counts:
-                found.append(rows[(labels == sid) & (log_density != np.inf)])
-                count += found[-1].shape[0]
-        self._taken[sid] = self._pieces
-        if found:
-            found.append(self._sampled(key))
-            # rounded as the checkpoint keeps them (float32), so a restart sees the same
-            rows = np.concatenate(found[::-1])[-cap:].astype(np.float32).astype(np.float64)
-            self._samples[key] = rows
-        return self._sampled(key)
-
-    def _take_all(self, live) -> None:
-        """Every waiting row into the samples of the segments in ``live`` (ids); rows of
-        segments that left since are dropped with their samples."""
-        if live is not None:
-            for sid in live:
-                self._take(sid)
-        self._pending, self._pending_values, self._taken = [], 0, {}
-
-    def _sampled(self, key: str) -> np.ndarray:
-        """The rows of a segment's sample, shape (n, n_features)."""
-        if key not in self._samples:
-            packed = self.state.get("sample", {}).get(key)
-            self._samples[key] = _unpack(packed, len(self.features))
-        return self._samples[key]
-
-    def _sample_cap(self) -> int:
-        return self._cap
 
     # -- decision points -------------------------------------------------------------
     def at_boundary(self, mixture: Mixture, watch=None) -> Mixture:
@@ -350,12 +210,7 @@ class LifeWatch:
         if n == 0 or n % self.cfg.check_rows or st["done_at"] == n:
             return mixture
         st["done_at"] = n
-        since = n - self.cfg.pool_span_rows
-        if self._pool_rows.size and self._pool_rows[0] < since:   # rows in stream order
-            cut = int(np.searchsorted(self._pool_rows, since))
-            self._pool_X, self._pool_rows = self._pool_X[cut:], self._pool_rows[cut:]
-        while self._near and self._near[0][0].n_rows + int(self._near[0][4][-1]) < since:
-            self._near_count -= self._near.pop(0)[4].size   # all its rows too old
+        self._pool.trim(n - self.cfg.pool_span_rows)
         mixture = self._retire(mixture, n, watch)
         mixture = self._merge(mixture, n, watch)
         mixture = self._birth(mixture, n)
@@ -459,11 +314,11 @@ class LifeWatch:
         ids = mixture.ids.tolist()
         if ids != self._known:   # segments that left take their samples along
             live = {str(sid) for sid in ids}
-            for name in ("sample", "fresh", "passed"):
+            for name in ("fresh", "passed"):
                 st[name] = {key: v for key, v in st.setdefault(name, {}).items() if key in live}
-            self._samples = {key: v for key, v in self._samples.items() if key in live}
+            self._samples.keep_only(live)
             self._known = ids
-        cap = self._sample_cap()
+        cap = self._samples.cap
         cool = self._cooling(n)
         fresh, passed = st["fresh"], st["passed"]
         # a test is due once the sample's size times the wait (_SPLIT_WAITS) came in
@@ -477,7 +332,7 @@ class LifeWatch:
         q = self.cfg.unexplained_quantile
         for sid in due:
             key = str(sid)
-            rows = self._take(sid)
+            rows = self._samples.take(sid)
             if len(rows) < cap:
                 continue
             fresh[key] = 0
@@ -513,10 +368,9 @@ class LifeWatch:
                 continue
             new = int(mixture.ids[-1])
             cool[f"{sid}|{new}"] = n + self.cfg.cool_down_rows
-            for part in (sid, new):   # rows that waited were the whole segment's
-                self._taken[part] = self._pieces
+            for part in (sid, new):
+                self._samples.restart(part)
             for part in (key, str(new)):
-                self._samples[part] = np.empty((0, mixture.n_features))
                 fresh[part] = 0
                 passed.pop(part, None)
                 st["unsettled"][part] = n
@@ -542,20 +396,17 @@ class LifeWatch:
         # fewer rows than compact_group needs, even if every waiting row were
         # unexplained: no group (and no widths to measure)
         need = max(cfg.birth_rows, _BIRTH_ROWS_PER_FEATURE * d, d + 2)
-        if len(self._pool_X) + self._near_count < need \
-                or mixture.n_components >= cfg.max_segments:
+        pool = self._pool
+        if len(pool.X) + pool.waiting_rows < need or mixture.n_components >= cfg.max_segments:
             return mixture
-        self._pool_waiting()
-        since = n - cfg.pool_span_rows   # rows the waiting pieces held that are too old
-        if self._pool_rows.size and self._pool_rows[0] < since:
-            cut = int(np.searchsorted(self._pool_rows, since))
-            self._pool_X, self._pool_rows = self._pool_X[cut:], self._pool_rows[cut:]
-        if len(self._pool_X) < need:
+        pool.settle()
+        pool.trim(n - cfg.pool_span_rows)   # rows of the waiting pieces that are too old
+        if len(pool.X) < need:
             return mixture
         covs = mixture.data_covariance_matrices()
         widest = max(float(np.exp(0.5 * np.linalg.slogdet(c)[1] / mixture.n_features))
                      for c in covs)
-        group = compact_group(self._pool_X,
+        group = compact_group(pool.X,
                               min_rows=max(cfg.birth_rows, _BIRTH_ROWS_PER_FEATURE * len(self.features)),
                               max_sd=cfg.birth_max_spread * widest,
                               threshold=cfg.unexplained_quantile, seed=self.settings.seed,
@@ -564,7 +415,7 @@ class LifeWatch:
             return mixture
         mean, cov, members = group
         count = int(members.sum())
-        widened, gain = widening_explains(mixture, self._pool_X[members], mean, cov,
+        widened, gain = widening_explains(mixture, pool.X[members], mean, cov,
                                           cfg.unexplained_quantile)
         if widened is None:
             widened, gain = self._ring(mixture, mean, count)
@@ -573,7 +424,7 @@ class LifeWatch:
                       detail=f"segment {widened} widened explains the group as well "
                              f"(BIC gain of a new group {gain:.1f}; nan: centred on it)")
             return mixture
-        weight = float(np.clip(recent_share(self._pool_rows[members], n),
+        weight = float(np.clip(recent_share(pool.rows[members], n),
                                _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT))
         try:
             mixture = add_component(mixture, weight, mean, cov)
@@ -582,7 +433,7 @@ class LifeWatch:
                       model_version=self.version, detail=str(exc))
             return mixture
         sid = int(mixture.ids[-1])
-        self._pool_X, self._pool_rows = self._pool_X[~members], self._pool_rows[~members]
+        pool.remove(members)
         self.state["unsettled"][str(sid)] = n
         sd = np.sqrt(np.diag(cov))
         self._event("born", sid, n, weight=weight, mean=mean, spread=sd, rows=count,
@@ -596,9 +447,10 @@ class LifeWatch:
         group is less than half of them: a spread that grew leaves a ring of rows
         around the segment, and a compact arc of it is a group that does not surround
         the segment although the ring does. ``(None, nan)`` otherwise."""
-        nearest = np.argmin(squared_mahalanobis(mixture, self._pool_X), axis=1)
+        pooled = self._pool.X
+        nearest = np.argmin(squared_mahalanobis(mixture, pooled), axis=1)
         k = int(np.argmin(squared_mahalanobis(mixture, np.asarray(mean)[None])[0]))
-        ring = self._pool_X[nearest == k]
+        ring = pooled[nearest == k]
         d = mixture.n_features
         if len(ring) < 2 * count or len(ring) < d + 2:
             return None, float("nan")   # the group is most of them: it stands on its own
