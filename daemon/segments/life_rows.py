@@ -27,7 +27,8 @@ import functools
 import numpy as np
 
 from shoal.core import Mixture
-from shoal.core.lifecycle import unexplained_below, unexplained_scored
+from shoal.core.lifecycle import (squared_mahalanobis, unexplained_below, unexplained_scored,
+                                  widening_explains)
 
 __all__ = ["Samples", "UnexplainedPool", "SAMPLE_STRIDE"]
 
@@ -199,6 +200,24 @@ class UnexplainedPool:
             self.X, self.rows = self.X[cut:], self.rows[cut:]
         while self._waiting and self._waiting[0][0].n_rows + int(self._waiting[0][4][-1]) < since:
             self.waiting_rows -= self._waiting.pop(0)[4].size   # all its rows too old
+
+    def ring_widening(self, mixture: Mixture, mean, count: int, reg_covar: float):
+        """The widening test on every pooled row nearest the group's segment, when the
+        group (``mean``, ``count`` rows) is less than half of them: a spread that grew
+        leaves a ring of rows around the segment, and a compact arc of it is a group
+        that does not surround the segment although the ring does. ``(None, nan)``
+        otherwise (:func:`~shoal.core.lifecycle.widening_explains`)."""
+        nearest = np.argmin(squared_mahalanobis(mixture, self.X), axis=1)
+        k = int(np.argmin(squared_mahalanobis(mixture, np.asarray(mean)[None])[0]))
+        ring = self.X[nearest == k]
+        d = mixture.n_features
+        if len(ring) < 2 * count or len(ring) < d + 2:
+            return None, float("nan")   # the group is most of them: it stands on its own
+        cov = np.cov(ring, rowvar=False) + reg_covar * np.eye(d)
+        try:
+            return widening_explains(mixture, ring, ring.mean(axis=0), cov, self.quantile)
+        except np.linalg.LinAlgError:
+            return None, float("nan")
 
     def remove(self, members: np.ndarray) -> None:
         """Rows that a birth took (``members``: a mask over the settled pool)."""

@@ -28,6 +28,13 @@ split   every fourth row goes to its segment's sample; when two Gaussians explai
         segment's renewed sample better than one, by BIC
         (:func:`shoal.core.lifecycle.split_test`), and the parts would not merge
         back, it splits: the larger part keeps the id (:func:`shoal.core.lifecycle.split`).
+        A segment's test waits for twice its sample's size of new rows, then four
+        times longer after each test it passes, up to 32 times (``_SPLIT_WAITS``).
+
+Pairs that a cheap bound puts far apart are looked at every 4th decision point only
+(``_APART_POINTS``). Between decision points a piece is sampled and its possibly
+unexplained rows kept aside in a few array steps; the exact work waits until a
+decision needs it (:mod:`~shoal.daemon.segments.life_rows`).
 
 A pair that split or merged is not merged or split back for
 ``lifecycle.cool_down_rows`` rows.
@@ -57,7 +64,6 @@ from shoal.core.lifecycle import (
     retire,
     split,
     split_test,
-    squared_mahalanobis,
     unexplained_scored,
     widening_explains,
 )
@@ -77,20 +83,17 @@ __all__ = ["LifeWatch", "lifecycle_alert_id", "STATE_FORMAT"]
 STATE_FORMAT = 1
 _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT = 1e-3, 0.5
 _SPLIT_WAITS = (2, 8, 32)
-"""A segment's split test waits for this many times its sample's size of new sampled
-rows: twice at first, then four times longer after each test it passed, up to 32 times
-(at D=16, 64,000 rows of the segment). A split is a slow structural change, and a
-segment found one Gaussian test after test is the likeliest to stay one. A new segment,
-the parts of a split and the survivor of a merge start again at twice, so a model that
-lumps two groups, or a segment that just changed, is tested as soon as its sample has
-renewed."""
+"""A split test waits for this many times the sample's size of new sampled rows: twice,
+then four times longer after each test passed (at D=16, 32 times is 64,000 rows of the
+segment). A split is a slow structural change, and a segment found one Gaussian test
+after test is the likeliest to stay one; a new segment, the parts of a split and the
+survivor of a merge start again at twice, so a model that lumps two groups, or a
+segment that just changed, is tested as soon as its sample has renewed."""
 _APART_MARGIN, _APART_POINTS = 4.0, 4
-"""When the means-and-traces lower bound puts every pair of segments at 4 times the
-merge distance or more (Bhattacharyya), pairs are looked at again only at the 4th
-decision point from there (16,384 rows at the default ``check_rows``) rather than at
-each: the model's segments move gradually, to drop the bound fourfold two means must
-come halfway together (or spreads grow four times), and a look costs a few
-whole-matrix steps. After any lifecycle event pairs are looked at the next point."""
+"""When the means-and-traces bound puts every pair at 4 times the merge distance or more
+(Bhattacharyya), pairs are looked at again at the 4th decision point only: segments move
+gradually, and for the bound to drop fourfold two means must come halfway together (or
+spreads grow four times). After any lifecycle event they are looked at the next point."""
 _BIRTH_ROWS_PER_FEATURE = 20
 """A group is born only from at least this many rows per feature (besides
 ``birth_rows``): its mean is then known to about ``sqrt(D / n) = 0.22`` of its sds
@@ -418,7 +421,8 @@ class LifeWatch:
         widened, gain = widening_explains(mixture, pool.X[members], mean, cov,
                                           cfg.unexplained_quantile)
         if widened is None:
-            widened, gain = self._ring(mixture, mean, count)
+            widened, gain = pool.ring_widening(mixture, mean, count,
+                                               self.settings.learning.reg_covar)
         if widened is not None:
             log_event("segment_birth_declined", logging.DEBUG, rows=count, segment=widened,
                       detail=f"segment {widened} widened explains the group as well "
@@ -441,25 +445,6 @@ class LifeWatch:
                              f"(about {weight:.1%} of recent rows): "
                              f"{self._describe(mean, sd)}"))
         return mixture
-
-    def _ring(self, mixture: Mixture, mean, count: int):
-        """The widening test on every pooled row nearest the group's segment, when the
-        group is less than half of them: a spread that grew leaves a ring of rows
-        around the segment, and a compact arc of it is a group that does not surround
-        the segment although the ring does. ``(None, nan)`` otherwise."""
-        pooled = self._pool.X
-        nearest = np.argmin(squared_mahalanobis(mixture, pooled), axis=1)
-        k = int(np.argmin(squared_mahalanobis(mixture, np.asarray(mean)[None])[0]))
-        ring = pooled[nearest == k]
-        d = mixture.n_features
-        if len(ring) < 2 * count or len(ring) < d + 2:
-            return None, float("nan")   # the group is most of them: it stands on its own
-        cov = np.cov(ring, rowvar=False) + self.settings.learning.reg_covar * np.eye(d)
-        try:
-            return widening_explains(mixture, ring, ring.mean(axis=0), cov,
-                                     self.cfg.unexplained_quantile)
-        except np.linalg.LinAlgError:
-            return None, float("nan")
 
     def _settle(self, mixture: Mixture, n: int, watch) -> None:
         """Born segments that have settled join the drift baseline."""
