@@ -162,7 +162,7 @@ class UnexplainedPool:
         if np.any(order != np.arange(order.size)):
             self.X, self.rows = self.X[order], self.rows[order]
         # (model that scored them, their rows, the piece's responsibilities and
-        # log-densities, their positions in the piece)
+        # log-densities, their positions in the piece, the stream position of the last)
         self._waiting: list[tuple] = []
         self.waiting_rows = 0
 
@@ -172,7 +172,8 @@ class UnexplainedPool:
         log_density = scores.log_density
         near = np.flatnonzero(log_density < unexplained_below(before, self.quantile) + 1e-9)
         if near.size:
-            self._waiting.append((before, X[near], scores.resp, log_density, near))
+            last = int(before.n_rows) + int(near[-1])   # the stream position of its last row
+            self._waiting.append((before, X[near], scores.resp, log_density, near, last))
             self.waiting_rows += near.size
             if len(self._waiting) > _WAITING_PIECES:
                 self.settle()
@@ -185,7 +186,7 @@ class UnexplainedPool:
             return
         waiting, self._waiting, self.waiting_rows = self._waiting, [], 0
         pool_X, pool_rows = [self.X], [self.rows]
-        for before, X_near, resp, log_density, near in waiting:
+        for before, X_near, resp, log_density, near, _ in waiting:
             far = unexplained_scored(before, resp[near], log_density[near], self.quantile)
             if far.size:
                 pool_X.append(X_near[far])
@@ -198,8 +199,8 @@ class UnexplainedPool:
         if self.rows.size and self.rows[0] < since:
             cut = int(np.searchsorted(self.rows, since))
             self.X, self.rows = self.X[cut:], self.rows[cut:]
-        while self._waiting and self._waiting[0][0].n_rows + int(self._waiting[0][4][-1]) < since:
-            self.waiting_rows -= self._waiting.pop(0)[4].size   # all its rows too old
+        while self._waiting and self._waiting[0][5] < since:   # all its rows too old
+            self.waiting_rows -= self._waiting.pop(0)[4].size
 
     def ring_widening(self, mixture: Mixture, mean, count: int, reg_covar: float):
         """The widening test on every pooled row nearest the group's segment, when the
