@@ -150,10 +150,9 @@ class Mixture:
         """Kish's effective number of rows behind the statistics."""
         return 1.0 / self.sumsq
 
-    @cached_property
+    @property
     def log_scale_sum(self) -> float:
-        """``sum(log scale)``: what turns a standardised log-density into data units
-        (computed once per mixture: the lifecycle asks for it at every piece)."""
+        """``sum(log scale)``: what turns a standardised log-density into data units."""
         return float(np.sum(np.log(self.scale)))
 
     @cached_property

@@ -102,7 +102,7 @@ def _joint_bounds(mixture: Mixture, threshold: float) -> np.ndarray:
     """Per component, ``log w_k + log N(x | k)`` of a row at squared Mahalanobis distance
     ``b`` (the chi-square quantile) from it, in the data's units: a row is beyond ``b``
     from component ``k`` exactly when its ``log w_k + log N(x | k)`` is below this."""
-    shift = _half_bound(_probability(threshold), mixture.n_features) + mixture.log_scale_sum
+    shift = _half_bound(_probability(threshold), mixture.n_features) + _log_scale_sum(mixture)
     return np.log(mixture.weights) + (mixture.log_det - shift)
 
 
@@ -125,13 +125,24 @@ def unexplained_below(mixture: Mixture, threshold: float = 0.999) -> float:
         In the data's own units, as ``Scores.log_density``.
     """
     n_features = mixture.n_features
-    shift = _half_bound(_probability(threshold), n_features) + mixture.log_scale_sum
+    shift = _half_bound(_probability(threshold), n_features) + _log_scale_sum(mixture)
     # log sum_k w_k exp(log det U_k) in Python floats (a handful of components: quicker
     # than numpy calls), about the largest log det so that nothing overflows
     log_det = mixture.log_det.tolist()
     top = max(log_det)
     total = sum([w * math.exp(d - top) for w, d in zip(mixture.weights.tolist(), log_det)])
     return top + math.log(total) - shift if total > 0.0 else -math.inf
+
+
+def _log_scale_sum(mixture: Mixture) -> float:
+    """``mixture.log_scale_sum``, remembered for the few scales in use (the scale is
+    frozen at warm-up, and the lifecycle asks at every piece)."""
+    return _log_sum_of(np.ascontiguousarray(mixture.scale, dtype=np.float64).tobytes())
+
+
+@functools.lru_cache(maxsize=8)
+def _log_sum_of(scale: bytes) -> float:
+    return float(np.sum(np.log(np.frombuffer(scale))))
 
 
 @functools.lru_cache(maxsize=64)
