@@ -74,8 +74,9 @@ class Samples:
         self.n_features = n_features
         self.cap = int(min(max(_SAMPLE_MIN, _SAMPLE_PER_FEATURE * n_features), _SAMPLE_MAX))
         self._rows: dict[str, np.ndarray] = {}   # unpacked samples, packed at the end
-        # numbered pieces: (number, sampled rows, their segments, their log-densities,
-        # rows per segment); the piece from which each segment has still to take rows
+        # numbered pieces: [number, sampled rows, their segments, their log-densities
+        # (None once none is +inf), rows per segment]; the piece from which each
+        # segment has still to take rows
         self._waiting: list[tuple] = []
         self._pieces = self._values = 0
         self._taken: dict[int, int] = {}
@@ -86,7 +87,7 @@ class Samples:
         (segment ids) and ``log_density`` are those of the same rows; ``counts`` their
         number per segment id; ``live`` the model's segment ids."""
         rows = X.take(_strided(first, len(X)), axis=0)
-        self._waiting.append((self._pieces, rows, labels, log_density, counts))
+        self._waiting.append([self._pieces, rows, labels, log_density, counts])
         self._pieces += 1
         self._values += rows.size
         if self._values > _WAITING_VALUES:
@@ -100,13 +101,17 @@ class Samples:
         key = str(sid)
         since = self._taken.get(sid, -1)
         found, count = [], 0
-        for piece, rows, labels, log_density, counts in reversed(self._waiting):
+        for waiting in reversed(self._waiting):
+            piece, rows, labels, log_density, counts = waiting
             if piece < since or count >= self.cap:
                 break
             if sid in counts:
                 mine = labels == sid
-                if log_density.max() == np.inf:
-                    mine &= log_density != np.inf
+                if log_density is not None:
+                    if log_density.max() < np.inf:   # no row misses a feature
+                        waiting[3] = None
+                    else:
+                        mine &= log_density != np.inf
                 found.append(rows[mine])
                 count += found[-1].shape[0]
         self._taken[sid] = self._pieces

@@ -215,10 +215,12 @@ class LifeWatch:
         st["done_at"] = n
         self._pool.trim(n - self.cfg.pool_span_rows)
         mixture = self._retire(mixture, n, watch)
-        mixture = self._merge(mixture, n, watch)
+        if n >= st.get("apart_until", 0):   # pairs far apart wait (_APART_POINTS)
+            mixture = self._merge(mixture, n, watch)
         mixture = self._birth(mixture, n)
         mixture = self._split(mixture, n, watch)
-        self._settle(mixture, n, watch)
+        if st["unsettled"]:
+            self._settle(mixture, n, watch)
         self._live = mixture.ids.tolist()
         return mixture
 
@@ -267,7 +269,7 @@ class LifeWatch:
 
     def _merge(self, mixture: Mixture, n: int, watch) -> Mixture:
         bound = self.cfg.merge_distance
-        if bound is None or mixture.n_components < 2 or n < self.state.get("apart_until", 0):
+        if bound is None or mixture.n_components < 2:
             return mixture
         if pairs_apart(mixture, bound, self.cfg.merge_measure, _APART_MARGIN):
             # far apart: the model moves a little per decision point, so look again
