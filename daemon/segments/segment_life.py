@@ -131,6 +131,7 @@ class LifeWatch:
         self._live: list[int] | None = None
         self._keyed: tuple[list[int] | None, list[str]] = (None, [])
         self._known: list[int] | None = None
+        self._due = True   # some segment may have come to its split test's wait
         if self.state is not None:
             self._load()
 
@@ -187,12 +188,15 @@ class LifeWatch:
         recent = st.setdefault("recent", {"rows": 0, "mass": {}})
         recent["rows"] += len(X)
         by_id, sampled = recent["mass"], st.setdefault("fresh", {})
+        passed, waits, last = st.setdefault("passed", {}), self._waits, len(self._waits) - 1
         counts = {}
         for sid, key, m, c in zip(ids, self._keys(ids), mass, fresh):
             by_id[key] = by_id.get(key, 0.0) + m
             if c:
-                sampled[key] = sampled.get(key, 0) + c
+                sampled[key] = total = sampled.get(key, 0) + c
                 counts[sid] = c
+                if total >= waits[min(passed.get(key, 0), last)]:
+                    self._due = True   # a split test may be due (if not cooling down)
         if counts:
             self._samples.add(X, first, scores.segment[first::SAMPLE_STRIDE],
                               scores.log_density[first::SAMPLE_STRIDE], counts, ids)
@@ -218,7 +222,8 @@ class LifeWatch:
         if n >= st.get("apart_until", 0):   # pairs far apart wait (_APART_POINTS)
             mixture = self._merge(mixture, n, watch)
         mixture = self._birth(mixture, n)
-        mixture = self._split(mixture, n, watch)
+        if self._due or mixture.ids.tolist() != self._known:
+            mixture = self._split(mixture, n, watch)
         if st["unsettled"]:
             self._settle(mixture, n, watch)
         self._live = mixture.ids.tolist()
@@ -329,8 +334,9 @@ class LifeWatch:
         # a test is due once the sample's size times the wait (_SPLIT_WAITS) came in
         waits, last = self._waits, len(self._waits) - 1
         due = [sid for sid, key in zip(ids, self._keys(ids))
-               if fresh.get(key, 0) >= waits[min(passed.get(key, 0), last)]
-               and key not in cool]
+               if fresh.get(key, 0) >= waits[min(passed.get(key, 0), last)]]
+        self._due = bool(due)   # until a piece brings a segment to its wait
+        due = [sid for sid in due if str(sid) not in cool]
         if not due or mixture.n_components >= self.cfg.max_segments:
             return mixture
         bound = self.cfg.merge_distance
