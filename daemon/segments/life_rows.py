@@ -77,7 +77,7 @@ class Samples:
         # numbered pieces: [number, sampled rows, their segments, their log-densities
         # (None once none is +inf), rows per segment]; the piece from which each
         # segment has still to take rows
-        self._waiting: list[tuple] = []
+        self._waiting: list[list] = []
         self._pieces = self._values = 0
         self._taken: dict[int, int] = {}
 
