@@ -124,14 +124,15 @@ def unexplained_below(mixture: Mixture, threshold: float = 0.999) -> float:
     bound : float
         In the data's own units, as ``Scores.log_density``.
     """
-    n_features = mixture.n_features
-    shift = _half_bound(_probability(threshold), n_features) + _log_scale_sum(mixture)
-    # log sum_k w_k exp(log det U_k) in Python floats (a handful of components: quicker
-    # than numpy calls), about the largest log det so that nothing overflows
-    log_det = mixture.log_det.tolist()
-    top = max(log_det)
-    total = sum([w * math.exp(d - top) for w, d in zip(mixture.weights.tolist(), log_det)])
-    return top + math.log(total) - shift if total > 0.0 else -math.inf
+    shift = _half_bound(_probability(threshold), mixture.n_features) + _log_scale_sum(mixture)
+    # log sum_k exp(log w_k + log det U_k) in Python floats (a handful of components:
+    # quicker than numpy calls), about the largest term so that nothing overflows
+    terms = [math.log(w) + d if w > 0.0 else -math.inf
+             for w, d in zip(mixture.weights.tolist(), mixture.log_det.tolist())]
+    top = max(terms)
+    if top == -math.inf:
+        return top
+    return top + math.log(sum([math.exp(t - top) for t in terms])) - shift
 
 
 def _log_scale_sum(mixture: Mixture) -> float:
