@@ -23,6 +23,7 @@ of segment pairs for merges.
 
 from __future__ import annotations
 
+import math
 from dataclasses import replace
 
 import numpy as np
@@ -38,7 +39,8 @@ from .distances import (
 from .errors import ModelError
 from .mixture import Mixture
 from .segment_groups import compact_group, recent_share, split_test, widening_explains
-from .unexplained import chi2_quantile, squared_mahalanobis, unexplained, unexplained_below
+from .unexplained import (chi2_quantile, squared_mahalanobis, unexplained, unexplained_below,
+                          unexplained_scored)
 
 __all__ = [
     "OVERLAP_MEASURES",
@@ -50,6 +52,7 @@ __all__ = [
     "merge",
     "overlap",
     "overlapping_pairs",
+    "pairs_apart",
     "recent_share",
     "retire",
     "segment_index",
@@ -57,6 +60,7 @@ __all__ = [
     "squared_mahalanobis",
     "unexplained",
     "unexplained_below",
+    "unexplained_scored",
 ]
 
 OVERLAP_MEASURES = {
@@ -268,6 +272,64 @@ def add_component(mixture: Mixture, weight, mean, covariance) -> Mixture:
 # --------------------------------------------------------------------------- tests
 
 
+def _bhattacharyya_limit(measure: str, below: float) -> float:
+    """The Bhattacharyya distance under which a pair may be closer than ``below`` in
+    ``measure``, with a relative margin far above rounding (so no such pair is missed)."""
+    limit = float(below)
+    if measure == "hellinger":
+        limit = -math.log1p(-below * below) if below < 1.0 else math.inf
+    return limit * (1.0 + 1e-6)
+
+
+def pairs_apart(mixture: Mixture, distance: float, measure: str = "hellinger",
+                margin: float = 1.0) -> bool:
+    """Whether no pair of segments can be closer than ``distance``, from means and traces.
+
+    The lower bound of :func:`~shoal.core.distances.bhattacharyya_lower_bound`,
+    ``|d|^2 / (4 (tr S_i + tr S_j))``, checked for every pair at once in a few
+    whole-matrix steps (the lifecycle asks at every decision point, where segments
+    are usually far apart). True means every pair's Bhattacharyya distance is at least
+    ``margin`` times the one that ``distance`` corresponds to in ``measure``; False
+    means some pair may be closer (its exact distance decides).
+
+    Parameters
+    ----------
+    mixture : Mixture
+    distance : float
+    measure : {"hellinger", "bhattacharyya"}, default "hellinger"
+    margin : float, default 1.0
+
+    Returns
+    -------
+    bool
+    """
+    if measure not in OVERLAP_MEASURES:
+        raise ModelError(f"measure should be one of {sorted(OVERLAP_MEASURES)}, got {measure!r}")
+    cov, n = mixture.covariances, mixture.n_components
+    if n < 2:
+        return True
+    traces = (cov.trace(axis1=1, axis2=2) if cov.ndim == 3 else
+              cov.sum(axis=1) if cov.ndim == 2 else cov * mixture.n_features)
+    apart = mixture.means[:, None, :] - mixture.means[None, :, :]
+    gap = np.einsum("ijd,ijd->ij", apart, apart)
+    gap.flat[::n + 1] = np.inf   # a component and itself
+    reach = (4.0 * margin * _bhattacharyya_limit(measure, distance)) * (
+        traces[:, None] + traces[None, :])
+    return not (gap < reach).any()
+
+
+def _candidates(mixture: Mixture, measure: str, below: float | None):
+    """The components' covariance matrices (standardised units) and which pairs of
+    :func:`~shoal.core.distances.pair_indices` may lie under ``below`` (all: None)."""
+    if measure not in OVERLAP_MEASURES:
+        raise ModelError(f"measure should be one of {sorted(OVERLAP_MEASURES)}, got {measure!r}")
+    covs = mixture.family.matrices(mixture.covariances, mixture.n_features)
+    if below is None:
+        return covs, None
+    return covs, bhattacharyya_lower_bound(mixture.means, covs) < _bhattacharyya_limit(
+        measure, below)
+
+
 def overlap(mixture: Mixture, measure: str = "hellinger",
             below: float | None = None) -> np.ndarray:
     """Pairwise distances between the mixture's Gaussians.
@@ -289,16 +351,7 @@ def overlap(mixture: Mixture, measure: str = "hellinger",
     distances : ndarray of shape (n_components, n_components)
         Symmetric, zero on the diagonal; rows and columns follow ``mixture.ids``.
     """
-    if measure not in OVERLAP_MEASURES:
-        raise ModelError(f"measure should be one of {sorted(OVERLAP_MEASURES)}, got {measure!r}")
-    covs = mixture.family.matrices(mixture.covariances, mixture.n_features)
-    pairs = None
-    if below is not None:
-        limit = float(below)   # the same bound on the Bhattacharyya distance
-        if measure == "hellinger":
-            limit = -np.log1p(-below * below) if below < 1.0 else np.inf
-        # a relative margin far above rounding, so no pair under the bound is skipped
-        pairs = bhattacharyya_lower_bound(mixture.means, covs) < limit * (1.0 + 1e-6)
+    covs, pairs = _candidates(mixture, measure, below)
     distances = pairwise_bhattacharyya(mixture.means, covs, pairs)
     if measure == "hellinger":
         distances = hellinger_from_bhattacharyya(distances)
@@ -309,7 +362,8 @@ def overlapping_pairs(mixture: Mixture, max_distance: float, measure: str = "hel
     """Pairs of segments closer than ``max_distance``, most overlapping first.
 
     Only the pairs that a lower bound from means and traces does not already put at
-    ``max_distance`` or more are factorised (on separated segments, none).
+    ``max_distance`` or more are factorised (on separated segments, none: then nothing
+    else is computed).
 
     Parameters
     ----------
@@ -322,13 +376,18 @@ def overlapping_pairs(mixture: Mixture, max_distance: float, measure: str = "hel
     pairs : list of (int, int, float)
         ``(older id, newer id, distance)``, sorted by distance, then by ids.
     """
-    distances = overlap(mixture, measure, below=max_distance)
+    if pairs_apart(mixture, max_distance, measure):
+        return []
+    covs, close = _candidates(mixture, measure, max_distance)
+    if not close.any():
+        return []
+    distances = pairwise_bhattacharyya(mixture.means, covs, close)
+    if measure == "hellinger":
+        distances = hellinger_from_bhattacharyya(distances)
     rows, cols = pair_indices(mixture.n_components)
     pairs = []
-    for i, j in zip(rows, cols):
+    for i, j in zip(rows[close], cols[close]):
         if distances[i, j] < max_distance:
             a, b = sorted((int(mixture.ids[i]), int(mixture.ids[j])))
             pairs.append((a, b, float(distances[i, j])))
     return sorted(pairs, key=lambda pair: (pair[2], pair[0], pair[1]))
-
-

@@ -226,7 +226,7 @@ def split_test(X, *, covariance="full", min_share=0.1, min_gain=0.5, seed=0, n_i
     from .warmup import bic, initialise   # warmup imports this module's siblings
 
     X = np.asarray(X, dtype=np.float64)
-    if hard_split_gain(X, np.random.default_rng(seed)) <= 0.0:
+    if hard_split_gain(X) <= 0.0:   # deterministic: no generator to seed
         return None
     try:
         with warnings.catch_warnings():

@@ -8,6 +8,7 @@ segments are born from.
 from __future__ import annotations
 
 import functools
+import math
 
 import numpy as np
 from scipy import special
@@ -15,7 +16,8 @@ from scipy import special
 from .errors import ModelError
 from .mixture import Mixture
 
-__all__ = ["chi2_quantile", "squared_mahalanobis", "unexplained", "unexplained_below"]
+__all__ = ["chi2_quantile", "squared_mahalanobis", "unexplained", "unexplained_below",
+           "unexplained_scored"]
 
 _LOG_2PI = float(np.log(2.0 * np.pi))
 
@@ -41,6 +43,13 @@ def chi2_quantile(probability, dof) -> float:
     float
     """
     return _chi2_quantile(float(probability), int(dof))
+
+
+def _probability(threshold) -> float:
+    threshold = float(threshold)
+    if not 0.0 < threshold < 1.0:
+        raise ModelError(f"threshold should be a probability in (0, 1), got {threshold!r}")
+    return threshold
 
 
 def squared_mahalanobis(mixture: Mixture, X) -> np.ndarray:
@@ -85,11 +94,16 @@ def unexplained(mixture: Mixture, X, threshold: float = 0.999) -> np.ndarray:
     -------
     mask : ndarray of bool, shape (n_samples,)
     """
-    threshold = float(threshold)
-    if not 0.0 < threshold < 1.0:
-        raise ModelError(f"threshold should be a probability in (0, 1), got {threshold!r}")
-    bound = chi2_quantile(threshold, mixture.n_features)
+    bound = chi2_quantile(_probability(threshold), mixture.n_features)
     return np.all(squared_mahalanobis(mixture, X) > bound, axis=1)
+
+
+def _joint_bounds(mixture: Mixture, threshold: float) -> np.ndarray:
+    """Per component, ``log w_k + log N(x | k)`` of a row at squared Mahalanobis distance
+    ``b`` (the chi-square quantile) from it, in the data's units: a row is beyond ``b``
+    from component ``k`` exactly when its ``log w_k + log N(x | k)`` is below this."""
+    shift = _half_bound(_probability(threshold), mixture.n_features) + _log_scale_sum(mixture)
+    return np.log(mixture.weights) + (mixture.log_det - shift)
 
 
 def unexplained_below(mixture: Mixture, threshold: float = 0.999) -> float:
@@ -110,8 +124,66 @@ def unexplained_below(mixture: Mixture, threshold: float = 0.999) -> float:
     bound : float
         In the data's own units, as ``Scores.log_density``.
     """
-    bound = chi2_quantile(threshold, mixture.n_features)
-    terms = (np.log(mixture.weights) - 0.5 * (mixture.n_features * _LOG_2PI + bound)
-             + mixture.log_det)
-    top = float(np.max(terms))
-    return top + float(np.log(np.sum(np.exp(terms - top)))) - float(np.sum(np.log(mixture.scale)))
+    shift = _half_bound(_probability(threshold), mixture.n_features) + _log_scale_sum(mixture)
+    # log sum_k exp(log w_k + log det U_k) in Python floats (a handful of components:
+    # quicker than numpy calls), about the largest term so that nothing overflows
+    terms = [math.log(w) + d if w > 0.0 else -math.inf
+             for w, d in zip(mixture.weights.tolist(), mixture.log_det.tolist())]
+    top = max(terms)
+    if top == -math.inf:
+        return top
+    return top + math.log(sum([math.exp(t - top) for t in terms])) - shift
+
+
+def _log_scale_sum(mixture: Mixture) -> float:
+    """``mixture.log_scale_sum``, remembered for the few scales in use (the scale is
+    frozen at warm-up, and the lifecycle asks at every piece)."""
+    return _log_sum_of(np.ascontiguousarray(mixture.scale, dtype=np.float64).tobytes())
+
+
+@functools.lru_cache(maxsize=8)
+def _log_sum_of(scale: bytes) -> float:
+    return float(np.sum(np.log(np.frombuffer(scale))))
+
+
+@functools.lru_cache(maxsize=64)
+def _half_bound(threshold: float, n_features: int) -> float:
+    """``(D log 2 pi + b) / 2``, ``b`` the chi-square quantile at ``threshold``."""
+    return 0.5 * (n_features * _LOG_2PI + chi2_quantile(threshold, n_features))
+
+
+def unexplained_scored(mixture: Mixture, resp, log_density, threshold: float = 0.999):
+    """Rows no segment explains, from the scores ``mixture`` gave them.
+
+    The test of :func:`unexplained` without scoring the rows again. Only rows under the
+    bound of :func:`unexplained_below` can be unexplained; for them, the
+    responsibilities and the log-density give each component's term,
+    ``log w_k + log N(x | k) = log r_k + log p(x)``, and ``d2_k > b`` exactly when that
+    term is below the one of a row at distance ``b``. A responsibility that underflowed
+    to zero counts as beyond the bound (its component's term is some 745 nats under
+    the row's density). Rows scored at log-density ``+inf`` (a marker for rows left
+    out) are never unexplained.
+
+    Parameters
+    ----------
+    mixture : Mixture
+        The model that scored the rows.
+    resp : ndarray of shape (n_samples, n_components)
+        Their responsibilities under ``mixture``.
+    log_density : ndarray of shape (n_samples,)
+        Their log-densities under ``mixture``, data units (``Scores.log_density``).
+    threshold : float in (0, 1), default 0.999
+
+    Returns
+    -------
+    rows : ndarray of int
+        The positions of the unexplained rows, ascending.
+    """
+    log_density = np.asarray(log_density)
+    # the 1e-9 margin, far above rounding, keeps every unexplained row in the filter
+    near = np.flatnonzero(log_density < unexplained_below(mixture, threshold) + 1e-9)
+    if near.size == 0:
+        return near
+    with np.errstate(divide="ignore", invalid="ignore"):
+        joint = np.log(resp[near]) + log_density[near, None]
+    return near[(joint < _joint_bounds(mixture, threshold)).all(axis=1)]

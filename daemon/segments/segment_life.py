@@ -28,6 +28,13 @@ split   every fourth row goes to its segment's sample; when two Gaussians explai
         segment's renewed sample better than one, by BIC
         (:func:`shoal.core.lifecycle.split_test`), and the parts would not merge
         back, it splits: the larger part keeps the id (:func:`shoal.core.lifecycle.split`).
+        A segment's test waits for twice its sample's size of new rows, then four
+        times longer after each test it passes, up to 32 times (``_SPLIT_WAITS``).
+
+Pairs that a cheap bound puts far apart are looked at every 4th decision point only
+(``_APART_POINTS``). Between decision points a piece is sampled and its possibly
+unexplained rows kept aside in a few array steps; the exact work waits until a
+decision needs it (:mod:`~shoal.daemon.segments.life_rows`).
 
 A pair that split or merged is not merged or split back for
 ``lifecycle.cool_down_rows`` rows.
@@ -39,7 +46,6 @@ and takes a born segment in once it has settled (``lifecycle.settle_rows`` rows)
 """
 from __future__ import annotations
 
-import base64
 import json
 import logging
 
@@ -53,16 +59,16 @@ from shoal.core.lifecycle import (
     compact_group,
     merge,
     overlapping_pairs,
+    pairs_apart,
     recent_share,
     retire,
     split,
     split_test,
-    squared_mahalanobis,
-    unexplained,
-    unexplained_below,
+    unexplained_scored,
     widening_explains,
 )
 from shoal.daemon.runtime.logs import log_event
+from shoal.daemon.segments.life_rows import SAMPLE_STRIDE, Samples, UnexplainedPool
 from shoal.daemon.segments.life_events import (
     describe,
     history_with_events,
@@ -76,30 +82,22 @@ __all__ = ["LifeWatch", "lifecycle_alert_id", "STATE_FORMAT"]
 
 STATE_FORMAT = 1
 _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT = 1e-3, 0.5
-_SAMPLE_STRIDE = 4
-_SAMPLE_MIN, _SAMPLE_PER_FEATURE, _SAMPLE_MAX = 200, 50, 500
-"""Every fourth row of the stream goes to its segment's sample (the newest 50 per
-feature, 200 to 500 rows), on which the split test runs each time twice its size has
-come in since the last test."""
+_SPLIT_WAITS = (2, 8, 32)
+"""A split test waits for this many times the sample's size of new sampled rows: twice,
+then four times longer after each test passed (at D=16, 32 times is 64,000 rows of the
+segment). A split is a slow structural change, and a segment found one Gaussian test
+after test is the likeliest to stay one; a new segment, the parts of a split and the
+survivor of a merge start again at twice, so a model that lumps two groups, or a
+segment that just changed, is tested as soon as its sample has renewed."""
+_APART_MARGIN, _APART_POINTS = 4.0, 4
+"""When the means-and-traces bound puts every pair at 4 times the merge distance or more
+(Bhattacharyya), pairs are looked at again at the 4th decision point only: segments move
+gradually, and for the bound to drop fourfold two means must come halfway together (or
+spreads grow four times). After any lifecycle event they are looked at the next point."""
 _BIRTH_ROWS_PER_FEATURE = 20
 """A group is born only from at least this many rows per feature (besides
 ``birth_rows``): its mean is then known to about ``sqrt(D / n) = 0.22`` of its sds
 (Mahalanobis), the rms error of a mean from ``n`` rows."""
-
-
-def _pack(rows: np.ndarray) -> str:
-    """Rows as base64 of their float32 bytes: the checkpoint's JSON carries a sample of
-    hundreds of rows as one string, which encodes and decodes far faster than lists.
-    Seven digits are plenty for a split test, and every input reads the sample back
-    from this form, so a restart sees exactly what an uninterrupted run does."""
-    return base64.b64encode(np.ascontiguousarray(rows, dtype="<f4").tobytes()).decode("ascii")
-
-
-def _unpack(packed: str | None, n_features: int) -> np.ndarray:
-    if not packed:
-        return np.empty((0, n_features))
-    rows = np.frombuffer(base64.b64decode(packed), dtype="<f4").reshape(-1, n_features)
-    return rows.astype(np.float64)
 
 
 class LifeWatch:
@@ -118,7 +116,6 @@ class LifeWatch:
         self.settings = settings
         self.cfg = settings.lifecycle
         self.features = list(settings.features)
-        self._samples: dict[str, np.ndarray] = {}   # unpacked samples, packed at the end
         self.version = version
         self.file = file
         if state is not None and state.get("format") != STATE_FORMAT:
@@ -126,9 +123,17 @@ class LifeWatch:
         self.state = json.loads(json.dumps(state)) if state is not None else None
         self.events: list[dict] = []
         self.alerts: list[tuple[str, dict]] = []
-        self._pool_X = self._pool_rows = None
+        self._samples: Samples | None = None
+        self._pool: UnexplainedPool | None = None
+        self._waits: list[int] = []   # fresh sampled rows each split test needs
+        # the segment ids of the model that saw the last piece, their keys (str), and
+        # the ids the samples were last pruned to
+        self._live: list[int] | None = None
+        self._keyed: tuple[list[int] | None, list[str]] = (None, [])
+        self._known: list[int] | None = None
+        self._due = True   # some segment may have come to its split test's wait
         if self.state is not None:
-            self._load_pool()
+            self._load()
 
     # -- state -----------------------------------------------------------------------
     def start(self, stream_offset: int) -> None:
@@ -136,26 +141,25 @@ class LifeWatch:
         self.state = {"format": STATE_FORMAT, "offset": int(stream_offset), "done_at": 0,
                       "low_since": {}, "unsettled": {}, "pool": {"X": [], "rows": []},
                       "recent": {"rows": 0, "mass": {}}, "sample": {}, "fresh": {},
-                      "cool": {}}
-        self._load_pool()
+                      "passed": {}, "cool": {}}
+        self._load()
 
     def _ensure(self) -> dict:
         if self.state is None:   # a model made before lifecycle watching: count from here
             self.start(self.settings.warmup_rows)
         return self.state
 
-    def _load_pool(self) -> None:
-        pool = self.state["pool"]
+    def _load(self) -> None:
         d = len(self.features)
-        self._pool_X = np.array(pool["X"], dtype=np.float64).reshape(-1, d)
-        self._pool_rows = np.array(pool["rows"], dtype=np.int64)
+        self._samples = Samples(self.state, d)
+        self._waits = [self._samples.cap * wait for wait in _SPLIT_WAITS]
+        self._pool = UnexplainedPool(self.state["pool"], d, self.cfg.unexplained_quantile,
+                                     self.cfg.pool_rows)
 
     def final_state(self) -> dict:
         st = self._ensure()
-        st["pool"] = {"X": self._pool_X.tolist(), "rows": self._pool_rows.tolist()}
-        sample = st.setdefault("sample", {})
-        for key, rows in self._samples.items():
-            sample[key] = _pack(rows)
+        st["pool"] = self._pool.to_state()
+        self._samples.pack(self._live)
         return st
 
     # -- pieces ----------------------------------------------------------------------
@@ -167,61 +171,42 @@ class LifeWatch:
         return min(c - n % c, r - n % r)
 
     def observe(self, before: Mixture, X: np.ndarray, scores) -> None:
-        """Pool the rows of a learned piece that no segment explains; ``before`` is the
-        model that scored them (its ``n_rows`` is the piece's first learned row)."""
+        """Sample a learned piece and pool its rows that no segment explains (both wait
+        until a decision needs them: :mod:`~shoal.daemon.segments.life_rows`); ``before``
+        is the model that scored them (its ``n_rows`` is the piece's first learned row),
+        ``scores`` its scores with rows that miss a feature at log-density ``+inf``
+        (``complete_only``): those are neither pooled nor sampled."""
         st = self._ensure()
+        ids = before.ids.tolist()
+        self._live = ids
+        first = (-int(before.n_rows)) % SAMPLE_STRIDE
+        picked = scores.component[first::SAMPLE_STRIDE]
+        # sampled rows of each segment, those that miss a feature too (they count
+        # towards a split test's wait, but do not go into a sample)
+        fresh = np.bincount(picked, minlength=len(ids)).tolist()
+        mass = scores.resp.T.sum(axis=1).tolist()
         recent = st.setdefault("recent", {"rows": 0, "mass": {}})
         recent["rows"] += len(X)
-        mass = scores.resp.sum(axis=0)
-        for sid, m in zip(before.ids.tolist(), mass.tolist()):
-            recent["mass"][str(sid)] = recent["mass"].get(str(sid), 0.0) + m
-        self._sample(before, X, scores)
-        q = self.cfg.unexplained_quantile
-        near = np.flatnonzero(scores.log_density < unexplained_below(before, q) + 1e-9)
-        if near.size == 0:
-            return
-        far = near[unexplained(before, X[near], q)]
-        if far.size == 0:
-            return
-        keep = self.cfg.pool_rows
-        self._pool_X = np.concatenate([self._pool_X, X[far]])[-keep:]
-        self._pool_rows = np.concatenate([self._pool_rows, before.n_rows + far])[-keep:]
+        by_id, sampled = recent["mass"], st.setdefault("fresh", {})
+        passed, waits, last = st.setdefault("passed", {}), self._waits, len(self._waits) - 1
+        counts = {}
+        for sid, key, m, c in zip(ids, self._keys(ids), mass, fresh):
+            by_id[key] = by_id.get(key, 0.0) + m
+            if c:
+                sampled[key] = total = sampled.get(key, 0) + c
+                counts[sid] = c
+                if total >= waits[min(passed.get(key, 0), last)]:
+                    self._due = True   # a split test may be due (if not cooling down)
+        if counts:
+            self._samples.add(X, first, scores.segment[first::SAMPLE_STRIDE],
+                              scores.log_density[first::SAMPLE_STRIDE], counts, ids)
+        self._pool.add(before, X, scores)
 
-    def _sample(self, before: Mixture, X: np.ndarray, scores) -> None:
-        """Keep every ``_SAMPLE_STRIDE``-th row of the stream (by position, so the same
-        rows whatever the cut) in its segment's sample, the newest ``_sample_cap``."""
-        st = self.state
-        fresh = st.setdefault("fresh", {})
-        first = (-int(before.n_rows)) % _SAMPLE_STRIDE
-        picked = np.arange(first, len(X), _SAMPLE_STRIDE)
-        rows = X[picked]
-        # rows with missing features (NaN) have no place in a split test's sample
-        complete = ~np.isnan(rows).any(axis=1)
-        picked, rows = picked[complete], rows[complete]
-        if picked.size == 0:
-            return
-        cap = self._sample_cap()
-        labels = scores.segment[picked]
-        # rounded as the checkpoint keeps them, so a restart sees the same rows; grouped
-        # by segment in stream order (a stable sort)
-        rows = rows.astype(np.float32).astype(np.float64)
-        order = np.argsort(labels, kind="stable")
-        sids, starts, counts = np.unique(labels[order], return_index=True, return_counts=True)
-        for sid, a, c in zip(sids.tolist(), starts.tolist(), counts.tolist()):
-            key = str(sid)
-            self._samples[key] = np.concatenate([self._sampled(key),
-                                                 rows[order[a:a + c]]])[-cap:]
-            fresh[key] = fresh.get(key, 0) + c
-
-    def _sampled(self, key: str) -> np.ndarray:
-        """The rows of a segment's sample, shape (n, n_features)."""
-        if key not in self._samples:
-            packed = self.state.get("sample", {}).get(key)
-            self._samples[key] = _unpack(packed, len(self.features))
-        return self._samples[key]
-
-    def _sample_cap(self) -> int:
-        return int(min(max(_SAMPLE_MIN, _SAMPLE_PER_FEATURE * len(self.features)), _SAMPLE_MAX))
+    def _keys(self, ids: list[int]) -> list[str]:
+        """The state's keys (``str``) of segment ids, kept while the ids stay the same."""
+        if ids != self._keyed[0]:
+            self._keyed = (ids, [str(sid) for sid in ids])
+        return self._keyed[1]
 
     # -- decision points -------------------------------------------------------------
     def at_boundary(self, mixture: Mixture, watch=None) -> Mixture:
@@ -232,21 +217,29 @@ class LifeWatch:
         if n == 0 or n % self.cfg.check_rows or st["done_at"] == n:
             return mixture
         st["done_at"] = n
-        old = self._pool_rows >= n - self.cfg.pool_span_rows
-        self._pool_X, self._pool_rows = self._pool_X[old], self._pool_rows[old]
+        self._pool.trim(n - self.cfg.pool_span_rows)
         mixture = self._retire(mixture, n, watch)
-        mixture = self._merge(mixture, n, watch)
+        if n >= st.get("apart_until", 0):   # pairs far apart wait (_APART_POINTS)
+            mixture = self._merge(mixture, n, watch)
         mixture = self._birth(mixture, n)
-        mixture = self._split(mixture, n, watch)
-        self._settle(mixture, n, watch)
+        if self._due or mixture.ids.tolist() != self._known:
+            mixture = self._split(mixture, n, watch)
+        if st["unsettled"]:
+            self._settle(mixture, n, watch)
+        self._live = mixture.ids.tolist()
         return mixture
 
     def _retire(self, mixture: Mixture, n: int, watch) -> Mixture:
         st = self.state
-        low = {sid: at for sid, at in st["low_since"].items()
-               if int(sid) in set(mixture.ids.tolist())}
         recent = st.get("recent") or {"rows": 0, "mass": {}}
         st["recent"] = {"rows": 0, "mass": {}}
+        rows, floor = recent["rows"], self.cfg.retire_weight
+        if not st["low_since"] and rows > 0 and all(
+                recent["mass"].get(key, 0.0) / rows >= floor
+                for key in self._keys(mixture.ids.tolist())):
+            return mixture   # no segment under the floor, now or before: nothing to follow
+        live = {str(sid) for sid in mixture.ids.tolist()}
+        low = {sid: at for sid, at in st["low_since"].items() if sid in live}
         share = {}
         if recent["rows"] > 0:
             start = n - recent["rows"]
@@ -283,6 +276,11 @@ class LifeWatch:
         bound = self.cfg.merge_distance
         if bound is None or mixture.n_components < 2:
             return mixture
+        if pairs_apart(mixture, bound, self.cfg.merge_measure, _APART_MARGIN):
+            # far apart: the model moves a little per decision point, so look again
+            # only at the _APART_POINTS-th point from here
+            self.state["apart_until"] = n + _APART_POINTS * self.cfg.check_rows
+            return mixture
         cool = self._cooling(n)
         pairs = [p for p in overlapping_pairs(mixture, bound, self.cfg.merge_measure)
                  if f"{p[0]}|{p[1]}" not in cool]
@@ -290,6 +288,7 @@ class LifeWatch:
             return mixture
         keep, drop, distance = pairs[0]
         cool[str(keep)] = n + self.cfg.cool_down_rows   # no split of the merged segment
+        self.state.setdefault("passed", {}).pop(str(keep), None)
         means, sds = mixture.data_means(), mixture.data_stds()
         ka, kb = (int(np.flatnonzero(mixture.ids == i)[0]) for i in (keep, drop))
         before = {str(sid): {"weight": float(mixture.weights[k]), "mean": means[k].tolist(),
@@ -312,34 +311,50 @@ class LifeWatch:
     def _cooling(self, n: int) -> dict:
         """Pairs ("a|b", no merge) and segments ("a", no split) still cooling down."""
         st = self.state
-        st["cool"] = {k: until for k, until in st.get("cool", {}).items() if until > n}
-        return st["cool"]
+        cool = st.setdefault("cool", {})
+        if cool:
+            st["cool"] = cool = {k: until for k, until in cool.items() if until > n}
+        return cool
 
     def _split(self, mixture: Mixture, n: int, watch) -> Mixture:
         """Split the first segment whose renewed sample (the rows it still holds) two
         Gaussians explain better than one (by BIC), if the two parts would not merge
         back; one split per decision point."""
         st = self.state
-        live = {str(sid) for sid in mixture.ids.tolist()}
-        for name in ("sample", "fresh"):   # segments that left take their samples along
-            st[name] = {key: v for key, v in st.setdefault(name, {}).items() if key in live}
-        self._samples = {key: v for key, v in self._samples.items() if key in live}
-        cap = self._sample_cap()
+        ids = mixture.ids.tolist()
+        if ids != self._known:   # segments that left take their samples along
+            live = {str(sid) for sid in ids}
+            for name in ("fresh", "passed"):
+                st[name] = {key: v for key, v in st.setdefault(name, {}).items() if key in live}
+            self._samples.keep_only(live)
+            self._known = ids
+        cap = self._samples.cap
         cool = self._cooling(n)
+        fresh, passed = st["fresh"], st["passed"]
+        # a test is due once the sample's size times the wait (_SPLIT_WAITS) came in
+        waits, last = self._waits, len(self._waits) - 1
+        due = [sid for sid, key in zip(ids, self._keys(ids))
+               if fresh.get(key, 0) >= waits[min(passed.get(key, 0), last)]]
+        self._due = bool(due)   # until a piece brings a segment to its wait
+        due = [sid for sid in due if str(sid) not in cool]
+        if not due or mixture.n_components >= self.cfg.max_segments:
+            return mixture
         bound = self.cfg.merge_distance
-        for sid in mixture.ids.tolist():
+        q = self.cfg.unexplained_quantile
+        for sid in due:
             key = str(sid)
-            rows = self._sampled(key)
-            if len(rows) < cap or st["fresh"].get(key, 0) < 2 * cap or key in cool:
+            rows = self._samples.take(sid)
+            if len(rows) < cap:
                 continue
-            if mixture.n_components >= self.cfg.max_segments:
-                break
-            st["fresh"][key] = 0
+            fresh[key] = 0
+            passed[key] = passed.get(key, 0) + 1
             # the rows the segment still holds (a birth or merge since may have
             # taken some elsewhere) and explains: rows far from every segment are
             # the pool's, for a birth
-            rows = rows[(mixture.score(rows).segment == sid)
-                        & ~unexplained(mixture, rows, self.cfg.unexplained_quantile)]
+            scores = mixture.score(rows)
+            held = scores.segment == sid
+            held[unexplained_scored(mixture, scores.resp, scores.log_density, q)] = False
+            rows = rows[held]
             if len(rows) < cap // 2:
                 continue
             parts = split_test(rows, covariance=mixture.covariance,
@@ -364,9 +379,11 @@ class LifeWatch:
                 continue
             new = int(mixture.ids[-1])
             cool[f"{sid}|{new}"] = n + self.cfg.cool_down_rows
+            for part in (sid, new):
+                self._samples.restart(part)
             for part in (key, str(new)):
-                self._samples[part] = np.empty((0, mixture.n_features))
-                st["fresh"][part] = 0
+                fresh[part] = 0
+                passed.pop(part, None)
                 st["unsettled"][part] = n
             self._drop_baseline(watch, [sid], "split")
             ka = int(np.flatnonzero(mixture.ids == sid)[0])
@@ -386,12 +403,21 @@ class LifeWatch:
 
     def _birth(self, mixture: Mixture, n: int) -> Mixture:
         cfg = self.cfg
-        if len(self._pool_X) < cfg.birth_rows or mixture.n_components >= cfg.max_segments:
+        d = len(self.features)
+        # fewer rows than compact_group needs, even if every waiting row were
+        # unexplained: no group (and no widths to measure)
+        need = max(cfg.birth_rows, _BIRTH_ROWS_PER_FEATURE * d, d + 2)
+        pool = self._pool
+        if len(pool.X) + pool.waiting_rows < need or mixture.n_components >= cfg.max_segments:
+            return mixture
+        pool.settle()
+        pool.trim(n - cfg.pool_span_rows)   # rows of the waiting pieces that are too old
+        if len(pool.X) < need:
             return mixture
         covs = mixture.data_covariance_matrices()
         widest = max(float(np.exp(0.5 * np.linalg.slogdet(c)[1] / mixture.n_features))
                      for c in covs)
-        group = compact_group(self._pool_X,
+        group = compact_group(pool.X,
                               min_rows=max(cfg.birth_rows, _BIRTH_ROWS_PER_FEATURE * len(self.features)),
                               max_sd=cfg.birth_max_spread * widest,
                               threshold=cfg.unexplained_quantile, seed=self.settings.seed,
@@ -400,16 +426,17 @@ class LifeWatch:
             return mixture
         mean, cov, members = group
         count = int(members.sum())
-        widened, gain = widening_explains(mixture, self._pool_X[members], mean, cov,
+        widened, gain = widening_explains(mixture, pool.X[members], mean, cov,
                                           cfg.unexplained_quantile)
         if widened is None:
-            widened, gain = self._ring(mixture, mean, count)
+            widened, gain = pool.ring_widening(mixture, mean, count,
+                                               self.settings.learning.reg_covar)
         if widened is not None:
             log_event("segment_birth_declined", logging.DEBUG, rows=count, segment=widened,
                       detail=f"segment {widened} widened explains the group as well "
                              f"(BIC gain of a new group {gain:.1f}; nan: centred on it)")
             return mixture
-        weight = float(np.clip(recent_share(self._pool_rows[members], n),
+        weight = float(np.clip(recent_share(pool.rows[members], n),
                                _MIN_BIRTH_WEIGHT, _MAX_BIRTH_WEIGHT))
         try:
             mixture = add_component(mixture, weight, mean, cov)
@@ -418,7 +445,7 @@ class LifeWatch:
                       model_version=self.version, detail=str(exc))
             return mixture
         sid = int(mixture.ids[-1])
-        self._pool_X, self._pool_rows = self._pool_X[~members], self._pool_rows[~members]
+        pool.remove(members)
         self.state["unsettled"][str(sid)] = n
         sd = np.sqrt(np.diag(cov))
         self._event("born", sid, n, weight=weight, mean=mean, spread=sd, rows=count,
@@ -427,27 +454,11 @@ class LifeWatch:
                              f"{self._describe(mean, sd)}"))
         return mixture
 
-    def _ring(self, mixture: Mixture, mean, count: int):
-        """The widening test on every pooled row nearest the group's segment, when the
-        group is less than half of them: a spread that grew leaves a ring of rows
-        around the segment, and a compact arc of it is a group that does not surround
-        the segment although the ring does. ``(None, nan)`` otherwise."""
-        nearest = np.argmin(squared_mahalanobis(mixture, self._pool_X), axis=1)
-        k = int(np.argmin(squared_mahalanobis(mixture, np.asarray(mean)[None])[0]))
-        ring = self._pool_X[nearest == k]
-        d = mixture.n_features
-        if len(ring) < 2 * count or len(ring) < d + 2:
-            return None, float("nan")   # the group is most of them: it stands on its own
-        cov = np.cov(ring, rowvar=False) + self.settings.learning.reg_covar * np.eye(d)
-        try:
-            return widening_explains(mixture, ring, ring.mean(axis=0), cov,
-                                     self.cfg.unexplained_quantile)
-        except np.linalg.LinAlgError:
-            return None, float("nan")
-
     def _settle(self, mixture: Mixture, n: int, watch) -> None:
         """Born segments that have settled join the drift baseline."""
         unsettled = self.state["unsettled"]
+        if not unsettled:
+            return
         ready = sorted(int(sid) for sid, at in unsettled.items()
                        if n - at >= self.cfg.settle_rows)
         if not ready:
@@ -468,6 +479,7 @@ class LifeWatch:
         return describe(self.features, self.transforms, mean, sd)
 
     def _event(self, kind: str, sid: int, n: int, **fields) -> None:
+        self.state.pop("apart_until", None)   # segments changed: look at pairs next time
         lifecycle_event(self, kind, sid, n, **fields)
 
     def history(self, rows: list[HistoryRow]) -> list[HistoryRow]:

@@ -19,11 +19,15 @@ from shoal.core.lifecycle import (
     merge,
     overlap,
     overlapping_pairs,
+    pairs_apart,
     retire,
     squared_mahalanobis,
     unexplained,
     unexplained_below,
+    unexplained_scored,
 )
+from shoal.core.distances import bhattacharyya_lower_bound
+from shoal.core.split_screen import hard_split_gain
 
 CENTER = np.array([100.0, -20.0, 3.0])
 SCALE = np.array([10.0, 2.0, 0.5])
@@ -417,3 +421,77 @@ def test_split_keeps_the_id_on_the_larger_part_and_leaves_the_others():
                                atol=1e-9)
     # (reg_covar, 1e-6, is added to the diagonal when parameters are derived)
     np.testing.assert_allclose(out.data_covariance_matrices()[1], np.eye(2), atol=2e-6)
+
+
+@pytest.mark.parametrize("covariance", ["full", "diag", "spherical"])
+def test_unexplained_from_scores_is_the_chi_square_test_of_every_component(covariance):
+    # The rows a mixture's own scores call unexplained are those whose squared
+    # Mahalanobis distance to every component exceeds the chi-square quantile. Reference:
+    # scipy's mahalanobis against each component's data-unit covariance, and
+    # scipy.stats.chi2.ppf; rows scored at +inf (left out) never count.
+    mixture = _mixture_of(_groups(51), covariance)
+    rng = np.random.default_rng(52)
+    X = CENTER + rng.normal(0.0, 3.0, (400, 3)) * SCALE
+    scores = mixture.score(X)
+    got = unexplained_scored(mixture, scores.resp, scores.log_density, 0.99)
+    means, covs = mixture.data_means(), mixture.data_covariance_matrices()
+    d2 = np.array([[scipy_mahalanobis(x, means[k], np.linalg.inv(covs[k])) ** 2
+                    for k in range(3)] for x in X])
+    want = np.flatnonzero(np.all(d2 > stats.chi2.ppf(0.99, 3), axis=1))
+    assert 20 < want.size < len(X)
+    np.testing.assert_array_equal(got, want)
+    gappy = scores.log_density.copy()
+    gappy[want[:5]] = np.inf
+    np.testing.assert_array_equal(
+        unexplained_scored(mixture, scores.resp, gappy, 0.99), want[5:])
+
+
+@pytest.mark.parametrize("measure", ["hellinger", "bhattacharyya"])
+def test_pairs_apart_is_the_means_and_traces_bound_over_every_pair(measure):
+    # pairs_apart must say True exactly when bhattacharyya_lower_bound puts every pair
+    # at margin x the distance or more, and then no pair is under the distance.
+    rng = np.random.default_rng(78)
+    for trial in range(40):
+        k, d = int(rng.integers(2, 7)), 4
+        A = rng.normal(0.0, 0.4, (k, d, d))
+        covs = A @ np.swapaxes(A, 1, 2) + 0.3 * np.eye(d)
+        means = rng.normal(0.0, rng.uniform(0.5, 8.0), (k, d))
+        for covariance in ("full", "diag", "spherical"):
+            cov = covs if covariance == "full" else np.diagonal(covs, axis1=1, axis2=2)
+            if covariance == "spherical":
+                cov = cov.mean(axis=1)
+            mixture = Mixture.from_parameters(np.full(k, 1.0 / k), means, cov,
+                                              covariance=covariance)
+            matrices = mixture.family.matrices(mixture.covariances, d)
+            bound = bhattacharyya_lower_bound(mixture.means, matrices)
+            for distance, margin in ((0.4, 1.0), (0.4, 4.0), (0.9, 1.0), (0.2, 2.5)):
+                limit = -np.log1p(-distance**2) if measure == "hellinger" else distance
+                apart = pairs_apart(mixture, distance, measure, margin)
+                assert apart == bool(np.all(bound >= margin * limit * (1 + 1e-6)))
+                if apart:
+                    assert overlapping_pairs(mixture, distance, measure) == []
+
+
+def test_split_screen_is_the_best_cut_of_the_two_main_axes():
+    # Reference, computed here by brute force: project on the two leading eigenvectors
+    # of numpy's eigh, and for every cut that leaves n/20 rows (at least 5) on either
+    # side score the classification log-likelihood from np.var of the two parts.
+    rng = np.random.default_rng(79)
+    for trial in range(12):
+        n, d = int(rng.integers(40, 300)), int(rng.integers(2, 9))
+        X = rng.normal(size=(n, d)) * rng.uniform(0.2, 3.0, d)
+        if trial % 2:
+            X[: n // 3, 0] += rng.uniform(2.0, 8.0)
+        centred = X - X.mean(axis=0)
+        _, vectors = np.linalg.eigh(np.cov(X, rowvar=False, bias=True))
+        least, best = max(5, n // 20), -np.inf
+        for axis in vectors[:, -2:].T:
+            y = np.sort(centred @ axis)
+            for cut in range(least, n - least + 1):
+                l, r = y[:cut], y[cut:]
+                ll = (-0.5 * (cut * np.log(np.var(l)) + (n - cut) * np.log(np.var(r)))
+                      + cut * np.log(cut / n) + (n - cut) * np.log((n - cut) / n))
+                best = max(best, ll + 0.5 * n * np.log(np.var(y)))
+        assert hard_split_gain(X) == pytest.approx(best - 1.5 * np.log(n), rel=1e-9, abs=1e-9)
+    assert hard_split_gain(np.zeros((8, 3))) == -np.inf
+    assert hard_split_gain(np.ones((50, 3))) == -np.inf   # no variance: no cut
