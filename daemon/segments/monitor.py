@@ -222,17 +222,16 @@ class InputWatch:
         win["ld2"] += float(np.dot(ld, ld))
         ids = mixture.ids.tolist()
         sums = self._pending
+        moments, Xc = scores.moments, None
         if sums is None or sums["window"] is not win or sums["ids"] != ids:
             self._flush()
-            sums = self._pending = empty_piece_sums(win, ids, X.shape[1])
-        Xc = None
-        moments = scores.moments
+            sums = self._pending = empty_piece_sums(win, ids, X.shape[1], moments)
+        elif moments is not None:   # the M-step's own moments (shoal.core.piece_moments)
+            for key in ("T", "Q", "B", "M", "S"):
+                sums[key] += getattr(moments, key)
         if moments is None:   # rows with missing features, or a spherical model
             Xc = X - mixture.center
             add_row_sums(sums, mixture, X, Xc, scores)
-        else:                 # the M-step's own moments (shoal.core.piece_moments)
-            for key in ("T", "Q", "B", "M", "S"):
-                sums[key] += getattr(moments, key)
         below = (self._state.get("baseline_info", {}) or {}).get("unusual_below")
         if below is not None:
             add_unusual(win["unusual"], mixture, X, Xc, scores, below)

@@ -36,9 +36,14 @@ def empty_window(index: int) -> dict:
             "files": [], "versions": [None, None], "time": [None, None]}
 
 
-def empty_piece_sums(win: dict, ids: list, n_features: int) -> dict:
-    """An accumulator of a window's pieces' sums, arrays by segment position of ``ids``."""
+def empty_piece_sums(win: dict, ids: list, n_features: int, moments=None) -> dict:
+    """An accumulator of a window's pieces' sums, arrays by segment position of ``ids``:
+    zeros, or a first piece's :class:`shoal.core.piece_moments.PieceMoments` (its
+    arrays taken over, not copied)."""
     K, D = len(ids), n_features
+    if moments is not None:
+        return {"window": win, "ids": ids, "T": moments.T, "Q": moments.Q, "B": moments.B,
+                "M": moments.M, "S": moments.S}
     return {"window": win, "ids": ids, "T": np.zeros(K), "Q": np.zeros(K), "B": np.zeros(K),
             "M": np.zeros((K, D)), "S": np.zeros((K, D, D))}
 
@@ -73,16 +78,16 @@ def add_unusual(unusual: dict, mixture, X: np.ndarray, Xc, scores, below: float)
     """Count a piece's unusual rows (log-density under ``below``) into a window's
     ``unusual`` record: how many, the sum of their centred rows (``Xc`` if at hand,
     filled), and how many per segment id."""
-    mask = scores.log_density < below
-    count = int(np.count_nonzero(mask))
+    rows = np.flatnonzero(scores.log_density < below)
+    count = rows.size
     if not count:
         return
     unusual["n"] += count
-    total = (Xc[mask].sum(axis=0) if Xc is not None
-             else X[mask].sum(axis=0) - count * mixture.center)
+    total = (Xc.take(rows, axis=0).sum(axis=0) if Xc is not None
+             else X.take(rows, axis=0).sum(axis=0) - count * mixture.center)
     unusual["sum"] = add_lists(unusual["sum"], total)
     ids = mixture.ids.tolist()
-    counts = np.bincount(scores.component[mask], minlength=len(ids))
+    counts = np.bincount(scores.component.take(rows), minlength=len(ids))
     by_segment = unusual["by_segment"]
     for k in np.flatnonzero(counts).tolist():
         key = str(ids[k])
