@@ -45,13 +45,17 @@ class Gaps:
     mask : ndarray of shape (n_gappy, n_features)
         True where that row's feature is missing (made on first use when the gaps were
         given as ``off`` and ``cols``: row ``g`` misses ``cols[off[g]:off[g+1]]``).
+    prepared : tuple or None
+        What the numpy path worked out from these gaps for one batch of rows, kept
+        for its spans (:func:`shoal.core.gap_spans.batch_layout`).
     """
 
-    __slots__ = ("rows", "_mask", "off", "cols", "n_features")
+    __slots__ = ("rows", "_mask", "off", "cols", "n_features", "prepared")
 
     def __init__(self, rows, mask=None, *, off=None, cols=None, n_features=None):
         self.rows, self._mask = rows, mask
         self.off, self.cols, self.n_features = off, cols, n_features
+        self.prepared = None
 
     @property
     def mask(self) -> np.ndarray:

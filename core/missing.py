@@ -33,14 +33,16 @@ the rows with a gap, filled, through these kernels.
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 
 from .covariance import LOG_2PI
 from .gaps import Gaps, MissingValues, fill, find, not_finite
 
-__all__ = ["Gaps", "MissingValues", "not_finite", "find", "fill", "gap_log_joint",
-           "gap_correction", "gap_moments", "completion_moments", "expected_scatter",
-           "precision_matrices"]
+__all__ = ["Gaps", "MissingValues", "not_finite", "find", "fill", "GapLayout",
+           "gap_log_joint", "gap_correction", "span_correction", "gap_moments",
+           "completion_moments", "span_completion", "expected_scatter", "precision_matrices"]
 
 BLOCK_ROWS = 2048   # incomplete rows handled at once: (K, rows, D) arrays stay small
 
@@ -64,175 +66,264 @@ def precision_matrices(model):
     return lam, np.einsum("kde,ke->kd", lam, model.means)
 
 
-class _Pairs:
-    """The (row, missing feature) pairs of a block of rows with gaps.
+class _Group:
+    """The rows of a layout that miss ``r`` features (the last group: ``r`` or more):
+    ``rows`` their numbers, ``pos`` (n, r) where their pairs sit in the feature order,
+    ``cols`` (n, r) the features, ``const`` (n,) the correction's constant
+    ``0.5 |m| log 2 pi + sum(log scale[m])``; for more than one feature ``cells``
+    (n, r, r), the flat (feature, feature) cells of their ``H``. In the last group
+    the rows missing fewer than the widest are padded: their extra pairs point at the
+    zero slot past the last pair and at feature 0, ``real`` (n, r, r) says which
+    cells are not padding and ``count`` (n,) how many features each row misses."""
 
-    ``row``, ``col``: the pairs in row order (each row's features increasing);
-    ``start[i]``: where row ``i``'s pairs begin; ``count[i]``: how many it has;
-    ``by_col``: the pairs ordered by feature, ``ends[c]``: where feature ``c``'s end;
-    ``place[p]``: where pair ``p`` sits in that order.
+    __slots__ = ("rows", "pos", "cols", "const", "cells", "real", "count")
+
+    def __init__(self, at, layout, place, col, start, count, width):
+        n_pairs, n_features = col.size, layout.Zf.shape[1]
+        pair = start[at][:, None] + np.arange(width)
+        self.count = count[at]
+        valid = np.arange(width) < self.count[:, None]
+        if width > 2:
+            pair = np.where(valid, pair, n_pairs)
+        self.rows = layout.rows[at]
+        self.const = layout.scale_term[at] + (0.5 * LOG_2PI) * self.count
+        self.pos = np.append(place, n_pairs)[pair]
+        self.cols = np.append(col, 0)[pair]
+        self.cells = self.cols[:, :, None] * n_features + self.cols[:, None, :]
+        self.real = valid[:, :, None] & valid[:, None, :]
+
+
+class GapLayout:
+    """Rows with gaps arranged for the algebra, whatever the parameters.
+
+    Which rows miss which features does not change with the parameters: the layout is
+    made once for a batch and cut into spans (:meth:`span`) between the points where
+    the parameters change, so that a span does only the algebra that depends on them.
+    For the full type the (row, missing feature) pairs are ordered by feature, then
+    row, so that ``g = (Lam (z - mu))_m`` takes one small product per feature over a
+    contiguous run of pairs; and the rows are grouped by how many features they miss
+    (one, two, three or more), each group with where its pairs sit in that order.
+
+    Parameters
+    ----------
+    rows : ndarray of shape (n_rows,)
+        Increasing numbers of the rows: the columns of the log-joint and weights the
+        corrections go to and the weights come from.
+    Z : ndarray of shape (n_rows, n_features)
+        Standardised rows; their missing values are not read, and set to zero in
+        place.
+    mask : ndarray of shape (n_rows, n_features)
+        True where a feature is missing.
+    log_scale : ndarray of shape (n_features,)
+        ``log`` of the standardisation's scale (see :func:`gap_correction`).
+    covariance : str
+        The mixture's covariance type: the pairs are for the full type only.
+
+    Attributes
+    ----------
+    rows, mask : ndarray
+    Zf : ndarray of shape (n_rows, n_features)
+        The rows with their missing values at zero.
     """
 
-    __slots__ = ("row", "col", "start", "count", "by_col", "ends", "place")
+    __slots__ = ("rows", "mask", "Zf", "scale_term", "pairs", "groups", "_keys", "_work")
 
-    def __init__(self, mask):
-        self.row, self.col = np.nonzero(mask)
-        self.count = np.count_nonzero(mask, axis=1)
-        self.start = np.cumsum(self.count) - self.count
-        self.by_col = np.argsort(self.col, kind="stable")
-        self.ends = np.cumsum(np.bincount(self.col, minlength=mask.shape[1]))
-        self.place = np.empty_like(self.by_col)
-        self.place[self.by_col] = np.arange(self.place.size)
+    def __init__(self, rows, Z, mask, log_scale, covariance):
+        n, D = mask.shape
+        self.rows, self.mask = rows, mask
+        row, col = np.divmod(np.flatnonzero(mask), D)      # in row order
+        self.Zf = Z
+        Z[row, col] = 0.0
+        count = np.bincount(row, minlength=n)
+        # sum(log scale[m]): the mixture subtracts the log-scale of every feature, a
+        # marginal only those of the observed ones
+        self.scale_term = np.bincount(row, weights=log_scale[col], minlength=n)
+        self.pairs, self.groups, self._work = None, (), None
+        self._keys = rows
+        if covariance != "full" or not n:
+            return
+        by_col = np.argsort(col.astype(np.int16 if D < 1 << 15 else np.int64),
+                            kind="stable")
+        place = np.empty_like(by_col)       # row order -> feature order
+        place[by_col] = np.arange(by_col.size)
+        self.pairs = np.empty((by_col.size, D + 1))      # each pair's row, then a 1
+        self.pairs[:, D] = 1.0
+        np.take(Z, row[by_col], axis=0, out=self.pairs[:, :D])
+        start = np.cumsum(count) - count
+        groups = [np.flatnonzero(count == 1), np.flatnonzero(count == 2),
+                  np.flatnonzero(count >= 3)]
+        widest = max(3, int(count.max()))
+        self.groups = tuple(_Group(at, self, place, col, start, count, width)
+                            for at, width in zip(groups, (1, 2, widest)))
+        self._keys = np.concatenate([col[by_col] * n + row[by_col]]
+                                    + [(D + r) * n + at for r, at in enumerate(groups)])
 
-    def columns(self):
-        """``(c, lo, hi)``: feature ``c`` is missing in pairs ``by_col[lo:hi]``."""
-        lo = 0
-        for c, hi in enumerate(self.ends.tolist()):
-            if hi > lo:
-                yield c, lo, hi
-            lo = hi
+    def span(self, lo, hi):
+        """The layout's rows numbered ``lo`` to ``hi - 1``.
 
-    def exactly(self, r):
-        """``(rows, at)``: the rows missing ``r`` features and their pairs' indices
-        (len(rows), r)."""
-        rows = np.flatnonzero(self.count == r)
-        return rows, self.start[rows][:, None] + np.arange(r)
+        Parameters
+        ----------
+        lo, hi : int
 
-    def several(self, least):
-        """``(rows, at, valid)``: the rows missing ``least`` features or more, their
-        pairs' indices (len(rows), r) padded to the largest count ``r`` with the index
-        one past the last pair, and where the indices are real (len(rows), r)."""
-        rows = np.flatnonzero(self.count >= least)
-        r = int(self.count[rows].max()) if rows.size else 0
-        valid = np.arange(r) < self.count[rows][:, None]
-        at = np.where(valid, self.start[rows][:, None] + np.arange(r), self.row.size)
-        return rows, at, valid
+        Returns
+        -------
+        part : tuple
+            ``(a, b, columns, groups)``: the layout's rows ``a:b``; for the full type
+            ``columns``, the runs ``(c, p, q)`` of pairs ``p:q`` missing feature ``c``,
+            and ``groups``, the slices ``(u, v)`` of each group's rows and, last, the
+            widest of the last group's rows in the span.
+        """
+        a, b = np.searchsorted(self.rows, (lo, hi)).tolist()
+        if self.pairs is None:
+            return a, b, (), ()
+        n, D = self.mask.shape
+        base = np.arange(D + 3) * n
+        cut = np.searchsorted(self._keys, np.stack((base + a, base + b), 1).ravel()).tolist()
+        columns = [(c, cut[2 * c], cut[2 * c + 1]) for c in range(D)
+                   if cut[2 * c + 1] > cut[2 * c]]
+        offset, groups = self.pairs.shape[0], []
+        for r, grp in enumerate(self.groups):
+            groups.append((cut[2 * (D + r)] - offset, cut[2 * (D + r) + 1] - offset))
+            offset += grp.rows.size
+        u, v = groups[-1]
+        groups[-1] += (int(self.groups[-1].count[u:v].max()) if v > u else 0,)
+        return a, b, columns, groups
 
-
-def _solve_small(H, g):
-    """``H^-1 g``, ``H^-1`` and ``log det H`` for stacks of small positive-definite ``H``
-    of shape (..., r, r), ``g`` (..., r); closed forms for r = 1 and 2, where LAPACK's
-    cost per matrix would dominate."""
-    r = H.shape[-1]
-    if r == 1:
-        inv = 1.0 / H
-        return g * inv[..., 0], inv, np.log(H[..., 0, 0])
-    if r == 2:
-        a, b, c = H[..., 0, 0], H[..., 0, 1], H[..., 1, 1]
-        det = a * c - b * b
-        inv = np.empty_like(H)
-        inv[..., 0, 0], inv[..., 1, 1] = c / det, a / det
-        inv[..., 0, 1] = inv[..., 1, 0] = -b / det
-        return np.einsum("...rs,...s->...r", inv, g), inv, np.log(det)
-    # Gauss-Jordan elimination over the whole stack at once, no pivoting: a positive
-    # definite matrix keeps positive pivots (they are the squares of its Cholesky
-    # diagonal), and one vectorised pass costs less than LAPACK's per-matrix calls
-    A = np.array(H, dtype=np.float64)
-    inv = np.broadcast_to(np.eye(r), H.shape).copy()
-    log_det = np.zeros(H.shape[:-2])
-    for j in range(r):
-        pivot = A[..., j, j].copy()
-        if not np.all(pivot > 0.0):
-            raise np.linalg.LinAlgError("a precision block is not positive definite")
-        log_det += np.log(pivot)
-        A[..., j, :] /= pivot[..., None]
-        inv[..., j, :] /= pivot[..., None]
-        factor = A[..., :, j].copy()
-        factor[..., j] = 0.0
-        A -= factor[..., :, None] * A[..., None, j, :]
-        inv -= factor[..., :, None] * inv[..., None, j, :]
-    return np.einsum("...rs,...s->...r", inv, g), inv, log_det
+    def work(self, width):
+        """A C-ordered (n_pairs + 1, width) buffer kept from span to span, its last row
+        (the padding's slot) zero."""
+        size = (self.pairs.shape[0] + 1) * width
+        if self._work is None or self._work.size < size:
+            self._work = np.empty(size)
+        work = self._work[:size].reshape(-1, width)
+        work[-1] = 0.0
+        return work
 
 
-def _full_gaps(model, Z, mask, learn):
-    """Correction (K, n) to the filled rows' log-joint and, with ``learn``, per group of
-    rows missing as many features: ``(rows, at, step, inv)`` with ``step = H^-1 g``
-    (K, len(rows), r) and ``inv = H^-1`` (K, len(rows), r, r)."""
+@functools.lru_cache(maxsize=None)
+def _above(width):
+    """The (row, column) indices of the cells above the diagonal of a width x width
+    matrix."""
+    return np.triu_indices(width, 1)
+
+
+def _full_span(model, layout, part, learn, out):
+    """Add the correction of the rows ``part`` (from :meth:`GapLayout.span`) to their
+    columns of ``out`` (K, n), C-ordered; with ``learn`` return, per group of rows
+    missing as many features, ``(group, u, v, step, inv, above)``: ``step = H^-1 g``
+    (rows, K) or (rows, r, K), the diagonal of ``H^-1`` in the same shape and, for two
+    or more, its cells above the diagonal (rows, r(r-1)/2, K).
+
+    Pair-major throughout (rows, then components): gathering whole rows of K values
+    costs a fraction of gathering columns."""
+    a, b, columns, groups = part
     lam, lam_mu = precision_matrices(model)
-    K, n, D = model.n_components, Z.shape[0], Z.shape[1]
-    pairs = _Pairs(mask)
+    K, D = lam.shape[:2]
     # g = (Lam (z - mu))_m for every (row, missing feature) pair: one small product
     # per feature over the rows that miss it (a D-th of the product over all of Lam)
-    Zp = Z[pairs.row[pairs.by_col]]
-    gp = np.empty((K, pairs.row.size))     # pairs ordered by feature
-    for c, lo, hi in pairs.columns():
-        np.matmul(lam[:, c, :], Zp[lo:hi].T, out=gp[:, lo:hi])
-    gp -= lam_mu[:, pairs.col[pairs.by_col]]
-    corr = np.empty((K, n))
+    lam1 = np.concatenate((lam, -lam_mu[:, :, None]), axis=2)
+    gp = layout.work(K)
+    for c, p, q in columns:
+        np.matmul(layout.pairs[p:q], lam1[:, c].T, out=gp[p:q])
+    flat = lam.reshape(K, D * D).T              # (D * D, K): cell-major
+    diag = flat[:: D + 1]
+    # flat places (K, rows) of the rows' log-joint: along the components' rows, the
+    # order memory has
+    lanes = out.shape[1] * np.arange(K)[:, None]
+    out = out.reshape(-1)
     pieces = []
-    diag = np.diagonal(lam, axis1=1, axis2=2)
-    # one missing feature (most rows): H is the precision's diagonal entry
-    rows, at = pairs.exactly(1)
-    if rows.size:
-        c = pairs.col[at[:, 0]]
-        g = gp[:, pairs.place[at[:, 0]]]
-        h = diag[:, c]
-        step = g / h
-        corr[:, rows] = 0.5 * (LOG_2PI - np.log(h) + g * step)
+    (one, two, more), ((u, v), (u2, v2), (u3, v3, width)) = layout.groups, groups
+    if v > u:
+        # one missing feature (most rows): H is the precision's diagonal entry
+        g = np.take(gp, one.pos[u:v, 0], axis=0)
+        table = np.take(np.concatenate((1.0 / diag, np.log(diag)), axis=1),
+                        one.cols[u:v, 0], axis=0)
+        inv = table[:, :K]
+        step = g * inv
+        corr = g * step
+        corr -= table[:, K:]
+        corr *= 0.5
+        corr += one.const[u:v, None]
+        out[lanes + one.rows[u:v]] += corr.T
         if learn:
-            pieces.append((rows, at, step[:, :, None], (1.0 / h)[:, :, None, None]))
-    # two: in closed form
-    rows, at = pairs.exactly(2)
-    if rows.size:
-        cols = pairs.col[at]
-        g = gp[:, pairs.place[at]]
-        H = lam[:, cols[:, :, None], cols[:, None, :]]
-        step, inv, log_det = _solve_small(H, g)
-        corr[:, rows] = 0.5 * (2 * LOG_2PI - log_det + np.sum(g * step, axis=-1))
+            pieces.append((one, u, v, step, inv, None))
+    if v2 > u2:
+        # two, in closed form
+        g = np.take(gp, two.pos[u2:v2], axis=0)            # (rows, 2, K)
+        h = np.take(diag, two.cols[u2:v2], axis=0)
+        h01 = np.take(flat, two.cells[u2:v2, 0, 1], axis=0)
+        det = h[:, 0] * h[:, 1] - h01 * h01
+        inv = h[:, ::-1] / det[:, None]
+        inv01 = -h01 / det
+        step = inv * g
+        step += inv01[:, None] * g[:, ::-1]
+        corr = np.einsum("nrk,nrk->nk", g, step) - np.log(det)
+        corr *= 0.5
+        corr += two.const[u2:v2, None]
+        out[lanes + two.rows[u2:v2]] += corr.T
         if learn:
-            pieces.append((rows, at, step, inv))
-    # more (few rows): one batch, each H padded to the largest with an identity block
-    # (inverse and determinant of the real block unchanged; g is zero in the padding)
-    rows, at, valid = pairs.several(3)
-    if rows.size:
-        r = at.shape[1]
-        cols = np.append(pairs.col, 0)[at]
-        g = np.append(gp, np.zeros((K, 1)), axis=1)[:, np.append(pairs.place, -1)[at]]
-        real = valid[:, :, None] & valid[:, None, :]
-        H = np.where(real, lam[:, cols[:, :, None], cols[:, None, :]], np.eye(r))
-        step, inv, log_det = _solve_small(H, g)
-        inv *= real
-        count = pairs.count[rows]
-        corr[:, rows] = 0.5 * (count * LOG_2PI - log_det + np.sum(g * step, axis=-1))
+            pieces.append((two, u2, v2, step, inv, inv01[:, None]))
+    if v3 > u3:
+        # more (few rows): each H padded to the widest of the span with an identity
+        # block (inverse and determinant of the real block unchanged; g is zero in the
+        # padding); LAPACK over the stack, components first
+        real = more.real[u3:v3, None, :width, :width]
+        g = np.take(gp, more.pos[u3:v3, :width], axis=0).transpose(0, 2, 1)
+        H = np.where(real, np.moveaxis(np.take(flat, more.cells[u3:v3, :width, :width],
+                                               axis=0), -1, 1), np.eye(width))
+        chol = np.linalg.cholesky(H)            # refuses a block that is not positive definite
+        log_det = 2.0 * np.sum(np.log(np.diagonal(chol, 0, -2, -1)), axis=-1)
+        inv = np.linalg.inv(H) * real
+        step = (inv @ g[..., None])[..., 0]       # (rows, K, r)
+        corr = 0.5 * (np.einsum("nkr,nkr->nk", g, step) - log_det) + more.const[u3:v3, None]
+        out[lanes + more.rows[u3:v3]] += corr.T
         if learn:
-            pieces.append((rows, at, step, inv))
-    return corr, (Z, pairs, Zp, pieces) if learn else None
+            i, j = _above(width)
+            pieces.append((more, u3, v3, step.transpose(0, 2, 1),
+                           np.diagonal(inv, 0, -2, -1).transpose(0, 2, 1),
+                           inv[..., i, j].transpose(0, 2, 1)))
+    return (layout, part, pieces, K) if learn else None
 
 
-def _full_correction(W, aux):
-    """What completing the rows adds to the moments of the filled rows, weights ``W``
-    (K, n): ``(s1, s2)`` of shapes (K, D) and (K, D, D).
+def _full_correction(weights, aux):
+    """What completing the rows adds to the moments of the filled rows: ``(s1, s2)``
+    of shapes (K, D) and (K, D, D); ``weights(rows)`` gives the rows' E-step weights
+    (rows, K).
 
     A row completes to ``zhat = z + delta`` with ``delta = -H^-1 g`` on its missing
     features (``z`` is zero there), so ``zhat zhat^T + Cov = z z^T + z delta^T +
     delta z^T + delta delta^T + Cov``: the first term is the filled row's, the cross
     terms fill the missing columns, the last two the missing-by-missing block."""
-    Z, pairs, Zp, pieces = aux
-    K, D = W.shape[0], Z.shape[1]
-    comp = np.arange(K)[:, None]
-    V = np.empty((K, pairs.row.size + 1))    # W * H^-1 g = -W delta, per pair (+ padding)
-    s2 = np.zeros(K * D * D)
-    for rows, at, step, inv in pieces:
-        n, r = at.shape
-        ws = W[:, rows, None] * step
-        V[:, at.ravel()] = ws.reshape(K, n * r)
-        cols = np.append(pairs.col, 0)[at]       # the padding weighs nothing
-        block = step[..., :, None] * step[..., None, :] + inv
-        cell = (cols[:, :, None] * D + cols[:, None, :]).reshape(n * r * r)
-        s2 += np.bincount((comp * (D * D) + cell).ravel(),
-                          weights=(W[:, rows, None] * block.reshape(K, n, r * r)).ravel(),
-                          minlength=K * D * D)
-    V = V[:, :-1]
-    s1 = -np.bincount((comp * D + pairs.col).ravel(), weights=V.ravel(), minlength=K * D)
-    s2 = s2.reshape(K, D, D)
-    # cross terms, one missing feature at a time: sum_i -W_ki delta_kic z_i
-    Vc = V[:, pairs.by_col]
-    cross = np.zeros((K, D, D))
-    for c, lo, hi in pairs.columns():
-        cross[:, c, :] = Vc[:, lo:hi] @ Zp[lo:hi]
-    s2 -= cross
-    s2 -= np.swapaxes(cross, 1, 2)
-    return s1.reshape(K, D), s2
+    layout, (_, _, columns, _), pieces, K = aux
+    D = layout.Zf.shape[1]
+    # per pair: W H^-1 g = -W delta (first K) and the diagonal of W (delta delta^T +
+    # H^-1) (last K); the sums of both per feature come out of the cross products
+    # below (the pairs' last column is 1)
+    VU = layout.work(2 * K)
+    upper = np.zeros(D * D * K)         # the cells above the diagonal, once, cell-major
+    for grp, u, v, step, inv, above in pieces:
+        w = weights(grp.rows[u:v])
+        if step.ndim == 3:
+            w = w[:, None]
+        both = np.empty(step.shape[:-1] + (2 * K,))
+        ws = np.multiply(w, step, out=both[..., :K])
+        np.multiply(ws, step, out=both[..., K:])
+        both[..., K:] += w * inv
+        VU[grp.pos[u:v, 0] if step.ndim == 2 else grp.pos[u:v, :step.shape[1]]] = both
+        if above is not None:
+            i, j = _above(step.shape[1])
+            cells = grp.cells[u:v, i, j, None] * K + np.arange(K)
+            upper += np.bincount(cells.ravel(), weights=(ws[:, i] * step[:, j]
+                                                         + w * above).ravel(),
+                                 minlength=D * D * K)
+    # cross terms, one missing feature at a time: sum_i -W_ki delta_kic (z_i, 1)
+    cross = np.zeros((2 * K, D, D + 1))
+    for c, p, q in columns:
+        np.matmul(VU[p:q].T, layout.pairs[p:q], out=cross[:, c])
+    half = upper.reshape(D * D, K).T.reshape(K, D, D) - cross[:K, :, :D]
+    s2 = half + np.swapaxes(half, 1, 2)
+    s2.reshape(K, D * D)[:, :: D + 1] += cross[K:, :, D]
+    return -cross[:K, :, D], s2
 
 
 # ------------------------------------------------------- diag and spherical types
@@ -250,29 +341,31 @@ def _diag_gaps(model, Z, mask, learn):
     return corr, ((Z, M, model.means, 1.0 / prec) if learn else None)
 
 
+def _diag_span(model, layout, part, learn, out):
+    a, b = part[:2]
+    corr, aux = _diag_gaps(model, layout.Zf[a:b], layout.mask[a:b], learn)
+    corr += layout.scale_term[a:b]
+    out[:, layout.rows[a:b]] += corr
+    return aux and aux + (layout.rows[a:b],)
+
+
 def _diag_correction(W, aux):
     """What completing the rows adds to the moments of the filled rows: ``(s1, diagonal
     of s2)``; a missing coordinate completes to the component's mean, with its variance."""
-    Z, M, means, var = aux
+    Z, M, means, var = aux[:4]
     WM = W @ M
     return means * WM, (means * means + var) * WM
 
 
 def _diag_completed(aux):
     """The completed rows (K, n, D) and their conditional variances (K, n, D)."""
-    Z, M, means, var = aux
+    Z, M, means, var = aux[:4]
     mask = M.astype(bool)
     return (np.where(mask[None], means[:, None, :], Z[None]),
             M[None] * var[:, None, :])
 
 
-_GAPS = {"full": _full_gaps, "diag": _diag_gaps, "spherical": _diag_gaps}
-
-
-def _scale_term(model, mask):
-    """``sum(log scale[m])`` per row: the mixture subtracts the log-scale of every feature,
-    a marginal only those of the observed ones."""
-    return mask @ np.log(model.scale)
+_SPANS = {"full": _full_span, "diag": _diag_span, "spherical": _diag_span}
 
 
 def gap_log_joint(model, Zf, mask, learn=False):
@@ -325,9 +418,36 @@ def gap_correction(model, Zf, mask, learn=False):
         With ``learn``: the completed rows and the conditional covariances, for
         :func:`gap_moments`.
     """
-    corr, aux = _GAPS[model.covariance](model, Zf, mask, learn)
-    corr += _scale_term(model, mask)
-    return corr, (aux if learn else None)
+    n = Zf.shape[0]
+    layout = GapLayout(np.arange(n), Zf, mask, np.log(model.scale), model.covariance)
+    corr = np.zeros((model.n_components, n))
+    return corr, span_correction(model, layout, layout.span(0, n), corr, learn)
+
+
+def span_correction(model, layout, part, out, learn=False):
+    """Add :func:`gap_correction`'s correction of the rows ``part`` of a layout to
+    their columns of a log-joint.
+
+    Parameters
+    ----------
+    model : Mixture
+    layout : GapLayout
+    part : tuple
+        From ``layout.span``.
+    out : ndarray of shape (n_components, n)
+        Gets the correction of the layout's row numbered ``i`` in column ``i``.
+    learn : bool
+        Also return what the E-step needs.
+
+    Returns
+    -------
+    aux : tuple or None
+        With ``learn``, for :func:`span_completion`.
+    """
+    aux = _SPANS[model.covariance](model, layout, part, learn, out)
+    if not learn:
+        return None
+    return (layout.Zf[part[0]:part[1]],) + aux
 
 
 def gap_moments(model, W, aux):
@@ -374,9 +494,29 @@ def completion_moments(model, W, aux):
         Added to the filled rows' statistics with weights ``W`` they give those of
         :func:`gap_moments`.
     """
+    return span_completion(model, lambda rows: W[:, rows].T, aux)
+
+
+def span_completion(model, weights, aux):
+    """:func:`completion_moments` of the rows of a span.
+
+    Parameters
+    ----------
+    model : Mixture
+    weights : callable
+        ``weights(rows)``: the E-step weights (len(rows), n_components) of the layout's
+        rows numbered ``rows``.
+    aux : tuple
+        From :func:`span_correction` with ``learn``.
+
+    Returns
+    -------
+    s1, s2 : ndarray
+        As :func:`completion_moments`'.
+    """
     if model.covariance == "full":
-        return _full_correction(W, aux)
-    s1, s2 = _diag_correction(W, aux)
+        return _full_correction(weights, aux[1:])
+    s1, s2 = _diag_correction(weights(aux[-1]).T, aux[1:])
     if model.covariance == "spherical":
         s2 = s2.sum(axis=1) / model.n_features
     return s1, s2
@@ -406,12 +546,12 @@ def expected_scatter(model, Zf, mask, resp):
     _, aux = gap_correction(model, Zf, mask, learn=True)
     D = Zf.shape[1]
     if model.covariance == "full":
-        s1, scatter = _full_correction(resp, aux)
+        s1, scatter = _full_correction(lambda rows: resp[:, rows].T, aux[1:])
         s1 += resp @ Zf
         for k in range(resp.shape[0]):
             scatter[k] += (Zf * resp[k][:, None]).T @ Zf
         return s1, scatter
-    zhat, cond = _diag_completed(aux)
+    zhat, cond = _diag_completed(aux[1:])
     s1 = np.einsum("kn,knd->kd", resp, zhat)
     scatter = np.matmul(np.swapaxes(zhat * resp[:, :, None], 1, 2), zhat)
     idx = np.arange(D)
