@@ -49,7 +49,7 @@ class _Group:
     zero slot past the last pair and at feature 0, ``real`` (n, r, r) says which
     cells are not padding and ``count`` (n,) how many features each row misses."""
 
-    __slots__ = ("rows", "pos", "cols", "const", "cells", "real", "count")
+    __slots__ = ("at", "rows", "pos", "cols", "const", "cells", "real", "count")
 
     def __init__(self, at, layout, place, col, start, count, width):
         n_pairs, n_features = col.size, layout.Zf.shape[1]
@@ -58,7 +58,7 @@ class _Group:
         valid = np.arange(width) < self.count[:, None]
         if width > 2:
             pair = np.where(valid, pair, n_pairs)
-        self.rows = layout.rows[at]
+        self.at, self.rows = at, layout.rows[at]
         self.const = layout.scale_term[at] + (0.5 * LOG_2PI) * self.count
         self.pos = np.append(place, n_pairs)[pair]
         self.cols = np.append(col, 0)[pair]
@@ -285,7 +285,7 @@ def full_span(model, layout, part, learn, out):
     return (layout, part, pieces, K) if learn else None
 
 
-def full_completion(weights, aux):
+def full_completion(W, aux):
     """What completing a span's rows adds to the moments of the rows filled at zero.
 
     A row completes to ``zhat = z + delta`` with ``delta = -H^-1 g`` on its missing
@@ -295,9 +295,8 @@ def full_completion(weights, aux):
 
     Parameters
     ----------
-    weights : callable
-        ``weights(rows)``: the E-step weights (len(rows), n_components) of the layout's
-        rows numbered ``rows``.
+    W : ndarray of shape (n_part, n_components)
+        The E-step weights of the span's rows, C-ordered.
     aux : tuple
         From :func:`full_span` with ``learn``.
 
@@ -306,22 +305,24 @@ def full_completion(weights, aux):
     s1 : ndarray of shape (n_components, n_features)
     s2 : ndarray of shape (n_components, n_features, n_features)
     """
-    layout, (_, _, columns, _), pieces, K = aux
+    layout, (a, _, columns, _), pieces, K = aux
     D = layout.Zf.shape[1]
     # per pair: W H^-1 g = -W delta (first K) and the diagonal of W (delta delta^T +
     # H^-1) (last K); the sums of both per feature come out of the cross products
     # below (the pairs' last column is 1)
     VU = layout.work(2 * K)
+    rows_of = np.dtype((np.void, VU.itemsize * 2 * K))    # a pair's row as one item
     upper = np.zeros(D * D * K)         # the cells above the diagonal, once, cell-major
     for grp, u, v, step, inv, above in pieces:
-        w = weights(grp.rows[u:v])
+        w = np.take(W, grp.at[u:v] - a, axis=0)
         if step.ndim == 3:
             w = w[:, None]
         both = np.empty(step.shape[:-1] + (2 * K,))
         ws = np.multiply(w, step, out=both[..., :K])
         np.multiply(ws, step, out=both[..., K:])
         both[..., K:] += w * inv
-        VU[grp.pos[u:v, 0] if step.ndim == 2 else grp.pos[u:v, :step.shape[1]]] = both
+        pos = grp.pos[u:v, 0] if step.ndim == 2 else grp.pos[u:v, :step.shape[1]]
+        np.put(VU.view(rows_of), pos, both.view(rows_of))
         if above is not None:
             i, j = _above(step.shape[1])
             cells = grp.cells[u:v, i, j, None] * K + np.arange(K)

@@ -165,16 +165,12 @@ def learn_span_gaps(mixture, X, lo, hi, gaps, row_w, out, rows):
         return accumulate(mixture, A, out.resp_kn[:, lo:hi], row_w)
     A, aux = score_span_gaps(mixture, X, lo, hi, layout, part, out, rows, learn=True)
     s0, s1, s2 = accumulate(mixture, A, out.resp_kn[:, lo:hi], row_w)
-    floor = mixture.resp_floor
-
-    def weights(at):
-        W = np.take(out.resp_kn, at, axis=1)
-        if floor > 0.0:
-            W[W < floor] = 0.0
-        W *= row_w[at - lo]
-        return W.T
-
-    c1, c2 = missing.span_completion(mixture, weights, aux)
+    W = np.take(out.resp_kn, layout.rows[ga:gb], axis=1)
+    if mixture.resp_floor > 0.0:
+        W[W < mixture.resp_floor] = 0.0
+    W *= row_w[layout.rows[ga:gb] - lo]
+    W = np.ascontiguousarray(W.T)
+    c1, c2 = missing.span_completion(mixture, W, aux)
     return s0, s1 + c1, s2 + c2
 
 

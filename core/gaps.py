@@ -121,11 +121,14 @@ def find(X, kern=None) -> Gaps | None:
     suspect = np.flatnonzero(~np.isfinite(X @ np.ones(X.shape[1])))
     if suspect.size == 0:
         return None
-    sub = X[suspect]
+    sub = np.take(X, suspect, axis=0)
     if np.isinf(sub).any():
         raise ModelError(_INFINITE)
     nan = np.isnan(sub)
-    keep = nan.any(axis=1)     # the others only overflowed their sum: finite rows
+    # the others only overflowed their sum: finite rows (a count in bytes by one
+    # product is several times quicker than any() along rows this short)
+    keep = (nan.view(np.uint8) @ np.ones(X.shape[1], np.uint8) > 0 if X.shape[1] < 256
+            else nan.any(axis=1))
     if not keep.any():
         return None
     return Gaps(suspect[keep], nan[keep])

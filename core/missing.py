@@ -66,7 +66,7 @@ def _diag_span(model, layout, part, learn, out):
     corr, aux = _diag_gaps(model, layout.Zf[a:b], layout.mask[a:b], learn)
     corr += layout.scale_term[a:b]
     out[:, layout.rows[a:b]] += corr
-    return aux and aux + (layout.rows[a:b],)
+    return aux
 
 
 def _diag_correction(W, aux):
@@ -214,18 +214,17 @@ def completion_moments(model, W, aux):
         Added to the filled rows' statistics with weights ``W`` they give those of
         :func:`gap_moments`.
     """
-    return span_completion(model, lambda rows: W[:, rows].T, aux)
+    return span_completion(model, np.ascontiguousarray(W.T), aux)
 
 
-def span_completion(model, weights, aux):
+def span_completion(model, W, aux):
     """:func:`completion_moments` of the rows of a span.
 
     Parameters
     ----------
     model : Mixture
-    weights : callable
-        ``weights(rows)``: the E-step weights (len(rows), n_components) of the layout's
-        rows numbered ``rows``.
+    W : ndarray of shape (n_part, n_components)
+        The E-step weights of the span's rows, C-ordered.
     aux : tuple
         From :func:`span_correction` with ``learn``.
 
@@ -235,8 +234,8 @@ def span_completion(model, weights, aux):
         As :func:`completion_moments`'.
     """
     if model.covariance == "full":
-        return full_completion(weights, aux[1:])
-    s1, s2 = _diag_correction(weights(aux[-1]).T, aux[1:])
+        return full_completion(W, aux[1:])
+    s1, s2 = _diag_correction(W.T, aux[1:])
     if model.covariance == "spherical":
         s2 = s2.sum(axis=1) / model.n_features
     return s1, s2
@@ -266,7 +265,7 @@ def expected_scatter(model, Zf, mask, resp):
     _, aux = gap_correction(model, Zf, mask, learn=True)
     D = Zf.shape[1]
     if model.covariance == "full":
-        s1, scatter = full_completion(lambda rows: resp[:, rows].T, aux[1:])
+        s1, scatter = full_completion(np.ascontiguousarray(resp.T), aux[1:])
         s1 += resp @ Zf
         for k in range(resp.shape[0]):
             scatter[k] += (Zf * resp[k][:, None]).T @ Zf
