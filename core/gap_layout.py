@@ -41,29 +41,32 @@ def precision_matrices(model):
 
 class _Group:
     """The rows of a layout that miss ``r`` features (the last group: ``r`` or more):
-    ``rows`` their numbers, ``pos`` (n, r) where their pairs sit in the feature order,
-    ``cols`` (n, r) the features, ``const`` (n,) the correction's constant
-    ``0.5 |m| log 2 pi + sum(log scale[m])``; for more than one feature ``cells``
-    (n, r, r), the flat (feature, feature) cells of their ``H``. In the last group
-    the rows missing fewer than the widest are padded: their extra pairs point at the
-    zero slot past the last pair and at feature 0, ``real`` (n, r, r) says which
-    cells are not padding and ``count`` (n,) how many features each row misses."""
+    ``at`` their places in the layout, ``rows`` their numbers, ``pos`` (n, r) where
+    their pairs sit in the feature order, ``cols`` (n, r) the features, ``const`` (n,)
+    the correction's constant ``0.5 |m| log 2 pi + sum(log scale[m])``, ``cells``
+    (n, r, r) the flat (feature, feature) cells of their ``H``, ``keys`` (n, r, r) the
+    same where the statistics gather them, and ``count`` (n,) how many features each
+    row misses. In the last group the rows missing fewer than the widest are padded to
+    an identity block: their extra pairs point at the zero slot past the last pair and
+    at feature 0, their extra cells at the cell past the last (one, on the diagonal)
+    or the one after it (zero), their extra keys at cell 0 (with zero weight)."""
 
-    __slots__ = ("at", "rows", "pos", "cols", "const", "cells", "real", "count")
+    __slots__ = ("at", "rows", "pos", "cols", "const", "cells", "keys", "count")
 
     def __init__(self, at, layout, place, col, start, count, width):
         n_pairs, n_features = col.size, layout.Zf.shape[1]
         pair = start[at][:, None] + np.arange(width)
         self.count = count[at]
+        self.at, self.rows = at, layout.rows[at]
+        self.const = layout.scale_term[at] + (0.5 * LOG_2PI) * self.count
         valid = np.arange(width) < self.count[:, None]
         if width > 2:
             pair = np.where(valid, pair, n_pairs)
-        self.at, self.rows = at, layout.rows[at]
-        self.const = layout.scale_term[at] + (0.5 * LOG_2PI) * self.count
         self.pos = np.append(place, n_pairs)[pair]
         self.cols = np.append(col, 0)[pair]
-        self.cells = self.cols[:, :, None] * n_features + self.cols[:, None, :]
-        self.real = valid[:, :, None] & valid[:, None, :]
+        self.keys = self.cols[:, :, None] * n_features + self.cols[:, None, :]
+        self.cells = np.where(valid[:, :, None] & valid[:, None, :], self.keys,
+                              n_features * n_features + ~np.eye(width, dtype=bool))
 
 
 class GapLayout:
@@ -103,33 +106,38 @@ class GapLayout:
 
     def __init__(self, rows, Z, mask, log_scale, covariance):
         n, D = mask.shape
-        self.rows, self.mask = rows, mask
-        row, col = np.divmod(np.flatnonzero(mask), D)      # in row order
-        self.Zf = Z
-        Z[row, col] = 0.0
+        self.rows, self.mask, self.Zf = rows, mask, Z
+        flat = np.flatnonzero(mask)                     # the pairs in row order
+        row, col = np.divmod(flat, D)
+        if Z.flags.c_contiguous:
+            Z.reshape(-1)[flat] = 0.0
+        else:
+            Z[row, col] = 0.0
         count = np.bincount(row, minlength=n)
         # sum(log scale[m]): the mixture subtracts the log-scale of every feature, a
         # marginal only those of the observed ones
         self.scale_term = np.bincount(row, weights=log_scale[col], minlength=n)
         self.pairs, self.groups, self._work = None, (), None
-        self._keys = rows
-        if covariance != "full" or not n:
-            return
-        by_col = np.argsort(col.astype(np.int16 if D < 1 << 15 else np.int64),
-                            kind="stable")
-        place = np.empty_like(by_col)       # row order -> feature order
-        place[by_col] = np.arange(by_col.size)
-        self.pairs = np.empty((by_col.size, D + 1))      # each pair's row, then a 1
-        self.pairs[:, D] = 1.0
-        np.take(Z, row[by_col], axis=0, out=self.pairs[:, :D])
-        start = np.cumsum(count) - count
-        groups = [np.flatnonzero(count == 1), np.flatnonzero(count == 2),
-                  np.flatnonzero(count >= 3)]
-        widest = max(3, int(count.max()))
-        self.groups = tuple(_Group(at, self, place, col, start, count, width)
-                            for at, width in zip(groups, (1, 2, widest)))
-        self._keys = np.concatenate([col[by_col] * n + row[by_col]]
-                                    + [(D + r) * n + at for r, at in enumerate(groups)])
+        # the keys of span(): the rows' numbers, after the pairs' and the groups'
+        size = int(rows[-1]) + 1 if n else 0
+        keys = [(D + 3) * size + rows]
+        if covariance == "full" and n:
+            by_col = np.argsort(col.astype(np.int16 if D < 1 << 15 else np.int64),
+                                kind="stable")
+            place = np.empty_like(by_col)       # row order -> feature order
+            place[by_col] = np.arange(by_col.size)
+            self.pairs = np.empty((by_col.size, D + 1))  # each pair's row, then a 1
+            self.pairs[:, D] = 1.0
+            self.pairs[:, :D] = np.take(Z, row[by_col], axis=0)
+            start = np.cumsum(count) - count
+            groups = [np.flatnonzero(count == 1), np.flatnonzero(count == 2),
+                      np.flatnonzero(count >= 3)]
+            widest = max(3, int(count.max()))
+            self.groups = tuple(_Group(at, self, place, col, start, count, width)
+                                for at, width in zip(groups, (1, 2, widest)))
+            keys = ([col[by_col] * size + rows[row[by_col]]]
+                    + [(D + r) * size + rows[at] for r, at in enumerate(groups)] + keys)
+        self._keys = np.concatenate(keys)
 
     def span(self, lo, hi):
         """The layout's rows numbered ``lo`` to ``hi - 1``.
@@ -146,12 +154,14 @@ class GapLayout:
             and ``groups``, the slices ``(u, v)`` of each group's rows and, last, the
             widest of the last group's rows in the span.
         """
-        a, b = np.searchsorted(self.rows, (lo, hi)).tolist()
+        n, D = self.mask.shape
+        size = int(self.rows[-1]) + 1 if n else 0
+        lo, hi = min(lo, size), min(hi, size)
+        base = np.arange(D + 4) * size
+        cut = np.searchsorted(self._keys, np.stack((base + lo, base + hi), 1).ravel()).tolist()
+        a, b = cut[-2] - (self._keys.size - n), cut[-1] - (self._keys.size - n)
         if self.pairs is None:
             return a, b, (), ()
-        n, D = self.mask.shape
-        base = np.arange(D + 3) * n
-        cut = np.searchsorted(self._keys, np.stack((base + a, base + b), 1).ravel()).tolist()
         columns = [(c, cut[2 * c], cut[2 * c + 1]) for c in range(D)
                    if cut[2 * c + 1] > cut[2 * c]]
         offset, groups = self.pairs.shape[0], []
@@ -189,7 +199,30 @@ def _above(width):
     return np.triu_indices(width, 1)
 
 
-def full_span(model, layout, part, learn, out):
+def _invert(H):
+    """``H^-1`` and ``log det H`` of a stack of small positive-definite matrices
+    (..., r, r).
+
+    Gauss-Jordan elimination over the whole stack at once on ``[H | I]``, no
+    pivoting: a positive-definite matrix keeps positive pivots (the squares of its
+    Cholesky diagonal), their logs sum to ``log det H``, and a few vectorised passes
+    cost less than LAPACK's calls per matrix at these sizes.
+    """
+    r = H.shape[-1]
+    M = np.concatenate((H, np.broadcast_to(np.eye(r), H.shape)), axis=-1)
+    pivots = np.empty(H.shape[:-1])
+    for j in range(r):
+        pivots[..., j] = M[..., j, j]
+        M[..., j, :] /= pivots[..., j, None]
+        factor = M[..., :, j].copy()
+        factor[..., j] = 0.0
+        M -= factor[..., :, None] * M[..., None, j, :]
+    if not np.all(pivots > 0.0):
+        raise np.linalg.LinAlgError("a precision block is not positive definite")
+    return M[..., r:], np.sum(np.log(pivots), axis=-1)
+
+
+def full_span(model, layout, part, learn, out, first):
     """Correct the log-joint of a span's rows filled at zero to their marginals.
 
     Pair-major throughout (rows, then components): gathering whole rows of K values
@@ -205,8 +238,9 @@ def full_span(model, layout, part, learn, out):
     learn : bool
         Also return what the E-step needs.
     out : ndarray of shape (n_components, n)
-        C-ordered log-joint; the layout's row numbered ``i`` gets its correction in
-        column ``i``.
+        C-ordered; the layout's row numbered ``i`` gets its correction in column
+        ``i - first``.
+    first : int
 
     Returns
     -------
@@ -225,11 +259,12 @@ def full_span(model, layout, part, learn, out):
     gp = layout.work(K)
     for c, p, q in columns:
         np.matmul(layout.pairs[p:q], lam1[:, c].T, out=gp[p:q])
-    flat = lam.reshape(K, D * D).T              # (D * D, K): cell-major
-    diag = flat[:: D + 1]
-    # flat places (K, rows) of the rows' log-joint: along the components' rows, the
+    # the precisions' cells (D * D, K), then a cell of ones and one of zeros (padding)
+    flat = np.concatenate((lam.reshape(K, D * D).T, [np.ones(K), np.zeros(K)]))
+    diag = flat[: D * D : D + 1]
+    # flat places (K, rows) of the rows' corrections: along the components' rows, the
     # order memory has
-    lanes = out.shape[1] * np.arange(K)[:, None]
+    lanes = out.shape[1] * np.arange(K)[:, None] - first
     out = out.reshape(-1)
     pieces = []
     (one, two, more), ((u, v), (u2, v2), (u3, v3, width)) = layout.groups, groups
@@ -238,15 +273,17 @@ def full_span(model, layout, part, learn, out):
         g = np.take(gp, one.pos[u:v, 0], axis=0)
         table = np.take(np.concatenate((1.0 / diag, np.log(diag)), axis=1),
                         one.cols[u:v, 0], axis=0)
-        inv = table[:, :K]
-        step = g * inv
+        sd = np.empty((v - u, 1, 2, K))     # per pair: step, its square + H^-1
+        step = np.multiply(g, table[:, :K], out=sd[:, 0, 0])
         corr = g * step
         corr -= table[:, K:]
         corr *= 0.5
         corr += one.const[u:v, None]
-        out[lanes + one.rows[u:v]] += corr.T
+        out[lanes + one.rows[u:v]] = corr.T
         if learn:
-            pieces.append((one, u, v, step, inv, None))
+            np.multiply(step, step, out=sd[:, 0, 1])
+            sd[:, 0, 1] += table[:, :K]
+            pieces.append((one, u, v, sd, None))
     if v2 > u2:
         # two, in closed form
         g = np.take(gp, two.pos[u2:v2], axis=0)            # (rows, 2, K)
@@ -255,33 +292,34 @@ def full_span(model, layout, part, learn, out):
         det = h[:, 0] * h[:, 1] - h01 * h01
         inv = h[:, ::-1] / det[:, None]
         inv01 = -h01 / det
-        step = inv * g
+        sd = np.empty((v2 - u2, 2, 2, K))
+        step = np.multiply(inv, g, out=sd[:, :, 0])
         step += inv01[:, None] * g[:, ::-1]
         corr = np.einsum("nrk,nrk->nk", g, step) - np.log(det)
         corr *= 0.5
         corr += two.const[u2:v2, None]
-        out[lanes + two.rows[u2:v2]] += corr.T
+        out[lanes + two.rows[u2:v2]] = corr.T
         if learn:
-            pieces.append((two, u2, v2, step, inv, inv01[:, None]))
+            np.multiply(step, step, out=sd[:, :, 1])
+            sd[:, :, 1] += inv
+            pieces.append((two, u2, v2, sd, (step[:, 0] * step[:, 1] + inv01)[:, None]))
     if v3 > u3:
         # more (few rows): each H padded to the widest of the span with an identity
         # block (inverse and determinant of the real block unchanged; g is zero in the
-        # padding); LAPACK over the stack, components first
-        real = more.real[u3:v3, None, :width, :width]
+        # padding), components first
         g = np.take(gp, more.pos[u3:v3, :width], axis=0).transpose(0, 2, 1)
-        H = np.where(real, np.moveaxis(np.take(flat, more.cells[u3:v3, :width, :width],
-                                               axis=0), -1, 1), np.eye(width))
-        chol = np.linalg.cholesky(H)            # refuses a block that is not positive definite
-        log_det = 2.0 * np.sum(np.log(np.diagonal(chol, 0, -2, -1)), axis=-1)
-        inv = np.linalg.inv(H) * real
+        H = np.take(flat, more.cells[u3:v3, :width, :width], axis=0)
+        inv, log_det = _invert(np.moveaxis(H, -1, 1))
         step = (inv @ g[..., None])[..., 0]       # (rows, K, r)
         corr = 0.5 * (np.einsum("nkr,nkr->nk", g, step) - log_det) + more.const[u3:v3, None]
-        out[lanes + more.rows[u3:v3]] += corr.T
+        out[lanes + more.rows[u3:v3]] = corr.T
         if learn:
             i, j = _above(width)
-            pieces.append((more, u3, v3, step.transpose(0, 2, 1),
-                           np.diagonal(inv, 0, -2, -1).transpose(0, 2, 1),
-                           inv[..., i, j].transpose(0, 2, 1)))
+            step = step.transpose(0, 2, 1)
+            sd = np.stack((step, step * step + np.diagonal(inv, 0, -2, -1).transpose(0, 2, 1)),
+                          axis=2)
+            pieces.append((more, u3, v3, sd, step[:, i] * step[:, j]
+                           + inv[..., i, j].transpose(0, 2, 1)))
     return (layout, part, pieces, K) if learn else None
 
 
@@ -313,21 +351,15 @@ def full_completion(W, aux):
     VU = layout.work(2 * K)
     rows_of = np.dtype((np.void, VU.itemsize * 2 * K))    # a pair's row as one item
     upper = np.zeros(D * D * K)         # the cells above the diagonal, once, cell-major
-    for grp, u, v, step, inv, above in pieces:
+    for grp, u, v, sd, off in pieces:
         w = np.take(W, grp.at[u:v] - a, axis=0)
-        if step.ndim == 3:
-            w = w[:, None]
-        both = np.empty(step.shape[:-1] + (2 * K,))
-        ws = np.multiply(w, step, out=both[..., :K])
-        np.multiply(ws, step, out=both[..., K:])
-        both[..., K:] += w * inv
-        pos = grp.pos[u:v, 0] if step.ndim == 2 else grp.pos[u:v, :step.shape[1]]
-        np.put(VU.view(rows_of), pos, both.view(rows_of))
-        if above is not None:
-            i, j = _above(step.shape[1])
-            cells = grp.cells[u:v, i, j, None] * K + np.arange(K)
-            upper += np.bincount(cells.ravel(), weights=(ws[:, i] * step[:, j]
-                                                         + w * above).ravel(),
+        both = sd * w[:, None, None]
+        r = sd.shape[1]
+        np.put(VU.view(rows_of), grp.pos[u:v, :r], both.reshape(-1, r, 2 * K).view(rows_of))
+        if off is not None:
+            i, j = _above(r)
+            keys = grp.keys[u:v, i, j, None] * K + np.arange(K)
+            upper += np.bincount(keys.ravel(), weights=(w[:, None] * off).ravel(),
                                  minlength=D * D * K)
     # cross terms, one missing feature at a time: sum_i -W_ki delta_kic (z_i, 1)
     cross = np.zeros((2 * K, D, D + 1))

@@ -96,20 +96,23 @@ def score_span_gaps(mixture, X, lo, hi, layout, part, out, rows, learn):
     family = mixture.family
     operator = mixture.scoring_operator
     A = np.empty((hi - lo, family.width(mixture.n_features)))
+    # the corrections first (they need the parameters, not the log-joint), then block
+    # by block: the ordinary log-joint, the corrections on it, the scores
+    corr = np.zeros((mixture.n_components, hi - lo))
+    aux = missing.span_correction(mixture, layout, part, corr, learn, first=lo)
     ga, gb = part[:2]
-    at = layout.rows[ga:gb]
-    cut = (np.searchsorted(at, np.arange(lo, hi, BLOCK_ROWS)) + ga).tolist() + [gb]
+    cut = (np.searchsorted(layout.rows[ga:gb], np.arange(lo, hi, BLOCK_ROWS)) + ga).tolist()
+    cut.append(gb)
     for i, a in enumerate(range(lo, hi, BLOCK_ROWS)):
         b = min(a + BLOCK_ROWS, hi)
         Zb = X[a:b] if rows is None else rows(X[a:b])
         if rows is not None and cut[i] < cut[i + 1]:
             Zb[layout.rows[cut[i] : cut[i + 1]] - a] = layout.Zf[cut[i] : cut[i + 1]]
         Ab = family.design(Zb, out=A[a - lo : b - lo])
-        family.log_joint(Ab, operator, out=out.resp_kn[:, a:b])
-    aux = missing.span_correction(mixture, layout, part, out.resp_kn, learn)
-    for a in range(lo, hi, BLOCK_ROWS):
-        b = min(a + BLOCK_ROWS, hi)
-        normalise(out.resp_kn[:, a:b], out, a, b, mixture.log_scale_sum)
+        resp = out.resp_kn[:, a:b]
+        family.log_joint(Ab, operator, out=resp)
+        resp += corr[:, a - lo : b - lo]
+        normalise(resp, out, a, b, mixture.log_scale_sum)
     return A, aux
 
 

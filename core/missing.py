@@ -61,11 +61,11 @@ def _diag_gaps(model, Z, mask, learn):
     return corr, ((Z, M, model.means, 1.0 / prec) if learn else None)
 
 
-def _diag_span(model, layout, part, learn, out):
+def _diag_span(model, layout, part, learn, out, first):
     a, b = part[:2]
     corr, aux = _diag_gaps(model, layout.Zf[a:b], layout.mask[a:b], learn)
     corr += layout.scale_term[a:b]
-    out[:, layout.rows[a:b]] += corr
+    out[:, layout.rows[a:b] - first] = corr
     return aux
 
 
@@ -140,13 +140,13 @@ def gap_correction(model, Zf, mask, learn=False):
     """
     n = Zf.shape[0]
     layout = GapLayout(np.arange(n), Zf, mask, np.log(model.scale), model.covariance)
-    corr = np.zeros((model.n_components, n))
+    corr = np.empty((model.n_components, n))
     return corr, span_correction(model, layout, layout.span(0, n), corr, learn)
 
 
-def span_correction(model, layout, part, out, learn=False):
-    """Add :func:`gap_correction`'s correction of the rows ``part`` of a layout to
-    their columns of a log-joint.
+def span_correction(model, layout, part, out, learn=False, first=0):
+    """:func:`gap_correction` of the rows ``part`` of a layout, into their columns of
+    ``out``.
 
     Parameters
     ----------
@@ -155,16 +155,18 @@ def span_correction(model, layout, part, out, learn=False):
     part : tuple
         From ``layout.span``.
     out : ndarray of shape (n_components, n)
-        Gets the correction of the layout's row numbered ``i`` in column ``i``.
+        C-ordered; gets the correction of the layout's row numbered ``i`` in column
+        ``i - first`` (its other columns untouched).
     learn : bool
         Also return what the E-step needs.
+    first : int
 
     Returns
     -------
     aux : tuple or None
         With ``learn``, for :func:`span_completion`.
     """
-    aux = _SPANS[model.covariance](model, layout, part, learn, out)
+    aux = _SPANS[model.covariance](model, layout, part, learn, out, first)
     if not learn:
         return None
     return (layout.Zf[part[0]:part[1]],) + aux
