@@ -40,29 +40,36 @@ def precision_matrices(model):
 
 
 class _Group:
-    """The rows of a layout that miss ``r`` features (the last group: ``r`` or more):
-    ``at`` their places in the layout, ``rows`` their numbers, ``pos`` (n, r) where
-    their pairs sit in the feature order, ``cols`` (n, r) the features, ``const`` (n,)
-    the correction's constant ``0.5 |m| log 2 pi + sum(log scale[m])``, ``cells``
-    (n, r, r) the flat (feature, feature) cells of their ``H``, ``keys`` (n, r, r) the
-    same where the statistics gather them, and ``count`` (n,) how many features each
-    row misses. In the last group the rows missing fewer than the widest are padded to
-    an identity block: their extra pairs point at the zero slot past the last pair and
-    at feature 0, their extra cells at the cell past the last (one, on the diagonal)
-    or the one after it (zero), their extra keys at cell 0 (with zero weight)."""
+    """The rows of a layout that miss ``r`` features (the last group: ``r`` or more),
+    in order: ``rows`` their numbers, ``loc`` their columns in their span's arrays
+    (number less the span's first), ``wat`` their places among the span's rows,
+    ``pos`` (n, r) where their pairs sit among the span's padded pairs, ``cols`` (n, r)
+    the features, ``const`` (n,) the correction's constant ``0.5 |m| log 2 pi +
+    sum(log scale[m])``, ``cells`` (n, r, r) the flat (feature, feature) cells of
+    their ``H``, ``keys`` (n, r, r) the same where the statistics gather them,
+    ``count`` (n,) how many features each row misses and ``cuts`` (n_spans + 1,)
+    where each span's rows start. In the last group the rows missing fewer than the
+    widest are padded to an identity block: their extra pairs point at the zero slot
+    past the span's pairs and at feature 0, their extra cells at the cell past the last
+    (one, on the diagonal) or the one after it (zero), their extra keys at cell 0
+    (with zero weight)."""
 
-    __slots__ = ("at", "rows", "pos", "cols", "const", "cells", "keys", "count")
+    __slots__ = ("rows", "loc", "wat", "pos", "cols", "const", "cells", "keys", "count",
+                 "cuts")
 
-    def __init__(self, at, layout, place, col, start, count, width):
-        n_pairs, n_features = col.size, layout.Zf.shape[1]
+    def __init__(self, at, layout, span_of, local, col, start, count, width, slot):
+        n_features = layout.Zf.shape[1]
         pair = start[at][:, None] + np.arange(width)
         self.count = count[at]
-        self.at, self.rows = at, layout.rows[at]
+        self.rows = layout.rows[at]
+        self.loc = self.rows - layout.bounds[span_of[at]]
+        self.wat = at - layout.cuts[span_of[at]]
+        self.cuts = np.searchsorted(at, layout.cuts)
         self.const = layout.scale_term[at] + (0.5 * LOG_2PI) * self.count
         valid = np.arange(width) < self.count[:, None]
         if width > 2:
-            pair = np.where(valid, pair, n_pairs)
-        self.pos = np.append(place, n_pairs)[pair]
+            pair = np.where(valid, pair, col.size)
+        self.pos = np.append(local, slot)[pair]
         self.cols = np.append(col, 0)[pair]
         self.keys = self.cols[:, :, None] * n_features + self.cols[:, None, :]
         self.cells = np.where(valid[:, :, None] & valid[:, None, :], self.keys,
@@ -73,18 +80,19 @@ class GapLayout:
     """Rows with gaps arranged for the algebra, whatever the parameters.
 
     Which rows miss which features does not change with the parameters: the layout is
-    made once for a batch and cut into spans (:meth:`span`) between the points where
-    the parameters change, so that a span does only the algebra that depends on them.
-    For the full type the (row, missing feature) pairs are ordered by feature, then
-    row, so that ``g = (Lam (z - mu))_m`` takes one small product per feature over a
-    contiguous run of pairs; and the rows are grouped by how many features they miss
-    (one, two, three or more), each group with where its pairs sit in that order.
+    made once for a batch, for the spans between the points where the parameters
+    change, so that a span does only the algebra that depends on them. For the full
+    type each span's (row, missing feature) pairs are laid out by feature, each
+    feature's run padded to the longest run of the batch with zero rows, so that
+    ``g = (Lam (z - mu))_m`` for the whole span is one stacked product, feature by
+    feature; and the rows are grouped by how many features they miss (one, two,
+    three or more), each group with where its pairs sit in that layout.
 
     Parameters
     ----------
     rows : ndarray of shape (n_rows,)
-        Increasing numbers of the rows: the columns of the log-joint and weights the
-        corrections go to and the weights come from.
+        Increasing numbers of the rows: where the corrections go and the weights come
+        from.
     Z : ndarray of shape (n_rows, n_features)
         Standardised rows; their missing values are not read, and set to zero in
         place.
@@ -94,19 +102,30 @@ class GapLayout:
         ``log`` of the standardisation's scale (see :func:`gap_correction`).
     covariance : str
         The mixture's covariance type: the pairs are for the full type only.
+    bounds : array-like of int or None
+        Increasing numbers where the spans start, then where the last ends (past the
+        last row); None for one span over all the rows.
 
     Attributes
     ----------
     rows, mask : ndarray
     Zf : ndarray of shape (n_rows, n_features)
         The rows with their missing values at zero.
+    bounds : ndarray of shape (n_spans + 1,)
+    cuts : ndarray of shape (n_spans + 1,)
+        Where each span's rows start among the layout's.
     """
 
-    __slots__ = ("rows", "mask", "Zf", "scale_term", "pairs", "groups", "_keys", "_work")
+    __slots__ = ("rows", "mask", "Zf", "scale_term", "bounds", "cuts", "padded", "groups",
+                 "_index", "_work", "_scratch")
 
-    def __init__(self, rows, Z, mask, log_scale, covariance):
+    def __init__(self, rows, Z, mask, log_scale, covariance, bounds=None):
         n, D = mask.shape
         self.rows, self.mask, self.Zf = rows, mask, Z
+        end = int(rows[-1]) + 1 if n else 0
+        self.bounds = np.asarray([0, end] if bounds is None else bounds, dtype=np.int64)
+        self.cuts = np.searchsorted(rows, self.bounds)
+        self._index = {lo: s for s, lo in enumerate(self.bounds[:-1].tolist())}
         flat = np.flatnonzero(mask)                     # the pairs in row order
         row, col = np.divmod(flat, D)
         if Z.flags.c_contiguous:
@@ -117,27 +136,33 @@ class GapLayout:
         # sum(log scale[m]): the mixture subtracts the log-scale of every feature, a
         # marginal only those of the observed ones
         self.scale_term = np.bincount(row, weights=log_scale[col], minlength=n)
-        self.pairs, self.groups, self._work = None, (), None
-        # the keys of span(): the rows' numbers, after the pairs' and the groups'
-        size = int(rows[-1]) + 1 if n else 0
-        keys = [(D + 3) * size + rows]
-        if covariance == "full" and n:
-            by_col = np.argsort(col.astype(np.int16 if D < 1 << 15 else np.int64),
-                                kind="stable")
-            place = np.empty_like(by_col)       # row order -> feature order
-            place[by_col] = np.arange(by_col.size)
-            self.pairs = np.empty((by_col.size, D + 1))  # each pair's row, then a 1
-            self.pairs[:, D] = 1.0
-            self.pairs[:, :D] = np.take(Z, row[by_col], axis=0)
-            start = np.cumsum(count) - count
-            groups = [np.flatnonzero(count == 1), np.flatnonzero(count == 2),
-                      np.flatnonzero(count >= 3)]
-            widest = max(3, int(count.max()))
-            self.groups = tuple(_Group(at, self, place, col, start, count, width)
-                                for at, width in zip(groups, (1, 2, widest)))
-            keys = ([col[by_col] * size + rows[row[by_col]]]
-                    + [(D + r) * size + rows[at] for r, at in enumerate(groups)] + keys)
-        self._keys = np.concatenate(keys)
+        self.padded, self.groups, self._work, self._scratch = None, (), None, {}
+        if covariance != "full" or not n:
+            return
+        n_spans = self.bounds.size - 1
+        span_of = np.repeat(np.arange(n_spans), np.diff(self.cuts))
+        # each pair's run (span, feature), its rank in the run, its padded place
+        run = span_of[row] * D + col
+        order = np.argsort(run.astype(np.int16 if n_spans * D < 1 << 15 else np.int64),
+                           kind="stable")
+        size = np.bincount(run, minlength=n_spans * D)
+        longest = int(size.max())
+        ranked = run[order]
+        place = ranked * longest + np.arange(order.size) - (np.cumsum(size) - size)[ranked]
+        # each pair's row; the padding repeats row 0 (finite, and never weighs: its
+        # weights are zero)
+        source = np.zeros(n_spans * D * longest, dtype=np.intp)
+        source[place] = row[order]
+        self.padded = np.take(Z, source, axis=0).reshape(n_spans, D, longest, D)
+        local = np.empty_like(place)                    # row order -> place in its span
+        local[order] = place - span_of[row[order]] * (D * longest)
+        start = np.cumsum(count) - count
+        groups = [np.flatnonzero(count == 1), np.flatnonzero(count == 2),
+                  np.flatnonzero(count >= 3)]
+        widest = max(3, int(count.max()))
+        self.groups = tuple(_Group(at, self, span_of, local, col, start, count, width,
+                                   D * longest)
+                            for at, width in zip(groups, (1, 2, widest)))
 
     def span(self, lo, hi):
         """The layout's rows numbered ``lo`` to ``hi - 1``.
@@ -148,29 +173,22 @@ class GapLayout:
 
         Returns
         -------
-        part : tuple
-            ``(a, b, columns, groups)``: the layout's rows ``a:b``; for the full type
-            ``columns``, the runs ``(c, p, q)`` of pairs ``p:q`` missing feature ``c``,
-            and ``groups``, the slices ``(u, v)`` of each group's rows and, last, the
-            widest of the last group's rows in the span.
+        part : tuple or None
+            ``(a, b, lo, s, groups)``: the layout's rows ``a:b``; for the full type
+            ``s``, the span's index, and ``groups``, the slices ``(u, v)`` of each
+            group's rows and, last, the widest of the last group's rows in the span.
+            None if ``lo:hi`` is not one of the layout's spans (full type).
         """
-        n, D = self.mask.shape
-        size = int(self.rows[-1]) + 1 if n else 0
-        lo, hi = min(lo, size), min(hi, size)
-        base = np.arange(D + 4) * size
-        cut = np.searchsorted(self._keys, np.stack((base + lo, base + hi), 1).ravel()).tolist()
-        a, b = cut[-2] - (self._keys.size - n), cut[-1] - (self._keys.size - n)
-        if self.pairs is None:
-            return a, b, (), ()
-        columns = [(c, cut[2 * c], cut[2 * c + 1]) for c in range(D)
-                   if cut[2 * c + 1] > cut[2 * c]]
-        offset, groups = self.pairs.shape[0], []
-        for r, grp in enumerate(self.groups):
-            groups.append((cut[2 * (D + r)] - offset, cut[2 * (D + r) + 1] - offset))
-            offset += grp.rows.size
+        if self.padded is None:
+            a, b = np.searchsorted(self.rows, (lo, hi)).tolist()
+            return a, b, lo, None, ()
+        s = self._index.get(lo)
+        if s is None or self.bounds[s + 1] != hi:
+            return None
+        groups = [(int(grp.cuts[s]), int(grp.cuts[s + 1])) for grp in self.groups]
         u, v = groups[-1]
         groups[-1] += (int(self.groups[-1].count[u:v].max()) if v > u else 0,)
-        return a, b, columns, groups
+        return int(self.cuts[s]), int(self.cuts[s + 1]), lo, s, groups
 
     def work(self, width):
         """A buffer kept from span to span.
@@ -181,15 +199,36 @@ class GapLayout:
 
         Returns
         -------
-        buffer : ndarray of shape (n_pairs + 1, width)
+        buffer : ndarray of shape (n_features * longest run + 1, width)
             C-ordered, its last row (the padding's slot) zero.
         """
-        size = (self.pairs.shape[0] + 1) * width
+        size = (self.padded[0].size // self.padded.shape[-1] + 1) * width
         if self._work is None or self._work.size < size:
             self._work = np.empty(size)
         work = self._work[:size].reshape(-1, width)
         work[-1] = 0.0
         return work
+
+    def zeros(self, name, shape):
+        """A C-ordered array of zeros kept from span to span under ``name`` (fresh
+        memory for every span would be pages the kernel must map and zero again).
+
+        Parameters
+        ----------
+        name : str
+        shape : tuple of int
+
+        Returns
+        -------
+        zeros : ndarray of shape ``shape``
+        """
+        size = int(np.prod(shape))
+        kept = self._scratch.get(name)
+        if kept is None or kept.size < size:
+            kept = self._scratch[name] = np.empty(size)
+        out = kept[:size].reshape(shape)
+        out.fill(0.0)
+        return out
 
 
 @functools.lru_cache(maxsize=None)
@@ -222,7 +261,7 @@ def _invert(H):
     return M[..., r:], np.sum(np.log(pivots), axis=-1)
 
 
-def full_span(model, layout, part, learn, out, first):
+def full_span(model, layout, part, learn, out):
     """Correct the log-joint of a span's rows filled at zero to their marginals.
 
     Pair-major throughout (rows, then components): gathering whole rows of K values
@@ -237,35 +276,32 @@ def full_span(model, layout, part, learn, out, first):
         The span, from ``layout.span``.
     learn : bool
         Also return what the E-step needs.
-    out : ndarray of shape (n_components, n)
-        C-ordered; the layout's row numbered ``i`` gets its correction in column
-        ``i - first``.
-    first : int
+    out : ndarray of shape (n, n_components)
+        C-ordered; the span's row numbered ``i`` gets its correction in row ``i - lo``
+        (``lo`` where the span starts).
 
     Returns
     -------
     aux : tuple or None
         With ``learn``, for :func:`full_completion`: per group of rows missing as many
-        features, ``step = H^-1 g`` (rows, K) or (rows, r, K), the diagonal of
-        ``H^-1`` in the same shape and, for two or more, its cells above the diagonal
-        (rows, r(r-1)/2, K).
+        features, ``step = H^-1 g`` (rows, r, K) with its square plus the diagonal of
+        ``H^-1`` (rows, r, 2, K) and, for two or more, ``step_i step_j + (H^-1)_ij``
+        above the diagonal (rows, r(r-1)/2, K).
     """
-    a, b, columns, groups = part
+    a, b, _, s, groups = part
     lam, lam_mu = precision_matrices(model)
     K, D = lam.shape[:2]
-    # g = (Lam (z - mu))_m for every (row, missing feature) pair: one small product
-    # per feature over the rows that miss it (a D-th of the product over all of Lam)
-    lam1 = np.concatenate((lam, -lam_mu[:, :, None]), axis=2)
+    # g = (Lam (z - mu))_m for every (row, missing feature) pair: one product per
+    # feature over the span's rows that miss it (a D-th of the product over all of
+    # Lam), all features in one stacked call
     gp = layout.work(K)
-    for c, p, q in columns:
-        np.matmul(layout.pairs[p:q], lam1[:, c].T, out=gp[p:q])
+    g3 = gp[:-1].reshape(D, -1, K)
+    np.matmul(layout.padded[s], lam.transpose(1, 2, 0), out=g3)
+    g3 -= lam_mu.T[:, None, :]
     # the precisions' cells (D * D, K), then a cell of ones and one of zeros (padding)
     flat = np.concatenate((lam.reshape(K, D * D).T, [np.ones(K), np.zeros(K)]))
     diag = flat[: D * D : D + 1]
-    # flat places (K, rows) of the rows' corrections: along the components' rows, the
-    # order memory has
-    lanes = out.shape[1] * np.arange(K)[:, None] - first
-    out = out.reshape(-1)
+    out = out.view(np.dtype((np.void, out.itemsize * K))).reshape(-1)   # rows as items
     pieces = []
     (one, two, more), ((u, v), (u2, v2), (u3, v3, width)) = layout.groups, groups
     if v > u:
@@ -279,7 +315,7 @@ def full_span(model, layout, part, learn, out, first):
         corr -= table[:, K:]
         corr *= 0.5
         corr += one.const[u:v, None]
-        out[lanes + one.rows[u:v]] = corr.T
+        np.put(out, one.loc[u:v], np.ascontiguousarray(corr).view(out.dtype))
         if learn:
             np.multiply(step, step, out=sd[:, 0, 1])
             sd[:, 0, 1] += table[:, :K]
@@ -298,7 +334,7 @@ def full_span(model, layout, part, learn, out, first):
         corr = np.einsum("nrk,nrk->nk", g, step) - np.log(det)
         corr *= 0.5
         corr += two.const[u2:v2, None]
-        out[lanes + two.rows[u2:v2]] = corr.T
+        np.put(out, two.loc[u2:v2], np.ascontiguousarray(corr).view(out.dtype))
         if learn:
             np.multiply(step, step, out=sd[:, :, 1])
             sd[:, :, 1] += inv
@@ -312,7 +348,7 @@ def full_span(model, layout, part, learn, out, first):
         inv, log_det = _invert(np.moveaxis(H, -1, 1))
         step = (inv @ g[..., None])[..., 0]       # (rows, K, r)
         corr = 0.5 * (np.einsum("nkr,nkr->nk", g, step) - log_det) + more.const[u3:v3, None]
-        out[lanes + more.rows[u3:v3]] = corr.T
+        np.put(out, more.loc[u3:v3], np.ascontiguousarray(corr).view(out.dtype))
         if learn:
             i, j = _above(width)
             step = step.transpose(0, 2, 1)
@@ -343,16 +379,15 @@ def full_completion(W, aux):
     s1 : ndarray of shape (n_components, n_features)
     s2 : ndarray of shape (n_components, n_features, n_features)
     """
-    layout, (a, _, columns, _), pieces, K = aux
+    layout, (_, _, _, s, _), pieces, K = aux
     D = layout.Zf.shape[1]
     # per pair: W H^-1 g = -W delta (first K) and the diagonal of W (delta delta^T +
-    # H^-1) (last K); the sums of both per feature come out of the cross products
-    # below (the pairs' last column is 1)
-    VU = layout.work(2 * K)
+    # H^-1) (last K); zero on the padding, then a slot the padded rows point at
+    VU = layout.zeros("completion", (D * layout.padded.shape[2] + 1, 2 * K))
     rows_of = np.dtype((np.void, VU.itemsize * 2 * K))    # a pair's row as one item
     upper = np.zeros(D * D * K)         # the cells above the diagonal, once, cell-major
     for grp, u, v, sd, off in pieces:
-        w = np.take(W, grp.at[u:v] - a, axis=0)
+        w = np.take(W, grp.wat[u:v], axis=0)
         both = sd * w[:, None, None]
         r = sd.shape[1]
         np.put(VU.view(rows_of), grp.pos[u:v, :r], both.reshape(-1, r, 2 * K).view(rows_of))
@@ -361,11 +396,12 @@ def full_completion(W, aux):
             keys = grp.keys[u:v, i, j, None] * K + np.arange(K)
             upper += np.bincount(keys.ravel(), weights=(w[:, None] * off).ravel(),
                                  minlength=D * D * K)
-    # cross terms, one missing feature at a time: sum_i -W_ki delta_kic (z_i, 1)
-    cross = np.zeros((2 * K, D, D + 1))
-    for c, p, q in columns:
-        np.matmul(VU[p:q].T, layout.pairs[p:q], out=cross[:, c])
-    half = upper.reshape(D * D, K).T.reshape(K, D, D) - cross[:K, :, :D]
+    # cross terms, feature by feature in one stacked call: sum_i -W_ki delta_kic z_i;
+    # and both per-pair quantities summed per feature
+    VU = VU[:-1].reshape(D, -1, 2 * K)
+    cross = np.matmul(VU.transpose(0, 2, 1), layout.padded[s]).transpose(1, 0, 2)
+    sums = VU.sum(axis=1).T                     # (2K, D)
+    half = upper.reshape(D * D, K).T.reshape(K, D, D) - cross[:K]
     s2 = half + np.swapaxes(half, 1, 2)
-    s2.reshape(K, D * D)[:, :: D + 1] += cross[K:, :, D]
-    return -cross[:K, :, D], s2
+    s2.reshape(K, D * D)[:, :: D + 1] += sums[K:]
+    return -sums[:K], s2

@@ -32,12 +32,13 @@ from .scoring import (
 __all__ = ["batch_layout", "score_span_gaps", "score_gaps", "learn_span_gaps", "em_step_gaps"]
 
 
-def batch_layout(mixture, X, gaps, rows) -> missing.GapLayout:
-    """The layout of the rows of ``X`` with gaps, made on first use and kept on ``gaps``.
+def batch_layout(mixture, X, gaps, rows, lo, hi, step):
+    """The layout of the rows of ``X`` with gaps, made on first use and kept on ``gaps``,
+    and its span ``lo:hi``.
 
     Which rows miss which features, and those rows standardised with their missing
     values at the centre, do not depend on the parameters: they are worked out once
-    per batch, not once per span.
+    per batch, for spans ``lo:hi``, then every ``step`` rows, not once per span.
 
     Parameters
     ----------
@@ -48,23 +49,33 @@ def batch_layout(mixture, X, gaps, rows) -> missing.GapLayout:
     gaps : Gaps
         Where ``X`` has missing values.
     rows : Standardiser or None
+    lo, hi, step : int
 
     Returns
     -------
     layout : GapLayout
+    part : tuple
+        ``layout.span(lo, hi)``.
     """
     kept = gaps.prepared
     if kept is not None and kept[0] is X and kept[1] is rows \
             and kept[2] == mixture.covariance:
-        return kept[3]
-    Z = np.take(X, gaps.rows, axis=0)
-    if rows is not None:
-        for a in range(0, Z.shape[0], BLOCK_ROWS):
-            Z[a : a + BLOCK_ROWS] = rows(Z[a : a + BLOCK_ROWS])
+        part = kept[3].span(lo, hi)
+        if part is not None:
+            return kept[3], part
+        Z = kept[3].Zf                  # spans elsewhere: the same rows, laid out anew
+    else:
+        Z = gaps.values if gaps.values is not None else np.take(X, gaps.rows, axis=0)
+        gaps.values = None              # standardised in place below
+        if rows is not None:
+            for a in range(0, Z.shape[0], BLOCK_ROWS):
+                Z[a : a + BLOCK_ROWS] = rows(Z[a : a + BLOCK_ROWS])
+    n = X.shape[0]
+    bounds = np.unique(np.concatenate(([0, lo], np.arange(hi, n, step), [n])))
     layout = missing.GapLayout(gaps.rows, Z, gaps.mask, np.log(mixture.scale),
-                               mixture.covariance)
+                               mixture.covariance, bounds)
     gaps.prepared = (X, rows, mixture.covariance, layout)
-    return layout
+    return layout, layout.span(lo, hi)
 
 
 def score_span_gaps(mixture, X, lo, hi, layout, part, out, rows, learn):
@@ -98,8 +109,8 @@ def score_span_gaps(mixture, X, lo, hi, layout, part, out, rows, learn):
     A = np.empty((hi - lo, family.width(mixture.n_features)))
     # the corrections first (they need the parameters, not the log-joint), then block
     # by block: the ordinary log-joint, the corrections on it, the scores
-    corr = np.zeros((mixture.n_components, hi - lo))
-    aux = missing.span_correction(mixture, layout, part, corr, learn, first=lo)
+    corr = layout.zeros("corrections", (hi - lo, mixture.n_components))
+    aux = missing.span_correction(mixture, layout, part, corr, learn)
     ga, gb = part[:2]
     cut = (np.searchsorted(layout.rows[ga:gb], np.arange(lo, hi, BLOCK_ROWS)) + ga).tolist()
     cut.append(gb)
@@ -111,7 +122,7 @@ def score_span_gaps(mixture, X, lo, hi, layout, part, out, rows, learn):
         Ab = family.design(Zb, out=A[a - lo : b - lo])
         resp = out.resp_kn[:, a:b]
         family.log_joint(Ab, operator, out=resp)
-        resp += corr[:, a - lo : b - lo]
+        resp += corr[a - lo : b - lo].T
         normalise(resp, out, a, b, mixture.log_scale_sum)
     return A, aux
 
@@ -129,11 +140,10 @@ def score_gaps(mixture, X, gaps, out) -> None:
     out : ScoreBuffer
     """
     rows = Standardiser(mixture.center, mixture.scale)
-    layout = batch_layout(mixture, X, gaps, rows)
     for lo in range(0, X.shape[0], SPAN_ROWS):
         hi = min(lo + SPAN_ROWS, X.shape[0])
-        score_span_gaps(mixture, X, lo, hi, layout, layout.span(lo, hi), out, rows,
-                        learn=False)
+        layout, part = batch_layout(mixture, X, gaps, rows, lo, hi, SPAN_ROWS)
+        score_span_gaps(mixture, X, lo, hi, layout, part, out, rows, learn=False)
 
 
 def learn_span_gaps(mixture, X, lo, hi, gaps, row_w, out, rows):
@@ -160,8 +170,7 @@ def learn_span_gaps(mixture, X, lo, hi, gaps, row_w, out, rows):
         Every row's moments through the ordinary kernels, plus what completing the
         rows with gaps adds (EM with missing data).
     """
-    layout = batch_layout(mixture, X, gaps, rows)
-    part = layout.span(lo, hi)
+    layout, part = batch_layout(mixture, X, gaps, rows, lo, hi, mixture.refresh_rows)
     ga, gb = part[:2]
     if ga == gb:
         A = score_span(mixture, X, lo, hi, out, mixture.scoring_operator, rows)

@@ -61,11 +61,11 @@ def _diag_gaps(model, Z, mask, learn):
     return corr, ((Z, M, model.means, 1.0 / prec) if learn else None)
 
 
-def _diag_span(model, layout, part, learn, out, first):
-    a, b = part[:2]
+def _diag_span(model, layout, part, learn, out):
+    a, b, lo = part[:3]
     corr, aux = _diag_gaps(model, layout.Zf[a:b], layout.mask[a:b], learn)
     corr += layout.scale_term[a:b]
-    out[:, layout.rows[a:b] - first] = corr
+    out[layout.rows[a:b] - lo] = corr.T
     return aux
 
 
@@ -140,11 +140,11 @@ def gap_correction(model, Zf, mask, learn=False):
     """
     n = Zf.shape[0]
     layout = GapLayout(np.arange(n), Zf, mask, np.log(model.scale), model.covariance)
-    corr = np.empty((model.n_components, n))
-    return corr, span_correction(model, layout, layout.span(0, n), corr, learn)
+    corr = np.empty((n, model.n_components))
+    return corr.T, span_correction(model, layout, layout.span(0, n), corr, learn)
 
 
-def span_correction(model, layout, part, out, learn=False, first=0):
+def span_correction(model, layout, part, out, learn=False):
     """:func:`gap_correction` of the rows ``part`` of a layout, into their columns of
     ``out``.
 
@@ -154,19 +154,18 @@ def span_correction(model, layout, part, out, learn=False, first=0):
     layout : GapLayout
     part : tuple
         From ``layout.span``.
-    out : ndarray of shape (n_components, n)
-        C-ordered; gets the correction of the layout's row numbered ``i`` in column
-        ``i - first`` (its other columns untouched).
+    out : ndarray of shape (n, n_components)
+        C-ordered; gets the correction of the span's row numbered ``i`` in row
+        ``i - lo`` (``lo`` where the span starts; its other rows untouched).
     learn : bool
         Also return what the E-step needs.
-    first : int
 
     Returns
     -------
     aux : tuple or None
         With ``learn``, for :func:`span_completion`.
     """
-    aux = _SPANS[model.covariance](model, layout, part, learn, out, first)
+    aux = _SPANS[model.covariance](model, layout, part, learn, out)
     if not learn:
         return None
     return (layout.Zf[part[0]:part[1]],) + aux
