@@ -83,7 +83,7 @@ class GapLayout:
     made once for a batch, for the spans between the points where the parameters
     change, so that a span does only the algebra that depends on them. For the full
     type each span's (row, missing feature) pairs are laid out by feature, each
-    feature's run padded to the longest run of the batch with zero rows, so that
+    feature's run padded to the longest run of the batch, so that
     ``g = (Lam (z - mu))_m`` for the whole span is one stacked product, feature by
     feature; and the rows are grouped by how many features they miss (one, two,
     three or more), each group with where its pairs sit in that layout.
@@ -116,7 +116,7 @@ class GapLayout:
         Where each span's rows start among the layout's.
     """
 
-    __slots__ = ("rows", "mask", "Zf", "scale_term", "bounds", "cuts", "padded", "groups",
+    __slots__ = ("rows", "mask", "Zf", "scale_term", "bounds", "cuts", "source", "groups",
                  "_index", "_work", "_scratch")
 
     def __init__(self, rows, Z, mask, log_scale, covariance, bounds=None):
@@ -136,7 +136,7 @@ class GapLayout:
         # sum(log scale[m]): the mixture subtracts the log-scale of every feature, a
         # marginal only those of the observed ones
         self.scale_term = np.bincount(row, weights=log_scale[col], minlength=n)
-        self.padded, self.groups, self._work, self._scratch = None, (), None, {}
+        self.source, self.groups, self._work, self._scratch = None, (), None, {}
         if covariance != "full" or not n:
             return
         n_spans = self.bounds.size - 1
@@ -151,9 +151,8 @@ class GapLayout:
         place = ranked * longest + np.arange(order.size) - (np.cumsum(size) - size)[ranked]
         # each pair's row; the padding repeats row 0 (finite, and never weighs: its
         # weights are zero)
-        source = np.zeros(n_spans * D * longest, dtype=np.intp)
-        source[place] = row[order]
-        self.padded = np.take(Z, source, axis=0).reshape(n_spans, D, longest, D)
+        self.source = np.zeros((n_spans, D * longest), dtype=np.intp)
+        self.source.reshape(-1)[place] = row[order]
         local = np.empty_like(place)                    # row order -> place in its span
         local[order] = place - span_of[row[order]] * (D * longest)
         start = np.cumsum(count) - count
@@ -179,7 +178,7 @@ class GapLayout:
             group's rows and, last, the widest of the last group's rows in the span.
             None if ``lo:hi`` is not one of the layout's spans (full type).
         """
-        if self.padded is None:
+        if self.source is None:
             a, b = np.searchsorted(self.rows, (lo, hi)).tolist()
             return a, b, lo, None, ()
         s = self._index.get(lo)
@@ -202,12 +201,33 @@ class GapLayout:
         buffer : ndarray of shape (n_features * longest run + 1, width)
             C-ordered, its last row (the padding's slot) zero.
         """
-        size = (self.padded[0].size // self.padded.shape[-1] + 1) * width
+        size = (self.source.shape[1] + 1) * width
         if self._work is None or self._work.size < size:
             self._work = np.empty(size)
         work = self._work[:size].reshape(-1, width)
         work[-1] = 0.0
         return work
+
+    def pairs(self, s):
+        """The rows of span ``s``'s pairs, laid out by feature.
+
+        Parameters
+        ----------
+        s : int
+
+        Returns
+        -------
+        pairs : ndarray of shape (n_features, longest run, n_features)
+            In a buffer kept from span to span (until another span's are asked for).
+        """
+        D = self.Zf.shape[1]
+        kept = self._scratch.get("pairs")
+        if kept is None:
+            kept = self._scratch["pairs"] = np.empty((self.source.shape[1], D))
+        if self._scratch.get("span") != s:
+            np.take(self.Zf, self.source[s], axis=0, out=kept)
+            self._scratch["span"] = s
+        return kept.reshape(D, -1, D)
 
     def zeros(self, name, shape):
         """A C-ordered array of zeros kept from span to span under ``name`` (fresh
@@ -296,7 +316,7 @@ def full_span(model, layout, part, learn, out):
     # Lam), all features in one stacked call
     gp = layout.work(K)
     g3 = gp[:-1].reshape(D, -1, K)
-    np.matmul(layout.padded[s], lam.transpose(1, 2, 0), out=g3)
+    np.matmul(layout.pairs(s), lam.transpose(1, 2, 0), out=g3)
     g3 -= lam_mu.T[:, None, :]
     # the precisions' cells (D * D, K), then a cell of ones and one of zeros (padding)
     flat = np.concatenate((lam.reshape(K, D * D).T, [np.ones(K), np.zeros(K)]))
@@ -383,7 +403,7 @@ def full_completion(W, aux):
     D = layout.Zf.shape[1]
     # per pair: W H^-1 g = -W delta (first K) and the diagonal of W (delta delta^T +
     # H^-1) (last K); zero on the padding, then a slot the padded rows point at
-    VU = layout.zeros("completion", (D * layout.padded.shape[2] + 1, 2 * K))
+    VU = layout.zeros("completion", (layout.source.shape[1] + 1, 2 * K))
     rows_of = np.dtype((np.void, VU.itemsize * 2 * K))    # a pair's row as one item
     upper = np.zeros(D * D * K)         # the cells above the diagonal, once, cell-major
     for grp, u, v, sd, off in pieces:
@@ -399,7 +419,7 @@ def full_completion(W, aux):
     # cross terms, feature by feature in one stacked call: sum_i -W_ki delta_kic z_i;
     # and both per-pair quantities summed per feature
     VU = VU[:-1].reshape(D, -1, 2 * K)
-    cross = np.matmul(VU.transpose(0, 2, 1), layout.padded[s]).transpose(1, 0, 2)
+    cross = np.matmul(VU.transpose(0, 2, 1), layout.pairs(s)).transpose(1, 0, 2)
     sums = VU.sum(axis=1).T                     # (2K, D)
     half = upper.reshape(D * D, K).T.reshape(K, D, D) - cross[:K]
     s2 = half + np.swapaxes(half, 1, 2)
