@@ -217,17 +217,18 @@ class GapLayout:
 
         Returns
         -------
-        pairs : ndarray of shape (n_features, longest run, n_features)
-            In a buffer kept from span to span (until another span's are asked for).
+        pairs : ndarray of shape (n_features, longest run, n_features + 1)
+            Each pair's row, then a 1, in a buffer kept from span to span (until
+            another span's are asked for).
         """
         D = self.Zf.shape[1]
         kept = self._scratch.get("pairs")
         if kept is None:
-            kept = self._scratch["pairs"] = np.empty((self.source.shape[1], D))
+            kept = self._scratch["pairs"] = np.ones((self.source.shape[1], D + 1))
         if self._scratch.get("span") != s:
-            np.take(self.Zf, self.source[s], axis=0, out=kept)
+            np.take(self.Zf, self.source[s], axis=0, out=kept[:, :D])
             self._scratch["span"] = s
-        return kept.reshape(D, -1, D)
+        return kept.reshape(D, -1, D + 1)
 
     def zeros(self, name, shape):
         """A C-ordered array of zeros kept from span to span under ``name`` (fresh
@@ -314,10 +315,9 @@ def full_span(model, layout, part, learn, out):
     # g = (Lam (z - mu))_m for every (row, missing feature) pair: one product per
     # feature over the span's rows that miss it (a D-th of the product over all of
     # Lam), all features in one stacked call
+    lam1 = np.concatenate((lam, -lam_mu[:, :, None]), axis=2)      # (K, D, D + 1)
     gp = layout.work(K)
-    g3 = gp[:-1].reshape(D, -1, K)
-    np.matmul(layout.pairs(s), lam.transpose(1, 2, 0), out=g3)
-    g3 -= lam_mu.T[:, None, :]
+    np.matmul(layout.pairs(s), lam1.transpose(1, 2, 0), out=gp[:-1].reshape(D, -1, K))
     # the precisions' cells (D * D, K), then a cell of ones and one of zeros (padding)
     flat = np.concatenate((lam.reshape(K, D * D).T, [np.ones(K), np.zeros(K)]))
     diag = flat[: D * D : D + 1]
@@ -416,12 +416,12 @@ def full_completion(W, aux):
             keys = grp.keys[u:v, i, j, None] * K + np.arange(K)
             upper += np.bincount(keys.ravel(), weights=(w[:, None] * off).ravel(),
                                  minlength=D * D * K)
-    # cross terms, feature by feature in one stacked call: sum_i -W_ki delta_kic z_i;
-    # and both per-pair quantities summed per feature
+    # cross terms, feature by feature in one stacked call: sum_i -W_ki delta_kic
+    # (z_i, 1), the last column summing both per-pair quantities per feature
     VU = VU[:-1].reshape(D, -1, 2 * K)
     cross = np.matmul(VU.transpose(0, 2, 1), layout.pairs(s)).transpose(1, 0, 2)
-    sums = VU.sum(axis=1).T                     # (2K, D)
-    half = upper.reshape(D * D, K).T.reshape(K, D, D) - cross[:K]
+    sums = cross[:, :, D]                       # (2K, D)
+    half = upper.reshape(D * D, K).T.reshape(K, D, D) - cross[:K, :, :D]
     s2 = half + np.swapaxes(half, 1, 2)
     s2.reshape(K, D * D)[:, :: D + 1] += sums[K:]
     return -sums[:K], s2
