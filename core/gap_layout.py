@@ -66,14 +66,15 @@ class _Group:
         self.wat = at - layout.cuts[span_of[at]]
         self.cuts = np.searchsorted(at, layout.cuts)
         self.const = layout.scale_term[at] + (0.5 * LOG_2PI) * self.count
-        valid = np.arange(width) < self.count[:, None]
+        self.pos, self.cols = local[pair], col[pair]
         if width > 2:
+            valid = np.arange(width) < self.count[:, None]
             pair = np.where(valid, pair, col.size)
-        self.pos = np.append(local, slot)[pair]
-        self.cols = np.append(col, 0)[pair]
+            self.pos, self.cols = np.append(local, slot)[pair], np.append(col, 0)[pair]
         self.keys = self.cols[:, :, None] * n_features + self.cols[:, None, :]
-        self.cells = np.where(valid[:, :, None] & valid[:, None, :], self.keys,
-                              n_features * n_features + ~np.eye(width, dtype=bool))
+        self.cells = self.keys if width < 3 else np.where(
+            valid[:, :, None] & valid[:, None, :], self.keys,
+            n_features * n_features + ~np.eye(width, dtype=bool))
 
 
 class GapLayout:
@@ -310,6 +311,8 @@ def full_span(model, layout, part, learn, out):
         above the diagonal (rows, r(r-1)/2, K).
     """
     a, b, _, s, groups = part
+    if layout.source is None:           # no row misses a value
+        return (layout, part, [], model.n_components) if learn else None
     lam, lam_mu = precision_matrices(model)
     K, D = lam.shape[:2]
     # g = (Lam (z - mu))_m for every (row, missing feature) pair: one product per
@@ -401,6 +404,8 @@ def full_completion(W, aux):
     """
     layout, (_, _, _, s, _), pieces, K = aux
     D = layout.Zf.shape[1]
+    if not pieces:
+        return np.zeros((K, D)), np.zeros((K, D, D))
     # per pair: W H^-1 g = -W delta (first K) and the diagonal of W (delta delta^T +
     # H^-1) (last K); zero on the padding, then a slot the padded rows point at
     VU = layout.zeros("completion", (layout.source.shape[1] + 1, 2 * K))

@@ -24,8 +24,9 @@ missing coordinates filled by any value (zero here, the warm-up mean) and
 (the Schur complement of ``Lam_mm`` in ``Lam`` is ``Sigma_oo^-1``). So the log-density
 of the filled row by the ordinary scoring kernels, plus a correction that needs only the
 ``|m| x |m|`` block ``H``, is the marginal log-density. Rows are grouped by how many
-features they miss: one and two in closed form, more by batched LAPACK. The diag and
-spherical types drop the missing terms from the sum (``H`` is diagonal).
+features they miss: one and two in closed form, more by one elimination over the stack
+(:mod:`shoal.core.gap_layout`). The diag and spherical types drop the missing terms from
+the sum (``H`` is diagonal).
 
 Complete rows never come here: the mixture sends them down its ordinary paths and only
 the rows with a gap, filled, through these kernels.
