@@ -29,11 +29,57 @@ from .scoring import (
     score_standardised,
 )
 
-__all__ = ["score_span_gaps", "score_gaps", "learn_span_gaps", "em_step_gaps"]
+__all__ = ["batch_layout", "score_span_gaps", "score_gaps", "learn_span_gaps", "em_step_gaps"]
 
 
-def score_span_gaps(mixture, X, lo, hi, part, out, rows, learn):
-    """Score rows ``lo:hi`` of ``X`` whose rows ``lo + part.rows`` have missing values.
+def batch_layout(mixture, X, gaps, rows, lo, hi, step):
+    """The layout of the rows of ``X`` with gaps, made on first use and kept on ``gaps``,
+    and its span ``lo:hi``.
+
+    Which rows miss which features, and those rows standardised with their missing
+    values at the centre, do not depend on the parameters: they are worked out once
+    per batch, for spans ``lo:hi``, then every ``step`` rows, not once per span.
+
+    Parameters
+    ----------
+    mixture : Mixture
+    X : ndarray of shape (n_samples, n_features)
+        Data-unit rows with ``rows``, else standardised rows with the missing values
+        at zero.
+    gaps : Gaps
+        Where ``X`` has missing values.
+    rows : Standardiser or None
+    lo, hi, step : int
+
+    Returns
+    -------
+    layout : GapLayout
+    part : tuple
+        ``layout.span(lo, hi)``.
+    """
+    kept = gaps.prepared
+    if kept is not None and kept[0] is X and kept[1] is rows \
+            and kept[2] == mixture.covariance:
+        part = kept[3].span(lo, hi)
+        if part is not None:
+            return kept[3], part
+        Z = kept[3].Zf                  # spans elsewhere: the same rows, laid out anew
+    else:
+        Z = gaps.values if gaps.values is not None else np.take(X, gaps.rows, axis=0)
+        gaps.values = None              # standardised in place below
+        if rows is not None:
+            for a in range(0, Z.shape[0], BLOCK_ROWS):
+                Z[a : a + BLOCK_ROWS] = rows(Z[a : a + BLOCK_ROWS])
+    n = X.shape[0]
+    bounds = np.unique(np.concatenate(([0, lo], np.arange(hi, n, step), [n])))
+    layout = missing.GapLayout(gaps.rows, Z, gaps.mask, np.log(mixture.scale),
+                               mixture.covariance, bounds)
+    gaps.prepared = (X, rows, mixture.covariance, layout)
+    return layout, layout.span(lo, hi)
+
+
+def score_span_gaps(mixture, X, lo, hi, layout, part, out, rows, learn):
+    """Score rows ``lo:hi`` of ``X``, some of which have missing values.
 
     Parameters
     ----------
@@ -42,8 +88,10 @@ def score_span_gaps(mixture, X, lo, hi, part, out, rows, learn):
         Data-unit rows with ``rows`` (NaN where missing), else standardised rows with
         the missing values at zero.
     lo, hi : int
-    part : Gaps
-        The span's rows with missing values, indexed from ``lo``.
+    layout : GapLayout
+        Of the rows of ``X`` with gaps (:func:`batch_layout`).
+    part : tuple
+        ``layout.span(lo, hi)``.
     out : ScoreBuffer
     rows : Standardiser or None
     learn : bool
@@ -59,25 +107,23 @@ def score_span_gaps(mixture, X, lo, hi, part, out, rows, learn):
     family = mixture.family
     operator = mixture.scoring_operator
     A = np.empty((hi - lo, family.width(mixture.n_features)))
-    at = lo + part.rows
-    if rows is None:
-        Zf = X[at]
-    else:
-        Zf = (X[at] - mixture.center) / mixture.scale
-        Zf[part.mask] = 0.0             # the missing values at the centre
-    cut = np.searchsorted(part.rows, np.arange(0, hi - lo, BLOCK_ROWS)).tolist() + [len(part)]
+    # the corrections first (they need the parameters, not the log-joint), then block
+    # by block: the ordinary log-joint, the corrections on it, the scores
+    corr = layout.zeros("corrections", (hi - lo, mixture.n_components))
+    aux = missing.span_correction(mixture, layout, part, corr, learn)
+    ga, gb = part[:2]
+    cut = (np.searchsorted(layout.rows[ga:gb], np.arange(lo, hi, BLOCK_ROWS)) + ga).tolist()
+    cut.append(gb)
     for i, a in enumerate(range(lo, hi, BLOCK_ROWS)):
         b = min(a + BLOCK_ROWS, hi)
         Zb = X[a:b] if rows is None else rows(X[a:b])
         if rows is not None and cut[i] < cut[i + 1]:
-            Zb[part.rows[cut[i] : cut[i + 1]] - (a - lo)] = Zf[cut[i] : cut[i + 1]]
+            Zb[layout.rows[cut[i] : cut[i + 1]] - a] = layout.Zf[cut[i] : cut[i + 1]]
         Ab = family.design(Zb, out=A[a - lo : b - lo])
-        family.log_joint(Ab, operator, out=out.resp_kn[:, a:b])
-    corr, aux = missing.gap_correction(mixture, Zf, part.mask, learn)
-    out.resp_kn[:, at] += corr
-    for a in range(lo, hi, BLOCK_ROWS):
-        b = min(a + BLOCK_ROWS, hi)
-        normalise(out.resp_kn[:, a:b], out, a, b, mixture.log_scale_sum)
+        resp = out.resp_kn[:, a:b]
+        family.log_joint(Ab, operator, out=resp)
+        resp += corr[a - lo : b - lo].T
+        normalise(resp, out, a, b, mixture.log_scale_sum)
     return A, aux
 
 
@@ -96,7 +142,8 @@ def score_gaps(mixture, X, gaps, out) -> None:
     rows = Standardiser(mixture.center, mixture.scale)
     for lo in range(0, X.shape[0], SPAN_ROWS):
         hi = min(lo + SPAN_ROWS, X.shape[0])
-        score_span_gaps(mixture, X, lo, hi, gaps.within(lo, hi), out, rows, learn=False)
+        layout, part = batch_layout(mixture, X, gaps, rows, lo, hi, SPAN_ROWS)
+        score_span_gaps(mixture, X, lo, hi, layout, part, out, rows, learn=False)
 
 
 def learn_span_gaps(mixture, X, lo, hi, gaps, row_w, out, rows):
@@ -123,17 +170,19 @@ def learn_span_gaps(mixture, X, lo, hi, gaps, row_w, out, rows):
         Every row's moments through the ordinary kernels, plus what completing the
         rows with gaps adds (EM with missing data).
     """
-    part = gaps.within(lo, hi)
-    if not len(part):
+    layout, part = batch_layout(mixture, X, gaps, rows, lo, hi, mixture.refresh_rows)
+    ga, gb = part[:2]
+    if ga == gb:
         A = score_span(mixture, X, lo, hi, out, mixture.scoring_operator, rows)
         return accumulate(mixture, A, out.resp_kn[:, lo:hi], row_w)
-    A, aux = score_span_gaps(mixture, X, lo, hi, part, out, rows, learn=True)
+    A, aux = score_span_gaps(mixture, X, lo, hi, layout, part, out, rows, learn=True)
     s0, s1, s2 = accumulate(mixture, A, out.resp_kn[:, lo:hi], row_w)
-    resp = out.resp_kn[:, lo + part.rows]
-    W = resp * row_w[part.rows]
+    W = np.take(out.resp_kn, layout.rows[ga:gb], axis=1)
     if mixture.resp_floor > 0.0:
-        W[resp < mixture.resp_floor] = 0.0
-    c1, c2 = missing.completion_moments(mixture, W, aux)
+        W[W < mixture.resp_floor] = 0.0
+    W *= row_w[layout.rows[ga:gb] - lo]
+    W = np.ascontiguousarray(W.T)
+    c1, c2 = missing.span_completion(mixture, W, aux)
     return s0, s1 + c1, s2 + c2
 
 

@@ -24,8 +24,9 @@ missing coordinates filled by any value (zero here, the warm-up mean) and
 (the Schur complement of ``Lam_mm`` in ``Lam`` is ``Sigma_oo^-1``). So the log-density
 of the filled row by the ordinary scoring kernels, plus a correction that needs only the
 ``|m| x |m|`` block ``H``, is the marginal log-density. Rows are grouped by how many
-features they miss: one and two in closed form, more by batched LAPACK. The diag and
-spherical types drop the missing terms from the sum (``H`` is diagonal).
+features they miss: one and two in closed form, more by one elimination over the stack
+(:mod:`shoal.core.gap_layout`). The diag and spherical types drop the missing terms from
+the sum (``H`` is diagonal).
 
 Complete rows never come here: the mixture sends them down its ordinary paths and only
 the rows with a gap, filled, through these kernels.
@@ -36,203 +37,14 @@ from __future__ import annotations
 import numpy as np
 
 from .covariance import LOG_2PI
+from .gap_layout import GapLayout, full_completion, full_span, precision_matrices
 from .gaps import Gaps, MissingValues, fill, find, not_finite
 
-__all__ = ["Gaps", "MissingValues", "not_finite", "find", "fill", "gap_log_joint",
-           "gap_correction", "gap_moments", "completion_moments", "expected_scatter",
-           "precision_matrices"]
+__all__ = ["Gaps", "MissingValues", "not_finite", "find", "fill", "GapLayout",
+           "gap_log_joint", "gap_correction", "span_correction", "gap_moments",
+           "completion_moments", "span_completion", "expected_scatter", "precision_matrices"]
 
 BLOCK_ROWS = 2048   # incomplete rows handled at once: (K, rows, D) arrays stay small
-
-
-# ------------------------------------------------------------------- full type
-def precision_matrices(model):
-    """The full type's precisions ``Lam_k = U_k U_k^T`` and ``Lam_k mu_k``.
-
-    Parameters
-    ----------
-    model : Mixture
-        A full-covariance mixture.
-
-    Returns
-    -------
-    lam : ndarray of shape (n_components, n_features, n_features)
-    lam_mu : ndarray of shape (n_components, n_features)
-    """
-    U = model.prec_chol
-    lam = U @ np.swapaxes(U, 1, 2)
-    return lam, np.einsum("kde,ke->kd", lam, model.means)
-
-
-class _Pairs:
-    """The (row, missing feature) pairs of a block of rows with gaps.
-
-    ``row``, ``col``: the pairs in row order (each row's features increasing);
-    ``start[i]``: where row ``i``'s pairs begin; ``count[i]``: how many it has;
-    ``by_col``: the pairs ordered by feature, ``ends[c]``: where feature ``c``'s end;
-    ``place[p]``: where pair ``p`` sits in that order.
-    """
-
-    __slots__ = ("row", "col", "start", "count", "by_col", "ends", "place")
-
-    def __init__(self, mask):
-        self.row, self.col = np.nonzero(mask)
-        self.count = np.count_nonzero(mask, axis=1)
-        self.start = np.cumsum(self.count) - self.count
-        self.by_col = np.argsort(self.col, kind="stable")
-        self.ends = np.cumsum(np.bincount(self.col, minlength=mask.shape[1]))
-        self.place = np.empty_like(self.by_col)
-        self.place[self.by_col] = np.arange(self.place.size)
-
-    def columns(self):
-        """``(c, lo, hi)``: feature ``c`` is missing in pairs ``by_col[lo:hi]``."""
-        lo = 0
-        for c, hi in enumerate(self.ends.tolist()):
-            if hi > lo:
-                yield c, lo, hi
-            lo = hi
-
-    def exactly(self, r):
-        """``(rows, at)``: the rows missing ``r`` features and their pairs' indices
-        (len(rows), r)."""
-        rows = np.flatnonzero(self.count == r)
-        return rows, self.start[rows][:, None] + np.arange(r)
-
-    def several(self, least):
-        """``(rows, at, valid)``: the rows missing ``least`` features or more, their
-        pairs' indices (len(rows), r) padded to the largest count ``r`` with the index
-        one past the last pair, and where the indices are real (len(rows), r)."""
-        rows = np.flatnonzero(self.count >= least)
-        r = int(self.count[rows].max()) if rows.size else 0
-        valid = np.arange(r) < self.count[rows][:, None]
-        at = np.where(valid, self.start[rows][:, None] + np.arange(r), self.row.size)
-        return rows, at, valid
-
-
-def _solve_small(H, g):
-    """``H^-1 g``, ``H^-1`` and ``log det H`` for stacks of small positive-definite ``H``
-    of shape (..., r, r), ``g`` (..., r); closed forms for r = 1 and 2, where LAPACK's
-    cost per matrix would dominate."""
-    r = H.shape[-1]
-    if r == 1:
-        inv = 1.0 / H
-        return g * inv[..., 0], inv, np.log(H[..., 0, 0])
-    if r == 2:
-        a, b, c = H[..., 0, 0], H[..., 0, 1], H[..., 1, 1]
-        det = a * c - b * b
-        inv = np.empty_like(H)
-        inv[..., 0, 0], inv[..., 1, 1] = c / det, a / det
-        inv[..., 0, 1] = inv[..., 1, 0] = -b / det
-        return np.einsum("...rs,...s->...r", inv, g), inv, np.log(det)
-    # Gauss-Jordan elimination over the whole stack at once, no pivoting: a positive
-    # definite matrix keeps positive pivots (they are the squares of its Cholesky
-    # diagonal), and one vectorised pass costs less than LAPACK's per-matrix calls
-    A = np.array(H, dtype=np.float64)
-    inv = np.broadcast_to(np.eye(r), H.shape).copy()
-    log_det = np.zeros(H.shape[:-2])
-    for j in range(r):
-        pivot = A[..., j, j].copy()
-        if not np.all(pivot > 0.0):
-            raise np.linalg.LinAlgError("a precision block is not positive definite")
-        log_det += np.log(pivot)
-        A[..., j, :] /= pivot[..., None]
-        inv[..., j, :] /= pivot[..., None]
-        factor = A[..., :, j].copy()
-        factor[..., j] = 0.0
-        A -= factor[..., :, None] * A[..., None, j, :]
-        inv -= factor[..., :, None] * inv[..., None, j, :]
-    return np.einsum("...rs,...s->...r", inv, g), inv, log_det
-
-
-def _full_gaps(model, Z, mask, learn):
-    """Correction (K, n) to the filled rows' log-joint and, with ``learn``, per group of
-    rows missing as many features: ``(rows, at, step, inv)`` with ``step = H^-1 g``
-    (K, len(rows), r) and ``inv = H^-1`` (K, len(rows), r, r)."""
-    lam, lam_mu = precision_matrices(model)
-    K, n, D = model.n_components, Z.shape[0], Z.shape[1]
-    pairs = _Pairs(mask)
-    # g = (Lam (z - mu))_m for every (row, missing feature) pair: one small product
-    # per feature over the rows that miss it (a D-th of the product over all of Lam)
-    Zp = Z[pairs.row[pairs.by_col]]
-    gp = np.empty((K, pairs.row.size))     # pairs ordered by feature
-    for c, lo, hi in pairs.columns():
-        np.matmul(lam[:, c, :], Zp[lo:hi].T, out=gp[:, lo:hi])
-    gp -= lam_mu[:, pairs.col[pairs.by_col]]
-    corr = np.empty((K, n))
-    pieces = []
-    diag = np.diagonal(lam, axis1=1, axis2=2)
-    # one missing feature (most rows): H is the precision's diagonal entry
-    rows, at = pairs.exactly(1)
-    if rows.size:
-        c = pairs.col[at[:, 0]]
-        g = gp[:, pairs.place[at[:, 0]]]
-        h = diag[:, c]
-        step = g / h
-        corr[:, rows] = 0.5 * (LOG_2PI - np.log(h) + g * step)
-        if learn:
-            pieces.append((rows, at, step[:, :, None], (1.0 / h)[:, :, None, None]))
-    # two: in closed form
-    rows, at = pairs.exactly(2)
-    if rows.size:
-        cols = pairs.col[at]
-        g = gp[:, pairs.place[at]]
-        H = lam[:, cols[:, :, None], cols[:, None, :]]
-        step, inv, log_det = _solve_small(H, g)
-        corr[:, rows] = 0.5 * (2 * LOG_2PI - log_det + np.sum(g * step, axis=-1))
-        if learn:
-            pieces.append((rows, at, step, inv))
-    # more (few rows): one batch, each H padded to the largest with an identity block
-    # (inverse and determinant of the real block unchanged; g is zero in the padding)
-    rows, at, valid = pairs.several(3)
-    if rows.size:
-        r = at.shape[1]
-        cols = np.append(pairs.col, 0)[at]
-        g = np.append(gp, np.zeros((K, 1)), axis=1)[:, np.append(pairs.place, -1)[at]]
-        real = valid[:, :, None] & valid[:, None, :]
-        H = np.where(real, lam[:, cols[:, :, None], cols[:, None, :]], np.eye(r))
-        step, inv, log_det = _solve_small(H, g)
-        inv *= real
-        count = pairs.count[rows]
-        corr[:, rows] = 0.5 * (count * LOG_2PI - log_det + np.sum(g * step, axis=-1))
-        if learn:
-            pieces.append((rows, at, step, inv))
-    return corr, (Z, pairs, Zp, pieces) if learn else None
-
-
-def _full_correction(W, aux):
-    """What completing the rows adds to the moments of the filled rows, weights ``W``
-    (K, n): ``(s1, s2)`` of shapes (K, D) and (K, D, D).
-
-    A row completes to ``zhat = z + delta`` with ``delta = -H^-1 g`` on its missing
-    features (``z`` is zero there), so ``zhat zhat^T + Cov = z z^T + z delta^T +
-    delta z^T + delta delta^T + Cov``: the first term is the filled row's, the cross
-    terms fill the missing columns, the last two the missing-by-missing block."""
-    Z, pairs, Zp, pieces = aux
-    K, D = W.shape[0], Z.shape[1]
-    comp = np.arange(K)[:, None]
-    V = np.empty((K, pairs.row.size + 1))    # W * H^-1 g = -W delta, per pair (+ padding)
-    s2 = np.zeros(K * D * D)
-    for rows, at, step, inv in pieces:
-        n, r = at.shape
-        ws = W[:, rows, None] * step
-        V[:, at.ravel()] = ws.reshape(K, n * r)
-        cols = np.append(pairs.col, 0)[at]       # the padding weighs nothing
-        block = step[..., :, None] * step[..., None, :] + inv
-        cell = (cols[:, :, None] * D + cols[:, None, :]).reshape(n * r * r)
-        s2 += np.bincount((comp * (D * D) + cell).ravel(),
-                          weights=(W[:, rows, None] * block.reshape(K, n, r * r)).ravel(),
-                          minlength=K * D * D)
-    V = V[:, :-1]
-    s1 = -np.bincount((comp * D + pairs.col).ravel(), weights=V.ravel(), minlength=K * D)
-    s2 = s2.reshape(K, D, D)
-    # cross terms, one missing feature at a time: sum_i -W_ki delta_kic z_i
-    Vc = V[:, pairs.by_col]
-    cross = np.zeros((K, D, D))
-    for c, lo, hi in pairs.columns():
-        cross[:, c, :] = Vc[:, lo:hi] @ Zp[lo:hi]
-    s2 -= cross
-    s2 -= np.swapaxes(cross, 1, 2)
-    return s1.reshape(K, D), s2
 
 
 # ------------------------------------------------------- diag and spherical types
@@ -250,29 +62,31 @@ def _diag_gaps(model, Z, mask, learn):
     return corr, ((Z, M, model.means, 1.0 / prec) if learn else None)
 
 
+def _diag_span(model, layout, part, learn, out):
+    a, b, lo = part[:3]
+    corr, aux = _diag_gaps(model, layout.Zf[a:b], layout.mask[a:b], learn)
+    corr += layout.scale_term[a:b]
+    out[layout.rows[a:b] - lo] = corr.T
+    return aux
+
+
 def _diag_correction(W, aux):
     """What completing the rows adds to the moments of the filled rows: ``(s1, diagonal
     of s2)``; a missing coordinate completes to the component's mean, with its variance."""
-    Z, M, means, var = aux
+    Z, M, means, var = aux[:4]
     WM = W @ M
     return means * WM, (means * means + var) * WM
 
 
 def _diag_completed(aux):
     """The completed rows (K, n, D) and their conditional variances (K, n, D)."""
-    Z, M, means, var = aux
+    Z, M, means, var = aux[:4]
     mask = M.astype(bool)
     return (np.where(mask[None], means[:, None, :], Z[None]),
             M[None] * var[:, None, :])
 
 
-_GAPS = {"full": _full_gaps, "diag": _diag_gaps, "spherical": _diag_gaps}
-
-
-def _scale_term(model, mask):
-    """``sum(log scale[m])`` per row: the mixture subtracts the log-scale of every feature,
-    a marginal only those of the observed ones."""
-    return mask @ np.log(model.scale)
+_SPANS = {"full": full_span, "diag": _diag_span, "spherical": _diag_span}
 
 
 def gap_log_joint(model, Zf, mask, learn=False):
@@ -325,9 +139,37 @@ def gap_correction(model, Zf, mask, learn=False):
         With ``learn``: the completed rows and the conditional covariances, for
         :func:`gap_moments`.
     """
-    corr, aux = _GAPS[model.covariance](model, Zf, mask, learn)
-    corr += _scale_term(model, mask)
-    return corr, (aux if learn else None)
+    n = Zf.shape[0]
+    layout = GapLayout(np.arange(n), Zf, mask, np.log(model.scale), model.covariance)
+    corr = np.empty((n, model.n_components))
+    return corr.T, span_correction(model, layout, layout.span(0, n), corr, learn)
+
+
+def span_correction(model, layout, part, out, learn=False):
+    """:func:`gap_correction` of the rows ``part`` of a layout, into their columns of
+    ``out``.
+
+    Parameters
+    ----------
+    model : Mixture
+    layout : GapLayout
+    part : tuple
+        From ``layout.span``.
+    out : ndarray of shape (n, n_components)
+        C-ordered; gets the correction of the span's row numbered ``i`` in row
+        ``i - lo`` (``lo`` where the span starts; its other rows untouched).
+    learn : bool
+        Also return what the E-step needs.
+
+    Returns
+    -------
+    aux : tuple or None
+        With ``learn``, for :func:`span_completion`.
+    """
+    aux = _SPANS[model.covariance](model, layout, part, learn, out)
+    if not learn:
+        return None
+    return (layout.Zf[part[0]:part[1]],) + aux
 
 
 def gap_moments(model, W, aux):
@@ -374,9 +216,28 @@ def completion_moments(model, W, aux):
         Added to the filled rows' statistics with weights ``W`` they give those of
         :func:`gap_moments`.
     """
+    return span_completion(model, np.ascontiguousarray(W.T), aux)
+
+
+def span_completion(model, W, aux):
+    """:func:`completion_moments` of the rows of a span.
+
+    Parameters
+    ----------
+    model : Mixture
+    W : ndarray of shape (n_part, n_components)
+        The E-step weights of the span's rows, C-ordered.
+    aux : tuple
+        From :func:`span_correction` with ``learn``.
+
+    Returns
+    -------
+    s1, s2 : ndarray
+        As :func:`completion_moments`'.
+    """
     if model.covariance == "full":
-        return _full_correction(W, aux)
-    s1, s2 = _diag_correction(W, aux)
+        return full_completion(W, aux[1:])
+    s1, s2 = _diag_correction(W.T, aux[1:])
     if model.covariance == "spherical":
         s2 = s2.sum(axis=1) / model.n_features
     return s1, s2
@@ -406,12 +267,12 @@ def expected_scatter(model, Zf, mask, resp):
     _, aux = gap_correction(model, Zf, mask, learn=True)
     D = Zf.shape[1]
     if model.covariance == "full":
-        s1, scatter = _full_correction(resp, aux)
+        s1, scatter = full_completion(np.ascontiguousarray(resp.T), aux[1:])
         s1 += resp @ Zf
         for k in range(resp.shape[0]):
             scatter[k] += (Zf * resp[k][:, None]).T @ Zf
         return s1, scatter
-    zhat, cond = _diag_completed(aux)
+    zhat, cond = _diag_completed(aux[1:])
     s1 = np.einsum("kn,knd->kd", resp, zhat)
     scatter = np.matmul(np.swapaxes(zhat * resp[:, :, None], 1, 2), zhat)
     idx = np.arange(D)
