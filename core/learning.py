@@ -135,7 +135,7 @@ def learn_rows(mixture, X, gaps=None, moments=False):
     gap_rows = None if jit else gaps
     piece = None
     if moments and gaps is None and mixture.covariance in ("full", "diag"):
-        piece = PieceMoments.empty(mixture.n_components, mixture.n_features)
+        piece = PieceMoments.empty(mixture.n_components, mixture.n_features, mixture.scale)
     while pos < n:
         # pieces end at refresh points, which sit at fixed places in the stream;
         # they are scored in cache-sized blocks, then learned from in one go
@@ -152,7 +152,7 @@ def learn_rows(mixture, X, gaps=None, moments=False):
             b0, b1, b2 = accumulate(model, A, out.resp_kn[:, pos : pos + take], row_w)
         if piece is not None:
             unit = mixture.schedule.cell_unit(at - at % every, at + take)
-            piece.add_span(out.resp_kn[:, pos:pos + take], b0, b1, b2, mixture.scale, unit)
+            piece.add_span(out.resp_kn[:, pos:pos + take], b0, b1, b2, unit)
         s0 = keep * s0 + b0
         s1 = keep * s1 + b1
         s2 = keep * s2 + b2
@@ -162,8 +162,7 @@ def learn_rows(mixture, X, gaps=None, moments=False):
         if at % every == 0:
             model = evolve(model, **refresh(model, s0, s1, s2, sumsq))
     model = evolve(model, s0=s0, s1=s1, s2=s2, sumsq=sumsq, n_rows=at)
-    scores = out.scores(mixture.ids)
-    return model, (scores if piece is None else replace(scores, moments=piece))
+    return model, out.scores(mixture.ids, piece)
 
 
 def em_step_rows(mixture, X, gaps=None):

@@ -23,7 +23,7 @@ the same however the stream is cut into pieces. ``T`` and ``Q`` are exact.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -50,24 +50,32 @@ class PieceMoments:
     B: np.ndarray
     M: np.ndarray
     S: np.ndarray
+    _scale: np.ndarray | None = field(default=None, repr=False)
+    _ones: np.ndarray | None = field(default=None, repr=False)
+    _square: np.ndarray | None = field(default=None, repr=False)
+    _outer: np.ndarray | None = field(default=None, repr=False)
 
     @classmethod
-    def empty(cls, n_components: int, n_features: int) -> "PieceMoments":
+    def empty(cls, n_components: int, n_features: int, scale=None) -> "PieceMoments":
         """Zero moments.
 
         Parameters
         ----------
         n_components, n_features : int
+        scale : ndarray of shape (n_features,), optional
+            The model's scale (standardised to data units), for :meth:`add_span`.
 
         Returns
         -------
         PieceMoments
         """
         K, D = n_components, n_features
-        return cls(np.zeros(K), np.zeros(K), np.zeros(K), np.zeros((K, D)), np.zeros((K, D, D)))
+        out = cls(np.zeros(K), np.zeros(K), np.zeros(K), np.zeros((K, D)), np.zeros((K, D, D)))
+        out._scale = None if scale is None else np.asarray(scale, dtype=np.float64)
+        return out
 
     def add_span(self, resp_kn: np.ndarray, b0: np.ndarray, b1: np.ndarray, b2: np.ndarray,
-                 scale: np.ndarray, unit: float) -> None:
+                 unit: float) -> None:
         """Add a span's moments from its responsibilities and its M-step statistics.
 
         Parameters
@@ -78,17 +86,24 @@ class PieceMoments:
         b1 : ndarray of shape (n_components, n_features)
         b2 : ndarray of shape (n_components, n_features, n_features) or (n_components, n_features)
             The span's weighted statistics in standardised units (full or diag).
-        scale : ndarray of shape (n_features,)
-            The model's scale (standardised to data units).
         unit : float
             :meth:`shoal.core.schedule.StepSchedule.cell_unit` of the span.
         """
-        self.T += resp_kn.sum(axis=1)
-        self.Q += np.einsum("kn,kn->k", resp_kn, resp_kn)
+        n = resp_kn.shape[1]
+        if self._ones is None or len(self._ones) < n:
+            self._ones = np.ones(n)
+            self._square = np.empty(resp_kn.shape)
+        ones, square = self._ones[:n], self._square[:, :n]
+        # row sums as matrix-vector products: one BLAS call each, not a reduction
+        self.T += resp_kn @ ones
+        self.Q += np.multiply(resp_kn, resp_kn, out=square) @ ones
         self.B += b0 / unit
+        scale = self._scale
         self.M += b1 * (scale / unit)
         if b2.ndim == 3:
-            self.S += b2 * (np.outer(scale, scale) / unit)
+            if self._outer is None:
+                self._outer = np.outer(scale, scale)
+            self.S += b2 * (self._outer / unit)
         else:
             at = np.arange(b2.shape[1])
             self.S[:, at, at] += b2 * (scale * scale / unit)

@@ -99,13 +99,15 @@ class ScoreBuffer:
         self.component[rows] = sub.component
         self.confidence[rows] = sub.confidence
 
-    def scores(self, ids) -> Scores:
+    def scores(self, ids, moments=None) -> Scores:
         """The buffer as :class:`Scores`.
 
         Parameters
         ----------
         ids : ndarray of shape (n_components,)
             Each component's segment id.
+        moments : PieceMoments or None
+            The rows' moments, if learning gave them.
 
         Returns
         -------
@@ -117,6 +119,7 @@ class ScoreBuffer:
             component=self.component,
             segment=ids[self.component],
             confidence=self.confidence,
+            moments=moments,
         )
 
 

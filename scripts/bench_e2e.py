@@ -408,6 +408,10 @@ STAGES = [
 ]
 
 
+WATCH_STAGES = ("drift (window sums, evaluation)", "lifecycle decision points",
+                "lifecycle unexplained rows")
+
+
 def _one_blas_thread() -> dict:
     """The environment with one BLAS thread unless it says otherwise, as the shoal command
     sets it: in the child's environment, since it must hold before numpy is loaded (this
@@ -476,42 +480,66 @@ def _stage_child(cfg: str, drop: str) -> int:
     return 0
 
 
-def stages_table(rows: int = 1_000_000, workdir: Path | None = None) -> dict:
+def stages_table(rows: int = 1_000_000, workdir: Path | None = None, repeats: int = 3) -> dict:
     """CPU seconds per stage of `shoal ingest` of one drop (full covariance), Parquet and
-    CSV, drift and lifecycle off and on; the rest is start-up, imports and glue."""
+    CSV, drift and lifecycle off and on (each the median of ``repeats`` runs, off and on
+    interleaved); the rest is start-up, imports and glue. The last lines give what the
+    watch adds: its stages, and what the rest and the model's own stage grow by with it
+    on (the model's learning then also hands the watch its moments)."""
     with tempfile.TemporaryDirectory(prefix="shoal-stages-", dir=workdir) as tmp:
         tmp = Path(tmp)
         (tmp / "data").mkdir()
         warm = write_drop(tmp / "data" / "warm.parquet", WARM_ROWS, seed=1)
         drops = {"parquet": write_drop(tmp / "data" / "drop.parquet", rows),
                  "csv": write_drop(tmp / "data" / "drop.csv", rows)}
-        runs = {}
-        for watch_drift in (False, True):
-            folder = _warmed(tmp / f"state-{int(watch_drift)}", "full", watch_drift, warm)
+        folders = {on: _warmed(tmp / f"state-{int(on)}", "full", on, warm)
+                   for on in (False, True)}
+        samples: dict = {}
+        for _ in range(repeats):
             for fmt, drop in drops.items():
-                cfg = _fresh_state(folder, folder.with_name(folder.name + "-run"))
-                out = subprocess.run([sys.executable, "-m", "scripts.bench_e2e", "--stage-child",
-                                      str(cfg), str(drop)], capture_output=True, text=True,
-                                     cwd=Path(__file__).resolve().parent.parent,
-                                     env=_one_blas_thread())
-                if out.returncode != 0 or not out.stdout.strip():
-                    raise RuntimeError(f"shoal ingest {drop.name} (stages) exited "
-                                       f"{out.returncode}: {out.stderr[-2000:]}")
-                runs[(fmt, watch_drift)] = json.loads(out.stdout.strip().splitlines()[-1])
+                for watch_drift in (False, True):
+                    folder = folders[watch_drift]
+                    cfg = _fresh_state(folder, folder.with_name(folder.name + "-run"))
+                    out = subprocess.run([sys.executable, "-m", "scripts.bench_e2e",
+                                          "--stage-child", str(cfg), str(drop)],
+                                         capture_output=True, text=True,
+                                         cwd=Path(__file__).resolve().parent.parent,
+                                         env=_one_blas_thread())
+                    if out.returncode != 0 or not out.stdout.strip():
+                        raise RuntimeError(f"shoal ingest {drop.name} (stages) exited "
+                                           f"{out.returncode}: {out.stderr[-2000:]}")
+                    samples.setdefault((fmt, watch_drift), []).append(
+                        json.loads(out.stdout.strip().splitlines()[-1]))
         names = list(dict.fromkeys([s[0] for s in STAGES] + ["read + decode (pyarrow)"]))
-        keys = list(runs)
+        runs = {key: {"cpu": {n: float(np.median([r["cpu"].get(n, 0.0) for r in got]))
+                              for n in names},
+                      "total": float(np.median([r["total"] for r in got])),
+                      "wall": float(np.median([r["wall"] for r in got])),
+                      "rest": float(np.median([r["total"] - sum(r["cpu"].values())
+                                               for r in got]))}
+                for key, got in samples.items()}
+        keys = [(fmt, on) for fmt in drops for on in (False, True)]
         heads = [f"{fmt} {'on' if on else 'off'}" for fmt, on in keys]
         print(f"\nCPU seconds per stage of `shoal ingest`, {rows:,} rows, D={N_FEATURES}, "
               f"K={N_COMPONENTS}, full; drift and lifecycle off/on (thread CPU time of "
-              "each stage's calls)")
+              f"each stage's calls; median of {repeats} runs, off and on interleaved)")
         print(f"{'stage':36} " + " ".join(f"{h:>12}" for h in heads))
-        for name in sorted(names, key=lambda n: -runs[keys[-2]]["cpu"].get(n, 0.0)):
-            print(f"{name:36} " + " ".join(f"{runs[k]['cpu'].get(name, 0.0):>12.2f}"
+        for name in sorted(names, key=lambda n: -runs[("parquet", True)]["cpu"].get(n, 0.0)):
+            print(f"{name:36} " + " ".join(f"{runs[k]['cpu'].get(name, 0.0):>12.3f}"
                                            for k in keys))
         print(f"{'rest (start-up, imports, glue)':36} " + " ".join(
-            f"{runs[k]['total'] - sum(runs[k]['cpu'].values()):>12.2f}" for k in keys))
-        print(f"{'process CPU':36} " + " ".join(f"{runs[k]['total']:>12.2f}" for k in keys))
-        print(f"{'process wall':36} " + " ".join(f"{runs[k]['wall']:>12.2f}" for k in keys))
+            f"{runs[k]['rest']:>12.3f}" for k in keys))
+        print(f"{'process CPU':36} " + " ".join(f"{runs[k]['total']:>12.3f}" for k in keys))
+        print(f"{'process wall':36} " + " ".join(f"{runs[k]['wall']:>12.3f}" for k in keys))
+        model = "model E+M (Mixture.learn)"
+        for fmt in drops:
+            off, on = runs[(fmt, False)], runs[(fmt, True)]
+            watch = sum(on["cpu"][n] for n in WATCH_STAGES)
+            grown = (on["rest"] - off["rest"]) + (on["cpu"][model] - off["cpu"][model])
+            print(f"{fmt}: the watch's stages {watch:.3f} + the rest and the model's stage "
+                  f"grown by {grown:.3f} = {watch + grown:.3f} CPU-s, "
+                  f"{(watch + grown) / off['cpu'][model]:.2f} x the model's E+M with it off "
+                  f"(target <= 0.5)")
     return runs
 
 
@@ -531,7 +559,7 @@ def main() -> int:
                    help="only the cost of drift and lifecycle (on/off, interleaved)")
     a = p.parse_args()
     if a.stages:
-        stages_table(a.rows)
+        stages_table(a.rows, repeats=a.repeats)
         return 0
     if a.cost:
         watch_cost_table(a.rows, a.repeats, covariances=tuple(a.covariance or ("full", "diag")))
