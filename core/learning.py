@@ -100,7 +100,7 @@ def score_rows(mixture, X, gaps=None):
     return out.scores(mixture.ids)
 
 
-def learn_rows(mixture, X, gaps=None, moments=False):
+def learn_rows(mixture, X, gaps=None, moments=False, scratch=None):
     """Score rows, then learn from them with stepwise EM (see :meth:`Mixture.learn`).
 
     Parameters
@@ -111,6 +111,9 @@ def learn_rows(mixture, X, gaps=None, moments=False):
         Also give the rows' per-segment moments (``scores.moments``,
         :class:`shoal.core.piece_moments.PieceMoments`) from the M-step's statistics,
         for complete rows and the full and diag types (None otherwise).
+    scratch : ScoreScratch or None
+        Buffers to score into (the scores are views into them, valid until the next
+        call with the same scratch); None: fresh ones.
 
     Returns
     -------
@@ -122,7 +125,8 @@ def learn_rows(mixture, X, gaps=None, moments=False):
     jit = fused.enabled()
     X = checked_rows(mixture, X, check=not jit and gaps is None)
     n = X.shape[0]
-    out = ScoreBuffer(n, mixture.n_components)
+    out = (ScoreBuffer(n, mixture.n_components) if scratch is None
+           else scratch.buffer(n, mixture.n_components))
     rows = None if jit else Standardiser(mixture.center, mixture.scale)
     model = mixture  # the parameters in force; replaced at refresh points only
     s0, s1, s2, sumsq = mixture.s0, mixture.s1, mixture.s2, mixture.sumsq

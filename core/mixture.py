@@ -325,7 +325,7 @@ class Mixture:
         return self.family.log_joint(A, operator).T - self.log_scale_sum
 
     @learning.retry_with_gaps()
-    def learn(self, X, *, moments=False, _gaps=None) -> tuple["Mixture", Scores]:
+    def learn(self, X, *, moments=False, scratch=None, _gaps=None) -> tuple["Mixture", Scores]:
         """Score rows, then learn from them with stepwise EM.
 
         Rows are taken in order. Each row is scored with the parameters in force at
@@ -341,6 +341,9 @@ class Mixture:
             Also give the rows' per-segment moments in ``scores.moments``
             (:class:`shoal.core.piece_moments.PieceMoments`; complete rows, full and
             diag types), taken from the M-step's statistics for the drift watch.
+        scratch : ScoreScratch, optional
+            Buffers reused from call to call (:class:`shoal.core.scoring.ScoreScratch`):
+            the scores are then valid only until the next call with it.
 
         Returns
         -------
@@ -349,7 +352,7 @@ class Mixture:
         scores : Scores
             The scores of every row, as labelled during learning.
         """
-        return learning.learn_rows(self, X, _gaps, moments)
+        return learning.learn_rows(self, X, _gaps, moments, scratch)
 
     @learning.retry_with_gaps(always_fill=True)
     def em_step(self, X, *, _gaps=None) -> tuple["Mixture", float]:

@@ -27,6 +27,7 @@ from shoal.core import (
     select_n_components,
 )
 from shoal.core.quantile import linear_quantile
+from shoal.core.scoring import ScoreScratch
 from shoal.daemon.errors import InputRejected, Interrupted
 from shoal.daemon.files.gaps import Unusual, complete_rows, observed_counts
 from shoal.daemon.ingest.rows import ScoresInto, complete_only, concat_scores
@@ -131,6 +132,8 @@ def learn_chunks(settings: Settings, mixture: Mixture, X: np.ndarray,
     ``life`` takes its lifecycle decisions at its own fixed points between pieces.
     Returns the mixture after ``X`` and the scores of its rows (None without rows)."""
     joined = ScoresInto(len(X))
+    # each piece's scores are done with before the next piece: its buffers are reused
+    scratch = ScoreScratch()
     step = settings.learning.chunk_rows
     start = 0
     try:
@@ -144,7 +147,7 @@ def learn_chunks(settings: Settings, mixture: Mixture, X: np.ndarray,
                 take = min(take, life.rows_to_boundary(mixture))
             piece = X[start:start + take]
             before = mixture
-            mixture, scores = mixture.learn(piece, moments=watch is not None)
+            mixture, scores = mixture.learn(piece, moments=watch is not None, scratch=scratch)
             if watch is not None:
                 watch.observe(mixture, piece, scores, start)
             if life is not None:

@@ -39,7 +39,7 @@ _WAITING_VALUES = 1 << 21
 """Sampled rows wait for their segments' samples, at most this many values (16 MiB)."""
 _WAITING_PIECES = 32
 """Rows under the unexplained bound wait for their exact test, from at most this many
-pieces (each piece's responsibilities wait with them)."""
+pieces (their responsibilities and log-densities wait with them, copied)."""
 
 
 def _pack(rows: np.ndarray) -> str:
@@ -166,8 +166,8 @@ class UnexplainedPool:
         order = np.argsort(self.rows, kind="stable")   # kept in stream order
         if np.any(order != np.arange(order.size)):
             self.X, self.rows = self.X[order], self.rows[order]
-        # (model that scored them, their rows, the piece's responsibilities and
-        # log-densities, their positions in the piece, the stream position of the last)
+        # (model that scored them, their rows, responsibilities and log-densities,
+        # their positions in the piece, the stream position of the last)
         self._waiting: list[tuple] = []
         self.waiting_rows = 0
 
@@ -178,7 +178,9 @@ class UnexplainedPool:
         near = np.flatnonzero(log_density < unexplained_below(before, self.quantile) + 1e-9)
         if near.size:
             last = int(before.n_rows) + int(near[-1])   # the stream position of its last row
-            self._waiting.append((before, X[near], scores.resp, log_density, near, last))
+            # the piece's score buffers are reused for the next piece: what waits is copied
+            self._waiting.append((before, X[near], scores.resp[near], log_density[near], near,
+                                  last))
             self.waiting_rows += near.size
             if len(self._waiting) > _WAITING_PIECES:
                 self.settle()
@@ -192,7 +194,7 @@ class UnexplainedPool:
         waiting, self._waiting, self.waiting_rows = self._waiting, [], 0
         pool_X, pool_rows = [self.X], [self.rows]
         for before, X_near, resp, log_density, near, _ in waiting:
-            far = unexplained_scored(before, resp[near], log_density[near], self.quantile)
+            far = unexplained_scored(before, resp, log_density, self.quantile)
             if far.size:
                 pool_X.append(X_near[far])
                 pool_rows.append(before.n_rows + near[far])

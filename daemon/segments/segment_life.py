@@ -199,7 +199,7 @@ class LifeWatch:
                     self._due = True   # a split test may be due (if not cooling down)
         if counts:
             self._samples.add(X, first, scores.segment[first::SAMPLE_STRIDE],
-                              scores.log_density[first::SAMPLE_STRIDE], counts, ids)
+                              scores.log_density[first::SAMPLE_STRIDE].copy(), counts, ids)
         self._pool.add(before, X, scores)
 
     def _keys(self, ids: list[int]) -> list[str]:

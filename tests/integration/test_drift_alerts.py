@@ -9,6 +9,7 @@ pipeline in-process, with the shipped default settings except ``segments: 6``.
 """
 import numpy as np
 import pytest
+import pyarrow.parquet as pq
 
 from shoal.config import parse_config
 from shoal.daemon.ingest.pipeline import Pipeline
@@ -271,3 +272,42 @@ def test_windows_evaluated_together_decide_as_one_at_a_time(stream, monkeypatch)
             == {k: v for k, v in b.items() if k not in ("value", "noise", "peak", "explanation")}
         assert a["value"] == pytest.approx(b["value"], rel=1e-9)
     assert bounds_t == bounds_s
+
+
+def test_reused_score_buffers_change_nothing(stream, monkeypatch):
+    # The ingest learns piece after piece into score buffers it reuses; whatever the
+    # watches keep of a piece must be their own copy. The same stream with fresh buffers
+    # for every piece must end in the same model, alerts, drift and lifecycle state and
+    # labels. A mean shift (alerts) and a new group (pooled rows) exercise both watches;
+    # a birth that needs a full pool lets unexplained rows wait over many pieces.
+    from shoal.core.scoring import ScoreBuffer, ScoreScratch
+    weights, means, covs = _truth()
+    rng = np.random.default_rng(13)
+    X = np.concatenate([_rows(rng, 30_000, weights, means, covs),
+                        _rows(rng, 20_000, weights, means, covs, shift=(2, 0, 2.0))])
+    new_group = rng.normal(means.mean(axis=0) + 12.0, 0.5, (3_000, D))
+    X = np.concatenate([X, new_group, _rows(rng, 10_000, weights, means, covs)])
+    X[30_000:] = X[30_000:][rng.permutation(len(X) - 30_000)]
+    ends = []
+    for fresh in (False, True):
+        if fresh:
+            monkeypatch.setattr(ScoreScratch, "buffer",
+                                lambda self, n, k: ScoreBuffer(n, k))
+        s = stream(drift={"settle_rows": 8000, "window_rows": 2000},
+                   lifecycle={"birth_rows": 2000})
+        s.feed(X, 21_000)
+        arrays, _ = s.pipeline.state.mixture.to_state()
+        labels = sorted(s.folder.rglob("*.labels.parquet"))
+        extra = dict(s.pipeline.state.extra)   # less the wall times segments were born at
+        extra["segment_born"] = {k: v["version"] for k, v in extra["segment_born"].items()}
+        ends.append((arrays, s.alerts(), extra,
+                     [pq.read_table(p).to_pydict() for p in labels]))
+    (a_arrays, a_alerts, a_extra, a_labels), (b_arrays, b_alerts, b_extra, b_labels) = ends
+    assert len(a_extra["lifecycle"]["pool"]["rows"]) > 20
+    assert any(a["status"] == "raised" for a in a_alerts)
+    assert a_arrays.keys() == b_arrays.keys()
+    for key in a_arrays:
+        assert np.array_equal(a_arrays[key], b_arrays[key]), key
+    assert a_alerts == b_alerts
+    assert a_extra == b_extra
+    assert a_labels and len(a_labels) == len(b_labels) and a_labels == b_labels

@@ -107,3 +107,20 @@ def test_stacked_sums_take_unweighted_windows_mass_as_their_counts():
     both = stack_sums([a, b])
     assert both.B.tolist() == [2.0, 0.5]
     assert stack_sums([a, a]).B is None and stack_sums([a, a]).mass.tolist() == [2.0, 2.0]
+
+
+def test_scores_into_a_scratch_equal_fresh_ones_until_the_next_call():
+    # the ingest reuses score buffers from piece to piece (ScoreScratch); the scores of a
+    # call are those of fresh buffers, and the next call of the same size overwrites them
+    from shoal.core.scoring import ScoreScratch
+    m = _model("full")
+    X = _rows(8192, seed=5)
+    scratch = ScoreScratch()
+    a_model, a = m.learn(X[:4096], scratch=scratch)
+    b_model, b = m.learn(X[:4096])
+    for name in ("log_density", "resp", "component", "segment", "confidence"):
+        assert np.array_equal(getattr(a, name), getattr(b, name)), name
+    kept = a.log_density.copy()
+    a_model.learn(X[4096:], scratch=scratch)
+    assert not np.array_equal(a.log_density, kept)      # a view into the reused buffer
+    assert np.array_equal(a_model.s2, b_model.s2)
