@@ -75,6 +75,7 @@ __all__ = ["DriftMonitor", "InputWatch", "alert_id", "STATISTIC_UNITS", "SEGMENT
            "PAYLOAD_SCHEMA_VERSION"]
 
 STATE_FORMAT = 1
+WAITING_WINDOWS = 64   # closed windows evaluated together, at most
 # ----------------------------------------------------------------------------- monitor
 
 
@@ -139,7 +140,7 @@ class InputWatch:
         if state is not None and state.get("format") != STATE_FORMAT:
             raise ValueError(f"drift state has format {state.get('format')!r}")
         self._state = json.loads(json.dumps(state)) if state is not None else None
-        self._last = None   # the last window's (values, noise, bounds), or what builds them
+        self._last = None   # ((values, noise, detail) or what makes them, bounds) of the last
         # closed windows waiting to be evaluated together: (record, info, sums, recent)
         self._waiting: list[tuple] = []
         self._ref_cache = None   # (baseline dict, Baseline, GaussianSet, spread variance)
@@ -303,6 +304,8 @@ class InputWatch:
             return
         ids = self._baseline()[0].ids.tolist()
         self._waiting.append((win, info, self._window_sums(win, ids), st["recent"]))
+        if len(self._waiting) >= WAITING_WINDOWS:   # memory stays bounded on long inputs
+            self._evaluate_waiting()
 
     def _take_baseline(self, mixture: Mixture, log_density, info, ref=None) -> None:
         st = self.state
@@ -389,27 +392,24 @@ class InputWatch:
             for key in [key for key, until in st["cool"].items() if until < win["index"]]:
                 del st["cool"][key]
             if quiet[i] and not st["bounds"]["entries"]:
-                self._last = functools.partial(self._last_values, win, ref, one, fits[i],
-                                               dict(st["cool"]), bounds)
+                self._last = (functools.partial(self._keyed, win, ref, one, fits[i],
+                                                dict(st["cool"])), bounds)
                 continue
-            values, noise, detail = self._keyed(win, ref, one(), fits[i], st["cool"], bounds)
+            values, noise, detail = self._keyed(win, ref, one, fits[i], st["cool"])
             d = self.drift
             st["bounds"], events = evaluate_bounds(
                 values, noise, bounds, st["bounds"], noise_multiple=d.noise_multiple,
                 persist=d.persist, resolve_fraction=d.resolve_fraction,
                 resolve_persist=d.resolve_persist, at=win["index"])
-            self._last = (values, noise, bounds)
+            self._last = ((values, noise, detail), bounds)
             for e in events:
                 drift_event_alert(self, e, detail, ref, info, recent)
 
-    def _last_values(self, win, ref, stats, fit, cool, bounds):
-        values, noise, _ = self._keyed(win, ref, stats(), fit, cool, bounds)
-        return values, noise, bounds
-
-    def _keyed(self, win, ref, stats, fit, cool, bounds):
-        """One window's ``(values, noise, detail)``, cooling pairs at 0."""
+    def _keyed(self, win, ref, stats, fit, cool):
+        """One window's ``(values, noise, detail)`` (``stats()`` its statistics), cooling
+        pairs at 0."""
         values, noise, detail = window_values(
-            win, ref, stats, fit, self.monitor.features,
+            win, ref, stats(), fit, self.monitor.features,
             feature_shift=self.monitor.wants_feature_shift())
         if cool:
             for (seg, stat) in list(values):
@@ -485,11 +485,10 @@ class InputWatch:
         when asked, once per input, not at every window)."""
         out: dict[str, dict] = {}
         self._evaluate_waiting()
-        if callable(self._last):
-            self._last = self._last()
         if self._last is None:
             return out
-        values, noise, bounds = self._last
+        keyed, bounds = self._last
+        values, noise, _ = keyed() if callable(keyed) else keyed
         for (seg, stat), v in values.items():
             bound = bounds.get((seg, stat), bounds.get(stat))
             out.setdefault(str(seg), {})[stat] = {

@@ -241,12 +241,17 @@ def test_rebaseline_accepts_the_present_and_clears_raised_alerts(stream):
     assert s.alerts()[n_alerts:] == []
 
 
-def test_windows_evaluated_together_decide_as_one_at_a_time(stream, monkeypatch):
-    # Closed windows wait and are evaluated together (at the end of an input); reading
-    # the watch's state after every piece evaluates each window as it closes. Both
-    # must raise and clear the same alerts with the same payloads and leave the same
-    # bound state. A mean shift and its return make both kinds of event.
+@pytest.mark.parametrize("waiting", [None, 3])
+def test_windows_evaluated_together_decide_as_one_at_a_time(stream, monkeypatch, waiting):
+    # Closed windows wait and are evaluated together (at the end of an input, or when
+    # WAITING_WINDOWS of them wait); reading the watch's state after every piece
+    # evaluates each window as it closes. Both must raise and clear the same alerts
+    # with the same payloads and leave the same bound state. A mean shift and its
+    # return make both kinds of event.
+    from shoal.daemon.segments import monitor
     from shoal.daemon.segments.monitor import InputWatch
+    if waiting is not None:
+        monkeypatch.setattr(monitor, "WAITING_WINDOWS", waiting)
     weights, means, covs = _truth()
     rng = np.random.default_rng(12)
     X = np.concatenate([_rows(rng, 30_000, weights, means, covs),
