@@ -184,7 +184,9 @@ class LifeWatch:
         # sampled rows of each segment, those that miss a feature too (they count
         # towards a split test's wait, but do not go into a sample)
         fresh = np.bincount(picked, minlength=len(ids)).tolist()
-        mass = scores.resp.T.sum(axis=1).tolist()
+        # each segment's responsibility total: the drift watch's moments carry it
+        mass = (scores.resp.T.sum(axis=1) if scores.moments is None
+                else scores.moments.T).tolist()
         recent = st.setdefault("recent", {"rows": 0, "mass": {}})
         recent["rows"] += len(X)
         by_id, sampled = recent["mass"], st.setdefault("fresh", {})
