@@ -56,13 +56,13 @@ class PieceMoments:
     _outer: np.ndarray | None = field(default=None, repr=False)
 
     @classmethod
-    def empty(cls, n_components: int, n_features: int, scale=None) -> "PieceMoments":
+    def empty(cls, n_components: int, n_features: int, scale) -> "PieceMoments":
         """Zero moments.
 
         Parameters
         ----------
         n_components, n_features : int
-        scale : ndarray of shape (n_features,), optional
+        scale : ndarray of shape (n_features,)
             The model's scale (standardised to data units), for :meth:`add_span`.
 
         Returns
@@ -71,7 +71,7 @@ class PieceMoments:
         """
         K, D = n_components, n_features
         out = cls(np.zeros(K), np.zeros(K), np.zeros(K), np.zeros((K, D)), np.zeros((K, D, D)))
-        out._scale = None if scale is None else np.asarray(scale, dtype=np.float64)
+        out._scale = np.asarray(scale, dtype=np.float64)
         return out
 
     def add_span(self, resp_kn: np.ndarray, b0: np.ndarray, b1: np.ndarray, b2: np.ndarray,

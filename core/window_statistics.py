@@ -27,7 +27,7 @@ from .drift_noise import mean_shift_noise, spread_noise, spread_variance, weight
 __all__ = ["NEGLIGIBLE", "WindowSums", "SegmentStatistics", "add_segment_scatter",
            "add_segment_variances",
            "piece_sums", "projected_covariances",
-           "segment_statistics", "stack_sums", "window_statistics", "fit_statistics"]
+           "stack_sums", "window_statistics", "fit_statistics"]
 
 NEGLIGIBLE = 1e-12
 """Responsibilities at or below this are left out of a window's second moments: such
@@ -234,7 +234,7 @@ class SegmentStatistics:
     feature_noise: np.ndarray | None = None
 
     def rows(self, lo: int, hi: int) -> "SegmentStatistics":
-        """The statistics of rows ``lo:hi`` (one window of :func:`window_statistics`).
+        """The statistics of rows ``lo:hi`` (one window of several).
 
         Parameters
         ----------
@@ -281,45 +281,6 @@ def _observed_means(sums: WindowSums, at, center, means, n_effs):
     return fmeans, f_neff
 
 
-def segment_statistics(ref, factors, n_rows: int, sums: WindowSums, center, *,
-                       min_share: float, baseline_missing=None,
-                       feature_shift: bool = False,
-                       ref_spread_variance=None) -> SegmentStatistics:
-    """Compare one window with the baseline, all segments at once.
-
-    Parameters
-    ----------
-    ref : Baseline
-    factors : GaussianSet
-        The baseline's Gaussians, factorised (:class:`shoal.core.distances.GaussianSet`).
-    n_rows : int
-        Rows of the window.
-    sums : WindowSums
-        The window's sums, rows in the baseline's order of segment ids (zeros for a
-        segment without rows).
-    center : ndarray of shape (n_features,)
-        The centre the sums' rows were taken from.
-    min_share : float
-        A segment whose share is under this fraction of its baseline weight is not
-        measured for its shape (its rows are mostly its neighbours' tails).
-    baseline_missing : ndarray of shape (K, n_features), optional
-        The baseline's share of each segment's rows that missed each feature (zeros).
-    feature_shift : bool, default False
-        Also each feature's mean shift.
-    ref_spread_variance : ndarray of shape (K,), optional
-        ``spread_variance(ref.n_eff, D, ref.covariance)``, when the caller keeps it
-        for the baseline's life (it is the same for every window).
-
-    Returns
-    -------
-    SegmentStatistics
-    """
-    return window_statistics(ref, factors, [n_rows], sums, np.asarray(center)[None],
-                             min_share=min_share, baseline_missing=baseline_missing,
-                             feature_shift=feature_shift,
-                             ref_spread_variance=ref_spread_variance)
-
-
 def stack_sums(windows) -> WindowSums:
     """Several windows' sums (each in the baseline's order of segment ids) as one
     :class:`WindowSums` of ``len(windows) * K`` rows, window after window.
@@ -349,20 +310,32 @@ def window_statistics(ref, factors, n_rows, sums: WindowSums, centers, *,
                       min_share: float, baseline_missing=None,
                       feature_shift: bool = False,
                       ref_spread_variance=None) -> SegmentStatistics:
-    """Compare several windows with the baseline, every segment of every window at once.
+    """Compare one or several windows with the baseline, every segment of every window
+    at once.
 
     Parameters
     ----------
-    ref, factors, min_share, feature_shift, ref_spread_variance
-        As for :func:`segment_statistics`.
+    ref : Baseline
+    factors : GaussianSet
+        The baseline's Gaussians, factorised (:class:`shoal.core.distances.GaussianSet`).
     n_rows : sequence of int, length W
         Rows of each window.
     sums : WindowSums
-        The windows' sums, ``W * K`` rows (:func:`stack_sums`).
+        The windows' sums, ``W * K`` rows, each window's in the baseline's order of
+        segment ids (zeros for a segment without rows; :func:`stack_sums`).
     centers : ndarray of shape (W, n_features)
         The centre each window's rows were taken from.
+    min_share : float
+        A segment whose share is under this fraction of its baseline weight is not
+        measured for its shape (its rows are mostly its neighbours' tails).
     baseline_missing : ndarray of shape (K, n_features), optional
-        As for :func:`segment_statistics` (the same for every window).
+        The baseline's share of each segment's rows that missed each feature (zeros);
+        the same for every window.
+    feature_shift : bool, default False
+        Also each feature's mean shift.
+    ref_spread_variance : ndarray of shape (K,), optional
+        ``spread_variance(ref.n_eff, D, ref.covariance)``, when the caller keeps it
+        for the baseline's life (it is the same for every window).
 
     Returns
     -------

@@ -129,15 +129,17 @@ def concat_scores(*parts):
     parts = [p for p in parts if p is not None]
     if len(parts) == 1:
         return parts[0]
-    joined = {name: np.concatenate([getattr(p, name) for p in parts])
-              for name in _ROW_FIELDS if name != "resp"}
-    return type(parts[0])(resp=np.empty((len(joined["segment"]), 0)), **joined)
+    joined, at = ScoresInto(sum(len(p.segment) for p in parts)), 0
+    for p in parts:
+        joined.put(at, p)
+        at += len(p.segment)
+    return joined.scores()
 
 
 class ScoresInto:
     """The scores of ``n_rows`` consecutive rows, written piece by piece into arrays
     made once (joining hundreds of pieces' arrays at the end cost as much again), without
-    responsibilities (as :func:`concat_scores`)."""
+    responsibilities."""
 
     def __init__(self, n_rows: int):
         self.n_rows = n_rows

@@ -7,7 +7,7 @@ the additive sums ``T``, ``Q``, ``B``, ``M``, ``S`` and, with missing features, 
 before it was kept has ``B = T``). During an input the sums of its pieces stay arrays (one row
 per segment of the model) and are added into the record when it is saved; a closing
 window's sums are laid out as arrays in the baseline's order of segment ids for
-:func:`shoal.core.window_statistics.segment_statistics`.
+:func:`shoal.core.window_statistics.window_statistics`.
 """
 from __future__ import annotations
 

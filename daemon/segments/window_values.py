@@ -1,7 +1,7 @@
 """A closing window's statistics keyed for the bounds, and the details alerts read.
 
-:func:`window_values` asks the core for every segment's statistics of one window
-(:func:`shoal.core.window_statistics.segment_statistics`, over arrays) and keys them
+:func:`window_values` keys one window's statistics (every segment's, from
+:func:`shoal.core.window_statistics.window_statistics`, over arrays) as
 ``(segment id, statistic)`` with their noise levels, as
 :func:`shoal.core.drift.evaluate_bounds` takes them: a statistic that was not measured
 has no key (no evidence either way), and a segment that lost most of its rows has its

@@ -15,7 +15,6 @@ from shoal.core.window_statistics import (
     add_segment_variances,
     fit_statistics,
     piece_sums,
-    segment_statistics,
     stack_sums,
     window_statistics,
 )
@@ -34,6 +33,11 @@ def _window(seed=0):
     S = np.zeros((K, D, D))
     add_segment_scatter(S, Xc, R, 0.0)
     return X, resp, center, WindowSums(T=T, Q=Q, M=M, S=S)
+
+
+def _one_window(ref, factors, n_rows, sums, center, **kwargs):
+    """One window's statistics: window_statistics of a stack of one."""
+    return window_statistics(ref, factors, [n_rows], sums, np.asarray(center)[None], **kwargs)
 
 
 def _baseline(seed=1):
@@ -62,7 +66,7 @@ def test_variances_are_the_diagonals_of_the_scatter_and_of_a_direct_sum():
 def test_segment_statistics_match_weighted_moments_and_scipy_mahalanobis():
     X, resp, center, sums = _window()
     ref = _baseline()
-    got = segment_statistics(ref, GaussianSet(ref.means, ref.covariances), N, sums, center,
+    got = _one_window(ref, GaussianSet(ref.means, ref.covariances), N, sums, center,
                              min_share=0.25)
     for k in range(K):
         w = resp[:, k]
@@ -97,7 +101,7 @@ def test_windows_stacked_give_each_window_its_own_statistics():
     together = window_statistics(ref, factors, n_rows, stack_sums(windows), np.array(centers),
                                  min_share=0.25, feature_shift=True)
     for w, sums in enumerate(windows):
-        one = segment_statistics(ref, factors, n_rows[w], sums, centers[w], min_share=0.25,
+        one = _one_window(ref, factors, n_rows[w], sums, centers[w], min_share=0.25,
                                  feature_shift=True)
         part = together.rows(w * K, (w + 1) * K)
         for name in ("share", "low", "seen", "n_eff", "means", "covs", "mean_shift",
@@ -116,8 +120,8 @@ def test_spread_noise_from_a_kept_baseline_variance_is_the_same():
     X, resp, center, sums = _window()
     ref = _baseline()
     factors = GaussianSet(ref.means, ref.covariances)
-    plain = segment_statistics(ref, factors, N, sums, center, min_share=0.25)
-    kept = segment_statistics(ref, factors, N, sums, center, min_share=0.25,
+    plain = _one_window(ref, factors, N, sums, center, min_share=0.25)
+    kept = _one_window(ref, factors, N, sums, center, min_share=0.25,
                               ref_spread_variance=spread_variance(ref.n_eff, D, "full"))
     assert np.array_equal(plain.spread_noise, kept.spread_noise)
     assert np.allclose(plain.spread_noise * 2 * D,
@@ -128,7 +132,7 @@ def test_a_segment_that_lost_its_rows_is_not_measured_for_its_shape():
     X, resp, center, sums = _window()
     ref = _baseline()
     sums.T[2], sums.Q[2] = 0.01 * sums.T[2], 0.01 * sums.Q[2]     # share far under 1/4 of 1/3
-    got = segment_statistics(ref, GaussianSet(ref.means, ref.covariances), N, sums, center,
+    got = _one_window(ref, GaussianSet(ref.means, ref.covariances), N, sums, center,
                              min_share=0.25)
     assert got.low.tolist() == [False, False, True]
     assert np.isnan(got.mean_shift[2]) and np.isnan(got.spread[2])
