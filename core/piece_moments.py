@@ -23,6 +23,7 @@ the same however the stream is cut into pieces. ``T`` and ``Q`` are exact.
 """
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -51,8 +52,6 @@ class PieceMoments:
     M: np.ndarray
     S: np.ndarray
     _scale: np.ndarray | None = field(default=None, repr=False)
-    _ones: np.ndarray | None = field(default=None, repr=False)
-    _square: np.ndarray | None = field(default=None, repr=False)
     _outer: np.ndarray | None = field(default=None, repr=False)
 
     @classmethod
@@ -72,6 +71,7 @@ class PieceMoments:
         K, D = n_components, n_features
         out = cls(np.zeros(K), np.zeros(K), np.zeros(K), np.zeros((K, D)), np.zeros((K, D, D)))
         out._scale = np.asarray(scale, dtype=np.float64)
+        out._outer = np.outer(out._scale, out._scale)
         return out
 
     def add_span(self, resp_kn: np.ndarray, b0: np.ndarray, b1: np.ndarray, b2: np.ndarray,
@@ -89,21 +89,23 @@ class PieceMoments:
         unit : float
             :meth:`shoal.core.schedule.StepSchedule.cell_unit` of the span.
         """
-        n = resp_kn.shape[1]
-        if self._ones is None or len(self._ones) < n:
-            self._ones = np.ones(n)
-            self._square = np.empty(resp_kn.shape)
-        ones, square = self._ones[:n], self._square[:, :n]
+        ones = _ones(resp_kn.shape[1])
         # row sums as matrix-vector products: one BLAS call each, not a reduction
         self.T += resp_kn @ ones
-        self.Q += np.multiply(resp_kn, resp_kn, out=square) @ ones
+        self.Q += (resp_kn * resp_kn) @ ones
         self.B += b0 / unit
         scale = self._scale
         self.M += b1 * (scale / unit)
         if b2.ndim == 3:
-            if self._outer is None:
-                self._outer = np.outer(scale, scale)
             self.S += b2 * (self._outer / unit)
         else:
             at = np.arange(b2.shape[1])
             self.S[:, at, at] += b2 * (scale * scale / unit)
+
+
+@functools.lru_cache(maxsize=4)
+def _ones(n: int) -> np.ndarray:
+    """A read-only vector of ``n`` ones (spans have a handful of lengths)."""
+    ones = np.ones(n)
+    ones.flags.writeable = False
+    return ones
