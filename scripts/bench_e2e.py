@@ -65,7 +65,8 @@ def _mixture(seed: int = 16):
     return weights, means, np.linalg.cholesky(covs)
 
 
-def _rows(n: int, seed) -> np.ndarray:
+def mixture_rows(n: int, seed) -> np.ndarray:
+    """``n`` rows of the bench's mixture (:func:`_mixture`), drawn with ``seed``."""
     weights, means, chol = _mixture()
     rng = np.random.default_rng(seed)
     labels = rng.choice(N_COMPONENTS, size=n, p=weights)
@@ -79,7 +80,7 @@ def write_drop(path: Path, rows: int, seed: int = 0) -> Path:
     try:
         for start in range(0, rows, PIECE):
             n = min(PIECE, rows - start)
-            table = _table(_rows(n, [seed, start]), start)
+            table = _table(mixture_rows(n, [seed, start]), start)
             if path.suffix == ".parquet":
                 writer = writer or pq.ParquetWriter(path, table.schema)
                 writer.write_table(table)
@@ -153,7 +154,9 @@ def _fresh_state(template: Path, run: Path) -> Path:
     return run / "shoal.yaml"
 
 
-def _warmed(folder: Path, covariance: str, watch_drift: bool, warm: Path) -> Path:
+def warmed_state(folder: Path, covariance: str, watch_drift: bool, warm: Path) -> Path:
+    """A state folder in ``folder`` whose model was warmed up on the drop ``warm`` by
+    `shoal ingest` (its config beside it), the outbox emptied."""
     cfg = _config(folder, covariance, watch_drift)
     _ingest(cfg, warm)
     (folder / "ingest.log").unlink()
@@ -305,7 +308,7 @@ def e2e_table(rows: int = 1_000_000, big_rows: int = 10_000_000, repeats: int = 
             anchor = core_anchor(X, cov)
             for watch_drift in (False, True):
                 folder = tmp / f"state-{cov}-{int(watch_drift)}"
-                _warmed(folder, cov, watch_drift, warm)
+                warmed_state(folder, cov, watch_drift, warm)
                 for fmt in ("parquet", "csv"):
                     beside = beside_reading(anchor, folder / "shoal.yaml", drops[fmt]) \
                         if fmt == "parquet" else None
@@ -349,7 +352,7 @@ def watch_cost_table(rows: int = 1_000_000, repeats: int = 3, workdir: Path | No
         print(f"{'cov':>5} {'run':>4} | {'off rows/s':>11} {'on rows/s':>11} {'on/off':>7}")
         out = {}
         for cov in covariances:
-            folders = {on: _warmed(tmp / f"cost-{cov}-{int(on)}", cov, on, drops["warm"])
+            folders = {on: warmed_state(tmp / f"cost-{cov}-{int(on)}", cov, on, drops["warm"])
                        for on in (False, True)}
             ratios, rates = [], {False: [], True: []}
             for i in range(repeats):
@@ -371,7 +374,7 @@ def watch_cost_table(rows: int = 1_000_000, repeats: int = 3, workdir: Path | No
 
 def memory_table(tmp: Path, warm: Path, small: Path, rows: int, big_rows: int) -> dict:
     big = write_drop(tmp / "data" / "big.parquet", big_rows, seed=2)
-    folder = _warmed(tmp / "state-memory", "full", True, warm)
+    folder = warmed_state(tmp / "state-memory", "full", True, warm)
     out = {}
     print(f"\nPeak RSS of `shoal ingest` (full, drift and lifecycle on), row groups of "
           f"{PIECE:,} rows")
@@ -516,7 +519,7 @@ def stages_table(rows: int = 1_000_000, workdir: Path | None = None, repeats: in
         warm = write_drop(tmp / "data" / "warm.parquet", WARM_ROWS, seed=1)
         drops = {"parquet": write_drop(tmp / "data" / "drop.parquet", rows),
                  "csv": write_drop(tmp / "data" / "drop.csv", rows)}
-        folders = {on: _warmed(tmp / f"state-{int(on)}", "full", on, warm)
+        folders = {on: warmed_state(tmp / f"state-{int(on)}", "full", on, warm)
                    for on in (False, True)}
         samples: dict = {}
         for _ in range(repeats):
