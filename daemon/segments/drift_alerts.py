@@ -24,7 +24,7 @@ from shoal.daemon.segments.missing_drift import missing_note
 from shoal.daemon.segments.window_sums import files_of, span
 
 __all__ = ["PAYLOAD_SCHEMA_VERSION", "STATISTIC_UNITS", "alert_id", "drift_event_alert",
-           "finite_or_none", "shown", "shown_noise"]
+           "drift_summary", "finite_or_none", "shown", "shown_noise"]
 
 # Version of the alert payload's fields (README, "Alert payload"); a change to a field's
 # name or meaning bumps it, so a receiver can tell which fields to expect.
@@ -74,6 +74,20 @@ def shown(stat, v):
 def shown_noise(stat, v):
     """A noise level as users read it (on the ratio's scale for spread_ratio)."""
     return math.exp(v) if stat == "spread_ratio" and v is not None else v
+
+
+def drift_summary(keyed, bounds: dict) -> dict[str, dict]:
+    """Per segment id (str): each statistic's value, noise and bound as shown, from a
+    window's keyed ``(values, noise, detail)`` and the bounds in force."""
+    values, noise, _ = keyed
+    out: dict[str, dict] = {}
+    for (seg, stat), v in values.items():
+        bound = bounds.get((seg, stat), bounds.get(stat))
+        out.setdefault(str(seg), {})[stat] = {
+            "value": finite_or_none(shown(stat, v)),
+            "noise": finite_or_none(shown_noise(stat, noise[(seg, stat)])),
+            "bound": None if bound is None else finite_or_none(shown(stat, bound))}
+    return out
 
 
 def drift_event_alert(watch, e: dict, detail: dict, ref: Baseline, info: dict,

@@ -52,8 +52,7 @@ from shoal.core.drift_noise import spread_variance
 from shoal.core.window_statistics import WindowSums, stack_sums, window_statistics
 from shoal.daemon.runtime.logs import log_event
 from shoal.daemon.segments.drift_alerts import (PAYLOAD_SCHEMA_VERSION, STATISTIC_UNITS, alert_id,
-                                                drift_event_alert, finite_or_none, shown,
-                                                shown_noise)
+                                                drift_event_alert, drift_summary)
 from shoal.daemon.segments.missing_drift import window_shares
 from shoal.daemon.segments.window_sums import (
     add_piece_sums,
@@ -147,6 +146,7 @@ class InputWatch:
         # the open window's per-segment sums of the pieces since the last flush, as arrays
         # (adding each piece to the state's JSON lists cost more than computing it)
         self._pending: dict | None = None
+        self._id_keys: tuple[list | None, list[str]] = (None, [])   # ids and their keys
 
     @property
     def state(self) -> dict | None:
@@ -235,7 +235,7 @@ class InputWatch:
             add_row_sums(sums, mixture, X, Xc, scores)
         below = (self._state.get("baseline_info", {}) or {}).get("unusual_below")
         if below is not None:
-            add_unusual(win["unusual"], mixture, X, Xc, scores, below)
+            add_unusual(win["unusual"], self._keys(ids), mixture.center, X, Xc, scores, below)
         if self.file not in win["files"]:
             win["files"].append(self.file)
         win["versions"] = widen(win["versions"], self.version, self.version)
@@ -247,6 +247,13 @@ class InputWatch:
                 win["times_dropped"] = win.get("times_dropped", 0) + len(X)
                 self._times_dropped += len(X)
         win["center"] = mixture.center.tolist()
+
+    def _keys(self, ids: list[int]) -> list[str]:
+        """The segment ids as the window records key them (``str``), kept while the ids
+        stay the same."""
+        if ids != self._id_keys[0]:
+            self._id_keys = (ids, [str(sid) for sid in ids])
+        return self._id_keys[1]
 
     def _log_times_dropped(self) -> None:
         """Say once per input how many of its rows' times were left out (if any)."""
@@ -483,16 +490,8 @@ class InputWatch:
     def segment_drift(self) -> dict[str, dict]:
         """Per segment id (str): the last window's statistics, noise and bounds (built
         when asked, once per input, not at every window)."""
-        out: dict[str, dict] = {}
         self._evaluate_waiting()
         if self._last is None:
-            return out
+            return {}
         keyed, bounds = self._last
-        values, noise, _ = keyed() if callable(keyed) else keyed
-        for (seg, stat), v in values.items():
-            bound = bounds.get((seg, stat), bounds.get(stat))
-            out.setdefault(str(seg), {})[stat] = {
-                "value": finite_or_none(shown(stat, v)),
-                "noise": finite_or_none(shown_noise(stat, noise[(seg, stat)])),
-                "bound": None if bound is None else finite_or_none(shown(stat, bound))}
-        return out
+        return drift_summary(keyed() if callable(keyed) else keyed, bounds)

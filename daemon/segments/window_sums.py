@@ -74,24 +74,25 @@ def add_row_sums(sums: dict, mixture, X: np.ndarray, Xc: np.ndarray, scores) -> 
         add_gap_sums(sums, gaps)
 
 
-def add_unusual(unusual: dict, mixture, X: np.ndarray, Xc, scores, below: float) -> None:
+def add_unusual(unusual: dict, keys: list[str], center, X: np.ndarray, Xc, scores,
+                below: float) -> None:
     """Count a piece's unusual rows (log-density under ``below``) into a window's
-    ``unusual`` record: how many, the sum of their centred rows (``Xc`` if at hand,
-    filled), and how many per segment id."""
+    ``unusual`` record: how many, the sum of their rows centred on ``center`` (``Xc`` if
+    at hand, filled), and how many per segment (``keys``: the model's segment ids as
+    strings, in component order)."""
     rows = np.flatnonzero(scores.log_density < below)
     count = rows.size
     if not count:
         return
     unusual["n"] += count
     total = (Xc.take(rows, axis=0).sum(axis=0) if Xc is not None
-             else X.take(rows, axis=0).sum(axis=0) - count * mixture.center)
+             else X.take(rows, axis=0).sum(axis=0) - count * center)
     unusual["sum"] = add_lists(unusual["sum"], total)
-    ids = mixture.ids.tolist()
-    counts = np.bincount(scores.component.take(rows), minlength=len(ids))
     by_segment = unusual["by_segment"]
-    for k in np.flatnonzero(counts).tolist():
-        key = str(ids[k])
-        by_segment[key] = by_segment.get(key, 0) + int(counts[k])
+    per = np.bincount(scores.component.take(rows), minlength=len(keys)).tolist()
+    for key, n in zip(keys, per):
+        if n:
+            by_segment[key] = by_segment.get(key, 0) + n
 
 
 def add_piece_sums(segments: dict, sums: dict) -> None:
