@@ -38,7 +38,6 @@ window records and piece sums (:mod:`.window_sums`), the values keyed for the bo
 from __future__ import annotations
 
 import functools
-import json
 import logging
 
 import numpy as np
@@ -54,6 +53,7 @@ from shoal.daemon.runtime.logs import log_event
 from shoal.daemon.segments.drift_alerts import (PAYLOAD_SCHEMA_VERSION, STATISTIC_UNITS, alert_id,
                                                 drift_event_alert, drift_summary)
 from shoal.daemon.segments.missing_drift import window_shares
+from shoal.daemon.segments.own_state import own_copy
 from shoal.daemon.segments.window_sums import (
     add_piece_sums,
     add_row_sums,
@@ -66,6 +66,7 @@ from shoal.daemon.segments.window_sums import (
     time_kind,
     time_range,
     widen,
+    window_copy,
 )
 from shoal.daemon.segments.window_values import (SEGMENT_STATISTICS, SHAPE_MIN_SHARE, quiet_windows,
                                                  settings_bounds, window_fit, window_values)
@@ -138,13 +139,15 @@ class InputWatch:
         self.times_unreadable = 0   # time values present that could not be read
         if state is not None and state.get("format") != STATE_FORMAT:
             raise ValueError(f"drift state has format {state.get('format')!r}")
-        self._state = json.loads(json.dumps(state)) if state is not None else None
+        # the baseline is only ever replaced whole (taken, adopted into, dropped from)
+        self._state = own_copy(state, shared=("baseline", "window"))
+        if self._state is not None and "window" in self._state:
+            self._state["window"] = window_copy(self._state["window"])
         self._last = None   # ((values, noise, detail) or what makes them, bounds) of the last
         # closed windows waiting to be evaluated together: (record, info, sums, recent)
         self._waiting: list[tuple] = []
         self._ref_cache = None   # (baseline dict, Baseline, GaussianSet, spread variance)
         # the open window's per-segment sums of the pieces since the last flush, as arrays
-        # (adding each piece to the state's JSON lists cost more than computing it)
         self._pending: dict | None = None
         self._id_keys: tuple[list | None, list[str]] = (None, [])   # ids and their keys
 

@@ -46,7 +46,6 @@ and takes a born segment in once it has settled (``lifecycle.settle_rows`` rows)
 """
 from __future__ import annotations
 
-import json
 import logging
 
 import numpy as np
@@ -69,6 +68,7 @@ from shoal.core.lifecycle import (
 )
 from shoal.daemon.runtime.logs import log_event
 from shoal.daemon.segments.life_rows import SAMPLE_STRIDE, Samples, UnexplainedPool
+from shoal.daemon.segments.own_state import own_copy
 from shoal.daemon.segments.life_events import (
     describe,
     history_with_events,
@@ -120,7 +120,8 @@ class LifeWatch:
         self.file = file
         if state is not None and state.get("format") != STATE_FORMAT:
             raise ValueError(f"lifecycle state has format {state.get('format')!r}")
-        self.state = json.loads(json.dumps(state)) if state is not None else None
+        # the pool is read once and replaced at the end; the samples are replaced one by one
+        self.state = own_copy(state, shared=("pool",), shallow=("sample",))
         self.events: list[dict] = []
         self.alerts: list[tuple[str, dict]] = []
         self._samples: Samples | None = None

@@ -23,7 +23,7 @@ from shoal.core.window_statistics import (
 from shoal.daemon.files.times import iso_utc
 from shoal.daemon.segments.missing_drift import GAP_KEYS, add_gap_sums, gap_piece, merge_gap_sums
 
-__all__ = ["empty_window", "empty_piece_sums", "add_lists", "add_row_sums", "add_unusual", "add_piece_sums",
+__all__ = ["empty_window", "window_copy", "empty_piece_sums", "add_lists", "add_row_sums", "add_unusual", "add_piece_sums",
            "merge_window_sums",
            "aligned_sums", "baseline_missing_shares", "widen", "time_range", "time_kind",
            "span", "files_of"]
@@ -34,6 +34,18 @@ def empty_window(index: int) -> dict:
     return {"index": index, "n": 0, "ld": 0.0, "ld2": 0.0, "segments": {},
             "unusual": {"n": 0, "sum": None, "by_segment": {}},
             "files": [], "versions": [None, None], "time": [None, None]}
+
+
+def window_copy(win: dict | None) -> dict | None:
+    """A copy of an open window's record to add pieces to: its dicts and its list of files
+    copied, its lists of sums and ranges shared (pieces replace them, never change them
+    in place; copying them cost an input about 2.5 ms at D=16, K=8)."""
+    if win is None:
+        return None
+    out = dict(win, files=list(win["files"]),
+               segments={sid: dict(acc) for sid, acc in win["segments"].items()})
+    out["unusual"] = dict(win["unusual"], by_segment=dict(win["unusual"]["by_segment"]))
+    return out
 
 
 def empty_piece_sums(win: dict, ids: list, n_features: int, moments=None) -> dict:
