@@ -10,9 +10,17 @@ rows of the same mixture in the pipeline's frames of 65,536 rows, off and on int
 ``--repeats`` times, each run timed by the thread's CPU. The least of each is the run
 the machine disturbed least: ``added = min(on) - min(off)``, and ``added / min(off)`` is
 the watch's cost relative to what learning costs without it (the model's E+M and the
-loop around it). On a shared virtual machine this figure moves by about 0.005 CPU-s from
-run to run, where the whole-process figures of ``bench_e2e.py --stages`` and ``--cost``
-move by ten times that. Medians are printed beside it.
+loop around it). Without the other threads of an ingest it is steadier than the
+whole-process figures of ``bench_e2e.py --stages`` and ``--cost``, but on a shared
+virtual machine the least of seven runs still moves with the machine's slow spells:
+compare two trees by interleaving runs of both, several times. Medians are printed
+beside it.
+
+Then the same for small inputs, where what an input costs once (the watches made from
+the committed state, their states taken for the commit) weighs most: 10,000-row Parquet
+drops through the real pipeline in this process (``Pipeline.process``: read, learn,
+labels, commit), after a warm-up and 20 such inputs, the thread CPU of each of the next
+40, with the watches off and on; the median per input.
 """
 from __future__ import annotations
 
@@ -91,14 +99,68 @@ def watch_cpu_table(rows: int = 1_000_000, repeats: int = 7,
                   f"{statistics.median(cpu[False]):>8.3f} {statistics.median(cpu[True]):>8.3f}")
     return out
 
+def small_inputs_table(rows: int = 10_000, inputs: int = 40) -> dict:
+    """Thread CPU per ``rows``-row input through the real pipeline, in this process,
+    drift and lifecycle off and on (the median over ``inputs`` inputs, after a warm-up
+    of 20,000 rows and 20 inputs)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from scripts.bench_e2e import FEATURES
+    from shoal.config import parse_config
+    from shoal.daemon.files.layout import prepare_folders
+    from shoal.daemon.ingest.pipeline import Pipeline
+    from shoal.daemon.state.store import StateStore
+
+    warm, settle = WARM_ROWS, 20
+    X = mixture_rows(warm + (settle + inputs) * rows, [5, 0])
+    print(f"\nSmall inputs: {rows:,}-row Parquet drops through the pipeline in one process "
+          f"(D=16, K=8, full), thread CPU per input, median of {inputs} after {settle}")
+    print(f"{'watches':>8} | {'median ms':>9} {'least ms':>9}")
+    out = {}
+    for on in (False, True):
+        cfg = {"features": FEATURES, "segments": 8, "warmup_rows": warm,
+               "learning": {"n_init": 1}}
+        if not on:
+            cfg.update(drift={"enabled": False}, lifecycle={"enabled": False})
+        with tempfile.TemporaryDirectory(prefix="shoal-small-") as tmp:
+            tmp = Path(tmp)
+            settings = parse_config(cfg, tmp)
+            layout = prepare_folders(settings)
+            store = StateStore(layout.db)
+            try:
+                pipeline = Pipeline(settings, layout, store)
+                cpu = []
+                starts = [0] + list(range(warm, len(X), rows))
+                for i, (lo, hi) in enumerate(zip(starts, starts[1:] + [len(X)])):
+                    path = tmp / f"drop-{i:04d}.parquet"
+                    pq.write_table(pa.table({f: X[lo:hi, j] for j, f in enumerate(FEATURES)}),
+                                   path)
+                    t0 = time.thread_time()
+                    result = pipeline.process(path, in_inbox=False)
+                    cpu.append(time.thread_time() - t0)
+                    if result.outcome != "committed":
+                        raise RuntimeError(f"input {i} was {result.outcome}: {result}")
+            finally:
+                store.close()
+        kept = cpu[-inputs:]
+        out[on] = statistics.median(kept)
+        print(f"{'on' if on else 'off':>8} | {1e3 * out[on]:>9.1f} {1e3 * min(kept):>9.1f}")
+    print(f"{'added':>8} | {1e3 * (out[True] - out[False]):>9.1f}")
+    return out
+
+
 def main() -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--rows", type=int, default=1_000_000)
     p.add_argument("--repeats", type=int, default=7)
     p.add_argument("--covariance", choices=("full", "diag"), action="append",
                    help="only this covariance type (repeatable; default: both)")
+    p.add_argument("--no-small", action="store_true", help="skip the small-inputs table")
     a = p.parse_args()
     watch_cpu_table(a.rows, a.repeats, tuple(a.covariance or ("full", "diag")))
+    if not a.no_small:
+        small_inputs_table()
     return 0
 
 if __name__ == "__main__":
