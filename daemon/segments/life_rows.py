@@ -22,6 +22,7 @@ Pool     only rows under the log-density bound of
 from __future__ import annotations
 
 import base64
+import collections
 import functools
 
 import numpy as np
@@ -46,15 +47,40 @@ def _pack(rows: np.ndarray) -> str:
     """Rows as base64 of their float32 bytes: the checkpoint's JSON carries a sample of
     hundreds of rows as one string, which encodes and decodes far faster than lists.
     Seven digits are plenty for a split test, and every input reads the sample back
-    from this form, so a restart sees exactly what an uninterrupted run does."""
-    return base64.b64encode(np.ascontiguousarray(rows, dtype="<f4").tobytes()).decode("ascii")
+    from this form, so a restart sees exactly what an uninterrupted run does. The rows
+    are remembered by their string: the next input of a running service reads them
+    back from there rather than decoding the string again."""
+    rows32 = np.ascontiguousarray(rows, dtype="<f4")
+    packed = base64.b64encode(rows32.tobytes()).decode("ascii")
+    _unpacked[packed] = _read_only(rows32.astype(np.float64))   # what decoding gives
+    while len(_unpacked) > _UNPACKED_KEPT:
+        _unpacked.popitem(last=False)
+    return packed
 
 
 def _unpack(packed: str | None, n_features: int) -> np.ndarray:
     if not packed:
         return np.empty((0, n_features))
+    rows = _unpacked.get(packed)
+    if rows is None or rows.shape[1] != n_features:
+        rows = _decoded(packed, n_features)
+    return rows
+
+
+def _decoded(packed: str, n_features: int) -> np.ndarray:
     rows = np.frombuffer(base64.b64decode(packed), dtype="<f4").reshape(-1, n_features)
     return rows.astype(np.float64)
+
+
+def _read_only(rows: np.ndarray) -> np.ndarray:
+    rows.flags.writeable = False
+    return rows
+
+
+_UNPACKED_KEPT = 64
+"""Samples packed last, remembered by their string (a segment's sample is about 50 KB
+packed and 64 KB as rows at D=16)."""
+_unpacked: collections.OrderedDict[str, np.ndarray] = collections.OrderedDict()
 
 
 @functools.lru_cache(maxsize=16)

@@ -55,6 +55,7 @@ from shoal.daemon.segments.drift_alerts import (PAYLOAD_SCHEMA_VERSION, STATISTI
 from shoal.daemon.segments.missing_drift import window_shares
 from shoal.daemon.segments.own_state import own_copy
 from shoal.daemon.segments.window_sums import (
+    log_times_left_out,
     add_piece_sums,
     add_row_sums,
     add_unusual,
@@ -90,6 +91,7 @@ class DriftMonitor:
         self.drift = settings.drift
         self.features = list(settings.features)
         self._bounds: dict[frozenset, dict] = {}   # by the baseline's segment ids
+        self._worked = None   # (baseline record, what worked_out gives)
 
     def begin(self, state: dict | None, *, version: int, file: str, times=None,
               unusual_below: float | None = None) -> "InputWatch | None":
@@ -107,6 +109,18 @@ class DriftMonitor:
         if key not in self._bounds:
             self._bounds[key] = settings_bounds(self.drift, self.features, key)
         return self._bounds[key]
+
+    def worked_out(self, doc: dict):
+        """A baseline record as a :class:`Baseline`, its factorised Gaussians and the
+        variance of its segments' log generalised variances, worked out once per record:
+        records are replaced whole, never changed, and the inputs that follow share the
+        committed one."""
+        if self._worked is None or self._worked[0] is not doc:
+            ref = Baseline.from_dict(doc)
+            self._worked = (doc, ref, GaussianSet(ref.means, ref.covariances),
+                            np.atleast_1d(spread_variance(ref.n_eff, ref.n_features,
+                                                          ref.covariance)))
+        return self._worked[1:]
 
     def wants_feature_shift(self) -> bool:
         return self.drift.bounds.feature_shift is not None or any(
@@ -146,7 +160,6 @@ class InputWatch:
         self._last = None   # ((values, noise, detail) or what makes them, bounds) of the last
         # closed windows waiting to be evaluated together: (record, info, sums, recent)
         self._waiting: list[tuple] = []
-        self._ref_cache = None   # (baseline dict, Baseline, GaussianSet, spread variance)
         # the open window's per-segment sums of the pieces since the last flush, as arrays
         self._pending: dict | None = None
         self._id_keys: tuple[list | None, list[str]] = (None, [])   # ids and their keys
@@ -257,20 +270,6 @@ class InputWatch:
         if ids != self._id_keys[0]:
             self._id_keys = (ids, [str(sid) for sid in ids])
         return self._id_keys[1]
-
-    def _log_times_dropped(self) -> None:
-        """Say once per input how many of its rows' times were left out (if any)."""
-        if self.times_unreadable:
-            log_event("time_unreadable", logging.WARNING, file=self.file,
-                      rows=self.times_unreadable, column=self.drift.time_column,
-                      detail="these rows' times could not be read (see drift.time_unit "
-                             "and drift.time_format); they have no time in their windows")
-        if self._times_dropped:
-            log_event("time_column_kind_changed", logging.WARNING, file=self.file,
-                      rows=self._times_dropped,
-                      detail="drift.time_column changed kind (numbers / times or text) "
-                             "between inputs; these rows' times are left out of their "
-                             "windows' time ranges (counted as times_dropped)")
 
     def _flush(self) -> None:
         """Add the pending per-segment sums to their window's JSON-able sums."""
@@ -429,14 +428,8 @@ class InputWatch:
 
     def _baseline(self):
         """The baseline in force, its factorised Gaussians and the variance of its
-        segments' log generalised variances, worked out once per baseline."""
-        doc = self._state["baseline"]
-        if self._ref_cache is None or self._ref_cache[0] is not doc:
-            ref = Baseline.from_dict(doc)
-            self._ref_cache = (doc, ref, GaussianSet(ref.means, ref.covariances),
-                               np.atleast_1d(spread_variance(ref.n_eff, ref.n_features,
-                                                             ref.covariance)))
-        return self._ref_cache[1:]
+        segments' log generalised variances (:meth:`DriftMonitor.worked_out`)."""
+        return self.monitor.worked_out(self._state["baseline"])
 
     # -- events -> alerts ------------------------------------------------------------
     def emit(self, payload: dict) -> None:
@@ -445,7 +438,8 @@ class InputWatch:
 
     def log_alerts(self, model_version: int) -> None:
         """One log line per alert; called once they are committed."""
-        self._log_times_dropped()
+        log_times_left_out(self.file, self.drift.time_column, self.times_unreadable,
+                           self._times_dropped)
         for _, payload in self.alerts:
             level = logging.WARNING if payload["status"] == "raised" else logging.INFO
             log_event(f"alert_{payload['status']}", level, id=payload["id"],

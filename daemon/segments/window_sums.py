@@ -11,6 +11,8 @@ window's sums are laid out as arrays in the baseline's order of segment ids for
 """
 from __future__ import annotations
 
+import logging
+
 import numpy as np
 
 from shoal.core.window_statistics import (
@@ -21,12 +23,13 @@ from shoal.core.window_statistics import (
     piece_sums,
 )
 from shoal.daemon.files.times import iso_utc
+from shoal.daemon.runtime.logs import log_event
 from shoal.daemon.segments.missing_drift import GAP_KEYS, add_gap_sums, gap_piece, merge_gap_sums
 
-__all__ = ["empty_window", "window_copy", "empty_piece_sums", "add_lists", "add_row_sums", "add_unusual", "add_piece_sums",
-           "merge_window_sums",
-           "aligned_sums", "baseline_missing_shares", "widen", "time_range", "time_kind",
-           "span", "files_of"]
+__all__ = ["empty_window", "window_copy", "empty_piece_sums", "add_lists", "add_row_sums",
+           "add_unusual", "add_piece_sums", "merge_window_sums", "aligned_sums",
+           "baseline_missing_shares", "widen", "time_range", "time_kind", "span", "files_of",
+           "log_times_left_out"]
 
 
 def empty_window(index: int) -> dict:
@@ -243,6 +246,22 @@ def files_of(windows) -> list[str]:
             if f not in out:
                 out.append(f)
     return out
+
+
+def log_times_left_out(file: str, column: str | None, unreadable: int, dropped: int) -> None:
+    """Say once per input how many of its rows' times were left out of their windows (if
+    any): ``unreadable`` could not be read, ``dropped`` were of another kind than their
+    window's (numbers after times or text, or the other way)."""
+    if unreadable:
+        log_event("time_unreadable", logging.WARNING, file=file, rows=unreadable,
+                  column=column,
+                  detail="these rows' times could not be read (see drift.time_unit "
+                         "and drift.time_format); they have no time in their windows")
+    if dropped:
+        log_event("time_column_kind_changed", logging.WARNING, file=file, rows=dropped,
+                  detail="drift.time_column changed kind (numbers / times or text) "
+                         "between inputs; these rows' times are left out of their "
+                         "windows' time ranges (counted as times_dropped)")
 
 
 def time_kind(value) -> str:

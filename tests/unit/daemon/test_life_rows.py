@@ -121,3 +121,18 @@ def test_pool_tested_late_holds_the_rows_testing_every_piece_would(waiting_piece
     state = pool.to_state()
     np.testing.assert_array_equal(state["rows"], rows[kept].tolist())
     np.testing.assert_allclose(state["X"], X_all[kept])
+
+
+def test_a_sample_read_back_in_the_same_process_is_what_a_restart_reads():
+    # the rows a packed sample is remembered by (so that the next input of a running
+    # service does not decode it) are those decoding gives: rounded to float32
+    from shoal.daemon.segments import life_rows
+
+    rows = np.random.default_rng(4).normal(size=(300, 5)) * 1e3
+    packed = life_rows._pack(rows)
+    remembered = life_rows._unpack(packed, 5)
+    life_rows._unpacked.clear()     # as in a new process
+    decoded = life_rows._unpack(packed, 5)
+    assert remembered is not decoded and np.array_equal(remembered, decoded)
+    assert not np.array_equal(decoded, rows)    # rounded, as the checkpoint keeps them
+    assert not remembered.flags.writeable
