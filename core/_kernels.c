@@ -639,14 +639,17 @@ static PyObject *log_joint(PyObject *self, PyObject *args) {
     RETURN_NONE_OR_FAIL_FREEING(scratch);
 }
 
-/* softmax(L, lo, n, lss, best, log_density, confidence): the tiled softmax of rows
- * lo..lo+n-1 (shift, normalise and the log-density in one pass; see _kernels_tile.h). */
+/* softmax(L, lo, n, lss, best, log_density, confidence[, T, Q]): the tiled softmax of
+ * rows lo..lo+n-1 (shift, normalise and the log-density in one pass; see
+ * _kernels_tile.h); with T and Q (one value per component) each component's
+ * responsibilities and their squares are added to them. */
 static PyObject *softmax(PyObject *self, PyObject *args) {
-    PyObject *oL, *ob, *old, *oc;
-    Py_ssize_t lo, n, dL[2], db[1], dl[1], dc[1];
-    double lss, *tmp = NULL;
+    PyObject *oL, *ob, *old, *oc, *oT = Py_None, *oQ = Py_None;
+    Py_ssize_t lo, n, dL[2], db[1], dl[1], dc[1], dT[1], dQ[1];
+    double lss, *tmp = NULL, *T = NULL, *Q = NULL;
     Bufs s = {.n = 0};
-    if (!PyArg_ParseTuple(args, "OnndOOO", &oL, &lo, &n, &lss, &ob, &old, &oc)) return NULL;
+    if (!PyArg_ParseTuple(args, "OnndOOO|OO", &oL, &lo, &n, &lss, &ob, &old, &oc, &oT, &oQ))
+        return NULL;
     TAKE(double *, L, oL, "L", F64, 2, 1, dL);
     TAKE(int64_t *, best, ob, "best", I64, 1, 1, db);
     TAKE(double *, ld, old, "log_density", F64, 1, 1, dl);
@@ -654,9 +657,16 @@ static PyObject *softmax(PyObject *self, PyObject *args) {
     NEED(lo >= 0 && n >= 0 && lo + n <= dL[1] && db[0] == dL[1] && dl[0] == dL[1] &&
              dc[0] == dL[1] && dL[0] >= 1,
          "softmax: rows out of range");
+    NEED((oT == Py_None) == (oQ == Py_None), "softmax: give T and Q together");
+    if (oT != Py_None) {
+        if (!(T = take(&s, oT, "T", F64, 1, 1, dT)) || !(Q = take(&s, oQ, "Q", F64, 1, 1, dQ)))
+            goto fail;
+        NEED(dT[0] == dL[0] && dQ[0] == dL[0], "softmax: T and Q need one value per component");
+    }
     NEED(isa_used != ISA_NONE, "softmax: no tiled kernel on this CPU (tile_isa is none)");
 #ifdef TILED
-    tmp = PyMem_Malloc(sizeof(double) * (size_t)(8 * dL[0] + 8)); /* K vectors, aligned */
+    /* K vectors for the exponentials and 2K for the sums, aligned */
+    tmp = PyMem_Malloc(sizeof(double) * (size_t)(24 * dL[0] + 8));
     if (!tmp) {
         PyErr_NoMemory();
         goto fail;
@@ -665,9 +675,9 @@ static PyObject *softmax(PyObject *self, PyObject *args) {
     int isa = isa_used;
     Py_BEGIN_ALLOW_THREADS
     if (isa == ISA_AVX512)
-        t512_softmax(L, dL[0], dL[1], lo, n, lss, best, ld, conf, (__m512d *)ev);
+        t512_softmax(L, dL[0], dL[1], lo, n, lss, best, ld, conf, (__m512d *)ev, T, Q);
     else
-        t256_softmax(L, dL[0], dL[1], lo, n, lss, best, ld, conf, (__m256d *)ev);
+        t256_softmax(L, dL[0], dL[1], lo, n, lss, best, ld, conf, (__m256d *)ev, T, Q);
     Py_END_ALLOW_THREADS
 #endif
     RETURN_NONE_OR_FAIL_FREEING(tmp);
@@ -1045,8 +1055,9 @@ static PyMethodDef methods[] = {
      "log_joint(A, op, const, n_features, L, lo): tiled log-joint of rows A into "
      "L[:, lo:lo+len(A)] (full: op packed, const (K,); linear: op (K, W), const None)"},
     {"softmax", softmax, METH_VARARGS,
-     "softmax(L, lo, n, lss, best, log_density, confidence): responsibilities, component, "
-     "log-density and confidence of rows lo..lo+n-1 from their log-joint (tiled)"},
+     "softmax(L, lo, n, lss, best, log_density, confidence[, T, Q]): responsibilities, "
+     "component, log-density and confidence of rows lo..lo+n-1 from their log-joint "
+     "(tiled); with T and Q, each component's responsibilities and their squares added"},
     {"gather_syrk", gather_syrk, METH_VARARGS,
      "gather_syrk(A, resp, lo, row_w, floor, P): P[k] += the sum of resp * row_w * a a^T "
      "over the rows with responsibility > 0 and >= floor (tiled)"},

@@ -156,12 +156,18 @@ TILE_TARGET static inline TV TILE_CAT(TILE_NAME, _log)(TV x) {
  * (as a product with 1 / total: one division a row), total = the sum of those
  * exponentials, confidence = 1 / total, and log_density = log(total) + top - lss. The
  * exponentials wait in `ev` (K vectors of scratch): stored into L and read back they
- * would hit L's rows 32 KiB apart, whose stores and loads alias in the L1. */
+ * would hit L's rows 32 KiB apart, whose stores and loads alias in the L1. With `T`
+ * (then `Q` too, and 2K more vectors of `ev`), each component's responsibilities and
+ * their squares are summed into T[k] and Q[k] as they are made. */
 TILE_TARGET static void TILE_CAT(TILE_NAME, _softmax)(
     double *restrict L, Py_ssize_t K, Py_ssize_t N, Py_ssize_t lo, Py_ssize_t n, double lss,
-    int64_t *restrict best, double *restrict ld, double *restrict conf, TV *restrict ev) {
+    int64_t *restrict best, double *restrict ld, double *restrict conf, TV *restrict ev,
+    double *restrict T, double *restrict Q) {
     Py_ssize_t nv = n - n % TILE_VL;
     double lanes[TILE_VL];
+    TV *restrict sum = ev + K, *restrict sq = ev + 2 * K;
+    if (T)
+        for (Py_ssize_t k = 0; k < K; k++) sum[k] = sq[k] = TV_ZERO();
     for (Py_ssize_t r = 0; r < nv; r += TILE_VL) {
         double *L0 = L + lo + r;
         TV top = TV_LOADU(L0), arg = TV_ZERO();
@@ -179,7 +185,15 @@ TILE_TARGET static void TILE_CAT(TILE_NAME, _softmax)(
             total = TV_ADD(total, e);
         }
         TV inv = TV_DIV(TV_SET1(1.0), total);   /* one division per row, not K */
-        for (Py_ssize_t k = 0; k < K; k++) TV_STOREU(L0 + k * N, TV_MUL(ev[k], inv));
+        if (T)
+            for (Py_ssize_t k = 0; k < K; k++) {
+                TV p = TV_MUL(ev[k], inv);
+                TV_STOREU(L0 + k * N, p);
+                sum[k] = TV_ADD(sum[k], p);
+                sq[k] = TV_FMA(p, p, sq[k]);
+            }
+        else
+            for (Py_ssize_t k = 0; k < K; k++) TV_STOREU(L0 + k * N, TV_MUL(ev[k], inv));
         TV_STOREU(conf + lo + r, inv);
         TV_STOREU(ld + lo + r,
                   TV_SUB(TV_ADD(TILE_CAT(TILE_NAME, _log)(total), top), TV_SET1(lss)));
@@ -203,10 +217,20 @@ TILE_TARGET static void TILE_CAT(TILE_NAME, _softmax)(
         }
         double inv = 1.0 / total;
         for (Py_ssize_t k = 0; k < K; k++) L0[k * N] *= inv;
+        if (T)
+            for (Py_ssize_t k = 0; k < K; k++) {
+                T[k] += L0[k * N];
+                Q[k] += L0[k * N] * L0[k * N];
+            }
         conf[lo + r] = inv;
         ld[lo + r] = log(total) + top - lss;
         best[lo + r] = arg;
     }
+    if (T)
+        for (Py_ssize_t k = 0; k < K; k++) {
+            T[k] += TV_HSUM(sum[k]);
+            Q[k] += TV_HSUM(sq[k]);
+        }
 }
 
 /* The full type's M-step: P[k] += sum over the rows with responsibility > 0 and >= floor

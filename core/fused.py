@@ -246,7 +246,7 @@ def packed_operator(mixture) -> np.ndarray:
 
 # --------------------------------------------------------------------- one span
 def compiled_span(mixture, X, lo, hi, out, data_units=True, row_w=None, floor=0.0,
-                  gaps=None):
+                  gaps=None, sums=None):
     """Score rows ``lo:hi`` with the compiled kernels; with ``row_w`` also learn.
 
     Same results as :func:`shoal.core.scoring.score_span` and
@@ -270,6 +270,9 @@ def compiled_span(mixture, X, lo, hi, out, data_units=True, row_w=None, floor=0.
     gaps : Packed or None
         The rows with missing values: scored by their marginals and learned from by EM
         with missing data.
+    sums : tuple of two ndarray of shape (n_components,), optional
+        Each component's responsibilities over the rows, and their squares, are added
+        to these as the responsibilities are made.
 
     Returns
     -------
@@ -340,7 +343,8 @@ def compiled_span(mixture, X, lo, hi, out, data_units=True, row_w=None, floor=0.
         if gaps is not None:
             gaps.log_joint(Ab, a, R)
         if is_tiled:
-            kern.softmax(R, a, m, lss, out.component, out.log_density, out.confidence)
+            kern.softmax(R, a, m, lss, out.component, out.log_density, out.confidence,
+                         *(sums or ()))
         else:
             kern.shift(R, a, m, top, out.component)
             Rb = R[:, a:b]
@@ -351,6 +355,10 @@ def compiled_span(mixture, X, lo, hi, out, data_units=True, row_w=None, floor=0.
             ld += top[:m]
             ld -= lss
             np.divide(1.0, total[:m], out=out.confidence[a:b])
+            if sums is not None:
+                totals, squares = sums
+                totals += Rb.sum(axis=1)
+                squares += np.einsum("kn,kn->k", Rb, Rb)
         if learn:
             wb = row_w[a - lo : b - lo]
             if full and is_tiled:

@@ -145,9 +145,12 @@ def learn_rows(mixture, X, gaps=None, moments=False, scratch=None):
         # they are scored in cache-sized blocks, then learned from in one go
         take = min(n - pos, every - at % every)
         row_w, keep = mixture.schedule.row_weights(at, take)
+        # the moments' responsibility totals are summed as the responsibilities are made
+        sums = (np.zeros(mixture.n_components), np.zeros(mixture.n_components)) \
+            if piece is not None and jit else None
         if jit:
             b0, b1, b2 = fused.compiled_span(model, X, pos, pos + take, out, True, row_w,
-                                             mixture.resp_floor, packed)
+                                             mixture.resp_floor, packed, sums)
         elif gap_rows is not None:
             b0, b1, b2 = learn_span_gaps(model, X, pos, pos + take, gap_rows, row_w, out,
                                          rows)
@@ -156,7 +159,7 @@ def learn_rows(mixture, X, gaps=None, moments=False, scratch=None):
             b0, b1, b2 = accumulate(model, A, out.resp_kn[:, pos : pos + take], row_w)
         if piece is not None:
             unit = mixture.schedule.cell_unit(at - at % every, at + take)
-            piece.add_span(out.resp_kn[:, pos:pos + take], b0, b1, b2, unit)
+            piece.add_span(out.resp_kn[:, pos:pos + take], b0, b1, b2, unit, sums)
         s0 = keep * s0 + b0
         s1 = keep * s1 + b1
         s2 = keep * s2 + b2

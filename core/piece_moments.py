@@ -75,7 +75,7 @@ class PieceMoments:
         return out
 
     def add_span(self, resp_kn: np.ndarray, b0: np.ndarray, b1: np.ndarray, b2: np.ndarray,
-                 unit: float) -> None:
+                 unit: float, sums=None) -> None:
         """Add a span's moments from its responsibilities and its M-step statistics.
 
         Parameters
@@ -88,11 +88,19 @@ class PieceMoments:
             The span's weighted statistics in standardised units (full or diag).
         unit : float
             :meth:`shoal.core.schedule.StepSchedule.cell_unit` of the span.
+        sums : tuple of two ndarray of shape (n_components,), optional
+            The span's responsibility totals and totals of their squares, when the
+            scoring summed them (:func:`shoal.core.fused.compiled_span`); else they are
+            summed here from ``resp_kn``.
         """
-        ones = _ones(resp_kn.shape[1])
-        # row sums as matrix-vector products: one BLAS call each, not a reduction
-        self.T += resp_kn @ ones
-        self.Q += (resp_kn * resp_kn) @ ones
+        if sums is not None:
+            self.T += sums[0]
+            self.Q += sums[1]
+        else:
+            ones = _ones(resp_kn.shape[1])
+            # row sums as matrix-vector products: one BLAS call each, not a reduction
+            self.T += resp_kn @ ones
+            self.Q += (resp_kn * resp_kn) @ ones
         self.B += b0 / unit
         scale = self._scale
         self.M += b1 * (scale / unit)

@@ -355,6 +355,54 @@ def test_tiled_softmax_equals_its_definition(K, n, tile_isa):
         assert (best[:lo] == -1).all() and np.isnan(ld[lo + n:]).all()
 
 
+@pytest.mark.parametrize("K", [1, 3, 9])
+@pytest.mark.parametrize("n", [1, 13, 100])
+def test_tiled_softmax_sums_the_responsibilities_it_makes(K, n, tile_isa):
+    # T[k] and Q[k] gain the sums of the responsibilities the softmax wrote and of their
+    # squares (vector lanes and the rows past the last vector), on top of what they held
+    kern = fused.kernels()
+    rng = np.random.default_rng(K * 10 + n)
+    L0 = rng.normal(-5.0, 4.0, (K, n + 4))
+    for isa in _isas()[1:]:
+        tile_isa(isa)
+        L = L0.copy()
+        best, ld, conf = np.zeros(n + 4, dtype=np.int64), np.zeros(n + 4), np.zeros(n + 4)
+        T, Q = np.full(K, 2.0), np.full(K, 3.0)
+        kern.softmax(L, 2, n, 0.0, best, ld, conf, T, Q)
+        R = L[:, 2:2 + n]
+        np.testing.assert_allclose(T, 2.0 + R.sum(axis=1), rtol=1e-13, err_msg=isa)
+        np.testing.assert_allclose(Q, 3.0 + (R * R).sum(axis=1), rtol=1e-13, err_msg=isa)
+        L2 = L0.copy()   # the responsibilities themselves as without the sums
+        kern.softmax(L2, 2, n, 0.0, best, ld, conf)
+        np.testing.assert_array_equal(L2, L)
+        with pytest.raises(ValueError, match="together"):
+            kern.softmax(L0.copy(), 2, n, 0.0, best, ld, conf, T)
+        with pytest.raises(ValueError, match="one value per component"):
+            kern.softmax(L0.copy(), 2, n, 0.0, best, ld, conf, T[:-1] if K > 1 else
+                         np.zeros(2), Q[:-1] if K > 1 else np.zeros(2))
+
+
+def test_compiled_span_sums_match_on_every_instruction_set(tile_isa):
+    # the responsibility totals a learned span hands the drift watch are the same with the
+    # tiled softmax (summed as made) and without it (summed by numpy), and equal the
+    # totals of the responsibilities scored
+    rng = np.random.default_rng(7)
+    m = Mixture.from_parameters([0.3, 0.7], [[0.0, 0.0, 0.0], [4.0, 1.0, 0.0]],
+                                np.stack([np.eye(3)] * 2))
+    X = rng.normal(size=(3000, 3)) + rng.integers(0, 2, 3000)[:, None] * 4.0
+    got = {}
+    for isa in _isas():
+        tile_isa(isa)
+        _, scores = m.learn(X, moments=True)
+        got[isa] = scores.moments
+        np.testing.assert_allclose(scores.moments.T, scores.resp.sum(axis=0), rtol=1e-12)
+        np.testing.assert_allclose(scores.moments.Q, (scores.resp ** 2).sum(axis=0),
+                                   rtol=1e-12)
+    for isa, mo in got.items():
+        np.testing.assert_allclose(mo.T, got["none"].T, rtol=1e-12, err_msg=isa)
+        np.testing.assert_allclose(mo.Q, got["none"].Q, rtol=1e-12, err_msg=isa)
+
+
 @pytest.mark.parametrize("W", [2, 5, 8, 17])
 @pytest.mark.parametrize("m", [1, 9, 100])
 def test_tiled_gather_syrk_equals_the_weighted_outer_products(W, m, tile_isa):
