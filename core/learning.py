@@ -138,8 +138,7 @@ def learn_rows(mixture, X, gaps=None, moments=False, scratch=None):
         gaps, mixture.covariance, mixture.n_components)
     gap_rows = None if jit else gaps
     piece = None
-    if moments and gaps is None and mixture.covariance in ("full", "diag"):
-        piece = PieceMoments.empty(mixture.n_components, mixture.n_features, mixture.scale)
+    with_moments = moments and gaps is None and mixture.covariance in ("full", "diag")
     while pos < n:
         # pieces end at refresh points, which sit at fixed places in the stream;
         # they are scored in cache-sized blocks, then learned from in one go
@@ -147,7 +146,7 @@ def learn_rows(mixture, X, gaps=None, moments=False, scratch=None):
         row_w, keep = mixture.schedule.row_weights(at, take)
         # the moments' responsibility totals are summed as the responsibilities are made
         sums = (np.zeros(mixture.n_components), np.zeros(mixture.n_components)) \
-            if piece is not None and jit else None
+            if with_moments and jit else None
         if jit:
             b0, b1, b2 = fused.compiled_span(model, X, pos, pos + take, out, True, row_w,
                                              mixture.resp_floor, packed, sums)
@@ -157,9 +156,13 @@ def learn_rows(mixture, X, gaps=None, moments=False, scratch=None):
         else:
             A = score_span(model, X, pos, pos + take, out, model.scoring_operator, rows)
             b0, b1, b2 = accumulate(model, A, out.resp_kn[:, pos : pos + take], row_w)
-        if piece is not None:
+        if with_moments:
             unit = mixture.schedule.cell_unit(at - at % every, at + take)
-            piece.add_span(out.resp_kn[:, pos:pos + take], b0, b1, b2, unit, sums)
+            if piece is None:
+                piece = PieceMoments.of_span(out.resp_kn[:, pos:pos + take], b0, b1, b2, unit,
+                                             mixture.scale, sums)
+            else:
+                piece.add_span(out.resp_kn[:, pos:pos + take], b0, b1, b2, unit, sums)
         s0 = keep * s0 + b0
         s1 = keep * s1 + b1
         s2 = keep * s2 + b2
@@ -168,6 +171,8 @@ def learn_rows(mixture, X, gaps=None, moments=False, scratch=None):
         at += take
         if at % every == 0:
             model = evolve(model, **refresh(model, s0, s1, s2, sumsq))
+    if with_moments and piece is None:   # no rows
+        piece = PieceMoments.empty(mixture.n_components, mixture.n_features, mixture.scale)
     model = evolve(model, s0=s0, s1=s1, s2=s2, sumsq=sumsq, n_rows=at)
     return model, out.scores(mixture.ids, piece)
 

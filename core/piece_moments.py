@@ -52,7 +52,6 @@ class PieceMoments:
     M: np.ndarray
     S: np.ndarray
     _scale: np.ndarray | None = field(default=None, repr=False)
-    _outer: np.ndarray | None = field(default=None, repr=False)
 
     @classmethod
     def empty(cls, n_components: int, n_features: int, scale) -> "PieceMoments":
@@ -71,7 +70,42 @@ class PieceMoments:
         K, D = n_components, n_features
         out = cls(np.zeros(K), np.zeros(K), np.zeros(K), np.zeros((K, D)), np.zeros((K, D, D)))
         out._scale = np.asarray(scale, dtype=np.float64)
-        out._outer = np.outer(out._scale, out._scale)
+        return out
+
+    @classmethod
+    def of_span(cls, resp_kn: np.ndarray, b0: np.ndarray, b1: np.ndarray, b2: np.ndarray,
+                unit: float, scale, sums=None) -> "PieceMoments":
+        """The moments of a first span: :meth:`empty` and :meth:`add_span` in one, the
+        arrays made from the span's own (a piece between refresh points, the usual
+        case, is one span).
+
+        Parameters
+        ----------
+        resp_kn, b0, b1, b2, unit, sums
+            As for :meth:`add_span`; the arrays of ``sums`` are taken over, not copied.
+        scale : ndarray of shape (n_features,)
+            As for :meth:`empty`.
+
+        Returns
+        -------
+        PieceMoments
+        """
+        scale = np.asarray(scale, dtype=np.float64)
+        if sums is not None:
+            T, Q = sums
+        else:
+            ones = _ones(resp_kn.shape[1])
+            T, Q = resp_kn @ ones, (resp_kn * resp_kn) @ ones
+        M = b1 * (scale / unit)
+        if b2.ndim == 3:
+            S = b2 * (_outer(scale.tobytes()) / unit)
+        else:
+            K, D = b2.shape
+            S = np.zeros((K, D, D))
+            at = np.arange(D)
+            S[:, at, at] = b2 * (scale * scale / unit)
+        out = cls(T, Q, b0 / unit, M, S)
+        out._scale = scale
         return out
 
     def add_span(self, resp_kn: np.ndarray, b0: np.ndarray, b1: np.ndarray, b2: np.ndarray,
@@ -105,10 +139,20 @@ class PieceMoments:
         scale = self._scale
         self.M += b1 * (scale / unit)
         if b2.ndim == 3:
-            self.S += b2 * (self._outer / unit)
+            self.S += b2 * (_outer(scale.tobytes()) / unit)
         else:
             at = np.arange(b2.shape[1])
             self.S[:, at, at] += b2 * (scale * scale / unit)
+
+
+@functools.lru_cache(maxsize=8)
+def _outer(scale: bytes) -> np.ndarray:
+    """``scale scale^T`` (read-only) for the few scales in use: the scale is frozen at
+    warm-up, and the moments are scaled at every span."""
+    scale = np.frombuffer(scale)
+    out = np.outer(scale, scale)
+    out.flags.writeable = False
+    return out
 
 
 @functools.lru_cache(maxsize=4)

@@ -99,6 +99,33 @@ def test_no_moments_unless_asked_or_for_rows_with_gaps_or_spherical_models():
     assert _model("spherical").learn(X, moments=True)[1].moments is None
 
 
+@pytest.mark.parametrize("covariance", ["full", "diag"])
+def test_no_rows_give_zero_moments_of_the_model_shape(covariance):
+    m = _model(covariance)
+    mo = m.learn(np.empty((0, D)), moments=True)[1].moments
+    assert mo.T.shape == mo.Q.shape == mo.B.shape == (2,)
+    assert mo.M.shape == (2, D) and mo.S.shape == (2, D, D)
+    assert not any(np.any(getattr(mo, key)) for key in ("T", "Q", "B", "M", "S"))
+
+
+def test_a_span_made_by_itself_equals_one_added_to_zeros():
+    """The first span's moments are made from its own arrays (PieceMoments.of_span):
+    bit for bit what adding it to zero moments gives, for both covariance types."""
+    from shoal.core.piece_moments import PieceMoments
+    rng = np.random.default_rng(7)
+    K, scale, unit = 3, rng.uniform(0.5, 2.0, D), 0.93
+    resp = rng.dirichlet(np.ones(K), 50).T
+    b0, b1 = rng.uniform(1, 2, K), rng.normal(size=(K, D))
+    for b2 in (rng.normal(size=(K, D, D)), rng.uniform(1, 2, (K, D))):
+        for sums in (None, (rng.uniform(1, 2, K), rng.uniform(0, 1, K))):
+            made = PieceMoments.of_span(resp, b0, b1, b2, unit, scale,
+                                        None if sums is None else tuple(a.copy() for a in sums))
+            added = PieceMoments.empty(K, D, scale)
+            added.add_span(resp, b0, b1, b2, unit, sums)
+            for key in ("T", "Q", "B", "M", "S"):
+                assert np.array_equal(getattr(made, key), getattr(added, key)), key
+
+
 def test_stacked_sums_take_unweighted_windows_mass_as_their_counts():
     a = WindowSums(T=np.array([2.0]), Q=np.array([1.0]), M=np.ones((1, D)),
                    S=np.ones((1, D, D)))
