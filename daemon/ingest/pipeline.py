@@ -126,6 +126,7 @@ class Pipeline:
         self._conformer: Conformer | None = None   # the input in progress's
         self._skipped: list[int] = []   # lines of CSV rows skipped (input.bad_rows: skip)
         self.rows_skipped = 0           # since start, for the metrics
+        self._monitor: DriftMonitor | None = None
         # the compiled scoring kernels checked once (milliseconds) at start-up rather
         # than failing inside the first input
         kernel_check.warm()
@@ -137,10 +138,13 @@ class Pipeline:
 
     @property
     def monitor(self) -> DriftMonitor:
-        """Drift evaluation with the settings in force (they may be reloaded)."""
+        """Drift evaluation with the settings in force (they may be reloaded); kept while
+        they are, with what it worked out of the committed baseline."""
         from shoal.daemon.segments.monitor import DriftMonitor
 
-        return DriftMonitor(self.settings)
+        if self._monitor is None or self._monitor.settings is not self.settings:
+            self._monitor = DriftMonitor(self.settings)
+        return self._monitor
 
     def load_state(self) -> ModelState:
         """The model state and the stream's labels schema as the store holds them."""

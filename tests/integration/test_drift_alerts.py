@@ -316,3 +316,33 @@ def test_reused_score_buffers_change_nothing(stream, monkeypatch):
     assert a_alerts == b_alerts
     assert a_extra == b_extra
     assert a_labels and len(a_labels) == len(b_labels) and a_labels == b_labels
+
+
+def test_the_committed_baseline_is_worked_out_once_while_the_settings_stay(stream,
+                                                                          monkeypatch):
+    # The pipeline keeps its drift monitor between inputs, and the monitor what it
+    # worked out of the committed baseline record: inputs after the one that took the
+    # baseline factorise no Gaussians of it again, until a reload brings new settings.
+    import dataclasses
+
+    import shoal.daemon.segments.monitor as monitor
+    made = []
+    real = monitor.GaussianSet
+
+    def counted(*args, **kwargs):
+        made.append(1)
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(monitor, "GaussianSet", counted)
+    weights, means, covs = _truth()
+    rng = np.random.default_rng(5)
+    s = stream(drift={"settle_rows": 4096, "window_rows": 1024})
+    s.feed(_rows(rng, 12_000, weights, means, covs), 12_000)
+    assert s.drift_state()["baseline"] is not None
+    before = len(made)
+    s.feed(_rows(rng, 9_000, weights, means, covs), 3_000)
+    assert len(made) == before   # three inputs, windows evaluated, nothing worked out
+    assert _windows_evaluated(s) > 10
+    s.pipeline.settings = dataclasses.replace(s.settings)   # as a reload sets them
+    s.feed(_rows(rng, 3_000, weights, means, covs), 3_000)
+    assert len(made) == before + 1
