@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import sqlite3
+import uuid
 from typing import Any
 
 import numpy as np
@@ -18,15 +19,15 @@ from shoal.daemon.errors import StateError
 from shoal.daemon.state.blobs import checksum, json_checksum, npy_array, npy_bytes
 from shoal.daemon.state.records import Checkpoint
 
-__all__ = ["insert_checkpoint", "latest_version", "read_checkpoint", "parse_contract",
-           "replace_extra"]
+__all__ = ["insert_checkpoint", "extra_json", "latest_version", "read_checkpoint",
+           "parse_contract", "replace_extra"]
 
 
 def insert_checkpoint(db: sqlite3.Connection, c: Checkpoint, now: float, kept: int) -> None:
     """Store checkpoint ``c`` and drop those more than ``kept`` versions older (inside the
     caller's transaction). Object arrays are refused: they would need pickle."""
     meta_text = json.dumps(c.meta, sort_keys=True)
-    extra_text = json.dumps(c.extra, sort_keys=True)
+    extra_text = extra_json(c.extra)
     db.execute("INSERT INTO checkpoints (version, created, meta, extra, checksum) "
                "VALUES (?, ?, ?, ?, ?)",
                (c.version, now, meta_text, extra_text, json_checksum(meta_text, extra_text)))
@@ -38,6 +39,31 @@ def insert_checkpoint(db: sqlite3.Connection, c: Checkpoint, now: float, kept: i
         db.execute("INSERT INTO checkpoint_arrays (version, name, npy, checksum) "
                    "VALUES (?, ?, ?, ?)", (c.version, name, blob, checksum(blob)))
     db.execute("DELETE FROM checkpoints WHERE version <= ?", (c.version - kept,))
+
+
+# stands in for the drift baseline while the rest of the extra data is encoded: a NUL
+# (no state text holds one) and a random id
+_BASELINE_PLACE = f"\u0000{uuid.uuid4().hex}\u0000"
+_baseline_text: tuple[Any, str] = (None, "")   # the last baseline record and its JSON
+
+
+def extra_json(extra: dict[str, Any]) -> str:
+    """``json.dumps(extra, sort_keys=True)``, the drift baseline's text kept from one
+    checkpoint to the next: the record is only ever replaced whole (never changed in
+    place), most inputs commit the one the input before them did, and its covariances
+    are most of the drift state's JSON."""
+    global _baseline_text
+    drift = extra.get("drift")
+    baseline = drift.get("baseline") if isinstance(drift, dict) else None
+    if not isinstance(baseline, dict):
+        return json.dumps(extra, sort_keys=True)
+    if _baseline_text[0] is not baseline:
+        _baseline_text = (baseline, json.dumps(baseline, sort_keys=True))
+    text = json.dumps(dict(extra, drift=dict(drift, baseline=_BASELINE_PLACE)), sort_keys=True)
+    place = json.dumps(_BASELINE_PLACE)
+    if text.count(place) != 1:
+        return json.dumps(extra, sort_keys=True)
+    return text.replace(place, _baseline_text[1])
 
 
 def latest_version(db: sqlite3.Connection) -> int | None:
@@ -88,7 +114,7 @@ def replace_extra(db: sqlite3.Connection, version: int, extra: dict[str, Any]) -
     (inside the caller's transaction)."""
     meta_text = db.execute("SELECT meta FROM checkpoints WHERE version = ?",
                            (version,)).fetchone()[0]
-    extra_text = json.dumps(extra, sort_keys=True)
+    extra_text = extra_json(extra)
     db.execute("UPDATE checkpoints SET extra = ?, checksum = ? WHERE version = ?",
                (extra_text, json_checksum(meta_text, extra_text), version))
 

@@ -138,3 +138,31 @@ def test_commit_inputs_is_one_transaction_with_a_version_per_input(tmp_path):
     assert store.model_version == 2 and len(store.ledger()) == 3
     assert not store.db.in_transaction
     store.close()
+
+
+def test_extra_json_is_the_plain_encoding_whichever_baseline_it_kept():
+    # the checkpoint's extra data keeps the drift baseline's text between checkpoints
+    # (the record is replaced whole, never changed): the text must be json.dumps's
+    import json
+
+    from shoal.daemon.state.checkpoints import extra_json
+    rng = np.random.default_rng(3)
+
+    def baseline():
+        return {"ids": [0, 1], "means": rng.normal(size=(2, 3)).tolist(),
+                "covariances": rng.normal(size=(2, 3, 3)).tolist(), "note": "a \u0000 b"}
+
+    first, second = baseline(), baseline()
+    window = {"index": 7, "segments": {"0": {"T": 1.5, "S": [[0.1, 2e-300]]}}}
+    extras = [
+        {"segment_rows": {"0": 3}},                                    # no drift
+        {"drift": None, "unusual_below": -3.5},
+        {"drift": {"baseline": None, "window": window}},             # before a baseline
+        {"drift": {"baseline": first, "window": window}, "z": [1.0]},
+        {"drift": {"baseline": first, "window": None}, "a": "\u00e9"},  # kept text reused
+        {"drift": {"baseline": second, "recent": [1, 2]}},           # replaced
+        {"drift": {"baseline": first}},                                # and back
+    ]
+    for extra in extras:
+        assert extra_json(extra) == json.dumps(extra, sort_keys=True)
+        assert json.loads(extra_json(extra)) == extra
