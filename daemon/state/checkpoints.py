@@ -41,8 +41,8 @@ def insert_checkpoint(db: sqlite3.Connection, c: Checkpoint, now: float, kept: i
     db.execute("DELETE FROM checkpoints WHERE version <= ?", (c.version - kept,))
 
 
-# stands in for the drift baseline while the rest of the extra data is encoded: a NUL
-# (no state text holds one) and a random id
+# stands in for the drift baseline while the rest of the extra data is encoded: NULs
+# around a random id (should the rest hold it too, the plain encoding is used)
 _BASELINE_PLACE = f"\u0000{uuid.uuid4().hex}\u0000"
 _baseline_text: tuple[Any, str] = (None, "")   # the last baseline record and its JSON
 
