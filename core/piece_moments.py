@@ -91,20 +91,7 @@ class PieceMoments:
         PieceMoments
         """
         scale = np.asarray(scale, dtype=np.float64)
-        if sums is not None:
-            T, Q = sums
-        else:
-            ones = _ones(resp_kn.shape[1])
-            T, Q = resp_kn @ ones, (resp_kn * resp_kn) @ ones
-        M = b1 * (scale / unit)
-        if b2.ndim == 3:
-            S = b2 * (_outer(scale.tobytes()) / unit)
-        else:
-            K, D = b2.shape
-            S = np.zeros((K, D, D))
-            at = np.arange(D)
-            S[:, at, at] = b2 * (scale * scale / unit)
-        out = cls(T, Q, b0 / unit, M, S)
+        out = cls(*_span_terms(resp_kn, b0, b1, b2, unit, scale, sums))
         out._scale = scale
         return out
 
@@ -127,22 +114,29 @@ class PieceMoments:
             scoring summed them (:func:`shoal.core.fused.compiled_span`); else they are
             summed here from ``resp_kn``.
         """
-        if sums is not None:
-            self.T += sums[0]
-            self.Q += sums[1]
-        else:
-            ones = _ones(resp_kn.shape[1])
-            # row sums as matrix-vector products: one BLAS call each, not a reduction
-            self.T += resp_kn @ ones
-            self.Q += (resp_kn * resp_kn) @ ones
-        self.B += b0 / unit
-        scale = self._scale
-        self.M += b1 * (scale / unit)
-        if b2.ndim == 3:
-            self.S += b2 * (_outer(scale.tobytes()) / unit)
-        else:
-            at = np.arange(b2.shape[1])
-            self.S[:, at, at] += b2 * (scale * scale / unit)
+        terms = _span_terms(resp_kn, b0, b1, b2, unit, self._scale, sums)
+        for total, term in zip((self.T, self.Q, self.B, self.M, self.S), terms):
+            total += term
+
+
+def _span_terms(resp_kn, b0, b1, b2, unit, scale, sums):
+    """A span's ``T, Q, B, M, S`` as new arrays (``sums`` taken over when given): what
+    :meth:`PieceMoments.of_span` starts from and :meth:`PieceMoments.add_span` adds."""
+    if sums is not None:
+        T, Q = sums
+    else:
+        ones = _ones(resp_kn.shape[1])
+        # row sums as matrix-vector products: one BLAS call each, not a reduction
+        T, Q = resp_kn @ ones, (resp_kn * resp_kn) @ ones
+    M = b1 * (scale / unit)
+    if b2.ndim == 3:
+        S = b2 * (_outer(scale.tobytes()) / unit)
+    else:   # diag: the variances on the diagonal, the rest zero
+        K, D = b2.shape
+        S = np.zeros((K, D, D))
+        at = np.arange(D)
+        S[:, at, at] = b2 * (scale * scale / unit)
+    return T, Q, b0 / unit, M, S
 
 
 @functools.lru_cache(maxsize=8)
