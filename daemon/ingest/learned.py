@@ -1,11 +1,12 @@
 """What a learned input commits, and the model state it leaves.
 
-Once an input's frames are learned and its labels file is named, :func:`learned_commit`
-gathers the commit: the checkpoint and the segment history of the new model version
-(the inputs of the warm-up labelled again when this input made the first model), the
-drift and lifecycle state, the alerts named, the ledger row; and the model state the
-worker holds after it. What it says once committed (alerts and events in the log, the
-alert sender woken) is :attr:`LearnedInput.announce`.
+Once an input's frames are learned, :func:`learned_model` makes the new model version:
+the checkpoint and segment history (the inputs of the warm-up labelled again when this
+input made the first model), the drift and lifecycle state, the alerts named. Once its
+labels file is named and its digest known, :func:`learned_commit` gathers the commit
+(that and the ledger row) and the model state the worker holds after it. What it says
+once committed (alerts and events in the log, the alert sender woken) is
+:attr:`LearnedInput.announce`.
 """
 from __future__ import annotations
 
@@ -29,7 +30,7 @@ from shoal.daemon.runtime.logs import log_event
 from shoal.daemon.segments.segment_names import name_alerts, segment_names
 from shoal.daemon.state.store import Checkpoint, InputCommit, LedgerEntry, StateStore, WarmupInput
 
-__all__ = ["LearnedInput", "learned_commit"]
+__all__ = ["LearnedModel", "LearnedInput", "learned_model", "learned_commit"]
 
 
 @dataclass
@@ -43,20 +44,30 @@ class LearnedInput:
     announce: Callable[[], None]
 
 
-def learned_commit(settings: Settings, layout: Layout, store: StateStore, state: ModelState,
-                   run: InputLearning, entry: LedgerEntry, digest: str, labels: Path,
-                   watch, life, rebaseline: tuple[int, str] | None, *,
-                   fixed_schema: pa.Schema | None, stream_schema: pa.Schema | None,
-                   named: Callable[[Iterable[pa.Table]], Iterable[pa.Table]],
-                   wall: Callable[[], float], listeners: list,
-                   stop: threading.Event) -> LearnedInput:
-    """The commit of the input ``run`` learned from ``state`` (labels in ``labels``,
-    content ``digest``); ``fixed_schema`` is the stream's pass-through types it fixed
-    (None if fixed before), ``stream_schema`` the stream's before it (to read labels
-    files back)."""
+@dataclass
+class LearnedModel:
+    """What an input's learning leaves, before its file is settled: the checkpoint and
+    segment history of the new model version (None without a model), the alerts named,
+    and what the watches say once the commit is durable."""
+
+    extra: dict
+    checkpoint: Checkpoint | None
+    history: list
+    alerts: list
+    applied: bool        # a pending re-baseline applied by this input
+
+
+def learned_model(settings: Settings, layout: Layout, store: StateStore, state: ModelState,
+                  run: InputLearning, watch, life, rebaseline: tuple[int, str] | None, *,
+                  stream_schema: pa.Schema | None,
+                  named: Callable[[Iterable[pa.Table]], Iterable[pa.Table]],
+                  wall: Callable[[], float], stop: threading.Event) -> LearnedModel:
+    """The new model version of the input ``run`` learned from ``state``: the drift
+    watch's last windows evaluated, the lifecycle's state taken, the checkpoint and
+    history made. Nothing here needs the input's digest or labels file, so the pipeline
+    makes it while the labels file is finished and synced in the writer's thread."""
     version = run.version
     mixture, extra = run.mixture, run.extra
-    warmup_keep, clear_warmup = run.warmup_keep, run.clear_warmup
     if mixture is not None and state.mixture is None:
         # the inputs before this one wait with null segments: the first model labels
         # them, and their rows count in the segments' row counts (as in backfill)
@@ -79,20 +90,34 @@ def learned_commit(settings: Settings, layout: Layout, store: StateStore, state:
                                run.transforms)
         if life is not None:
             history = life.history(history)
-    count = run.count
-    entry = replace(entry, digest=digest, labels=labels.name, rows=count.rows,
-                    rows_invalid=count.invalid)
     raise_if_stopped(stop)
     alerts = name_alerts((watch.alerts if watch is not None else []) +
                          (life.alerts if life is not None else []),
                          segment_names(store.db))
-    applied = rebaseline is not None and watch.rebaselined
-    commit = InputCommit(entry, learned=True, checkpoint=checkpoint,
+    return LearnedModel(extra, checkpoint, history or [], alerts,
+                        applied=rebaseline is not None and watch.rebaselined)
+
+
+def learned_commit(learned: LearnedModel, state: ModelState, run: InputLearning,
+                   entry: LedgerEntry, digest: str, labels: Path, watch, life,
+                   rebaseline: tuple[int, str] | None, *, fixed_schema: pa.Schema | None,
+                   listeners: list) -> LearnedInput:
+    """The commit of ``learned`` (:func:`learned_model`) for the input ``run`` learned from
+    ``state``, its labels in ``labels`` and its content ``digest``; ``fixed_schema`` is
+    the stream's pass-through types it fixed (None if fixed before)."""
+    version = run.version
+    mixture, extra = run.mixture, learned.extra
+    warmup_keep, clear_warmup = run.warmup_keep, run.clear_warmup
+    count = run.count
+    entry = replace(entry, digest=digest, labels=labels.name, rows=count.rows,
+                    rows_invalid=count.invalid)
+    alerts, applied = learned.alerts, learned.applied
+    commit = InputCommit(entry, learned=True, checkpoint=learned.checkpoint,
                          labels_schema=None if fixed_schema is None
                          else schema_text(fixed_schema),
                          warmup_rows=warmup_keep, warmup_valid=run.warmup_valid,
                          clear_warmup=clear_warmup,
-                         history=history or (), alerts=alerts,
+                         history=learned.history or (), alerts=alerts,
                          rebaseline=rebaseline[0] if applied else None)
 
     def announce() -> None:

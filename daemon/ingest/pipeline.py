@@ -24,6 +24,7 @@ ledger row and model version; a crash loses the whole group or nothing).
 """
 from __future__ import annotations
 
+import functools
 import logging
 import os
 import sqlite3
@@ -69,7 +70,7 @@ from shoal.daemon.ingest.commit import (
 )
 from shoal.daemon.ingest.endings import labels_metadata, note_skipped, quarantine_input
 from shoal.daemon.ingest.label_only import label_with_model
-from shoal.daemon.ingest.learned import learned_commit
+from shoal.daemon.ingest.learned import learned_commit, learned_model
 from shoal.daemon.ingest.learning import observed_floor
 from shoal.daemon.ingest.results import ModelState, Result, load_model_state, log_result
 from shoal.daemon.ingest.rows import RowCount, keep_rows
@@ -437,22 +438,25 @@ class Pipeline:
                 rebaseline = None  # applied by an input of the open group
             if rebaseline is not None:
                 watch.rebaseline(st.mixture, rebaseline[1])
-        run = InputLearning(self.settings, st, extra, version, watch, life, self._clock,
-                            self.stop)
+        run = InputLearning(self.settings, st, extra, version, watch, life, self._clock, self.stop)
         with self._read(f, kind, threaded) as frames, \
                 self._labels_file(entry.name, "", frames.threaded) as out:
             out.write_all(self._labels_out(run.labelled(run.learned(run.checked(
                 until_claimed(frames, claim))))))
+            # the new model version is made while the writer's thread finishes the labels
+            # file and the digest's its hash (a first model after: it relabels files)
+            model = functools.partial(learned_model, self.settings, self.layout, self.store, st,
+                                      run, watch, life, rebaseline, wall=self.wall, stop=self.stop,
+                                      stream_schema=self._labels_schema, named=self._named)
+            model = model() if st.mixture is not None and claim.poll() in (None, NEW) else model
             if claim.decide() != NEW:
                 return None
             labels = self._keep_labels(out, f, move.pin, entry.name, claim.digest,
                                        run.labels_version)
         fixed = self._conformer.fixed
-        learned = learned_commit(
-            self.settings, self.layout, self.store, st, run, entry, claim.digest, labels,
-            watch, life, rebaseline, fixed_schema=fixed, stream_schema=self._labels_schema,
-            named=self._named, wall=self.wall, listeners=self.alert_listeners,
-            stop=self.stop)
+        learned = learned_commit(model() if callable(model) else model, st, run, entry,
+                                 claim.digest, labels, watch, life, rebaseline,
+                                 fixed_schema=fixed, listeners=self.alert_listeners)
         if fixed is not None:
             self._labels_schema = fixed   # as the commit keeps it
         self._commit(learned.commit, version, learned.result, move, learned.announce)

@@ -346,3 +346,44 @@ def test_the_committed_baseline_is_worked_out_once_while_the_settings_stay(strea
     s.pipeline.settings = dataclasses.replace(s.settings)   # as a reload sets them
     s.feed(_rows(rng, 3_000, weights, means, covs), 3_000)
     assert len(made) == before + 1
+
+
+def test_the_model_version_is_made_before_the_labels_file_is_settled(stream, monkeypatch):
+    # The new model version (the last windows evaluated, the lifecycle's state taken)
+    # is made while the labels writer's thread finishes the file, so the two overlap:
+    # before the pipeline settles the labels file, for inputs after the first model.
+    # The input that makes the first model labels the warm-up's inputs anew (files
+    # written): that waits until its content is known new. A duplicate commits nothing.
+    import pyarrow as pa
+
+    import shoal.daemon.ingest.pipeline as pipeline
+    order = []
+    real_model, real_keep = pipeline.learned_model, pipeline.Pipeline._keep_labels
+
+    def model(*args, **kwargs):
+        order.append("model")
+        return real_model(*args, **kwargs)
+
+    def keep(self, *args, **kwargs):
+        order.append("keep")
+        return real_keep(self, *args, **kwargs)
+
+    monkeypatch.setattr(pipeline, "learned_model", model)
+    monkeypatch.setattr(pipeline.Pipeline, "_keep_labels", keep)
+    weights, means, covs = _truth()
+    rng = np.random.default_rng(8)
+    s = stream(warmup_rows=5_000, drift={"settle_rows": 4096, "window_rows": 1024})
+    X = _rows(rng, 9_000, weights, means, covs)
+    s.feed(X[:3_000], 3_000)     # below warmup_rows: labels with null segments
+    assert s.pipeline.state.mixture is None and order == ["keep", "model"]
+    order.clear()
+    s.feed(X[3_000:6_000], 3_000)   # the first model
+    assert s.pipeline.state.mixture is not None and order == ["keep", "model"]
+    order.clear()
+    s.feed(X[6_000:], 3_000)
+    assert order == ["model", "keep"]
+    version = s.pipeline.state.version
+    same = s.folder / "same.parquet"    # the last input's content again
+    pq.write_table(pa.table({f: X[6_000:, j] for j, f in enumerate(s.features)}), same)
+    assert s.pipeline.process(same, in_inbox=False).outcome == "duplicate"
+    assert s.pipeline.state.version == version
