@@ -445,18 +445,18 @@ class Pipeline:
                 until_claimed(frames, claim))))))
             # the new model version is made while the writer's thread finishes the labels
             # file and the digest's its hash (a first model after: it relabels files)
-            model = functools.partial(learned_model, self.settings, self.layout, self.store, st,
-                                      run, watch, life, rebaseline, wall=self.wall, stop=self.stop,
-                                      stream_schema=self._labels_schema, named=self._named)
-            model = model() if st.mixture is not None and claim.poll() in (None, NEW) else model
+            make = functools.partial(learned_model, self.settings, self.layout, self.store, st,
+                                     run, watch, life, rebaseline, wall=self.wall, stop=self.stop,
+                                     stream_schema=self._labels_schema, named=self._named)
+            model = make() if st.mixture is not None and claim.poll() in (None, NEW) else None
             if claim.decide() != NEW:
                 return None
             labels = self._keep_labels(out, f, move.pin, entry.name, claim.digest,
                                        run.labels_version)
         fixed = self._conformer.fixed
-        learned = learned_commit(model() if callable(model) else model, st, run, entry,
-                                 claim.digest, labels, watch, life, rebaseline,
-                                 fixed_schema=fixed, listeners=self.alert_listeners)
+        learned = learned_commit(model or make(), st, run, entry, claim.digest, labels, watch,
+                                 life, rebaseline, fixed_schema=fixed,
+                                 listeners=self.alert_listeners)
         if fixed is not None:
             self._labels_schema = fixed   # as the commit keeps it
         self._commit(learned.commit, version, learned.result, move, learned.announce)
