@@ -65,7 +65,8 @@ def learned_model(settings: Settings, layout: Layout, store: StateStore, state: 
     """The new model version of the input ``run`` learned from ``state``: the drift
     watch's last windows evaluated, the lifecycle's state taken, the checkpoint and
     history made. Nothing here needs the input's digest or labels file, so the pipeline
-    makes it while the labels file is finished and synced in the writer's thread."""
+    makes it while the writer's thread encodes the last labels (and the digest's thread
+    hashes)."""
     version = run.version
     mixture, extra = run.mixture, run.extra
     if mixture is not None and state.mixture is None:
