@@ -36,6 +36,7 @@ from pathlib import Path
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")   # as the shoal command runs
 
 from scripts.bench_e2e import WARM_ROWS, mixture_rows, warmed_state, write_drop  # noqa: E402
+from shoal.daemon.runtime.allocator import tune_allocator  # noqa: E402
 
 FRAME_ROWS = 65_536   # the pipeline's frames (learn_chunks is called once per frame)
 
@@ -158,6 +159,7 @@ def main() -> int:
                    help="only this covariance type (repeatable; default: both)")
     p.add_argument("--no-small", action="store_true", help="skip the small-inputs table")
     a = p.parse_args()
+    tune_allocator()   # malloc's thresholds as the shoal command sets them
     watch_cpu_table(a.rows, a.repeats, tuple(a.covariance or ("full", "diag")))
     if not a.no_small:
         small_inputs_table()

@@ -34,6 +34,7 @@ from pathlib import Path
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")   # as the shoal command runs
 
 from scripts.bench_e2e import FEATURES, N_COMPONENTS, WARM_ROWS, mixture_rows  # noqa: E402
+from shoal.daemon.runtime.allocator import tune_allocator  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
 FRAME_ROWS = 65_536   # the pipeline's frames (learn_chunks is called once per frame)
@@ -149,6 +150,7 @@ def main() -> int:
     p.add_argument("--covariance", choices=("full", "diag"), default="full")
     p.add_argument("--rows", type=int, default=1_000_000)
     a = p.parse_args()
+    tune_allocator()   # malloc's thresholds as the shoal command sets them
     compare(a.base, a.repeats, a.covariance, a.rows)
     return 0
 
