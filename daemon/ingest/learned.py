@@ -46,9 +46,9 @@ class LearnedInput:
 
 @dataclass
 class LearnedModel:
-    """What an input's learning leaves, before its file is settled: the checkpoint and
-    segment history of the new model version (None without a model), the alerts named,
-    and what the watches say once the commit is durable."""
+    """What an input's learning leaves, before its file is settled: the checkpoint's extra
+    data, the checkpoint and segment history of the new model version (None and empty
+    without a model), and the alerts named."""
 
     extra: dict
     checkpoint: Checkpoint | None
@@ -118,7 +118,7 @@ def learned_commit(learned: LearnedModel, state: ModelState, run: InputLearning,
                          else schema_text(fixed_schema),
                          warmup_rows=warmup_keep, warmup_valid=run.warmup_valid,
                          clear_warmup=clear_warmup,
-                         history=learned.history or (), alerts=alerts,
+                         history=learned.history, alerts=alerts,
                          rebaseline=rebaseline[0] if applied else None)
 
     def announce() -> None:
