@@ -1008,6 +1008,7 @@ static PyObject *spherical_operator(PyObject *self, PyObject *args) {
 }
 
 #include "_kernels_gaps.h"
+#include "_kernels_watch.h"
 
 /* ------------------------------------------------------------------ module */
 static PyMethodDef methods[] = {
@@ -1078,6 +1079,10 @@ static PyMethodDef methods[] = {
     {"gap_moments", gap_moments, METH_VARARGS,
      "gap_moments(A, lo, R, row_w, floor, rows, off, cols, hoff, ga, gb, step, hinv, kind, P): "
      "the M-step corrections of rows with missing features to the design products P"},
+    {"piece_tallies", piece_tallies, METH_VARARGS,
+     "piece_tallies(log_density, component, X, center, unusual_below, near_below, first, "
+     "stride, unusual_sum, unusual_by, sampled, near) -> (ld_sum, ld2_sum, unusual, near): "
+     "what the segment watch keeps of a learned piece, in one pass"},
     {NULL, NULL, 0, NULL}};
 
 static struct PyModuleDef module = {PyModuleDef_HEAD_INIT, "_kernels",

@@ -26,6 +26,7 @@ from shoal.core import (
     initialise,
     select_n_components,
 )
+from shoal.core.piece_tallies import piece_tallies
 from shoal.core.quantile import linear_quantile
 from shoal.core.scoring import ScoreScratch
 from shoal.daemon.errors import InputRejected, Interrupted
@@ -33,6 +34,7 @@ from shoal.daemon.files.gaps import Unusual, complete_rows, observed_counts
 from shoal.daemon.ingest.rows import ScoresInto, complete_only, concat_scores
 from shoal.daemon.model import transforming
 from shoal.daemon.runtime.logs import log_event
+from shoal.daemon.segments.life_rows import SAMPLE_STRIDE
 from shoal.daemon.state.store import HistoryRow
 
 if TYPE_CHECKING:
@@ -40,7 +42,7 @@ if TYPE_CHECKING:
     from shoal.daemon.segments.segment_life import LifeWatch
 
 __all__ = ["UNUSUAL_MEMORY_ROWS", "raise_if_stopped", "step_schedule", "observed_floor", "warm_up",
-           "learn_chunks", "after_scoring", "count_rows", "with_born", "history_rows"]
+           "learn_chunks", "show_piece", "after_scoring", "count_rows", "with_born", "history_rows"]
 
 # A learned input moves the unusual-row threshold this far towards its own quantile:
 # weight n / (n + UNUSUAL_MEMORY_ROWS), i.e. the threshold follows roughly the last
@@ -148,16 +150,36 @@ def learn_chunks(settings: Settings, mixture: Mixture, X: np.ndarray,
             piece = X[start:start + take]
             before = mixture
             mixture, scores = mixture.learn(piece, moments=watch is not None, scratch=scratch)
-            if watch is not None:
-                watch.observe(mixture, piece, scores, start)
-            if life is not None:
-                life.observe(before, piece, complete_only(piece, scores))
+            if watch is not None or life is not None:
+                show_piece(watch, life, before, mixture, piece, scores, start)
             joined.put(start, scores)
             start += take
     except (ModelError, np.linalg.LinAlgError) as exc:
         raise InputRejected("model_update_failed", f"the model could not learn from this "
                             f"input: {exc}") from exc
     return mixture, joined.scores()
+
+
+def show_piece(watch: InputWatch | None, life: LifeWatch | None, before: Mixture,
+               mixture: Mixture, piece: np.ndarray, scores, start: int) -> None:
+    """Show a learned piece (rows ``start..`` of the input's learned rows) to the segment
+    watch: its scores tallied once for both (:func:`shoal.core.piece_tallies.piece_tallies`),
+    ``before`` the model that scored it and ``mixture`` the model after it."""
+    near, first = life.tally_bounds(before) if life is not None else (None, 0)
+    kept = complete_only(piece, scores) if life is not None else scores
+    tallies = piece_tallies(scores.log_density, scores.component, piece, before.center,
+                            before.n_components,
+                            unusual_below=None if watch is None else watch.unusual_bound,
+                            near_below=near if kept is scores else None, first=first,
+                            stride=SAMPLE_STRIDE)
+    if watch is not None:
+        watch.observe(mixture, piece, scores, start, tallies)
+    if life is not None:
+        if kept is not scores:   # rows that miss a feature are never unexplained
+            tallies.near = piece_tallies(kept.log_density, kept.component, piece,
+                                         before.center, before.n_components,
+                                         near_below=near).near
+        life.observe(before, piece, kept, tallies)
 
 
 def count_rows(extra: dict, segments: list[np.ndarray]) -> dict:

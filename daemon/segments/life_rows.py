@@ -197,11 +197,19 @@ class UnexplainedPool:
         self._waiting: list[tuple] = []
         self.waiting_rows = 0
 
-    def add(self, before: Mixture, X: np.ndarray, scores) -> None:
+    def near_bound(self, before: Mixture) -> float:
+        """The log-density under which a row that ``before`` scored may be unexplained
+        (:func:`~shoal.core.unexplained.unexplained_below`, with a margin of 1e-9, far
+        above rounding, that keeps every unexplained row)."""
+        return unexplained_below(before, self.quantile) + 1e-9
+
+    def add(self, before: Mixture, X: np.ndarray, scores, near: np.ndarray | None = None) -> None:
         """The rows of a piece ``X`` that ``before`` scored (``scores``) and that may be
-        unexplained: those under the bound wait."""
+        unexplained (``near``: the positions of those under :meth:`near_bound`, None:
+        found here) wait."""
         log_density = scores.log_density
-        near = np.flatnonzero(log_density < unexplained_below(before, self.quantile) + 1e-9)
+        if near is None:
+            near = np.flatnonzero(log_density < self.near_bound(before))
         if near.size:
             last = int(before.n_rows) + int(near[-1])   # the stream position of its last row
             # the piece's score buffers are reused for the next piece: what waits is copied

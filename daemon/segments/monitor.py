@@ -48,6 +48,7 @@ from shoal.core.distances import GaussianSet
 from shoal.core.baseline import baseline_from_sums
 from shoal.core.drift import Baseline, evaluate_bounds
 from shoal.core.drift_noise import spread_variance
+from shoal.core.piece_tallies import PieceTallies, piece_tallies
 from shoal.core.window_statistics import WindowSums, stack_sums, window_statistics
 from shoal.daemon.runtime.logs import log_event
 from shoal.daemon.segments.drift_alerts import (PAYLOAD_SCHEMA_VERSION, STATISTIC_UNITS, alert_id,
@@ -55,20 +56,9 @@ from shoal.daemon.segments.drift_alerts import (PAYLOAD_SCHEMA_VERSION, STATISTI
 from shoal.daemon.segments.missing_drift import window_shares
 from shoal.daemon.segments.own_state import own_copy
 from shoal.daemon.segments.window_sums import (
-    log_times_left_out,
-    add_piece_sums,
-    add_row_sums,
-    add_unusual,
-    aligned_sums,
-    empty_piece_sums,
-    baseline_missing_shares,
-    empty_window,
-    merge_window_sums,
-    time_kind,
-    time_range,
-    widen,
-    window_copy,
-)
+    add_piece_sums, add_row_sums, add_unusual, aligned_sums, baseline_missing_shares,
+    empty_piece_sums, empty_window, log_times_left_out, merge_window_sums, time_kind,
+    time_range, widen, window_copy)
 from shoal.daemon.segments.window_values import (SEGMENT_STATISTICS, SHAPE_MIN_SHARE, quiet_windows,
                                                  settings_bounds, window_fit, window_values)
 
@@ -211,10 +201,22 @@ class InputWatch:
         w = self.window_rows
         return w - n_rows % w
 
-    def observe(self, mixture: Mixture, X: np.ndarray, scores, start: int) -> None:
+    @property
+    def unusual_bound(self) -> float | None:
+        """The log-density under which a piece's rows count as unusual in its window (the
+        baseline's threshold; None before a baseline)."""
+        return ((self._ensure().get("baseline_info") or {}).get("unusual_below"))
+
+    def observe(self, mixture: Mixture, X: np.ndarray, scores, start: int,
+                tallies: PieceTallies | None = None) -> None:
         """Add a learned piece (rows ``start..`` of the input's learned rows); ``mixture`` is
-        the model after learning it."""
+        the model after learning it, ``tallies`` the piece's tallies under
+        :attr:`unusual_bound` (:func:`shoal.core.piece_tallies.piece_tallies`; None:
+        tallied here)."""
         st = self._ensure()
+        if tallies is None:
+            tallies = piece_tallies(scores.log_density, scores.component, X, mixture.center,
+                                    mixture.n_components, unusual_below=self.unusual_bound)
         w = self.window_rows
         end_row = int(mixture.n_rows)
         first_row = end_row - len(X)
@@ -224,22 +226,21 @@ class InputWatch:
             self._flush()
             win = st["window"] = empty_window(index)
         times = None if self.times is None else self.times[start:start + len(X)]
-        self._accumulate(win, mixture, X, scores, times)
+        self._accumulate(win, mixture, X, scores, times, tallies)
         if end_row % w == 0:
             self._close(win, mixture, first_window_row=index * w)
             st["window"] = None
 
-    def _accumulate(self, win, mixture, X, scores, times):
+    def _accumulate(self, win, mixture, X, scores, times, tallies):
         n = len(X)
         if n == 0:
             return
-        ld = scores.log_density
         win["n"] += n
-        win["ld"] += float(ld.sum())
-        win["ld2"] += float(np.dot(ld, ld))
+        win["ld"] += tallies.ld_sum
+        win["ld2"] += tallies.ld2_sum
         ids = mixture.ids.tolist()
         sums = self._pending
-        moments, Xc = scores.moments, None
+        moments = scores.moments
         if sums is None or sums["window"] is not win or sums["ids"] != ids:
             self._flush()
             sums = self._pending = empty_piece_sums(win, ids, X.shape[1], moments)
@@ -247,11 +248,9 @@ class InputWatch:
             for key in ("T", "Q", "B", "M", "S"):
                 sums[key] += getattr(moments, key)
         if moments is None:   # rows with missing features, or a spherical model
-            Xc = X - mixture.center
-            add_row_sums(sums, mixture, X, Xc, scores)
-        below = (self._state.get("baseline_info", {}) or {}).get("unusual_below")
-        if below is not None:
-            add_unusual(win["unusual"], self._keys(ids), mixture.center, X, Xc, scores, below)
+            add_row_sums(sums, mixture, X, X - mixture.center, scores)
+        if tallies.unusual:
+            add_unusual(win["unusual"], self._keys(ids), tallies)
         if self.file not in win["files"]:
             win["files"].append(self.file)
         win["versions"] = widen(win["versions"], self.version, self.version)

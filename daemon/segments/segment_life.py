@@ -52,20 +52,10 @@ import numpy as np
 
 from shoal.config import Settings
 from shoal.core import Mixture, ModelError
-from shoal.core.lifecycle import (
-    add_component,
-    OVERLAP_MEASURES,
-    compact_group,
-    merge,
-    overlapping_pairs,
-    pairs_apart,
-    recent_share,
-    retire,
-    split,
-    split_test,
-    unexplained_scored,
-    widening_explains,
-)
+from shoal.core.lifecycle import (OVERLAP_MEASURES, add_component, compact_group, merge,
+                                  overlapping_pairs, pairs_apart, recent_share, retire, split,
+                                  split_test, unexplained_scored, widening_explains)
+from shoal.core.piece_tallies import PieceTallies, piece_tallies
 from shoal.daemon.runtime.logs import log_event
 from shoal.daemon.segments.life_rows import SAMPLE_STRIDE, Samples, UnexplainedPool
 from shoal.daemon.segments.own_state import own_copy
@@ -171,20 +161,30 @@ class LifeWatch:
         c, r = self.cfg.check_rows, int(mixture.refresh_rows)
         return min(c - n % c, r - n % r)
 
-    def observe(self, before: Mixture, X: np.ndarray, scores) -> None:
+    def tally_bounds(self, before: Mixture) -> tuple[float, int]:
+        """The log-density under which rows that ``before`` scores may be unexplained, and
+        a piece's first sampled row: what :meth:`observe` needs tallied."""
+        self._ensure()
+        return self._pool.near_bound(before), (-int(before.n_rows)) % SAMPLE_STRIDE
+
+    def observe(self, before: Mixture, X: np.ndarray, scores,
+                tallies: PieceTallies | None = None) -> None:
         """Sample a learned piece and pool its rows that no segment explains (both wait
         until a decision needs them: :mod:`~shoal.daemon.segments.life_rows`); ``before``
         is the model that scored them (its ``n_rows`` is the piece's first learned row),
         ``scores`` its scores with rows that miss a feature at log-density ``+inf``
-        (``complete_only``): those are neither pooled nor sampled."""
+        (``complete_only``): those are neither pooled nor sampled; ``tallies`` its
+        :func:`~shoal.core.piece_tallies.piece_tallies` under :meth:`tally_bounds`."""
         st = self._ensure()
-        ids = before.ids.tolist()
-        self._live = ids
         first = (-int(before.n_rows)) % SAMPLE_STRIDE
-        picked = scores.component[first::SAMPLE_STRIDE]
+        if tallies is None:
+            tallies = piece_tallies(scores.log_density, scores.component, X, before.center,
+                                    before.n_components, first=first, stride=SAMPLE_STRIDE,
+                                    near_below=self._pool.near_bound(before))
+        ids = self._live = before.ids.tolist()
         # sampled rows of each segment, those that miss a feature too (they count
         # towards a split test's wait, but do not go into a sample)
-        fresh = np.bincount(picked, minlength=len(ids)).tolist()
+        fresh = tallies.sampled.tolist()
         # each segment's responsibility total: the drift watch's moments carry it
         mass = (scores.resp.T.sum(axis=1) if scores.moments is None
                 else scores.moments.T).tolist()
@@ -203,7 +203,7 @@ class LifeWatch:
         if counts:
             self._samples.add(X, first, scores.segment[first::SAMPLE_STRIDE],
                               scores.log_density[first::SAMPLE_STRIDE].copy(), counts, ids)
-        self._pool.add(before, X, scores)
+        self._pool.add(before, X, scores, tallies.near)
 
     def _keys(self, ids: list[int]) -> list[str]:
         """The state's keys (``str``) of segment ids, kept while the ids stay the same."""

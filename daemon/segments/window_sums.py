@@ -89,23 +89,15 @@ def add_row_sums(sums: dict, mixture, X: np.ndarray, Xc: np.ndarray, scores) -> 
         add_gap_sums(sums, gaps)
 
 
-def add_unusual(unusual: dict, keys: list[str], center, X: np.ndarray, Xc, scores,
-                below: float) -> None:
-    """Count a piece's unusual rows (log-density under ``below``) into a window's
-    ``unusual`` record: how many, the sum of their rows centred on ``center`` (``Xc`` if
-    at hand, filled), and how many per segment (``keys``: the model's segment ids as
-    strings, in component order)."""
-    rows = np.flatnonzero(scores.log_density < below)
-    count = rows.size
-    if not count:
-        return
-    unusual["n"] += count
-    total = (Xc.take(rows, axis=0).sum(axis=0) if Xc is not None
-             else X.take(rows, axis=0).sum(axis=0) - count * center)
-    unusual["sum"] = add_lists(unusual["sum"], total)
+def add_unusual(unusual: dict, keys: list[str], tallies) -> None:
+    """Count a piece's unusual rows into a window's ``unusual`` record: how many, the sum
+    of their rows centred on the model's centre, and how many per segment (``keys``:
+    the model's segment ids as strings, in component order), from the piece's
+    :class:`~shoal.core.piece_tallies.PieceTallies`."""
+    unusual["n"] += tallies.unusual
+    unusual["sum"] = add_lists(unusual["sum"], tallies.unusual_sum)
     by_segment = unusual["by_segment"]
-    per = np.bincount(scores.component.take(rows), minlength=len(keys)).tolist()
-    for key, n in zip(keys, per):
+    for key, n in zip(keys, tallies.unusual_by.tolist()):
         if n:
             by_segment[key] = by_segment.get(key, 0) + n
 
