@@ -1083,6 +1083,9 @@ static PyMethodDef methods[] = {
      "piece_tallies(log_density, component, X, center, unusual_below, near_below, first, "
      "stride, unusual_sum, unusual_by, sampled, near) -> (ld_sum, ld2_sum, unusual, near): "
      "what the segment watch keeps of a learned piece, in one pass"},
+    {"window_shapes", window_shapes, METH_VARARGS,
+     "window_shapes(S, M, B, centers, seen, kind, ref_means, ref_inv_chol, means, covs, shift, "
+     "log_det, ok): drift windows' means, covariances, mean shifts and log-determinants"},
     {NULL, NULL, 0, NULL}};
 
 static struct PyModuleDef module = {PyModuleDef_HEAD_INIT, "_kernels",

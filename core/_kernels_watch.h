@@ -1,7 +1,10 @@
 /*
- * The segment watch's tallies of a learned piece (included by _kernels.c; see
- * shoal.core.piece_tallies): one pass over the piece's scores for what the drift watch
- * and the lifecycle keep of it, in place of a dozen numpy calls per piece.
+ * The segment watch's compiled passes (included by _kernels.c): a learned piece's
+ * tallies (see shoal.core.piece_tallies), one pass over its scores for what the drift
+ * watch and the lifecycle keep of it, and the drift windows' shapes (see
+ * shoal.core.window_statistics): each window's means, covariances, mean shifts and
+ * log-determinants in one loop, a Cholesky factor per full covariance, in place of a
+ * few batched numpy and LAPACK calls with their (windows x segments, D, D) temporaries.
  */
 
 /* piece_tallies(ld, component, X, center, unusual_below, near_below, first, stride,
@@ -71,4 +74,126 @@ static PyObject *piece_tallies(PyObject *self, PyObject *args) {
 fail:
     release(&s);
     return NULL;
+}
+
+/* The lower Cholesky factor of the lower triangle of A (D x D) into L; 0 when A is not
+ * positive definite (a pivot at or under zero, or NaN). */
+static int chol_lower(const double *A, Py_ssize_t D, double *L) {
+    for (Py_ssize_t j = 0; j < D; j++) {
+        double s = A[j * D + j];
+        for (Py_ssize_t k = 0; k < j; k++) s -= L[j * D + k] * L[j * D + k];
+        if (!(s > 0.0)) return 0;
+        double pivot = sqrt(s);
+        L[j * D + j] = pivot;
+        for (Py_ssize_t i = j + 1; i < D; i++) {
+            double t = A[i * D + j];
+            for (Py_ssize_t k = 0; k < j; k++) t -= L[i * D + k] * L[j * D + k];
+            L[i * D + j] = t / pivot;
+        }
+    }
+    return 1;
+}
+
+/* window_shapes(S, M, B, centers, seen, kind, ref_means, ref_inv_chol, means, covs,
+ *               shift, log_det, ok): for every row i (a window's segment; its baseline
+ * segment k = i % K, its window i / K) that is seen: the weighted mean
+ * means[i] = centers[i / K] + M[i] / B[i], the covariance covs[i] = S[i] / B[i] - dev dev^T,
+ * the Mahalanobis distance shift[i] of the mean from ref_means[k] under ref_inv_chol[k]
+ * (L^-1 of the baseline covariance), and the log-determinant of the covariance as the
+ * model's type sees it (kind 0 full, 1 diag: its diagonal, 2 spherical: its mean
+ * variance), with ok[i] when every variance is positive and that covariance positive
+ * definite (log_det NaN where not). Rows not seen: NaN, ok false. */
+static PyObject *window_shapes(PyObject *self, PyObject *args) {
+    PyObject *oS, *oM, *oB, *oc, *oseen, *orm, *oric, *omeans, *ocovs, *oshift, *old, *ook;
+    int kind;
+    Py_ssize_t dS[3], dM[2], dB[1], dc[2], dseen[1], drm[2], dric[3], dmeans[2], dcovs[3],
+        dshift[1], dld[1], dok[1];
+    double *L = NULL;
+    Bufs s = {.n = 0};
+    if (!PyArg_ParseTuple(args, "OOOOOiOOOOOOO", &oS, &oM, &oB, &oc, &oseen, &kind, &orm, &oric,
+                          &omeans, &ocovs, &oshift, &old, &ook))
+        return NULL;
+    TAKE(const double *, S, oS, "S", F64, 3, 0, dS);
+    TAKE(const double *, M, oM, "M", F64, 2, 0, dM);
+    TAKE(const double *, B, oB, "B", F64, 1, 0, dB);
+    TAKE(const double *, centers, oc, "centers", F64, 2, 0, dc);
+    TAKE(const char *, seen, oseen, "seen", BOOL, 1, 0, dseen);
+    TAKE(const double *, ref_means, orm, "ref_means", F64, 2, 0, drm);
+    TAKE(const double *, ref_ic, oric, "ref_inv_chol", F64, 3, 0, dric);
+    TAKE(double *, means, omeans, "means", F64, 2, 1, dmeans);
+    TAKE(double *, covs, ocovs, "covs", F64, 3, 1, dcovs);
+    TAKE(double *, shift, oshift, "shift", F64, 1, 1, dshift);
+    TAKE(double *, log_det, old, "log_det", F64, 1, 1, dld);
+    TAKE(char *, ok, ook, "ok", BOOL, 1, 1, dok);
+    Py_ssize_t n = dS[0], D = dS[1], K = drm[0];
+    NEED(dS[2] == D && dM[0] == n && dM[1] == D && dB[0] == n && dc[1] == D && dseen[0] == n &&
+             K > 0 && drm[1] == D && dric[0] == K && dric[1] == D && dric[2] == D &&
+             dc[0] * K == n && dmeans[0] == n && dmeans[1] == D && dcovs[0] == n &&
+             dcovs[1] == D && dcovs[2] == D && dshift[0] == n && dld[0] == n && dok[0] == n &&
+             kind >= 0 && kind <= 2,
+         "window_shapes: shapes do not agree");
+    L = PyMem_Malloc(sizeof(double) * (size_t)(D * D + 2 * D));
+    if (!L) {
+        PyErr_NoMemory();
+        goto fail;
+    }
+    Py_BEGIN_ALLOW_THREADS
+    double *dev = L + D * D, *diff = dev + D;
+    for (Py_ssize_t i = 0; i < n; i++) {
+        double *mean = means + i * D, *cov = covs + i * D * D;
+        if (!seen[i]) {
+            for (Py_ssize_t a = 0; a < D; a++) mean[a] = NAN;
+            for (Py_ssize_t a = 0; a < D * D; a++) cov[a] = NAN;
+            shift[i] = log_det[i] = NAN;
+            ok[i] = 0;
+            continue;
+        }
+        const double *Si = S + i * D * D, *c = centers + (i / K) * D;
+        Py_ssize_t k = i % K;
+        double b = B[i];
+        for (Py_ssize_t a = 0; a < D; a++) {
+            dev[a] = M[i * D + a] / b;
+            mean[a] = c[a] + dev[a];
+            diff[a] = mean[a] - ref_means[k * D + a];
+        }
+        for (Py_ssize_t a = 0; a < D; a++)
+            for (Py_ssize_t e = 0; e < D; e++) cov[a * D + e] = Si[a * D + e] / b - dev[a] * dev[e];
+        const double *ic = ref_ic + k * D * D;
+        double d2 = 0.0;
+        for (Py_ssize_t a = 0; a < D; a++) {
+            double w = 0.0;
+            for (Py_ssize_t e = 0; e <= a; e++) w += ic[a * D + e] * diff[e];
+            d2 += w * w;
+        }
+        shift[i] = sqrt(d2);
+        int variances = 1;
+        double sum_var = 0.0, sum_log = 0.0;
+        for (Py_ssize_t a = 0; a < D; a++) {
+            double v = cov[a * D + a];
+            variances &= v > 0.0;
+            sum_var += v;
+            sum_log += log(v);
+        }
+        double ld = NAN;
+        int positive = 0;
+        if (kind == 0) {
+            if (chol_lower(cov, D, L)) {
+                positive = 1;
+                ld = 0.0;
+                for (Py_ssize_t a = 0; a < D; a++) ld += log(L[a * D + a]);
+                ld *= 2.0;
+            }
+        } else if (kind == 1) {
+            positive = variances;
+            ld = variances ? sum_log : NAN;
+        } else {
+            double mv = sum_var / (double)D;
+            positive = mv > 0.0;
+            ld = positive ? (double)D * log(mv) : NAN;
+        }
+        log_det[i] = ld;
+        ok[i] = (char)(positive && variances);
+    }
+    Py_END_ALLOW_THREADS
+    RETURN_NONE_OR_FAIL_FREEING(L);
 }

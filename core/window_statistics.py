@@ -12,7 +12,10 @@ rows that missed feature ``j``), ``miss2[k, j]`` (its squares) and ``imputed[k, 
 the share of the window's rows, Kish's effective rows ``T^2 / Q``, the weighted mean
 ``c + M / T`` and covariance ``S / T - (M / T)(M / T)^T``, and the drift statistics
 of :mod:`shoal.core.drift` with their noise levels (:mod:`shoal.core.drift_noise`).
-Sums are additive, so a window may span inputs and be checkpointed between them.
+Sums are additive, so a window may span inputs and be checkpointed between them. The
+means, covariances, mean shifts and log-determinants come from one compiled loop when
+the kernels are in use (:mod:`shoal.core.fused`), else from batched numpy and LAPACK
+calls: the same up to the order of the floating-point operations (tests compare them).
 """
 from __future__ import annotations
 
@@ -306,6 +309,53 @@ def stack_sums(windows) -> WindowSums:
     return out
 
 
+def _shapes(sums: WindowSums, B, centers, center, seen, at, ref, factors, kk):
+    """The seen rows' means, covariances (NaN elsewhere) and mean shifts; for the rows
+    ``at`` (the seen ones) the log-determinants of the covariances as the model's type
+    sees them, and whether every variance is positive and that covariance positive
+    definite."""
+    n, d = sums.M.shape
+    every = at.size == n          # the usual case: slices, no gathers
+    pick = slice(None) if every else at
+    B_at = B[pick]
+    dev = sums.M[pick] / B_at[:, None]
+    means = np.full((n, d), np.nan)
+    means[pick] = center[pick] + dev
+    cov_at = sums.S[pick] / B_at[:, None, None]
+    cov_at -= dev[:, :, None] * dev[:, None, :]
+    if every:
+        covs = cov_at
+    else:
+        covs = np.full((n, d, d), np.nan)
+        covs[pick] = cov_at
+    shift = np.full(n, np.nan)
+    if not at.size:
+        return means, covs, shift, np.empty(0), np.empty(0, dtype=bool)
+    shift[at] = factors.mahalanobis(means[pick], kk[at])
+    diag = np.diagonal(cov_at, axis1=1, axis2=2)
+    positive, log_det = _log_determinants(projected_covariances(cov_at, ref.covariance))
+    return means, covs, shift, log_det, np.all(diag > 0, axis=1) & positive
+
+
+_KIND = {"full": 0, "diag": 1, "spherical": 2}
+
+
+def _compiled_shapes(sums: WindowSums, B, centers, center, seen, at, ref, factors, kk):
+    """:func:`_shapes` in one compiled pass (a Cholesky factor per full covariance)."""
+    n, d = sums.M.shape
+    means, covs = np.empty((n, d)), np.empty((n, d, d))
+    shift, log_det, ok = np.empty(n), np.empty(n), np.empty(n, dtype=bool)
+    fused.kernels().window_shapes(
+        np.ascontiguousarray(sums.S, dtype=np.float64),
+        np.ascontiguousarray(sums.M, dtype=np.float64),
+        np.ascontiguousarray(B, dtype=np.float64), np.ascontiguousarray(centers),
+        np.ascontiguousarray(seen, dtype=bool), _KIND[ref.covariance],
+        np.ascontiguousarray(factors.means, dtype=np.float64),
+        np.ascontiguousarray(factors.inv_chol, dtype=np.float64),
+        means, covs, shift, log_det, ok)
+    return means, covs, shift, log_det[at], ok[at]
+
+
 def window_statistics(ref, factors, n_rows, sums: WindowSums, centers, *,
                       min_share: float, baseline_missing=None,
                       feature_shift: bool = False,
@@ -358,21 +408,10 @@ def window_statistics(ref, factors, n_rows, sums: WindowSums, centers, *,
     at = np.flatnonzero(seen)
     n = W * K
     n_eff = np.zeros(n)
-    means = np.full((n, d), np.nan)
-    every = at.size == n          # the usual case: slices, no gathers
-    pick = slice(None) if every else at
-    M_at, B_at, T_at = sums.M[pick], B[pick], T[pick]
-    dev = M_at / B_at[:, None]
-    n_eff[pick] = T_at * T_at / Q[pick]
-    means[pick] = center[pick] + dev
-    cov_at = sums.S[pick] / B_at[:, None, None]
-    cov_at -= dev[:, :, None] * dev[:, None, :]
-    if every:
-        covs = cov_at
-    else:
-        covs = np.full((n, d, d), np.nan)
-        covs[pick] = cov_at
-    shift = np.full(n, np.nan)
+    n_eff[at] = T[at] * T[at] / Q[at]
+    shape = _compiled_shapes if fused.enabled() else _shapes
+    means, covs, shift, log_det, shaped = shape(sums, B, np.asarray(centers, dtype=np.float64),
+                                                center, seen, at, ref, factors, kk)
     shift_noise = np.full(n, np.nan)
     spread = np.full(n, np.nan)
     spread_n = np.full(n, np.nan)
@@ -380,12 +419,8 @@ def window_statistics(ref, factors, n_rows, sums: WindowSums, centers, *,
     if at.size:
         member = kk[at]
         ref_n = ref.n_eff[member]
-        shift[at] = factors.mahalanobis(means[pick], member)
         shift_noise[at] = np.atleast_1d(mean_shift_noise(n_eff[at], d, ref_n))
-        diag = np.diagonal(cov_at, axis1=1, axis2=2)
-        compared = projected_covariances(cov_at, ref.covariance)
-        positive, log_det = _log_determinants(compared)
-        usable = (n_eff[at] > d + 1) & np.all(diag > 0, axis=1) & positive
+        usable = (n_eff[at] > d + 1) & shaped
         if usable.any():
             log_ratio = log_det[usable] - factors.log_det[member[usable]]
             if ref_spread_variance is None:

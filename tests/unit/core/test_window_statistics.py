@@ -1,6 +1,8 @@
 """One drift window's statistics from its sums (shoal.core.window_statistics), against
 direct computations with numpy's weighted average and covariance and scipy's
 Mahalanobis distance and standard error of the mean. Seeded synthetic rows."""
+from dataclasses import replace
+
 import numpy as np
 import pytest
 from scipy import stats
@@ -171,3 +173,40 @@ def test_recent_share_of_a_group_is_its_steady_rate_despite_an_old_stray_row():
     assert recent_share(steady, 2000) == pytest.approx(0.1)
     assert recent_share(np.concatenate([[0], steady]), 2000) == pytest.approx(0.1)
     assert recent_share(steady[::-1], 2000) == pytest.approx(0.1)   # order does not matter
+
+
+@pytest.mark.parametrize("covariance", ["full", "diag", "spherical"])
+def test_the_compiled_pass_gives_the_statistics_of_the_numpy_path(covariance):
+    # means, covariances, mean shifts and spreads of stacked windows from the compiled
+    # kernels (shoal.core._kernels.window_shapes) against the numpy path, with a segment
+    # too small to be measured and a window covariance that is not positive definite
+    from shoal.core import fused
+    if not fused.enabled():
+        pytest.skip("the compiled kernels are not built or SHOAL_COMPILED=0")
+    ref = replace(_baseline(), covariance=covariance)
+    factors = GaussianSet(ref.means, ref.covariances)
+    windows, centers = [], []
+    for seed in range(3):
+        X, resp, center, sums = _window(seed)
+        if seed == 1:
+            sums.T[0] *= 1e-3      # too small a share: not measured
+        if seed == 2:
+            sums.S[1] = 0.0        # no scatter: not positive definite, no variance
+            sums.S[2] = np.outer(sums.M[2], sums.M[2]) / sums.T[2]   # singular, variances 0
+        windows.append(sums)
+        centers.append(center + seed)
+    kw = dict(min_share=0.25, feature_shift=True)
+    stacked = stack_sums(windows)
+    compiled = window_statistics(ref, factors, [N] * 3, stacked, np.array(centers), **kw)
+    fused.set_enabled(False)
+    try:
+        plain = window_statistics(ref, factors, [N] * 3, stacked, np.array(centers), **kw)
+    finally:
+        fused.set_enabled(True)
+    assert compiled.low[K] and not plain.seen[K]
+    assert np.isnan(plain.spread[2 * K + 1]) and np.isnan(plain.spread[2 * K + 2])
+    assert np.isfinite(plain.spread[[0, 1, 2, K + 1, K + 2, 2 * K]]).all()
+    for name in ("seen", "n_eff", "means", "covs", "mean_shift", "t2", "spread",
+                 "spread_noise", "feature_shift", "feature_noise"):
+        assert np.allclose(getattr(compiled, name), getattr(plain, name), rtol=1e-10,
+                           atol=1e-12, equal_nan=True), name
