@@ -22,7 +22,7 @@
 #define CLAMP (-230.0) /* responsibilities below e^-230 are taken as e^-230 */
 
 /* ------------------------------------------------------------------ buffers */
-enum { F64 = 'd', I64 = 'q', BOOL = '?' };
+enum { F64 = 'd', F32 = 'f', I64 = 'q', BOOL = '?' };
 #define MAXBUF 16
 
 typedef struct {
@@ -39,6 +39,7 @@ static int kind_of(const Py_buffer *v) {
     const char *f = v->format ? v->format : "B";
     char c = f[strlen(f) - 1];
     if (v->itemsize == 8 && c == 'd') return F64;
+    if (v->itemsize == 4 && c == 'f') return F32;
     if (v->itemsize == 8 && (c == 'q' || c == 'l' || c == 'n')) return I64;
     if (v->itemsize == 1 && c == '?') return BOOL;
     return 0;
@@ -57,7 +58,10 @@ static void *take(Bufs *s, PyObject *o, const char *name, int kind, int ndim, in
     s->n++;
     if (v->ndim != ndim || kind_of(v) != kind) {
         PyErr_Format(PyExc_ValueError, "%s: expected %d dimension(s) of %s", name, ndim,
-                     kind == F64 ? "float64" : kind == I64 ? "int64" : "bool");
+                     kind == F64   ? "float64"
+                     : kind == F32 ? "float32"
+                     : kind == I64 ? "int64"
+                                   : "bool");
         return NULL;
     }
     for (int i = 0; i < ndim; i++) dims[i] = v->shape[i];

@@ -8,19 +8,24 @@
  */
 
 /* piece_tallies(ld, component, X, center, unusual_below, near_below, first, stride,
- *               unusual_sum, unusual_by, sampled, near) -> (ld_sum, ld2_sum, unusual, near):
+ *               unusual_sum, unusual_by, sampled, near[, sample_rows, sample_ld])
+ *   -> (ld_sum, ld2_sum, unusual, near):
  * the sums of the log-densities and of their squares, in row order; the rows under
  * unusual_below counted, per component into unusual_by (+=) and their rows centred on
  * center summed into unusual_sum (+=, in row order); the positions of the rows under
  * near_below written to near; the components of rows first, first + stride, ... counted
- * into sampled (+=). A NaN bound takes no row. */
+ * into sampled (+=), and with sample_rows and sample_ld those rows (as float32) and their
+ * log-densities copied out. A NaN bound takes no row. */
 static PyObject *piece_tallies(PyObject *self, PyObject *args) {
-    PyObject *old, *oc, *oX, *oce, *ous, *oub, *osa, *one;
+    PyObject *old, *oc, *oX, *oce, *ous, *oub, *osa, *one, *osr = Py_None, *osl = Py_None;
     double ubelow, nbelow;
-    Py_ssize_t first, stride, dl[1], dc[1], dX[2], dce[1], dus[1], dub[1], dsa[1], dne[1];
+    Py_ssize_t first, stride, dl[1], dc[1], dX[2], dce[1], dus[1], dub[1], dsa[1], dne[1],
+        dsr[2], dsl[1];
+    float *srows = NULL;
+    double *sld = NULL;
     Bufs s = {.n = 0};
-    if (!PyArg_ParseTuple(args, "OOOOddnnOOOO", &old, &oc, &oX, &oce, &ubelow, &nbelow,
-                          &first, &stride, &ous, &oub, &osa, &one))
+    if (!PyArg_ParseTuple(args, "OOOOddnnOOOO|OO", &old, &oc, &oX, &oce, &ubelow, &nbelow,
+                          &first, &stride, &ous, &oub, &osa, &one, &osr, &osl))
         return NULL;
     TAKE(const double *, ld, old, "log_density", F64, 1, 0, dl);
     TAKE(const int64_t *, comp, oc, "component", I64, 1, 0, dc);
@@ -34,6 +39,15 @@ static PyObject *piece_tallies(PyObject *self, PyObject *args) {
     NEED(dc[0] == n && dX[0] == n && dce[0] == D && dus[0] == D && dsa[0] == K &&
              dne[0] >= n && first >= 0 && stride >= 1,
          "piece_tallies: shapes do not agree");
+    NEED((osr == Py_None) == (osl == Py_None), "piece_tallies: give sample_rows and sample_ld together");
+    if (osr != Py_None) {
+        Py_ssize_t picked = first < n ? (n - first + stride - 1) / stride : 0;
+        if (!(srows = take(&s, osr, "sample_rows", F32, 2, 1, dsr)) ||
+            !(sld = take(&s, osl, "sample_ld", F64, 1, 1, dsl)))
+            goto fail;
+        NEED(dsr[0] == picked && dsr[1] == D && dsl[0] == picked,
+             "piece_tallies: sample_rows and sample_ld need one row per sampled row");
+    }
     double sum = 0.0, sum2 = 0.0;
     Py_ssize_t n_unusual = 0, n_near = 0;
     int bad = 0;
@@ -59,13 +73,19 @@ static PyObject *piece_tallies(PyObject *self, PyObject *args) {
         if (v < nbelow) near[n_near++] = i;
     }
     if (!bad)
-        for (Py_ssize_t i = first; i < n; i += stride) {
+        for (Py_ssize_t i = first, j = 0; i < n; i += stride, j++) {
             int64_t c = comp[i];
             if (c < 0 || c >= K) {
                 bad = 1;
                 break;
             }
             sampled[c]++;
+            if (srows) {
+                const double *x = X + i * D;
+                float *r = srows + j * D;
+                for (Py_ssize_t d = 0; d < D; d++) r[d] = (float)x[d];
+                sld[j] = ld[i];
+            }
         }
     Py_END_ALLOW_THREADS
     NEED(!bad, "piece_tallies: a component out of range");

@@ -39,6 +39,10 @@ class PieceTallies:
         Positions (ascending) of the rows under the near bound.
     sampled : ndarray of int64, shape (n_components,)
         Rows ``first, first + stride, ...`` per component.
+    sample_rows : ndarray of float32, shape (n_sampled, n_features), or None
+        Those rows, rounded to float32 (when asked for).
+    sample_ld : ndarray of shape (n_sampled,) or None
+        Their log-densities.
     """
 
     ld_sum: float
@@ -48,11 +52,13 @@ class PieceTallies:
     unusual_by: np.ndarray
     near: np.ndarray
     sampled: np.ndarray
+    sample_rows: np.ndarray | None = None
+    sample_ld: np.ndarray | None = None
 
 
 def piece_tallies(log_density, component, X, center, n_components: int, *,
                   unusual_below: float | None = None, near_below: float | None = None,
-                  first: int = 0, stride: int = 1) -> PieceTallies:
+                  first: int = 0, stride: int = 1, sample: bool = False) -> PieceTallies:
     """Tally a learned piece's scores for the segment watch.
 
     Parameters
@@ -72,6 +78,8 @@ def piece_tallies(log_density, component, X, center, n_components: int, *,
         near; None: no row.
     first, stride : int
         The rows whose components are counted in ``sampled``.
+    sample : bool, default False
+        Also copy those rows out (float32) with their log-densities.
 
     Returns
     -------
@@ -83,6 +91,9 @@ def piece_tallies(log_density, component, X, center, n_components: int, *,
     unusual_sum = np.zeros(d)
     unusual_by = np.zeros(n_components, dtype=np.int64)
     sampled = np.zeros(n_components, dtype=np.int64)
+    picked = len(range(first, n, stride))
+    rows_out = np.empty((picked, d), dtype=np.float32) if sample else None
+    ld_out = np.empty(picked) if sample else None
     if fused.enabled():
         near = np.empty(n, dtype=np.int64)
         ld_sum, ld2_sum, unusual, n_near = fused.kernels().piece_tallies(
@@ -90,9 +101,9 @@ def piece_tallies(log_density, component, X, center, n_components: int, *,
             np.ascontiguousarray(component, dtype=np.int64),
             np.ascontiguousarray(X, dtype=np.float64),
             np.ascontiguousarray(center, dtype=np.float64), ub, nb, int(first), int(stride),
-            unusual_sum, unusual_by, sampled, near)
+            unusual_sum, unusual_by, sampled, near, rows_out, ld_out)
         return PieceTallies(ld_sum, ld2_sum, unusual, unusual_sum, unusual_by, near[:n_near],
-                            sampled)
+                            sampled, rows_out, ld_out)
     log_density = np.asarray(log_density, dtype=np.float64)
     rows = np.flatnonzero(log_density < ub)
     if rows.size:
@@ -100,6 +111,10 @@ def piece_tallies(log_density, component, X, center, n_components: int, *,
         unusual_sum += np.where(np.isnan(centred), 0.0, centred).sum(axis=0)
         unusual_by += np.bincount(component.take(rows), minlength=n_components)
     sampled += np.bincount(component[first::stride], minlength=n_components)
+    if sample:
+        rows_out[:] = X[first::stride]
+        ld_out[:] = log_density[first::stride]
     return PieceTallies(float(log_density.sum()), float(np.dot(log_density, log_density)),
                         int(rows.size), unusual_sum, unusual_by,
-                        np.flatnonzero(log_density < nb).astype(np.int64), sampled)
+                        np.flatnonzero(log_density < nb).astype(np.int64), sampled, rows_out,
+                        ld_out)

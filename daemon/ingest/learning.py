@@ -167,18 +167,19 @@ def show_piece(watch: InputWatch | None, life: LifeWatch | None, before: Mixture
     ``before`` the model that scored it and ``mixture`` the model after it."""
     near, first = life.tally_bounds(before) if life is not None else (None, 0)
     kept = complete_only(piece, scores) if life is not None else scores
+    both = life is not None and kept is scores
     tallies = piece_tallies(scores.log_density, scores.component, piece, before.center,
                             before.n_components,
                             unusual_below=None if watch is None else watch.unusual_bound,
-                            near_below=near if kept is scores else None, first=first,
-                            stride=SAMPLE_STRIDE)
+                            near_below=near if both else None, first=first,
+                            stride=SAMPLE_STRIDE, sample=both)
     if watch is not None:
         watch.observe(mixture, piece, scores, start, tallies)
     if life is not None:
-        if kept is not scores:   # rows that miss a feature are never unexplained
-            tallies.near = piece_tallies(kept.log_density, kept.component, piece,
-                                         before.center, before.n_components,
-                                         near_below=near).near
+        if not both:   # rows that miss a feature are neither unexplained nor sampled
+            tallies = piece_tallies(kept.log_density, kept.component, piece, before.center,
+                                    before.n_components, near_below=near, first=first,
+                                    stride=SAMPLE_STRIDE, sample=True)
         life.observe(before, piece, kept, tallies)
 
 

@@ -37,7 +37,9 @@ SAMPLE_STRIDE = 4
 _SAMPLE_MIN, _SAMPLE_PER_FEATURE, _SAMPLE_MAX = 200, 50, 500
 """A segment's sample holds its newest 50 rows per feature, 200 to 500 rows."""
 _WAITING_VALUES = 1 << 21
-"""Sampled rows wait for their segments' samples, at most this many values (16 MiB)."""
+"""Sampled rows wait for their segments' samples, at most this many values (8 MiB as the
+learning loop hands them over: float32, copied out by
+:func:`~shoal.core.piece_tallies.piece_tallies`)."""
 _WAITING_PIECES = 32
 """Rows under the unexplained bound wait for their exact test, from at most this many
 pieces (their responsibilities and log-densities wait with them, copied)."""
@@ -108,11 +110,13 @@ class Samples:
         self._taken: dict[int, int] = {}
 
     def add(self, X: np.ndarray, first: int, labels: np.ndarray, log_density: np.ndarray,
-            counts: dict, live: list[int]) -> None:
+            counts: dict, live: list[int], rows: np.ndarray | None = None) -> None:
         """Rows ``first, first + SAMPLE_STRIDE, ...`` of a piece ``X``, whose ``labels``
         (segment ids) and ``log_density`` are those of the same rows; ``counts`` their
-        number per segment id; ``live`` the model's segment ids."""
-        rows = X.take(_strided(first, len(X)), axis=0)
+        number per segment id; ``live`` the model's segment ids. ``rows``: those rows
+        already copied out, as float32 (what a sample keeps: :meth:`take` rounds them)."""
+        if rows is None:
+            rows = X.take(_strided(first, len(X)), axis=0)
         self._waiting.append([self._pieces, rows, labels, log_density, counts])
         self._pieces += 1
         self._values += rows.size

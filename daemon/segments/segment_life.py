@@ -180,7 +180,7 @@ class LifeWatch:
         if tallies is None:
             tallies = piece_tallies(scores.log_density, scores.component, X, before.center,
                                     before.n_components, first=first, stride=SAMPLE_STRIDE,
-                                    near_below=self._pool.near_bound(before))
+                                    near_below=self._pool.near_bound(before), sample=True)
         ids = self._live = before.ids.tolist()
         # sampled rows of each segment, those that miss a feature too (they count
         # towards a split test's wait, but do not go into a sample)
@@ -202,7 +202,7 @@ class LifeWatch:
                     self._due = True   # a split test may be due (if not cooling down)
         if counts:
             self._samples.add(X, first, scores.segment[first::SAMPLE_STRIDE],
-                              scores.log_density[first::SAMPLE_STRIDE].copy(), counts, ids)
+                              tallies.sample_ld, counts, ids, rows=tallies.sample_rows)
         self._pool.add(before, X, scores, tallies.near)
 
     def _keys(self, ids: list[int]) -> list[str]:

@@ -50,7 +50,7 @@ def test_the_tallies_are_those_of_a_row_by_row_loop(scoring_path, bounds, first,
     ld, component, X, center = _piece()
     unusual_below, near_below = bounds
     got = piece_tallies(ld, component, X, center, K, unusual_below=unusual_below,
-                        near_below=near_below, first=first, stride=stride)
+                        near_below=near_below, first=first, stride=stride, sample=True)
     ld_sum, ld2_sum, unusual, unusual_sum, unusual_by, near, sampled = _by_loop(
         ld, component, X, center, unusual_below, near_below, first, stride)
     assert got.ld_sum == pytest.approx(ld_sum, rel=1e-12)
@@ -62,6 +62,9 @@ def test_the_tallies_are_those_of_a_row_by_row_loop(scoring_path, bounds, first,
     assert got.unusual_by.tolist() == unusual_by
     assert got.near.tolist() == near
     assert got.sampled.tolist() == sampled
+    # the sampled rows copied out, rounded to float32, with their log-densities
+    np.testing.assert_array_equal(got.sample_rows, X[first::stride].astype(np.float32))
+    np.testing.assert_array_equal(got.sample_ld, ld[first::stride])
 
 
 def test_both_paths_give_the_same_tallies():

@@ -75,6 +75,30 @@ def test_samples_taken_late_are_the_newest_rows_of_each_segment(waiting_values, 
         assert not np.isnan(back).any()
 
 
+def test_samples_fed_rows_copied_out_as_float32_hold_the_same_rows():
+    # the learning loop hands the sampled rows over as piece_tallies copies them out
+    # (float32, with their log-densities); a sample rounds its rows to float32 anyway
+    from shoal.core.piece_tallies import piece_tallies
+    X, labels, log_density = _stream(5)
+    cuts = [0, 1000, 1001, 2500, 4096, 6000]
+    plain, copied = Samples({"sample": {}}, D), Samples({"sample": {}}, D)
+    _feed(plain, X, labels, log_density, cuts)
+    for a, b in zip(cuts[:-1], cuts[1:]):
+        first = (-a) % SAMPLE_STRIDE
+        tallies = piece_tallies(log_density[a:b], np.zeros(b - a, dtype=np.int64), X[a:b],
+                                np.zeros(D), 1, first=first, stride=SAMPLE_STRIDE, sample=True)
+        assert tallies.sample_rows.dtype == np.float32
+        picked = labels[a:b][first::SAMPLE_STRIDE]
+        ids, counts = np.unique(picked, return_counts=True)
+        copied.add(X[a:b], first, picked, tallies.sample_ld,
+                   dict(zip(ids.tolist(), counts.tolist())), [3, 5, 8, 11],
+                   rows=tallies.sample_rows)
+    for sid in (3, 5, 8, 11):
+        np.testing.assert_array_equal(copied.take(sid), plain.take(sid))
+        np.testing.assert_array_equal(copied.take(sid),
+                                      _reference(X, labels, log_density, len(X), sid, 200))
+
+
 def test_samples_restart_and_forget():
     X, labels, log_density = _stream(3)
     samples = Samples({"sample": {}}, D)
