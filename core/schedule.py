@@ -60,6 +60,7 @@ converging schedule uses them.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -120,12 +121,18 @@ class StepSchedule:
                 f"half_life_rows should be >= 1 or None, got {self.half_life_rows!r}"
             )
 
-    @property
+    @functools.cached_property
     def floor(self) -> float:
-        """The tracking step (0 when the model converges)."""
+        """The tracking step (0 when the model converges); worked out once per schedule
+        (the learning loop asks at every span)."""
         if self.half_life_rows is None:
             return 0.0
         return floor_from_half_life(float(self.half_life_rows))
+
+    @functools.cached_property
+    def _log_keep(self):
+        """``log(1 - floor)``: the log of what a constant step keeps of a row per row."""
+        return np.log1p(-self.floor)
 
     def resolved(self, n_warmup: int) -> "StepSchedule":
         """A copy with ``i0`` fixed from the warm-up size when it was left open.
@@ -185,7 +192,7 @@ class StepSchedule:
         """
         if self.half_life_rows is not None:
             # the constant step in closed form: row i keeps (1 - eta)^(rows after it)
-            log_keep = float(np.log1p(-self.floor))
+            log_keep = float(self._log_keep)
             weights = np.arange(n_rows - 1, -1, -1, dtype=np.float64)
             weights *= log_keep
             np.exp(weights, out=weights)
@@ -221,7 +228,7 @@ class StepSchedule:
         """
         n = end - anchor
         if self.half_life_rows is not None:
-            return float(self.floor * np.exp(n * np.log1p(-self.floor)))
+            return float(self.floor * np.exp(n * self._log_keep))
         eta = self.steps(anchor, n)
         return float(eta[0] * np.exp(np.sum(np.log1p(-eta))))
 

@@ -136,14 +136,18 @@ def unexplained_below(mixture: Mixture, threshold: float = 0.999) -> float:
 
 
 def _log_scale_sum(mixture: Mixture) -> float:
-    """``mixture.log_scale_sum``, remembered for the few scales in use (the scale is
-    frozen at warm-up, and the lifecycle asks at every piece)."""
-    return _log_sum_of(np.ascontiguousarray(mixture.scale, dtype=np.float64).tobytes())
+    """``mixture.log_scale_sum``, remembered for the scale last asked about: the scale
+    is frozen at warm-up (every model of a stream shares its array), and the lifecycle
+    asks at every piece."""
+    global _scale_sum
+    scale, value = _scale_sum
+    if mixture.scale is not scale:
+        scale, value = mixture.scale, float(np.sum(np.log(mixture.scale)))
+        _scale_sum = (scale, value)
+    return value
 
 
-@functools.lru_cache(maxsize=8)
-def _log_sum_of(scale: bytes) -> float:
-    return float(np.sum(np.log(np.frombuffer(scale))))
+_scale_sum: tuple = (None, 0.0)
 
 
 @functools.lru_cache(maxsize=64)

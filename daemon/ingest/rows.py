@@ -152,8 +152,12 @@ class ScoresInto:
             self.first = scores
             self.arrays = {name: np.empty(self.n_rows, dtype=getattr(scores, name).dtype)
                            for name in _ROW_FIELDS if name != "resp"}
-        for name, out in self.arrays.items():
-            out[at:at + len(scores.segment)] = getattr(scores, name)
+        end = at + len(scores.segment)
+        arrays = self.arrays
+        arrays["log_density"][at:end] = scores.log_density
+        arrays["component"][at:end] = scores.component
+        arrays["segment"][at:end] = scores.segment
+        arrays["confidence"][at:end] = scores.confidence
 
     def scores(self):
         """The joined scores (None if no piece was put)."""
