@@ -1090,6 +1090,9 @@ static PyMethodDef methods[] = {
     {"window_shapes", window_shapes, METH_VARARGS,
      "window_shapes(S, M, B, centers, seen, kind, ref_means, ref_inv_chol, means, covs, shift, "
      "log_det, ok): drift windows' means, covariances, mean shifts and log-determinants"},
+    {"pairs_apart", pairs_apart, METH_VARARGS,
+     "pairs_apart(means, cov, kind, reach) -> bool: every pair's squared mean gap at least "
+     "reach times the sum of their covariances' traces"},
     {NULL, NULL, 0, NULL}};
 
 static struct PyModuleDef module = {PyModuleDef_HEAD_INIT, "_kernels",

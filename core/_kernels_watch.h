@@ -217,3 +217,57 @@ static PyObject *window_shapes(PyObject *self, PyObject *args) {
     Py_END_ALLOW_THREADS
     RETURN_NONE_OR_FAIL_FREEING(L);
 }
+
+/* pairs_apart(means, cov, kind, reach) -> bool: whether every pair of components i < j
+ * has |mu_i - mu_j|^2 >= reach * (tr S_i + tr S_j), the means-and-traces bound of the
+ * lifecycle's merge look (cov: kind 0 full (K, D, D), 1 diag (K, D), 2 spherical (K,)). */
+static PyObject *pairs_apart(PyObject *self, PyObject *args) {
+    PyObject *om, *oc;
+    int kind;
+    double reach;
+    Py_ssize_t dm[2], dc[3];
+    double *tr = NULL;
+    Bufs s = {.n = 0};
+    if (!PyArg_ParseTuple(args, "OOid", &om, &oc, &kind, &reach)) return NULL;
+    TAKE(const double *, mu, om, "means", F64, 2, 0, dm);
+    NEED(kind >= 0 && kind <= 2, "pairs_apart: kind is 0, 1 or 2");
+    TAKE(const double *, cov, oc, "cov", F64, 3 - kind, 0, dc);
+    Py_ssize_t K = dm[0], D = dm[1];
+    NEED(dc[0] == K && (kind == 2 || dc[1] == D) && (kind != 0 || dc[2] == D),
+         "pairs_apart: shapes do not agree");
+    tr = PyMem_Malloc(sizeof(double) * (size_t)(K > 0 ? K : 1));
+    if (!tr) {
+        PyErr_NoMemory();
+        goto fail;
+    }
+    int apart = 1;
+    for (Py_ssize_t k = 0; k < K; k++) {
+        double t = 0.0;
+        if (kind == 0)
+            for (Py_ssize_t a = 0; a < D; a++) t += cov[(k * D + a) * D + a];
+        else if (kind == 1)
+            for (Py_ssize_t a = 0; a < D; a++) t += cov[k * D + a];
+        else
+            t = cov[k] * (double)D;
+        tr[k] = t;
+    }
+    for (Py_ssize_t i = 0; i < K && apart; i++)
+        for (Py_ssize_t j = i + 1; j < K; j++) {
+            double gap = 0.0;
+            for (Py_ssize_t a = 0; a < D; a++) {
+                double d = mu[i * D + a] - mu[j * D + a];
+                gap += d * d;
+            }
+            if (!(gap >= reach * (tr[i] + tr[j]))) {
+                apart = 0;
+                break;
+            }
+        }
+    PyMem_Free(tr);
+    release(&s);
+    return PyBool_FromLong(apart);
+fail:
+    PyMem_Free(tr);
+    release(&s);
+    return NULL;
+}

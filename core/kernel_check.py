@@ -10,8 +10,12 @@ from __future__ import annotations
 import numpy as np
 
 from . import fused
+from .baseline import Baseline
+from .distances import GaussianSet
 from .mixture import Mixture
+from .piece_tallies import piece_tallies
 from .schedule import StepSchedule
+from .window_statistics import WindowSums, window_statistics
 
 __all__ = ["warm"]
 
@@ -21,7 +25,8 @@ def warm() -> bool:
 
     A self-check at start-up: a broken build fails here, not inside the first input.
     Each covariance type learns, scores and takes one EM step on 64 seeded rows of two
-    features, a cost too small to notice beside the service's start.
+    features, and the segment watch's passes tally the rows and compare their window
+    with a baseline, a cost too small to notice beside the service's start.
 
     Returns
     -------
@@ -38,7 +43,17 @@ def warm() -> bool:
     for covariance, cov in shapes.items():
         model = Mixture.from_parameters([0.5, 0.5], means, cov, covariance=covariance,
                                         schedule=StepSchedule().resolved(100))
-        model, _ = model.learn(X)
+        model, scores = model.learn(X, moments=True)
         model.score(X)
         model.em_step(X)
+        # the segment watch's passes: a piece's tallies and a window's statistics
+        piece_tallies(scores.log_density, scores.component, X, model.center, 2,
+                      unusual_below=float(np.median(scores.log_density)), near_below=0.0,
+                      first=1, stride=4, sample=True)
+        ref = Baseline.from_mixture(model)
+        m = scores.moments
+        if m is not None:
+            window_statistics(ref, GaussianSet(ref.means, ref.covariances), [len(X)],
+                              WindowSums(T=m.T, Q=m.Q, M=m.M, S=m.S, B=m.B),
+                              model.center[None], min_share=0.25)
     return True

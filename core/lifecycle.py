@@ -28,6 +28,7 @@ from dataclasses import replace
 
 import numpy as np
 
+from . import fused
 from .distances import (
     bhattacharyya_distance,
     bhattacharyya_lower_bound,
@@ -308,14 +309,17 @@ def pairs_apart(mixture: Mixture, distance: float, measure: str = "hellinger",
     cov, n = mixture.covariances, mixture.n_components
     if n < 2:
         return True
+    factor = 4.0 * margin * _bhattacharyya_limit(measure, distance)
+    if fused.enabled():   # one compiled loop over the pairs (asked at every 4th point)
+        return fused.kernels().pairs_apart(
+            np.ascontiguousarray(mixture.means, dtype=np.float64),
+            np.ascontiguousarray(cov, dtype=np.float64), 3 - cov.ndim, float(factor))
     traces = (cov.trace(axis1=1, axis2=2) if cov.ndim == 3 else
               cov.sum(axis=1) if cov.ndim == 2 else cov * mixture.n_features)
     apart = mixture.means[:, None, :] - mixture.means[None, :, :]
     gap = np.einsum("ijd,ijd->ij", apart, apart)
     gap.flat[::n + 1] = np.inf   # a component and itself
-    reach = (4.0 * margin * _bhattacharyya_limit(measure, distance)) * (
-        traces[:, None] + traces[None, :])
-    return not (gap < reach).any()
+    return not (gap < factor * (traces[:, None] + traces[None, :])).any()
 
 
 def _candidates(mixture: Mixture, measure: str, below: float | None):

@@ -447,9 +447,10 @@ def test_unexplained_from_scores_is_the_chi_square_test_of_every_component(covar
 
 
 @pytest.mark.parametrize("measure", ["hellinger", "bhattacharyya"])
-def test_pairs_apart_is_the_means_and_traces_bound_over_every_pair(measure):
+def test_pairs_apart_is_the_means_and_traces_bound_over_every_pair(measure, scoring_path):
     # pairs_apart must say True exactly when bhattacharyya_lower_bound puts every pair
-    # at margin x the distance or more, and then no pair is under the distance.
+    # at margin x the distance or more, and then no pair is under the distance (on the
+    # compiled loop over the pairs and on the numpy path).
     rng = np.random.default_rng(78)
     for trial in range(40):
         k, d = int(rng.integers(2, 7)), 4
