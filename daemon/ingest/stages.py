@@ -49,8 +49,15 @@ if TYPE_CHECKING:
     from shoal.daemon.segments.monitor import InputWatch
     from shoal.daemon.segments.segment_life import LifeWatch
 
-__all__ = ["read_frames", "until_claimed", "stop_checked", "InputLearning", "TimeColumn",
+__all__ = ["FRAMES_AHEAD", "read_frames", "until_claimed", "stop_checked", "InputLearning", "TimeColumn",
            "scored_tables", "frame_labels"]
+
+
+FRAMES_AHEAD = 4
+"""Frames the reader thread may read ahead of the model. With the segment watch on, the
+model takes its frames in bursts (decision points, batches of closed windows evaluated)
+while holding the interpreter, and the reader, which needs it for every frame, falls
+behind in them; four frames (8 MiB each at D=16) carry the model through."""
 
 
 def read_frames(f: BinaryIO, kind: str, settings: Settings, state: ModelState,
@@ -73,7 +80,7 @@ def read_frames(f: BinaryIO, kind: str, settings: Settings, state: ModelState,
         frames = iter_frames(f, kind, settings, should_stop,
                              model_range=None if mixture is None else model_range(mixture),
                              skipped=skipped)
-    return prefetch(conformer.frames(frames), threaded=threaded)
+    return prefetch(conformer.frames(frames), depth=FRAMES_AHEAD, threaded=threaded)
 
 
 def until_claimed(frames: Iterable[Frame], claim: Claim) -> Iterator[Frame]:
