@@ -568,12 +568,14 @@ def stages_table(rows: int = 1_000_000, workdir: Path | None = None, repeats: in
         for fmt in drops:
             off, on = runs[(fmt, False)], runs[(fmt, True)]
             watch = sum(on["cpu"][n] for n in WATCH_STAGES)
+            grown = watch + max(on["rest"] - off["rest"], 0.0)
             added = on["ingest"] - off["ingest"]
-            print(f"{fmt}: the watch's stages {watch:.3f} CPU-s "
-                  f"({watch / off['cpu'][model]:.2f} x the model's E+M with it off); "
-                  f"all it adds to the ingest thread (its stages, the moments the model's "
-                  f"learning hands it, glue) {added:.3f} ({added / off['cpu'][model]:.2f} x; "
-                  f"target <= 0.5)")
+            e_m = off["cpu"][model]
+            print(f"{fmt}: the watch's stages {watch:.3f} CPU-s ({watch / e_m:.2f} x the "
+                  f"model's E+M with it off); with the growth of the rest {grown:.3f} "
+                  f"({grown / e_m:.2f} x; target <= 0.5); all it adds to the ingest thread "
+                  f"(its stages, the moments the model's learning hands it, glue) "
+                  f"{added:.3f} ({added / e_m:.2f} x)")
     return runs
 
 
