@@ -22,7 +22,7 @@ from shoal.config import Settings
 from shoal.core import Mixture
 from shoal.daemon.files.gaps import Unusual, frame_observed, observed_counts
 from shoal.daemon.files.labels_schema import Conformer
-from shoal.daemon.files.readers import Frame, iter_frames, prefetch
+from shoal.daemon.files.readers import BATCH_ROWS, Frame, iter_frames, prefetch
 from shoal.daemon.files.times import RowTimes, row_times
 from shoal.daemon.files.writer import labels_table
 from shoal.daemon.ingest.claim import Claim
@@ -49,15 +49,21 @@ if TYPE_CHECKING:
     from shoal.daemon.segments.monitor import InputWatch
     from shoal.daemon.segments.segment_life import LifeWatch
 
-__all__ = ["FRAMES_AHEAD", "read_frames", "until_claimed", "stop_checked", "InputLearning", "TimeColumn",
+__all__ = ["READ_AHEAD_BYTES", "frames_ahead", "read_frames", "until_claimed", "stop_checked", "InputLearning", "TimeColumn",
            "scored_tables", "frame_labels"]
 
 
-FRAMES_AHEAD = 4
-"""Frames the reader thread may read ahead of the model. With the segment watch on, the
-model takes its frames in bursts (decision points, batches of closed windows evaluated)
-while holding the interpreter, and the reader, which needs it for every frame, falls
-behind in them; four frames (8 MiB each at D=16) carry the model through."""
+READ_AHEAD_BYTES = 32 << 20
+"""What the reader thread may hold in frames read ahead of the model: four frames of
+16 features (8 MiB each), fewer for wider rows, never fewer than two. With the segment
+watch on, the model takes its frames in bursts (decision points, batches of closed
+windows) while it holds the interpreter, and the reader, which needs it for every
+frame, falls behind in them; frames read ahead carry the model through."""
+
+
+def frames_ahead(n_features: int) -> int:
+    """Frames the reader may read ahead for rows of ``n_features`` (2 to 4)."""
+    return max(2, min(4, READ_AHEAD_BYTES // (BATCH_ROWS * max(n_features, 1) * 8)))
 
 
 def read_frames(f: BinaryIO, kind: str, settings: Settings, state: ModelState,
@@ -80,7 +86,8 @@ def read_frames(f: BinaryIO, kind: str, settings: Settings, state: ModelState,
         frames = iter_frames(f, kind, settings, should_stop,
                              model_range=None if mixture is None else model_range(mixture),
                              skipped=skipped)
-    return prefetch(conformer.frames(frames), depth=FRAMES_AHEAD, threaded=threaded)
+    return prefetch(conformer.frames(frames), depth=frames_ahead(len(settings.features)),
+                    threaded=threaded)
 
 
 def until_claimed(frames: Iterable[Frame], claim: Claim) -> Iterator[Frame]:
