@@ -165,7 +165,8 @@ def show_piece(watch: InputWatch | None, life: LifeWatch | None, before: Mixture
     """Show a learned piece (rows ``start..`` of the input's learned rows) to the segment
     watch: its scores tallied once for both (:func:`shoal.core.piece_tallies.piece_tallies`),
     ``before`` the model that scored it and ``mixture`` the model after it."""
-    near, first = life.tally_bounds(before) if life is not None else (None, 0)
+    # without the lifecycle no row is sampled (the first sampled row is past the piece)
+    near, first = life.tally_bounds(before) if life is not None else (None, len(piece))
     kept = complete_only(piece, scores) if life is not None else scores
     both = life is not None and kept is scores
     tallies = piece_tallies(scores.log_density, scores.component, piece, before.center,

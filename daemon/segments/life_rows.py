@@ -31,9 +31,17 @@ from shoal.core import Mixture
 from shoal.core.lifecycle import (squared_mahalanobis, unexplained_below, unexplained_scored,
                                   widening_explains)
 
-__all__ = ["Samples", "UnexplainedPool", "SAMPLE_STRIDE"]
+__all__ = ["Samples", "UnexplainedPool", "SAMPLE_STRIDE", "first_sampled"]
 
 SAMPLE_STRIDE = 4
+
+
+def first_sampled(n_rows: int) -> int:
+    """The first sampled row of a piece that starts after ``n_rows`` learned rows: every
+    ``SAMPLE_STRIDE``-th row of the stream is sampled, whatever the cut into pieces."""
+    return (-int(n_rows)) % SAMPLE_STRIDE
+
+
 _SAMPLE_MIN, _SAMPLE_PER_FEATURE, _SAMPLE_MAX = 200, 50, 500
 """A segment's sample holds its newest 50 rows per feature, 200 to 500 rows."""
 _WAITING_VALUES = 1 << 21

@@ -57,7 +57,7 @@ from shoal.core.lifecycle import (OVERLAP_MEASURES, add_component, compact_group
                                   split_test, unexplained_scored, widening_explains)
 from shoal.core.piece_tallies import PieceTallies, piece_tallies
 from shoal.daemon.runtime.logs import log_event
-from shoal.daemon.segments.life_rows import SAMPLE_STRIDE, Samples, UnexplainedPool
+from shoal.daemon.segments.life_rows import SAMPLE_STRIDE, Samples, UnexplainedPool, first_sampled
 from shoal.daemon.segments.own_state import own_copy
 from shoal.daemon.segments.life_events import (
     describe,
@@ -165,7 +165,7 @@ class LifeWatch:
         """The log-density under which rows that ``before`` scores may be unexplained, and
         a piece's first sampled row: what :meth:`observe` needs tallied."""
         self._ensure()
-        return self._pool.near_bound(before), (-int(before.n_rows)) % SAMPLE_STRIDE
+        return self._pool.near_bound(before), first_sampled(before.n_rows)
 
     def observe(self, before: Mixture, X: np.ndarray, scores,
                 tallies: PieceTallies | None = None) -> None:
@@ -176,7 +176,7 @@ class LifeWatch:
         (``complete_only``): those are neither pooled nor sampled; ``tallies`` its
         :func:`~shoal.core.piece_tallies.piece_tallies` under :meth:`tally_bounds`."""
         st = self._ensure()
-        first = (-int(before.n_rows)) % SAMPLE_STRIDE
+        first = first_sampled(before.n_rows)
         if tallies is None:
             tallies = piece_tallies(scores.log_density, scores.component, X, before.center,
                                     before.n_components, first=first, stride=SAMPLE_STRIDE,
